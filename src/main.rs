@@ -1,0 +1,2 @@
+//! The `ampoule` command-line tool.
+fn main() {}
