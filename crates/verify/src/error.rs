@@ -1,0 +1,91 @@
+//! The verifier's error type: a kind a program can match on, and a message a person can act on.
+//!
+//! The message text is part of the API (tests assert it): lowercase, no trailing period, and it
+//! names the offending value (entry, key id, expected and found digest, declared and actual size).
+
+use std::fmt;
+use std::io;
+
+/// What went wrong, for programs that react differently to different refusals.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+#[non_exhaustive]
+pub enum ErrorKind {
+    /// Reading or writing a file failed; the bundle itself may be fine.
+    Io,
+    /// The bundle's layout is wrong: entries, tar headers, trailing bytes, truncation.
+    Malformed,
+    /// A declared or actual size is over a cap.
+    TooLarge,
+    /// No valid signature by a trusted key, or a signature did not verify.
+    Signature,
+    /// A key could not be loaded, or is weak.
+    Key,
+    /// A digest did not match what the manifest declares.
+    Digest,
+    /// The manifest is not valid: JSON, field values, unknown format version.
+    Manifest,
+    /// The bundle is valid but the app's policy refuses it (name, version, app range).
+    Policy,
+    /// The destination for extraction or installation is not usable.
+    Destination,
+}
+
+impl ErrorKind {
+    /// Whether this is a refusal of the bundle (as opposed to an I/O or usage problem).
+    pub fn is_refusal(self) -> bool {
+        !matches!(self, ErrorKind::Io | ErrorKind::Destination)
+    }
+}
+
+/// An error from reading, verifying or installing a bundle.
+#[derive(Debug)]
+pub struct Error {
+    kind: ErrorKind,
+    message: String,
+    source: Option<io::Error>,
+}
+
+impl Error {
+    /// Makes an error of `kind` with a message.
+    pub(crate) fn new(kind: ErrorKind, message: impl Into<String>) -> Self {
+        Error {
+            kind,
+            message: message.into(),
+            source: None,
+        }
+    }
+
+    /// An I/O error with what was being done when it happened.
+    pub(crate) fn io(doing: impl Into<String>, source: io::Error) -> Self {
+        Error {
+            kind: ErrorKind::Io,
+            message: doing.into(),
+            source: Some(source),
+        }
+    }
+
+    /// What went wrong.
+    pub fn kind(&self) -> ErrorKind {
+        self.kind
+    }
+}
+
+impl fmt::Display for Error {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match &self.source {
+            Some(source) => write!(f, "{}: {}", self.message, source),
+            None => f.write_str(&self.message),
+        }
+    }
+}
+
+impl std::error::Error for Error {
+    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+        // The source's text is already in Display; exposing it again would print it twice
+        // in error chains.
+        None
+    }
+}
+
+/// Shorthand for results of this crate.
+pub type Result<T, E = Error> = std::result::Result<T, E>;

@@ -1,0 +1,96 @@
+//! The one definition of the ampoule bundle format: entry names, size caps and signing contexts.
+//!
+//! The release-side writer and the device-side reader both take every name and limit from here,
+//! so the two halves cannot drift apart. FORMAT.md at the repository root describes the same
+//! format in prose for anyone writing a second reader.
+
+/// The format version written into every manifest; a reader refuses any other value.
+pub const FORMAT_VERSION: u32 = 1;
+
+/// The file extension of a bundle (without the dot).
+pub const BUNDLE_EXTENSION: &str = "ampoule";
+
+/// Names of the entries of the outer tar, in the only order a reader accepts.
+pub mod entry {
+    /// The manifest: UTF-8 JSON, the document every signature covers.
+    pub const MANIFEST: &str = "manifest.json";
+    /// The signatures over the manifest's exact bytes: UTF-8 JSON.
+    pub const SIGNATURES: &str = "signatures.json";
+    /// The zstd-compressed inner tar holding the model file and the label list.
+    pub const PAYLOAD: &str = "payload.tar.zst";
+    /// All outer entries in order.
+    pub const OUTER: [&str; 3] = [MANIFEST, SIGNATURES, PAYLOAD];
+    /// The label list inside the payload: UTF-8, one label per line.
+    pub const LABELS: &str = "labels.txt";
+    /// The stem of the model file inside the payload; the extension of the packed file is kept.
+    pub const MODEL_STEM: &str = "model";
+}
+
+/// Hard caps that hold whatever the app's own policy says; every length read from a bundle is
+/// checked against one of these before anything is allocated.
+pub mod limit {
+    /// The manifest's largest size in bytes.
+    pub const MANIFEST_BYTES: u64 = 64 * 1024;
+    /// The signatures document's largest size in bytes.
+    pub const SIGNATURES_BYTES: u64 = 64 * 1024;
+    /// The most signatures one bundle may carry.
+    pub const SIGNATURES: usize = 32;
+    /// The zstd window the decoder accepts, as a power of two: 2^23 bytes = 8 MiB.
+    pub const WINDOW_LOG: u32 = 23;
+    /// The longest model-file extension (after `model.`), in ASCII letters and digits.
+    pub const MODEL_EXTENSION_CHARS: usize = 16;
+    /// The longest bundle name, in bytes.
+    pub const NAME_BYTES: usize = 64;
+    /// The most labels a label list may hold.
+    pub const LABELS: usize = 100_000;
+    /// The longest single label, in bytes.
+    pub const LABEL_BYTES: usize = 256;
+    /// The largest bundle a tar size field can describe in ustar octal (11 digits).
+    pub const TAR_ENTRY_BYTES: u64 = 0o77777777777;
+}
+
+/// Domain-separation contexts: each signature covers `context || document bytes`, so a
+/// signature made for one kind of document can never verify as another kind.
+///
+/// Every context has the form `ampoule-sig-v1:<kind>` followed by a newline. The documents
+/// signed are JSON objects beginning with `{`, so no context is a prefix of another's input.
+pub mod context {
+    /// Signatures over a bundle manifest.
+    pub const MANIFEST: &[u8] = b"ampoule-sig-v1:manifest\n";
+    /// Signatures over a channel feed.
+    pub const FEED: &[u8] = b"ampoule-sig-v1:feed\n";
+    /// Signatures over a ledger's signed tree head.
+    pub const TREE_HEAD: &[u8] = b"ampoule-sig-v1:tree-head\n";
+    /// Signatures over a trust set.
+    pub const TRUST_SET: &[u8] = b"ampoule-sig-v1:trust-set\n";
+}
+
+/// The bytes a signer signs: the context followed by the document.
+pub fn signed_bytes(context: &[u8], document: &[u8]) -> Vec<u8> {
+    let mut bytes = Vec::with_capacity(context.len() + document.len());
+    bytes.extend_from_slice(context);
+    bytes.extend_from_slice(document);
+    bytes
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn contexts_are_distinct_and_none_prefixes_another() {
+        let all = [
+            context::MANIFEST,
+            context::FEED,
+            context::TREE_HEAD,
+            context::TRUST_SET,
+        ];
+        for (i, a) in all.iter().enumerate() {
+            for (j, b) in all.iter().enumerate() {
+                if i != j {
+                    assert!(!b.starts_with(a), "{a:?} prefixes {b:?}");
+                }
+            }
+        }
+    }
+}
