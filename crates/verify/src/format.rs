@@ -45,6 +45,8 @@ pub mod limit {
     pub const LABELS: usize = 100_000;
     /// The longest single label, in bytes.
     pub const LABEL_BYTES: usize = 256;
+    /// The largest label file, in bytes; it is read into memory to be checked.
+    pub const LABELS_FILE_BYTES: u64 = 4 * 1024 * 1024;
     /// The largest bundle a tar size field can describe in ustar octal (11 digits).
     pub const TAR_ENTRY_BYTES: u64 = 0o77777777777;
 }

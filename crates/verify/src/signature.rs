@@ -1,0 +1,207 @@
+//! Signatures over signed documents, and the check that counts how many trusted keys signed.
+//!
+//! Every signed document kind (bundle manifest, feed, tree head, trust set) carries its
+//! signatures in this shape, and every check goes through [`check_signatures`], so "signed by
+//! a trusted key" means the same thing everywhere: strict Ed25519 over the kind's context and
+//! the document's exact bytes, one vote per distinct key.
+
+use std::collections::BTreeSet;
+use std::fmt;
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::limit;
+use crate::keys::{KeyId, TrustedKeys};
+
+/// One signature in the signatures document.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SignatureEntry {
+    /// The id of the key that made the signature.
+    pub key_id: KeyId,
+    /// The raw 64-byte Ed25519 signature as 128 lowercase hex characters.
+    #[serde(with = "hex_signature")]
+    pub signature: [u8; 64],
+}
+
+/// The signatures document (`signatures.json`): signatures over the manifest's exact bytes,
+/// kept in key-id order.
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Signatures {
+    /// The signatures, in key-id order.
+    pub signatures: Vec<SignatureEntry>,
+}
+
+impl Signatures {
+    /// Parses the signatures document strictly.
+    pub fn from_json(bytes: &[u8]) -> Result<Signatures> {
+        let sigs: Signatures = serde_json::from_slice(bytes).map_err(|e| {
+            Error::new(
+                ErrorKind::Signature,
+                format!("signatures.json is not valid: {e}"),
+            )
+        })?;
+        if sigs.signatures.len() > limit::SIGNATURES {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "signatures.json holds {} signatures, over the limit of {}",
+                    sigs.signatures.len(),
+                    limit::SIGNATURES
+                ),
+            ));
+        }
+        Ok(sigs)
+    }
+
+    /// The document as the writer stores it: pretty JSON, signatures sorted by key id, a
+    /// final newline.
+    pub fn to_json(&self) -> Vec<u8> {
+        let mut sorted = self.clone();
+        sorted.signatures.sort_by_key(|s| s.key_id);
+        let mut bytes =
+            serde_json::to_vec_pretty(&sorted).expect("signatures of hex strings always serialize");
+        bytes.push(b'\n');
+        bytes
+    }
+
+    /// Adds a signature, replacing an older one by the same key. Returns whether anything
+    /// changed.
+    pub fn insert(&mut self, entry: SignatureEntry) -> bool {
+        if let Some(old) = self
+            .signatures
+            .iter_mut()
+            .find(|s| s.key_id == entry.key_id)
+        {
+            let changed = old.signature != entry.signature;
+            *old = entry;
+            return changed;
+        }
+        self.signatures.push(entry);
+        self.signatures.sort_by_key(|s| s.key_id);
+        true
+    }
+}
+
+mod hex_signature {
+    use serde::{Deserialize, Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(sig: &[u8; 64], serializer: S) -> Result<S::Ok, S::Error> {
+        serializer.serialize_str(&hex::encode(sig))
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(deserializer: D) -> Result<[u8; 64], D::Error> {
+        let text = <std::borrow::Cow<'de, str>>::deserialize(deserializer)?;
+        let lower_hex = text.bytes().all(|b| matches!(b, b'0'..=b'9' | b'a'..=b'f'));
+        let mut sig = [0u8; 64];
+        if text.len() != 128 || !lower_hex || hex::decode_to_slice(&*text, &mut sig).is_err() {
+            return Err(serde::de::Error::custom(
+                "a signature must be 128 lowercase hex characters (64 bytes)",
+            ));
+        }
+        Ok(sig)
+    }
+}
+
+/// What a signature check found.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct SignatureReport {
+    /// Trusted keys whose signature verified, each once, in key-id order.
+    pub valid: Vec<KeyId>,
+    /// Trusted keys whose signature did not verify over this document.
+    pub invalid: Vec<KeyId>,
+    /// Keys that signed but are not trusted; their signatures were not checked.
+    pub untrusted: Vec<KeyId>,
+}
+
+fn list(ids: &[KeyId]) -> String {
+    ids.iter()
+        .map(KeyId::to_string)
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+impl fmt::Display for SignatureReport {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let mut parts = Vec::new();
+        if !self.valid.is_empty() {
+            parts.push(format!("valid: {}", list(&self.valid)));
+        }
+        if !self.invalid.is_empty() {
+            parts.push(format!(
+                "not matching this document: {}",
+                list(&self.invalid)
+            ));
+        }
+        if !self.untrusted.is_empty() {
+            parts.push(format!(
+                "by keys not trusted here: {}",
+                list(&self.untrusted)
+            ));
+        }
+        if parts.is_empty() {
+            parts.push("no signatures".into());
+        }
+        f.write_str(&parts.join("; "))
+    }
+}
+
+/// Checks `signatures` over `context || document` and requires at least `threshold` distinct
+/// trusted keys to have signed. `what` names the document in messages ("bundle", "feed").
+pub fn check_signatures(
+    what: &str,
+    context: &[u8],
+    document: &[u8],
+    signatures: &[SignatureEntry],
+    keys: &TrustedKeys,
+    threshold: usize,
+) -> Result<SignatureReport> {
+    let report = tally(context, document, signatures, keys);
+    if threshold > 0 && report.valid.len() >= threshold {
+        return Ok(report);
+    }
+    let message = if signatures.is_empty() {
+        format!("{what} is not signed; it needs a signature by a trusted key")
+    } else if threshold <= 1 {
+        format!("{what} has no valid signature by a trusted key ({report})")
+    } else {
+        format!(
+            "{what} has {} valid signature(s) by trusted keys but needs {threshold} ({report})",
+            report.valid.len()
+        )
+    };
+    Err(Error::new(ErrorKind::Signature, message))
+}
+
+/// Sorts every signature into valid, invalid or untrusted, counting each key once.
+pub fn tally(
+    context: &[u8],
+    document: &[u8],
+    signatures: &[SignatureEntry],
+    keys: &TrustedKeys,
+) -> SignatureReport {
+    let (mut valid, mut invalid, mut untrusted) =
+        (BTreeSet::new(), BTreeSet::new(), BTreeSet::new());
+    for sig in signatures {
+        match keys.get(&sig.key_id) {
+            Some(key) if key.verify(context, document, &sig.signature) => {
+                valid.insert(sig.key_id);
+            }
+            Some(_) => {
+                invalid.insert(sig.key_id);
+            }
+            None => {
+                untrusted.insert(sig.key_id);
+            }
+        }
+    }
+    // A key that made one good and one bad signature still counts as valid once.
+    let invalid = invalid.difference(&valid).copied().collect();
+    SignatureReport {
+        valid: valid.into_iter().collect(),
+        invalid,
+        untrusted: untrusted.into_iter().collect(),
+    }
+}

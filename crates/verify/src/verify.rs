@@ -1,0 +1,358 @@
+//! The verifier: the checks a bundle must pass, in the order that keeps untrusted bytes away
+//! from anything large or complex, and the [`VerifiedBundle`] that proves they passed.
+//!
+//! Order: outer size cap; layout with capped manifest and signatures; signature by a trusted
+//! key over the exact manifest bytes; strict manifest parse; the app's policy; the compressed
+//! payload's SHA-256. Only then may the payload be decompressed (see [`crate::unpack`]), and
+//! its files are checked against their own digests as they stream out.
+
+use std::fmt;
+use std::fs::File;
+use std::io::{Read, Seek, SeekFrom};
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+use semver::Version;
+
+use crate::bundle::{self, Layout};
+use crate::digest::Hasher;
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::context;
+use crate::keys::{KeyId, TrustedKeys};
+use crate::manifest::Manifest;
+use crate::signature::{SignatureReport, Signatures, check_signatures};
+
+/// The largest bundle file accepted unless the app sets its own limit.
+pub const DEFAULT_MAX_BUNDLE_BYTES: u64 = 1024 * 1024 * 1024;
+/// The most bytes a bundle may unpack to unless the app sets its own limit.
+pub const DEFAULT_MAX_UNPACKED_BYTES: u64 = 4 * 1024 * 1024 * 1024;
+
+/// Which long-running step a progress report is about.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum Stage {
+    /// Hashing the compressed payload.
+    HashPayload,
+    /// Decompressing and checking (and possibly writing) the payload's files.
+    Unpack,
+}
+
+/// A progress report: `done` of `total` bytes of `stage`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Progress {
+    /// The step.
+    pub stage: Stage,
+    /// Bytes done so far.
+    pub done: u64,
+    /// Bytes the step will take in all.
+    pub total: u64,
+}
+
+/// A callback for progress reports.
+pub type ProgressFn = Arc<dyn Fn(Progress) + Send + Sync>;
+
+/// What the app accepts. Trusted keys and the app's own version are required; everything
+/// else has a safe default.
+#[derive(Clone)]
+pub struct Verifier {
+    keys: TrustedKeys,
+    app_version: Version,
+    threshold: usize,
+    name: Option<String>,
+    installed: Option<Version>,
+    max_bundle_bytes: u64,
+    max_unpacked_bytes: u64,
+    progress: Option<ProgressFn>,
+}
+
+impl fmt::Debug for Verifier {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("Verifier")
+            .field("keys", &self.keys)
+            .field("app_version", &self.app_version)
+            .field("threshold", &self.threshold)
+            .field("name", &self.name)
+            .field("installed", &self.installed)
+            .field("max_bundle_bytes", &self.max_bundle_bytes)
+            .field("max_unpacked_bytes", &self.max_unpacked_bytes)
+            .finish_non_exhaustive()
+    }
+}
+
+impl Verifier {
+    /// A verifier that accepts bundles signed by one of `keys` whose app-version range
+    /// contains `app_version`. Refuses an empty key set: nothing could ever verify.
+    pub fn new(keys: TrustedKeys, app_version: Version) -> Result<Self> {
+        if keys.is_empty() {
+            return Err(Error::new(
+                ErrorKind::Key,
+                "no trusted keys given; a verifier needs at least one public key to check signatures against",
+            ));
+        }
+        Ok(Verifier {
+            keys,
+            app_version,
+            threshold: 1,
+            name: None,
+            installed: None,
+            max_bundle_bytes: DEFAULT_MAX_BUNDLE_BYTES,
+            max_unpacked_bytes: DEFAULT_MAX_UNPACKED_BYTES,
+            progress: None,
+        })
+    }
+
+    /// Accept only bundles with this name (the model line the app runs).
+    pub fn require_name(mut self, name: impl Into<String>) -> Self {
+        self.name = Some(name.into());
+        self
+    }
+
+    /// The version installed now: only a strictly newer bundle is accepted (SemVer
+    /// precedence, so build metadata alone never makes a bundle newer).
+    pub fn installed(mut self, version: Version) -> Self {
+        self.installed = Some(version);
+        self
+    }
+
+    /// The largest bundle file to read at all.
+    pub fn max_bundle_bytes(mut self, bytes: u64) -> Self {
+        self.max_bundle_bytes = bytes;
+        self
+    }
+
+    /// The most bytes the model and labels may take once unpacked.
+    pub fn max_unpacked_bytes(mut self, bytes: u64) -> Self {
+        self.max_unpacked_bytes = bytes;
+        self
+    }
+
+    /// Calls `progress` during the long steps (hashing, unpacking).
+    pub fn on_progress(mut self, progress: ProgressFn) -> Self {
+        self.progress = Some(progress);
+        self
+    }
+
+    /// The trusted keys.
+    pub fn keys(&self) -> &TrustedKeys {
+        &self.keys
+    }
+
+    /// Opens and verifies the bundle at `path`.
+    pub fn verify_path(&self, path: &Path) -> Result<VerifiedBundle> {
+        let file = File::open(path)
+            .map_err(|e| Error::io(format!("cannot open bundle {}", path.display()), e))?;
+        self.verify_file(file)
+    }
+
+    /// Verifies an open bundle file. The file stays open inside the result, so what is
+    /// unpacked later is the file that was verified, even if the path is replaced meanwhile.
+    pub fn verify_file(&self, mut file: File) -> Result<VerifiedBundle> {
+        let file_len = file
+            .metadata()
+            .map_err(|e| Error::io("cannot read the bundle's size", e))?
+            .len();
+        if file_len > self.max_bundle_bytes {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "bundle is {file_len} bytes, over this app's limit of {} bytes",
+                    self.max_bundle_bytes
+                ),
+            ));
+        }
+        let layout = bundle::read_layout(&mut file, file_len)?;
+        let signatures = Signatures::from_json(&layout.signatures)?;
+        let report = check_signatures(
+            "bundle",
+            context::MANIFEST,
+            &layout.manifest,
+            &signatures.signatures,
+            &self.keys,
+            self.threshold,
+        )?;
+        let manifest = Manifest::from_json(&layout.manifest)?;
+        self.check_policy(&manifest)?;
+        check_payload_digest(&mut file, &layout, &manifest, self.progress.as_ref())?;
+        Ok(VerifiedBundle {
+            file,
+            layout,
+            manifest,
+            report,
+            progress: self.progress.clone(),
+        })
+    }
+
+    fn check_policy(&self, m: &Manifest) -> Result<()> {
+        let refuse = |message: String| Err(Error::new(ErrorKind::Policy, message));
+        if let Some(name) = &self.name {
+            if &m.name != name {
+                return refuse(format!(
+                    "bundle is named '{}' but this app accepts only '{name}'",
+                    m.name
+                ));
+            }
+        }
+        if let Some(installed) = &self.installed {
+            if m.version.cmp_precedence(installed) != std::cmp::Ordering::Greater {
+                return refuse(format!(
+                    "bundle version {} is not newer than the installed version {installed}; \
+                     refusing a downgrade or reinstall",
+                    m.version
+                ));
+            }
+        }
+        if !m.requires_app.matches(&self.app_version) {
+            return refuse(format!(
+                "bundle requires app version {} but this app is {}",
+                m.requires_app, self.app_version
+            ));
+        }
+        if m.files_len() > self.max_unpacked_bytes {
+            return refuse(format!(
+                "bundle unpacks to {} bytes, over this app's limit of {} bytes",
+                m.files_len(),
+                self.max_unpacked_bytes
+            ));
+        }
+        Ok(())
+    }
+}
+
+/// Streams the compressed payload through SHA-256, reading exactly its declared size.
+fn check_payload_digest(
+    file: &mut File,
+    layout: &Layout,
+    manifest: &Manifest,
+    progress: Option<&ProgressFn>,
+) -> Result<()> {
+    let declared = &manifest.payload;
+    if layout.payload_len != declared.size {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "payload is {} bytes but the manifest declares {} bytes",
+                layout.payload_len, declared.size
+            ),
+        ));
+    }
+    file.seek(SeekFrom::Start(layout.payload_offset))
+        .map_err(|e| Error::io("cannot read the payload", e))?;
+    let mut reader = file.take(declared.size);
+    let mut hasher = Hasher::new();
+    let mut buf = vec![0u8; 256 * 1024];
+    loop {
+        let n = match reader.read(&mut buf) {
+            Ok(0) => break,
+            Ok(n) => n,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+            Err(e) => return Err(Error::io("cannot read the payload", e)),
+        };
+        hasher.update(&buf[..n]);
+        if let Some(report) = progress {
+            report(Progress {
+                stage: Stage::HashPayload,
+                done: hasher.len(),
+                total: declared.size,
+            });
+        }
+    }
+    if hasher.len() != declared.size {
+        return Err(Error::new(
+            ErrorKind::Malformed,
+            format!(
+                "payload is truncated: read {} of {} bytes",
+                hasher.len(),
+                declared.size
+            ),
+        ));
+    }
+    let found = hasher.finish();
+    if found != declared.sha256 {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "payload digest mismatch: manifest declares sha256 {}, the bundle holds {found}",
+                declared.sha256
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// A bundle that passed every check before decompression: signed by trusted keys, manifest
+/// valid, allowed by the app's policy, payload digest correct. Only this crate can make one.
+pub struct VerifiedBundle {
+    pub(crate) file: File,
+    pub(crate) layout: Layout,
+    pub(crate) manifest: Manifest,
+    report: SignatureReport,
+    pub(crate) progress: Option<ProgressFn>,
+}
+
+impl fmt::Debug for VerifiedBundle {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("VerifiedBundle")
+            .field("name", &self.manifest.name)
+            .field("version", &self.manifest.version)
+            .field("signers", &self.report.valid)
+            .finish_non_exhaustive()
+    }
+}
+
+impl VerifiedBundle {
+    /// The verified manifest.
+    pub fn manifest(&self) -> &Manifest {
+        &self.manifest
+    }
+
+    /// The manifest's exact signed bytes.
+    pub fn manifest_bytes(&self) -> &[u8] {
+        &self.layout.manifest
+    }
+
+    /// The trusted keys whose signatures verified.
+    pub fn signers(&self) -> &[KeyId] {
+        &self.report.valid
+    }
+
+    /// The whole signature check, including signatures that did not count.
+    pub fn signature_report(&self) -> &SignatureReport {
+        &self.report
+    }
+
+    /// Decompresses the payload and checks every file's size and digest without writing
+    /// anything. Memory stays bounded whatever the model's size.
+    pub fn check_contents(&mut self) -> Result<Vec<String>> {
+        crate::unpack::stream(self, None)
+    }
+
+    /// Unpacks the model and labels into the new directory `dest`, which must not exist.
+    /// Files are written into a fresh staging directory beside it and checked as they stream;
+    /// only when every check passed is the staging directory renamed to `dest`. On any
+    /// failure nothing is left behind.
+    pub fn unpack(mut self, dest: &Path) -> Result<Unpacked> {
+        let labels = crate::unpack::unpack_to(&mut self, dest)?;
+        Ok(Unpacked {
+            model: dest.join(&self.manifest.model().path),
+            labels_path: dest.join(&self.manifest.labels().path),
+            dir: dest.to_path_buf(),
+            labels,
+            manifest: self.manifest,
+        })
+    }
+}
+
+/// A verified bundle's files, unpacked and checked.
+#[derive(Debug, Clone)]
+pub struct Unpacked {
+    /// The directory holding the files.
+    pub dir: PathBuf,
+    /// The model file.
+    pub model: PathBuf,
+    /// The label list file.
+    pub labels_path: PathBuf,
+    /// The labels, in output-index order.
+    pub labels: Vec<String>,
+    /// The verified manifest.
+    pub manifest: Manifest,
+}
