@@ -7,9 +7,12 @@
 use std::fs::File;
 use std::io::{self, Read, Seek, SeekFrom, Write};
 
+use crate::digest::Hasher;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{entry, limit};
+use crate::manifest::Manifest;
 use crate::tar;
+use crate::verify::{Progress, ProgressFn, Stage};
 
 const ARCHIVE: &str = "bundle";
 
@@ -121,5 +124,67 @@ pub fn write_bundle<W: Write, R: Read>(
     }
     out.write_all(&zeros[..tar::padding(payload_len) as usize])?;
     out.write_all(&tar::END_OF_ARCHIVE)?;
+    Ok(())
+}
+
+/// Streams the compressed payload through SHA-256, reading exactly the size the manifest
+/// declares, and compares it with the manifest's digest.
+pub fn check_payload(
+    file: &mut File,
+    layout: &Layout,
+    manifest: &Manifest,
+    progress: Option<&ProgressFn>,
+) -> Result<()> {
+    let declared = &manifest.payload;
+    if layout.payload_len != declared.size {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "payload is {} bytes but the manifest declares {} bytes",
+                layout.payload_len, declared.size
+            ),
+        ));
+    }
+    file.seek(SeekFrom::Start(layout.payload_offset))
+        .map_err(|e| Error::io("cannot read the payload", e))?;
+    let mut reader = file.take(declared.size);
+    let mut hasher = Hasher::new();
+    let mut buf = vec![0u8; 256 * 1024];
+    loop {
+        let n = match reader.read(&mut buf) {
+            Ok(0) => break,
+            Ok(n) => n,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+            Err(e) => return Err(Error::io("cannot read the payload", e)),
+        };
+        hasher.update(&buf[..n]);
+        if let Some(report) = progress {
+            report(Progress {
+                stage: Stage::HashPayload,
+                done: hasher.len(),
+                total: declared.size,
+            });
+        }
+    }
+    if hasher.len() != declared.size {
+        return Err(Error::new(
+            ErrorKind::Malformed,
+            format!(
+                "payload is truncated: read {} of {} bytes",
+                hasher.len(),
+                declared.size
+            ),
+        ));
+    }
+    let found = hasher.finish();
+    if found != declared.sha256 {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "payload digest mismatch: manifest declares sha256 {}, the bundle holds {found}",
+                declared.sha256
+            ),
+        ));
+    }
     Ok(())
 }

@@ -8,14 +8,12 @@
 
 use std::fmt;
 use std::fs::File;
-use std::io::{Read, Seek, SeekFrom};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use semver::Version;
 
 use crate::bundle::{self, Layout};
-use crate::digest::Hasher;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::context;
 use crate::keys::{KeyId, TrustedKeys};
@@ -56,7 +54,7 @@ pub type ProgressFn = Arc<dyn Fn(Progress) + Send + Sync>;
 #[derive(Clone)]
 pub struct Verifier {
     keys: TrustedKeys,
-    app_version: Version,
+    app_version: Option<Version>,
     threshold: usize,
     name: Option<String>,
     installed: Option<Version>,
@@ -91,7 +89,7 @@ impl Verifier {
         }
         Ok(Verifier {
             keys,
-            app_version,
+            app_version: Some(app_version),
             threshold: 1,
             name: None,
             installed: None,
@@ -99,6 +97,21 @@ impl Verifier {
             max_unpacked_bytes: DEFAULT_MAX_UNPACKED_BYTES,
             progress: None,
         })
+    }
+
+    /// A verifier for release-side tools that check a bundle outside any app: every check
+    /// of [`Verifier::new`] except the app-version range, which is not checked at all.
+    /// Never use this on a device: an app must always state its own version.
+    pub fn dangerous_without_app_version(keys: TrustedKeys) -> Result<Self> {
+        let mut verifier = Self::new(keys, Version::new(0, 0, 0))?;
+        verifier.app_version = None;
+        Ok(verifier)
+    }
+
+    /// Whether this verifier checks the app-version range (false only for
+    /// [`Verifier::dangerous_without_app_version`]).
+    pub fn checks_app_version(&self) -> bool {
+        self.app_version.is_some()
     }
 
     /// Accept only bundles with this name (the model line the app runs).
@@ -172,7 +185,7 @@ impl Verifier {
         )?;
         let manifest = Manifest::from_json(&layout.manifest)?;
         self.check_policy(&manifest)?;
-        check_payload_digest(&mut file, &layout, &manifest, self.progress.as_ref())?;
+        bundle::check_payload(&mut file, &layout, &manifest, self.progress.as_ref())?;
         Ok(VerifiedBundle {
             file,
             layout,
@@ -201,11 +214,13 @@ impl Verifier {
                 ));
             }
         }
-        if !m.requires_app.matches(&self.app_version) {
-            return refuse(format!(
-                "bundle requires app version {} but this app is {}",
-                m.requires_app, self.app_version
-            ));
+        if let Some(app) = &self.app_version {
+            if !m.requires_app.matches(app) {
+                return refuse(format!(
+                    "bundle requires app version {} but this app is {app}",
+                    m.requires_app
+                ));
+            }
         }
         if m.files_len() > self.max_unpacked_bytes {
             return refuse(format!(
@@ -216,67 +231,6 @@ impl Verifier {
         }
         Ok(())
     }
-}
-
-/// Streams the compressed payload through SHA-256, reading exactly its declared size.
-fn check_payload_digest(
-    file: &mut File,
-    layout: &Layout,
-    manifest: &Manifest,
-    progress: Option<&ProgressFn>,
-) -> Result<()> {
-    let declared = &manifest.payload;
-    if layout.payload_len != declared.size {
-        return Err(Error::new(
-            ErrorKind::Digest,
-            format!(
-                "payload is {} bytes but the manifest declares {} bytes",
-                layout.payload_len, declared.size
-            ),
-        ));
-    }
-    file.seek(SeekFrom::Start(layout.payload_offset))
-        .map_err(|e| Error::io("cannot read the payload", e))?;
-    let mut reader = file.take(declared.size);
-    let mut hasher = Hasher::new();
-    let mut buf = vec![0u8; 256 * 1024];
-    loop {
-        let n = match reader.read(&mut buf) {
-            Ok(0) => break,
-            Ok(n) => n,
-            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
-            Err(e) => return Err(Error::io("cannot read the payload", e)),
-        };
-        hasher.update(&buf[..n]);
-        if let Some(report) = progress {
-            report(Progress {
-                stage: Stage::HashPayload,
-                done: hasher.len(),
-                total: declared.size,
-            });
-        }
-    }
-    if hasher.len() != declared.size {
-        return Err(Error::new(
-            ErrorKind::Malformed,
-            format!(
-                "payload is truncated: read {} of {} bytes",
-                hasher.len(),
-                declared.size
-            ),
-        ));
-    }
-    let found = hasher.finish();
-    if found != declared.sha256 {
-        return Err(Error::new(
-            ErrorKind::Digest,
-            format!(
-                "payload digest mismatch: manifest declares sha256 {}, the bundle holds {found}",
-                declared.sha256
-            ),
-        ));
-    }
-    Ok(())
 }
 
 /// A bundle that passed every check before decompression: signed by trusted keys, manifest

@@ -1,0 +1,88 @@
+//! `ampoule inspect`: what a bundle holds and who signed it, without unpacking it.
+
+use std::fs::File;
+
+use ampoule_verify::bundle::{check_payload, read_layout};
+use ampoule_verify::format::context;
+use ampoule_verify::signature::{Signatures, tally};
+use ampoule_verify::{Digest, Manifest};
+use anyhow::{Context, Result};
+use serde_json::json;
+
+use crate::cli::InspectArgs;
+use crate::cmd::load_trust;
+use crate::output::Output;
+
+pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
+    let keys = load_trust(&args.trust)?;
+    let mut file = File::open(&args.bundle)
+        .with_context(|| format!("cannot open bundle {}", args.bundle.display()))?;
+    let len = file.metadata()?.len();
+    let layout = read_layout(&mut file, len)
+        .with_context(|| format!("{} is not a well-formed bundle", args.bundle.display()))?;
+    let manifest = Manifest::from_json(&layout.manifest)?;
+    let signatures = Signatures::from_json(&layout.signatures)?;
+    let report = tally(context::MANIFEST, &layout.manifest, &signatures.signatures, &keys);
+    let payload_ok = check_payload(&mut file, &layout, &manifest, None);
+    let m = &manifest;
+    let mut human = format!(
+        "bundle   {}\nname     {}\nversion  {}\ncreated  {}\nrequires app {}\nsize     {} bytes (manifest {} bytes, sha256 {})\npayload  {} bytes zstd, sha256 {} ({})\n",
+        args.bundle.display(),
+        m.name,
+        m.version,
+        m.created,
+        m.requires_app,
+        layout.file_len,
+        layout.manifest.len(),
+        Digest::of(&layout.manifest),
+        m.payload.size,
+        m.payload.sha256,
+        match &payload_ok {
+            Ok(()) => "matches".to_string(),
+            Err(e) => format!("DOES NOT MATCH: {e}"),
+        },
+    );
+    for f in &m.files {
+        human.push_str(&format!(
+            "file     {:<16} {:>12} bytes  sha256 {}  ({:?})\n",
+            f.path, f.size, f.sha256, f.role
+        ));
+    }
+    human.push_str(&format!("labels   {}\n", m.label_count));
+    if signatures.signatures.is_empty() {
+        human.push_str("signers  none: this bundle is UNSIGNED\n");
+    }
+    for s in &signatures.signatures {
+        let status = if keys.is_empty() {
+            "not checked (no --trust given)"
+        } else if report.valid.contains(&s.key_id) {
+            "valid, trusted"
+        } else if report.invalid.contains(&s.key_id) {
+            "INVALID for this manifest"
+        } else {
+            "key not in --trust"
+        };
+        human.push_str(&format!("signer   {}  {status}\n", s.key_id));
+    }
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "bundle": args.bundle,
+            "size": layout.file_len,
+            "manifest_sha256": Digest::of(&layout.manifest),
+            "payload_matches": payload_ok.is_ok(),
+            "payload_error": payload_ok.err().map(|e| e.to_string()),
+            "signatures": signatures.signatures.iter().map(|s| {
+                json!({
+                    "key_id": s.key_id.to_string(),
+                    "status": if keys.is_empty() { "unchecked" }
+                        else if report.valid.contains(&s.key_id) { "valid" }
+                        else if report.invalid.contains(&s.key_id) { "invalid" }
+                        else { "untrusted" },
+                })
+            }).collect::<Vec<_>>(),
+            "manifest": m,
+        }),
+    )
+}

@@ -1,0 +1,46 @@
+//! One module per subcommand: each turns its raw arguments into checked settings, does the
+//! work through `ampoule_verify` and `pack`, and reports through `Output`.
+
+pub mod inspect;
+pub mod keygen;
+pub mod pack;
+pub mod sign;
+pub mod verify;
+
+use std::path::{Path, PathBuf};
+
+use ampoule_verify::TrustedKeys;
+use anyhow::{Context, Result};
+use semver::Version;
+
+use crate::cli::PassphraseArgs;
+use crate::keyfile::{self, PassphraseSource};
+
+/// Loads every `--trust` key; any unreadable or weak key stops the command.
+pub fn load_trust(paths: &[PathBuf]) -> Result<TrustedKeys> {
+    let mut keys = TrustedKeys::new();
+    for path in paths {
+        keys.add(keyfile::read_public_key(path)?);
+    }
+    Ok(keys)
+}
+
+/// Where the passphrase of an encrypted key comes from: `--passphrase-env`, else the terminal.
+pub fn passphrase_source(args: &PassphraseArgs) -> PassphraseSource {
+    match &args.passphrase_env {
+        Some(var) => PassphraseSource::Env(var.clone()),
+        None => PassphraseSource::Prompt,
+    }
+}
+
+/// Parses a SemVer 2.0.0 version given on the command line.
+pub fn parse_version(text: &str, flag: &str) -> Result<Version> {
+    Version::parse(text).with_context(|| {
+        format!("{flag} '{text}' is not a Semantic Versioning 2.0.0 version such as 1.2.0 or 2.0.0-rc.1")
+    })
+}
+
+/// The path shown for a file in messages.
+pub fn shown(path: &Path) -> String {
+    path.display().to_string()
+}

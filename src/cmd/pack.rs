@@ -1,0 +1,130 @@
+//! `ampoule pack`: validates the inputs once, then writes the bundle in one pass.
+
+use std::io::Read;
+use std::path::Path;
+
+use ampoule_verify::format::limit;
+use ampoule_verify::manifest::{check_name, model_path};
+use ampoule_verify::{Timestamp, labels};
+use anyhow::{Context, Result, bail};
+use semver::VersionReq;
+use serde_json::json;
+
+use crate::cli::PackArgs;
+use crate::cmd::{parse_version, passphrase_source};
+use crate::keyfile;
+use crate::output::Output;
+use crate::pack::{PackSpec, pack};
+
+/// The creation time: `--created`, else `SOURCE_DATE_EPOCH` (reproducible-builds.org's
+/// convention for build timestamps), else now.
+pub fn creation_time(flag: Option<&str>) -> Result<Timestamp> {
+    let (text, source) = match flag {
+        Some(t) => (t.to_string(), "--created"),
+        None => match std::env::var("SOURCE_DATE_EPOCH") {
+            Ok(t) => (t, "SOURCE_DATE_EPOCH"),
+            Err(_) => return Ok(Timestamp::now()),
+        },
+    };
+    if !text.is_empty() && text.bytes().all(|b| b.is_ascii_digit()) {
+        return text
+            .parse::<u64>()
+            .ok()
+            .and_then(Timestamp::from_unix)
+            .with_context(|| format!("{source} '{text}' is not a Unix time up to year 9999"));
+    }
+    text.parse::<Timestamp>()
+        .with_context(|| format!("{source} '{text}' is not Unix seconds or a UTC time like 2026-12-01T08:00:00Z"))
+}
+
+/// Reads a label file, refusing one too large to be a label list before reading it whole.
+pub fn read_labels(path: &Path) -> Result<Vec<String>> {
+    let file = std::fs::File::open(path)
+        .with_context(|| format!("cannot open label list {}", path.display()))?;
+    let mut bytes = Vec::new();
+    file.take(limit::LABELS_FILE_BYTES + 1)
+        .read_to_end(&mut bytes)
+        .with_context(|| format!("cannot read label list {}", path.display()))?;
+    if bytes.len() as u64 > limit::LABELS_FILE_BYTES {
+        bail!(
+            "label list {} is over {} bytes; that is not a label list",
+            path.display(),
+            limit::LABELS_FILE_BYTES
+        );
+    }
+    labels::parse_labels(&bytes).with_context(|| format!("label list {} refused", path.display()))
+}
+
+/// The model's name inside the payload, from its file extension (`bin` when it has none).
+fn inner_model_path(model: &Path) -> Result<String> {
+    let ext = model
+        .extension()
+        .map(|e| e.to_string_lossy().to_ascii_lowercase())
+        .unwrap_or_else(|| "bin".into());
+    model_path(&ext).with_context(|| {
+        format!(
+            "model file extension '{ext}' is not usable: rename the file to end in 1 to {} ASCII letters or digits (like .onnx)",
+            limit::MODEL_EXTENSION_CHARS
+        )
+    })
+}
+
+pub fn run(args: PackArgs, out: &Output) -> Result<()> {
+    check_name(&args.name)?;
+    let version = parse_version(&args.version, "--version")?;
+    let requires_app = VersionReq::parse(&args.requires_app).with_context(|| {
+        format!(
+            "--requires-app '{}' is not a SemVer requirement such as '>=2.0.0, <3.0.0'",
+            args.requires_app
+        )
+    })?;
+    let created = creation_time(args.created.as_deref())?;
+    let labels = read_labels(&args.labels)?;
+    let spec = PackSpec {
+        model_path: inner_model_path(&args.model)?,
+        model: args.model,
+        labels,
+        name: args.name,
+        version,
+        requires_app,
+        created,
+    };
+    let key = match &args.key {
+        Some(path) => Some(keyfile::read_secret_key(path, &passphrase_source(&args.passphrase))?),
+        None => None,
+    };
+    let model_len = std::fs::metadata(&spec.model)
+        .with_context(|| format!("cannot read model {}", spec.model.display()))?
+        .len();
+    let bar = out.bar(model_len, "packing");
+    let packed = pack(&spec, key.as_ref(), &args.out, &bar)?;
+    bar.finish_and_clear();
+    let m = &packed.manifest;
+    let mut human = format!(
+        "packed {} {} -> {} ({} bytes; model {} bytes, {} labels, payload {} bytes)\n",
+        m.name,
+        m.version,
+        args.out.display(),
+        packed.bundle_len,
+        m.model().size,
+        m.label_count,
+        m.payload.size
+    );
+    match packed.signers.first() {
+        Some(id) => human.push_str(&format!("signed by key {id}\n")),
+        None => human.push_str(
+            "UNSIGNED: no --key was given, so every device will refuse this bundle until it is signed with 'ampoule sign'\n",
+        ),
+    }
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "bundle": args.out,
+            "bundle_size": packed.bundle_len,
+            "signed": !packed.signers.is_empty(),
+            "signers": packed.signers.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
+            "manifest": m,
+        }),
+    )
+}

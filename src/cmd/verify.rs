@@ -1,0 +1,79 @@
+//! `ampoule verify`: the device's checks, run from the command line, with an optional unpack.
+
+use ampoule_verify::{DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Verifier};
+use anyhow::Result;
+use serde_json::json;
+
+use crate::cli::VerifyArgs;
+use crate::cmd::{load_trust, parse_version};
+use crate::output::Output;
+
+pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
+    let keys = load_trust(&args.trust)?;
+    let mut verifier = match &args.app_version {
+        Some(v) => Verifier::new(keys, parse_version(v, "--app-version")?)?,
+        None => Verifier::dangerous_without_app_version(keys)?,
+    };
+    if let Some(v) = &args.installed {
+        verifier = verifier.installed(parse_version(v, "--installed")?);
+    }
+    if let Some(name) = &args.name {
+        verifier = verifier.require_name(name.clone());
+    }
+    let (max_bundle, max_unpacked) = match args.max_size {
+        Some(n) => (n, n),
+        None => (DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES),
+    };
+    verifier = verifier
+        .max_bundle_bytes(max_bundle)
+        .max_unpacked_bytes(max_unpacked)
+        .on_progress(out.verify_progress());
+    let mut verified = verifier.verify_path(&args.bundle)?;
+    let manifest = verified.manifest().clone();
+    let signers: Vec<String> = verified.signers().iter().map(|k| k.to_string()).collect();
+    let report = verified.signature_report().clone();
+    let (labels, extracted) = match &args.extract {
+        Some(dir) => {
+            let unpacked = verified.unpack(dir)?;
+            (unpacked.labels, Some(unpacked.dir))
+        }
+        None => (verified.check_contents()?, None),
+    };
+    let mut human = format!(
+        "OK {} {}: signed by {}; payload and {} files match their digests; {} labels\n",
+        manifest.name,
+        manifest.version,
+        signers.join(", "),
+        manifest.files.len(),
+        labels.len()
+    );
+    match &args.app_version {
+        Some(v) => human.push_str(&format!("app {v} is within {}\n", manifest.requires_app)),
+        None => human.push_str(&format!(
+            "app version not checked (no --app-version): the bundle requires {}\n",
+            manifest.requires_app
+        )),
+    }
+    if !report.untrusted.is_empty() || !report.invalid.is_empty() {
+        human.push_str(&format!("other signatures, not counted: {report}\n"));
+    }
+    if let Some(dir) = &extracted {
+        human.push_str(&format!("unpacked into {}\n", dir.display()));
+    }
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "name": manifest.name,
+            "version": manifest.version.to_string(),
+            "signers": signers,
+            "untrusted_signers": report.untrusted.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
+            "invalid_signers": report.invalid.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
+            "requires_app": manifest.requires_app.to_string(),
+            "app_version_checked": args.app_version.is_some(),
+            "labels": labels,
+            "extracted_to": extracted,
+            "manifest": manifest,
+        }),
+    )
+}

@@ -1,0 +1,111 @@
+//! How the CLI talks: human text or `--json` on stdout, errors once on stderr, and progress
+//! bars on stderr only when it is a terminal and the work is long.
+
+use std::io::{IsTerminal, Write};
+use std::sync::{Arc, Mutex};
+
+use ampoule_verify::{Progress, ProgressFn, Stage};
+use indicatif::{ProgressBar, ProgressStyle};
+use serde_json::Value;
+
+/// Work below this many bytes finishes too fast for a progress bar to help.
+const PROGRESS_MIN_BYTES: u64 = 32 * 1024 * 1024;
+
+/// The chosen output mode.
+pub struct Output {
+    json: bool,
+}
+
+impl Output {
+    pub fn new(json: bool) -> Self {
+        Output { json }
+    }
+
+    pub fn json(&self) -> bool {
+        self.json
+    }
+
+    /// Prints a command's result: `human` as text, or `value` as one JSON document.
+    pub fn result(&self, human: &str, value: Value) -> anyhow::Result<()> {
+        let mut stdout = std::io::stdout().lock();
+        if self.json {
+            serde_json::to_writer_pretty(&mut stdout, &value)?;
+            writeln!(stdout)?;
+        } else {
+            stdout.write_all(human.as_bytes())?;
+            if !human.ends_with('\n') {
+                writeln!(stdout)?;
+            }
+        }
+        stdout.flush()?;
+        Ok(())
+    }
+
+    /// A note for people (warnings, hints) on stderr, never mixed into JSON.
+    pub fn note(&self, text: &str) {
+        eprintln!("ampoule: {text}");
+    }
+
+    /// Prints an error chain once, prefixed with the program name; with `--json` also a JSON
+    /// error document on stdout so scripts can read it.
+    pub fn error(&self, err: &anyhow::Error, exit_code: u8) {
+        let text = format!("{err:#}");
+        eprintln!("ampoule: error: {text}");
+        if self.json {
+            let kind = err
+                .chain()
+                .find_map(|c| c.downcast_ref::<ampoule_verify::Error>())
+                .map(|e| format!("{:?}", e.kind()).to_lowercase());
+            let doc = serde_json::json!({
+                "ok": false,
+                "exit_code": exit_code,
+                "error": text,
+                "kind": kind,
+            });
+            let _ = self.result("", doc);
+        }
+    }
+
+    /// A progress bar for `total` bytes of work, or a hidden one when stderr is not a
+    /// terminal, `--json` is on, or the work is short.
+    pub fn bar(&self, total: u64, message: &str) -> ProgressBar {
+        if self.json || total < PROGRESS_MIN_BYTES || !std::io::stderr().is_terminal() {
+            return ProgressBar::hidden();
+        }
+        let bar = ProgressBar::new(total);
+        bar.set_style(
+            ProgressStyle::with_template(
+                "{msg:>12} [{bar:32}] {bytes}/{total_bytes} {bytes_per_sec} eta {eta}",
+            )
+            .expect("the progress template is a constant that parses")
+            .progress_chars("=> "),
+        );
+        bar.set_message(message.to_string());
+        bar
+    }
+
+    /// A progress callback for the verifier: one bar per stage, made on the stage's first
+    /// report (when its size is known) and finished when the stage completes.
+    pub fn verify_progress(&self) -> ProgressFn {
+        let json = self.json;
+        let bars: Mutex<Vec<(Stage, ProgressBar)>> = Mutex::new(Vec::new());
+        Arc::new(move |p: Progress| {
+            let Ok(mut bars) = bars.lock() else { return };
+            let bar = match bars.iter().position(|(s, _)| *s == p.stage) {
+                Some(i) => &bars[i].1,
+                None => {
+                    let label = match p.stage {
+                        Stage::HashPayload => "hashing",
+                        _ => "checking",
+                    };
+                    bars.push((p.stage, Output { json }.bar(p.total, label)));
+                    &bars[bars.len() - 1].1
+                }
+            };
+            bar.set_position(p.done);
+            if p.done >= p.total {
+                bar.finish_and_clear();
+            }
+        })
+    }
+}
