@@ -18,8 +18,7 @@ Exit codes:
     about = "Pack, sign and verify machine-learning model bundles for devices",
     long_about = "Pack a model file and its label list into a versioned, signed, compressed \
 bundle (.ampoule), and check bundles the way a device will before it swaps a model in.",
-    after_help = EXIT_CODES,
-    propagate_version = true
+    after_help = EXIT_CODES
 )]
 pub struct Cli {
     /// Print machine-readable JSON on stdout instead of text.

@@ -4,41 +4,12 @@
 //! validates them once into its own settings and does the work. Errors are printed once,
 //! prefixed with the program name, and mapped to the documented exit codes.
 
-mod cli;
-mod cmd;
-mod demo;
-mod keyfile;
-mod output;
-mod pack;
-
 use std::process::ExitCode;
 
+use ampoule::cli::{Cli, Command};
+use ampoule::output::Output;
+use ampoule::{Refused, cmd, demo, exit};
 use clap::Parser;
-
-use crate::cli::{Cli, Command};
-use crate::output::Output;
-
-/// Exit codes, documented in `--help` and the README.
-pub mod exit {
-    /// Success.
-    pub const OK: u8 = 0;
-    /// A bundle (or key, or feed) was refused: verification or policy said no.
-    pub const REFUSED: u8 = 1;
-    /// Wrong usage, or a file could not be read or written.
-    pub const USAGE_OR_IO: u8 = 2;
-}
-
-/// A refusal that did not come from `ampoule-verify` but must exit like one.
-#[derive(Debug)]
-pub struct Refused(pub String);
-
-impl std::fmt::Display for Refused {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str(&self.0)
-    }
-}
-
-impl std::error::Error for Refused {}
 
 fn exit_code_of(err: &anyhow::Error) -> u8 {
     for cause in err.chain() {
@@ -67,7 +38,11 @@ fn main() -> ExitCode {
     let cli = match Cli::try_parse() {
         Ok(cli) => cli,
         Err(e) => {
-            let code = if e.use_stderr() { exit::USAGE_OR_IO } else { exit::OK };
+            let code = if e.use_stderr() {
+                exit::USAGE_OR_IO
+            } else {
+                exit::OK
+            };
             let _ = e.print();
             return ExitCode::from(code);
         }

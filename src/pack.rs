@@ -135,21 +135,29 @@ fn write_payload(
             Err(e) => return Err(e).context(format!("cannot read {}", spec.model.display())),
         };
         if model_hash.len() + n as u64 > model_len {
-            bail!("{} grew while it was being packed; pack it again when it is no longer being written", spec.model.display());
+            bail!(
+                "{} grew while it was being packed; pack it again when it is no longer being written",
+                spec.model.display()
+            );
         }
         model_hash.update(&buf[..n]);
         enc.write_all(&buf[..n])?;
         bar.set_position(model_hash.len());
     }
     if model_hash.len() != model_len {
-        bail!("{} shrank while it was being packed; pack it again when it is no longer being written", spec.model.display());
+        bail!(
+            "{} shrank while it was being packed; pack it again when it is no longer being written",
+            spec.model.display()
+        );
     }
     enc.write_all(&zeros[..tar::padding(model_len) as usize])?;
     enc.write_all(&tar::header(entry::LABELS, labels_file.len() as u64, mtime))?;
     enc.write_all(labels_file)?;
     enc.write_all(&zeros[..tar::padding(labels_file.len() as u64) as usize])?;
     enc.write_all(&tar::END_OF_ARCHIVE)?;
-    let mut sink = enc.finish().context("cannot finish compressing the payload")?;
+    let mut sink = enc
+        .finish()
+        .context("cannot finish compressing the payload")?;
     sink.flush()?;
     let payload_len = sink.hasher.len();
     let payload_digest = sink.hasher.finish();
@@ -164,7 +172,12 @@ fn write_payload(
 
 /// Packs `spec` into a new bundle at `out`, signed by `key` if given. The bundle appears at
 /// `out` only when it is complete; an existing file is never replaced.
-pub fn pack(spec: &PackSpec, key: Option<&SigningKey>, out: &Path, bar: &ProgressBar) -> Result<Packed> {
+pub fn pack(
+    spec: &PackSpec,
+    key: Option<&SigningKey>,
+    out: &Path,
+    bar: &ProgressBar,
+) -> Result<Packed> {
     if fs::symlink_metadata(out).is_ok() {
         bail!(
             "{} already exists; choose another output name or remove it first (nothing was written)",
@@ -210,13 +223,14 @@ pub fn pack(spec: &PackSpec, key: Option<&SigningKey>, out: &Path, bar: &Progres
     payload_file.seek(SeekFrom::Start(0))?;
     let bundle_len = write_bundle_file(
         out,
-        spec.created.unix(),
-        &manifest_bytes,
-        &signatures.to_json(),
+        &Parts {
+            mtime: spec.created.unix(),
+            manifest: &manifest_bytes,
+            signatures: &signatures.to_json(),
+            payload_len,
+        },
         payload_file,
-        payload_len,
-        false,
-        None,
+        Placement::New,
     )?;
     Ok(Packed {
         manifest,
@@ -225,27 +239,46 @@ pub fn pack(spec: &PackSpec, key: Option<&SigningKey>, out: &Path, bar: &Progres
     })
 }
 
+/// The small parts of a bundle and the length of its payload.
+pub struct Parts<'a> {
+    pub mtime: u64,
+    pub manifest: &'a [u8],
+    pub signatures: &'a [u8],
+    pub payload_len: u64,
+}
+
+/// How the finished file takes its place.
+pub enum Placement<'a> {
+    /// As a new file; an existing one is never replaced.
+    New,
+    /// Replacing an existing file, once `check` accepted the new one.
+    Replace(&'a dyn Fn(File) -> Result<()>),
+}
+
 /// Writes a complete bundle to a temporary file beside `out`, flushes it to disk and renames
-/// it into place (`replace` allows an existing `out` to be replaced atomically).
+/// it into place.
 pub fn write_bundle_file(
     out: &Path,
-    mtime: u64,
-    manifest: &[u8],
-    signatures: &[u8],
+    parts: &Parts<'_>,
     payload: &mut File,
-    payload_len: u64,
-    replace: bool,
-    check: Option<&dyn Fn(File) -> Result<()>>,
+    placement: Placement<'_>,
 ) -> Result<u64> {
     let mut temp = temp_beside(out)?;
     {
         let file = temp.as_file_mut();
-        bundle::write_bundle(file, mtime, manifest, signatures, payload, payload_len)
-            .with_context(|| format!("cannot write bundle {}", out.display()))?;
+        bundle::write_bundle(
+            file,
+            parts.mtime,
+            parts.manifest,
+            parts.signatures,
+            payload,
+            parts.payload_len,
+        )
+        .with_context(|| format!("cannot write bundle {}", out.display()))?;
         file.sync_all()
             .with_context(|| format!("cannot flush {} to disk", out.display()))?;
     }
-    if let Some(check) = check {
+    if let Placement::Replace(check) = placement {
         check(temp.reopen()?)?;
     }
     let len = temp.as_file().metadata()?.len();
@@ -255,14 +288,14 @@ pub fn write_bundle_file(
         use std::os::unix::fs::PermissionsExt;
         fs::set_permissions(temp.path(), fs::Permissions::from_mode(0o644))?;
     }
-    if replace {
+    if matches!(placement, Placement::Replace(_)) {
         temp.persist(out)
             .map_err(|e| e.error)
             .with_context(|| format!("cannot replace {}", out.display()))?;
     } else {
-        temp.persist_noclobber(out).map_err(|e| e.error).with_context(|| {
-            format!("cannot create {} (does it exist already?)", out.display())
-        })?;
+        temp.persist_noclobber(out)
+            .map_err(|e| e.error)
+            .with_context(|| format!("cannot create {} (does it exist already?)", out.display()))?;
     }
     if let Some(dir) = out.parent().filter(|p| !p.as_os_str().is_empty()) {
         File::open(dir).and_then(|d| d.sync_all()).ok();
@@ -284,12 +317,13 @@ pub fn rewrite_signatures(
     file.seek(SeekFrom::Start(layout.payload_offset))?;
     write_bundle_file(
         path,
-        manifest.created.unix(),
-        &layout.manifest,
-        &signatures.to_json(),
+        &Parts {
+            mtime: manifest.created.unix(),
+            manifest: &layout.manifest,
+            signatures: &signatures.to_json(),
+            payload_len: layout.payload_len,
+        },
         file,
-        layout.payload_len,
-        true,
-        Some(check),
+        Placement::Replace(check),
     )
 }

@@ -22,7 +22,12 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
         .with_context(|| format!("{} is not a well-formed bundle", args.bundle.display()))?;
     let manifest = Manifest::from_json(&layout.manifest)?;
     let signatures = Signatures::from_json(&layout.signatures)?;
-    let report = tally(context::MANIFEST, &layout.manifest, &signatures.signatures, &keys);
+    let report = tally(
+        context::MANIFEST,
+        &layout.manifest,
+        &signatures.signatures,
+        &keys,
+    );
     let payload_ok = check_payload(&mut file, &layout, &manifest, None);
     let m = &manifest;
     let mut human = format!(

@@ -36,7 +36,9 @@ pub fn passphrase_source(args: &PassphraseArgs) -> PassphraseSource {
 /// Parses a SemVer 2.0.0 version given on the command line.
 pub fn parse_version(text: &str, flag: &str) -> Result<Version> {
     Version::parse(text).with_context(|| {
-        format!("{flag} '{text}' is not a Semantic Versioning 2.0.0 version such as 1.2.0 or 2.0.0-rc.1")
+        format!(
+            "{flag} '{text}' is not a Semantic Versioning 2.0.0 version such as 1.2.0 or 2.0.0-rc.1"
+        )
     })
 }
 

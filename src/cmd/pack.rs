@@ -33,8 +33,9 @@ pub fn creation_time(flag: Option<&str>) -> Result<Timestamp> {
             .and_then(Timestamp::from_unix)
             .with_context(|| format!("{source} '{text}' is not a Unix time up to year 9999"));
     }
-    text.parse::<Timestamp>()
-        .with_context(|| format!("{source} '{text}' is not Unix seconds or a UTC time like 2026-12-01T08:00:00Z"))
+    text.parse::<Timestamp>().with_context(|| {
+        format!("{source} '{text}' is not Unix seconds or a UTC time like 2026-12-01T08:00:00Z")
+    })
 }
 
 /// Reads a label file, refusing one too large to be a label list before reading it whole.
@@ -90,7 +91,10 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         created,
     };
     let key = match &args.key {
-        Some(path) => Some(keyfile::read_secret_key(path, &passphrase_source(&args.passphrase))?),
+        Some(path) => Some(keyfile::read_secret_key(
+            path,
+            &passphrase_source(&args.passphrase),
+        )?),
         None => None,
     };
     let model_len = std::fs::metadata(&spec.model)

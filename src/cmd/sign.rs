@@ -41,12 +41,25 @@ pub fn run(args: SignArgs, out: &Output) -> Result<()> {
             Verifier::dangerous_without_app_version(own_key.clone())?
                 .verify_file(f)?
                 .check_contents()
-                .context("the bundle does not check out under the new signature; it was left unchanged")?;
+                .context(
+                    "the bundle does not check out under the new signature; it was left unchanged",
+                )?;
             Ok(())
         };
-        rewrite_signatures(&args.bundle, &mut file, &layout, &manifest, &signatures, &check)?;
+        rewrite_signatures(
+            &args.bundle,
+            &mut file,
+            &layout,
+            &manifest,
+            &signatures,
+            &check,
+        )?;
     }
-    let signers: Vec<String> = signatures.signatures.iter().map(|s| s.key_id.to_string()).collect();
+    let signers: Vec<String> = signatures
+        .signatures
+        .iter()
+        .map(|s| s.key_id.to_string())
+        .collect();
     let human = if changed {
         format!(
             "signed {summary} in {} with key {}; it now carries {} signature(s)",
