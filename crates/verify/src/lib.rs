@@ -20,6 +20,11 @@ pub mod time;
 mod unpack;
 mod verify;
 
+/// The README's examples, compiled as doctests so they cannot go stale.
+#[cfg(doctest)]
+#[doc = include_str!("../../../README.md")]
+pub struct ReadmeDoctests;
+
 pub use digest::Digest;
 pub use error::{Error, ErrorKind, Result};
 pub use keys::{KeyId, PublicKey, TrustedKeys};

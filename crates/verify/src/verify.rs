@@ -197,30 +197,30 @@ impl Verifier {
 
     fn check_policy(&self, m: &Manifest) -> Result<()> {
         let refuse = |message: String| Err(Error::new(ErrorKind::Policy, message));
-        if let Some(name) = &self.name {
-            if &m.name != name {
-                return refuse(format!(
-                    "bundle is named '{}' but this app accepts only '{name}'",
-                    m.name
-                ));
-            }
+        if let Some(name) = &self.name
+            && &m.name != name
+        {
+            return refuse(format!(
+                "bundle is named '{}' but this app accepts only '{name}'",
+                m.name
+            ));
         }
-        if let Some(installed) = &self.installed {
-            if m.version.cmp_precedence(installed) != std::cmp::Ordering::Greater {
-                return refuse(format!(
-                    "bundle version {} is not newer than the installed version {installed}; \
-                     refusing a downgrade or reinstall",
-                    m.version
-                ));
-            }
+        if let Some(installed) = &self.installed
+            && m.version.cmp_precedence(installed) != std::cmp::Ordering::Greater
+        {
+            return refuse(format!(
+                "bundle version {} is not newer than the installed version {installed}; \
+                 refusing a downgrade or reinstall",
+                m.version
+            ));
         }
-        if let Some(app) = &self.app_version {
-            if !m.requires_app.matches(app) {
-                return refuse(format!(
-                    "bundle requires app version {} but this app is {app}",
-                    m.requires_app
-                ));
-            }
+        if let Some(app) = &self.app_version
+            && !m.requires_app.matches(app)
+        {
+            return refuse(format!(
+                "bundle requires app version {} but this app is {app}",
+                m.requires_app
+            ));
         }
         if m.files_len() > self.max_unpacked_bytes {
             return refuse(format!(
