@@ -54,8 +54,23 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
             manifest.requires_app
         )),
     }
-    if !report.untrusted.is_empty() || !report.invalid.is_empty() {
-        human.push_str(&format!("other signatures, not counted: {report}\n"));
+    let list = |ids: &[ampoule_verify::KeyId]| {
+        ids.iter()
+            .map(|k| k.to_string())
+            .collect::<Vec<_>>()
+            .join(", ")
+    };
+    if !report.invalid.is_empty() {
+        human.push_str(&format!(
+            "not counted, signature does not match this manifest: {}\n",
+            list(&report.invalid)
+        ));
+    }
+    if !report.untrusted.is_empty() {
+        human.push_str(&format!(
+            "not counted, key not trusted here: {}\n",
+            list(&report.untrusted)
+        ));
     }
     if let Some(dir) = &extracted {
         human.push_str(&format!("unpacked into {}\n", dir.display()));
