@@ -1,11 +1,9 @@
 //! `ampoule inspect`: what a bundle holds and who signed it, without unpacking it.
 
-use std::fs::File;
-
-use ampoule_verify::bundle::{check_payload, read_layout};
+use ampoule_verify::Digest;
+use ampoule_verify::bundle::Unverified;
 use ampoule_verify::format::context;
-use ampoule_verify::signature::{Signatures, tally};
-use ampoule_verify::{Digest, Manifest};
+use ampoule_verify::signature::tally;
 use anyhow::{Context, Result};
 use serde_json::json;
 
@@ -15,20 +13,21 @@ use crate::output::Output;
 
 pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
     let keys = load_trust(&args.trust)?;
-    let mut file = File::open(&args.bundle)
-        .with_context(|| format!("cannot open bundle {}", args.bundle.display()))?;
-    let len = file.metadata()?.len();
-    let layout = read_layout(&mut file, len)
-        .with_context(|| format!("{} is not a well-formed bundle", args.bundle.display()))?;
-    let manifest = Manifest::from_json(&layout.manifest)?;
-    let signatures = Signatures::from_json(&layout.signatures)?;
+    let mut bundle = Unverified::open(&args.bundle)
+        .with_context(|| format!("cannot inspect {}", args.bundle.display()))?;
+    let payload_ok = bundle.check_payload();
+    let Unverified {
+        layout,
+        manifest,
+        signatures,
+        ..
+    } = bundle;
     let report = tally(
         context::MANIFEST,
         &layout.manifest,
         &signatures.signatures,
         &keys,
     );
-    let payload_ok = check_payload(&mut file, &layout, &manifest, None);
     let m = &manifest;
     let mut human = format!(
         "bundle   {}\nname     {}\nversion  {}\ncreated  {}\nrequires app {}\nsize     {} bytes (manifest {} bytes, sha256 {})\npayload  {} bytes zstd, sha256 {} ({})\n",

@@ -3,10 +3,9 @@
 
 use std::fs::File;
 
-use ampoule_verify::bundle::read_layout;
+use ampoule_verify::bundle::Unverified;
 use ampoule_verify::format::limit;
-use ampoule_verify::signature::Signatures;
-use ampoule_verify::{Manifest, PublicKey, TrustedKeys, Verifier};
+use ampoule_verify::{PublicKey, TrustedKeys, Verifier};
 use anyhow::{Context, Result, bail};
 use serde_json::json;
 
@@ -19,14 +18,12 @@ use crate::pack::{rewrite_signatures, sign_manifest};
 pub fn run(args: SignArgs, out: &Output) -> Result<()> {
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let public = PublicKey::from_verifying_key(&key.verifying_key())?;
-    let mut file = File::open(&args.bundle)
-        .with_context(|| format!("cannot open bundle {}", args.bundle.display()))?;
-    let len = file.metadata()?.len();
-    let layout = read_layout(&mut file, len)
-        .with_context(|| format!("{} is not a well-formed bundle", args.bundle.display()))?;
-    let manifest = Manifest::from_json(&layout.manifest)?;
-    let mut signatures = Signatures::from_json(&layout.signatures)?;
-    let changed = signatures.insert(sign_manifest(&key, &layout.manifest));
+    let mut bundle = Unverified::open(&args.bundle)
+        .with_context(|| format!("cannot sign {}", args.bundle.display()))?;
+    let mut signatures = bundle.signatures.clone();
+    let changed = signatures.insert(sign_manifest(&key, &bundle.layout.manifest));
+    let manifest = bundle.manifest.clone();
+    let layout = bundle.layout.clone();
     let summary = format!("{} {}", manifest.name, manifest.version);
     if changed {
         if signatures.signatures.len() > limit::SIGNATURES {
@@ -48,7 +45,7 @@ pub fn run(args: SignArgs, out: &Output) -> Result<()> {
         };
         rewrite_signatures(
             &args.bundle,
-            &mut file,
+            bundle.file_mut(),
             &layout,
             &manifest,
             &signatures,

@@ -14,8 +14,9 @@ use crate::digest::Hasher;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::limit;
 use crate::labels::parse_stored_labels;
+use crate::manifest::Manifest;
 use crate::tar;
-use crate::verify::{Progress, Stage, VerifiedBundle};
+use crate::verify::{Progress, ProgressFn, Stage};
 
 const ARCHIVE: &str = "payload";
 const CHUNK: usize = 256 * 1024;
@@ -146,20 +147,29 @@ impl Sink<'_> {
     }
 }
 
+/// A payload to decompress: the open bundle file, where the payload starts, and the manifest
+/// that declares its size and digests (already checked against the payload's digest).
+pub(crate) struct Source<'a> {
+    pub file: &'a File,
+    pub payload_offset: u64,
+    pub manifest: &'a Manifest,
+    pub progress: Option<&'a ProgressFn>,
+}
+
 /// Decompresses and checks the payload, writing files into `dir` when given. Returns the
 /// labels.
-pub(crate) fn stream(bundle: &mut VerifiedBundle, dir: Option<&Path>) -> Result<Vec<String>> {
-    let manifest = &bundle.manifest;
+pub(crate) fn stream(source: &Source<'_>, dir: Option<&Path>) -> Result<Vec<String>> {
+    let manifest = source.manifest;
     let tar_len = manifest.unpacked_tar_len();
-    let file = bundle
+    let file = source
         .file
         .try_clone()
         .map_err(|e| Error::io("cannot read the payload", e))?;
-    let (offset, size) = (bundle.layout.payload_offset, manifest.payload.size);
+    let (offset, size) = (source.payload_offset, manifest.payload.size);
     let (chunk_tx, chunk_rx) = sync_channel(CHUNKS_IN_FLIGHT);
     let (spent_tx, spent_rx) = channel();
     let sink = Sink { dir };
-    let progress = bundle.progress.clone();
+    let progress = source.progress.cloned();
     let done = AtomicU64::new(0);
     std::thread::scope(|scope| {
         scope.spawn(move || decode(file, offset, size, tar_len, chunk_tx, spent_rx));
@@ -170,7 +180,7 @@ pub(crate) fn stream(bundle: &mut VerifiedBundle, dir: Option<&Path>) -> Result<
             pos: 0,
             failed: None,
         };
-        let result = read_payload(&mut reader, bundle, &sink, &|n| {
+        let result = read_payload(&mut reader, manifest, &sink, &|n| {
             let now = done.fetch_add(n, Ordering::Relaxed) + n;
             if let Some(report) = &progress {
                 report(Progress {
@@ -192,11 +202,10 @@ pub(crate) fn stream(bundle: &mut VerifiedBundle, dir: Option<&Path>) -> Result<
 
 fn read_payload(
     reader: &mut ChunkReader,
-    bundle: &VerifiedBundle,
+    manifest: &Manifest,
     sink: &Sink<'_>,
     advance: &dyn Fn(u64),
 ) -> Result<Vec<String>> {
-    let manifest = &bundle.manifest;
     let order: Vec<&str> = manifest.files.iter().map(|f| f.path.as_str()).collect();
     let mut labels_bytes = Vec::new();
     let mut buf = vec![0u8; CHUNK];
@@ -327,7 +336,7 @@ pub(crate) fn sync_dir(dir: &Path) -> Result<()> {
 }
 
 /// Unpacks into a staging directory and renames it to `dest` once every check passed.
-pub(crate) fn unpack_to(bundle: &mut VerifiedBundle, dest: &Path) -> Result<Vec<String>> {
+pub(crate) fn unpack_to(source: &Source<'_>, dest: &Path) -> Result<Vec<String>> {
     if fs::symlink_metadata(dest).is_ok() {
         return Err(Error::new(
             ErrorKind::Destination,
@@ -338,7 +347,7 @@ pub(crate) fn unpack_to(bundle: &mut VerifiedBundle, dest: &Path) -> Result<Vec<
         ));
     }
     let mut staging = make_staging(dest)?;
-    let labels = stream(bundle, Some(&staging.path))?;
+    let labels = stream(source, Some(&staging.path))?;
     sync_dir(&staging.path)?;
     fs::rename(&staging.path, dest).map_err(|e| {
         Error::io(

@@ -236,11 +236,11 @@ impl Verifier {
 /// A bundle that passed every check before decompression: signed by trusted keys, manifest
 /// valid, allowed by the app's policy, payload digest correct. Only this crate can make one.
 pub struct VerifiedBundle {
-    pub(crate) file: File,
-    pub(crate) layout: Layout,
-    pub(crate) manifest: Manifest,
+    file: File,
+    layout: Layout,
+    manifest: Manifest,
     report: SignatureReport,
-    pub(crate) progress: Option<ProgressFn>,
+    progress: Option<ProgressFn>,
 }
 
 impl fmt::Debug for VerifiedBundle {
@@ -277,15 +277,24 @@ impl VerifiedBundle {
     /// Decompresses the payload and checks every file's size and digest without writing
     /// anything. Memory stays bounded whatever the model's size.
     pub fn check_contents(&mut self) -> Result<Vec<String>> {
-        crate::unpack::stream(self, None)
+        crate::unpack::stream(&self.source(), None)
+    }
+
+    fn source(&self) -> crate::unpack::Source<'_> {
+        crate::unpack::Source {
+            file: &self.file,
+            payload_offset: self.layout.payload_offset,
+            manifest: &self.manifest,
+            progress: self.progress.as_ref(),
+        }
     }
 
     /// Unpacks the model and labels into the new directory `dest`, which must not exist.
     /// Files are written into a fresh staging directory beside it and checked as they stream;
     /// only when every check passed is the staging directory renamed to `dest`. On any
     /// failure nothing is left behind.
-    pub fn unpack(mut self, dest: &Path) -> Result<Unpacked> {
-        let labels = crate::unpack::unpack_to(&mut self, dest)?;
+    pub fn unpack(self, dest: &Path) -> Result<Unpacked> {
+        let labels = crate::unpack::unpack_to(&self.source(), dest)?;
         Ok(Unpacked {
             model: dest.join(&self.manifest.model().path),
             labels_path: dest.join(&self.manifest.labels().path),
