@@ -11,7 +11,9 @@ pub mod digest;
 pub mod error;
 pub mod format;
 pub mod keys;
+pub mod model;
 
 pub use digest::Digest;
 pub use error::{Error, ErrorKind, Result};
 pub use keys::{KeyId, PublicKey, TrustedKeys};
+pub use model::{CompatibilityPolicy, ModelSignature};
