@@ -491,11 +491,12 @@ impl<'de> Deserialize<'de> for BytesByDtype {
 /// {"format":"onnx","ir_version":8,"opset":13,"producer":"trailcam-export","producer_version":"1.0",
 ///  "inputs":[{"name":"image","dtype":"float32","shape":["N",3,96,96]}],
 ///  "outputs":[{"name":"species","dtype":"float32","shape":["N",7]}],
-///  "weight_tensors":4,"parameters":287,"weights_8bit":false,"bytes_by_dtype":{"float32":1148}}
+///  "weight_tensors":4,"parameters":147,"weights_8bit":false,"bytes_by_dtype":{"float32":588}}
 /// ```
 ///
 /// `ir_version`, `opset`, `producer` and `producer_version` are `null` when the file does not
-/// state them (always for safetensors, which also has no inputs or outputs).
+/// state them (always for safetensors, which also has no inputs or outputs). For ONNX, weights
+/// are the graph's initializers; sparse initializers and constants inside nodes are not counted.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 #[non_exhaustive]
@@ -734,7 +735,8 @@ impl<R: Read + Seek> Source for Seeking<R> {
 /// `file_len` must be the file's true length (from the file system, or the size the verified
 /// manifest declares): every length in the file is checked against it. Weight data is read and
 /// dropped, never kept, so memory stays bounded; prefer [`read_model_signature_seekable`] for
-/// files, which seeks past the weights instead.
+/// files, which seeks past the weights instead. A safetensors reader stops after the header:
+/// the data region is checked against `file_len`, not read.
 pub fn read_model_signature<R: Read>(
     file_name: &str,
     reader: R,
