@@ -28,6 +28,12 @@ pub enum ErrorKind {
     Policy,
     /// The destination for extraction or installation is not usable.
     Destination,
+    /// A model file is not valid in the format its name declares (ONNX, safetensors), or it
+    /// is over a reader's cap.
+    Model,
+    /// The model or label list does not fit what the app's code expects (tensor names,
+    /// dtypes, shapes, label count).
+    Incompatible,
 }
 
 impl ErrorKind {

@@ -14,6 +14,7 @@ pub mod format;
 pub mod keys;
 pub mod labels;
 pub mod manifest;
+pub mod model;
 pub mod signature;
 pub mod tar;
 pub mod time;
@@ -29,6 +30,7 @@ pub use digest::Digest;
 pub use error::{Error, ErrorKind, Result};
 pub use keys::{KeyId, PublicKey, TrustedKeys};
 pub use manifest::Manifest;
+pub use model::{CompatibilityPolicy, ModelSignature};
 pub use time::Timestamp;
 pub use verify::{
     DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Progress, ProgressFn, Stage, Unpacked,
