@@ -28,6 +28,8 @@ pub enum ErrorKind {
     Policy,
     /// The destination for extraction or installation is not usable.
     Destination,
+    /// An inclusion or consistency proof of the audit ledger did not verify.
+    Proof,
 }
 
 impl ErrorKind {

@@ -11,6 +11,7 @@ pub mod digest;
 pub mod error;
 pub mod format;
 pub mod keys;
+pub mod merkle;
 
 pub use digest::Digest;
 pub use error::{Error, ErrorKind, Result};
