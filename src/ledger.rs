@@ -822,36 +822,25 @@ struct Appender {
     dir: PathBuf,
     entries: BufWriter<File>,
     offsets: BufWriter<File>,
-    levels: Vec<BufWriter<File>>,
+    /// Opened when first written, so an append syncs only the files it changed.
+    levels: Vec<Option<BufWriter<File>>>,
     position: u64,
     created: bool,
 }
 
 impl Appender {
     fn new(dir: &Path, position: u64) -> Result<Self> {
-        let mut levels = Vec::new();
         let mut created = false;
-        for level in 0..64 {
-            let path = dir.join(HASHES).join(level_file(level));
-            if !path.exists() {
-                break;
-            }
-            levels.push(BufWriter::with_capacity(
-                BUFFER_BYTES,
-                open_append(&path, &mut created)?,
-            ));
-        }
+        let mut open = |name: &str| -> Result<BufWriter<File>> {
+            let file = open_append(&dir.join(name), &mut created)?;
+            Ok(BufWriter::with_capacity(BUFFER_BYTES, file))
+        };
+        let (entries, offsets) = (open(ENTRIES)?, open(OFFSETS)?);
         Ok(Appender {
             dir: dir.to_path_buf(),
-            entries: BufWriter::with_capacity(
-                BUFFER_BYTES,
-                open_append(&dir.join(ENTRIES), &mut created)?,
-            ),
-            offsets: BufWriter::with_capacity(
-                BUFFER_BYTES,
-                open_append(&dir.join(OFFSETS), &mut created)?,
-            ),
-            levels,
+            entries,
+            offsets,
+            levels: Vec::new(),
             position,
             created,
         })
@@ -867,23 +856,27 @@ impl Appender {
     }
 
     fn node(&mut self, level: usize, hash: &Digest) -> Result<()> {
-        while self.levels.len() <= level {
-            let path = self
-                .dir
-                .join(HASHES)
-                .join(level_file(self.levels.len() as u32));
-            let file = open_append(&path, &mut self.created)?;
-            self.levels
-                .push(BufWriter::with_capacity(BUFFER_BYTES, file));
+        if self.levels.len() <= level {
+            self.levels.resize_with(level + 1, || None);
         }
-        self.levels[level]
+        let name = level_file(level as u32);
+        let writer = match &mut self.levels[level] {
+            Some(writer) => writer,
+            slot => {
+                let file = open_append(&self.dir.join(HASHES).join(&name), &mut self.created)?;
+                slot.insert(BufWriter::with_capacity(BUFFER_BYTES, file))
+            }
+        };
+        writer
             .write_all(hash.as_bytes())
-            .with_context(|| format!("cannot append to {HASHES}/{}", level_file(level as u32)))
+            .with_context(|| format!("cannot append to {HASHES}/{name}"))
     }
 
     /// Flushes and syncs everything written, so the head that follows never names lost data.
     fn finish(self) -> Result<()> {
-        let writers = [self.entries, self.offsets].into_iter().chain(self.levels);
+        let writers = [self.entries, self.offsets]
+            .into_iter()
+            .chain(self.levels.into_iter().flatten());
         for writer in writers {
             let file = writer
                 .into_inner()
