@@ -6,6 +6,20 @@
 //! it sees today extends the one it saw before (a consistency proof), so history cannot be
 //! rewritten without the device noticing. Writer and reader take hashing, proof algorithms and
 //! the tree head's signed bytes from this one module, so the two cannot disagree.
+//!
+//! ```
+//! use ampoule_verify::merkle::{self, MemoryTree};
+//!
+//! let tree: MemoryTree = ["fox", "badger", "hare"]
+//!     .iter()
+//!     .map(|entry| merkle::leaf_hash(entry.as_bytes()))
+//!     .collect();
+//! let proof = merkle::inclusion_proof(&tree, 1, 3)?;
+//! let leaf = merkle::leaf_hash(b"badger");
+//! merkle::verify_inclusion(1, 3, &leaf, &proof, &tree.root())?;
+//! assert!(merkle::verify_inclusion(1, 3, &merkle::leaf_hash(b"fox"), &proof, &tree.root()).is_err());
+//! # Ok::<(), ampoule_verify::Error>(())
+//! ```
 
 use std::fmt;
 use std::io;

@@ -548,6 +548,16 @@ fn tree_head_json_refuses_duplicates_unknown_fields_and_bad_spellings() {
     );
 }
 
+#[test]
+fn public_types_cross_threads() {
+    fn send_sync<T: Send + Sync>() {}
+    send_sync::<MemoryTree>();
+    send_sync::<SignedTreeHead>();
+    send_sync::<merkle::VerifiedTreeHead>();
+    send_sync::<InclusionProof>();
+    send_sync::<ConsistencyProof>();
+}
+
 fn flip(d: &Digest, bit: usize) -> Digest {
     let mut bytes = *d.as_bytes();
     bytes[bit / 8 % 32] ^= 1 << (bit % 8);
