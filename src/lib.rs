@@ -8,6 +8,7 @@ pub mod cli;
 pub mod cmd;
 pub mod demo;
 pub mod keyfile;
+pub mod ledger;
 pub mod output;
 pub mod pack;
 pub mod synth;

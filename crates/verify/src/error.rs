@@ -34,6 +34,8 @@ pub enum ErrorKind {
     /// The model or label list does not fit what the app's code expects (tensor names,
     /// dtypes, shapes, label count).
     Incompatible,
+    /// An inclusion or consistency proof of the audit ledger did not verify.
+    Proof,
 }
 
 impl ErrorKind {

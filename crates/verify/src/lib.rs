@@ -14,6 +14,7 @@ pub mod format;
 pub mod keys;
 pub mod labels;
 pub mod manifest;
+pub mod merkle;
 pub mod model;
 pub mod signature;
 pub mod tar;
