@@ -6,9 +6,9 @@
 
 use std::time::{Duration, Instant};
 
+use ampoule::ledger::{Entry, Event, Ledger};
 use ampoule_verify::{Digest, KeyId, PublicKey, TrustedKeys};
 use ed25519_dalek::SigningKey;
-use ampoule::ledger::{Entry, Event, Ledger};
 
 const BATCH: u64 = 10_000;
 const SAMPLES: usize = 1_000;

@@ -356,10 +356,10 @@ fn labels(n: usize) -> Vec<String> {
     ];
     let mut list: Vec<String> = names.iter().take(n).map(|s| s.to_string()).collect();
     // Keep "empty frame" present whatever the count, so the count is what differs.
-    if n < 7 {
-        if let Some(last) = list.last_mut() {
-            *last = "empty frame".into();
-        }
+    if n < 7
+        && let Some(last) = list.last_mut()
+    {
+        *last = "empty frame".into();
     }
     list
 }

@@ -510,13 +510,13 @@ fn read_initializer<S: Source>(
     // raw_data holds the elements packed little-endian; the 6-bit float types have no packing
     // the ONNX schema pins down, so their length is not checked.
     let checkable = dtype.bits().is_some_and(|bits| bits != 6);
-    if let (Some(raw), true) = (raw_bytes, checkable) {
-        if raw != bytes {
-            return Err(malformed(format!(
-                "initializer {shown} has {raw} bytes of raw data, its shape {} of {dtype} needs {bytes}",
-                list(&dims)
-            )));
-        }
+    if let (Some(raw), true) = (raw_bytes, checkable)
+        && raw != bytes
+    {
+        return Err(malformed(format!(
+            "initializer {shown} has {raw} bytes of raw data, its shape {} of {dtype} needs {bytes}",
+            list(&dims)
+        )));
     }
     weights.add(dtype, elements, bytes).ok_or_else(|| {
         malformed("the initializers' total parameter count or size overflows 64 bits".into())

@@ -295,13 +295,13 @@ impl CompatibilityPolicy {
     }
 
     fn check_signature(&self, signature: &ModelSignature) -> Result<()> {
-        if let Some(want) = self.format {
-            if signature.format != want {
-                return Err(incompatible(format!(
-                    "the model is {}, the app expects {want}",
-                    signature.format
-                )));
-            }
+        if let Some(want) = self.format
+            && signature.format != want
+        {
+            return Err(incompatible(format!(
+                "the model is {}, the app expects {want}",
+                signature.format
+            )));
         }
         if let Some(max) = self.max_opset {
             match signature.opset {
@@ -356,32 +356,32 @@ impl CompatibilityPolicy {
             })?;
             spec.check("output", value)?;
         }
-        if let Some(want) = self.weights_8bit {
-            if signature.weights_8bit != want {
-                let describe = |eight: bool| if eight { "8-bit" } else { "not 8-bit" };
-                return Err(incompatible(format!(
-                    "the model's weights are {}, the app expects {} weights",
-                    describe(signature.weights_8bit),
-                    describe(want)
-                )));
-            }
+        if let Some(want) = self.weights_8bit
+            && signature.weights_8bit != want
+        {
+            let describe = |eight: bool| if eight { "8-bit" } else { "not 8-bit" };
+            return Err(incompatible(format!(
+                "the model's weights are {}, the app expects {} weights",
+                describe(signature.weights_8bit),
+                describe(want)
+            )));
         }
         Ok(())
     }
 
     fn check_labels<S: AsRef<str>>(&self, labels: &[S]) -> Result<()> {
-        if let Some(range) = &self.label_count {
-            if !range.contains(&labels.len()) {
-                let accepted = if range.start() == range.end() {
-                    format!("exactly {}", range.start())
-                } else {
-                    format!("{} to {}", range.start(), range.end())
-                };
-                return Err(incompatible(format!(
-                    "the label list has {} labels, the app accepts {accepted}",
-                    labels.len()
-                )));
-            }
+        if let Some(range) = &self.label_count
+            && !range.contains(&labels.len())
+        {
+            let accepted = if range.start() == range.end() {
+                format!("exactly {}", range.start())
+            } else {
+                format!("{} to {}", range.start(), range.end())
+            };
+            return Err(incompatible(format!(
+                "the label list has {} labels, the app accepts {accepted}",
+                labels.len()
+            )));
         }
         for required in &self.required_labels {
             if !labels.iter().any(|label| label.as_ref() == required) {
@@ -466,17 +466,17 @@ impl CompatibilityPolicyBuilder {
                 }
             }
         }
-        if let Some(range) = &policy.label_count {
-            if range.is_empty() {
-                return Err(Error::new(
-                    ErrorKind::Policy,
-                    format!(
-                        "the policy's label count range {} to {} is empty",
-                        range.start(),
-                        range.end()
-                    ),
-                ));
-            }
+        if let Some(range) = &policy.label_count
+            && range.is_empty()
+        {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "the policy's label count range {} to {} is empty",
+                    range.start(),
+                    range.end()
+                ),
+            ));
         }
         Ok(policy)
     }
