@@ -124,6 +124,14 @@ pub struct PackArgs {
     pub key: Option<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
+    /// The model output whose last dimension counts the classes (needed when the model has
+    /// several outputs).
+    #[arg(long, value_name = "NAME")]
+    pub classifier_output: Option<String>,
+    /// Pack even if the label count differs from the classifier output's class count
+    /// (the devices' own policy may still refuse it).
+    #[arg(long)]
+    pub allow_label_mismatch: bool,
     /// The bundle file to write; it must not exist yet.
     #[arg(short = 'o', long = "out", value_name = "OUT.ampoule")]
     pub out: PathBuf,

@@ -3,11 +3,13 @@
 //! A wildlife-survey team (invented) runs solar trail cameras in a forest reserve. The demo
 //! makes a demo-only release key, packs a species classifier as v1.0.0 and v1.1.0 (which adds
 //! a species), checks both the way a camera would, and shows the refusals that protect the
-//! cameras: a replayed older model, a tampered copy, a bundle signed by a stranger.
+//! cameras: a label list that does not fit the model, a replayed older model, a tampered copy,
+//! a model the camera's code cannot feed, a bundle signed by a stranger.
 
 use std::path::{Path, PathBuf};
 
-use ampoule_verify::{PublicKey, Timestamp, TrustedKeys, Verifier};
+use ampoule_verify::model::{DType, TensorSpec, read_model_signature_file};
+use ampoule_verify::{CompatibilityPolicy, PublicKey, Timestamp, TrustedKeys, Verifier};
 use anyhow::{Context, Result, bail};
 use semver::{Version, VersionReq};
 use serde_json::{Value, json};
@@ -29,8 +31,11 @@ const SPECIES_V1: [&str; 6] = [
 ];
 /// The species added in v1.1.0.
 const NEW_SPECIES: &str = "pine marten";
-/// The demo model's size: large enough to show streaming, small enough to run in seconds.
-const MODEL_BYTES: u64 = 8 * 1024 * 1024;
+/// Hidden units of the demo classifier: about 8 MiB of float32 weights, large enough to show
+/// streaming, small enough to run in seconds.
+const HIDDEN: u64 = 76;
+/// The cameras' input: 96 × 96 RGB frames.
+const SIDE: u64 = 96;
 /// The cameras' app version, and the range the bundles require.
 const APP_VERSION: &str = "2.3.0";
 const REQUIRES_APP: &str = ">=2.0.0, <3.0.0";
@@ -113,39 +118,57 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     let created: Timestamp = CREATED.parse()?;
     let requires_app = VersionReq::parse(REQUIRES_APP)?;
     let mut bundles = Vec::new();
+    let species = |extra: Option<&str>| -> Vec<String> {
+        SPECIES_V1
+            .iter()
+            .copied()
+            .chain(extra)
+            .map(str::to_string)
+            .collect()
+    };
     for (version, seed, extra) in [("1.0.0", 1, None), ("1.1.0", 2, Some(NEW_SPECIES))] {
-        let model = dir.join(format!("species-{version}.bin"));
-        synth::write_weights(&model, MODEL_BYTES, seed)?;
-        let mut labels: Vec<String> = SPECIES_V1.iter().map(|s| s.to_string()).collect();
-        labels.extend(extra.map(str::to_string));
-        let spec = PackSpec {
-            model: model.clone(),
-            model_path: "model.bin".into(),
-            labels,
-            name: "trailcam-species".into(),
-            version: Version::parse(version)?,
-            requires_app: requires_app.clone(),
-            created,
-        };
+        let labels = species(extra);
+        let model = dir.join(format!("species-{version}.onnx"));
+        synth::write_onnx_classifier(&model, SIDE, HIDDEN, labels.len() as u64, seed)?;
+        let spec = model_spec(&model, labels, version, &requires_app, created)?;
         let path = dir.join(format!("species-{version}.ampoule"));
         let packed = pack(&spec, Some(&key), &path, &indicatif::ProgressBar::hidden())?;
         story.tell(
             "pack",
             format!(
-                "packed trailcam-species {version}: {} labels{}, model {} MiB -> bundle {:.1} MiB, signed",
+                "packed trailcam-species {version}: {} labels{}, model {:.1} MiB ({} parameters) -> bundle {:.1} MiB, signed",
                 packed.manifest.label_count,
                 extra.map(|s| format!(" (adds '{s}')")).unwrap_or_default(),
-                MODEL_BYTES >> 20,
-                packed.bundle_len as f64 / (1024.0 * 1024.0)
+                mib(packed.manifest.model().size),
+                packed.manifest.model.as_ref().map_or(0, |m| m.parameters),
+                mib(packed.bundle_len)
             ),
             json!({ "bundle": path, "size": packed.bundle_len, "manifest": packed.manifest }),
         );
         bundles.push(path);
     }
 
+    let mismatch = model_spec(
+        &dir.join("species-1.1.0.onnx"),
+        species(None),
+        "1.1.1",
+        &requires_app,
+        created,
+    )?
+    .model_signature
+    .context("the demo model has a signature")?
+    .check_label_count(None, SPECIES_V1.len());
+    refusal(
+        &mut story,
+        "labels",
+        "packing the 7-class model with last season's 6 labels",
+        mismatch,
+    )?;
+
     let trusted: TrustedKeys = [public.clone()].into_iter().collect();
     let camera = Verifier::new(trusted.clone(), Version::parse(APP_VERSION)?)?
-        .require_name("trailcam-species");
+        .require_name("trailcam-species")
+        .compatibility(camera_policy()?);
     let camera_dir = dir.join("camera");
     std::fs::create_dir_all(&camera_dir)?;
 
@@ -205,17 +228,42 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         result,
     )?;
 
+    let big = dir.join("species-1.2.0-128px.onnx");
+    synth::write_onnx_classifier(&big, 128, 8, 7, 3)?;
+    let spec = model_spec(
+        &big,
+        species(Some(NEW_SPECIES)),
+        "1.2.0",
+        &requires_app,
+        created,
+    )?;
+    let wrong_input = dir.join("species-1.2.0.ampoule");
+    pack(
+        &spec,
+        Some(&key),
+        &wrong_input,
+        &indicatif::ProgressBar::hidden(),
+    )?;
+    let result = camera
+        .clone()
+        .installed(Version::new(1, 1, 0))
+        .verify_path(&wrong_input);
+    refusal(
+        &mut story,
+        "incompatible",
+        "a validly signed v1.2.0 retrained on 128 x 128 frames",
+        result,
+    )?;
+
     let stranger = keyfile::generate_key();
     let forged = dir.join("species-9.9.9-forged.ampoule");
-    let spec = PackSpec {
-        model: dir.join("species-1.1.0.bin"),
-        model_path: "model.bin".into(),
-        labels: vec!["anything".into()],
-        name: "trailcam-species".into(),
-        version: Version::new(9, 9, 9),
-        requires_app,
+    let spec = model_spec(
+        &big,
+        species(Some(NEW_SPECIES)),
+        "9.9.9",
+        &requires_app,
         created,
-    };
+    )?;
     pack(
         &spec,
         Some(&stranger),
@@ -239,6 +287,46 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         out.result("", json!({ "ok": true, "dir": dir, "steps": story.steps }))?;
     }
     Ok(())
+}
+
+/// What the camera app's code feeds and reads: 96 x 96 RGB float frames in, one score per
+/// species out, and an "empty frame" class it relies on to skip frames.
+fn camera_policy() -> Result<CompatibilityPolicy> {
+    Ok(CompatibilityPolicy::builder()
+        .input(
+            TensorSpec::new("image")
+                .dtype(DType::Float32)
+                .shape("[*, 3, 96, 96]".parse()?),
+        )
+        .output(TensorSpec::new("species").dtype(DType::Float32))
+        .classifier_output("species")
+        .label_count(2..=64)
+        .require_label("empty frame")
+        .build()?)
+}
+
+/// What to pack for one demo release: the model, its labels, and the recorded signature.
+fn model_spec(
+    model: &Path,
+    labels: Vec<String>,
+    version: &str,
+    requires_app: &VersionReq,
+    created: Timestamp,
+) -> Result<PackSpec> {
+    Ok(PackSpec {
+        model: model.to_path_buf(),
+        model_path: "model.onnx".into(),
+        labels,
+        name: "trailcam-species".into(),
+        version: Version::parse(version)?,
+        requires_app: requires_app.clone(),
+        created,
+        model_signature: read_model_signature_file(model)?,
+    })
+}
+
+fn mib(bytes: u64) -> f64 {
+    bytes as f64 / (1024.0 * 1024.0)
 }
 
 /// Records an expected refusal; a demo whose attack was accepted is a failed demo.

@@ -10,8 +10,9 @@ use std::path::{Path, PathBuf};
 
 use ampoule_verify::bundle::{self, Layout};
 use ampoule_verify::digest::Hasher;
-use ampoule_verify::format::{context, entry, signed_bytes};
+use ampoule_verify::format::{context, entry, limit, signed_bytes};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};
+use ampoule_verify::model::ModelSignature;
 use ampoule_verify::signature::{SignatureEntry, Signatures};
 use ampoule_verify::{Digest, KeyId, Manifest, Timestamp, labels, tar};
 use anyhow::{Context, Result, bail};
@@ -38,6 +39,8 @@ pub struct PackSpec {
     pub version: Version,
     pub requires_app: VersionReq,
     pub created: Timestamp,
+    /// The model's tensor signature, when its format is one ampoule reads.
+    pub model_signature: Option<ModelSignature>,
 }
 
 /// What was written.
@@ -101,11 +104,11 @@ fn write_payload(
         .metadata()
         .with_context(|| format!("cannot read the size of {}", spec.model.display()))?
         .len();
-    if model_len > ampoule_verify::format::limit::TAR_ENTRY_BYTES {
+    if model_len > limit::TAR_ENTRY_BYTES {
         bail!(
             "model {} is {model_len} bytes, over the format's limit of {} bytes",
             spec.model.display(),
-            ampoule_verify::format::limit::TAR_ENTRY_BYTES
+            limit::TAR_ENTRY_BYTES
         );
     }
     let tar_len = tar::entry_len(model_len)
@@ -209,11 +212,20 @@ pub fn pack(
             },
         ],
         label_count: u32::try_from(spec.labels.len()).context("too many labels")?,
+        model: spec.model_signature.clone(),
     };
     manifest
         .validate()
         .context("the manifest to be written is not valid")?;
     let manifest_bytes = manifest.to_json();
+    if manifest_bytes.len() as u64 > limit::MANIFEST_BYTES {
+        bail!(
+            "the manifest would be {} bytes, over the format's limit of {} bytes (the model \
+             declares very many or very long inputs and outputs)",
+            manifest_bytes.len(),
+            limit::MANIFEST_BYTES
+        );
+    }
     let mut signatures = Signatures::default();
     if let Some(key) = key {
         signatures.insert(sign_manifest(key, &manifest_bytes));

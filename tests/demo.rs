@@ -51,5 +51,13 @@ fn demo_runs_and_refuses_every_attack() {
         "{}",
         error_of("forgery")
     );
+    assert_eq!(
+        error_of("labels"),
+        "the label list has 6 labels, but output 'species' has 7 classes (shape [N, 7])"
+    );
+    assert_eq!(
+        error_of("incompatible"),
+        "input 'image' has shape [N, 3, 128, 128], the app expects [*, 3, 96, 96]: dimension 2 is 128, not 96"
+    );
     assert!(work.join("camera/model-1.1.0/labels.txt").is_file());
 }

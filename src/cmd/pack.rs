@@ -5,6 +5,7 @@ use std::path::Path;
 
 use ampoule_verify::format::limit;
 use ampoule_verify::manifest::{check_name, model_path};
+use ampoule_verify::model::{ModelSignature, read_model_signature_file};
 use ampoule_verify::{Timestamp, labels};
 use anyhow::{Context, Result, bail};
 use semver::VersionReq;
@@ -70,6 +71,39 @@ fn inner_model_path(model: &Path) -> Result<String> {
     })
 }
 
+/// Refuses a label list whose length differs from the classifier output's class count,
+/// unless `--allow-label-mismatch` says the engineer knows.
+fn check_labels_fit(
+    signature: &ModelSignature,
+    labels: &[String],
+    args: &PackArgs,
+    out: &Output,
+) -> Result<()> {
+    let output = args.classifier_output.as_deref();
+    match signature.class_count(output) {
+        Ok(_) => match signature.check_label_count(output, labels.len()) {
+            Ok(()) => Ok(()),
+            Err(e) if args.allow_label_mismatch => {
+                out.note(&format!(
+                    "warning: {e} (packed anyway: --allow-label-mismatch)"
+                ));
+                Ok(())
+            }
+            Err(e) => Err(anyhow::Error::new(e).context(
+                "label list refused; fix the label file, or pass --allow-label-mismatch if the \
+                 model really has a different number of outputs than labels",
+            )),
+        },
+        Err(e) if output.is_some() => Err(e.into()),
+        Err(e) => {
+            out.note(&format!(
+                "label count not checked against the model: {e} (use --classifier-output NAME)"
+            ));
+            Ok(())
+        }
+    }
+}
+
 pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     check_name(&args.name)?;
     let version = parse_version(&args.version, "--version")?;
@@ -81,6 +115,15 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     })?;
     let created = creation_time(args.created.as_deref())?;
     let labels = read_labels(&args.labels)?;
+    let model_signature = read_model_signature_file(&args.model).with_context(|| {
+        format!(
+            "cannot read the model's signature from {}",
+            args.model.display()
+        )
+    })?;
+    if let Some(signature) = &model_signature {
+        check_labels_fit(signature, &labels, &args, out)?;
+    }
     let spec = PackSpec {
         model_path: inner_model_path(&args.model)?,
         model: args.model,
@@ -89,6 +132,7 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         version,
         requires_app,
         created,
+        model_signature,
     };
     let key = match &args.key {
         Some(path) => Some(keyfile::read_secret_key(

@@ -11,6 +11,7 @@ use serde::{Deserialize, Serialize};
 use crate::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{FORMAT_VERSION, entry, limit};
+use crate::model::ModelSignature;
 use crate::tar;
 use crate::time::Timestamp;
 
@@ -80,6 +81,10 @@ pub struct Manifest {
     pub files: Vec<FileEntry>,
     /// How many labels the label list holds.
     pub label_count: u32,
+    /// The model's tensor signature as `pack` read it (ONNX, safetensors); absent for a
+    /// model in a format ampoule does not read.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub model: Option<ModelSignature>,
 }
 
 fn invalid(message: String) -> Error {

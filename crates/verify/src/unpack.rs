@@ -335,8 +335,13 @@ pub(crate) fn sync_dir(dir: &Path) -> Result<()> {
     })
 }
 
-/// Unpacks into a staging directory and renames it to `dest` once every check passed.
-pub(crate) fn unpack_to(source: &Source<'_>, dest: &Path) -> Result<Vec<String>> {
+/// Unpacks into a staging directory and renames it to `dest` once every check passed,
+/// including `last_checks` on the labels and the staged files.
+pub(crate) fn unpack_to(
+    source: &Source<'_>,
+    dest: &Path,
+    last_checks: &dyn Fn(&[String], &Path) -> Result<()>,
+) -> Result<Vec<String>> {
     if fs::symlink_metadata(dest).is_ok() {
         return Err(Error::new(
             ErrorKind::Destination,
@@ -348,6 +353,7 @@ pub(crate) fn unpack_to(source: &Source<'_>, dest: &Path) -> Result<Vec<String>>
     }
     let mut staging = make_staging(dest)?;
     let labels = stream(source, Some(&staging.path))?;
+    last_checks(&labels, &staging.path)?;
     sync_dir(&staging.path)?;
     fs::rename(&staging.path, dest).map_err(|e| {
         Error::io(

@@ -18,6 +18,7 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::format::context;
 use crate::keys::{KeyId, TrustedKeys};
 use crate::manifest::Manifest;
+use crate::model::CompatibilityPolicy;
 use crate::signature::{SignatureReport, Signatures, check_signatures};
 
 /// The largest bundle file accepted unless the app sets its own limit.
@@ -60,6 +61,7 @@ pub struct Verifier {
     installed: Option<Version>,
     max_bundle_bytes: u64,
     max_unpacked_bytes: u64,
+    compatibility: Option<CompatibilityPolicy>,
     progress: Option<ProgressFn>,
 }
 
@@ -73,6 +75,7 @@ impl fmt::Debug for Verifier {
             .field("installed", &self.installed)
             .field("max_bundle_bytes", &self.max_bundle_bytes)
             .field("max_unpacked_bytes", &self.max_unpacked_bytes)
+            .field("compatibility", &self.compatibility)
             .finish_non_exhaustive()
     }
 }
@@ -95,6 +98,7 @@ impl Verifier {
             installed: None,
             max_bundle_bytes: DEFAULT_MAX_BUNDLE_BYTES,
             max_unpacked_bytes: DEFAULT_MAX_UNPACKED_BYTES,
+            compatibility: None,
             progress: None,
         })
     }
@@ -136,6 +140,14 @@ impl Verifier {
     /// The most bytes the model and labels may take once unpacked.
     pub fn max_unpacked_bytes(mut self, bytes: u64) -> Self {
         self.max_unpacked_bytes = bytes;
+        self
+    }
+
+    /// What the app's code needs of the model and labels: tensor names, dtypes and shapes,
+    /// label count, required labels. Checked before the payload is read, and the required
+    /// labels once the label list is unpacked, always before anything takes its place.
+    pub fn compatibility(mut self, policy: CompatibilityPolicy) -> Self {
+        self.compatibility = Some(policy);
         self
     }
 
@@ -191,6 +203,7 @@ impl Verifier {
             layout,
             manifest,
             report,
+            compatibility: self.compatibility.clone(),
             progress: self.progress.clone(),
         })
     }
@@ -222,6 +235,9 @@ impl Verifier {
                 m.requires_app
             ));
         }
+        if let Some(policy) = &self.compatibility {
+            policy.check_before_unpack(m.model.as_ref(), m.label_count as usize)?;
+        }
         if m.files_len() > self.max_unpacked_bytes {
             return refuse(format!(
                 "bundle unpacks to {} bytes, over this app's limit of {} bytes",
@@ -240,6 +256,7 @@ pub struct VerifiedBundle {
     layout: Layout,
     manifest: Manifest,
     report: SignatureReport,
+    compatibility: Option<CompatibilityPolicy>,
     progress: Option<ProgressFn>,
 }
 
@@ -277,7 +294,33 @@ impl VerifiedBundle {
     /// Decompresses the payload and checks every file's size and digest without writing
     /// anything. Memory stays bounded whatever the model's size.
     pub fn check_contents(&mut self) -> Result<Vec<String>> {
-        crate::unpack::stream(&self.source(), None)
+        let labels = crate::unpack::stream(&self.source(), None)?;
+        self.check_labels(&labels)?;
+        Ok(labels)
+    }
+
+    fn check_labels(&self, labels: &[String]) -> Result<()> {
+        match &self.compatibility {
+            Some(policy) => policy.check_required_labels(labels),
+            None => Ok(()),
+        }
+    }
+
+    /// Reads the unpacked model's signature again and requires it to be the one the signed
+    /// manifest records, so a manifest cannot describe a different model than it ships.
+    fn check_model_signature(&self, dir: &Path) -> Result<()> {
+        let model = self.manifest.model();
+        let found = crate::model::read_model_signature_file(&dir.join(&model.path))?;
+        if found != self.manifest.model {
+            return Err(Error::new(
+                ErrorKind::Manifest,
+                format!(
+                    "{} does not have the model signature its manifest records; the bundle was packed wrongly",
+                    model.path
+                ),
+            ));
+        }
+        Ok(())
     }
 
     fn source(&self) -> crate::unpack::Source<'_> {
@@ -294,7 +337,10 @@ impl VerifiedBundle {
     /// only when every check passed is the staging directory renamed to `dest`. On any
     /// failure nothing is left behind.
     pub fn unpack(self, dest: &Path) -> Result<Unpacked> {
-        let labels = crate::unpack::unpack_to(&self.source(), dest)?;
+        let labels = crate::unpack::unpack_to(&self.source(), dest, &|labels, staged| {
+            self.check_labels(labels)?;
+            self.check_model_signature(staged)
+        })?;
         Ok(Unpacked {
             model: dest.join(&self.manifest.model().path),
             labels_path: dest.join(&self.manifest.labels().path),

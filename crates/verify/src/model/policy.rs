@@ -278,6 +278,19 @@ impl CompatibilityPolicy {
         signature: Option<&ModelSignature>,
         labels: &[S],
     ) -> Result<()> {
+        self.check_before_unpack(signature, labels.len())?;
+        self.check_required_labels(labels)
+    }
+
+    /// The part of [`CompatibilityPolicy::check`] that needs only the manifest: the model
+    /// signature, the label count range and one label per class of the classifier output.
+    /// The verifier runs it before it reads the payload, so an incompatible bundle costs no
+    /// decompression.
+    pub fn check_before_unpack(
+        &self,
+        signature: Option<&ModelSignature>,
+        label_count: usize,
+    ) -> Result<()> {
         match signature {
             Some(signature) => self.check_signature(signature)?,
             None if self.needs_signature() => {
@@ -287,9 +300,9 @@ impl CompatibilityPolicy {
             }
             None => {}
         }
-        self.check_labels(labels)?;
+        self.check_label_count(label_count)?;
         if let (Some(output), Some(signature)) = (&self.classifier_output, signature) {
-            signature.check_label_count(Some(output), labels.len())?;
+            signature.check_label_count(Some(output), label_count)?;
         }
         Ok(())
     }
@@ -369,9 +382,9 @@ impl CompatibilityPolicy {
         Ok(())
     }
 
-    fn check_labels<S: AsRef<str>>(&self, labels: &[S]) -> Result<()> {
+    fn check_label_count(&self, count: usize) -> Result<()> {
         if let Some(range) = &self.label_count
-            && !range.contains(&labels.len())
+            && !range.contains(&count)
         {
             let accepted = if range.start() == range.end() {
                 format!("exactly {}", range.start())
@@ -379,10 +392,14 @@ impl CompatibilityPolicy {
                 format!("{} to {}", range.start(), range.end())
             };
             return Err(incompatible(format!(
-                "the label list has {} labels, the app accepts {accepted}",
-                labels.len()
+                "the label list has {count} labels, the app accepts {accepted}"
             )));
         }
+        Ok(())
+    }
+
+    /// Checks that every label the app requires is in the unpacked label list.
+    pub fn check_required_labels<S: AsRef<str>>(&self, labels: &[S]) -> Result<()> {
         for required in &self.required_labels {
             if !labels.iter().any(|label| label.as_ref() == required) {
                 return Err(incompatible(format!(
