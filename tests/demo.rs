@@ -26,7 +26,16 @@ fn demo_runs_and_refuses_every_attack() {
     assert_eq!(
         steps,
         [
-            "keygen", "pack", "pack", "install", "update", "replay", "tamper", "forgery"
+            "keygen",
+            "pack",
+            "pack",
+            "labels",
+            "install",
+            "update",
+            "replay",
+            "tamper",
+            "incompatible",
+            "forgery"
         ]
     );
     let error_of = |name: &str| -> String {
