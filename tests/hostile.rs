@@ -981,3 +981,109 @@ fn name_in_the_ustar_prefix_field() {
          entry names must be short plain file names",
     );
 }
+
+/// A signed draft whose payload is `inner` compressed, declaring the fixture files.
+fn signed_inner(env: &Env, model: &[u8], labels: &[u8], inner: &[u8]) -> Vec<u8> {
+    Draft::with_payload(model.to_vec(), labels.to_vec(), zstd(inner)).signed(&env.key)
+}
+
+#[test]
+fn payload_decompressing_short_of_its_declared_size() {
+    let env = Env::new();
+    let model = model_bytes(5000);
+    let full = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    // The inner tar without its end-of-archive marker, then cut inside the labels' data.
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &full[..full.len() - 1024]),
+        &[],
+        "payload end-of-archive marker is truncated: the file ended early",
+    );
+    let labels_data = tar::entry_len(model.len() as u64) as usize + 512;
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &full[..labels_data + 3]),
+        &[],
+        "payload entry 'labels.txt' is truncated: the file ended early",
+    );
+}
+
+#[test]
+fn damaged_inner_tar_headers_and_padding() {
+    let env = Env::new();
+    let model = model_bytes(5000);
+    let full = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    let labels_header = tar::entry_len(model.len() as u64) as usize;
+    let mut bad_sum = full.clone();
+    bad_sum[labels_header + 140] ^= 1;
+    let h: [u8; 512] = bad_sum[labels_header..labels_header + 512]
+        .try_into()
+        .expect("a block");
+    let stored = header_sum(
+        full[labels_header..labels_header + 512]
+            .try_into()
+            .expect("a block"),
+    );
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &bad_sum),
+        &[],
+        &format!(
+            "payload entry 'labels.txt' has a bad tar header checksum (stored {stored:o}, computed {:o}): \
+             the file is damaged or not a bundle",
+            header_sum(&h)
+        ),
+    );
+    let mut bad_pad = full.clone();
+    bad_pad[labels_header - 1] = b'x';
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &bad_pad),
+        &[],
+        "payload entry 'model.onnx' has non-zero bytes in its tar padding",
+    );
+    let mut extra = full.clone();
+    extra.truncate(full.len() - 1024);
+    extra.extend_from_slice(&tar_entry("notes.txt", b"x"));
+    extra.extend_from_slice(&tar::END_OF_ARCHIVE);
+    let declared = Draft::with_payload(model.clone(), LABELS.to_vec(), Vec::new())
+        .manifest
+        .unpacked_tar_len();
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &extra),
+        &[],
+        &format!("payload decompresses to more than the {declared} bytes its manifest declares"),
+    );
+}
+
+#[test]
+fn payload_that_is_not_zstd_or_labels_not_in_stored_form() {
+    let env = Env::new();
+    let model = model_bytes(5000);
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    // The bare tar, signed and digested but not compressed.
+    let raw = Draft::with_payload(model.clone(), LABELS.to_vec(), inner).signed(&env.key);
+    env.assert_refused(
+        &raw,
+        &[],
+        "payload is not valid zstd data: Unknown frame descriptor",
+    );
+    // CRLF line ends: pack would normalize them, so a bundle holding them was not made by pack.
+    let crlf = b"fox\r\nhare\r\n";
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, crlf),
+    ]);
+    let mut draft = Draft::with_payload(model, crlf.to_vec(), zstd(&inner));
+    draft.manifest.label_count = 2;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "labels.txt is not in the stored form (one label per line, each ending in a single '\\n')",
+    );
+}

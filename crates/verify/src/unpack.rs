@@ -151,6 +151,8 @@ impl Sink<'_> {
 pub(crate) fn stream(bundle: &mut VerifiedBundle, dir: Option<&Path>) -> Result<Vec<String>> {
     let manifest = &bundle.manifest;
     let tar_len = manifest.unpacked_tar_len();
+    // Progress counts file data only (what `read_payload` advances by), not tar headers.
+    let data_len = manifest.files_len();
     let file = bundle
         .file
         .try_clone()
@@ -176,7 +178,7 @@ pub(crate) fn stream(bundle: &mut VerifiedBundle, dir: Option<&Path>) -> Result<
                 report(Progress {
                     stage: Stage::Unpack,
                     done: now,
-                    total: tar_len,
+                    total: data_len,
                 });
             }
         });
