@@ -599,19 +599,27 @@ fn zstd_window_of_exactly_8_mib_is_accepted() {
 #[test]
 fn payload_decompressing_past_its_declared_size() {
     // A valid inner tar, then a second zstd frame of 1 MiB of zeros; all signed and digested.
+    // With a 700 KiB model the good part spans several of the decoder's 256 KiB chunks, so
+    // the file writer is busy when the excess is found.
     let env = Env::new();
-    let draft = Draft::good();
-    let mut payload = draft.payload.clone();
-    payload.extend_from_slice(&zstd(&vec![0u8; 1 << 20]));
-    let bomb = Draft::with_payload(draft.model.clone(), draft.labels.clone(), payload);
-    env.assert_refused(
-        &bomb.signed(&env.key),
-        &[],
-        &format!(
-            "payload decompresses to more than the {} bytes its manifest declares",
-            bomb.manifest.unpacked_tar_len()
-        ),
-    );
+    for model_len in [20 * 1024, 700 * 1024] {
+        let model = model_bytes(model_len);
+        let inner = tar_of(&[
+            tar_entry("model.onnx", &model),
+            tar_entry(entry::LABELS, LABELS),
+        ]);
+        let mut payload = zstd(&inner);
+        payload.extend_from_slice(&zstd(&vec![0u8; 1 << 20]));
+        let bomb = Draft::with_payload(model, LABELS.to_vec(), payload);
+        env.assert_refused(
+            &bomb.signed(&env.key),
+            &[],
+            &format!(
+                "payload decompresses to more than the {} bytes its manifest declares",
+                bomb.manifest.unpacked_tar_len()
+            ),
+        );
+    }
 }
 
 #[test]
