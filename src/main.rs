@@ -44,6 +44,14 @@ fn main() -> ExitCode {
                 exit::OK
             };
             let _ = e.print();
+            if e.use_stderr() {
+                // The command line did not parse, so `--json` is looked for by hand.
+                let json = std::env::args_os()
+                    .skip(1)
+                    .take_while(|a| a != "--")
+                    .any(|a| a == "--json");
+                Output::new(json).usage_error(&e, code);
+            }
             return ExitCode::from(code);
         }
     };

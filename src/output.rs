@@ -29,7 +29,9 @@ impl Output {
     pub fn result(&self, human: &str, value: Value) -> anyhow::Result<()> {
         let mut stdout = std::io::stdout().lock();
         if self.json {
-            serde_json::to_writer_pretty(&mut stdout, &value)?;
+            // Through io::Error, so a closed pipe is still recognised as one (serde_json's
+            // error type would hide the io::ErrorKind from the caller's broken-pipe check).
+            serde_json::to_writer_pretty(&mut stdout, &value).map_err(std::io::Error::from)?;
             writeln!(stdout)?;
         } else {
             stdout.write_all(human.as_bytes())?;
@@ -61,6 +63,32 @@ impl Output {
                 "exit_code": exit_code,
                 "error": text,
                 "kind": kind,
+            });
+            let _ = self.result("", doc);
+        }
+    }
+
+    /// With `--json`, the JSON error document for a command line that did not parse; clap
+    /// has already printed its own message and usage on stderr.
+    pub fn usage_error(&self, err: &clap::Error, exit_code: u8) {
+        if self.json {
+            // clap's text minus the usage and help hints, on one line.
+            let text = err.to_string();
+            let lines: Vec<&str> = text
+                .split("\n\nUsage:")
+                .next()
+                .unwrap_or_default()
+                .lines()
+                .map(str::trim)
+                .filter(|l| !l.is_empty() && !l.starts_with("For more information"))
+                .collect();
+            let message = lines.join(" ");
+            let message = message.trim_start_matches("error: ");
+            let doc = serde_json::json!({
+                "ok": false,
+                "exit_code": exit_code,
+                "error": message,
+                "kind": "usage",
             });
             let _ = self.result("", doc);
         }

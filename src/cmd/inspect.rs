@@ -4,7 +4,7 @@ use ampoule_verify::Digest;
 use ampoule_verify::bundle::Unverified;
 use ampoule_verify::format::context;
 use ampoule_verify::signature::tally;
-use anyhow::{Context, Result};
+use anyhow::Result;
 use serde_json::json;
 
 use crate::cli::InspectArgs;
@@ -13,8 +13,7 @@ use crate::output::Output;
 
 pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
     let keys = load_trust(&args.trust)?;
-    let mut bundle = Unverified::open(&args.bundle)
-        .with_context(|| format!("cannot inspect {}", args.bundle.display()))?;
+    let mut bundle = Unverified::open(&args.bundle)?;
     let payload_ok = bundle.check_payload();
     let Unverified {
         layout,

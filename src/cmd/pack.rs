@@ -115,6 +115,9 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     })?;
     let created = creation_time(args.created.as_deref())?;
     let labels = read_labels(&args.labels)?;
+    let model_len = std::fs::metadata(&args.model)
+        .with_context(|| format!("cannot read model {}", args.model.display()))?
+        .len();
     let model_signature = read_model_signature_file(&args.model).with_context(|| {
         format!(
             "cannot read the model's signature from {}",
@@ -141,9 +144,6 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         )?),
         None => None,
     };
-    let model_len = std::fs::metadata(&spec.model)
-        .with_context(|| format!("cannot read model {}", spec.model.display()))?
-        .len();
     let bar = out.bar(model_len, "packing");
     let packed = pack(&spec, key.as_ref(), &args.out, &bar)?;
     bar.finish_and_clear();

@@ -18,8 +18,7 @@ use crate::pack::{rewrite_signatures, sign_manifest};
 pub fn run(args: SignArgs, out: &Output) -> Result<()> {
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let public = PublicKey::from_verifying_key(&key.verifying_key())?;
-    let mut bundle = Unverified::open(&args.bundle)
-        .with_context(|| format!("cannot sign {}", args.bundle.display()))?;
+    let mut bundle = Unverified::open(&args.bundle)?;
     let mut signatures = bundle.signatures.clone();
     let changed = signatures.insert(sign_manifest(&key, &bundle.layout.manifest));
     let manifest = bundle.manifest.clone();

@@ -115,6 +115,23 @@ impl PublicKey {
 
     /// Loads a key from SubjectPublicKeyInfo PEM (RFC 8410 section 4, `-----BEGIN PUBLIC KEY-----`).
     pub fn from_pem(pem: &str) -> Result<Self> {
+        // A certificate or secret key given by mistake would otherwise be reported as a
+        // Base64 or ASN.1 fault deep inside it; name what the file holds instead.
+        let label = pem
+            .trim_start()
+            .strip_prefix("-----BEGIN ")
+            .and_then(|rest| rest.split_once("-----"))
+            .map(|(label, _)| label);
+        if let Some(label) = label.filter(|&l| l != "PUBLIC KEY") {
+            return Err(Error::new(
+                ErrorKind::Key,
+                format!(
+                    "PEM block '{}' is not an Ed25519 public key; expected a \
+                     '-----BEGIN PUBLIC KEY-----' block as written by keygen or 'openssl pkey -pubout'",
+                    crate::tar::shown(label.as_bytes())
+                ),
+            ));
+        }
         let key = VerifyingKey::from_public_key_pem(pem.trim()).map_err(|e| {
             Error::new(
                 ErrorKind::Key,

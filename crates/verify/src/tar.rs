@@ -149,7 +149,7 @@ pub fn parse_header(h: &[u8; 512], archive: &str) -> Result<Block> {
     }
     if &h[257..263] != b"ustar\0" || &h[263..265] != b"00" {
         return Err(malformed(format!(
-            "{archive} entry '{name}' is not a POSIX ustar header (magic {:?}); \
+            "{archive} entry '{name}' is not a POSIX ustar header (magic \"{}\"); \
              write bundles with 'tar --format=ustar'",
             shown(&h[257..265])
         )));
@@ -197,7 +197,7 @@ pub fn parse_header(h: &[u8; 512], archive: &str) -> Result<Block> {
     }
     let size = parse_octal(&h[124..136]).ok_or_else(|| {
         malformed(format!(
-            "{archive} entry '{name}' has an unreadable size field {:?}",
+            "{archive} entry '{name}' has an unreadable size field \"{}\"",
             shown(&h[124..136])
         ))
     })?;

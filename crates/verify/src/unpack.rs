@@ -161,6 +161,8 @@ pub(crate) struct Source<'a> {
 pub(crate) fn stream(source: &Source<'_>, dir: Option<&Path>) -> Result<Vec<String>> {
     let manifest = source.manifest;
     let tar_len = manifest.unpacked_tar_len();
+    // Progress counts file data only (what `read_payload` advances by), not tar headers.
+    let data_len = manifest.files_len();
     let file = source
         .file
         .try_clone()
@@ -186,7 +188,7 @@ pub(crate) fn stream(source: &Source<'_>, dir: Option<&Path>) -> Result<Vec<Stri
                 report(Progress {
                     stage: Stage::Unpack,
                     done: now,
-                    total: tar_len,
+                    total: data_len,
                 });
             }
         });

@@ -309,6 +309,10 @@ impl VerifiedBundle {
     /// Reads the unpacked model's signature again and requires it to be the one the signed
     /// manifest records, so a manifest cannot describe a different model than it ships.
     fn check_model_signature(&self, dir: &Path) -> Result<()> {
+        if self.manifest.model.is_none() {
+            // Packed as opaque: the manifest makes no claim about the model's structure.
+            return Ok(());
+        }
         let model = self.manifest.model();
         let found = crate::model::read_model_signature_file(&dir.join(&model.path))?;
         if found != self.manifest.model {

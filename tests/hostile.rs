@@ -1,0 +1,1097 @@
+//! Hostile bundles (design threats 1, 2, 3, 5, 6, 7 and 8): each is made by a named generator
+//! below, correctly signed wherever that lets it get past the earlier checks, so it reaches the
+//! check it targets. Every one must make `ampoule verify --extract` exit 1 with exactly the
+//! error given and leave the directory as it was (no extract dir, no `.partial` staging dir).
+
+mod common;
+
+use ampoule_verify::format::entry;
+use ampoule_verify::{Digest, KeyId, tar};
+use common::*;
+
+/// Where each region of a bundle laid out by [`assemble`] starts.
+struct Offsets {
+    manifest: usize,
+    manifest_pad: usize,
+    signatures_header: usize,
+    payload_header: usize,
+    payload: usize,
+    payload_pad: usize,
+    end: usize,
+    len: usize,
+}
+
+fn offsets(manifest_len: usize, signatures_len: usize, payload_len: usize) -> Offsets {
+    let entry = |n: usize| tar::entry_len(n as u64) as usize;
+    let signatures_header = entry(manifest_len);
+    let payload_header = signatures_header + entry(signatures_len);
+    let end = payload_header + entry(payload_len);
+    Offsets {
+        manifest: 512,
+        manifest_pad: 512 + manifest_len,
+        signatures_header,
+        payload_header,
+        payload: payload_header + 512,
+        payload_pad: payload_header + 512 + payload_len,
+        end,
+        len: end + 1024,
+    }
+}
+
+/// A good signed bundle and where its regions are.
+fn good() -> (Env, Draft, Vec<u8>, Offsets) {
+    let env = Env::new();
+    let draft = Draft::good();
+    let bundle = draft.signed(&env.key);
+    let manifest = draft.manifest.to_json();
+    let sigs = signatures(&[&env.key], &manifest);
+    let at = offsets(manifest.len(), sigs.len(), draft.payload.len());
+    assert_eq!(at.len, bundle.len(), "offsets match the layout");
+    assert!(
+        tar::padding(manifest.len() as u64) > 0 && tar::padding(draft.payload.len() as u64) > 0,
+        "the fixture needs padding after the manifest and the payload"
+    );
+    (env, draft, bundle, at)
+}
+
+fn flipped(bundle: &[u8], at: usize) -> Vec<u8> {
+    let mut bytes = bundle.to_vec();
+    bytes[at] ^= 0x01;
+    bytes
+}
+
+fn not_matching(id: KeyId) -> String {
+    format!("bundle has no valid signature by a trusted key (not matching this document: {id})")
+}
+
+#[test]
+fn the_untouched_fixture_verifies() {
+    // Every hostile case below is a small change to this bundle; it must pass as it is, or the
+    // refusals would prove nothing.
+    let (env, _, bundle, _) = good();
+    env.assert_accepted(&bundle);
+}
+
+#[test]
+fn flipped_byte_in_manifest() {
+    let (env, _, bundle, at) = good();
+    // Inside the JSON text; the signature covers every byte, so it fails before parsing.
+    env.assert_refused(
+        &flipped(&bundle, at.manifest + 40),
+        &[],
+        &not_matching(env.key_id()),
+    );
+}
+
+#[test]
+fn flipped_byte_in_signature() {
+    let (env, _, bundle, at) = good();
+    let sigs = &bundle[at.signatures_header + 512..at.payload_header];
+    let value = b"\"signature\": \"";
+    let pos = sigs
+        .windows(value.len())
+        .position(|w| w == value)
+        .expect("the signature field")
+        + value.len();
+    let mut bytes = bundle.clone();
+    let digit = &mut bytes[at.signatures_header + 512 + pos + 10];
+    // Still a lowercase hex digit, so the document parses and only the signature is wrong.
+    *digit = if *digit == b'0' { b'1' } else { b'0' };
+    env.assert_refused(&bytes, &[], &not_matching(env.key_id()));
+}
+
+#[test]
+fn flipped_byte_in_key_id() {
+    let (env, _, bundle, at) = good();
+    let id = env.key_id().to_string();
+    let sigs = &bundle[at.signatures_header + 512..at.payload_header];
+    let pos = sigs
+        .windows(id.len())
+        .position(|w| w == id.as_bytes())
+        .expect("the key id");
+    let mut bytes = bundle.clone();
+    let digit = &mut bytes[at.signatures_header + 512 + pos];
+    *digit = if *digit == b'0' { b'1' } else { b'0' };
+    let changed = std::str::from_utf8(&bytes[at.signatures_header + 512 + pos..][..32])
+        .expect("hex")
+        .to_string();
+    env.assert_refused(
+        &bytes,
+        &[],
+        &format!(
+            "bundle has no valid signature by a trusted key (by keys not trusted here: {changed})"
+        ),
+    );
+}
+
+#[test]
+fn flipped_byte_in_payload() {
+    let (env, draft, bundle, at) = good();
+    let bytes = flipped(&bundle, at.payload + 100);
+    let found = Digest::of(&bytes[at.payload..at.payload_pad]);
+    env.assert_refused(
+        &bytes,
+        &[],
+        &format!(
+            "payload digest mismatch: manifest declares sha256 {}, the bundle holds {found}",
+            draft.manifest.payload.sha256
+        ),
+    );
+}
+
+#[test]
+fn flipped_byte_in_each_tar_header() {
+    let (env, _, bundle, at) = good();
+    for (name, header) in [
+        (entry::MANIFEST, 0),
+        (entry::SIGNATURES, at.signatures_header),
+        (entry::PAYLOAD, at.payload_header),
+    ] {
+        // Byte 140 is inside the mtime field: the checksum no longer matches.
+        let bytes = flipped(&bundle, header + 140);
+        let h: [u8; 512] = bytes[header..header + 512].try_into().expect("a block");
+        let stored = header_sum(
+            bundle[header..header + 512]
+                .try_into()
+                .expect("the original block"),
+        );
+        env.assert_refused(
+            &bytes,
+            &[],
+            &format!(
+                "bundle entry '{name}' has a bad tar header checksum (stored {stored:o}, computed {:o}): \
+                 the file is damaged or not a bundle",
+                header_sum(&h)
+            ),
+        );
+    }
+}
+
+#[test]
+fn flipped_byte_in_padding_and_end_marker() {
+    let (env, _, bundle, at) = good();
+    env.assert_refused(
+        &flipped(&bundle, at.manifest_pad),
+        &[],
+        "bundle entry 'manifest.json' has non-zero bytes in its tar padding",
+    );
+    env.assert_refused(
+        &flipped(&bundle, at.signatures_header - 1),
+        &[],
+        "bundle entry 'manifest.json' has non-zero bytes in its tar padding",
+    );
+    env.assert_refused(
+        &flipped(&bundle, at.payload_pad),
+        &[],
+        "bundle entry 'payload.tar.zst' has non-zero bytes in its tar padding",
+    );
+    for pos in [at.end, at.end + 700, at.len - 1] {
+        env.assert_refused(
+            &flipped(&bundle, pos),
+            &[],
+            "bundle has an unexpected extra entry or bytes where the end-of-archive marker belongs",
+        );
+    }
+}
+
+#[test]
+fn truncated_at_several_offsets() {
+    let (env, draft, bundle, at) = good();
+    let payload_len = draft.payload.len();
+    let short_payload = |len: usize| {
+        format!(
+            "bundle is truncated: entry 'payload.tar.zst' declares {payload_len} bytes but the file has \
+             only {} bytes after its header",
+            len - at.payload
+        )
+    };
+    let cases = [
+        (
+            0,
+            "bundle header of entry 'manifest.json' is truncated: the file ended early".to_string(),
+        ),
+        (
+            300,
+            "bundle header of entry 'manifest.json' is truncated: the file ended early".to_string(),
+        ),
+        (
+            at.manifest + 5,
+            "bundle entry 'manifest.json' is truncated: the file ended early".to_string(),
+        ),
+        (
+            at.manifest_pad + 1,
+            "bundle entry 'manifest.json' is truncated: the file ended early".to_string(),
+        ),
+        (
+            at.signatures_header + 511,
+            "bundle header of entry 'signatures.json' is truncated: the file ended early"
+                .to_string(),
+        ),
+        (
+            at.payload_header + 100,
+            "bundle header of entry 'payload.tar.zst' is truncated: the file ended early"
+                .to_string(),
+        ),
+        (at.payload + 1000, short_payload(at.payload + 1000)),
+        (at.end, short_payload(at.end)),
+        (at.len - 512, short_payload(at.len - 512)),
+        (at.len - 1, short_payload(at.len - 1)),
+    ];
+    for (len, expected) in cases {
+        env.assert_refused(&bundle[..len], &[], &expected);
+    }
+}
+
+#[test]
+fn missing_entry() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let sigs = signatures(&[&env.key], &manifest);
+    let m = tar_entry(entry::MANIFEST, &manifest);
+    let s = tar_entry(entry::SIGNATURES, &sigs);
+    let p = tar_entry(entry::PAYLOAD, &draft.payload);
+    env.assert_refused(
+        &tar_of(&[m.clone(), s.clone()]),
+        &[],
+        "bundle ends before entry 'payload.tar.zst': the entry is missing",
+    );
+    env.assert_refused(
+        &tar_of(&[m, p.clone()]),
+        &[],
+        "bundle entry 'payload.tar.zst' is out of order: entry 2 must be 'signatures.json'",
+    );
+    env.assert_refused(
+        &tar_of(&[s, p]),
+        &[],
+        "bundle entry 'signatures.json' is out of order: entry 1 must be 'manifest.json'",
+    );
+    env.assert_refused(
+        &tar_of(&[]),
+        &[],
+        "bundle ends before entry 'manifest.json': the entry is missing",
+    );
+}
+
+#[test]
+fn extra_entry() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let sigs = signatures(&[&env.key], &manifest);
+    let m = tar_entry(entry::MANIFEST, &manifest);
+    let s = tar_entry(entry::SIGNATURES, &sigs);
+    let p = tar_entry(entry::PAYLOAD, &draft.payload);
+    let extra = tar_entry("notes.txt", b"badger seen at camera 4\n");
+    env.assert_refused(
+        &tar_of(&[m.clone(), s.clone(), p.clone(), extra.clone()]),
+        &[],
+        "bundle has an unexpected extra entry or bytes where the end-of-archive marker belongs",
+    );
+    env.assert_refused(
+        &tar_of(&[m, extra, s, p]),
+        &[],
+        "bundle entry 'notes.txt' is not allowed: entry 2 must be 'signatures.json'",
+    );
+}
+
+#[test]
+fn reordered_entries() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let sigs = signatures(&[&env.key], &manifest);
+    let m = tar_entry(entry::MANIFEST, &manifest);
+    let s = tar_entry(entry::SIGNATURES, &sigs);
+    let p = tar_entry(entry::PAYLOAD, &draft.payload);
+    env.assert_refused(
+        &tar_of(&[s.clone(), m.clone(), p.clone()]),
+        &[],
+        "bundle entry 'signatures.json' is out of order: entry 1 must be 'manifest.json'",
+    );
+    env.assert_refused(
+        &tar_of(&[m, p, s]),
+        &[],
+        "bundle entry 'payload.tar.zst' is out of order: entry 2 must be 'signatures.json'",
+    );
+}
+
+#[test]
+fn trailing_bytes_after_end_marker() {
+    let (env, _, bundle, _) = good();
+    for tail in [&b"x"[..], &[0u8; 512][..], &[0u8; 1][..]] {
+        let mut bytes = bundle.clone();
+        bytes.extend_from_slice(tail);
+        env.assert_refused(
+            &bytes,
+            &[],
+            "bundle has trailing bytes after the end-of-archive marker",
+        );
+    }
+}
+
+/// A header for `name` as a general tar writer would make it: the library's header with
+/// a different name, checksum fixed. `tar::header` itself takes only plain names.
+fn header_named(name: &str, size: usize) -> [u8; 512] {
+    let mut h = tar::header("x", size as u64, CREATED_UNIX);
+    h[..100].fill(0);
+    h[..name.len()].copy_from_slice(name.as_bytes());
+    fix_checksum(&mut h);
+    h
+}
+
+#[test]
+fn entry_names_with_dot_dot_or_absolute_path() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    for name in [
+        "../manifest.json",
+        "/etc/manifest.json",
+        "..",
+        "sub/manifest.json",
+    ] {
+        let bytes = tar_of(&[tar_entry_with_header(
+            header_named(name, manifest.len()),
+            &manifest,
+        )]);
+        env.assert_refused(
+            &bytes,
+            &[],
+            &format!(
+                "bundle entry name '{name}' is a path; bundles hold only plain file names, nothing outside them"
+            ),
+        );
+    }
+}
+
+#[test]
+fn payload_entry_names_with_dot_dot_or_absolute_path() {
+    // Correctly signed, so the inner tar is reached; the staging directory must be removed.
+    let env = Env::new();
+    let model = model_bytes(2000);
+    for name in ["../model.onnx", "/tmp/model.onnx"] {
+        let inner = tar_of(&[
+            tar_entry_with_header(header_named(name, model.len()), &model),
+            tar_entry(entry::LABELS, LABELS),
+        ]);
+        let draft = Draft::with_payload(model.clone(), LABELS.to_vec(), zstd(&inner));
+        env.assert_refused(
+            &draft.signed(&env.key),
+            &[],
+            &format!(
+                "payload entry name '{name}' is a path; bundles hold only plain file names, nothing outside them"
+            ),
+        );
+    }
+}
+
+#[test]
+fn link_and_device_entries() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    for (flag, kind, link) in [
+        (b'2', "a symbolic link", "/etc/passwd"),
+        (b'1', "a hard link", "signatures.json"),
+        (b'3', "a character device", ""),
+        (b'4', "a block device", ""),
+        (b'6', "a FIFO", ""),
+        (b'5', "a directory", ""),
+    ] {
+        let h = retyped(
+            tar::header(entry::MANIFEST, manifest.len() as u64, CREATED_UNIX),
+            flag,
+            link,
+        );
+        env.assert_refused(
+            &tar_of(&[tar_entry_with_header(h, &manifest)]),
+            &[],
+            &format!(
+                "bundle entry 'manifest.json' is {kind} (tar type '{}'); only regular files are allowed",
+                char::from(flag)
+            ),
+        );
+    }
+}
+
+#[test]
+fn link_entries_inside_a_signed_payload() {
+    let env = Env::new();
+    let model = model_bytes(3000);
+    for (flag, kind, link) in [
+        (b'2', "a symbolic link", "/etc/shadow"),
+        (b'1', "a hard link", "model.onnx"),
+    ] {
+        let h = retyped(
+            tar::header(entry::LABELS, LABELS.len() as u64, CREATED_UNIX),
+            flag,
+            link,
+        );
+        let inner = tar_of(&[
+            tar_entry("model.onnx", &model),
+            tar_entry_with_header(h, LABELS),
+        ]);
+        let draft = Draft::with_payload(model.clone(), LABELS.to_vec(), zstd(&inner));
+        env.assert_refused(
+            &draft.signed(&env.key),
+            &[],
+            &format!(
+                "payload entry 'labels.txt' is {kind} (tar type '{}'); only regular files are allowed",
+                char::from(flag)
+            ),
+        );
+    }
+}
+
+#[test]
+fn regular_file_header_naming_a_link_target() {
+    // Type '0' but a link name: a reader that looked only at the link field could be fooled.
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let h = retyped(
+        tar::header(entry::MANIFEST, manifest.len() as u64, CREATED_UNIX),
+        b'0',
+        "/etc/passwd",
+    );
+    env.assert_refused(
+        &tar_of(&[tar_entry_with_header(h, &manifest)]),
+        &[],
+        "bundle entry 'manifest.json' names a link target; only regular files are allowed",
+    );
+}
+
+#[test]
+fn duplicate_names() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let sigs = signatures(&[&env.key], &manifest);
+    let m = tar_entry(entry::MANIFEST, &manifest);
+    let s = tar_entry(entry::SIGNATURES, &sigs);
+    env.assert_refused(
+        &tar_of(&[m.clone(), m.clone(), s.clone()]),
+        &[],
+        "bundle entry 'manifest.json' appears twice",
+    );
+    env.assert_refused(
+        &tar_of(&[m, s.clone(), s]),
+        &[],
+        "bundle entry 'signatures.json' appears twice",
+    );
+    // Inside a signed payload: the model twice instead of model then labels. The model is as
+    // long as the label list, so the payload has the declared size and the tar check decides.
+    let model = model_bytes(LABELS.len());
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry("model.onnx", &model),
+    ]);
+    let draft = Draft::with_payload(model, LABELS.to_vec(), zstd(&inner));
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "payload entry 'model.onnx' appears twice",
+    );
+}
+
+#[test]
+fn manifest_over_64_kib() {
+    let env = Env::new();
+    let draft = Draft::good();
+    // JSON allows trailing whitespace, so this is a valid, signed manifest of the given size.
+    let padded = |len: usize| {
+        let mut m = draft.manifest.to_json();
+        m.resize(len, b' ');
+        m
+    };
+    let over = padded(64 * 1024 + 1);
+    env.assert_refused(
+        &assemble(&over, &signatures(&[&env.key], &over), &draft.payload),
+        &[],
+        "bundle entry 'manifest.json' is 65537 bytes, over the limit of 65536 bytes",
+    );
+    // The boundary itself is allowed: the cap is not off by one.
+    let at_cap = padded(64 * 1024);
+    env.assert_accepted(&assemble(
+        &at_cap,
+        &signatures(&[&env.key], &at_cap),
+        &draft.payload,
+    ));
+}
+
+#[test]
+fn signatures_document_over_64_kib_or_too_many_signatures() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let mut big = signatures(&[&env.key], &manifest);
+    big.resize(64 * 1024 + 1, b' ');
+    env.assert_refused(
+        &assemble(&manifest, &big, &draft.payload),
+        &[],
+        "bundle entry 'signatures.json' is 65537 bytes, over the limit of 65536 bytes",
+    );
+    let keys: Vec<_> = (0..33).map(|i| signing_key(100 + i)).collect();
+    let many = signatures(&keys.iter().collect::<Vec<_>>(), &manifest);
+    env.assert_refused(
+        &assemble(&manifest, &many, &draft.payload),
+        &[],
+        "signatures.json holds 33 signatures, over the limit of 32",
+    );
+}
+
+/// The window size a zstd frame header declares (RFC 8878 section 3.1.1.1.2), so the fixture
+/// is checked to be what it claims before the verifier sees it.
+fn declared_window(frame: &[u8]) -> u64 {
+    // RFC 8878 section 3.1.1: magic 0xFD2FB528, little-endian.
+    assert_eq!(&frame[..4], &[0x28, 0xb5, 0x2f, 0xfd], "zstd frame magic");
+    let descriptor = frame[4];
+    assert_eq!(
+        descriptor & 0x20,
+        0,
+        "not single-segment: a window descriptor follows"
+    );
+    let wd = frame[5];
+    let window_log = 10 + u64::from(wd >> 3);
+    let base = 1u64 << window_log;
+    base + (base / 8) * u64::from(wd & 7)
+}
+
+fn windowed_payload(window_log: u32) -> (Vec<u8>, Vec<u8>) {
+    let model = model_bytes(30 * 1024);
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    // Streaming without a pledged size: zstd cannot shrink the window to the input size.
+    let mut enc = zstd::stream::write::Encoder::new(Vec::new(), 3).expect("encoder");
+    enc.window_log(window_log).expect("window log");
+    std::io::Write::write_all(&mut enc, &inner).expect("compress");
+    (model, enc.finish().expect("finish"))
+}
+
+#[test]
+fn zstd_window_over_8_mib() {
+    let env = Env::new();
+    let (model, payload) = windowed_payload(24);
+    assert_eq!(declared_window(&payload), 16 << 20);
+    let draft = Draft::with_payload(model, LABELS.to_vec(), payload);
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "payload's zstd frame needs a window larger than the 8 MiB this verifier allows \
+         (Frame requires too much memory for decoding)",
+    );
+}
+
+#[test]
+fn zstd_window_of_exactly_8_mib_is_accepted() {
+    // RFC 8878 section 3.1.1.1.2 recommends decoders support windows up to 8 MB; the
+    // boundary must pass.
+    let env = Env::new();
+    let (model, payload) = windowed_payload(23);
+    assert_eq!(declared_window(&payload), 8 << 20);
+    let draft = Draft::with_payload(model, LABELS.to_vec(), payload);
+    env.assert_accepted(&draft.signed(&env.key));
+}
+
+#[test]
+fn payload_decompressing_past_its_declared_size() {
+    // A valid inner tar, then a second zstd frame of 1 MiB of zeros; all signed and digested.
+    // With a 700 KiB model the good part spans several of the decoder's 256 KiB chunks, so
+    // the file writer is busy when the excess is found.
+    let env = Env::new();
+    for model_len in [20 * 1024, 700 * 1024] {
+        let model = model_bytes(model_len);
+        let inner = tar_of(&[
+            tar_entry("model.onnx", &model),
+            tar_entry(entry::LABELS, LABELS),
+        ]);
+        let mut payload = zstd(&inner);
+        payload.extend_from_slice(&zstd(&vec![0u8; 1 << 20]));
+        let bomb = Draft::with_payload(model, LABELS.to_vec(), payload);
+        env.assert_refused(
+            &bomb.signed(&env.key),
+            &[],
+            &format!(
+                "payload decompresses to more than the {} bytes its manifest declares",
+                bomb.manifest.unpacked_tar_len()
+            ),
+        );
+    }
+}
+
+#[test]
+fn payload_with_trailing_non_zstd_bytes() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let mut payload = draft.payload.clone();
+    payload.extend_from_slice(b"trailing junk");
+    let bad = Draft::with_payload(draft.model.clone(), draft.labels.clone(), payload);
+    env.assert_refused(
+        &bad.signed(&env.key),
+        &[],
+        "payload is not valid zstd data: Unknown frame descriptor",
+    );
+}
+
+#[test]
+fn file_digest_or_size_not_matching_the_manifest() {
+    let env = Env::new();
+    let mut draft = Draft::good();
+    let wrong = Digest::of(b"another model");
+    draft.manifest.files[0].sha256 = wrong;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        &format!(
+            "digest mismatch for 'model.onnx': manifest declares sha256 {wrong}, the payload holds {}",
+            Digest::of(&draft.model)
+        ),
+    );
+    let mut draft = Draft::good();
+    draft.manifest.files[1].size += 1;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        &format!(
+            "payload entry 'labels.txt' is {} bytes but the manifest declares {} bytes",
+            LABELS.len(),
+            LABELS.len() + 1
+        ),
+    );
+    let mut draft = Draft::good();
+    draft.manifest.payload.size -= 1;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        &format!(
+            "payload is {} bytes but the manifest declares {} bytes",
+            draft.payload.len(),
+            draft.payload.len() - 1
+        ),
+    );
+}
+
+#[test]
+fn signature_by_an_untrusted_key() {
+    let env = Env::new();
+    let stranger = signing_key(99);
+    env.assert_refused(
+        &Draft::good().signed(&stranger),
+        &[],
+        &format!(
+            "bundle has no valid signature by a trusted key (by keys not trusted here: {})",
+            key_id(&stranger)
+        ),
+    );
+}
+
+/// The identity point of edwards25519, encoded: y = 1, x = 0 (RFC 8032 section 5.1.2
+/// encodes y little-endian with x's sign in the top bit). Section 5.1 names (0, 1) the
+/// neutral element; it has order 1, the smallest order there is.
+const IDENTITY_POINT: [u8; 32] = {
+    let mut p = [0u8; 32];
+    p[0] = 1;
+    p
+};
+
+#[test]
+fn weak_small_order_key_is_refused_as_trust() {
+    use ed25519_dalek::Verifier as _;
+    use ed25519_dalek::pkcs8::EncodePublicKey;
+    use ed25519_dalek::pkcs8::spki::der::pem::LineEnding;
+    let env = Env::new();
+    let weak = ed25519_dalek::VerifyingKey::from_bytes(&IDENTITY_POINT).expect("a curve point");
+    // Under the identity key, R = identity and S = 0 is a "signature" on every message for a
+    // non-strict verifier: the forgery this fixture carries.
+    let forged: [u8; 64] = {
+        let mut s = [0u8; 64];
+        s[..32].copy_from_slice(&IDENTITY_POINT);
+        s
+    };
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let message =
+        ampoule_verify::format::signed_bytes(ampoule_verify::format::context::MANIFEST, &manifest);
+    let sig = ed25519_dalek::Signature::from_bytes(&forged);
+    assert!(weak.verify(&message, &sig).is_ok(), "the forgery is real");
+    assert!(weak.verify_strict(&message, &sig).is_err());
+    let id = KeyId::of_raw_key(&IDENTITY_POINT);
+    let sigs = format!(
+        "{{\"signatures\":[{{\"key_id\":\"{id}\",\"signature\":\"{}\"}}]}}",
+        hex::encode(forged)
+    );
+    let pem = weak.to_public_key_pem(LineEnding::LF).expect("pem");
+    env.write("weak.public.pem", pem.as_bytes());
+    env.write(
+        "hostile.ampoule",
+        &assemble(&manifest, sigs.as_bytes(), &draft.payload),
+    );
+    let before = env.listing();
+    let run = env.run([
+        "verify",
+        "hostile.ampoule",
+        "--trust",
+        "weak.public.pem",
+        "--extract",
+        "unpacked",
+    ]);
+    assert_eq!(
+        (run.code, run.stderr),
+        (
+            1,
+            format!(
+                "ampoule: error: cannot read public key weak.public.pem: public key {id} is a weak \
+                 (small-order) Ed25519 key and cannot be trusted\n"
+            )
+        )
+    );
+    assert_eq!(env.listing(), before);
+}
+
+#[test]
+fn signature_over_a_different_manifest() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let mut other = draft.clone();
+    other.manifest.version = semver::Version::new(1, 0, 1);
+    let manifest = draft.manifest.to_json();
+    let foreign = signatures(&[&env.key], &other.manifest.to_json());
+    env.assert_refused(
+        &assemble(&manifest, &foreign, &draft.payload),
+        &[],
+        &not_matching(env.key_id()),
+    );
+}
+
+#[test]
+fn signature_made_without_the_manifest_context() {
+    // Signing the bare manifest (no domain-separation context) must not count.
+    use ed25519_dalek::Signer;
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let bare = env.key.sign(&manifest).to_bytes();
+    let sigs = format!(
+        "{{\"signatures\":[{{\"key_id\":\"{}\",\"signature\":\"{}\"}}]}}",
+        env.key_id(),
+        hex::encode(bare)
+    );
+    env.assert_refused(
+        &assemble(&manifest, sigs.as_bytes(), &draft.payload),
+        &[],
+        &not_matching(env.key_id()),
+    );
+}
+
+#[test]
+fn unsigned_bundle() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    env.assert_refused(
+        &assemble(&manifest, b"{\"signatures\":[]}", &draft.payload),
+        &[],
+        "bundle is not signed; it needs a signature by a trusted key",
+    );
+}
+
+#[test]
+fn downgrade_and_reinstall() {
+    let env = Env::new();
+    let bundle = Draft::good().signed(&env.key);
+    env.assert_refused(
+        &bundle,
+        &["--installed", "1.2.0"],
+        "bundle version 1.0.0 is not newer than the installed version 1.2.0; refusing a downgrade or reinstall",
+    );
+    env.assert_refused(
+        &bundle,
+        &["--installed", "1.0.0"],
+        "bundle version 1.0.0 is not newer than the installed version 1.0.0; refusing a downgrade or reinstall",
+    );
+}
+
+#[test]
+fn app_version_outside_the_range() {
+    let env = Env::new();
+    let bundle = Draft::good().signed(&env.key);
+    for app in ["3.0.0", "1.9.9", "2.5.0-beta.1"] {
+        env.assert_refused(
+            &bundle,
+            &["--app-version", app],
+            &format!("bundle requires app version >=2.0.0, <3.0.0 but this app is {app}"),
+        );
+    }
+}
+
+#[test]
+fn other_name_or_too_large() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let bundle = draft.signed(&env.key);
+    env.assert_refused(
+        &bundle,
+        &["--name", "nestbox-birds"],
+        "bundle is named 'trailcam-species' but this app accepts only 'nestbox-birds'",
+    );
+    let len = bundle.len();
+    env.assert_refused(
+        &bundle,
+        &["--max-size", &(len - 1).to_string()],
+        &format!(
+            "bundle is {len} bytes, over this app's limit of {} bytes",
+            len - 1
+        ),
+    );
+    let files = draft.manifest.files_len();
+    env.assert_refused(
+        &bundle,
+        &["--max-size", &len.to_string()],
+        &format!("bundle unpacks to {files} bytes, over this app's limit of {len} bytes"),
+    );
+}
+
+#[test]
+fn empty_label_list() {
+    // A signed manifest that declares no labels is refused before its payload is read.
+    let env = Env::new();
+    let mut draft = Draft::good();
+    draft.manifest.label_count = 0;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "manifest declares an empty label list; a bundle needs at least one label",
+    );
+    // A signed manifest that declares one label over an empty labels.txt: refused on unpacking.
+    let model = model_bytes(1000);
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, b""),
+    ]);
+    let mut draft = Draft::with_payload(model, Vec::new(), zstd(&inner));
+    draft.manifest.label_count = 1;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "label list is empty; a model needs at least one label",
+    );
+}
+
+#[test]
+fn label_count_not_matching_the_label_list() {
+    let env = Env::new();
+    let mut draft = Draft::good();
+    draft.manifest.label_count = LABEL_COUNT + 1;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "labels.txt holds 6 labels but the manifest declares 7",
+    );
+}
+
+/// Signs hand-edited manifest text, so the JSON itself is what is hostile.
+fn signed_text(env: &Env, draft: &Draft, manifest: &str) -> Vec<u8> {
+    let m = manifest.as_bytes();
+    assemble(m, &signatures(&[&env.key], m), &draft.payload)
+}
+
+#[test]
+fn manifest_with_an_unknown_field() {
+    let env = Env::new();
+    let draft = Draft::good();
+    let text = String::from_utf8(draft.manifest.to_json()).expect("utf-8");
+    let edited = text.replacen("{\n", "{\n  \"comment\": \"x\",\n", 1);
+    env.assert_refused(
+        &signed_text(&env, &draft, &edited),
+        &[],
+        "manifest is not valid: unknown field `comment`, expected one of `format`, `name`, \
+         `version`, `created`, `requires_app`, `payload`, `files`, `label_count`, `model` at line 2 column 11",
+    );
+}
+
+#[test]
+fn manifest_with_a_duplicate_key() {
+    // A JSON reader that keeps the last value would see a different name than one that keeps
+    // the first (RFC 8259 section 4 leaves duplicate names undefined).
+    let env = Env::new();
+    let draft = Draft::good();
+    let text = String::from_utf8(draft.manifest.to_json()).expect("utf-8");
+    let edited = text.replacen(
+        "  \"name\": \"trailcam-species\",\n",
+        "  \"name\": \"trailcam-species\",\n  \"name\": \"nestbox-birds\",\n",
+        1,
+    );
+    assert_ne!(edited, text);
+    env.assert_refused(
+        &signed_text(&env, &draft, &edited),
+        &[],
+        "manifest is not valid: duplicate field `name` at line 4 column 8",
+    );
+}
+
+#[test]
+fn unsupported_format_version() {
+    let env = Env::new();
+    let mut draft = Draft::good();
+    draft.manifest.format = 2;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "manifest format 2 is not supported (this reader knows format 1); \
+         update ampoule-verify to read newer bundles",
+    );
+}
+
+#[test]
+fn issue_2_gnu_format_tar_is_refused_showing_the_magic_escaped_once() {
+    // GNU tar's default format writes the old GNU magic "ustar  \0", not POSIX "ustar\0" "00".
+    let env = Env::new();
+    let draft = Draft::good();
+    let manifest = draft.manifest.to_json();
+    let mut h = tar::header(entry::MANIFEST, manifest.len() as u64, CREATED_UNIX);
+    h[257..265].copy_from_slice(b"ustar  \0");
+    fix_checksum(&mut h);
+    env.assert_refused(
+        &tar_of(&[tar_entry_with_header(h, &manifest)]),
+        &[],
+        "bundle entry 'manifest.json' is not a POSIX ustar header (magic \"ustar  \\0\"); \
+         write bundles with 'tar --format=ustar'",
+    );
+}
+
+#[test]
+fn issue_2_unreadable_size_field_is_shown_escaped_once() {
+    let env = Env::new();
+    let mut h = tar::header(entry::MANIFEST, 0, CREATED_UNIX);
+    h[124..136].copy_from_slice(b"00000001x50\0");
+    fix_checksum(&mut h);
+    env.assert_refused(
+        &tar_of(&[h.to_vec()]),
+        &[],
+        "bundle entry 'manifest.json' has an unreadable size field \"00000001x50\\0\"",
+    );
+}
+
+#[test]
+fn name_in_the_ustar_prefix_field() {
+    // POSIX joins prefix and name with '/': "../../etc" + "manifest.json" would be a path.
+    let env = Env::new();
+    let mut h = tar::header(entry::MANIFEST, 0, CREATED_UNIX);
+    h[345..354].copy_from_slice(b"../../etc");
+    fix_checksum(&mut h);
+    env.assert_refused(
+        &tar_of(&[h.to_vec()]),
+        &[],
+        "bundle entry 'manifest.json' uses the ustar name prefix field; \
+         entry names must be short plain file names",
+    );
+}
+
+/// A signed draft whose payload is `inner` compressed, declaring the fixture files.
+fn signed_inner(env: &Env, model: &[u8], labels: &[u8], inner: &[u8]) -> Vec<u8> {
+    Draft::with_payload(model.to_vec(), labels.to_vec(), zstd(inner)).signed(&env.key)
+}
+
+#[test]
+fn payload_decompressing_short_of_its_declared_size() {
+    let env = Env::new();
+    let model = model_bytes(5000);
+    let full = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    // The inner tar without its end-of-archive marker, then cut inside the labels' data.
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &full[..full.len() - 1024]),
+        &[],
+        "payload end-of-archive marker is truncated: the file ended early",
+    );
+    let labels_data = tar::entry_len(model.len() as u64) as usize + 512;
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &full[..labels_data + 3]),
+        &[],
+        "payload entry 'labels.txt' is truncated: the file ended early",
+    );
+}
+
+#[test]
+fn damaged_inner_tar_headers_and_padding() {
+    let env = Env::new();
+    let model = model_bytes(5000);
+    let full = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    let labels_header = tar::entry_len(model.len() as u64) as usize;
+    let mut bad_sum = full.clone();
+    bad_sum[labels_header + 140] ^= 1;
+    let h: [u8; 512] = bad_sum[labels_header..labels_header + 512]
+        .try_into()
+        .expect("a block");
+    let stored = header_sum(
+        full[labels_header..labels_header + 512]
+            .try_into()
+            .expect("a block"),
+    );
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &bad_sum),
+        &[],
+        &format!(
+            "payload entry 'labels.txt' has a bad tar header checksum (stored {stored:o}, computed {:o}): \
+             the file is damaged or not a bundle",
+            header_sum(&h)
+        ),
+    );
+    let mut bad_pad = full.clone();
+    bad_pad[labels_header - 1] = b'x';
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &bad_pad),
+        &[],
+        "payload entry 'model.onnx' has non-zero bytes in its tar padding",
+    );
+    let mut extra = full.clone();
+    extra.truncate(full.len() - 1024);
+    extra.extend_from_slice(&tar_entry("notes.txt", b"x"));
+    extra.extend_from_slice(&tar::END_OF_ARCHIVE);
+    let declared = Draft::with_payload(model.clone(), LABELS.to_vec(), Vec::new())
+        .manifest
+        .unpacked_tar_len();
+    env.assert_refused(
+        &signed_inner(&env, &model, LABELS, &extra),
+        &[],
+        &format!("payload decompresses to more than the {declared} bytes its manifest declares"),
+    );
+}
+
+#[test]
+fn payload_that_is_not_zstd_or_labels_not_in_stored_form() {
+    let env = Env::new();
+    let model = model_bytes(5000);
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    // The bare tar, signed and digested but not compressed.
+    let raw = Draft::with_payload(model.clone(), LABELS.to_vec(), inner).signed(&env.key);
+    env.assert_refused(
+        &raw,
+        &[],
+        "payload is not valid zstd data: Unknown frame descriptor",
+    );
+    // CRLF line ends: pack would normalize them, so a bundle holding them was not made by pack.
+    let crlf = b"fox\r\nhare\r\n";
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &model),
+        tar_entry(entry::LABELS, crlf),
+    ]);
+    let mut draft = Draft::with_payload(model, crlf.to_vec(), zstd(&inner));
+    draft.manifest.label_count = 2;
+    env.assert_refused(
+        &draft.signed(&env.key),
+        &[],
+        "labels.txt is not in the stored form (one label per line, each ending in a single '\\n')",
+    );
+}
