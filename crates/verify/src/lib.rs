@@ -15,6 +15,7 @@ pub mod keys;
 pub mod labels;
 pub mod manifest;
 pub mod signature;
+pub mod store;
 pub mod tar;
 pub mod time;
 mod unpack;
@@ -24,6 +25,7 @@ pub use digest::Digest;
 pub use error::{Error, ErrorKind, Result};
 pub use keys::{KeyId, PublicKey, TrustedKeys};
 pub use manifest::Manifest;
+pub use store::{Installed, Release, Store, StoreState};
 pub use time::Timestamp;
 pub use verify::{
     DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Progress, ProgressFn, Stage, Unpacked,

@@ -184,7 +184,7 @@ impl Verifier {
             self.threshold,
         )?;
         let manifest = Manifest::from_json(&layout.manifest)?;
-        self.check_policy(&manifest)?;
+        self.check_policy(&manifest, true)?;
         bundle::check_payload(&mut file, &layout, &manifest, self.progress.as_ref())?;
         Ok(VerifiedBundle {
             file,
@@ -195,32 +195,55 @@ impl Verifier {
         })
     }
 
-    fn check_policy(&self, m: &Manifest) -> Result<()> {
+    /// Re-checks a manifest and its signatures kept in the on-device store: the same
+    /// signature and policy checks as [`Verifier::verify_file`], except the installed-version
+    /// rule, which the store enforces itself from its own state.
+    pub(crate) fn check_stored(
+        &self,
+        what: &str,
+        manifest: &[u8],
+        signatures: &[u8],
+    ) -> Result<(Manifest, SignatureReport)> {
+        let signatures = Signatures::from_json(signatures)?;
+        let report = check_signatures(
+            what,
+            context::MANIFEST,
+            manifest,
+            &signatures.signatures,
+            &self.keys,
+            self.threshold,
+        )?;
+        let manifest = Manifest::from_json(manifest)?;
+        self.check_policy(&manifest, false)?;
+        Ok((manifest, report))
+    }
+
+    fn check_policy(&self, m: &Manifest, check_installed: bool) -> Result<()> {
         let refuse = |message: String| Err(Error::new(ErrorKind::Policy, message));
-        if let Some(name) = &self.name {
-            if &m.name != name {
-                return refuse(format!(
-                    "bundle is named '{}' but this app accepts only '{name}'",
-                    m.name
-                ));
-            }
+        if let Some(name) = &self.name
+            && &m.name != name
+        {
+            return refuse(format!(
+                "bundle is named '{}' but this app accepts only '{name}'",
+                m.name
+            ));
         }
-        if let Some(installed) = &self.installed {
-            if m.version.cmp_precedence(installed) != std::cmp::Ordering::Greater {
-                return refuse(format!(
-                    "bundle version {} is not newer than the installed version {installed}; \
+        if let Some(installed) = self.installed.as_ref().filter(|_| check_installed)
+            && m.version.cmp_precedence(installed) != std::cmp::Ordering::Greater
+        {
+            return refuse(format!(
+                "bundle version {} is not newer than the installed version {installed}; \
                      refusing a downgrade or reinstall",
-                    m.version
-                ));
-            }
+                m.version
+            ));
         }
-        if let Some(app) = &self.app_version {
-            if !m.requires_app.matches(app) {
-                return refuse(format!(
-                    "bundle requires app version {} but this app is {app}",
-                    m.requires_app
-                ));
-            }
+        if let Some(app) = &self.app_version
+            && !m.requires_app.matches(app)
+        {
+            return refuse(format!(
+                "bundle requires app version {} but this app is {app}",
+                m.requires_app
+            ));
         }
         if m.files_len() > self.max_unpacked_bytes {
             return refuse(format!(
