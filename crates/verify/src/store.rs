@@ -643,7 +643,12 @@ impl Store {
             .map_err(|e| Error::io(format!("cannot create {}", releases.display()), e))?;
         sync_dir(&self.dir)?;
         self.commit(&StoreState::empty(), &mut |_| Ok(()))?;
-        sync_dir(&self.dir)
+        sync_dir(&self.dir)?;
+        // The store directory itself may be new too.
+        match self.dir.parent() {
+            Some(parent) if !parent.as_os_str().is_empty() => sync_dir(parent),
+            _ => Ok(()),
+        }
     }
 
     fn lock_file(&self) -> Result<File> {

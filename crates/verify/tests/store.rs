@@ -274,6 +274,53 @@ fn install_refuses_downgrade_reinstall_replayed_feed_and_other_lines() {
 }
 
 #[test]
+fn install_rechecks_the_bundle_with_the_stores_own_keys() {
+    // A bundle verified under one key set cannot enter a store whose app trusts other keys:
+    // the app could never open it.
+    let bundles = Bundles::new();
+    let tmp = tempfile::tempdir().expect("temp dir");
+    let other_keys: ampoule_verify::TrustedKeys =
+        [
+            ampoule_verify::PublicKey::from_verifying_key(&untrusted_key().verifying_key())
+                .expect("key"),
+        ]
+        .into_iter()
+        .collect();
+    let other =
+        ampoule_verify::Verifier::new(other_keys, "1.4.0".parse().expect("v")).expect("verifier");
+    let store = Store::open(tmp.path(), other).expect("open");
+    let e = store
+        .install(bundles.verified("1.0.0"), None, None)
+        .expect_err("refused");
+    assert_eq!(e.kind(), ErrorKind::Signature);
+    assert_eq!(
+        e.to_string(),
+        format!(
+            "the store's verifier refuses the bundle: bundle has no valid signature by a trusted \
+             key (by keys not trusted here: {})",
+            key_id(&signing_key())
+        )
+    );
+    assert_eq!(entries(&tmp.path().join("releases")), Vec::<String>::new());
+    assert_eq!(store.state().expect("state").current, None);
+}
+
+#[test]
+fn a_very_long_version_gets_a_short_release_directory_name() {
+    let bundles = Bundles::new();
+    let tmp = tempfile::tempdir().expect("temp dir");
+    let version = format!("1.0.0-{}", "a".repeat(190));
+    let store = store_with(&bundles, tmp.path(), &[version.as_str()]);
+    let release = store.open_current().expect("checks").expect("installed");
+    let sum = sha256sum(&release.dir.join("manifest.json"));
+    assert_eq!(
+        entries(&tmp.path().join("releases")),
+        [format!("trailcam-species-{}", &sum[..12])]
+    );
+    assert_eq!(release.manifest.version.to_string(), version);
+}
+
+#[test]
 fn rollback_restores_previous_and_keeps_the_version_floor() {
     let bundles = Bundles::new();
     let tmp = tempfile::tempdir().expect("temp dir");
