@@ -36,12 +36,19 @@ pub enum ErrorKind {
     Incompatible,
     /// An inclusion or consistency proof of the audit ledger did not verify.
     Proof,
+    /// The on-device store's files are damaged, inconsistent, or were changed outside the store.
+    Store,
+    /// Another process is updating the store; try again later.
+    Locked,
 }
 
 impl ErrorKind {
     /// Whether this is a refusal of the bundle (as opposed to an I/O or usage problem).
     pub fn is_refusal(self) -> bool {
-        !matches!(self, ErrorKind::Io | ErrorKind::Destination)
+        !matches!(
+            self,
+            ErrorKind::Io | ErrorKind::Destination | ErrorKind::Locked
+        )
     }
 }
 
@@ -70,6 +77,12 @@ impl Error {
             message: doing.into(),
             source: Some(source),
         }
+    }
+
+    /// Puts `prefix` (which names where the error happened) before the message.
+    pub(crate) fn context(mut self, prefix: impl std::fmt::Display) -> Self {
+        self.message = format!("{prefix}: {}", self.message);
+        self
     }
 
     /// What went wrong.

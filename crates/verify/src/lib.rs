@@ -17,6 +17,7 @@ pub mod manifest;
 pub mod merkle;
 pub mod model;
 pub mod signature;
+pub mod store;
 pub mod tar;
 pub mod time;
 mod unpack;
@@ -32,6 +33,7 @@ pub use error::{Error, ErrorKind, Result};
 pub use keys::{KeyId, PublicKey, TrustedKeys};
 pub use manifest::Manifest;
 pub use model::{CompatibilityPolicy, ModelSignature};
+pub use store::{Installed, Release, Store, StoreState};
 pub use time::Timestamp;
 pub use verify::{
     DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Progress, ProgressFn, Stage, Unpacked,

@@ -196,7 +196,7 @@ impl Verifier {
             self.threshold,
         )?;
         let manifest = Manifest::from_json(&layout.manifest)?;
-        self.check_policy(&manifest)?;
+        self.check_policy(&manifest, true)?;
         bundle::check_payload(&mut file, &layout, &manifest, self.progress.as_ref())?;
         Ok(VerifiedBundle {
             file,
@@ -208,7 +208,30 @@ impl Verifier {
         })
     }
 
-    fn check_policy(&self, m: &Manifest) -> Result<()> {
+    /// Re-checks a manifest and its signatures kept in the on-device store: the same
+    /// signature and policy checks as [`Verifier::verify_file`], except the installed-version
+    /// rule, which the store enforces itself from its own state.
+    pub(crate) fn check_stored(
+        &self,
+        what: &str,
+        manifest: &[u8],
+        signatures: &[u8],
+    ) -> Result<(Manifest, SignatureReport)> {
+        let signatures = Signatures::from_json(signatures)?;
+        let report = check_signatures(
+            what,
+            context::MANIFEST,
+            manifest,
+            &signatures.signatures,
+            &self.keys,
+            self.threshold,
+        )?;
+        let manifest = Manifest::from_json(manifest)?;
+        self.check_policy(&manifest, false)?;
+        Ok((manifest, report))
+    }
+
+    fn check_policy(&self, m: &Manifest, check_installed: bool) -> Result<()> {
         let refuse = |message: String| Err(Error::new(ErrorKind::Policy, message));
         if let Some(name) = &self.name
             && &m.name != name
@@ -218,7 +241,7 @@ impl Verifier {
                 m.name
             ));
         }
-        if let Some(installed) = &self.installed
+        if let Some(installed) = self.installed.as_ref().filter(|_| check_installed)
             && m.version.cmp_precedence(installed) != std::cmp::Ordering::Greater
         {
             return refuse(format!(
@@ -299,6 +322,26 @@ impl VerifiedBundle {
         Ok(labels)
     }
 
+    /// The bundle's layout in its file.
+    pub(crate) fn layout(&self) -> &Layout {
+        &self.layout
+    }
+
+    /// Decompresses into `dir`, an existing empty staging directory, with every check that
+    /// [`VerifiedBundle::unpack`] makes before its rename. For the store, which stages and
+    /// renames on its own.
+    pub(crate) fn unpack_into_staging(&self, dir: &Path) -> Result<Vec<String>> {
+        let labels = crate::unpack::stream(&self.source(), Some(dir))?;
+        self.last_checks(&labels, dir)?;
+        Ok(labels)
+    }
+
+    /// The checks that need the unpacked files: required labels, and the model's signature.
+    fn last_checks(&self, labels: &[String], staged: &Path) -> Result<()> {
+        self.check_labels(labels)?;
+        self.check_model_signature(staged)
+    }
+
     fn check_labels(&self, labels: &[String]) -> Result<()> {
         match &self.compatibility {
             Some(policy) => policy.check_required_labels(labels),
@@ -342,8 +385,7 @@ impl VerifiedBundle {
     /// failure nothing is left behind.
     pub fn unpack(self, dest: &Path) -> Result<Unpacked> {
         let labels = crate::unpack::unpack_to(&self.source(), dest, &|labels, staged| {
-            self.check_labels(labels)?;
-            self.check_model_signature(staged)
+            self.last_checks(labels, staged)
         })?;
         Ok(Unpacked {
             model: dest.join(&self.manifest.model().path),

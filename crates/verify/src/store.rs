@@ -1,0 +1,1217 @@
+//! The on-device store: where an app keeps the verified model it runs, the one before it (for
+//! rollback), and what it must remember to refuse old bundles, laid out so that a crash or
+//! power cut at any moment leaves either the old or the new model, never neither.
+//!
+//! # Layout
+//!
+//! ```text
+//! STORE/
+//!   state.json                      the one commit point (see below)
+//!   lock                            empty; updaters hold an exclusive lock on it
+//!   .state.json.tmp-<pid>-<n>       a new state.json being written (removed if left over)
+//!   releases/
+//!     <name>-<version>-<12 hex>/    one verified release; the hex is the start of the
+//!       model.<ext>                 SHA-256 of its exact manifest bytes
+//!       labels.txt
+//!       manifest.json               the exact signed manifest bytes
+//!       signatures.json             the bundle's signatures over them
+//!     .staging-<pid>-<n>/           a release being unpacked (removed if left over)
+//! ```
+//!
+//! `state.json` names the current and the previous release (directory name, version and
+//! manifest SHA-256), the model line's name, the highest version ever accepted, and per
+//! channel the highest version and feed sequence accepted. Pointers and rollback state live
+//! in this one file on purpose: replacing it (write a temporary file, fsync it, rename it over
+//! `state.json`, fsync the store directory) switches the model and raises the rollback floor
+//! in one atomic step, so no crash can leave a new model running with an old floor, or a
+//! raised floor with the old model (which would refuse the retried install).
+//!
+//! # Install
+//!
+//! Under the lock: remove leftovers of crashed runs; check the bundle against the store (its
+//! signatures again under the store's keys, the model line, a version newer than any accepted,
+//! a feed sequence not lower than the channel's); unpack into a staging directory with every
+//! file fsynced; write the manifest and signatures beside them; fsync the staging directory;
+//! rename it into `releases/`; fsync `releases/`; then commit `state.json` as above. Until the
+//! rename of `state.json` the old model stays current; after it, the new one is. The numbered
+//! points of this sequence are [`Step`]s; tests crash a child process at each one.
+//!
+//! # Opening
+//!
+//! [`Store::open_current`] checks the current release fully before the app uses it: the
+//! manifest's SHA-256 against `state.json`, its signatures against the app's trusted keys, its
+//! policy against the app (name, app-version range, size limit), the directory's name and
+//! entries, and every file's size and SHA-256 (one read of the model). A store edited between
+//! runs (a changed byte, a swapped manifest, a hand-edited `state.json`, a deleted release) is
+//! refused with what is wrong. Opening takes no lock, so an app never waits for a slow
+//! update: `state.json` is replaced atomically, and an update never deletes the current or the
+//! previous release. Only [`Store::gc`] (and the clean-up at the start of every update)
+//! deletes releases, those that are neither current nor previous; an open that loses such a
+//! race sees `state.json` change and checks again.
+//!
+//! # Rollback
+//!
+//! [`Store::rollback`] makes the previous release current again, after checking it fully,
+//! and forgets the release it replaces (there is no previous afterwards). The highest version
+//! accepted is not lowered: the rolled-back-from version, and anything not newer than it, is
+//! refused from then on, so a fixed model must carry a newer version. Going back to the
+//! previous release is allowed despite the floor because the store verified and ran it before.
+//!
+//! # Limits of what a store can detect
+//!
+//! Anyone who can write the store directory can do what the store's own code does. The checks
+//! catch damage and edits that do not re-create a consistent store; they cannot stop someone
+//! with the device's write access from deleting the whole store (which resets rollback
+//! protection) or restoring an older consistent copy of it. A missing `state.json` beside
+//! existing releases is refused rather than treated as a fresh store.
+
+use std::collections::BTreeMap;
+use std::fs::{self, File, OpenOptions, TryLockError};
+use std::io::{self, Read, Write};
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use semver::Version;
+use serde::{Deserialize, Serialize};
+
+use crate::digest::{Digest, hash_reader};
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::{entry, limit};
+use crate::keys::KeyId;
+use crate::labels::parse_stored_labels;
+use crate::manifest::{Manifest, Role};
+use crate::unpack::sync_dir;
+use crate::verify::{VerifiedBundle, Verifier};
+
+/// The format version of `state.json`.
+pub const STATE_FORMAT: u32 = 1;
+/// The state file's name in the store directory.
+pub const STATE_FILE: &str = "state.json";
+/// The lock file's name in the store directory.
+pub const LOCK_FILE: &str = "lock";
+/// The directory holding the releases.
+pub const RELEASES_DIR: &str = "releases";
+/// The most channels a store remembers.
+pub const MAX_CHANNELS: usize = 64;
+
+const STATE_BYTES: u64 = 64 * 1024;
+const STATE_TEMP_PREFIX: &str = ".state.json.tmp-";
+const STAGING_PREFIX: &str = ".staging-";
+const RELEASE_NAME_BYTES: usize = 200;
+const DIGEST_PREFIX_HEX: usize = 12;
+const LOCK_POLL: Duration = Duration::from_millis(20);
+const OPEN_ATTEMPTS: usize = 3;
+
+/// A release named in `state.json`.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[non_exhaustive]
+pub struct ReleaseRef {
+    /// The release's directory name under `releases/`.
+    pub release: String,
+    /// The release's version, as its manifest states it.
+    pub version: Version,
+    /// SHA-256 of the release's exact manifest bytes.
+    pub manifest_sha256: Digest,
+}
+
+/// What the store accepted on one channel.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[non_exhaustive]
+pub struct ChannelState {
+    /// The highest version installed from this channel.
+    pub highest_version: Version,
+    /// The highest feed sequence accepted on this channel, if a feed ever named one.
+    pub highest_sequence: Option<u64>,
+}
+
+/// The store's state (`state.json`): which releases are current and previous, and what it
+/// must remember to refuse old bundles.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[non_exhaustive]
+pub struct StoreState {
+    /// Always [`STATE_FORMAT`].
+    pub format: u32,
+    /// The model line this store holds, set by the first install.
+    pub name: Option<String>,
+    /// The highest version ever accepted; never lowered, not even by a rollback.
+    pub highest_version: Option<Version>,
+    /// The release the app runs.
+    pub current: Option<ReleaseRef>,
+    /// The release before it, kept for [`Store::rollback`].
+    pub previous: Option<ReleaseRef>,
+    /// What was accepted per channel.
+    pub channels: BTreeMap<String, ChannelState>,
+}
+
+impl StoreState {
+    fn empty() -> Self {
+        StoreState {
+            format: STATE_FORMAT,
+            name: None,
+            highest_version: None,
+            current: None,
+            previous: None,
+            channels: BTreeMap::new(),
+        }
+    }
+
+    fn to_json(&self) -> Vec<u8> {
+        let mut bytes = serde_json::to_vec_pretty(self)
+            .expect("a store state of plain strings and numbers always serializes");
+        bytes.push(b'\n');
+        bytes
+    }
+
+    /// Checks what the types alone do not: names that stay inside `releases/`, and a state
+    /// that the store's own code could have written.
+    fn validate(&self) -> std::result::Result<(), String> {
+        if self.format != STATE_FORMAT {
+            return Err(format!(
+                "format {} is not supported (this reader knows format {STATE_FORMAT})",
+                self.format
+            ));
+        }
+        if let Some(name) = &self.name {
+            crate::manifest::check_name(name)
+                .map_err(|_| format!("'{name}' is not a bundle name"))?;
+        }
+        for pointer in [&self.current, &self.previous].into_iter().flatten() {
+            if !is_release_name(&pointer.release) {
+                return Err(format!(
+                    "it names release '{}', which is not a release directory name",
+                    pointer.release.escape_debug()
+                ));
+            }
+            match &self.highest_version {
+                Some(h) if pointer.version.cmp_precedence(h).is_le() => {}
+                _ => {
+                    return Err(format!(
+                        "release {} has version {}, above the highest version accepted ({})",
+                        pointer.release,
+                        pointer.version,
+                        shown_version(self.highest_version.as_ref())
+                    ));
+                }
+            }
+            if self.name.is_none() {
+                return Err(format!(
+                    "it names release {} but no model line",
+                    pointer.release
+                ));
+            }
+        }
+        if let (Some(c), Some(p)) = (&self.current, &self.previous)
+            && c.release == p.release
+        {
+            return Err(format!(
+                "release {} is both current and previous",
+                c.release
+            ));
+        }
+        if self.channels.len() > MAX_CHANNELS {
+            return Err(format!(
+                "it lists {} channels, over the limit of {MAX_CHANNELS}",
+                self.channels.len()
+            ));
+        }
+        for (channel, state) in &self.channels {
+            if check_channel(channel).is_err() {
+                return Err(format!(
+                    "'{}' is not a channel name",
+                    channel.escape_debug()
+                ));
+            }
+            match &self.highest_version {
+                Some(h) if state.highest_version.cmp_precedence(h).is_le() => {}
+                _ => {
+                    return Err(format!(
+                        "channel '{channel}' records version {}, above the highest version accepted ({})",
+                        state.highest_version,
+                        shown_version(self.highest_version.as_ref())
+                    ));
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+fn shown_version(v: Option<&Version>) -> String {
+    v.map_or_else(|| "none".to_string(), Version::to_string)
+}
+
+/// A release in the store whose every check passed just now.
+#[derive(Debug, Clone)]
+#[non_exhaustive]
+pub struct Release {
+    /// The release's directory.
+    pub dir: PathBuf,
+    /// The model file.
+    pub model: PathBuf,
+    /// The label list file.
+    pub labels_path: PathBuf,
+    /// The labels, in output-index order.
+    pub labels: Vec<String>,
+    /// The verified manifest.
+    pub manifest: Manifest,
+    /// SHA-256 of the exact manifest bytes.
+    pub manifest_sha256: Digest,
+    /// The trusted keys whose signatures verified.
+    pub signers: Vec<KeyId>,
+}
+
+/// What an install did.
+#[derive(Debug, Clone)]
+#[non_exhaustive]
+pub struct Installed {
+    /// The release now current.
+    pub release: Release,
+    /// The version it replaced, now the previous release.
+    pub replaced: Option<Version>,
+}
+
+/// A point in an install or rollback, in order. A test hook sees each one after it is reached
+/// and may fail it or stop the process there; nothing else uses them.
+#[doc(hidden)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum Step {
+    /// The lock is held, leftovers are removed, the request is allowed; nothing is written.
+    Locked,
+    /// An empty staging directory exists.
+    StagingCreated,
+    /// The model and labels are in the staging directory, fsynced.
+    FilesWritten,
+    /// The manifest and signatures are beside them, fsynced.
+    MetadataWritten,
+    /// The staging directory itself is fsynced.
+    StagingSynced,
+    /// The staging directory is renamed into `releases/`.
+    ReleaseRenamed,
+    /// `releases/` is fsynced.
+    ReleasesSynced,
+    /// The new `state.json` is written to a temporary file and fsynced.
+    StateWritten,
+    /// The temporary file is renamed over `state.json`: the commit.
+    StateRenamed,
+    /// The store directory is fsynced; the operation is durable.
+    StoreSynced,
+}
+
+impl Step {
+    /// Every step of an install, in order.
+    pub const INSTALL: [Step; 10] = [
+        Step::Locked,
+        Step::StagingCreated,
+        Step::FilesWritten,
+        Step::MetadataWritten,
+        Step::StagingSynced,
+        Step::ReleaseRenamed,
+        Step::ReleasesSynced,
+        Step::StateWritten,
+        Step::StateRenamed,
+        Step::StoreSynced,
+    ];
+
+    /// Every step of a rollback, in order.
+    pub const ROLLBACK: [Step; 4] = [
+        Step::Locked,
+        Step::StateWritten,
+        Step::StateRenamed,
+        Step::StoreSynced,
+    ];
+
+    /// The step's name in messages.
+    pub fn name(self) -> &'static str {
+        match self {
+            Step::Locked => "locked",
+            Step::StagingCreated => "staging-created",
+            Step::FilesWritten => "files-written",
+            Step::MetadataWritten => "metadata-written",
+            Step::StagingSynced => "staging-synced",
+            Step::ReleaseRenamed => "release-renamed",
+            Step::ReleasesSynced => "releases-synced",
+            Step::StateWritten => "state-written",
+            Step::StateRenamed => "state-renamed",
+            Step::StoreSynced => "store-synced",
+        }
+    }
+
+    /// Whether the operation's change is visible once this step is reached.
+    pub fn is_committed(self) -> bool {
+        matches!(self, Step::StateRenamed | Step::StoreSynced)
+    }
+}
+
+/// A test hook called at every [`Step`]; an error fails the operation at that point.
+#[doc(hidden)]
+pub type StepHook<'a> = &'a mut dyn FnMut(Step) -> io::Result<()>;
+
+/// An on-device store of verified releases (see the module documentation).
+#[derive(Debug, Clone)]
+pub struct Store {
+    dir: PathBuf,
+    verifier: Verifier,
+    lock_wait: Duration,
+}
+
+/// Holds the updaters' lock until dropped (closing the file releases it, also when the
+/// process dies).
+struct UpdateLock {
+    _file: File,
+}
+
+impl Store {
+    /// Opens the store in `dir`, creating it (and `dir`) if it does not exist yet. `verifier`
+    /// says which keys and policy the stored model must still satisfy whenever it is opened;
+    /// it is normally the same verifier that checks new bundles.
+    ///
+    /// A directory with releases but no `state.json` is refused: the state was lost or
+    /// removed, and with it the memory of which versions are too old.
+    pub fn open(dir: &Path, verifier: Verifier) -> Result<Store> {
+        let store = Store {
+            dir: dir.to_path_buf(),
+            verifier,
+            lock_wait: Duration::ZERO,
+        };
+        fs::create_dir_all(dir)
+            .map_err(|e| Error::io(format!("cannot create store {}", dir.display()), e))?;
+        if !store.state_path().exists() {
+            store.initialize()?;
+        }
+        store.state()?;
+        Ok(store)
+    }
+
+    /// How long an update waits for another process's update to finish before failing;
+    /// zero (the default) fails at once.
+    pub fn wait_for_lock(mut self, wait: Duration) -> Self {
+        self.lock_wait = wait;
+        self
+    }
+
+    /// The store's directory.
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
+    /// The store's state as `state.json` holds it now (parsed and checked for consistency,
+    /// releases not checked).
+    pub fn state(&self) -> Result<StoreState> {
+        let path = self.state_path();
+        let bytes = match read_capped(&path, STATE_BYTES) {
+            Ok(bytes) => bytes,
+            Err(ReadCapped::Missing) => {
+                return Err(Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "{} is missing; the store was damaged or changed outside ampoule-verify",
+                        path.display()
+                    ),
+                ));
+            }
+            Err(ReadCapped::TooLarge) => {
+                return Err(Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "{} is over {STATE_BYTES} bytes; the store was damaged or changed outside ampoule-verify",
+                        path.display()
+                    ),
+                ));
+            }
+            Err(ReadCapped::Io(e)) => {
+                return Err(Error::io(format!("cannot read {}", path.display()), e));
+            }
+        };
+        let state: StoreState = serde_json::from_slice(&bytes).map_err(|e| {
+            Error::new(
+                ErrorKind::Store,
+                format!("{} is not valid: {e}", path.display()),
+            )
+        })?;
+        state.validate().map_err(|why| {
+            Error::new(
+                ErrorKind::Store,
+                format!("{} is inconsistent: {why}", path.display()),
+            )
+        })?;
+        Ok(state)
+    }
+
+    /// Checks the current release fully (see the module documentation) and returns its
+    /// paths; `None` if nothing was installed yet. Costs one read of the model file.
+    pub fn open_current(&self) -> Result<Option<Release>> {
+        let mut state = self.state()?;
+        for _ in 1..OPEN_ATTEMPTS {
+            let Some(pointer) = &state.current else {
+                return Ok(None);
+            };
+            match self.check_release(pointer) {
+                Ok(release) => return Ok(Some(release)),
+                Err(e) => {
+                    // An update may have switched and cleaned up while this read the old
+                    // release; only a failure under an unchanged state.json counts.
+                    let now = self.state()?;
+                    if now.current == state.current {
+                        return Err(e);
+                    }
+                    state = now;
+                }
+            }
+        }
+        match &state.current {
+            Some(pointer) => self.check_release(pointer).map(Some),
+            None => Ok(None),
+        }
+    }
+
+    /// Installs a verified bundle as the current release; the one it replaces becomes the
+    /// previous release. `channel` and `feed_sequence` say where the bundle came from: the
+    /// store refuses a feed sequence lower than the channel's highest, and a version not newer
+    /// than the highest it ever accepted. A failure before the commit leaves the store as it
+    /// was.
+    pub fn install(
+        &self,
+        bundle: VerifiedBundle,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+    ) -> Result<Installed> {
+        self.install_with_hook(bundle, channel, feed_sequence, &mut |_| Ok(()))
+    }
+
+    /// [`Store::install`] with a hook called at every [`Step`]; for crash and fault tests.
+    #[doc(hidden)]
+    pub fn install_with_hook(
+        &self,
+        bundle: VerifiedBundle,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+        hook: StepHook<'_>,
+    ) -> Result<Installed> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        self.sweep(&state)?;
+        let (manifest, report) = self
+            .verifier
+            .check_stored(
+                "bundle",
+                &bundle.layout().manifest,
+                &bundle.layout().signatures,
+            )
+            .map_err(|e| e.context("the store's verifier refuses the bundle"))?;
+        let manifest_sha256 = Digest::of(&bundle.layout().manifest);
+        let next = self.next_state(&state, &manifest, manifest_sha256, channel, feed_sequence)?;
+        let release = release_dir_name(&manifest, &manifest_sha256);
+        let releases = self.releases_path();
+        let dest = releases.join(&release);
+        if fs::symlink_metadata(&dest).is_ok() {
+            return Err(Error::new(
+                ErrorKind::Store,
+                format!(
+                    "{} already exists although state.json does not name it; run gc and try again",
+                    dest.display()
+                ),
+            ));
+        }
+        step(hook, Step::Locked)?;
+
+        let mut staging = Staging::create(&releases)?;
+        step(hook, Step::StagingCreated)?;
+        let labels = bundle.unpack_into_staging(&staging.path)?;
+        step(hook, Step::FilesWritten)?;
+        write_synced(
+            &staging.path.join(entry::MANIFEST),
+            &bundle.layout().manifest,
+        )?;
+        write_synced(
+            &staging.path.join(entry::SIGNATURES),
+            &bundle.layout().signatures,
+        )?;
+        step(hook, Step::MetadataWritten)?;
+        sync_dir(&staging.path)?;
+        step(hook, Step::StagingSynced)?;
+        fs::rename(&staging.path, &dest).map_err(|e| {
+            Error::io(
+                format!("cannot move the unpacked release to {}", dest.display()),
+                e,
+            )
+        })?;
+        // From here a failure must remove the release directory, not the staging name.
+        staging.path = dest.clone();
+        step(hook, Step::ReleaseRenamed)?;
+        sync_dir(&releases)?;
+        step(hook, Step::ReleasesSynced)?;
+
+        self.commit(&next, hook)?;
+        staging.keep = true;
+        step(hook, Step::StateRenamed)?;
+        sync_dir(&self.dir)?;
+        step(hook, Step::StoreSynced)?;
+
+        Ok(Installed {
+            release: Release {
+                model: dest.join(&manifest.model().path),
+                labels_path: dest.join(&manifest.labels().path),
+                dir: dest,
+                labels,
+                manifest,
+                manifest_sha256,
+                signers: report.valid,
+            },
+            replaced: state.current.map(|c| c.version),
+        })
+    }
+
+    /// Makes the previous release current again, for when the app's own health check fails
+    /// on a new model. The previous release is checked fully first; if it fails, nothing
+    /// changes. The release rolled back from stays refused: the highest version accepted is
+    /// not lowered, so only a newer version can be installed next.
+    pub fn rollback(&self) -> Result<Release> {
+        self.rollback_with_hook(&mut |_| Ok(()))
+    }
+
+    /// [`Store::rollback`] with a hook called at every [`Step`]; for crash and fault tests.
+    #[doc(hidden)]
+    pub fn rollback_with_hook(&self, hook: StepHook<'_>) -> Result<Release> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        self.sweep(&state)?;
+        let Some(previous) = &state.previous else {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "store {} has no previous release to roll back to",
+                    self.dir.display()
+                ),
+            ));
+        };
+        let release = self
+            .check_release(previous)
+            .map_err(|e| e.context("cannot roll back, the previous release failed its check"))?;
+        let mut next = state.clone();
+        next.current = Some(previous.clone());
+        next.previous = None;
+        step(hook, Step::Locked)?;
+        self.commit(&next, hook)?;
+        step(hook, Step::StateRenamed)?;
+        sync_dir(&self.dir)?;
+        step(hook, Step::StoreSynced)?;
+        Ok(release)
+    }
+
+    /// Removes every release that is neither current nor previous, and whatever crashed
+    /// updates left behind (staging directories, temporary state files). Returns what was
+    /// removed. Every update does this first as well.
+    pub fn gc(&self) -> Result<Vec<PathBuf>> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        self.sweep(&state)
+    }
+
+    fn state_path(&self) -> PathBuf {
+        self.dir.join(STATE_FILE)
+    }
+
+    fn releases_path(&self) -> PathBuf {
+        self.dir.join(RELEASES_DIR)
+    }
+
+    /// Creates `releases/` and the first `state.json`, under the lock so that two processes
+    /// opening a new store at once do not both write it.
+    fn initialize(&self) -> Result<()> {
+        let lock = self.lock_file()?;
+        lock.lock()
+            .map_err(|e| Error::io(format!("cannot lock store {}", self.dir.display()), e))?;
+        if self.state_path().exists() {
+            return Ok(());
+        }
+        let releases = self.releases_path();
+        if let Ok(entries) = fs::read_dir(&releases) {
+            for entry in entries {
+                let entry = entry
+                    .map_err(|e| Error::io(format!("cannot list {}", releases.display()), e))?;
+                let name = entry.file_name();
+                if !name.to_string_lossy().starts_with(STAGING_PREFIX) {
+                    return Err(Error::new(
+                        ErrorKind::Store,
+                        format!(
+                            "store {} holds releases but no {STATE_FILE}; it was damaged or changed \
+                             outside ampoule-verify (move it aside and install again)",
+                            self.dir.display()
+                        ),
+                    ));
+                }
+            }
+        }
+        fs::create_dir_all(&releases)
+            .map_err(|e| Error::io(format!("cannot create {}", releases.display()), e))?;
+        sync_dir(&self.dir)?;
+        self.commit(&StoreState::empty(), &mut |_| Ok(()))?;
+        sync_dir(&self.dir)?;
+        // The store directory itself may be new too.
+        match self.dir.parent() {
+            Some(parent) if !parent.as_os_str().is_empty() => sync_dir(parent),
+            _ => Ok(()),
+        }
+    }
+
+    fn lock_file(&self) -> Result<File> {
+        let path = self.dir.join(LOCK_FILE);
+        OpenOptions::new()
+            .read(true)
+            .write(true)
+            .create(true)
+            .truncate(false)
+            .open(&path)
+            .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))
+    }
+
+    /// Takes the updaters' exclusive lock, waiting up to `lock_wait`.
+    fn lock(&self) -> Result<UpdateLock> {
+        let file = self.lock_file()?;
+        let deadline = Instant::now() + self.lock_wait;
+        loop {
+            match file.try_lock() {
+                Ok(()) => return Ok(UpdateLock { _file: file }),
+                Err(TryLockError::WouldBlock) => {
+                    let now = Instant::now();
+                    if now >= deadline {
+                        let waited = if self.lock_wait.is_zero() {
+                            String::new()
+                        } else {
+                            format!(" (waited {} ms)", self.lock_wait.as_millis())
+                        };
+                        return Err(Error::new(
+                            ErrorKind::Locked,
+                            format!(
+                                "store {} is being updated by another process{waited}; try again later",
+                                self.dir.display()
+                            ),
+                        ));
+                    }
+                    std::thread::sleep(LOCK_POLL.min(deadline - now));
+                }
+                Err(TryLockError::Error(e)) => {
+                    return Err(Error::io(
+                        format!("cannot lock store {}", self.dir.display()),
+                        e,
+                    ));
+                }
+            }
+        }
+    }
+
+    /// The state after installing `manifest`, or the refusal.
+    fn next_state(
+        &self,
+        state: &StoreState,
+        manifest: &Manifest,
+        manifest_sha256: Digest,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+    ) -> Result<StoreState> {
+        let refuse = |message: String| Err(Error::new(ErrorKind::Policy, message));
+        if let Some(name) = &state.name
+            && &manifest.name != name
+        {
+            return refuse(format!(
+                "store {} holds model line '{name}'; refusing bundle '{}' (use one store per model line)",
+                self.dir.display(),
+                manifest.name
+            ));
+        }
+        if let Some(highest) = &state.highest_version
+            && manifest.version.cmp_precedence(highest).is_le()
+        {
+            return refuse(format!(
+                "bundle version {} is not newer than {highest}, the highest version this store \
+                     accepted; refusing a downgrade or reinstall",
+                manifest.version
+            ));
+        }
+        let mut next = state.clone();
+        match (channel, feed_sequence) {
+            (None, Some(sequence)) => {
+                return refuse(format!(
+                    "feed sequence {sequence} was given without a channel; name the channel the feed came from"
+                ));
+            }
+            (None, None) => {}
+            (Some(channel), sequence) => {
+                check_channel(channel)?;
+                let known = next.channels.get(channel);
+                if let (Some(sequence), Some(highest)) =
+                    (sequence, known.and_then(|c| c.highest_sequence))
+                    && sequence < highest
+                {
+                    return refuse(format!(
+                        "feed sequence {sequence} for channel '{channel}' is lower than {highest}, \
+                             the highest this store accepted; refusing a replayed feed"
+                    ));
+                }
+                if known.is_none() && next.channels.len() >= MAX_CHANNELS {
+                    return refuse(format!(
+                        "store {} already tracks {MAX_CHANNELS} channels; refusing a new channel '{channel}'",
+                        self.dir.display()
+                    ));
+                }
+                let highest_sequence = sequence.or(known.and_then(|c| c.highest_sequence));
+                next.channels.insert(
+                    channel.to_string(),
+                    ChannelState {
+                        highest_version: manifest.version.clone(),
+                        highest_sequence,
+                    },
+                );
+            }
+        }
+        next.name = Some(manifest.name.clone());
+        next.highest_version = Some(manifest.version.clone());
+        next.previous = state.current.clone();
+        next.current = Some(ReleaseRef {
+            release: release_dir_name(manifest, &manifest_sha256),
+            version: manifest.version.clone(),
+            manifest_sha256,
+        });
+        Ok(next)
+    }
+
+    /// Writes `state` to a temporary file, fsyncs it and renames it over `state.json`.
+    /// Errors before the rename leave the old `state.json` and no temporary file.
+    fn commit(&self, state: &StoreState, hook: StepHook<'_>) -> Result<()> {
+        let path = self.state_path();
+        let mut temp = TempFile {
+            path: self
+                .dir
+                .join(format!("{STATE_TEMP_PREFIX}{}", unique_suffix())),
+            keep: false,
+        };
+        write_synced(&temp.path, &state.to_json())?;
+        step(hook, Step::StateWritten)?;
+        fs::rename(&temp.path, &path)
+            .map_err(|e| Error::io(format!("cannot replace {}", path.display()), e))?;
+        temp.keep = true;
+        Ok(())
+    }
+
+    /// Removes leftovers and releases that `state` names neither current nor previous.
+    fn sweep(&self, state: &StoreState) -> Result<Vec<PathBuf>> {
+        let keep: Vec<&str> = [&state.current, &state.previous]
+            .into_iter()
+            .flatten()
+            .map(|p| p.release.as_str())
+            .collect();
+        let mut removed = Vec::new();
+        let releases = self.releases_path();
+        for entry in list_dir(&releases)? {
+            let name = entry.to_string_lossy();
+            if !keep.contains(&name.as_ref()) {
+                let path = releases.join(&entry);
+                remove_any(&path)?;
+                removed.push(path);
+            }
+        }
+        for entry in list_dir(&self.dir)? {
+            if entry.to_string_lossy().starts_with(STATE_TEMP_PREFIX) {
+                let path = self.dir.join(&entry);
+                remove_any(&path)?;
+                removed.push(path);
+            }
+        }
+        if !removed.is_empty() {
+            sync_dir(&releases)?;
+            sync_dir(&self.dir)?;
+        }
+        removed.sort();
+        Ok(removed)
+    }
+
+    /// Checks one stored release fully; every error names the release.
+    fn check_release(&self, pointer: &ReleaseRef) -> Result<Release> {
+        let name = &pointer.release;
+        self.check_release_inner(pointer)
+            .map_err(|e| e.context(format_args!("stored release {name}")))
+    }
+
+    fn check_release_inner(&self, pointer: &ReleaseRef) -> Result<Release> {
+        let damaged = |message: String| Error::new(ErrorKind::Store, message);
+        let dir = self.releases_path().join(&pointer.release);
+        match fs::symlink_metadata(&dir) {
+            Ok(meta) if meta.is_dir() => {}
+            Ok(_) => return Err(damaged(format!("{} is not a directory", dir.display()))),
+            Err(e) if e.kind() == io::ErrorKind::NotFound => {
+                return Err(damaged(format!("{} is missing", dir.display())));
+            }
+            Err(e) => return Err(Error::io(format!("cannot read {}", dir.display()), e)),
+        }
+        let manifest_bytes = read_member(&dir, entry::MANIFEST, limit::MANIFEST_BYTES)?;
+        let manifest_sha256 = Digest::of(&manifest_bytes);
+        if manifest_sha256 != pointer.manifest_sha256 {
+            return Err(damaged(format!(
+                "{} has sha256 {manifest_sha256} but {STATE_FILE} records {}; the store was \
+                 changed outside ampoule-verify",
+                entry::MANIFEST,
+                pointer.manifest_sha256
+            )));
+        }
+        let signatures = read_member(&dir, entry::SIGNATURES, limit::SIGNATURES_BYTES)?;
+        let (manifest, report) =
+            self.verifier
+                .check_stored("manifest", &manifest_bytes, &signatures)?;
+        if manifest.version != pointer.version {
+            return Err(damaged(format!(
+                "{STATE_FILE} records version {} but the manifest says {}",
+                pointer.version, manifest.version
+            )));
+        }
+        let expected = release_dir_name(&manifest, &manifest_sha256);
+        if expected != pointer.release {
+            return Err(damaged(format!(
+                "the directory name does not match its manifest, which gives {expected}"
+            )));
+        }
+        let allowed = [
+            manifest.model().path.as_str(),
+            manifest.labels().path.as_str(),
+            entry::MANIFEST,
+            entry::SIGNATURES,
+        ];
+        for found in list_dir(&dir)? {
+            let found = found.to_string_lossy();
+            if !allowed.contains(&found.as_ref()) {
+                return Err(damaged(format!(
+                    "it holds an unexpected entry '{}'",
+                    found.escape_debug()
+                )));
+            }
+        }
+        let mut labels = None;
+        for file in &manifest.files {
+            let path = dir.join(&file.path);
+            let opened = open_member(&dir, &file.path)?;
+            let len = opened
+                .metadata()
+                .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?
+                .len();
+            let size_error = |len: u64| {
+                Error::new(
+                    ErrorKind::Digest,
+                    format!(
+                        "'{}' is {len} bytes but the manifest declares {} bytes",
+                        file.path, file.size
+                    ),
+                )
+            };
+            if len != file.size {
+                return Err(size_error(len));
+            }
+            let (found, read) = if file.role == Role::Labels {
+                // Bounded by the format's cap on labels.txt, checked in Manifest::validate.
+                let mut bytes = Vec::new();
+                (&opened)
+                    .take(file.size + 1)
+                    .read_to_end(&mut bytes)
+                    .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
+                let found = Digest::of(&bytes);
+                let read = bytes.len() as u64;
+                labels = Some(bytes);
+                (found, read)
+            } else {
+                hash_reader(&opened, file.size + 1)
+                    .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?
+            };
+            if read != file.size {
+                return Err(size_error(read));
+            }
+            if found != file.sha256 {
+                return Err(Error::new(
+                    ErrorKind::Digest,
+                    format!(
+                        "digest mismatch for '{}': manifest declares sha256 {}, the store holds {found}",
+                        file.path, file.sha256
+                    ),
+                ));
+            }
+        }
+        let labels = parse_stored_labels(&labels.unwrap_or_default())?;
+        if labels.len() != manifest.label_count as usize {
+            return Err(Error::new(
+                ErrorKind::Manifest,
+                format!(
+                    "labels.txt holds {} labels but the manifest declares {}",
+                    labels.len(),
+                    manifest.label_count
+                ),
+            ));
+        }
+        Ok(Release {
+            model: dir.join(&manifest.model().path),
+            labels_path: dir.join(&manifest.labels().path),
+            dir,
+            labels,
+            manifest,
+            manifest_sha256,
+            signers: report.valid,
+        })
+    }
+}
+
+fn step(hook: StepHook<'_>, step: Step) -> Result<()> {
+    hook(step).map_err(|e| Error::io(format!("store step {} failed", step.name()), e))
+}
+
+/// Checks a channel name: the same rule as bundle names.
+fn check_channel(channel: &str) -> Result<()> {
+    crate::manifest::check_name(channel).map_err(|_| {
+        Error::new(
+            ErrorKind::Policy,
+            format!(
+                "channel name '{}' is not allowed: use 1 to {} lowercase letters, digits, '-', '_' \
+                 or '.', starting with a letter or digit",
+                channel.escape_debug(),
+                limit::NAME_BYTES
+            ),
+        )
+    })
+}
+
+/// The directory name of a release: `<name>-<version>-<first 12 hex digits of the manifest's
+/// SHA-256>`, or `<name>-<12 hex>` when a very long version would make it too long for a file
+/// name. Bundle names and SemVer versions use only characters safe in file names.
+pub fn release_dir_name(manifest: &Manifest, manifest_sha256: &Digest) -> String {
+    let hex = manifest_sha256.to_hex();
+    let short = &hex[..DIGEST_PREFIX_HEX];
+    let full = format!("{}-{}-{short}", manifest.name, manifest.version);
+    if full.len() <= RELEASE_NAME_BYTES {
+        full
+    } else {
+        format!("{}-{short}", manifest.name)
+    }
+}
+
+/// Whether `name` could be a release directory name: never empty, hidden, or a path.
+fn is_release_name(name: &str) -> bool {
+    !name.is_empty()
+        && name.len() <= RELEASE_NAME_BYTES
+        && name.as_bytes()[0].is_ascii_alphanumeric()
+        && name
+            .bytes()
+            .all(|b| b.is_ascii_alphanumeric() || b"-_.+".contains(&b))
+}
+
+enum ReadCapped {
+    Missing,
+    TooLarge,
+    Io(io::Error),
+}
+
+/// Reads a whole small file, refusing more than `cap` bytes.
+fn read_capped(path: &Path, cap: u64) -> std::result::Result<Vec<u8>, ReadCapped> {
+    let file = File::open(path).map_err(|e| match e.kind() {
+        io::ErrorKind::NotFound => ReadCapped::Missing,
+        _ => ReadCapped::Io(e),
+    })?;
+    let mut bytes = Vec::new();
+    file.take(cap + 1)
+        .read_to_end(&mut bytes)
+        .map_err(ReadCapped::Io)?;
+    if bytes.len() as u64 > cap {
+        return Err(ReadCapped::TooLarge);
+    }
+    Ok(bytes)
+}
+
+/// Opens a file of a stored release, refusing anything but a regular file.
+fn open_member(dir: &Path, name: &str) -> Result<File> {
+    let path = dir.join(name);
+    match fs::symlink_metadata(&path) {
+        Ok(meta) if meta.is_file() => {}
+        Ok(_) => {
+            return Err(Error::new(
+                ErrorKind::Store,
+                format!("{name} is not a regular file"),
+            ));
+        }
+        Err(e) if e.kind() == io::ErrorKind::NotFound => {
+            return Err(Error::new(ErrorKind::Store, format!("{name} is missing")));
+        }
+        Err(e) => return Err(Error::io(format!("cannot read {}", path.display()), e)),
+    }
+    File::open(&path).map_err(|e| Error::io(format!("cannot open {}", path.display()), e))
+}
+
+/// Reads a small file of a stored release whole, refusing more than `cap` bytes.
+fn read_member(dir: &Path, name: &str, cap: u64) -> Result<Vec<u8>> {
+    let file = open_member(dir, name)?;
+    let mut bytes = Vec::new();
+    file.take(cap + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| Error::io(format!("cannot read {}", dir.join(name).display()), e))?;
+    if bytes.len() as u64 > cap {
+        return Err(Error::new(
+            ErrorKind::Store,
+            format!("{name} is over the limit of {cap} bytes"),
+        ));
+    }
+    Ok(bytes)
+}
+
+fn list_dir(dir: &Path) -> Result<Vec<std::ffi::OsString>> {
+    let entries =
+        fs::read_dir(dir).map_err(|e| Error::io(format!("cannot list {}", dir.display()), e))?;
+    let mut names = Vec::new();
+    for entry in entries {
+        let entry = entry.map_err(|e| Error::io(format!("cannot list {}", dir.display()), e))?;
+        names.push(entry.file_name());
+    }
+    names.sort();
+    Ok(names)
+}
+
+/// Removes a file, link or directory tree without following links.
+fn remove_any(path: &Path) -> Result<()> {
+    let result = match fs::symlink_metadata(path) {
+        Ok(meta) if meta.is_dir() => fs::remove_dir_all(path),
+        Ok(_) => fs::remove_file(path),
+        Err(e) if e.kind() == io::ErrorKind::NotFound => Ok(()),
+        Err(e) => Err(e),
+    };
+    result.map_err(|e| Error::io(format!("cannot remove {}", path.display()), e))
+}
+
+/// Creates `path` (which must not exist), writes `bytes` and flushes them to disk.
+fn write_synced(path: &Path, bytes: &[u8]) -> Result<()> {
+    let mut file = OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(path)
+        .map_err(|e| Error::io(format!("cannot create {}", path.display()), e))?;
+    file.write_all(bytes)
+        .map_err(|e| Error::io(format!("cannot write {}", path.display()), e))?;
+    file.sync_all()
+        .map_err(|e| Error::io(format!("cannot flush {} to disk", path.display()), e))
+}
+
+fn unique_suffix() -> String {
+    let nanos = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.subsec_nanos());
+    format!("{}-{nanos:x}", std::process::id())
+}
+
+/// A staging directory (later the renamed release) that is removed unless kept.
+struct Staging {
+    path: PathBuf,
+    keep: bool,
+}
+
+impl Staging {
+    fn create(releases: &Path) -> Result<Staging> {
+        for attempt in 0..100u32 {
+            let path = releases.join(format!("{STAGING_PREFIX}{}-{attempt}", unique_suffix()));
+            match fs::create_dir(&path) {
+                Ok(()) => return Ok(Staging { path, keep: false }),
+                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+                Err(e) => {
+                    return Err(Error::io(
+                        format!(
+                            "cannot create a staging directory in {}",
+                            releases.display()
+                        ),
+                        e,
+                    ));
+                }
+            }
+        }
+        Err(Error::new(
+            ErrorKind::Destination,
+            format!(
+                "cannot find a free staging directory name in {}",
+                releases.display()
+            ),
+        ))
+    }
+}
+
+impl Drop for Staging {
+    fn drop(&mut self) {
+        if !self.keep {
+            let _ = fs::remove_dir_all(&self.path);
+        }
+    }
+}
+
+/// A temporary file that is removed unless kept.
+struct TempFile {
+    path: PathBuf,
+    keep: bool,
+}
+
+impl Drop for TempFile {
+    fn drop(&mut self) {
+        if !self.keep {
+            let _ = fs::remove_file(&self.path);
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn release_names_stay_inside_releases() {
+        for good in [
+            "trailcam-species-1.2.0-0123456789ab",
+            "a-1.0.0-rc.1+build.5-abcdef012345",
+        ] {
+            assert!(is_release_name(good), "{good}");
+        }
+        for bad in [
+            "",
+            ".",
+            "..",
+            "../x",
+            "a/b",
+            ".staging-1",
+            "-a",
+            "a b",
+            "a\\b",
+        ] {
+            assert!(!is_release_name(bad), "{bad}");
+        }
+        assert!(!is_release_name(&"a".repeat(RELEASE_NAME_BYTES + 1)));
+    }
+
+    #[test]
+    fn state_validation_refuses_pointers_above_the_floor_and_unsafe_names() {
+        let pointer = |release: &str, version: &str| ReleaseRef {
+            release: release.into(),
+            version: version.parse().expect("test version"),
+            manifest_sha256: Digest::of(b"x"),
+        };
+        let mut state = StoreState::empty();
+        state.name = Some("fox".into());
+        state.highest_version = Some(Version::new(1, 0, 0));
+        state.current = Some(pointer("fox-2.0.0-0123456789ab", "2.0.0"));
+        assert_eq!(
+            state.validate(),
+            Err("release fox-2.0.0-0123456789ab has version 2.0.0, above the highest version accepted (1.0.0)".into())
+        );
+        state.current = Some(pointer("../fox", "1.0.0"));
+        assert_eq!(
+            state.validate(),
+            Err("it names release '../fox', which is not a release directory name".into())
+        );
+        state.current = Some(pointer("fox-1.0.0-0123456789ab", "1.0.0"));
+        assert_eq!(state.validate(), Ok(()));
+        state.previous = state.current.clone();
+        assert_eq!(
+            state.validate(),
+            Err("release fox-1.0.0-0123456789ab is both current and previous".into())
+        );
+    }
+}
