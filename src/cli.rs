@@ -67,6 +67,15 @@ Exit code 1 means the bundle was refused; the message says which check failed.")
   ampoule inspect species-1.1.0.ampoule --trust release.public.pem --json")]
     Inspect(InspectArgs),
 
+    /// Show what changed between two bundles: labels (reordering is flagged loudly),
+    /// tensors, parameters, sizes, signers.
+    #[command(after_help = "Examples:
+  ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule
+  ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule --json
+
+diff reads both payloads to compare the label lists; it does not check signatures.")]
+    Diff(DiffArgs),
+
     /// Run the trail-camera story end to end on generated data.
     #[command(after_help = "Example:
   ampoule demo                 (works in a fresh temporary directory and removes it)
@@ -181,6 +190,14 @@ pub struct InspectArgs {
     /// listed but not checked).
     #[arg(long, value_name = "PUB.pem")]
     pub trust: Vec<PathBuf>,
+}
+
+#[derive(Args, Debug)]
+pub struct DiffArgs {
+    /// The older bundle.
+    pub old: PathBuf,
+    /// The newer bundle.
+    pub new: PathBuf,
 }
 
 #[derive(Args, Debug)]

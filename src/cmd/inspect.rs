@@ -52,6 +52,40 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
         ));
     }
     human.push_str(&format!("labels   {}\n", m.label_count));
+    match &m.model {
+        Some(sig) => {
+            human.push_str(&format!(
+                "model    {}{}{}, {} parameters in {} weight tensors, weights {}\n",
+                sig.format,
+                sig.opset
+                    .map(|o| format!(", opset {o}"))
+                    .unwrap_or_default(),
+                sig.producer
+                    .as_ref()
+                    .map(|p| format!(", made by {p}"))
+                    .unwrap_or_default(),
+                sig.parameters,
+                sig.weight_tensors,
+                if sig.weights_8bit {
+                    "8-bit"
+                } else {
+                    "not 8-bit"
+                },
+            ));
+            for v in &sig.inputs {
+                human.push_str(&format!("input    {v}\n"));
+            }
+            for v in &sig.outputs {
+                human.push_str(&format!("output   {v}\n"));
+            }
+            for line in sig.size_report().to_string().lines() {
+                human.push_str(&format!("weights  {line}\n"));
+            }
+        }
+        None => human.push_str(
+            "model    opaque (not a format ampoule reads; no tensor signature recorded)\n",
+        ),
+    }
     if signatures.signatures.is_empty() {
         human.push_str("signers  none: this bundle is UNSIGNED\n");
     }
@@ -85,6 +119,7 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
                         else { "untrusted" },
                 })
             }).collect::<Vec<_>>(),
+            "size_report": m.model.as_ref().map(|s| s.size_report()),
             "manifest": m,
         }),
     )

@@ -1,6 +1,7 @@
 //! One module per subcommand: each turns its raw arguments into checked settings, does the
 //! work through `ampoule_verify` and `pack`, and reports through `Output`.
 
+pub mod diff;
 pub mod inspect;
 pub mod keygen;
 pub mod pack;

@@ -429,6 +429,25 @@ pub struct ValueSignature {
     pub shape: Option<Vec<Dim>>,
 }
 
+/// Shown as `image: float32 [N, 3, 96, 96]`; a non-tensor value shows its kind, and `?`
+/// stands for an undefined dtype or an unrecorded shape.
+impl fmt::Display for ValueSignature {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{}: ", self.name)?;
+        if self.kind != ValueKind::Tensor {
+            write!(f, "{} ", self.kind.name())?;
+        }
+        match self.dtype {
+            Some(dtype) => write!(f, "{dtype} ")?,
+            None => f.write_str("? ")?,
+        }
+        match &self.shape {
+            Some(shape) => write!(f, "{}", ShapeDisplay(shape)),
+            None => f.write_str("[?]"),
+        }
+    }
+}
+
 /// Bytes of weight data per dtype, in a stable (by name) order. In JSON an object such as
 /// `{"float32":1152,"int8":216}`; a dtype named twice is refused.
 #[derive(Debug, Clone, Default, PartialEq, Eq, Serialize)]
@@ -649,7 +668,7 @@ fn name_list(values: &[ValueSignature]) -> String {
 /// The estimate uses the common rule of thumb for linear 8-bit quantization: each float32
 /// weight becomes one byte, a quarter of its size; other dtypes are counted as they are. Scales
 /// and zero points add a little, and layers left in float add more, so it is an estimate.
-#[derive(Debug, Clone, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
 #[non_exhaustive]
 pub struct SizeReport {
     /// Weight bytes per dtype, as recorded.

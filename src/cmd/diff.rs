@@ -1,0 +1,270 @@
+//! `ampoule diff`: what changed between two releases, with the changes that silently break
+//! an app (reordered labels, changed tensors) called out first.
+
+use std::collections::{BTreeSet, HashMap};
+use std::path::Path;
+
+use ampoule_verify::bundle::Unverified;
+use ampoule_verify::model::{ModelSignature, ValueSignature};
+use ampoule_verify::{KeyId, Manifest};
+use anyhow::{Context, Result};
+use serde::Serialize;
+use serde_json::json;
+
+use crate::cli::DiffArgs;
+use crate::output::Output;
+
+/// One bundle as the diff sees it.
+struct Side {
+    manifest: Manifest,
+    labels: Vec<String>,
+    signers: BTreeSet<KeyId>,
+    size: u64,
+}
+
+fn load(path: &Path) -> Result<Side> {
+    let mut bundle = Unverified::open(path)?;
+    // The labels sit inside the payload; reading them means checking the whole payload.
+    let labels = bundle
+        .dangerous_check_contents()
+        .with_context(|| format!("cannot read the labels of {}", path.display()))?;
+    Ok(Side {
+        signers: bundle
+            .signatures
+            .signatures
+            .iter()
+            .map(|s| s.key_id)
+            .collect(),
+        size: bundle.layout.file_len,
+        manifest: bundle.manifest,
+        labels,
+    })
+}
+
+/// A label whose output index changed: every prediction of that class now means another.
+#[derive(Serialize)]
+struct Moved {
+    label: String,
+    old_index: usize,
+    new_index: usize,
+}
+
+/// A tensor present in both signatures whose dtype or shape changed.
+#[derive(Serialize)]
+struct Changed {
+    old: String,
+    new: String,
+}
+
+#[derive(Serialize, Default)]
+struct TensorDiff {
+    added: Vec<String>,
+    removed: Vec<String>,
+    changed: Vec<Changed>,
+}
+
+fn tensor_diff(old: &[ValueSignature], new: &[ValueSignature]) -> TensorDiff {
+    let mut diff = TensorDiff::default();
+    for n in new {
+        match old.iter().find(|o| o.name == n.name) {
+            None => diff.added.push(n.to_string()),
+            Some(o) if o != n => diff.changed.push(Changed {
+                old: o.to_string(),
+                new: n.to_string(),
+            }),
+            Some(_) => {}
+        }
+    }
+    for o in old {
+        if !new.iter().any(|n| n.name == o.name) {
+            diff.removed.push(o.to_string());
+        }
+    }
+    diff
+}
+
+fn moved_labels(old: &[String], new: &[String]) -> Vec<Moved> {
+    let new_index: HashMap<&str, usize> = new
+        .iter()
+        .enumerate()
+        .map(|(i, l)| (l.as_str(), i))
+        .collect();
+    old.iter()
+        .enumerate()
+        .filter_map(|(old_index, label)| {
+            let &new_index = new_index.get(label.as_str())?;
+            (new_index != old_index).then(|| Moved {
+                label: label.clone(),
+                old_index,
+                new_index,
+            })
+        })
+        .collect()
+}
+
+fn signature_parts(sig: Option<&ModelSignature>) -> (&[ValueSignature], &[ValueSignature]) {
+    sig.map_or((&[], &[]), |s| (s.inputs.as_slice(), s.outputs.as_slice()))
+}
+
+fn signed_change(old: u64, new: u64) -> String {
+    let delta = new as i128 - old as i128;
+    if delta == 0 {
+        format!("{new} (unchanged)")
+    } else if old == 0 {
+        format!("{old} -> {new}")
+    } else {
+        format!(
+            "{old} -> {new} ({delta:+}, {:+.1}%)",
+            delta as f64 * 100.0 / old as f64
+        )
+    }
+}
+
+pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
+    let old = load(&args.old)?;
+    let new = load(&args.new)?;
+    let (om, nm) = (&old.manifest, &new.manifest);
+    let added: Vec<&String> = new
+        .labels
+        .iter()
+        .filter(|l| !old.labels.contains(l))
+        .collect();
+    let removed: Vec<&String> = old
+        .labels
+        .iter()
+        .filter(|l| !new.labels.contains(l))
+        .collect();
+    let moved = moved_labels(&old.labels, &new.labels);
+    let (old_in, old_out) = signature_parts(om.model.as_ref());
+    let (new_in, new_out) = signature_parts(nm.model.as_ref());
+    let inputs = tensor_diff(old_in, new_in);
+    let outputs = tensor_diff(old_out, new_out);
+    let params = |m: &Manifest| m.model.as_ref().map_or(0, |s| s.parameters);
+    let signers_added: Vec<String> = new
+        .signers
+        .difference(&old.signers)
+        .map(|k| k.to_string())
+        .collect();
+    let signers_removed: Vec<String> = old
+        .signers
+        .difference(&new.signers)
+        .map(|k| k.to_string())
+        .collect();
+
+    let mut human = String::new();
+    let mut line = |text: String| {
+        human.push_str(&text);
+        human.push('\n');
+    };
+    line(format!(
+        "{} {} -> {} {}",
+        om.name, om.version, nm.name, nm.version
+    ));
+    if !moved.is_empty() {
+        line(format!(
+            "WARNING: {} label(s) changed output index; an app that maps indices to labels itself will report the wrong species:",
+            moved.len()
+        ));
+        for m in &moved {
+            line(format!(
+                "  '{}' moved from index {} to {}",
+                m.label, m.old_index, m.new_index
+            ));
+        }
+    }
+    for (what, diff) in [("input", &inputs), ("output", &outputs)] {
+        for c in &diff.changed {
+            line(format!("WARNING: {what} changed: {} -> {}", c.old, c.new));
+        }
+        for a in &diff.added {
+            line(format!("{what} added: {a}"));
+        }
+        for r in &diff.removed {
+            line(format!("WARNING: {what} removed: {r}"));
+        }
+    }
+    line(format!(
+        "labels: {} -> {}; added: {}; removed: {}",
+        old.labels.len(),
+        new.labels.len(),
+        if added.is_empty() {
+            "none".to_string()
+        } else {
+            added
+                .iter()
+                .map(|l| format!("'{l}'"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        },
+        if removed.is_empty() {
+            "none".to_string()
+        } else {
+            removed
+                .iter()
+                .map(|l| format!("'{l}'"))
+                .collect::<Vec<_>>()
+                .join(", ")
+        },
+    ));
+    line(format!(
+        "parameters: {}",
+        signed_change(params(om), params(nm))
+    ));
+    line(format!(
+        "model bytes: {}",
+        signed_change(om.model().size, nm.model().size)
+    ));
+    line(format!(
+        "bundle bytes: {}",
+        signed_change(old.size, new.size)
+    ));
+    if om.requires_app != nm.requires_app {
+        line(format!(
+            "requires app: {} -> {}",
+            om.requires_app, nm.requires_app
+        ));
+    }
+    if signers_added.is_empty() && signers_removed.is_empty() {
+        line("signers: unchanged".to_string());
+    } else {
+        line(format!(
+            "signers: added {}; removed {}",
+            if signers_added.is_empty() {
+                "none".into()
+            } else {
+                signers_added.join(", ")
+            },
+            if signers_removed.is_empty() {
+                "none".into()
+            } else {
+                signers_removed.join(", ")
+            },
+        ));
+    }
+    line(
+        "(signatures not checked: diff compares contents; use verify to check who signed)"
+            .to_string(),
+    );
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "old": { "name": om.name, "version": om.version.to_string(), "bundle": args.old },
+            "new": { "name": nm.name, "version": nm.version.to_string(), "bundle": args.new },
+            "labels": {
+                "old_count": old.labels.len(),
+                "new_count": new.labels.len(),
+                "added": added,
+                "removed": removed,
+                "reordered": moved,
+            },
+            "inputs": inputs,
+            "outputs": outputs,
+            "parameters": { "old": params(om), "new": params(nm) },
+            "model_bytes": { "old": om.model().size, "new": nm.model().size },
+            "bundle_bytes": { "old": old.size, "new": new.size },
+            "requires_app": { "old": om.requires_app.to_string(), "new": nm.requires_app.to_string() },
+            "signers": { "added": signers_added, "removed": signers_removed },
+        }),
+    )
+}

@@ -1,0 +1,257 @@
+//! Issue 6 through the real binary: pack records the model's signature as the reference
+//! libraries read it, refuses a label list that does not fit the classifier output, and
+//! `diff` and `inspect` report what changed.
+
+mod common;
+
+use common::{Env, NAME, PUBLIC, REQUIRES_APP, SECRET};
+use serde_json::Value;
+
+/// A trail-camera classifier made with the `onnx` Python package (1.23.2) by
+/// crates/verify/tests/data/models/gen_models.py, and what that package reports about it.
+const F32_ONNX: &[u8] = include_bytes!("../crates/verify/tests/data/models/trailcam-f32.onnx");
+const F32_REFERENCE: &str =
+    include_str!("../crates/verify/tests/data/models/trailcam-f32.onnx.json");
+
+const SEVEN: &str = "fox\nroe deer\nwild boar\nbadger\nhare\nempty frame\npine marten\n";
+
+fn pack(
+    env: &Env,
+    model: &str,
+    labels: &str,
+    version: &str,
+    out: &str,
+    extra: &[&str],
+) -> common::Run {
+    let mut args = vec![
+        "--json",
+        "pack",
+        "--model",
+        model,
+        "--labels",
+        labels,
+        "--name",
+        NAME,
+        "--version",
+        version,
+        "--requires-app",
+        REQUIRES_APP,
+        "--key",
+        SECRET,
+        "-o",
+        out,
+    ];
+    args.extend_from_slice(extra);
+    env.run(&args)
+}
+
+fn json(run: &common::Run) -> Value {
+    serde_json::from_str(&run.stdout).unwrap_or_else(|e| panic!("not JSON ({e}): {run:?}"))
+}
+
+/// The recorded tensor shape in our JSON form, from the reference report's form (the onnx
+/// package reports `dim_param` as a string and `dim_value` as a number, as we do).
+fn reference_shape(reference: &Value, side: &str) -> Value {
+    reference[side][0]["shape"].clone()
+}
+
+#[test]
+fn pack_records_the_signature_the_onnx_package_reports() {
+    let env = Env::new();
+    env.write("f32.onnx", F32_ONNX);
+    env.write("seven.txt", SEVEN.as_bytes());
+    let run = pack(&env, "f32.onnx", "seven.txt", "1.0.0", "a.ampoule", &[]);
+    assert_eq!(run.code, 0, "{run:?}");
+    let model = &json(&run)["manifest"]["model"];
+    let reference: Value = serde_json::from_str(F32_REFERENCE).expect("reference JSON");
+    assert_eq!(model["format"], "onnx");
+    assert_eq!(model["opset"], reference["opset"]);
+    assert_eq!(model["ir_version"], reference["ir_version"]);
+    assert_eq!(model["inputs"][0]["name"], reference["inputs"][0]["name"]);
+    assert_eq!(
+        model["inputs"][0]["shape"],
+        reference_shape(&reference, "inputs")
+    );
+    assert_eq!(model["outputs"][0]["name"], reference["outputs"][0]["name"]);
+    assert_eq!(
+        model["outputs"][0]["shape"],
+        reference_shape(&reference, "outputs")
+    );
+    assert_eq!(model["weight_tensors"], reference["initializer_count"]);
+
+    // The device reads the same signature again from the unpacked file and accepts it.
+    let run = env.run([
+        "verify",
+        "a.ampoule",
+        "--trust",
+        PUBLIC,
+        "--app-version",
+        "2.1.0",
+        "--extract",
+        "out",
+    ]);
+    assert_eq!(run.code, 0, "{run:?}");
+}
+
+#[test]
+fn pack_refuses_labels_that_do_not_fit_the_classifier_output_unless_overridden() {
+    let env = Env::new();
+    env.write("f32.onnx", F32_ONNX);
+    env.write(
+        "six.txt",
+        b"fox\nroe deer\nwild boar\nbadger\nhare\nempty frame\n",
+    );
+    let run = pack(&env, "f32.onnx", "six.txt", "1.0.0", "a.ampoule", &[]);
+    assert_eq!(run.code, 1, "{run:?}");
+    assert_eq!(
+        run.stderr,
+        "ampoule: error: label list refused; fix the label file, or pass --allow-label-mismatch \
+         if the model really has a different number of outputs than labels: the label list has 6 \
+         labels, but output 'species' has 7 classes (shape [N, 7])\n"
+    );
+    assert!(!env.path("a.ampoule").exists());
+
+    let run = pack(
+        &env,
+        "f32.onnx",
+        "six.txt",
+        "1.0.0",
+        "a.ampoule",
+        &["--allow-label-mismatch"],
+    );
+    assert_eq!(run.code, 0, "{run:?}");
+    assert!(
+        run.stderr.contains("warning: the label list has 6 labels"),
+        "{run:?}"
+    );
+
+    let run = pack(
+        &env,
+        "f32.onnx",
+        "six.txt",
+        "1.0.1",
+        "b.ampoule",
+        &["--classifier-output", "scores"],
+    );
+    assert_eq!(run.code, 1, "{run:?}");
+    assert_eq!(
+        run.stderr,
+        "ampoule: error: the model has no output 'scores' (its outputs: 'species')\n"
+    );
+}
+
+#[test]
+fn pack_refuses_a_file_that_claims_to_be_onnx_but_is_not() {
+    let env = Env::new();
+    env.write("broken.onnx", b"\x0a\xff\xff\xff\xff\x0f");
+    env.write("seven.txt", SEVEN.as_bytes());
+    let run = pack(&env, "broken.onnx", "seven.txt", "1.0.0", "a.ampoule", &[]);
+    assert_eq!(run.code, 1, "{run:?}");
+    assert!(
+        run.stderr
+            .starts_with("ampoule: error: cannot read the model's signature from broken.onnx: "),
+        "{run:?}"
+    );
+    assert!(!env.path("a.ampoule").exists());
+}
+
+#[test]
+fn diff_flags_reordered_labels_and_changed_outputs() {
+    let env = Env::new();
+    env.write("f32.onnx", F32_ONNX);
+    env.write("seven.txt", SEVEN.as_bytes());
+    env.write(
+        "swapped.txt",
+        b"roe deer\nfox\nwild boar\nbadger\nhare\nempty frame\npine marten\n",
+    );
+    assert_eq!(
+        pack(&env, "f32.onnx", "seven.txt", "1.0.0", "a.ampoule", &[]).code,
+        0
+    );
+    assert_eq!(
+        pack(
+            &env,
+            "f32.onnx",
+            "swapped.txt",
+            "1.0.1",
+            "b.ampoule",
+            &[]
+        )
+        .code,
+        0
+    );
+    let run = env.run(["diff", "a.ampoule", "b.ampoule"]);
+    assert_eq!(run.code, 0, "{run:?}");
+    assert!(
+        run.stdout.contains(
+            "WARNING: 2 label(s) changed output index; an app that maps indices to labels itself will report the wrong species:\n  'fox' moved from index 0 to 1\n  'roe deer' moved from index 1 to 0\n"
+        ),
+        "{}",
+        run.stdout
+    );
+    let run = env.run(["--json", "diff", "a.ampoule", "b.ampoule"]);
+    let doc = json(&run);
+    assert_eq!(doc["labels"]["reordered"][0]["label"], "fox");
+    assert_eq!(doc["labels"]["added"], serde_json::json!([]));
+
+    // The fixture model of Env has 6 outputs; diffing against it shows the output change.
+    let run = env.run([
+        "pack",
+        "--model",
+        common::MODEL,
+        "--labels",
+        common::LABELS_FILE,
+        "--name",
+        NAME,
+        "--version",
+        "0.9.0",
+        "--key",
+        SECRET,
+        "-o",
+        "c.ampoule",
+    ]);
+    assert_eq!(run.code, 0, "{run:?}");
+    let doc = json(&env.run(["--json", "diff", "c.ampoule", "a.ampoule"]));
+    assert_eq!(
+        doc["outputs"]["changed"][0]["old"],
+        "species: float32 [N, 6]"
+    );
+    assert_eq!(
+        doc["outputs"]["changed"][0]["new"],
+        "species: float32 [N, 7]"
+    );
+    assert_eq!(
+        doc["inputs"]["changed"][0]["old"],
+        "image: float32 [N, 3, 8, 8]"
+    );
+    assert_eq!(doc["labels"]["added"], serde_json::json!(["pine marten"]));
+}
+
+#[test]
+fn inspect_shows_the_signature_and_the_8bit_estimate() {
+    let env = Env::new();
+    env.write("f32.onnx", F32_ONNX);
+    env.write("seven.txt", SEVEN.as_bytes());
+    assert_eq!(
+        pack(&env, "f32.onnx", "seven.txt", "1.0.0", "a.ampoule", &[]).code,
+        0
+    );
+    let run = env.run(["inspect", "a.ampoule"]);
+    assert!(
+        run.stdout
+            .contains("input    image: float32 [N, 3, 96, 96]\n"),
+        "{}",
+        run.stdout
+    );
+    assert!(
+        run.stdout.contains("output   species: float32 [N, 7]\n"),
+        "{}",
+        run.stdout
+    );
+    // 588 float32 bytes (the onnx package's report) quantized to 8 bits: a quarter, 147
+    // (the common rule of thumb for linear 8-bit quantization).
+    assert!(run.stdout.contains("about 147 bytes"), "{}", run.stdout);
+    let doc = json(&env.run(["--json", "inspect", "a.ampoule"]));
+    assert_eq!(doc["size_report"]["float32_bytes"], 588);
+    assert_eq!(doc["size_report"]["float32_as_8bit_bytes"], 147);
+}
