@@ -28,6 +28,8 @@ pub enum ErrorKind {
     Policy,
     /// The destination for extraction or installation is not usable.
     Destination,
+    /// A trust set is not valid, has expired, or is not newer than the one trusted now.
+    TrustSet,
 }
 
 impl ErrorKind {

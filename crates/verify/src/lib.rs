@@ -17,6 +17,7 @@ pub mod manifest;
 pub mod signature;
 pub mod tar;
 pub mod time;
+pub mod trust;
 mod unpack;
 mod verify;
 
@@ -30,6 +31,7 @@ pub use error::{Error, ErrorKind, Result};
 pub use keys::{KeyId, PublicKey, TrustedKeys};
 pub use manifest::Manifest;
 pub use time::Timestamp;
+pub use trust::{DocumentKind, TrustSet, TrustSetFile};
 pub use verify::{
     DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Progress, ProgressFn, Stage, Unpacked,
     VerifiedBundle, Verifier,
