@@ -54,6 +54,7 @@ fn main() -> ExitCode {
         Command::Sign(args) => cmd::sign::run(args, &out),
         Command::Verify(args) => cmd::verify::run(args, &out),
         Command::Inspect(args) => cmd::inspect::run(args, &out),
+        Command::Trust(args) => cmd::trust::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
     };
     match result {
