@@ -1192,6 +1192,42 @@ mod tests {
     }
 
     #[test]
+    fn verifier_takes_the_bundle_keys_and_threshold() {
+        let (a, b, ci) = (signer(1), signer(2), signer(3));
+        let mut set = body(1, &[&a, &b], 2, 1);
+        set.keys.push(KeyEntry::new(
+            &public(&ci),
+            vec![DocumentKind::Feed],
+            "ci runner",
+        ));
+        let trust = TrustSet::verify_initial(&signed(set, &[&a]), at(NOW)).expect("valid");
+        let app = semver::Version::new(2, 3, 0);
+        let verifier = crate::Verifier::from_trust_set(&trust, app.clone()).expect("verifier");
+        assert_eq!(verifier.threshold(), 2);
+        assert_eq!(
+            verifier.keys().len(),
+            2,
+            "the feed-only key is not a bundle key"
+        );
+        for (threshold, expected) in [
+            (
+                0,
+                "a threshold of 0 signature(s) is not usable with 2 trusted key(s); it must be from 1 to the number of trusted keys",
+            ),
+            (
+                3,
+                "a threshold of 3 signature(s) is not usable with 2 trusted key(s); it must be from 1 to the number of trusted keys",
+            ),
+        ] {
+            let e = verifier
+                .clone()
+                .with_threshold(threshold)
+                .expect_err("refused");
+            assert_eq!(e.to_string(), expected);
+        }
+    }
+
+    #[test]
     fn public_types_cross_threads() {
         fn assert_send_sync<T: Send + Sync>() {}
         assert_send_sync::<TrustSet>();
