@@ -48,8 +48,11 @@ Keep it off shared disks and out of version control.")]
     Pack(PackArgs),
 
     /// Add a signature to a bundle (signing twice with one key changes nothing).
-    #[command(after_help = "Example:
-  ampoule sign species-1.1.0.ampoule --key second-signer.secret.pem")]
+    #[command(after_help = "Examples:
+  ampoule sign species-1.1.0.ampoule --key second-signer.secret.pem
+  ampoule sign species-1.1.0.ampoule --export-request request.bin   (for an outside signer)
+  openssl pkeyutl -sign -inkey secret.pem -rawin -in request.bin -out sig.bin
+  ampoule sign species-1.1.0.ampoule --attach sig.bin --pubkey signer.public.pem")]
     Sign(SignArgs),
 
     /// Check a bundle as a device would, and optionally unpack it.
@@ -75,6 +78,16 @@ Exit code 1 means the bundle was refused; the message says which check failed.")
 
 diff reads both payloads to compare the label lists; it does not check signatures.")]
     Diff(DiffArgs),
+
+    /// Manage trust sets: which keys may sign what, and how many must agree.
+    #[command(after_help = "Examples:
+  ampoule trust init --key a.public.pem --key b.public.pem --key c.public.pem \\
+      --threshold bundle=2,trust_set=2 --expires-in 365d -o trust-1.json
+  ampoule trust sign trust-1.json --key a.secret.pem        (each signer in turn)
+  ampoule trust show trust-1.json
+  ampoule trust remove trust-1.json --key-id 3f0c... -o trust-2.json   (revoke a key)
+  ampoule trust show trust-2.json --trusted trust-1.json    (would a device on version 1 take it?)")]
+    Trust(TrustArgs),
 
     /// Run the trail-camera story end to end on generated data.
     #[command(after_help = "Example:
@@ -147,12 +160,24 @@ pub struct PackArgs {
 }
 
 #[derive(Args, Debug)]
+#[command(group(clap::ArgGroup::new("how").required(true).args(["key", "export_request", "attach"])))]
 pub struct SignArgs {
     /// The bundle to sign; it is replaced atomically.
     pub bundle: PathBuf,
     /// The secret key to sign with.
     #[arg(long, value_name = "SECRET.pem")]
-    pub key: PathBuf,
+    pub key: Option<PathBuf>,
+    /// Write exactly the bytes to sign (context and manifest) to this new file, for a signer
+    /// outside ampoule; the bundle is not changed.
+    #[arg(long, value_name = "OUT")]
+    pub export_request: Option<PathBuf>,
+    /// Attach a raw 64-byte Ed25519 signature made elsewhere over the exported request; it is
+    /// checked against --pubkey before it is accepted.
+    #[arg(long, value_name = "SIG", requires = "pubkey")]
+    pub attach: Option<PathBuf>,
+    /// The public key of the outside signer (with --attach).
+    #[arg(long, value_name = "PUB.pem", requires = "attach")]
+    pub pubkey: Option<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
 }
@@ -162,8 +187,11 @@ pub struct VerifyArgs {
     /// The bundle to check.
     pub bundle: PathBuf,
     /// A trusted public key (repeat for several).
-    #[arg(long, value_name = "PUB.pem", required = true)]
+    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
     pub trust: Vec<PathBuf>,
+    /// Trust the bundle keys of this trust set, and require its bundle threshold.
+    #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
+    pub trust_set: Option<PathBuf>,
     /// The app version to check the bundle's requirement against; without it the
     /// requirement is shown but not checked.
     #[arg(long, value_name = "X")]
@@ -190,6 +218,9 @@ pub struct InspectArgs {
     /// listed but not checked).
     #[arg(long, value_name = "PUB.pem")]
     pub trust: Vec<PathBuf>,
+    /// Check signatures against the bundle keys and threshold of this trust set.
+    #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
+    pub trust_set: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]
@@ -205,4 +236,121 @@ pub struct DemoArgs {
     /// Work in this directory and keep what was made (it must not exist yet).
     #[arg(long, value_name = "DIR")]
     pub dir: Option<PathBuf>,
+}
+
+#[derive(Args, Debug)]
+pub struct TrustArgs {
+    #[command(subcommand)]
+    pub command: TrustCommand,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum TrustCommand {
+    /// Start a trust set: version 1, unsigned, every key with every role.
+    Init(TrustInitArgs),
+    /// Make the next version with more keys (unsigned: sign it in turn).
+    Add(TrustAddArgs),
+    /// Make the next version without some keys: how a key is revoked (unsigned).
+    Remove(TrustRemoveArgs),
+    /// Show keys, thresholds, version, expiry and signatures, and check them.
+    Show(TrustShowArgs),
+    /// Add a signature to a trust set, or export the request for an outside signer.
+    Sign(TrustSignArgs),
+}
+
+/// What every new version may change besides its keys.
+#[derive(Args, Debug)]
+pub struct TrustEditArgs {
+    /// Thresholds as KIND=N, comma-separated or repeated; kinds are bundle, feed, tree_head
+    /// and trust_set. A new set starts at 1 for each; a new version keeps the old ones.
+    #[arg(long, value_name = "KIND=N", value_delimiter = ',')]
+    pub threshold: Vec<String>,
+    /// Expire this long from now: a number followed by d (days) or h (hours).
+    #[arg(long, value_name = "DURATION", conflicts_with = "expires")]
+    pub expires_in: Option<String>,
+    /// Expire at this UTC time (2027-12-01T00:00:00Z).
+    #[arg(long, value_name = "TIME")]
+    pub expires: Option<String>,
+    /// The new trust-set file to write; it must not exist yet.
+    #[arg(short = 'o', long = "out", value_name = "OUT.json")]
+    pub out: PathBuf,
+}
+
+#[derive(Args, Debug)]
+pub struct TrustInitArgs {
+    /// A public key to list (repeat for several).
+    #[arg(long = "key", value_name = "PUB.pem", required = true)]
+    pub keys: Vec<PathBuf>,
+    /// The roles of these keys, comma-separated (default: all of bundle, feed, tree_head,
+    /// trust_set).
+    #[arg(long, value_name = "ROLES", value_delimiter = ',')]
+    pub roles: Vec<String>,
+    /// Who holds these keys, for people reading the set.
+    #[arg(long, value_name = "TEXT", default_value = "")]
+    pub comment: String,
+    #[command(flatten)]
+    pub edit: TrustEditArgs,
+}
+
+#[derive(Args, Debug)]
+pub struct TrustAddArgs {
+    /// The current trust-set file.
+    pub trust_set: PathBuf,
+    /// A public key to add (repeat for several).
+    #[arg(long = "key", value_name = "PUB.pem", required = true)]
+    pub keys: Vec<PathBuf>,
+    /// The roles of the added keys, comma-separated (default: all).
+    #[arg(long, value_name = "ROLES", value_delimiter = ',')]
+    pub roles: Vec<String>,
+    /// Who holds the added keys.
+    #[arg(long, value_name = "TEXT", default_value = "")]
+    pub comment: String,
+    #[command(flatten)]
+    pub edit: TrustEditArgs,
+}
+
+#[derive(Args, Debug)]
+#[command(group(clap::ArgGroup::new("which").required(true).multiple(true).args(["key_ids", "keys"])))]
+pub struct TrustRemoveArgs {
+    /// The current trust-set file.
+    pub trust_set: PathBuf,
+    /// The id of a key to remove (repeat for several).
+    #[arg(long = "key-id", value_name = "ID")]
+    pub key_ids: Vec<String>,
+    /// A public key to remove (repeat for several).
+    #[arg(long = "key", value_name = "PUB.pem")]
+    pub keys: Vec<PathBuf>,
+    #[command(flatten)]
+    pub edit: TrustEditArgs,
+}
+
+#[derive(Args, Debug)]
+pub struct TrustShowArgs {
+    /// The trust-set file to show.
+    pub trust_set: PathBuf,
+    /// The trust set a device has now: also check whether it would accept this one.
+    #[arg(long, value_name = "TRUST.json")]
+    pub trusted: Option<PathBuf>,
+}
+
+#[derive(Args, Debug)]
+#[command(group(clap::ArgGroup::new("how").required(true).args(["key", "export_request", "attach"])))]
+pub struct TrustSignArgs {
+    /// The trust-set file to sign; it is replaced atomically.
+    pub trust_set: PathBuf,
+    /// The secret key to sign with (it need not be listed: keys of the set trusted now sign
+    /// its successor).
+    #[arg(long, value_name = "SECRET.pem")]
+    pub key: Option<PathBuf>,
+    /// Write exactly the bytes to sign (context and trust-set text) to this new file.
+    #[arg(long, value_name = "OUT")]
+    pub export_request: Option<PathBuf>,
+    /// Attach a raw 64-byte Ed25519 signature made elsewhere over the exported request.
+    #[arg(long, value_name = "SIG", requires = "pubkey")]
+    pub attach: Option<PathBuf>,
+    /// The public key of the outside signer (with --attach).
+    #[arg(long, value_name = "PUB.pem", requires = "attach")]
+    pub pubkey: Option<PathBuf>,
+    #[command(flatten)]
+    pub passphrase: PassphraseArgs,
 }

@@ -63,6 +63,7 @@ fn main() -> ExitCode {
         Command::Verify(args) => cmd::verify::run(args, &out),
         Command::Inspect(args) => cmd::inspect::run(args, &out),
         Command::Diff(args) => cmd::diff::run(args, &out),
+        Command::Trust(args) => cmd::trust::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
     };
     match result {

@@ -118,7 +118,7 @@ fn exit_codes_for_usage_errors_missing_files_and_refusals() {
     assert_eq!(
         ok.stdout,
         format!(
-            "OK trailcam-species 1.0.0: signed by {}; payload and 2 files match their digests; 6 labels\n\
+            "OK trailcam-species 1.0.0: signed by {} (1 needed); payload and 2 files match their digests; 6 labels\n\
              app version not checked (no --app-version): the bundle requires >=2.0.0, <3.0.0\n",
             env.key_id()
         )

@@ -169,15 +169,7 @@ fn diff_flags_reordered_labels_and_changed_outputs() {
         0
     );
     assert_eq!(
-        pack(
-            &env,
-            "f32.onnx",
-            "swapped.txt",
-            "1.0.1",
-            "b.ampoule",
-            &[]
-        )
-        .code,
+        pack(&env, "f32.onnx", "swapped.txt", "1.0.1", "b.ampoule", &[]).code,
         0
     );
     let run = env.run(["diff", "a.ampoule", "b.ampoule"]);

@@ -1,6 +1,7 @@
 //! `ampoule inspect`: what a bundle holds and who signed it, without unpacking it.
 
 use ampoule_verify::Digest;
+use ampoule_verify::DocumentKind;
 use ampoule_verify::bundle::Unverified;
 use ampoule_verify::format::context;
 use ampoule_verify::signature::tally;
@@ -8,11 +9,14 @@ use anyhow::Result;
 use serde_json::json;
 
 use crate::cli::InspectArgs;
-use crate::cmd::load_trust;
+use crate::cmd::{load_trust, load_trust_set};
 use crate::output::Output;
 
 pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
-    let keys = load_trust(&args.trust)?;
+    let (keys, threshold) = match &args.trust_set {
+        Some(path) => load_trust_set(path)?.keys_for(DocumentKind::Bundle),
+        None => (load_trust(&args.trust)?, 1),
+    };
     let mut bundle = Unverified::open(&args.bundle)?;
     let payload_ok = bundle.check_payload();
     let Unverified {
@@ -86,18 +90,29 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
             "model    opaque (not a format ampoule reads; no tensor signature recorded)\n",
         ),
     }
+    if !keys.is_empty() {
+        human.push_str(&format!(
+            "signed   {} valid of {threshold} needed{}\n",
+            report.valid.len(),
+            if report.valid.len() >= threshold {
+                ""
+            } else {
+                "  NOT ENOUGH"
+            }
+        ));
+    }
     if signatures.signatures.is_empty() {
         human.push_str("signers  none: this bundle is UNSIGNED\n");
     }
     for s in &signatures.signatures {
         let status = if keys.is_empty() {
-            "not checked (no --trust given)"
+            "not checked (no --trust or --trust-set given)"
         } else if report.valid.contains(&s.key_id) {
             "valid, trusted"
         } else if report.invalid.contains(&s.key_id) {
             "INVALID for this manifest"
         } else {
-            "key not in --trust"
+            "key not trusted here"
         };
         human.push_str(&format!("signer   {}  {status}\n", s.key_id));
     }
@@ -109,6 +124,8 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
             "size": layout.file_len,
             "manifest_sha256": Digest::of(&layout.manifest),
             "payload_matches": payload_ok.is_ok(),
+            "threshold": (!keys.is_empty()).then_some(threshold),
+            "threshold_met": (!keys.is_empty()).then_some(report.valid.len() >= threshold),
             "payload_error": payload_ok.err().map(|e| e.to_string()),
             "signatures": signatures.signatures.iter().map(|s| {
                 json!({

@@ -2,15 +2,18 @@
 //! work through `ampoule_verify` and `pack`, and reports through `Output`.
 
 pub mod diff;
+pub mod external;
 pub mod inspect;
 pub mod keygen;
 pub mod pack;
 pub mod sign;
+pub mod trust;
 pub mod verify;
 
 use std::path::{Path, PathBuf};
 
-use ampoule_verify::TrustedKeys;
+use ampoule_verify::format::trust_set;
+use ampoule_verify::{Timestamp, TrustSet, TrustedKeys};
 use anyhow::{Context, Result};
 use semver::Version;
 
@@ -24,6 +27,14 @@ pub fn load_trust(paths: &[PathBuf]) -> Result<TrustedKeys> {
         keys.add(keyfile::read_public_key(path)?);
     }
     Ok(keys)
+}
+
+/// Loads a `--trust-set` file the way a device loads the set shipped with its app: signed by
+/// a threshold of its own keys and not expired.
+pub fn load_trust_set(path: &Path) -> Result<TrustSet> {
+    let bytes = external::read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+    TrustSet::verify_initial(&bytes, Timestamp::now())
+        .with_context(|| format!("trust set {} refused", path.display()))
 }
 
 /// Where the passphrase of an encrypted key comes from: `--passphrase-env`, else the terminal.

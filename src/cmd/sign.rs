@@ -1,28 +1,76 @@
 //! `ampoule sign`: adds one signer's signature to a bundle, checking the whole bundle under
-//! the new signature before the original file is replaced.
+//! the new signature before the original file is replaced. The signature comes from a secret
+//! key file, or from an outside signer that was given the exported request.
 
 use std::fs::File;
 
 use ampoule_verify::bundle::Unverified;
-use ampoule_verify::format::limit;
+use ampoule_verify::format::{context, limit, signed_bytes};
+use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{PublicKey, TrustedKeys, Verifier};
 use anyhow::{Context, Result, bail};
 use serde_json::json;
 
+use crate::Refused;
 use crate::cli::SignArgs;
+use crate::cmd::external::{read_raw_signature, write_file};
 use crate::cmd::passphrase_source;
 use crate::keyfile;
 use crate::output::Output;
 use crate::pack::{rewrite_signatures, sign_manifest};
 
 pub fn run(args: SignArgs, out: &Output) -> Result<()> {
-    let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
-    let public = PublicKey::from_verifying_key(&key.verifying_key())?;
     let mut bundle = Unverified::open(&args.bundle)?;
-    let mut signatures = bundle.signatures.clone();
-    let changed = signatures.insert(sign_manifest(&key, &bundle.layout.manifest));
     let manifest = bundle.manifest.clone();
     let layout = bundle.layout.clone();
+    let mut signatures = bundle.signatures.clone();
+    if let Some(request) = &args.export_request {
+        write_file(
+            request,
+            &signed_bytes(context::MANIFEST, &layout.manifest),
+            false,
+        )?;
+        let human = format!(
+            "wrote the signing request for {} {} to {}; sign exactly these bytes with Ed25519, then \
+             attach the raw 64-byte signature with 'ampoule sign {} --attach SIG --pubkey PUB.pem'",
+            manifest.name,
+            manifest.version,
+            request.display(),
+            args.bundle.display()
+        );
+        return out.result(
+            &human,
+            json!({ "ok": true, "bundle": args.bundle, "request": request }),
+        );
+    }
+    let (entry, public) = match (&args.key, &args.attach, &args.pubkey) {
+        (Some(key), _, _) => {
+            let key = keyfile::read_secret_key(key, &passphrase_source(&args.passphrase))?;
+            let public = PublicKey::from_verifying_key(&key.verifying_key())?;
+            (sign_manifest(&key, &layout.manifest), public)
+        }
+        (None, Some(sig), Some(pubkey)) => {
+            let public = keyfile::read_public_key(pubkey)?;
+            let entry = SignatureEntry::verified(
+                "bundle's manifest",
+                &public,
+                context::MANIFEST,
+                &layout.manifest,
+                read_raw_signature(sig)?,
+            )
+            .map_err(|e| {
+                Refused(format!(
+                    "{e}; {} was left unchanged (sign exactly the bytes 'ampoule sign \
+                     --export-request' wrote for this bundle, with the secret key of {})",
+                    args.bundle.display(),
+                    pubkey.display()
+                ))
+            })?;
+            (entry, public)
+        }
+        _ => bail!("give --key, --export-request, or --attach with --pubkey"),
+    };
+    let changed = signatures.insert(entry);
     let summary = format!("{} {}", manifest.name, manifest.version);
     if changed {
         if signatures.signatures.len() > limit::SIGNATURES {

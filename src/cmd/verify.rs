@@ -1,19 +1,26 @@
 //! `ampoule verify`: the device's checks, run from the command line, with an optional unpack.
 
-use ampoule_verify::{DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Verifier};
+use ampoule_verify::{
+    DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, DocumentKind, Verifier,
+};
 use anyhow::Result;
 use serde_json::json;
 
 use crate::cli::VerifyArgs;
-use crate::cmd::{load_trust, parse_version};
+use crate::cmd::{load_trust, load_trust_set, parse_version};
 use crate::output::Output;
 
 pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
-    let keys = load_trust(&args.trust)?;
+    // With a trust set, its bundle keys and bundle threshold; with --trust, any one key.
+    let (keys, threshold) = match &args.trust_set {
+        Some(path) => load_trust_set(path)?.keys_for(DocumentKind::Bundle),
+        None => (load_trust(&args.trust)?, 1),
+    };
     let mut verifier = match &args.app_version {
         Some(v) => Verifier::new(keys, parse_version(v, "--app-version")?)?,
         None => Verifier::dangerous_without_app_version(keys)?,
-    };
+    }
+    .with_threshold(threshold)?;
     if let Some(v) = &args.installed {
         verifier = verifier.installed(parse_version(v, "--installed")?);
     }
@@ -40,10 +47,11 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
         None => (verified.check_contents()?, None),
     };
     let mut human = format!(
-        "OK {} {}: signed by {}; payload and {} files match their digests; {} labels\n",
+        "OK {} {}: signed by {} ({} needed); payload and {} files match their digests; {} labels\n",
         manifest.name,
         manifest.version,
         signers.join(", "),
+        threshold,
         manifest.files.len(),
         labels.len()
     );
@@ -82,6 +90,7 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
             "name": manifest.name,
             "version": manifest.version.to_string(),
             "signers": signers,
+            "threshold": threshold,
             "untrusted_signers": report.untrusted.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
             "invalid_signers": report.invalid.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
             "requires_app": manifest.requires_app.to_string(),

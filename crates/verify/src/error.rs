@@ -40,6 +40,8 @@ pub enum ErrorKind {
     Store,
     /// Another process is updating the store; try again later.
     Locked,
+    /// A trust set is not valid, has expired, or is not newer than the one trusted now.
+    TrustSet,
 }
 
 impl ErrorKind {

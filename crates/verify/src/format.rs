@@ -67,6 +67,18 @@ pub mod context {
     pub const TRUST_SET: &[u8] = b"ampoule-sig-v1:trust-set\n";
 }
 
+/// Trust sets: the signed list of keys allowed to sign each document kind, with thresholds.
+pub mod trust_set {
+    /// The format version written into every trust set; a reader refuses any other value.
+    pub const FORMAT_VERSION: u32 = 1;
+    /// The largest trust-set file (envelope and signatures included), in bytes.
+    pub const MAX_BYTES: u64 = 64 * 1024;
+    /// The most keys one trust set may list.
+    pub const MAX_KEYS: usize = 32;
+    /// The longest comment on a key, in bytes.
+    pub const COMMENT_BYTES: usize = 128;
+}
+
 /// The bytes a signer signs: the context followed by the document.
 pub fn signed_bytes(context: &[u8], document: &[u8]) -> Vec<u8> {
     let mut bytes = Vec::with_capacity(context.len() + document.len());

@@ -20,6 +20,7 @@ pub mod signature;
 pub mod store;
 pub mod tar;
 pub mod time;
+pub mod trust;
 mod unpack;
 mod verify;
 
@@ -35,6 +36,7 @@ pub use manifest::Manifest;
 pub use model::{CompatibilityPolicy, ModelSignature};
 pub use store::{Installed, Release, Store, StoreState};
 pub use time::Timestamp;
+pub use trust::{DocumentKind, TrustSet, TrustSetFile};
 pub use verify::{
     DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Progress, ProgressFn, Stage, Unpacked,
     VerifiedBundle, Verifier,

@@ -12,7 +12,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::limit;
-use crate::keys::{KeyId, TrustedKeys};
+use crate::keys::{KeyId, PublicKey, TrustedKeys};
 
 /// One signature in the signatures document.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -23,6 +23,33 @@ pub struct SignatureEntry {
     /// The raw 64-byte Ed25519 signature as 128 lowercase hex characters.
     #[serde(with = "hex_signature")]
     pub signature: [u8; 64],
+}
+
+impl SignatureEntry {
+    /// Accepts a raw signature made elsewhere (an external signer, an HSM, openssl) only if it
+    /// verifies strictly under `key` over `context || document`; `what` names the document in
+    /// the message.
+    pub fn verified(
+        what: &str,
+        key: &PublicKey,
+        context: &[u8],
+        document: &[u8],
+        signature: [u8; 64],
+    ) -> Result<SignatureEntry> {
+        if !key.verify(context, document, &signature) {
+            return Err(Error::new(
+                ErrorKind::Signature,
+                format!(
+                    "signature does not verify under key {} over this {what}",
+                    key.id()
+                ),
+            ));
+        }
+        Ok(SignatureEntry {
+            key_id: key.id(),
+            signature,
+        })
+    }
 }
 
 /// The signatures document (`signatures.json`): signatures over the manifest's exact bytes,

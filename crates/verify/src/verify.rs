@@ -20,6 +20,7 @@ use crate::keys::{KeyId, TrustedKeys};
 use crate::manifest::Manifest;
 use crate::model::CompatibilityPolicy;
 use crate::signature::{SignatureReport, Signatures, check_signatures};
+use crate::trust::{DocumentKind, TrustSet};
 
 /// The largest bundle file accepted unless the app sets its own limit.
 pub const DEFAULT_MAX_BUNDLE_BYTES: u64 = 1024 * 1024 * 1024;
@@ -116,6 +117,36 @@ impl Verifier {
     /// [`Verifier::dangerous_without_app_version`]).
     pub fn checks_app_version(&self) -> bool {
         self.app_version.is_some()
+    }
+
+    /// A verifier that takes its bundle keys and threshold from a verified trust set: a
+    /// bundle needs that many valid signatures by distinct keys with the bundle role.
+    pub fn from_trust_set(trust: &TrustSet, app_version: Version) -> Result<Self> {
+        let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
+        Self::new(keys, app_version)?.with_threshold(threshold)
+    }
+
+    /// Requires `threshold` valid signatures by distinct trusted keys (1 unless set). Refuses 0,
+    /// which would accept unsigned bundles, and more than the number of trusted keys, which
+    /// no bundle could ever meet.
+    pub fn with_threshold(mut self, threshold: usize) -> Result<Self> {
+        if threshold == 0 || threshold > self.keys.len() {
+            return Err(Error::new(
+                ErrorKind::Key,
+                format!(
+                    "a threshold of {threshold} signature(s) is not usable with {} trusted \
+                     key(s); it must be from 1 to the number of trusted keys",
+                    self.keys.len()
+                ),
+            ));
+        }
+        self.threshold = threshold;
+        Ok(self)
+    }
+
+    /// How many valid signatures by distinct trusted keys a bundle needs.
+    pub fn threshold(&self) -> usize {
+        self.threshold
     }
 
     /// Accept only bundles with this name (the model line the app runs).

@@ -1,0 +1,83 @@
+//! Small files around signing: the request an outside signer signs, the raw signature it
+//! hands back, and trust-set files. An outside signer (an HSM, an offline machine, openssl)
+//! sees only the exact bytes to sign, so the secret key never has to touch this tool.
+
+use std::fs::{self, File};
+use std::io::{Read, Write};
+use std::path::Path;
+
+use anyhow::{Context, Result, bail};
+
+/// Reads a whole file of at most `max` bytes, refusing a larger one before reading it all.
+pub fn read_bounded(path: &Path, max: u64, what: &str) -> Result<Vec<u8>> {
+    let file = File::open(path).with_context(|| format!("cannot open {}", path.display()))?;
+    let mut bytes = Vec::new();
+    file.take(max + 1)
+        .read_to_end(&mut bytes)
+        .with_context(|| format!("cannot read {}", path.display()))?;
+    if bytes.len() as u64 > max {
+        bail!("{} is over {max} bytes; that is not {what}", path.display());
+    }
+    Ok(bytes)
+}
+
+/// Reads a raw 64-byte Ed25519 signature (RFC 8032 section 5.1.6), as
+/// `openssl pkeyutl -sign -rawin` writes it.
+pub fn read_raw_signature(path: &Path) -> Result<[u8; 64]> {
+    let bytes = read_bounded(path, 64, "a raw Ed25519 signature")?;
+    <[u8; 64]>::try_from(bytes.as_slice()).map_err(|_| {
+        anyhow::anyhow!(
+            "{} is {} bytes; a raw Ed25519 signature is exactly 64 bytes (as \
+             'openssl pkeyutl -sign -rawin' writes it, not hex or base64)",
+            path.display(),
+            bytes.len()
+        )
+    })
+}
+
+fn temp_beside(path: &Path) -> Result<tempfile::NamedTempFile> {
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    tempfile::Builder::new()
+        .prefix(".ampoule-partial-")
+        .tempfile_in(dir)
+        .with_context(|| format!("cannot create a temporary file in {}", dir.display()))
+}
+
+/// Writes `bytes` to `path` through a temporary file that is flushed and then renamed into
+/// place; `replace` says whether an existing file may be replaced. Mode 0644: these files
+/// (requests, trust sets) hold nothing secret and are meant to be passed around.
+pub fn write_file(path: &Path, bytes: &[u8], replace: bool) -> Result<()> {
+    if !replace && fs::symlink_metadata(path).is_ok() {
+        bail!(
+            "{} already exists; choose another output name or remove it first (nothing was written)",
+            path.display()
+        );
+    }
+    let mut temp = temp_beside(path)?;
+    temp.write_all(bytes)
+        .and_then(|()| temp.as_file().sync_all())
+        .with_context(|| format!("cannot write {}", path.display()))?;
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        fs::set_permissions(temp.path(), fs::Permissions::from_mode(0o644))?;
+    }
+    if replace {
+        temp.persist(path)
+            .map_err(|e| e.error)
+            .with_context(|| format!("cannot replace {}", path.display()))?;
+    } else {
+        temp.persist_noclobber(path)
+            .map_err(|e| e.error)
+            .with_context(|| {
+                format!("cannot create {} (does it exist already?)", path.display())
+            })?;
+    }
+    if let Some(dir) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+        File::open(dir).and_then(|d| d.sync_all()).ok();
+    }
+    Ok(())
+}
