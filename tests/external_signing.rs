@@ -103,7 +103,7 @@ fn openssl_verifies(dir: &Path, public: &str, request: &str, sig: &str) {
 
 fn pack_unsigned(dir: &Path) {
     let model: Vec<u8> = (0..30_000u32).map(|i| (i * 13 % 241) as u8).collect();
-    std::fs::write(dir.join("species.onnx"), model).expect("model");
+    std::fs::write(dir.join("species.bin"), model).expect("model");
     std::fs::write(
         dir.join("labels.txt"),
         "fox\nroe deer\nwild boar\nbadger\nhare\nempty frame\n",
@@ -114,7 +114,7 @@ fn pack_unsigned(dir: &Path) {
         &[
             "pack",
             "--model",
-            "species.onnx",
+            "species.bin",
             "--labels",
             "labels.txt",
             "--name",

@@ -61,7 +61,7 @@ fn keygen(dir: &Path, name: &str) -> String {
 /// A small invented model and label list, packed as trailcam-species 1.1.0.
 fn pack(dir: &Path, key: Option<&str>, out: &str) {
     let model: Vec<u8> = (0..20_000u32).map(|i| (i * 7 % 251) as u8).collect();
-    std::fs::write(dir.join("species.onnx"), model).expect("model");
+    std::fs::write(dir.join("species.bin"), model).expect("model");
     std::fs::write(
         dir.join("labels.txt"),
         "fox\nroe deer\nwild boar\nbadger\nhare\nempty frame\n",
@@ -70,7 +70,7 @@ fn pack(dir: &Path, key: Option<&str>, out: &str) {
     let mut args = vec![
         "pack",
         "--model",
-        "species.onnx",
+        "species.bin",
         "--labels",
         "labels.txt",
         "--name",
