@@ -42,7 +42,7 @@ fn rfc8410_public_key_is_a_trust_input() {
         run.stdout.lines().next(),
         Some(
             format!(
-                "OK trailcam-species 1.0.0: signed by {id}; payload and 2 files match their digests; 6 labels"
+                "OK trailcam-species 1.0.0: signed by {id} (1 needed); payload and 2 files match their digests; 6 labels"
             )
             .as_str()
         )
