@@ -28,12 +28,23 @@ pub enum ErrorKind {
     Policy,
     /// The destination for extraction or installation is not usable.
     Destination,
+    /// A feed is not valid: envelope, JSON, field values, channel, format version.
+    Feed,
+    /// A validly signed feed is not current: expired, issued in the future, or older than
+    /// the one accepted before (a replay).
+    Stale,
+    /// A transfer failed: connection, timeout, HTTP status, redirect, a server that sent
+    /// fewer bytes than declared. Trying again later may work.
+    Network,
 }
 
 impl ErrorKind {
     /// Whether this is a refusal of the bundle (as opposed to an I/O or usage problem).
     pub fn is_refusal(self) -> bool {
-        !matches!(self, ErrorKind::Io | ErrorKind::Destination)
+        !matches!(
+            self,
+            ErrorKind::Io | ErrorKind::Destination | ErrorKind::Network
+        )
     }
 }
 
