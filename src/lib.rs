@@ -10,6 +10,8 @@ pub mod demo;
 pub mod keyfile;
 pub mod output;
 pub mod pack;
+pub mod serve;
+pub mod tree;
 
 /// Exit codes, documented in `--help` and the README.
 pub mod exit {

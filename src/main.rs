@@ -54,6 +54,9 @@ fn main() -> ExitCode {
         Command::Sign(args) => cmd::sign::run(args, &out),
         Command::Verify(args) => cmd::verify::run(args, &out),
         Command::Inspect(args) => cmd::inspect::run(args, &out),
+        Command::Publish(args) => cmd::publish::run(args, &out),
+        Command::Withdraw(args) => cmd::withdraw::run(args, &out),
+        Command::Serve(args) => cmd::serve::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
     };
     match result {

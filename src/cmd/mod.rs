@@ -4,8 +4,11 @@
 pub mod inspect;
 pub mod keygen;
 pub mod pack;
+pub mod publish;
+pub mod serve;
 pub mod sign;
 pub mod verify;
+pub mod withdraw;
 
 use std::path::{Path, PathBuf};
 
