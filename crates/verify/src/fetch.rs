@@ -703,6 +703,15 @@ impl Updater {
         if !in_rollout(&self.device_id, &release.sha256, release.rollout_percent) {
             return Ok(Update::NotInRollout { feed });
         }
+        std::fs::create_dir_all(&self.download_dir).map_err(|e| {
+            Error::io(
+                format!(
+                    "cannot create download directory {}",
+                    self.download_dir.display()
+                ),
+                e,
+            )
+        })?;
         let path = self.download_path(&release);
         download(
             &release.urls(&self.feed_url)?,
@@ -742,6 +751,14 @@ impl Updater {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn public_types_cross_threads() {
+        fn send_sync<T: Send + Sync>() {}
+        send_sync::<Transfer>();
+        send_sync::<Updater>();
+        send_sync::<Update>();
+    }
 
     #[test]
     fn urls_must_be_http_or_https() {

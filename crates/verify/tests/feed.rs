@@ -83,6 +83,14 @@ fn refusal(verifier: &FeedVerifier, bytes: &[u8], now: &str) -> (ErrorKind, Stri
 }
 
 #[test]
+fn feed_types_cross_threads() {
+    fn send_sync<T: Send + Sync>() {}
+    send_sync::<FeedVerifier>();
+    send_sync::<ampoule_verify::VerifiedFeed>();
+    send_sync::<Feed>();
+}
+
+#[test]
 fn a_good_feed_verifies() {
     let bytes = signed(&feed(3), &[&key(1)]);
     let ok = verifier().verify(&bytes, ts(NOW)).expect("good feed");
