@@ -47,6 +47,7 @@ pub struct Transfer {
     min_rate: u64,
     rate_window: Duration,
     attempts: u32,
+    tls_roots: Option<Vec<Vec<u8>>>,
 }
 
 impl Default for Transfer {
@@ -58,6 +59,7 @@ impl Default for Transfer {
             min_rate: 256,
             rate_window: Duration::from_secs(60),
             attempts: 3,
+            tls_roots: None,
         }
     }
 }
@@ -92,6 +94,14 @@ impl Transfer {
     pub fn min_rate(mut self, bytes_per_sec: u64, window: Duration) -> Self {
         self.min_rate = bytes_per_sec;
         self.rate_window = window.max(Duration::from_millis(1));
+        self
+    }
+
+    /// Trusts only these CA certificates (DER) for HTTPS, instead of the public web PKI roots
+    /// built in (Mozilla's list, from the `webpki-roots` crate): for servers under the team's
+    /// own certificate authority.
+    pub fn only_tls_roots_der(mut self, roots: Vec<Vec<u8>>) -> Self {
+        self.tls_roots = Some(roots);
         self
     }
 
@@ -142,7 +152,20 @@ impl Session {
         ))
         .with_safe_default_protocol_versions()
         .map_err(|e| network(format!("cannot set up TLS: {e}")))?;
-        let tls = hyper_rustls::ConfigBuilderExt::with_webpki_roots(tls).with_no_client_auth();
+        let tls = match &transfer.tls_roots {
+            None => hyper_rustls::ConfigBuilderExt::with_webpki_roots(tls).with_no_client_auth(),
+            Some(roots) => {
+                let mut store = rustls::RootCertStore::empty();
+                for (i, der) in roots.iter().enumerate() {
+                    store
+                        .add(rustls::pki_types::CertificateDer::from(der.clone()))
+                        .map_err(|e| {
+                            network(format!("TLS root certificate {} is not usable: {e}", i + 1))
+                        })?;
+                }
+                tls.with_root_certificates(store).with_no_client_auth()
+            }
+        };
         let mut http = HttpConnector::new();
         http.set_connect_timeout(Some(transfer.connect_timeout));
         http.enforce_http(false);

@@ -657,3 +657,108 @@ fn other_schemes_are_refused() {
         "'ftp://127.0.0.1/feed.json' is not an http or https URL"
     );
 }
+
+/// A certificate authority and a server certificate for 127.0.0.1 it issued, made in memory.
+fn test_pki() -> (Vec<u8>, Vec<u8>, Vec<u8>) {
+    use rcgen::{BasicConstraints, CertificateParams, IsCa, Issuer, KeyPair};
+    let ca_key = KeyPair::generate().expect("CA key");
+    let mut ca_params = CertificateParams::new(Vec::<String>::new()).expect("CA params");
+    ca_params.is_ca = IsCa::Ca(BasicConstraints::Unconstrained);
+    let ca = ca_params.self_signed(&ca_key).expect("CA certificate");
+    let issuer = Issuer::new(ca_params, ca_key);
+    let leaf_key = KeyPair::generate().expect("server key");
+    let leaf = CertificateParams::new(vec!["127.0.0.1".to_string()])
+        .expect("server params")
+        .signed_by(&leaf_key, &issuer)
+        .expect("server certificate");
+    (
+        ca.der().to_vec(),
+        leaf.der().to_vec(),
+        leaf_key.serialize_der(),
+    )
+}
+
+/// An HTTPS server on 127.0.0.1 (rustls over std TCP, blocking) that serves `data()`.
+fn serve_tls(leaf: Vec<u8>, key: Vec<u8>) -> String {
+    use rustls::pki_types::{CertificateDer, PrivateKeyDer, PrivatePkcs8KeyDer};
+    let config = rustls::ServerConfig::builder_with_provider(Arc::new(
+        rustls::crypto::ring::default_provider(),
+    ))
+    .with_safe_default_protocol_versions()
+    .expect("protocol versions")
+    .with_no_client_auth()
+    .with_single_cert(
+        vec![CertificateDer::from(leaf)],
+        PrivateKeyDer::Pkcs8(PrivatePkcs8KeyDer::from(key)),
+    )
+    .expect("server config");
+    let config = Arc::new(config);
+    let listener = TcpListener::bind("127.0.0.1:0").expect("bind");
+    let base = format!("https://{}", listener.local_addr().expect("addr"));
+    thread::spawn(move || {
+        for tcp in listener.incoming() {
+            let Ok(tcp) = tcp else { continue };
+            let _ = tcp.set_read_timeout(Some(Duration::from_secs(5)));
+            let Ok(conn) = rustls::ServerConnection::new(Arc::clone(&config)) else {
+                continue;
+            };
+            let mut tls = rustls::StreamOwned::new(conn, tcp);
+            let mut head = Vec::new();
+            let mut byte = [0u8; 1];
+            while !head.ends_with(b"\r\n\r\n") {
+                match tls.read(&mut byte) {
+                    Ok(1) => head.push(byte[0]),
+                    _ => break,
+                }
+            }
+            if head.is_empty() {
+                continue;
+            }
+            let _ = tls.write_all(
+                format!("HTTP/1.1 200 OK\r\nconnection: close\r\ncontent-length: {SIZE}\r\n\r\n")
+                    .as_bytes(),
+            );
+            let _ = tls.write_all(&data());
+            tls.conn.send_close_notify();
+            let _ = tls.flush();
+        }
+    });
+    base
+}
+
+#[test]
+fn https_with_the_team_ca_works_and_an_unknown_issuer_is_refused() {
+    let (ca, leaf, key) = test_pki();
+    let base = serve_tls(leaf, key);
+    let url = format!("{base}/b.ampoule");
+    let dir = tempfile::tempdir().expect("tempdir");
+    let partial = partial_in(dir.path());
+    let private_ca = fast().only_tls_roots_der(vec![ca]);
+    download(
+        std::slice::from_ref(&url),
+        &partial,
+        SIZE as u64,
+        &Digest::of(&data()),
+        &private_ca,
+    )
+    .expect("download over TLS");
+    assert_eq!(std::fs::read(&partial).expect("file"), data());
+
+    // The built-in public roots do not know this CA.
+    std::fs::remove_file(&partial).expect("remove");
+    let err = download(
+        std::slice::from_ref(&url),
+        &partial,
+        SIZE as u64,
+        &Digest::of(&data()),
+        &fast(),
+    )
+    .expect_err("unknown issuer");
+    assert_eq!(err.kind(), ErrorKind::Network);
+    let text = err.to_string();
+    assert!(
+        text.starts_with(&format!("cannot reach {url}: client error (Connect): "))
+            && text.ends_with("invalid peer certificate: UnknownIssuer"),
+        "{text}"
+    );
+}
