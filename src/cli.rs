@@ -15,7 +15,7 @@ Exit codes:
 #[command(
     name = "ampoule",
     version,
-    about = "Pack, sign and verify machine-learning model bundles for devices",
+    about = "Pack, sign, verify and publish machine-learning model bundles for devices",
     long_about = "Pack a model file and its label list into a versioned, signed, compressed \
 bundle (.ampoule), and check bundles the way a device will before it swaps a model in.",
     after_help = EXIT_CODES
@@ -88,6 +88,35 @@ diff reads both payloads to compare the label lists; it does not check signature
   ampoule trust remove trust-1.json --key-id 3f0c... -o trust-2.json   (revoke a key)
   ampoule trust show trust-2.json --trusted trust-1.json    (would a device on version 1 take it?)")]
     Trust(TrustArgs),
+
+    /// Publish a bundle as the current release of a channel in a release tree.
+    #[command(after_help = "Examples:
+  ampoule publish species-1.1.0.ampoule --tree ./release --channel beta --key feed.secret.pem --rollout 10
+  ampoule publish species-1.1.0.ampoule --tree ./release --channel beta --key feed.secret.pem --rollout 100
+
+The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
+Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
+rollout; publish at least once per --expires-in, or devices stop trusting the channel.
+A name and version, once in the tree, always mean the same file.")]
+    Publish(PublishArgs),
+
+    /// Pull a channel's current release: the release before it becomes current again.
+    #[command(after_help = "Example:
+  ampoule withdraw --tree ./release --channel beta --key feed.secret.pem
+
+The new feed has a higher sequence. With no earlier release the channel offers nothing
+(release: null), and devices keep what they have. Devices that already installed the
+withdrawn release keep it too: they never go back to an older version.")]
+    Withdraw(WithdrawArgs),
+
+    /// Serve a release tree over HTTP, for demos and tests only.
+    #[command(after_help = "Example:
+  ampoule serve --tree ./release --addr 127.0.0.1:8000
+
+A small static file server for trying things on one machine: GET, HEAD and single byte
+ranges, nothing else. It is not meant for production: there any static web server, CDN or
+object store serves the tree. It runs until interrupted (Ctrl-C).")]
+    Serve(ServeArgs),
 
     /// Run the trail-camera story end to end on generated data.
     #[command(after_help = "Example:
@@ -353,4 +382,63 @@ pub struct TrustSignArgs {
     pub pubkey: Option<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
+}
+
+#[derive(Args, Debug)]
+pub struct PublishArgs {
+    /// The signed bundle to publish.
+    pub bundle: PathBuf,
+    /// The release tree (a directory of static files; created if missing).
+    #[arg(long, value_name = "DIR")]
+    pub tree: PathBuf,
+    /// The channel to publish on (lowercase letters, digits, - _ .), like stable or beta.
+    #[arg(long, value_name = "NAME")]
+    pub channel: String,
+    /// The secret key that signs the channel's feed.
+    #[arg(long, value_name = "SECRET.pem")]
+    pub key: PathBuf,
+    #[command(flatten)]
+    pub passphrase: PassphraseArgs,
+    /// Keys the bundle's signature is checked against before publishing (repeat for
+    /// several); without it, the bundle must be signed by the feed key itself.
+    #[arg(long, value_name = "PUB.pem")]
+    pub trust: Vec<PathBuf>,
+    /// The share of devices that should take this release, 0 to 100.
+    #[arg(long, value_name = "PERCENT", default_value_t = 100)]
+    pub rollout: u8,
+    /// How long the feed stays valid; devices refuse it afterwards (like 7d, 12h, 90m).
+    #[arg(long, value_name = "DURATION", default_value = "7d")]
+    pub expires_in: String,
+    /// The base URL of a copy of this tree (repeat for several); the feed lists the bundle
+    /// there too, tried in order after the tree itself.
+    #[arg(long, value_name = "URL")]
+    pub mirror: Vec<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct WithdrawArgs {
+    /// The release tree.
+    #[arg(long, value_name = "DIR")]
+    pub tree: PathBuf,
+    /// The channel whose current release is pulled.
+    #[arg(long, value_name = "NAME")]
+    pub channel: String,
+    /// The secret key that signs the channel's feed.
+    #[arg(long, value_name = "SECRET.pem")]
+    pub key: PathBuf,
+    #[command(flatten)]
+    pub passphrase: PassphraseArgs,
+    /// How long the new feed stays valid (like 7d, 12h, 90m).
+    #[arg(long, value_name = "DURATION", default_value = "7d")]
+    pub expires_in: String,
+}
+
+#[derive(Args, Debug)]
+pub struct ServeArgs {
+    /// The release tree to serve.
+    #[arg(long, value_name = "DIR")]
+    pub tree: PathBuf,
+    /// The address to listen on; port 0 picks a free port (the first line printed says which).
+    #[arg(long, value_name = "IP:PORT", default_value = "127.0.0.1:8000")]
+    pub addr: String,
 }

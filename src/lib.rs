@@ -11,7 +11,9 @@ pub mod keyfile;
 pub mod ledger;
 pub mod output;
 pub mod pack;
+pub mod serve;
 pub mod synth;
+pub mod tree;
 
 /// Exit codes, documented in `--help` and the README.
 pub mod exit {

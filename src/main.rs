@@ -64,6 +64,9 @@ fn main() -> ExitCode {
         Command::Inspect(args) => cmd::inspect::run(args, &out),
         Command::Diff(args) => cmd::diff::run(args, &out),
         Command::Trust(args) => cmd::trust::run(args, &out),
+        Command::Publish(args) => cmd::publish::run(args, &out),
+        Command::Withdraw(args) => cmd::withdraw::run(args, &out),
+        Command::Serve(args) => cmd::serve::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
     };
     match result {

@@ -6,9 +6,12 @@ pub mod external;
 pub mod inspect;
 pub mod keygen;
 pub mod pack;
+pub mod publish;
+pub mod serve;
 pub mod sign;
 pub mod trust;
 pub mod verify;
+pub mod withdraw;
 
 use std::path::{Path, PathBuf};
 

@@ -42,6 +42,14 @@ pub enum ErrorKind {
     Locked,
     /// A trust set is not valid, has expired, or is not newer than the one trusted now.
     TrustSet,
+    /// A feed is not valid: envelope, JSON, field values, channel, format version.
+    Feed,
+    /// A validly signed feed is not current: expired, issued in the future, or older than
+    /// the one accepted before (a replay).
+    Stale,
+    /// A transfer failed: connection, timeout, HTTP status, redirect, a server that sent
+    /// fewer bytes than declared. Trying again later may work.
+    Network,
 }
 
 impl ErrorKind {
@@ -49,7 +57,7 @@ impl ErrorKind {
     pub fn is_refusal(self) -> bool {
         !matches!(
             self,
-            ErrorKind::Io | ErrorKind::Destination | ErrorKind::Locked
+            ErrorKind::Io | ErrorKind::Destination | ErrorKind::Locked | ErrorKind::Network
         )
     }
 }

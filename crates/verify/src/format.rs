@@ -7,6 +7,9 @@
 /// The format version written into every manifest; a reader refuses any other value.
 pub const FORMAT_VERSION: u32 = 1;
 
+/// The format version written into every feed; a reader refuses any other value.
+pub const FEED_FORMAT_VERSION: u32 = 1;
+
 /// The file extension of a bundle (without the dot).
 pub const BUNDLE_EXTENSION: &str = "ampoule";
 
@@ -49,7 +52,18 @@ pub mod limit {
     pub const LABELS_FILE_BYTES: u64 = 4 * 1024 * 1024;
     /// The largest bundle a tar size field can describe in ustar octal (11 digits).
     pub const TAR_ENTRY_BYTES: u64 = 0o77777777777;
+    /// The largest feed document (envelope and signatures included), in bytes. A device
+    /// stops reading a feed at this size.
+    pub const FEED_BYTES: u64 = 64 * 1024;
+    /// The most mirrors one feed may list for its release.
+    pub const MIRRORS: usize = 8;
+    /// The longest URL or relative path a feed may hold, in bytes.
+    pub const URL_BYTES: usize = 2048;
 }
+
+/// The domain string hashed ahead of a device id and a bundle digest to place a device in or
+/// out of a rollout, so that the same ids give unrelated answers in any other use of SHA-256.
+pub const ROLLOUT_DOMAIN: &[u8] = b"ampoule-rollout-v1\n";
 
 /// Domain-separation contexts: each signature covers `context || document bytes`, so a
 /// signature made for one kind of document can never verify as another kind.

@@ -10,6 +10,9 @@
 pub mod bundle;
 pub mod digest;
 pub mod error;
+pub mod feed;
+#[cfg(feature = "fetch")]
+pub mod fetch;
 pub mod format;
 pub mod keys;
 pub mod labels;
@@ -31,6 +34,7 @@ pub struct ReadmeDoctests;
 
 pub use digest::Digest;
 pub use error::{Error, ErrorKind, Result};
+pub use feed::{FeedVerifier, VerifiedFeed, in_rollout};
 pub use keys::{KeyId, PublicKey, TrustedKeys};
 pub use manifest::Manifest;
 pub use model::{CompatibilityPolicy, ModelSignature};

@@ -188,6 +188,22 @@ impl Verifier {
         self
     }
 
+    /// The app version bundles are checked against (`None` only for
+    /// [`Verifier::dangerous_without_app_version`]).
+    pub fn app_version(&self) -> Option<&Version> {
+        self.app_version.as_ref()
+    }
+
+    /// The installed version, if set: only a newer bundle is accepted.
+    pub fn installed_version(&self) -> Option<&Version> {
+        self.installed.as_ref()
+    }
+
+    /// The only bundle name accepted, if set.
+    pub fn required_name(&self) -> Option<&str> {
+        self.name.as_deref()
+    }
+
     /// The trusted keys.
     pub fn keys(&self) -> &TrustedKeys {
         &self.keys

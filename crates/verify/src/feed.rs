@@ -1,0 +1,618 @@
+//! The channel feed: the small signed document a device polls to learn which bundle is current
+//! on its channel, and the checks that make a stale, replayed or foreign feed useless.
+//!
+//! A feed file is an envelope holding the signed feed text as a JSON string and the signatures
+//! over that text's exact UTF-8 bytes (in the shape bundles use, under [`context::FEED`]):
+//!
+//! ```json
+//! {
+//!   "feed": "{\"format\":1,\"channel\":\"stable\",\"sequence\":3,...}",
+//!   "signatures": [{ "key_id": "...", "signature": "..." }]
+//! }
+//! ```
+//!
+//! Carrying the text as a string keeps the signed bytes exact without a canonical JSON form,
+//! and lets the device check the signature before it parses the feed itself. Both layers are
+//! parsed into derived structs that refuse unknown fields and duplicate keys.
+//!
+//! The feed binds the release's name, version, size and the SHA-256 of the whole bundle file,
+//! so a device downloads at most the signed number of bytes and can tell a wrong file before it
+//! opens it. `release: null` means the channel has nothing current (every release on it was
+//! withdrawn): a device keeps what it has.
+//!
+//! Freshness: a feed carries `issued` and `expires`; a device refuses one that expired or was
+//! issued in the future, each beyond an allowed clock skew (5 minutes by default, a common
+//! allowance for devices whose clocks drift between syncs). The `sequence` only ever grows: a
+//! lower one than the device accepted before is a replay and is refused. An equal sequence is
+//! the same feed fetched again, which is what every poll between two publishes returns, so it
+//! is accepted (and still must not be expired); when the device also remembers the digest of
+//! the feed it accepted, an equal sequence with different content is refused, since a
+//! publisher never signs two feeds under one sequence.
+
+use std::fmt;
+
+use semver::{Version, VersionReq};
+use serde::{Deserialize, Deserializer, Serialize};
+
+use crate::digest::Digest;
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, context, limit};
+use crate::keys::{KeyId, TrustedKeys};
+use crate::manifest::check_name;
+use crate::signature::{SignatureEntry, SignatureReport, check_signatures};
+use crate::time::Timestamp;
+
+/// The clock skew a device allows unless the app sets its own: 5 minutes.
+pub const DEFAULT_CLOCK_SKEW_SECS: u64 = 300;
+
+/// The release a channel currently offers.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Release {
+    /// The bundle's name (the model line), as in its manifest.
+    pub name: String,
+    /// The bundle's version, as in its manifest.
+    pub version: Version,
+    /// The app versions the bundle works with, as in its manifest; lets a device skip a
+    /// download it could not install.
+    pub requires_app: VersionReq,
+    /// The exact size of the bundle file in bytes; a download stops there.
+    pub size: u64,
+    /// SHA-256 of the whole bundle file.
+    pub sha256: Digest,
+    /// Where the bundle is, relative to the feed's own URL (RFC 3986 relative reference made
+    /// only of path segments, such as `../bundles/<sha256>.ampoule`).
+    pub path: String,
+    /// Absolute `http` or `https` URLs of the same file, tried in order after `path`.
+    pub mirrors: Vec<String>,
+    /// The share of devices that should take this release, 0 to 100 percent.
+    pub rollout_percent: u8,
+}
+
+/// A channel feed (format 1). Field order here is the order in the JSON.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Feed {
+    /// The feed format version; always [`FEED_FORMAT_VERSION`].
+    pub format: u32,
+    /// The channel this feed is for (`stable`, `beta`).
+    pub channel: String,
+    /// Grows with every feed the channel publishes; never repeats, never goes down.
+    pub sequence: u64,
+    /// When the feed was signed.
+    pub issued: Timestamp,
+    /// After this instant the feed must not be trusted any more.
+    pub expires: Timestamp,
+    /// The current release, or `null` when the channel has nothing current.
+    #[serde(deserialize_with = "required_option")]
+    pub release: Option<Release>,
+}
+
+/// Makes `release` required in the JSON: `null` must be written out, a missing field is an
+/// error (serde would otherwise read a missing `Option` as `None`).
+fn required_option<'de, D: Deserializer<'de>, T: Deserialize<'de>>(
+    d: D,
+) -> std::result::Result<Option<T>, D::Error> {
+    Option::deserialize(d)
+}
+
+/// The file a channel serves: the feed's exact text and the signatures over it.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SignedFeed {
+    /// The feed document's exact text; the signatures cover its UTF-8 bytes.
+    pub feed: String,
+    /// Signatures over `context::FEED || feed`, in key-id order.
+    pub signatures: Vec<SignatureEntry>,
+}
+
+fn invalid(message: String) -> Error {
+    Error::new(ErrorKind::Feed, message)
+}
+
+/// Checks a channel name: the same rule as bundle names (1 to 64 lowercase letters, digits,
+/// `-`, `_`, `.`, starting with a letter or digit), so a channel name is always a safe file name.
+pub fn check_channel(name: &str) -> Result<()> {
+    check_name(name).map_err(|_| {
+        invalid(format!(
+            "channel name '{}' is not allowed: use 1 to {} lowercase letters, digits, '-', '_' or '.', \
+             starting with a letter or digit",
+            name.chars().take(80).collect::<String>().escape_debug(),
+            limit::NAME_BYTES
+        ))
+    })
+}
+
+/// Whether `path` is a relative reference made only of path segments: no scheme, no leading
+/// `/`, no query, fragment or percent-escapes, no empty or `.` segments, and not ending in `..`.
+fn is_relative_path(path: &str) -> bool {
+    let segment_ok = |s: &str| {
+        !s.is_empty()
+            && s != "."
+            && s.bytes()
+                .all(|b| b.is_ascii_alphanumeric() || b"-._~".contains(&b))
+    };
+    !path.is_empty()
+        && path.len() <= limit::URL_BYTES
+        && path.split('/').all(segment_ok)
+        && path.rsplit('/').next() != Some("..")
+}
+
+/// Whether `url` is an absolute `http` or `https` URL of printable ASCII with a host.
+fn is_absolute_http_url(url: &str) -> bool {
+    let rest = url
+        .strip_prefix("https://")
+        .or_else(|| url.strip_prefix("http://"));
+    let printable = url
+        .bytes()
+        .all(|b| b.is_ascii_graphic() && !b"\"<>\\^`{|}#".contains(&b));
+    match rest {
+        Some(rest) => {
+            let host = rest.split(['/', '?']).next().unwrap_or("");
+            printable && url.len() <= limit::URL_BYTES && !host.is_empty()
+        }
+        None => false,
+    }
+}
+
+impl Release {
+    /// Checks every field against the format's rules.
+    pub fn validate(&self) -> Result<()> {
+        check_name(&self.name).map_err(|e| invalid(format!("feed release: {e}")))?;
+        if self.rollout_percent > 100 {
+            return Err(invalid(format!(
+                "feed release rollout_percent is {}; it must be 0 to 100",
+                self.rollout_percent
+            )));
+        }
+        if !is_relative_path(&self.path) {
+            return Err(invalid(format!(
+                "feed release path '{}' is not a relative path of plain segments \
+                 (letters, digits, '-', '.', '_', '~', and leading '..')",
+                self.path
+                    .chars()
+                    .take(120)
+                    .collect::<String>()
+                    .escape_debug()
+            )));
+        }
+        if self.mirrors.len() > limit::MIRRORS {
+            return Err(invalid(format!(
+                "feed release lists {} mirrors, over the limit of {}",
+                self.mirrors.len(),
+                limit::MIRRORS
+            )));
+        }
+        if let Some(bad) = self.mirrors.iter().find(|m| !is_absolute_http_url(m)) {
+            return Err(invalid(format!(
+                "feed release mirror '{}' is not an absolute http or https URL",
+                bad.chars().take(120).collect::<String>().escape_debug()
+            )));
+        }
+        Ok(())
+    }
+
+    /// The URLs to try for the bundle, in order: `path` resolved against the feed's URL,
+    /// then the mirrors.
+    pub fn urls(&self, feed_url: &str) -> Result<Vec<String>> {
+        let mut urls = vec![resolve(feed_url, &self.path)?];
+        urls.extend(self.mirrors.iter().cloned());
+        Ok(urls)
+    }
+}
+
+impl Feed {
+    /// Parses feed text strictly (no unknown fields, no duplicate keys) and validates it.
+    pub fn from_json(bytes: &[u8]) -> Result<Feed> {
+        let feed: Feed = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("signed feed is not valid: {e}")))?;
+        feed.validate()?;
+        Ok(feed)
+    }
+
+    /// The feed text as the publisher signs it: compact JSON in field order.
+    pub fn to_json(&self) -> String {
+        serde_json::to_string(self).expect("a feed of plain strings and numbers always serializes")
+    }
+
+    /// Checks every field against the format's rules.
+    pub fn validate(&self) -> Result<()> {
+        if self.format != FEED_FORMAT_VERSION {
+            return Err(invalid(format!(
+                "feed format {} is not supported (this reader knows format {FEED_FORMAT_VERSION})",
+                self.format
+            )));
+        }
+        check_channel(&self.channel)?;
+        if self.expires <= self.issued {
+            return Err(invalid(format!(
+                "feed expires at {}, not after it was issued at {}",
+                self.expires, self.issued
+            )));
+        }
+        if let Some(release) = &self.release {
+            release.validate()?;
+        }
+        Ok(())
+    }
+}
+
+impl SignedFeed {
+    /// Parses a feed file's envelope strictly, refusing it unread when it is over
+    /// [`limit::FEED_BYTES`]. The feed inside is not parsed: its signature comes first.
+    pub fn from_json(bytes: &[u8]) -> Result<SignedFeed> {
+        if bytes.len() as u64 > limit::FEED_BYTES {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "feed is {} bytes, over the limit of {} bytes",
+                    bytes.len(),
+                    limit::FEED_BYTES
+                ),
+            ));
+        }
+        let signed: SignedFeed = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("feed is not valid: {e}")))?;
+        if signed.signatures.len() > limit::SIGNATURES {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "feed holds {} signatures, over the limit of {}",
+                    signed.signatures.len(),
+                    limit::SIGNATURES
+                ),
+            ));
+        }
+        Ok(signed)
+    }
+
+    /// The feed file as the publisher writes it: pretty JSON, signatures in key-id order, a
+    /// final newline.
+    pub fn to_json(&self) -> Vec<u8> {
+        let mut sorted = self.clone();
+        sorted.signatures.sort_by_key(|s| s.key_id);
+        let mut bytes =
+            serde_json::to_vec_pretty(&sorted).expect("a feed envelope of strings serializes");
+        bytes.push(b'\n');
+        bytes
+    }
+}
+
+/// What a device accepts as its channel's feed. Trusted keys and the channel are required.
+#[derive(Debug, Clone)]
+pub struct FeedVerifier {
+    keys: TrustedKeys,
+    channel: String,
+    threshold: usize,
+    skew_secs: u64,
+    last: Option<(u64, Option<Digest>)>,
+}
+
+impl FeedVerifier {
+    /// A verifier for feeds of `channel` signed by one of `keys`. Refuses an empty key set and
+    /// a channel name that no feed could carry.
+    pub fn new(keys: TrustedKeys, channel: impl Into<String>) -> Result<Self> {
+        if keys.is_empty() {
+            return Err(Error::new(
+                ErrorKind::Key,
+                "no trusted keys given; a feed verifier needs at least one public key",
+            ));
+        }
+        let channel = channel.into();
+        check_channel(&channel)?;
+        Ok(FeedVerifier {
+            keys,
+            channel,
+            threshold: 1,
+            skew_secs: DEFAULT_CLOCK_SKEW_SECS,
+            last: None,
+        })
+    }
+
+    /// Requires at least `n` distinct trusted keys to have signed (at least 1).
+    pub fn threshold(mut self, n: usize) -> Self {
+        self.threshold = n.max(1);
+        self
+    }
+
+    /// How far the device's clock may be off, in seconds, when checking `issued` and `expires`.
+    pub fn clock_skew_secs(mut self, secs: u64) -> Self {
+        self.skew_secs = secs;
+        self
+    }
+
+    /// The sequence of the feed this device accepted last, and that feed's digest if the
+    /// device kept it ([`VerifiedFeed::digest`]): lower sequences are refused as replays, and
+    /// an equal sequence with another digest is refused as a second feed under one sequence.
+    pub fn last_accepted(mut self, sequence: u64, digest: Option<Digest>) -> Self {
+        self.last = Some((sequence, digest));
+        self
+    }
+
+    /// The channel this verifier accepts.
+    pub fn channel(&self) -> &str {
+        &self.channel
+    }
+
+    /// Checks a feed file: size, envelope, signatures by trusted keys over the exact feed
+    /// text, then the feed itself, its channel, its times against `now`, and its sequence.
+    pub fn verify(&self, bytes: &[u8], now: Timestamp) -> Result<VerifiedFeed> {
+        let signed = SignedFeed::from_json(bytes)?;
+        let report = check_signatures(
+            "feed",
+            context::FEED,
+            signed.feed.as_bytes(),
+            &signed.signatures,
+            &self.keys,
+            self.threshold,
+        )?;
+        let feed = Feed::from_json(signed.feed.as_bytes())?;
+        if feed.channel != self.channel {
+            return Err(invalid(format!(
+                "feed is for channel '{}' but this device follows channel '{}'",
+                feed.channel, self.channel
+            )));
+        }
+        let stale = |message: String| Err(Error::new(ErrorKind::Stale, message));
+        if feed.issued.unix() > now.unix().saturating_add(self.skew_secs) {
+            return stale(format!(
+                "feed was issued at {}, after this device's clock ({now}) by more than the \
+                 allowed {} s; check the device clock",
+                feed.issued, self.skew_secs
+            ));
+        }
+        if feed.expires.unix().saturating_add(self.skew_secs) < now.unix() {
+            return stale(format!(
+                "feed expired at {} (device clock {now}, allowed skew {} s); the publisher \
+                 must publish a fresh feed",
+                feed.expires, self.skew_secs
+            ));
+        }
+        let digest = Digest::of(signed.feed.as_bytes());
+        let mut is_new = true;
+        if let Some((last, last_digest)) = self.last {
+            if feed.sequence < last {
+                return stale(format!(
+                    "feed sequence {} is lower than {last}, the last one this device accepted; \
+                     refusing a replayed older feed",
+                    feed.sequence
+                ));
+            }
+            if feed.sequence == last {
+                if let Some(d) = last_digest.filter(|d| *d != digest) {
+                    return stale(format!(
+                        "feed sequence {last} was accepted before with digest {d}, but this feed \
+                         under the same sequence has digest {digest}; a publisher never signs \
+                         two feeds under one sequence"
+                    ));
+                }
+                is_new = false;
+            }
+        }
+        Ok(VerifiedFeed {
+            feed,
+            digest,
+            report,
+            is_new,
+        })
+    }
+}
+
+/// A feed that passed every check of [`FeedVerifier::verify`]. Only this crate can make one.
+#[derive(Clone)]
+pub struct VerifiedFeed {
+    feed: Feed,
+    digest: Digest,
+    report: SignatureReport,
+    is_new: bool,
+}
+
+impl fmt::Debug for VerifiedFeed {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("VerifiedFeed")
+            .field("channel", &self.feed.channel)
+            .field("sequence", &self.feed.sequence)
+            .field("release", &self.feed.release.as_ref().map(|r| &r.version))
+            .field("signers", &self.report.valid)
+            .finish_non_exhaustive()
+    }
+}
+
+impl VerifiedFeed {
+    /// The verified feed.
+    pub fn feed(&self) -> &Feed {
+        &self.feed
+    }
+
+    /// The current release, if the channel has one.
+    pub fn release(&self) -> Option<&Release> {
+        self.feed.release.as_ref()
+    }
+
+    /// The feed's sequence: the device stores it (with [`VerifiedFeed::digest`]) once it has
+    /// acted on the feed, and passes it to [`FeedVerifier::last_accepted`] next time.
+    pub fn sequence(&self) -> u64 {
+        self.feed.sequence
+    }
+
+    /// SHA-256 of the signed feed text.
+    pub fn digest(&self) -> Digest {
+        self.digest
+    }
+
+    /// Whether the sequence is higher than the last accepted one (false when this is the
+    /// same feed again).
+    pub fn is_new(&self) -> bool {
+        self.is_new
+    }
+
+    /// The trusted keys whose signatures verified.
+    pub fn signers(&self) -> &[KeyId] {
+        &self.report.valid
+    }
+}
+
+/// The rollout bucket of a device for a release, 0 to 9999: the first 8 bytes of
+/// SHA-256(ROLLOUT_DOMAIN || length of id as 4 bytes big-endian || id || bundle digest) as a
+/// big-endian integer, modulo 10000. Stable: the same device and bundle always give the same
+/// bucket; a new bundle reshuffles which devices go first.
+pub fn rollout_bucket(device_id: &str, bundle: &Digest) -> u16 {
+    let mut hasher = crate::digest::Hasher::new();
+    hasher.update(ROLLOUT_DOMAIN);
+    hasher.update(&(device_id.len() as u32).to_be_bytes());
+    hasher.update(device_id.as_bytes());
+    hasher.update(bundle.as_bytes());
+    let digest = hasher.finish();
+    let mut first = [0u8; 8];
+    first.copy_from_slice(&digest.as_bytes()[..8]);
+    // 2^64 mod 10000 = 1616, so the modulo favours the lowest buckets by 1 part in about
+    // 10^15: far below anything a rollout could notice.
+    (u64::from_be_bytes(first) % 10_000) as u16
+}
+
+/// Whether a device takes a release rolled out to `percent` percent of devices: its bucket
+/// is below `percent` × 100. 0 takes no device, 100 (or more) every device.
+pub fn in_rollout(device_id: &str, bundle: &Digest, percent: u8) -> bool {
+    u32::from(rollout_bucket(device_id, bundle)) < u32::from(percent.min(100)) * 100
+}
+
+/// Resolves a relative path reference against an absolute `http`/`https` base URL, as RFC 3986
+/// section 5.2 does (merge, then remove dot segments); the base's query and fragment are dropped.
+pub fn resolve(base: &str, reference: &str) -> Result<String> {
+    let bad_base = || {
+        invalid(format!(
+            "'{}' is not an absolute http or https URL",
+            base.chars().take(120).collect::<String>().escape_debug()
+        ))
+    };
+    if !is_absolute_http_url(base) {
+        return Err(bad_base());
+    }
+    let scheme_end = base.find("://").ok_or_else(bad_base)? + 3;
+    let without_query = &base[..base.find(['?', '#']).unwrap_or(base.len())];
+    let (origin, path) = match without_query[scheme_end..].find('/') {
+        Some(i) => without_query.split_at(scheme_end + i),
+        None => (without_query, ""),
+    };
+    if reference.starts_with('/') || reference.contains([':', '?', '#']) {
+        return Err(invalid(format!(
+            "'{}' is not a relative path reference",
+            reference
+                .chars()
+                .take(120)
+                .collect::<String>()
+                .escape_debug()
+        )));
+    }
+    // RFC 3986 section 5.2.3: a base with an authority and an empty path merges as "/" + ref.
+    let merged = match path.rfind('/') {
+        Some(i) => format!("{}{reference}", &path[..=i]),
+        None => format!("/{reference}"),
+    };
+    Ok(format!("{origin}{}", remove_dot_segments(&merged)))
+}
+
+/// RFC 3986 section 5.2.4, step by step (paths here are at most a few kilobytes).
+fn remove_dot_segments(path: &str) -> String {
+    let mut input = path.to_string();
+    let mut output = String::with_capacity(path.len());
+    let pop = |output: &mut String| {
+        let cut = output.rfind('/').unwrap_or(0);
+        output.truncate(cut);
+    };
+    while !input.is_empty() {
+        if input.starts_with("../") {
+            input.replace_range(..3, "");
+        } else if input.starts_with("./") || input.starts_with("/./") {
+            // Steps A ("./" goes) and B ("/./" becomes "/") both drop two bytes.
+            input.replace_range(..2, "");
+        } else if input == "/." {
+            input = "/".into();
+        } else if input.starts_with("/../") {
+            input.replace_range(..3, "");
+            pop(&mut output);
+        } else if input == "/.." {
+            input = "/".into();
+            pop(&mut output);
+        } else if input == "." || input == ".." {
+            input.clear();
+        } else {
+            let start = usize::from(input.starts_with('/'));
+            let end = input[start..].find('/').map_or(input.len(), |i| i + start);
+            output.push_str(&input[..end]);
+            input.replace_range(..end, "");
+        }
+    }
+    output
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn resolves_the_rfc_3986_examples() {
+        // RFC 3986 section 5.4.1 (normal examples) and 5.4.2 (abnormal examples), the ones
+        // that are relative path references; base "http://a/b/c/d;p?q".
+        let base = "http://a/b/c/d;p?q";
+        for (reference, expected) in [
+            ("g", "http://a/b/c/g"),
+            ("./g", "http://a/b/c/g"),
+            ("g/", "http://a/b/c/g/"),
+            (";x", "http://a/b/c/;x"),
+            ("g;x", "http://a/b/c/g;x"),
+            (".", "http://a/b/c/"),
+            ("./", "http://a/b/c/"),
+            ("..", "http://a/b/"),
+            ("../", "http://a/b/"),
+            ("../g", "http://a/b/g"),
+            ("../..", "http://a/"),
+            ("../../", "http://a/"),
+            ("../../g", "http://a/g"),
+            ("../../../g", "http://a/g"),
+            ("../../../../g", "http://a/g"),
+            ("g.", "http://a/b/c/g."),
+            (".g", "http://a/b/c/.g"),
+            ("g..", "http://a/b/c/g.."),
+            ("..g", "http://a/b/c/..g"),
+            ("./../g", "http://a/b/g"),
+            ("./g/.", "http://a/b/c/g/"),
+            ("g/./h", "http://a/b/c/g/h"),
+            ("g/../h", "http://a/b/c/h"),
+            ("g;x=1/./y", "http://a/b/c/g;x=1/y"),
+            ("g;x=1/../y", "http://a/b/c/y"),
+        ] {
+            assert_eq!(
+                resolve(base, reference).as_deref().ok(),
+                Some(expected),
+                "{reference}"
+            );
+        }
+        assert_eq!(
+            resolve("http://127.0.0.1:8080", "bundles/x")
+                .ok()
+                .as_deref(),
+            Some("http://127.0.0.1:8080/bundles/x")
+        );
+    }
+
+    #[test]
+    fn release_paths_are_plain_relative_segments() {
+        for good in ["../bundles/ab.ampoule", "bundles/x-1.0.0.ampoule", "a"] {
+            assert!(is_relative_path(good), "{good}");
+        }
+        for bad in [
+            "",
+            "/bundles/x",
+            "http://x/y",
+            "a//b",
+            "./a",
+            "a/..",
+            "a%2e",
+            "a?b",
+            "a\\b",
+        ] {
+            assert!(!is_relative_path(bad), "{bad}");
+        }
+    }
+}

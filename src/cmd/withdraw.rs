@@ -1,0 +1,34 @@
+//! `ampoule withdraw`: pulls a channel's current release, signing a feed that falls back to
+//! the release before it (or to nothing) under a higher sequence.
+
+use ampoule_verify::Timestamp;
+use anyhow::Result;
+
+use crate::cli::WithdrawArgs;
+use crate::cmd::passphrase_source;
+use crate::cmd::publish::report;
+use crate::keyfile;
+use crate::output::Output;
+use crate::tree::{FEEDS_DIR, Signing, Tree, parse_duration};
+
+pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
+    let expires_in_secs = parse_duration(&args.expires_in)?;
+    ampoule_verify::feed::check_channel(&args.channel)?;
+    let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
+    if !args.tree.join(FEEDS_DIR).is_dir() {
+        anyhow::bail!(
+            "{} is not a release tree (it has no {FEEDS_DIR}/ directory); publish to it first",
+            args.tree.display()
+        );
+    }
+    let tree = Tree::lock(&args.tree)?;
+    let signing = Signing {
+        key: &key,
+        now: Timestamp::now(),
+        expires_in_secs,
+    };
+    let change = tree.withdraw(&args.channel, &signing)?;
+    // As in publish: a ledger append goes here, with the tree still locked.
+    drop(tree);
+    report(&change, out)
+}

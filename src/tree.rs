@@ -1,0 +1,592 @@
+//! The release tree: the plain static files a web server hands to devices, and the release-side
+//! records that publishing and withdrawing need. Layout (all paths relative to the tree root):
+//!
+//! ```text
+//! bundles/<sha256>.ampoule   every bundle ever published, named by the SHA-256 of the file
+//! feeds/<channel>.json       each channel's signed feed: what devices poll
+//! history/<channel>.json     each channel's publish and withdraw events, oldest first
+//! index.json                 every name and version in the tree, with its bundle's digest
+//! .lock                      held while a command changes the tree
+//! ```
+//!
+//! Devices need only `feeds/` and `bundles/`; a feed points at its bundle with the relative
+//! path `../bundles/<sha256>.ampoule`, so the tree can be served from any base URL. Every file
+//! is written to a temporary file in its directory, flushed, renamed into place and the
+//! directory flushed, so a reader or a crash sees the old file or the new one, never a mix. The
+//! feed is written last: it is the moment devices see a change.
+
+use std::fs::{self, File, TryLockError};
+use std::io::{self, Read, Write};
+use std::path::{Path, PathBuf};
+
+use ampoule_verify::digest::Hasher;
+use ampoule_verify::feed::{Feed, Release, SignedFeed, check_channel};
+use ampoule_verify::format::{BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes};
+use ampoule_verify::signature::SignatureEntry;
+use ampoule_verify::{Digest, KeyId, Manifest, Timestamp, TrustedKeys, Verifier};
+use anyhow::{Context, Result, anyhow, bail};
+use ed25519_dalek::{Signer, SigningKey};
+use semver::Version;
+use serde::{Deserialize, Serialize};
+use tempfile::NamedTempFile;
+
+use crate::Refused;
+
+pub const BUNDLES_DIR: &str = "bundles";
+pub const FEEDS_DIR: &str = "feeds";
+pub const HISTORY_DIR: &str = "history";
+pub const INDEX_FILE: &str = "index.json";
+pub const LOCK_FILE: &str = ".lock";
+/// Temporary files start with this; `serve` never shows files starting with a dot.
+const TEMP_PREFIX: &str = ".ampoule-partial-";
+/// The largest history or index file read back; far above years of daily publishing.
+const RECORD_FILE_BYTES: u64 = 16 * 1024 * 1024;
+
+/// One change to a channel, as the history records it.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(tag = "action", rename_all = "lowercase", deny_unknown_fields)]
+pub enum Event {
+    /// A release became current (or the current one was renewed with a new rollout).
+    Publish {
+        sequence: u64,
+        time: Timestamp,
+        release: Release,
+    },
+    /// The current release was pulled; the one before it (if any) is current again.
+    Withdraw {
+        sequence: u64,
+        time: Timestamp,
+        name: String,
+        version: Version,
+        sha256: Digest,
+    },
+}
+
+impl Event {
+    pub fn sequence(&self) -> u64 {
+        match self {
+            Event::Publish { sequence, .. } | Event::Withdraw { sequence, .. } => *sequence,
+        }
+    }
+}
+
+/// A channel's history: the events in order, from which the current release follows.
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct History {
+    pub events: Vec<Event>,
+}
+
+impl History {
+    /// The releases that were published and not withdrawn, oldest first; the last is current.
+    /// Publishing a bundle that is already on the stack moves it to the top.
+    pub fn stack(&self) -> Vec<Release> {
+        let mut stack: Vec<Release> = Vec::new();
+        for event in &self.events {
+            match event {
+                Event::Publish { release, .. } => {
+                    stack.retain(|r| r.sha256 != release.sha256);
+                    stack.push(release.clone());
+                }
+                Event::Withdraw { sha256, .. } => stack.retain(|r| r.sha256 != *sha256),
+            }
+        }
+        stack
+    }
+
+    pub fn last_sequence(&self) -> u64 {
+        self.events.iter().map(Event::sequence).max().unwrap_or(0)
+    }
+}
+
+/// One name and version in the tree. A version, once published, always means these bytes.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct IndexEntry {
+    pub name: String,
+    pub version: Version,
+    pub sha256: Digest,
+    pub size: u64,
+    pub first_published: Timestamp,
+}
+
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Index {
+    pub releases: Vec<IndexEntry>,
+}
+
+/// What a publish or withdraw wrote.
+#[derive(Debug, Clone)]
+pub struct Change {
+    pub channel: String,
+    pub feed: Feed,
+    pub feed_path: PathBuf,
+    pub signer: KeyId,
+    /// What the change replaced as current, if anything.
+    pub previous: Option<Release>,
+}
+
+/// A bundle copied into the tree's bundle directory under a temporary name, checked, and
+/// waiting to be renamed to its content address.
+pub struct StagedBundle {
+    temp: NamedTempFile,
+    pub manifest: Manifest,
+    pub sha256: Digest,
+    pub size: u64,
+}
+
+/// Settings shared by publish and withdraw.
+pub struct Signing<'a> {
+    pub key: &'a SigningKey,
+    pub now: Timestamp,
+    pub expires_in_secs: u64,
+}
+
+/// A release tree with its lock held; the lock is released when this is dropped.
+pub struct Tree {
+    root: PathBuf,
+    _lock: File,
+}
+
+fn io_context(doing: &str, path: &Path) -> String {
+    format!("cannot {doing} {}", path.display())
+}
+
+/// Writes `bytes` to `path` atomically: temporary file in the same directory, flush, rename,
+/// flush the directory.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
+    let dir = path.parent().unwrap_or(Path::new("."));
+    let mut temp = tempfile::Builder::new()
+        .prefix(TEMP_PREFIX)
+        .tempfile_in(dir)
+        .with_context(|| io_context("create a temporary file in", dir))?;
+    temp.write_all(bytes)
+        .and_then(|()| temp.as_file().sync_all())
+        .with_context(|| io_context("write", temp.path()))?;
+    publishable(temp.path())?;
+    temp.persist(path)
+        .map_err(|e| e.error)
+        .with_context(|| io_context("replace", path))?;
+    sync_dir(dir)
+}
+
+/// Files in the tree are read by whatever web server serves it.
+fn publishable(path: &Path) -> Result<()> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        fs::set_permissions(path, fs::Permissions::from_mode(0o644))
+            .with_context(|| io_context("set permissions of", path))?;
+    }
+    Ok(())
+}
+
+fn sync_dir(dir: &Path) -> Result<()> {
+    File::open(dir)
+        .and_then(|d| d.sync_all())
+        .with_context(|| io_context("flush directory", dir))
+}
+
+/// Reads a release-side record (history, index), bounded; a missing file is the empty record.
+fn read_record<T: for<'de> Deserialize<'de> + Default>(path: &Path) -> Result<T> {
+    let file = match File::open(path) {
+        Ok(f) => f,
+        Err(e) if e.kind() == io::ErrorKind::NotFound => return Ok(T::default()),
+        Err(e) => return Err(e).with_context(|| io_context("open", path)),
+    };
+    let mut bytes = Vec::new();
+    file.take(RECORD_FILE_BYTES + 1)
+        .read_to_end(&mut bytes)
+        .with_context(|| io_context("read", path))?;
+    if bytes.len() as u64 > RECORD_FILE_BYTES {
+        bail!(
+            "{} is over {RECORD_FILE_BYTES} bytes; it is not a record this tool wrote",
+            path.display()
+        );
+    }
+    serde_json::from_slice(&bytes).with_context(|| {
+        format!(
+            "{} is not a valid record; restore it from a backup (nothing was changed)",
+            path.display()
+        )
+    })
+}
+
+fn to_pretty_json<T: Serialize>(value: &T) -> Vec<u8> {
+    let mut bytes =
+        serde_json::to_vec_pretty(value).expect("records of strings and numbers serialize");
+    bytes.push(b'\n');
+    bytes
+}
+
+/// Parses a duration like `30d`, `12h`, `90m` or `3600s` into seconds: 1 second to 400 days.
+pub fn parse_duration(text: &str) -> Result<u64> {
+    let bad = || {
+        anyhow!(
+            "'{text}' is not a duration; write a whole number and a unit, like 7d, 12h, 90m or 3600s"
+        )
+    };
+    let split = text.len().checked_sub(1).ok_or_else(bad)?;
+    let (number, unit) = text.split_at(split);
+    if number.is_empty() || !number.bytes().all(|b| b.is_ascii_digit()) {
+        return Err(bad());
+    }
+    let n: u64 = number.parse().map_err(|_| bad())?;
+    let scale = match unit {
+        "s" => 1,
+        "m" => 60,
+        "h" => 3600,
+        "d" => 86_400,
+        _ => return Err(bad()),
+    };
+    let secs = n.checked_mul(scale).ok_or_else(bad)?;
+    if !(1..=400 * 86_400).contains(&secs) {
+        bail!("duration '{text}' must be between 1s and 400d");
+    }
+    Ok(secs)
+}
+
+impl Tree {
+    /// Opens (creating if needed) the tree at `root` and takes its lock, failing at once
+    /// when another command holds it.
+    pub fn lock(root: &Path) -> Result<Tree> {
+        for dir in [BUNDLES_DIR, FEEDS_DIR, HISTORY_DIR] {
+            let path = root.join(dir);
+            fs::create_dir_all(&path).with_context(|| io_context("create directory", &path))?;
+        }
+        let lock_path = root.join(LOCK_FILE);
+        let lock = File::options()
+            .create(true)
+            .truncate(false)
+            .write(true)
+            .open(&lock_path)
+            .with_context(|| io_context("open the lock file", &lock_path))?;
+        match lock.try_lock() {
+            Ok(()) => {}
+            Err(TryLockError::WouldBlock) => bail!(
+                "another publish or withdraw is changing the release tree {}; try again when it has finished",
+                root.display()
+            ),
+            Err(TryLockError::Error(e)) => {
+                return Err(e).with_context(|| io_context("lock", &lock_path));
+            }
+        }
+        Ok(Tree {
+            root: root.to_path_buf(),
+            _lock: lock,
+        })
+    }
+
+    pub fn root(&self) -> &Path {
+        &self.root
+    }
+
+    pub fn feed_path(&self, channel: &str) -> PathBuf {
+        self.root.join(FEEDS_DIR).join(format!("{channel}.json"))
+    }
+
+    pub fn history_path(&self, channel: &str) -> PathBuf {
+        self.root.join(HISTORY_DIR).join(format!("{channel}.json"))
+    }
+
+    pub fn bundle_path(&self, sha256: &Digest) -> PathBuf {
+        self.root
+            .join(BUNDLES_DIR)
+            .join(format!("{sha256}.{BUNDLE_EXTENSION}"))
+    }
+
+    pub fn history(&self, channel: &str) -> Result<History> {
+        read_record(&self.history_path(channel))
+    }
+
+    pub fn index(&self) -> Result<Index> {
+        read_record(&self.root.join(INDEX_FILE))
+    }
+
+    /// Copies `bundle` into the tree under a temporary name, hashing it on the way, and checks
+    /// the copy: signature by one of `trust`, manifest, payload digest and every file inside.
+    /// What is published is the copy that was checked, whatever happens to the original.
+    pub fn stage_bundle(&self, bundle: &Path, trust: &TrustedKeys) -> Result<StagedBundle> {
+        let dir = self.root.join(BUNDLES_DIR);
+        let mut temp = tempfile::Builder::new()
+            .prefix(TEMP_PREFIX)
+            .tempfile_in(&dir)
+            .with_context(|| io_context("create a temporary file in", &dir))?;
+        let mut source = File::open(bundle).with_context(|| io_context("open bundle", bundle))?;
+        let mut hasher = Hasher::new();
+        let mut buf = vec![0u8; 1024 * 1024];
+        loop {
+            let n = match source.read(&mut buf) {
+                Ok(0) => break,
+                Ok(n) => n,
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
+                Err(e) => return Err(e).with_context(|| io_context("read", bundle)),
+            };
+            hasher.update(&buf[..n]);
+            temp.write_all(&buf[..n])
+                .with_context(|| io_context("write", temp.path()))?;
+        }
+        temp.as_file()
+            .sync_all()
+            .with_context(|| io_context("flush", temp.path()))?;
+        let size = hasher.len();
+        let sha256 = hasher.finish();
+        let copy = temp
+            .reopen()
+            .with_context(|| io_context("reopen", temp.path()))?;
+        let mut verified = Verifier::dangerous_without_app_version(trust.clone())?
+            .verify_file(copy)
+            .with_context(|| {
+                format!("bundle {} refused; nothing was published", bundle.display())
+            })?;
+        verified.check_contents().with_context(|| {
+            format!("bundle {} refused; nothing was published", bundle.display())
+        })?;
+        Ok(StagedBundle {
+            manifest: verified.manifest().clone(),
+            temp,
+            sha256,
+            size,
+        })
+    }
+
+    /// The sequence the next feed of `channel` gets: above everything in its history and
+    /// above the feed on disk, so it grows even if a history write was lost.
+    fn next_sequence(&self, channel: &str, history: &History) -> Result<u64> {
+        let mut last = history.last_sequence();
+        let path = self.feed_path(channel);
+        match fs::read(&path) {
+            Ok(bytes) => {
+                let signed = SignedFeed::from_json(&bytes)
+                    .with_context(|| format!("{} is not a feed", path.display()))?;
+                let feed = Feed::from_json(signed.feed.as_bytes())
+                    .with_context(|| format!("{} is not a feed", path.display()))?;
+                last = last.max(feed.sequence);
+            }
+            Err(e) if e.kind() == io::ErrorKind::NotFound => {}
+            Err(e) => return Err(e).with_context(|| io_context("read", &path)),
+        }
+        last.checked_add(1)
+            .ok_or_else(|| anyhow!("channel {channel} has used every sequence number"))
+    }
+
+    /// Publishes a staged bundle as the current release of `channel`. Publishing the bundle
+    /// that is current already renews the feed (new sequence and expiry) with the new rollout.
+    pub fn publish(
+        &self,
+        staged: StagedBundle,
+        channel: &str,
+        rollout_percent: u8,
+        mirrors: &[String],
+        signing: &Signing<'_>,
+    ) -> Result<Change> {
+        check_channel(channel)?;
+        if rollout_percent > 100 {
+            bail!("--rollout {rollout_percent} is not a percentage from 0 to 100");
+        }
+        let m = &staged.manifest;
+        let mut index = self.index()?;
+        let same_version = index
+            .releases
+            .iter()
+            .find(|r| r.name == m.name && r.version.cmp_precedence(&m.version).is_eq())
+            .cloned();
+        if let Some(old) = &same_version
+            && old.sha256 != staged.sha256
+        {
+            return Err(Refused(format!(
+                "{} {} is already in the release tree as bundle {} (published {}), and this \
+                 file is {}; a published version never changes: pack it as a new version",
+                m.name, m.version, old.sha256, old.first_published, staged.sha256
+            ))
+            .into());
+        }
+        let mut history = self.history(channel)?;
+        let previous = history.stack().pop();
+        if let Some(current) = &previous {
+            let renew = current.sha256 == staged.sha256;
+            if !renew
+                && current.name == m.name
+                && m.version.cmp_precedence(&current.version).is_le()
+            {
+                return Err(Refused(format!(
+                    "{} {} is not newer than {}, the current release on channel {channel}; \
+                     devices would not take it (use withdraw to go back to an earlier release)",
+                    m.name, m.version, current.version
+                ))
+                .into());
+            }
+        }
+        let release = Release {
+            name: m.name.clone(),
+            version: m.version.clone(),
+            requires_app: m.requires_app.clone(),
+            size: staged.size,
+            sha256: staged.sha256,
+            path: format!("../{BUNDLES_DIR}/{}.{BUNDLE_EXTENSION}", staged.sha256),
+            mirrors: mirrors
+                .iter()
+                .map(|base| {
+                    format!(
+                        "{}/{BUNDLES_DIR}/{}.{BUNDLE_EXTENSION}",
+                        base.trim_end_matches('/'),
+                        staged.sha256
+                    )
+                })
+                .collect(),
+            rollout_percent,
+        };
+        release.validate()?;
+        let sequence = self.next_sequence(channel, &history)?;
+        let feed = self.feed(channel, sequence, Some(release.clone()), signing)?;
+
+        self.place_bundle(staged)?;
+        if same_version.is_none() {
+            index.releases.push(IndexEntry {
+                name: release.name.clone(),
+                version: release.version.clone(),
+                sha256: release.sha256,
+                size: release.size,
+                first_published: signing.now,
+            });
+            write_atomic(&self.root.join(INDEX_FILE), &to_pretty_json(&index))?;
+        }
+        history.events.push(Event::Publish {
+            sequence,
+            time: signing.now,
+            release,
+        });
+        self.commit(channel, &history, feed, previous, signing)
+    }
+
+    /// Pulls the current release of `channel`: the release before it becomes current again,
+    /// or the channel offers nothing (`release: null`) when there is none.
+    pub fn withdraw(&self, channel: &str, signing: &Signing<'_>) -> Result<Change> {
+        check_channel(channel)?;
+        let mut history = self.history(channel)?;
+        let mut stack = history.stack();
+        let Some(current) = stack.pop() else {
+            return Err(Refused(format!(
+                "channel {channel} has no current release in {}; there is nothing to withdraw",
+                self.root.display()
+            ))
+            .into());
+        };
+        let sequence = self.next_sequence(channel, &history)?;
+        let feed = self.feed(channel, sequence, stack.pop(), signing)?;
+        history.events.push(Event::Withdraw {
+            sequence,
+            time: signing.now,
+            name: current.name.clone(),
+            version: current.version.clone(),
+            sha256: current.sha256,
+        });
+        self.commit(channel, &history, feed, Some(current), signing)
+    }
+
+    /// A signed feed for `channel`, not written yet.
+    fn feed(
+        &self,
+        channel: &str,
+        sequence: u64,
+        release: Option<Release>,
+        signing: &Signing<'_>,
+    ) -> Result<Feed> {
+        let expires = signing
+            .now
+            .unix()
+            .checked_add(signing.expires_in_secs)
+            .and_then(Timestamp::from_unix)
+            .ok_or_else(|| anyhow!("the feed's expiry would be past the year 9999"))?;
+        let feed = Feed {
+            format: FEED_FORMAT_VERSION,
+            channel: channel.to_string(),
+            sequence,
+            issued: signing.now,
+            expires,
+            release,
+        };
+        feed.validate()?;
+        Ok(feed)
+    }
+
+    /// Writes the history, then the signed feed: the feed last, because devices act on it.
+    fn commit(
+        &self,
+        channel: &str,
+        history: &History,
+        feed: Feed,
+        previous: Option<Release>,
+        signing: &Signing<'_>,
+    ) -> Result<Change> {
+        write_atomic(&self.history_path(channel), &to_pretty_json(history))?;
+        let text = feed.to_json();
+        let signer = KeyId::of_raw_key(signing.key.verifying_key().as_bytes());
+        let signed = SignedFeed {
+            feed: text.clone(),
+            signatures: vec![SignatureEntry {
+                key_id: signer,
+                signature: signing
+                    .key
+                    .sign(&signed_bytes(context::FEED, text.as_bytes()))
+                    .to_bytes(),
+            }],
+        };
+        let feed_path = self.feed_path(channel);
+        write_atomic(&feed_path, &signed.to_json())?;
+        Ok(Change {
+            channel: channel.to_string(),
+            feed,
+            feed_path,
+            signer,
+            previous,
+        })
+    }
+
+    /// Renames a staged bundle to its content address. A file already there with the same
+    /// name holds the same bytes unless it was damaged, so it is checked and replaced if so.
+    fn place_bundle(&self, staged: StagedBundle) -> Result<()> {
+        let dest = self.bundle_path(&staged.sha256);
+        if let Ok(existing) = File::open(&dest) {
+            let (digest, _) = ampoule_verify::digest::hash_reader(existing, u64::MAX)
+                .with_context(|| io_context("read", &dest))?;
+            if digest == staged.sha256 {
+                return Ok(());
+            }
+        }
+        publishable(staged.temp.path())?;
+        staged
+            .temp
+            .persist(&dest)
+            .map_err(|e| e.error)
+            .with_context(|| io_context("create", &dest))?;
+        sync_dir(&self.root.join(BUNDLES_DIR))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn durations() {
+        assert_eq!(parse_duration("7d").ok(), Some(7 * 86_400));
+        assert_eq!(parse_duration("12h").ok(), Some(12 * 3600));
+        assert_eq!(parse_duration("90m").ok(), Some(5400));
+        assert_eq!(parse_duration("3600s").ok(), Some(3600));
+        for bad in [
+            "",
+            "d",
+            "7",
+            "7w",
+            "-1d",
+            "1.5h",
+            "0s",
+            "401d",
+            "99999999999999999999d",
+        ] {
+            assert!(parse_duration(bad).is_err(), "{bad}");
+        }
+    }
+}

@@ -1,0 +1,123 @@
+// (The release-tree tests share these; tests/common holds the bundle-level helpers.)
+//! Helpers shared by the integration tests: run the binary, make keys and bundles of an
+//! invented trail-camera model, publish them into a release tree.
+#![allow(dead_code)]
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+use ampoule_verify::feed::{Feed, SignedFeed};
+use ampoule_verify::{Digest, FeedVerifier, PublicKey, Timestamp, TrustedKeys};
+
+pub const BIN: &str = env!("CARGO_BIN_EXE_ampoule");
+
+pub fn run(dir: &Path, args: &[&str]) -> Output {
+    Command::new(BIN)
+        .args(args)
+        .current_dir(dir)
+        .output()
+        .expect("the ampoule binary runs")
+}
+
+pub fn ok(dir: &Path, args: &[&str]) -> String {
+    let out = run(dir, args);
+    assert!(
+        out.status.success(),
+        "ampoule {args:?} failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout).into_owned()
+}
+
+pub fn refused(dir: &Path, args: &[&str]) -> (i32, String) {
+    let out = run(dir, args);
+    assert!(!out.status.success(), "ampoule {args:?} succeeded");
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stderr).trim_end().to_string(),
+    )
+}
+
+/// A temp dir with a feed/release key and the inputs of a small trail-camera model.
+pub fn setup() -> tempfile::TempDir {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let d = dir.path();
+    ok(d, &["keygen", "--secret", "k.pem", "--public", "k.pub"]);
+    std::fs::write(
+        d.join("labels.txt"),
+        "fox\nroe deer\nwild boar\nbadger\nhare\nempty frame\n",
+    )
+    .expect("labels");
+    dir
+}
+
+/// Packs version `version` of the model line, with model bytes that depend on `variant`.
+pub fn pack(d: &Path, version: &str, variant: u8, key: &str) -> String {
+    let model = format!("model-{version}-{variant}.bin");
+    let bytes: Vec<u8> = (0..40_000u32)
+        .map(|i| (i.wrapping_mul(31) as u8) ^ variant)
+        .collect();
+    std::fs::write(d.join(&model), bytes).expect("model");
+    let out = format!("species-{version}-{variant}.ampoule");
+    ok(
+        d,
+        &[
+            "pack",
+            "--model",
+            &model,
+            "--labels",
+            "labels.txt",
+            "--name",
+            "trailcam-species",
+            "--version",
+            version,
+            "--requires-app",
+            ">=2.0.0, <3.0.0",
+            "--created",
+            "2026-12-01T08:00:00Z",
+            "--key",
+            key,
+            "-o",
+            &out,
+        ],
+    );
+    out
+}
+
+pub fn publish(d: &Path, bundle: &str, channel: &str, rollout: &str) -> serde_json::Value {
+    let out = ok(
+        d,
+        &[
+            "--json",
+            "publish",
+            bundle,
+            "--tree",
+            "tree",
+            "--channel",
+            channel,
+            "--key",
+            "k.pem",
+            "--rollout",
+            rollout,
+        ],
+    );
+    serde_json::from_str(&out).expect("publish --json prints JSON")
+}
+
+pub fn keys(d: &Path) -> TrustedKeys {
+    let pem = std::fs::read_to_string(d.join("k.pub")).expect("public key");
+    [PublicKey::from_pem(&pem).expect("key")]
+        .into_iter()
+        .collect()
+}
+
+pub fn read_feed(d: &Path, channel: &str) -> Feed {
+    let bytes = std::fs::read(d.join(format!("tree/feeds/{channel}.json"))).expect("feed");
+    let verified = FeedVerifier::new(keys(d), channel)
+        .expect("verifier")
+        .verify(&bytes, Timestamp::now())
+        .expect("the published feed verifies");
+    let signed = SignedFeed::from_json(&bytes).expect("envelope");
+    assert_eq!(verified.digest(), Digest::of(signed.feed.as_bytes()));
+    verified.feed().clone()
+}
