@@ -70,7 +70,7 @@ impl<W: Write> Write for HashingWriter<W> {
 
 /// The temporary file a bundle is written to before it is renamed into place: in the
 /// destination's directory, so the rename is atomic.
-fn temp_beside(path: &Path) -> Result<NamedTempFile> {
+pub fn temp_beside(path: &Path) -> Result<NamedTempFile> {
     let dir = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p,
         _ => Path::new("."),

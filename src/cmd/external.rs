@@ -8,6 +8,8 @@ use std::path::Path;
 
 use anyhow::{Context, Result, bail};
 
+use crate::pack::temp_beside;
+
 /// Reads a whole file of at most `max` bytes, refusing a larger one before reading it all.
 pub fn read_bounded(path: &Path, max: u64, what: &str) -> Result<Vec<u8>> {
     let file = File::open(path).with_context(|| format!("cannot open {}", path.display()))?;
@@ -33,17 +35,6 @@ pub fn read_raw_signature(path: &Path) -> Result<[u8; 64]> {
             bytes.len()
         )
     })
-}
-
-fn temp_beside(path: &Path) -> Result<tempfile::NamedTempFile> {
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p,
-        _ => Path::new("."),
-    };
-    tempfile::Builder::new()
-        .prefix(".ampoule-partial-")
-        .tempfile_in(dir)
-        .with_context(|| format!("cannot create a temporary file in {}", dir.display()))
 }
 
 /// Writes `bytes` to `path` through a temporary file that is flushed and then renamed into

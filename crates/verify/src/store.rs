@@ -80,7 +80,7 @@ use crate::format::{entry, limit};
 use crate::keys::KeyId;
 use crate::labels::parse_stored_labels;
 use crate::manifest::{Manifest, Role};
-use crate::unpack::sync_dir;
+use crate::unpack::{Staging, sync_dir};
 use crate::verify::{VerifiedBundle, Verifier};
 
 /// The format version of `state.json`.
@@ -518,7 +518,8 @@ impl Store {
         }
         step(hook, Step::Locked)?;
 
-        let mut staging = Staging::create(&releases)?;
+        // The staging directory later becomes the renamed release.
+        let mut staging = Staging::create_in(&releases, STAGING_PREFIX)?;
         step(hook, Step::StagingCreated)?;
         let labels = bundle.unpack_into_staging(&staging.path)?;
         step(hook, Step::FilesWritten)?;
@@ -1100,48 +1101,6 @@ fn unique_suffix() -> String {
         .duration_since(std::time::UNIX_EPOCH)
         .map_or(0, |d| d.subsec_nanos());
     format!("{}-{nanos:x}", std::process::id())
-}
-
-/// A staging directory (later the renamed release) that is removed unless kept.
-struct Staging {
-    path: PathBuf,
-    keep: bool,
-}
-
-impl Staging {
-    fn create(releases: &Path) -> Result<Staging> {
-        for attempt in 0..100u32 {
-            let path = releases.join(format!("{STAGING_PREFIX}{}-{attempt}", unique_suffix()));
-            match fs::create_dir(&path) {
-                Ok(()) => return Ok(Staging { path, keep: false }),
-                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
-                Err(e) => {
-                    return Err(Error::io(
-                        format!(
-                            "cannot create a staging directory in {}",
-                            releases.display()
-                        ),
-                        e,
-                    ));
-                }
-            }
-        }
-        Err(Error::new(
-            ErrorKind::Destination,
-            format!(
-                "cannot find a free staging directory name in {}",
-                releases.display()
-            ),
-        ))
-    }
-}
-
-impl Drop for Staging {
-    fn drop(&mut self) {
-        if !self.keep {
-            let _ = fs::remove_dir_all(&self.path);
-        }
-    }
 }
 
 /// A temporary file that is removed unless kept.

@@ -273,10 +273,10 @@ fn read_payload(
     Ok(labels)
 }
 
-/// A staging directory that removes itself unless it was renamed into place.
-struct Staging {
-    path: PathBuf,
-    keep: bool,
+/// A staging directory that removes itself unless it was renamed into place (`keep`).
+pub(crate) struct Staging {
+    pub path: PathBuf,
+    pub keep: bool,
 }
 
 impl Drop for Staging {
@@ -287,37 +287,44 @@ impl Drop for Staging {
     }
 }
 
+impl Staging {
+    /// Makes a fresh, empty directory in `dir` named `<prefix><pid>-<nanos>-<attempt>`, so
+    /// that leftovers of a crashed run can be recognised by their prefix.
+    pub(crate) fn create_in(dir: &Path, prefix: &str) -> Result<Staging> {
+        let pid = std::process::id();
+        for attempt in 0..100u32 {
+            let nanos = std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(0, |d| d.subsec_nanos());
+            let path = dir.join(format!("{prefix}{pid}-{nanos:x}-{attempt}"));
+            match fs::create_dir(&path) {
+                Ok(()) => return Ok(Staging { path, keep: false }),
+                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+                Err(e) => {
+                    return Err(Error::io(
+                        format!("cannot create a staging directory in {}", dir.display()),
+                        e,
+                    ));
+                }
+            }
+        }
+        Err(Error::new(
+            ErrorKind::Destination,
+            format!(
+                "cannot find a free staging directory name in {}",
+                dir.display()
+            ),
+        ))
+    }
+}
+
 /// Makes a fresh, empty staging directory beside `dest`.
 fn make_staging(dest: &Path) -> Result<Staging> {
-    let parent = parent_of(dest);
     let stem = dest
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_else(|| "bundle".into());
-    let pid = std::process::id();
-    for attempt in 0..100u32 {
-        let nanos = std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .map_or(0, |d| d.subsec_nanos());
-        let path = parent.join(format!(".{stem}.partial-{pid}-{nanos:x}-{attempt}"));
-        match fs::create_dir(&path) {
-            Ok(()) => return Ok(Staging { path, keep: false }),
-            Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
-            Err(e) => {
-                return Err(Error::io(
-                    format!("cannot create a staging directory in {}", parent.display()),
-                    e,
-                ));
-            }
-        }
-    }
-    Err(Error::new(
-        ErrorKind::Destination,
-        format!(
-            "cannot find a free staging directory name in {}",
-            parent.display()
-        ),
-    ))
+    Staging::create_in(parent_of(dest), &format!(".{stem}.partial-"))
 }
 
 fn parent_of(path: &Path) -> &Path {
