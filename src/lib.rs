@@ -10,6 +10,7 @@ pub mod demo;
 pub mod keyfile;
 pub mod output;
 pub mod pack;
+pub mod synth;
 
 /// Exit codes, documented in `--help` and the README.
 pub mod exit {
