@@ -5,21 +5,17 @@
 //! checked before anything large is read or parsed.
 
 use std::fs::File;
-use std::io::{self, Read, Seek, SeekFrom, Write};
-use std::sync::mpsc::{Receiver, SyncSender, channel, sync_channel};
+use std::io::{self, BufRead, Read, Seek, SeekFrom, Write};
 
 use crate::digest::Hasher;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{entry, limit};
 use crate::manifest::Manifest;
+use crate::readahead::ReadAhead;
 use crate::tar;
 use crate::verify::{Progress, ProgressFn, Stage};
 
 const ARCHIVE: &str = "bundle";
-/// The size of each read of the payload while it is hashed.
-const CHUNK: usize = 256 * 1024;
-/// Chunks read ahead of the hashing.
-const CHUNKS_IN_FLIGHT: usize = 4;
 
 /// Where the pieces of a bundle file are.
 #[derive(Debug, Clone)]
@@ -153,34 +149,9 @@ pub fn write_bundle<W: Write, R: Read>(
     write_tail(out, payload_len)
 }
 
-/// Runs on its own thread: reads `reader` to its end in chunks, reusing spent buffers, and
-/// stops early when the hashing side has gone.
-fn read_chunks<R: Read>(
-    mut reader: R,
-    chunks: &SyncSender<io::Result<Vec<u8>>>,
-    spent: &Receiver<Vec<u8>>,
-) {
-    loop {
-        let mut buf = spent.try_recv().unwrap_or_default();
-        buf.resize(CHUNK, 0);
-        let n = match reader.read(&mut buf) {
-            Ok(0) => return,
-            Ok(n) => n,
-            Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
-            Err(e) => {
-                let _ = chunks.send(Err(e));
-                return;
-            }
-        };
-        buf.truncate(n);
-        if chunks.send(Ok(buf)).is_err() {
-            return;
-        }
-    }
-}
-
 /// Streams the compressed payload through SHA-256, reading exactly the size the manifest
-/// declares, and compares it with the manifest's digest.
+/// declares, and compares it with the manifest's digest. The reads run on a thread of their
+/// own, so this pass takes as long as the hashing alone.
 pub fn check_payload(
     file: &mut File,
     layout: &Layout,
@@ -199,18 +170,19 @@ pub fn check_payload(
     }
     file.seek(SeekFrom::Start(layout.payload_offset))
         .map_err(|e| Error::io("cannot read the payload", e))?;
-    // Reading (a copy out of the page cache, or a wait for the disk) runs on its own thread,
-    // beside the hashing, so this pass takes as long as the slower of the two.
-    let (chunks, queued) = sync_channel::<io::Result<Vec<u8>>>(CHUNKS_IN_FLIGHT);
-    let (done, spent) = channel::<Vec<u8>>();
     let mut hasher = Hasher::new();
     std::thread::scope(|scope| -> Result<()> {
-        let reader = file.take(declared.size);
-        scope.spawn(move || read_chunks(reader, &chunks, &spent));
-        for chunk in queued {
-            let chunk = chunk.map_err(|e| Error::io("cannot read the payload", e))?;
-            hasher.update(&chunk);
-            let _ = done.send(chunk);
+        let mut input = ReadAhead::spawn(scope, file.take(declared.size));
+        loop {
+            let chunk = input
+                .fill_buf()
+                .map_err(|e| Error::io("cannot read the payload", e))?;
+            if chunk.is_empty() {
+                return Ok(());
+            }
+            hasher.update(chunk);
+            let n = chunk.len();
+            input.consume(n);
             if let Some(report) = progress {
                 report(Progress {
                     stage: Stage::HashPayload,
@@ -219,7 +191,6 @@ pub fn check_payload(
                 });
             }
         }
-        Ok(())
     })?;
     if hasher.len() != declared.size {
         return Err(Error::new(

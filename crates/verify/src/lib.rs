@@ -14,6 +14,7 @@ pub mod format;
 pub mod keys;
 pub mod labels;
 pub mod manifest;
+mod readahead;
 pub mod signature;
 pub mod tar;
 pub mod time;

@@ -18,6 +18,7 @@ use crate::digest::Hasher;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::limit;
 use crate::labels::parse_stored_labels;
+use crate::readahead::ReadAhead;
 use crate::tar;
 use crate::verify::{Progress, Stage, VerifiedBundle};
 
@@ -177,10 +178,11 @@ fn decode(
     out: SyncSender<Result<Vec<u8>>>,
     spent: Receiver<Vec<u8>>,
 ) {
-    let result = (|| -> Result<()> {
+    let result = std::thread::scope(|scope| -> Result<()> {
         file.seek(SeekFrom::Start(offset))
             .map_err(|e| Error::io("cannot read the payload", e))?;
-        let input = io::BufReader::with_capacity(CHUNK, file.take(size));
+        // The compressed bytes are read on yet another thread, so this one only decodes.
+        let input = ReadAhead::spawn(scope, file.take(size));
         let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
             .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
         decoder
@@ -218,7 +220,7 @@ fn decode(
                 return Ok(());
             }
         }
-    })();
+    });
     if let Err(e) = result {
         let _ = out.send(Err(e));
     }
