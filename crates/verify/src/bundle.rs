@@ -5,12 +5,13 @@
 //! checked before anything large is read or parsed.
 
 use std::fs::File;
-use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::io::{self, BufRead, Read, Seek, SeekFrom, Write};
 
 use crate::digest::Hasher;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{entry, limit};
 use crate::manifest::Manifest;
+use crate::readahead::ReadAhead;
 use crate::tar;
 use crate::verify::{Progress, ProgressFn, Stage};
 
@@ -63,9 +64,7 @@ pub fn read_layout(file: &mut File, file_len: u64) -> Result<Layout> {
         limit::SIGNATURES_BYTES,
     )?;
     let payload_len = tar::expect_entry(&mut reader, ARCHIVE, order, 2)?;
-    let payload_offset = tar::entry_len(manifest.len() as u64)
-        + tar::entry_len(signatures.len() as u64)
-        + tar::BLOCK;
+    let payload_offset = payload_offset(manifest.len() as u64, signatures.len() as u64);
     drop(reader);
     let needed = payload_offset
         .checked_add(payload_len + tar::padding(payload_len))
@@ -98,6 +97,37 @@ pub fn read_layout(file: &mut File, file_len: u64) -> Result<Layout> {
     })
 }
 
+/// Where the payload's bytes start in a bundle whose manifest and signatures documents are
+/// `manifest_len` and `signatures_len` bytes long.
+pub fn payload_offset(manifest_len: u64, signatures_len: u64) -> u64 {
+    tar::entry_len(manifest_len) + tar::entry_len(signatures_len) + tar::BLOCK
+}
+
+/// Writes everything before the payload's bytes: the manifest and signatures entries and the
+/// payload's header, [`payload_offset`] bytes in all, with headers stamped `mtime`.
+pub fn write_head<W: Write>(
+    out: &mut W,
+    mtime: u64,
+    manifest: &[u8],
+    signatures: &[u8],
+    payload_len: u64,
+) -> io::Result<()> {
+    let zeros = [0u8; 512];
+    for (name, data) in [(entry::MANIFEST, manifest), (entry::SIGNATURES, signatures)] {
+        out.write_all(&tar::header(name, data.len() as u64, mtime))?;
+        out.write_all(data)?;
+        out.write_all(&zeros[..tar::padding(data.len() as u64) as usize])?;
+    }
+    out.write_all(&tar::header(entry::PAYLOAD, payload_len, mtime))
+}
+
+/// Writes everything after the payload's `payload_len` bytes: its padding and the
+/// end-of-archive marker.
+pub fn write_tail<W: Write>(out: &mut W, payload_len: u64) -> io::Result<()> {
+    out.write_all(&[0u8; 512][..tar::padding(payload_len) as usize])?;
+    out.write_all(&tar::END_OF_ARCHIVE)
+}
+
 /// Writes a bundle: the three entries in order with headers stamped `mtime`, zero padding,
 /// and the end-of-archive marker. `payload` must yield exactly `payload_len` bytes.
 pub fn write_bundle<W: Write, R: Read>(
@@ -108,13 +138,7 @@ pub fn write_bundle<W: Write, R: Read>(
     payload: &mut R,
     payload_len: u64,
 ) -> io::Result<()> {
-    let zeros = [0u8; 512];
-    for (name, data) in [(entry::MANIFEST, manifest), (entry::SIGNATURES, signatures)] {
-        out.write_all(&tar::header(name, data.len() as u64, mtime))?;
-        out.write_all(data)?;
-        out.write_all(&zeros[..tar::padding(data.len() as u64) as usize])?;
-    }
-    out.write_all(&tar::header(entry::PAYLOAD, payload_len, mtime))?;
+    write_head(out, mtime, manifest, signatures, payload_len)?;
     let copied = io::copy(&mut payload.take(payload_len), out)?;
     if copied != payload_len {
         return Err(io::Error::new(
@@ -122,13 +146,12 @@ pub fn write_bundle<W: Write, R: Read>(
             format!("payload ended after {copied} of {payload_len} bytes"),
         ));
     }
-    out.write_all(&zeros[..tar::padding(payload_len) as usize])?;
-    out.write_all(&tar::END_OF_ARCHIVE)?;
-    Ok(())
+    write_tail(out, payload_len)
 }
 
 /// Streams the compressed payload through SHA-256, reading exactly the size the manifest
-/// declares, and compares it with the manifest's digest.
+/// declares, and compares it with the manifest's digest. The reads run on a thread of their
+/// own, so this pass takes as long as the hashing alone.
 pub fn check_payload(
     file: &mut File,
     layout: &Layout,
@@ -147,25 +170,28 @@ pub fn check_payload(
     }
     file.seek(SeekFrom::Start(layout.payload_offset))
         .map_err(|e| Error::io("cannot read the payload", e))?;
-    let mut reader = file.take(declared.size);
     let mut hasher = Hasher::new();
-    let mut buf = vec![0u8; 256 * 1024];
-    loop {
-        let n = match reader.read(&mut buf) {
-            Ok(0) => break,
-            Ok(n) => n,
-            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
-            Err(e) => return Err(Error::io("cannot read the payload", e)),
-        };
-        hasher.update(&buf[..n]);
-        if let Some(report) = progress {
-            report(Progress {
-                stage: Stage::HashPayload,
-                done: hasher.len(),
-                total: declared.size,
-            });
+    std::thread::scope(|scope| -> Result<()> {
+        let mut input = ReadAhead::spawn(scope, file.take(declared.size));
+        loop {
+            let chunk = input
+                .fill_buf()
+                .map_err(|e| Error::io("cannot read the payload", e))?;
+            if chunk.is_empty() {
+                return Ok(());
+            }
+            hasher.update(chunk);
+            let n = chunk.len();
+            input.consume(n);
+            if let Some(report) = progress {
+                report(Progress {
+                    stage: Stage::HashPayload,
+                    done: hasher.len(),
+                    total: declared.size,
+                });
+            }
         }
-    }
+    })?;
     if hasher.len() != declared.size {
         return Err(Error::new(
             ErrorKind::Malformed,

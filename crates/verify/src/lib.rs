@@ -19,6 +19,7 @@ pub mod labels;
 pub mod manifest;
 pub mod merkle;
 pub mod model;
+mod readahead;
 pub mod signature;
 pub mod store;
 pub mod tar;

@@ -207,6 +207,14 @@ pub fn parse_header(h: &[u8; 512], archive: &str) -> Result<Block> {
     })
 }
 
+/// The error for `what` (an entry, a header) ending before its declared size.
+pub(crate) fn truncated(what: &str) -> Error {
+    Error::new(
+        ErrorKind::Malformed,
+        format!("{what} is truncated: the file ended early"),
+    )
+}
+
 /// Reads exactly `buf.len()` bytes, turning a short read into a truncation error.
 pub(crate) fn read_exact_or_truncated<R: Read>(
     reader: &mut R,
@@ -215,10 +223,7 @@ pub(crate) fn read_exact_or_truncated<R: Read>(
 ) -> Result<()> {
     match reader.read_exact(buf) {
         Ok(()) => Ok(()),
-        Err(e) if e.kind() == io::ErrorKind::UnexpectedEof => Err(Error::new(
-            ErrorKind::Malformed,
-            format!("{} is truncated: the file ended early", what()),
-        )),
+        Err(e) if e.kind() == io::ErrorKind::UnexpectedEof => Err(truncated(&what())),
         Err(e) => Err(Error::io(format!("cannot read {}", what()), e)),
     }
 }

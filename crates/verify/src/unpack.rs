@@ -1,12 +1,16 @@
 //! Decompressing a verified payload: a bounded zstd decoder on one thread, the inner tar's
-//! checks, the per-file SHA-256 and the writes on another, and the staging directory that
-//! turns into the destination only when everything matched.
+//! checks and the per-file SHA-256 on another, the writes on a third, and the staging
+//! directory that turns into the destination only when everything matched.
 //!
 //! Memory is bounded by the zstd window cap and a few fixed buffers, never by the model size.
+//! Decoded chunks are shared with the writing thread, not copied: the hash and the write of
+//! the same bytes run side by side.
 
 use std::fs::{self, File, OpenOptions};
 use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::ops::Deref;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 
@@ -15,43 +19,136 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::format::limit;
 use crate::labels::parse_stored_labels;
 use crate::manifest::Manifest;
+use crate::readahead::ReadAhead;
 use crate::tar;
 use crate::verify::{Progress, ProgressFn, Stage};
 
 const ARCHIVE: &str = "payload";
 const CHUNK: usize = 256 * 1024;
 const CHUNKS_IN_FLIGHT: usize = 4;
+/// How much of a file is written between flushes to disk while it streams.
+const EARLY_SYNC_BYTES: usize = 16 * 1024 * 1024;
+
+/// Bytes inside a decoded chunk, shared with the writing thread instead of copied.
+struct Piece {
+    chunk: Arc<Vec<u8>>,
+    start: usize,
+    end: usize,
+}
+
+impl Deref for Piece {
+    type Target = [u8];
+
+    fn deref(&self) -> &[u8] {
+        &self.chunk[self.start..self.end]
+    }
+}
+
+/// Hands a chunk back to the decoder for reuse once nobody else holds it; the last holder
+/// does this, whether that is the reader or the writing thread.
+fn recycle(chunk: Arc<Vec<u8>>, spent: &Sender<Vec<u8>>) {
+    if let Ok(buf) = Arc::try_unwrap(chunk) {
+        let _ = spent.send(buf);
+    }
+}
 
 /// Reads the decoder thread's chunks as one stream, handing spent buffers back for reuse.
 struct ChunkReader {
     chunks: Receiver<Result<Vec<u8>>>,
     spent: Sender<Vec<u8>>,
-    current: Vec<u8>,
+    current: Arc<Vec<u8>>,
     pos: usize,
     failed: Option<Error>,
 }
 
-impl Read for ChunkReader {
-    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+impl ChunkReader {
+    /// Makes sure unread bytes are at hand; false at the end of the stream.
+    fn fill(&mut self) -> io::Result<bool> {
         while self.pos == self.current.len() {
             match self.chunks.recv() {
                 Ok(Ok(chunk)) => {
-                    let spent = std::mem::replace(&mut self.current, chunk);
-                    let _ = self.spent.send(spent);
+                    let spent = std::mem::replace(&mut self.current, Arc::new(chunk));
+                    recycle(spent, &self.spent);
                     self.pos = 0;
                 }
                 Ok(Err(e)) => {
                     self.failed = Some(e);
                     return Err(io::Error::other("payload decoding failed"));
                 }
-                Err(_) => return Ok(0),
+                Err(_) => return Ok(false),
             }
+        }
+        Ok(true)
+    }
+
+    /// Up to `max` of the next bytes, without copying them; `None` at the end of the stream.
+    fn piece(&mut self, max: usize) -> io::Result<Option<Piece>> {
+        if !self.fill()? {
+            return Ok(None);
+        }
+        let end = self.current.len().min(self.pos.saturating_add(max));
+        let piece = Piece {
+            chunk: Arc::clone(&self.current),
+            start: self.pos,
+            end,
+        };
+        self.pos = end;
+        Ok(Some(piece))
+    }
+}
+
+impl Read for ChunkReader {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        if !self.fill()? {
+            return Ok(0);
         }
         let n = buf.len().min(self.current.len() - self.pos);
         buf[..n].copy_from_slice(&self.current[self.pos..self.pos + n]);
         self.pos += n;
         Ok(n)
     }
+}
+
+/// Runs on its own thread for each file written: writes the pieces in order, recycling their
+/// chunks, and gives the file back for its flush to disk.
+///
+/// A second thread flushes the file to disk every [`EARLY_SYNC_BYTES`] as it grows, so the
+/// final `sync_all` has little left to wait for, the writes themselves never wait for the
+/// disk, and a device with little memory does not pile up a whole model of unwritten pages.
+fn write_pieces(file: File, pieces: Receiver<Piece>, spent: Sender<Vec<u8>>) -> io::Result<File> {
+    let early = file.try_clone()?;
+    let (kick, kicked) = sync_channel::<()>(1);
+    std::thread::scope(|scope| {
+        let flusher = scope.spawn(move || kicked.iter().try_for_each(|()| early.sync_data()));
+        let written = write_each(file, pieces, &spent, kick);
+        let flushed = flusher
+            .join()
+            .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        let file = written?;
+        flushed?;
+        Ok(file)
+    })
+}
+
+/// The writing loop of [`write_pieces`]; returning drops `kick`, which stops the flusher.
+fn write_each(
+    mut file: File,
+    pieces: Receiver<Piece>,
+    spent: &Sender<Vec<u8>>,
+    kick: SyncSender<()>,
+) -> io::Result<File> {
+    let mut unflushed = 0;
+    for piece in pieces {
+        file.write_all(&piece)?;
+        unflushed += piece.len();
+        recycle(piece.chunk, spent);
+        if unflushed >= EARLY_SYNC_BYTES {
+            // A flush already under way takes these pages too, so a full queue is no loss.
+            let _ = kick.try_send(());
+            unflushed = 0;
+        }
+    }
+    Ok(file)
 }
 
 fn decode_error(e: &io::Error) -> Error {
@@ -82,10 +179,11 @@ fn decode(
     out: SyncSender<Result<Vec<u8>>>,
     spent: Receiver<Vec<u8>>,
 ) {
-    let result = (|| -> Result<()> {
+    let result = std::thread::scope(|scope| -> Result<()> {
         file.seek(SeekFrom::Start(offset))
             .map_err(|e| Error::io("cannot read the payload", e))?;
-        let input = io::BufReader::with_capacity(CHUNK, file.take(size));
+        // The compressed bytes are read on yet another thread, so this one only decodes.
+        let input = ReadAhead::spawn(scope, file.take(size));
         let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
             .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
         decoder
@@ -123,7 +221,7 @@ fn decode(
                 return Ok(());
             }
         }
-    })();
+    });
     if let Err(e) = result {
         let _ = out.send(Err(e));
     }
@@ -178,7 +276,7 @@ pub(crate) fn stream(source: &Source<'_>, dir: Option<&Path>) -> Result<Vec<Stri
         let mut reader = ChunkReader {
             chunks: chunk_rx,
             spent: spent_tx,
-            current: Vec::new(),
+            current: Arc::new(Vec::new()),
             pos: 0,
             failed: None,
         };
@@ -210,7 +308,6 @@ fn read_payload(
 ) -> Result<Vec<String>> {
     let order: Vec<&str> = manifest.files.iter().map(|f| f.path.as_str()).collect();
     let mut labels_bytes = Vec::new();
-    let mut buf = vec![0u8; CHUNK];
     for (index, declared) in manifest.files.iter().enumerate() {
         let size = tar::expect_entry(reader, ARCHIVE, &order, index)?;
         if size != declared.size {
@@ -222,27 +319,61 @@ fn read_payload(
                 ),
             ));
         }
-        let mut out = sink.open(&declared.path)?;
-        let mut hasher = Hasher::new();
-        let mut left = size;
-        while left > 0 {
-            let want = buf.len().min(usize::try_from(left).unwrap_or(usize::MAX));
-            tar::read_exact_or_truncated(reader, &mut buf[..want], || {
-                format!("{ARCHIVE} entry '{}'", declared.path)
-            })?;
-            let chunk = &buf[..want];
-            hasher.update(chunk);
-            if declared.role == crate::manifest::Role::Labels {
-                labels_bytes.extend_from_slice(chunk);
+        let out = sink.open(&declared.path)?;
+        let cannot_write = |e| Error::io(format!("cannot write {}", declared.path), e);
+        let (found, out) = std::thread::scope(|scope| -> Result<_> {
+            let mut writer = out.map(|file| {
+                let (pieces, queued) = sync_channel(CHUNKS_IN_FLIGHT);
+                let spent = reader.spent.clone();
+                (
+                    pieces,
+                    scope.spawn(move || write_pieces(file, queued, spent)),
+                )
+            });
+            let mut hasher = Hasher::new();
+            let mut left = size;
+            while left > 0 {
+                let want = usize::try_from(left).unwrap_or(usize::MAX);
+                let piece = match reader.piece(want) {
+                    Ok(Some(piece)) => piece,
+                    Ok(None) => {
+                        return Err(tar::truncated(&format!(
+                            "{ARCHIVE} entry '{}'",
+                            declared.path
+                        )));
+                    }
+                    Err(e) => {
+                        let what = format!("cannot read {ARCHIVE} entry '{}'", declared.path);
+                        return Err(Error::io(what, e));
+                    }
+                };
+                hasher.update(&piece);
+                if declared.role == crate::manifest::Role::Labels {
+                    labels_bytes.extend_from_slice(&piece);
+                }
+                let n = piece.len() as u64;
+                if let Some((pieces, _)) = &writer
+                    && pieces.send(piece).is_err()
+                {
+                    // The writing thread stopped on an error; it is reported below.
+                    break;
+                }
+                left -= n;
+                advance(n);
             }
-            if let Some(file) = out.as_mut() {
-                file.write_all(chunk)
-                    .map_err(|e| Error::io(format!("cannot write {}", declared.path), e))?;
-            }
-            left -= want as u64;
-            advance(want as u64);
-        }
-        let found = hasher.finish();
+            let file = match writer.take() {
+                Some((pieces, handle)) => {
+                    drop(pieces);
+                    let file = handle
+                        .join()
+                        .unwrap_or_else(|panic| std::panic::resume_unwind(panic))
+                        .map_err(cannot_write)?;
+                    Some(file)
+                }
+                None => None,
+            };
+            Ok((hasher.finish(), file))
+        })?;
         if found != declared.sha256 {
             return Err(Error::new(
                 ErrorKind::Digest,

@@ -1,0 +1,355 @@
+//! `cargo bench --bench pipeline`: ampoule against the general-purpose pipeline it replaces,
+//! in one run on the same invented model, so that both sides see the same machine and load.
+//!
+//! The pipeline is what a team would script without ampoule: `tar | zstd -3 -T2`, a SHA-256
+//! of the compressed file with `openssl dgst`, and an Ed25519 signature over that digest with
+//! `openssl pkeyutl -sign -rawin`; its counterpart verifies the signature, recomputes the
+//! digest and unpacks with `zstd -d | tar x`. ampoule does more (it hashes every file inside
+//! too, and flushes the unpacked files to disk), which is why its time is worth watching.
+//!
+//! Settings come from the environment: `AMPOULE_BENCH_SCALE` (the model is 84 MiB times this,
+//! default 1) and `AMPOULE_BENCH_RUNS` (best of this many runs, default 3). The page cache
+//! cannot be dropped without root, so both sides run warm: before every timed run, dirty pages
+//! are flushed (`sync`) and the run's inputs are read once. Runs of the two sides alternate.
+//!
+//! Peak memory is the child's VmHWM from /proc, sampled every millisecond during one extra,
+//! untimed run (the workspace forbids `unsafe`, which `wait4` would need). It is a lower
+//! bound that misses only growth within the last millisecond before exit. The bench never
+//! fails; it reports.
+
+use std::fs;
+use std::io::Read;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant};
+
+use ampoule::synth;
+
+const AMPOULE: &str = env!("CARGO_BIN_EXE_ampoule");
+const BASE_MODEL_BYTES: u64 = 84 * 1024 * 1024;
+const MIB: f64 = 1024.0 * 1024.0;
+/// Targets from issue 2: time relative to the pipeline, and the verifier's peak memory.
+const TARGET_RATIO: f64 = 1.0;
+const AIM_RATIO: f64 = 0.7;
+const TARGET_RSS_MIB: f64 = 16.0;
+
+fn env_number(name: &str, default: u64) -> u64 {
+    match std::env::var(name) {
+        Ok(v) => v.trim().parse().unwrap_or_else(|_| {
+            eprintln!("{name}={v:?} is not a whole number; using {default}");
+            default
+        }),
+        Err(_) => default,
+    }
+}
+
+/// One timed child run: wall time and, when sampled, its peak resident memory in bytes.
+struct Run {
+    secs: f64,
+    peak_rss: Option<u64>,
+}
+
+fn vm_hwm(pid: u32) -> Option<u64> {
+    let status = fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
+    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
+    let kib: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kib * 1024)
+}
+
+/// Runs `cmd` to completion in `dir`, timing it; panics with its stderr if it fails, because
+/// a timing of a failed run would mean nothing.
+fn run(dir: &Path, program: &str, args: &[&str], sample_rss: bool) -> Run {
+    let start = Instant::now();
+    let mut child = Command::new(program)
+        .args(args)
+        .current_dir(dir)
+        .stdin(Stdio::null())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|e| panic!("cannot start {program}: {e}"));
+    let pid = child.id();
+    let stop = Arc::new(AtomicBool::new(false));
+    let sampler = sample_rss.then(|| {
+        let stop = Arc::clone(&stop);
+        std::thread::spawn(move || {
+            let mut peak = 0;
+            while !stop.load(Ordering::Relaxed) {
+                match vm_hwm(pid) {
+                    Some(hwm) => peak = peak.max(hwm),
+                    None => break,
+                }
+                std::thread::sleep(Duration::from_millis(1));
+            }
+            peak
+        })
+    });
+    let mut stderr = String::new();
+    if let Some(mut e) = child.stderr.take() {
+        let _ = e.read_to_string(&mut stderr);
+    }
+    let status = child.wait().expect("waiting for a child works");
+    let secs = start.elapsed().as_secs_f64();
+    stop.store(true, Ordering::Relaxed);
+    let peak_rss = sampler.map(|s| s.join().expect("the sampler thread does not panic"));
+    assert!(
+        status.success(),
+        "{program} {args:?} failed ({status}):\n{stderr}"
+    );
+    Run { secs, peak_rss }
+}
+
+fn bash(dir: &Path, script: &str) -> Run {
+    run(
+        dir,
+        "bash",
+        &["-c", &format!("set -euo pipefail\n{script}")],
+        false,
+    )
+}
+
+/// Flushes dirty pages left by the previous run, then reads `inputs` so both sides start warm.
+fn settle(dir: &Path, inputs: &[&str]) {
+    let status = Command::new("sync").status().expect("sync runs");
+    assert!(status.success(), "sync failed");
+    let mut buf = vec![0u8; 1 << 20];
+    for name in inputs {
+        let mut f = fs::File::open(dir.join(name)).expect("a bench input exists");
+        while f.read(&mut buf).expect("a bench input reads") > 0 {}
+    }
+}
+
+fn remove(path: &Path) {
+    if path.is_dir() {
+        fs::remove_dir_all(path).expect("remove a bench output directory");
+    } else if path.exists() {
+        fs::remove_file(path).expect("remove a bench output file");
+    }
+}
+
+fn same_file(a: &Path, b: &Path) -> bool {
+    fs::read(a)
+        .ok()
+        .is_some_and(|x| fs::read(b).ok() == Some(x))
+}
+
+/// The best of a series of runs, with all of them for the record.
+struct Series {
+    runs: Vec<Run>,
+}
+
+impl Series {
+    fn best(&self) -> f64 {
+        self.runs
+            .iter()
+            .map(|r| r.secs)
+            .fold(f64::INFINITY, f64::min)
+    }
+
+    fn all(&self) -> String {
+        let times: Vec<String> = self.runs.iter().map(|r| format!("{:.3}", r.secs)).collect();
+        times.join(" ")
+    }
+}
+
+fn verdict(ok: bool) -> &'static str {
+    if ok { "PASS" } else { "MISS" }
+}
+
+fn main() {
+    let scale = env_number("AMPOULE_BENCH_SCALE", 1).max(1);
+    let runs = env_number("AMPOULE_BENCH_RUNS", 3).max(1) as usize;
+    let model_bytes = BASE_MODEL_BYTES * scale;
+    let tmp = tempfile::tempdir().expect("a temp dir can be made");
+    let dir = tmp.path();
+    let cores = std::thread::available_parallelism().map_or(0, |n| n.get());
+    println!(
+        "ampoule pipeline bench, {}: model {} bytes ({} MiB, AMPOULE_BENCH_SCALE={scale}), \
+         best of {runs} (AMPOULE_BENCH_RUNS), {cores} cores",
+        ampoule_verify::Timestamp::now(),
+        model_bytes,
+        model_bytes >> 20
+    );
+
+    synth::write_weights(&dir.join("model.bin"), model_bytes, 2026).expect("write the model");
+    fs::write(dir.join("labels.txt"), synth::species_labels()).expect("write the labels");
+    run(
+        dir,
+        AMPOULE,
+        &[
+            "keygen",
+            "--secret",
+            "k.secret.pem",
+            "--public",
+            "k.public.pem",
+        ],
+        false,
+    );
+
+    let pack_args = [
+        "pack",
+        "--model",
+        "model.bin",
+        "--labels",
+        "labels.txt",
+        "--name",
+        "trailcam-species",
+        "--version",
+        "1.0.0",
+        "--created",
+        "2026-12-01T08:00:00Z",
+        "--key",
+        "k.secret.pem",
+        "-o",
+        "species.ampoule",
+    ];
+    // The same key signs both: ampoule writes PKCS#8 v1, which openssl reads.
+    let pipeline_pack = "tar cf - model.bin labels.txt | zstd -3 -T2 -q -c > payload.tar.zst
+openssl dgst -sha256 -binary payload.tar.zst > payload.sha256
+openssl pkeyutl -sign -rawin -inkey k.secret.pem -in payload.sha256 -out payload.sig";
+    let verify_args = [
+        "verify",
+        "species.ampoule",
+        "--trust",
+        "k.public.pem",
+        "--extract",
+        "out-ampoule",
+    ];
+    let pipeline_verify = "openssl pkeyutl -verify -pubin -inkey k.public.pem -rawin \
+-in payload.sha256 -sigfile payload.sig > /dev/null
+openssl dgst -sha256 -binary payload.tar.zst | cmp -s - payload.sha256
+mkdir out-pipeline
+zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
+    // The same pipeline, plus what ampoule does and it does not: flush the files to disk.
+    let pipeline_verify_fsync = format!(
+        "{pipeline_verify}\nsync out-pipeline/model.bin out-pipeline/labels.txt out-pipeline ."
+    );
+
+    let inputs = ["model.bin", "labels.txt"];
+    let mut pack = Series { runs: Vec::new() };
+    let mut pack_pipe = Series { runs: Vec::new() };
+    for _ in 0..runs {
+        remove(&dir.join("species.ampoule"));
+        settle(dir, &inputs);
+        pack.runs.push(run(dir, AMPOULE, &pack_args, false));
+        remove(&dir.join("payload.tar.zst"));
+        settle(dir, &inputs);
+        pack_pipe.runs.push(bash(dir, pipeline_pack));
+    }
+
+    let mut verify = Series { runs: Vec::new() };
+    let mut verify_pipe = Series { runs: Vec::new() };
+    let mut verify_pipe_fsync = Series { runs: Vec::new() };
+    for _ in 0..runs {
+        remove(&dir.join("out-ampoule"));
+        settle(dir, &["species.ampoule"]);
+        verify.runs.push(run(dir, AMPOULE, &verify_args, false));
+        let pipe_inputs = ["payload.tar.zst", "payload.sha256", "payload.sig"];
+        remove(&dir.join("out-pipeline"));
+        settle(dir, &pipe_inputs);
+        verify_pipe.runs.push(bash(dir, pipeline_verify));
+        remove(&dir.join("out-pipeline"));
+        settle(dir, &pipe_inputs);
+        verify_pipe_fsync
+            .runs
+            .push(bash(dir, &pipeline_verify_fsync));
+    }
+    // Memory is sampled in one more run of each, so that the sampling never slows a timed run.
+    remove(&dir.join("species.ampoule"));
+    settle(dir, &inputs);
+    let pack_rss = run(dir, AMPOULE, &pack_args, true).peak_rss;
+    remove(&dir.join("out-ampoule"));
+    settle(dir, &["species.ampoule"]);
+    let verify_rss = run(dir, AMPOULE, &verify_args, true).peak_rss;
+
+    let model = dir.join("model.bin");
+    assert!(
+        same_file(&model, &dir.join("out-ampoule/model.bin")),
+        "ampoule's unpacked model differs from the original"
+    );
+    assert!(
+        same_file(&model, &dir.join("out-pipeline/model.bin")),
+        "the pipeline's unpacked model differs from the original"
+    );
+
+    let len = |name: &str| fs::metadata(dir.join(name)).map_or(0, |m| m.len());
+    let payload = inner_payload_len(&dir.join("species.ampoule"));
+    let pipe_payload = len("payload.tar.zst");
+    let pack_ratio = pack.best() / pack_pipe.best();
+    let verify_ratio = verify.best() / verify_pipe.best();
+    let verify_rss = verify_rss.unwrap_or(0) as f64 / MIB;
+    let pack_rss = pack_rss.unwrap_or(0) as f64 / MIB;
+
+    println!();
+    println!(
+        "{:<28} {:>10} {:>10} {:>7}  target",
+        "", "ampoule", "pipeline", "ratio"
+    );
+    println!(
+        "{:<28} {:>10.3} {:>10.3} {:>7.2}  <= {TARGET_RATIO:.2} (aim {AIM_RATIO:.2})  {}",
+        "pack (s)",
+        pack.best(),
+        pack_pipe.best(),
+        pack_ratio,
+        verdict(pack_ratio <= TARGET_RATIO)
+    );
+    println!(
+        "{:<28} {:>10.3} {:>10.3} {:>7.2}  <= {TARGET_RATIO:.2} (aim {AIM_RATIO:.2})  {}",
+        "verify + extract (s)",
+        verify.best(),
+        verify_pipe.best(),
+        verify_ratio,
+        verdict(verify_ratio <= TARGET_RATIO)
+    );
+    println!(
+        "{:<28} {:>10.3} {:>10.3} {:>7.2}  (for scale: the pipeline with fsync added)",
+        "verify + extract, fsync (s)",
+        verify.best(),
+        verify_pipe_fsync.best(),
+        verify.best() / verify_pipe_fsync.best()
+    );
+    println!(
+        "{:<28} {:>10.1} {:>10} {:>7}  <= {TARGET_RSS_MIB:.0} MiB  {}",
+        "verify peak RSS (MiB)",
+        verify_rss,
+        "-",
+        "",
+        verdict(verify_rss > 0.0 && verify_rss <= TARGET_RSS_MIB)
+    );
+    println!(
+        "{:<28} {:>10.1} {:>10}",
+        "pack peak RSS (MiB)", pack_rss, "-"
+    );
+    println!(
+        "{:<28} {:>10} {:>10} {:>7.4}",
+        "compressed payload (bytes)",
+        payload,
+        pipe_payload,
+        payload as f64 / pipe_payload as f64
+    );
+    println!(
+        "{:<28} {:>10} {:>10}  (model / compressed payload: {:.3})",
+        "file shipped (bytes)",
+        len("species.ampoule"),
+        pipe_payload + len("payload.sha256") + len("payload.sig"),
+        model_bytes as f64 / payload as f64
+    );
+    println!();
+    println!("all runs (s):");
+    println!("  ampoule pack             {}", pack.all());
+    println!("  pipeline pack            {}", pack_pipe.all());
+    println!("  ampoule verify           {}", verify.all());
+    println!("  pipeline verify          {}", verify_pipe.all());
+    println!("  pipeline verify + fsync  {}", verify_pipe_fsync.all());
+}
+
+/// The payload entry's size, from the bundle's own layout reader.
+fn inner_payload_len(bundle: &PathBuf) -> u64 {
+    let mut file = fs::File::open(bundle).expect("the bundle opens");
+    let len = file.metadata().expect("the bundle has a size").len();
+    ampoule_verify::bundle::read_layout(&mut file, len)
+        .expect("the bundle's layout reads")
+        .payload_len
+}
