@@ -617,3 +617,147 @@ fn issue5_a_trust_set_that_is_not_a_successor_is_refused_at_publish_and_on_the_d
     );
     assert!(saved.is_empty());
 }
+
+#[test]
+fn issue5_a_device_whose_trust_set_expired_renews_it_through_the_feed() {
+    use ampoule_verify::fetch::renew_expired_trust_set;
+
+    let dir = setup();
+    let d = dir.path();
+    team(d);
+    // Version 2 outlives version 1 (365 days) by a month.
+    ok(
+        d,
+        &[
+            "trust",
+            "remove",
+            "trust-1.json",
+            "--key",
+            "c.public.pem",
+            "--expires-in",
+            "395d",
+            "-o",
+            "trust-2-long.json",
+        ],
+    );
+    for signer in ["a", "b"] {
+        ok(
+            d,
+            &[
+                "trust",
+                "sign",
+                "trust-2-long.json",
+                "--key",
+                &format!("{signer}.secret.pem"),
+            ],
+        );
+    }
+    let v1_bytes = std::fs::read(d.join("trust-1.json")).expect("v1");
+    publish_trust_set(d, "tree", "trust-1.json");
+    let bundle = pack_signed_by(d, "1.0.0", "a", "b");
+    publish(d, &bundle, "stable", "100");
+    publish_trust_set(d, "tree", "trust-2-long.json");
+
+    let store_dir = d.join("camera-store");
+    let now = Timestamp::now();
+    let v1 = TrustSet::verify_initial(&v1_bytes, now).expect("v1");
+    let store = Store::open(
+        &store_dir,
+        Verifier::from_trust_set(&v1, APP).expect("bundle keys"),
+    )
+    .expect("store");
+    // The camera was offline for 366 days: version 1 expired, and with it every feed check.
+    let later = Timestamp::from_unix(now.unix() + 366 * 86_400).expect("in range");
+    assert_eq!(
+        Store::load_trust_set(&store_dir, &v1_bytes, later)
+            .expect_err("expired")
+            .kind(),
+        ErrorKind::TrustSet
+    );
+    let server = serve(d, "tree");
+    let feed_url = format!("http://{}/feeds/stable.json", server.addr);
+    let transfer = Transfer::new().attempts_per_source(1);
+    let renewed = renew_expired_trust_set(&feed_url, &transfer, &store, &v1_bytes, later)
+        .expect("renewed by the expired set's keys");
+    assert_eq!(renewed.version(), 2);
+    assert_eq!(
+        Store::load_trust_set(&store_dir, &v1_bytes, later)
+            .expect("stored and current")
+            .version(),
+        2
+    );
+    // Asking again is a refusal: the named set is not newer than the stored one.
+    assert_eq!(
+        renew_expired_trust_set(&feed_url, &transfer, &store, &v1_bytes, later)
+            .expect_err("not newer")
+            .to_string(),
+        format!(
+            "the trust set at http://{}/trust/2.json was refused: trust set version 2 is not \
+             newer than the trusted version 2; refusing to roll trust back",
+            server.addr
+        )
+    );
+
+    // A set the expired keys did not sign is refused, whatever the unverified feed says.
+    let other_dir = d.join("camera-2");
+    let other = Store::open(
+        &other_dir,
+        Verifier::from_trust_set(&v1, APP).expect("bundle keys"),
+    )
+    .expect("store");
+    ok(
+        d,
+        &[
+            "keygen",
+            "--secret",
+            "x.secret.pem",
+            "--public",
+            "x.public.pem",
+        ],
+    );
+    ok(
+        d,
+        &[
+            "trust",
+            "add",
+            "trust-2-long.json",
+            "--key",
+            "x.public.pem",
+            "-o",
+            "forged-3.json",
+        ],
+    );
+    ok(
+        d,
+        &["trust", "sign", "forged-3.json", "--key", "x.secret.pem"],
+    );
+    std::fs::copy(d.join("forged-3.json"), d.join("tree/trust/3.json")).expect("by hand");
+    ok(
+        d,
+        &[
+            "publish",
+            &bundle,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+            "--trust",
+            "a.public.pem",
+        ],
+    );
+    let x = key_id_of(d, "x.public.pem");
+    assert_eq!(
+        renew_expired_trust_set(&feed_url, &transfer, &other, &v1_bytes, later)
+            .expect_err("forged")
+            .to_string(),
+        format!(
+            "the trust set at http://{}/trust/3.json was refused: trust set version 3, counting \
+             the keys of trusted version 1, has 0 valid signature(s) by trusted keys but needs 2 \
+             (by keys not trusted here: {x})",
+            server.addr
+        )
+    );
+    assert_eq!(other.stored_trust_set_version().expect("readable"), None);
+}

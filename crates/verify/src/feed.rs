@@ -18,7 +18,10 @@
 //! The feed binds the release's name, version, size and the SHA-256 of the whole bundle file,
 //! so a device downloads at most the signed number of bytes and can tell a wrong file before it
 //! opens it. `release: null` means the channel has nothing current (every release on it was
-//! withdrawn): a device keeps what it has.
+//! withdrawn): a device keeps what it has. A feed from a tree that publishes trust sets also
+//! names the tree's current one (`trust_set`: version, relative path, SHA-256), so that
+//! devices learn of key rotations; `fetch::Updater::check_with` (feature `fetch`) follows
+//! one.
 //!
 //! Freshness: a feed carries `issued` and `expires`; a device refuses one that expired or was
 //! issued in the future, each beyond an allowed clock skew (5 minutes by default, a common

@@ -32,8 +32,9 @@ use semver::Version;
 
 use crate::digest::{Digest, Hasher};
 use crate::error::{Error, ErrorKind, Result};
-use crate::feed::{FeedVerifier, Release, TrustSetRef, VerifiedFeed, in_rollout};
+use crate::feed::{Feed, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, in_rollout};
 use crate::format::{limit, trust_set};
+use crate::store::Store;
 use crate::time::Timestamp;
 use crate::trust::TrustSet;
 use crate::verify::{VerifiedBundle, Verifier};
@@ -840,37 +841,88 @@ impl Updater {
     }
 }
 
+/// For a device whose trust set expired while it was offline, so that no feed verifies under
+/// it any more: finds the tree's current trust set through the feed at `feed_url` and accepts
+/// it through [`Store::renew_trust_set`], which stores it.
+///
+/// The feed is read **without** verifying it, only to learn where the trust set is: an
+/// expired set's keys authorise nothing but a successor. What the feed says is not trusted:
+/// the fetched set must have the SHA-256 the feed names and is accepted only if a threshold of
+/// the expired set's trust-set keys (and of its own) signed it, and only if newer. Afterwards,
+/// build the updater on the returned set and check as usual.
+pub fn renew_expired_trust_set(
+    feed_url: &str,
+    transfer: &Transfer,
+    store: &Store,
+    initial: &[u8],
+    now: Timestamp,
+) -> Result<TrustSet> {
+    let bytes = fetch_feed(feed_url, transfer)?;
+    let signed = SignedFeed::from_json(&bytes)?;
+    let feed = Feed::from_json(signed.feed.as_bytes())?;
+    let Some(named) = feed.trust_set else {
+        return Err(Error::new(
+            ErrorKind::TrustSet,
+            format!(
+                "feed at {feed_url} names no trust set, so an expired trust set cannot be \
+                 renewed from it"
+            ),
+        ));
+    };
+    let (url, bytes) = fetch_named_trust_set(feed_url, &named, transfer)?;
+    let next = store
+        .renew_trust_set(initial, &bytes, now)
+        .map_err(|e| e.context(format_args!("the trust set at {url} was refused")))?;
+    check_named_version(&named, &next, &url)?;
+    Ok(next)
+}
+
+/// Fetches the trust set a feed names and checks its digest.
+fn fetch_named_trust_set(
+    feed_url: &str,
+    named: &TrustSetRef,
+    transfer: &Transfer,
+) -> Result<(String, Vec<u8>)> {
+    let url = named.url(feed_url)?;
+    let bytes = fetch_trust_set(&url, transfer)?;
+    let got = Digest::of(&bytes);
+    if got != named.sha256 {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "trust set downloaded from {url} has SHA-256 {got}, but the feed declares {}",
+                named.sha256
+            ),
+        ));
+    }
+    Ok((url, bytes))
+}
+
+fn check_named_version(named: &TrustSetRef, got: &TrustSet, url: &str) -> Result<()> {
+    if got.version() != named.version {
+        return Err(Error::new(
+            ErrorKind::Feed,
+            format!(
+                "feed names trust set version {} but {url} holds version {}",
+                named.version,
+                got.version()
+            ),
+        ));
+    }
+    Ok(())
+}
+
 impl Updater {
     /// Fetches the trust set `named` by a verified feed and accepts it as the successor of
     /// `current`.
     fn rotate(&self, current: &TrustSet, named: &TrustSetRef, now: Timestamp) -> Result<TrustSet> {
-        let url = named.url(&self.feed_url)?;
-        let bytes = fetch_trust_set(&url, &self.transfer)?;
-        let got = Digest::of(&bytes);
-        if got != named.sha256 {
-            return Err(Error::new(
-                ErrorKind::Digest,
-                format!(
-                    "trust set downloaded from {url} has SHA-256 {got}, but the feed declares {}",
-                    named.sha256
-                ),
-            ));
-        }
+        let (url, bytes) = fetch_named_trust_set(&self.feed_url, named, &self.transfer)?;
         let next = current.accept_successor(&bytes, now).map_err(|e| {
             e.context(format_args!(
                 "the trust set at {url} that the feed names was refused"
             ))
         })?;
-        if next.version() != named.version {
-            return Err(Error::new(
-                ErrorKind::Feed,
-                format!(
-                    "feed names trust set version {} but {url} holds version {}",
-                    named.version,
-                    next.version()
-                ),
-            ));
-        }
+        check_named_version(named, &next, &url)?;
         Ok(next)
     }
 }
