@@ -93,11 +93,15 @@ diff reads both payloads to compare the label lists; it does not check signature
     #[command(after_help = "Examples:
   ampoule publish species-1.1.0.ampoule --tree ./release --channel beta --key feed.secret.pem --rollout 10
   ampoule publish species-1.1.0.ampoule --tree ./release --channel beta --key feed.secret.pem --rollout 100
+  ampoule publish --trust-set trust-2.json --tree ./release --key feed.secret.pem   (rotate keys)
 
 The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
 Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
 rollout; publish at least once per --expires-in, or devices stop trusting the channel.
-A name and version, once in the tree, always mean the same file.")]
+A name and version, once in the tree, always mean the same file.
+A trust set is published only if it verifies as the successor of the tree's current one;
+every channel's feed then names it, and devices take it at their next poll. With a trust set
+in the tree, a bundle is checked against its bundle keys and threshold (unless --trust).")]
     Publish(PublishArgs),
 
     /// Pull a channel's current release: the release before it becomes current again.
@@ -387,13 +391,23 @@ pub struct TrustSignArgs {
 #[derive(Args, Debug)]
 pub struct PublishArgs {
     /// The signed bundle to publish.
-    pub bundle: PathBuf,
+    #[arg(required_unless_present = "trust_set")]
+    pub bundle: Option<PathBuf>,
+    /// Publish this signed trust-set file instead of a bundle: it must verify as the
+    /// successor of the tree's current trust set, and every channel's feed is signed again
+    /// to name it.
+    #[arg(
+        long,
+        value_name = "FILE",
+        conflicts_with_all = ["bundle", "channel", "trust", "rollout", "mirror"]
+    )]
+    pub trust_set: Option<PathBuf>,
     /// The release tree (a directory of static files; created if missing).
     #[arg(long, value_name = "DIR")]
     pub tree: PathBuf,
     /// The channel to publish on (lowercase letters, digits, - _ .), like stable or beta.
-    #[arg(long, value_name = "NAME")]
-    pub channel: String,
+    #[arg(long, value_name = "NAME", required_unless_present = "trust_set")]
+    pub channel: Option<String>,
     /// The secret key that signs the channel's feed.
     #[arg(long, value_name = "SECRET.pem")]
     pub key: PathBuf,

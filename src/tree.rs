@@ -6,6 +6,7 @@
 //! feeds/<channel>.json       each channel's signed feed: what devices poll
 //! history/<channel>.json     each channel's publish and withdraw events, oldest first
 //! index.json                 every name and version in the tree, with its bundle's digest
+//! trust/<version>.json       every trust set published, by version; the highest is current
 //! .lock                      held while a command changes the tree
 //! ```
 //!
@@ -14,16 +15,26 @@
 //! is written to a temporary file in its directory, flushed, renamed into place and the
 //! directory flushed, so a reader or a crash sees the old file or the new one, never a mix. The
 //! feed is written last: it is the moment devices see a change.
+//!
+//! Trust sets: a new one is published only if it verifies as the successor of the tree's
+//! current one (or, for the first, as an initial set), and then every channel's feed is signed
+//! again naming it, so devices learn of a rotation at their next poll. Every feed names the
+//! current trust set (version, path, SHA-256); a device fetches it only when it is newer than
+//! its own.
 
 use std::fs::{self, File, TryLockError};
 use std::io::{self, Read, Write};
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::digest::Hasher;
-use ampoule_verify::feed::{Feed, Release, SignedFeed, check_channel};
-use ampoule_verify::format::{BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes};
+use ampoule_verify::feed::{Feed, Release, SignedFeed, TrustSetRef, check_channel};
+use ampoule_verify::format::{
+    BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes, trust_set as trust_spec,
+};
 use ampoule_verify::signature::SignatureEntry;
-use ampoule_verify::{Digest, KeyId, Manifest, Timestamp, TrustedKeys, Verifier};
+use ampoule_verify::{
+    Digest, DocumentKind, KeyId, Manifest, Timestamp, TrustSet, TrustSetFile, TrustedKeys, Verifier,
+};
 use anyhow::{Context, Result, anyhow, bail};
 use ed25519_dalek::{Signer, SigningKey};
 use semver::Version;
@@ -36,6 +47,7 @@ pub const BUNDLES_DIR: &str = "bundles";
 pub const FEEDS_DIR: &str = "feeds";
 pub const HISTORY_DIR: &str = "history";
 pub const INDEX_FILE: &str = "index.json";
+pub const TRUST_DIR: &str = "trust";
 pub const LOCK_FILE: &str = ".lock";
 /// Temporary files start with this; `serve` never shows files starting with a dot.
 const TEMP_PREFIX: &str = ".ampoule-partial-";
@@ -60,12 +72,22 @@ pub enum Event {
         version: Version,
         sha256: Digest,
     },
+    /// The feed was signed again, unchanged but for naming a newly published trust set.
+    #[serde(rename = "trust_set")]
+    TrustSet {
+        sequence: u64,
+        time: Timestamp,
+        version: u64,
+        sha256: Digest,
+    },
 }
 
 impl Event {
     pub fn sequence(&self) -> u64 {
         match self {
-            Event::Publish { sequence, .. } | Event::Withdraw { sequence, .. } => *sequence,
+            Event::Publish { sequence, .. }
+            | Event::Withdraw { sequence, .. }
+            | Event::TrustSet { sequence, .. } => *sequence,
         }
     }
 }
@@ -89,6 +111,7 @@ impl History {
                     stack.push(release.clone());
                 }
                 Event::Withdraw { sha256, .. } => stack.retain(|r| r.sha256 != *sha256),
+                Event::TrustSet { .. } => {}
             }
         }
         stack
@@ -125,6 +148,44 @@ pub struct Change {
     pub signer: KeyId,
     /// What the change replaced as current, if anything.
     pub previous: Option<Release>,
+}
+
+/// The tree's current trust set: the highest version under `trust/`.
+pub struct TreeTrustSet {
+    pub version: u64,
+    pub sha256: Digest,
+    pub bytes: Vec<u8>,
+    pub path: PathBuf,
+}
+
+impl TreeTrustSet {
+    /// How feeds name it: relative to `feeds/<channel>.json`.
+    pub fn reference(&self) -> TrustSetRef {
+        TrustSetRef {
+            version: self.version,
+            path: format!("../{TRUST_DIR}/{}.json", self.version),
+            sha256: self.sha256,
+        }
+    }
+
+    /// The set as release-side checks see it: signed by its own threshold and not expired.
+    pub fn verified(&self, now: Timestamp) -> Result<TrustSet> {
+        TrustSet::resume(&self.bytes, None, now).with_context(|| {
+            format!(
+                "the release tree's trust set {} is not usable; publish a successor",
+                self.path.display()
+            )
+        })
+    }
+}
+
+/// What publishing a trust set wrote.
+pub struct TrustSetChange {
+    pub trust_set: TreeTrustSet,
+    /// The version it succeeded, if the tree had one.
+    pub previous_version: Option<u64>,
+    /// Every channel's feed, signed again to name the new set.
+    pub feeds: Vec<Change>,
 }
 
 /// A bundle copied into the tree's bundle directory under a temporary name, checked, and
@@ -308,6 +369,14 @@ impl Tree {
     /// the copy: signature by one of `trust`, manifest, payload digest and every file inside.
     /// What is published is the copy that was checked, whatever happens to the original.
     pub fn stage_bundle(&self, bundle: &Path, trust: &TrustedKeys) -> Result<StagedBundle> {
+        self.stage_bundle_with(
+            bundle,
+            Verifier::dangerous_without_app_version(trust.clone())?,
+        )
+    }
+
+    /// [`Tree::stage_bundle`] with the signature check of `verifier` (keys and threshold).
+    pub fn stage_bundle_with(&self, bundle: &Path, verifier: Verifier) -> Result<StagedBundle> {
         let dir = self.root.join(BUNDLES_DIR);
         let mut temp = tempfile::Builder::new()
             .prefix(TEMP_PREFIX)
@@ -335,11 +404,9 @@ impl Tree {
         let copy = temp
             .reopen()
             .with_context(|| io_context("reopen", temp.path()))?;
-        let mut verified = Verifier::dangerous_without_app_version(trust.clone())?
-            .verify_file(copy)
-            .with_context(|| {
-                format!("bundle {} refused; nothing was published", bundle.display())
-            })?;
+        let mut verified = verifier.verify_file(copy).with_context(|| {
+            format!("bundle {} refused; nothing was published", bundle.display())
+        })?;
         verified.check_contents().with_context(|| {
             format!("bundle {} refused; nothing was published", bundle.display())
         })?;
@@ -485,6 +552,147 @@ impl Tree {
         self.commit(channel, &history, feed, Some(current), signing)
     }
 
+    pub fn trust_set_path(&self, version: u64) -> PathBuf {
+        self.root.join(TRUST_DIR).join(format!("{version}.json"))
+    }
+
+    /// The tree's current trust set, the highest `trust/<version>.json`; `None` when the tree
+    /// has none. Other names in `trust/` are ignored.
+    pub fn current_trust_set(&self) -> Result<Option<TreeTrustSet>> {
+        let dir = self.root.join(TRUST_DIR);
+        let entries = match fs::read_dir(&dir) {
+            Ok(entries) => entries,
+            Err(e) if e.kind() == io::ErrorKind::NotFound => return Ok(None),
+            Err(e) => return Err(e).with_context(|| io_context("list", &dir)),
+        };
+        let mut highest = None;
+        for entry in entries {
+            let entry = entry.with_context(|| io_context("list", &dir))?;
+            let name = entry.file_name();
+            let version = name
+                .to_str()
+                .and_then(|n| n.strip_suffix(".json"))
+                .filter(|n| !n.starts_with('0') && n.bytes().all(|b| b.is_ascii_digit()))
+                .and_then(|n| n.parse::<u64>().ok());
+            if let Some(v) = version {
+                highest = highest.max(Some(v));
+            }
+        }
+        let Some(version) = highest else {
+            return Ok(None);
+        };
+        let path = self.trust_set_path(version);
+        let bytes =
+            crate::cmd::external::read_bounded(&path, trust_spec::MAX_BYTES, "a trust-set file")?;
+        let file = TrustSetFile::from_json(&bytes)
+            .with_context(|| format!("{} is not a valid trust-set file", path.display()))?;
+        if file.version() != version {
+            bail!(
+                "{} holds trust set version {}; a trust set in the release tree is named by its \
+                 own version (restore the file from a backup)",
+                path.display(),
+                file.version()
+            );
+        }
+        Ok(Some(TreeTrustSet {
+            version,
+            sha256: Digest::of(&bytes),
+            bytes,
+            path,
+        }))
+    }
+
+    /// Publishes the trust set `bytes` as the tree's current one: it must verify as the
+    /// successor of the current set (as a device would take it), or as an initial set when the
+    /// tree has none, and the feed key must be able to sign feeds under both. Then every
+    /// channel's feed is signed again, naming it.
+    pub fn publish_trust_set(&self, bytes: &[u8], signing: &Signing<'_>) -> Result<TrustSetChange> {
+        let current = self.current_trust_set()?;
+        let accepted = match &current {
+            None => TrustSet::verify_initial(bytes, signing.now),
+            Some(current) => TrustSet::renew(&current.bytes, None, bytes, signing.now),
+        }?;
+        let signer = KeyId::of_raw_key(signing.key.verifying_key().as_bytes());
+        // The feed announcing the new set is verified under the current one first, then under
+        // the new one, so the feed key must hold under both. The current set may have expired
+        // (renewing it is allowed); its signatures were checked when it was published.
+        let mut sets = vec![accepted.file().clone()];
+        if let Some(current) = &current {
+            sets.push(TrustSetFile::from_json(&current.bytes)?);
+        }
+        for set in &sets {
+            let (keys, threshold) = (
+                set.keys_for(DocumentKind::Feed),
+                set.threshold(DocumentKind::Feed),
+            );
+            if keys.get(&signer).is_none() {
+                return Err(Refused(format!(
+                    "key {signer} is not a feed key in trust set version {}; devices on that set \
+                     would refuse the feeds this tree signs with it (sign with a key that has the \
+                     feed role in both the current and the new set)",
+                    set.version()
+                ))
+                .into());
+            }
+            if threshold != 1 {
+                return Err(Refused(format!(
+                    "trust set version {} needs {threshold} feed signatures, but the release tree \
+                     signs each feed with one key; set its feed threshold to 1",
+                    set.version()
+                ))
+                .into());
+            }
+        }
+        let dir = self.root.join(TRUST_DIR);
+        fs::create_dir_all(&dir).with_context(|| io_context("create directory", &dir))?;
+        let path = self.trust_set_path(accepted.version());
+        write_atomic(&path, bytes)?;
+        let published = TreeTrustSet {
+            version: accepted.version(),
+            sha256: Digest::of(bytes),
+            bytes: bytes.to_vec(),
+            path,
+        };
+        let mut feeds = Vec::new();
+        for channel in self.channels()? {
+            let mut history = self.history(&channel)?;
+            let release = history.stack().pop();
+            let sequence = self.next_sequence(&channel, &history)?;
+            let feed = self.feed(&channel, sequence, release.clone(), signing)?;
+            history.events.push(Event::TrustSet {
+                sequence,
+                time: signing.now,
+                version: published.version,
+                sha256: published.sha256,
+            });
+            feeds.push(self.commit(&channel, &history, feed, release, signing)?);
+        }
+        Ok(TrustSetChange {
+            trust_set: published,
+            previous_version: current.map(|c| c.version),
+            feeds,
+        })
+    }
+
+    /// The channels that have a feed, in name order.
+    fn channels(&self) -> Result<Vec<String>> {
+        let dir = self.root.join(FEEDS_DIR);
+        let mut channels = Vec::new();
+        for entry in fs::read_dir(&dir).with_context(|| io_context("list", &dir))? {
+            let entry = entry.with_context(|| io_context("list", &dir))?;
+            if let Some(channel) = entry
+                .file_name()
+                .to_str()
+                .and_then(|n| n.strip_suffix(".json"))
+                .filter(|c| check_channel(c).is_ok())
+            {
+                channels.push(channel.to_string());
+            }
+        }
+        channels.sort();
+        Ok(channels)
+    }
+
     /// A signed feed for `channel`, not written yet.
     fn feed(
         &self,
@@ -506,6 +714,7 @@ impl Tree {
             issued: signing.now,
             expires,
             release,
+            trust_set: self.current_trust_set()?.map(|t| t.reference()),
         };
         feed.validate()?;
         Ok(feed)

@@ -1,11 +1,16 @@
 //! `ampoule publish`: checks a bundle, copies it into the release tree under its content
-//! address and makes it the current release of a channel with a newly signed feed.
+//! address and makes it the current release of a channel with a newly signed feed; or, with
+//! `--trust-set`, publishes a trust set that devices take as the successor of theirs.
 
-use ampoule_verify::{PublicKey, Timestamp, TrustedKeys};
-use anyhow::Result;
+use std::path::Path;
+
+use ampoule_verify::format::trust_set;
+use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustedKeys, Verifier};
+use anyhow::{Context, Result};
 use serde_json::{Value, json};
 
 use crate::cli::PublishArgs;
+use crate::cmd::external::read_bounded;
 use crate::cmd::{load_trust, passphrase_source};
 use crate::keyfile;
 use crate::output::Output;
@@ -13,7 +18,13 @@ use crate::tree::{Change, Signing, Tree, parse_duration};
 
 pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
-    ampoule_verify::feed::check_channel(&args.channel)?;
+    if let Some(trust_set) = &args.trust_set {
+        return publish_trust_set(&args, trust_set, expires_in_secs, out);
+    }
+    let (Some(bundle), Some(channel)) = (&args.bundle, &args.channel) else {
+        anyhow::bail!("publish needs a bundle and --channel, or --trust-set FILE");
+    };
+    ampoule_verify::feed::check_channel(channel)?;
     if args.rollout > 100 {
         anyhow::bail!(
             "--rollout {} is not a percentage from 0 to 100",
@@ -21,27 +32,104 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         );
     }
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
-    // Without --trust the feed key must have signed the bundle too: publishing checks the
-    // bundle the way a device that trusts this key would.
-    let trust = if args.trust.is_empty() {
-        [PublicKey::from_verifying_key(&key.verifying_key())?]
-            .into_iter()
-            .collect::<TrustedKeys>()
-    } else {
-        load_trust(&args.trust)?
-    };
+    let now = Timestamp::now();
     let tree = Tree::lock(&args.tree)?;
-    let staged = tree.stage_bundle(&args.bundle, &trust)?;
+    // Publishing checks the bundle the way devices will: with --trust against those keys;
+    // else against the tree's trust set (its bundle keys and threshold); else the feed key
+    // must have signed the bundle too.
+    let verifier = if !args.trust.is_empty() {
+        Verifier::dangerous_without_app_version(load_trust(&args.trust)?)?
+    } else if let Some(current) = tree.current_trust_set()? {
+        let trust = current.verified(now)?;
+        let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
+        Verifier::dangerous_without_app_version(keys)?.with_threshold(threshold)?
+    } else {
+        Verifier::dangerous_without_app_version(
+            [PublicKey::from_verifying_key(&key.verifying_key())?]
+                .into_iter()
+                .collect::<TrustedKeys>(),
+        )?
+    };
+    let staged = tree.stage_bundle_with(bundle, verifier)?;
+    let signing = Signing {
+        key: &key,
+        now,
+        expires_in_secs,
+    };
+    let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
+    // The tree is still locked here: an audit-ledger append belongs at this point, after the
+    // feed is written and before anyone else can change the tree.
+    drop(tree);
+    report(&change, out)
+}
+
+/// Publishes a trust set into the tree and signs every channel's feed again to name it.
+fn publish_trust_set(
+    args: &PublishArgs,
+    path: &Path,
+    expires_in_secs: u64,
+    out: &Output,
+) -> Result<()> {
+    let bytes = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+    let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
+    let tree = Tree::lock(&args.tree)?;
     let signing = Signing {
         key: &key,
         now: Timestamp::now(),
         expires_in_secs,
     };
-    let change = tree.publish(staged, &args.channel, args.rollout, &args.mirror, &signing)?;
-    // The tree is still locked here: an audit-ledger append belongs at this point, after the
-    // feed is written and before anyone else can change the tree.
+    let change = tree.publish_trust_set(&bytes, &signing).with_context(|| {
+        format!(
+            "trust set {} refused; nothing was published",
+            path.display()
+        )
+    })?;
+    // The tree is still locked here: the audit-ledger append of the trust-set event
+    // (change.trust_set: version, sha256, path; change.previous_version) belongs at this
+    // point, after the trust set and the renewed feeds are written.
     drop(tree);
-    report(&change, out)
+    let t = &change.trust_set;
+    let was = change
+        .previous_version
+        .map_or_else(|| "none".to_string(), |v| format!("version {v}"));
+    let mut human = format!(
+        "release tree {} now names trust set version {} ({}, sha256 {})\nwas: {was}\n",
+        args.tree.display(),
+        t.version,
+        t.path.display(),
+        t.sha256
+    );
+    for c in &change.feeds {
+        human.push_str(&format!(
+            "feed {} sequence {} renewed, expires {}, signed by {}\n",
+            c.feed_path.display(),
+            c.feed.sequence,
+            c.feed.expires,
+            c.signer
+        ));
+    }
+    if change.feeds.is_empty() {
+        human.push_str("no channel has a feed yet; the next publish names this trust set\n");
+    }
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "trust_set": {
+                "version": t.version,
+                "path": t.path,
+                "sha256": t.sha256,
+            },
+            "previous_version": change.previous_version,
+            "feeds": change.feeds.iter().map(|c| json!({
+                "channel": c.channel,
+                "sequence": c.feed.sequence,
+                "expires": c.feed.expires,
+                "feed": c.feed_path,
+                "signer": c.signer.to_string(),
+            })).collect::<Vec<_>>(),
+        }),
+    )
 }
 
 /// Prints what a publish or withdraw changed.

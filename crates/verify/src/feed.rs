@@ -18,7 +18,10 @@
 //! The feed binds the release's name, version, size and the SHA-256 of the whole bundle file,
 //! so a device downloads at most the signed number of bytes and can tell a wrong file before it
 //! opens it. `release: null` means the channel has nothing current (every release on it was
-//! withdrawn): a device keeps what it has.
+//! withdrawn): a device keeps what it has. A feed from a tree that publishes trust sets also
+//! names the tree's current one (`trust_set`: version, relative path, SHA-256), so that
+//! devices learn of key rotations; `fetch::Updater::check_with` (feature `fetch`) follows
+//! one.
 //!
 //! Freshness: a feed carries `issued` and `expires`; a device refuses one that expired or was
 //! issued in the future, each beyond an allowed clock skew (5 minutes by default, a common
@@ -41,6 +44,7 @@ use crate::keys::{KeyId, TrustedKeys};
 use crate::manifest::check_name;
 use crate::signature::{SignatureEntry, SignatureReport, check_signatures};
 use crate::time::Timestamp;
+use crate::trust::{DocumentKind, TrustSet};
 
 /// The clock skew a device allows unless the app sets its own: 5 minutes.
 pub const DEFAULT_CLOCK_SKEW_SECS: u64 = 300;
@@ -86,6 +90,52 @@ pub struct Feed {
     /// The current release, or `null` when the channel has nothing current.
     #[serde(deserialize_with = "required_option")]
     pub release: Option<Release>,
+    /// The release tree's current trust set, so that devices learn of key rotations and
+    /// revocations; absent in trees that publish none.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub trust_set: Option<TrustSetRef>,
+}
+
+/// Where a feed's trust set is and what it must be: a device on an older trust set fetches
+/// it, checks the digest, and accepts it only through [`crate::TrustSet::accept_successor`].
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TrustSetRef {
+    /// The trust set's version.
+    pub version: u64,
+    /// Where the trust-set file is, relative to the feed's own URL (path segments only, such
+    /// as `../trust/2.json`).
+    pub path: String,
+    /// SHA-256 of the trust-set file's exact bytes.
+    pub sha256: Digest,
+}
+
+impl TrustSetRef {
+    /// Checks every field against the format's rules.
+    pub fn validate(&self) -> Result<()> {
+        if self.version == 0 {
+            return Err(invalid(
+                "feed trust_set version is 0; trust-set versions start at 1".into(),
+            ));
+        }
+        if !is_relative_path(&self.path) {
+            return Err(invalid(format!(
+                "feed trust_set path '{}' is not a relative path of plain segments \
+                 (letters, digits, '-', '.', '_', '~', and leading '..')",
+                self.path
+                    .chars()
+                    .take(120)
+                    .collect::<String>()
+                    .escape_debug()
+            )));
+        }
+        Ok(())
+    }
+
+    /// The trust-set file's URL: `path` resolved against the feed's URL.
+    pub fn url(&self, feed_url: &str) -> Result<String> {
+        resolve(feed_url, &self.path)
+    }
 }
 
 /// Makes `release` required in the JSON: `null` must be written out, a missing field is an
@@ -233,6 +283,9 @@ impl Feed {
         if let Some(release) = &self.release {
             release.validate()?;
         }
+        if let Some(trust_set) = &self.trust_set {
+            trust_set.validate()?;
+        }
         Ok(())
     }
 }
@@ -286,6 +339,8 @@ pub struct FeedVerifier {
     threshold: usize,
     skew_secs: u64,
     last: Option<(u64, Option<Digest>)>,
+    /// The version and expiry of the trust set the keys came from, if they did.
+    trust: Option<(u64, Timestamp)>,
 }
 
 impl FeedVerifier {
@@ -306,7 +361,33 @@ impl FeedVerifier {
             threshold: 1,
             skew_secs: DEFAULT_CLOCK_SKEW_SECS,
             last: None,
+            trust: None,
         })
+    }
+
+    /// A verifier for feeds of `channel` under a verified trust set: signed by the set's
+    /// threshold of distinct keys with the feed role. Once the set has expired, every feed is
+    /// refused: an expired set's keys only ever authorise a successor set.
+    pub fn from_trust_set(trust: &TrustSet, channel: impl Into<String>) -> Result<Self> {
+        let (keys, threshold) = trust.keys_for(DocumentKind::Feed);
+        let mut verifier = Self::new(keys, channel)?.threshold(threshold);
+        verifier.trust = Some((trust.version(), trust.expires()));
+        Ok(verifier)
+    }
+
+    /// This verifier with the feed keys and threshold of `trust` instead of its own; the
+    /// channel, clock skew and last accepted feed stay. For a device that just accepted a
+    /// newer trust set.
+    pub fn with_trust_set(self, trust: &TrustSet) -> Result<Self> {
+        let mut next = Self::from_trust_set(trust, self.channel)?;
+        next.skew_secs = self.skew_secs;
+        next.last = self.last;
+        Ok(next)
+    }
+
+    /// The version of the trust set this verifier's keys came from, if they came from one.
+    pub fn trust_set_version(&self) -> Option<u64> {
+        self.trust.map(|(version, _)| version)
     }
 
     /// Requires at least `n` distinct trusted keys to have signed (at least 1).
@@ -337,6 +418,17 @@ impl FeedVerifier {
     /// Checks a feed file: size, envelope, signatures by trusted keys over the exact feed
     /// text, then the feed itself, its channel, its times against `now`, and its sequence.
     pub fn verify(&self, bytes: &[u8], now: Timestamp) -> Result<VerifiedFeed> {
+        if let Some((version, expires)) = self.trust
+            && now > expires
+        {
+            return Err(Error::new(
+                ErrorKind::TrustSet,
+                format!(
+                    "trust set version {version} expired at {expires} (it is now {now}); a newer \
+                     trust set signed by the keys trusted now is needed"
+                ),
+            ));
+        }
         let signed = SignedFeed::from_json(bytes)?;
         let report = check_signatures(
             "feed",
@@ -427,6 +519,11 @@ impl VerifiedFeed {
     /// The current release, if the channel has one.
     pub fn release(&self) -> Option<&Release> {
         self.feed.release.as_ref()
+    }
+
+    /// The trust set the feed names, if it names one.
+    pub fn trust_set(&self) -> Option<&TrustSetRef> {
+        self.feed.trust_set.as_ref()
     }
 
     /// The feed's sequence: the device stores it (with [`VerifiedFeed::digest`]) once it has

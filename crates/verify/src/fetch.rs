@@ -32,9 +32,11 @@ use semver::Version;
 
 use crate::digest::{Digest, Hasher};
 use crate::error::{Error, ErrorKind, Result};
-use crate::feed::{FeedVerifier, Release, VerifiedFeed, in_rollout};
-use crate::format::limit;
+use crate::feed::{Feed, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, in_rollout};
+use crate::format::{limit, trust_set};
+use crate::store::Store;
 use crate::time::Timestamp;
+use crate::trust::TrustSet;
 use crate::verify::{VerifiedBundle, Verifier};
 
 /// Limits of one transfer. The defaults suit a weak cellular link: generous per-read and total
@@ -352,30 +354,37 @@ async fn read_body(
 /// Fetches a feed file: at most [`limit::FEED_BYTES`], refused early when the server declares
 /// more. The bytes are unverified: give them to [`FeedVerifier::verify`].
 pub fn fetch_feed(url: &str, transfer: &Transfer) -> Result<Vec<u8>> {
+    fetch_small(url, transfer, limit::FEED_BYTES, "feed")
+}
+
+/// Fetches a trust-set file: at most [`trust_set::MAX_BYTES`], refused early when the server
+/// declares more. The bytes are unverified: give them to [`TrustSet::accept_successor`].
+pub fn fetch_trust_set(url: &str, transfer: &Transfer) -> Result<Vec<u8>> {
+    fetch_small(url, transfer, trust_set::MAX_BYTES, "trust set")
+}
+
+/// Fetches a small document whole, at most `cap` bytes; `what` names it in messages.
+fn fetch_small(url: &str, transfer: &Transfer, cap: u64, what: &str) -> Result<Vec<u8>> {
     let session = Session::new(transfer)?;
     session.runtime.block_on(async {
         let deadline = Instant::now() + transfer.total_timeout;
         let response = session.get(url, 0, deadline).await?;
         if let Some(len) = content_length(&response, url)?
-            && len > limit::FEED_BYTES
+            && len > cap
         {
             return Err(Error::new(
                 ErrorKind::TooLarge,
                 format!(
-                    "server declares {len} bytes for the feed at {url}, over the limit of {} bytes",
-                    limit::FEED_BYTES
+                    "server declares {len} bytes for the {what} at {url}, over the limit of {cap} bytes"
                 ),
             ));
         }
         let mut bytes = Vec::new();
         read_body(transfer, url, response.into_body(), deadline, |data| {
-            if (bytes.len() + data.len()) as u64 > limit::FEED_BYTES {
+            if (bytes.len() + data.len()) as u64 > cap {
                 return Err(Error::new(
                     ErrorKind::TooLarge,
-                    format!(
-                        "feed at {url} is over the limit of {} bytes; stopped reading",
-                        limit::FEED_BYTES
-                    ),
+                    format!("{what} at {url} is over the limit of {cap} bytes; stopped reading"),
                 ));
             }
             bytes.extend_from_slice(data);
@@ -384,7 +393,7 @@ pub fn fetch_feed(url: &str, transfer: &Transfer) -> Result<Vec<u8>> {
         .await
         .map_err(|e| match e {
             BodyError::Broken(why) => network(format!(
-                "feed transfer from {url} broke off after {} bytes: {why}",
+                "{what} transfer from {url} broke off after {} bytes: {why}",
                 bytes.len()
             )),
             BodyError::Refused(e) => e,
@@ -658,6 +667,7 @@ pub struct Updater {
     device_id: String,
     download_dir: PathBuf,
     transfer: Transfer,
+    trust: Option<TrustSet>,
 }
 
 impl Updater {
@@ -678,7 +688,24 @@ impl Updater {
             device_id: device_id.into(),
             download_dir: download_dir.into(),
             transfer: Transfer::default(),
+            trust: None,
         }
+    }
+
+    /// Runs on a trust set: feeds and bundles are checked with its keys and thresholds
+    /// (replacing those of the verifiers given to [`Updater::new`], whose other settings
+    /// stay), and a feed that names a newer trust set rotates to it within the check (see
+    /// [`Updater::check_with`]).
+    pub fn with_trust_set(mut self, trust: TrustSet) -> Result<Self> {
+        self.feeds = self.feeds.with_trust_set(&trust)?;
+        self.bundles = self.bundles.with_trust_set(&trust)?;
+        self.trust = Some(trust);
+        Ok(self)
+    }
+
+    /// The trust set this updater starts each check with, if it runs on one.
+    pub fn trust_set(&self) -> Option<&TrustSet> {
+        self.trust.as_ref()
     }
 
     /// The transfer limits for the feed and the bundle.
@@ -694,14 +721,57 @@ impl Updater {
             .join(format!("{}.ampoule.partial", release.sha256))
     }
 
-    /// Runs one check against the clock time `now`.
+    /// Runs one check against the clock time `now`. On a trust set, a rotation the feed
+    /// announces applies to this check only and is not kept: an app that stores its trust set
+    /// uses [`Updater::check_with`].
     pub fn check(&self, now: Timestamp) -> Result<Update> {
+        self.check_with(now, &mut |_| Ok(()))
+    }
+
+    /// Runs one check against the clock time `now`, following a trust-set rotation.
+    ///
+    /// The feed is verified under the current trust set first. If it names a newer trust set
+    /// (see [`crate::feed::TrustSetRef`]), that file is fetched (bounded like the feed), its
+    /// SHA-256 checked against the feed, and accepted only through
+    /// [`TrustSet::accept_successor`]; `on_trust_set` then gets it to store (normally
+    /// [`crate::Store::save_trust_set`]) before anything else happens, and an error from it
+    /// ends the check. The feed must verify under the new set as well, and the bundle is
+    /// checked with the new set's keys: a key the rotation revokes no longer counts in the same
+    /// update. A trust set the feed names that does not verify as a successor ends the check
+    /// with that refusal, so that a revocation is never silently skipped. A feed naming the
+    /// current trust set or an older one changes nothing: the device keeps the newest set it
+    /// accepted.
+    pub fn check_with(
+        &self,
+        now: Timestamp,
+        on_trust_set: &mut dyn FnMut(&TrustSet) -> Result<()>,
+    ) -> Result<Update> {
         let bytes = fetch_feed(&self.feed_url, &self.transfer)?;
-        let feed = self.feeds.verify(&bytes, now)?;
+        let mut feed = self.feeds.verify(&bytes, now)?;
+        let mut rotated = None;
+        if let (Some(current), Some(named)) = (&self.trust, feed.trust_set())
+            && named.version > current.version()
+        {
+            let next = self.rotate(current, named, now)?;
+            on_trust_set(&next)?;
+            feed = self
+                .feeds
+                .clone()
+                .with_trust_set(&next)?
+                .verify(&bytes, now)
+                .map_err(|e| {
+                    e.context(format_args!(
+                        "feed refused under the new trust set version {}",
+                        next.version()
+                    ))
+                })?;
+            rotated = Some(self.bundles.clone().with_trust_set(&next)?);
+        }
+        let bundles = rotated.as_ref().unwrap_or(&self.bundles);
         let Some(release) = feed.release().cloned() else {
             return Ok(Update::NothingCurrent { feed });
         };
-        if let Some(name) = self.bundles.required_name()
+        if let Some(name) = bundles.required_name()
             && release.name != name
         {
             return Err(Error::new(
@@ -715,10 +785,10 @@ impl Updater {
         let newer = |installed: &Version| {
             release.version.cmp_precedence(installed) == std::cmp::Ordering::Greater
         };
-        if !self.bundles.installed_version().is_none_or(newer) {
+        if !bundles.installed_version().is_none_or(newer) {
             return Ok(Update::UpToDate { feed });
         }
-        if let Some(app) = self.bundles.app_version()
+        if let Some(app) = bundles.app_version()
             && !release.requires_app.matches(app)
         {
             return Ok(Update::NeedsOtherApp { feed });
@@ -743,7 +813,7 @@ impl Updater {
             &release.sha256,
             &self.transfer,
         )?;
-        let bundle = match self.bundles.verify_path(&path) {
+        let bundle = match bundles.verify_path(&path) {
             Ok(bundle) => bundle,
             Err(e) => {
                 // The bytes are the ones the feed signed, yet the bundle is refused: keeping
@@ -768,6 +838,92 @@ impl Updater {
             bundle: Box::new(bundle),
             path,
         })
+    }
+}
+
+/// For a device whose trust set expired while it was offline, so that no feed verifies under
+/// it any more: finds the tree's current trust set through the feed at `feed_url` and accepts
+/// it through [`Store::renew_trust_set`], which stores it.
+///
+/// The feed is read **without** verifying it, only to learn where the trust set is: an
+/// expired set's keys authorise nothing but a successor. What the feed says is not trusted:
+/// the fetched set must have the SHA-256 the feed names and is accepted only if a threshold of
+/// the expired set's trust-set keys (and of its own) signed it, and only if newer. Afterwards,
+/// build the updater on the returned set and check as usual.
+pub fn renew_expired_trust_set(
+    feed_url: &str,
+    transfer: &Transfer,
+    store: &Store,
+    initial: &[u8],
+    now: Timestamp,
+) -> Result<TrustSet> {
+    let bytes = fetch_feed(feed_url, transfer)?;
+    let signed = SignedFeed::from_json(&bytes)?;
+    let feed = Feed::from_json(signed.feed.as_bytes())?;
+    let Some(named) = feed.trust_set else {
+        return Err(Error::new(
+            ErrorKind::TrustSet,
+            format!(
+                "feed at {feed_url} names no trust set, so an expired trust set cannot be \
+                 renewed from it"
+            ),
+        ));
+    };
+    let (url, bytes) = fetch_named_trust_set(feed_url, &named, transfer)?;
+    let next = store
+        .renew_trust_set(initial, &bytes, now)
+        .map_err(|e| e.context(format_args!("the trust set at {url} was refused")))?;
+    check_named_version(&named, &next, &url)?;
+    Ok(next)
+}
+
+/// Fetches the trust set a feed names and checks its digest.
+fn fetch_named_trust_set(
+    feed_url: &str,
+    named: &TrustSetRef,
+    transfer: &Transfer,
+) -> Result<(String, Vec<u8>)> {
+    let url = named.url(feed_url)?;
+    let bytes = fetch_trust_set(&url, transfer)?;
+    let got = Digest::of(&bytes);
+    if got != named.sha256 {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "trust set downloaded from {url} has SHA-256 {got}, but the feed declares {}",
+                named.sha256
+            ),
+        ));
+    }
+    Ok((url, bytes))
+}
+
+fn check_named_version(named: &TrustSetRef, got: &TrustSet, url: &str) -> Result<()> {
+    if got.version() != named.version {
+        return Err(Error::new(
+            ErrorKind::Feed,
+            format!(
+                "feed names trust set version {} but {url} holds version {}",
+                named.version,
+                got.version()
+            ),
+        ));
+    }
+    Ok(())
+}
+
+impl Updater {
+    /// Fetches the trust set `named` by a verified feed and accepts it as the successor of
+    /// `current`.
+    fn rotate(&self, current: &TrustSet, named: &TrustSetRef, now: Timestamp) -> Result<TrustSet> {
+        let (url, bytes) = fetch_named_trust_set(&self.feed_url, named, &self.transfer)?;
+        let next = current.accept_successor(&bytes, now).map_err(|e| {
+            e.context(format_args!(
+                "the trust set at {url} that the feed names was refused"
+            ))
+        })?;
+        check_named_version(named, &next, &url)?;
+        Ok(next)
     }
 }
 

@@ -8,6 +8,7 @@
 //! STORE/
 //!   state.json                      the one commit point (see below)
 //!   lock                            empty; updaters hold an exclusive lock on it
+//!   trust-set.json                  the newest trust set the device accepted (see below)
 //!   .state.json.tmp-<pid>-<n>       a new state.json being written (removed if left over)
 //!   releases/
 //!     <name>-<version>-<12 hex>/    one verified release; the hex is the start of the
@@ -57,6 +58,17 @@
 //! refused from then on, so a fixed model must carry a newer version. Going back to the
 //! previous release is allowed despite the floor because the store verified and ran it before.
 //!
+//! # Trust set
+//!
+//! An app that runs on a trust set keeps the newest set it accepted in `trust-set.json`, the
+//! exact bytes of [`TrustSet::to_json`], replaced atomically (temporary file, fsync, rename,
+//! fsync of the directory) under the updaters' lock by [`Store::save_trust_set`]. Its version
+//! is the highest trust-set version the device accepted: saving an older one is refused, and
+//! [`Store::trust_set`] takes the newer of it and the set shipped with the app. The file is
+//! one atomic unit of its own, apart from `state.json`, so a crash leaves the old or the new
+//! set. A damaged file (a changed byte breaks its signatures or its JSON) is an error, never a
+//! reason to fall back to the shipped set, which could bring revoked keys back.
+//!
 //! # Limits of what a store can detect
 //!
 //! Anyone who can write the store directory can do what the store's own code does. The checks
@@ -76,10 +88,12 @@ use serde::{Deserialize, Serialize};
 
 use crate::digest::{Digest, hash_reader};
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::{entry, limit};
+use crate::format::{entry, limit, trust_set};
 use crate::keys::KeyId;
 use crate::labels::parse_stored_labels;
 use crate::manifest::{Manifest, Role};
+use crate::time::Timestamp;
+use crate::trust::TrustSet;
 use crate::unpack::{Staging, sync_dir};
 use crate::verify::{VerifiedBundle, Verifier};
 
@@ -91,11 +105,14 @@ pub const STATE_FILE: &str = "state.json";
 pub const LOCK_FILE: &str = "lock";
 /// The directory holding the releases.
 pub const RELEASES_DIR: &str = "releases";
+/// The file holding the newest trust set the device accepted.
+pub const TRUST_SET_FILE: &str = "trust-set.json";
 /// The most channels a store remembers.
 pub const MAX_CHANNELS: usize = 64;
 
 const STATE_BYTES: u64 = 64 * 1024;
 const STATE_TEMP_PREFIX: &str = ".state.json.tmp-";
+const TRUST_SET_TEMP_PREFIX: &str = ".trust-set.json.tmp-";
 const STAGING_PREFIX: &str = ".staging-";
 const RELEASE_NAME_BYTES: usize = 200;
 const DIGEST_PREFIX_HEX: usize = 12;
@@ -612,6 +629,87 @@ impl Store {
         self.sweep(&state)
     }
 
+    /// The trust set an app runs with after a restart: the newer of `initial` (the set
+    /// shipped with the app) and the one in `trust-set.json` in `dir`, each signed by its own
+    /// threshold, and not expired at `now`. Needs no [`Store`], so that the app can build its
+    /// verifier from the result before it opens the store. A damaged `trust-set.json` is an
+    /// error; an expired set is an error too, and [`Store::renew_trust_set`] replaces it.
+    pub fn load_trust_set(dir: &Path, initial: &[u8], now: Timestamp) -> Result<TrustSet> {
+        let set = newest_trust_set(dir, initial)?;
+        set.file().check_expiry(now)?;
+        Ok(set)
+    }
+
+    /// [`Store::load_trust_set`] for this store's directory.
+    pub fn trust_set(&self, initial: &[u8], now: Timestamp) -> Result<TrustSet> {
+        Self::load_trust_set(&self.dir, initial, now)
+    }
+
+    /// The version of the trust set in `trust-set.json`, the highest this store accepted;
+    /// `None` if the device never stored one.
+    pub fn stored_trust_set_version(&self) -> Result<Option<u64>> {
+        Ok(read_stored_trust_set(&self.dir)?.map(|set| set.version()))
+    }
+
+    /// Stores `trust` as the newest trust set the device accepted, under the updaters' lock,
+    /// replacing `trust-set.json` atomically. Refuses a version lower than the stored one (a
+    /// rollback of trust), and an equal version with other content; saving the stored set
+    /// again changes nothing.
+    pub fn save_trust_set(&self, trust: &TrustSet) -> Result<()> {
+        let _lock = self.lock()?;
+        let bytes = trust.to_json();
+        if let Some(stored) = read_stored_trust_set(&self.dir)? {
+            let (new, old) = (trust.version(), stored.version());
+            if new == old && stored.to_json() == bytes {
+                return Ok(());
+            }
+            if new <= old {
+                return Err(Error::new(
+                    ErrorKind::TrustSet,
+                    format!(
+                        "trust set version {new} is not newer than version {old}, the highest \
+                         store {} accepted; refusing to roll trust back",
+                        self.dir.display()
+                    ),
+                ));
+            }
+        }
+        let path = self.dir.join(TRUST_SET_FILE);
+        let mut temp = TempFile {
+            path: self
+                .dir
+                .join(format!("{TRUST_SET_TEMP_PREFIX}{}", unique_suffix())),
+            keep: false,
+        };
+        write_synced(&temp.path, &bytes)?;
+        fs::rename(&temp.path, &path)
+            .map_err(|e| Error::io(format!("cannot replace {}", path.display()), e))?;
+        temp.keep = true;
+        sync_dir(&self.dir)
+    }
+
+    /// For a device whose trust set expired while it was offline: accepts `successor` as the
+    /// successor of the newest of `initial` and the stored set (whose keys may authorise it
+    /// although expired, see [`TrustSet::renew`]), stores it, and returns it.
+    pub fn renew_trust_set(
+        &self,
+        initial: &[u8],
+        successor: &[u8],
+        now: Timestamp,
+    ) -> Result<TrustSet> {
+        let next = newest_trust_set(&self.dir, initial)?.accept_successor(successor, now)?;
+        self.save_trust_set(&next)?;
+        Ok(next)
+    }
+
+    /// This store with its verifier's bundle keys and threshold taken from `trust` (its policy
+    /// stays): after a device accepted a newer trust set, stored releases and new installs are
+    /// checked against the new set's keys, so a revoked key no longer counts.
+    pub fn with_trust_set(mut self, trust: &TrustSet) -> Result<Store> {
+        self.verifier = self.verifier.with_trust_set(trust)?;
+        Ok(self)
+    }
+
     fn state_path(&self) -> PathBuf {
         self.dir.join(STATE_FILE)
     }
@@ -816,7 +914,8 @@ impl Store {
             }
         }
         for entry in list_dir(&self.dir)? {
-            if entry.to_string_lossy().starts_with(STATE_TEMP_PREFIX) {
+            let name = entry.to_string_lossy();
+            if name.starts_with(STATE_TEMP_PREFIX) || name.starts_with(TRUST_SET_TEMP_PREFIX) {
                 let path = self.dir.join(&entry);
                 remove_any(&path)?;
                 removed.push(path);
@@ -958,6 +1057,47 @@ impl Store {
             signers: report.valid,
         })
     }
+}
+
+/// Reads `trust-set.json` in `dir` and checks it against its own threshold; `None` if there
+/// is none. Every failure names the file.
+fn read_stored_trust_set(dir: &Path) -> Result<Option<TrustSet>> {
+    let path = dir.join(TRUST_SET_FILE);
+    let damaged = |why: String| {
+        Error::new(
+            ErrorKind::Store,
+            format!(
+                "{} is damaged or was changed outside ampoule-verify: {why}",
+                path.display()
+            ),
+        )
+    };
+    let bytes = match read_capped(&path, trust_set::MAX_BYTES) {
+        Ok(bytes) => bytes,
+        Err(ReadCapped::Missing) => return Ok(None),
+        Err(ReadCapped::TooLarge) => {
+            return Err(damaged(format!(
+                "it is over {} bytes",
+                trust_set::MAX_BYTES
+            )));
+        }
+        Err(ReadCapped::Io(e)) => {
+            return Err(Error::io(format!("cannot read {}", path.display()), e));
+        }
+    };
+    TrustSet::self_signed(&bytes)
+        .map(Some)
+        .map_err(|e| damaged(e.to_string()))
+}
+
+/// The newer of the shipped trust set and the stored one, expiry not checked.
+fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
+    let initial = TrustSet::self_signed(initial)
+        .map_err(|e| e.context("the trust set shipped with the app"))?;
+    Ok(match read_stored_trust_set(dir)? {
+        Some(stored) if stored.version() > initial.version() => stored,
+        _ => initial,
+    })
 }
 
 fn step(hook: StepHook<'_>, step: Step) -> Result<()> {

@@ -587,7 +587,7 @@ impl TrustSet {
         Ok(TrustSet { file: next, report })
     }
 
-    fn self_signed(bytes: &[u8]) -> Result<TrustSet> {
+    pub(crate) fn self_signed(bytes: &[u8]) -> Result<TrustSet> {
         let file = TrustSetFile::from_json(bytes)?;
         let report = file.check_own_signatures(&format!("trust set version {}", file.version()))?;
         Ok(TrustSet { file, report })

@@ -126,6 +126,23 @@ impl Verifier {
         Self::new(keys, app_version)?.with_threshold(threshold)
     }
 
+    /// This verifier with the bundle keys and threshold of `trust` instead of its own; every
+    /// policy setting stays. For a device that just accepted a newer trust set.
+    pub fn with_trust_set(mut self, trust: &TrustSet) -> Result<Self> {
+        let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
+        if keys.is_empty() {
+            return Err(Error::new(
+                ErrorKind::Key,
+                format!(
+                    "trust set version {} lists no bundle keys; a verifier needs at least one",
+                    trust.version()
+                ),
+            ));
+        }
+        self.keys = keys;
+        self.with_threshold(threshold)
+    }
+
     /// Requires `threshold` valid signatures by distinct trusted keys (1 unless set). Refuses 0,
     /// which would accept unsigned bundles, and more than the number of trusted keys, which
     /// no bundle could ever meet.
