@@ -394,9 +394,13 @@ pub struct PublishArgs {
     /// The channel to publish on (lowercase letters, digits, - _ .), like stable or beta.
     #[arg(long, value_name = "NAME")]
     pub channel: String,
-    /// The secret key that signs the channel's feed.
+    /// The secret key that signs the channel's feed and the audit ledger's tree head.
     #[arg(long, value_name = "SECRET.pem")]
     pub key: PathBuf,
+    /// A key that signs the audit ledger's tree head besides the feed key (repeat for
+    /// several), for devices whose trust set needs more than one tree-head signature.
+    #[arg(long, value_name = "SECRET.pem")]
+    pub tree_head_key: Vec<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// Keys the bundle's signature is checked against before publishing (repeat for
@@ -423,9 +427,13 @@ pub struct WithdrawArgs {
     /// The channel whose current release is pulled.
     #[arg(long, value_name = "NAME")]
     pub channel: String,
-    /// The secret key that signs the channel's feed.
+    /// The secret key that signs the channel's feed and the audit ledger's tree head.
     #[arg(long, value_name = "SECRET.pem")]
     pub key: PathBuf,
+    /// A key that signs the audit ledger's tree head besides the feed key (repeat for
+    /// several), for devices whose trust set needs more than one tree-head signature.
+    #[arg(long, value_name = "SECRET.pem")]
+    pub tree_head_key: Vec<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// How long the new feed stays valid (like 7d, 12h, 90m).

@@ -21,6 +21,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         );
     }
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
+    let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     // Without --trust the feed key must have signed the bundle too: publishing checks the
     // bundle the way a device that trusts this key would.
     let trust = if args.trust.is_empty() {
@@ -36,12 +37,24 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         key: &key,
         now: Timestamp::now(),
         expires_in_secs,
+        tree_head_keys: &tree_head_keys,
     };
     let change = tree.publish(staged, &args.channel, args.rollout, &args.mirror, &signing)?;
-    // The tree is still locked here: an audit-ledger append belongs at this point, after the
-    // feed is written and before anyone else can change the tree.
     drop(tree);
     report(&change, out)
+}
+
+/// Reads the `--tree-head-key` files: keys that sign the ledger's tree head besides the feed
+/// key (all with the same passphrase source). Giving the feed key again is refused by the
+/// ledger append, since a tree head counts each key once.
+pub fn read_tree_head_keys(
+    paths: &[std::path::PathBuf],
+    passphrase: &crate::cli::PassphraseArgs,
+) -> Result<Vec<ed25519_dalek::SigningKey>> {
+    paths
+        .iter()
+        .map(|path| keyfile::read_secret_key(path, &passphrase_source(passphrase)))
+        .collect()
 }
 
 /// Prints what a publish or withdraw changed.
@@ -68,7 +81,15 @@ pub fn report(change: &Change, out: &Output) -> Result<()> {
         Some(r) => format!("{} {}", r.name, r.version),
         None => "nothing".into(),
     };
-    let human = format!(
+    let ledger = feed.ledger.as_ref().map(|l| {
+        let head = l.tree_head.head();
+        json!({
+            "tree_size": head.tree_size,
+            "root_hash": head.root_hash,
+            "leaf_index": l.inclusion.as_ref().map(|p| p.leaf_index),
+        })
+    });
+    let mut human = format!(
         "channel {} now offers {now}\nwas: {was}\nfeed {} sequence {}, expires {}, signed by {}\n",
         change.channel,
         change.feed_path.display(),
@@ -76,6 +97,15 @@ pub fn report(change: &Change, out: &Output) -> Result<()> {
         feed.expires,
         change.signer
     );
+    if let Some(l) = &feed.ledger {
+        let head = l.tree_head.head();
+        human.push_str(&format!(
+            "ledger: entry {} logged, tree size {}, root {}\n",
+            head.tree_size - 1,
+            head.tree_size,
+            head.root_hash
+        ));
+    }
     out.result(
         &human,
         json!({
@@ -88,6 +118,7 @@ pub fn report(change: &Change, out: &Output) -> Result<()> {
             "signer": change.signer.to_string(),
             "release": feed.release.as_ref().map(release),
             "previous": change.previous.as_ref().map(release),
+            "ledger": ledger,
         }),
     )
 }

@@ -32,7 +32,8 @@ use semver::Version;
 
 use crate::digest::{Digest, Hasher};
 use crate::error::{Error, ErrorKind, Result};
-use crate::feed::{FeedVerifier, Release, VerifiedFeed, in_rollout};
+use crate::feed::{FeedVerifier, Release, VerifiedFeed, in_rollout, resolve};
+use crate::ledger;
 use crate::format::limit;
 use crate::time::Timestamp;
 use crate::verify::{VerifiedBundle, Verifier};
@@ -352,30 +353,31 @@ async fn read_body(
 /// Fetches a feed file: at most [`limit::FEED_BYTES`], refused early when the server declares
 /// more. The bytes are unverified: give them to [`FeedVerifier::verify`].
 pub fn fetch_feed(url: &str, transfer: &Transfer) -> Result<Vec<u8>> {
+    fetch_small(url, transfer, limit::FEED_BYTES, "feed")
+}
+
+/// Fetches a small document (`what` names it in messages) of at most `max` bytes.
+fn fetch_small(url: &str, transfer: &Transfer, max: u64, what: &str) -> Result<Vec<u8>> {
     let session = Session::new(transfer)?;
     session.runtime.block_on(async {
         let deadline = Instant::now() + transfer.total_timeout;
         let response = session.get(url, 0, deadline).await?;
         if let Some(len) = content_length(&response, url)?
-            && len > limit::FEED_BYTES
+            && len > max
         {
             return Err(Error::new(
                 ErrorKind::TooLarge,
                 format!(
-                    "server declares {len} bytes for the feed at {url}, over the limit of {} bytes",
-                    limit::FEED_BYTES
+                    "server declares {len} bytes for the {what} at {url}, over the limit of {max} bytes"
                 ),
             ));
         }
         let mut bytes = Vec::new();
         read_body(transfer, url, response.into_body(), deadline, |data| {
-            if (bytes.len() + data.len()) as u64 > limit::FEED_BYTES {
+            if (bytes.len() + data.len()) as u64 > max {
                 return Err(Error::new(
                     ErrorKind::TooLarge,
-                    format!(
-                        "feed at {url} is over the limit of {} bytes; stopped reading",
-                        limit::FEED_BYTES
-                    ),
+                    format!("{what} at {url} is over the limit of {max} bytes; stopped reading"),
                 ));
             }
             bytes.extend_from_slice(data);
@@ -384,7 +386,7 @@ pub fn fetch_feed(url: &str, transfer: &Transfer) -> Result<Vec<u8>> {
         .await
         .map_err(|e| match e {
             BodyError::Broken(why) => network(format!(
-                "feed transfer from {url} broke off after {} bytes: {why}",
+                "{what} transfer from {url} broke off after {} bytes: {why}",
                 bytes.len()
             )),
             BodyError::Refused(e) => e,
@@ -697,7 +699,16 @@ impl Updater {
     /// Runs one check against the clock time `now`.
     pub fn check(&self, now: Timestamp) -> Result<Update> {
         let bytes = fetch_feed(&self.feed_url, &self.transfer)?;
-        let feed = self.feeds.verify(&bytes, now)?;
+        // A device that missed ledger appends catches up through the tree's consistency steps.
+        let feed = self.feeds.verify_with_steps(&bytes, now, &mut |size| {
+            let url = resolve(&self.feed_url, &ledger::step_reference(size))?;
+            fetch_small(
+                &url,
+                &self.transfer,
+                ledger::MAX_STEP_BYTES,
+                "consistency step",
+            )
+        })?;
         let Some(release) = feed.release().cloned() else {
             return Ok(Update::NothingCurrent { feed });
         };
@@ -762,6 +773,20 @@ impl Updater {
                     release.name, release.version, m.name, m.version
                 ),
             ));
+        }
+        if let Some(entry) = feed.ledger().and_then(|l| l.entry.as_ref()) {
+            let manifest_sha256 = Digest::of(bundle.manifest_bytes());
+            if manifest_sha256 != entry.manifest_digest {
+                let _ = std::fs::remove_file(&path);
+                return Err(Error::new(
+                    ErrorKind::Proof,
+                    format!(
+                        "bundle {} {} ({}) was signed but never published: its manifest has \
+                         sha256 {manifest_sha256}, but the ledger's publish entry logs {}",
+                        m.name, m.version, release.sha256, entry.manifest_digest
+                    ),
+                ));
+            }
         }
         Ok(Update::Ready {
             feed,

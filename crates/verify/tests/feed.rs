@@ -44,6 +44,7 @@ fn feed(sequence: u64) -> Feed {
         issued: ts("2026-12-01T08:00:00Z"),
         expires: ts("2026-12-08T08:00:00Z"),
         release: Some(release()),
+        ledger: None,
     }
 }
 
