@@ -23,8 +23,8 @@ use std::path::{Path, PathBuf};
 
 use ampoule_verify::digest::Hasher;
 use ampoule_verify::feed::{Feed, Release, SignedFeed, check_channel};
-use ampoule_verify::ledger::{Entry as LedgerEntry, Event as LedgerEvent};
 use ampoule_verify::format::{BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes};
+use ampoule_verify::ledger::{Entry as LedgerEntry, Event as LedgerEvent};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{Digest, KeyId, Manifest, Timestamp, TrustedKeys, Verifier};
 use anyhow::{Context, Result, anyhow, bail};

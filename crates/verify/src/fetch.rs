@@ -33,8 +33,8 @@ use semver::Version;
 use crate::digest::{Digest, Hasher};
 use crate::error::{Error, ErrorKind, Result};
 use crate::feed::{FeedVerifier, Release, VerifiedFeed, in_rollout, resolve};
-use crate::ledger;
 use crate::format::limit;
+use crate::ledger;
 use crate::time::Timestamp;
 use crate::verify::{VerifiedBundle, Verifier};
 
@@ -392,6 +392,48 @@ fn fetch_small(url: &str, transfer: &Transfer, max: u64, what: &str) -> Result<V
             BodyError::Refused(e) => e,
         })?;
         Ok(bytes)
+    })
+}
+
+/// Fetches `url` into a new file `dest` (replacing it), stopping with an error past `max`
+/// bytes; returns the length. For tools that copy a release tree's files, such as an
+/// auditor's ledger check over HTTP; the bytes are unverified.
+pub fn fetch_to_file(url: &str, dest: &Path, max: u64, transfer: &Transfer) -> Result<u64> {
+    let session = Session::new(transfer)?;
+    let mut file = File::create(dest)
+        .map_err(|e| Error::io(format!("cannot create {}", dest.display()), e))?;
+    session.runtime.block_on(async {
+        let deadline = Instant::now() + transfer.total_timeout;
+        let response = session.get(url, 0, deadline).await?;
+        if let Some(len) = content_length(&response, url)?
+            && len > max
+        {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!("server declares {len} bytes for {url}, over the limit of {max} bytes"),
+            ));
+        }
+        let mut written = 0u64;
+        read_body(transfer, url, response.into_body(), deadline, |data| {
+            if written + data.len() as u64 > max {
+                return Err(Error::new(
+                    ErrorKind::TooLarge,
+                    format!("{url} is over the limit of {max} bytes; stopped reading"),
+                ));
+            }
+            file.write_all(data)
+                .map_err(|e| Error::io(format!("cannot write {}", dest.display()), e))?;
+            written += data.len() as u64;
+            Ok(())
+        })
+        .await
+        .map_err(|e| match e {
+            BodyError::Broken(why) => network(format!(
+                "transfer from {url} broke off after {written} bytes: {why}"
+            )),
+            BodyError::Refused(e) => e,
+        })?;
+        Ok(written)
     })
 }
 

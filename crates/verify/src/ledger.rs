@@ -325,9 +325,7 @@ impl LedgerVerifier {
                     ))
                 };
                 let (Some(text), Some(inclusion)) = (&ledger.entry, &ledger.inclusion) else {
-                    return Err(never(
-                        "the feed carries no ledger entry for it".to_string(),
-                    ));
+                    return Err(never("the feed carries no ledger entry for it".to_string()));
                 };
                 let entry = Entry::from_bytes(text.as_bytes())?;
                 let mismatch = [

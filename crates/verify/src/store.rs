@@ -78,9 +78,9 @@ use crate::digest::{Digest, hash_reader};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{entry, limit};
 use crate::keys::KeyId;
-use crate::merkle::TreeHead;
 use crate::labels::parse_stored_labels;
 use crate::manifest::{Manifest, Role};
+use crate::merkle::TreeHead;
 use crate::unpack::sync_dir;
 use crate::verify::{VerifiedBundle, Verifier};
 
