@@ -1014,6 +1014,7 @@ mod tests {
     use super::*;
     use ampoule_verify::PublicKey;
     use ampoule_verify::merkle::MemoryTree;
+    use serde::Deserialize;
     use std::process::Command;
     use std::time::{Duration, Instant};
 
