@@ -336,8 +336,8 @@ pub struct LedgerListArgs {
     /// Only the entries of this channel.
     #[arg(long, value_name = "NAME")]
     pub channel: Option<String>,
-    /// Print comma-separated values (RFC 4180) with a header line.
-    #[arg(long, conflicts_with = "json")]
+    /// Print comma-separated values (RFC 4180) with a header line (not with --json).
+    #[arg(long)]
     pub csv: bool,
 }
 

@@ -175,6 +175,14 @@ fn publish_and_withdraw_append_entries_issue_4() {
         lines[1].starts_with("1,") && lines[1].contains(",publish,beta,trailcam-species,1.1.0,"),
         "{csv}"
     );
+    let (code, err) = refused(d, &["--json", "ledger", "list", "--tree", "tree", "--csv"]);
+    assert_eq!(
+        (code, err.as_str()),
+        (
+            2,
+            "ampoule: error: --csv and --json print different formats; choose one"
+        )
+    );
     let text = ok(d, &["ledger", "list", "--tree", "tree"]);
     assert!(text.starts_with("#  time"), "{text}");
     assert!(
@@ -938,4 +946,80 @@ fn first_head(d: &Path) -> TreeHead {
     let bytes = std::fs::read(d.join("tree/ledger/tree-heads.jsonl")).expect("log");
     let line = bytes.split(|&b| b == b'\n').next().expect("line 1");
     SignedTreeHead::from_json(line).expect("head").head()
+}
+
+#[test]
+fn check_with_a_trust_set_needs_its_tree_head_threshold() {
+    let dir = setup();
+    let d = dir.path();
+    ok(
+        d,
+        &["keygen", "--secret", "second.pem", "--public", "second.pub"],
+    );
+    ok(
+        d,
+        &[
+            "trust",
+            "init",
+            "--key",
+            "k.pub",
+            "--key",
+            "second.pub",
+            "--threshold",
+            "tree_head=2",
+            "--expires-in",
+            "365d",
+            "-o",
+            "trust.json",
+        ],
+    );
+    ok(d, &["trust", "sign", "trust.json", "--key", "k.pem"]);
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    // Both keys sign the tree head: the feed key and one --tree-head-key.
+    ok(
+        d,
+        &[
+            "publish",
+            &v1,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+            "--tree-head-key",
+            "second.pem",
+        ],
+    );
+    let with_set = |d: &Path| {
+        let out = run(
+            d,
+            &[
+                "--json",
+                "ledger",
+                "check",
+                "--tree",
+                "tree",
+                "--trust-set",
+                "trust.json",
+            ],
+        );
+        let doc: serde_json::Value = serde_json::from_slice(&out.stdout).expect("report");
+        (out.status.code().unwrap_or(-1), doc)
+    };
+    let (code, report) = with_set(d);
+    assert_eq!(code, 0, "{report}");
+    // One more publish signed by the feed key alone falls short of the threshold.
+    publish(d, &v1, "beta", "100");
+    let (code, report) = with_set(d);
+    assert_eq!(code, 1);
+    let found = problems(&report);
+    assert_eq!(found.len(), 1, "{found:?}");
+    assert!(
+        found[0].starts_with(
+            "line 2 of tree-heads.jsonl (tree size 2): tree head has 1 valid signature(s) by \
+             trusted keys but needs 2 (valid: "
+        ),
+        "{found:?}"
+    );
 }

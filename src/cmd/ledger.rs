@@ -208,6 +208,9 @@ fn csv_field(text: &str) -> String {
 }
 
 fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
+    if args.csv && out.json() {
+        bail!("--csv and --json print different formats; choose one");
+    }
     if let Some(channel) = &args.channel {
         ampoule_verify::feed::check_channel(channel)?;
     }
