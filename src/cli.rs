@@ -113,6 +113,20 @@ The new feed has a higher sequence. With no earlier release the channel offers n
 withdrawn release keep it too: they never go back to an older version.")]
     Withdraw(WithdrawArgs),
 
+    /// Read the audit ledger: what was shipped, whether history was ever rewritten, and the
+    /// proof that a bundle was published.
+    #[command(after_help = "Examples:
+  ampoule ledger list --tree ./release --channel stable
+  ampoule ledger list --url https://models.example.invalid/ --csv > shipped.csv
+  ampoule ledger check --tree ./release --trust feed.public.pem --since saved-tree-head.json
+  ampoule ledger check --url https://models.example.invalid/ --trust-set trust-3.json
+  ampoule ledger prove species-1.1.0.ampoule --tree ./release --json
+
+Keep the tree heads you have seen (ledger/tree-head.json at each audit) and pass the last one
+with --since: check then proves the ledger only grew since. Exit code 1 means check found
+problems; each is printed.")]
+    Ledger(LedgerArgs),
+
     /// Serve a release tree over HTTP, for demos and tests only.
     #[command(after_help = "Example:
   ampoule serve --tree ./release --addr 127.0.0.1:8000
@@ -272,6 +286,91 @@ pub struct DemoArgs {
 }
 
 #[derive(Args, Debug)]
+pub struct LedgerArgs {
+    #[command(subcommand)]
+    pub command: LedgerCommand,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum LedgerCommand {
+    /// The history: every publish and withdraw, oldest first.
+    #[command(after_help = "Examples:
+  ampoule ledger list --tree ./release
+  ampoule ledger list --tree ./release --channel stable --csv
+  ampoule ledger list --url http://127.0.0.1:8000/ --json
+
+Columns: entry number, time (UTC), event, channel, bundle name, version, bundle sha256,
+the keys that signed the bundle, and the feed sequence that carried the change.")]
+    List(LedgerListArgs),
+    /// Recompute every hash, check every tree head's signature and consistency, and the
+    /// entries against the tree; exit 1 on any problem.
+    #[command(after_help = "Examples:
+  ampoule ledger check --tree ./release --trust feed.public.pem
+  ampoule ledger check --tree ./release --trust feed.public.pem --since audit-2026-11.json
+  ampoule ledger check --url http://127.0.0.1:8000/ --trust-set trust-2.json --json
+
+Problems (exit 1): a hash that does not match the entries, a tree head not signed by the
+trusted keys, a current head not consistent with --since, a version reused with different
+content, a feed-sequence gap, a bundle missing from the tree or different from the one logged.
+Warnings (exit 0): an entry no feed carried, left by a publish that stopped after its append.")]
+    Check(LedgerCheckArgs),
+    /// Print the inclusion proof of a bundle's latest publish entry, and verify it.
+    #[command(after_help = "Examples:
+  ampoule ledger prove species-1.1.0.ampoule --tree ./release
+  ampoule ledger prove 5f1c...e9 --tree ./release --json      (a bundle's sha256)")]
+    Prove(LedgerProveArgs),
+}
+
+/// Where the ledger is read from.
+#[derive(Args, Debug)]
+#[group(required = true, multiple = false)]
+pub struct LedgerSourceArgs {
+    /// A release tree on this machine.
+    #[arg(long, value_name = "DIR")]
+    pub tree: Option<PathBuf>,
+    /// The base URL a release tree is served from (http or https).
+    #[arg(long, value_name = "URL")]
+    pub url: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct LedgerListArgs {
+    #[command(flatten)]
+    pub source: LedgerSourceArgs,
+    /// Only the entries of this channel.
+    #[arg(long, value_name = "NAME")]
+    pub channel: Option<String>,
+    /// Print comma-separated values (RFC 4180) with a header line (not with --json).
+    #[arg(long)]
+    pub csv: bool,
+}
+
+#[derive(Args, Debug)]
+pub struct LedgerCheckArgs {
+    #[command(flatten)]
+    pub source: LedgerSourceArgs,
+    /// A tree head saved at an earlier audit (a copy of ledger/tree-head.json): the current
+    /// head must extend it.
+    #[arg(long, value_name = "TREE-HEAD.json")]
+    pub since: Option<PathBuf>,
+    /// A public key that signs tree heads (repeat for several).
+    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
+    pub trust: Vec<PathBuf>,
+    /// A trust set: tree heads need its tree_head threshold.
+    #[arg(long, value_name = "FILE", conflicts_with = "trust")]
+    pub trust_set: Option<PathBuf>,
+}
+
+#[derive(Args, Debug)]
+pub struct LedgerProveArgs {
+    /// The bundle file, or its sha256 as 64 hex characters.
+    pub bundle: String,
+    /// The release tree.
+    #[arg(long, value_name = "DIR")]
+    pub tree: PathBuf,
+}
+
+#[derive(Args, Debug)]
 pub struct TrustArgs {
     #[command(subcommand)]
     pub command: TrustCommand,
@@ -408,9 +507,13 @@ pub struct PublishArgs {
     /// The channel to publish on (lowercase letters, digits, - _ .), like stable or beta.
     #[arg(long, value_name = "NAME", required_unless_present = "trust_set")]
     pub channel: Option<String>,
-    /// The secret key that signs the channel's feed.
+    /// The secret key that signs the channel's feed and the audit ledger's tree head.
     #[arg(long, value_name = "SECRET.pem")]
     pub key: PathBuf,
+    /// A key that signs the audit ledger's tree head besides the feed key (repeat for
+    /// several), for devices whose trust set needs more than one tree-head signature.
+    #[arg(long, value_name = "SECRET.pem")]
+    pub tree_head_key: Vec<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// Keys the bundle's signature is checked against before publishing (repeat for
@@ -437,9 +540,13 @@ pub struct WithdrawArgs {
     /// The channel whose current release is pulled.
     #[arg(long, value_name = "NAME")]
     pub channel: String,
-    /// The secret key that signs the channel's feed.
+    /// The secret key that signs the channel's feed and the audit ledger's tree head.
     #[arg(long, value_name = "SECRET.pem")]
     pub key: PathBuf,
+    /// A key that signs the audit ledger's tree head besides the feed key (repeat for
+    /// several), for devices whose trust set needs more than one tree-head signature.
+    #[arg(long, value_name = "SECRET.pem")]
+    pub tree_head_key: Vec<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// How long the new feed stays valid (like 7d, 12h, 90m).

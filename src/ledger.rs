@@ -33,7 +33,6 @@ use ampoule_verify::merkle::{
 use ampoule_verify::{Digest, KeyId, TrustedKeys, format};
 use anyhow::{Context, Result, bail, ensure};
 use ed25519_dalek::{Signer, SigningKey};
-use serde::{Deserialize, Serialize};
 
 /// The entries file.
 pub const ENTRIES: &str = "entries.jsonl";
@@ -50,8 +49,8 @@ pub const LOCK: &str = "lock";
 /// Where a new tree head is written before it is renamed into place.
 const TREE_HEAD_TEMP: &str = "tree-head.json.tmp";
 
-/// The largest entry, in bytes; a publish entry is a few hundred.
-pub const MAX_ENTRY_BYTES: usize = 64 * 1024;
+/// The entries and their size limit are part of the format, so they live in ampoule-verify.
+pub use ampoule_verify::ledger::{Entry, Event, MAX_ENTRY_BYTES};
 
 const HASH_BYTES: u64 = Digest::LEN as u64;
 const OFFSET_BYTES: u64 = 8;
@@ -65,58 +64,6 @@ fn level_file(level: u32) -> String {
 /// How many levels hold at least one complete subtree in a tree of `size` leaves.
 fn level_count(size: u64) -> u32 {
     64 - size.leading_zeros()
-}
-
-/// What happened to a bundle on a channel.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "lowercase")]
-pub enum Event {
-    /// The bundle was published on the channel.
-    Publish,
-    /// The bundle was withdrawn from the channel.
-    Withdraw,
-}
-
-/// One ledger entry: a publish or withdraw, with everything an auditor needs to match it
-/// against a bundle and a feed.
-#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Entry {
-    /// Publish or withdraw.
-    pub event: Event,
-    /// The channel's name.
-    pub channel: String,
-    /// The bundle's name.
-    pub bundle: String,
-    /// The bundle's version.
-    pub version: semver::Version,
-    /// SHA-256 of the whole bundle file.
-    pub bundle_digest: Digest,
-    /// SHA-256 of the bundle's manifest.
-    pub manifest_digest: Digest,
-    /// The keys that signed the manifest.
-    pub key_ids: Vec<KeyId>,
-    /// When it happened, in seconds since the Unix epoch.
-    pub time: u64,
-    /// The feed sequence number that carried the change.
-    pub feed_sequence: u64,
-}
-
-impl Entry {
-    /// The entry as one line of compact JSON (without the newline), the bytes the ledger hashes.
-    pub fn to_bytes(&self) -> Vec<u8> {
-        serde_json::to_vec(self).expect("a ledger entry always serializes")
-    }
-
-    /// Parses an entry as stored, refusing unknown and duplicate fields.
-    pub fn from_bytes(bytes: &[u8]) -> Result<Self> {
-        ensure!(
-            bytes.len() <= MAX_ENTRY_BYTES,
-            "ledger entry is {} bytes, more than the limit of {MAX_ENTRY_BYTES}",
-            bytes.len()
-        );
-        serde_json::from_slice(bytes).context("ledger entry is not valid")
-    }
 }
 
 /// What a full [`Ledger::check`] found.
@@ -539,6 +486,48 @@ impl Ledger {
             new_size,
             hashes: merkle::consistency_proof(&self.stored(), old_size, new_size)?,
         })
+    }
+
+    /// The latest logged tree head smaller than the current one: the head the last append
+    /// started from. Reads only the end of the head log.
+    pub fn previous_head(&self) -> Result<Option<SignedTreeHead>> {
+        let size = self.size();
+        let path = self.dir.join(TREE_HEADS);
+        let log = open_read(&path)?;
+        let len = file_len(&log, &path)?;
+        // The current head, possibly not logged yet, and the one before it, each with a newline.
+        let window = len.min(merkle::MAX_SIGNED_TREE_HEAD_BYTES as u64 * 3 + 3);
+        let mut tail = vec![0u8; window as usize];
+        log.read_exact_at(&mut tail, len - window)
+            .with_context(|| format!("cannot read {}", path.display()))?;
+        let mut lines: Vec<&[u8]> = tail.split(|&b| b == b'\n').collect();
+        // A torn last line was never committed, and a cut first line is not whole.
+        lines.pop();
+        if window < len && !lines.is_empty() {
+            lines.remove(0);
+        }
+        for line in lines.into_iter().rev().filter(|l| !l.is_empty()) {
+            let head = SignedTreeHead::from_json(line)
+                .with_context(|| format!("{} holds a damaged tree head", path.display()))?;
+            if head.head().tree_size < size {
+                return Ok(Some(head));
+            }
+        }
+        Ok(None)
+    }
+
+    /// The latest entry, searching back from the newest, for which `wanted` holds.
+    pub fn find_last(&self, wanted: impl Fn(&Entry) -> bool) -> Result<Option<(u64, Vec<u8>)>> {
+        for index in (0..self.size()).rev() {
+            let bytes = self.entry(index)?;
+            // Entries this tool did not write are never what a search is after.
+            if let Ok(entry) = Entry::from_bytes(&bytes)
+                && wanted(&entry)
+            {
+                return Ok(Some((index, bytes)));
+            }
+        }
+        Ok(None)
     }
 
     /// Every committed entry in order, read as a stream.
@@ -1025,6 +1014,7 @@ mod tests {
     use super::*;
     use ampoule_verify::PublicKey;
     use ampoule_verify::merkle::MemoryTree;
+    use serde::Deserialize;
     use std::process::Command;
     use std::time::{Duration, Instant};
 

@@ -66,6 +66,7 @@ fn main() -> ExitCode {
         Command::Trust(args) => cmd::trust::run(args, &out),
         Command::Publish(args) => cmd::publish::run(args, &out),
         Command::Withdraw(args) => cmd::withdraw::run(args, &out),
+        Command::Ledger(args) => cmd::ledger::run(args, &out),
         Command::Serve(args) => cmd::serve::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
     };

@@ -7,6 +7,7 @@
 //! history/<channel>.json     each channel's publish and withdraw events, oldest first
 //! index.json                 every name and version in the tree, with its bundle's digest
 //! trust/<version>.json       every trust set published, by version; the highest is current
+//! ledger/                    the audit ledger of every publish and withdraw (see `audit.rs`)
 //! .lock                      held while a command changes the tree
 //! ```
 //!
@@ -14,7 +15,8 @@
 //! path `../bundles/<sha256>.ampoule`, so the tree can be served from any base URL. Every file
 //! is written to a temporary file in its directory, flushed, renamed into place and the
 //! directory flushed, so a reader or a crash sees the old file or the new one, never a mix. The
-//! feed is written last: it is the moment devices see a change.
+//! ledger entry is appended first and the feed written last: it is the moment devices see a
+//! change, and by then the change is in the ledger.
 //!
 //! Trust sets: a new one is published only if it verifies as the successor of the tree's
 //! current one (or, for the first, as an initial set), and then every channel's feed is signed
@@ -31,6 +33,7 @@ use ampoule_verify::feed::{Feed, Release, SignedFeed, TrustSetRef, check_channel
 use ampoule_verify::format::{
     BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes, trust_set as trust_spec,
 };
+use ampoule_verify::ledger::{Entry as LedgerEntry, Event as LedgerEvent};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{
     Digest, DocumentKind, KeyId, Manifest, Timestamp, TrustSet, TrustSetFile, TrustedKeys, Verifier,
@@ -195,6 +198,10 @@ pub struct StagedBundle {
     pub manifest: Manifest,
     pub sha256: Digest,
     pub size: u64,
+    /// For the ledger entry: SHA-256 of the exact manifest bytes, and the keys whose
+    /// signatures were checked.
+    pub manifest_digest: Digest,
+    pub signers: Vec<KeyId>,
 }
 
 /// Settings shared by publish and withdraw.
@@ -202,6 +209,8 @@ pub struct Signing<'a> {
     pub key: &'a SigningKey,
     pub now: Timestamp,
     pub expires_in_secs: u64,
+    /// Keys that sign the ledger's tree head besides `key`.
+    pub tree_head_keys: &'a [SigningKey],
 }
 
 /// A release tree with its lock held; the lock is released when this is dropped.
@@ -411,6 +420,8 @@ impl Tree {
             format!("bundle {} refused; nothing was published", bundle.display())
         })?;
         Ok(StagedBundle {
+            manifest_digest: Digest::of(verified.manifest_bytes()),
+            signers: verified.signers().to_vec(),
             manifest: verified.manifest().clone(),
             temp,
             sha256,
@@ -434,6 +445,8 @@ impl Tree {
             Err(e) if e.kind() == io::ErrorKind::NotFound => {}
             Err(e) => return Err(e).with_context(|| io_context("read", &path)),
         }
+        // A publish that crashed after its ledger append logged a sequence no feed carries.
+        last = last.max(crate::audit::last_sequence(&self.root, channel)?);
         last.checked_add(1)
             .ok_or_else(|| anyhow!("channel {channel} has used every sequence number"))
     }
@@ -507,6 +520,17 @@ impl Tree {
         release.validate()?;
         let sequence = self.next_sequence(channel, &history)?;
         let feed = self.feed(channel, sequence, Some(release.clone()), signing)?;
+        let entry = LedgerEntry {
+            event: LedgerEvent::Publish,
+            channel: channel.to_string(),
+            bundle: release.name.clone(),
+            version: release.version.clone(),
+            bundle_digest: release.sha256,
+            manifest_digest: staged.manifest_digest,
+            key_ids: staged.signers.clone(),
+            time: signing.now.unix(),
+            feed_sequence: sequence,
+        };
 
         self.place_bundle(staged)?;
         if same_version.is_none() {
@@ -524,7 +548,7 @@ impl Tree {
             time: signing.now,
             release,
         });
-        self.commit(channel, &history, feed, previous, signing)
+        self.commit(channel, &history, feed, previous, signing, &entry)
     }
 
     /// Pulls the current release of `channel`: the release before it becomes current again,
@@ -542,6 +566,19 @@ impl Tree {
         };
         let sequence = self.next_sequence(channel, &history)?;
         let feed = self.feed(channel, sequence, stack.pop(), signing)?;
+        let (manifest_digest, key_ids) =
+            crate::audit::withdrawn(&self.root, channel, &current.sha256)?;
+        let entry = LedgerEntry {
+            event: LedgerEvent::Withdraw,
+            channel: channel.to_string(),
+            bundle: current.name.clone(),
+            version: current.version.clone(),
+            bundle_digest: current.sha256,
+            manifest_digest,
+            key_ids,
+            time: signing.now.unix(),
+            feed_sequence: sequence,
+        };
         history.events.push(Event::Withdraw {
             sequence,
             time: signing.now,
@@ -549,7 +586,7 @@ impl Tree {
             version: current.version.clone(),
             sha256: current.sha256,
         });
-        self.commit(channel, &history, feed, Some(current), signing)
+        self.commit(channel, &history, feed, Some(current), signing, &entry)
     }
 
     pub fn trust_set_path(&self, version: u64) -> PathBuf {
@@ -656,16 +693,42 @@ impl Tree {
         let mut feeds = Vec::new();
         for channel in self.channels()? {
             let mut history = self.history(&channel)?;
-            let release = history.stack().pop();
+            // A channel that offers nothing has no release to log a renewal for; its next
+            // publish names the new trust set.
+            let Some(release) = history.stack().pop() else {
+                continue;
+            };
             let sequence = self.next_sequence(&channel, &history)?;
-            let feed = self.feed(&channel, sequence, release.clone(), signing)?;
+            let feed = self.feed(&channel, sequence, Some(release.clone()), signing)?;
+            // The renewed feed re-announces the channel's release, so the ledger logs it as a
+            // publish (a renewal) with the digests and signers of its first publish entry.
+            let (manifest_digest, key_ids) =
+                crate::audit::withdrawn(&self.root, &channel, &release.sha256)?;
+            let entry = LedgerEntry {
+                event: LedgerEvent::Publish,
+                channel: channel.clone(),
+                bundle: release.name.clone(),
+                version: release.version.clone(),
+                bundle_digest: release.sha256,
+                manifest_digest,
+                key_ids,
+                time: signing.now.unix(),
+                feed_sequence: sequence,
+            };
             history.events.push(Event::TrustSet {
                 sequence,
                 time: signing.now,
                 version: published.version,
                 sha256: published.sha256,
             });
-            feeds.push(self.commit(&channel, &history, feed, release, signing)?);
+            feeds.push(self.commit(
+                &channel,
+                &history,
+                feed,
+                Some(release.clone()),
+                signing,
+                &entry,
+            )?);
         }
         Ok(TrustSetChange {
             trust_set: published,
@@ -715,20 +778,34 @@ impl Tree {
             expires,
             release,
             trust_set: self.current_trust_set()?.map(|t| t.reference()),
+            ledger: None,
         };
         feed.validate()?;
         Ok(feed)
     }
 
-    /// Writes the history, then the signed feed: the feed last, because devices act on it.
+    /// Appends `entry` to the ledger, then writes the history, then the signed feed with the
+    /// ledger's proofs: the feed last, because devices act on it (see `audit.rs` for why).
     fn commit(
         &self,
         channel: &str,
         history: &History,
-        feed: Feed,
+        mut feed: Feed,
         previous: Option<Release>,
         signing: &Signing<'_>,
+        entry: &LedgerEntry,
     ) -> Result<Change> {
+        let keys: Vec<&SigningKey> = std::iter::once(signing.key)
+            .chain(signing.tree_head_keys)
+            .collect();
+        let named = feed.release.as_ref().map(|r| r.sha256);
+        feed.ledger = Some(crate::audit::append(
+            &self.root,
+            entry,
+            named.as_ref(),
+            &keys,
+        )?);
+        feed.validate()?;
         write_atomic(&self.history_path(channel), &to_pretty_json(history))?;
         let text = feed.to_json();
         let signer = KeyId::of_raw_key(signing.key.verifying_key().as_bytes());

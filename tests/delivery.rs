@@ -82,6 +82,13 @@ fn publish_writes_a_verifiable_feed_and_content_addressed_bundle() {
             "feeds/stable.json".into(),
             "history/stable.json".into(),
             "index.json".into(),
+            // The audit ledger (issue 4); the first append has no consistency step to write.
+            "ledger/entries.idx".into(),
+            "ledger/entries.jsonl".into(),
+            "ledger/hashes/level-00.bin".into(),
+            "ledger/lock".into(),
+            "ledger/tree-head.json".into(),
+            "ledger/tree-heads.jsonl".into(),
         ]
     );
 }

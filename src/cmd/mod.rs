@@ -5,6 +5,7 @@ pub mod diff;
 pub mod external;
 pub mod inspect;
 pub mod keygen;
+pub mod ledger;
 pub mod pack;
 pub mod publish;
 pub mod serve;

@@ -32,6 +32,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         );
     }
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
+    let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     let now = Timestamp::now();
     let tree = Tree::lock(&args.tree)?;
     // Publishing checks the bundle the way devices will: with --trust against those keys;
@@ -55,10 +56,9 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         key: &key,
         now,
         expires_in_secs,
+        tree_head_keys: &tree_head_keys,
     };
     let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
-    // The tree is still locked here: an audit-ledger append belongs at this point, after the
-    // feed is written and before anyone else can change the tree.
     drop(tree);
     report(&change, out)
 }
@@ -72,11 +72,13 @@ fn publish_trust_set(
 ) -> Result<()> {
     let bytes = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
+    let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     let tree = Tree::lock(&args.tree)?;
     let signing = Signing {
         key: &key,
         now: Timestamp::now(),
         expires_in_secs,
+        tree_head_keys: &tree_head_keys,
     };
     let change = tree.publish_trust_set(&bytes, &signing).with_context(|| {
         format!(
@@ -84,9 +86,8 @@ fn publish_trust_set(
             path.display()
         )
     })?;
-    // The tree is still locked here: the audit-ledger append of the trust-set event
-    // (change.trust_set: version, sha256, path; change.previous_version) belongs at this
-    // point, after the trust set and the renewed feeds are written.
+    // Each renewed feed was logged in the ledger as a renewal of its channel's release; the
+    // trust set itself is in the tree under trust/ (its own ledger event is still to come).
     drop(tree);
     let t = &change.trust_set;
     let was = change
@@ -132,6 +133,19 @@ fn publish_trust_set(
     )
 }
 
+/// Reads the `--tree-head-key` files: keys that sign the ledger's tree head besides the feed
+/// key (all with the same passphrase source). Giving the feed key again is refused by the
+/// ledger append, since a tree head counts each key once.
+pub fn read_tree_head_keys(
+    paths: &[std::path::PathBuf],
+    passphrase: &crate::cli::PassphraseArgs,
+) -> Result<Vec<ed25519_dalek::SigningKey>> {
+    paths
+        .iter()
+        .map(|path| keyfile::read_secret_key(path, &passphrase_source(passphrase)))
+        .collect()
+}
+
 /// Prints what a publish or withdraw changed.
 pub fn report(change: &Change, out: &Output) -> Result<()> {
     let feed = &change.feed;
@@ -156,7 +170,15 @@ pub fn report(change: &Change, out: &Output) -> Result<()> {
         Some(r) => format!("{} {}", r.name, r.version),
         None => "nothing".into(),
     };
-    let human = format!(
+    let ledger = feed.ledger.as_ref().map(|l| {
+        let head = l.tree_head.head();
+        json!({
+            "tree_size": head.tree_size,
+            "root_hash": head.root_hash,
+            "leaf_index": l.inclusion.as_ref().map(|p| p.leaf_index),
+        })
+    });
+    let mut human = format!(
         "channel {} now offers {now}\nwas: {was}\nfeed {} sequence {}, expires {}, signed by {}\n",
         change.channel,
         change.feed_path.display(),
@@ -164,6 +186,15 @@ pub fn report(change: &Change, out: &Output) -> Result<()> {
         feed.expires,
         change.signer
     );
+    if let Some(l) = &feed.ledger {
+        let head = l.tree_head.head();
+        human.push_str(&format!(
+            "ledger: entry {} logged, tree size {}, root {}\n",
+            head.tree_size - 1,
+            head.tree_size,
+            head.root_hash
+        ));
+    }
     out.result(
         &human,
         json!({
@@ -176,6 +207,7 @@ pub fn report(change: &Change, out: &Output) -> Result<()> {
             "signer": change.signer.to_string(),
             "release": feed.release.as_ref().map(release),
             "previous": change.previous.as_ref().map(release),
+            "ledger": ledger,
         }),
     )
 }

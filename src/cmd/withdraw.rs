@@ -6,7 +6,7 @@ use anyhow::Result;
 
 use crate::cli::WithdrawArgs;
 use crate::cmd::passphrase_source;
-use crate::cmd::publish::report;
+use crate::cmd::publish::{read_tree_head_keys, report};
 use crate::keyfile;
 use crate::output::Output;
 use crate::tree::{FEEDS_DIR, Signing, Tree, parse_duration};
@@ -15,6 +15,7 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
     ampoule_verify::feed::check_channel(&args.channel)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
+    let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     if !args.tree.join(FEEDS_DIR).is_dir() {
         anyhow::bail!(
             "{} is not a release tree (it has no {FEEDS_DIR}/ directory); publish to it first",
@@ -26,9 +27,9 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
         key: &key,
         now: Timestamp::now(),
         expires_in_secs,
+        tree_head_keys: &tree_head_keys,
     };
     let change = tree.withdraw(&args.channel, &signing)?;
-    // As in publish: a ledger append goes here, with the tree still locked.
     drop(tree);
     report(&change, out)
 }

@@ -41,6 +41,7 @@ use crate::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, context, limit};
 use crate::keys::{KeyId, TrustedKeys};
+use crate::ledger::{FeedLedger, LedgerCheck, LedgerVerifier};
 use crate::manifest::check_name;
 use crate::signature::{SignatureEntry, SignatureReport, check_signatures};
 use crate::time::Timestamp;
@@ -94,6 +95,10 @@ pub struct Feed {
     /// revocations; absent in trees that publish none.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub trust_set: Option<TrustSetRef>,
+    /// The audit ledger's proof for this feed: signed tree head, the release's publish entry
+    /// and its inclusion proof, and a consistency proof (see [`crate::ledger`]).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ledger: Option<FeedLedger>,
 }
 
 /// Where a feed's trust set is and what it must be: a device on an older trust set fetches
@@ -341,6 +346,7 @@ pub struct FeedVerifier {
     last: Option<(u64, Option<Digest>)>,
     /// The version and expiry of the trust set the keys came from, if they did.
     trust: Option<(u64, Timestamp)>,
+    ledger: Option<LedgerVerifier>,
 }
 
 impl FeedVerifier {
@@ -362,6 +368,7 @@ impl FeedVerifier {
             skew_secs: DEFAULT_CLOCK_SKEW_SECS,
             last: None,
             trust: None,
+            ledger: None,
         })
     }
 
@@ -410,6 +417,13 @@ impl FeedVerifier {
         self
     }
 
+    /// Requires every feed to carry a ledger proof that `ledger` accepts (see
+    /// [`LedgerVerifier::check`]); the verified tree head is then in [`VerifiedFeed::ledger`].
+    pub fn require_ledger(mut self, ledger: LedgerVerifier) -> Self {
+        self.ledger = Some(ledger);
+        self
+    }
+
     /// The channel this verifier accepts.
     pub fn channel(&self) -> &str {
         &self.channel
@@ -417,7 +431,31 @@ impl FeedVerifier {
 
     /// Checks a feed file: size, envelope, signatures by trusted keys over the exact feed
     /// text, then the feed itself, its channel, its times against `now`, and its sequence.
+    ///
+    /// With [`require_ledger`](FeedVerifier::require_ledger), a device that missed ledger
+    /// appends needs the tree's consistency steps: use
+    /// [`verify_with_steps`](FeedVerifier::verify_with_steps) (the updater does).
     pub fn verify(&self, bytes: &[u8], now: Timestamp) -> Result<VerifiedFeed> {
+        self.verify_with_steps(bytes, now, &mut |size| {
+            Err(Error::new(
+                ErrorKind::Proof,
+                format!(
+                    "the feed's ledger proof does not start at tree size {size}, which this \
+                     device saw last; fetch {} from the release tree to catch up",
+                    crate::ledger::step_path(size)
+                ),
+            ))
+        })
+    }
+
+    /// As [`verify`](FeedVerifier::verify), fetching `ledger/consistency/<size>.json` of the
+    /// feed's release tree through `step` when the ledger check needs it.
+    pub fn verify_with_steps(
+        &self,
+        bytes: &[u8],
+        now: Timestamp,
+        step: &mut dyn FnMut(u64) -> Result<Vec<u8>>,
+    ) -> Result<VerifiedFeed> {
         if let Some((version, expires)) = self.trust
             && now > expires
         {
@@ -481,11 +519,16 @@ impl FeedVerifier {
                 is_new = false;
             }
         }
+        let ledger = match &self.ledger {
+            Some(verifier) => Some(verifier.check(&feed, step)?),
+            None => None,
+        };
         Ok(VerifiedFeed {
             feed,
             digest,
             report,
             is_new,
+            ledger,
         })
     }
 }
@@ -497,6 +540,7 @@ pub struct VerifiedFeed {
     digest: Digest,
     report: SignatureReport,
     is_new: bool,
+    ledger: Option<LedgerCheck>,
 }
 
 impl fmt::Debug for VerifiedFeed {
@@ -511,6 +555,12 @@ impl fmt::Debug for VerifiedFeed {
 }
 
 impl VerifiedFeed {
+    /// What the ledger check established, when the verifier required one: the device
+    /// remembers its tree head ([`crate::Store::remember_tree_head`]) once it acted on the feed.
+    pub fn ledger(&self) -> Option<&LedgerCheck> {
+        self.ledger.as_ref()
+    }
+
     /// The verified feed.
     pub fn feed(&self) -> &Feed {
         &self.feed

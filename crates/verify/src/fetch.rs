@@ -32,8 +32,11 @@ use semver::Version;
 
 use crate::digest::{Digest, Hasher};
 use crate::error::{Error, ErrorKind, Result};
-use crate::feed::{Feed, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, in_rollout};
+use crate::feed::{
+    Feed, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, in_rollout, resolve,
+};
 use crate::format::{limit, trust_set};
+use crate::ledger;
 use crate::store::Store;
 use crate::time::Timestamp;
 use crate::trust::TrustSet;
@@ -402,6 +405,48 @@ fn fetch_small(url: &str, transfer: &Transfer, cap: u64, what: &str) -> Result<V
     })
 }
 
+/// Fetches `url` into a new file `dest` (replacing it), stopping with an error past `max`
+/// bytes; returns the length. For tools that copy a release tree's files, such as an
+/// auditor's ledger check over HTTP; the bytes are unverified.
+pub fn fetch_to_file(url: &str, dest: &Path, max: u64, transfer: &Transfer) -> Result<u64> {
+    let session = Session::new(transfer)?;
+    let mut file = File::create(dest)
+        .map_err(|e| Error::io(format!("cannot create {}", dest.display()), e))?;
+    session.runtime.block_on(async {
+        let deadline = Instant::now() + transfer.total_timeout;
+        let response = session.get(url, 0, deadline).await?;
+        if let Some(len) = content_length(&response, url)?
+            && len > max
+        {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!("server declares {len} bytes for {url}, over the limit of {max} bytes"),
+            ));
+        }
+        let mut written = 0u64;
+        read_body(transfer, url, response.into_body(), deadline, |data| {
+            if written + data.len() as u64 > max {
+                return Err(Error::new(
+                    ErrorKind::TooLarge,
+                    format!("{url} is over the limit of {max} bytes; stopped reading"),
+                ));
+            }
+            file.write_all(data)
+                .map_err(|e| Error::io(format!("cannot write {}", dest.display()), e))?;
+            written += data.len() as u64;
+            Ok(())
+        })
+        .await
+        .map_err(|e| match e {
+            BodyError::Broken(why) => network(format!(
+                "transfer from {url} broke off after {written} bytes: {why}"
+            )),
+            BodyError::Refused(e) => e,
+        })?;
+        Ok(written)
+    })
+}
+
 /// What the partial file holds before a request: its length and the hash of those bytes.
 fn resume_state(file: &mut File, path: &Path, size: u64) -> Result<(u64, Hasher)> {
     let io = |doing: &str, e| Error::io(format!("cannot {doing} {}", path.display()), e);
@@ -728,6 +773,25 @@ impl Updater {
         self.check_with(now, &mut |_| Ok(()))
     }
 
+    /// Verifies a feed; a device that missed ledger appends catches up through the tree's
+    /// consistency steps, fetched next to the feed.
+    fn verify_feed(
+        &self,
+        verifier: &FeedVerifier,
+        bytes: &[u8],
+        now: Timestamp,
+    ) -> Result<VerifiedFeed> {
+        verifier.verify_with_steps(bytes, now, &mut |size| {
+            let url = resolve(&self.feed_url, &ledger::step_reference(size))?;
+            fetch_small(
+                &url,
+                &self.transfer,
+                ledger::MAX_STEP_BYTES,
+                "consistency step",
+            )
+        })
+    }
+
     /// Runs one check against the clock time `now`, following a trust-set rotation.
     ///
     /// The feed is verified under the current trust set first. If it names a newer trust set
@@ -747,24 +811,20 @@ impl Updater {
         on_trust_set: &mut dyn FnMut(&TrustSet) -> Result<()>,
     ) -> Result<Update> {
         let bytes = fetch_feed(&self.feed_url, &self.transfer)?;
-        let mut feed = self.feeds.verify(&bytes, now)?;
+        let mut feed = self.verify_feed(&self.feeds, &bytes, now)?;
         let mut rotated = None;
         if let (Some(current), Some(named)) = (&self.trust, feed.trust_set())
             && named.version > current.version()
         {
             let next = self.rotate(current, named, now)?;
             on_trust_set(&next)?;
-            feed = self
-                .feeds
-                .clone()
-                .with_trust_set(&next)?
-                .verify(&bytes, now)
-                .map_err(|e| {
-                    e.context(format_args!(
-                        "feed refused under the new trust set version {}",
-                        next.version()
-                    ))
-                })?;
+            let under_next = self.feeds.clone().with_trust_set(&next)?;
+            feed = self.verify_feed(&under_next, &bytes, now).map_err(|e| {
+                e.context(format_args!(
+                    "feed refused under the new trust set version {}",
+                    next.version()
+                ))
+            })?;
             rotated = Some(self.bundles.clone().with_trust_set(&next)?);
         }
         let bundles = rotated.as_ref().unwrap_or(&self.bundles);
@@ -832,6 +892,20 @@ impl Updater {
                     release.name, release.version, m.name, m.version
                 ),
             ));
+        }
+        if let Some(entry) = feed.ledger().and_then(|l| l.entry.as_ref()) {
+            let manifest_sha256 = Digest::of(bundle.manifest_bytes());
+            if manifest_sha256 != entry.manifest_digest {
+                let _ = std::fs::remove_file(&path);
+                return Err(Error::new(
+                    ErrorKind::Proof,
+                    format!(
+                        "bundle {} {} ({}) was signed but never published: its manifest has \
+                         sha256 {manifest_sha256}, but the ledger's publish entry logs {}",
+                        m.name, m.version, release.sha256, entry.manifest_digest
+                    ),
+                ));
+            }
         }
         Ok(Update::Ready {
             feed,

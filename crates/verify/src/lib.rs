@@ -16,6 +16,7 @@ pub mod fetch;
 pub mod format;
 pub mod keys;
 pub mod labels;
+pub mod ledger;
 pub mod manifest;
 pub mod merkle;
 pub mod model;

@@ -571,7 +571,8 @@ impl ConsistencyProof {
 }
 
 /// What a tree head states: the ledger had `tree_size` entries with root `root_hash` at `time`.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct TreeHead {
     /// How many entries the ledger held.
     pub tree_size: u64,

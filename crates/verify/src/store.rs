@@ -92,6 +92,7 @@ use crate::format::{entry, limit, trust_set};
 use crate::keys::KeyId;
 use crate::labels::parse_stored_labels;
 use crate::manifest::{Manifest, Role};
+use crate::merkle::TreeHead;
 use crate::time::Timestamp;
 use crate::trust::TrustSet;
 use crate::unpack::{Staging, sync_dir};
@@ -161,6 +162,10 @@ pub struct StoreState {
     pub previous: Option<ReleaseRef>,
     /// What was accepted per channel.
     pub channels: BTreeMap<String, ChannelState>,
+    /// The largest audit-ledger tree head this device verified ([`Store::remember_tree_head`]);
+    /// absent until the first one, and in stores written before the ledger existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tree_head: Option<TreeHead>,
 }
 
 impl StoreState {
@@ -172,6 +177,7 @@ impl StoreState {
             current: None,
             previous: None,
             channels: BTreeMap::new(),
+            tree_head: None,
         }
     }
 
@@ -581,6 +587,37 @@ impl Store {
             },
             replaced: state.current.map(|c| c.version),
         })
+    }
+
+    /// Remembers `head` as the largest ledger tree head this device verified, for
+    /// [`crate::ledger::LedgerVerifier::remembered`] next time. Call it with the tree head of
+    /// a feed the device acted on ([`crate::VerifiedFeed::ledger`]), whether or not it
+    /// installed anything. A head smaller than the remembered one, or of the same size with
+    /// another root, is refused: it cannot have passed the ledger check.
+    pub fn remember_tree_head(&self, head: &TreeHead) -> Result<()> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        if let Some(seen) = &state.tree_head {
+            if head.tree_size < seen.tree_size
+                || (head.tree_size == seen.tree_size && head.root_hash != seen.root_hash)
+            {
+                return Err(Error::new(
+                    ErrorKind::Policy,
+                    format!(
+                        "tree head of size {} (root {}) does not extend the tree head of size {} \
+                         (root {}) this store remembers; refusing to forget the larger one",
+                        head.tree_size, head.root_hash, seen.tree_size, seen.root_hash
+                    ),
+                ));
+            }
+            if seen == head {
+                return Ok(());
+            }
+        }
+        let mut next = state;
+        next.tree_head = Some(*head);
+        self.commit(&next, &mut |_| Ok(()))?;
+        sync_dir(&self.dir)
     }
 
     /// Makes the previous release current again, for when the app's own health check fails

@@ -45,6 +45,7 @@ fn feed(sequence: u64) -> Feed {
         expires: ts("2026-12-08T08:00:00Z"),
         release: Some(release()),
         trust_set: None,
+        ledger: None,
     }
 }
 

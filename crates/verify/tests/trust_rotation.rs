@@ -288,6 +288,7 @@ fn feed_text(trust_set: Option<TrustSetRef>) -> String {
         expires: at(NOW + 7 * 86_400),
         release: None,
         trust_set,
+        ledger: None,
     }
     .to_json()
 }

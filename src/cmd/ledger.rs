@@ -1,0 +1,479 @@
+//! `ampoule ledger`: the auditor's view of a release tree's ledger. `list` shows what was
+//! shipped, `check` recomputes and cross-checks everything (exit 1 on problems), `prove` prints
+//! a bundle's inclusion proof. With `--url` the files are fetched over HTTP(S) into a
+//! temporary copy of the tree first, so every check runs on exactly the same code.
+
+use std::collections::BTreeSet;
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use ampoule_verify::feed::resolve;
+use ampoule_verify::fetch::{Transfer, fetch_to_file};
+use ampoule_verify::ledger::{Event, LEDGER_DIR, LedgerVerifier, MAX_ENTRY_BYTES, step_path};
+use ampoule_verify::merkle::{self, MAX_SIGNED_TREE_HEAD_BYTES, SignedTreeHead};
+use ampoule_verify::{Digest, DocumentKind, Timestamp};
+use anyhow::{Context, Result, bail};
+use serde_json::{Value, json};
+use tempfile::TempDir;
+
+use crate::audit::{self, AuditReport};
+use crate::cli::{
+    LedgerArgs, LedgerCheckArgs, LedgerCommand, LedgerListArgs, LedgerProveArgs, LedgerSourceArgs,
+};
+use crate::cmd::{load_trust, load_trust_set};
+use crate::ledger::{ENTRIES, Entry, HASHES, Ledger, OFFSETS, TREE_HEAD, TREE_HEADS};
+use crate::output::Output;
+use crate::{Refused, exit};
+
+pub fn run(args: LedgerArgs, out: &Output) -> Result<()> {
+    match args.command {
+        LedgerCommand::List(args) => list(args, out),
+        LedgerCommand::Check(args) => check(args, out),
+        LedgerCommand::Prove(args) => prove(args, out),
+    }
+}
+
+/// A release tree to read: the given directory, or a temporary copy of a served one.
+struct Source {
+    root: PathBuf,
+    shown: String,
+    _copy: Option<TempDir>,
+}
+
+impl Source {
+    fn open(args: &LedgerSourceArgs, whole_tree: bool) -> Result<Source> {
+        match (&args.tree, &args.url) {
+            (Some(tree), _) => {
+                if !tree.join(LEDGER_DIR).join(ENTRIES).is_file() {
+                    bail!(
+                        "{} has no ledger ({LEDGER_DIR}/{ENTRIES}); publish to the tree first",
+                        tree.display()
+                    );
+                }
+                Ok(Source {
+                    root: tree.clone(),
+                    shown: tree.display().to_string(),
+                    _copy: None,
+                })
+            }
+            (None, Some(url)) => {
+                let copy = tempfile::tempdir().context("cannot create a temporary directory")?;
+                mirror(url, copy.path(), whole_tree)?;
+                Ok(Source {
+                    root: copy.path().to_path_buf(),
+                    shown: url.clone(),
+                    _copy: Some(copy),
+                })
+            }
+            (None, None) => bail!("give --tree DIR or --url URL"),
+        }
+    }
+
+    fn ledger(&self) -> Result<Ledger> {
+        Ledger::open(&self.root.join(LEDGER_DIR))
+    }
+}
+
+/// The largest record file (history, index) fetched, as the release side bounds them.
+const RECORD_BYTES: u64 = 16 * 1024 * 1024;
+/// Slack for bytes an interrupted append left past the tree head in a served file.
+const SLACK_BYTES: u64 = 64 * 1024 * 1024;
+
+/// Copies what the checks read from the tree served at `base` into `root`: the ledger's files
+/// and, for `check`, the consistency steps, histories, index and published bundles. Files the
+/// server does not have are left out, and the checks report them missing.
+fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
+    let base = if base.ends_with('/') {
+        base.to_string()
+    } else {
+        format!("{base}/")
+    };
+    let transfer = Transfer::default();
+    let fetch = |rel: &str, max: u64| -> Result<()> {
+        let url = resolve(&base, rel)?;
+        let dest = root.join(rel);
+        if let Some(dir) = dest.parent() {
+            fs::create_dir_all(dir)
+                .with_context(|| format!("cannot create directory {}", dir.display()))?;
+        }
+        fetch_to_file(&url, &dest, max, &transfer)
+            .map(|_| ())
+            .with_context(|| format!("cannot fetch {url}"))
+    };
+    let ledger = |name: &str| format!("{LEDGER_DIR}/{name}");
+    fetch(&ledger(TREE_HEAD), MAX_SIGNED_TREE_HEAD_BYTES as u64 + 2)?;
+    let head = fs::read(root.join(ledger(TREE_HEAD))).context("cannot read the fetched head")?;
+    let head = SignedTreeHead::from_json(head.strip_suffix(b"\n").unwrap_or(&head))
+        .with_context(|| format!("{base}{} is not a signed tree head", ledger(TREE_HEAD)))?;
+    let size = head.head().tree_size;
+    fetch(
+        &ledger(ENTRIES),
+        size.saturating_mul(MAX_ENTRY_BYTES as u64 + 1) + SLACK_BYTES,
+    )?;
+    fetch(&ledger(OFFSETS), size.saturating_mul(8) + SLACK_BYTES)?;
+    fetch(
+        &ledger(TREE_HEADS),
+        (size + 1).saturating_mul(MAX_SIGNED_TREE_HEAD_BYTES as u64 + 1),
+    )?;
+    for level in 0..(64 - size.leading_zeros()) {
+        fetch(
+            &format!("{LEDGER_DIR}/{HASHES}/level-{level:02}.bin"),
+            (size >> level) * 32 + SLACK_BYTES,
+        )?;
+    }
+    if !whole_tree {
+        return Ok(());
+    }
+    // Optional files: what is missing is reported by the checks, not here.
+    let heads = fs::read(root.join(ledger(TREE_HEADS))).context("cannot read the fetched log")?;
+    let mut sizes: Vec<u64> = heads
+        .split(|&b| b == b'\n')
+        .filter_map(|line| SignedTreeHead::from_json(line).ok())
+        .map(|h| h.head().tree_size)
+        .collect();
+    sizes.pop();
+    for old in sizes {
+        let _ = fetch(&step_path(old), ampoule_verify::ledger::MAX_STEP_BYTES);
+    }
+    let _ = fetch(crate::tree::INDEX_FILE, RECORD_BYTES);
+    let index: crate::tree::Index = fs::read(root.join(crate::tree::INDEX_FILE))
+        .ok()
+        .and_then(|b| serde_json::from_slice(&b).ok())
+        .unwrap_or_default();
+    let ledger = Ledger::open(&root.join(LEDGER_DIR))?;
+    let mut channels = BTreeSet::new();
+    let mut bundles = BTreeSet::new();
+    for item in ledger.entries()? {
+        let Ok(entry) = Entry::from_bytes(&item?.1) else {
+            continue;
+        };
+        channels.insert(entry.channel.clone());
+        if entry.event == Event::Publish {
+            bundles.insert(entry.bundle_digest);
+        }
+    }
+    for channel in channels {
+        let _ = fetch(
+            &format!("{}/{channel}.json", crate::tree::HISTORY_DIR),
+            RECORD_BYTES,
+        );
+    }
+    for digest in bundles {
+        // The index says how big each bundle is; one it does not list is not fetched.
+        if let Some(size) = index
+            .releases
+            .iter()
+            .find(|r| r.sha256 == digest)
+            .map(|r| r.size)
+        {
+            let _ = fetch(
+                &format!(
+                    "{}/{digest}.{}",
+                    crate::tree::BUNDLES_DIR,
+                    ampoule_verify::format::BUNDLE_EXTENSION
+                ),
+                size,
+            );
+        }
+    }
+    Ok(())
+}
+
+fn time_text(secs: u64) -> String {
+    Timestamp::from_unix(secs).map_or_else(|| secs.to_string(), |t| t.to_string())
+}
+
+fn entry_json(index: u64, entry: &Entry) -> Value {
+    json!({
+        "index": index,
+        "time": time_text(entry.time),
+        "event": entry.event.to_string(),
+        "channel": entry.channel,
+        "bundle": entry.bundle,
+        "version": entry.version.to_string(),
+        "bundle_sha256": entry.bundle_digest,
+        "manifest_sha256": entry.manifest_digest,
+        "key_ids": entry.key_ids.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
+        "feed_sequence": entry.feed_sequence,
+    })
+}
+
+/// One CSV field (RFC 4180): quoted when it holds a comma, quote or line break.
+fn csv_field(text: &str) -> String {
+    if text.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", text.replace('"', "\"\""))
+    } else {
+        text.to_string()
+    }
+}
+
+fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
+    if args.csv && out.json() {
+        bail!("--csv and --json print different formats; choose one");
+    }
+    if let Some(channel) = &args.channel {
+        ampoule_verify::feed::check_channel(channel)?;
+    }
+    let source = Source::open(&args.source, false)?;
+    let ledger = source.ledger()?;
+    let mut rows = Vec::new();
+    for item in ledger.entries()? {
+        let (index, bytes) = item?;
+        let entry =
+            Entry::from_bytes(&bytes).with_context(|| format!("entry {index} of the ledger"))?;
+        if args.channel.as_ref().is_none_or(|c| *c == entry.channel) {
+            rows.push((index, entry));
+        }
+    }
+    if args.csv {
+        let mut text = String::from(
+            "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,feed_sequence\n",
+        );
+        for (index, e) in &rows {
+            let keys: Vec<String> = e.key_ids.iter().map(|k| k.to_string()).collect();
+            let fields = [
+                index.to_string(),
+                time_text(e.time),
+                e.event.to_string(),
+                e.channel.clone(),
+                e.bundle.clone(),
+                e.version.to_string(),
+                e.bundle_digest.to_string(),
+                e.manifest_digest.to_string(),
+                keys.join(" "),
+                e.feed_sequence.to_string(),
+            ];
+            let fields: Vec<String> = fields.iter().map(|f| csv_field(f)).collect();
+            text.push_str(&fields.join(","));
+            text.push('\n');
+        }
+        return out.result(&text, Value::Null);
+    }
+    let head = ledger.tree_head().map(|h| h.head());
+    let mut table = vec![[
+        "#".to_string(),
+        "time".into(),
+        "event".into(),
+        "channel".into(),
+        "bundle".into(),
+        "version".into(),
+        "sha256".into(),
+        "signed by".into(),
+        "sequence".into(),
+    ]];
+    for (index, e) in &rows {
+        let keys: Vec<String> = e
+            .key_ids
+            .iter()
+            .map(|k| k.to_string()[..8].to_string())
+            .collect();
+        table.push([
+            index.to_string(),
+            time_text(e.time),
+            e.event.to_string(),
+            e.channel.clone(),
+            e.bundle.clone(),
+            e.version.to_string(),
+            e.bundle_digest.to_string()[..16].to_string(),
+            keys.join(","),
+            e.feed_sequence.to_string(),
+        ]);
+    }
+    let widths: Vec<usize> = (0..9)
+        .map(|i| {
+            table
+                .iter()
+                .map(|r| r[i].chars().count())
+                .max()
+                .unwrap_or(0)
+        })
+        .collect();
+    let mut human = String::new();
+    for row in &table {
+        let cells: Vec<String> = row
+            .iter()
+            .zip(&widths)
+            .map(|(c, w)| format!("{c:<w$}"))
+            .collect();
+        human.push_str(cells.join("  ").trim_end());
+        human.push('\n');
+    }
+    if let Some(h) = &head {
+        human.push_str(&format!(
+            "{} of {} entries shown; tree head size {}, root {}, {} (unchecked: run ledger check)\n",
+            rows.len(),
+            h.tree_size,
+            h.tree_size,
+            h.root_hash,
+            time_text(h.time)
+        ));
+    }
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "source": source.shown,
+            "tree_size": head.map(|h| h.tree_size),
+            "root_hash": head.map(|h| h.root_hash),
+            "entries": rows.iter().map(|(i, e)| entry_json(*i, e)).collect::<Vec<_>>(),
+        }),
+    )
+}
+
+fn check(args: LedgerCheckArgs, out: &Output) -> Result<()> {
+    let (keys, heads) = match &args.trust_set {
+        Some(path) => {
+            let set = load_trust_set(path)?;
+            (
+                set.keys_for(DocumentKind::TreeHead).0,
+                LedgerVerifier::from_trust_set(&set),
+            )
+        }
+        None => {
+            let keys = load_trust(&args.trust)?;
+            (keys.clone(), LedgerVerifier::new(keys, 1)?)
+        }
+    };
+    let since = match &args.since {
+        Some(path) => {
+            let bytes = crate::cmd::external::read_bounded(
+                path,
+                MAX_SIGNED_TREE_HEAD_BYTES as u64 + 2,
+                "a saved tree head",
+            )?;
+            let trimmed = bytes.strip_suffix(b"\n").unwrap_or(&bytes);
+            Some(
+                SignedTreeHead::from_json(trimmed)
+                    .with_context(|| format!("{} is not a signed tree head", path.display()))?,
+            )
+        }
+        None => None,
+    };
+    let source = Source::open(&args.source, true)?;
+    let report = audit::check(&source.root, &keys, &heads, since.as_ref())?;
+    print_report(&source, &report, out)?;
+    if !report.problems.is_empty() {
+        // The report is the output; a second error document would confuse a JSON reader.
+        eprintln!(
+            "ampoule: error: ledger check found {} problem(s)",
+            report.problems.len()
+        );
+        std::process::exit(i32::from(exit::REFUSED));
+    }
+    Ok(())
+}
+
+fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<()> {
+    let mut human = format!(
+        "ledger of {}: {} entries, root {}\nchecked {} tree heads (signatures, roots, consistency \
+         steps) and {} bundles\n",
+        source.shown,
+        report.tree_size,
+        report
+            .root_hash
+            .map_or_else(|| "none".to_string(), |d| d.to_string()),
+        report.heads_checked,
+        report.bundles_checked,
+    );
+    if let Some(size) = report.since {
+        human.push_str(&format!(
+            "consistent with the saved tree head of size {size}: the history only grew\n"
+        ));
+    }
+    for w in &report.warnings {
+        human.push_str(&format!("warning: {w}\n"));
+    }
+    for p in &report.problems {
+        human.push_str(&format!("problem: {p}\n"));
+    }
+    if report.problems.is_empty() {
+        human.push_str("ok: no problems found\n");
+    }
+    out.result(
+        &human,
+        json!({
+            "ok": report.problems.is_empty(),
+            "source": source.shown,
+            "tree_size": report.tree_size,
+            "root_hash": report.root_hash,
+            "tree_heads_checked": report.heads_checked,
+            "bundles_checked": report.bundles_checked,
+            "consistent_since": report.since,
+            "problems": report.problems,
+            "warnings": report.warnings,
+        }),
+    )
+}
+
+fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {
+    let is_digest = args.bundle.len() == 64
+        && args
+            .bundle
+            .bytes()
+            .all(|b| matches!(b, b'0'..=b'9' | b'a'..=b'f'));
+    let sha256: Digest = if is_digest && !Path::new(&args.bundle).exists() {
+        args.bundle
+            .parse()
+            .map_err(|_| anyhow::anyhow!("'{}' is not a sha256", args.bundle))?
+    } else {
+        let file = fs::File::open(&args.bundle)
+            .with_context(|| format!("cannot open bundle {}", args.bundle))?;
+        ampoule_verify::digest::hash_reader(file, u64::MAX)
+            .with_context(|| format!("cannot read bundle {}", args.bundle))?
+            .0
+    };
+    let source = Source::open(
+        &LedgerSourceArgs {
+            tree: Some(args.tree.clone()),
+            url: None,
+        },
+        false,
+    )?;
+    let ledger = source.ledger()?;
+    let Some((index, bytes)) =
+        ledger.find_last(|e| e.event == Event::Publish && e.bundle_digest == sha256)?
+    else {
+        return Err(Refused(format!(
+            "bundle {sha256} was never published: no publish entry in the ledger of {} names it",
+            source.shown
+        ))
+        .into());
+    };
+    let entry = Entry::from_bytes(&bytes)?;
+    let head = ledger
+        .tree_head()
+        .context("the ledger has entries but no tree head")?
+        .head();
+    let proof = ledger.inclusion_proof(index, head.tree_size)?;
+    let leaf = merkle::leaf_hash(&bytes);
+    proof
+        .verify(&leaf, &head)
+        .context("the ledger's own inclusion proof does not verify: run ledger check")?;
+    let text = String::from_utf8(bytes).context("a ledger entry is not UTF-8")?;
+    let mut human = format!(
+        "{} {} (sha256 {sha256}) was published on channel {} at {}: entry {index}\n\
+         tree head: size {}, root {}, {}\nleaf hash: {leaf}\ninclusion proof ({} hashes, leaf level first):\n",
+        entry.bundle,
+        entry.version,
+        entry.channel,
+        time_text(entry.time),
+        head.tree_size,
+        head.root_hash,
+        time_text(head.time),
+        proof.hashes.len()
+    );
+    for h in &proof.hashes {
+        human.push_str(&format!("  {h}\n"));
+    }
+    human.push_str("verified: the proof leads from the entry to the tree head's root\n");
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "entry": text,
+            "leaf_hash": leaf,
+            "tree_head": ledger.tree_head(),
+            "inclusion": proof,
+        }),
+    )
+}

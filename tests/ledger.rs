@@ -1,0 +1,1025 @@
+//! Issue 4, the audit ledger end to end: publish and withdraw append entries, the feed carries
+//! the ledger's proofs, `ampoule ledger list/check/prove` read it (from a directory and over
+//! HTTP), check finds each kind of tampering, and a device refuses what was signed but never
+//! published, a smaller or inconsistent tree head, and still follows after missed publishes.
+//! The Merkle hashing itself is checked against the RFC 6962/9162 vectors in
+//! crates/verify/tests/merkle.rs; here every proof is verified by that same reader code, and the
+//! tampering is done by hand on the files.
+
+use std::io::{BufRead, BufReader};
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+
+use ampoule::ledger::Ledger;
+use ampoule_verify::feed::{Feed, SignedFeed};
+use ampoule_verify::fetch::{Update, Updater};
+use ampoule_verify::ledger::{Entry, Event, LedgerVerifier, step_path};
+use ampoule_verify::merkle::{SignedTreeHead, TreeHead};
+use ampoule_verify::{Digest, ErrorKind, FeedVerifier, Timestamp, Verifier};
+use ed25519_dalek::{Signer, SigningKey};
+use semver::Version;
+
+mod tree_common;
+use tree_common::*;
+
+fn json(d: &Path, args: &[&str]) -> serde_json::Value {
+    let mut all = vec!["--json"];
+    all.extend_from_slice(args);
+    serde_json::from_str(&ok(d, &all)).expect("--json prints JSON")
+}
+
+fn check_run(d: &Path, extra: &[&str]) -> (i32, serde_json::Value) {
+    let mut args = vec![
+        "--json", "ledger", "check", "--tree", "tree", "--trust", "k.pub",
+    ];
+    args.extend_from_slice(extra);
+    let out = run(d, &args);
+    let doc = serde_json::from_slice(&out.stdout).expect("check --json prints its report");
+    (out.status.code().unwrap_or(-1), doc)
+}
+
+fn problems(doc: &serde_json::Value) -> Vec<String> {
+    doc["problems"]
+        .as_array()
+        .expect("problems")
+        .iter()
+        .map(|p| p.as_str().expect("text").to_string())
+        .collect()
+}
+
+/// A tree with 1.0.0 on stable, 1.1.0 on beta, then 1.1.0 on stable, then stable withdrawn.
+fn four_changes(d: &Path) -> (String, String) {
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    publish(d, &v1, "stable", "100");
+    publish(d, &v2, "beta", "100");
+    publish(d, &v2, "stable", "100");
+    ok(
+        d,
+        &[
+            "withdraw",
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+        ],
+    );
+    (v1, v2)
+}
+
+fn sha(d: &Path, file: &str) -> Digest {
+    Digest::of(&std::fs::read(d.join(file)).expect("file"))
+}
+
+fn feed_bytes(d: &Path, channel: &str) -> Vec<u8> {
+    std::fs::read(d.join(format!("tree/feeds/{channel}.json"))).expect("feed")
+}
+
+fn head_of(d: &Path) -> TreeHead {
+    let bytes = std::fs::read(d.join("tree/ledger/tree-head.json")).expect("head");
+    SignedTreeHead::from_json(bytes.strip_suffix(b"\n").unwrap_or(&bytes))
+        .expect("head")
+        .head()
+}
+
+fn device(d: &Path, channel: &str, remembered: Option<TreeHead>) -> FeedVerifier {
+    FeedVerifier::new(keys(d), channel)
+        .expect("feed verifier")
+        .require_ledger(
+            LedgerVerifier::new(keys(d), 1)
+                .expect("ledger verifier")
+                .remembered(remembered),
+        )
+}
+
+/// Reads consistency steps straight from the tree, as the updater does over HTTP.
+fn steps_from(d: &Path) -> impl FnMut(u64) -> ampoule_verify::Result<Vec<u8>> + '_ {
+    move |size| Ok(std::fs::read(d.join("tree").join(step_path(size))).expect("step file"))
+}
+
+#[test]
+fn publish_and_withdraw_append_entries_issue_4() {
+    let dir = setup();
+    let d = dir.path();
+    let (v1, v2) = four_changes(d);
+    let listed = json(d, &["ledger", "list", "--tree", "tree"]);
+    let entries = listed["entries"].as_array().expect("entries");
+    let summary: Vec<(String, String, String, u64)> = entries
+        .iter()
+        .map(|e| {
+            (
+                e["event"].as_str().expect("event").to_string(),
+                e["channel"].as_str().expect("channel").to_string(),
+                e["version"].as_str().expect("version").to_string(),
+                e["feed_sequence"].as_u64().expect("sequence"),
+            )
+        })
+        .collect();
+    let row = |e: &str, c: &str, v: &str, s| (e.to_string(), c.to_string(), v.to_string(), s);
+    assert_eq!(
+        summary,
+        [
+            row("publish", "stable", "1.0.0", 1),
+            row("publish", "beta", "1.1.0", 1),
+            row("publish", "stable", "1.1.0", 2),
+            row("withdraw", "stable", "1.1.0", 3),
+        ]
+    );
+    // Digests as sha256sum would print them (FIPS 180-4 through Digest::of), signers by key id.
+    assert_eq!(entries[0]["bundle_sha256"], sha(d, &v1).to_string());
+    assert_eq!(entries[3]["bundle_sha256"], sha(d, &v2).to_string());
+    let key = ok(d, &["inspect", &v1, "--json"]);
+    let key: serde_json::Value = serde_json::from_str(&key).expect("inspect JSON");
+    let signer = key["signatures"][0]["key_id"].clone();
+    assert_eq!(entries[0]["key_ids"], serde_json::json!([signer]));
+    assert_eq!(listed["tree_size"], 4);
+
+    // The feed of the withdraw names 1.0.0 again, with the inclusion of its publish entry 0.
+    let feed = read_feed(d, "stable");
+    let ledger = feed.ledger.expect("the feed carries the ledger");
+    assert_eq!(ledger.tree_head.head(), head_of(d));
+    let inclusion = ledger.inclusion.expect("inclusion proof");
+    assert_eq!((inclusion.leaf_index, inclusion.tree_size), (0, 4));
+    let entry = Entry::from_bytes(ledger.entry.expect("entry").as_bytes()).expect("entry");
+    assert_eq!(
+        (entry.event, entry.version.to_string()),
+        (Event::Publish, "1.0.0".into())
+    );
+    assert_eq!(
+        (ledger.consistency.old_size, ledger.consistency.new_size),
+        (3, 4)
+    );
+
+    // CSV (RFC 4180) with a header, one channel only.
+    let csv = ok(
+        d,
+        &[
+            "ledger",
+            "list",
+            "--tree",
+            "tree",
+            "--channel",
+            "beta",
+            "--csv",
+        ],
+    );
+    let lines: Vec<&str> = csv.lines().collect();
+    assert_eq!(
+        lines[0],
+        "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,feed_sequence"
+    );
+    assert_eq!(lines.len(), 2);
+    assert!(
+        lines[1].starts_with("1,") && lines[1].contains(",publish,beta,trailcam-species,1.1.0,"),
+        "{csv}"
+    );
+    let (code, err) = refused(d, &["--json", "ledger", "list", "--tree", "tree", "--csv"]);
+    assert_eq!(
+        (code, err.as_str()),
+        (
+            2,
+            "ampoule: error: --csv and --json print different formats; choose one"
+        )
+    );
+    let text = ok(d, &["ledger", "list", "--tree", "tree"]);
+    assert!(text.starts_with("#  time"), "{text}");
+    assert!(
+        text.contains("4 of 4 entries shown; tree head size 4"),
+        "{text}"
+    );
+
+    let (code, report) = check_run(d, &[]);
+    assert_eq!((code, problems(&report).len()), (0, 0), "{report}");
+    assert_eq!(report["tree_heads_checked"], 4);
+    assert_eq!(report["bundles_checked"], 2);
+    assert_eq!(report["warnings"], serde_json::json!([]));
+}
+
+#[test]
+fn prove_prints_and_verifies_an_inclusion_proof() {
+    let dir = setup();
+    let d = dir.path();
+    let (v1, _) = four_changes(d);
+    let proof = json(d, &["ledger", "prove", &v1, "--tree", "tree"]);
+    let hashes: Vec<Digest> = proof["inclusion"]["hashes"]
+        .as_array()
+        .expect("hashes")
+        .iter()
+        .map(|h| h.as_str().expect("hex").parse().expect("digest"))
+        .collect();
+    let leaf =
+        ampoule_verify::merkle::leaf_hash(proof["entry"].as_str().expect("entry").as_bytes());
+    assert_eq!(proof["leaf_hash"], leaf.to_string());
+    let head = head_of(d);
+    ampoule_verify::merkle::verify_inclusion(0, 4, &leaf, &hashes, &head.root_hash)
+        .expect("the printed proof verifies");
+    // By digest too.
+    let by_digest = json(
+        d,
+        &[
+            "ledger",
+            "prove",
+            &sha(d, &v1).to_string(),
+            "--tree",
+            "tree",
+        ],
+    );
+    assert_eq!(by_digest["inclusion"], proof["inclusion"]);
+
+    let never = pack(d, "9.0.0", 7, "k.pem");
+    let (code, err) = refused(d, &["ledger", "prove", &never, "--tree", "tree"]);
+    assert_eq!(code, 1);
+    assert_eq!(
+        err,
+        format!(
+            "ampoule: error: bundle {} was never published: no publish entry in the ledger of \
+             tree names it",
+            sha(d, &never)
+        )
+    );
+}
+
+fn flip(path: &Path, at: usize) -> Vec<u8> {
+    let original = std::fs::read(path).expect("read");
+    let mut bytes = original.clone();
+    bytes[at] ^= 0x01;
+    std::fs::write(path, bytes).expect("write");
+    original
+}
+
+#[test]
+fn check_finds_rewritten_and_deleted_entries_and_changed_bundles() {
+    let dir = setup();
+    let d = dir.path();
+    let (v1, _) = four_changes(d);
+    let entries = d.join("tree/ledger/entries.jsonl");
+    let text = std::fs::read_to_string(&entries).expect("entries");
+
+    // A rewritten entry: same length, one version digit changed.
+    let rewritten = text.replacen("\"version\":\"1.0.0\"", "\"version\":\"1.0.1\"", 1);
+    std::fs::write(&entries, &rewritten).expect("write");
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1);
+    let found = problems(&report);
+    assert!(
+        found[0].starts_with("stored hash at level 0, index 0 is "),
+        "{found:?}"
+    );
+    assert!(found[0].contains(", but the entries give "), "{found:?}");
+    std::fs::write(&entries, &text).expect("restore");
+
+    // A deleted entry: the second line removed.
+    let lines: Vec<&str> = text.lines().collect();
+    let deleted: String = lines
+        .iter()
+        .enumerate()
+        .filter(|(i, _)| *i != 1)
+        .map(|(_, l)| format!("{l}\n"))
+        .collect();
+    std::fs::write(&entries, &deleted).expect("write");
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1);
+    let found = problems(&report);
+    assert_eq!(
+        found,
+        [format!(
+            "the ledger is damaged: {} holds {} bytes, but the tree head of size 4 needs {}",
+            entries
+                .display()
+                .to_string()
+                .replacen(&d.display().to_string(), "", 1)
+                .trim_start_matches('/'),
+            deleted.len(),
+            text.len()
+        )]
+    );
+    std::fs::write(&entries, &text).expect("restore");
+
+    // A bundle file changed in the tree.
+    let bundle = d.join(format!("tree/bundles/{}.ampoule", sha(d, &v1)));
+    let original = flip(&bundle, 2000);
+    let changed = Digest::of(&std::fs::read(&bundle).expect("bundle"));
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1);
+    assert_eq!(
+        problems(&report),
+        [format!(
+            "entry 0: bundle trailcam-species 1.0.0 (bundles/{}.ampoule) differs from what was \
+             published: its sha256 is {changed}",
+            sha(d, &v1)
+        )]
+    );
+    // And removed.
+    std::fs::remove_file(&bundle).expect("remove");
+    let (_, report) = check_run(d, &[]);
+    assert_eq!(
+        problems(&report),
+        [format!(
+            "entry 0: bundle trailcam-species 1.0.0 (bundles/{}.ampoule) is missing from the tree",
+            sha(d, &v1)
+        )]
+    );
+    std::fs::write(&bundle, original).expect("restore");
+    assert_eq!(check_run(d, &[]).0, 0);
+}
+
+#[test]
+fn check_refuses_an_untrusted_tree_head_and_a_rewritten_history() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    publish(d, &v1, "stable", "100");
+    publish(d, &v2, "stable", "100");
+    std::fs::copy(d.join("tree/ledger/tree-head.json"), d.join("audit-1.json")).expect("save");
+    publish(d, &v2, "beta", "100");
+    let (code, report) = check_run(d, &["--since", "audit-1.json"]);
+    assert_eq!(
+        (code, report["consistent_since"].clone()),
+        (0, 2.into()),
+        "{report}"
+    );
+
+    // Another key: every head is refused.
+    ok(
+        d,
+        &["keygen", "--secret", "other.pem", "--public", "other.pub"],
+    );
+    let out = run(
+        d,
+        &[
+            "--json",
+            "ledger",
+            "check",
+            "--tree",
+            "tree",
+            "--trust",
+            "other.pub",
+        ],
+    );
+    assert_eq!(out.status.code(), Some(1));
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).expect("report");
+    let found = problems(&report);
+    assert!(
+        found[0].starts_with("tree-head.json is not validly signed: tree head of size 3 has 0 valid signature(s) by trusted keys, 1 needed; signed by untrusted key(s) "),
+        "{found:?}"
+    );
+    assert!(
+        found[1].starts_with("line 1 of tree-heads.jsonl (tree size 1): tree head of size 1 has no valid signature by a trusted key (by keys not trusted here: "),
+        "{found:?}"
+    );
+
+    // A rewritten history: a second tree with the same key but other entries; its head of
+    // size 3 does not extend the saved head of size 2 of the first tree.
+    let other = tempfile::tempdir().expect("tempdir");
+    let o = other.path();
+    for f in ["k.pem", "k.pub", "labels.txt"] {
+        std::fs::copy(d.join(f), o.join(f)).expect("copy");
+    }
+    let w1 = pack(o, "1.0.0", 5, "k.pem");
+    let w2 = pack(o, "1.1.0", 6, "k.pem");
+    publish(o, &w1, "stable", "100");
+    publish(o, &w2, "stable", "100");
+    publish(o, &w2, "beta", "100");
+    std::fs::copy(d.join("audit-1.json"), o.join("audit-1.json")).expect("copy");
+    let (code, report) = check_run(o, &["--since", "audit-1.json"]);
+    assert_eq!(code, 1);
+    let found = problems(&report);
+    assert_eq!(found.len(), 1, "{found:?}");
+    assert!(
+        found[0].starts_with(
+            "the current tree head (size 3) is not consistent with the saved tree head of size 2: \
+             the history was rewritten (consistency proof from tree size 2 (root "
+        ),
+        "{found:?}"
+    );
+    // A trimmed history: the saved head is larger than the ledger.
+    std::fs::copy(d.join("tree/ledger/tree-head.json"), o.join("audit-3.json")).expect("copy");
+    let small = tempfile::tempdir().expect("tempdir");
+    let s = small.path();
+    for f in ["k.pem", "k.pub", "labels.txt"] {
+        std::fs::copy(d.join(f), s.join(f)).expect("copy");
+    }
+    let x1 = pack(s, "1.0.0", 0, "k.pem");
+    publish(s, &x1, "stable", "100");
+    std::fs::copy(d.join("tree/ledger/tree-head.json"), s.join("audit-3.json")).expect("copy");
+    let (code, report) = check_run(s, &["--since", "audit-3.json"]);
+    assert_eq!(code, 1);
+    assert_eq!(
+        problems(&report),
+        [
+            "the ledger has 1 entries, fewer than the 3 of the saved tree head: its history was trimmed"
+        ]
+    );
+}
+
+#[test]
+fn check_flags_version_reuse_sequence_gaps_and_entries_without_a_feed() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    // A crafted ledger continues where the tree's ends, signed with the tree's key, as a
+    // release side with a bug (or a thief with the key) could write it.
+    let key = SigningKey::from_bytes(&tree_key_seed(d));
+    let mut ledger = Ledger::open(&d.join("tree/ledger")).expect("open");
+    let first = Entry::from_bytes(&ledger.entry(0).expect("entry 0")).expect("entry");
+    let mut reuse = first.clone();
+    reuse.bundle_digest = Digest::of(b"other bundle bytes");
+    reuse.feed_sequence = 2;
+    let mut gap = first.clone();
+    gap.feed_sequence = 5;
+    let time = head_of(d).time;
+    ledger.append_entry(&reuse, &[&key], time).expect("append");
+    ledger.append_entry(&gap, &[&key], time).expect("append");
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1);
+    let found = problems(&report);
+    assert!(
+        found.contains(&format!(
+            "entry 1: trailcam-species 1.0.0 is logged with bundle {}, but entry 0 logged it \
+             with bundle {}: a version was reused with different content",
+            reuse.bundle_digest, first.bundle_digest
+        )),
+        "{found:?}"
+    );
+    assert!(
+        found.contains(
+            &"entry 2: sequence gap on channel stable: feed sequence 5 follows 2 (entry 1); \
+              sequences 3 to 4 are not in the ledger"
+                .to_string()
+        ),
+        "{found:?}"
+    );
+    assert!(
+        found.contains(&format!(
+            "consistency step {}: No such file or directory (os error 2); devices that saw tree \
+             size 1 cannot catch up",
+            step_path(1)
+        )),
+        "{found:?}"
+    );
+    assert!(
+        found.contains(&format!(
+            "entry 1: bundle trailcam-species 1.0.0 (bundles/{}.ampoule) is missing from the tree",
+            reuse.bundle_digest
+        )),
+        "{found:?}"
+    );
+    let warnings: Vec<&str> = report["warnings"]
+        .as_array()
+        .expect("warnings")
+        .iter()
+        .map(|w| w.as_str().expect("text"))
+        .collect();
+    assert_eq!(
+        warnings,
+        [
+            "entry 1 (publish of trailcam-species 1.0.0 on channel stable, feed sequence 2) has \
+             no feed update: the channel's history has no event with that sequence (a publish \
+             or withdraw that stopped after its ledger append)",
+            "entry 2 (publish of trailcam-species 1.0.0 on channel stable, feed sequence 5) has \
+             no feed update: the channel's history has no event with that sequence (a publish \
+             or withdraw that stopped after its ledger append)",
+        ]
+    );
+}
+
+/// The seed of `k.pem`, read the way the release side reads it.
+fn tree_key_seed(d: &Path) -> [u8; 32] {
+    ampoule::keyfile::read_secret_key(
+        &d.join("k.pem"),
+        &ampoule::keyfile::PassphraseSource::Env("AMPOULE_TEST_UNUSED".into()),
+    )
+    .expect("the test key is not encrypted")
+    .to_bytes()
+}
+
+#[test]
+fn a_publish_that_stops_after_its_append_leaves_a_warning_and_no_reused_sequence() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    publish(d, &v1, "stable", "100");
+    // What a crash between the ledger append and the feed leaves: the entry, no history, no feed.
+    let key = SigningKey::from_bytes(&tree_key_seed(d));
+    let mut entry = Entry::from_bytes(
+        &Ledger::open(&d.join("tree/ledger"))
+            .expect("open")
+            .entry(0)
+            .expect("entry"),
+    )
+    .expect("entry");
+    entry.bundle_digest = sha(d, &v2);
+    entry.manifest_digest = Digest::of(
+        &ampoule_verify::bundle::Unverified::open(&d.join(&v2))
+            .expect("bundle")
+            .layout
+            .manifest,
+    );
+    entry.version = Version::new(1, 1, 0);
+    entry.feed_sequence = 2;
+    ampoule::audit::append(&d.join("tree"), &entry, Some(&entry.bundle_digest), &[&key])
+        .expect("append as publish does");
+    assert_eq!(
+        read_feed(d, "stable").sequence,
+        1,
+        "the feed was not written"
+    );
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1, "{report}");
+    // The bundle was never placed in the tree either: that is a problem, the feed a warning.
+    assert_eq!(report["warnings"].as_array().expect("warnings").len(), 1);
+    assert!(
+        report["warnings"][0]
+            .as_str()
+            .expect("text")
+            .starts_with("entry 1 (publish of trailcam-species 1.1.0 on channel stable, feed sequence 2) has no feed update"),
+        "{report}"
+    );
+    // The next publish takes sequence 3: the ledger never logs one sequence twice.
+    let published = publish(d, &v2, "stable", "100");
+    assert_eq!(published["sequence"], 3);
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 0, "{report}");
+    assert_eq!(report["warnings"].as_array().expect("warnings").len(), 1);
+}
+
+#[test]
+fn two_publishes_at_once_are_serialized() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let mut won = 0;
+    for round in 0..4 {
+        let spawn = |bundle: &str, channel: String| -> Child {
+            Command::new(BIN)
+                .args([
+                    "publish",
+                    bundle,
+                    "--tree",
+                    "tree",
+                    "--channel",
+                    &channel,
+                    "--key",
+                    "k.pem",
+                ])
+                .current_dir(d)
+                .stdout(Stdio::null())
+                .stderr(Stdio::piped())
+                .spawn()
+                .expect("spawn publish")
+        };
+        let children = [
+            spawn(&v2, format!("beta-{round}")),
+            spawn(&v1, format!("field-{round}")),
+        ];
+        for child in children {
+            let out = child.wait_with_output().expect("publish ends");
+            if out.status.success() {
+                won += 1;
+            } else {
+                // The loser stops cleanly before changing anything.
+                assert_eq!(out.status.code(), Some(2));
+                let err = String::from_utf8_lossy(&out.stderr);
+                assert!(
+                    err.starts_with(
+                        "ampoule: error: another publish or withdraw is changing the release tree"
+                    ),
+                    "{err}"
+                );
+            }
+        }
+    }
+    assert!(won >= 4, "at least one publish of each round succeeds");
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 0, "{report}");
+    assert_eq!(report["tree_size"], 1 + won);
+    assert_eq!(report["tree_heads_checked"], 1 + won);
+}
+
+#[test]
+fn the_device_refuses_a_bundle_signed_but_never_published() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let good = feed_bytes(d, "stable");
+    device(d, "stable", None)
+        .verify(&good, Timestamp::now())
+        .expect("the published feed passes");
+
+    // A thief with the key signs 2.0.0 and a feed of their own for one camera, reusing the
+    // real ledger object (or none at all).
+    let secret = pack(d, "2.0.0", 9, "k.pem");
+    let key = SigningKey::from_bytes(&tree_key_seed(d));
+    let forge = |edit: &dyn Fn(&mut Feed)| -> Vec<u8> {
+        let signed = SignedFeed::from_json(&good).expect("envelope");
+        let mut feed = Feed::from_json(signed.feed.as_bytes()).expect("feed");
+        edit(&mut feed);
+        let text = feed.to_json();
+        let signature = key.sign(&ampoule_verify::format::signed_bytes(
+            ampoule_verify::format::context::FEED,
+            text.as_bytes(),
+        ));
+        SignedFeed {
+            feed: text,
+            signatures: vec![ampoule_verify::signature::SignatureEntry {
+                key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
+                signature: signature.to_bytes(),
+            }],
+        }
+        .to_json()
+    };
+    let digest = sha(d, &secret);
+    let retarget = |feed: &mut Feed| {
+        let release = feed.release.as_mut().expect("release");
+        release.version = Version::new(2, 0, 0);
+        release.sha256 = digest;
+    };
+    let never =
+        format!("bundle trailcam-species 2.0.0 (sha256 {digest}) was signed but never published: ");
+    let cases: Vec<(Vec<u8>, String)> = vec![
+        (
+            forge(&|f| {
+                retarget(f);
+                f.ledger = None;
+            }),
+            format!("{never}feed sequence 1 carries no ledger proof"),
+        ),
+        (
+            forge(&|f| retarget(f)),
+            format!("{never}the ledger entry the feed carries has version 1.0.0, not 2.0.0"),
+        ),
+        (
+            // The entry text rewritten to match: the real tree head does not include it.
+            forge(&|f| {
+                retarget(f);
+                let l = f.ledger.as_mut().expect("ledger");
+                let text = l.entry.clone().expect("entry");
+                let mut entry = Entry::from_bytes(text.as_bytes()).expect("entry");
+                entry.version = Version::new(2, 0, 0);
+                entry.bundle_digest = digest;
+                l.entry = Some(String::from_utf8(entry.to_bytes()).expect("utf-8"));
+            }),
+            format!(
+                "{never}its publish entry is not in the ledger's tree head of size 1 (inclusion \
+                 proof of leaf 0 in tree size 1 does not lead to root {})",
+                head_of(d).root_hash
+            ),
+        ),
+    ];
+    for (bytes, expected) in cases {
+        let err = device(d, "stable", None)
+            .verify(&bytes, Timestamp::now())
+            .expect_err("never published");
+        assert_eq!(err.to_string(), expected);
+        assert_eq!(err.kind(), ErrorKind::Proof);
+        // Without the ledger requirement the same feed passes: the check is what refuses it.
+        FeedVerifier::new(keys(d), "stable")
+            .expect("verifier")
+            .verify(&bytes, Timestamp::now())
+            .expect("signature and fields are fine");
+    }
+
+    // A tree head signed by a key the device does not trust.
+    ok(
+        d,
+        &["keygen", "--secret", "other.pem", "--public", "other.pub"],
+    );
+    let other = keys_from(d, "other.pub");
+    let err = FeedVerifier::new(keys(d), "stable")
+        .expect("verifier")
+        .require_ledger(LedgerVerifier::new(other, 1).expect("ledger verifier"))
+        .verify(&good, Timestamp::now())
+        .expect_err("untrusted tree head");
+    assert!(
+        err.to_string()
+            .starts_with("tree head of size 1 has no valid signature by a trusted key (by keys not trusted here: "),
+        "{err}"
+    );
+}
+
+fn keys_from(d: &Path, public: &str) -> ampoule_verify::TrustedKeys {
+    let pem = std::fs::read_to_string(d.join(public)).expect("public key");
+    [ampoule_verify::PublicKey::from_pem(&pem).expect("key")]
+        .into_iter()
+        .collect()
+}
+
+#[test]
+fn the_device_refuses_a_smaller_or_inconsistent_tree_head_and_follows_after_missed_publishes() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    let v3 = pack(d, "1.2.0", 2, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let old_feed = feed_bytes(d, "stable");
+    let seen_1 = head_of(d);
+    publish(d, &v2, "beta", "100");
+    publish(d, &v2, "stable", "100");
+    publish(d, &v3, "beta", "100");
+    publish(d, &v3, "stable", "100");
+    let feed = feed_bytes(d, "stable");
+    let now = Timestamp::now();
+
+    // Saw every head: the feed's own proof (from size 4) suffices.
+    let seen_4 = {
+        let bytes = std::fs::read(d.join("tree/ledger/tree-heads.jsonl")).expect("log");
+        let line = bytes.split(|&b| b == b'\n').nth(3).expect("line 4");
+        SignedTreeHead::from_json(line).expect("head").head()
+    };
+    let checked = device(d, "stable", Some(seen_4))
+        .verify(&feed, now)
+        .expect("consistent with size 4");
+    assert_eq!(checked.ledger().expect("ledger").tree_head, head_of(d));
+
+    // Missed three appends: plain verify cannot fetch, verify_with_steps walks 1 -> 2 -> 3 -> 4.
+    let err = device(d, "stable", Some(seen_1))
+        .verify(&feed, now)
+        .expect_err("needs the steps");
+    assert_eq!(
+        err.to_string(),
+        "the feed's ledger proof does not start at tree size 1, which this device saw last; \
+         fetch ledger/consistency/1.json from the release tree to catch up"
+    );
+    let mut fetched = Vec::new();
+    let mut steps = steps_from(d);
+    device(d, "stable", Some(seen_1))
+        .verify_with_steps(&feed, now, &mut |size| {
+            fetched.push(size);
+            steps(size)
+        })
+        .expect("a device that skipped publishes still accepts");
+    assert_eq!(fetched, [1, 2, 3]);
+
+    // A smaller tree head than remembered: the old feed (size 1) after size 5.
+    let err = device(d, "stable", Some(head_of(d)))
+        .verify(&old_feed, now)
+        .expect_err("smaller");
+    assert_eq!(
+        err.to_string(),
+        "ledger tree head of size 1 is smaller than the tree head of size 5 this device saw \
+         before; refusing a rolled-back ledger"
+    );
+    assert_eq!(err.kind(), ErrorKind::Stale);
+
+    // Inconsistent: a remembered head of a forked ledger, at the size the proof starts from
+    // and at the same size.
+    let forked = TreeHead {
+        root_hash: Digest::of(b"a forked ledger"),
+        ..seen_4
+    };
+    let err = device(d, "stable", Some(forked))
+        .verify(&feed, now)
+        .expect_err("inconsistent");
+    assert!(
+        err.to_string().starts_with(
+            "ledger tree head of size 5 is not consistent with the tree head of size 4 this \
+             device saw before: consistency proof from tree size 4 (root "
+        ),
+        "{err}"
+    );
+    let same_size = TreeHead {
+        root_hash: Digest::of(b"a forked ledger"),
+        ..head_of(d)
+    };
+    let err = device(d, "stable", Some(same_size))
+        .verify(&feed, now)
+        .expect_err("forked");
+    assert_eq!(
+        err.to_string(),
+        format!(
+            "ledger tree head of size 5 has root {}, but this device saw root {} at that size; \
+             the ledger was forked or rewritten",
+            head_of(d).root_hash,
+            same_size.root_hash
+        )
+    );
+    // A forked head two steps back: the walk's first proof fails.
+    let forked_1 = TreeHead {
+        root_hash: Digest::of(b"a forked ledger"),
+        ..seen_1
+    };
+    let err = device(d, "stable", Some(forked_1))
+        .verify_with_steps(&feed, now, &mut steps_from(d))
+        .expect_err("inconsistent walk");
+    assert!(
+        err.to_string().starts_with(
+            "ledger tree head of size 5 is not consistent with the tree head of size 1 this \
+             device saw before: consistency proof from tree size 1 (root "
+        ),
+        "{err}"
+    );
+}
+
+#[test]
+fn the_store_remembers_the_largest_tree_head() {
+    let dir = setup();
+    let d = dir.path();
+    let store_dir = d.join("store");
+    let verifier = Verifier::new(keys(d), Version::new(2, 3, 0)).expect("verifier");
+    let store = ampoule_verify::Store::open(&store_dir, verifier).expect("store");
+    assert_eq!(store.state().expect("state").tree_head, None);
+    let small = TreeHead {
+        tree_size: 3,
+        root_hash: Digest::of(b"three"),
+        time: 1,
+    };
+    let large = TreeHead {
+        tree_size: 5,
+        root_hash: Digest::of(b"five"),
+        time: 2,
+    };
+    store.remember_tree_head(&small).expect("first");
+    store.remember_tree_head(&large).expect("larger");
+    assert_eq!(store.state().expect("state").tree_head, Some(large));
+    let err = store.remember_tree_head(&small).expect_err("smaller");
+    assert_eq!(
+        err.to_string(),
+        format!(
+            "tree head of size 3 (root {}) does not extend the tree head of size 5 (root {}) \
+             this store remembers; refusing to forget the larger one",
+            small.root_hash, large.root_hash
+        )
+    );
+    assert_eq!(store.state().expect("state").tree_head, Some(large));
+}
+
+/// `ampoule serve` on a free port, stopped when dropped.
+struct Served {
+    child: Child,
+    addr: String,
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn serve(d: &Path) -> Served {
+    let mut child = Command::new(BIN)
+        .args(["serve", "--tree", "tree", "--addr", "127.0.0.1:0"])
+        .current_dir(d)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("serve starts");
+    let mut line = String::new();
+    BufReader::new(child.stdout.take().expect("stdout"))
+        .read_line(&mut line)
+        .expect("serve prints its address");
+    let addr = line
+        .trim_end()
+        .rsplit_once(" at http://")
+        .map(|(_, a)| a.trim_end_matches('/').to_string())
+        .unwrap_or_else(|| panic!("unexpected first line {line:?}"));
+    Served { child, addr }
+}
+
+#[test]
+fn over_http_the_auditor_lists_and_checks_and_a_device_catches_up() {
+    let dir = setup();
+    let d = dir.path();
+    let (v1, _) = four_changes(d);
+    let v3 = pack(d, "1.2.0", 2, "k.pem");
+    publish(d, &v3, "stable", "100");
+    let server = serve(d);
+    let url = format!("http://{}/", server.addr);
+    let listed = json(d, &["ledger", "list", "--url", &url]);
+    let local = json(d, &["ledger", "list", "--tree", "tree"]);
+    assert_eq!(listed["entries"], local["entries"]);
+    let out = run(
+        d,
+        &[
+            "--json", "ledger", "check", "--url", &url, "--trust", "k.pub",
+        ],
+    );
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).expect("report");
+    assert_eq!(out.status.code(), Some(0), "{report}");
+    assert_eq!(
+        (
+            report["tree_heads_checked"].clone(),
+            report["bundles_checked"].clone()
+        ),
+        (5.into(), 3.into())
+    );
+    // A bundle changed on the server is found over HTTP too.
+    let bundle = d.join(format!("tree/bundles/{}.ampoule", sha(d, &v1)));
+    flip(&bundle, 3000);
+    let out = run(
+        d,
+        &[
+            "--json", "ledger", "check", "--url", &url, "--trust", "k.pub",
+        ],
+    );
+    assert_eq!(out.status.code(), Some(1));
+
+    // A camera that saw only the first head updates through the served consistency steps.
+    std::fs::create_dir(d.join("downloads")).expect("downloads");
+    let updater = Updater::new(
+        format!("{url}feeds/stable.json"),
+        device(d, "stable", Some(first_head(d))),
+        Verifier::new(keys(d), Version::new(2, 3, 0))
+            .expect("verifier")
+            .installed(Version::new(1, 0, 0)),
+        "camera-0007",
+        d.join("downloads"),
+    );
+    let update = updater.check(Timestamp::now()).expect("update check");
+    let Update::Ready { feed, bundle, .. } = update else {
+        panic!("expected a bundle, got {update:?}");
+    };
+    assert_eq!(bundle.manifest().version, Version::new(1, 2, 0));
+    assert_eq!(feed.ledger().expect("ledger").tree_head, head_of(d));
+}
+
+fn first_head(d: &Path) -> TreeHead {
+    let bytes = std::fs::read(d.join("tree/ledger/tree-heads.jsonl")).expect("log");
+    let line = bytes.split(|&b| b == b'\n').next().expect("line 1");
+    SignedTreeHead::from_json(line).expect("head").head()
+}
+
+#[test]
+fn check_with_a_trust_set_needs_its_tree_head_threshold() {
+    let dir = setup();
+    let d = dir.path();
+    ok(
+        d,
+        &["keygen", "--secret", "second.pem", "--public", "second.pub"],
+    );
+    ok(
+        d,
+        &[
+            "trust",
+            "init",
+            "--key",
+            "k.pub",
+            "--key",
+            "second.pub",
+            "--threshold",
+            "tree_head=2",
+            "--expires-in",
+            "365d",
+            "-o",
+            "trust.json",
+        ],
+    );
+    ok(d, &["trust", "sign", "trust.json", "--key", "k.pem"]);
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    // Both keys sign the tree head: the feed key and one --tree-head-key.
+    ok(
+        d,
+        &[
+            "publish",
+            &v1,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+            "--tree-head-key",
+            "second.pem",
+        ],
+    );
+    let with_set = |d: &Path| {
+        let out = run(
+            d,
+            &[
+                "--json",
+                "ledger",
+                "check",
+                "--tree",
+                "tree",
+                "--trust-set",
+                "trust.json",
+            ],
+        );
+        let doc: serde_json::Value = serde_json::from_slice(&out.stdout).expect("report");
+        (out.status.code().unwrap_or(-1), doc)
+    };
+    let (code, report) = with_set(d);
+    assert_eq!(code, 0, "{report}");
+    // One more publish signed by the feed key alone falls short of the threshold.
+    publish(d, &v1, "beta", "100");
+    let (code, report) = with_set(d);
+    assert_eq!(code, 1);
+    let found = problems(&report);
+    assert_eq!(found.len(), 1, "{found:?}");
+    assert!(
+        found[0].starts_with(
+            "line 2 of tree-heads.jsonl (tree size 2): tree head has 1 valid signature(s) by \
+             trusted keys but needs 2 (valid: "
+        ),
+        "{found:?}"
+    );
+}
