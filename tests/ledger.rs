@@ -1023,3 +1023,53 @@ fn check_with_a_trust_set_needs_its_tree_head_threshold() {
         "{found:?}"
     );
 }
+
+/// Publishing a trust set renews every channel's feed; each renewal is logged as a publish of
+/// the channel's release, so devices that require the ledger accept the renewed feeds and the
+/// auditor's check stays clean (issue 5 meets issue 4).
+#[test]
+fn a_trust_set_publish_logs_each_renewed_feed_issue_5() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let before = head_of(d);
+    ok(d, &["trust", "init", "--key", "k.pub", "-o", "trust.json"]);
+    ok(d, &["trust", "sign", "trust.json", "--key", "k.pem"]);
+    let report = json(
+        d,
+        &[
+            "publish",
+            "--trust-set",
+            "trust.json",
+            "--tree",
+            "tree",
+            "--key",
+            "k.pem",
+        ],
+    );
+    assert_eq!(report["feeds"][0]["channel"], "stable");
+    assert_eq!(report["feeds"][0]["sequence"], 2);
+
+    let after = head_of(d);
+    assert_eq!(after.tree_size, before.tree_size + 1);
+    let ledger = Ledger::open(&d.join("tree/ledger")).expect("ledger");
+    let last =
+        Entry::from_bytes(&ledger.entry(after.tree_size - 1).expect("entry")).expect("entry");
+    assert_eq!(last.event, Event::Publish);
+    assert_eq!((last.channel.as_str(), last.feed_sequence), ("stable", 2));
+    assert_eq!(last.bundle_digest, sha(d, &v1));
+
+    // A device that saw the first head follows the renewed feed through its consistency proof.
+    let feed = device(d, "stable", Some(before))
+        .verify_with_steps(
+            &feed_bytes(d, "stable"),
+            Timestamp::now(),
+            &mut steps_from(d),
+        )
+        .expect("the renewed feed verifies with its ledger proof");
+    assert_eq!(feed.feed().trust_set.as_ref().map(|t| t.version), Some(1));
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 0, "{report}");
+    assert_eq!(problems(&report), Vec::<String>::new());
+}
