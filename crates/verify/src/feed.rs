@@ -123,17 +123,7 @@ impl TrustSetRef {
                 "feed trust_set version is 0; trust-set versions start at 1".into(),
             ));
         }
-        if !is_relative_path(&self.path) {
-            return Err(invalid(format!(
-                "feed trust_set path '{}' is not a relative path of plain segments \
-                 (letters, digits, '-', '.', '_', '~', and leading '..')",
-                self.path
-                    .chars()
-                    .take(120)
-                    .collect::<String>()
-                    .escape_debug()
-            )));
-        }
+        check_relative_path("trust_set", &self.path)?;
         Ok(())
     }
 
@@ -180,6 +170,19 @@ pub fn check_channel(name: &str) -> Result<()> {
 
 /// Whether `path` is a relative reference made only of path segments: no scheme, no leading
 /// `/`, no query, fragment or percent-escapes, no empty or `.` segments, and not ending in `..`.
+/// Refuses a feed `path` field (of `what`: release, trust_set) that is not a relative path of
+/// plain segments.
+fn check_relative_path(what: &str, path: &str) -> Result<()> {
+    if is_relative_path(path) {
+        return Ok(());
+    }
+    Err(invalid(format!(
+        "feed {what} path '{}' is not a relative path of plain segments \
+         (letters, digits, '-', '.', '_', '~', and leading '..')",
+        path.chars().take(120).collect::<String>().escape_debug()
+    )))
+}
+
 fn is_relative_path(path: &str) -> bool {
     let segment_ok = |s: &str| {
         !s.is_empty()
@@ -220,17 +223,7 @@ impl Release {
                 self.rollout_percent
             )));
         }
-        if !is_relative_path(&self.path) {
-            return Err(invalid(format!(
-                "feed release path '{}' is not a relative path of plain segments \
-                 (letters, digits, '-', '.', '_', '~', and leading '..')",
-                self.path
-                    .chars()
-                    .take(120)
-                    .collect::<String>()
-                    .escape_debug()
-            )));
-        }
+        check_relative_path("release", &self.path)?;
         if self.mirrors.len() > limit::MIRRORS {
             return Err(invalid(format!(
                 "feed release lists {} mirrors, over the limit of {}",

@@ -232,6 +232,19 @@ impl Manifest {
             + tar::END_OF_ARCHIVE.len() as u64
     }
 
+    /// Parses the stored label list of this bundle and requires `label_count` labels.
+    pub fn parse_labels(&self, bytes: &[u8]) -> Result<Vec<String>> {
+        let labels = crate::labels::parse_stored_labels(bytes)?;
+        if labels.len() != self.label_count as usize {
+            return Err(invalid(format!(
+                "labels.txt holds {} labels but the manifest declares {}",
+                labels.len(),
+                self.label_count
+            )));
+        }
+        Ok(labels)
+    }
+
     /// The total size of the files in the payload.
     pub fn files_len(&self) -> u64 {
         self.files.iter().map(|f| f.size).sum()

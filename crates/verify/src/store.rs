@@ -90,7 +90,6 @@ use crate::digest::{Digest, hash_reader};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{entry, limit, trust_set};
 use crate::keys::KeyId;
-use crate::labels::parse_stored_labels;
 use crate::manifest::{Manifest, Role};
 use crate::merkle::TreeHead;
 use crate::time::Timestamp;
@@ -1073,17 +1072,7 @@ impl Store {
                 ));
             }
         }
-        let labels = parse_stored_labels(&labels.unwrap_or_default())?;
-        if labels.len() != manifest.label_count as usize {
-            return Err(Error::new(
-                ErrorKind::Manifest,
-                format!(
-                    "labels.txt holds {} labels but the manifest declares {}",
-                    labels.len(),
-                    manifest.label_count
-                ),
-            ));
-        }
+        let labels = manifest.parse_labels(&labels.unwrap_or_default())?;
         Ok(Release {
             model: dir.join(&manifest.model().path),
             labels_path: dir.join(&manifest.labels().path),

@@ -17,7 +17,6 @@ use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 use crate::digest::Hasher;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::limit;
-use crate::labels::parse_stored_labels;
 use crate::manifest::Manifest;
 use crate::readahead::ReadAhead;
 use crate::tar;
@@ -390,17 +389,7 @@ fn read_payload(
         tar::read_padding(reader, size, ARCHIVE, &declared.path)?;
     }
     tar::read_end(reader, ARCHIVE)?;
-    let labels = parse_stored_labels(&labels_bytes)?;
-    if labels.len() != manifest.label_count as usize {
-        return Err(Error::new(
-            ErrorKind::Manifest,
-            format!(
-                "labels.txt holds {} labels but the manifest declares {}",
-                labels.len(),
-                manifest.label_count
-            ),
-        ));
-    }
+    let labels = manifest.parse_labels(&labels_bytes)?;
     Ok(labels)
 }
 
