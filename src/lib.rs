@@ -7,6 +7,7 @@
 pub mod cli;
 pub mod cmd;
 pub mod demo;
+pub mod device;
 pub mod keyfile;
 pub mod ledger;
 pub mod output;
