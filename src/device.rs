@@ -140,9 +140,14 @@ impl Device {
                 if done {
                     let _ = std::fs::remove_file(&path);
                 }
+                let installed = installed?;
+                // The release before the previous one is no rollback target any more: free its
+                // space now rather than at the next update. A failure here changes nothing
+                // that matters (the next update sweeps again), so it does not fail this one.
+                let _ = self.store.gc();
                 return Ok(Outcome::Updated {
                     feed,
-                    installed: Box::new(installed?),
+                    installed: Box::new(installed),
                 });
             }
             Update::UpToDate { feed } => Outcome::UpToDate { feed },

@@ -172,6 +172,30 @@ fn a_fresh_store_installs_then_is_up_to_date_then_updates_issue_3() {
     assert_eq!(state2["current"]["version"], "1.1.0");
     assert_eq!(state2["previous"]["version"], "1.0.0");
     assert_eq!(state2["channels"]["stable"]["highest_sequence"], 2);
+
+    // A third release: the store keeps the current and the previous one, nothing older.
+    let v3 = pack(d, "1.2.0", 0, "k.pem");
+    publish(d, &v3, "stable", "100");
+    succeeded(&update(d, &server, &[]));
+    let state3 = state(d);
+    let mut kept: Vec<String> = std::fs::read_dir(d.join("cam/releases"))
+        .expect("releases")
+        .map(|e| e.expect("entry").file_name().to_string_lossy().into_owned())
+        .collect();
+    kept.sort();
+    let mut expected = vec![
+        state3["current"]["release"]
+            .as_str()
+            .expect("current")
+            .to_string(),
+        state3["previous"]["release"]
+            .as_str()
+            .expect("previous")
+            .to_string(),
+    ];
+    expected.sort();
+    assert_eq!(kept, expected);
+    assert_eq!(state3["previous"]["version"], "1.1.0");
 }
 
 #[test]
