@@ -136,6 +136,21 @@ ranges, nothing else. It is not meant for production: there any static web serve
 object store serves the tree. It runs until interrupted (Ctrl-C).")]
     Serve(ServeArgs),
 
+    /// Check a channel's feed as a device does, and install a newer bundle into a store.
+    #[command(after_help = "Examples:
+  ampoule update --store ./camera --feed http://127.0.0.1:8000/feeds/stable.json \\
+      --trust release.public.pem --app-version 2.3.0
+  ampoule update --store ./camera --feed https://models.example/feeds/beta.json \\
+      --trust-set trust-1.json --app-version 2.3.0 --device-id camera-0042 --json
+
+The channel is the feed file's name (feeds/<channel>.json) unless --channel names it.
+Without --device-id, the id in <store>/device-id is used, made at random on the first run.
+The store remembers the highest version and feed sequence it accepted: an older bundle or
+feed is refused from then on. Exit code 0: updated, or nothing to do (up to date, not in
+the rollout yet, nothing offered, another app version needed); 1: the feed or bundle was
+refused; 2: a network, disk or usage problem (trying again later may work).")]
+    Update(UpdateArgs),
+
     /// Run the trail-camera story end to end on generated data.
     #[command(after_help = "Example:
   ampoule demo                 (works in a fresh temporary directory and removes it)
@@ -562,4 +577,35 @@ pub struct ServeArgs {
     /// The address to listen on; port 0 picks a free port (the first line printed says which).
     #[arg(long, value_name = "IP:PORT", default_value = "127.0.0.1:8000")]
     pub addr: String,
+}
+
+#[derive(Args, Debug)]
+pub struct UpdateArgs {
+    /// The on-device store (created if missing).
+    #[arg(long, value_name = "DIR")]
+    pub store: PathBuf,
+    /// The URL of the channel's feed, like http://HOST/feeds/stable.json.
+    #[arg(long, value_name = "URL")]
+    pub feed: String,
+    /// A public key trusted for feeds and bundles (repeat for several).
+    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
+    pub trust: Vec<PathBuf>,
+    /// Trust the feed and bundle keys of this trust set, with its thresholds.
+    #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
+    pub trust_set: Option<PathBuf>,
+    /// The app's own version: bundles must allow it.
+    #[arg(long, value_name = "X")]
+    pub app_version: String,
+    /// The id that places this device in rollouts (default: the one kept in the store).
+    #[arg(long, value_name = "ID")]
+    pub device_id: Option<String>,
+    /// The channel the device follows (default: the feed file's name without .json).
+    #[arg(long, value_name = "NAME")]
+    pub channel: Option<String>,
+    /// Accept only bundles with this name (default: the store's model line, once it has one).
+    #[arg(long)]
+    pub name: Option<String>,
+    /// The largest bundle to download, and the most bytes it may unpack to.
+    #[arg(long, value_name = "BYTES")]
+    pub max_size: Option<u64>,
 }

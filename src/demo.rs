@@ -2,23 +2,35 @@
 //!
 //! A wildlife-survey team (invented) runs solar trail cameras in a forest reserve. The demo
 //! makes a demo-only release key, packs a species classifier as v1.0.0 and v1.1.0 (which adds
-//! a species), checks both the way a camera would, and shows the refusals that protect the
-//! cameras: a label list that does not fit the model, a replayed older model, a tampered copy,
-//! a model the camera's code cannot feed, a bundle signed by a stranger.
+//! a species), publishes them on a channel of a release tree served from this process, and
+//! lets two cameras update through their on-device stores: v1.0.0 for both, v1.1.0 at a 50%
+//! rollout for one of them. It shows the refusals that protect the cameras: a label list that
+//! does not fit the model, a replayed older bundle, a bundle tampered with on the server, a
+//! replayed older feed, a model the camera's code cannot feed, a bundle signed by a stranger;
+//! and what a camera does when the channel is withdrawn (it keeps its model).
 
 use std::path::{Path, PathBuf};
 
+use ampoule_verify::digest::hash_reader;
+use ampoule_verify::feed::rollout_bucket;
+use ampoule_verify::fetch::Transfer;
+use ampoule_verify::format::BUNDLE_EXTENSION;
 use ampoule_verify::model::{DType, TensorSpec, read_model_signature_file};
-use ampoule_verify::{CompatibilityPolicy, PublicKey, Timestamp, TrustedKeys, Verifier};
+use ampoule_verify::{
+    CompatibilityPolicy, Digest, PublicKey, Store, Timestamp, TrustedKeys, Verifier, in_rollout,
+};
 use anyhow::{Context, Result, bail};
 use semver::{Version, VersionReq};
 use serde_json::{Value, json};
 
 use crate::cli::DemoArgs;
+use crate::device::{DOWNLOADS_DIR, Device, Outcome};
 use crate::keyfile;
 use crate::output::Output;
 use crate::pack::{PackSpec, pack};
+use crate::serve::Server;
 use crate::synth;
+use crate::tree::{BUNDLES_DIR, Change, FEEDS_DIR, Signing, Tree};
 
 /// The species the first model knows, in output-index order (invented survey classes).
 const SPECIES_V1: [&str; 6] = [
@@ -39,6 +51,11 @@ const SIDE: u64 = 96;
 /// The cameras' app version, and the range the bundles require.
 const APP_VERSION: &str = "2.3.0";
 const REQUIRES_APP: &str = ">=2.0.0, <3.0.0";
+/// The channel the cameras follow, and the share of them the second release goes to first.
+const CHANNEL: &str = "stable";
+const ROLLOUT: u8 = 50;
+/// How long the demo's feeds stay valid: a week, the publish command's default.
+const FEED_EXPIRES_SECS: u64 = 7 * 86_400;
 /// A fixed creation time so that the demo's bundles are the same on every run.
 const CREATED: &str = "2026-12-01T06:00:00Z";
 
@@ -169,64 +186,174 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     let camera = Verifier::new(trusted.clone(), Version::parse(APP_VERSION)?)?
         .require_name("trailcam-species")
         .compatibility(camera_policy()?);
-    let camera_dir = dir.join("camera");
-    std::fs::create_dir_all(&camera_dir)?;
 
-    let unpacked = camera
-        .verify_path(&bundles[0])?
-        .unpack(&camera_dir.join("model-1.0.0"))?;
+    // The release tree, served from this process as any static web server would serve it.
+    let tree = dir.join("release");
+    let published = publish(&tree, &bundles[0], 100, &key, &trusted)?;
+    let server = Server::start(tree.clone(), "127.0.0.1:0".parse()?)
+        .context("cannot start the demo's web server on 127.0.0.1")?;
+    let feed_url = server.url(&format!("{FEEDS_DIR}/{CHANNEL}.json"));
+    story.tell(
+        "publish",
+        format!(
+            "published v1.0.0 on channel {CHANNEL} (feed sequence {}); the release tree is served at {}",
+            published.feed.sequence,
+            server.url("")
+        ),
+        json!({ "tree": tree, "url": server.url(""), "sequence": published.feed.sequence }),
+    );
+
+    // Two cameras whose rollout buckets for v1.1.0 fall on either side of 50%.
+    let v11 = file_digest(&bundles[1])?;
+    let (id_in, id_out) = pick_cameras(&v11, ROLLOUT)?;
+    let device = |id: &str| -> Result<Device> {
+        let store_dir = dir.join("cameras").join(id);
+        Ok(Device {
+            store: Store::open(&store_dir, camera.clone())?,
+            feed_url: feed_url.clone(),
+            channel: CHANNEL.into(),
+            feed_keys: (trusted.clone(), 1),
+            bundles: camera.clone(),
+            device_id: id.into(),
+            download_dir: store_dir.join(DOWNLOADS_DIR),
+            transfer: Transfer::new(),
+        })
+    };
+    let (cam_in, cam_out) = (device(&id_in)?, device(&id_out)?);
+    let mut species_count = 0;
+    for cam in [&cam_in, &cam_out] {
+        match cam.check(Timestamp::now())? {
+            Outcome::Updated { installed, .. } => species_count = installed.release.labels.len(),
+            other => bail!(
+                "{} expected to install v1.0.0, got {}",
+                cam.device_id,
+                other.name()
+            ),
+        }
+    }
     story.tell(
         "install",
         format!(
-            "camera (app {APP_VERSION}) checked v1.0.0 and unpacked it: {} species",
-            unpacked.labels.len()
+            "cameras {id_in} and {id_out} (app {APP_VERSION}) checked the feed, downloaded v1.0.0, \
+             verified it and installed it into their stores: {species_count} species"
         ),
-        json!({ "version": "1.0.0", "dir": unpacked.dir }),
+        json!({ "cameras": [id_in, id_out], "version": "1.0.0" }),
     );
 
-    let unpacked = camera
-        .clone()
-        .installed(Version::new(1, 0, 0))
-        .verify_path(&bundles[1])?
-        .unpack(&camera_dir.join("model-1.1.0"))?;
+    let published = publish(&tree, &bundles[1], ROLLOUT, &key, &trusted)?;
+    let rollout_feed = std::fs::read(tree.join(FEEDS_DIR).join(format!("{CHANNEL}.json")))?;
     story.tell(
-        "update",
+        "rollout",
         format!(
-            "camera accepted v1.1.0 over v1.0.0: now knows '{}'",
-            unpacked
-                .labels
-                .last()
-                .map(String::as_str)
-                .unwrap_or_default()
+            "published v1.1.0 on {CHANNEL} to {ROLLOUT}% of cameras (feed sequence {})",
+            published.feed.sequence
         ),
-        json!({ "version": "1.1.0", "dir": unpacked.dir }),
+        json!({ "version": "1.1.0", "rollout_percent": ROLLOUT, "sequence": published.feed.sequence }),
     );
+    let threshold = u16::from(ROLLOUT) * 100;
+    match cam_in.check(Timestamp::now())? {
+        Outcome::Updated { installed, .. } => story.tell(
+            "rollout-in",
+            format!(
+                "{id_in} is in rollout bucket {} of 10000 (under {threshold}): updated 1.0.0 -> 1.1.0, now knows '{}'",
+                rollout_bucket(&id_in, &v11),
+                installed.release.labels.last().map(String::as_str).unwrap_or_default()
+            ),
+            json!({ "camera": id_in, "version": "1.1.0", "model": installed.release.model }),
+        ),
+        other => bail!("{id_in} expected to take v1.1.0, got {}", other.name()),
+    }
+    match cam_out.check(Timestamp::now())? {
+        Outcome::NotInRollout { bucket, .. } => story.tell(
+            "rollout-out",
+            format!("{id_out} is in bucket {bucket} (not under {threshold}): not in the rollout yet, keeps v1.0.0"),
+            json!({ "camera": id_out, "bucket": bucket, "version": "1.0.0" }),
+        ),
+        other => bail!("{id_out} expected to stay out of the rollout, got {}", other.name()),
+    }
 
-    let replay = camera
-        .clone()
-        .installed(Version::new(1, 1, 0))
-        .verify_path(&bundles[0]);
+    let old = camera.verify_path(&bundles[0])?;
     refusal(
         &mut story,
         "replay",
-        "an old v1.0.0 bundle replayed to a camera on v1.1.0",
-        replay,
+        &format!("the old v1.0.0 bundle replayed into the store of {id_in} (on v1.1.0)"),
+        cam_in.store.install(old, Some(CHANNEL), None),
     )?;
 
-    let tampered = dir.join("species-1.1.0-tampered.ampoule");
-    std::fs::copy(&bundles[1], &tampered)?;
-    flip_byte(&tampered, 4096)?;
-    let result = camera
-        .clone()
-        .installed(Version::new(1, 0, 0))
-        .verify_path(&tampered)
-        .and_then(|mut v| v.check_contents().map(|_| v));
+    // v1.1.1: the same model, republished; then one byte of it flips on the server.
+    let spec = model_spec(
+        &dir.join("species-1.1.0.onnx"),
+        species(Some(NEW_SPECIES)),
+        "1.1.1",
+        &requires_app,
+        created,
+    )?;
+    let v111 = dir.join("species-1.1.1.ampoule");
+    pack(&spec, Some(&key), &v111, &indicatif::ProgressBar::hidden())?;
+    let published = publish(&tree, &v111, 100, &key, &trusted)?;
+    let served = tree
+        .join(BUNDLES_DIR)
+        .join(format!("{}.{BUNDLE_EXTENSION}", file_digest(&v111)?));
+    flip_byte(&served, 4096)?;
+    let result = cam_in.check(Timestamp::now());
+    let kept = cam_in.current_version()?;
+    if kept != Some(Version::new(1, 1, 0)) {
+        bail!("{id_in} should still run v1.1.0 after the tampered download, but runs {kept:?}");
+    }
     refusal(
         &mut story,
         "tamper",
-        "a copy of v1.1.0 with one payload byte flipped",
+        &format!(
+            "v1.1.1 (feed sequence {}) after one byte of its bundle flipped on the server \
+             ({id_in} keeps v1.1.0)",
+            published.feed.sequence
+        ),
         result,
     )?;
+
+    let mut sequence = 0;
+    for _ in 0..3 {
+        sequence = withdraw(&tree, &key)?.feed.sequence;
+    }
+    for cam in [&cam_in, &cam_out] {
+        match cam.check(Timestamp::now())? {
+            Outcome::NothingCurrent { .. } => {}
+            other => bail!(
+                "{} expected an empty channel, got {}",
+                cam.device_id,
+                other.name()
+            ),
+        }
+    }
+    let versions = |cam: &Device| -> Result<String> {
+        Ok(cam
+            .current_version()?
+            .map_or_else(|| "nothing".into(), |v| v.to_string()))
+    };
+    story.tell(
+        "withdraw",
+        format!(
+            "withdrew v1.1.1, v1.1.0 and v1.0.0: {CHANNEL} offers nothing (feed sequence {sequence}); \
+             {id_in} keeps v{}, {id_out} keeps v{}",
+            versions(&cam_in)?,
+            versions(&cam_out)?
+        ),
+        json!({ "sequence": sequence, "kept": { id_in.clone(): versions(&cam_in)?, id_out.clone(): versions(&cam_out)? } }),
+    );
+
+    crate::tree::write_atomic(
+        &tree.join(FEEDS_DIR).join(format!("{CHANNEL}.json")),
+        &rollout_feed,
+    )?;
+    refusal(
+        &mut story,
+        "feed-replay",
+        "the v1.1.0 rollout feed (sequence 2), validly signed, served again",
+        cam_out.check(Timestamp::now()),
+    )?;
+    server
+        .shutdown()
+        .context("cannot stop the demo's web server")?;
 
     let big = dir.join("species-1.2.0-128px.onnx");
     synth::write_onnx_classifier(&big, 128, 8, 7, 3)?;
@@ -323,6 +450,52 @@ fn model_spec(
         created,
         model_signature: read_model_signature_file(model)?,
     })
+}
+
+/// Copies a bundle into the release tree and makes it current on the demo channel.
+fn publish(
+    tree: &Path,
+    bundle: &Path,
+    rollout: u8,
+    key: &ed25519_dalek::SigningKey,
+    trusted: &TrustedKeys,
+) -> Result<Change> {
+    let tree = Tree::lock(tree)?;
+    let staged = tree.stage_bundle(bundle, trusted)?;
+    tree.publish(staged, CHANNEL, rollout, &[], &signing(key))
+}
+
+fn withdraw(tree: &Path, key: &ed25519_dalek::SigningKey) -> Result<Change> {
+    Tree::lock(tree)?.withdraw(CHANNEL, &signing(key))
+}
+
+fn signing(key: &ed25519_dalek::SigningKey) -> Signing<'_> {
+    Signing {
+        key,
+        now: Timestamp::now(),
+        expires_in_secs: FEED_EXPIRES_SECS,
+        tree_head_keys: &[],
+    }
+}
+
+fn file_digest(path: &Path) -> Result<Digest> {
+    let file =
+        std::fs::File::open(path).with_context(|| format!("cannot open {}", path.display()))?;
+    Ok(hash_reader(file, u64::MAX)
+        .with_context(|| format!("cannot read {}", path.display()))?
+        .0)
+}
+
+/// The first camera ids (camera-01, camera-02, ...) inside and outside a rollout of `percent`
+/// for the bundle `digest`: the same bundle always gives the same two.
+fn pick_cameras(digest: &Digest, percent: u8) -> Result<(String, String)> {
+    let ids: Vec<String> = (1..=999).map(|n| format!("camera-{n:02}")).collect();
+    let inside = ids.iter().find(|id| in_rollout(id, digest, percent));
+    let outside = ids.iter().find(|id| !in_rollout(id, digest, percent));
+    match (inside, outside) {
+        (Some(a), Some(b)) => Ok((a.clone(), b.clone())),
+        _ => bail!("no camera ids on both sides of a {percent}% rollout"),
+    }
 }
 
 fn mib(bytes: u64) -> f64 {

@@ -68,6 +68,7 @@ fn main() -> ExitCode {
         Command::Withdraw(args) => cmd::withdraw::run(args, &out),
         Command::Ledger(args) => cmd::ledger::run(args, &out),
         Command::Serve(args) => cmd::serve::run(args, &out),
+        Command::Update(args) => cmd::update::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
     };
     match result {

@@ -124,6 +124,7 @@ impl Output {
                 None => {
                     let label = match p.stage {
                         Stage::HashPayload => "hashing",
+                        Stage::Download => "downloading",
                         _ => "checking",
                     };
                     bars.push((p.stage, Output { json }.bar(p.total, label)));

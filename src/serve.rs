@@ -13,6 +13,7 @@ use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::pin::Pin;
 use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::task::{Context, Poll};
 use std::time::Duration;
 
@@ -207,19 +208,94 @@ pub fn handle<B>(root: &Path, request: &Request<B>) -> Response<ServeBody> {
     response
 }
 
-/// Serves `root` on `listener` until the process is stopped, calling `ready` with the bound
+/// Serves `root` on `addr` until the process is stopped, calling `ready` with the bound
 /// address first.
 pub fn run(root: PathBuf, addr: SocketAddr, ready: impl FnOnce(SocketAddr)) -> io::Result<()> {
+    let listener = std::net::TcpListener::bind(addr)?;
+    ready(listener.local_addr()?);
+    serve_until(root, listener, &AtomicBool::new(false))
+}
+
+/// A server running on a background thread of this process (for the demo, tests and
+/// benchmarks), stopped by [`Server::shutdown`] or when dropped.
+pub struct Server {
+    addr: SocketAddr,
+    stop: Arc<AtomicBool>,
+    thread: Option<std::thread::JoinHandle<io::Result<()>>>,
+}
+
+impl Server {
+    /// Binds `addr` (port 0 picks a free port) and serves `root` from a background thread.
+    pub fn start(root: PathBuf, addr: SocketAddr) -> io::Result<Server> {
+        let listener = std::net::TcpListener::bind(addr)?;
+        let addr = listener.local_addr()?;
+        let stop = Arc::new(AtomicBool::new(false));
+        let flag = Arc::clone(&stop);
+        let thread = std::thread::Builder::new()
+            .name("ampoule-serve".into())
+            .spawn(move || serve_until(root, listener, &flag))?;
+        Ok(Server {
+            addr,
+            stop,
+            thread: Some(thread),
+        })
+    }
+
+    /// The address the server listens on.
+    pub fn addr(&self) -> SocketAddr {
+        self.addr
+    }
+
+    /// The URL of a path in the tree, like `feeds/stable.json`.
+    pub fn url(&self, path: &str) -> String {
+        format!("http://{}/{path}", self.addr)
+    }
+
+    /// Stops accepting, ends open connections and waits for the thread.
+    pub fn shutdown(mut self) -> io::Result<()> {
+        self.stop_thread()
+    }
+
+    fn stop_thread(&mut self) -> io::Result<()> {
+        let Some(thread) = self.thread.take() else {
+            return Ok(());
+        };
+        self.stop.store(true, Ordering::SeqCst);
+        // The accept loop checks the flag after each connection: one more wakes it.
+        let _ = std::net::TcpStream::connect(self.addr);
+        thread
+            .join()
+            .map_err(|_| io::Error::other("the server thread panicked"))?
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        let _ = self.stop_thread();
+    }
+}
+
+/// Serves `root` on `listener` until `stop` is set (checked after each accepted connection);
+/// dropping the runtime then ends the connections still open.
+fn serve_until(
+    root: PathBuf,
+    listener: std::net::TcpListener,
+    stop: &AtomicBool,
+) -> io::Result<()> {
     let runtime = tokio::runtime::Builder::new_current_thread()
         .enable_io()
         .enable_time()
         .build()?;
     let root = Arc::new(root);
+    listener.set_nonblocking(true)?;
     runtime.block_on(async move {
-        let listener = tokio::net::TcpListener::bind(addr).await?;
-        ready(listener.local_addr()?);
+        let listener = tokio::net::TcpListener::from_std(listener)?;
         loop {
-            let (stream, _) = match listener.accept().await {
+            let accepted = listener.accept().await;
+            if stop.load(Ordering::SeqCst) {
+                return Ok(());
+            }
+            let (stream, _) = match accepted {
                 Ok(conn) => conn,
                 // Out of file descriptors or a connection reset before accept: keep serving.
                 Err(_) => {

@@ -30,43 +30,102 @@ fn demo_runs_and_refuses_every_attack() {
             "pack",
             "pack",
             "labels",
+            "publish",
             "install",
-            "update",
+            "rollout",
+            "rollout-in",
+            "rollout-out",
             "replay",
             "tamper",
+            "withdraw",
+            "feed-replay",
             "incompatible",
             "forgery"
         ]
     );
-    let error_of = |name: &str| -> String {
+    let step = |name: &str| -> serde_json::Value {
         doc["steps"]
             .as_array()
             .and_then(|a| a.iter().find(|s| s["step"] == name))
-            .and_then(|s| s["detail"]["error"].as_str())
+            .cloned()
+            .unwrap_or_default()
+    };
+    let error_of = |name: &str| -> String {
+        step(name)["detail"]["error"]
+            .as_str()
             .unwrap_or_default()
             .to_string()
     };
     assert_eq!(
-        error_of("replay"),
-        "bundle version 1.0.0 is not newer than the installed version 1.1.0; refusing a downgrade or reinstall"
+        error_of("labels"),
+        "the label list has 6 labels, but output 'species' has 7 classes (shape [N, 7])"
     );
+    assert_eq!(
+        error_of("replay"),
+        "bundle version 1.0.0 is not newer than 1.1.0, the highest version this store accepted; \
+         refusing a downgrade or reinstall"
+    );
+    // The tampered file's digest differs from the one the feed signed; the message names both
+    // and the URL on the demo's own server.
+    let tamper = error_of("tamper");
     assert!(
-        error_of("tamper").starts_with("payload digest mismatch"),
-        "{}",
-        error_of("tamper")
+        tamper.starts_with("file downloaded from http://127.0.0.1:")
+            && tamper.contains(", but the feed declares ")
+            && tamper.ends_with("; the partial file was discarded"),
+        "{tamper}"
+    );
+    assert_eq!(
+        error_of("feed-replay"),
+        "feed sequence 2 is lower than 6, the last one this device accepted; refusing a replayed older feed"
+    );
+    assert_eq!(
+        error_of("incompatible"),
+        "input 'image' has shape [N, 3, 128, 128], the app expects [*, 3, 96, 96]: dimension 2 is 128, not 96"
     );
     assert!(
         error_of("forgery").starts_with("bundle has no valid signature by a trusted key"),
         "{}",
         error_of("forgery")
     );
-    assert_eq!(
-        error_of("labels"),
-        "the label list has 6 labels, but output 'species' has 7 classes (shape [N, 7])"
+
+    // The rollout split one camera in and one out, and each kept its model when the channel
+    // was withdrawn.
+    let camera_in = step("rollout-in")["detail"]["camera"]
+        .as_str()
+        .expect("camera in")
+        .to_string();
+    let camera_out = step("rollout-out")["detail"]["camera"]
+        .as_str()
+        .expect("camera out")
+        .to_string();
+    assert_ne!(camera_in, camera_out);
+    assert!(
+        step("rollout-out")["detail"]["bucket"]
+            .as_u64()
+            .expect("bucket")
+            >= 5000
     );
-    assert_eq!(
-        error_of("incompatible"),
-        "input 'image' has shape [N, 3, 128, 128], the app expects [*, 3, 96, 96]: dimension 2 is 128, not 96"
-    );
-    assert!(work.join("camera/model-1.1.0/labels.txt").is_file());
+    let kept = &step("withdraw")["detail"]["kept"];
+    assert_eq!(kept[&camera_in], "1.1.0");
+    assert_eq!(kept[&camera_out], "1.0.0");
+    assert_eq!(step("withdraw")["detail"]["sequence"], 6);
+
+    // What the stores hold on disk agrees: read state.json directly.
+    let state = |camera: &str| -> serde_json::Value {
+        let path = work.join("cameras").join(camera).join("state.json");
+        serde_json::from_slice(&std::fs::read(path).expect("state.json")).expect("state JSON")
+    };
+    let s_in = state(&camera_in);
+    assert_eq!(s_in["current"]["version"], "1.1.0");
+    assert_eq!(s_in["previous"]["version"], "1.0.0");
+    assert_eq!(s_in["channels"]["stable"]["highest_sequence"], 6);
+    let s_out = state(&camera_out);
+    assert_eq!(s_out["current"]["version"], "1.0.0");
+    assert_eq!(s_out["channels"]["stable"]["highest_version"], "1.0.0");
+    assert_eq!(s_out["channels"]["stable"]["highest_sequence"], 6);
+    let model = step("rollout-in")["detail"]["model"]
+        .as_str()
+        .expect("model path")
+        .to_string();
+    assert!(std::path::Path::new(&model).is_file(), "{model}");
 }

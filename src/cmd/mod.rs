@@ -11,6 +11,7 @@ pub mod publish;
 pub mod serve;
 pub mod sign;
 pub mod trust;
+pub mod update;
 pub mod verify;
 pub mod withdraw;
 

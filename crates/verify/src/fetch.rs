@@ -40,11 +40,11 @@ use crate::ledger;
 use crate::store::Store;
 use crate::time::Timestamp;
 use crate::trust::TrustSet;
-use crate::verify::{VerifiedBundle, Verifier};
+use crate::verify::{Progress, ProgressFn, Stage, VerifiedBundle, Verifier};
 
 /// Limits of one transfer. The defaults suit a weak cellular link: generous per-read and total
 /// times, and a low minimum rate that still ends a connection dripping a few bytes at a time.
-#[derive(Debug, Clone)]
+#[derive(Clone)]
 pub struct Transfer {
     connect_timeout: Duration,
     read_timeout: Duration,
@@ -53,6 +53,22 @@ pub struct Transfer {
     rate_window: Duration,
     attempts: u32,
     tls_roots: Option<Vec<Vec<u8>>>,
+    progress: Option<ProgressFn>,
+}
+
+impl std::fmt::Debug for Transfer {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Transfer")
+            .field("connect_timeout", &self.connect_timeout)
+            .field("read_timeout", &self.read_timeout)
+            .field("total_timeout", &self.total_timeout)
+            .field("min_rate", &self.min_rate)
+            .field("rate_window", &self.rate_window)
+            .field("attempts", &self.attempts)
+            .field("tls_roots", &self.tls_roots.as_ref().map(Vec::len))
+            .field("progress", &self.progress.is_some())
+            .finish()
+    }
 }
 
 impl Default for Transfer {
@@ -65,6 +81,7 @@ impl Default for Transfer {
             rate_window: Duration::from_secs(60),
             attempts: 3,
             tls_roots: None,
+            progress: None,
         }
     }
 }
@@ -107,6 +124,13 @@ impl Transfer {
     /// own certificate authority.
     pub fn only_tls_roots_der(mut self, roots: Vec<Vec<u8>>) -> Self {
         self.tls_roots = Some(roots);
+        self
+    }
+
+    /// Calls `progress` while a bundle downloads, with [`Stage::Download`] and the bytes of
+    /// the file held so far (a resumed download starts above zero) out of its signed size.
+    pub fn on_progress(mut self, progress: ProgressFn) -> Self {
+        self.progress = Some(progress);
         self
     }
 
@@ -554,6 +578,13 @@ impl Session {
                 file.write_all(data).map_err(|e| io("write", e))?;
                 hasher.update(data);
                 have += data.len() as u64;
+                if let Some(progress) = &self.transfer.progress {
+                    progress(Progress {
+                        stage: Stage::Download,
+                        done: have,
+                        total: size,
+                    });
+                }
                 Ok(())
             })
             .await;

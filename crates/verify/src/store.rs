@@ -88,6 +88,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::digest::{Digest, hash_reader};
 use crate::error::{Error, ErrorKind, Result};
+use crate::feed::VerifiedFeed;
 use crate::format::{entry, limit, trust_set};
 use crate::keys::KeyId;
 use crate::manifest::{Manifest, Role};
@@ -137,10 +138,15 @@ pub struct ReleaseRef {
 #[serde(deny_unknown_fields)]
 #[non_exhaustive]
 pub struct ChannelState {
-    /// The highest version installed from this channel.
-    pub highest_version: Version,
+    /// The highest version installed from this channel; `None` when feeds of the channel were
+    /// recorded ([`Store::record_feed`]) but nothing was installed from it yet.
+    pub highest_version: Option<Version>,
     /// The highest feed sequence accepted on this channel, if a feed ever named one.
     pub highest_sequence: Option<u64>,
+    /// SHA-256 of the signed text of the feed accepted under `highest_sequence`, when known:
+    /// with it, another feed under the same sequence is refused too.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub feed_sha256: Option<Digest>,
 }
 
 /// The store's state (`state.json`): which releases are current and previous, and what it
@@ -246,18 +252,27 @@ impl StoreState {
                     channel.escape_debug()
                 ));
             }
-            match &self.highest_version {
-                Some(h) if state.highest_version.cmp_precedence(h).is_le() => {}
-                _ => {
+            match (&state.highest_version, &self.highest_version) {
+                (None, _) => {}
+                (Some(v), Some(h)) if v.cmp_precedence(h).is_le() => {}
+                (Some(v), _) => {
                     return Err(format!(
-                        "channel '{channel}' records version {}, above the highest version accepted ({})",
-                        state.highest_version,
+                        "channel '{channel}' records version {v}, above the highest version accepted ({})",
                         shown_version(self.highest_version.as_ref())
                     ));
                 }
             }
         }
         Ok(())
+    }
+}
+
+impl StoreState {
+    /// The feed last accepted on `channel`, as [`crate::FeedVerifier::last_accepted`] takes it:
+    /// its sequence and, when the store kept it, the digest of its signed text.
+    pub fn last_feed(&self, channel: &str) -> Option<(u64, Option<Digest>)> {
+        let known = self.channels.get(channel)?;
+        known.highest_sequence.map(|s| (s, known.feed_sha256))
     }
 }
 
@@ -504,6 +519,87 @@ impl Store {
         self.install_with_hook(bundle, channel, feed_sequence, &mut |_| Ok(()))
     }
 
+    /// Installs a bundle that an update check found through `feed`, as [`Store::install`]
+    /// does, recording the feed's channel, sequence and digest. The bundle must be the
+    /// release the feed names; a feed under an accepted sequence with another digest, or
+    /// under a lower sequence, is refused.
+    pub fn install_from_feed(
+        &self,
+        bundle: VerifiedBundle,
+        feed: &VerifiedFeed,
+    ) -> Result<Installed> {
+        let m = bundle.manifest();
+        match feed.release() {
+            Some(r) if r.name == m.name && r.version == m.version => {}
+            offered => {
+                return Err(Error::new(
+                    ErrorKind::Feed,
+                    format!(
+                        "bundle {} {} is not the release feed sequence {} offers ({})",
+                        m.name,
+                        m.version,
+                        feed.sequence(),
+                        offered.map_or_else(
+                            || "nothing".to_string(),
+                            |r| format!("{} {}", r.name, r.version)
+                        )
+                    ),
+                ));
+            }
+        }
+        let channel = feed.feed().channel.as_str();
+        let (sequence, digest) = (feed.sequence(), feed.digest());
+        self.install_inner(
+            bundle,
+            Some(channel),
+            Some(sequence),
+            Some(digest),
+            &mut |_| Ok(()),
+        )
+    }
+
+    /// Records that the device acted on `feed` without installing anything (the channel
+    /// offers nothing new for it, or not yet for this device), so that an older feed is
+    /// refused from then on. Returns whether `state.json` changed: polling the same feed again
+    /// writes nothing. Refuses a feed under a lower sequence than the channel's highest, or
+    /// under the same sequence with another digest.
+    pub fn record_feed(&self, feed: &VerifiedFeed) -> Result<bool> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        let channel = feed.feed().channel.as_str();
+        check_channel(channel)?;
+        let (sequence, digest) = (feed.sequence(), feed.digest());
+        let known = state.channels.get(channel);
+        check_feed_sequence(channel, known, sequence, Some(digest))?;
+        if let Some(known) = known
+            && known.highest_sequence == Some(sequence)
+            && known.feed_sha256 == Some(digest)
+        {
+            return Ok(false);
+        }
+        if known.is_none() && state.channels.len() >= MAX_CHANNELS {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "store {} already tracks {MAX_CHANNELS} channels; refusing a new channel '{channel}'",
+                    self.dir.display()
+                ),
+            ));
+        }
+        let mut next = state.clone();
+        next.channels.insert(
+            channel.to_string(),
+            ChannelState {
+                highest_version: known.and_then(|k| k.highest_version.clone()),
+                highest_sequence: Some(sequence),
+                feed_sha256: Some(digest),
+            },
+        );
+        self.commit(&next, &mut |_| Ok(()))?;
+        sync_dir(&self.dir)?;
+        Ok(true)
+    }
+
     /// [`Store::install`] with a hook called at every [`Step`]; for crash and fault tests.
     #[doc(hidden)]
     pub fn install_with_hook(
@@ -511,6 +607,17 @@ impl Store {
         bundle: VerifiedBundle,
         channel: Option<&str>,
         feed_sequence: Option<u64>,
+        hook: StepHook<'_>,
+    ) -> Result<Installed> {
+        self.install_inner(bundle, channel, feed_sequence, None, hook)
+    }
+
+    fn install_inner(
+        &self,
+        bundle: VerifiedBundle,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+        feed_sha256: Option<Digest>,
         hook: StepHook<'_>,
     ) -> Result<Installed> {
         let _lock = self.lock()?;
@@ -525,7 +632,13 @@ impl Store {
             )
             .map_err(|e| e.context("the store's verifier refuses the bundle"))?;
         let manifest_sha256 = Digest::of(&bundle.layout().manifest);
-        let next = self.next_state(&state, &manifest, manifest_sha256, channel, feed_sequence)?;
+        let next = self.next_state(
+            &state,
+            &manifest,
+            manifest_sha256,
+            channel,
+            feed_sequence.map(|s| (s, feed_sha256)),
+        )?;
         let release = release_dir_name(&manifest, &manifest_sha256);
         let releases = self.releases_path();
         let dest = releases.join(&release);
@@ -846,7 +959,7 @@ impl Store {
         manifest: &Manifest,
         manifest_sha256: Digest,
         channel: Option<&str>,
-        feed_sequence: Option<u64>,
+        feed: Option<(u64, Option<Digest>)>,
     ) -> Result<StoreState> {
         let refuse = |message: String| Err(Error::new(ErrorKind::Policy, message));
         if let Some(name) = &state.name
@@ -868,24 +981,18 @@ impl Store {
             ));
         }
         let mut next = state.clone();
-        match (channel, feed_sequence) {
-            (None, Some(sequence)) => {
+        match (channel, feed) {
+            (None, Some((sequence, _))) => {
                 return refuse(format!(
                     "feed sequence {sequence} was given without a channel; name the channel the feed came from"
                 ));
             }
             (None, None) => {}
-            (Some(channel), sequence) => {
+            (Some(channel), feed) => {
                 check_channel(channel)?;
                 let known = next.channels.get(channel);
-                if let (Some(sequence), Some(highest)) =
-                    (sequence, known.and_then(|c| c.highest_sequence))
-                    && sequence < highest
-                {
-                    return refuse(format!(
-                        "feed sequence {sequence} for channel '{channel}' is lower than {highest}, \
-                             the highest this store accepted; refusing a replayed feed"
-                    ));
+                if let Some((sequence, digest)) = feed {
+                    check_feed_sequence(channel, known, sequence, digest)?;
                 }
                 if known.is_none() && next.channels.len() >= MAX_CHANNELS {
                     return refuse(format!(
@@ -893,12 +1000,22 @@ impl Store {
                         self.dir.display()
                     ));
                 }
-                let highest_sequence = sequence.or(known.and_then(|c| c.highest_sequence));
+                let (highest_sequence, feed_sha256) = match (feed, known) {
+                    (Some((sequence, digest)), Some(k)) if k.highest_sequence == Some(sequence) => {
+                        (Some(sequence), digest.or(k.feed_sha256))
+                    }
+                    (Some((sequence, digest)), _) => (Some(sequence), digest),
+                    (None, k) => (
+                        k.and_then(|c| c.highest_sequence),
+                        k.and_then(|c| c.feed_sha256),
+                    ),
+                };
                 next.channels.insert(
                     channel.to_string(),
                     ChannelState {
-                        highest_version: manifest.version.clone(),
+                        highest_version: Some(manifest.version.clone()),
                         highest_sequence,
+                        feed_sha256,
                     },
                 );
             }
@@ -1124,6 +1241,42 @@ fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
         Some(stored) if stored.version() > initial.version() => stored,
         _ => initial,
     })
+}
+
+/// Refuses a feed under a lower sequence than the channel's highest (a replay), or under the
+/// same sequence with another digest (a publisher never signs two feeds under one sequence).
+/// Like every refusal of the store's own state, these are [`ErrorKind::Policy`].
+fn check_feed_sequence(
+    channel: &str,
+    known: Option<&ChannelState>,
+    sequence: u64,
+    digest: Option<Digest>,
+) -> Result<()> {
+    let Some(highest) = known.and_then(|c| c.highest_sequence) else {
+        return Ok(());
+    };
+    if sequence < highest {
+        return Err(Error::new(
+            ErrorKind::Policy,
+            format!(
+                "feed sequence {sequence} for channel '{channel}' is lower than {highest}, \
+                 the highest this store accepted; refusing a replayed feed"
+            ),
+        ));
+    }
+    if sequence == highest
+        && let (Some(found), Some(kept)) = (digest, known.and_then(|c| c.feed_sha256))
+        && found != kept
+    {
+        return Err(Error::new(
+            ErrorKind::Policy,
+            format!(
+                "feed sequence {sequence} for channel '{channel}' was accepted with digest {kept}, \
+                 but this feed under the same sequence has digest {found}; refusing it"
+            ),
+        ));
+    }
+    Ok(())
 }
 
 fn step(hook: StepHook<'_>, step: Step) -> Result<()> {

@@ -35,6 +35,8 @@ pub enum Stage {
     HashPayload,
     /// Decompressing and checking (and possibly writing) the payload's files.
     Unpack,
+    /// Downloading the bundle file (the `fetch` feature's `Transfer::on_progress`).
+    Download,
 }
 
 /// A progress report: `done` of `total` bytes of `stage`.

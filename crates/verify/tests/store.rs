@@ -242,7 +242,7 @@ fn install_refuses_downgrade_reinstall_replayed_feed_and_other_lines() {
     let state = store.state().expect("state");
     assert_eq!(
         state.channels["beta"].highest_version,
-        "1.3.0-beta.1".parse().expect("v")
+        Some("1.3.0-beta.1".parse().expect("v"))
     );
     assert_eq!(state.channels["stable"].highest_sequence, Some(2));
 

@@ -1,0 +1,324 @@
+//! Measures delivery of an 84 MiB invented model over loopback (issue 3): `ampoule update`
+//! (feed, download, verify, install into the store with every file flushed to disk) against
+//! what general-purpose tools take for the same bytes from the same server: `curl` for the
+//! download, then the checks FORMAT.md describes with openssl, GNU tar and zstd, and `sync`
+//! for the unpacked files. Also the update's peak resident memory and the store's extra disk
+//! space while it installs.
+//!
+//! Run with `cargo bench --bench delivery`; it prints its numbers and is not part of the test
+//! suite. It needs curl, openssl, tar and zstd; /usr/bin/time (or python3) for peak memory.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::time::{Duration, Instant};
+
+use ampoule::keyfile;
+use ampoule::pack::{PackSpec, pack};
+use ampoule::serve::Server;
+use ampoule::synth;
+use ampoule::tree::{Signing, Tree};
+use ampoule_verify::model::read_model_signature_file;
+use ampoule_verify::{PublicKey, Timestamp, TrustedKeys};
+use anyhow::{Context, Result, bail};
+
+const BIN: &str = env!("CARGO_BIN_EXE_ampoule");
+/// 96 x 96 x 3 inputs into 797 hidden units: 88.1 MB (84.0 MiB) of float32 weights.
+const SIDE: u64 = 96;
+const HIDDEN: u64 = 797;
+const LABELS: [&str; 7] = [
+    "fox",
+    "roe deer",
+    "wild boar",
+    "badger",
+    "hare",
+    "empty frame",
+    "pine marten",
+];
+const RUNS: usize = 3;
+
+fn mib(bytes: u64) -> f64 {
+    bytes as f64 / (1024.0 * 1024.0)
+}
+
+fn median(mut times: Vec<Duration>) -> Duration {
+    times.sort();
+    times[times.len() / 2]
+}
+
+/// Disk space a directory tree takes (allocated blocks), following no links.
+fn disk_usage(path: &Path) -> u64 {
+    use std::os::unix::fs::MetadataExt;
+    let Ok(meta) = std::fs::symlink_metadata(path) else {
+        return 0;
+    };
+    let mut total = meta.blocks() * 512;
+    if meta.is_dir()
+        && let Ok(entries) = std::fs::read_dir(path)
+    {
+        for entry in entries.flatten() {
+            total += disk_usage(&entry.path());
+        }
+    }
+    total
+}
+
+/// Runs `command`, returning its wall time and, when a tool can tell, its peak RSS in KiB.
+fn run_measured(command: Command, dir: &Path) -> Result<(Duration, Option<u64>)> {
+    let rss_file = dir.join("maxrss");
+    let _ = std::fs::remove_file(&rss_file);
+    let program = command.get_program().to_owned();
+    let args: Vec<_> = command.get_args().map(|a| a.to_owned()).collect();
+    let cwd = command.get_current_dir().map(Path::to_path_buf);
+    let mut wrapped = if Path::new("/usr/bin/time").is_file() {
+        let mut c = Command::new("/usr/bin/time");
+        c.arg("-f").arg("%M").arg("-o").arg(&rss_file).arg(&program);
+        c
+    } else {
+        // Python's resource module reads the children's rusage: ru_maxrss in KiB on Linux.
+        let mut c = Command::new("python3");
+        c.arg("-c").arg(
+            "import resource,subprocess,sys; r=subprocess.run(sys.argv[2:]); \
+             open(sys.argv[1],'w').write(str(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)); \
+             sys.exit(r.returncode)",
+        );
+        c.arg(&rss_file).arg(&program);
+        c
+    };
+    wrapped.args(&args);
+    if let Some(cwd) = cwd {
+        wrapped.current_dir(cwd);
+    }
+    let start = Instant::now();
+    let out = wrapped
+        .output()
+        .context("cannot run the measured command")?;
+    let elapsed = start.elapsed();
+    if !out.status.success() {
+        bail!(
+            "{program:?} failed: {}{}",
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    let rss = std::fs::read_to_string(&rss_file)
+        .ok()
+        .and_then(|s| s.trim().parse().ok());
+    Ok((elapsed, rss))
+}
+
+fn update_command(dir: &Path, store: &Path, feed: &str) -> Command {
+    let mut c = Command::new(BIN);
+    c.args(["update", "--store"])
+        .arg(store)
+        .args(["--feed", feed, "--trust"])
+        .arg(dir.join("release.public.pem"))
+        .args(["--app-version", "2.3.0", "--device-id", "camera-bench"]);
+    c
+}
+
+fn pack_release(
+    dir: &Path,
+    version: &str,
+    seed: u64,
+    key: &ed25519_dalek::SigningKey,
+) -> Result<(PathBuf, u64)> {
+    let model = dir.join(format!("species-{version}.onnx"));
+    synth::write_onnx_classifier(&model, SIDE, HIDDEN, LABELS.len() as u64, seed)?;
+    let model_len = std::fs::metadata(&model)?.len();
+    let spec = PackSpec {
+        model: model.clone(),
+        model_path: "model.onnx".into(),
+        labels: LABELS.iter().map(|s| s.to_string()).collect(),
+        name: "trailcam-species".into(),
+        version: version.parse()?,
+        requires_app: ">=2.0.0, <3.0.0".parse()?,
+        created: "2026-12-01T06:00:00Z".parse()?,
+        model_signature: read_model_signature_file(&model)?,
+    };
+    let bundle = dir.join(format!("species-{version}.ampoule"));
+    pack(&spec, Some(key), &bundle, &indicatif::ProgressBar::hidden())?;
+    Ok((bundle, model_len))
+}
+
+fn publish(
+    tree: &Path,
+    bundle: &Path,
+    key: &ed25519_dalek::SigningKey,
+    trusted: &TrustedKeys,
+) -> Result<ampoule::tree::Change> {
+    let tree = Tree::lock(tree)?;
+    let staged = tree.stage_bundle(bundle, trusted)?;
+    tree.publish(
+        staged,
+        "stable",
+        100,
+        &[],
+        &Signing {
+            key,
+            now: Timestamp::now(),
+            expires_in_secs: 86_400,
+            tree_head_keys: &[],
+        },
+    )
+}
+
+/// The reference: curl, then the FORMAT.md checks with openssl, tar and zstd, then sync.
+const REFERENCE: &str = r#"set -euo pipefail
+cd "$1"
+curl -s -o bundle.ampoule "$2"
+echo "$3  bundle.ampoule" | sha256sum -c --quiet -
+tar xf bundle.ampoule manifest.json signatures.json payload.tar.zst
+{ printf 'ampoule-sig-v1:manifest\n'; cat manifest.json; } > signed.bin
+python3 -c 'import json,sys; print(json.load(open("signatures.json"))["signatures"][0]["signature"])' | xxd -r -p > sig.bin
+openssl pkeyutl -verify -pubin -inkey "$4" -rawin -in signed.bin -sigfile sig.bin > /dev/null
+openssl dgst -sha256 payload.tar.zst > /dev/null
+mkdir out
+zstd -d -q -c payload.tar.zst | tar xf - -C out
+sha256sum out/model.onnx out/labels.txt > /dev/null
+sync out/model.onnx out/labels.txt
+"#;
+
+fn main() -> Result<()> {
+    for tool in [
+        "curl",
+        "openssl",
+        "tar",
+        "zstd",
+        "xxd",
+        "python3",
+        "sha256sum",
+    ] {
+        if Command::new(tool).arg("--version").output().is_err() {
+            println!("delivery benchmark skipped: the {tool} command is not available");
+            return Ok(());
+        }
+    }
+    let work = tempfile::tempdir()?;
+    let dir = work.path();
+    let key = keyfile::generate_key();
+    let public = PublicKey::from_verifying_key(&key.verifying_key())?;
+    keyfile::write_public_key(&dir.join("release.public.pem"), &public)?;
+    let trusted: TrustedKeys = [public].into_iter().collect();
+
+    let (v1, model_len) = pack_release(dir, "1.0.0", 1, &key)?;
+    let bundle_len = std::fs::metadata(&v1)?.len();
+    let tree = dir.join("release");
+    let change = publish(&tree, &v1, &key, &trusted)?;
+    let release = change.feed.release.clone().context("published release")?;
+    let server = Server::start(tree.clone(), "127.0.0.1:0".parse()?)?;
+    let feed = server.url("feeds/stable.json");
+    let bundle_url = server.url(&format!("bundles/{}.ampoule", release.sha256));
+    println!(
+        "delivery of an invented model: {:.1} MiB model, {:.1} MiB bundle, over loopback from the in-process server",
+        mib(model_len),
+        mib(bundle_len)
+    );
+
+    let mut ours = Vec::new();
+    let mut rss = Vec::new();
+    for run in 0..RUNS {
+        let store = dir.join(format!("store-{run}"));
+        let (t, r) = run_measured(update_command(dir, &store, &feed), dir)?;
+        ours.push(t);
+        rss.extend(r);
+    }
+    let mut theirs = Vec::new();
+    for run in 0..RUNS {
+        let scratch = dir.join(format!("reference-{run}"));
+        std::fs::create_dir(&scratch)?;
+        let mut c = Command::new("bash");
+        c.arg("-c")
+            .arg(REFERENCE)
+            .arg("reference")
+            .arg(&scratch)
+            .arg(&bundle_url)
+            .arg(release.sha256.to_hex())
+            .arg(dir.join("release.public.pem"));
+        let start = Instant::now();
+        let out = c.output()?;
+        if !out.status.success() {
+            bail!(
+                "the reference pipeline failed: {}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+        }
+        theirs.push(start.elapsed());
+        std::fs::remove_dir_all(&scratch)?;
+    }
+    let (a, b) = (median(ours.clone()), median(theirs.clone()));
+    println!(
+        "  ampoule update (fresh store): median {:.3} s of {RUNS} ({:?})",
+        a.as_secs_f64(),
+        ours.iter()
+            .map(|t| format!("{:.3}", t.as_secs_f64()))
+            .collect::<Vec<_>>()
+    );
+    println!(
+        "  curl + sha256sum + tar + openssl + zstd | tar + sha256sum + sync: median {:.3} s of {RUNS} ({:?})",
+        b.as_secs_f64(),
+        theirs
+            .iter()
+            .map(|t| format!("{:.3}", t.as_secs_f64()))
+            .collect::<Vec<_>>()
+    );
+    println!(
+        "  ratio ampoule / reference: {:.2}",
+        a.as_secs_f64() / b.as_secs_f64()
+    );
+    match rss.iter().max() {
+        Some(kib) => println!(
+            "  peak RSS of ampoule update: {:.1} MiB (max of {RUNS} runs; the model is {:.1} MiB)",
+            *kib as f64 / 1024.0,
+            mib(model_len)
+        ),
+        None => {
+            println!("  peak RSS of ampoule update: not measured (no /usr/bin/time or python3)")
+        }
+    }
+
+    // The store's disk space while an update installs over an installed model: polled every
+    // 2 ms from another thread.
+    let (v2, _) = pack_release(dir, "1.1.0", 2, &key)?;
+    publish(&tree, &v2, &key, &trusted)?;
+    let store = dir.join("store-0");
+    let before = disk_usage(&store);
+    let peak = Arc::new(AtomicU64::new(before));
+    let done = Arc::new(AtomicBool::new(false));
+    let poller = {
+        let (peak, done, store) = (Arc::clone(&peak), Arc::clone(&done), store.clone());
+        std::thread::spawn(move || {
+            while !done.load(Ordering::SeqCst) {
+                peak.fetch_max(disk_usage(&store), Ordering::SeqCst);
+                std::thread::sleep(Duration::from_millis(2));
+            }
+        })
+    };
+    let (t, r) = run_measured(update_command(dir, &store, &feed), dir)?;
+    done.store(true, Ordering::SeqCst);
+    let _ = poller.join();
+    let after = disk_usage(&store);
+    let peak = peak.load(Ordering::SeqCst).max(after);
+    println!(
+        "  update 1.0.0 -> 1.1.0: {:.3} s, peak RSS {}",
+        t.as_secs_f64(),
+        r.map_or_else(
+            || "not measured".into(),
+            |k| format!("{:.1} MiB", k as f64 / 1024.0)
+        )
+    );
+    println!(
+        "  store on disk: {:.1} MiB before, {:.1} MiB at the peak, {:.1} MiB after (current + previous)",
+        mib(before),
+        mib(peak),
+        mib(after)
+    );
+    println!(
+        "  extra disk space during the install: {:.1} MiB = {:.2} x one model copy (the download and the unpacked new release)",
+        mib(peak - before),
+        (peak - before) as f64 / model_len as f64
+    );
+    server.shutdown()?;
+    Ok(())
+}
