@@ -608,4 +608,9 @@ pub struct UpdateArgs {
     /// The largest bundle to download, and the most bytes it may unpack to.
     #[arg(long, value_name = "BYTES")]
     pub max_size: Option<u64>,
+    /// Accept feeds that carry no audit-ledger proof (release trees made before the ledger
+    /// existed). Without the ledger, a bundle signed with a stolen key but never published
+    /// would be installed; do not use this on devices in the field.
+    #[arg(long)]
+    pub dangerous_skip_ledger: bool,
 }

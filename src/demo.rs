@@ -213,6 +213,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
             feed_url: feed_url.clone(),
             channel: CHANNEL.into(),
             feed_keys: (trusted.clone(), 1),
+            ledger_keys: Some((trusted.clone(), 1)),
             bundles: camera.clone(),
             device_id: id.into(),
             download_dir: store_dir.join(DOWNLOADS_DIR),
@@ -351,6 +352,32 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         "the v1.1.0 rollout feed (sequence 2), validly signed, served again",
         cam_out.check(Timestamp::now()),
     )?;
+
+    // The auditor: everything shipped is in the ledger, and the ledger was never rewritten.
+    let heads = ampoule_verify::ledger::LedgerVerifier::new(trusted.clone(), 1)?;
+    let audit = crate::audit::check(&tree, &trusted, &heads, None)?;
+    // The one finding the auditor must make is the bundle flipped on the server above.
+    let [finding] = audit.problems.as_slice() else {
+        bail!(
+            "the demo's ledger check should find exactly the tampered bundle, but found: {}",
+            audit.problems.join("; ")
+        );
+    };
+    story.tell(
+        "audit",
+        format!(
+            "an auditor checked the release tree's ledger: {} entries (every publish and \
+             withdraw), {} signed tree heads, each consistent with the one before; it flags the \
+             file tampered with on the server: {finding}",
+            audit.tree_size, audit.heads_checked
+        ),
+        json!({
+            "entries": audit.tree_size,
+            "heads": audit.heads_checked,
+            "root": audit.root_hash,
+            "problems": audit.problems,
+        }),
+    );
     server
         .shutdown()
         .context("cannot stop the demo's web server")?;

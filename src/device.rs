@@ -11,6 +11,7 @@ use std::path::{Path, PathBuf};
 
 use ampoule_verify::feed::{Release as FeedRelease, rollout_bucket};
 use ampoule_verify::fetch::{Transfer, Update, Updater};
+use ampoule_verify::ledger::LedgerVerifier;
 use ampoule_verify::{
     FeedVerifier, Installed, Store, Timestamp, TrustedKeys, VerifiedFeed, Verifier,
 };
@@ -38,6 +39,11 @@ pub struct Device {
     pub channel: String,
     /// The keys whose signatures count on feeds, and how many must have signed.
     pub feed_keys: (TrustedKeys, usize),
+    /// The keys whose signatures count on the audit ledger's tree heads, and how many must
+    /// have signed: every feed must then prove that its release is in the ledger, and the
+    /// ledger must extend the largest tree head this store saw. `None` accepts feeds without
+    /// ledger proofs (for release trees published before the ledger existed).
+    pub ledger_keys: Option<(TrustedKeys, usize)>,
     /// The app's bundle verifier (keys, app version, name, limits); the installed version
     /// and model line come from the store at each check.
     pub bundles: Verifier,
@@ -119,6 +125,11 @@ impl Device {
         if let Some((sequence, digest)) = state.last_feed(&self.channel) {
             feeds = feeds.last_accepted(sequence, digest);
         }
+        if let Some((keys, threshold)) = &self.ledger_keys {
+            feeds = feeds.require_ledger(
+                LedgerVerifier::new(keys.clone(), *threshold)?.remembered(state.tree_head.clone()),
+            );
+        }
         let updater = Updater::new(
             self.feed_url.clone(),
             feeds,
@@ -141,6 +152,7 @@ impl Device {
                     let _ = std::fs::remove_file(&path);
                 }
                 let installed = installed?;
+                self.remember_tree_head(&feed)?;
                 // The release before the previous one is no rollback target any more: free its
                 // space now rather than at the next update. A failure here changes nothing
                 // that matters (the next update sweeps again), so it does not fail this one.
@@ -165,7 +177,17 @@ impl Device {
             },
         };
         self.store.record_feed(outcome.feed())?;
+        self.remember_tree_head(outcome.feed())?;
         Ok(outcome)
+    }
+
+    /// Remembers the ledger's tree head a feed proved, so that a smaller or forked ledger is
+    /// refused from now on.
+    fn remember_tree_head(&self, feed: &VerifiedFeed) -> ampoule_verify::Result<()> {
+        match feed.ledger() {
+            Some(check) => self.store.remember_tree_head(&check.tree_head),
+            None => Ok(()),
+        }
     }
 
     /// The version the store runs now.

@@ -39,6 +39,7 @@ fn demo_runs_and_refuses_every_attack() {
             "tamper",
             "withdraw",
             "feed-replay",
+            "audit",
             "incompatible",
             "forgery"
         ]
@@ -56,6 +57,18 @@ fn demo_runs_and_refuses_every_attack() {
             .unwrap_or_default()
             .to_string()
     };
+    // The auditor's ledger check: the six publishes and withdraws, and exactly one finding,
+    // the bundle the demo flipped on the server.
+    let audit = step("audit");
+    assert_eq!(audit["detail"]["entries"], 6);
+    let problems = audit["detail"]["problems"].as_array().expect("problems");
+    assert_eq!(problems.len(), 1, "{problems:?}");
+    let finding = problems[0].as_str().unwrap_or_default();
+    assert!(
+        finding.starts_with("entry 2: bundle trailcam-species 1.1.1 (bundles/")
+            && finding.contains("differs from what was published"),
+        "{finding}"
+    );
     assert_eq!(
         error_of("labels"),
         "the label list has 6 labels, but output 'species' has 7 classes (shape [N, 7])"

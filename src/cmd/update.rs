@@ -27,19 +27,26 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
     if let Some(id) = &args.device_id {
         check_device_id(id)?;
     }
-    let (bundles, feed_keys) = match &args.trust_set {
+    let (bundles, feed_keys, tree_head_keys) = match &args.trust_set {
         Some(path) => {
             let trust = load_trust_set(path)?;
             (
                 Verifier::from_trust_set(&trust, app_version.clone())?,
                 trust.keys_for(DocumentKind::Feed),
+                trust.keys_for(DocumentKind::TreeHead),
             )
         }
         None => {
             let keys = load_trust(&args.trust)?;
-            (Verifier::new(keys.clone(), app_version.clone())?, (keys, 1))
+            (
+                Verifier::new(keys.clone(), app_version.clone())?,
+                (keys.clone(), 1),
+                (keys, 1),
+            )
         }
     };
+    // Without the ledger a bundle signed with a stolen key but never published would pass.
+    let ledger_keys = (!args.dangerous_skip_ledger).then_some(tree_head_keys);
     let mut bundles = bundles.on_progress(out.verify_progress());
     if let Some(name) = &args.name {
         bundles = bundles.require_name(name.clone());
@@ -63,6 +70,7 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
         feed_url: args.feed.clone(),
         channel: channel.clone(),
         feed_keys,
+        ledger_keys,
         bundles,
         device_id: device_id.clone(),
         download_dir,
