@@ -127,7 +127,7 @@ impl Device {
         }
         if let Some((keys, threshold)) = &self.ledger_keys {
             feeds = feeds.require_ledger(
-                LedgerVerifier::new(keys.clone(), *threshold)?.remembered(state.tree_head.clone()),
+                LedgerVerifier::new(keys.clone(), *threshold)?.remembered(state.tree_head),
             );
         }
         let updater = Updater::new(
