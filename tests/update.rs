@@ -518,3 +518,62 @@ fn json_reports_an_update_issue_3() {
     );
     server.shutdown().expect("server stops");
 }
+
+/// A feed stripped of its ledger proof (what a thief with the feed key serves for a bundle
+/// never published) is refused; only the clearly named opt-out accepts it (issue 4 through
+/// `update`). A normal update remembers the ledger's tree head in the store.
+#[test]
+fn update_requires_the_ledger_proof_issue_4() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let feed_path = d.join("tree/feeds/stable.json");
+    let signed = SignedFeed::from_json(&std::fs::read(&feed_path).expect("feed")).expect("feed");
+    let mut feed: serde_json::Value = serde_json::from_str(&signed.feed).expect("feed text");
+    feed.as_object_mut().expect("object").remove("ledger");
+    let text = serde_json::to_string(&feed).expect("feed text");
+    let key = ampoule::keyfile::read_secret_key(
+        &d.join("k.pem"),
+        &ampoule::keyfile::PassphraseSource::None,
+    )
+    .expect("the test key");
+    let stripped = SignedFeed {
+        signatures: vec![ampoule_verify::signature::SignatureEntry {
+            key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
+            signature: ed25519_dalek::Signer::sign(
+                &key,
+                &ampoule_verify::format::signed_bytes(
+                    ampoule_verify::format::context::FEED,
+                    text.as_bytes(),
+                ),
+            )
+            .to_bytes(),
+        }],
+        feed: text,
+    };
+    std::fs::write(&feed_path, stripped.to_json()).expect("stripped feed");
+    let server = serve(d);
+    let out = update(d, &server, &[]);
+    assert_eq!(out.status.code(), Some(1), "{}", stderr(&out));
+    let sha = bundle_digest(d, &v1);
+    assert_eq!(
+        stderr(&out),
+        format!(
+            "ampoule: error: bundle trailcam-species 1.0.0 (sha256 {sha}) was signed but never \
+             published: feed sequence 1 carries no ledger proof"
+        )
+    );
+    assert!(!d.join("cam/releases").exists() || state(d)["current"].is_null());
+
+    let text = succeeded(&update(d, &server, &["--dangerous-skip-ledger"]));
+    assert!(
+        text.starts_with("installed trailcam-species 1.0.0"),
+        "{text}"
+    );
+
+    // A device on a normal tree remembers the ledger's tree head.
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
+    succeeded(&update(d, &server, &[]));
+    assert_eq!(state(d)["tree_head"]["tree_size"], 2);
+}
