@@ -541,6 +541,10 @@ pub struct PublishArgs {
     /// How long the feed stays valid; devices refuse it afterwards (like 7d, 12h, 90m).
     #[arg(long, value_name = "DURATION", default_value = "7d")]
     pub expires_in: String,
+    /// How long to wait for another publish or withdraw on the same tree to finish, in
+    /// seconds (0: fail at once).
+    #[arg(long, value_name = "SECONDS", default_value_t = 60)]
+    pub lock_wait: u64,
     /// The base URL of a copy of this tree (repeat for several); the feed lists the bundle
     /// there too, tried in order after the tree itself.
     #[arg(long, value_name = "URL")]
@@ -567,6 +571,10 @@ pub struct WithdrawArgs {
     /// How long the new feed stays valid (like 7d, 12h, 90m).
     #[arg(long, value_name = "DURATION", default_value = "7d")]
     pub expires_in: String,
+    /// How long to wait for another publish or withdraw on the same tree to finish, in
+    /// seconds (0: fail at once).
+    #[arg(long, value_name = "SECONDS", default_value_t = 60)]
+    pub lock_wait: u64,
 }
 
 #[derive(Args, Debug)]

@@ -321,6 +321,12 @@ impl Tree {
     /// Opens (creating if needed) the tree at `root` and takes its lock, failing at once
     /// when another command holds it.
     pub fn lock(root: &Path) -> Result<Tree> {
+        Self::lock_waiting(root, std::time::Duration::ZERO)
+    }
+
+    /// Like [`Tree::lock`], but waits up to `wait` for another publish or withdraw to finish,
+    /// so that two run at the same time go one after the other.
+    pub fn lock_waiting(root: &Path, wait: std::time::Duration) -> Result<Tree> {
         for dir in [BUNDLES_DIR, FEEDS_DIR, HISTORY_DIR] {
             let path = root.join(dir);
             fs::create_dir_all(&path).with_context(|| io_context("create directory", &path))?;
@@ -332,14 +338,28 @@ impl Tree {
             .write(true)
             .open(&lock_path)
             .with_context(|| io_context("open the lock file", &lock_path))?;
-        match lock.try_lock() {
-            Ok(()) => {}
-            Err(TryLockError::WouldBlock) => bail!(
-                "another publish or withdraw is changing the release tree {}; try again when it has finished",
-                root.display()
-            ),
-            Err(TryLockError::Error(e)) => {
-                return Err(e).with_context(|| io_context("lock", &lock_path));
+        let started = std::time::Instant::now();
+        loop {
+            match lock.try_lock() {
+                Ok(()) => break,
+                Err(TryLockError::WouldBlock) if started.elapsed() < wait => {
+                    std::thread::sleep(std::time::Duration::from_millis(50));
+                }
+                Err(TryLockError::WouldBlock) => {
+                    let waited = if wait.is_zero() {
+                        String::new()
+                    } else {
+                        format!(" (waited {} s)", wait.as_secs())
+                    };
+                    bail!(
+                        "another publish or withdraw is changing the release tree {}{waited}; try \
+                         again when it has finished",
+                        root.display()
+                    )
+                }
+                Err(TryLockError::Error(e)) => {
+                    return Err(e).with_context(|| io_context("lock", &lock_path));
+                }
             }
         }
         Ok(Tree {

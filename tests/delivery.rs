@@ -349,13 +349,36 @@ fn a_locked_tree_is_refused() {
                 "--channel",
                 "stable",
                 "--key",
-                "k.pem"
+                "k.pem",
+                "--lock-wait",
+                "0"
             ]
         ),
         (
             2,
             "ampoule: error: another publish or withdraw is changing the release tree tree; try \
              again when it has finished"
+                .into()
+        )
+    );
+    // Waiting gives up after the time given, and says so.
+    let withdraw_waiting = [
+        "withdraw",
+        "--tree",
+        "tree",
+        "--channel",
+        "stable",
+        "--key",
+        "k.pem",
+        "--lock-wait",
+        "1",
+    ];
+    assert_eq!(
+        refused(d, &withdraw_waiting),
+        (
+            2,
+            "ampoule: error: another publish or withdraw is changing the release tree tree \
+             (waited 1 s); try again when it has finished"
                 .into()
         )
     );

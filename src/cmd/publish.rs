@@ -34,7 +34,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     let now = Timestamp::now();
-    let tree = Tree::lock(&args.tree)?;
+    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     // Publishing checks the bundle the way devices will: with --trust against those keys;
     // else against the tree's trust set (its bundle keys and threshold); else the feed key
     // must have signed the bundle too.
@@ -73,7 +73,7 @@ fn publish_trust_set(
     let bytes = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
-    let tree = Tree::lock(&args.tree)?;
+    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     let signing = Signing {
         key: &key,
         now: Timestamp::now(),

@@ -22,7 +22,7 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
             args.tree.display()
         );
     }
-    let tree = Tree::lock(&args.tree)?;
+    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     let signing = Signing {
         key: &key,
         now: Timestamp::now(),
