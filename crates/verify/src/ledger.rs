@@ -357,6 +357,15 @@ impl LedgerVerifier {
         }
     }
 
+    /// This verifier with the tree-head keys and threshold of `trust` instead of its own; the
+    /// remembered tree head stays. For a device that just accepted a newer trust set.
+    pub fn with_trust_set(self, trust: &TrustSet) -> Self {
+        LedgerVerifier {
+            trust: HeadTrust::TrustSet(Box::new(trust.clone())),
+            remembered: self.remembered,
+        }
+    }
+
     /// The largest tree head this device verified before: a smaller one, or one that does not
     /// extend it, is refused.
     pub fn remembered(mut self, head: Option<TreeHead>) -> Self {
