@@ -13,7 +13,10 @@
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::bundle::Unverified;
-use ampoule_verify::ledger::{self, ConsistencyStep, Entry, Event, FeedLedger, LEDGER_DIR};
+use ampoule_verify::ledger::{
+    self, ConsistencyStep, Entry, Event, FeedLedger, LEDGER_DIR, Record, TrustSetEntry,
+};
+use ampoule_verify::merkle::{ConsistencyProof, SignedTreeHead};
 use ampoule_verify::{Digest, KeyId};
 use anyhow::{Context, Result};
 use ed25519_dalek::SigningKey;
@@ -79,6 +82,41 @@ pub fn withdrawn(root: &Path, channel: &str, sha256: &Digest) -> Result<(Digest,
     Ok((Digest::of(&bundle.layout.manifest), ids))
 }
 
+/// Appends the entry of a trust-set publish, before the feeds it renews are signed again.
+pub fn append_trust_set(root: &Path, entry: &TrustSetEntry, keys: &[&SigningKey]) -> Result<()> {
+    append_bytes(root, &entry.to_bytes(), entry.time, keys).context(
+        "cannot append to the release tree's ledger; no feed was renewed for the new trust set",
+    )?;
+    Ok(())
+}
+
+/// Appends one entry under a new tree head and writes the consistency step to it; returns the
+/// ledger, the entry's index, the new head and the proof from the head before.
+fn append_bytes(
+    root: &Path,
+    bytes: &[u8],
+    entry_time: u64,
+    keys: &[&SigningKey],
+) -> Result<(Ledger, u64, SignedTreeHead, ConsistencyProof)> {
+    let mut ledger = open_or_create(root)?;
+    repair_last_step(root, &ledger)?;
+    let old_size = ledger.size();
+    // A tree head never goes back in time, even if this machine's clock did.
+    let time = ledger
+        .tree_head()
+        .map_or(entry_time, |h| h.head().time.max(entry_time));
+    let index = ledger.append(bytes, keys, time)?;
+    let tree_head = ledger
+        .tree_head()
+        .cloned()
+        .context("the ledger has no tree head right after an append")?;
+    let consistency = ledger.consistency_proof(old_size, tree_head.head().tree_size)?;
+    if old_size > 0 {
+        write_step(root, &tree_head, &consistency)?;
+    }
+    Ok((ledger, index, tree_head, consistency))
+}
+
 /// Appends `entry` to the tree's ledger under a tree head signed by every key of `keys`, writes
 /// the consistency step from the previous head, and returns the feed's `ledger` object for
 /// the release whose bundle is `named` on the entry's channel (its latest publish entry).
@@ -88,25 +126,10 @@ pub fn append(
     named: Option<&Digest>,
     keys: &[&SigningKey],
 ) -> Result<FeedLedger> {
-    let mut ledger = open_or_create(root)?;
-    repair_last_step(root, &ledger)?;
-    let old_size = ledger.size();
-    // A tree head never goes back in time, even if this machine's clock did.
-    let time = ledger
-        .tree_head()
-        .map_or(entry.time, |h| h.head().time.max(entry.time));
-    let index = ledger
-        .append_entry(entry, keys, time)
-        .context("cannot append to the release tree's ledger; the feed was not changed")?;
-    let tree_head = ledger
-        .tree_head()
-        .cloned()
-        .context("the ledger has no tree head right after an append")?;
+    let (ledger, index, tree_head, consistency) =
+        append_bytes(root, &entry.to_bytes(), entry.time, keys)
+            .context("cannot append to the release tree's ledger; the feed was not changed")?;
     let new_size = tree_head.head().tree_size;
-    let consistency = ledger.consistency_proof(old_size, new_size)?;
-    if old_size > 0 {
-        write_step(root, &tree_head, &consistency)?;
-    }
     let (entry_text, inclusion) = match named {
         None => (None, None),
         Some(sha256) => {
@@ -347,6 +370,7 @@ fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Resu
     let mut sequences: BTreeMap<String, (u64, u64)> = BTreeMap::new();
     let mut bundles: BTreeSet<Digest> = BTreeSet::new();
     let mut histories: BTreeMap<String, Option<BTreeSet<u64>>> = BTreeMap::new();
+    let mut trust_sets = TrustSetsSeen::default();
     let entries = match ledger.entries() {
         Ok(entries) => entries,
         Err(e) => {
@@ -362,8 +386,12 @@ fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Resu
                 break;
             }
         };
-        let entry = match Entry::from_bytes(&bytes) {
-            Ok(entry) => entry,
+        let entry = match Record::from_bytes(&bytes) {
+            Ok(Record::Bundle(entry)) => entry,
+            Ok(Record::TrustSet(t)) => {
+                check_trust_set_entry(index, &t, &mut trust_sets, report);
+                continue;
+            }
             Err(e) => {
                 report.problems.push(format!("entry {index}: {e}"));
                 continue;
@@ -424,6 +452,49 @@ fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Resu
     }
     report.bundles_checked = bundles.len() as u64;
     Ok(())
+}
+
+/// The trust-set versions the ledger logged so far: each version's first entry and digest,
+/// and the highest version with its entry.
+#[derive(Default)]
+struct TrustSetsSeen {
+    versions: std::collections::BTreeMap<u64, (u64, Digest)>,
+    highest: Option<(u64, u64)>,
+}
+
+/// A trust-set version is published once with one content, and versions only go up: a
+/// device takes a successor only of a higher version, so anything else in the ledger means
+/// some devices were shown a set others never saw.
+fn check_trust_set_entry(
+    index: u64,
+    entry: &TrustSetEntry,
+    seen: &mut TrustSetsSeen,
+    report: &mut AuditReport,
+) {
+    let version = entry.trust_set_version;
+    let digest = entry.trust_set_digest;
+    match seen.versions.get(&version) {
+        Some((first, before)) if *before != digest => {
+            report.problems.push(format!(
+                "entry {index}: trust set version {version} is logged with sha256 {digest}, but \
+                 entry {first} logged it with sha256 {before}: a trust-set version was reused \
+                 with different content"
+            ));
+        }
+        Some(_) => {}
+        None => {
+            seen.versions.insert(version, (index, digest));
+        }
+    }
+    match seen.highest {
+        Some((highest, at)) if version < highest => {
+            report.problems.push(format!(
+                "entry {index}: trust set version {version} follows version {highest} (entry \
+                 {at}); trust-set versions went down"
+            ));
+        }
+        _ => seen.highest = Some((version, index)),
+    }
 }
 
 /// The feed sequences a channel's history records; `None` when the tree has no history for it

@@ -598,7 +598,8 @@ pub struct UpdateArgs {
     /// A public key trusted for feeds and bundles (repeat for several).
     #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
     pub trust: Vec<PathBuf>,
-    /// Trust the feed and bundle keys of this trust set, with its thresholds.
+    /// Run on trust sets, starting from this one (the set shipped with the app) or the newer
+    /// one the store kept; a newer set the feed names is taken and kept in the store.
     #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
     pub trust_set: Option<PathBuf>,
     /// The app's own version: bundles must allow it.

@@ -218,6 +218,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
             device_id: id.into(),
             download_dir: store_dir.join(DOWNLOADS_DIR),
             transfer: Transfer::new(),
+            trust_set: None,
         })
     };
     let (cam_in, cam_out) = (device(&id_in)?, device(&id_out)?);

@@ -1,7 +1,8 @@
 //! The device side of delivery, as `ampoule update` and the demo run it: one update check
 //! against a channel's feed with what the on-device store remembers, then either an install
 //! of the bundle the check found, or a record of the feed, so that a replayed older feed is
-//! refused next time whatever the outcome.
+//! refused next time whatever the outcome. On a trust set, a newer set the feed names is
+//! taken and stored within the same check, before the bundle is looked at.
 //!
 //! Apps embedding `ampoule-verify` do the same with [`ampoule_verify::fetch::Updater`] and
 //! [`ampoule_verify::Store`]; this module is the reference for how the two fit together.
@@ -13,7 +14,7 @@ use ampoule_verify::feed::{Release as FeedRelease, rollout_bucket};
 use ampoule_verify::fetch::{Transfer, Update, Updater};
 use ampoule_verify::ledger::LedgerVerifier;
 use ampoule_verify::{
-    FeedVerifier, Installed, Store, Timestamp, TrustedKeys, VerifiedFeed, Verifier,
+    FeedVerifier, Installed, Store, Timestamp, TrustSet, TrustedKeys, VerifiedFeed, Verifier,
 };
 use anyhow::{Context, Result, bail};
 use semver::Version;
@@ -53,6 +54,21 @@ pub struct Device {
     pub download_dir: PathBuf,
     /// Transfer limits and the download progress callback.
     pub transfer: Transfer,
+    /// The trust set the device runs on, normally [`Store::load_trust_set`] of the set shipped
+    /// with the app: feeds, tree heads and bundles are then checked with its keys (replacing
+    /// `feed_keys`, the `ledger_keys` keys and the keys of `bundles`, whose other settings
+    /// stay), and a feed naming a newer set rotates to it, which the store keeps as
+    /// `trust-set.json`. `None` checks with the keys above only.
+    pub trust_set: Option<TrustSet>,
+}
+
+/// What one check did, and the trust set it rotated to if the feed named a newer one.
+#[derive(Debug)]
+pub struct Checked {
+    /// What the check did with the feed's release.
+    pub outcome: Outcome,
+    /// The newer trust set the feed named, verified and stored before the bundle was checked.
+    pub rotated: Option<TrustSet>,
 }
 
 /// What one check did.
@@ -107,6 +123,15 @@ impl Device {
     /// and the bundle (`ampoule_verify::Error`, whose kind tells a refusal from a network or
     /// disk problem); the store is unchanged by any of them.
     pub fn check(&self, now: Timestamp) -> ampoule_verify::Result<Outcome> {
+        Ok(self.check_rotating(now)?.outcome)
+    }
+
+    /// [`Device::check`], also saying whether the check rotated to a newer trust set. The
+    /// rotation is stored before the bundle is looked at, and the bundle and the store's
+    /// installed release are then checked with the new set's keys, so a key the new set
+    /// revokes no longer counts in the same run. A trust set the feed names that is refused
+    /// ends the check with that refusal.
+    pub fn check_rotating(&self, now: Timestamp) -> ampoule_verify::Result<Checked> {
         let state = self.store.state()?;
         let mut bundles = self.bundles.clone();
         if let Some(name) = &state.name
@@ -130,7 +155,7 @@ impl Device {
                 LedgerVerifier::new(keys.clone(), *threshold)?.remembered(state.tree_head),
             );
         }
-        let updater = Updater::new(
+        let mut updater = Updater::new(
             self.feed_url.clone(),
             feeds,
             bundles,
@@ -138,10 +163,25 @@ impl Device {
             self.download_dir.clone(),
         )
         .transfer(self.transfer.clone());
-        let update = updater.check(now)?;
+        let mut store = self.store.clone();
+        if let Some(trust) = &self.trust_set {
+            // Keys and thresholds of the trust set replace those of the verifiers, ledger
+            // requirement and remembered tree head included.
+            updater = updater.with_trust_set(trust.clone())?;
+            store = store.with_trust_set(trust)?;
+        }
+        let mut rotated: Option<TrustSet> = None;
+        let update = updater.check_with(now, &mut |next| {
+            store.save_trust_set(next)?;
+            rotated = Some(next.clone());
+            Ok(())
+        })?;
+        if let Some(next) = &rotated {
+            store = store.with_trust_set(next)?;
+        }
         let outcome = match update {
             Update::Ready { feed, bundle, path } => {
-                let installed = self.store.install_from_feed(*bundle, &feed);
+                let installed = store.install_from_feed(*bundle, &feed);
                 // A refused bundle would be refused again; a lock or disk problem may pass, and
                 // the complete download then saves the next run a transfer.
                 let done = match &installed {
@@ -156,10 +196,13 @@ impl Device {
                 // The release before the previous one is no rollback target any more: free its
                 // space now rather than at the next update. A failure here changes nothing
                 // that matters (the next update sweeps again), so it does not fail this one.
-                let _ = self.store.gc();
-                return Ok(Outcome::Updated {
-                    feed,
-                    installed: Box::new(installed),
+                let _ = store.gc();
+                return Ok(Checked {
+                    outcome: Outcome::Updated {
+                        feed,
+                        installed: Box::new(installed),
+                    },
+                    rotated,
                 });
             }
             Update::UpToDate { feed } => Outcome::UpToDate { feed },
@@ -176,9 +219,9 @@ impl Device {
                 feed: other.feed().clone(),
             },
         };
-        self.store.record_feed(outcome.feed())?;
+        store.record_feed(outcome.feed())?;
         self.remember_tree_head(outcome.feed())?;
-        Ok(outcome)
+        Ok(Checked { outcome, rotated })
     }
 
     /// Remembers the ledger's tree head a feed proved, so that a smaller or forked ledger is

@@ -1621,4 +1621,46 @@ mod tests {
             "{err:#}"
         );
     }
+
+    #[test]
+    fn records_tell_trust_set_entries_from_bundle_entries() {
+        use ampoule_verify::ledger::{Record, TrustSetEntry};
+        let bundle = sample_entry(2);
+        assert_eq!(
+            Record::from_bytes(&bundle.to_bytes()).expect("parse"),
+            Record::Bundle(bundle.clone())
+        );
+        let trust = TrustSetEntry {
+            event: Event::TrustSet,
+            trust_set_version: 7,
+            trust_set_digest: Digest::of(b"a trust set"),
+            key_ids: bundle.key_ids.clone(),
+            time: 1_796_083_200,
+        };
+        let bytes = trust.to_bytes();
+        assert_eq!(
+            Record::from_bytes(&bytes).expect("parse"),
+            Record::TrustSet(trust.clone())
+        );
+        let text = String::from_utf8(bytes).expect("utf-8");
+        assert!(text.starts_with("{\"event\":\"trust_set\",\"trust_set_version\":7,"));
+        // A second event field could make two readers see two kinds of entry.
+        let twice = text.replacen('{', "{\"event\":\"publish\",", 1);
+        let err = Record::from_bytes(twice.as_bytes()).expect_err("duplicate event");
+        assert!(err.to_string().contains("duplicate field `event`"), "{err}");
+        // Bundle fields under a trust_set event are neither kind.
+        let mut disguised = bundle;
+        disguised.event = Event::TrustSet;
+        let err = Entry::from_bytes(&disguised.to_bytes()).expect_err("not a bundle entry");
+        assert_eq!(
+            err.to_string(),
+            "ledger entry has event trust_set but the fields of a bundle entry"
+        );
+        let err = Record::from_bytes(&disguised.to_bytes()).expect_err("not a trust-set entry");
+        assert!(
+            err.to_string()
+                .starts_with("ledger entry is not valid: unknown field `channel`"),
+            "{err}"
+        );
+    }
 }

@@ -33,7 +33,7 @@ use ampoule_verify::feed::{Feed, Release, SignedFeed, TrustSetRef, check_channel
 use ampoule_verify::format::{
     BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes, trust_set as trust_spec,
 };
-use ampoule_verify::ledger::{Entry as LedgerEntry, Event as LedgerEvent};
+use ampoule_verify::ledger::{Entry as LedgerEntry, Event as LedgerEvent, TrustSetEntry};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{
     Digest, DocumentKind, KeyId, Manifest, Timestamp, TrustSet, TrustSetFile, TrustedKeys, Verifier,
@@ -661,8 +661,8 @@ impl Tree {
 
     /// Publishes the trust set `bytes` as the tree's current one: it must verify as the
     /// successor of the current set (as a device would take it), or as an initial set when the
-    /// tree has none, and the feed key must be able to sign feeds under both. Then every
-    /// channel's feed is signed again, naming it.
+    /// tree has none, and the feed key must be able to sign feeds under both. The ledger logs
+    /// it (one trust-set entry), then every channel's feed is signed again, naming it.
     pub fn publish_trust_set(&self, bytes: &[u8], signing: &Signing<'_>) -> Result<TrustSetChange> {
         let current = self.current_trust_set()?;
         let accepted = match &current {
@@ -700,6 +700,19 @@ impl Tree {
                 .into());
             }
         }
+        // The ledger logs the new set before any file names it, so an auditor never learns of
+        // a trust set later than devices do.
+        let keys: Vec<&SigningKey> = std::iter::once(signing.key)
+            .chain(signing.tree_head_keys)
+            .collect();
+        let entry = TrustSetEntry {
+            event: LedgerEvent::TrustSet,
+            trust_set_version: accepted.version(),
+            trust_set_digest: Digest::of(bytes),
+            key_ids: accepted.signature_report().valid.clone(),
+            time: signing.now.unix(),
+        };
+        crate::audit::append_trust_set(&self.root, &entry, &keys)?;
         let dir = self.root.join(TRUST_DIR);
         fs::create_dir_all(&dir).with_context(|| io_context("create directory", &dir))?;
         let path = self.trust_set_path(accepted.version());

@@ -13,9 +13,9 @@ use std::process::{Child, Command, Stdio};
 use ampoule::ledger::Ledger;
 use ampoule_verify::feed::{Feed, SignedFeed};
 use ampoule_verify::fetch::{Update, Updater};
-use ampoule_verify::ledger::{Entry, Event, LedgerVerifier, step_path};
+use ampoule_verify::ledger::{Entry, Event, LedgerVerifier, Record, TrustSetEntry, step_path};
 use ampoule_verify::merkle::{SignedTreeHead, TreeHead};
-use ampoule_verify::{Digest, ErrorKind, FeedVerifier, Timestamp, Verifier};
+use ampoule_verify::{Digest, ErrorKind, FeedVerifier, KeyId, Timestamp, Verifier};
 use ed25519_dalek::{Signer, SigningKey};
 use semver::Version;
 
@@ -168,7 +168,8 @@ fn publish_and_withdraw_append_entries_issue_4() {
     let lines: Vec<&str> = csv.lines().collect();
     assert_eq!(
         lines[0],
-        "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,feed_sequence"
+        "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,\
+         feed_sequence,trust_set_version,trust_set_sha256"
     );
     assert_eq!(lines.len(), 2);
     assert!(
@@ -1045,14 +1046,133 @@ fn a_trust_set_publish_logs_each_renewed_feed_issue_5() {
     assert_eq!(report["feeds"][0]["channel"], "stable");
     assert_eq!(report["feeds"][0]["sequence"], 2);
 
+    // One trust-set entry, then the renewed feed's publish entry.
     let after = head_of(d);
-    assert_eq!(after.tree_size, before.tree_size + 1);
+    assert_eq!(after.tree_size, before.tree_size + 2);
     let ledger = Ledger::open(&d.join("tree/ledger")).expect("ledger");
+    let at = before.tree_size;
+    let trust_text = ledger.entry(at).expect("entry");
+    let signer = KeyId::of_raw_key(
+        SigningKey::from_bytes(&tree_key_seed(d))
+            .verifying_key()
+            .as_bytes(),
+    );
+    // The SHA-256 is of the file as published, compared with std::fs bytes hashed by the
+    // digest module (itself checked against the FIPS 180-2 vectors in crates/verify).
+    let trust_sha = sha(d, "tree/trust/1.json");
+    assert_eq!(trust_sha, sha(d, "trust.json"));
+    assert_eq!(
+        Record::from_bytes(&trust_text).expect("record"),
+        Record::TrustSet(TrustSetEntry {
+            event: Event::TrustSet,
+            trust_set_version: 1,
+            trust_set_digest: trust_sha,
+            key_ids: vec![signer],
+            time: after.time,
+        })
+    );
+    assert_eq!(
+        String::from_utf8(trust_text.clone()).expect("utf-8"),
+        format!(
+            "{{\"event\":\"trust_set\",\"trust_set_version\":1,\"trust_set_digest\":\"{trust_sha}\",\
+             \"key_ids\":[\"{signer}\"],\"time\":{}}}",
+            after.time
+        )
+    );
+    // Read as the entry of a release it is refused, whatever reads it.
+    let err = Entry::from_bytes(&trust_text).expect_err("not a bundle entry");
+    assert!(
+        err.to_string()
+            .starts_with("ledger entry is not valid: unknown field `trust_set_version`"),
+        "{err}"
+    );
     let last =
         Entry::from_bytes(&ledger.entry(after.tree_size - 1).expect("entry")).expect("entry");
     assert_eq!(last.event, Event::Publish);
     assert_eq!((last.channel.as_str(), last.feed_sequence), ("stable", 2));
     assert_eq!(last.bundle_digest, sha(d, &v1));
+
+    // ledger list shows it, also when listing one channel.
+    let listed = json(
+        d,
+        &["ledger", "list", "--tree", "tree", "--channel", "stable"],
+    );
+    let time = Timestamp::from_unix(after.time).expect("time").to_string();
+    assert_eq!(
+        listed["entries"][1],
+        serde_json::json!({
+            "index": 1,
+            "time": time,
+            "event": "trust_set",
+            "trust_set_version": 1,
+            "trust_set_sha256": trust_sha.to_string(),
+            "key_ids": [signer.to_string()],
+        })
+    );
+    let text = ok(d, &["ledger", "list", "--tree", "tree"]);
+    let row: Vec<&str> = text
+        .lines()
+        .find(|l| l.starts_with("1 "))
+        .expect("row 1")
+        .split_whitespace()
+        .collect();
+    let short_sha = trust_sha.to_string()[..16].to_string();
+    let short_key = signer.to_string()[..8].to_string();
+    assert_eq!(
+        row,
+        [
+            "1",
+            time.as_str(),
+            "trust_set",
+            "-",
+            "trust",
+            "set",
+            "1",
+            short_sha.as_str(),
+            short_key.as_str(),
+            "-"
+        ]
+    );
+    let csv = ok(d, &["ledger", "list", "--tree", "tree", "--csv"]);
+    assert_eq!(
+        csv.lines().nth(2),
+        Some(format!("1,{time},trust_set,,,,,,{signer},,1,{trust_sha}").as_str())
+    );
+
+    // The feed may not pass the trust-set entry off as its release's entry, although that
+    // entry really is in the tree head.
+    let good = feed_bytes(d, "stable");
+    let key = SigningKey::from_bytes(&tree_key_seed(d));
+    let signed = SignedFeed::from_json(&good).expect("envelope");
+    let mut forged = Feed::from_json(signed.feed.as_bytes()).expect("feed");
+    let l = forged.ledger.as_mut().expect("ledger");
+    l.entry = Some(String::from_utf8(trust_text).expect("utf-8"));
+    l.inclusion = Some(ledger.inclusion_proof(at, after.tree_size).expect("proof"));
+    let forged_text = forged.to_json();
+    let signature = key.sign(&ampoule_verify::format::signed_bytes(
+        ampoule_verify::format::context::FEED,
+        forged_text.as_bytes(),
+    ));
+    let forged = SignedFeed {
+        feed: forged_text,
+        signatures: vec![ampoule_verify::signature::SignatureEntry {
+            key_id: signer,
+            signature: signature.to_bytes(),
+        }],
+    }
+    .to_json();
+    let err = device(d, "stable", None)
+        .verify(&forged, Timestamp::now())
+        .expect_err("a trust-set entry is not a publish");
+    assert_eq!(
+        err.to_string(),
+        format!(
+            "bundle trailcam-species 1.0.0 (sha256 {}) was signed but never published: the \
+             ledger entry the feed carries logs trust set version 1, not a publish of this bundle",
+            sha(d, &v1)
+        )
+    );
+    assert_eq!(err.kind(), ErrorKind::Proof);
 
     // A device that saw the first head follows the renewed feed through its consistency proof.
     let feed = device(d, "stable", Some(before))
@@ -1066,4 +1186,34 @@ fn a_trust_set_publish_logs_each_renewed_feed_issue_5() {
     let (code, report) = check_run(d, &[]);
     assert_eq!(code, 0, "{report}");
     assert_eq!(problems(&report), Vec::<String>::new());
+
+    // A crafted continuation, signed with the tree's key: version 3, then version 1 again
+    // with other content.
+    let mut ledger = Ledger::open(&d.join("tree/ledger")).expect("open");
+    let crafted = |version: u64, content: &[u8]| TrustSetEntry {
+        event: Event::TrustSet,
+        trust_set_version: version,
+        trust_set_digest: Digest::of(content),
+        key_ids: vec![signer],
+        time: after.time,
+    };
+    for entry in [crafted(3, b"set three"), crafted(1, b"another set one")] {
+        ledger
+            .append(&entry.to_bytes(), &[&key], after.time)
+            .expect("append");
+    }
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1);
+    let found = problems(&report);
+    for expected in [
+        format!(
+            "entry 4: trust set version 1 is logged with sha256 {}, but entry 1 logged it with \
+             sha256 {trust_sha}: a trust-set version was reused with different content",
+            Digest::of(b"another set one")
+        ),
+        "entry 4: trust set version 1 follows version 3 (entry 3); trust-set versions went down"
+            .to_string(),
+    ] {
+        assert!(found.contains(&expected), "{found:?}");
+    }
 }

@@ -2,7 +2,8 @@
 //! updating from `ampoule serve`: a trust set published with `publish --trust-set`, named by
 //! every feed; a device on the old set takes the new one from the feed, stores it, and refuses
 //! a bundle signed by the key it revokes in the same update. Refusals of sets that are not
-//! successors, at publish and on the device, and of feeds naming older sets.
+//! successors, at publish and on the device, and of feeds naming older sets. The same
+//! rotation through `ampoule update --trust-set`.
 
 use std::io::{BufRead, BufReader};
 use std::path::Path;
@@ -10,7 +11,8 @@ use std::process::{Child, Command, Stdio};
 
 use ampoule_verify::fetch::{Transfer, Update, Updater};
 use ampoule_verify::{
-    Digest, ErrorKind, FeedVerifier, KeyId, PublicKey, Store, Timestamp, TrustSet, Verifier,
+    Digest, ErrorKind, FeedVerifier, KeyId, PublicKey, Store, Timestamp, TrustSet, TrustSetFile,
+    Verifier,
 };
 use semver::Version;
 
@@ -760,4 +762,160 @@ fn issue5_a_device_whose_trust_set_expired_renews_it_through_the_feed() {
         )
     );
     assert_eq!(other.stored_trust_set_version().expect("readable"), None);
+}
+
+/// `ampoule update --trust-set` as a camera on trust sets runs it, from store `store`.
+fn update_on_trust_set(d: &Path, addr: &str, store: &str, json: bool) -> std::process::Output {
+    let feed = format!("http://{addr}/feeds/stable.json");
+    let mut args = vec![
+        "update",
+        "--store",
+        store,
+        "--feed",
+        feed.as_str(),
+        "--trust-set",
+        "trust-1.json",
+        "--app-version",
+        "2.3.0",
+        "--device-id",
+        "camera-0007",
+    ];
+    if json {
+        args.insert(0, "--json");
+    }
+    run(d, &args)
+}
+
+fn stdout_of(out: &std::process::Output) -> String {
+    assert!(
+        out.status.success(),
+        "update failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout).trim_end().to_string()
+}
+
+#[test]
+fn issue5_update_on_a_trust_set_rotates_through_the_feed_and_keeps_the_new_set() {
+    let dir = setup();
+    let d = dir.path();
+    team(d);
+    let (a, c) = (key_id_of(d, "a.public.pem"), key_id_of(d, "c.public.pem"));
+    let v1_bytes = std::fs::read(d.join("trust-1.json")).expect("v1");
+    let v2_bytes = std::fs::read(d.join("trust-2.json")).expect("v2");
+    publish_trust_set(d, "tree", "trust-1.json");
+    let v100 = pack_signed_by(d, "1.0.0", "a", "b");
+    publish(d, &v100, "stable", "100");
+    let server = serve(d, "tree");
+
+    // On version 1, shipped with the app: installs, stores no trust set of its own.
+    let doc: serde_json::Value = serde_json::from_str(&stdout_of(&update_on_trust_set(
+        d,
+        &server.addr,
+        "cam",
+        true,
+    )))
+    .expect("--json prints JSON");
+    assert_eq!(doc["outcome"], "updated");
+    assert_eq!(
+        (&doc["trust_set_version"], &doc["trust_set_rotated"]),
+        (&serde_json::json!(1), &serde_json::json!(false))
+    );
+    assert!(!d.join("cam/trust-set.json").exists());
+
+    // Version 2 revokes c; the renewed feed names it. The camera, started on version 1 again,
+    // rotates within the update and keeps version 2.
+    publish_trust_set(d, "tree", "trust-2.json");
+    assert_eq!(
+        stdout_of(&update_on_trust_set(d, &server.addr, "cam", false)),
+        "trust set rotated to version 2; up to date: channel stable offers trailcam-species \
+         1.0.0 (feed sequence 2); keeping trailcam-species 1.0.0"
+    );
+    let stored = std::fs::read(d.join("cam/trust-set.json")).expect("the store keeps the set");
+    let kept = TrustSet::verify_initial(&stored, Timestamp::now()).expect("stored set verifies");
+    assert_eq!(kept.version(), 2);
+    assert_eq!(
+        kept.file().text(),
+        TrustSetFile::from_json(&v2_bytes).expect("v2").text()
+    );
+    // The next run starts on the stored version 2: nothing to rotate.
+    let doc: serde_json::Value = serde_json::from_str(&stdout_of(&update_on_trust_set(
+        d,
+        &server.addr,
+        "cam",
+        true,
+    )))
+    .expect("--json prints JSON");
+    assert_eq!(
+        (
+            &doc["outcome"],
+            &doc["trust_set_version"],
+            &doc["trust_set_rotated"]
+        ),
+        (
+            &serde_json::json!("up_to_date"),
+            &serde_json::json!(2),
+            &serde_json::json!(false)
+        )
+    );
+
+    // Whoever holds c puts 1.1.0, signed by a and c, on the channel (overriding the tree's
+    // check). A second camera, still on version 1 alone, would take it: 2 keys of version 1.
+    let v110 = pack_signed_by(d, "1.1.0", "a", "c");
+    ok(
+        d,
+        &[
+            "publish",
+            &v110,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+            "--trust",
+            "a.public.pem",
+        ],
+    );
+    let v1 = TrustSet::verify_initial(&v1_bytes, Timestamp::now()).expect("v1");
+    Verifier::from_trust_set(&v1, APP)
+        .expect("v1 verifier")
+        .verify_path(&d.join(&v110))
+        .expect("a and c are 2 keys of version 1");
+    // It starts on version 1, rotates to version 2 from the feed, stores it, and refuses the
+    // bundle under version 2 in the same run.
+    let out = update_on_trust_set(d, &server.addr, "cam2", false);
+    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(
+        String::from_utf8_lossy(&out.stderr).trim_end(),
+        format!(
+            "ampoule: error: bundle has 1 valid signature(s) by trusted keys but needs 2 \
+             (valid: {a}; by keys not trusted here: {c})"
+        )
+    );
+    let stored = std::fs::read(d.join("cam2/trust-set.json")).expect("kept despite the refusal");
+    assert_eq!(
+        TrustSet::verify_initial(&stored, Timestamp::now())
+            .expect("stored set verifies")
+            .version(),
+        2
+    );
+    let state: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.join("cam2/state.json")).expect("state"))
+            .expect("json");
+    assert_eq!(
+        state["current"],
+        serde_json::Value::Null,
+        "nothing installed"
+    );
+    // The first camera, already on version 2, refuses it without rotating.
+    let out = update_on_trust_set(d, &server.addr, "cam", false);
+    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(
+        String::from_utf8_lossy(&out.stderr).trim_end(),
+        format!(
+            "ampoule: error: bundle has 1 valid signature(s) by trusted keys but needs 2 \
+             (valid: {a}; by keys not trusted here: {c})"
+        )
+    );
 }

@@ -9,9 +9,11 @@ use std::path::{Path, PathBuf};
 
 use ampoule_verify::feed::resolve;
 use ampoule_verify::fetch::{Transfer, fetch_to_file};
-use ampoule_verify::ledger::{Event, LEDGER_DIR, LedgerVerifier, MAX_ENTRY_BYTES, step_path};
+use ampoule_verify::ledger::{
+    Event, LEDGER_DIR, LedgerVerifier, MAX_ENTRY_BYTES, Record, step_path,
+};
 use ampoule_verify::merkle::{self, MAX_SIGNED_TREE_HEAD_BYTES, SignedTreeHead};
-use ampoule_verify::{Digest, DocumentKind, Timestamp};
+use ampoule_verify::{Digest, DocumentKind, KeyId, Timestamp};
 use anyhow::{Context, Result, bail};
 use serde_json::{Value, json};
 use tempfile::TempDir;
@@ -183,19 +185,38 @@ fn time_text(secs: u64) -> String {
     Timestamp::from_unix(secs).map_or_else(|| secs.to_string(), |t| t.to_string())
 }
 
-fn entry_json(index: u64, entry: &Entry) -> Value {
-    json!({
-        "index": index,
-        "time": time_text(entry.time),
-        "event": entry.event.to_string(),
-        "channel": entry.channel,
-        "bundle": entry.bundle,
-        "version": entry.version.to_string(),
-        "bundle_sha256": entry.bundle_digest,
-        "manifest_sha256": entry.manifest_digest,
-        "key_ids": entry.key_ids.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
-        "feed_sequence": entry.feed_sequence,
-    })
+fn entry_json(index: u64, record: &Record) -> Value {
+    match record {
+        Record::Bundle(entry) => json!({
+            "index": index,
+            "time": time_text(entry.time),
+            "event": entry.event.to_string(),
+            "channel": entry.channel,
+            "bundle": entry.bundle,
+            "version": entry.version.to_string(),
+            "bundle_sha256": entry.bundle_digest,
+            "manifest_sha256": entry.manifest_digest,
+            "key_ids": entry.key_ids.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
+            "feed_sequence": entry.feed_sequence,
+        }),
+        Record::TrustSet(entry) => json!({
+            "index": index,
+            "time": time_text(entry.time),
+            "event": entry.event.to_string(),
+            "trust_set_version": entry.trust_set_version,
+            "trust_set_sha256": entry.trust_set_digest,
+            "key_ids": entry.key_ids.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
+        }),
+    }
+}
+
+/// Key ids joined by `separator`, each cut to its first `chars` characters.
+fn key_list(ids: &[KeyId], separator: &str, chars: usize) -> String {
+    let ids: Vec<String> = ids
+        .iter()
+        .map(|k| k.to_string().chars().take(chars).collect())
+        .collect();
+    ids.join(separator)
 }
 
 /// One CSV field (RFC 4180): quoted when it holds a comma, quote or line break.
@@ -219,30 +240,53 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
     let mut rows = Vec::new();
     for item in ledger.entries()? {
         let (index, bytes) = item?;
-        let entry =
-            Entry::from_bytes(&bytes).with_context(|| format!("entry {index} of the ledger"))?;
-        if args.channel.as_ref().is_none_or(|c| *c == entry.channel) {
-            rows.push((index, entry));
+        let record =
+            Record::from_bytes(&bytes).with_context(|| format!("entry {index} of the ledger"))?;
+        // A trust-set publish renews every channel's feed, so it belongs to each channel's list.
+        let shown = match &record {
+            Record::Bundle(entry) => args.channel.as_ref().is_none_or(|c| *c == entry.channel),
+            Record::TrustSet(_) => true,
+        };
+        if shown {
+            rows.push((index, record));
         }
     }
     if args.csv {
         let mut text = String::from(
-            "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,feed_sequence\n",
+            "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,\
+             feed_sequence,trust_set_version,trust_set_sha256\n",
         );
-        for (index, e) in &rows {
-            let keys: Vec<String> = e.key_ids.iter().map(|k| k.to_string()).collect();
-            let fields = [
-                index.to_string(),
-                time_text(e.time),
-                e.event.to_string(),
-                e.channel.clone(),
-                e.bundle.clone(),
-                e.version.to_string(),
-                e.bundle_digest.to_string(),
-                e.manifest_digest.to_string(),
-                keys.join(" "),
-                e.feed_sequence.to_string(),
-            ];
+        for (index, record) in &rows {
+            let fields = match record {
+                Record::Bundle(e) => [
+                    index.to_string(),
+                    time_text(e.time),
+                    e.event.to_string(),
+                    e.channel.clone(),
+                    e.bundle.clone(),
+                    e.version.to_string(),
+                    e.bundle_digest.to_string(),
+                    e.manifest_digest.to_string(),
+                    key_list(&e.key_ids, " ", usize::MAX),
+                    e.feed_sequence.to_string(),
+                    String::new(),
+                    String::new(),
+                ],
+                Record::TrustSet(e) => [
+                    index.to_string(),
+                    time_text(e.time),
+                    e.event.to_string(),
+                    String::new(),
+                    String::new(),
+                    String::new(),
+                    String::new(),
+                    String::new(),
+                    key_list(&e.key_ids, " ", usize::MAX),
+                    String::new(),
+                    e.trust_set_version.to_string(),
+                    e.trust_set_digest.to_string(),
+                ],
+            };
             let fields: Vec<String> = fields.iter().map(|f| csv_field(f)).collect();
             text.push_str(&fields.join(","));
             text.push('\n');
@@ -261,23 +305,31 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         "signed by".into(),
         "sequence".into(),
     ]];
-    for (index, e) in &rows {
-        let keys: Vec<String> = e
-            .key_ids
-            .iter()
-            .map(|k| k.to_string()[..8].to_string())
-            .collect();
-        table.push([
-            index.to_string(),
-            time_text(e.time),
-            e.event.to_string(),
-            e.channel.clone(),
-            e.bundle.clone(),
-            e.version.to_string(),
-            e.bundle_digest.to_string()[..16].to_string(),
-            keys.join(","),
-            e.feed_sequence.to_string(),
-        ]);
+    for (index, record) in &rows {
+        table.push(match record {
+            Record::Bundle(e) => [
+                index.to_string(),
+                time_text(e.time),
+                e.event.to_string(),
+                e.channel.clone(),
+                e.bundle.clone(),
+                e.version.to_string(),
+                e.bundle_digest.to_string()[..16].to_string(),
+                key_list(&e.key_ids, ",", 8),
+                e.feed_sequence.to_string(),
+            ],
+            Record::TrustSet(e) => [
+                index.to_string(),
+                time_text(e.time),
+                e.event.to_string(),
+                "-".into(),
+                "trust set".into(),
+                e.trust_set_version.to_string(),
+                e.trust_set_digest.to_string()[..16].to_string(),
+                key_list(&e.key_ids, ",", 8),
+                "-".into(),
+            ],
+        });
     }
     let widths: Vec<usize> = (0..9)
         .map(|i| {

@@ -6,14 +6,16 @@ use std::fs::{File, TryLockError};
 use std::sync::Arc;
 
 use ampoule_verify::fetch::Transfer;
+use ampoule_verify::format::trust_set;
 use ampoule_verify::{DocumentKind, Progress, Stage, Store, Timestamp, Verifier};
 use anyhow::{Context, Result, bail};
 use serde_json::{Value, json};
 
 use crate::cli::UpdateArgs;
-use crate::cmd::{load_trust, load_trust_set, parse_version};
+use crate::cmd::external::read_bounded;
+use crate::cmd::{load_trust, parse_version};
 use crate::device::{
-    DOWNLOAD_LOCK, DOWNLOADS_DIR, Device, Outcome, check_device_id, stored_device_id,
+    Checked, DOWNLOAD_LOCK, DOWNLOADS_DIR, Device, Outcome, check_device_id, stored_device_id,
 };
 use crate::output::Output;
 
@@ -27,13 +29,19 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
     if let Some(id) = &args.device_id {
         check_device_id(id)?;
     }
-    let (bundles, feed_keys, tree_head_keys) = match &args.trust_set {
+    let now = Timestamp::now();
+    let (bundles, feed_keys, tree_head_keys, trust_set) = match &args.trust_set {
         Some(path) => {
-            let trust = load_trust_set(path)?;
+            // As an app starts: the set it shipped with, or the newer one its store accepted
+            // through a feed since.
+            let initial = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+            let trust = Store::load_trust_set(&args.store, &initial, now)
+                .with_context(|| format!("trust set {} refused", path.display()))?;
             (
                 Verifier::from_trust_set(&trust, app_version.clone())?,
                 trust.keys_for(DocumentKind::Feed),
                 trust.keys_for(DocumentKind::TreeHead),
+                Some(trust),
             )
         }
         None => {
@@ -42,6 +50,7 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
                 Verifier::new(keys.clone(), app_version.clone())?,
                 (keys.clone(), 1),
                 (keys, 1),
+                None,
             )
         }
     };
@@ -75,9 +84,10 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
         device_id: device_id.clone(),
         download_dir,
         transfer: Transfer::new().on_progress(download_progress(out)),
+        trust_set,
     };
-    let outcome = device.check(Timestamp::now())?;
-    report(&device, &outcome, &app_version, out)
+    let checked = device.check_rotating(now)?;
+    report(&device, &checked, &app_version, out)
 }
 
 /// The channel named by a feed URL's file name: `.../feeds/<channel>.json`.
@@ -127,10 +137,11 @@ fn download_progress(out: &Output) -> ampoule_verify::ProgressFn {
 
 fn report(
     device: &Device,
-    outcome: &Outcome,
+    checked: &Checked,
     app_version: &semver::Version,
     out: &Output,
 ) -> Result<()> {
+    let outcome = &checked.outcome;
     let feed = outcome.feed();
     let state = device.store.state()?;
     let current = state.current.as_ref();
@@ -177,6 +188,10 @@ fn report(
                 .map_or_else(String::new, |r| r.requires_app.to_string())
         ),
     };
+    let human = match &checked.rotated {
+        Some(next) => format!("trust set rotated to version {}; {human}", next.version()),
+        None => human,
+    };
     let offered = outcome.offered().map(|r| {
         json!({
             "name": r.name,
@@ -207,6 +222,10 @@ fn report(
         "current": installed,
         "store": device.store.dir(),
     });
+    if let Some(trust) = checked.rotated.as_ref().or(device.trust_set.as_ref()) {
+        doc["trust_set_version"] = json!(trust.version());
+        doc["trust_set_rotated"] = json!(checked.rotated.is_some());
+    }
     match outcome {
         Outcome::Updated { installed, .. } => {
             doc["replaced"] = installed

@@ -376,12 +376,15 @@ impl FeedVerifier {
     }
 
     /// This verifier with the feed keys and threshold of `trust` instead of its own; the
-    /// channel, clock skew and last accepted feed stay. For a device that just accepted a
-    /// newer trust set.
+    /// channel, clock skew and last accepted feed stay, and so does a ledger requirement, its
+    /// tree heads then checked with the tree-head keys of `trust`. For a device that just
+    /// accepted a newer trust set.
     pub fn with_trust_set(self, trust: &TrustSet) -> Result<Self> {
         let mut next = Self::from_trust_set(trust, self.channel)?;
         next.skew_secs = self.skew_secs;
         next.last = self.last;
+        // Dropping the requirement here would let a rotation switch the ledger check off.
+        next.ledger = self.ledger.map(|l| l.with_trust_set(trust));
         Ok(next)
     }
 

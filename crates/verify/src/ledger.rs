@@ -1,5 +1,5 @@
 //! The audit ledger as devices and auditors read it: the entry the release side appends for
-//! every publish and withdraw, the `ledger` object a feed carries for the release it names, the
+//! every publish and withdraw (and the one for every trust-set publish), the `ledger` object a feed carries for the release it names, the
 //! consistency steps a release tree serves, and the checks a device makes before it trusts a
 //! release: the tree head is signed by trusted keys, the release's publish entry is in it, and
 //! the ledger only ever grew since the largest tree head the device saw before.
@@ -76,6 +76,9 @@ pub enum Event {
     Publish,
     /// The bundle was withdrawn from the channel.
     Withdraw,
+    /// A trust set was published in the release tree (a [`TrustSetEntry`], not an [`Entry`]).
+    #[serde(rename = "trust_set")]
+    TrustSet,
 }
 
 impl fmt::Display for Event {
@@ -83,12 +86,13 @@ impl fmt::Display for Event {
         f.write_str(match self {
             Event::Publish => "publish",
             Event::Withdraw => "withdraw",
+            Event::TrustSet => "trust_set",
         })
     }
 }
 
-/// One ledger entry: a publish or withdraw, with everything an auditor needs to match it
-/// against a bundle and a feed. Field order here is the order in the JSON.
+/// One ledger entry of a bundle: a publish or withdraw, with everything an auditor needs to
+/// match it against a bundle and a feed. Field order here is the order in the JSON.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Entry {
@@ -129,8 +133,90 @@ impl Entry {
                 ),
             ));
         }
+        let entry: Entry = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("ledger entry is not valid: {e}")))?;
+        if entry.event == Event::TrustSet {
+            return Err(invalid(
+                "ledger entry has event trust_set but the fields of a bundle entry".to_string(),
+            ));
+        }
+        Ok(entry)
+    }
+}
+
+/// The ledger entry of a trust-set publish: which version went into the release tree, the
+/// SHA-256 of its exact file, and who signed it, so that an auditor sees every change of the
+/// keys devices trust. It has fields of its own rather than bundle fields left empty, so no
+/// reader can mistake it for the entry of a release.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TrustSetEntry {
+    /// Always [`Event::TrustSet`].
+    pub event: Event,
+    /// The trust set's version.
+    pub trust_set_version: u64,
+    /// SHA-256 of the trust-set file as published (`trust/<version>.json`).
+    pub trust_set_digest: Digest,
+    /// The keys whose signatures over the trust set were checked when it was published.
+    pub key_ids: Vec<KeyId>,
+    /// When it happened, in seconds since the Unix epoch.
+    pub time: u64,
+}
+
+impl TrustSetEntry {
+    /// The entry as one line of compact JSON, the bytes the ledger hashes.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        serde_json::to_vec(self).expect("a ledger entry always serializes")
+    }
+}
+
+/// Any ledger entry, told apart by its `event` field.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum Record {
+    /// A publish or withdraw of a bundle.
+    Bundle(Entry),
+    /// A trust-set publish.
+    TrustSet(TrustSetEntry),
+}
+
+/// Only the `event` field, to know which kind of entry to parse; the parse that follows
+/// refuses unknown fields.
+#[derive(Deserialize)]
+struct EventOnly {
+    event: Event,
+}
+
+impl Record {
+    /// Parses an entry of either kind as stored, refusing oversized input, unknown and
+    /// duplicate fields.
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self> {
+        if bytes.len() > MAX_ENTRY_BYTES {
+            return Entry::from_bytes(bytes).map(Record::Bundle);
+        }
+        let kind: EventOnly = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("ledger entry is not valid: {e}")))?;
+        if kind.event != Event::TrustSet {
+            return Entry::from_bytes(bytes).map(Record::Bundle);
+        }
         serde_json::from_slice(bytes)
+            .map(Record::TrustSet)
             .map_err(|e| invalid(format!("ledger entry is not valid: {e}")))
+    }
+
+    /// The entry's bytes as the ledger stores them.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        match self {
+            Record::Bundle(e) => e.to_bytes(),
+            Record::TrustSet(e) => e.to_bytes(),
+        }
+    }
+
+    /// When it happened, in seconds since the Unix epoch.
+    pub fn time(&self) -> u64 {
+        match self {
+            Record::Bundle(e) => e.time,
+            Record::TrustSet(e) => e.time,
+        }
     }
 }
 
@@ -271,6 +357,15 @@ impl LedgerVerifier {
         }
     }
 
+    /// This verifier with the tree-head keys and threshold of `trust` instead of its own; the
+    /// remembered tree head stays. For a device that just accepted a newer trust set.
+    pub fn with_trust_set(self, trust: &TrustSet) -> Self {
+        LedgerVerifier {
+            trust: HeadTrust::TrustSet(Box::new(trust.clone())),
+            remembered: self.remembered,
+        }
+    }
+
     /// The largest tree head this device verified before: a smaller one, or one that does not
     /// extend it, is refused.
     pub fn remembered(mut self, head: Option<TreeHead>) -> Self {
@@ -327,7 +422,16 @@ impl LedgerVerifier {
                 let (Some(text), Some(inclusion)) = (&ledger.entry, &ledger.inclusion) else {
                     return Err(never("the feed carries no ledger entry for it".to_string()));
                 };
-                let entry = Entry::from_bytes(text.as_bytes())?;
+                let entry = match Record::from_bytes(text.as_bytes())? {
+                    Record::Bundle(entry) => entry,
+                    Record::TrustSet(t) => {
+                        return Err(never(format!(
+                            "the ledger entry the feed carries logs trust set version {}, not \
+                             a publish of this bundle",
+                            t.trust_set_version
+                        )));
+                    }
+                };
                 let mismatch = [
                     ("event", entry.event.to_string(), Event::Publish.to_string()),
                     ("channel", entry.channel.clone(), feed.channel.clone()),

@@ -1,6 +1,7 @@
 //! Key rotation on the device (issue 5): the store keeps the newest trust set it accepted and
 //! refuses older ones or damaged files, feeds are checked with a trust set's feed keys and
-//! threshold, and a feed's `trust_set` reference is validated like its release path.
+//! threshold, a feed's `trust_set` reference is validated like its release path, and a
+//! rotation keeps the ledger requirement.
 
 use ampoule_verify::feed::{Feed, SignedFeed, TrustSetRef};
 use ampoule_verify::format::{context, signed_bytes};
@@ -408,4 +409,27 @@ fn issue5_a_feeds_trust_set_reference_is_validated() {
             .starts_with("signed feed is not valid: unknown field `size`"),
         "{text}"
     );
+}
+
+#[test]
+fn issue5_a_rotation_keeps_the_ledger_requirement() {
+    let (v1, v2) = v1_v2();
+    let one = TrustSet::verify_initial(&v1, at(NOW)).expect("v1");
+    let two = one.accept_successor(&v2, at(NOW)).expect("v2");
+    let feeds = FeedVerifier::from_trust_set(&one, "stable")
+        .expect("feed verifier")
+        .require_ledger(ampoule_verify::ledger::LedgerVerifier::from_trust_set(&one))
+        .with_trust_set(&two)
+        .expect("rotated");
+    assert_eq!(feeds.trust_set_version(), Some(2));
+    // A feed without a ledger proof, signed by the feed key both sets trust: the rotated
+    // verifier still requires the ledger (before this was fixed it let the feed through).
+    let e = feeds
+        .verify(&signed_feed(&feed_text(None), &[&key(4)]), at(NOW))
+        .expect_err("no ledger proof");
+    assert_eq!(
+        e.to_string(),
+        "feed sequence 4 carries no ledger proof, and this device requires one"
+    );
+    assert_eq!(e.kind(), ErrorKind::Proof);
 }
