@@ -4,6 +4,7 @@
 //! Format definitions, reading and verification live in `ampoule-verify`; this crate writes
 //! bundles, manages key files and runs the commands.
 
+pub mod atomic;
 pub mod audit;
 pub mod cli;
 pub mod cmd;

@@ -26,8 +26,9 @@ use ampoule_verify::{Digest, KeyId, Manifest, Timestamp, labels, tar};
 use anyhow::{Context, Result, bail};
 use ed25519_dalek::{Signer, SigningKey};
 use indicatif::ProgressBar;
+
+use crate::atomic::{Placement, place, temp_beside};
 use semver::{Version, VersionReq};
-use tempfile::NamedTempFile;
 
 /// The zstd level for payloads: on weight-like float data higher levels buy almost nothing
 /// at many times the time (measured in ../shared/CRATES.md: ratio about 1.08 at 3 and 19).
@@ -210,19 +211,6 @@ impl Write for PayloadSink<'_> {
         }
         Ok(())
     }
-}
-
-/// The temporary file a bundle is written to before it is renamed into place: in the
-/// destination's directory, so the rename is atomic.
-pub fn temp_beside(path: &Path) -> Result<NamedTempFile> {
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p,
-        _ => Path::new("."),
-    };
-    tempfile::Builder::new()
-        .prefix(".ampoule-partial-")
-        .tempfile_in(dir)
-        .with_context(|| format!("cannot create a temporary file in {}", dir.display()))
 }
 
 /// Signs a manifest's exact bytes under the manifest context.
@@ -502,14 +490,6 @@ pub struct Parts<'a> {
     pub payload_len: u64,
 }
 
-/// How the finished file takes its place.
-pub enum Placement<'a> {
-    /// As a new file; an existing one is never replaced.
-    New,
-    /// Replacing an existing file, once `check` accepted the new one.
-    Replace(&'a dyn Fn(File) -> Result<()>),
-}
-
 /// Writes a complete bundle to a temporary file beside `out` and puts it in place.
 pub fn write_bundle_file(
     out: &Path,
@@ -532,35 +512,6 @@ pub fn write_bundle_file(
 
 /// Flushes a complete bundle in a temporary file to disk and renames it to `out`. Returns
 /// its size.
-fn place(out: &Path, temp: NamedTempFile, placement: Placement<'_>) -> Result<u64> {
-    temp.as_file()
-        .sync_all()
-        .with_context(|| format!("cannot flush {} to disk", out.display()))?;
-    if let Placement::Replace(check) = placement {
-        check(temp.reopen()?)?;
-    }
-    let len = temp.as_file().metadata()?.len();
-    // Bundles are published files, readable by the web server that serves them.
-    #[cfg(unix)]
-    {
-        use std::os::unix::fs::PermissionsExt;
-        fs::set_permissions(temp.path(), fs::Permissions::from_mode(0o644))?;
-    }
-    if matches!(placement, Placement::Replace(_)) {
-        temp.persist(out)
-            .map_err(|e| e.error)
-            .with_context(|| format!("cannot replace {}", out.display()))?;
-    } else {
-        temp.persist_noclobber(out)
-            .map_err(|e| e.error)
-            .with_context(|| format!("cannot create {} (does it exist already?)", out.display()))?;
-    }
-    if let Some(dir) = out.parent().filter(|p| !p.as_os_str().is_empty()) {
-        File::open(dir).and_then(|d| d.sync_all()).ok();
-    }
-    Ok(len)
-}
-
 /// Rewrites an existing bundle with a new signatures document, copying manifest and payload
 /// unchanged. The original is replaced only once the new file is complete on disk and
 /// `check` accepted it.

@@ -52,8 +52,6 @@ pub const HISTORY_DIR: &str = "history";
 pub const INDEX_FILE: &str = "index.json";
 pub const TRUST_DIR: &str = "trust";
 pub const LOCK_FILE: &str = ".lock";
-/// Temporary files start with this; `serve` never shows files starting with a dot.
-const TEMP_PREFIX: &str = ".ampoule-partial-";
 /// The largest history or index file read back; far above years of daily publishing.
 const RECORD_FILE_BYTES: u64 = 16 * 1024 * 1024;
 
@@ -226,19 +224,7 @@ fn io_context(doing: &str, path: &Path) -> String {
 /// Writes `bytes` to `path` atomically: temporary file in the same directory, flush, rename,
 /// flush the directory.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
-    let dir = path.parent().unwrap_or(Path::new("."));
-    let mut temp = tempfile::Builder::new()
-        .prefix(TEMP_PREFIX)
-        .tempfile_in(dir)
-        .with_context(|| io_context("create a temporary file in", dir))?;
-    temp.write_all(bytes)
-        .and_then(|()| temp.as_file().sync_all())
-        .with_context(|| io_context("write", temp.path()))?;
-    publishable(temp.path())?;
-    temp.persist(path)
-        .map_err(|e| e.error)
-        .with_context(|| io_context("replace", path))?;
-    sync_dir(dir)
+    crate::atomic::write_bytes(path, bytes, crate::atomic::REPLACE)
 }
 
 /// Files in the tree are read by whatever web server serves it.
@@ -408,7 +394,7 @@ impl Tree {
     pub fn stage_bundle_with(&self, bundle: &Path, verifier: Verifier) -> Result<StagedBundle> {
         let dir = self.root.join(BUNDLES_DIR);
         let mut temp = tempfile::Builder::new()
-            .prefix(TEMP_PREFIX)
+            .prefix(crate::atomic::TEMP_PREFIX)
             .tempfile_in(&dir)
             .with_context(|| io_context("create a temporary file in", &dir))?;
         let mut source = File::open(bundle).with_context(|| io_context("open bundle", bundle))?;

@@ -6,7 +6,8 @@
 
 use std::path::{Path, PathBuf};
 
-use ampoule::pack::{Parts, Placement, sign_manifest, write_bundle_file};
+use ampoule::atomic::Placement;
+use ampoule::pack::{Parts, sign_manifest, write_bundle_file};
 use ampoule::synth;
 use ampoule_verify::format::{FORMAT_VERSION, entry};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};

@@ -3,12 +3,12 @@
 //! sees only the exact bytes to sign, so the secret key never has to touch this tool.
 
 use std::fs::{self, File};
-use std::io::{Read, Write};
+use std::io::Read;
 use std::path::Path;
 
 use anyhow::{Context, Result, bail};
 
-use crate::pack::temp_beside;
+use crate::atomic::{Placement, REPLACE, write_bytes};
 
 /// Reads a whole file of at most `max` bytes, refusing a larger one before reading it all.
 pub fn read_bounded(path: &Path, max: u64, what: &str) -> Result<Vec<u8>> {
@@ -47,28 +47,6 @@ pub fn write_file(path: &Path, bytes: &[u8], replace: bool) -> Result<()> {
             path.display()
         );
     }
-    let mut temp = temp_beside(path)?;
-    temp.write_all(bytes)
-        .and_then(|()| temp.as_file().sync_all())
-        .with_context(|| format!("cannot write {}", path.display()))?;
-    #[cfg(unix)]
-    {
-        use std::os::unix::fs::PermissionsExt;
-        fs::set_permissions(temp.path(), fs::Permissions::from_mode(0o644))?;
-    }
-    if replace {
-        temp.persist(path)
-            .map_err(|e| e.error)
-            .with_context(|| format!("cannot replace {}", path.display()))?;
-    } else {
-        temp.persist_noclobber(path)
-            .map_err(|e| e.error)
-            .with_context(|| {
-                format!("cannot create {} (does it exist already?)", path.display())
-            })?;
-    }
-    if let Some(dir) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
-        File::open(dir).and_then(|d| d.sync_all()).ok();
-    }
-    Ok(())
+    let placement = if replace { REPLACE } else { Placement::New };
+    write_bytes(path, bytes, placement)
 }
