@@ -226,11 +226,19 @@ pub struct PackArgs {
 pub struct SignArgs {
     /// The bundle to sign; it is replaced atomically.
     pub bundle: PathBuf,
+    #[command(flatten)]
+    pub signer: SignerArgs,
+}
+
+/// How a signature is made: with a secret key here, or by a signer outside ampoule (a
+/// hardware key, a key service, an air-gapped machine) that gets the exported request.
+#[derive(Args, Debug)]
+pub struct SignerArgs {
     /// The secret key to sign with.
     #[arg(long, value_name = "SECRET.pem")]
     pub key: Option<PathBuf>,
-    /// Write exactly the bytes to sign (context and manifest) to this new file, for a signer
-    /// outside ampoule; the bundle is not changed.
+    /// Write exactly the bytes to sign (the signing context and the document) to this new
+    /// file, for a signer outside ampoule; nothing else changes.
     #[arg(long, value_name = "OUT")]
     pub export_request: Option<PathBuf>,
     /// Attach a raw 64-byte Ed25519 signature made elsewhere over the exported request; it is
@@ -483,23 +491,11 @@ pub struct TrustShowArgs {
 #[derive(Args, Debug)]
 #[command(group(clap::ArgGroup::new("how").required(true).args(["key", "export_request", "attach"])))]
 pub struct TrustSignArgs {
-    /// The trust-set file to sign; it is replaced atomically.
+    /// The trust-set file to sign; it is replaced atomically. The signing key need not be
+    /// listed in it: keys of the set trusted now sign its successor.
     pub trust_set: PathBuf,
-    /// The secret key to sign with (it need not be listed: keys of the set trusted now sign
-    /// its successor).
-    #[arg(long, value_name = "SECRET.pem")]
-    pub key: Option<PathBuf>,
-    /// Write exactly the bytes to sign (context and trust-set text) to this new file.
-    #[arg(long, value_name = "OUT")]
-    pub export_request: Option<PathBuf>,
-    /// Attach a raw 64-byte Ed25519 signature made elsewhere over the exported request.
-    #[arg(long, value_name = "SIG", requires = "pubkey")]
-    pub attach: Option<PathBuf>,
-    /// The public key of the outside signer (with --attach).
-    #[arg(long, value_name = "PUB.pem", requires = "attach")]
-    pub pubkey: Option<PathBuf>,
     #[command(flatten)]
-    pub passphrase: PassphraseArgs,
+    pub signer: SignerArgs,
 }
 
 #[derive(Args, Debug)]

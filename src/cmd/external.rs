@@ -6,9 +6,17 @@ use std::fs::{self, File};
 use std::io::Read;
 use std::path::Path;
 
+use ampoule_verify::PublicKey;
+use ampoule_verify::format::signed_bytes;
+use ampoule_verify::signature::SignatureEntry;
 use anyhow::{Context, Result, bail};
+use ed25519_dalek::Signer;
 
+use crate::Refused;
 use crate::atomic::{Placement, REPLACE, write_bytes};
+use crate::cli::SignerArgs;
+use crate::cmd::passphrase_source;
+use crate::keyfile;
 
 /// Reads a whole file of at most `max` bytes, refusing a larger one before reading it all.
 pub fn read_bounded(path: &Path, max: u64, what: &str) -> Result<Vec<u8>> {
@@ -49,4 +57,60 @@ pub fn write_file(path: &Path, bytes: &[u8], replace: bool) -> Result<()> {
     }
     let placement = if replace { REPLACE } else { Placement::New };
     write_bytes(path, bytes, placement)
+}
+
+/// A document to sign, and how its command is named in messages.
+pub struct ToSign<'a> {
+    /// The document in messages ("bundle's manifest", "trust set version 2").
+    pub what: &'a str,
+    /// Its signing context.
+    pub context: &'a [u8],
+    /// Its exact bytes.
+    pub document: &'a [u8],
+    /// The file that holds it, left unchanged when a signature is refused.
+    pub file: &'a Path,
+    /// The command that exports its request ("ampoule sign").
+    pub command: &'a str,
+    /// What the file is ("bundle", "trust set").
+    pub noun: &'a str,
+}
+
+/// A signature over the document: made here with `--key`, or made elsewhere and attached
+/// with `--attach` and `--pubkey`. Either way it is verified (strict Ed25519) before it is
+/// accepted, so a wrong key or a signature over other bytes changes nothing.
+pub fn signature(signer: &SignerArgs, doc: &ToSign<'_>) -> Result<(SignatureEntry, PublicKey)> {
+    match (&signer.key, &signer.attach, &signer.pubkey) {
+        (Some(key), _, _) => {
+            let key = keyfile::read_secret_key(key, &passphrase_source(&signer.passphrase))?;
+            let public = PublicKey::from_verifying_key(&key.verifying_key())?;
+            let signature = key
+                .sign(&signed_bytes(doc.context, doc.document))
+                .to_bytes();
+            let entry =
+                SignatureEntry::verified(doc.what, &public, doc.context, doc.document, signature)?;
+            Ok((entry, public))
+        }
+        (None, Some(sig), Some(pubkey)) => {
+            let public = keyfile::read_public_key(pubkey)?;
+            let entry = SignatureEntry::verified(
+                doc.what,
+                &public,
+                doc.context,
+                doc.document,
+                read_raw_signature(sig)?,
+            )
+            .map_err(|e| {
+                Refused(format!(
+                    "{e}; {} was left unchanged (sign exactly the bytes '{} --export-request' \
+                     wrote for this {}, with the secret key of {})",
+                    doc.file.display(),
+                    doc.command,
+                    doc.noun,
+                    pubkey.display()
+                ))
+            })?;
+            Ok((entry, public))
+        }
+        _ => bail!("give --key, --export-request, or --attach with --pubkey"),
+    }
 }

@@ -6,25 +6,21 @@ use std::fs::File;
 
 use ampoule_verify::bundle::Unverified;
 use ampoule_verify::format::{context, limit, signed_bytes};
-use ampoule_verify::signature::SignatureEntry;
-use ampoule_verify::{PublicKey, TrustedKeys, Verifier};
+use ampoule_verify::{TrustedKeys, Verifier};
 use anyhow::{Context, Result, bail};
 use serde_json::json;
 
-use crate::Refused;
 use crate::cli::SignArgs;
-use crate::cmd::external::{read_raw_signature, write_file};
-use crate::cmd::passphrase_source;
-use crate::keyfile;
+use crate::cmd::external::{ToSign, signature, write_file};
 use crate::output::Output;
-use crate::pack::{rewrite_signatures, sign_manifest};
+use crate::pack::rewrite_signatures;
 
 pub fn run(args: SignArgs, out: &Output) -> Result<()> {
     let mut bundle = Unverified::open(&args.bundle)?;
     let manifest = bundle.manifest.clone();
     let layout = bundle.layout.clone();
     let mut signatures = bundle.signatures.clone();
-    if let Some(request) = &args.export_request {
+    if let Some(request) = &args.signer.export_request {
         write_file(
             request,
             &signed_bytes(context::MANIFEST, &layout.manifest),
@@ -43,33 +39,17 @@ pub fn run(args: SignArgs, out: &Output) -> Result<()> {
             json!({ "ok": true, "bundle": args.bundle, "request": request }),
         );
     }
-    let (entry, public) = match (&args.key, &args.attach, &args.pubkey) {
-        (Some(key), _, _) => {
-            let key = keyfile::read_secret_key(key, &passphrase_source(&args.passphrase))?;
-            let public = PublicKey::from_verifying_key(&key.verifying_key())?;
-            (sign_manifest(&key, &layout.manifest), public)
-        }
-        (None, Some(sig), Some(pubkey)) => {
-            let public = keyfile::read_public_key(pubkey)?;
-            let entry = SignatureEntry::verified(
-                "bundle's manifest",
-                &public,
-                context::MANIFEST,
-                &layout.manifest,
-                read_raw_signature(sig)?,
-            )
-            .map_err(|e| {
-                Refused(format!(
-                    "{e}; {} was left unchanged (sign exactly the bytes 'ampoule sign \
-                     --export-request' wrote for this bundle, with the secret key of {})",
-                    args.bundle.display(),
-                    pubkey.display()
-                ))
-            })?;
-            (entry, public)
-        }
-        _ => bail!("give --key, --export-request, or --attach with --pubkey"),
-    };
+    let (entry, public) = signature(
+        &args.signer,
+        &ToSign {
+            what: "bundle's manifest",
+            context: context::MANIFEST,
+            document: &layout.manifest,
+            file: &args.bundle,
+            command: "ampoule sign",
+            noun: "bundle",
+        },
+    )?;
     let changed = signatures.insert(entry);
     let summary = format!("{} {}", manifest.name, manifest.version);
     if changed {

@@ -7,22 +7,16 @@
 use std::path::Path;
 
 use ampoule_verify::format::trust_set as spec;
-use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody};
-use ampoule_verify::{
-    DocumentKind, KeyId, PublicKey, Timestamp, TrustSet, TrustSetFile, TrustedKeys,
-};
+use ampoule_verify::{DocumentKind, KeyId, Timestamp, TrustSet, TrustSetFile, TrustedKeys};
 use anyhow::{Context, Result, anyhow, bail};
-use ed25519_dalek::Signer;
 use serde_json::{Value, json};
 
-use crate::Refused;
 use crate::cli::{
     TrustAddArgs, TrustArgs, TrustCommand, TrustEditArgs, TrustInitArgs, TrustRemoveArgs,
     TrustShowArgs, TrustSignArgs,
 };
-use crate::cmd::external::{read_bounded, read_raw_signature, write_file};
-use crate::cmd::passphrase_source;
+use crate::cmd::external::{ToSign, read_bounded, signature, write_file};
 use crate::keyfile;
 use crate::output::Output;
 
@@ -397,7 +391,7 @@ fn show(args: TrustShowArgs, out: &Output) -> Result<()> {
 
 fn sign(args: TrustSignArgs, out: &Output) -> Result<()> {
     let mut file = read_file(&args.trust_set)?;
-    if let Some(request) = &args.export_request {
+    if let Some(request) = &args.signer.export_request {
         write_file(request, &file.signing_request(), false)?;
         let human = format!(
             "wrote the signing request for trust set version {} to {}; sign exactly these bytes \
@@ -412,44 +406,18 @@ fn sign(args: TrustSignArgs, out: &Output) -> Result<()> {
             json!({ "ok": true, "file": args.trust_set, "version": file.version(), "request": request }),
         );
     }
-    let request = file.signing_request();
     let what = format!("trust set version {}", file.version());
-    let (entry, public): (SignatureEntry, PublicKey) = match (&args.key, &args.attach, &args.pubkey)
-    {
-        (Some(key), _, _) => {
-            let key = keyfile::read_secret_key(key, &passphrase_source(&args.passphrase))?;
-            let public = PublicKey::from_verifying_key(&key.verifying_key())?;
-            let signature = key.sign(&request).to_bytes();
-            let entry = SignatureEntry::verified(
-                &what,
-                &public,
-                ampoule_verify::format::context::TRUST_SET,
-                file.text().as_bytes(),
-                signature,
-            )?;
-            (entry, public)
-        }
-        (None, Some(sig), Some(pubkey)) => {
-            let public = keyfile::read_public_key(pubkey)?;
-            let entry = SignatureEntry::verified(
-                &what,
-                &public,
-                ampoule_verify::format::context::TRUST_SET,
-                file.text().as_bytes(),
-                read_raw_signature(sig)?,
-            )
-            .map_err(|e| {
-                Refused(format!(
-                    "{e}; {} was left unchanged (sign exactly the bytes 'ampoule trust sign \
-                     --export-request' wrote for this trust set, with the secret key of {})",
-                    args.trust_set.display(),
-                    pubkey.display()
-                ))
-            })?;
-            (entry, public)
-        }
-        _ => bail!("give --key, --export-request, or --attach with --pubkey"),
-    };
+    let (entry, public) = signature(
+        &args.signer,
+        &ToSign {
+            what: &what,
+            context: ampoule_verify::format::context::TRUST_SET,
+            document: file.text().as_bytes(),
+            file: &args.trust_set,
+            command: "ampoule trust sign",
+            noun: "trust set",
+        },
+    )?;
     let changed = file.insert_signature(entry)?;
     if changed {
         write_file(&args.trust_set, &file.to_json(), true)?;
