@@ -17,7 +17,8 @@ Exit codes:
     version,
     about = "Pack, sign, verify and publish machine-learning model bundles for devices",
     long_about = "Pack a model file and its label list into a versioned, signed, compressed \
-bundle (.ampoule), and check bundles the way a device will before it swaps a model in.",
+bundle (.ampoule), publish it on channels, keep an audit ledger of everything shipped, and \
+check bundles the way a device will before it swaps a model in.",
     after_help = EXIT_CODES
 )]
 pub struct Cli {
@@ -150,6 +151,17 @@ feed is refused from then on. Exit code 0: updated, or nothing to do (up to date
 the rollout yet, nothing offered, another app version needed); 1: the feed or bundle was
 refused; 2: a network, disk or usage problem (trying again later may work).")]
     Update(UpdateArgs),
+
+    /// Look into an on-device store, roll it back to the previous release, or clean it up.
+    #[command(after_help = "Examples:
+  ampoule store status --store ./camera --trust release.public.pem --app-version 2.3.0
+  ampoule store rollback --store ./camera --trust release.public.pem --app-version 2.3.0
+  ampoule store gc --store ./camera --trust release.public.pem --app-version 2.3.0
+
+status checks the current release the way an app must before it loads the model (digests and
+signatures). rollback is for an app whose own health check fails on a new model: the
+previous release becomes current, and the version rolled back from stays refused.")]
+    Store(StoreArgs),
 
     /// Run the trail-camera story end to end on generated data.
     #[command(after_help = "Example:
@@ -618,4 +630,37 @@ pub struct UpdateArgs {
     /// would be installed; do not use this on devices in the field.
     #[arg(long)]
     pub dangerous_skip_ledger: bool,
+}
+
+#[derive(Args, Debug)]
+pub struct StoreArgs {
+    #[command(subcommand)]
+    pub command: StoreCommand,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum StoreCommand {
+    /// The current release (fully checked), the previous one, and what the store remembers.
+    Status(StoreOptions),
+    /// Make the previous release current again (after the app's health check failed).
+    Rollback(StoreOptions),
+    /// Remove releases other than the current and previous ones, and leftovers of crashes.
+    Gc(StoreOptions),
+}
+
+/// Which store, and the app whose keys and version it is opened with.
+#[derive(Args, Debug)]
+pub struct StoreOptions {
+    /// The on-device store.
+    #[arg(long, value_name = "DIR")]
+    pub store: PathBuf,
+    /// A public key trusted for bundles (repeat for several).
+    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
+    pub trust: Vec<PathBuf>,
+    /// The trust set shipped with the app (the store's newer one is used when it has one).
+    #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
+    pub trust_set: Option<PathBuf>,
+    /// The app's own version.
+    #[arg(long, value_name = "X")]
+    pub app_version: String,
 }

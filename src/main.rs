@@ -69,6 +69,7 @@ fn main() -> ExitCode {
         Command::Ledger(args) => cmd::ledger::run(args, &out),
         Command::Serve(args) => cmd::serve::run(args, &out),
         Command::Update(args) => cmd::update::run(args, &out),
+        Command::Store(args) => cmd::store::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
     };
     match result {

@@ -19,6 +19,11 @@ use ampoule_verify::{Digest, ErrorKind, FeedVerifier, KeyId, Timestamp, Verifier
 use ed25519_dalek::{Signer, SigningKey};
 use semver::Version;
 
+/// The test binary spawns child processes (servers, the CLI) from other tests while this one
+/// runs; a fork that has not yet exec'd briefly shares the store's lock file descriptor, so an
+/// updater here waits a little for the lock instead of failing at once.
+const LOCK_WAIT: std::time::Duration = std::time::Duration::from_secs(10);
+
 mod tree_common;
 use tree_common::*;
 
@@ -820,7 +825,9 @@ fn the_store_remembers_the_largest_tree_head() {
     let d = dir.path();
     let store_dir = d.join("store");
     let verifier = Verifier::new(keys(d), Version::new(2, 3, 0)).expect("verifier");
-    let store = ampoule_verify::Store::open(&store_dir, verifier).expect("store");
+    let store = ampoule_verify::Store::open(&store_dir, verifier)
+        .expect("store")
+        .wait_for_lock(LOCK_WAIT);
     assert_eq!(store.state().expect("state").tree_head, None);
     let small = TreeHead {
         tree_size: 3,

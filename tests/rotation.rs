@@ -16,6 +16,11 @@ use ampoule_verify::{
 };
 use semver::Version;
 
+/// The test binary spawns child processes (servers, the CLI) from other tests while this one
+/// runs; a fork that has not yet exec'd briefly shares the store's lock file descriptor, so an
+/// updater here waits a little for the lock instead of failing at once.
+const LOCK_WAIT: std::time::Duration = std::time::Duration::from_secs(10);
+
 mod tree_common;
 use tree_common::*;
 
@@ -165,7 +170,8 @@ fn device_check(
         store_dir,
         Verifier::from_trust_set(&trust, APP).expect("bundle keys"),
     )
-    .expect("store");
+    .expect("store")
+    .wait_for_lock(LOCK_WAIT);
     let mut bundles = Verifier::from_trust_set(&trust, APP)
         .expect("bundle keys")
         .require_name("trailcam-species");
@@ -196,7 +202,8 @@ fn install(store_dir: &Path, initial: &[u8], update: Update) -> Version {
         store_dir,
         Verifier::from_trust_set(&trust, APP).expect("bundle keys"),
     )
-    .expect("store");
+    .expect("store")
+    .wait_for_lock(LOCK_WAIT);
     let Update::Ready { feed, bundle, path } = update else {
         panic!("expected a bundle ready to install, got {update:?}");
     };
@@ -352,7 +359,8 @@ fn issue5_a_rotation_published_in_the_tree_revokes_a_key_on_devices() {
         &store_dir,
         Verifier::from_trust_set(&store_trust, APP).expect("v2 verifier"),
     )
-    .expect("store");
+    .expect("store")
+    .wait_for_lock(LOCK_WAIT);
     let stored = store
         .open_current()
         .expect_err("signed by a revoked key")
@@ -416,6 +424,7 @@ fn issue5_a_feed_naming_an_older_trust_set_is_ignored() {
         Verifier::from_trust_set(&v2, APP).expect("bundle keys"),
     )
     .expect("store")
+    .wait_for_lock(LOCK_WAIT)
     .save_trust_set(&v2)
     .expect("saved");
 
@@ -667,7 +676,8 @@ fn issue5_a_device_whose_trust_set_expired_renews_it_through_the_feed() {
         &store_dir,
         Verifier::from_trust_set(&v1, APP).expect("bundle keys"),
     )
-    .expect("store");
+    .expect("store")
+    .wait_for_lock(LOCK_WAIT);
     // The camera was offline for 366 days: version 1 expired, and with it every feed check.
     let later = Timestamp::from_unix(now.unix() + 366 * 86_400).expect("in range");
     assert_eq!(
@@ -706,7 +716,8 @@ fn issue5_a_device_whose_trust_set_expired_renews_it_through_the_feed() {
         &other_dir,
         Verifier::from_trust_set(&v1, APP).expect("bundle keys"),
     )
-    .expect("store");
+    .expect("store")
+    .wait_for_lock(LOCK_WAIT);
     ok(
         d,
         &[

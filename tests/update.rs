@@ -577,3 +577,96 @@ fn update_requires_the_ledger_proof_issue_4() {
     succeeded(&update(d, &server, &[]));
     assert_eq!(state(d)["tree_head"]["tree_size"], 2);
 }
+
+fn store_cmd(d: &Path, sub: &str, json: bool) -> Output {
+    let mut args = vec![];
+    if json {
+        args.push("--json");
+    }
+    args.extend([
+        "store",
+        sub,
+        "--store",
+        "cam",
+        "--trust",
+        "k.pub",
+        "--app-version",
+        "2.3.0",
+    ]);
+    Command::new(BIN)
+        .args(&args)
+        .current_dir(d)
+        .output()
+        .expect("the ampoule binary runs")
+}
+
+/// `ampoule store status|rollback|gc`: the store from the command line, for scripts (the
+/// library's Store::open_current, rollback and gc).
+#[test]
+fn store_status_rollback_and_gc_issue_3() {
+    let dir = setup();
+    let d = dir.path();
+    let server = serve(d);
+    publish(d, &pack(d, "1.0.0", 0, "k.pem"), "stable", "100");
+    succeeded(&update(d, &server, &[]));
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
+    succeeded(&update(d, &server, &[]));
+
+    let text = succeeded(&store_cmd(d, "status", false));
+    assert!(
+        text.starts_with("current  trailcam-species 1.1.0 (6 labels; model "),
+        "{text}"
+    );
+    assert!(
+        text.contains("\nprevious 1.0.0\nhighest  1.1.0 (never lowered"),
+        "{text}"
+    );
+    assert!(
+        text.contains("\nchannel  stable: feed sequence 2\n"),
+        "{text}"
+    );
+
+    assert_eq!(
+        succeeded(&store_cmd(d, "rollback", false)),
+        "rolled back from 1.1.0 to trailcam-species 1.0.0; 1.1.0 stays refused, and so is \
+         anything not newer than it"
+    );
+    let doc: serde_json::Value =
+        serde_json::from_str(&succeeded(&store_cmd(d, "status", true))).expect("JSON");
+    assert_eq!(doc["current"]["version"], "1.0.0");
+    assert_eq!(doc["highest_version"], "1.1.0");
+    assert!(doc["previous"].is_null());
+
+    let text = succeeded(&store_cmd(d, "gc", false));
+    assert!(
+        text.starts_with("removed ") && text.contains("trailcam-species-1.1.0-"),
+        "{text}"
+    );
+    assert_eq!(
+        succeeded(&store_cmd(d, "gc", false)),
+        "nothing to remove: the store holds only its current and previous releases"
+    );
+
+    // Nothing left to roll back to: refused with the store's reason, nothing changed.
+    let out = store_cmd(d, "rollback", false);
+    assert_ne!(out.status.code(), Some(0));
+    assert!(
+        stderr(&out).starts_with("ampoule: error: "),
+        "{}",
+        stderr(&out)
+    );
+    assert_eq!(state(d)["current"]["version"], "1.0.0");
+
+    // A tampered model is found before an app would load it.
+    let model = d.join(doc["current"]["model"].as_str().expect("model path"));
+    let mut bytes = std::fs::read(&model).expect("model");
+    bytes[10] ^= 1;
+    std::fs::write(&model, bytes).expect("tamper");
+    let out = store_cmd(d, "status", false);
+    assert_eq!(out.status.code(), Some(1), "{}", stderr(&out));
+    assert!(
+        stderr(&out).contains("digest mismatch for 'model.bin'"),
+        "{}",
+        stderr(&out)
+    );
+}

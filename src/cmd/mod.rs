@@ -10,6 +10,7 @@ pub mod pack;
 pub mod publish;
 pub mod serve;
 pub mod sign;
+pub mod store;
 pub mod trust;
 pub mod update;
 pub mod verify;

@@ -1,0 +1,126 @@
+//! `ampoule store`: look into an on-device store, roll it back, clean it up; the library's
+//! `Store` from the command line, for scripts and tests on the device side.
+
+use ampoule_verify::format::trust_set;
+use ampoule_verify::store::Release;
+use ampoule_verify::{Store, Timestamp, Verifier};
+use anyhow::{Context, Result};
+use serde_json::{Value, json};
+
+use crate::cli::{StoreArgs, StoreCommand, StoreOptions};
+use crate::cmd::external::read_bounded;
+use crate::cmd::{load_trust, parse_version};
+use crate::output::Output;
+
+pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
+    match args.command {
+        StoreCommand::Status(o) => status(&o, out),
+        StoreCommand::Rollback(o) => rollback(&o, out),
+        StoreCommand::Gc(o) => gc(&o, out),
+    }
+}
+
+/// Opens the store with the app's verifier: its trusted keys (or the newest trust set the
+/// store accepted, starting from the one given) and its version.
+fn open(o: &StoreOptions) -> Result<Store> {
+    let app_version = parse_version(&o.app_version, "--app-version")?;
+    let verifier = match &o.trust_set {
+        Some(path) => {
+            let initial = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+            let trust = Store::load_trust_set(&o.store, &initial, Timestamp::now())
+                .with_context(|| format!("trust set {} refused", path.display()))?;
+            Verifier::from_trust_set(&trust, app_version)?
+        }
+        None => Verifier::new(load_trust(&o.trust)?, app_version)?,
+    };
+    Ok(Store::open(&o.store, verifier)?)
+}
+
+fn release_json(r: &Release) -> Value {
+    json!({
+        "name": r.manifest.name,
+        "version": r.manifest.version.to_string(),
+        "dir": r.dir,
+        "model": r.model,
+        "labels": r.labels.len(),
+        "manifest_sha256": r.manifest_sha256,
+        "signers": r.signers.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
+    })
+}
+
+fn status(o: &StoreOptions, out: &Output) -> Result<()> {
+    let store = open(o)?;
+    // The full check an app makes before it loads the model: digests and signatures.
+    let current = store.open_current()?;
+    let state = store.state()?;
+    let mut human = match &current {
+        Some(r) => format!(
+            "current  {} {} ({} labels; model {}) checked: digests and signatures match\n",
+            r.manifest.name,
+            r.manifest.version,
+            r.labels.len(),
+            r.model.display()
+        ),
+        None => "current  nothing installed\n".to_string(),
+    };
+    let or_none = |v: Option<String>| v.unwrap_or_else(|| "none".into());
+    human.push_str(&format!(
+        "previous {}\nhighest  {} (never lowered: anything not newer is refused)\n",
+        or_none(state.previous.as_ref().map(|p| p.version.to_string())),
+        or_none(state.highest_version.as_ref().map(|v| v.to_string())),
+    ));
+    for (channel, c) in &state.channels {
+        human.push_str(&format!(
+            "channel  {channel}: feed sequence {}\n",
+            or_none(c.highest_sequence.map(|s| s.to_string()))
+        ));
+    }
+    if let Some(head) = &state.tree_head {
+        human.push_str(&format!(
+            "ledger   largest tree head seen: size {}, root {}\n",
+            head.tree_size, head.root_hash
+        ));
+    }
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "current": current.as_ref().map(release_json),
+            "previous": state.previous.as_ref().map(|p| p.version.to_string()),
+            "highest_version": state.highest_version.as_ref().map(|v| v.to_string()),
+            "channels": state.channels.iter().map(|(name, c)| {
+                (name.clone(), json!({ "highest_sequence": c.highest_sequence }))
+            }).collect::<serde_json::Map<_, _>>(),
+            "tree_head_size": state.tree_head.as_ref().map(|h| h.tree_size),
+        }),
+    )
+}
+
+fn rollback(o: &StoreOptions, out: &Output) -> Result<()> {
+    let store = open(o)?;
+    let from = store.state()?.current.map(|c| c.version.to_string());
+    let back = store.rollback()?;
+    let human = format!(
+        "rolled back from {} to {} {}; {} stays refused, and so is anything not newer than it",
+        from.as_deref().unwrap_or("nothing"),
+        back.manifest.name,
+        back.manifest.version,
+        from.as_deref().unwrap_or("it"),
+    );
+    out.result(
+        &human,
+        json!({ "ok": true, "from": from, "current": release_json(&back) }),
+    )
+}
+
+fn gc(o: &StoreOptions, out: &Output) -> Result<()> {
+    let store = open(o)?;
+    let removed = store.gc()?;
+    let human = if removed.is_empty() {
+        "nothing to remove: the store holds only its current and previous releases".to_string()
+    } else {
+        let list: Vec<String> = removed.iter().map(|p| p.display().to_string()).collect();
+        format!("removed {}", list.join(", "))
+    };
+    out.result(&human, json!({ "ok": true, "removed": removed }))
+}
