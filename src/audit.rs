@@ -214,7 +214,7 @@ pub struct AuditReport {
 /// requires and consistent with the one before it (through the served consistency steps), the
 /// current head consistent with `since`, and every entry against the tree: version reuse with
 /// different content, feed-sequence gaps, bundle files missing or different, entries no feed
-/// carried. `keys` are the tree-head keys for the stored-hash pass (threshold checked by `heads`).
+/// carried, trust-set files missing or different. `keys` are the tree-head keys for the stored-hash pass (threshold checked by `heads`).
 pub fn check(
     root: &Path,
     keys: &ampoule_verify::TrustedKeys,
@@ -389,7 +389,7 @@ fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Resu
         let entry = match Record::from_bytes(&bytes) {
             Ok(Record::Bundle(entry)) => entry,
             Ok(Record::TrustSet(t)) => {
-                check_trust_set_entry(index, &t, &mut trust_sets, report);
+                check_trust_set_entry(root, index, &t, &mut trust_sets, report);
                 continue;
             }
             Err(e) => {
@@ -464,8 +464,10 @@ struct TrustSetsSeen {
 
 /// A trust-set version is published once with one content, and versions only go up: a
 /// device takes a successor only of a higher version, so anything else in the ledger means
-/// some devices were shown a set others never saw.
+/// some devices were shown a set others never saw. The tree's file of each version must be
+/// the one logged: devices rotate onto what the tree serves, the auditor sees what was logged.
 fn check_trust_set_entry(
+    root: &Path,
     index: u64,
     entry: &TrustSetEntry,
     seen: &mut TrustSetsSeen,
@@ -484,6 +486,7 @@ fn check_trust_set_entry(
         Some(_) => {}
         None => {
             seen.versions.insert(version, (index, digest));
+            check_trust_set_file(root, index, entry, report);
         }
     }
     match seen.highest {
@@ -494,6 +497,27 @@ fn check_trust_set_entry(
             ));
         }
         _ => seen.highest = Some((version, index)),
+    }
+}
+
+fn check_trust_set_file(root: &Path, index: u64, entry: &TrustSetEntry, report: &mut AuditReport) {
+    let version = entry.trust_set_version;
+    let name = format!("{}/{version}.json", crate::tree::TRUST_DIR);
+    let what = format!(
+        "entry {index}: trust set version {version} is logged with sha256 {}, but {name}",
+        entry.trust_set_digest
+    );
+    let found = std::fs::File::open(root.join(&name))
+        .and_then(|file| ampoule_verify::digest::hash_reader(file, u64::MAX));
+    match found {
+        Ok((digest, _)) if digest != entry.trust_set_digest => {
+            report.problems.push(format!("{what} has sha256 {digest}"))
+        }
+        Ok(_) => {}
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => report
+            .problems
+            .push(format!("{what} is missing from the tree")),
+        Err(e) => report.problems.push(format!("{what} cannot be read: {e}")),
     }
 }
 

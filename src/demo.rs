@@ -7,7 +7,10 @@
 //! rollout for one of them. It shows the refusals that protect the cameras: a label list that
 //! does not fit the model, a replayed older bundle, a bundle tampered with on the server, a
 //! replayed older feed, a model the camera's code cannot feed, a bundle signed by a stranger;
-//! and what a camera does when the channel is withdrawn (it keeps its model).
+//! and what a camera does when the channel is withdrawn (it keeps its model). The cameras run
+//! on a trust set shipped with their app, so the keys can change without an app update: the
+//! team adds a field-laptop key through the feed, and when that laptop goes missing, revokes
+//! it again, and the cameras refuse what it signed in the same update that revokes it.
 
 use std::path::{Path, PathBuf};
 
@@ -16,8 +19,11 @@ use ampoule_verify::feed::rollout_bucket;
 use ampoule_verify::fetch::Transfer;
 use ampoule_verify::format::BUNDLE_EXTENSION;
 use ampoule_verify::model::{DType, TensorSpec, read_model_signature_file};
+use ampoule_verify::signature::SignatureEntry;
+use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody};
 use ampoule_verify::{
-    CompatibilityPolicy, Digest, PublicKey, Store, Timestamp, TrustedKeys, Verifier, in_rollout,
+    CompatibilityPolicy, Digest, DocumentKind, PublicKey, Store, Timestamp, TrustSetFile,
+    TrustedKeys, Verifier, in_rollout,
 };
 use anyhow::{Context, Result, bail};
 use semver::{Version, VersionReq};
@@ -58,6 +64,8 @@ const ROLLOUT: u8 = 50;
 const FEED_EXPIRES_SECS: u64 = 7 * 86_400;
 /// A fixed creation time so that the demo's bundles are the same on every run.
 const CREATED: &str = "2026-12-01T06:00:00Z";
+/// How long the demo's trust sets stay valid: a year.
+const TRUST_SET_EXPIRES_SECS: u64 = 365 * 86_400;
 
 /// The demo's steps, printed as they happen and collected for `--json`.
 struct Story<'a> {
@@ -123,13 +131,18 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     let public = PublicKey::from_verifying_key(&key.verifying_key())?;
     keyfile::write_secret_key(&dir.join("release.secret.pem"), &key, None)?;
     keyfile::write_public_key(&dir.join("release.public.pem"), &public)?;
+    // What the camera app ships with: the release key for everything, one signature each.
+    let release_only = [(&public, DocumentKind::ALL.to_vec(), "release")];
+    let trust_v1 = trust_set(1, &release_only, &key)?;
+    std::fs::write(dir.join("trust-1.json"), &trust_v1)?;
     story.tell(
         "keygen",
         format!(
-            "made a demo-only release key {} (release.secret.pem, owner-only)",
+            "made a demo-only release key {} (release.secret.pem, owner-only) and trust set v1 \
+             listing it, which the camera app ships with (trust-1.json)",
             public.id()
         ),
-        json!({ "key_id": public.id().to_string() }),
+        json!({ "key_id": public.id().to_string(), "trust_set_version": 1 }),
     );
 
     let created: Timestamp = CREATED.parse()?;
@@ -189,6 +202,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
 
     // The release tree, served from this process as any static web server would serve it.
     let tree = dir.join("release");
+    Tree::lock(&tree)?.publish_trust_set(&trust_v1, &signing(&key))?;
     let published = publish(&tree, &bundles[0], 100, &key, &trusted)?;
     let server = Server::start(tree.clone(), "127.0.0.1:0".parse()?)
         .context("cannot start the demo's web server on 127.0.0.1")?;
@@ -196,7 +210,8 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     story.tell(
         "publish",
         format!(
-            "published v1.0.0 on channel {CHANNEL} (feed sequence {}); the release tree is served at {}",
+            "published trust set v1 and v1.0.0 on channel {CHANNEL} (feed sequence {}); the \
+             release tree is served at {}",
             published.feed.sequence,
             server.url("")
         ),
@@ -208,8 +223,10 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     let (id_in, id_out) = pick_cameras(&v11, ROLLOUT)?;
     let device = |id: &str| -> Result<Device> {
         let store_dir = dir.join("cameras").join(id);
+        let store = Store::open(&store_dir, camera.clone())?;
+        let trust_set = Store::load_trust_set(&store_dir, &trust_v1, Timestamp::now())?;
         Ok(Device {
-            store: Store::open(&store_dir, camera.clone())?,
+            store,
             feed_url: feed_url.clone(),
             channel: CHANNEL.into(),
             feed_keys: (trusted.clone(), 1),
@@ -218,10 +235,10 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
             device_id: id.into(),
             download_dir: store_dir.join(DOWNLOADS_DIR),
             transfer: Transfer::new(),
-            trust_set: None,
+            trust_set: Some(trust_set),
         })
     };
-    let (cam_in, cam_out) = (device(&id_in)?, device(&id_out)?);
+    let (mut cam_in, mut cam_out) = (device(&id_in)?, device(&id_out)?);
     let mut species_count = 0;
     for cam in [&cam_in, &cam_out] {
         match cam.check(Timestamp::now())? {
@@ -354,6 +371,17 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         cam_out.check(Timestamp::now()),
     )?;
 
+    let cameras = [&mut cam_in, &mut cam_out];
+    rotate_keys(&mut story, dir, &tree, &key, cameras, &trust_v1, |v| {
+        model_spec(
+            &dir.join("species-1.1.0.onnx"),
+            species(Some(NEW_SPECIES)),
+            v,
+            &requires_app,
+            created,
+        )
+    })?;
+
     // The auditor: everything shipped is in the ledger, and the ledger was never rewritten.
     let heads = ampoule_verify::ledger::LedgerVerifier::new(trusted.clone(), 1)?;
     let audit = crate::audit::check(&tree, &trusted, &heads, None)?;
@@ -367,8 +395,8 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     story.tell(
         "audit",
         format!(
-            "an auditor checked the release tree's ledger: {} entries (every publish and \
-             withdraw), {} signed tree heads, each consistent with the one before; it flags the \
+            "an auditor checked the release tree's ledger: {} entries (every publish, withdraw \
+             and trust set), {} signed tree heads, each consistent with the one before; it flags the \
              file tampered with on the server: {finding}",
             audit.tree_size, audit.heads_checked
         ),
@@ -442,6 +470,181 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         out.result("", json!({ "ok": true, "dir": dir, "steps": story.steps }))?;
     }
     Ok(())
+}
+
+/// Key rotation on the cameras: trust set v2 adds a field-laptop key for bundles, and the
+/// cameras take it from the feed in the update that installs a bundle only that key signed;
+/// then the laptop goes missing after signing v1.1.3, trust set v3 revokes its key, and the
+/// cameras, taking v3 from the renewed feed, refuse v1.1.3 in the same update.
+fn rotate_keys(
+    story: &mut Story<'_>,
+    dir: &Path,
+    tree: &Path,
+    key: &ed25519_dalek::SigningKey,
+    cameras: [&mut Device; 2],
+    shipped: &[u8],
+    spec: impl Fn(&str) -> Result<PackSpec>,
+) -> Result<()> {
+    let public = PublicKey::from_verifying_key(&key.verifying_key())?;
+    let field = keyfile::generate_key();
+    let field_public = PublicKey::from_verifying_key(&field.verifying_key())?;
+    let release_only = [(&public, DocumentKind::ALL.to_vec(), "release")];
+    let with_field = [
+        release_only[0].clone(),
+        (&field_public, vec![DocumentKind::Bundle], "field laptop"),
+    ];
+    let both: TrustedKeys = [public.clone(), field_public.clone()].into_iter().collect();
+    let [cam_in, cam_out] = cameras;
+
+    let trust_v2 = trust_set(2, &with_field, key)?;
+    Tree::lock(tree)?.publish_trust_set(&trust_v2, &signing(key))?;
+    let v112 = dir.join("species-1.1.2.ampoule");
+    pack(
+        &spec("1.1.2")?,
+        Some(&field),
+        &v112,
+        &indicatif::ProgressBar::hidden(),
+    )?;
+    let published = publish(tree, &v112, 100, key, &both)?;
+    let shipped_keys: TrustedKeys = [public.clone()].into_iter().collect();
+    if Verifier::new(shipped_keys, Version::parse(APP_VERSION)?)?
+        .verify_path(&v112)
+        .is_ok()
+    {
+        bail!("v1.1.2 should need trust set v2, but the release key alone accepts it");
+    }
+    story.tell(
+        "trust-set",
+        format!(
+            "added a field-laptop key {} for bundles: published trust set v2 (signed by the \
+             release key, as v1 requires) and v1.1.2, signed with the field-laptop key only \
+             (feed sequence {})",
+            field_public.id(),
+            published.feed.sequence
+        ),
+        json!({
+            "trust_set_version": 2,
+            "field_key_id": field_public.id().to_string(),
+            "sequence": published.feed.sequence,
+        }),
+    );
+    for cam in [&mut *cam_in, &mut *cam_out] {
+        let checked = cam.check_rotating(Timestamp::now())?;
+        match (&checked.outcome, checked.rotated) {
+            (Outcome::Updated { installed, .. }, Some(next))
+                if next.version() == 2
+                    && installed.release.manifest.version == Version::new(1, 1, 2) =>
+            {
+                cam.trust_set = Some(next);
+            }
+            (other, rotated) => bail!(
+                "{} expected to take trust set v2 and install v1.1.2, got {} (trust set {:?})",
+                cam.device_id,
+                other.name(),
+                rotated.map(|t| t.version())
+            ),
+        }
+    }
+    story.tell(
+        "rotate",
+        format!(
+            "{} and {} took trust set v2 from the feed and stored it, then installed v1.1.2 in \
+             the same update (the v1 they shipped with would refuse it)",
+            cam_in.device_id, cam_out.device_id
+        ),
+        json!({ "cameras": [cam_in.device_id, cam_out.device_id], "trust_set_version": 2, "version": "1.1.2" }),
+    );
+
+    let v113 = dir.join("species-1.1.3.ampoule");
+    pack(
+        &spec("1.1.3")?,
+        Some(&field),
+        &v113,
+        &indicatif::ProgressBar::hidden(),
+    )?;
+    let lost = publish(tree, &v113, 100, key, &both)?;
+    let trust_v3 = trust_set(3, &release_only, key)?;
+    let revoked = Tree::lock(tree)?.publish_trust_set(&trust_v3, &signing(key))?;
+    let renewed = revoked
+        .feeds
+        .last()
+        .map_or(0, |change| change.feed.sequence);
+    story.tell(
+        "revoke",
+        format!(
+            "the field laptop went missing; v1.1.3, signed with its key, is on the channel (feed \
+             sequence {}): published trust set v3 without that key (the feed, renewed to name \
+             it, is sequence {renewed})",
+            lost.feed.sequence
+        ),
+        json!({ "trust_set_version": 3, "sequence": renewed }),
+    );
+    let mut results = Vec::new();
+    for cam in [&mut *cam_in, &mut *cam_out] {
+        let result = cam.check_rotating(Timestamp::now());
+        // What the camera runs on from now on, as its app loads it after a restart.
+        let stored = Store::load_trust_set(cam.store.dir(), shipped, Timestamp::now())?;
+        let kept = cam.current_version()?;
+        if stored.version() != 3 || kept != Some(Version::new(1, 1, 2)) {
+            bail!(
+                "{} should have stored trust set v3 and kept v1.1.2, but has trust set v{} and runs {kept:?}",
+                cam.device_id,
+                stored.version()
+            );
+        }
+        cam.trust_set = Some(stored);
+        results.push(result);
+    }
+    let first = results.remove(0);
+    if let Some(Ok(_)) = results.first() {
+        bail!(
+            "{} accepted v1.1.3 after trust set v3 revoked its key",
+            cam_out.device_id
+        );
+    }
+    refusal(
+        story,
+        "revoked",
+        &format!(
+            "v1.1.3 on {} and {}, in the update that took trust set v3 (both keep v1.1.2)",
+            cam_in.device_id, cam_out.device_id
+        ),
+        first,
+    )
+}
+
+/// A trust set of `keys` (with their roles and comments), one signature needed for each kind
+/// of document, valid for a year, signed by `signer`.
+fn trust_set(
+    version: u64,
+    keys: &[(&PublicKey, Vec<DocumentKind>, &str)],
+    signer: &ed25519_dalek::SigningKey,
+) -> Result<Vec<u8>> {
+    use ed25519_dalek::Signer;
+    let now = Timestamp::now();
+    let body = TrustSetBody {
+        format: ampoule_verify::format::trust_set::FORMAT_VERSION,
+        version,
+        expires: Timestamp::from_unix(now.unix() + TRUST_SET_EXPIRES_SECS)
+            .context("a year from now is a valid time")?,
+        keys: keys
+            .iter()
+            .map(|(key, roles, comment)| KeyEntry::new(key, roles.clone(), *comment))
+            .collect(),
+        thresholds: Thresholds {
+            bundle: 1,
+            feed: 1,
+            tree_head: 1,
+            trust_set: 1,
+        },
+    };
+    let mut file = TrustSetFile::unsigned(body)?;
+    let signature = signer.sign(&file.signing_request());
+    file.insert_signature(SignatureEntry {
+        key_id: PublicKey::from_verifying_key(&signer.verifying_key())?.id(),
+        signature: signature.to_bytes(),
+    })?;
+    Ok(file.to_json())
 }
 
 /// What the camera app's code feeds and reads: 96 x 96 RGB float frames in, one score per

@@ -39,6 +39,10 @@ fn demo_runs_and_refuses_every_attack() {
             "tamper",
             "withdraw",
             "feed-replay",
+            "trust-set",
+            "rotate",
+            "revoke",
+            "revoked",
             "audit",
             "incompatible",
             "forgery"
@@ -57,15 +61,16 @@ fn demo_runs_and_refuses_every_attack() {
             .unwrap_or_default()
             .to_string()
     };
-    // The auditor's ledger check: the six publishes and withdraws, and exactly one finding,
-    // the bundle the demo flipped on the server.
+    // The auditor's ledger check: three trust sets, the five publishes, the renewal of the
+    // feed that named trust set v3 and the three withdraws, and exactly one finding, the
+    // bundle the demo flipped on the server.
     let audit = step("audit");
-    assert_eq!(audit["detail"]["entries"], 6);
+    assert_eq!(audit["detail"]["entries"], 12);
     let problems = audit["detail"]["problems"].as_array().expect("problems");
     assert_eq!(problems.len(), 1, "{problems:?}");
     let finding = problems[0].as_str().unwrap_or_default();
     assert!(
-        finding.starts_with("entry 2: bundle trailcam-species 1.1.1 (bundles/")
+        finding.starts_with("entry 3: bundle trailcam-species 1.1.1 (bundles/")
             && finding.contains("differs from what was published"),
         "{finding}"
     );
@@ -94,6 +99,20 @@ fn demo_runs_and_refuses_every_attack() {
     assert_eq!(
         error_of("incompatible"),
         "input 'image' has shape [N, 3, 128, 128], the app expects [*, 3, 96, 96]: dimension 2 is 128, not 96"
+    );
+    // Key rotation: the bundle signed with the field-laptop key that trust set v3 revokes is
+    // refused in the update that took v3, naming that key.
+    let field_key = step("trust-set")["detail"]["field_key_id"]
+        .as_str()
+        .expect("field key id")
+        .to_string();
+    assert_eq!(step("trust-set")["detail"]["sequence"], 7);
+    assert_eq!(step("revoke")["detail"]["sequence"], 9);
+    assert_eq!(
+        error_of("revoked"),
+        format!(
+            "bundle has no valid signature by a trusted key (by keys not trusted here: {field_key})"
+        )
     );
     assert!(
         error_of("forgery").starts_with("bundle has no valid signature by a trusted key"),
@@ -128,14 +147,27 @@ fn demo_runs_and_refuses_every_attack() {
         let path = work.join("cameras").join(camera).join("state.json");
         serde_json::from_slice(&std::fs::read(path).expect("state.json")).expect("state JSON")
     };
-    let s_in = state(&camera_in);
-    assert_eq!(s_in["current"]["version"], "1.1.0");
-    assert_eq!(s_in["previous"]["version"], "1.0.0");
-    assert_eq!(s_in["channels"]["stable"]["highest_sequence"], 6);
-    let s_out = state(&camera_out);
-    assert_eq!(s_out["current"]["version"], "1.0.0");
-    assert_eq!(s_out["channels"]["stable"]["highest_version"], "1.0.0");
-    assert_eq!(s_out["channels"]["stable"]["highest_sequence"], 6);
+    // Both took v1.1.2 (signed with the field-laptop key) under trust set v2, refused v1.1.3
+    // under v3, and keep v3 in their stores.
+    for (camera, previous) in [(&camera_in, "1.1.0"), (&camera_out, "1.0.0")] {
+        let s = state(camera);
+        assert_eq!(s["current"]["version"], "1.1.2", "{camera}");
+        assert_eq!(s["previous"]["version"], previous, "{camera}");
+        assert_eq!(s["channels"]["stable"]["highest_version"], "1.1.2");
+        assert_eq!(s["channels"]["stable"]["highest_sequence"], 7);
+        let stored = work.join("cameras").join(camera).join("trust-set.json");
+        let stored = ampoule_verify::TrustSetFile::from_json(
+            &std::fs::read(stored).expect("trust-set.json"),
+        )
+        .expect("stored trust set");
+        assert_eq!(stored.version(), 3, "{camera}");
+        assert!(
+            stored
+                .keys_for(ampoule_verify::DocumentKind::Bundle)
+                .get(&field_key.parse().expect("key id"))
+                .is_none()
+        );
+    }
     let model = step("rollout-in")["detail"]["model"]
         .as_str()
         .expect("model path")

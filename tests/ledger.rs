@@ -1224,3 +1224,84 @@ fn a_trust_set_publish_logs_each_renewed_feed_issue_5() {
         assert!(found.contains(&expected), "{found:?}");
     }
 }
+
+/// The digest `sha256sum` (GNU coreutils) prints for a file, as an outside reference for the
+/// digests the check names.
+fn sha256sum(path: &Path) -> String {
+    let out = Command::new("sha256sum")
+        .arg(path)
+        .output()
+        .expect("sha256sum runs");
+    assert!(out.status.success());
+    String::from_utf8(out.stdout).expect("utf-8")[..64].to_string()
+}
+
+/// Each trust-set entry is held against the tree's `trust/<version>.json`: a file changed
+/// after it was logged, or removed, is a problem the check names with both digests.
+#[test]
+fn check_compares_trust_set_entries_with_the_tree_files_issue_5() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    ok(d, &["trust", "init", "--key", "k.pub", "-o", "trust.json"]);
+    ok(d, &["trust", "sign", "trust.json", "--key", "k.pem"]);
+    ok(
+        d,
+        &[
+            "publish",
+            "--trust-set",
+            "trust.json",
+            "--tree",
+            "tree",
+            "--key",
+            "k.pem",
+        ],
+    );
+    let file = d.join("tree/trust/1.json");
+    let logged = sha256sum(&file);
+    let (code, report) = check_run(d, &[]);
+    assert_eq!((code, problems(&report)), (0, Vec::<String>::new()));
+    // Over HTTP the check fetches the trust-set files as well.
+    let server = serve(d);
+    let url = format!("http://{}/", server.addr);
+    let over_http = || {
+        let out = run(
+            d,
+            &[
+                "--json", "ledger", "check", "--url", &url, "--trust", "k.pub",
+            ],
+        );
+        let report: serde_json::Value = serde_json::from_slice(&out.stdout).expect("report");
+        (out.status.code().unwrap_or(-1), problems(&report))
+    };
+    assert_eq!(over_http(), (0, Vec::<String>::new()));
+
+    // One newline more: still JSON with the same keys, but not the file that was logged.
+    let mut bytes = std::fs::read(&file).expect("trust/1.json");
+    bytes.push(b'\n');
+    std::fs::write(&file, &bytes).expect("tamper");
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1);
+    assert_eq!(
+        problems(&report),
+        [format!(
+            "entry 1: trust set version 1 is logged with sha256 {logged}, but trust/1.json has \
+             sha256 {}",
+            sha256sum(&file)
+        )]
+    );
+    assert_eq!(over_http(), (1, problems(&report)));
+
+    std::fs::remove_file(&file).expect("delete");
+    let (code, report) = check_run(d, &[]);
+    assert_eq!(code, 1);
+    assert_eq!(
+        problems(&report),
+        [format!(
+            "entry 1: trust set version 1 is logged with sha256 {logged}, but trust/1.json is \
+             missing from the tree"
+        )]
+    );
+    assert_eq!(over_http(), (1, problems(&report)));
+}

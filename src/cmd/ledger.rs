@@ -100,6 +100,11 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
         }
         fetch_to_file(&url, &dest, max, &transfer)
             .map(|_| ())
+            .inspect_err(|_| {
+                // A failed fetch may leave an empty or partial file; the checks must see the
+                // file as missing, not as one with other content.
+                let _ = fs::remove_file(&dest);
+            })
             .with_context(|| format!("cannot fetch {url}"))
     };
     let ledger = |name: &str| format!("{LEDGER_DIR}/{name}");
@@ -145,9 +150,15 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
     let ledger = Ledger::open(&root.join(LEDGER_DIR))?;
     let mut channels = BTreeSet::new();
     let mut bundles = BTreeSet::new();
+    let mut trust_sets = BTreeSet::new();
     for item in ledger.entries()? {
-        let Ok(entry) = Entry::from_bytes(&item?.1) else {
-            continue;
+        let entry = match Record::from_bytes(&item?.1) {
+            Ok(Record::Bundle(entry)) => entry,
+            Ok(Record::TrustSet(t)) => {
+                trust_sets.insert(t.trust_set_version);
+                continue;
+            }
+            Err(_) => continue,
         };
         channels.insert(entry.channel.clone());
         if entry.event == Event::Publish {
@@ -157,6 +168,13 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
     for channel in channels {
         let _ = fetch(
             &format!("{}/{channel}.json", crate::tree::HISTORY_DIR),
+            RECORD_BYTES,
+        );
+    }
+    for version in trust_sets {
+        // Larger than any valid trust set, so that a grown file is reported changed, not missing.
+        let _ = fetch(
+            &format!("{}/{version}.json", crate::tree::TRUST_DIR),
             RECORD_BYTES,
         );
     }
