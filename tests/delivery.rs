@@ -1,10 +1,9 @@
 //! Delivery end to end with the real binary: publish and withdraw on a release tree, the demo
 //! server's GET, HEAD and Range answers, and a device's update check against that server.
 
-use std::io::{BufRead, BufReader, Read, Write};
+use std::io::{Read, Write};
 use std::net::TcpStream;
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
 
 use ampoule_verify::fetch::{Transfer, Update, Updater, download};
 use ampoule_verify::{Digest, FeedVerifier, Timestamp, Verifier};
@@ -435,37 +434,8 @@ fn bad_arguments_are_refused() {
     assert!(!d.join("tree").exists(), "nothing was created");
 }
 
-/// `ampoule serve` on a free port, stopped when dropped.
-struct Served {
-    child: Child,
-    addr: String,
-}
-
-impl Drop for Served {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
 fn serve(d: &Path) -> Served {
-    let mut child = Command::new(BIN)
-        .args(["serve", "--tree", "tree", "--addr", "127.0.0.1:0"])
-        .current_dir(d)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .expect("serve starts");
-    let mut line = String::new();
-    BufReader::new(child.stdout.take().expect("stdout"))
-        .read_line(&mut line)
-        .expect("serve prints its address");
-    let addr = line
-        .trim_end()
-        .rsplit_once(" at http://")
-        .map(|(_, a)| a.trim_end_matches('/').to_string())
-        .unwrap_or_else(|| panic!("unexpected first line {line:?}"));
-    Served { child, addr }
+    serve_tree(d, "tree")
 }
 
 /// One raw HTTP/1.1 request; returns the status line, the lowercased head and the body.

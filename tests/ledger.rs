@@ -6,7 +6,6 @@
 //! crates/verify/tests/merkle.rs; here every proof is verified by that same reader code, and the
 //! tampering is done by hand on the files.
 
-use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 
@@ -854,37 +853,8 @@ fn the_store_remembers_the_largest_tree_head() {
     assert_eq!(store.state().expect("state").tree_head, Some(large));
 }
 
-/// `ampoule serve` on a free port, stopped when dropped.
-struct Served {
-    child: Child,
-    addr: String,
-}
-
-impl Drop for Served {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
 fn serve(d: &Path) -> Served {
-    let mut child = Command::new(BIN)
-        .args(["serve", "--tree", "tree", "--addr", "127.0.0.1:0"])
-        .current_dir(d)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .expect("serve starts");
-    let mut line = String::new();
-    BufReader::new(child.stdout.take().expect("stdout"))
-        .read_line(&mut line)
-        .expect("serve prints its address");
-    let addr = line
-        .trim_end()
-        .rsplit_once(" at http://")
-        .map(|(_, a)| a.trim_end_matches('/').to_string())
-        .unwrap_or_else(|| panic!("unexpected first line {line:?}"));
-    Served { child, addr }
+    serve_tree(d, "tree")
 }
 
 #[test]

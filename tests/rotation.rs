@@ -5,9 +5,7 @@
 //! successors, at publish and on the device, and of feeds naming older sets. The same
 //! rotation through `ampoule update --trust-set`.
 
-use std::io::{BufRead, BufReader};
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
 
 use ampoule_verify::fetch::{Transfer, Update, Updater};
 use ampoule_verify::{
@@ -24,37 +22,8 @@ const LOCK_WAIT: std::time::Duration = std::time::Duration::from_secs(10);
 mod tree_common;
 use tree_common::*;
 
-/// `ampoule serve` on a free port, stopped when dropped.
-struct Served {
-    child: Child,
-    addr: String,
-}
-
-impl Drop for Served {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
 fn serve(d: &Path, tree: &str) -> Served {
-    let mut child = Command::new(BIN)
-        .args(["serve", "--tree", tree, "--addr", "127.0.0.1:0"])
-        .current_dir(d)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .expect("serve starts");
-    let mut line = String::new();
-    BufReader::new(child.stdout.take().expect("stdout"))
-        .read_line(&mut line)
-        .expect("serve prints its address");
-    let addr = line
-        .trim_end()
-        .rsplit_once(" at http://")
-        .map(|(_, a)| a.trim_end_matches('/').to_string())
-        .unwrap_or_else(|| panic!("unexpected first line {line:?}"));
-    Served { child, addr }
+    serve_tree(d, tree)
 }
 
 fn key_id_of(d: &Path, public: &str) -> KeyId {

@@ -121,3 +121,39 @@ pub fn read_feed(d: &Path, channel: &str) -> Feed {
     assert_eq!(verified.digest(), Digest::of(signed.feed.as_bytes()));
     verified.feed().clone()
 }
+
+/// `ampoule serve` of `d/<tree>` on a free port of 127.0.0.1, stopped when dropped.
+pub struct Served {
+    pub child: std::process::Child,
+    /// `127.0.0.1:PORT`, as the server's first line reports it.
+    pub addr: String,
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+pub fn serve_tree(d: &Path, tree: &str) -> Served {
+    use std::io::{BufRead, BufReader};
+    use std::process::Stdio;
+    let mut child = Command::new(BIN)
+        .args(["serve", "--tree", tree, "--addr", "127.0.0.1:0"])
+        .current_dir(d)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("serve starts");
+    let mut line = String::new();
+    BufReader::new(child.stdout.take().expect("stdout"))
+        .read_line(&mut line)
+        .expect("serve prints its address");
+    let addr = line
+        .trim_end()
+        .rsplit_once(" at http://")
+        .map(|(_, a)| a.trim_end_matches('/').to_string())
+        .unwrap_or_else(|| panic!("unexpected first line {line:?}"));
+    Served { child, addr }
+}
