@@ -368,7 +368,7 @@ fn check_refuses_an_untrusted_tree_head_and_a_rewritten_history() {
     let report: serde_json::Value = serde_json::from_slice(&out.stdout).expect("report");
     let found = problems(&report);
     assert!(
-        found[0].starts_with("tree-head.json is not validly signed: tree head of size 3 has 0 valid signature(s) by trusted keys, 1 needed; signed by untrusted key(s) "),
+        found[0].starts_with("tree-head.json is not validly signed: tree head of size 3 has no valid signature by a trusted key (by keys not trusted here: "),
         "{found:?}"
     );
     assert!(
@@ -989,8 +989,8 @@ fn check_with_a_trust_set_needs_its_tree_head_threshold() {
     assert_eq!(found.len(), 1, "{found:?}");
     assert!(
         found[0].starts_with(
-            "line 2 of tree-heads.jsonl (tree size 2): tree head has 1 valid signature(s) by \
-             trusted keys but needs 2 (valid: "
+            "line 2 of tree-heads.jsonl (tree size 2): tree head of size 2 has 1 valid \
+             signature(s) by trusted keys but needs 2 (valid: "
         ),
         "{found:?}"
     );

@@ -3,8 +3,7 @@
 use ampoule_verify::Digest;
 use ampoule_verify::DocumentKind;
 use ampoule_verify::bundle::Unverified;
-use ampoule_verify::format::context;
-use ampoule_verify::signature::tally;
+use ampoule_verify::signed::{SignedDocument, kind};
 use anyhow::Result;
 use serde_json::json;
 
@@ -25,12 +24,8 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
         signatures,
         ..
     } = bundle;
-    let report = tally(
-        context::MANIFEST,
-        &layout.manifest,
-        &signatures.signatures,
-        &keys,
-    );
+    let report = SignedDocument::<kind::Manifest>::new(&layout.manifest, &signatures.signatures)?
+        .tally(&keys);
     let m = &manifest;
     let mut human = format!(
         "bundle   {}\nname     {}\nversion  {}\ncreated  {}\nrequires app {}\nsize     {} bytes (manifest {} bytes, sha256 {})\npayload  {} bytes zstd, sha256 {} ({})\n",

@@ -396,7 +396,7 @@ fn check(args: LedgerCheckArgs, out: &Output) -> Result<()> {
             let set = load_trust_set(path)?;
             (
                 set.keys_for(DocumentKind::TreeHead).0,
-                LedgerVerifier::from_trust_set(&set),
+                LedgerVerifier::from_trust_set(&set)?,
             )
         }
         None => {

@@ -2,7 +2,7 @@
 //! on its channel, and the checks that make a stale, replayed or foreign feed useless.
 //!
 //! A feed file is an envelope holding the signed feed text as a JSON string and the signatures
-//! over that text's exact UTF-8 bytes (in the shape bundles use, under [`context::FEED`]):
+//! over that text's exact UTF-8 bytes (in the shape bundles use, under [`crate::format::context::FEED`]):
 //!
 //! ```json
 //! {
@@ -39,13 +39,14 @@ use serde::{Deserialize, Deserializer, Serialize};
 
 use crate::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, context, limit};
+use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, limit};
 use crate::keys::{KeyId, TrustedKeys};
 use crate::ledger::{FeedLedger, LedgerCheck, LedgerVerifier};
 use crate::manifest::check_name;
-use crate::signature::{SignatureEntry, SignatureReport, check_signatures};
+use crate::signature::{SignatureEntry, SignatureReport};
+use crate::signed::{SignedDocument, Signers, kind};
 use crate::time::Timestamp;
-use crate::trust::{DocumentKind, TrustSet};
+use crate::trust::TrustSet;
 
 /// The clock skew a device allows unless the app sets its own: 5 minutes.
 pub const DEFAULT_CLOCK_SKEW_SECS: u64 = 300;
@@ -332,9 +333,8 @@ impl SignedFeed {
 /// What a device accepts as its channel's feed. Trusted keys and the channel are required.
 #[derive(Debug, Clone)]
 pub struct FeedVerifier {
-    keys: TrustedKeys,
+    signers: Signers<kind::Feed>,
     channel: String,
-    threshold: usize,
     skew_secs: u64,
     last: Option<(u64, Option<Digest>)>,
     /// The version and expiry of the trust set the keys came from, if they did.
@@ -355,9 +355,8 @@ impl FeedVerifier {
         let channel = channel.into();
         check_channel(&channel)?;
         Ok(FeedVerifier {
-            keys,
+            signers: Signers::new(keys, 1)?,
             channel,
-            threshold: 1,
             skew_secs: DEFAULT_CLOCK_SKEW_SECS,
             last: None,
             trust: None,
@@ -369,8 +368,9 @@ impl FeedVerifier {
     /// threshold of distinct keys with the feed role. Once the set has expired, every feed is
     /// refused: an expired set's keys only ever authorise a successor set.
     pub fn from_trust_set(trust: &TrustSet, channel: impl Into<String>) -> Result<Self> {
-        let (keys, threshold) = trust.keys_for(DocumentKind::Feed);
-        let mut verifier = Self::new(keys, channel)?.threshold(threshold);
+        let signers = trust.signers::<kind::Feed>()?;
+        let mut verifier = Self::new(signers.keys().clone(), channel)?;
+        verifier.signers = signers;
         verifier.trust = Some((trust.version(), trust.expires()));
         Ok(verifier)
     }
@@ -384,7 +384,7 @@ impl FeedVerifier {
         next.skew_secs = self.skew_secs;
         next.last = self.last;
         // Dropping the requirement here would let a rotation switch the ledger check off.
-        next.ledger = self.ledger.map(|l| l.with_trust_set(trust));
+        next.ledger = self.ledger.map(|l| l.with_trust_set(trust)).transpose()?;
         Ok(next)
     }
 
@@ -395,7 +395,7 @@ impl FeedVerifier {
 
     /// Requires at least `n` distinct trusted keys to have signed (at least 1).
     pub fn threshold(mut self, n: usize) -> Self {
-        self.threshold = n.max(1);
+        self.signers = self.signers.with_threshold(n);
         self
     }
 
@@ -464,14 +464,8 @@ impl FeedVerifier {
             ));
         }
         let signed = SignedFeed::from_json(bytes)?;
-        let report = check_signatures(
-            "feed",
-            context::FEED,
-            signed.feed.as_bytes(),
-            &signed.signatures,
-            &self.keys,
-            self.threshold,
-        )?;
+        let report = SignedDocument::<kind::Feed>::new(signed.feed.as_bytes(), &signed.signatures)?
+            .check(&self.signers, "feed")?;
         let feed = Feed::from_json(signed.feed.as_bytes())?;
         if feed.channel != self.channel {
             return Err(invalid(format!(

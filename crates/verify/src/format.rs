@@ -59,6 +59,8 @@ pub mod limit {
     pub const MIRRORS: usize = 8;
     /// The longest URL or relative path a feed may hold, in bytes.
     pub const URL_BYTES: usize = 2048;
+    /// The largest signed tree head (head and signatures, as JSON), in bytes.
+    pub const TREE_HEAD_BYTES: u64 = 16 * 1024;
 }
 
 /// The domain string hashed ahead of a device id and a bundle digest to place a device in or

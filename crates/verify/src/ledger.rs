@@ -29,11 +29,11 @@ use serde::{Deserialize, Serialize};
 use crate::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
 use crate::feed::Feed;
-use crate::format::context;
 use crate::keys::{KeyId, TrustedKeys};
 use crate::merkle::{self, ConsistencyProof, InclusionProof, SignedTreeHead, TreeHead};
-use crate::signature::{SignatureEntry, SignatureReport, check_signatures};
-use crate::trust::{DocumentKind, TrustSet};
+use crate::signature::SignatureReport;
+use crate::signed::{Signers, kind};
+use crate::trust::TrustSet;
 
 /// The largest ledger entry, in bytes; a publish entry is a few hundred.
 pub const MAX_ENTRY_BYTES: usize = 64 * 1024;
@@ -275,44 +275,15 @@ impl ConsistencyStep {
     }
 }
 
-/// Whose signatures a tree head needs.
-#[derive(Clone, Debug)]
-enum HeadTrust {
-    Keys(TrustedKeys, usize),
-    TrustSet(Box<TrustSet>),
-}
-
 /// Checks a tree head's signatures: `threshold` distinct trusted keys over
-/// [`context::TREE_HEAD`] and [`TreeHead::signed_document`], the rule every signed document
-/// of this crate follows.
+/// [`crate::format::context::TREE_HEAD`] and [`TreeHead::signed_document`], the rule every signed document
+/// of this crate follows ([`crate::signed`]).
 pub fn check_tree_head(
     signed: &SignedTreeHead,
     keys: &TrustedKeys,
     threshold: usize,
 ) -> Result<SignatureReport> {
-    check_signatures(
-        &described(&signed.head()),
-        context::TREE_HEAD,
-        &signed.head().signed_document(),
-        &entries(signed),
-        keys,
-        threshold,
-    )
-}
-
-fn described(head: &TreeHead) -> String {
-    format!("tree head of size {}", head.tree_size)
-}
-
-fn entries(signed: &SignedTreeHead) -> Vec<SignatureEntry> {
-    signed
-        .signatures()
-        .iter()
-        .map(|s| SignatureEntry {
-            key_id: s.key_id,
-            signature: s.signature,
-        })
-        .collect()
+    signed.check(&Signers::new(keys.clone(), threshold)?)
 }
 
 /// What the ledger check of a feed established.
@@ -330,7 +301,7 @@ pub struct LedgerCheck {
 /// signatures a tree head needs, and the largest tree head this device verified before.
 #[derive(Clone, Debug)]
 pub struct LedgerVerifier {
-    trust: HeadTrust,
+    signers: Signers<kind::TreeHead>,
     remembered: Option<TreeHead>,
 }
 
@@ -344,26 +315,26 @@ impl LedgerVerifier {
             ));
         }
         Ok(LedgerVerifier {
-            trust: HeadTrust::Keys(keys, threshold.max(1)),
+            signers: Signers::new(keys, 1)?.with_threshold(threshold),
             remembered: None,
         })
     }
 
     /// Tree heads must be signed as the trust set requires for `tree_head` documents.
-    pub fn from_trust_set(trust: &TrustSet) -> Self {
-        LedgerVerifier {
-            trust: HeadTrust::TrustSet(Box::new(trust.clone())),
+    pub fn from_trust_set(trust: &TrustSet) -> Result<Self> {
+        Ok(LedgerVerifier {
+            signers: trust.signers()?,
             remembered: None,
-        }
+        })
     }
 
     /// This verifier with the tree-head keys and threshold of `trust` instead of its own; the
     /// remembered tree head stays. For a device that just accepted a newer trust set.
-    pub fn with_trust_set(self, trust: &TrustSet) -> Self {
-        LedgerVerifier {
-            trust: HeadTrust::TrustSet(Box::new(trust.clone())),
+    pub fn with_trust_set(self, trust: &TrustSet) -> Result<Self> {
+        Ok(LedgerVerifier {
+            signers: trust.signers()?,
             remembered: self.remembered,
-        }
+        })
     }
 
     /// The largest tree head this device verified before: a smaller one, or one that does not
@@ -375,14 +346,7 @@ impl LedgerVerifier {
 
     /// Checks a tree head's signatures under this verifier's trust.
     pub fn verify_head(&self, signed: &SignedTreeHead) -> Result<SignatureReport> {
-        match &self.trust {
-            HeadTrust::Keys(keys, threshold) => check_tree_head(signed, keys, *threshold),
-            HeadTrust::TrustSet(set) => set.check_signatures(
-                DocumentKind::TreeHead,
-                &signed.head().signed_document(),
-                &entries(signed),
-            ),
-        }
+        signed.check(&self.signers)
     }
 
     /// Checks the ledger object of an already authenticated `feed`: the tree head's

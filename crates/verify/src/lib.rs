@@ -22,6 +22,7 @@ pub mod merkle;
 pub mod model;
 mod readahead;
 pub mod signature;
+pub mod signed;
 pub mod store;
 pub mod tar;
 pub mod time;

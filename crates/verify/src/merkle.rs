@@ -30,8 +30,11 @@ use sha2::{Digest as _, Sha256};
 
 use crate::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::{context, limit};
+use crate::format::limit;
 use crate::keys::{KeyId, TrustedKeys};
+use crate::signature::SignatureEntry;
+use crate::signature::SignatureReport;
+use crate::signed::{SignedDocument, Signers, kind};
 
 /// The most hashes a proof may hold. An inclusion proof in a tree of n leaves has at most
 /// ceil(log2 n) hashes and a consistency proof at most ceil(log2 n) + 1 (RFC 9162 sections
@@ -40,7 +43,7 @@ pub const MAX_PROOF_HASHES: usize = 64;
 
 /// The largest signed tree head document a reader accepts, in bytes: room for
 /// [`limit::SIGNATURES`] signatures with plenty to spare.
-pub const MAX_SIGNED_TREE_HEAD_BYTES: usize = 16 * 1024;
+pub const MAX_SIGNED_TREE_HEAD_BYTES: usize = limit::TREE_HEAD_BYTES as usize;
 
 /// RFC 9162 section 2.1.1: the byte hashed in front of a leaf's data.
 const LEAF_PREFIX: u8 = 0x00;
@@ -583,7 +586,7 @@ pub struct TreeHead {
 }
 
 impl TreeHead {
-    /// The bytes every signature covers (after [`context::TREE_HEAD`]): the head as JSON with
+    /// The bytes every signature covers (after [`crate::format::context::TREE_HEAD`]): the head as JSON with
     /// keys in sorted order and no whitespace, which is also its RFC 8785 canonical form,
     /// since it holds only a hex string and integers far below 2^53.
     pub fn signed_document(&self) -> Vec<u8> {
@@ -595,39 +598,9 @@ impl TreeHead {
     }
 }
 
-/// One signature over a tree head's [`signed_document`](TreeHead::signed_document).
-#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct TreeHeadSignature {
-    /// The signing key's id.
-    pub key_id: KeyId,
-    /// The Ed25519 signature over [`context::TREE_HEAD`] followed by the signed document,
-    /// as 128 lowercase hex characters.
-    #[serde(with = "signature_hex")]
-    pub signature: [u8; 64],
-}
-
-mod signature_hex {
-    use serde::{Deserialize, Deserializer, Serializer};
-
-    pub fn serialize<S: Serializer>(bytes: &[u8; 64], serializer: S) -> Result<S::Ok, S::Error> {
-        serializer.serialize_str(&hex::encode(bytes))
-    }
-
-    pub fn deserialize<'de, D: Deserializer<'de>>(deserializer: D) -> Result<[u8; 64], D::Error> {
-        let text = <std::borrow::Cow<'de, str>>::deserialize(deserializer)?;
-        let mut bytes = [0u8; 64];
-        // One spelling only: lowercase hex, like digests and key ids.
-        let lower = text.bytes().all(|b| matches!(b, b'0'..=b'9' | b'a'..=b'f'));
-        if text.len() != 128 || !lower || hex::decode_to_slice(&*text, &mut bytes).is_err() {
-            return Err(serde::de::Error::custom(format!(
-                "'{}' is not an Ed25519 signature (128 lowercase hex characters)",
-                text.chars().take(140).collect::<String>().escape_debug()
-            )));
-        }
-        Ok(bytes)
-    }
-}
+/// One signature over a tree head's [`signed_document`](TreeHead::signed_document): the same
+/// entry every signed document carries, under [`crate::format::context::TREE_HEAD`].
+pub type TreeHeadSignature = SignatureEntry;
 
 /// A tree head with its signatures, as the ledger stores it and a feed carries it.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
@@ -700,66 +673,37 @@ impl SignedTreeHead {
         serde_json::to_vec(self).expect("a signed tree head always serializes")
     }
 
-    /// Checks the signatures: at least `threshold` distinct trusted keys must have signed,
-    /// and any signature by a trusted key that does not verify refuses the head. Signatures by
-    /// keys that are not trusted are ignored, so keys can be rotated in.
+    /// Checks the signatures under the rule every signed document follows
+    /// ([`crate::signed`]): at least `threshold` distinct trusted keys must have signed
+    /// validly; other signatures are ignored.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Signature`] when fewer keys signed, or the threshold is not usable with
+    /// `trusted`; [`ErrorKind::TooLarge`] over the signature cap.
     pub fn verify(&self, trusted: &TrustedKeys, threshold: usize) -> Result<VerifiedTreeHead> {
-        let head = self.head();
         if threshold == 0 {
             return Err(Error::new(
                 ErrorKind::Signature,
                 "a signature threshold of 0 would accept an unsigned tree head",
             ));
         }
-        if self.signatures.len() > limit::SIGNATURES {
-            return Err(Error::new(
-                ErrorKind::TooLarge,
-                format!(
-                    "signed tree head carries {} signatures, more than the limit of {}",
-                    self.signatures.len(),
-                    limit::SIGNATURES
-                ),
-            ));
-        }
+        let signers = Signers::<kind::TreeHead>::new(trusted.clone(), threshold)?;
+        let report = self.check(&signers)?;
+        Ok(VerifiedTreeHead {
+            head: self.head(),
+            signers: report.valid,
+        })
+    }
+
+    /// Checks the signatures against the tree-head signers.
+    pub(crate) fn check(&self, signers: &Signers<kind::TreeHead>) -> Result<SignatureReport> {
+        let head = self.head();
         let document = head.signed_document();
-        let mut signers: Vec<KeyId> = Vec::new();
-        let mut untrusted: Vec<KeyId> = Vec::new();
-        for (i, sig) in self.signatures.iter().enumerate() {
-            if self.signatures[..i].iter().any(|s| s.key_id == sig.key_id) {
-                return Err(Error::new(
-                    ErrorKind::Malformed,
-                    format!("tree head carries two signatures by key {}", sig.key_id),
-                ));
-            }
-            match trusted.get(&sig.key_id) {
-                Some(key) if key.verify(context::TREE_HEAD, &document, &sig.signature) => {
-                    signers.push(sig.key_id);
-                }
-                Some(_) => {
-                    return Err(Error::new(
-                        ErrorKind::Signature,
-                        format!(
-                            "signature by key {} over the tree head of size {} does not verify",
-                            sig.key_id, head.tree_size
-                        ),
-                    ));
-                }
-                None => untrusted.push(sig.key_id),
-            }
-        }
-        if signers.len() < threshold {
-            let mut message = format!(
-                "tree head of size {} has {} valid signature(s) by trusted keys, {threshold} needed",
-                head.tree_size,
-                signers.len()
-            );
-            if !untrusted.is_empty() {
-                let ids: Vec<String> = untrusted.iter().map(KeyId::to_string).collect();
-                message.push_str(&format!("; signed by untrusted key(s) {}", ids.join(", ")));
-            }
-            return Err(Error::new(ErrorKind::Signature, message));
-        }
-        Ok(VerifiedTreeHead { head, signers })
+        SignedDocument::<kind::TreeHead>::new(&document, &self.signatures)?.check(
+            signers,
+            format_args!("tree head of size {}", head.tree_size),
+        )
     }
 }
 
@@ -776,7 +720,7 @@ impl VerifiedTreeHead {
         &self.head
     }
 
-    /// The trusted keys whose signatures verified, in the order they were carried.
+    /// The trusted keys whose signatures verified, each once, in key-id order.
     pub fn signers(&self) -> &[KeyId] {
         &self.signers
     }

@@ -1,18 +1,18 @@
-//! Signatures over signed documents, and the check that counts how many trusted keys signed.
+//! Signatures as every signed document carries them, and the report of who signed.
 //!
 //! Every signed document kind (bundle manifest, feed, tree head, trust set) carries its
-//! signatures in this shape, and every check goes through [`check_signatures`], so "signed by
-//! a trusted key" means the same thing everywhere: strict Ed25519 over the kind's context and
-//! the document's exact bytes, one vote per distinct key.
+//! signatures in this shape, and every check goes through [`crate::signed::SignedDocument`],
+//! so "signed by a trusted key" means the same thing everywhere: strict Ed25519 over the
+//! kind's context and the document's exact bytes, one vote per distinct key, and signatures
+//! that do not verify ignored.
 
-use std::collections::BTreeSet;
 use std::fmt;
 
 use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::limit;
-use crate::keys::{KeyId, PublicKey, TrustedKeys};
+use crate::keys::{KeyId, PublicKey};
 
 /// One signature in the signatures document.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -172,63 +172,5 @@ impl fmt::Display for SignatureReport {
             parts.push("no signatures".into());
         }
         f.write_str(&parts.join("; "))
-    }
-}
-
-/// Checks `signatures` over `context || document` and requires at least `threshold` distinct
-/// trusted keys to have signed. `what` names the document in messages ("bundle", "feed").
-pub fn check_signatures(
-    what: &str,
-    context: &[u8],
-    document: &[u8],
-    signatures: &[SignatureEntry],
-    keys: &TrustedKeys,
-    threshold: usize,
-) -> Result<SignatureReport> {
-    let report = tally(context, document, signatures, keys);
-    if threshold > 0 && report.valid.len() >= threshold {
-        return Ok(report);
-    }
-    let message = if signatures.is_empty() {
-        format!("{what} is not signed; it needs a signature by a trusted key")
-    } else if threshold <= 1 {
-        format!("{what} has no valid signature by a trusted key ({report})")
-    } else {
-        format!(
-            "{what} has {} valid signature(s) by trusted keys but needs {threshold} ({report})",
-            report.valid.len()
-        )
-    };
-    Err(Error::new(ErrorKind::Signature, message))
-}
-
-/// Sorts every signature into valid, invalid or untrusted, counting each key once.
-pub fn tally(
-    context: &[u8],
-    document: &[u8],
-    signatures: &[SignatureEntry],
-    keys: &TrustedKeys,
-) -> SignatureReport {
-    let (mut valid, mut invalid, mut untrusted) =
-        (BTreeSet::new(), BTreeSet::new(), BTreeSet::new());
-    for sig in signatures {
-        match keys.get(&sig.key_id) {
-            Some(key) if key.verify(context, document, &sig.signature) => {
-                valid.insert(sig.key_id);
-            }
-            Some(_) => {
-                invalid.insert(sig.key_id);
-            }
-            None => {
-                untrusted.insert(sig.key_id);
-            }
-        }
-    }
-    // A key that made one good and one bad signature still counts as valid once.
-    let invalid = invalid.difference(&valid).copied().collect();
-    SignatureReport {
-        valid: valid.into_iter().collect(),
-        invalid,
-        untrusted: untrusted.into_iter().collect(),
     }
 }

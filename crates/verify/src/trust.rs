@@ -31,93 +31,16 @@
 //! never be brought back. They never verify anything else once expired.
 
 use std::collections::BTreeSet;
-use std::fmt;
-use std::str::FromStr;
 
 use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{context, limit, signed_bytes, trust_set as spec};
 use crate::keys::{KeyId, PublicKey, TrustedKeys};
-use crate::signature::{SignatureEntry, SignatureReport, check_signatures, tally};
+use crate::signature::{SignatureEntry, SignatureReport};
+pub use crate::signed::DocumentKind;
+use crate::signed::{Kind, SignedDocument, Signers, kind};
 use crate::time::Timestamp;
-
-/// A kind of signed document, each with its own signing context and threshold.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
-#[serde(rename_all = "snake_case")]
-#[non_exhaustive]
-pub enum DocumentKind {
-    /// A bundle (its manifest).
-    Bundle,
-    /// A channel feed.
-    Feed,
-    /// A ledger's signed tree head.
-    TreeHead,
-    /// A trust set.
-    TrustSet,
-}
-
-impl DocumentKind {
-    /// Every kind, in the order thresholds are written.
-    pub const ALL: [DocumentKind; 4] = [
-        DocumentKind::Bundle,
-        DocumentKind::Feed,
-        DocumentKind::TreeHead,
-        DocumentKind::TrustSet,
-    ];
-
-    /// The kind's name in trust-set JSON (`bundle`, `feed`, `tree_head`, `trust_set`).
-    pub fn name(self) -> &'static str {
-        match self {
-            DocumentKind::Bundle => "bundle",
-            DocumentKind::Feed => "feed",
-            DocumentKind::TreeHead => "tree_head",
-            DocumentKind::TrustSet => "trust_set",
-        }
-    }
-
-    /// The signing context of this kind (see [`crate::format::context`]).
-    pub fn context(self) -> &'static [u8] {
-        match self {
-            DocumentKind::Bundle => context::MANIFEST,
-            DocumentKind::Feed => context::FEED,
-            DocumentKind::TreeHead => context::TREE_HEAD,
-            DocumentKind::TrustSet => context::TRUST_SET,
-        }
-    }
-
-    /// How messages name a document of this kind ("bundle", "tree head").
-    pub fn described(self) -> &'static str {
-        match self {
-            DocumentKind::Bundle => "bundle",
-            DocumentKind::Feed => "feed",
-            DocumentKind::TreeHead => "tree head",
-            DocumentKind::TrustSet => "trust set",
-        }
-    }
-}
-
-impl fmt::Display for DocumentKind {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.name())
-    }
-}
-
-impl FromStr for DocumentKind {
-    type Err = Error;
-
-    fn from_str(s: &str) -> Result<Self> {
-        DocumentKind::ALL
-            .into_iter()
-            .find(|k| k.name() == s)
-            .ok_or_else(|| {
-                invalid(format!(
-                    "'{}' is not a document kind; use bundle, feed, tree_head or trust_set",
-                    s.chars().take(40).collect::<String>().escape_debug()
-                ))
-            })
-    }
-}
 
 /// One key in a trust set.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -480,12 +403,22 @@ impl TrustSetFile {
 
     /// Sorts this file's signatures into valid, invalid and untrusted under `keys`.
     pub fn tally(&self, keys: &TrustedKeys) -> SignatureReport {
-        tally(
-            context::TRUST_SET,
-            self.text.as_bytes(),
-            &self.signatures,
-            keys,
-        )
+        match self.document() {
+            Ok(document) => document.tally(keys),
+            // Only a file over the caps fails here, and from_json refuses those.
+            Err(_) => SignatureReport::default(),
+        }
+    }
+
+    /// The text and its signatures as a signed document of the trust-set kind.
+    fn document(&self) -> Result<SignedDocument<'_, kind::TrustSet>> {
+        SignedDocument::new(self.text.as_bytes(), &self.signatures)
+    }
+
+    /// The keys this file lists for the role of `K` and the threshold of `K`, whoever signed
+    /// the file.
+    fn signers<K: Kind>(&self) -> Result<Signers<K>> {
+        Signers::new(self.keys_for(K::KIND), self.threshold(K::KIND))
     }
 
     /// Refuses the set if it expired before `now`.
@@ -502,14 +435,8 @@ impl TrustSetFile {
 
     /// Requires a threshold of this file's own trust-set keys to have signed it.
     fn check_own_signatures(&self, what: &str) -> Result<SignatureReport> {
-        check_signatures(
-            what,
-            context::TRUST_SET,
-            self.text.as_bytes(),
-            &self.signatures,
-            &self.keys_for(DocumentKind::TrustSet),
-            self.threshold(DocumentKind::TrustSet),
-        )
+        self.document()?
+            .check(&self.signers::<kind::TrustSet>()?, what)
     }
 }
 
@@ -571,14 +498,9 @@ impl TrustSet {
             )));
         }
         // The keys trusted now authorise the change.
-        let (keys, threshold) = self.keys_for(DocumentKind::TrustSet);
-        check_signatures(
-            &format!("trust set version {new}, counting the keys of trusted version {old},"),
-            context::TRUST_SET,
-            next.text.as_bytes(),
-            &next.signatures,
-            &keys,
-            threshold,
+        next.document()?.check(
+            &self.signers::<kind::TrustSet>()?,
+            format_args!("trust set version {new}, counting the keys of trusted version {old},"),
         )?;
         // A key the new set adds takes effect only if its holders signed too.
         let report =
@@ -646,23 +568,10 @@ impl TrustSet {
         self.file.threshold(kind)
     }
 
-    /// Checks `signatures` over a document of `kind` against this set's keys and threshold
-    /// for that kind: what feeds and signed tree heads call.
-    pub fn check_signatures(
-        &self,
-        kind: DocumentKind,
-        document: &[u8],
-        signatures: &[SignatureEntry],
-    ) -> Result<SignatureReport> {
-        let (keys, threshold) = self.keys_for(kind);
-        check_signatures(
-            kind.described(),
-            kind.context(),
-            document,
-            signatures,
-            &keys,
-            threshold,
-        )
+    /// The keys holding the role of `K` in this set and the set's threshold for `K`: whose
+    /// signatures count on documents of that kind.
+    pub fn signers<K: Kind>(&self) -> Result<Signers<K>> {
+        self.file.signers()
     }
 }
 
@@ -982,13 +891,15 @@ mod tests {
             key_id: id(&ci),
             signature: ci.sign(&signed_bytes(kind.context(), feed)).to_bytes(),
         };
-        let report = trust
-            .check_signatures(DocumentKind::Feed, feed, &[by_ci(DocumentKind::Feed)])
+        let as_feed = [by_ci(DocumentKind::Feed)];
+        let report = SignedDocument::<kind::Feed>::new(feed, &as_feed)
+            .and_then(|d| d.check(&trust.signers().expect("feed signers"), "feed"))
             .expect("a feed needs one feed key");
         assert_eq!(report.valid, vec![id(&ci)]);
         // The ci key is not a bundle key, so its signature does not count for bundles.
-        let e = trust
-            .check_signatures(DocumentKind::Bundle, feed, &[by_ci(DocumentKind::Bundle)])
+        let as_bundle = [by_ci(DocumentKind::Bundle)];
+        let e = SignedDocument::<kind::Manifest>::new(feed, &as_bundle)
+            .and_then(|d| d.check(&trust.signers().expect("bundle signers"), "bundle"))
             .expect_err("not a bundle key");
         assert_eq!(
             e.to_string(),

@@ -15,12 +15,12 @@ use semver::Version;
 
 use crate::bundle::{self, Layout};
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::context;
 use crate::keys::{KeyId, TrustedKeys};
 use crate::manifest::Manifest;
 use crate::model::CompatibilityPolicy;
-use crate::signature::{SignatureReport, Signatures, check_signatures};
-use crate::trust::{DocumentKind, TrustSet};
+use crate::signature::{SignatureReport, Signatures};
+use crate::signed::{SignedDocument, Signers, kind};
+use crate::trust::TrustSet;
 
 /// The largest bundle file accepted unless the app sets its own limit.
 pub const DEFAULT_MAX_BUNDLE_BYTES: u64 = 1024 * 1024 * 1024;
@@ -57,9 +57,8 @@ pub type ProgressFn = Arc<dyn Fn(Progress) + Send + Sync>;
 /// else has a safe default.
 #[derive(Clone)]
 pub struct Verifier {
-    keys: TrustedKeys,
+    signers: Signers<kind::Manifest>,
     app_version: Option<Version>,
-    threshold: usize,
     name: Option<String>,
     installed: Option<Version>,
     max_bundle_bytes: u64,
@@ -71,9 +70,8 @@ pub struct Verifier {
 impl fmt::Debug for Verifier {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.debug_struct("Verifier")
-            .field("keys", &self.keys)
+            .field("signers", &self.signers)
             .field("app_version", &self.app_version)
-            .field("threshold", &self.threshold)
             .field("name", &self.name)
             .field("installed", &self.installed)
             .field("max_bundle_bytes", &self.max_bundle_bytes)
@@ -94,9 +92,8 @@ impl Verifier {
             ));
         }
         Ok(Verifier {
-            keys,
+            signers: Signers::new(keys, 1)?,
             app_version: Some(app_version),
-            threshold: 1,
             name: None,
             installed: None,
             max_bundle_bytes: DEFAULT_MAX_BUNDLE_BYTES,
@@ -124,48 +121,30 @@ impl Verifier {
     /// A verifier that takes its bundle keys and threshold from a verified trust set: a
     /// bundle needs that many valid signatures by distinct keys with the bundle role.
     pub fn from_trust_set(trust: &TrustSet, app_version: Version) -> Result<Self> {
-        let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
-        Self::new(keys, app_version)?.with_threshold(threshold)
+        let signers = trust.signers::<kind::Manifest>()?;
+        let mut verifier = Self::new(signers.keys().clone(), app_version)?;
+        verifier.signers = signers;
+        Ok(verifier)
     }
 
     /// This verifier with the bundle keys and threshold of `trust` instead of its own; every
     /// policy setting stays. For a device that just accepted a newer trust set.
     pub fn with_trust_set(mut self, trust: &TrustSet) -> Result<Self> {
-        let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
-        if keys.is_empty() {
-            return Err(Error::new(
-                ErrorKind::Key,
-                format!(
-                    "trust set version {} lists no bundle keys; a verifier needs at least one",
-                    trust.version()
-                ),
-            ));
-        }
-        self.keys = keys;
-        self.with_threshold(threshold)
+        self.signers = trust.signers::<kind::Manifest>()?;
+        Ok(self)
     }
 
     /// Requires `threshold` valid signatures by distinct trusted keys (1 unless set). Refuses 0,
     /// which would accept unsigned bundles, and more than the number of trusted keys, which
     /// no bundle could ever meet.
     pub fn with_threshold(mut self, threshold: usize) -> Result<Self> {
-        if threshold == 0 || threshold > self.keys.len() {
-            return Err(Error::new(
-                ErrorKind::Key,
-                format!(
-                    "a threshold of {threshold} signature(s) is not usable with {} trusted \
-                     key(s); it must be from 1 to the number of trusted keys",
-                    self.keys.len()
-                ),
-            ));
-        }
-        self.threshold = threshold;
+        self.signers = Signers::new(self.signers.keys().clone(), threshold)?;
         Ok(self)
     }
 
     /// How many valid signatures by distinct trusted keys a bundle needs.
     pub fn threshold(&self) -> usize {
-        self.threshold
+        self.signers.threshold()
     }
 
     /// Accept only bundles with this name (the model line the app runs).
@@ -225,7 +204,7 @@ impl Verifier {
 
     /// The trusted keys.
     pub fn keys(&self) -> &TrustedKeys {
-        &self.keys
+        self.signers.keys()
     }
 
     /// Opens and verifies the bundle at `path`.
@@ -253,14 +232,9 @@ impl Verifier {
         }
         let layout = bundle::read_layout(&mut file, file_len)?;
         let signatures = Signatures::from_json(&layout.signatures)?;
-        let report = check_signatures(
-            "bundle",
-            context::MANIFEST,
-            &layout.manifest,
-            &signatures.signatures,
-            &self.keys,
-            self.threshold,
-        )?;
+        let report =
+            SignedDocument::<kind::Manifest>::new(&layout.manifest, &signatures.signatures)?
+                .check(&self.signers, "bundle")?;
         let manifest = Manifest::from_json(&layout.manifest)?;
         self.check_policy(&manifest, true)?;
         bundle::check_payload(&mut file, &layout, &manifest, self.progress.as_ref())?;
@@ -284,14 +258,8 @@ impl Verifier {
         signatures: &[u8],
     ) -> Result<(Manifest, SignatureReport)> {
         let signatures = Signatures::from_json(signatures)?;
-        let report = check_signatures(
-            what,
-            context::MANIFEST,
-            manifest,
-            &signatures.signatures,
-            &self.keys,
-            self.threshold,
-        )?;
+        let report = SignedDocument::<kind::Manifest>::new(manifest, &signatures.signatures)?
+            .check(&self.signers, what)?;
         let manifest = Manifest::from_json(manifest)?;
         self.check_policy(&manifest, false)?;
         Ok((manifest, report))

@@ -418,7 +418,10 @@ fn issue5_a_rotation_keeps_the_ledger_requirement() {
     let two = one.accept_successor(&v2, at(NOW)).expect("v2");
     let feeds = FeedVerifier::from_trust_set(&one, "stable")
         .expect("feed verifier")
-        .require_ledger(ampoule_verify::ledger::LedgerVerifier::from_trust_set(&one))
+        .require_ledger(
+            ampoule_verify::ledger::LedgerVerifier::from_trust_set(&one)
+                .expect("tree-head signers"),
+        )
         .with_trust_set(&two)
         .expect("rotated");
     assert_eq!(feeds.trust_set_version(), Some(2));

@@ -89,6 +89,22 @@ pub fn write_bundle(dir: &Path, version: &str, model: &[u8]) -> PathBuf {
 
 /// Writes a bundle of model line `name`.
 pub fn write_named_bundle(dir: &Path, name: &str, version: &str, model: &[u8]) -> PathBuf {
+    write_bundle_signed_by(dir, name, version, model, &|manifest| {
+        let mut signatures = Signatures::default();
+        signatures.insert(sign(&signing_key(), manifest));
+        signatures
+    })
+}
+
+/// Writes a bundle whose signatures document is whatever `sign_manifest` makes of the exact
+/// manifest bytes (hostile lists included: repeated keys, other contexts, too many).
+pub fn write_bundle_signed_by(
+    dir: &Path,
+    name: &str,
+    version: &str,
+    model: &[u8],
+    sign_manifest: &dyn Fn(&[u8]) -> Signatures,
+) -> PathBuf {
     let labels: Vec<u8> = LABELS
         .iter()
         .flat_map(|l| format!("{l}\n").into_bytes())
@@ -131,8 +147,7 @@ pub fn write_named_bundle(dir: &Path, name: &str, version: &str, model: &[u8]) -
         model: None,
     };
     let manifest_bytes = manifest.to_json();
-    let mut signatures = Signatures::default();
-    signatures.insert(sign(&signing_key(), &manifest_bytes));
+    let signatures = sign_manifest(&manifest_bytes);
     let path = dir.join(format!("{name}-{version}.ampoule"));
     let mut out = File::create(&path).expect("create test bundle");
     bundle::write_bundle(
