@@ -1,0 +1,16 @@
+//! The app without the verifier: it copies the bundle into the store unchecked. Its size is
+//! the zero that `installer` is measured against.
+
+use ampoule_size::{Request, run};
+use std::error::Error;
+use std::process::ExitCode;
+
+fn copy(request: &Request) -> Result<String, Box<dyn Error>> {
+    std::fs::create_dir_all(&request.store)?;
+    let bytes = std::fs::copy(&request.bundle, request.store.join("current.ampoule"))?;
+    Ok(format!("copied {bytes} bytes unchecked"))
+}
+
+fn main() -> ExitCode {
+    run(copy)
+}
