@@ -630,6 +630,10 @@ pub struct UpdateArgs {
     /// would be installed; do not use this on devices in the field.
     #[arg(long)]
     pub dangerous_skip_ledger: bool,
+    /// Make the store follow --channel (or the feed's channel) from now on, when it followed
+    /// another one. The highest version it accepted stays, so nothing older installs.
+    #[arg(long)]
+    pub switch_channel: bool,
 }
 
 #[derive(Args, Debug)]

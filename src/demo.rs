@@ -22,15 +22,14 @@ use ampoule_verify::model::{DType, TensorSpec, read_model_signature_file};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody};
 use ampoule_verify::{
-    CompatibilityPolicy, Digest, DocumentKind, PublicKey, Store, Timestamp, TrustSetFile,
-    TrustedKeys, Verifier, in_rollout,
+    App, CompatibilityPolicy, Device, Digest, DocumentKind, Outcome, PublicKey, Report, Store,
+    Timestamp, Trust, TrustSetFile, TrustedKeys, Verifier, dangerous, in_rollout,
 };
 use anyhow::{Context, Result, bail};
 use semver::{Version, VersionReq};
 use serde_json::{Value, json};
 
 use crate::cli::DemoArgs;
-use crate::device::{DOWNLOADS_DIR, Device, Outcome};
 use crate::keyfile;
 use crate::output::Output;
 use crate::pack::{PackSpec, pack};
@@ -221,31 +220,30 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     // Two cameras whose rollout buckets for v1.1.0 fall on either side of 50%.
     let v11 = file_digest(&bundles[1])?;
     let (id_in, id_out) = pick_cameras(&v11, ROLLOUT)?;
-    let device = |id: &str| -> Result<Device> {
+    let device = |id: &str| -> Result<Camera> {
+        // The camera app: the trust set it ships with, its version, its model line and what
+        // its code needs of a model.
+        let app = App::new(
+            Trust::shipped_trust_set(trust_v1.clone())?,
+            Version::parse(APP_VERSION)?,
+        )
+        .bundle_name("trailcam-species")?
+        .compatibility(camera_policy()?)
+        .device_id(id)?;
         let store_dir = dir.join("cameras").join(id);
-        let store = Store::open(&store_dir, camera.clone())?;
-        let trust_set = Store::load_trust_set(&store_dir, &trust_v1, Timestamp::now())?;
-        Ok(Device {
-            store,
+        Ok(Camera {
+            device: Device::open(&store_dir, CHANNEL, app, Timestamp::now())?,
             feed_url: feed_url.clone(),
-            channel: CHANNEL.into(),
-            feed_keys: (trusted.clone(), 1),
-            ledger_keys: Some((trusted.clone(), 1)),
-            bundles: camera.clone(),
-            device_id: id.into(),
-            download_dir: store_dir.join(DOWNLOADS_DIR),
-            transfer: Transfer::new(),
-            trust_set: Some(trust_set),
         })
     };
     let (mut cam_in, mut cam_out) = (device(&id_in)?, device(&id_out)?);
     let mut species_count = 0;
     for cam in [&cam_in, &cam_out] {
-        match cam.check(Timestamp::now())? {
-            Outcome::Updated { installed, .. } => species_count = installed.release.labels.len(),
+        match cam.check(Timestamp::now())?.outcome {
+            Outcome::Installed(installed) => species_count = installed.release.labels.len(),
             other => bail!(
                 "{} expected to install v1.0.0, got {}",
-                cam.device_id,
+                cam.id(),
                 other.name()
             ),
         }
@@ -270,8 +268,8 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         json!({ "version": "1.1.0", "rollout_percent": ROLLOUT, "sequence": published.feed.sequence }),
     );
     let threshold = u16::from(ROLLOUT) * 100;
-    match cam_in.check(Timestamp::now())? {
-        Outcome::Updated { installed, .. } => story.tell(
+    match cam_in.check(Timestamp::now())?.outcome {
+        Outcome::Installed(installed) => story.tell(
             "rollout-in",
             format!(
                 "{id_in} is in rollout bucket {} of 10000 (under {threshold}): updated 1.0.0 -> 1.1.0, now knows '{}'",
@@ -282,8 +280,8 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         ),
         other => bail!("{id_in} expected to take v1.1.0, got {}", other.name()),
     }
-    match cam_out.check(Timestamp::now())? {
-        Outcome::NotInRollout { bucket, .. } => story.tell(
+    match cam_out.check(Timestamp::now())?.outcome {
+        Outcome::NotInRollout { bucket } => story.tell(
             "rollout-out",
             format!("{id_out} is in bucket {bucket} (not under {threshold}): not in the rollout yet, keeps v1.0.0"),
             json!({ "camera": id_out, "bucket": bucket, "version": "1.0.0" }),
@@ -296,7 +294,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         &mut story,
         "replay",
         &format!("the old v1.0.0 bundle replayed into the store of {id_in} (on v1.1.0)"),
-        cam_in.store.install(old, Some(CHANNEL), None),
+        dangerous::install_without_feed(cam_in.device.store(), old),
     )?;
 
     // v1.1.1: the same model, republished; then one byte of it flips on the server.
@@ -335,16 +333,16 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         sequence = withdraw(&tree, &key)?.feed.sequence;
     }
     for cam in [&cam_in, &cam_out] {
-        match cam.check(Timestamp::now())? {
-            Outcome::NothingCurrent { .. } => {}
+        match cam.check(Timestamp::now())?.outcome {
+            Outcome::NothingOffered => {}
             other => bail!(
                 "{} expected an empty channel, got {}",
-                cam.device_id,
+                cam.id(),
                 other.name()
             ),
         }
     }
-    let versions = |cam: &Device| -> Result<String> {
+    let versions = |cam: &Camera| -> Result<String> {
         Ok(cam
             .current_version()?
             .map_or_else(|| "nothing".into(), |v| v.to_string()))
@@ -481,7 +479,7 @@ fn rotate_keys(
     dir: &Path,
     tree: &Path,
     key: &ed25519_dalek::SigningKey,
-    cameras: [&mut Device; 2],
+    cameras: [&mut Camera; 2],
     shipped: &[u8],
     spec: impl Fn(&str) -> Result<PackSpec>,
 ) -> Result<()> {
@@ -529,19 +527,15 @@ fn rotate_keys(
         }),
     );
     for cam in [&mut *cam_in, &mut *cam_out] {
-        let checked = cam.check_rotating(Timestamp::now())?;
-        match (&checked.outcome, checked.rotated) {
-            (Outcome::Updated { installed, .. }, Some(next))
-                if next.version() == 2
-                    && installed.release.manifest.version == Version::new(1, 1, 2) =>
-            {
-                cam.trust_set = Some(next);
-            }
+        let checked = cam.check(Timestamp::now())?;
+        match (&checked.outcome, checked.rotated_to) {
+            (Outcome::Installed(installed), Some(2))
+                if installed.release.manifest.version == Version::new(1, 1, 2) => {}
             (other, rotated) => bail!(
                 "{} expected to take trust set v2 and install v1.1.2, got {} (trust set {:?})",
-                cam.device_id,
+                cam.id(),
                 other.name(),
-                rotated.map(|t| t.version())
+                rotated
             ),
         }
     }
@@ -550,9 +544,9 @@ fn rotate_keys(
         format!(
             "{} and {} took trust set v2 from the feed and stored it, then installed v1.1.2 in \
              the same update (the v1 they shipped with would refuse it)",
-            cam_in.device_id, cam_out.device_id
+            cam_in.id(), cam_out.id()
         ),
-        json!({ "cameras": [cam_in.device_id, cam_out.device_id], "trust_set_version": 2, "version": "1.1.2" }),
+        json!({ "cameras": [cam_in.id(), cam_out.id()], "trust_set_version": 2, "version": "1.1.2" }),
     );
 
     let v113 = dir.join("species-1.1.3.ampoule");
@@ -581,25 +575,24 @@ fn rotate_keys(
     );
     let mut results = Vec::new();
     for cam in [&mut *cam_in, &mut *cam_out] {
-        let result = cam.check_rotating(Timestamp::now());
+        let result = cam.check(Timestamp::now());
         // What the camera runs on from now on, as its app loads it after a restart.
-        let stored = Store::load_trust_set(cam.store.dir(), shipped, Timestamp::now())?;
+        let stored = Store::load_trust_set(cam.device.store().dir(), shipped, Timestamp::now())?;
         let kept = cam.current_version()?;
         if stored.version() != 3 || kept != Some(Version::new(1, 1, 2)) {
             bail!(
                 "{} should have stored trust set v3 and kept v1.1.2, but has trust set v{} and runs {kept:?}",
-                cam.device_id,
+                cam.id(),
                 stored.version()
             );
         }
-        cam.trust_set = Some(stored);
         results.push(result);
     }
     let first = results.remove(0);
     if let Some(Ok(_)) = results.first() {
         bail!(
             "{} accepted v1.1.3 after trust set v3 revoked its key",
-            cam_out.device_id
+            cam_out.id()
         );
     }
     refusal(
@@ -607,7 +600,8 @@ fn rotate_keys(
         "revoked",
         &format!(
             "v1.1.3 on {} and {}, in the update that took trust set v3 (both keep v1.1.2)",
-            cam_in.device_id, cam_out.device_id
+            cam_in.id(),
+            cam_out.id()
         ),
         first,
     )
@@ -734,6 +728,29 @@ fn mib(bytes: u64) -> f64 {
 }
 
 /// Records an expected refusal; a demo whose attack was accepted is a failed demo.
+/// One trail camera: the device its app opens on its store, and where its channel's feed is.
+struct Camera {
+    device: Device,
+    feed_url: String,
+}
+
+impl Camera {
+    fn id(&self) -> &str {
+        self.device.device_id()
+    }
+
+    /// One update over HTTP, as the camera's app runs it; a refusal or failure as an error.
+    fn check(&self, now: Timestamp) -> ampoule_verify::Result<Report> {
+        self.device
+            .update(&self.feed_url, &Transfer::new(), now)
+            .into_result()
+    }
+
+    fn current_version(&self) -> Result<Option<Version>> {
+        Ok(self.device.store().state()?.current.map(|c| c.version))
+    }
+}
+
 fn refusal<T>(
     story: &mut Story<'_>,
     step: &str,

@@ -9,7 +9,6 @@ pub mod audit;
 pub mod cli;
 pub mod cmd;
 pub mod demo;
-pub mod device;
 pub mod keyfile;
 pub mod ledger;
 pub mod output;

@@ -386,7 +386,7 @@ impl Tree {
     pub fn stage_bundle(&self, bundle: &Path, trust: &TrustedKeys) -> Result<StagedBundle> {
         self.stage_bundle_with(
             bundle,
-            Verifier::dangerous_without_app_version(trust.clone())?,
+            ampoule_verify::dangerous::verifier_without_app_version(trust.clone())?,
         )
     }
 

@@ -176,9 +176,7 @@ fn install(store_dir: &Path, initial: &[u8], update: Update) -> Version {
     let Update::Ready { feed, bundle, path } = update else {
         panic!("expected a bundle ready to install, got {update:?}");
     };
-    let installed = store
-        .install(*bundle, Some("stable"), Some(feed.sequence()))
-        .expect("installed");
+    let installed = store.install_from_feed(*bundle, &feed).expect("installed");
     std::fs::remove_file(path).expect("the download is no longer needed");
     installed.release.manifest.version
 }

@@ -24,7 +24,7 @@ fn key() -> SigningKey {
 fn verifier() -> Verifier {
     let public = PublicKey::from_verifying_key(&key().verifying_key()).expect("a strong key");
     let keys: TrustedKeys = [public].into_iter().collect();
-    Verifier::dangerous_without_app_version(keys).expect("one trusted key")
+    ampoule_verify::dangerous::verifier_without_app_version(keys).expect("one trusted key")
 }
 
 /// An inner tar of `entries`, each declared with its real size unless a size is given.

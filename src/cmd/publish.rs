@@ -5,7 +5,7 @@
 use std::path::Path;
 
 use ampoule_verify::format::trust_set;
-use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustedKeys, Verifier};
+use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustedKeys};
 use anyhow::{Context, Result};
 use serde_json::{Value, json};
 
@@ -39,13 +39,13 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     // else against the tree's trust set (its bundle keys and threshold); else the feed key
     // must have signed the bundle too.
     let verifier = if !args.trust.is_empty() {
-        Verifier::dangerous_without_app_version(load_trust(&args.trust)?)?
+        ampoule_verify::dangerous::verifier_without_app_version(load_trust(&args.trust)?)?
     } else if let Some(current) = tree.current_trust_set()? {
         let trust = current.verified(now)?;
         let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
-        Verifier::dangerous_without_app_version(keys)?.with_threshold(threshold)?
+        ampoule_verify::dangerous::verifier_without_app_version(keys)?.with_threshold(threshold)?
     } else {
-        Verifier::dangerous_without_app_version(
+        ampoule_verify::dangerous::verifier_without_app_version(
             [PublicKey::from_verifying_key(&key.verifying_key())?]
                 .into_iter()
                 .collect::<TrustedKeys>(),

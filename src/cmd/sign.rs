@@ -4,9 +4,9 @@
 
 use std::fs::File;
 
+use ampoule_verify::TrustedKeys;
 use ampoule_verify::bundle::Unverified;
 use ampoule_verify::format::{context, limit, signed_bytes};
-use ampoule_verify::{TrustedKeys, Verifier};
 use anyhow::{Context, Result, bail};
 use serde_json::json;
 
@@ -62,7 +62,7 @@ pub fn run(args: SignArgs, out: &Output) -> Result<()> {
         }
         let own_key: TrustedKeys = [public.clone()].into_iter().collect();
         let check = move |f: File| -> Result<()> {
-            Verifier::dangerous_without_app_version(own_key.clone())?
+            ampoule_verify::dangerous::verifier_without_app_version(own_key.clone())?
                 .verify_file(f)?
                 .check_contents()
                 .context(

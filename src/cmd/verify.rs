@@ -18,7 +18,7 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
     };
     let mut verifier = match &args.app_version {
         Some(v) => Verifier::new(keys, parse_version(v, "--app-version")?)?,
-        None => Verifier::dangerous_without_app_version(keys)?,
+        None => ampoule_verify::dangerous::verifier_without_app_version(keys)?,
     }
     .with_threshold(threshold)?;
     if let Some(v) = &args.installed {

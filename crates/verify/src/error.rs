@@ -50,6 +50,11 @@ pub enum ErrorKind {
     /// A transfer failed: connection, timeout, HTTP status, redirect, a server that sent
     /// fewer bytes than declared. Trying again later may work.
     Network,
+    /// A setting the app gave is not usable (a device id, a bundle or channel name); fix the
+    /// app's configuration.
+    Settings,
+    /// The app cancelled a transfer; a partial download is kept for the next try.
+    Cancelled,
 }
 
 impl ErrorKind {
@@ -57,7 +62,12 @@ impl ErrorKind {
     pub fn is_refusal(self) -> bool {
         !matches!(
             self,
-            ErrorKind::Io | ErrorKind::Destination | ErrorKind::Locked | ErrorKind::Network
+            ErrorKind::Io
+                | ErrorKind::Destination
+                | ErrorKind::Locked
+                | ErrorKind::Network
+                | ErrorKind::Settings
+                | ErrorKind::Cancelled
         )
     }
 }

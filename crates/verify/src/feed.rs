@@ -41,7 +41,7 @@ use crate::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, limit};
 use crate::keys::{KeyId, TrustedKeys};
-use crate::ledger::{FeedLedger, LedgerCheck, LedgerVerifier};
+use crate::ledger::{FeedLedger, LedgerCheck, LedgerVerifier, Walk};
 use crate::manifest::check_name;
 use crate::signature::{SignatureEntry, SignatureReport};
 use crate::signed::{SignedDocument, Signers, kind};
@@ -420,6 +420,12 @@ impl FeedVerifier {
         self
     }
 
+    /// Checks the envelope's signatures alone, the feed text unparsed.
+    pub(crate) fn check_signatures(&self, signed: &SignedFeed) -> Result<SignatureReport> {
+        SignedDocument::<kind::Feed>::new(signed.feed.as_bytes(), &signed.signatures)?
+            .check(&self.signers, "feed")
+    }
+
     /// The channel this verifier accepts.
     pub fn channel(&self) -> &str {
         &self.channel
@@ -452,6 +458,23 @@ impl FeedVerifier {
         now: Timestamp,
         step: &mut dyn FnMut(u64) -> Result<Vec<u8>>,
     ) -> Result<VerifiedFeed> {
+        let (feed, walk) = self.verify_before_steps(bytes, now)?;
+        if let Some(mut walk) = walk {
+            while let Some(size) = walk.needs() {
+                let bytes = step(size)?;
+                walk.advance(&bytes)?;
+            }
+        }
+        Ok(feed)
+    }
+
+    /// [`FeedVerifier::verify_with_steps`] up to the ledger's consistency steps: the feed,
+    /// valid only once the returned walk (if any) has reached its end.
+    pub(crate) fn verify_before_steps(
+        &self,
+        bytes: &[u8],
+        now: Timestamp,
+    ) -> Result<(VerifiedFeed, Option<Walk>)> {
         if let Some((version, expires)) = self.trust
             && now > expires
         {
@@ -464,8 +487,7 @@ impl FeedVerifier {
             ));
         }
         let signed = SignedFeed::from_json(bytes)?;
-        let report = SignedDocument::<kind::Feed>::new(signed.feed.as_bytes(), &signed.signatures)?
-            .check(&self.signers, "feed")?;
+        let report = self.check_signatures(&signed)?;
         let feed = Feed::from_json(signed.feed.as_bytes())?;
         if feed.channel != self.channel {
             return Err(invalid(format!(
@@ -509,17 +531,21 @@ impl FeedVerifier {
                 is_new = false;
             }
         }
-        let ledger = match &self.ledger {
-            Some(verifier) => Some(verifier.check(&feed, step)?),
-            None => None,
+        let (ledger, walk) = match &self.ledger {
+            Some(verifier) => {
+                let (check, walk) = verifier.check_before_steps(&feed)?;
+                (Some(check), walk)
+            }
+            None => (None, None),
         };
-        Ok(VerifiedFeed {
+        let verified = VerifiedFeed {
             feed,
             digest,
             report,
             is_new,
             ledger,
-        })
+        };
+        Ok((verified, walk))
     }
 }
 

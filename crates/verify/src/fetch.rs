@@ -19,6 +19,7 @@ use std::fs::{File, OpenOptions};
 use std::io::{Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
 use http_body_util::{BodyExt, Empty};
@@ -54,6 +55,7 @@ pub struct Transfer {
     attempts: u32,
     tls_roots: Option<Vec<Vec<u8>>>,
     progress: Option<ProgressFn>,
+    cancel: Option<Arc<AtomicBool>>,
 }
 
 impl std::fmt::Debug for Transfer {
@@ -67,6 +69,7 @@ impl std::fmt::Debug for Transfer {
             .field("attempts", &self.attempts)
             .field("tls_roots", &self.tls_roots.as_ref().map(Vec::len))
             .field("progress", &self.progress.is_some())
+            .field("cancel", &self.cancel.is_some())
             .finish()
     }
 }
@@ -82,6 +85,7 @@ impl Default for Transfer {
             attempts: 3,
             tls_roots: None,
             progress: None,
+            cancel: None,
         }
     }
 }
@@ -132,6 +136,27 @@ impl Transfer {
     pub fn on_progress(mut self, progress: ProgressFn) -> Self {
         self.progress = Some(progress);
         self
+    }
+
+    /// Stops the transfer once `flag` is set (from any thread), between two pieces of the
+    /// body: the update ends as [`ErrorKind::Cancelled`], and the bytes of the bundle received
+    /// so far stay in the partial file, so the next update resumes from there.
+    pub fn cancel_when(mut self, flag: Arc<AtomicBool>) -> Self {
+        self.cancel = Some(flag);
+        self
+    }
+
+    fn cancelled(&self, url: &str) -> Result<()> {
+        match &self.cancel {
+            Some(flag) if flag.load(Ordering::Relaxed) => Err(Error::new(
+                ErrorKind::Cancelled,
+                format!(
+                    "transfer from {url} was cancelled; what arrived of a bundle is kept for the \
+                     next update"
+                ),
+            )),
+            _ => Ok(()),
+        }
     }
 
     /// How many times one source is tried while each try makes progress (at least 1).
@@ -218,6 +243,7 @@ impl Session {
     /// Sends a GET and waits for the response headers. Refuses anything but 2xx, naming the
     /// status; a 3xx is reported with where it pointed and not followed.
     async fn get(&self, url: &str, from: u64, deadline: Instant) -> Result<Response<Incoming>> {
+        self.transfer.cancelled(url)?;
         let uri = parse_url(url)?;
         let mut request = Request::get(uri).header(
             header::USER_AGENT,
@@ -338,6 +364,7 @@ async fn read_body(
     let mut window_start = Instant::now();
     let mut window_bytes: u64 = 0;
     loop {
+        transfer.cancelled(url).map_err(BodyError::Refused)?;
         let wait = (Instant::now() + transfer.read_timeout).min(deadline);
         let frame = match tokio::time::timeout_at(wait.into(), body.frame()).await {
             Ok(None) => return Ok(()),
@@ -381,17 +408,22 @@ async fn read_body(
 /// Fetches a feed file: at most [`limit::FEED_BYTES`], refused early when the server declares
 /// more. The bytes are unverified: give them to [`FeedVerifier::verify`].
 pub fn fetch_feed(url: &str, transfer: &Transfer) -> Result<Vec<u8>> {
-    fetch_small(url, transfer, limit::FEED_BYTES, "feed")
+    fetch_capped(url, transfer, limit::FEED_BYTES, "feed")
 }
 
 /// Fetches a trust-set file: at most [`trust_set::MAX_BYTES`], refused early when the server
 /// declares more. The bytes are unverified: give them to [`TrustSet::accept_successor`].
 pub fn fetch_trust_set(url: &str, transfer: &Transfer) -> Result<Vec<u8>> {
-    fetch_small(url, transfer, trust_set::MAX_BYTES, "trust set")
+    fetch_capped(url, transfer, trust_set::MAX_BYTES, "trust set")
 }
 
 /// Fetches a small document whole, at most `cap` bytes; `what` names it in messages.
-fn fetch_small(url: &str, transfer: &Transfer, cap: u64, what: &str) -> Result<Vec<u8>> {
+pub(crate) fn fetch_capped(
+    url: &str,
+    transfer: &Transfer,
+    cap: u64,
+    what: &str,
+) -> Result<Vec<u8>> {
     let session = Session::new(transfer)?;
     session.runtime.block_on(async {
         let deadline = Instant::now() + transfer.total_timeout;
@@ -814,7 +846,7 @@ impl Updater {
     ) -> Result<VerifiedFeed> {
         verifier.verify_with_steps(bytes, now, &mut |size| {
             let url = resolve(&self.feed_url, &ledger::step_reference(size))?;
-            fetch_small(
+            fetch_capped(
                 &url,
                 &self.transfer,
                 ledger::MAX_STEP_BYTES,

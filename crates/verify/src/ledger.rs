@@ -358,6 +358,19 @@ impl LedgerVerifier {
         feed: &Feed,
         step: &mut dyn FnMut(u64) -> Result<Vec<u8>>,
     ) -> Result<LedgerCheck> {
+        let (check, walk) = self.check_before_steps(feed)?;
+        if let Some(mut walk) = walk {
+            while let Some(size) = walk.needs() {
+                let bytes = step(size)?;
+                walk.advance(&bytes)?;
+            }
+        }
+        Ok(check)
+    }
+
+    /// [`LedgerVerifier::check`] up to the consistency steps: the result, and the walk still
+    /// to make when the feed's proof does not start at the remembered head.
+    pub(crate) fn check_before_steps(&self, feed: &Feed) -> Result<(LedgerCheck, Option<Walk>)> {
         let Some(ledger) = &feed.ledger else {
             let what = match &feed.release {
                 Some(r) => format!(
@@ -436,25 +449,41 @@ impl LedgerVerifier {
                 Some(entry)
             }
         };
-        if let Some(seen) = &self.remembered {
-            self.check_extends(seen, &head, &ledger.consistency, step)?;
-        }
-        Ok(LedgerCheck {
+        let walk = match &self.remembered {
+            Some(seen) => Walk::start(seen, &head, &ledger.consistency)?,
+            None => None,
+        };
+        let check = LedgerCheck {
             tree_head: head,
             signers: report.valid,
             entry,
-        })
+        };
+        Ok((check, walk))
     }
+}
 
-    /// Proves that `head` extends `seen`, with the feed's own proof when it starts at `seen`,
-    /// else by walking the tree's consistency steps from `seen` up.
-    fn check_extends(
-        &self,
+/// The walk from the tree head a device remembers up to a feed's tree head, one consistency
+/// step file at a time, each proof checked before the next file is asked for. It holds only
+/// the head reached so far, so a caller that fetches the files itself (the step-by-step
+/// update) can hand them in one by one.
+#[derive(Clone, Debug)]
+pub(crate) struct Walk {
+    seen: TreeHead,
+    current: TreeHead,
+    head: TreeHead,
+    feed_proof: ConsistencyProof,
+    steps: usize,
+    done: bool,
+}
+
+impl Walk {
+    /// Starts a walk from `seen` to `head`; `None` when no step file is needed (the heads are
+    /// equal or the feed's own proof starts at `seen`), after checking what can be checked.
+    pub(crate) fn start(
         seen: &TreeHead,
         head: &TreeHead,
         feed_proof: &ConsistencyProof,
-        step: &mut dyn FnMut(u64) -> Result<Vec<u8>>,
-    ) -> Result<()> {
+    ) -> Result<Option<Walk>> {
         if head.tree_size < seen.tree_size {
             return Err(Error::new(
                 ErrorKind::Stale,
@@ -465,13 +494,6 @@ impl LedgerVerifier {
                 ),
             ));
         }
-        let inconsistent = |e: Error| {
-            invalid(format!(
-                "ledger tree head of size {} is not consistent with the tree head of size {} \
-                 this device saw before: {e}",
-                head.tree_size, seen.tree_size
-            ))
-        };
         if head.tree_size == seen.tree_size {
             if head.root_hash != seen.root_hash {
                 return Err(invalid(format!(
@@ -480,45 +502,81 @@ impl LedgerVerifier {
                     head.tree_size, head.root_hash, seen.root_hash
                 )));
             }
+            return Ok(None);
+        }
+        let mut walk = Walk {
+            seen: *seen,
+            current: *seen,
+            head: *head,
+            feed_proof: feed_proof.clone(),
+            steps: 0,
+            done: false,
+        };
+        walk.settle()?;
+        Ok((!walk.done).then_some(walk))
+    }
+
+    /// The old size of the step file needed next (`ledger/consistency/<size>.json`), or
+    /// `None` once the walk reached the feed's head.
+    pub(crate) fn needs(&self) -> Option<u64> {
+        (!self.done).then_some(self.current.tree_size)
+    }
+
+    /// Checks the step file asked for by [`Walk::needs`] and moves on.
+    pub(crate) fn advance(&mut self, bytes: &[u8]) -> Result<()> {
+        if self.done {
             return Ok(());
         }
-        if feed_proof.old_size == seen.tree_size {
-            return feed_proof.verify(seen, head).map_err(inconsistent);
+        if self.steps >= MAX_STEPS {
+            return Err(
+                self.inconsistent(invalid(format!("more than {MAX_STEPS} consistency steps")))
+            );
         }
-        let mut current = *seen;
-        for _ in 0..MAX_STEPS {
-            if current.tree_size == head.tree_size {
-                if current.root_hash != head.root_hash {
-                    return Err(inconsistent(invalid(format!(
-                        "the consistency steps lead to root {} at size {}, not to root {}",
-                        current.root_hash, current.tree_size, head.root_hash
-                    ))));
-                }
-                return Ok(());
-            }
-            if current.tree_size == feed_proof.old_size {
-                // The steps reached the head the feed's own proof starts from.
-                return feed_proof.verify(&current, head).map_err(inconsistent);
-            }
-            let bytes = step(current.tree_size)?;
-            let next = ConsistencyStep::from_json(&bytes).map_err(inconsistent)?;
-            let reached = next.tree_head.head();
-            if next.proof.old_size != current.tree_size
-                || reached.tree_size <= current.tree_size
-                || reached.tree_size > head.tree_size
-            {
-                return Err(inconsistent(invalid(format!(
-                    "the consistency step from size {} leads from size {} to size {}",
-                    current.tree_size, next.proof.old_size, reached.tree_size
+        self.steps += 1;
+        let next = ConsistencyStep::from_json(bytes).map_err(|e| self.inconsistent(e))?;
+        let reached = next.tree_head.head();
+        if next.proof.old_size != self.current.tree_size
+            || reached.tree_size <= self.current.tree_size
+            || reached.tree_size > self.head.tree_size
+        {
+            return Err(self.inconsistent(invalid(format!(
+                "the consistency step from size {} leads from size {} to size {}",
+                self.current.tree_size, next.proof.old_size, reached.tree_size
+            ))));
+        }
+        next.proof
+            .verify(&self.current, &reached)
+            .map_err(|e| self.inconsistent(e))?;
+        self.current = reached;
+        self.settle()
+    }
+
+    /// Finishes the walk when the head reached is the feed's, or the feed's own proof starts
+    /// there.
+    fn settle(&mut self) -> Result<()> {
+        if self.current.tree_size == self.head.tree_size {
+            if self.current.root_hash != self.head.root_hash {
+                return Err(self.inconsistent(invalid(format!(
+                    "the consistency steps lead to root {} at size {}, not to root {}",
+                    self.current.root_hash, self.current.tree_size, self.head.root_hash
                 ))));
             }
-            next.proof
-                .verify(&current, &reached)
-                .map_err(inconsistent)?;
-            current = reached;
+            self.done = true;
+        } else if self.current.tree_size == self.feed_proof.old_size {
+            // The steps reached the head the feed's own proof starts from.
+            self.feed_proof
+                .verify(&self.current, &self.head)
+                .map_err(|e| self.inconsistent(e))?;
+            self.done = true;
         }
-        Err(inconsistent(invalid(format!(
-            "more than {MAX_STEPS} consistency steps"
-        ))))
+        Ok(())
+    }
+
+    fn inconsistent(&self, e: Error) -> Error {
+        invalid(format!(
+            "ledger tree head of size {} is not consistent with the tree head of size {} this \
+             device saw before: {e}",
+            self.head.tree_size, self.seen.tree_size
+        ))
     }
 }

@@ -8,6 +8,7 @@
 #![warn(missing_docs)]
 
 pub mod bundle;
+pub mod dangerous;
 pub mod digest;
 pub mod error;
 pub mod feed;
@@ -28,6 +29,7 @@ pub mod tar;
 pub mod time;
 pub mod trust;
 mod unpack;
+pub mod update;
 mod verify;
 
 /// The README's examples, compiled as doctests so they cannot go stale.
@@ -41,9 +43,11 @@ pub use feed::{FeedVerifier, VerifiedFeed, in_rollout};
 pub use keys::{KeyId, PublicKey, TrustedKeys};
 pub use manifest::Manifest;
 pub use model::{CompatibilityPolicy, ModelSignature};
+pub use semver::Version;
 pub use store::{Installed, Release, Store, StoreState};
 pub use time::Timestamp;
 pub use trust::{DocumentKind, TrustSet, TrustSetFile};
+pub use update::{App, Device, Outcome, Report, Trust};
 pub use verify::{
     DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Progress, ProgressFn, Stage, Unpacked,
     VerifiedBundle, Verifier,

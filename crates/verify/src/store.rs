@@ -98,8 +98,11 @@ use crate::trust::TrustSet;
 use crate::unpack::{Staging, sync_dir};
 use crate::verify::{VerifiedBundle, Verifier};
 
-/// The format version of `state.json`.
-pub const STATE_FORMAT: u32 = 1;
+/// The format version of `state.json` this crate writes. Format 2 added `channel`; a
+/// format 1 file (no `channel`) is read as following no channel yet.
+pub const STATE_FORMAT: u32 = 2;
+/// The oldest `state.json` format this crate reads.
+const OLDEST_STATE_FORMAT: u32 = 1;
 /// The state file's name in the store directory.
 pub const STATE_FILE: &str = "state.json";
 /// The lock file's name in the store directory.
@@ -159,6 +162,10 @@ pub struct StoreState {
     pub format: u32,
     /// The model line this store holds, set by the first install.
     pub name: Option<String>,
+    /// The channel this store follows, set by the first feed it accepts; changing it is an
+    /// explicit call ([`Store::switch_channel`]). Absent in format 1 files.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub channel: Option<String>,
     /// The highest version ever accepted; never lowered, not even by a rollback.
     pub highest_version: Option<Version>,
     /// The release the app runs.
@@ -178,6 +185,7 @@ impl StoreState {
         StoreState {
             format: STATE_FORMAT,
             name: None,
+            channel: None,
             highest_version: None,
             current: None,
             previous: None,
@@ -196,10 +204,19 @@ impl StoreState {
     /// Checks what the types alone do not: names that stay inside `releases/`, and a state
     /// that the store's own code could have written.
     fn validate(&self) -> std::result::Result<(), String> {
-        if self.format != STATE_FORMAT {
+        if !(OLDEST_STATE_FORMAT..=STATE_FORMAT).contains(&self.format) {
             return Err(format!(
-                "format {} is not supported (this reader knows format {STATE_FORMAT})",
+                "format {} is not supported (this reader knows formats \
+                 {OLDEST_STATE_FORMAT} to {STATE_FORMAT})",
                 self.format
+            ));
+        }
+        if let Some(channel) = &self.channel
+            && check_channel(channel).is_err()
+        {
+            return Err(format!(
+                "it follows '{}', which is not a channel name",
+                channel.escape_debug()
             ));
         }
         if let Some(name) = &self.name {
@@ -505,18 +522,10 @@ impl Store {
         }
     }
 
-    /// Installs a verified bundle as the current release; the one it replaces becomes the
-    /// previous release. `channel` and `feed_sequence` say where the bundle came from: the
-    /// store refuses a feed sequence lower than the channel's highest, and a version not newer
-    /// than the highest it ever accepted. A failure before the commit leaves the store as it
-    /// was.
-    pub fn install(
-        &self,
-        bundle: VerifiedBundle,
-        channel: Option<&str>,
-        feed_sequence: Option<u64>,
-    ) -> Result<Installed> {
-        self.install_with_hook(bundle, channel, feed_sequence, &mut |_| Ok(()))
+    /// Installs a verified bundle that came without a verified feed: only the version floor
+    /// and the model line protect the device (see [`crate::dangerous::install_without_feed`]).
+    pub(crate) fn install_without_feed(&self, bundle: VerifiedBundle) -> Result<Installed> {
+        self.install_inner(bundle, None, None, None, &mut |_| Ok(()))
     }
 
     /// Installs a bundle that an update check found through `feed`, as [`Store::install`]
@@ -574,6 +583,7 @@ impl Store {
         if let Some(known) = known
             && known.highest_sequence == Some(sequence)
             && known.feed_sha256 == Some(digest)
+            && state.channel.is_some()
         {
             return Ok(false);
         }
@@ -595,6 +605,8 @@ impl Store {
                 feed_sha256: Some(digest),
             },
         );
+        next.format = STATE_FORMAT;
+        next.channel.get_or_insert_with(|| channel.to_string());
         self.commit(&next, &mut |_| Ok(()))?;
         sync_dir(&self.dir)?;
         Ok(true)
@@ -701,12 +713,22 @@ impl Store {
         })
     }
 
-    /// Remembers `head` as the largest ledger tree head this device verified, for
-    /// [`crate::ledger::LedgerVerifier::remembered`] next time. Call it with the tree head of
-    /// a feed the device acted on ([`crate::VerifiedFeed::ledger`]), whether or not it
-    /// installed anything. A head smaller than the remembered one, or of the same size with
-    /// another root, is refused: it cannot have passed the ledger check.
-    pub fn remember_tree_head(&self, head: &TreeHead) -> Result<()> {
+    /// Remembers the tree head `feed`'s ledger check verified as the largest this device
+    /// saw, for [`crate::ledger::LedgerVerifier::remembered`] next time; nothing for a feed
+    /// checked without the ledger. The update calls it for every feed it acted on, whether or
+    /// not it installed anything.
+    pub(crate) fn remember_feed_tree_head(&self, feed: &VerifiedFeed) -> Result<()> {
+        match feed.ledger() {
+            Some(check) => self.remember_tree_head(&check.tree_head),
+            None => Ok(()),
+        }
+    }
+
+    /// Remembers `head` as the largest ledger tree head this device verified. A head smaller
+    /// than the remembered one, or of the same size with another root, is refused: it cannot
+    /// have passed the ledger check. Outside the crate only through
+    /// [`crate::dangerous::remember_unverified_tree_head`].
+    pub(crate) fn remember_tree_head(&self, head: &TreeHead) -> Result<()> {
         let _lock = self.lock()?;
         let state = self.state()?;
         if let Some(seen) = &state.tree_head {
@@ -727,7 +749,30 @@ impl Store {
             }
         }
         let mut next = state;
+        next.format = STATE_FORMAT;
         next.tree_head = Some(*head);
+        self.commit(&next, &mut |_| Ok(()))?;
+        sync_dir(&self.dir)
+    }
+
+    /// Makes the store follow `channel` from now on. What it accepted stays: the highest
+    /// version ever installed (so nothing older is installed from the new channel) and the
+    /// feed sequences of every channel it followed.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Policy`] for a name no channel can have; [`ErrorKind::Locked`] while an
+    /// update runs; I/O errors writing `state.json`.
+    pub fn switch_channel(&self, channel: &str) -> Result<()> {
+        check_channel(channel)?;
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        if state.channel.as_deref() == Some(channel) {
+            return Ok(());
+        }
+        let mut next = state;
+        next.format = STATE_FORMAT;
+        next.channel = Some(channel.to_string());
         self.commit(&next, &mut |_| Ok(()))?;
         sync_dir(&self.dir)
     }
@@ -759,6 +804,7 @@ impl Store {
             .check_release(previous)
             .map_err(|e| e.context("cannot roll back, the previous release failed its check"))?;
         let mut next = state.clone();
+        next.format = STATE_FORMAT;
         next.current = Some(previous.clone());
         next.previous = None;
         step(hook, Step::Locked)?;
@@ -990,6 +1036,7 @@ impl Store {
             (None, None) => {}
             (Some(channel), feed) => {
                 check_channel(channel)?;
+                next.channel.get_or_insert_with(|| channel.to_string());
                 let known = next.channels.get(channel);
                 if let Some((sequence, digest)) = feed {
                     check_feed_sequence(channel, known, sequence, digest)?;
@@ -1020,6 +1067,7 @@ impl Store {
                 );
             }
         }
+        next.format = STATE_FORMAT;
         next.name = Some(manifest.name.clone());
         next.highest_version = Some(manifest.version.clone());
         next.previous = state.current.clone();

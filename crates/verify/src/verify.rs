@@ -103,17 +103,16 @@ impl Verifier {
         })
     }
 
-    /// A verifier for release-side tools that check a bundle outside any app: every check
-    /// of [`Verifier::new`] except the app-version range, which is not checked at all.
-    /// Never use this on a device: an app must always state its own version.
-    pub fn dangerous_without_app_version(keys: TrustedKeys) -> Result<Self> {
+    /// Every check of [`Verifier::new`] except the app-version range; outside the crate
+    /// only as [`crate::dangerous::verifier_without_app_version`].
+    pub(crate) fn without_app_version(keys: TrustedKeys) -> Result<Self> {
         let mut verifier = Self::new(keys, Version::new(0, 0, 0))?;
         verifier.app_version = None;
         Ok(verifier)
     }
 
     /// Whether this verifier checks the app-version range (false only for
-    /// [`Verifier::dangerous_without_app_version`]).
+    /// [`crate::dangerous::verifier_without_app_version`]).
     pub fn checks_app_version(&self) -> bool {
         self.app_version.is_some()
     }
@@ -187,7 +186,7 @@ impl Verifier {
     }
 
     /// The app version bundles are checked against (`None` only for
-    /// [`Verifier::dangerous_without_app_version`]).
+    /// [`crate::dangerous::verifier_without_app_version`]).
     pub fn app_version(&self) -> Option<&Version> {
         self.app_version.as_ref()
     }

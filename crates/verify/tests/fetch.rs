@@ -411,6 +411,48 @@ fn range_resume_completes_after_a_reset() {
 }
 
 #[test]
+fn issue9_a_cancelled_download_is_kept_and_resumed() {
+    let server = serve(|c| {
+        if c.index == 0 {
+            // The first half, then nothing until the client gives up.
+            c.read_head();
+            let head = format!("HTTP/1.1 200 OK\r\ncontent-length: {SIZE}\r\n\r\n");
+            c.send(head.as_bytes());
+            c.send(&data()[..HALF]);
+            thread::sleep(Duration::from_millis(300));
+        } else {
+            answer_range(c);
+        }
+    });
+    let dir = tempfile::tempdir().expect("tempdir");
+    let cancel = Arc::new(std::sync::atomic::AtomicBool::new(false));
+    let flag = Arc::clone(&cancel);
+    // The app cancels once half the bundle has arrived (a user tapped "stop", the platform
+    // ends the background task).
+    let transfer = fast()
+        .cancel_when(Arc::clone(&cancel))
+        .on_progress(Arc::new(move |p| {
+            if p.done >= HALF as u64 {
+                flag.store(true, std::sync::atomic::Ordering::Relaxed);
+            }
+        }));
+    let err = fetch(&server, dir.path(), &transfer).expect_err("cancelled");
+    assert_eq!(err.kind(), ErrorKind::Cancelled);
+    assert_eq!(
+        err.to_string(),
+        format!(
+            "transfer from {} was cancelled; what arrived of a bundle is kept for the next update",
+            server.url("/b.ampoule")
+        )
+    );
+    assert_eq!(len_of(&partial_in(dir.path())), HALF as u64);
+    cancel.store(false, std::sync::atomic::Ordering::Relaxed);
+    fetch(&server, dir.path(), &fast()).expect("resumed");
+    assert_eq!(std::fs::read(partial_in(dir.path())).expect("file"), data());
+    assert!(server.requests()[1].contains(&format!("range: bytes={HALF}-\r\n")));
+}
+
+#[test]
 fn range_resume_in_a_later_call() {
     let server = serve(|c| {
         if c.index == 0 {

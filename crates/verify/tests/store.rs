@@ -57,6 +57,29 @@ impl Bundles {
     }
 }
 
+/// The store's install with an explicit channel and feed sequence, as the update's own
+/// install does it, reached through the crash-test hook: these tests pin the store's rules
+/// (version floor, sequences, channels) one call at a time.
+trait InstallForTests {
+    fn install(
+        &self,
+        bundle: ampoule_verify::VerifiedBundle,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+    ) -> ampoule_verify::Result<ampoule_verify::Installed>;
+}
+
+impl InstallForTests for Store {
+    fn install(
+        &self,
+        bundle: ampoule_verify::VerifiedBundle,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+    ) -> ampoule_verify::Result<ampoule_verify::Installed> {
+        self.install_with_hook(bundle, channel, feed_sequence, &mut |_| Ok(()))
+    }
+}
+
 fn verified(path: &Path) -> VerifiedBundle {
     verifier().verify_path(path).expect("test bundle verifies")
 }

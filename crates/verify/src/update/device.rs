@@ -1,0 +1,280 @@
+//! A device: one store following one channel for one app, with the device id that places it
+//! in rollouts and the lock that keeps two updates apart.
+//!
+//! ```text
+//! STORE/
+//!   device-id          the id made on first use (unless the app gives its own)
+//!   downloads/
+//!     lock             held for a whole update
+//!     <sha256>.ampoule.partial   a bundle being downloaded, named by its feed's SHA-256
+//!   ...                the store's own files (see crate::store)
+//! ```
+
+use std::fs::{self, File, TryLockError};
+use std::io::{self, Read, Write};
+use std::path::{Path, PathBuf};
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::store::{Release, Store};
+use crate::time::Timestamp;
+use crate::verify::Verifier;
+
+#[cfg(feature = "fetch")]
+use super::Report;
+use super::{App, Held, Session};
+
+/// The file in the store directory that holds the device id made on first use.
+const DEVICE_ID_FILE: &str = "device-id";
+/// The directory in the store directory where bundles download (and resume) before install.
+pub(crate) const DOWNLOADS_DIR: &str = "downloads";
+/// The lock file in [`DOWNLOADS_DIR`], held for a whole update.
+const DOWNLOAD_LOCK: &str = "lock";
+/// The longest device id accepted.
+pub const DEVICE_ID_BYTES: usize = 128;
+
+/// One device following one channel into one store, for one app (see the module
+/// documentation of [`crate::update`]).
+#[derive(Debug)]
+pub struct Device {
+    app: App,
+    store: Store,
+    channel: String,
+    device_id: String,
+}
+
+impl Device {
+    /// Opens (or creates) the store in `dir` for `app`, following `channel`. The trust the
+    /// device holds is checked now: the newer of the shipped and the stored trust set must be
+    /// signed by its own threshold and not expired at `now`.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Settings`] for a channel name no feed can carry; [`ErrorKind::TrustSet`] or
+    /// [`ErrorKind::Signature`] for trust the device cannot use; [`ErrorKind::Store`] for a
+    /// damaged store; I/O errors.
+    pub fn open(dir: &Path, channel: &str, app: App, now: Timestamp) -> Result<Device> {
+        crate::feed::check_channel(channel)
+            .map_err(|e| Error::new(ErrorKind::Settings, e.to_string()))?;
+        let held = Held::load(&app.trust, dir, now)?;
+        let store = Store::open(dir, bundle_verifier(&app, &held)?)?;
+        let device_id = match &app.device_id {
+            Some(id) => id.clone(),
+            None => stored_device_id(dir)?,
+        };
+        Ok(Device {
+            app,
+            store,
+            channel: channel.to_string(),
+            device_id,
+        })
+    }
+
+    /// The on-device store.
+    pub fn store(&self) -> &Store {
+        &self.store
+    }
+
+    /// The channel this device follows.
+    pub fn channel(&self) -> &str {
+        &self.channel
+    }
+
+    /// The id that places this device in rollouts.
+    pub fn device_id(&self) -> &str {
+        &self.device_id
+    }
+
+    /// The current release, checked in full before the app loads it (see
+    /// [`Store::open_current`]); `None` before the first install.
+    ///
+    /// # Errors
+    ///
+    /// As [`Store::open_current`].
+    pub fn current(&self) -> Result<Option<Release>> {
+        self.store.open_current()
+    }
+
+    /// Starts an update on the feed bytes the app fetched from `feed_url` itself, at clock
+    /// time `now`. The session asks for anything else it needs (see [`Session::advance`]).
+    pub fn begin(&self, feed_url: &str, feed: Vec<u8>, now: Timestamp) -> Session<'_> {
+        Session::new(self, self.lock_downloads(), feed_url, feed, now)
+    }
+
+    /// Runs a whole update over HTTP(S): fetches the feed at `feed_url`, anything the
+    /// session asks for, and the bundle (resuming a partial download), within `transfer`'s
+    /// limits. The same [`Session`] an app with its own HTTP drives.
+    #[cfg(feature = "fetch")]
+    pub fn update(
+        &self,
+        feed_url: &str,
+        transfer: &crate::fetch::Transfer,
+        now: Timestamp,
+    ) -> Report {
+        let lock = self.lock_downloads();
+        if let Err(e) = &lock {
+            return Report::ended_early(clone_error(e));
+        }
+        let feed = match crate::fetch::fetch_feed(feed_url, transfer) {
+            Ok(bytes) => bytes,
+            Err(e) => return Report::ended_early(e),
+        };
+        let mut session = Session::new(self, lock, feed_url, feed, now);
+        loop {
+            match session.advance() {
+                super::Next::Fetch(want) => {
+                    match crate::fetch::fetch_capped(
+                        want.url(),
+                        transfer,
+                        want.max_bytes(),
+                        want.what(),
+                    ) {
+                        Ok(bytes) => session.provide(bytes),
+                        Err(e) => return session.fail_with(e),
+                    }
+                }
+                super::Next::Download(want) => {
+                    match crate::fetch::download(
+                        want.urls(),
+                        want.path(),
+                        want.size(),
+                        want.sha256(),
+                        transfer,
+                    ) {
+                        // The download checked size and SHA-256 as it streamed.
+                        Ok(()) => session.downloaded_and_checked(),
+                        Err(e) => return session.fail_with(e),
+                    }
+                }
+                super::Next::Done(report) => return report,
+            }
+        }
+    }
+
+    pub(crate) fn app(&self) -> &App {
+        &self.app
+    }
+
+    /// The trust held now and the verifiers built on it.
+    pub(crate) fn held(&self, now: Timestamp) -> Result<Held> {
+        Held::load(&self.app.trust, self.store.dir(), now)
+    }
+
+    /// The downloads directory, created if missing.
+    pub(crate) fn downloads(&self) -> Result<PathBuf> {
+        let dir = self.store.dir().join(DOWNLOADS_DIR);
+        fs::create_dir_all(&dir)
+            .map_err(|e| Error::io(format!("cannot create {}", dir.display()), e))?;
+        Ok(dir)
+    }
+
+    /// Holds `downloads/lock` for a whole update: a second updater on the same store fails
+    /// at once instead of writing the same partial download.
+    fn lock_downloads(&self) -> Result<File> {
+        let path = self.downloads()?.join(DOWNLOAD_LOCK);
+        let file = File::options()
+            .create(true)
+            .truncate(false)
+            .write(true)
+            .open(&path)
+            .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?;
+        match file.try_lock() {
+            Ok(()) => Ok(file),
+            Err(TryLockError::WouldBlock) => Err(Error::new(
+                ErrorKind::Locked,
+                format!(
+                    "another update is running on store {}; try again when it has finished",
+                    self.store.dir().display()
+                ),
+            )),
+            Err(TryLockError::Error(e)) => {
+                Err(Error::io(format!("cannot lock {}", path.display()), e))
+            }
+        }
+    }
+}
+
+/// The bundle verifier of `app` under the trust held.
+pub(crate) fn bundle_verifier(app: &App, held: &Held) -> Result<Verifier> {
+    let mut verifier = match held {
+        Held::Set(set) => Verifier::from_trust_set(set, app.version.clone())?,
+        Held::Pinned(p) => Verifier::new(p.bundle.keys().clone(), app.version.clone())?
+            .with_threshold(p.bundle.threshold())?,
+    };
+    if let Some(name) = &app.bundle_name {
+        verifier = verifier.require_name(name.clone());
+    }
+    if let Some(policy) = &app.policy {
+        verifier = verifier.compatibility(policy.clone());
+    }
+    if let Some(progress) = &app.progress {
+        verifier = verifier.on_progress(progress.clone());
+    }
+    Ok(verifier
+        .max_bundle_bytes(app.max_bundle_bytes)
+        .max_unpacked_bytes(app.max_unpacked_bytes))
+}
+
+#[cfg(feature = "fetch")]
+fn clone_error(e: &Error) -> Error {
+    Error::new(e.kind(), e.to_string())
+}
+
+/// Checks a device id: 1 to [`DEVICE_ID_BYTES`] printable ASCII characters, no spaces.
+pub(crate) fn check_device_id(id: &str) -> Result<()> {
+    if id.is_empty() || id.len() > DEVICE_ID_BYTES || !id.bytes().all(|b| b.is_ascii_graphic()) {
+        return Err(Error::new(
+            ErrorKind::Settings,
+            format!(
+                "device id '{}' is not usable: use 1 to {DEVICE_ID_BYTES} printable ASCII \
+                 characters without spaces",
+                id.chars().take(140).collect::<String>().escape_debug()
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// The device id kept in the store directory, made from 128 random bits on the first call.
+/// It lives beside the store so that one device keeps its rollout place across runs; a
+/// copied store copies the id too.
+fn stored_device_id(store_dir: &Path) -> Result<String> {
+    let path = store_dir.join(DEVICE_ID_FILE);
+    let mut random = [0u8; 16];
+    getrandom::fill(&mut random).map_err(|e| {
+        Error::io(
+            "cannot get random bytes for a device id",
+            io::Error::other(e.to_string()),
+        )
+    })?;
+    let fresh = hex::encode(random);
+    match fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(&path)
+    {
+        Ok(mut file) => {
+            file.write_all(format!("{fresh}\n").as_bytes())
+                .and_then(|()| file.sync_all())
+                .map_err(|e| Error::io(format!("cannot write {}", path.display()), e))?;
+            return Ok(fresh);
+        }
+        Err(e) if e.kind() == io::ErrorKind::AlreadyExists => {}
+        Err(e) => return Err(Error::io(format!("cannot create {}", path.display()), e)),
+    }
+    let mut text = String::new();
+    File::open(&path)
+        .and_then(|f| f.take(DEVICE_ID_BYTES as u64 + 2).read_to_string(&mut text))
+        .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
+    let id = text.trim_end_matches('\n');
+    check_device_id(id).map_err(|e| {
+        Error::new(
+            ErrorKind::Store,
+            format!(
+                "{} is damaged ({e}); remove it to make a new id (the device then takes a new \
+                 place in rollouts)",
+                path.display()
+            ),
+        )
+    })?;
+    Ok(id.to_string())
+}

@@ -1,0 +1,640 @@
+//! One update as a sequence of steps the app drives: [`Session::advance`] says what it needs
+//! (a small document, the bundle) or how the update ended. An app with its own HTTP stack, a
+//! platform transfer service or no network at all answers each request in its own way; the
+//! checks and their order are the same for all of them.
+
+use std::fs::File;
+use std::path::{Path, PathBuf};
+
+use serde::Deserialize;
+
+use crate::digest::{Digest, hash_reader};
+use crate::error::{Error, ErrorKind, Result};
+use crate::feed::{FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, rollout_bucket};
+use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
+use crate::ledger::{self, LedgerVerifier, Walk};
+use crate::store::{Store, StoreState};
+use crate::time::Timestamp;
+use crate::verify::Verifier;
+
+use super::device::bundle_verifier;
+use super::{Device, Held, Ledger, Outcome, Report};
+
+/// What an update needs next, or how it ended.
+#[derive(Debug)]
+#[non_exhaustive]
+// Returned once per step and matched at once, never stored: boxing the report would only
+// make every caller write `*report`.
+#[allow(clippy::large_enum_variant)]
+pub enum Next {
+    /// Fetch this small document and hand its bytes to [`Session::provide`].
+    Fetch(Fetch),
+    /// Download the bundle and tell the session with [`Session::downloaded`].
+    Download(Download),
+    /// The update ended.
+    Done(Report),
+}
+
+/// A small document the update needs: a trust set the feed names, or a consistency step of
+/// the ledger. Its bytes are checked when handed in; stop reading at [`Fetch::max_bytes`].
+#[derive(Debug, Clone)]
+pub struct Fetch {
+    url: String,
+    what: &'static str,
+    max_bytes: u64,
+}
+
+impl Fetch {
+    /// The document's URL, resolved against the feed's.
+    pub fn url(&self) -> &str {
+        &self.url
+    }
+
+    /// What it is, for messages: `trust set` or `consistency step`.
+    pub fn what(&self) -> &'static str {
+        self.what
+    }
+
+    /// The most bytes the document may have.
+    pub fn max_bytes(&self) -> u64 {
+        self.max_bytes
+    }
+}
+
+/// The bundle to download: exactly [`Download::size`] bytes with SHA-256 [`Download::sha256`],
+/// as the verified feed declares, from the first of [`Download::urls`] that works.
+#[derive(Debug, Clone)]
+pub struct Download {
+    urls: Vec<String>,
+    size: u64,
+    sha256: Digest,
+    path: PathBuf,
+}
+
+impl Download {
+    /// Where the bundle is, in the order to try.
+    pub fn urls(&self) -> &[String] {
+        &self.urls
+    }
+
+    /// Its exact size in bytes: never write more.
+    pub fn size(&self) -> u64 {
+        self.size
+    }
+
+    /// Its SHA-256.
+    pub fn sha256(&self) -> &Digest {
+        &self.sha256
+    }
+
+    /// The file in the store's download directory where the bundle belongs; a partial file
+    /// there is the start of this very bundle (its name is the digest), so a download may
+    /// resume from its length.
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+}
+
+/// One update in progress (see [`Device::begin`]). It holds the store's download lock until
+/// it is dropped.
+pub struct Session<'d> {
+    device: &'d Device,
+    _lock: Option<File>,
+    feed_url: String,
+    feed_bytes: Vec<u8>,
+    now: Timestamp,
+    held: Option<Held>,
+    store: Option<Store>,
+    feed: Option<VerifiedFeed>,
+    rotated_to: Option<u64>,
+    answer: Option<Vec<u8>>,
+    state: State,
+}
+
+enum State {
+    Start,
+    TrustSet(Fetch, TrustSetRef),
+    Steps(Fetch, Walk),
+    Decide,
+    Download(Download, Release),
+    Downloaded {
+        path: PathBuf,
+        release: Release,
+        checked: bool,
+    },
+    Failed(Error),
+    Ended,
+}
+
+/// How one step of the machine ended.
+#[allow(clippy::large_enum_variant)] // one at a time, moved straight into the next state
+enum Step {
+    Go(State),
+    Ask(State, Next),
+    End(Outcome),
+}
+
+impl std::fmt::Debug for Session<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Session")
+            .field("feed_url", &self.feed_url)
+            .field("now", &self.now)
+            .field("rotated_to", &self.rotated_to)
+            .finish_non_exhaustive()
+    }
+}
+
+impl<'d> Session<'d> {
+    pub(crate) fn new(
+        device: &'d Device,
+        lock: Result<File>,
+        feed_url: &str,
+        feed_bytes: Vec<u8>,
+        now: Timestamp,
+    ) -> Session<'d> {
+        let (lock, state) = match lock {
+            Ok(file) => (Some(file), State::Start),
+            Err(e) => (None, State::Failed(e)),
+        };
+        Session {
+            device,
+            _lock: lock,
+            feed_url: feed_url.to_string(),
+            feed_bytes,
+            now,
+            held: None,
+            store: None,
+            feed: None,
+            rotated_to: None,
+            answer: None,
+            state,
+        }
+    }
+
+    /// Runs the update as far as it can go without the app, and says what it needs or how
+    /// it ended. Call it again after answering a [`Next::Fetch`] or [`Next::Download`];
+    /// unanswered, it asks again. After [`Next::Done`] it keeps returning a failure.
+    pub fn advance(&mut self) -> Next {
+        loop {
+            let state = std::mem::replace(&mut self.state, State::Ended);
+            let result = match state {
+                State::Failed(e) => Ok(Step::End(Outcome::from_error(e))),
+                state => self.step(state),
+            };
+            match result {
+                Ok(Step::Go(state)) => self.state = state,
+                Ok(Step::Ask(state, next)) => {
+                    self.state = state;
+                    return next;
+                }
+                Ok(Step::End(outcome)) => return Next::Done(self.report(outcome)),
+                Err(e) => return Next::Done(self.report(Outcome::from_error(e))),
+            }
+        }
+    }
+
+    /// Hands in the bytes of the document the last [`Next::Fetch`] asked for.
+    pub fn provide(&mut self, bytes: Vec<u8>) {
+        self.answer = Some(bytes);
+    }
+
+    /// Says the bundle of the last [`Next::Download`] is complete at `path` (normally
+    /// [`Download::path`]). Its size and SHA-256 are checked before anything else reads it,
+    /// and a bundle in the download directory is removed once installed or refused.
+    pub fn downloaded(&mut self, path: &Path) {
+        if let State::Download(_, release) = std::mem::replace(&mut self.state, State::Ended) {
+            self.state = State::Downloaded {
+                path: path.to_path_buf(),
+                release,
+                checked: false,
+            };
+        }
+    }
+
+    /// The download of the last [`Next::Download`] is at its path, and its size and digest
+    /// were checked while it streamed.
+    #[cfg(feature = "fetch")]
+    pub(crate) fn downloaded_and_checked(&mut self) {
+        if let State::Download(want, release) = std::mem::replace(&mut self.state, State::Ended) {
+            self.state = State::Downloaded {
+                path: want.path,
+                release,
+                checked: true,
+            };
+        }
+    }
+
+    /// Ends the update because the app could not fetch what was asked; `why` says what
+    /// went wrong (a status, a timeout). The outcome is [`Outcome::Failed`] with
+    /// [`ErrorKind::Network`]: the store keeps its model, and a partial download stays for
+    /// the next try.
+    pub fn fail(self, why: impl std::fmt::Display) -> Report {
+        self.fail_with(Error::new(ErrorKind::Network, why.to_string()))
+    }
+
+    pub(crate) fn fail_with(mut self, error: Error) -> Report {
+        self.report(Outcome::from_error(error))
+    }
+
+    fn report(&mut self, outcome: Outcome) -> Report {
+        self.state = State::Failed(Error::new(
+            ErrorKind::Policy,
+            "this update already ended; start another",
+        ));
+        Report {
+            outcome,
+            feed: self.feed.take(),
+            rotated_to: self.rotated_to,
+            trust_set_version: self.held.as_ref().and_then(Held::set).map(|s| s.version()),
+        }
+    }
+
+    fn store(&self) -> Result<&Store> {
+        self.store
+            .as_ref()
+            .ok_or_else(|| Error::new(ErrorKind::Store, "the update has no store yet"))
+    }
+
+    fn held(&self) -> Result<&Held> {
+        self.held
+            .as_ref()
+            .ok_or_else(|| Error::new(ErrorKind::Store, "the update holds no trust yet"))
+    }
+
+    fn step(&mut self, state: State) -> Result<Step> {
+        match state {
+            State::Start => self.start(),
+            State::TrustSet(want, named) => match self.answer.take() {
+                None => Ok(Step::Ask(
+                    State::TrustSet(want.clone(), named),
+                    Next::Fetch(want),
+                )),
+                Some(bytes) => self.rotate(&want, &named, &bytes),
+            },
+            State::Steps(want, mut walk) => match self.answer.take() {
+                None => Ok(Step::Ask(
+                    State::Steps(want.clone(), walk),
+                    Next::Fetch(want),
+                )),
+                Some(bytes) => {
+                    walk.advance(&bytes)?;
+                    self.walk_or_decide(walk)
+                }
+            },
+            State::Decide => self.decide(),
+            State::Download(want, release) => Ok(Step::Ask(
+                State::Download(want.clone(), release),
+                Next::Download(want),
+            )),
+            State::Downloaded {
+                path,
+                release,
+                checked,
+            } => self.install(&path, &release, checked),
+            State::Failed(e) => Ok(Step::End(Outcome::from_error(e))),
+            State::Ended => Err(Error::new(
+                ErrorKind::Policy,
+                "this update already ended; start another",
+            )),
+        }
+    }
+
+    /// Loads the trust held now and checks the feed under it.
+    fn start(&mut self) -> Result<Step> {
+        let device = self.device;
+        let held = device.held(self.now)?;
+        let mut store = device.store().clone();
+        if let Some(set) = held.set() {
+            store = store.with_trust_set(set)?;
+        }
+        let state = store.state()?;
+        if let Some(followed) = &state.channel
+            && followed != device.channel()
+        {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "store {} follows channel '{followed}', not '{}'; switching channels is an \
+                     explicit step (Store::switch_channel, or `ampoule update --switch-channel`)",
+                    store.dir().display(),
+                    device.channel()
+                ),
+            ));
+        }
+        self.held = Some(held);
+        self.store = Some(store);
+        self.check_feed()
+    }
+
+    /// Verifies the feed under the trust held now; follows a rotation it names first.
+    fn check_feed(&mut self) -> Result<Step> {
+        let state = self.store()?.state()?;
+        let feeds = self.feed_verifier(&state)?;
+        let (feed, walk) = match feeds.verify_before_steps(&self.feed_bytes, self.now) {
+            Ok(checked) => checked,
+            Err(e) => {
+                if let Some(format) = newer_feed_format(&feeds, &self.feed_bytes) {
+                    return Ok(Step::End(Outcome::NeedsOtherApp {
+                        reason: format!(
+                            "the feed is in format {format}, and this app's ampoule-verify reads \
+                             format {FEED_FORMAT_VERSION}; update the app"
+                        ),
+                    }));
+                }
+                return Err(e);
+            }
+        };
+        if let (Some(set), Some(named)) = (self.held()?.set(), feed.trust_set())
+            && named.version > set.version()
+        {
+            let want = Fetch {
+                url: named.url(&self.feed_url)?,
+                what: "trust set",
+                max_bytes: trust_set::MAX_BYTES,
+            };
+            return Ok(Step::Go(State::TrustSet(want, named.clone())));
+        }
+        self.feed = Some(feed);
+        match walk {
+            Some(walk) => self.walk_or_decide(walk),
+            None => Ok(Step::Go(State::Decide)),
+        }
+    }
+
+    /// Accepts the trust set the feed named as the successor of the one held, stores it, and
+    /// checks the feed again under it.
+    fn rotate(&mut self, want: &Fetch, named: &TrustSetRef, bytes: &[u8]) -> Result<Step> {
+        let got = Digest::of(bytes);
+        if got != named.sha256 {
+            return Err(Error::new(
+                ErrorKind::Digest,
+                format!(
+                    "trust set downloaded from {} has SHA-256 {got}, but the feed declares {}",
+                    want.url, named.sha256
+                ),
+            ));
+        }
+        let Some(current) = self.held()?.set() else {
+            return Err(Error::new(
+                ErrorKind::TrustSet,
+                "a trust-set rotation needs a device that runs on trust sets",
+            ));
+        };
+        let next = current.accept_successor(bytes, self.now).map_err(|e| {
+            e.context(format_args!(
+                "the trust set at {} that the feed names was refused",
+                want.url
+            ))
+        })?;
+        if next.version() != named.version {
+            return Err(Error::new(
+                ErrorKind::Feed,
+                format!(
+                    "feed names trust set version {} but {} holds version {}",
+                    named.version,
+                    want.url,
+                    next.version()
+                ),
+            ));
+        }
+        let store = self.store()?.clone();
+        store.save_trust_set(&next)?;
+        self.store = Some(store.with_trust_set(&next)?);
+        self.rotated_to = Some(next.version());
+        self.held = Some(Held::Set(next));
+        self.check_feed().map_err(|e| {
+            e.context(format_args!(
+                "feed refused under the new trust set version {}",
+                named.version
+            ))
+        })
+    }
+
+    fn walk_or_decide(&mut self, walk: Walk) -> Result<Step> {
+        match walk.needs() {
+            None => Ok(Step::Go(State::Decide)),
+            Some(size) => {
+                let want = Fetch {
+                    url: crate::feed::resolve(&self.feed_url, &ledger::step_reference(size))?,
+                    what: "consistency step",
+                    max_bytes: ledger::MAX_STEP_BYTES,
+                };
+                Ok(Step::Go(State::Steps(want, walk)))
+            }
+        }
+    }
+
+    /// Decides by the feed alone: nothing offered, not newer, another app, rollout, size.
+    fn decide(&mut self) -> Result<Step> {
+        let feed = self
+            .feed
+            .clone()
+            .ok_or_else(|| Error::new(ErrorKind::Feed, "no verified feed to decide on"))?;
+        let store = self.store()?.clone();
+        let state = store.state()?;
+        let bundles = self.bundle_verifier(&state)?;
+        let Some(release) = feed.release().cloned() else {
+            return self.settle(&store, &feed, Outcome::NothingOffered);
+        };
+        if let Some(name) = bundles.required_name()
+            && release.name != name
+        {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "feed offers bundle '{}' but this app accepts only '{name}'",
+                    release.name
+                ),
+            ));
+        }
+        let newer = |installed: &semver::Version| {
+            release.version.cmp_precedence(installed) == std::cmp::Ordering::Greater
+        };
+        if !bundles.installed_version().is_none_or(newer) {
+            return self.settle(&store, &feed, Outcome::UpToDate);
+        }
+        let app = self.device.app();
+        if !release.requires_app.matches(&app.version) {
+            let reason = format!(
+                "{} {} requires app {}, and this app is {}",
+                release.name, release.version, release.requires_app, app.version
+            );
+            return self.settle(&store, &feed, Outcome::NeedsOtherApp { reason });
+        }
+        let device_id = self.device.device_id();
+        let bucket = rollout_bucket(device_id, &release.sha256);
+        if u32::from(bucket) >= u32::from(release.rollout_percent.min(100)) * 100 {
+            return self.settle(&store, &feed, Outcome::NotInRollout { bucket });
+        }
+        if release.size > app.max_bundle_bytes {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "feed offers {} {} as a bundle of {} bytes, over this app's limit of {} \
+                     bytes; nothing was downloaded",
+                    release.name, release.version, release.size, app.max_bundle_bytes
+                ),
+            ));
+        }
+        let want = Download {
+            urls: release.urls(&self.feed_url)?,
+            size: release.size,
+            sha256: release.sha256,
+            path: self
+                .device
+                .downloads()?
+                .join(format!("{}.ampoule.partial", release.sha256)),
+        };
+        Ok(Step::Go(State::Download(want, release)))
+    }
+
+    /// Records the feed (so an older one is refused from now on) and the tree head it proved.
+    fn settle(&mut self, store: &Store, feed: &VerifiedFeed, outcome: Outcome) -> Result<Step> {
+        store.record_feed(feed)?;
+        store.remember_feed_tree_head(feed)?;
+        Ok(Step::End(outcome))
+    }
+
+    /// Checks the downloaded file and the bundle in it, then installs it.
+    fn install(&mut self, path: &Path, release: &Release, checked: bool) -> Result<Step> {
+        let feed = self
+            .feed
+            .clone()
+            .ok_or_else(|| Error::new(ErrorKind::Feed, "no verified feed to install from"))?;
+        let store = self.store()?.clone();
+        let ours = path.parent() == Some(self.device.downloads()?.as_path());
+        let discard = |e: Error| {
+            // The bytes are the ones the feed signed, yet the bundle is refused: keeping
+            // them would only refuse them again on every update.
+            if ours && e.kind().is_refusal() {
+                let _ = std::fs::remove_file(path);
+            }
+            e
+        };
+        if !checked {
+            check_file(path, release).map_err(discard)?;
+        }
+        let bundles = self.bundle_verifier(&store.state()?)?;
+        let bundle = bundles.verify_path(path).map_err(discard)?;
+        let m = bundle.manifest();
+        if m.name != release.name || m.version != release.version {
+            return Err(discard(Error::new(
+                ErrorKind::Feed,
+                format!(
+                    "feed announced {} {} but the bundle it points to is {} {}",
+                    release.name, release.version, m.name, m.version
+                ),
+            )));
+        }
+        if let Some(entry) = feed.ledger().and_then(|l| l.entry.as_ref()) {
+            let manifest_sha256 = Digest::of(bundle.manifest_bytes());
+            if manifest_sha256 != entry.manifest_digest {
+                return Err(discard(Error::new(
+                    ErrorKind::Proof,
+                    format!(
+                        "bundle {} {} ({}) was signed but never published: its manifest has \
+                         sha256 {manifest_sha256}, but the ledger's publish entry logs {}",
+                        m.name, m.version, release.sha256, entry.manifest_digest
+                    ),
+                )));
+            }
+        }
+        let installed = store.install_from_feed(bundle, &feed).map_err(discard)?;
+        if ours {
+            let _ = std::fs::remove_file(path);
+        }
+        store.remember_feed_tree_head(&feed)?;
+        // The release before the previous one is no rollback target any more: free its space
+        // now. A failure here changes nothing that matters (the next update sweeps again).
+        let _ = store.gc();
+        Ok(Step::End(Outcome::Installed(Box::new(installed))))
+    }
+
+    fn feed_verifier(&self, state: &StoreState) -> Result<FeedVerifier> {
+        let channel = self.device.channel();
+        let mut feeds = match self.held()? {
+            Held::Set(set) => FeedVerifier::from_trust_set(set, channel)?,
+            Held::Pinned(p) => {
+                FeedVerifier::new(p.feed.keys().clone(), channel)?.threshold(p.feed.threshold())
+            }
+        };
+        if let Some((sequence, digest)) = state.last_feed(channel) {
+            feeds = feeds.last_accepted(sequence, digest);
+        }
+        if self.device.app().ledger == Ledger::Required {
+            let heads = match self.held()? {
+                Held::Set(set) => LedgerVerifier::from_trust_set(set)?,
+                Held::Pinned(p) => {
+                    LedgerVerifier::new(p.tree_head.keys().clone(), p.tree_head.threshold())?
+                }
+            };
+            feeds = feeds.require_ledger(heads.remembered(state.tree_head));
+        }
+        Ok(feeds)
+    }
+
+    /// The app's bundle verifier under the trust held, with the store's model line and the
+    /// highest version it ever accepted (not the current one: after a rollback the store
+    /// refuses everything up to it, so downloading it would be wasted).
+    fn bundle_verifier(&self, state: &StoreState) -> Result<Verifier> {
+        let mut bundles = bundle_verifier(self.device.app(), self.held()?)?;
+        if let Some(name) = &state.name
+            && bundles.required_name().is_none()
+        {
+            bundles = bundles.require_name(name.clone());
+        }
+        if let Some(highest) = &state.highest_version {
+            bundles = bundles.installed(highest.clone());
+        }
+        Ok(bundles)
+    }
+}
+
+/// Checks a downloaded file against the size and SHA-256 the verified feed declares.
+fn check_file(path: &Path, release: &Release) -> Result<()> {
+    let file =
+        File::open(path).map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?;
+    let (sha256, size) = hash_reader(&file, release.size + 1)
+        .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
+    if size != release.size {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "downloaded file {} is {size} bytes{}, but the feed declares {} bytes",
+                path.display(),
+                if size > release.size { " or more" } else { "" },
+                release.size
+            ),
+        ));
+    }
+    if sha256 != release.sha256 {
+        return Err(Error::new(
+            ErrorKind::Digest,
+            format!(
+                "downloaded file {} has SHA-256 {sha256}, but the feed declares {}",
+                path.display(),
+                release.sha256
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// The format of a feed whose signatures meet `feeds`' threshold but whose format is newer
+/// than this crate reads; `None` for any other feed. A format number is believed only from a
+/// signed feed, so nobody else can make a device report that it needs another app.
+fn newer_feed_format(feeds: &FeedVerifier, bytes: &[u8]) -> Option<u32> {
+    #[derive(Deserialize)]
+    struct FormatOnly {
+        format: u32,
+    }
+    if bytes.len() as u64 > limit::FEED_BYTES {
+        return None;
+    }
+    let signed = SignedFeed::from_json(bytes).ok()?;
+    feeds.check_signatures(&signed).ok()?;
+    let format = serde_json::from_str::<FormatOnly>(&signed.feed)
+        .ok()?
+        .format;
+    (format > FEED_FORMAT_VERSION).then_some(format)
+}

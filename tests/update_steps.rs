@@ -1,0 +1,302 @@
+//! The library's update driven step by step, as an app with its own HTTP stack drives it: no
+//! `fetch`, no server. The "app" here answers every request from the release tree's files on
+//! disk, which is what any static web server would send. The tree is made by the real
+//! `ampoule` binary (publish, ledger, consistency steps).
+
+mod tree_common;
+
+use std::path::{Path, PathBuf};
+
+use ampoule_verify::signed::Signers;
+use ampoule_verify::update::Next;
+use ampoule_verify::{App, Device, ErrorKind, Outcome, Report, Timestamp, Trust, Version};
+use tree_common::*;
+
+/// Any base works: the test maps each URL back to a file of the tree.
+const BASE: &str = "https://models.example.invalid/";
+
+fn feed_url(channel: &str) -> String {
+    format!("{BASE}feeds/{channel}.json")
+}
+
+fn tree_file(d: &Path, url: &str) -> PathBuf {
+    let path = url
+        .strip_prefix(BASE)
+        .unwrap_or_else(|| panic!("the session asked for {url}, outside the tree"));
+    d.join("tree").join(path)
+}
+
+/// The camera app of these tests: the test key pinned for every role, app version 2.3.0.
+fn app(d: &Path) -> App {
+    let keys = keys(d);
+    let trust = Trust::pinned(
+        Signers::new(keys.clone(), 1).expect("bundle signers"),
+        Signers::new(keys.clone(), 1).expect("feed signers"),
+        Signers::new(keys, 1).expect("tree-head signers"),
+    );
+    App::new(trust, Version::new(2, 3, 0))
+        .device_id("camera-7")
+        .expect("device id")
+}
+
+/// What the app did during one update.
+#[derive(Debug, Default)]
+struct Asked {
+    fetched: Vec<String>,
+    downloads: usize,
+}
+
+/// Runs one update by hand; `bundle` gives the bytes the app hands in as the download.
+fn drive(
+    device: &Device,
+    d: &Path,
+    channel: &str,
+    bundle: &dyn Fn(&Path) -> Vec<u8>,
+) -> (Report, Asked) {
+    let url = feed_url(channel);
+    let feed = std::fs::read(tree_file(d, &url)).expect("feed file");
+    let mut session = device.begin(&url, feed, Timestamp::now());
+    let mut asked = Asked::default();
+    loop {
+        match session.advance() {
+            Next::Fetch(want) => {
+                asked.fetched.push(want.url().to_string());
+                let bytes = std::fs::read(tree_file(d, want.url())).expect("asked-for file");
+                assert!(bytes.len() as u64 <= want.max_bytes());
+                session.provide(bytes);
+            }
+            Next::Download(want) => {
+                asked.downloads += 1;
+                let served = tree_file(d, &want.urls()[0]);
+                assert_eq!(
+                    std::fs::metadata(&served).expect("bundle").len(),
+                    want.size()
+                );
+                // A platform transfer service writes wherever it likes; the app hands it in.
+                let landed = d.join("transfer-service.bin");
+                std::fs::write(&landed, bundle(&served)).expect("downloaded file");
+                session.downloaded(&landed);
+            }
+            Next::Done(report) => return (report, asked),
+            other => panic!("unexpected step {other:?}"),
+        }
+    }
+}
+
+fn as_served(path: &Path) -> Vec<u8> {
+    std::fs::read(path).expect("bundle file")
+}
+
+fn installed_version(report: &Report) -> Version {
+    match &report.outcome {
+        Outcome::Installed(installed) => installed.release.manifest.version.clone(),
+        other => panic!("expected an install, got {other:?}"),
+    }
+}
+
+#[test]
+fn issue9_step_by_step_update_installs_catches_up_and_refuses_without_fetch() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+
+    let (report, asked) = drive(&device, d, "stable", &as_served);
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+    assert!(asked.fetched.is_empty(), "{asked:?}");
+    assert_eq!(asked.downloads, 1);
+    assert_eq!(report.feed.as_ref().map(|f| f.sequence()), Some(1));
+    let current = device.current().expect("open current").expect("a model");
+    assert_eq!(current.labels.len(), 6);
+
+    let (report, asked) = drive(&device, d, "stable", &as_served);
+    assert!(matches!(report.outcome, Outcome::UpToDate), "{report:?}");
+    assert_eq!(asked.downloads, 0);
+
+    // Two appends the device never sees (another channel), then a release on its own: the
+    // device walks the tree's consistency steps from the head it remembers (size 1).
+    publish(d, &v1, "beta", "100");
+    publish(d, &v1, "beta", "100");
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
+    let (report, asked) = drive(&device, d, "stable", &as_served);
+    assert_eq!(installed_version(&report), Version::new(1, 1, 0));
+    assert_eq!(
+        asked.fetched,
+        [
+            format!("{BASE}ledger/consistency/1.json"),
+            format!("{BASE}ledger/consistency/2.json"),
+        ]
+    );
+    let state = device.store().state().expect("state");
+    assert_eq!(state.tree_head.map(|h| h.tree_size), Some(4));
+
+    // A download that is not the file the feed signed: refused before the bundle is opened,
+    // and the running model stays.
+    publish(d, &pack(d, "1.2.0", 2, "k.pem"), "stable", "100");
+    let (report, _) = drive(&device, d, "stable", &|path| {
+        let mut bytes = as_served(path);
+        let last = bytes.len() - 1;
+        bytes[last] ^= 1;
+        bytes
+    });
+    let Outcome::Refused(e) = &report.outcome else {
+        panic!("expected a refusal, got {report:?}");
+    };
+    assert_eq!(e.kind(), ErrorKind::Digest);
+    assert!(
+        e.to_string().contains("transfer-service.bin has SHA-256 "),
+        "{e}"
+    );
+    assert_eq!(
+        device
+            .store()
+            .state()
+            .expect("state")
+            .current
+            .map(|c| c.version),
+        Some(Version::new(1, 1, 0))
+    );
+    // The next update with the right bytes installs it.
+    let (report, _) = drive(&device, d, "stable", &as_served);
+    assert_eq!(installed_version(&report), Version::new(1, 2, 0));
+}
+
+#[test]
+fn issue9_a_store_follows_one_channel_until_switched() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "beta", "100");
+    let store = d.join("cam");
+    let stable = Device::open(&store, "stable", app(d), Timestamp::now()).expect("open");
+    assert_eq!(
+        installed_version(&drive(&stable, d, "stable", &as_served).0),
+        Version::new(1, 0, 0)
+    );
+
+    let beta = Device::open(&store, "beta", app(d), Timestamp::now()).expect("open");
+    let (report, asked) = drive(&beta, d, "beta", &as_served);
+    let Outcome::Refused(e) = &report.outcome else {
+        panic!("expected a refusal, got {report:?}");
+    };
+    assert_eq!(e.kind(), ErrorKind::Policy);
+    assert_eq!(
+        e.to_string(),
+        format!(
+            "store {} follows channel 'stable', not 'beta'; switching channels is an explicit \
+             step (Store::switch_channel, or `ampoule update --switch-channel`)",
+            store.display()
+        )
+    );
+    assert_eq!(asked.downloads, 0);
+
+    beta.store().switch_channel("beta").expect("switch");
+    assert_eq!(
+        installed_version(&drive(&beta, d, "beta", &as_served).0),
+        Version::new(1, 1, 0)
+    );
+}
+
+#[test]
+fn issue9_the_app_size_limit_is_checked_before_anything_is_downloaded() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let size = std::fs::metadata(d.join(&v1)).expect("bundle").len();
+    let app = app(d).max_bundle_bytes(size - 1);
+    let device = Device::open(&d.join("cam"), "stable", app, Timestamp::now()).expect("open");
+    let (report, asked) = drive(&device, d, "stable", &as_served);
+    let Outcome::Refused(e) = &report.outcome else {
+        panic!("expected a refusal, got {report:?}");
+    };
+    assert_eq!(e.kind(), ErrorKind::TooLarge);
+    assert_eq!(
+        e.to_string(),
+        format!(
+            "feed offers trailcam-species 1.0.0 as a bundle of {size} bytes, over this app's \
+             limit of {} bytes; nothing was downloaded",
+            size - 1
+        )
+    );
+    assert_eq!(asked.downloads, 0);
+}
+
+#[test]
+fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
+    let dir = setup();
+    let d = dir.path();
+    publish(d, &pack(d, "1.0.0", 0, "k.pem"), "stable", "100");
+    // The same feed, validly signed, as a later format: this build cannot read it.
+    let feed_path = d.join("tree/feeds/stable.json");
+    let signed =
+        ampoule_verify::feed::SignedFeed::from_json(&std::fs::read(&feed_path).expect("feed"))
+            .expect("feed");
+    let text = signed.feed.replacen("{\"format\":1,", "{\"format\":2,", 1);
+    assert_ne!(text, signed.feed);
+    let key = ampoule::keyfile::read_secret_key(
+        &d.join("k.pem"),
+        &ampoule::keyfile::PassphraseSource::None,
+    )
+    .expect("the test key");
+    let resigned = ampoule_verify::feed::SignedFeed {
+        signatures: vec![ampoule_verify::signature::SignatureEntry {
+            key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
+            signature: ed25519_dalek::Signer::sign(
+                &key,
+                &ampoule_verify::format::signed_bytes(
+                    ampoule_verify::format::context::FEED,
+                    text.as_bytes(),
+                ),
+            )
+            .to_bytes(),
+        }],
+        feed: text,
+    };
+    std::fs::write(&feed_path, resigned.to_json()).expect("newer feed");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    for _ in 0..2 {
+        let (report, asked) = drive(&device, d, "stable", &as_served);
+        match &report.outcome {
+            Outcome::NeedsOtherApp { reason } => assert_eq!(
+                reason,
+                "the feed is in format 2, and this app's ampoule-verify reads format 1; update \
+                 the app"
+            ),
+            other => panic!("expected needs_other_app, got {other:?}"),
+        }
+        assert_eq!(asked.downloads, 0);
+    }
+
+    // Signed by a stranger, the same newer format is a plain refusal: a format number is
+    // believed only from a signed feed.
+    ok(
+        d,
+        &["keygen", "--secret", "other.pem", "--public", "other.pub"],
+    );
+    let other = ampoule::keyfile::read_secret_key(
+        &d.join("other.pem"),
+        &ampoule::keyfile::PassphraseSource::None,
+    )
+    .expect("the other key");
+    let mut forged = resigned.clone();
+    forged.signatures[0] = ampoule_verify::signature::SignatureEntry {
+        key_id: ampoule_verify::KeyId::of_raw_key(other.verifying_key().as_bytes()),
+        signature: ed25519_dalek::Signer::sign(
+            &other,
+            &ampoule_verify::format::signed_bytes(
+                ampoule_verify::format::context::FEED,
+                forged.feed.as_bytes(),
+            ),
+        )
+        .to_bytes(),
+    };
+    std::fs::write(&feed_path, forged.to_json()).expect("forged feed");
+    let (report, _) = drive(&device, d, "stable", &as_served);
+    assert!(
+        matches!(&report.outcome, Outcome::Refused(e) if e.kind() == ErrorKind::Signature),
+        "{report:?}"
+    );
+}
