@@ -18,7 +18,7 @@ use ampoule_verify::digest::hash_reader;
 use ampoule_verify::feed::rollout_bucket;
 use ampoule_verify::fetch::Transfer;
 use ampoule_verify::format::BUNDLE_EXTENSION;
-use ampoule_verify::model::{DType, TensorSpec, read_model_signature_file};
+use ampoule_verify::model::{TensorSpec, read_model_signature_file};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody};
 use ampoule_verify::{
@@ -647,10 +647,10 @@ fn camera_policy() -> Result<CompatibilityPolicy> {
     Ok(CompatibilityPolicy::builder()
         .input(
             TensorSpec::new("image")
-                .dtype(DType::Float32)
+                .dtype("float32")?
                 .shape("[*, 3, 96, 96]".parse()?),
         )
-        .output(TensorSpec::new("species").dtype(DType::Float32))
+        .output(TensorSpec::new("species").dtype("float32")?)
         .classifier_output("species")
         .label_count(2..=64)
         .require_label("empty frame")

@@ -7,12 +7,14 @@ use std::error::Error;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-/// What both binaries are asked to do: put `bundle` into the store at `store`.
+/// What both binaries are asked to do: take the release that the channel `stable` of the
+/// release tree at `tree` offers into the store at `store`.
 pub struct Request {
     /// The app's models directory.
     pub store: PathBuf,
-    /// The bundle file, obtained however the app gets it.
-    pub bundle: PathBuf,
+    /// A release tree on disk (the files any web server would serve), so the size app needs
+    /// no HTTP stack: it answers the update's requests from these files.
+    pub tree: PathBuf,
     /// The trusted public key, as PEM text.
     pub key_pem: String,
     /// The app's own version.
@@ -22,13 +24,13 @@ pub struct Request {
 /// A step that does the work and says what it did in one line.
 pub type Step = fn(&Request) -> Result<String, Box<dyn Error>>;
 
-const USAGE: &str = "usage: STORE-DIR BUNDLE PUBLIC-KEY.pem APP-VERSION";
+const USAGE: &str = "usage: STORE-DIR TREE-DIR PUBLIC-KEY.pem APP-VERSION";
 
 /// Runs `step` on the command line's request. Exit codes follow the CLI's: 0 done, 1 the step
 /// failed, 2 usage error or unreadable key file.
 pub fn run(step: Step) -> ExitCode {
     let args: Vec<String> = std::env::args().skip(1).collect();
-    let [store, bundle, key, app_version] = args.as_slice() else {
+    let [store, tree, key, app_version] = args.as_slice() else {
         eprintln!("{USAGE}");
         return ExitCode::from(2);
     };
@@ -41,7 +43,7 @@ pub fn run(step: Step) -> ExitCode {
     };
     let request = Request {
         store: store.into(),
-        bundle: bundle.into(),
+        tree: tree.into(),
         key_pem,
         app_version: app_version.clone(),
     };

@@ -6,16 +6,16 @@
 //! None of them can be reached from the safe types by accident:
 //!
 //! ```compile_fail
-//! // The store has no public install that skips the feed.
-//! fn install(store: &ampoule_verify::Store, bundle: ampoule_verify::VerifiedBundle) {
-//!     store.install(bundle, None, None);
+//! // A device installs only through its update, which needs the channel's feed.
+//! fn install(device: &ampoule_verify::Device, bundle: &std::path::Path) {
+//!     device.install(bundle);
 //! }
 //! ```
 //!
 //! ```compile_fail
-//! // A tree head nobody verified cannot be remembered through the store.
-//! fn remember(store: &ampoule_verify::Store, head: &ampoule_verify::merkle::TreeHead) {
-//!     store.remember_tree_head(head);
+//! // Nothing outside the update remembers a tree head: apps cannot name one.
+//! fn remember(device: &ampoule_verify::Device, head: &ampoule_verify::merkle::TreeHead) {
+//!     device.remember_tree_head(head);
 //! }
 //! ```
 //!
@@ -33,33 +33,33 @@
 //! }
 //! ```
 //!
-//! The same types reach each weak path here, and only here:
+//! The same types reach the weak paths an app can take here, and only here:
 //!
 //! ```no_run
-//! use ampoule_verify::merkle::TreeHead;
-//! use ampoule_verify::{App, Store, TrustedKeys, VerifiedBundle, dangerous};
+//! use ampoule_verify::{App, Device, dangerous};
 //!
-//! fn weak(
-//!     store: &Store,
-//!     bundle: VerifiedBundle,
-//!     head: &TreeHead,
-//!     app: App,
-//!     keys: TrustedKeys,
-//! ) -> ampoule_verify::Result<()> {
-//!     dangerous::install_without_feed(store, bundle)?;
-//!     dangerous::remember_unverified_tree_head(store, head)?;
+//! fn weak(device: &Device, bundle: &std::path::Path, app: App) -> ampoule_verify::Result<()> {
+//!     dangerous::install_bundle_without_feed(device, bundle)?;
 //!     let _app = dangerous::skip_ledger(app);
-//!     let _verifier = dangerous::verifier_without_app_version(keys)?;
 //!     Ok(())
 //! }
 //! ```
+//!
+//! Two more exist only for the release side's tools and tests (feature `release`): a verifier
+//! without the app-version check, and remembering a tree head nobody verified.
+
+use std::path::Path;
 
 use crate::error::Result;
-use crate::keys::TrustedKeys;
-use crate::merkle::TreeHead;
-use crate::store::{Installed, Store};
-use crate::update::App;
-use crate::verify::{VerifiedBundle, Verifier};
+use crate::store::Installed;
+use crate::update::{App, Device};
+#[cfg(feature = "release")]
+use crate::{
+    keys::TrustedKeys,
+    merkle::TreeHead,
+    store::Store,
+    verify::{VerifiedBundle, Verifier},
+};
 
 /// Feeds need no proof from the audit ledger.
 ///
@@ -70,18 +70,30 @@ pub fn skip_ledger(app: App) -> App {
     app.without_ledger()
 }
 
-/// Installs a verified bundle that came without its channel's feed.
+/// Verifies the bundle file at `bundle` for the device's app and installs it, without its
+/// channel's feed.
 ///
-/// **What is lost:** everything the feed proves. The bundle's signatures, policy and payload
-/// are checked, and the store still refuses a version not newer than the highest it
-/// accepted, but nothing shows that the release was published (the ledger), is current on
-/// the device's channel (a withdrawn or superseded release installs), or is meant for this
-/// device (rollout). For a technician's install, prefer an offline file that carries the
-/// feed.
+/// **What is lost:** everything the feed proves. The bundle's signatures (under the trust the
+/// device holds), the app's policy and the payload are checked, and the store still refuses a
+/// version not newer than the highest it accepted, but nothing shows that the release was
+/// published (the ledger), is current on the device's channel (a withdrawn or superseded
+/// release installs), or is meant for this device (rollout). For a technician's install,
+/// prefer an offline update file, which carries the feed.
+///
+/// # Errors
+///
+/// The bundle's refusal; the store's own checks, its lock, I/O.
+pub fn install_bundle_without_feed(device: &Device, bundle: &Path) -> Result<Installed> {
+    device.install_without_feed(bundle)
+}
+
+/// Installs a bundle verified by hand without its channel's feed (see
+/// [`install_bundle_without_feed`] for what is lost).
 ///
 /// # Errors
 ///
 /// As an install: the store's own checks, its lock, I/O.
+#[cfg(feature = "release")]
 pub fn install_without_feed(store: &Store, bundle: VerifiedBundle) -> Result<Installed> {
     store.install_without_feed(bundle)
 }
@@ -95,6 +107,7 @@ pub fn install_without_feed(store: &Store, bundle: VerifiedBundle) -> Result<Ins
 /// # Errors
 ///
 /// A head smaller than the remembered one; the store's lock; I/O.
+#[cfg(feature = "release")]
 pub fn remember_unverified_tree_head(store: &Store, head: &TreeHead) -> Result<()> {
     store.remember_tree_head(head)
 }
@@ -108,6 +121,7 @@ pub fn remember_unverified_tree_head(store: &Store, head: &TreeHead) -> Result<(
 /// # Errors
 ///
 /// An empty key set.
+#[cfg(feature = "release")]
 pub fn verifier_without_app_version(keys: TrustedKeys) -> Result<Verifier> {
     Verifier::without_app_version(keys)
 }

@@ -15,27 +15,37 @@ use sha2::{Digest as _, Sha256};
 pub struct Digest([u8; 32]);
 
 impl Digest {
-    /// The digest's length in bytes.
-    pub const LEN: usize = 32;
-
-    /// Wraps raw digest bytes.
-    pub const fn from_bytes(bytes: [u8; 32]) -> Self {
-        Digest(bytes)
+    pub_for_release! {
+        /// The digest's length in bytes.
+        const LEN: usize = 32;
     }
 
-    /// The raw digest bytes.
-    pub const fn as_bytes(&self) -> &[u8; 32] {
-        &self.0
+    pub_for_release! {
+        /// Wraps raw digest bytes.
+        const fn from_bytes(bytes: [u8; 32]) -> Self {
+            Digest(bytes)
+        }
     }
 
-    /// The SHA-256 digest of `data`.
-    pub fn of(data: &[u8]) -> Self {
-        Digest(Sha256::digest(data).into())
+    pub_for_release! {
+        /// The raw digest bytes.
+        const fn as_bytes(&self) -> &[u8; 32] {
+            &self.0
+        }
     }
 
-    /// Lowercase hex.
-    pub fn to_hex(&self) -> String {
-        hex::encode(self.0)
+    pub_for_release! {
+        /// The SHA-256 digest of `data`.
+        fn of(data: &[u8]) -> Self {
+            Digest(Sha256::digest(data).into())
+        }
+    }
+
+    pub_for_release! {
+        /// Lowercase hex.
+        fn to_hex(&self) -> String {
+            hex::encode(self.0)
+        }
     }
 }
 

@@ -215,38 +215,42 @@ fn is_absolute_http_url(url: &str) -> bool {
 }
 
 impl Release {
-    /// Checks every field against the format's rules.
-    pub fn validate(&self) -> Result<()> {
-        check_name(&self.name).map_err(|e| invalid(format!("feed release: {e}")))?;
-        if self.rollout_percent > 100 {
-            return Err(invalid(format!(
-                "feed release rollout_percent is {}; it must be 0 to 100",
-                self.rollout_percent
-            )));
+    pub_for_release! {
+        /// Checks every field against the format's rules.
+        fn validate(&self) -> Result<()> {
+            check_name(&self.name).map_err(|e| invalid(format!("feed release: {e}")))?;
+            if self.rollout_percent > 100 {
+                return Err(invalid(format!(
+                    "feed release rollout_percent is {}; it must be 0 to 100",
+                    self.rollout_percent
+                )));
+            }
+            check_relative_path("release", &self.path)?;
+            if self.mirrors.len() > limit::MIRRORS {
+                return Err(invalid(format!(
+                    "feed release lists {} mirrors, over the limit of {}",
+                    self.mirrors.len(),
+                    limit::MIRRORS
+                )));
+            }
+            if let Some(bad) = self.mirrors.iter().find(|m| !is_absolute_http_url(m)) {
+                return Err(invalid(format!(
+                    "feed release mirror '{}' is not an absolute http or https URL",
+                    bad.chars().take(120).collect::<String>().escape_debug()
+                )));
+            }
+            Ok(())
         }
-        check_relative_path("release", &self.path)?;
-        if self.mirrors.len() > limit::MIRRORS {
-            return Err(invalid(format!(
-                "feed release lists {} mirrors, over the limit of {}",
-                self.mirrors.len(),
-                limit::MIRRORS
-            )));
-        }
-        if let Some(bad) = self.mirrors.iter().find(|m| !is_absolute_http_url(m)) {
-            return Err(invalid(format!(
-                "feed release mirror '{}' is not an absolute http or https URL",
-                bad.chars().take(120).collect::<String>().escape_debug()
-            )));
-        }
-        Ok(())
     }
 
-    /// The URLs to try for the bundle, in order: `path` resolved against the feed's URL,
-    /// then the mirrors.
-    pub fn urls(&self, feed_url: &str) -> Result<Vec<String>> {
-        let mut urls = vec![resolve(feed_url, &self.path)?];
-        urls.extend(self.mirrors.iter().cloned());
-        Ok(urls)
+    pub_for_release! {
+        /// The URLs to try for the bundle, in order: `path` resolved against the feed's URL,
+        /// then the mirrors.
+        fn urls(&self, feed_url: &str) -> Result<Vec<String>> {
+            let mut urls = vec![resolve(feed_url, &self.path)?];
+            urls.extend(self.mirrors.iter().cloned());
+            Ok(urls)
+        }
     }
 }
 
@@ -549,7 +553,8 @@ impl FeedVerifier {
     }
 }
 
-/// A feed that passed every check of [`FeedVerifier::verify`]. Only this crate can make one.
+/// A feed that passed every check of the device's feed verifier (signatures, channel,
+/// freshness, sequence, the ledger's proofs). Only this crate can make one.
 #[derive(Clone)]
 pub struct VerifiedFeed {
     feed: Feed,
@@ -571,15 +576,19 @@ impl fmt::Debug for VerifiedFeed {
 }
 
 impl VerifiedFeed {
-    /// What the ledger check established, when the verifier required one: the device
-    /// remembers its tree head ([`crate::Store::remember_tree_head`]) once it acted on the feed.
-    pub fn ledger(&self) -> Option<&LedgerCheck> {
-        self.ledger.as_ref()
+    pub_for_release! {
+        /// What the ledger check established, when the verifier required one: the device
+        /// remembers its tree head ([`crate::Store::remember_tree_head`]) once it acted on the feed.
+        fn ledger(&self) -> Option<&LedgerCheck> {
+            self.ledger.as_ref()
+        }
     }
 
-    /// The verified feed.
-    pub fn feed(&self) -> &Feed {
-        &self.feed
+    pub_for_release! {
+        /// The verified feed.
+        fn feed(&self) -> &Feed {
+            &self.feed
+        }
     }
 
     /// The current release, if the channel has one.
@@ -587,13 +596,21 @@ impl VerifiedFeed {
         self.feed.release.as_ref()
     }
 
-    /// The trust set the feed names, if it names one.
-    pub fn trust_set(&self) -> Option<&TrustSetRef> {
-        self.feed.trust_set.as_ref()
+    pub_for_release! {
+        /// The trust set the feed names, if it names one.
+        fn trust_set(&self) -> Option<&TrustSetRef> {
+            self.feed.trust_set.as_ref()
+        }
     }
 
-    /// The feed's sequence: the device stores it (with [`VerifiedFeed::digest`]) once it has
-    /// acted on the feed, and passes it to [`FeedVerifier::last_accepted`] next time.
+    /// When the feed stops being trusted: a device that finds no newer feed by then refuses
+    /// this one, so a cut-off device notices.
+    pub fn expires(&self) -> Timestamp {
+        self.feed.expires
+    }
+
+    /// The feed's sequence: the store remembers it (with [`VerifiedFeed::digest`]) once the
+    /// device acted on the feed, and refuses a lower one from then on.
     pub fn sequence(&self) -> u64 {
         self.feed.sequence
     }
@@ -603,15 +620,19 @@ impl VerifiedFeed {
         self.digest
     }
 
-    /// Whether the sequence is higher than the last accepted one (false when this is the
-    /// same feed again).
-    pub fn is_new(&self) -> bool {
-        self.is_new
+    pub_for_release! {
+        /// Whether the sequence is higher than the last accepted one (false when this is the
+        /// same feed again).
+        fn is_new(&self) -> bool {
+            self.is_new
+        }
     }
 
-    /// The trusted keys whose signatures verified.
-    pub fn signers(&self) -> &[KeyId] {
-        &self.report.valid
+    pub_for_release! {
+        /// The trusted keys whose signatures verified.
+        fn signers(&self) -> &[KeyId] {
+            &self.report.valid
+        }
     }
 }
 

@@ -28,15 +28,17 @@ pub const ED25519_SPKI_PREFIX: [u8; 12] = [
 pub struct KeyId([u8; 16]);
 
 impl KeyId {
-    /// The key id of a raw 32-byte Ed25519 public key.
-    pub fn of_raw_key(raw: &[u8; 32]) -> Self {
-        let mut der = [0u8; 44];
-        der[..12].copy_from_slice(&ED25519_SPKI_PREFIX);
-        der[12..].copy_from_slice(raw);
-        let digest = Digest::of(&der);
-        let mut id = [0u8; 16];
-        id.copy_from_slice(&digest.as_bytes()[..16]);
-        KeyId(id)
+    pub_for_release! {
+        /// The key id of a raw 32-byte Ed25519 public key.
+        fn of_raw_key(raw: &[u8; 32]) -> Self {
+            let mut der = [0u8; 44];
+            der[..12].copy_from_slice(&ED25519_SPKI_PREFIX);
+            der[12..].copy_from_slice(raw);
+            let digest = Digest::of(&der);
+            let mut id = [0u8; 16];
+            id.copy_from_slice(&digest.as_bytes()[..16]);
+            KeyId(id)
+        }
     }
 }
 
@@ -145,9 +147,11 @@ impl PublicKey {
         Self::from_raw(key.as_bytes())
     }
 
-    /// Wraps a key from `ed25519-dalek`, with the same weak-key check as [`PublicKey::from_raw`].
-    pub fn from_verifying_key(key: &VerifyingKey) -> Result<Self> {
-        Self::from_raw(key.as_bytes())
+    pub_for_release! {
+        /// Wraps a key from `ed25519-dalek`, with the same weak-key check as [`PublicKey::from_raw`].
+        fn from_verifying_key(key: &VerifyingKey) -> Result<Self> {
+            Self::from_raw(key.as_bytes())
+        }
     }
 
     /// The key's id.
@@ -155,32 +159,40 @@ impl PublicKey {
         self.id
     }
 
-    /// The raw 32-byte key.
-    pub fn as_bytes(&self) -> &[u8; 32] {
-        self.key.as_bytes()
+    pub_for_release! {
+        /// The raw 32-byte key.
+        fn as_bytes(&self) -> &[u8; 32] {
+            self.key.as_bytes()
+        }
     }
 
-    /// The underlying `ed25519-dalek` key.
-    pub fn verifying_key(&self) -> &VerifyingKey {
-        &self.key
+    pub_for_release! {
+        /// The underlying `ed25519-dalek` key.
+        fn verifying_key(&self) -> &VerifyingKey {
+            &self.key
+        }
     }
 
-    /// The key as SubjectPublicKeyInfo PEM, byte-identical to `openssl pkey -pubout`.
-    pub fn to_pem(&self) -> String {
-        use ed25519_dalek::pkcs8::EncodePublicKey;
-        use ed25519_dalek::pkcs8::spki::der::pem::LineEnding;
-        self.key
-            .to_public_key_pem(LineEnding::LF)
-            .expect("encoding a 32-byte Ed25519 key as PEM cannot fail")
+    pub_for_release! {
+        /// The key as SubjectPublicKeyInfo PEM, byte-identical to `openssl pkey -pubout`.
+        fn to_pem(&self) -> String {
+            use ed25519_dalek::pkcs8::EncodePublicKey;
+            use ed25519_dalek::pkcs8::spki::der::pem::LineEnding;
+            self.key
+                .to_public_key_pem(LineEnding::LF)
+                .expect("encoding a 32-byte Ed25519 key as PEM cannot fail")
+        }
     }
 
-    /// Checks `signature` over `context || document` with RFC 8032 strict verification
-    /// (`verify_strict`, which also refuses non-canonical and small-order components).
-    pub fn verify(&self, context: &[u8], document: &[u8], signature: &[u8; 64]) -> bool {
-        let signature = Signature::from_bytes(signature);
-        self.key
-            .verify_strict(&signed_bytes(context, document), &signature)
-            .is_ok()
+    pub_for_release! {
+        /// Checks `signature` over `context || document` with RFC 8032 strict verification
+        /// (`verify_strict`, which also refuses non-canonical and small-order components).
+        fn verify(&self, context: &[u8], document: &[u8], signature: &[u8; 64]) -> bool {
+            let signature = Signature::from_bytes(signature);
+            self.key
+                .verify_strict(&signed_bytes(context, document), &signature)
+                .is_ok()
+        }
     }
 }
 
@@ -208,9 +220,11 @@ impl TrustedKeys {
         self
     }
 
-    /// The key with this id, if trusted.
-    pub fn get(&self, id: &KeyId) -> Option<&PublicKey> {
-        self.keys.get(id)
+    pub_for_release! {
+        /// The key with this id, if trusted.
+        fn get(&self, id: &KeyId) -> Option<&PublicKey> {
+            self.keys.get(id)
+        }
     }
 
     /// How many distinct keys are trusted.
@@ -223,9 +237,11 @@ impl TrustedKeys {
         self.keys.is_empty()
     }
 
-    /// The trusted keys in key-id order.
-    pub fn iter(&self) -> impl Iterator<Item = &PublicKey> {
-        self.keys.values()
+    pub_for_release! {
+        /// The trusted keys in key-id order.
+        fn iter(&self) -> impl Iterator<Item = &PublicKey> {
+            self.keys.values()
+        }
     }
 }
 

@@ -2,53 +2,107 @@
 //!
 //! A bundle is accepted only when a trusted key signed its exact manifest, every byte matches
 //! the digests that manifest declares, and the app's policy (name, newer version, app-version
-//! range, size limits) allows it. Only then can it be unpacked or installed: those steps take a
-//! [`VerifiedBundle`], a type no code outside this crate can make.
+//! range, size limits) allows it. Only then can it be installed, and only through the device's
+//! update ([`Device`]), which runs every check in one order that no app can leave out.
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
+// Every module is private to apps; the release-side CLI, its tests and the crate's own tests
+// reach the internals through the `release` feature, the fuzz targets through `fuzzing`. Both
+// are off by default and out of the published docs. The one screen an app needs is the
+// `pub use` list below, plus the `update` and `dangerous` modules.
+#![cfg_attr(not(feature = "release"), allow(dead_code, unused_imports))]
 
-pub mod bundle;
-pub mod dangerous;
-pub mod digest;
-pub mod error;
-pub mod feed;
-#[cfg(feature = "fetch")]
+/// Wraps one method (or associated constant) that the release side uses but apps do not:
+/// public with the `release` feature, crate-private otherwise, so it stays out of the app's
+/// API without a second copy of its body.
+macro_rules! pub_for_release {
+    ($(#[$meta:meta])* const fn $($rest:tt)*) => {
+        #[cfg(feature = "release")]
+        $(#[$meta])* pub const fn $($rest)*
+        #[cfg(not(feature = "release"))]
+        $(#[$meta])* pub(crate) const fn $($rest)*
+    };
+    ($(#[$meta:meta])* fn $($rest:tt)*) => {
+        #[cfg(feature = "release")]
+        $(#[$meta])* pub fn $($rest)*
+        #[cfg(not(feature = "release"))]
+        $(#[$meta])* pub(crate) fn $($rest)*
+    };
+    ($(#[$meta:meta])* const $($rest:tt)*) => {
+        #[cfg(feature = "release")]
+        $(#[$meta])* pub const $($rest)*
+        #[cfg(not(feature = "release"))]
+        $(#[$meta])* pub(crate) const $($rest)*
+    };
+}
+
+/// Declares modules that are public only with the `release` feature (and the `fuzzing`
+/// feature for those the fuzz targets read).
+macro_rules! internal {
+    ($($name:ident),* $(,)?) => { $(
+        #[cfg(feature = "release")]
+        pub mod $name;
+        #[cfg(not(feature = "release"))]
+        mod $name;
+    )* };
+}
+
+internal!(
+    bundle, digest, error, feed, format, keys, labels, ledger, manifest, merkle, signature, signed,
+    store, tar, time, trust, verify,
+);
+#[cfg(all(feature = "fetch", feature = "release"))]
 pub mod fetch;
-pub mod format;
-pub mod keys;
-pub mod labels;
-pub mod ledger;
-pub mod manifest;
-pub mod merkle;
+#[cfg(all(feature = "fetch", not(feature = "release")))]
+mod fetch;
+#[cfg(any(feature = "release", feature = "fuzzing"))]
 pub mod model;
+#[cfg(not(any(feature = "release", feature = "fuzzing")))]
+mod model;
 mod readahead;
-pub mod signature;
-pub mod signed;
-pub mod store;
-pub mod tar;
-pub mod time;
-pub mod trust;
 mod unpack;
+
+pub mod dangerous;
 pub mod update;
-mod verify;
 
 /// The README's examples, compiled as doctests so they cannot go stale.
 #[cfg(doctest)]
 #[doc = include_str!("../../../README.md")]
 pub struct ReadmeDoctests;
 
-pub use digest::Digest;
-pub use error::{Error, ErrorKind, Result};
-pub use feed::{FeedVerifier, VerifiedFeed, in_rollout};
+// The app's trust: keys per role, or the trust set it ships with.
 pub use keys::{KeyId, PublicKey, TrustedKeys};
-pub use manifest::Manifest;
-pub use model::{CompatibilityPolicy, ModelSignature};
+pub use signed::{Signers, kind};
+pub use update::Trust;
+// The app itself: its version, the bundle name it accepts, its compatibility policy.
+pub use model::{
+    CompatibilityPolicy, CompatibilityPolicyBuilder, ModelFormat, ShapePattern, TensorSpec,
+};
 pub use semver::Version;
-pub use store::{Installed, Release, Store, StoreState};
+pub use update::App;
+// The store, the update and what it ends in.
+pub use feed::{Release as OfferedRelease, VerifiedFeed};
+pub use manifest::Manifest;
+pub use store::{Installed, Release};
+pub use update::{Device, Outcome, Report};
+pub use verify::{Progress, ProgressFn, Stage};
+// Bundles' and documents' digests, and the device's clock.
+pub use digest::Digest;
 pub use time::Timestamp;
+// Errors.
+pub use error::{Error, ErrorKind, Result};
+#[cfg(feature = "fetch")]
+pub use fetch::Transfer;
+// Paths the release side has always used, kept for it.
+#[cfg(feature = "release")]
+pub use feed::{FeedVerifier, in_rollout};
+#[cfg(feature = "release")]
+pub use model::ModelSignature;
+#[cfg(feature = "release")]
+pub use store::{Store, StoreState};
+#[cfg(feature = "release")]
 pub use trust::{DocumentKind, TrustSet, TrustSetFile};
-pub use update::{App, Device, Outcome, Report, Trust};
+#[cfg(feature = "release")]
 pub use verify::{
-    DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Progress, ProgressFn, Stage, Unpacked,
-    VerifiedBundle, Verifier,
+    DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Unpacked, VerifiedBundle, Verifier,
 };

@@ -65,7 +65,7 @@ pub struct Payload {
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Manifest {
-    /// The format version; always [`FORMAT_VERSION`].
+    /// The format version; always 1 (`format::FORMAT_VERSION`).
     pub format: u32,
     /// The bundle's name: which model line this is (`trailcam-species`).
     pub name: String,
@@ -124,129 +124,145 @@ pub fn model_path(extension: &str) -> Option<String> {
 }
 
 impl Manifest {
-    /// Parses manifest bytes strictly (UTF-8 JSON, no unknown fields, no duplicate keys) and
-    /// validates every field.
-    pub fn from_json(bytes: &[u8]) -> Result<Manifest> {
-        let manifest: Manifest = serde_json::from_slice(bytes)
-            .map_err(|e| invalid(format!("manifest is not valid: {e}")))?;
-        manifest.validate()?;
-        Ok(manifest)
+    pub_for_release! {
+        /// Parses manifest bytes strictly (UTF-8 JSON, no unknown fields, no duplicate keys) and
+        /// validates every field.
+        fn from_json(bytes: &[u8]) -> Result<Manifest> {
+            let manifest: Manifest = serde_json::from_slice(bytes)
+                .map_err(|e| invalid(format!("manifest is not valid: {e}")))?;
+            manifest.validate()?;
+            Ok(manifest)
+        }
     }
 
-    /// The manifest as the writer stores it: pretty JSON with a final newline. The signed
-    /// bytes are whatever the bundle holds; this is only how new bundles are written.
-    pub fn to_json(&self) -> Vec<u8> {
-        let mut bytes = serde_json::to_vec_pretty(self)
-            .expect("a manifest of plain strings and numbers always serializes");
-        bytes.push(b'\n');
-        bytes
+    pub_for_release! {
+        /// The manifest as the writer stores it: pretty JSON with a final newline. The signed
+        /// bytes are whatever the bundle holds; this is only how new bundles are written.
+        fn to_json(&self) -> Vec<u8> {
+            let mut bytes = serde_json::to_vec_pretty(self)
+                .expect("a manifest of plain strings and numbers always serializes");
+            bytes.push(b'\n');
+            bytes
+        }
     }
 
-    /// Checks every field against the format's rules.
-    pub fn validate(&self) -> Result<()> {
-        if self.format != FORMAT_VERSION {
-            return Err(invalid(format!(
-                "manifest format {} is not supported (this reader knows format {FORMAT_VERSION}); \
-                 update ampoule-verify to read newer bundles",
-                self.format
-            )));
-        }
-        check_name(&self.name)?;
-        let [model, labels] = self.files.as_slice() else {
-            return Err(invalid(format!(
-                "manifest lists {} files; format {FORMAT_VERSION} requires exactly two, the model then the labels",
-                self.files.len()
-            )));
-        };
-        let model_ok = model.role == Role::Model
-            && model
-                .path
-                .strip_prefix(concat!("model", "."))
-                .and_then(model_path)
-                .as_deref()
-                == Some(model.path.as_str());
-        if !model_ok {
-            return Err(invalid(format!(
-                "manifest's first file must be the model, named 'model.<extension>', not '{}' ({:?})",
-                tar::shown(model.path.as_bytes()),
-                model.role
-            )));
-        }
-        if labels.role != Role::Labels || labels.path != entry::LABELS {
-            return Err(invalid(format!(
-                "manifest's second file must be the labels, named '{}', not '{}' ({:?})",
-                entry::LABELS,
-                tar::shown(labels.path.as_bytes()),
-                labels.role
-            )));
-        }
-        for file in &self.files {
-            if file.size > limit::TAR_ENTRY_BYTES {
+    pub_for_release! {
+        /// Checks every field against the format's rules.
+        fn validate(&self) -> Result<()> {
+            if self.format != FORMAT_VERSION {
                 return Err(invalid(format!(
-                    "manifest declares '{}' as {} bytes, over the format's limit of {} bytes",
-                    file.path,
-                    file.size,
-                    limit::TAR_ENTRY_BYTES
+                    "manifest format {} is not supported (this reader knows format {FORMAT_VERSION}); \
+                     update ampoule-verify to read newer bundles",
+                    self.format
                 )));
             }
+            check_name(&self.name)?;
+            let [model, labels] = self.files.as_slice() else {
+                return Err(invalid(format!(
+                    "manifest lists {} files; format {FORMAT_VERSION} requires exactly two, the model then the labels",
+                    self.files.len()
+                )));
+            };
+            let model_ok = model.role == Role::Model
+                && model
+                    .path
+                    .strip_prefix(concat!("model", "."))
+                    .and_then(model_path)
+                    .as_deref()
+                    == Some(model.path.as_str());
+            if !model_ok {
+                return Err(invalid(format!(
+                    "manifest's first file must be the model, named 'model.<extension>', not '{}' ({:?})",
+                    tar::shown(model.path.as_bytes()),
+                    model.role
+                )));
+            }
+            if labels.role != Role::Labels || labels.path != entry::LABELS {
+                return Err(invalid(format!(
+                    "manifest's second file must be the labels, named '{}', not '{}' ({:?})",
+                    entry::LABELS,
+                    tar::shown(labels.path.as_bytes()),
+                    labels.role
+                )));
+            }
+            for file in &self.files {
+                if file.size > limit::TAR_ENTRY_BYTES {
+                    return Err(invalid(format!(
+                        "manifest declares '{}' as {} bytes, over the format's limit of {} bytes",
+                        file.path,
+                        file.size,
+                        limit::TAR_ENTRY_BYTES
+                    )));
+                }
+            }
+            if labels.size > limit::LABELS_FILE_BYTES {
+                return Err(invalid(format!(
+                    "manifest declares labels.txt as {} bytes, over the format's limit of {} bytes",
+                    labels.size,
+                    limit::LABELS_FILE_BYTES
+                )));
+            }
+            if self.label_count == 0 {
+                return Err(invalid(
+                    "manifest declares an empty label list; a bundle needs at least one label".into(),
+                ));
+            }
+            if self.label_count as usize > limit::LABELS {
+                return Err(invalid(format!(
+                    "manifest declares {} labels, over the format's limit of {}",
+                    self.label_count,
+                    limit::LABELS
+                )));
+            }
+            Ok(())
         }
-        if labels.size > limit::LABELS_FILE_BYTES {
-            return Err(invalid(format!(
-                "manifest declares labels.txt as {} bytes, over the format's limit of {} bytes",
-                labels.size,
-                limit::LABELS_FILE_BYTES
-            )));
-        }
-        if self.label_count == 0 {
-            return Err(invalid(
-                "manifest declares an empty label list; a bundle needs at least one label".into(),
-            ));
-        }
-        if self.label_count as usize > limit::LABELS {
-            return Err(invalid(format!(
-                "manifest declares {} labels, over the format's limit of {}",
-                self.label_count,
-                limit::LABELS
-            )));
-        }
-        Ok(())
     }
 
-    /// The model file entry.
-    pub fn model(&self) -> &FileEntry {
-        &self.files[0]
-    }
-
-    /// The labels file entry.
-    pub fn labels(&self) -> &FileEntry {
-        &self.files[1]
-    }
-
-    /// The exact size of the inner tar the payload decompresses to: a header and padded data
-    /// per file, then the end-of-archive marker.
-    pub fn unpacked_tar_len(&self) -> u64 {
-        self.files
-            .iter()
-            .map(|f| tar::entry_len(f.size))
-            .sum::<u64>()
-            + tar::END_OF_ARCHIVE.len() as u64
-    }
-
-    /// Parses the stored label list of this bundle and requires `label_count` labels.
-    pub fn parse_labels(&self, bytes: &[u8]) -> Result<Vec<String>> {
-        let labels = crate::labels::parse_stored_labels(bytes)?;
-        if labels.len() != self.label_count as usize {
-            return Err(invalid(format!(
-                "labels.txt holds {} labels but the manifest declares {}",
-                labels.len(),
-                self.label_count
-            )));
+    pub_for_release! {
+        /// The model file entry.
+        fn model(&self) -> &FileEntry {
+            &self.files[0]
         }
-        Ok(labels)
     }
 
-    /// The total size of the files in the payload.
-    pub fn files_len(&self) -> u64 {
-        self.files.iter().map(|f| f.size).sum()
+    pub_for_release! {
+        /// The labels file entry.
+        fn labels(&self) -> &FileEntry {
+            &self.files[1]
+        }
+    }
+
+    pub_for_release! {
+        /// The exact size of the inner tar the payload decompresses to: a header and padded data
+        /// per file, then the end-of-archive marker.
+        fn unpacked_tar_len(&self) -> u64 {
+            self.files
+                .iter()
+                .map(|f| tar::entry_len(f.size))
+                .sum::<u64>()
+                + tar::END_OF_ARCHIVE.len() as u64
+        }
+    }
+
+    pub_for_release! {
+        /// Parses the stored label list of this bundle and requires `label_count` labels.
+        fn parse_labels(&self, bytes: &[u8]) -> Result<Vec<String>> {
+            let labels = crate::labels::parse_stored_labels(bytes)?;
+            if labels.len() != self.label_count as usize {
+                return Err(invalid(format!(
+                    "labels.txt holds {} labels but the manifest declares {}",
+                    labels.len(),
+                    self.label_count
+                )));
+            }
+            Ok(labels)
+        }
+    }
+
+    pub_for_release! {
+        /// The total size of the files in the payload.
+        fn files_len(&self) -> u64 {
+            self.files.iter().map(|f| f.size).sum()
+        }
     }
 }

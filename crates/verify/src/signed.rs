@@ -135,16 +135,16 @@ pub mod kind {
     use super::{DocumentKind, Kind, sealed};
     use crate::format::{limit, trust_set};
 
-    /// A bundle's manifest, signed under [`crate::format::context::MANIFEST`].
+    /// A bundle's manifest, signed under the context `ampoule-sig-v1:manifest`.
     #[derive(Debug, Clone, Copy)]
     pub struct Manifest;
-    /// A channel feed's text, signed under [`crate::format::context::FEED`].
+    /// A channel feed's text, signed under the context `ampoule-sig-v1:feed`.
     #[derive(Debug, Clone, Copy)]
     pub struct Feed;
-    /// A ledger tree head's signed form, under [`crate::format::context::TREE_HEAD`].
+    /// A ledger tree head's signed form, under the context `ampoule-sig-v1:tree-head`.
     #[derive(Debug, Clone, Copy)]
     pub struct TreeHead;
-    /// A trust set's text, signed under [`crate::format::context::TRUST_SET`].
+    /// A trust set's text, signed under the context `ampoule-sig-v1:trust-set`.
     #[derive(Debug, Clone, Copy)]
     pub struct TrustSet;
 

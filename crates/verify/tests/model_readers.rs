@@ -328,12 +328,14 @@ fn trailcam_policy() -> CompatibilityPolicy {
         .max_opset(17)
         .input(
             TensorSpec::new("image")
-                .dtype(DType::Float32)
+                .dtype("float32")
+                .expect("float32 is an element type")
                 .shape("[*, 3, 96, 96]".parse().expect("pattern")),
         )
         .output(
             TensorSpec::new("species")
-                .dtype(DType::Float32)
+                .dtype("float32")
+                .expect("float32 is an element type")
                 .shape("[*, 7]".parse().expect("pattern")),
         )
         .classifier_output("species")

@@ -1,5 +1,5 @@
-//! The app without the verifier: it copies the bundle into the store unchecked. Its size is
-//! the zero that `installer` is measured against.
+//! The app without the verifier: it copies the channel's feed into the store unchecked. Its
+//! size is the zero that `installer` is measured against.
 
 use ampoule_size::{Request, run};
 use std::error::Error;
@@ -7,7 +7,8 @@ use std::process::ExitCode;
 
 fn copy(request: &Request) -> Result<String, Box<dyn Error>> {
     std::fs::create_dir_all(&request.store)?;
-    let bytes = std::fs::copy(&request.bundle, request.store.join("current.ampoule"))?;
+    let feed = request.tree.join("feeds/stable.json");
+    let bytes = std::fs::copy(feed, request.store.join("stable.json"))?;
     Ok(format!("copied {bytes} bytes unchecked"))
 }
 

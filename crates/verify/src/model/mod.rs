@@ -216,6 +216,14 @@ impl DType {
         self.entry().1
     }
 
+    /// The dtype of a name as [`DType::name`] gives it.
+    pub fn from_name(name: &str) -> Option<DType> {
+        DTYPES
+            .iter()
+            .find(|entry| entry.1 == name)
+            .map(|entry| entry.0)
+    }
+
     /// The ONNX `TensorProto.DataType` code.
     pub fn onnx_code(self) -> i64 {
         self.entry().2

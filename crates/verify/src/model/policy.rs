@@ -48,14 +48,18 @@ impl From<u64> for DimPattern {
 pub struct ShapePattern(Vec<DimPattern>);
 
 impl ShapePattern {
-    /// A pattern of these dimensions.
-    pub fn new(dims: impl IntoIterator<Item = DimPattern>) -> Self {
-        ShapePattern(dims.into_iter().collect())
+    pub_for_release! {
+        /// A pattern of these dimensions.
+        fn new(dims: impl IntoIterator<Item = DimPattern>) -> Self {
+            ShapePattern(dims.into_iter().collect())
+        }
     }
 
-    /// The dimensions.
-    pub fn dims(&self) -> &[DimPattern] {
-        &self.0
+    pub_for_release! {
+        /// The dimensions.
+        fn dims(&self) -> &[DimPattern] {
+            &self.0
+        }
     }
 
     /// Why `shape` does not fit, if it does not.
@@ -156,10 +160,25 @@ impl TensorSpec {
         }
     }
 
-    /// Requires this element type.
-    pub fn dtype(mut self, dtype: DType) -> Self {
+    /// Requires this element type, named as the manifest's model object names it
+    /// (`float32`, `float16`, `int8`, `uint8`, ...).
+    ///
+    /// # Errors
+    ///
+    /// [`crate::ErrorKind::Settings`] for a name that is no element type.
+    pub fn dtype(mut self, name: &str) -> Result<Self> {
+        let dtype = DType::from_name(name).ok_or_else(|| {
+            crate::error::Error::new(
+                crate::error::ErrorKind::Settings,
+                format!(
+                    "'{}' is not a tensor element type; use a name such as float32, float16, \
+                     int8 or uint8",
+                    name.chars().take(40).collect::<String>().escape_debug()
+                ),
+            )
+        })?;
         self.dtype = Some(dtype);
-        self
+        Ok(self)
     }
 
     /// Requires a shape that fits this pattern.
@@ -168,9 +187,11 @@ impl TensorSpec {
         self
     }
 
-    /// The tensor's name.
-    pub fn name(&self) -> &str {
-        &self.name
+    pub_for_release! {
+        /// The tensor's name.
+        fn name(&self) -> &str {
+            &self.name
+        }
     }
 
     fn check(&self, role: &str, value: &ValueSignature) -> Result<()> {
@@ -216,11 +237,11 @@ impl TensorSpec {
 /// What the app's code expects of a model and its label list; see the module documentation.
 ///
 /// ```
-/// use ampoule_verify::model::{CompatibilityPolicy, DType, TensorSpec};
+/// use ampoule_verify::{CompatibilityPolicy, TensorSpec};
 ///
 /// let policy = CompatibilityPolicy::builder()
-///     .input(TensorSpec::new("image").dtype(DType::Float32).shape("[*, 3, 96, 96]".parse()?))
-///     .output(TensorSpec::new("species").dtype(DType::Float32).shape("[*, 7]".parse()?))
+///     .input(TensorSpec::new("image").dtype("float32")?.shape("[*, 3, 96, 96]".parse()?))
+///     .output(TensorSpec::new("species").dtype("float32")?.shape("[*, 7]".parse()?))
 ///     .classifier_output("species")
 ///     .label_count(2..=64)
 ///     .require_label("empty frame")
@@ -266,45 +287,49 @@ impl CompatibilityPolicy {
             || self.classifier_output.is_some()
     }
 
-    /// Checks a bundle's recorded model signature (`None` for an opaque model) and its label
-    /// list against the policy; the error names the first thing that differs.
-    ///
-    /// Inputs: every input the app feeds must exist and fit, and the model must need no input
-    /// the app does not feed. Outputs: every output the app reads must exist and fit; others
-    /// are ignored. Labels: the count range, the required labels, and one label per class of
-    /// the classifier output when one is named.
-    pub fn check<S: AsRef<str>>(
-        &self,
-        signature: Option<&ModelSignature>,
-        labels: &[S],
-    ) -> Result<()> {
-        self.check_before_unpack(signature, labels.len())?;
-        self.check_required_labels(labels)
+    pub_for_release! {
+        /// Checks a bundle's recorded model signature (`None` for an opaque model) and its label
+        /// list against the policy; the error names the first thing that differs.
+        ///
+        /// Inputs: every input the app feeds must exist and fit, and the model must need no input
+        /// the app does not feed. Outputs: every output the app reads must exist and fit; others
+        /// are ignored. Labels: the count range, the required labels, and one label per class of
+        /// the classifier output when one is named.
+        fn check<S: AsRef<str>>(
+            &self,
+            signature: Option<&ModelSignature>,
+            labels: &[S],
+        ) -> Result<()> {
+            self.check_before_unpack(signature, labels.len())?;
+            self.check_required_labels(labels)
+        }
     }
 
-    /// The part of [`CompatibilityPolicy::check`] that needs only the manifest: the model
-    /// signature, the label count range and one label per class of the classifier output.
-    /// The verifier runs it before it reads the payload, so an incompatible bundle costs no
-    /// decompression.
-    pub fn check_before_unpack(
-        &self,
-        signature: Option<&ModelSignature>,
-        label_count: usize,
-    ) -> Result<()> {
-        match signature {
-            Some(signature) => self.check_signature(signature)?,
-            None if self.needs_signature() => {
-                return Err(incompatible(
-                    "the model is opaque (it has no recorded signature), but the app's policy states what the model must be".into(),
-                ));
+    pub_for_release! {
+        /// The part of [`CompatibilityPolicy::check`] that needs only the manifest: the model
+        /// signature, the label count range and one label per class of the classifier output.
+        /// The verifier runs it before it reads the payload, so an incompatible bundle costs no
+        /// decompression.
+        fn check_before_unpack(
+            &self,
+            signature: Option<&ModelSignature>,
+            label_count: usize,
+        ) -> Result<()> {
+            match signature {
+                Some(signature) => self.check_signature(signature)?,
+                None if self.needs_signature() => {
+                    return Err(incompatible(
+                        "the model is opaque (it has no recorded signature), but the app's policy states what the model must be".into(),
+                    ));
+                }
+                None => {}
             }
-            None => {}
+            self.check_label_count(label_count)?;
+            if let (Some(output), Some(signature)) = (&self.classifier_output, signature) {
+                signature.check_label_count(Some(output), label_count)?;
+            }
+            Ok(())
         }
-        self.check_label_count(label_count)?;
-        if let (Some(output), Some(signature)) = (&self.classifier_output, signature) {
-            signature.check_label_count(Some(output), label_count)?;
-        }
-        Ok(())
     }
 
     fn check_signature(&self, signature: &ModelSignature) -> Result<()> {
@@ -398,16 +423,18 @@ impl CompatibilityPolicy {
         Ok(())
     }
 
-    /// Checks that every label the app requires is in the unpacked label list.
-    pub fn check_required_labels<S: AsRef<str>>(&self, labels: &[S]) -> Result<()> {
-        for required in &self.required_labels {
-            if !labels.iter().any(|label| label.as_ref() == required) {
-                return Err(incompatible(format!(
-                    "the label list lacks '{required}', which the app requires"
-                )));
+    pub_for_release! {
+        /// Checks that every label the app requires is in the unpacked label list.
+        fn check_required_labels<S: AsRef<str>>(&self, labels: &[S]) -> Result<()> {
+            for required in &self.required_labels {
+                if !labels.iter().any(|label| label.as_ref() == required) {
+                    return Err(incompatible(format!(
+                        "the label list lacks '{required}', which the app requires"
+                    )));
+                }
             }
+            Ok(())
         }
-        Ok(())
     }
 }
 
@@ -444,8 +471,8 @@ impl CompatibilityPolicyBuilder {
         self
     }
 
-    /// Requires 8-bit weights (`true`) or float weights (`false`); see
-    /// [`ModelSignature::weights_8bit`].
+    /// Requires 8-bit weights (`true`) or float weights (`false`), as the signed model
+    /// signature records them.
     pub fn weights_8bit(mut self, eight_bit: bool) -> Self {
         self.policy.weights_8bit = Some(eight_bit);
         self

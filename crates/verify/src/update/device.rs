@@ -45,7 +45,9 @@ pub struct Device {
 impl Device {
     /// Opens (or creates) the store in `dir` for `app`, following `channel`. The trust the
     /// device holds is checked now: the newer of the shipped and the stored trust set must be
-    /// signed by its own threshold and not expired at `now`.
+    /// signed by its own threshold and not expired at `now`. A store follows one channel: the
+    /// first feed it accepts sets it, and an update on another channel is refused until
+    /// [`Device::switch_channel`].
     ///
     /// # Errors
     ///
@@ -69,9 +71,47 @@ impl Device {
         })
     }
 
-    /// The on-device store.
+    /// The on-device store, for the release side's tools and tests; apps use the calls below.
+    #[cfg(feature = "release")]
     pub fn store(&self) -> &Store {
         &self.store
+    }
+
+    #[cfg(not(feature = "release"))]
+    pub(crate) fn store(&self) -> &Store {
+        &self.store
+    }
+
+    /// Makes the previous release current again, when the app's own health check fails on a
+    /// new model. The previous release is checked in full first. The release rolled back from
+    /// stays refused: only a newer version installs next.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Policy`] when there is no previous release; the check's refusal when the
+    /// previous release fails it; [`ErrorKind::Locked`] while an update runs; I/O errors.
+    pub fn rollback(&self) -> Result<Release> {
+        self.store.rollback()
+    }
+
+    /// Removes releases other than the current and the previous one, and what crashed
+    /// updates left behind; returns what was removed. Every update does this too.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Locked`] while an update runs; I/O errors.
+    pub fn gc(&self) -> Result<Vec<PathBuf>> {
+        self.store.gc()
+    }
+
+    /// Makes the store follow this device's channel from now on (see [`Device::open`]); the
+    /// highest version it accepted stays, so nothing older installs from the new channel.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Locked`] while an update runs; I/O errors.
+    pub fn switch_channel(&self) -> Result<()> {
+        self.store.switch_channel(&self.channel)
     }
 
     /// The channel this device follows.
@@ -84,12 +124,14 @@ impl Device {
         &self.device_id
     }
 
-    /// The current release, checked in full before the app loads it (see
-    /// [`Store::open_current`]); `None` before the first install.
+    /// The current release, checked in full before the app loads it: the manifest's digest
+    /// against the store's state, its signatures under the trust held, the app's policy, and
+    /// every file's size and SHA-256 (one read of the model); `None` before the first install.
     ///
     /// # Errors
     ///
-    /// As [`Store::open_current`].
+    /// [`ErrorKind::Store`], [`ErrorKind::Digest`] or a signature refusal when the store was
+    /// changed outside ampoule-verify; I/O errors.
     pub fn current(&self) -> Result<Option<Release>> {
         self.store.open_current()
     }
@@ -148,6 +190,27 @@ impl Device {
                 super::Next::Done(report) => return report,
             }
         }
+    }
+
+    /// Verifies the bundle file under the trust held now and installs it with no feed; only
+    /// through [`crate::dangerous::install_bundle_without_feed`].
+    pub(crate) fn install_without_feed(&self, bundle: &Path) -> Result<crate::store::Installed> {
+        let held = self.held(Timestamp::now())?;
+        let mut store = self.store.clone();
+        if let Some(set) = held.set() {
+            store = store.with_trust_set(set)?;
+        }
+        let state = store.state()?;
+        let mut verifier = bundle_verifier(&self.app, &held)?;
+        if let Some(name) = &state.name
+            && verifier.required_name().is_none()
+        {
+            verifier = verifier.require_name(name.clone());
+        }
+        if let Some(highest) = &state.highest_version {
+            verifier = verifier.installed(highest.clone());
+        }
+        store.install_without_feed(verifier.verify_path(bundle)?)
     }
 
     pub(crate) fn app(&self) -> &App {
