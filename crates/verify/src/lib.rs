@@ -1,9 +1,4 @@
-//! `ampoule-verify` checks signed ampoule model bundles on a device and installs them.
-//!
-//! A bundle is accepted only when a trusted key signed its exact manifest, every byte matches
-//! the digests that manifest declares, and the app's policy (name, newer version, app-version
-//! range, size limits) allows it. Only then can it be unpacked or installed: those steps take a
-//! [`VerifiedBundle`], a type no code outside this crate can make.
+#![doc = include_str!("lib.md")]
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
 
