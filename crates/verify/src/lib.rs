@@ -1,9 +1,4 @@
-//! `ampoule-verify` checks signed ampoule model bundles on a device and installs them.
-//!
-//! A bundle is accepted only when a trusted key signed its exact manifest, every byte matches
-//! the digests that manifest declares, and the app's policy (name, newer version, app-version
-//! range, size limits) allows it. Only then can it be installed, and only through the device's
-//! update ([`Device`]), which runs every check in one order that no app can leave out.
+#![doc = include_str!("lib.md")]
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
 // Every module is private to apps; the release-side CLI, its tests and the crate's own tests
