@@ -77,7 +77,7 @@ pub fn skip_ledger(app: App) -> App {
 /// accepted, but nothing shows that the release was published (the ledger), is current on
 /// the device's channel (a withdrawn or superseded release installs), or is meant for this
 /// device (rollout). For a technician's install, prefer an offline file that carries the
-/// feed.
+/// feed ([`crate::Device::install_offline`]): it loses only the feed's expiry.
 ///
 /// # Errors
 ///
