@@ -16,7 +16,7 @@
 //!
 //! The expiry switch is crate-private: no app can turn it off for a feed it fetched.
 //!
-//! ```compile_fail
+//! ```compile_fail,E0624
 //! fn weaken(feeds: ampoule_verify::FeedVerifier) -> ampoule_verify::FeedVerifier {
 //!     feeds.offline()
 //! }
