@@ -128,6 +128,20 @@ with --since: check then proves the ledger only grew since. Exit code 1 means ch
 problems; each is printed.")]
     Ledger(LedgerArgs),
 
+    /// Write one file that holds what a device needs to update on a channel without a
+    /// network: the feed, its trust set, the ledger's steps and the bundle.
+    #[command(after_help = "Examples:
+  ampoule offline --tree ./release --channel stable -o stable.ampoule-offline
+  ampoule update --store /media/camera/models --offline stable.ampoule-offline \\
+      --trust-set trust-1.json --app-version 2.3.0          (on the device, from the SD card)
+
+The file holds the channel's current feed, the trust set it names, every consistency step
+of the audit ledger up to the feed's tree head, and the bundle the feed offers. The device
+checks everything as it does online except the feed's expiry: without a network it cannot
+tell a fresh feed from a stale one. So hand out files made from the current feed, and
+replace them when you publish. An older file after a newer install is refused as a replay.")]
+    Offline(OfflineArgs),
+
     /// Serve a release tree over HTTP, for demos and tests only.
     #[command(after_help = "Example:
   ampoule serve --tree ./release --addr 127.0.0.1:8000
@@ -143,8 +157,11 @@ object store serves the tree. It runs until interrupted (Ctrl-C).")]
       --trust release.public.pem --app-version 2.3.0
   ampoule update --store ./camera --feed https://models.example/feeds/beta.json \\
       --trust-set trust-1.json --app-version 2.3.0 --device-id camera-0042 --json
+  ampoule update --store ./camera --offline stable.ampoule-offline \\
+      --trust release.public.pem --app-version 2.3.0        (no network: see ampoule offline)
 
-The channel is the feed file's name (feeds/<channel>.json) unless --channel names it.
+The channel is the feed file's name (feeds/<channel>.json), or the offline file's channel,
+unless --channel names it.
 Without --device-id, the id in <store>/device-id is used, made at random on the first run.
 The store remembers the highest version and feed sequence it accepted: an older bundle or
 feed is refused from then on. Exit code 0: updated, or nothing to do (up to date, not in
@@ -586,6 +603,19 @@ pub struct WithdrawArgs {
 }
 
 #[derive(Args, Debug)]
+pub struct OfflineArgs {
+    /// The release tree to take the channel's current feed and files from.
+    #[arg(long, value_name = "DIR")]
+    pub tree: PathBuf,
+    /// The channel whose current feed the file carries.
+    #[arg(long, value_name = "NAME")]
+    pub channel: String,
+    /// The offline file to write (.ampoule-offline); it must not exist yet.
+    #[arg(short = 'o', long = "out", value_name = "OUT.ampoule-offline")]
+    pub out: PathBuf,
+}
+
+#[derive(Args, Debug)]
 pub struct ServeArgs {
     /// The release tree to serve.
     #[arg(long, value_name = "DIR")]
@@ -601,8 +631,12 @@ pub struct UpdateArgs {
     #[arg(long, value_name = "DIR")]
     pub store: PathBuf,
     /// The URL of the channel's feed, like http://HOST/feeds/stable.json.
-    #[arg(long, value_name = "URL")]
-    pub feed: String,
+    #[arg(long, value_name = "URL", required_unless_present = "offline")]
+    pub feed: Option<String>,
+    /// Update from this offline file (made by `ampoule offline`) instead of --feed: every
+    /// check but the feed's expiry, which cannot be judged without a network.
+    #[arg(long, value_name = "FILE", conflicts_with = "feed")]
+    pub offline: Option<PathBuf>,
     /// A public key trusted for feeds and bundles (repeat for several).
     #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
     pub trust: Vec<PathBuf>,

@@ -67,6 +67,7 @@ fn main() -> ExitCode {
         Command::Publish(args) => cmd::publish::run(args, &out),
         Command::Withdraw(args) => cmd::withdraw::run(args, &out),
         Command::Ledger(args) => cmd::ledger::run(args, &out),
+        Command::Offline(args) => cmd::offline::run(args, &out),
         Command::Serve(args) => cmd::serve::run(args, &out),
         Command::Update(args) => cmd::update::run(args, &out),
         Command::Store(args) => cmd::store::run(args, &out),

@@ -46,11 +46,9 @@ use tempfile::NamedTempFile;
 
 use crate::Refused;
 
-pub const BUNDLES_DIR: &str = "bundles";
-pub const FEEDS_DIR: &str = "feeds";
+pub use ampoule_verify::format::tree::{BUNDLES_DIR, FEEDS_DIR, TRUST_DIR};
 pub const HISTORY_DIR: &str = "history";
 pub const INDEX_FILE: &str = "index.json";
-pub const TRUST_DIR: &str = "trust";
 pub const LOCK_FILE: &str = ".lock";
 /// The largest history or index file read back; far above years of daily publishing.
 const RECORD_FILE_BYTES: u64 = 16 * 1024 * 1024;

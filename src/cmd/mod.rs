@@ -6,6 +6,7 @@ pub mod external;
 pub mod inspect;
 pub mod keygen;
 pub mod ledger;
+pub mod offline;
 pub mod pack;
 pub mod publish;
 pub mod serve;

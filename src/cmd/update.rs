@@ -1,6 +1,7 @@
 //! `ampoule update`: the device flow from the command line, for scripts and tests. It opens
 //! the store, checks the channel's feed with what the store remembers, installs a newer bundle
-//! or records the feed, and says in one line what happened.
+//! or records the feed, and says in one line what happened. With `--offline` the feed and
+//! everything else come from an offline file instead of the network.
 
 use std::sync::Arc;
 
@@ -20,9 +21,11 @@ use crate::output::Output;
 
 pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
     let app_version = parse_version(&args.app_version, "--app-version")?;
-    let channel = match &args.channel {
-        Some(channel) => channel.clone(),
-        None => channel_of(&args.feed)?,
+    let channel = match (&args.channel, &args.feed, &args.offline) {
+        (Some(channel), _, _) => channel.clone(),
+        (None, Some(feed), _) => channel_of(feed)?,
+        (None, None, Some(file)) => ampoule_verify::update::offline_channel(file)?,
+        (None, None, None) => bail!("give --feed URL, or --offline FILE"),
     };
     ampoule_verify::feed::check_channel(&channel)?;
     let now = Timestamp::now();
@@ -64,8 +67,15 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
     if args.switch_channel {
         device.store().switch_channel(&channel)?;
     }
-    let transfer = Transfer::new().on_progress(download_progress(out));
-    let report = device.update(&args.feed, &transfer, now).into_result()?;
+    let report = match (&args.offline, &args.feed) {
+        (Some(file), _) => device.install_offline(file, now),
+        (None, Some(feed)) => {
+            let transfer = Transfer::new().on_progress(download_progress(out));
+            device.update(feed, &transfer, now)
+        }
+        (None, None) => bail!("give --feed URL, or --offline FILE"),
+    };
+    let report = report.into_result()?;
     show(&device, &report, &app_version, out)
 }
 

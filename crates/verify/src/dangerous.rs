@@ -78,7 +78,8 @@ pub fn skip_ledger(app: App) -> App {
 /// version not newer than the highest it accepted, but nothing shows that the release was
 /// published (the ledger), is current on the device's channel (a withdrawn or superseded
 /// release installs), or is meant for this device (rollout). For a technician's install,
-/// prefer an offline update file, which carries the feed.
+/// prefer an offline update file, which carries the feed ([`crate::Device::install_offline`]):
+/// it loses only the feed's expiry.
 ///
 /// # Errors
 ///

@@ -344,6 +344,17 @@ pub struct FeedVerifier {
     /// The version and expiry of the trust set the keys came from, if they did.
     trust: Option<(u64, Timestamp)>,
     ledger: Option<LedgerVerifier>,
+    expiry: Expiry,
+}
+
+/// Whether a feed's `expires` is checked. Always, except in an offline install
+/// ([`crate::Device::install_offline`]): a device without a network cannot tell a fresh feed
+/// from a stale one, so the one check it cannot make is not made. Crate-private, so that no
+/// app can switch expiry off for a feed it fetched.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Expiry {
+    Checked,
+    NotCheckedOffline,
 }
 
 impl FeedVerifier {
@@ -365,6 +376,7 @@ impl FeedVerifier {
             last: None,
             trust: None,
             ledger: None,
+            expiry: Expiry::Checked,
         })
     }
 
@@ -387,6 +399,7 @@ impl FeedVerifier {
         let mut next = Self::from_trust_set(trust, self.channel)?;
         next.skew_secs = self.skew_secs;
         next.last = self.last;
+        next.expiry = self.expiry;
         // Dropping the requirement here would let a rotation switch the ledger check off.
         next.ledger = self.ledger.map(|l| l.with_trust_set(trust)).transpose()?;
         Ok(next)
@@ -421,6 +434,13 @@ impl FeedVerifier {
     /// [`LedgerVerifier::check`]); the verified tree head is then in [`VerifiedFeed::ledger`].
     pub fn require_ledger(mut self, ledger: LedgerVerifier) -> Self {
         self.ledger = Some(ledger);
+        self
+    }
+
+    /// This verifier for an offline install: every check but the feed's expiry (see
+    /// [`Expiry`]).
+    pub(crate) fn offline(mut self) -> Self {
+        self.expiry = Expiry::NotCheckedOffline;
         self
     }
 
@@ -507,7 +527,9 @@ impl FeedVerifier {
                 feed.issued, self.skew_secs
             ));
         }
-        if feed.expires.unix().saturating_add(self.skew_secs) < now.unix() {
+        if self.expiry == Expiry::Checked
+            && feed.expires.unix().saturating_add(self.skew_secs) < now.unix()
+        {
             return stale(format!(
                 "feed expired at {} (device clock {now}, allowed skew {} s); the publisher \
                  must publish a fresh feed",

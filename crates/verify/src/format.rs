@@ -95,6 +95,105 @@ pub mod trust_set {
     pub const COMMENT_BYTES: usize = 128;
 }
 
+/// The directories of a release tree that devices read, relative to its root. The release
+/// side writes them; an offline file ([`offline`]) names its entries after them.
+pub mod tree {
+    /// Each channel's signed feed, `feeds/<channel>.json`.
+    pub const FEEDS_DIR: &str = "feeds";
+    /// Every bundle published, `bundles/<sha256>.ampoule`, named by the file's SHA-256.
+    pub const BUNDLES_DIR: &str = "bundles";
+    /// Every trust set published, `trust/<version>.json`.
+    pub const TRUST_DIR: &str = "trust";
+}
+
+/// Offline files (`.ampoule-offline`): what a device would have fetched for one update of one
+/// channel, in one ustar archive, for a technician to carry on an SD card.
+///
+/// Entries are named by their paths in the release tree, so a reference in the feed resolved
+/// against [`offline::feed_url`] names an entry (see [`offline::entry_of_url`]). In order:
+/// [`offline::HEADER`], the channel's feed, the trust set the feed names (if any), the
+/// ledger's consistency steps in ascending size (any number up to
+/// [`crate::ledger::MAX_STEPS`]), and the bundle the feed offers (if any).
+pub mod offline {
+    use serde::{Deserialize, Serialize};
+
+    use crate::digest::Digest;
+
+    /// The file extension of an offline file (without the dot).
+    pub const EXTENSION: &str = "ampoule-offline";
+    /// The format version in [`HEADER`]; a reader refuses any other value.
+    pub const FORMAT_VERSION: u32 = 1;
+    /// The first entry: `{"format":1,"channel":"<name>"}`, which says what the file is.
+    pub const HEADER: &str = "offline.json";
+    /// The largest [`HEADER`] entry, in bytes.
+    pub const HEADER_BYTES: u64 = 1024;
+    /// The base URL the device reads the file's feed under. `.invalid` is reserved (RFC 6761
+    /// section 6.4), so nothing here can ever reach a network: a reference that resolves
+    /// outside the file's entries finds nothing.
+    pub const BASE_URL: &str = "https://offline.invalid/";
+
+    /// What [`HEADER`] holds, in this field order; unknown fields and duplicate keys are
+    /// refused.
+    #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+    #[serde(deny_unknown_fields)]
+    pub struct Header {
+        /// Always [`FORMAT_VERSION`].
+        pub format: u32,
+        /// The channel whose feed the file carries.
+        pub channel: String,
+    }
+
+    impl Header {
+        /// The header of an offline file for `channel`.
+        pub fn new(channel: impl Into<String>) -> Header {
+            Header {
+                format: FORMAT_VERSION,
+                channel: channel.into(),
+            }
+        }
+
+        /// The entry's bytes as the writer writes them: compact JSON, no final newline.
+        pub fn to_json(&self) -> String {
+            serde_json::to_string(self).expect("a header of a number and a string serializes")
+        }
+    }
+
+    /// The feed's entry: `feeds/<channel>.json`.
+    pub fn feed_entry(channel: &str) -> String {
+        format!("{}/{channel}.json", super::tree::FEEDS_DIR)
+    }
+
+    /// The trust set's entry: `trust/<version>.json`.
+    pub fn trust_set_entry(version: u64) -> String {
+        format!("{}/{version}.json", super::tree::TRUST_DIR)
+    }
+
+    /// A consistency step's entry: `ledger/consistency/<old size>.json`.
+    pub fn step_entry(old_size: u64) -> String {
+        crate::ledger::step_path(old_size)
+    }
+
+    /// The bundle's entry, by the SHA-256 of the whole bundle file the feed declares:
+    /// `bundles/<sha256>.ampoule`.
+    pub fn bundle_entry(sha256: &Digest) -> String {
+        format!(
+            "{}/{sha256}.{}",
+            super::tree::BUNDLES_DIR,
+            super::BUNDLE_EXTENSION
+        )
+    }
+
+    /// The URL a device reads the feed of `channel` under.
+    pub fn feed_url(channel: &str) -> String {
+        format!("{BASE_URL}{}", feed_entry(channel))
+    }
+
+    /// The entry name a resolved URL stands for; `None` for a URL outside [`BASE_URL`].
+    pub fn entry_of_url(url: &str) -> Option<&str> {
+        url.strip_prefix(BASE_URL).filter(|name| !name.is_empty())
+    }
+}
+
 /// The bytes a signer signs: the context followed by the document.
 pub fn signed_bytes(context: &[u8], document: &[u8]) -> Vec<u8> {
     let mut bytes = Vec::with_capacity(context.len() + document.len());

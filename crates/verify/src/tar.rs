@@ -119,9 +119,25 @@ pub enum Block {
     Zero,
 }
 
+/// Which entry names an archive holds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Names {
+    /// Plain file names without `/`: bundles and their payloads.
+    Plain,
+    /// Relative paths of plain names joined by single `/`s, never `.` or `..`: an offline
+    /// file, whose entries mirror a release tree. Its reader then matches each name against
+    /// its own fixed set.
+    Paths,
+}
+
 /// Checks one 512-byte header block. `archive` names the archive in messages ("bundle",
 /// "payload").
 pub fn parse_header(h: &[u8; 512], archive: &str) -> Result<Block> {
+    parse_header_with(h, archive, Names::Plain)
+}
+
+/// [`parse_header`] for an archive whose entry names are `names`.
+pub(crate) fn parse_header_with(h: &[u8; 512], archive: &str, names: Names) -> Result<Block> {
     if h.iter().all(|&b| b == 0) {
         return Ok(Block::Zero);
     }
@@ -190,9 +206,23 @@ pub fn parse_header(h: &[u8; 512], archive: &str) -> Result<Block> {
             "{archive} entry name '{name}' is empty or not printable UTF-8"
         )));
     };
-    if plain.contains('/') || plain.contains('\\') || plain == "." || plain == ".." {
+    let refusal = match names {
+        Names::Plain if plain.contains(['/', '\\']) || plain == "." || plain == ".." => {
+            Some("is a path; bundles hold only plain file names, nothing outside them")
+        }
+        Names::Paths
+            if plain.contains('\\')
+                || plain
+                    .split('/')
+                    .any(|s| s.is_empty() || s == "." || s == "..") =>
+        {
+            Some("is not a relative path of plain names; nothing may point outside the archive")
+        }
+        _ => None,
+    };
+    if let Some(refusal) = refusal {
         return Err(malformed(format!(
-            "{archive} entry name '{name}' is a path; bundles hold only plain file names, nothing outside them"
+            "{archive} entry name '{name}' {refusal}"
         )));
     }
     let size = parse_octal(&h[124..136]).ok_or_else(|| {

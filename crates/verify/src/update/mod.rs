@@ -21,12 +21,14 @@
 //! The steps run through a [`Session`], which asks the app for each document it needs
 //! ([`Next::Fetch`]) and for the bundle ([`Next::Download`]), so an app with its own HTTP
 //! stack or a platform transfer service drives the same loop. With the `fetch` feature,
-//! [`Device::update`] drives it over HTTP(S) itself.
+//! [`Device::update`] drives it over HTTP(S) itself. [`Device::install_offline`] drives it from
+//! an offline file, where only the feed's expiry goes unchecked.
 //!
 //! Nothing here can be switched off. The weak paths (no ledger, no feed, an unchecked tree
 //! head) live in [`crate::dangerous`], whose documentation says what each one loses.
 
 mod device;
+mod offline;
 mod outcome;
 mod session;
 
@@ -42,6 +44,7 @@ use crate::trust::TrustSet;
 use crate::verify::{DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, ProgressFn};
 
 pub use device::{DEVICE_ID_BYTES, Device};
+pub use offline::offline_channel;
 pub use outcome::{Outcome, Report};
 pub use session::{Download, Fetch, Next, Session};
 

@@ -85,7 +85,6 @@ pub struct Report {
 
 impl Report {
     /// A report of an update that ended before any feed was verified.
-    #[cfg(feature = "fetch")]
     pub(crate) fn ended_early(error: Error) -> Report {
         Report {
             outcome: Outcome::from_error(error),

@@ -10,7 +10,9 @@ use serde::Deserialize;
 
 use crate::digest::{Digest, hash_reader};
 use crate::error::{Error, ErrorKind, Result};
-use crate::feed::{FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, rollout_bucket};
+use crate::feed::{
+    Expiry, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, rollout_bucket,
+};
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
 use crate::ledger::{self, LedgerVerifier, Walk};
 use crate::store::{Store, StoreState};
@@ -109,6 +111,7 @@ pub struct Session<'d> {
     rotated_to: Option<u64>,
     answer: Option<Vec<u8>>,
     state: State,
+    expiry: Expiry,
 }
 
 enum State {
@@ -168,7 +171,15 @@ impl<'d> Session<'d> {
             rotated_to: None,
             answer: None,
             state,
+            expiry: Expiry::Checked,
         }
+    }
+
+    /// This session for an offline install: the feed's expiry is not checked (see
+    /// [`Expiry`]), and nothing else changes.
+    pub(crate) fn offline(mut self) -> Session<'d> {
+        self.expiry = Expiry::NotCheckedOffline;
+        self
     }
 
     /// Runs the update as far as it can go without the app, and says what it needs or how
@@ -212,8 +223,7 @@ impl<'d> Session<'d> {
     }
 
     /// The download of the last [`Next::Download`] is at its path, and its size and digest
-    /// were checked while it streamed.
-    #[cfg(feature = "fetch")]
+    /// were checked while it streamed (or was copied).
     pub(crate) fn downloaded_and_checked(&mut self) {
         if let State::Download(want, release) = std::mem::replace(&mut self.state, State::Ended) {
             self.state = State::Downloaded {
@@ -560,6 +570,9 @@ impl<'d> Session<'d> {
         };
         if let Some((sequence, digest)) = state.last_feed(channel) {
             feeds = feeds.last_accepted(sequence, digest);
+        }
+        if self.expiry == Expiry::NotCheckedOffline {
+            feeds = feeds.offline();
         }
         if self.device.app().ledger == Ledger::Required {
             let heads = match self.held()? {
