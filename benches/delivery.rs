@@ -14,11 +14,11 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::time::{Duration, Instant};
 
-use ampoule::keyfile;
-use ampoule::pack::{PackSpec, pack};
-use ampoule::serve::Server;
-use ampoule::synth;
-use ampoule::tree::{Signing, Tree};
+use ampoule::release::keyfile;
+use ampoule::release::pack::{PackSpec, pack};
+use ampoule::release::serve::Server;
+use ampoule::release::synth;
+use ampoule::release::tree::{Signing, Tree};
 use ampoule_verify::model::read_model_signature_file;
 use ampoule_verify::{PublicKey, Timestamp, TrustedKeys};
 use anyhow::{Context, Result, bail};
@@ -147,7 +147,7 @@ fn publish(
     bundle: &Path,
     key: &ed25519_dalek::SigningKey,
     trusted: &TrustedKeys,
-) -> Result<ampoule::tree::Change> {
+) -> Result<ampoule::release::tree::Change> {
     let tree = Tree::lock(tree)?;
     let staged = tree.stage_bundle(bundle, trusted)?;
     tree.publish(

@@ -6,7 +6,7 @@
 
 use std::time::{Duration, Instant};
 
-use ampoule::ledger::{Entry, Event, Ledger};
+use ampoule::release::ledger_storage::{Entry, Event, Ledger};
 use ampoule_verify::{Digest, KeyId, PublicKey, TrustedKeys};
 use ed25519_dalek::SigningKey;
 

@@ -25,7 +25,7 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
-use ampoule::synth;
+use ampoule::release::synth;
 
 const AMPOULE: &str = env!("CARGO_BIN_EXE_ampoule");
 const BASE_MODEL_BYTES: u64 = 84 * 1024 * 1024;

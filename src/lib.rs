@@ -4,18 +4,14 @@
 //! Format definitions, reading and verification live in `ampoule-verify`; this crate writes
 //! bundles, manages key files and runs the commands.
 
-pub mod atomic;
-pub mod audit;
+// Layers, bottom first: the domain (`release/`), then the front's own types (`cli`,
+// `output`), then the commands (`cmd/`); `main.rs` dispatches. tests/layers.rs checks it.
+pub mod release;
+
 pub mod cli;
-pub mod cmd;
-pub mod demo;
-pub mod keyfile;
-pub mod ledger;
 pub mod output;
-pub mod pack;
-pub mod serve;
-pub mod synth;
-pub mod tree;
+
+pub mod cmd;
 
 /// Exit codes, documented in `--help` and the README.
 pub mod exit {

@@ -7,8 +7,9 @@
 use std::process::ExitCode;
 
 use ampoule::cli::{Cli, Command};
+use ampoule::cmd::{self, demo};
 use ampoule::output::Output;
-use ampoule::{Refused, cmd, demo, exit};
+use ampoule::{Refused, exit};
 use clap::Parser;
 
 fn exit_code_of(err: &anyhow::Error) -> u8 {

@@ -9,7 +9,7 @@
 use std::path::Path;
 use std::process::{Child, Command, Stdio};
 
-use ampoule::ledger::Ledger;
+use ampoule::release::ledger_storage::Ledger;
 use ampoule_verify::feed::{Feed, SignedFeed};
 use ampoule_verify::fetch::{Update, Updater};
 use ampoule_verify::ledger::{Entry, Event, LedgerVerifier, Record, TrustSetEntry, step_path};
@@ -494,9 +494,9 @@ fn check_flags_version_reuse_sequence_gaps_and_entries_without_a_feed() {
 
 /// The seed of `k.pem`, read the way the release side reads it.
 fn tree_key_seed(d: &Path) -> [u8; 32] {
-    ampoule::keyfile::read_secret_key(
+    ampoule::release::keyfile::read_secret_key(
         &d.join("k.pem"),
-        &ampoule::keyfile::PassphraseSource::Env("AMPOULE_TEST_UNUSED".into()),
+        &ampoule::release::keyfile::PassphraseSource::Env("AMPOULE_TEST_UNUSED".into()),
     )
     .expect("the test key is not encrypted")
     .to_bytes()
@@ -527,8 +527,13 @@ fn a_publish_that_stops_after_its_append_leaves_a_warning_and_no_reused_sequence
     );
     entry.version = Version::new(1, 1, 0);
     entry.feed_sequence = 2;
-    ampoule::audit::append(&d.join("tree"), &entry, Some(&entry.bundle_digest), &[&key])
-        .expect("append as publish does");
+    ampoule::release::ledger_audit::append(
+        &d.join("tree"),
+        &entry,
+        Some(&entry.bundle_digest),
+        &[&key],
+    )
+    .expect("append as publish does");
     assert_eq!(
         read_feed(d, "stable").sequence,
         1,

@@ -8,8 +8,8 @@ mod tree_common;
 use std::path::Path;
 use std::process::Output;
 
-use ampoule::keyfile::{PassphraseSource, read_secret_key};
-use ampoule::serve::Server;
+use ampoule::release::keyfile::{PassphraseSource, read_secret_key};
+use ampoule::release::serve::Server;
 use ampoule_verify::feed::{Feed, SignedFeed, rollout_bucket};
 use ampoule_verify::format::{context, signed_bytes};
 use ampoule_verify::signature::SignatureEntry;

@@ -5,7 +5,7 @@ use std::fs::File;
 use std::path::Path;
 use std::process::Command;
 
-use ampoule::keyfile::{self, PassphraseSource};
+use ampoule::release::keyfile::{self, PassphraseSource};
 use ampoule_verify::bundle::read_layout;
 use ampoule_verify::signature::{SignatureEntry, Signatures};
 use ampoule_verify::{KeyId, Manifest, Timestamp, TrustSet, Verifier};
@@ -141,8 +141,10 @@ fn set_signatures(path: &Path, entries: Vec<SignatureEntry>) {
     let sigs = Signatures {
         signatures: entries,
     };
-    ampoule::pack::rewrite_signatures(path, &mut file, &layout, &manifest, &sigs, &|_| Ok(()))
-        .expect("rewrite");
+    ampoule::release::pack::rewrite_signatures(path, &mut file, &layout, &manifest, &sigs, &|_| {
+        Ok(())
+    })
+    .expect("rewrite");
 }
 
 fn signatures_of(path: &Path) -> Vec<SignatureEntry> {

@@ -6,9 +6,9 @@
 
 use std::path::{Path, PathBuf};
 
-use ampoule::atomic::Placement;
-use ampoule::pack::{Parts, sign_manifest, write_bundle_file};
-use ampoule::synth;
+use ampoule::release::atomic::Placement;
+use ampoule::release::pack::{Parts, sign_manifest, write_bundle_file};
+use ampoule::release::synth;
 use ampoule_verify::format::{FORMAT_VERSION, entry};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};
 use ampoule_verify::signature::Signatures;

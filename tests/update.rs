@@ -5,7 +5,7 @@
 use std::path::Path;
 use std::process::{Command, Output};
 
-use ampoule::serve::Server;
+use ampoule::release::serve::Server;
 use ampoule_verify::feed::{SignedFeed, rollout_bucket};
 use ampoule_verify::{Digest, in_rollout};
 
@@ -533,9 +533,9 @@ fn update_requires_the_ledger_proof_issue_4() {
     let mut feed: serde_json::Value = serde_json::from_str(&signed.feed).expect("feed text");
     feed.as_object_mut().expect("object").remove("ledger");
     let text = serde_json::to_string(&feed).expect("feed text");
-    let key = ampoule::keyfile::read_secret_key(
+    let key = ampoule::release::keyfile::read_secret_key(
         &d.join("k.pem"),
-        &ampoule::keyfile::PassphraseSource::None,
+        &ampoule::release::keyfile::PassphraseSource::None,
     )
     .expect("the test key");
     let stripped = SignedFeed {

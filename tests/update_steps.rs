@@ -236,9 +236,9 @@ fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
             .expect("feed");
     let text = signed.feed.replacen("{\"format\":1,", "{\"format\":2,", 1);
     assert_ne!(text, signed.feed);
-    let key = ampoule::keyfile::read_secret_key(
+    let key = ampoule::release::keyfile::read_secret_key(
         &d.join("k.pem"),
-        &ampoule::keyfile::PassphraseSource::None,
+        &ampoule::release::keyfile::PassphraseSource::None,
     )
     .expect("the test key");
     let resigned = ampoule_verify::feed::SignedFeed {
@@ -276,9 +276,9 @@ fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
         d,
         &["keygen", "--secret", "other.pem", "--public", "other.pub"],
     );
-    let other = ampoule::keyfile::read_secret_key(
+    let other = ampoule::release::keyfile::read_secret_key(
         &d.join("other.pem"),
-        &ampoule::keyfile::PassphraseSource::None,
+        &ampoule::release::keyfile::PassphraseSource::None,
     )
     .expect("the other key");
     let mut forged = resigned.clone();

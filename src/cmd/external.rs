@@ -2,34 +2,21 @@
 //! hands back, and trust-set files. An outside signer (an HSM, an offline machine, openssl)
 //! sees only the exact bytes to sign, so the secret key never has to touch this tool.
 
-use std::fs::{self, File};
-use std::io::Read;
+use std::fs;
 use std::path::Path;
 
 use ampoule_verify::PublicKey;
 use ampoule_verify::format::signed_bytes;
 use ampoule_verify::signature::SignatureEntry;
-use anyhow::{Context, Result, bail};
+use anyhow::{Result, bail};
 use ed25519_dalek::Signer;
 
 use crate::Refused;
-use crate::atomic::{Placement, REPLACE, write_bytes};
 use crate::cli::SignerArgs;
 use crate::cmd::passphrase_source;
-use crate::keyfile;
-
-/// Reads a whole file of at most `max` bytes, refusing a larger one before reading it all.
-pub fn read_bounded(path: &Path, max: u64, what: &str) -> Result<Vec<u8>> {
-    let file = File::open(path).with_context(|| format!("cannot open {}", path.display()))?;
-    let mut bytes = Vec::new();
-    file.take(max + 1)
-        .read_to_end(&mut bytes)
-        .with_context(|| format!("cannot read {}", path.display()))?;
-    if bytes.len() as u64 > max {
-        bail!("{} is over {max} bytes; that is not {what}", path.display());
-    }
-    Ok(bytes)
-}
+use crate::release::atomic::{Placement, REPLACE, write_bytes};
+pub use crate::release::files::read_bounded;
+use crate::release::keyfile;
 
 /// Reads a raw 64-byte Ed25519 signature (RFC 8032 section 5.1.6), as
 /// `openssl pkeyutl -sign -rawin` writes it.

@@ -5,8 +5,8 @@ use serde_json::json;
 
 use crate::cli::KeygenArgs;
 use crate::cmd::passphrase_source;
-use crate::keyfile;
 use crate::output::Output;
+use crate::release::keyfile;
 
 pub fn run(args: KeygenArgs, out: &Output) -> Result<()> {
     if args.secret == args.public {

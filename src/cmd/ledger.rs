@@ -18,13 +18,15 @@ use anyhow::{Context, Result, bail};
 use serde_json::{Value, json};
 use tempfile::TempDir;
 
-use crate::audit::{self, AuditReport};
 use crate::cli::{
     LedgerArgs, LedgerCheckArgs, LedgerCommand, LedgerListArgs, LedgerProveArgs, LedgerSourceArgs,
 };
 use crate::cmd::{load_trust, load_trust_set};
-use crate::ledger::{ENTRIES, Entry, HASHES, Ledger, OFFSETS, TREE_HEAD, TREE_HEADS};
 use crate::output::Output;
+use crate::release::ledger_audit::{self as audit, AuditReport};
+use crate::release::ledger_storage::{
+    ENTRIES, Entry, HASHES, Ledger, OFFSETS, TREE_HEAD, TREE_HEADS,
+};
 use crate::{Refused, exit};
 
 pub fn run(args: LedgerArgs, out: &Output) -> Result<()> {
@@ -142,8 +144,8 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
     for old in sizes {
         let _ = fetch(&step_path(old), ampoule_verify::ledger::MAX_STEP_BYTES);
     }
-    let _ = fetch(crate::tree::INDEX_FILE, RECORD_BYTES);
-    let index: crate::tree::Index = fs::read(root.join(crate::tree::INDEX_FILE))
+    let _ = fetch(crate::release::tree::INDEX_FILE, RECORD_BYTES);
+    let index: crate::release::tree::Index = fs::read(root.join(crate::release::tree::INDEX_FILE))
         .ok()
         .and_then(|b| serde_json::from_slice(&b).ok())
         .unwrap_or_default();
@@ -167,14 +169,14 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
     }
     for channel in channels {
         let _ = fetch(
-            &format!("{}/{channel}.json", crate::tree::HISTORY_DIR),
+            &format!("{}/{channel}.json", crate::release::tree::HISTORY_DIR),
             RECORD_BYTES,
         );
     }
     for version in trust_sets {
         // Larger than any valid trust set, so that a grown file is reported changed, not missing.
         let _ = fetch(
-            &format!("{}/{version}.json", crate::tree::TRUST_DIR),
+            &format!("{}/{version}.json", crate::release::tree::TRUST_DIR),
             RECORD_BYTES,
         );
     }
@@ -189,7 +191,7 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
             let _ = fetch(
                 &format!(
                     "{}/{digest}.{}",
-                    crate::tree::BUNDLES_DIR,
+                    crate::release::tree::BUNDLES_DIR,
                     ampoule_verify::format::BUNDLE_EXTENSION
                 ),
                 size,

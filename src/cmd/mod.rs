@@ -1,6 +1,7 @@
 //! One module per subcommand: each turns its raw arguments into checked settings, does the
 //! work through `ampoule_verify` and `pack`, and reports through `Output`.
 
+pub mod demo;
 pub mod diff;
 pub mod external;
 pub mod inspect;
@@ -25,7 +26,7 @@ use anyhow::{Context, Result};
 use semver::Version;
 
 use crate::cli::PassphraseArgs;
-use crate::keyfile::{self, PassphraseSource};
+use crate::release::keyfile::{self, PassphraseSource};
 
 /// Loads every `--trust` key; any unreadable or weak key stops the command.
 pub fn load_trust(paths: &[PathBuf]) -> Result<TrustedKeys> {

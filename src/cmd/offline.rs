@@ -23,10 +23,10 @@ use anyhow::{Context, Result, bail};
 use serde_json::json;
 
 use crate::Refused;
-use crate::atomic::{Placement, place, temp_beside};
 use crate::cli::OfflineArgs;
 use crate::cmd::external::read_bounded;
 use crate::output::Output;
+use crate::release::atomic::{Placement, place, temp_beside};
 
 pub fn run(args: OfflineArgs, out: &Output) -> Result<()> {
     ampoule_verify::feed::check_channel(&args.channel)?;

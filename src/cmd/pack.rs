@@ -13,9 +13,9 @@ use serde_json::json;
 
 use crate::cli::PackArgs;
 use crate::cmd::{parse_version, passphrase_source};
-use crate::keyfile;
 use crate::output::Output;
-use crate::pack::{PackSpec, pack};
+use crate::release::keyfile;
+use crate::release::pack::{PackSpec, pack};
 
 /// The creation time: `--created`, else `SOURCE_DATE_EPOCH` (reproducible-builds.org's
 /// convention for build timestamps), else now.

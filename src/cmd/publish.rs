@@ -12,9 +12,9 @@ use serde_json::{Value, json};
 use crate::cli::PublishArgs;
 use crate::cmd::external::read_bounded;
 use crate::cmd::{load_trust, passphrase_source};
-use crate::keyfile;
 use crate::output::Output;
-use crate::tree::{Change, Signing, Tree, parse_duration};
+use crate::release::keyfile;
+use crate::release::tree::{Change, Signing, Tree, parse_duration};
 
 pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;

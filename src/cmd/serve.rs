@@ -1,4 +1,4 @@
-//! `ampoule serve`: the demo and test web server for a release tree (see `crate::serve`).
+//! `ampoule serve`: the demo and test web server for a release tree (see `crate::release::serve`).
 
 use std::net::SocketAddr;
 
@@ -30,7 +30,7 @@ pub fn run(args: ServeArgs, out: &Output) -> Result<()> {
     }
     let shown = root.clone();
     let mut printed = Ok(());
-    crate::serve::run(root, addr, |bound| {
+    crate::release::serve::run(root, addr, |bound| {
         let url = format!("http://{bound}/");
         printed = out.result(
             &format!("serving {} at {url}", shown.display()),

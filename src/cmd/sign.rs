@@ -13,7 +13,7 @@ use serde_json::json;
 use crate::cli::SignArgs;
 use crate::cmd::external::{ToSign, signature, write_file};
 use crate::output::Output;
-use crate::pack::rewrite_signatures;
+use crate::release::pack::rewrite_signatures;
 
 pub fn run(args: SignArgs, out: &Output) -> Result<()> {
     let mut bundle = Unverified::open(&args.bundle)?;

@@ -17,8 +17,8 @@ use crate::cli::{
     TrustShowArgs, TrustSignArgs,
 };
 use crate::cmd::external::{ToSign, read_bounded, signature, write_file};
-use crate::keyfile;
 use crate::output::Output;
+use crate::release::keyfile;
 
 /// How long a new trust set lasts unless told otherwise: a year, long enough that devices
 /// syncing rarely never see it lapse, short enough that a forgotten set does not live forever.

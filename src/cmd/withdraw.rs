@@ -7,9 +7,9 @@ use anyhow::Result;
 use crate::cli::WithdrawArgs;
 use crate::cmd::passphrase_source;
 use crate::cmd::publish::{read_tree_head_keys, report};
-use crate::keyfile;
 use crate::output::Output;
-use crate::tree::{FEEDS_DIR, Signing, Tree, parse_duration};
+use crate::release::keyfile;
+use crate::release::tree::{FEEDS_DIR, Signing, Tree, parse_duration};
 
 pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;

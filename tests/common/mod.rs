@@ -10,8 +10,8 @@ use std::fs;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
-use ampoule::keyfile;
-use ampoule::pack::{PackSpec, pack};
+use ampoule::release::keyfile;
+use ampoule::release::pack::{PackSpec, pack};
 use ampoule_verify::bundle::write_bundle;
 use ampoule_verify::format::{context, entry, signed_bytes};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};
@@ -86,8 +86,14 @@ impl Env {
         keyfile::write_public_key(&env.path(PUBLIC), &public).expect("public key");
         // A real (tiny) ONNX classifier with one output per label, so pack's model checks
         // pass: 3 x 8 x 8 inputs, 16 hidden units, 6 classes.
-        ampoule::synth::write_onnx_classifier(&env.path(MODEL), 8, 16, u64::from(LABEL_COUNT), 1)
-            .expect("fixture model");
+        ampoule::release::synth::write_onnx_classifier(
+            &env.path(MODEL),
+            8,
+            16,
+            u64::from(LABEL_COUNT),
+            1,
+        )
+        .expect("fixture model");
         env.write(LABELS_FILE, LABELS);
         env
     }

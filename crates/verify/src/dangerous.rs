@@ -55,10 +55,10 @@ use crate::store::Installed;
 use crate::update::{App, Device};
 #[cfg(feature = "release")]
 use crate::{
-    keys::TrustedKeys,
-    merkle::TreeHead,
+    check::bundle::{VerifiedBundle, Verifier},
+    format::keys::TrustedKeys,
+    format::merkle::TreeHead,
     store::Store,
-    verify::{VerifiedBundle, Verifier},
 };
 
 /// Feeds need no proof from the audit ledger.

@@ -31,8 +31,7 @@ macro_rules! pub_for_release {
     };
 }
 
-/// Declares modules that are public only with the `release` feature (and the `fuzzing`
-/// feature for those the fuzz targets read).
+/// Declares modules that are public only with the `release` feature.
 macro_rules! internal {
     ($($name:ident),* $(,)?) => { $(
         #[cfg(feature = "release")]
@@ -42,23 +41,60 @@ macro_rules! internal {
     )* };
 }
 
-internal!(
-    bundle, digest, error, feed, format, keys, labels, ledger, manifest, merkle, signature, signed,
-    store, tar, time, trust, verify,
-);
-#[cfg(all(feature = "fetch", feature = "release"))]
-pub mod fetch;
-#[cfg(all(feature = "fetch", not(feature = "release")))]
-mod fetch;
-#[cfg(any(feature = "release", feature = "fuzzing"))]
-pub mod model;
-#[cfg(not(any(feature = "release", feature = "fuzzing")))]
-mod model;
+// The layers, bottom first; each folder uses only itself and the folders above it in this
+// list (crates/verify/tests/layers.rs checks that). Shared by all of them: the error type,
+// progress reports and the reading thread.
+internal!(error);
+mod progress;
 mod readahead;
-mod unpack;
-
+// The format and its documents.
+internal!(format);
+// The checks: signatures, trust sets, feeds, the ledger's proofs, the app's policy.
+internal!(check);
+// Payload decoding: zstd and the inner tar, only of bytes a check vouched for.
+internal!(payload);
+// The on-device store: atomic swap, rollback, lock.
+internal!(store);
+// The network (feature `fetch`).
+#[cfg(all(feature = "fetch", feature = "release"))]
+pub mod net;
+#[cfg(all(feature = "fetch", not(feature = "release")))]
+mod net;
+// The device's update on top, and the weak paths beside it.
 pub mod dangerous;
 pub mod update;
+
+/// The paths the release side and the tests have always used, for the `release` feature.
+#[cfg(feature = "release")]
+pub use {
+    check::{feed, trust},
+    format::{digest, keys, labels, manifest, merkle, signature, signed, tar, time},
+};
+
+/// The audit ledger: its documents and the device's checks of them.
+#[cfg(feature = "release")]
+pub mod ledger {
+    pub use crate::check::ledger_proof::*;
+    pub use crate::format::ledger_entry::*;
+}
+
+/// A bundle file's outer layout and writer, and the unverified view release tools use.
+#[cfg(feature = "release")]
+pub mod bundle {
+    pub use crate::format::bundle::*;
+    pub use crate::payload::inspect::Unverified;
+}
+
+/// Model readers and the compatibility policy.
+#[cfg(any(feature = "release", feature = "fuzzing"))]
+pub mod model {
+    pub use crate::check::policy::*;
+    pub use crate::format::model::*;
+}
+
+/// HTTP(S) transfers (feature `fetch`).
+#[cfg(all(feature = "fetch", feature = "release"))]
+pub use net as fetch;
 
 /// The README's examples, compiled as doctests so they cannot go stale.
 #[cfg(doctest)]
@@ -66,38 +102,41 @@ pub mod update;
 pub struct ReadmeDoctests;
 
 // The app's trust: keys per role, or the trust set it ships with.
-pub use keys::{KeyId, PublicKey, TrustedKeys};
-pub use signed::{Signers, kind};
+pub use format::keys::{KeyId, PublicKey, TrustedKeys};
+pub use format::signed::{Signers, kind};
 pub use update::Trust;
 // The app itself: its version, the bundle name it accepts, its compatibility policy.
-pub use model::{
-    CompatibilityPolicy, CompatibilityPolicyBuilder, ModelFormat, ShapePattern, TensorSpec,
+pub use check::policy::{
+    CompatibilityPolicy, CompatibilityPolicyBuilder, ShapePattern, TensorSpec,
 };
+pub use format::model::ModelFormat;
 pub use semver::Version;
 pub use update::App;
 // The store, the update and what it ends in.
-pub use feed::{Release as OfferedRelease, VerifiedFeed};
-pub use manifest::Manifest;
+pub use check::feed::{Release as OfferedRelease, VerifiedFeed};
+pub use format::manifest::Manifest;
+pub use progress::{Progress, ProgressFn, Stage};
 pub use store::{Installed, Release};
 pub use update::{Device, Outcome, Report};
-pub use verify::{Progress, ProgressFn, Stage};
 // Bundles' and documents' digests, and the device's clock.
-pub use digest::Digest;
-pub use time::Timestamp;
+pub use format::digest::Digest;
+pub use format::time::Timestamp;
 // Errors.
 pub use error::{Error, ErrorKind, Result};
 #[cfg(feature = "fetch")]
-pub use fetch::Transfer;
+pub use net::Transfer;
 // Paths the release side has always used, kept for it.
 #[cfg(feature = "release")]
-pub use feed::{FeedVerifier, in_rollout};
+pub use check::bundle::{
+    DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, VerifiedBundle, Verifier,
+};
 #[cfg(feature = "release")]
-pub use model::ModelSignature;
+pub use check::feed::{FeedVerifier, in_rollout};
+#[cfg(feature = "release")]
+pub use check::trust::{DocumentKind, TrustSet, TrustSetFile};
+#[cfg(feature = "release")]
+pub use format::model::ModelSignature;
+#[cfg(feature = "release")]
+pub use payload::unpack::Unpacked;
 #[cfg(feature = "release")]
 pub use store::{Store, StoreState};
-#[cfg(feature = "release")]
-pub use trust::{DocumentKind, TrustSet, TrustSetFile};
-#[cfg(feature = "release")]
-pub use verify::{
-    DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, Unpacked, VerifiedBundle, Verifier,
-};

@@ -14,10 +14,10 @@ use std::fs::{self, File, TryLockError};
 use std::io::{self, Read, Write};
 use std::path::{Path, PathBuf};
 
+use crate::check::bundle::Verifier;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::time::Timestamp;
 use crate::store::{Release, Store};
-use crate::time::Timestamp;
-use crate::verify::Verifier;
 
 #[cfg(feature = "fetch")]
 use super::Report;
@@ -55,7 +55,7 @@ impl Device {
     /// [`ErrorKind::Signature`] for trust the device cannot use; [`ErrorKind::Store`] for a
     /// damaged store; I/O errors.
     pub fn open(dir: &Path, channel: &str, app: App, now: Timestamp) -> Result<Device> {
-        crate::feed::check_channel(channel)
+        crate::check::feed::check_channel(channel)
             .map_err(|e| Error::new(ErrorKind::Settings, e.to_string()))?;
         let held = Held::load(&app.trust, dir, now)?;
         let store = Store::open(dir, bundle_verifier(&app, &held)?)?;
@@ -149,14 +149,14 @@ impl Device {
     pub fn update(
         &self,
         feed_url: &str,
-        transfer: &crate::fetch::Transfer,
+        transfer: &crate::net::Transfer,
         now: Timestamp,
     ) -> Report {
         let lock = self.lock_downloads();
         if let Err(e) = &lock {
             return Report::ended_early(clone_error(e));
         }
-        let feed = match crate::fetch::fetch_feed(feed_url, transfer) {
+        let feed = match crate::net::fetch_feed(feed_url, transfer) {
             Ok(bytes) => bytes,
             Err(e) => return Report::ended_early(e),
         };
@@ -164,7 +164,7 @@ impl Device {
         loop {
             match session.advance() {
                 super::Next::Fetch(want) => {
-                    match crate::fetch::fetch_capped(
+                    match crate::net::fetch_capped(
                         want.url(),
                         transfer,
                         want.max_bytes(),
@@ -175,7 +175,7 @@ impl Device {
                     }
                 }
                 super::Next::Download(want) => {
-                    match crate::fetch::download(
+                    match crate::net::download(
                         want.urls(),
                         want.path(),
                         want.size(),

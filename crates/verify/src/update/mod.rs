@@ -36,12 +36,13 @@ use std::fmt;
 
 use semver::Version;
 
+use crate::check::bundle::{DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES};
+use crate::check::policy::CompatibilityPolicy;
+use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
-use crate::model::CompatibilityPolicy;
-use crate::signed::{Signers, kind};
-use crate::time::Timestamp;
-use crate::trust::TrustSet;
-use crate::verify::{DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES, ProgressFn};
+use crate::format::signed::{Signers, kind};
+use crate::format::time::Timestamp;
+use crate::progress::ProgressFn;
 
 pub use device::{DEVICE_ID_BYTES, Device};
 pub use offline::offline_channel;
@@ -184,7 +185,7 @@ impl App {
     /// [`ErrorKind::Settings`] for a name no bundle can have.
     pub fn bundle_name(mut self, name: impl Into<String>) -> Result<App> {
         let name = name.into();
-        crate::manifest::check_name(&name)
+        crate::format::manifest::check_name(&name)
             .map_err(|e| Error::new(ErrorKind::Settings, format!("bundle name: {e}")))?;
         self.bundle_name = Some(name);
         Ok(self)

@@ -8,7 +8,7 @@
 //! store accepted (an older file after a newer install is a replay), the ledger, the rollout,
 //! the app's limits and every check of the bundle.
 //!
-//! The archive is read with the bounded ustar reader that bundles use ([`crate::tar`]): only
+//! The archive is read with the bounded ustar reader that bundles use ([`crate::format::tar`]): only
 //! regular files, only the format's names in the format's order, each within its cap, nothing
 //! after the end-of-archive marker. Opening the file reads headers only. A document is read
 //! when the session asks for it, and the bundle is copied into the store's download directory
@@ -27,17 +27,17 @@ use std::fs::File;
 use std::io::{self, BufReader, Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 
-use crate::digest::{Digest, Hasher};
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::{Digest, Hasher};
+use crate::format::ledger_entry::{MAX_STEP_BYTES, MAX_STEPS};
 use crate::format::offline::{
     FORMAT_VERSION, HEADER, HEADER_BYTES, Header, bundle_entry, entry_of_url, feed_entry, feed_url,
     step_entry, trust_set_entry,
 };
+use crate::format::tar::{self, Block, Names};
+use crate::format::time::Timestamp;
 use crate::format::{limit, trust_set};
-use crate::ledger::{MAX_STEP_BYTES, MAX_STEPS};
-use crate::tar::{self, Block, Names};
-use crate::time::Timestamp;
-use crate::verify::{Progress, ProgressFn, Stage};
+use crate::progress::{Progress, ProgressFn, Stage};
 
 use super::{Device, Download, Fetch, Next, Report};
 
@@ -142,7 +142,7 @@ fn read_header<R: Read>(reader: &mut R) -> Result<(Header, u64)> {
             ),
         ));
     }
-    crate::feed::check_channel(&header.channel)?;
+    crate::check::feed::check_channel(&header.channel)?;
     Ok((header, tar::entry_len(size)))
 }
 

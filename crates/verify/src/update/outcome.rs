@@ -1,8 +1,8 @@
 //! What one update did: a typed outcome an app can act on, and the verified feed and trust-set
 //! version it was decided under.
 
+use crate::check::feed::VerifiedFeed;
 use crate::error::Error;
-use crate::feed::VerifiedFeed;
 use crate::store::Installed;
 
 /// What one update did.

@@ -8,16 +8,17 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
-use crate::digest::{Digest, hash_reader};
-use crate::error::{Error, ErrorKind, Result};
-use crate::feed::{
+use crate::check::bundle::Verifier;
+use crate::check::feed::{
     Expiry, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, rollout_bucket,
 };
+use crate::check::ledger_proof::{LedgerVerifier, Walk};
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::{Digest, hash_reader};
+use crate::format::ledger_entry as ledger;
+use crate::format::time::Timestamp;
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
-use crate::ledger::{self, LedgerVerifier, Walk};
 use crate::store::{Store, StoreState};
-use crate::time::Timestamp;
-use crate::verify::Verifier;
 
 use super::device::bundle_verifier;
 use super::{Device, Held, Ledger, Outcome, Report};
@@ -425,7 +426,10 @@ impl<'d> Session<'d> {
             None => Ok(Step::Go(State::Decide)),
             Some(size) => {
                 let want = Fetch {
-                    url: crate::feed::resolve(&self.feed_url, &ledger::step_reference(size))?,
+                    url: crate::check::feed::resolve(
+                        &self.feed_url,
+                        &ledger::step_reference(size),
+                    )?,
                     what: "consistency step",
                     max_bytes: ledger::MAX_STEP_BYTES,
                 };

@@ -1,0 +1,942 @@
+//! The channel feed: the small signed document a device polls to learn which bundle is current
+//! on its channel, and the checks that make a stale, replayed or foreign feed useless.
+//!
+//! A feed file is an envelope holding the signed feed text as a JSON string and the signatures
+//! over that text's exact UTF-8 bytes (in the shape bundles use, under [`crate::format::context::FEED`]):
+//!
+//! ```json
+//! {
+//!   "feed": "{\"format\":1,\"channel\":\"stable\",\"sequence\":3,...}",
+//!   "signatures": [{ "key_id": "...", "signature": "..." }]
+//! }
+//! ```
+//!
+//! Carrying the text as a string keeps the signed bytes exact without a canonical JSON form,
+//! and lets the device check the signature before it parses the feed itself. Both layers are
+//! parsed into derived structs that refuse unknown fields and duplicate keys.
+//!
+//! The feed binds the release's name, version, size and the SHA-256 of the whole bundle file,
+//! so a device downloads at most the signed number of bytes and can tell a wrong file before it
+//! opens it. `release: null` means the channel has nothing current (every release on it was
+//! withdrawn): a device keeps what it has. A feed from a tree that publishes trust sets also
+//! names the tree's current one (`trust_set`: version, relative path, SHA-256), so that
+//! devices learn of key rotations; `fetch::Updater::check_with` (feature `fetch`) follows
+//! one.
+//!
+//! Freshness: a feed carries `issued` and `expires`; a device refuses one that expired or was
+//! issued in the future, each beyond an allowed clock skew (5 minutes by default, a common
+//! allowance for devices whose clocks drift between syncs). The `sequence` only ever grows: a
+//! lower one than the device accepted before is a replay and is refused. An equal sequence is
+//! the same feed fetched again, which is what every poll between two publishes returns, so it
+//! is accepted (and still must not be expired); when the device also remembers the digest of
+//! the feed it accepted, an equal sequence with different content is refused, since a
+//! publisher never signs two feeds under one sequence.
+
+use std::fmt;
+
+use semver::{Version, VersionReq};
+use serde::{Deserialize, Deserializer, Serialize};
+
+use crate::format::digest::Digest;
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, limit};
+use crate::format::keys::{KeyId, TrustedKeys};
+use crate::check::ledger_proof::{LedgerCheck, LedgerVerifier, Walk};
+use crate::format::ledger_entry::{Event, FeedLedger, Record, invalid as not_published};
+use crate::format::manifest::check_name;
+use crate::format::signature::{SignatureEntry, SignatureReport};
+use crate::format::signed::{SignedDocument, Signers, kind};
+use crate::format::time::Timestamp;
+use crate::check::trust::TrustSet;
+
+/// The clock skew a device allows unless the app sets its own: 5 minutes.
+pub const DEFAULT_CLOCK_SKEW_SECS: u64 = 300;
+
+/// The release a channel currently offers.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Release {
+    /// The bundle's name (the model line), as in its manifest.
+    pub name: String,
+    /// The bundle's version, as in its manifest.
+    pub version: Version,
+    /// The app versions the bundle works with, as in its manifest; lets a device skip a
+    /// download it could not install.
+    pub requires_app: VersionReq,
+    /// The exact size of the bundle file in bytes; a download stops there.
+    pub size: u64,
+    /// SHA-256 of the whole bundle file.
+    pub sha256: Digest,
+    /// Where the bundle is, relative to the feed's own URL (RFC 3986 relative reference made
+    /// only of path segments, such as `../bundles/<sha256>.ampoule`).
+    pub path: String,
+    /// Absolute `http` or `https` URLs of the same file, tried in order after `path`.
+    pub mirrors: Vec<String>,
+    /// The share of devices that should take this release, 0 to 100 percent.
+    pub rollout_percent: u8,
+}
+
+/// A channel feed (format 1). Field order here is the order in the JSON.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Feed {
+    /// The feed format version; always [`FEED_FORMAT_VERSION`].
+    pub format: u32,
+    /// The channel this feed is for (`stable`, `beta`).
+    pub channel: String,
+    /// Grows with every feed the channel publishes; never repeats, never goes down.
+    pub sequence: u64,
+    /// When the feed was signed.
+    pub issued: Timestamp,
+    /// After this instant the feed must not be trusted any more.
+    pub expires: Timestamp,
+    /// The current release, or `null` when the channel has nothing current.
+    #[serde(deserialize_with = "required_option")]
+    pub release: Option<Release>,
+    /// The release tree's current trust set, so that devices learn of key rotations and
+    /// revocations; absent in trees that publish none.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub trust_set: Option<TrustSetRef>,
+    /// The audit ledger's proof for this feed: signed tree head, the release's publish entry
+    /// and its inclusion proof, and a consistency proof (see `format/ledger_entry.rs`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ledger: Option<FeedLedger>,
+}
+
+/// Where a feed's trust set is and what it must be: a device on an older trust set fetches
+/// it, checks the digest, and accepts it only through [`crate::TrustSet::accept_successor`].
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TrustSetRef {
+    /// The trust set's version.
+    pub version: u64,
+    /// Where the trust-set file is, relative to the feed's own URL (path segments only, such
+    /// as `../trust/2.json`).
+    pub path: String,
+    /// SHA-256 of the trust-set file's exact bytes.
+    pub sha256: Digest,
+}
+
+impl TrustSetRef {
+    /// Checks every field against the format's rules.
+    pub fn validate(&self) -> Result<()> {
+        if self.version == 0 {
+            return Err(invalid(
+                "feed trust_set version is 0; trust-set versions start at 1".into(),
+            ));
+        }
+        check_relative_path("trust_set", &self.path)?;
+        Ok(())
+    }
+
+    /// The trust-set file's URL: `path` resolved against the feed's URL.
+    pub fn url(&self, feed_url: &str) -> Result<String> {
+        resolve(feed_url, &self.path)
+    }
+}
+
+/// Makes `release` required in the JSON: `null` must be written out, a missing field is an
+/// error (serde would otherwise read a missing `Option` as `None`).
+fn required_option<'de, D: Deserializer<'de>, T: Deserialize<'de>>(
+    d: D,
+) -> std::result::Result<Option<T>, D::Error> {
+    Option::deserialize(d)
+}
+
+/// The file a channel serves: the feed's exact text and the signatures over it.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SignedFeed {
+    /// The feed document's exact text; the signatures cover its UTF-8 bytes.
+    pub feed: String,
+    /// Signatures over `context::FEED || feed`, in key-id order.
+    pub signatures: Vec<SignatureEntry>,
+}
+
+fn invalid(message: String) -> Error {
+    Error::new(ErrorKind::Feed, message)
+}
+
+/// Checks a channel name: the same rule as bundle names (1 to 64 lowercase letters, digits,
+/// `-`, `_`, `.`, starting with a letter or digit), so a channel name is always a safe file name.
+pub fn check_channel(name: &str) -> Result<()> {
+    check_name(name).map_err(|_| {
+        invalid(format!(
+            "channel name '{}' is not allowed: use 1 to {} lowercase letters, digits, '-', '_' or '.', \
+             starting with a letter or digit",
+            name.chars().take(80).collect::<String>().escape_debug(),
+            limit::NAME_BYTES
+        ))
+    })
+}
+
+/// Whether `path` is a relative reference made only of path segments: no scheme, no leading
+/// `/`, no query, fragment or percent-escapes, no empty or `.` segments, and not ending in `..`.
+/// Refuses a feed `path` field (of `what`: release, trust_set) that is not a relative path of
+/// plain segments.
+fn check_relative_path(what: &str, path: &str) -> Result<()> {
+    if is_relative_path(path) {
+        return Ok(());
+    }
+    Err(invalid(format!(
+        "feed {what} path '{}' is not a relative path of plain segments \
+         (letters, digits, '-', '.', '_', '~', and leading '..')",
+        path.chars().take(120).collect::<String>().escape_debug()
+    )))
+}
+
+fn is_relative_path(path: &str) -> bool {
+    let segment_ok = |s: &str| {
+        !s.is_empty()
+            && s != "."
+            && s.bytes()
+                .all(|b| b.is_ascii_alphanumeric() || b"-._~".contains(&b))
+    };
+    !path.is_empty()
+        && path.len() <= limit::URL_BYTES
+        && path.split('/').all(segment_ok)
+        && path.rsplit('/').next() != Some("..")
+}
+
+/// Whether `url` is an absolute `http` or `https` URL of printable ASCII with a host.
+fn is_absolute_http_url(url: &str) -> bool {
+    let rest = url
+        .strip_prefix("https://")
+        .or_else(|| url.strip_prefix("http://"));
+    let printable = url
+        .bytes()
+        .all(|b| b.is_ascii_graphic() && !b"\"<>\\^`{|}#".contains(&b));
+    match rest {
+        Some(rest) => {
+            let host = rest.split(['/', '?']).next().unwrap_or("");
+            printable && url.len() <= limit::URL_BYTES && !host.is_empty()
+        }
+        None => false,
+    }
+}
+
+impl Release {
+    pub_for_release! {
+        /// Checks every field against the format's rules.
+        fn validate(&self) -> Result<()> {
+            check_name(&self.name).map_err(|e| invalid(format!("feed release: {e}")))?;
+            if self.rollout_percent > 100 {
+                return Err(invalid(format!(
+                    "feed release rollout_percent is {}; it must be 0 to 100",
+                    self.rollout_percent
+                )));
+            }
+            check_relative_path("release", &self.path)?;
+            if self.mirrors.len() > limit::MIRRORS {
+                return Err(invalid(format!(
+                    "feed release lists {} mirrors, over the limit of {}",
+                    self.mirrors.len(),
+                    limit::MIRRORS
+                )));
+            }
+            if let Some(bad) = self.mirrors.iter().find(|m| !is_absolute_http_url(m)) {
+                return Err(invalid(format!(
+                    "feed release mirror '{}' is not an absolute http or https URL",
+                    bad.chars().take(120).collect::<String>().escape_debug()
+                )));
+            }
+            Ok(())
+        }
+    }
+
+    pub_for_release! {
+        /// The URLs to try for the bundle, in order: `path` resolved against the feed's URL,
+        /// then the mirrors.
+        fn urls(&self, feed_url: &str) -> Result<Vec<String>> {
+            let mut urls = vec![resolve(feed_url, &self.path)?];
+            urls.extend(self.mirrors.iter().cloned());
+            Ok(urls)
+        }
+    }
+}
+
+impl Feed {
+    /// Parses feed text strictly (no unknown fields, no duplicate keys) and validates it.
+    pub fn from_json(bytes: &[u8]) -> Result<Feed> {
+        let feed: Feed = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("signed feed is not valid: {e}")))?;
+        feed.validate()?;
+        Ok(feed)
+    }
+
+    /// The feed text as the publisher signs it: compact JSON in field order.
+    pub fn to_json(&self) -> String {
+        serde_json::to_string(self).expect("a feed of plain strings and numbers always serializes")
+    }
+
+    /// Checks every field against the format's rules.
+    pub fn validate(&self) -> Result<()> {
+        if self.format != FEED_FORMAT_VERSION {
+            return Err(invalid(format!(
+                "feed format {} is not supported (this reader knows format {FEED_FORMAT_VERSION})",
+                self.format
+            )));
+        }
+        check_channel(&self.channel)?;
+        if self.expires <= self.issued {
+            return Err(invalid(format!(
+                "feed expires at {}, not after it was issued at {}",
+                self.expires, self.issued
+            )));
+        }
+        if let Some(release) = &self.release {
+            release.validate()?;
+        }
+        if let Some(trust_set) = &self.trust_set {
+            trust_set.validate()?;
+        }
+        Ok(())
+    }
+}
+
+impl SignedFeed {
+    /// Parses a feed file's envelope strictly, refusing it unread when it is over
+    /// [`limit::FEED_BYTES`]. The feed inside is not parsed: its signature comes first.
+    pub fn from_json(bytes: &[u8]) -> Result<SignedFeed> {
+        if bytes.len() as u64 > limit::FEED_BYTES {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "feed is {} bytes, over the limit of {} bytes",
+                    bytes.len(),
+                    limit::FEED_BYTES
+                ),
+            ));
+        }
+        let signed: SignedFeed = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("feed is not valid: {e}")))?;
+        if signed.signatures.len() > limit::SIGNATURES {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "feed holds {} signatures, over the limit of {}",
+                    signed.signatures.len(),
+                    limit::SIGNATURES
+                ),
+            ));
+        }
+        Ok(signed)
+    }
+
+    /// The feed file as the publisher writes it: pretty JSON, signatures in key-id order, a
+    /// final newline.
+    pub fn to_json(&self) -> Vec<u8> {
+        let mut sorted = self.clone();
+        sorted.signatures.sort_by_key(|s| s.key_id);
+        let mut bytes =
+            serde_json::to_vec_pretty(&sorted).expect("a feed envelope of strings serializes");
+        bytes.push(b'\n');
+        bytes
+    }
+}
+
+/// What a device accepts as its channel's feed. Trusted keys and the channel are required.
+#[derive(Debug, Clone)]
+pub struct FeedVerifier {
+    signers: Signers<kind::Feed>,
+    channel: String,
+    skew_secs: u64,
+    last: Option<(u64, Option<Digest>)>,
+    /// The version and expiry of the trust set the keys came from, if they did.
+    trust: Option<(u64, Timestamp)>,
+    ledger: Option<LedgerVerifier>,
+    expiry: Expiry,
+}
+
+/// Whether a feed's `expires` is checked. Always, except in an offline install
+/// ([`crate::Device::install_offline`]): a device without a network cannot tell a fresh feed
+/// from a stale one, so the one check it cannot make is not made. Crate-private, so that no
+/// app can switch expiry off for a feed it fetched.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Expiry {
+    Checked,
+    NotCheckedOffline,
+}
+
+impl FeedVerifier {
+    /// A verifier for feeds of `channel` signed by one of `keys`. Refuses an empty key set and
+    /// a channel name that no feed could carry.
+    pub fn new(keys: TrustedKeys, channel: impl Into<String>) -> Result<Self> {
+        if keys.is_empty() {
+            return Err(Error::new(
+                ErrorKind::Key,
+                "no trusted keys given; a feed verifier needs at least one public key",
+            ));
+        }
+        let channel = channel.into();
+        check_channel(&channel)?;
+        Ok(FeedVerifier {
+            signers: Signers::new(keys, 1)?,
+            channel,
+            skew_secs: DEFAULT_CLOCK_SKEW_SECS,
+            last: None,
+            trust: None,
+            ledger: None,
+            expiry: Expiry::Checked,
+        })
+    }
+
+    /// A verifier for feeds of `channel` under a verified trust set: signed by the set's
+    /// threshold of distinct keys with the feed role. Once the set has expired, every feed is
+    /// refused: an expired set's keys only ever authorise a successor set.
+    pub fn from_trust_set(trust: &TrustSet, channel: impl Into<String>) -> Result<Self> {
+        let signers = trust.signers::<kind::Feed>()?;
+        let mut verifier = Self::new(signers.keys().clone(), channel)?;
+        verifier.signers = signers;
+        verifier.trust = Some((trust.version(), trust.expires()));
+        Ok(verifier)
+    }
+
+    /// This verifier with the feed keys and threshold of `trust` instead of its own; the
+    /// channel, clock skew and last accepted feed stay, and so does a ledger requirement, its
+    /// tree heads then checked with the tree-head keys of `trust`. For a device that just
+    /// accepted a newer trust set.
+    pub fn with_trust_set(self, trust: &TrustSet) -> Result<Self> {
+        let mut next = Self::from_trust_set(trust, self.channel)?;
+        next.skew_secs = self.skew_secs;
+        next.last = self.last;
+        next.expiry = self.expiry;
+        // Dropping the requirement here would let a rotation switch the ledger check off.
+        next.ledger = self.ledger.map(|l| l.with_trust_set(trust)).transpose()?;
+        Ok(next)
+    }
+
+    /// The version of the trust set this verifier's keys came from, if they came from one.
+    pub fn trust_set_version(&self) -> Option<u64> {
+        self.trust.map(|(version, _)| version)
+    }
+
+    /// Requires at least `n` distinct trusted keys to have signed (at least 1).
+    pub fn threshold(mut self, n: usize) -> Self {
+        self.signers = self.signers.with_threshold(n);
+        self
+    }
+
+    /// How far the device's clock may be off, in seconds, when checking `issued` and `expires`.
+    pub fn clock_skew_secs(mut self, secs: u64) -> Self {
+        self.skew_secs = secs;
+        self
+    }
+
+    /// The sequence of the feed this device accepted last, and that feed's digest if the
+    /// device kept it ([`VerifiedFeed::digest`]): lower sequences are refused as replays, and
+    /// an equal sequence with another digest is refused as a second feed under one sequence.
+    pub fn last_accepted(mut self, sequence: u64, digest: Option<Digest>) -> Self {
+        self.last = Some((sequence, digest));
+        self
+    }
+
+    /// Requires every feed to carry a ledger proof that `ledger` accepts (see
+    /// [`LedgerVerifier::check`]); the verified tree head is then in [`VerifiedFeed::ledger`].
+    pub fn require_ledger(mut self, ledger: LedgerVerifier) -> Self {
+        self.ledger = Some(ledger);
+        self
+    }
+
+    /// This verifier for an offline install: every check but the feed's expiry (see
+    /// [`Expiry`]).
+    pub(crate) fn offline(mut self) -> Self {
+        self.expiry = Expiry::NotCheckedOffline;
+        self
+    }
+
+    /// Checks the envelope's signatures alone, the feed text unparsed.
+    pub(crate) fn check_signatures(&self, signed: &SignedFeed) -> Result<SignatureReport> {
+        SignedDocument::<kind::Feed>::new(signed.feed.as_bytes(), &signed.signatures)?
+            .check(&self.signers, "feed")
+    }
+
+    /// The channel this verifier accepts.
+    pub fn channel(&self) -> &str {
+        &self.channel
+    }
+
+    /// Checks a feed file: size, envelope, signatures by trusted keys over the exact feed
+    /// text, then the feed itself, its channel, its times against `now`, and its sequence.
+    ///
+    /// With [`require_ledger`](FeedVerifier::require_ledger), a device that missed ledger
+    /// appends needs the tree's consistency steps: use
+    /// [`verify_with_steps`](FeedVerifier::verify_with_steps) (the updater does).
+    pub fn verify(&self, bytes: &[u8], now: Timestamp) -> Result<VerifiedFeed> {
+        self.verify_with_steps(bytes, now, &mut |size| {
+            Err(Error::new(
+                ErrorKind::Proof,
+                format!(
+                    "the feed's ledger proof does not start at tree size {size}, which this \
+                     device saw last; fetch {} from the release tree to catch up",
+                    crate::format::ledger_entry::step_path(size)
+                ),
+            ))
+        })
+    }
+
+    /// As [`verify`](FeedVerifier::verify), fetching `ledger/consistency/<size>.json` of the
+    /// feed's release tree through `step` when the ledger check needs it.
+    pub fn verify_with_steps(
+        &self,
+        bytes: &[u8],
+        now: Timestamp,
+        step: &mut dyn FnMut(u64) -> Result<Vec<u8>>,
+    ) -> Result<VerifiedFeed> {
+        let (feed, walk) = self.verify_before_steps(bytes, now)?;
+        if let Some(mut walk) = walk {
+            while let Some(size) = walk.needs() {
+                let bytes = step(size)?;
+                walk.advance(&bytes)?;
+            }
+        }
+        Ok(feed)
+    }
+
+    /// [`FeedVerifier::verify_with_steps`] up to the ledger's consistency steps: the feed,
+    /// valid only once the returned walk (if any) has reached its end.
+    pub(crate) fn verify_before_steps(
+        &self,
+        bytes: &[u8],
+        now: Timestamp,
+    ) -> Result<(VerifiedFeed, Option<Walk>)> {
+        if let Some((version, expires)) = self.trust
+            && now > expires
+        {
+            return Err(Error::new(
+                ErrorKind::TrustSet,
+                format!(
+                    "trust set version {version} expired at {expires} (it is now {now}); a newer \
+                     trust set signed by the keys trusted now is needed"
+                ),
+            ));
+        }
+        let signed = SignedFeed::from_json(bytes)?;
+        let report = self.check_signatures(&signed)?;
+        let feed = Feed::from_json(signed.feed.as_bytes())?;
+        if feed.channel != self.channel {
+            return Err(invalid(format!(
+                "feed is for channel '{}' but this device follows channel '{}'",
+                feed.channel, self.channel
+            )));
+        }
+        let stale = |message: String| Err(Error::new(ErrorKind::Stale, message));
+        if feed.issued.unix() > now.unix().saturating_add(self.skew_secs) {
+            return stale(format!(
+                "feed was issued at {}, after this device's clock ({now}) by more than the \
+                 allowed {} s; check the device clock",
+                feed.issued, self.skew_secs
+            ));
+        }
+        if self.expiry == Expiry::Checked
+            && feed.expires.unix().saturating_add(self.skew_secs) < now.unix()
+        {
+            return stale(format!(
+                "feed expired at {} (device clock {now}, allowed skew {} s); the publisher \
+                 must publish a fresh feed",
+                feed.expires, self.skew_secs
+            ));
+        }
+        let digest = Digest::of(signed.feed.as_bytes());
+        let mut is_new = true;
+        if let Some((last, last_digest)) = self.last {
+            if feed.sequence < last {
+                return stale(format!(
+                    "feed sequence {} is lower than {last}, the last one this device accepted; \
+                     refusing a replayed older feed",
+                    feed.sequence
+                ));
+            }
+            if feed.sequence == last {
+                if let Some(d) = last_digest.filter(|d| *d != digest) {
+                    return stale(format!(
+                        "feed sequence {last} was accepted before with digest {d}, but this feed \
+                         under the same sequence has digest {digest}; a publisher never signs \
+                         two feeds under one sequence"
+                    ));
+                }
+                is_new = false;
+            }
+        }
+        let (ledger, walk) = match &self.ledger {
+            Some(verifier) => {
+                let (check, walk) = verifier.check_before_steps(&feed)?;
+                (Some(check), walk)
+            }
+            None => (None, None),
+        };
+        let verified = VerifiedFeed {
+            feed,
+            digest,
+            report,
+            is_new,
+            ledger,
+        };
+        Ok((verified, walk))
+    }
+}
+
+/// A feed that passed every check of the device's feed verifier (signatures, channel,
+/// freshness, sequence, the ledger's proofs). Only this crate can make one.
+#[derive(Clone)]
+pub struct VerifiedFeed {
+    feed: Feed,
+    digest: Digest,
+    report: SignatureReport,
+    is_new: bool,
+    ledger: Option<LedgerCheck>,
+}
+
+impl fmt::Debug for VerifiedFeed {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("VerifiedFeed")
+            .field("channel", &self.feed.channel)
+            .field("sequence", &self.feed.sequence)
+            .field("release", &self.feed.release.as_ref().map(|r| &r.version))
+            .field("signers", &self.report.valid)
+            .finish_non_exhaustive()
+    }
+}
+
+impl VerifiedFeed {
+    pub_for_release! {
+        /// What the ledger check established, when the verifier required one: the device
+        /// remembers its tree head ([`crate::Store::remember_tree_head`]) once it acted on the feed.
+        fn ledger(&self) -> Option<&LedgerCheck> {
+            self.ledger.as_ref()
+        }
+    }
+
+    pub_for_release! {
+        /// The verified feed.
+        fn feed(&self) -> &Feed {
+            &self.feed
+        }
+    }
+
+    /// The current release, if the channel has one.
+    pub fn release(&self) -> Option<&Release> {
+        self.feed.release.as_ref()
+    }
+
+    pub_for_release! {
+        /// The trust set the feed names, if it names one.
+        fn trust_set(&self) -> Option<&TrustSetRef> {
+            self.feed.trust_set.as_ref()
+        }
+    }
+
+    /// When the feed stops being trusted: a device that finds no newer feed by then refuses
+    /// this one, so a cut-off device notices.
+    pub fn expires(&self) -> Timestamp {
+        self.feed.expires
+    }
+
+    /// The feed's sequence: the store remembers it (with [`VerifiedFeed::digest`]) once the
+    /// device acted on the feed, and refuses a lower one from then on.
+    pub fn sequence(&self) -> u64 {
+        self.feed.sequence
+    }
+
+    /// SHA-256 of the signed feed text.
+    pub fn digest(&self) -> Digest {
+        self.digest
+    }
+
+    pub_for_release! {
+        /// Whether the sequence is higher than the last accepted one (false when this is the
+        /// same feed again).
+        fn is_new(&self) -> bool {
+            self.is_new
+        }
+    }
+
+    pub_for_release! {
+        /// The trusted keys whose signatures verified.
+        fn signers(&self) -> &[KeyId] {
+            &self.report.valid
+        }
+    }
+}
+
+/// The rollout bucket of a device for a release, 0 to 9999: the first 8 bytes of
+/// SHA-256(ROLLOUT_DOMAIN || length of id as 4 bytes big-endian || id || bundle digest) as a
+/// big-endian integer, modulo 10000. Stable: the same device and bundle always give the same
+/// bucket; a new bundle reshuffles which devices go first.
+pub fn rollout_bucket(device_id: &str, bundle: &Digest) -> u16 {
+    let mut hasher = crate::format::digest::Hasher::new();
+    hasher.update(ROLLOUT_DOMAIN);
+    hasher.update(&(device_id.len() as u32).to_be_bytes());
+    hasher.update(device_id.as_bytes());
+    hasher.update(bundle.as_bytes());
+    let digest = hasher.finish();
+    let mut first = [0u8; 8];
+    first.copy_from_slice(&digest.as_bytes()[..8]);
+    // 2^64 mod 10000 = 1616, so the modulo favours the lowest buckets by 1 part in about
+    // 10^15: far below anything a rollout could notice.
+    (u64::from_be_bytes(first) % 10_000) as u16
+}
+
+/// Whether a device takes a release rolled out to `percent` percent of devices: its bucket
+/// is below `percent` × 100. 0 takes no device, 100 (or more) every device.
+pub fn in_rollout(device_id: &str, bundle: &Digest, percent: u8) -> bool {
+    u32::from(rollout_bucket(device_id, bundle)) < u32::from(percent.min(100)) * 100
+}
+
+/// Resolves a relative path reference against an absolute `http`/`https` base URL, as RFC 3986
+/// section 5.2 does (merge, then remove dot segments); the base's query and fragment are dropped.
+pub fn resolve(base: &str, reference: &str) -> Result<String> {
+    let bad_base = || {
+        invalid(format!(
+            "'{}' is not an absolute http or https URL",
+            base.chars().take(120).collect::<String>().escape_debug()
+        ))
+    };
+    if !is_absolute_http_url(base) {
+        return Err(bad_base());
+    }
+    let scheme_end = base.find("://").ok_or_else(bad_base)? + 3;
+    let without_query = &base[..base.find(['?', '#']).unwrap_or(base.len())];
+    let (origin, path) = match without_query[scheme_end..].find('/') {
+        Some(i) => without_query.split_at(scheme_end + i),
+        None => (without_query, ""),
+    };
+    if reference.starts_with('/') || reference.contains([':', '?', '#']) {
+        return Err(invalid(format!(
+            "'{}' is not a relative path reference",
+            reference
+                .chars()
+                .take(120)
+                .collect::<String>()
+                .escape_debug()
+        )));
+    }
+    // RFC 3986 section 5.2.3: a base with an authority and an empty path merges as "/" + ref.
+    let merged = match path.rfind('/') {
+        Some(i) => format!("{}{reference}", &path[..=i]),
+        None => format!("/{reference}"),
+    };
+    Ok(format!("{origin}{}", remove_dot_segments(&merged)))
+}
+
+/// RFC 3986 section 5.2.4, step by step (paths here are at most a few kilobytes).
+fn remove_dot_segments(path: &str) -> String {
+    let mut input = path.to_string();
+    let mut output = String::with_capacity(path.len());
+    let pop = |output: &mut String| {
+        let cut = output.rfind('/').unwrap_or(0);
+        output.truncate(cut);
+    };
+    while !input.is_empty() {
+        if input.starts_with("../") {
+            input.replace_range(..3, "");
+        } else if input.starts_with("./") || input.starts_with("/./") {
+            // Steps A ("./" goes) and B ("/./" becomes "/") both drop two bytes.
+            input.replace_range(..2, "");
+        } else if input == "/." {
+            input = "/".into();
+        } else if input.starts_with("/../") {
+            input.replace_range(..3, "");
+            pop(&mut output);
+        } else if input == "/.." {
+            input = "/".into();
+            pop(&mut output);
+        } else if input == "." || input == ".." {
+            input.clear();
+        } else {
+            let start = usize::from(input.starts_with('/'));
+            let end = input[start..].find('/').map_or(input.len(), |i| i + start);
+            output.push_str(&input[..end]);
+            input.replace_range(..end, "");
+        }
+    }
+    output
+}
+
+
+/// The part of the ledger check that reads a feed: its entry, the release it must log, and the
+/// inclusion proof; the tree head's signatures and the walk come from `check/ledger_proof.rs`.
+impl LedgerVerifier {
+    /// Checks the ledger object of an already authenticated `feed`: the tree head's
+    /// signatures, that the release the feed names is the one its entry logs and that the
+    /// entry is in the tree, and that the tree extends the remembered head. `step` fetches
+    /// `ledger/consistency/<size>.json` when the device missed appends.
+    pub fn check(
+        &self,
+        feed: &Feed,
+        step: &mut dyn FnMut(u64) -> Result<Vec<u8>>,
+    ) -> Result<LedgerCheck> {
+        let (check, walk) = self.check_before_steps(feed)?;
+        if let Some(mut walk) = walk {
+            while let Some(size) = walk.needs() {
+                let bytes = step(size)?;
+                walk.advance(&bytes)?;
+            }
+        }
+        Ok(check)
+    }
+
+    /// [`LedgerVerifier::check`] up to the consistency steps: the result, and the walk still
+    /// to make when the feed's proof does not start at the remembered head.
+    pub(crate) fn check_before_steps(&self, feed: &Feed) -> Result<(LedgerCheck, Option<Walk>)> {
+        let Some(ledger) = &feed.ledger else {
+            let what = match &feed.release {
+                Some(r) => format!(
+                    "bundle {} {} (sha256 {}) was signed but never published: feed sequence {} \
+                     carries no ledger proof",
+                    r.name, r.version, r.sha256, feed.sequence
+                ),
+                None => format!(
+                    "feed sequence {} carries no ledger proof, and this device requires one",
+                    feed.sequence
+                ),
+            };
+            return Err(not_published(what));
+        };
+        let report = self.verify_head(&ledger.tree_head)?;
+        let head = ledger.tree_head.head();
+        let entry = match &feed.release {
+            None => None,
+            Some(release) => {
+                let never = |why: String| {
+                    not_published(format!(
+                        "bundle {} {} (sha256 {}) was signed but never published: {why}",
+                        release.name, release.version, release.sha256
+                    ))
+                };
+                let (Some(text), Some(inclusion)) = (&ledger.entry, &ledger.inclusion) else {
+                    return Err(never("the feed carries no ledger entry for it".to_string()));
+                };
+                let entry = match Record::from_bytes(text.as_bytes())? {
+                    Record::Bundle(entry) => entry,
+                    Record::TrustSet(t) => {
+                        return Err(never(format!(
+                            "the ledger entry the feed carries logs trust set version {}, not \
+                             a publish of this bundle",
+                            t.trust_set_version
+                        )));
+                    }
+                };
+                let mismatch = [
+                    ("event", entry.event.to_string(), Event::Publish.to_string()),
+                    ("channel", entry.channel.clone(), feed.channel.clone()),
+                    ("bundle", entry.bundle.clone(), release.name.clone()),
+                    (
+                        "version",
+                        entry.version.to_string(),
+                        release.version.to_string(),
+                    ),
+                    (
+                        "bundle_digest",
+                        entry.bundle_digest.to_string(),
+                        release.sha256.to_string(),
+                    ),
+                ]
+                .into_iter()
+                .find(|(_, found, wanted)| found != wanted);
+                if let Some((field, found, wanted)) = mismatch {
+                    return Err(never(format!(
+                        "the ledger entry the feed carries has {field} {found}, not {wanted}"
+                    )));
+                }
+                if entry.feed_sequence > feed.sequence {
+                    return Err(never(format!(
+                        "the ledger entry the feed carries is for feed sequence {}, after this \
+                         feed's {}",
+                        entry.feed_sequence, feed.sequence
+                    )));
+                }
+                inclusion
+                    .verify(&crate::format::merkle::leaf_hash(text.as_bytes()), &head)
+                    .map_err(|e| {
+                        never(format!(
+                            "its publish entry is not in the ledger's tree head of size {} ({e})",
+                            head.tree_size
+                        ))
+                    })?;
+                Some(entry)
+            }
+        };
+        let walk = match &self.remembered {
+            Some(seen) => Walk::start(seen, &head, &ledger.consistency)?,
+            None => None,
+        };
+        let check = LedgerCheck {
+            tree_head: head,
+            signers: report.valid,
+            entry,
+        };
+        Ok((check, walk))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn resolves_the_rfc_3986_examples() {
+        // RFC 3986 section 5.4.1 (normal examples) and 5.4.2 (abnormal examples), the ones
+        // that are relative path references; base "http://a/b/c/d;p?q".
+        let base = "http://a/b/c/d;p?q";
+        for (reference, expected) in [
+            ("g", "http://a/b/c/g"),
+            ("./g", "http://a/b/c/g"),
+            ("g/", "http://a/b/c/g/"),
+            (";x", "http://a/b/c/;x"),
+            ("g;x", "http://a/b/c/g;x"),
+            (".", "http://a/b/c/"),
+            ("./", "http://a/b/c/"),
+            ("..", "http://a/b/"),
+            ("../", "http://a/b/"),
+            ("../g", "http://a/b/g"),
+            ("../..", "http://a/"),
+            ("../../", "http://a/"),
+            ("../../g", "http://a/g"),
+            ("../../../g", "http://a/g"),
+            ("../../../../g", "http://a/g"),
+            ("g.", "http://a/b/c/g."),
+            (".g", "http://a/b/c/.g"),
+            ("g..", "http://a/b/c/g.."),
+            ("..g", "http://a/b/c/..g"),
+            ("./../g", "http://a/b/g"),
+            ("./g/.", "http://a/b/c/g/"),
+            ("g/./h", "http://a/b/c/g/h"),
+            ("g/../h", "http://a/b/c/h"),
+            ("g;x=1/./y", "http://a/b/c/g;x=1/y"),
+            ("g;x=1/../y", "http://a/b/c/y"),
+        ] {
+            assert_eq!(
+                resolve(base, reference).as_deref().ok(),
+                Some(expected),
+                "{reference}"
+            );
+        }
+        assert_eq!(
+            resolve("http://127.0.0.1:8080", "bundles/x")
+                .ok()
+                .as_deref(),
+            Some("http://127.0.0.1:8080/bundles/x")
+        );
+    }
+
+    #[test]
+    fn release_paths_are_plain_relative_segments() {
+        for good in ["../bundles/ab.ampoule", "bundles/x-1.0.0.ampoule", "a"] {
+            assert!(is_relative_path(good), "{good}");
+        }
+        for bad in [
+            "",
+            "/bundles/x",
+            "http://x/y",
+            "a//b",
+            "./a",
+            "a/..",
+            "a%2e",
+            "a?b",
+            "a\\b",
+        ] {
+            assert!(!is_relative_path(bad), "{bad}");
+        }
+    }
+}

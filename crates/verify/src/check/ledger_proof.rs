@@ -1,0 +1,213 @@
+//! The checks a device makes of the audit ledger before it trusts a release: the tree head is
+//! signed by the keys holding the tree-head role, the release's publish entry is in it, and the
+//! ledger only ever grew since the largest tree head the device saw before.
+//!
+//! A bundle signed with a stolen key and sent to one device in a feed of its own is refused
+//! unless its publish entry is in a signed ledger that extends what the device saw; to put it
+//! there the thief must either publish it for every auditor to see, or fork the ledger, which
+//! the device exposes the next time it sees the real one (that head is not consistent with the
+//! forked head it remembers, and it refuses). The documents involved are in
+//! `format/ledger_entry.rs`; the part of the check that reads a feed is in `check/feed.rs`.
+
+use crate::check::trust::TrustSet;
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::keys::{KeyId, TrustedKeys};
+use crate::format::ledger_entry::{ConsistencyStep, Entry, MAX_STEPS, invalid};
+use crate::format::merkle::{ConsistencyProof, SignedTreeHead, TreeHead};
+use crate::format::signature::SignatureReport;
+use crate::format::signed::{Signers, kind};
+
+/// Checks a tree head's signatures: `threshold` distinct trusted keys over
+/// [`crate::format::context::TREE_HEAD`] and [`TreeHead::signed_document`], the rule every signed document
+/// of this crate follows ([`crate::format::signed`]).
+pub fn check_tree_head(
+    signed: &SignedTreeHead,
+    keys: &TrustedKeys,
+    threshold: usize,
+) -> Result<SignatureReport> {
+    signed.check(&Signers::new(keys.clone(), threshold)?)
+}
+
+/// What the ledger check of a feed established.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct LedgerCheck {
+    /// The verified tree head: the device remembers it (see [`crate::Store::remember_tree_head`]).
+    pub tree_head: TreeHead,
+    /// The trusted keys that signed it.
+    pub signers: Vec<KeyId>,
+    /// The publish entry of the feed's release, checked to be in the tree.
+    pub entry: Option<Entry>,
+}
+
+/// The device's ledger checks, given to [`crate::FeedVerifier::require_ledger`]: whose
+/// signatures a tree head needs, and the largest tree head this device verified before.
+#[derive(Clone, Debug)]
+pub struct LedgerVerifier {
+    signers: Signers<kind::TreeHead>,
+    pub(crate) remembered: Option<TreeHead>,
+}
+
+impl LedgerVerifier {
+    /// Tree heads must be signed by `threshold` (at least 1) distinct keys of `keys`.
+    pub fn new(keys: TrustedKeys, threshold: usize) -> Result<Self> {
+        if keys.is_empty() {
+            return Err(Error::new(
+                ErrorKind::Key,
+                "no trusted keys given; a ledger verifier needs at least one public key",
+            ));
+        }
+        Ok(LedgerVerifier {
+            signers: Signers::new(keys, 1)?.with_threshold(threshold),
+            remembered: None,
+        })
+    }
+
+    /// Tree heads must be signed as the trust set requires for `tree_head` documents.
+    pub fn from_trust_set(trust: &TrustSet) -> Result<Self> {
+        Ok(LedgerVerifier {
+            signers: trust.signers()?,
+            remembered: None,
+        })
+    }
+
+    /// This verifier with the tree-head keys and threshold of `trust` instead of its own; the
+    /// remembered tree head stays. For a device that just accepted a newer trust set.
+    pub fn with_trust_set(self, trust: &TrustSet) -> Result<Self> {
+        Ok(LedgerVerifier {
+            signers: trust.signers()?,
+            remembered: self.remembered,
+        })
+    }
+
+    /// The largest tree head this device verified before: a smaller one, or one that does not
+    /// extend it, is refused.
+    pub fn remembered(mut self, head: Option<TreeHead>) -> Self {
+        self.remembered = head;
+        self
+    }
+
+    /// Checks a tree head's signatures under this verifier's trust.
+    pub fn verify_head(&self, signed: &SignedTreeHead) -> Result<SignatureReport> {
+        signed.check(&self.signers)
+    }
+
+}
+
+/// The walk from the tree head a device remembers up to a feed's tree head, one consistency
+/// step file at a time, each proof checked before the next file is asked for. It holds only
+/// the head reached so far, so a caller that fetches the files itself (the step-by-step
+/// update) can hand them in one by one.
+#[derive(Clone, Debug)]
+pub(crate) struct Walk {
+    seen: TreeHead,
+    current: TreeHead,
+    head: TreeHead,
+    feed_proof: ConsistencyProof,
+    steps: usize,
+    done: bool,
+}
+
+impl Walk {
+    /// Starts a walk from `seen` to `head`; `None` when no step file is needed (the heads are
+    /// equal or the feed's own proof starts at `seen`), after checking what can be checked.
+    pub(crate) fn start(
+        seen: &TreeHead,
+        head: &TreeHead,
+        feed_proof: &ConsistencyProof,
+    ) -> Result<Option<Walk>> {
+        if head.tree_size < seen.tree_size {
+            return Err(Error::new(
+                ErrorKind::Stale,
+                format!(
+                    "ledger tree head of size {} is smaller than the tree head of size {} this \
+                     device saw before; refusing a rolled-back ledger",
+                    head.tree_size, seen.tree_size
+                ),
+            ));
+        }
+        if head.tree_size == seen.tree_size {
+            if head.root_hash != seen.root_hash {
+                return Err(invalid(format!(
+                    "ledger tree head of size {} has root {}, but this device saw root {} at \
+                     that size; the ledger was forked or rewritten",
+                    head.tree_size, head.root_hash, seen.root_hash
+                )));
+            }
+            return Ok(None);
+        }
+        let mut walk = Walk {
+            seen: *seen,
+            current: *seen,
+            head: *head,
+            feed_proof: feed_proof.clone(),
+            steps: 0,
+            done: false,
+        };
+        walk.settle()?;
+        Ok((!walk.done).then_some(walk))
+    }
+
+    /// The old size of the step file needed next (`ledger/consistency/<size>.json`), or
+    /// `None` once the walk reached the feed's head.
+    pub(crate) fn needs(&self) -> Option<u64> {
+        (!self.done).then_some(self.current.tree_size)
+    }
+
+    /// Checks the step file asked for by [`Walk::needs`] and moves on.
+    pub(crate) fn advance(&mut self, bytes: &[u8]) -> Result<()> {
+        if self.done {
+            return Ok(());
+        }
+        if self.steps >= MAX_STEPS {
+            return Err(
+                self.inconsistent(invalid(format!("more than {MAX_STEPS} consistency steps")))
+            );
+        }
+        self.steps += 1;
+        let next = ConsistencyStep::from_json(bytes).map_err(|e| self.inconsistent(e))?;
+        let reached = next.tree_head.head();
+        if next.proof.old_size != self.current.tree_size
+            || reached.tree_size <= self.current.tree_size
+            || reached.tree_size > self.head.tree_size
+        {
+            return Err(self.inconsistent(invalid(format!(
+                "the consistency step from size {} leads from size {} to size {}",
+                self.current.tree_size, next.proof.old_size, reached.tree_size
+            ))));
+        }
+        next.proof
+            .verify(&self.current, &reached)
+            .map_err(|e| self.inconsistent(e))?;
+        self.current = reached;
+        self.settle()
+    }
+
+    /// Finishes the walk when the head reached is the feed's, or the feed's own proof starts
+    /// there.
+    fn settle(&mut self) -> Result<()> {
+        if self.current.tree_size == self.head.tree_size {
+            if self.current.root_hash != self.head.root_hash {
+                return Err(self.inconsistent(invalid(format!(
+                    "the consistency steps lead to root {} at size {}, not to root {}",
+                    self.current.root_hash, self.current.tree_size, self.head.root_hash
+                ))));
+            }
+            self.done = true;
+        } else if self.current.tree_size == self.feed_proof.old_size {
+            // The steps reached the head the feed's own proof starts from.
+            self.feed_proof
+                .verify(&self.current, &self.head)
+                .map_err(|e| self.inconsistent(e))?;
+            self.done = true;
+        }
+        Ok(())
+    }
+
+    fn inconsistent(&self, e: Error) -> Error {
+        invalid(format!(
+            "ledger tree head of size {} is not consistent with the tree head of size {} this \
+             device saw before: {e}",
+            self.head.tree_size, self.seen.tree_size
+        ))
+    }
+}

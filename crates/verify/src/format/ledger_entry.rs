@@ -1,0 +1,266 @@
+//! The audit ledger's documents, as the release side writes them and devices and auditors read
+//! them: the entry appended for every publish and withdraw (and the one for every trust-set
+//! publish), the `ledger` object a feed carries for the release it names, and the consistency
+//! steps a release tree serves. The checks a device makes with them live in
+//! `check/ledger_proof.rs`.
+//!
+//! Which bytes are the leaf: the entry exactly as the ledger stores it (one line of compact
+//! JSON, [`Entry::to_bytes`]). The feed carries that text, and the device checks that it names
+//! the release the feed offers (event, channel, bundle name, version, bundle SHA-256) before
+//! hashing it, so the device never has to rebuild a JSON serialization byte for byte.
+//!
+//! Consistency for devices that missed publishes: the feed carries a proof from the tree head
+//! just before its own, which suffices for a device that saw every head. Every append also
+//! writes one static file, `ledger/consistency/<old size>.json` (a [`ConsistencyStep`]): the
+//! head that followed the head of that size, and the proof between them. A device that
+//! remembers an older head walks these files from its own size up to the feed's head, one
+//! per missed append, each proof checked before the next file is asked for.
+
+use std::fmt;
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::Digest;
+use crate::format::keys::KeyId;
+use crate::format::merkle::{ConsistencyProof, InclusionProof, SignedTreeHead};
+
+/// The largest ledger entry, in bytes; a publish entry is a few hundred.
+pub const MAX_ENTRY_BYTES: usize = 64 * 1024;
+
+/// The largest consistency step file a device reads: a signed tree head and a proof of at
+/// most [`merkle::MAX_PROOF_HASHES`] hashes fit with room to spare.
+pub const MAX_STEP_BYTES: u64 = 32 * 1024;
+
+/// The most consistency steps a device walks in one check: far more publishes than years of
+/// daily releases, yet a bound on what a hostile server can make it fetch.
+pub const MAX_STEPS: usize = 20_000;
+
+/// The ledger's directory in a release tree.
+pub const LEDGER_DIR: &str = "ledger";
+
+/// The directory of consistency steps inside the ledger directory.
+pub const CONSISTENCY_DIR: &str = "consistency";
+
+/// Where the consistency step from the head of `old_size` entries lives, relative to the
+/// release tree's root.
+pub fn step_path(old_size: u64) -> String {
+    format!("{LEDGER_DIR}/{CONSISTENCY_DIR}/{old_size}.json")
+}
+
+/// The same file as a reference relative to a feed's URL (`feeds/<channel>.json`).
+pub fn step_reference(old_size: u64) -> String {
+    format!("../{}", step_path(old_size))
+}
+
+pub(crate) fn invalid(message: String) -> Error {
+    Error::new(ErrorKind::Proof, message)
+}
+
+/// What happened to a bundle on a channel.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+#[non_exhaustive]
+pub enum Event {
+    /// The bundle was published on the channel (or its feed renewed).
+    Publish,
+    /// The bundle was withdrawn from the channel.
+    Withdraw,
+    /// A trust set was published in the release tree (a [`TrustSetEntry`], not an [`Entry`]).
+    #[serde(rename = "trust_set")]
+    TrustSet,
+}
+
+impl fmt::Display for Event {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(match self {
+            Event::Publish => "publish",
+            Event::Withdraw => "withdraw",
+            Event::TrustSet => "trust_set",
+        })
+    }
+}
+
+/// One ledger entry of a bundle: a publish or withdraw, with everything an auditor needs to
+/// match it against a bundle and a feed. Field order here is the order in the JSON.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Entry {
+    /// Publish or withdraw.
+    pub event: Event,
+    /// The channel's name.
+    pub channel: String,
+    /// The bundle's name.
+    pub bundle: String,
+    /// The bundle's version.
+    pub version: semver::Version,
+    /// SHA-256 of the whole bundle file.
+    pub bundle_digest: Digest,
+    /// SHA-256 of the bundle's exact manifest bytes.
+    pub manifest_digest: Digest,
+    /// The keys whose signatures over the manifest were checked when it was published.
+    pub key_ids: Vec<KeyId>,
+    /// When it happened, in seconds since the Unix epoch.
+    pub time: u64,
+    /// The sequence of the feed that carried the change.
+    pub feed_sequence: u64,
+}
+
+impl Entry {
+    /// The entry as one line of compact JSON (without the newline), the bytes the ledger hashes.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        serde_json::to_vec(self).expect("a ledger entry always serializes")
+    }
+
+    /// Parses an entry as stored, refusing oversized input, unknown and duplicate fields.
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self> {
+        if bytes.len() > MAX_ENTRY_BYTES {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "ledger entry is {} bytes, more than the limit of {MAX_ENTRY_BYTES}",
+                    bytes.len()
+                ),
+            ));
+        }
+        let entry: Entry = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("ledger entry is not valid: {e}")))?;
+        if entry.event == Event::TrustSet {
+            return Err(invalid(
+                "ledger entry has event trust_set but the fields of a bundle entry".to_string(),
+            ));
+        }
+        Ok(entry)
+    }
+}
+
+/// The ledger entry of a trust-set publish: which version went into the release tree, the
+/// SHA-256 of its exact file, and who signed it, so that an auditor sees every change of the
+/// keys devices trust. It has fields of its own rather than bundle fields left empty, so no
+/// reader can mistake it for the entry of a release.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TrustSetEntry {
+    /// Always [`Event::TrustSet`].
+    pub event: Event,
+    /// The trust set's version.
+    pub trust_set_version: u64,
+    /// SHA-256 of the trust-set file as published (`trust/<version>.json`).
+    pub trust_set_digest: Digest,
+    /// The keys whose signatures over the trust set were checked when it was published.
+    pub key_ids: Vec<KeyId>,
+    /// When it happened, in seconds since the Unix epoch.
+    pub time: u64,
+}
+
+impl TrustSetEntry {
+    /// The entry as one line of compact JSON, the bytes the ledger hashes.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        serde_json::to_vec(self).expect("a ledger entry always serializes")
+    }
+}
+
+/// Any ledger entry, told apart by its `event` field.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum Record {
+    /// A publish or withdraw of a bundle.
+    Bundle(Entry),
+    /// A trust-set publish.
+    TrustSet(TrustSetEntry),
+}
+
+/// Only the `event` field, to know which kind of entry to parse; the parse that follows
+/// refuses unknown fields.
+#[derive(Deserialize)]
+struct EventOnly {
+    event: Event,
+}
+
+impl Record {
+    /// Parses an entry of either kind as stored, refusing oversized input, unknown and
+    /// duplicate fields.
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self> {
+        if bytes.len() > MAX_ENTRY_BYTES {
+            return Entry::from_bytes(bytes).map(Record::Bundle);
+        }
+        let kind: EventOnly = serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("ledger entry is not valid: {e}")))?;
+        if kind.event != Event::TrustSet {
+            return Entry::from_bytes(bytes).map(Record::Bundle);
+        }
+        serde_json::from_slice(bytes)
+            .map(Record::TrustSet)
+            .map_err(|e| invalid(format!("ledger entry is not valid: {e}")))
+    }
+
+    /// The entry's bytes as the ledger stores them.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        match self {
+            Record::Bundle(e) => e.to_bytes(),
+            Record::TrustSet(e) => e.to_bytes(),
+        }
+    }
+
+    /// When it happened, in seconds since the Unix epoch.
+    pub fn time(&self) -> u64 {
+        match self {
+            Record::Bundle(e) => e.time,
+            Record::TrustSet(e) => e.time,
+        }
+    }
+}
+
+/// The `ledger` object of a feed: the signed tree head made by the append that produced the
+/// feed, the publish entry of the release the feed names with its inclusion proof, and the
+/// consistency proof from the tree head before this one.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FeedLedger {
+    /// The ledger's tree head right after the append.
+    pub tree_head: SignedTreeHead,
+    /// The exact stored bytes of the publish entry of the feed's release, as text; absent
+    /// when the feed names no release.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub entry: Option<String>,
+    /// The proof that `entry` is in the tree `tree_head` describes.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub inclusion: Option<InclusionProof>,
+    /// The proof that the tree head before this one (size 0 for the first) is a prefix.
+    pub consistency: ConsistencyProof,
+}
+
+/// A file `ledger/consistency/<old size>.json`: the tree head that followed the head of
+/// `proof.old_size` entries, and the proof between the two.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ConsistencyStep {
+    /// The next tree head.
+    pub tree_head: SignedTreeHead,
+    /// From the older size to `tree_head`'s size.
+    pub proof: ConsistencyProof,
+}
+
+impl ConsistencyStep {
+    /// Parses a step file, refusing it unread when it is over [`MAX_STEP_BYTES`].
+    pub fn from_json(bytes: &[u8]) -> Result<Self> {
+        if bytes.len() as u64 > MAX_STEP_BYTES {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "consistency step is {} bytes, more than the limit of {MAX_STEP_BYTES}",
+                    bytes.len()
+                ),
+            ));
+        }
+        serde_json::from_slice(bytes)
+            .map_err(|e| invalid(format!("consistency step is not valid: {e}")))
+    }
+
+    /// The file as the release side writes it: pretty JSON and a final newline.
+    pub fn to_json(&self) -> Vec<u8> {
+        let mut bytes =
+            serde_json::to_vec_pretty(self).expect("a consistency step always serializes");
+        bytes.push(b'\n');
+        bytes
+    }
+}

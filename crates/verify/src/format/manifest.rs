@@ -1,0 +1,268 @@
+//! The manifest: the one document every bundle signature covers, binding the release's identity
+//! (name, version, creation time, the app versions it needs) to the digests of every byte it
+//! ships.
+//!
+//! It is parsed into derived structs that refuse unknown fields and duplicate keys, and then
+//! checked field by field ([`Manifest::validate`]) before anything trusts them.
+
+use semver::{Version, VersionReq};
+use serde::{Deserialize, Serialize};
+
+use crate::format::digest::Digest;
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::{FORMAT_VERSION, entry, limit};
+use crate::format::model::ModelSignature;
+use crate::format::tar;
+use crate::format::time::Timestamp;
+
+/// What a file in the payload is for.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+#[non_exhaustive]
+pub enum Role {
+    /// The model file, kept in the format it was packed in.
+    Model,
+    /// The label list, one label per line.
+    Labels,
+}
+
+/// One file inside the payload.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FileEntry {
+    /// The file's name inside the payload (`model.<ext>` or `labels.txt`).
+    pub path: String,
+    /// What the file is for.
+    pub role: Role,
+    /// Its exact size in bytes.
+    pub size: u64,
+    /// Its SHA-256.
+    pub sha256: Digest,
+}
+
+/// How the payload is compressed; zstd (RFC 8878) is the only choice in format 1.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+#[non_exhaustive]
+pub enum Compression {
+    /// Zstandard, RFC 8878.
+    Zstd,
+}
+
+/// The compressed payload entry.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Payload {
+    /// The compression of the inner tar.
+    pub compression: Compression,
+    /// The compressed size in bytes.
+    pub size: u64,
+    /// SHA-256 of the compressed bytes.
+    pub sha256: Digest,
+}
+
+/// A bundle manifest (format 1). Field order here is the order in the JSON.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Manifest {
+    /// The format version; always 1 (`format::FORMAT_VERSION`).
+    pub format: u32,
+    /// The bundle's name: which model line this is (`trailcam-species`).
+    pub name: String,
+    /// The release's version (Semantic Versioning 2.0.0).
+    pub version: Version,
+    /// When the bundle was made.
+    pub created: Timestamp,
+    /// The app versions this model works with.
+    pub requires_app: VersionReq,
+    /// The compressed payload.
+    pub payload: Payload,
+    /// The files in the payload, in payload order: the model, then the labels.
+    pub files: Vec<FileEntry>,
+    /// How many labels the label list holds.
+    pub label_count: u32,
+    /// The model's tensor signature as `pack` read it (ONNX, safetensors); absent for a
+    /// model in a format ampoule does not read.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub model: Option<ModelSignature>,
+}
+
+fn invalid(message: String) -> Error {
+    Error::new(ErrorKind::Manifest, message)
+}
+
+/// Checks a bundle name: 1 to 64 bytes of lowercase ASCII letters, digits, `-`, `_` and `.`,
+/// starting with a letter or digit.
+pub fn check_name(name: &str) -> Result<()> {
+    let ok = !name.is_empty()
+        && name.len() <= limit::NAME_BYTES
+        && name.as_bytes()[0].is_ascii_alphanumeric()
+        && name
+            .bytes()
+            .all(|b| b.is_ascii_lowercase() || b.is_ascii_digit() || b"-_.".contains(&b));
+    if ok {
+        Ok(())
+    } else {
+        Err(invalid(format!(
+            "bundle name '{}' is not allowed: use 1 to {} lowercase letters, digits, '-', '_' or '.', \
+             starting with a letter or digit",
+            tar::shown(name.as_bytes()),
+            limit::NAME_BYTES
+        )))
+    }
+}
+
+/// The payload name of a model file packed with this extension (`onnx` gives `model.onnx`);
+/// `None` if the extension is not 1 to 16 lowercase ASCII letters or digits.
+pub fn model_path(extension: &str) -> Option<String> {
+    let ok = !extension.is_empty()
+        && extension.len() <= limit::MODEL_EXTENSION_CHARS
+        && extension
+            .bytes()
+            .all(|b| b.is_ascii_lowercase() || b.is_ascii_digit());
+    ok.then(|| format!("{}.{extension}", entry::MODEL_STEM))
+}
+
+impl Manifest {
+    pub_for_release! {
+        /// Parses manifest bytes strictly (UTF-8 JSON, no unknown fields, no duplicate keys) and
+        /// validates every field.
+        fn from_json(bytes: &[u8]) -> Result<Manifest> {
+            let manifest: Manifest = serde_json::from_slice(bytes)
+                .map_err(|e| invalid(format!("manifest is not valid: {e}")))?;
+            manifest.validate()?;
+            Ok(manifest)
+        }
+    }
+
+    pub_for_release! {
+        /// The manifest as the writer stores it: pretty JSON with a final newline. The signed
+        /// bytes are whatever the bundle holds; this is only how new bundles are written.
+        fn to_json(&self) -> Vec<u8> {
+            let mut bytes = serde_json::to_vec_pretty(self)
+                .expect("a manifest of plain strings and numbers always serializes");
+            bytes.push(b'\n');
+            bytes
+        }
+    }
+
+    pub_for_release! {
+        /// Checks every field against the format's rules.
+        fn validate(&self) -> Result<()> {
+            if self.format != FORMAT_VERSION {
+                return Err(invalid(format!(
+                    "manifest format {} is not supported (this reader knows format {FORMAT_VERSION}); \
+                     update ampoule-verify to read newer bundles",
+                    self.format
+                )));
+            }
+            check_name(&self.name)?;
+            let [model, labels] = self.files.as_slice() else {
+                return Err(invalid(format!(
+                    "manifest lists {} files; format {FORMAT_VERSION} requires exactly two, the model then the labels",
+                    self.files.len()
+                )));
+            };
+            let model_ok = model.role == Role::Model
+                && model
+                    .path
+                    .strip_prefix(concat!("model", "."))
+                    .and_then(model_path)
+                    .as_deref()
+                    == Some(model.path.as_str());
+            if !model_ok {
+                return Err(invalid(format!(
+                    "manifest's first file must be the model, named 'model.<extension>', not '{}' ({:?})",
+                    tar::shown(model.path.as_bytes()),
+                    model.role
+                )));
+            }
+            if labels.role != Role::Labels || labels.path != entry::LABELS {
+                return Err(invalid(format!(
+                    "manifest's second file must be the labels, named '{}', not '{}' ({:?})",
+                    entry::LABELS,
+                    tar::shown(labels.path.as_bytes()),
+                    labels.role
+                )));
+            }
+            for file in &self.files {
+                if file.size > limit::TAR_ENTRY_BYTES {
+                    return Err(invalid(format!(
+                        "manifest declares '{}' as {} bytes, over the format's limit of {} bytes",
+                        file.path,
+                        file.size,
+                        limit::TAR_ENTRY_BYTES
+                    )));
+                }
+            }
+            if labels.size > limit::LABELS_FILE_BYTES {
+                return Err(invalid(format!(
+                    "manifest declares labels.txt as {} bytes, over the format's limit of {} bytes",
+                    labels.size,
+                    limit::LABELS_FILE_BYTES
+                )));
+            }
+            if self.label_count == 0 {
+                return Err(invalid(
+                    "manifest declares an empty label list; a bundle needs at least one label".into(),
+                ));
+            }
+            if self.label_count as usize > limit::LABELS {
+                return Err(invalid(format!(
+                    "manifest declares {} labels, over the format's limit of {}",
+                    self.label_count,
+                    limit::LABELS
+                )));
+            }
+            Ok(())
+        }
+    }
+
+    pub_for_release! {
+        /// The model file entry.
+        fn model(&self) -> &FileEntry {
+            &self.files[0]
+        }
+    }
+
+    pub_for_release! {
+        /// The labels file entry.
+        fn labels(&self) -> &FileEntry {
+            &self.files[1]
+        }
+    }
+
+    pub_for_release! {
+        /// The exact size of the inner tar the payload decompresses to: a header and padded data
+        /// per file, then the end-of-archive marker.
+        fn unpacked_tar_len(&self) -> u64 {
+            self.files
+                .iter()
+                .map(|f| tar::entry_len(f.size))
+                .sum::<u64>()
+                + tar::END_OF_ARCHIVE.len() as u64
+        }
+    }
+
+    pub_for_release! {
+        /// Parses the stored label list of this bundle and requires `label_count` labels.
+        fn parse_labels(&self, bytes: &[u8]) -> Result<Vec<String>> {
+            let labels = crate::format::labels::parse_stored_labels(bytes)?;
+            if labels.len() != self.label_count as usize {
+                return Err(invalid(format!(
+                    "labels.txt holds {} labels but the manifest declares {}",
+                    labels.len(),
+                    self.label_count
+                )));
+            }
+            Ok(labels)
+        }
+    }
+
+    pub_for_release! {
+        /// The total size of the files in the payload.
+        fn files_len(&self) -> u64 {
+            self.files.iter().map(|f| f.size).sum()
+        }
+    }
+}

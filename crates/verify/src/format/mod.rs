@@ -1,0 +1,241 @@
+//! The one definition of the ampoule bundle format: entry names, size caps and signing contexts.
+//!
+//! The release-side writer and the device-side reader both take every name and limit from here,
+//! so the two halves cannot drift apart. FORMAT.md at the repository root describes the same
+//! format in prose for anyone writing a second reader.
+
+
+// The documents of the format, each read strictly and within its caps. Nothing here checks a
+// signature against trust or decides anything: that is `check/`, the layer above.
+pub mod bundle;
+pub mod digest;
+pub mod keys;
+pub mod labels;
+pub mod ledger_entry;
+pub mod manifest;
+pub mod merkle;
+pub mod model;
+pub mod signature;
+pub mod signed;
+pub mod tar;
+pub mod time;
+
+/// The format version written into every manifest; a reader refuses any other value.
+pub const FORMAT_VERSION: u32 = 1;
+
+/// The format version written into every feed; a reader refuses any other value.
+pub const FEED_FORMAT_VERSION: u32 = 1;
+
+/// The file extension of a bundle (without the dot).
+pub const BUNDLE_EXTENSION: &str = "ampoule";
+
+/// Names of the entries of the outer tar, in the only order a reader accepts.
+pub mod entry {
+    /// The manifest: UTF-8 JSON, the document every signature covers.
+    pub const MANIFEST: &str = "manifest.json";
+    /// The signatures over the manifest's exact bytes: UTF-8 JSON.
+    pub const SIGNATURES: &str = "signatures.json";
+    /// The zstd-compressed inner tar holding the model file and the label list.
+    pub const PAYLOAD: &str = "payload.tar.zst";
+    /// All outer entries in order.
+    pub const OUTER: [&str; 3] = [MANIFEST, SIGNATURES, PAYLOAD];
+    /// The label list inside the payload: UTF-8, one label per line.
+    pub const LABELS: &str = "labels.txt";
+    /// The stem of the model file inside the payload; the extension of the packed file is kept.
+    pub const MODEL_STEM: &str = "model";
+}
+
+/// Hard caps that hold whatever the app's own policy says; every length read from a bundle is
+/// checked against one of these before anything is allocated.
+pub mod limit {
+    /// The manifest's largest size in bytes.
+    pub const MANIFEST_BYTES: u64 = 64 * 1024;
+    /// The signatures document's largest size in bytes.
+    pub const SIGNATURES_BYTES: u64 = 64 * 1024;
+    /// The most signatures one bundle may carry.
+    pub const SIGNATURES: usize = 32;
+    /// The zstd window the decoder accepts, as a power of two: 2^23 bytes = 8 MiB.
+    pub const WINDOW_LOG: u32 = 23;
+    /// The longest model-file extension (after `model.`), in ASCII letters and digits.
+    pub const MODEL_EXTENSION_CHARS: usize = 16;
+    /// The longest bundle name, in bytes.
+    pub const NAME_BYTES: usize = 64;
+    /// The most labels a label list may hold.
+    pub const LABELS: usize = 100_000;
+    /// The longest single label, in bytes.
+    pub const LABEL_BYTES: usize = 256;
+    /// The largest label file, in bytes; it is read into memory to be checked.
+    pub const LABELS_FILE_BYTES: u64 = 4 * 1024 * 1024;
+    /// The largest bundle a tar size field can describe in ustar octal (11 digits).
+    pub const TAR_ENTRY_BYTES: u64 = 0o77777777777;
+    /// The largest feed document (envelope and signatures included), in bytes. A device
+    /// stops reading a feed at this size.
+    pub const FEED_BYTES: u64 = 64 * 1024;
+    /// The most mirrors one feed may list for its release.
+    pub const MIRRORS: usize = 8;
+    /// The longest URL or relative path a feed may hold, in bytes.
+    pub const URL_BYTES: usize = 2048;
+    /// The largest signed tree head (head and signatures, as JSON), in bytes.
+    pub const TREE_HEAD_BYTES: u64 = 16 * 1024;
+}
+
+/// The domain string hashed ahead of a device id and a bundle digest to place a device in or
+/// out of a rollout, so that the same ids give unrelated answers in any other use of SHA-256.
+pub const ROLLOUT_DOMAIN: &[u8] = b"ampoule-rollout-v1\n";
+
+/// Domain-separation contexts: each signature covers `context || document bytes`, so a
+/// signature made for one kind of document can never verify as another kind.
+///
+/// Every context has the form `ampoule-sig-v1:<kind>` followed by a newline. The documents
+/// signed are JSON objects beginning with `{`, so no context is a prefix of another's input.
+pub mod context {
+    /// Signatures over a bundle manifest.
+    pub const MANIFEST: &[u8] = b"ampoule-sig-v1:manifest\n";
+    /// Signatures over a channel feed.
+    pub const FEED: &[u8] = b"ampoule-sig-v1:feed\n";
+    /// Signatures over a ledger's signed tree head.
+    pub const TREE_HEAD: &[u8] = b"ampoule-sig-v1:tree-head\n";
+    /// Signatures over a trust set.
+    pub const TRUST_SET: &[u8] = b"ampoule-sig-v1:trust-set\n";
+}
+
+/// Trust sets: the signed list of keys allowed to sign each document kind, with thresholds.
+pub mod trust_set {
+    /// The format version written into every trust set; a reader refuses any other value.
+    pub const FORMAT_VERSION: u32 = 1;
+    /// The largest trust-set file (envelope and signatures included), in bytes.
+    pub const MAX_BYTES: u64 = 64 * 1024;
+    /// The most keys one trust set may list.
+    pub const MAX_KEYS: usize = 32;
+    /// The longest comment on a key, in bytes.
+    pub const COMMENT_BYTES: usize = 128;
+}
+
+/// The directories of a release tree that devices read, relative to its root. The release
+/// side writes them; an offline file ([`offline`]) names its entries after them.
+pub mod tree {
+    /// Each channel's signed feed, `feeds/<channel>.json`.
+    pub const FEEDS_DIR: &str = "feeds";
+    /// Every bundle published, `bundles/<sha256>.ampoule`, named by the file's SHA-256.
+    pub const BUNDLES_DIR: &str = "bundles";
+    /// Every trust set published, `trust/<version>.json`.
+    pub const TRUST_DIR: &str = "trust";
+}
+
+/// Offline files (`.ampoule-offline`): what a device would have fetched for one update of one
+/// channel, in one ustar archive, for a technician to carry on an SD card.
+///
+/// Entries are named by their paths in the release tree, so a reference in the feed resolved
+/// against [`offline::feed_url`] names an entry (see [`offline::entry_of_url`]). In order:
+/// [`offline::HEADER`], the channel's feed, the trust set the feed names (if any), the
+/// ledger's consistency steps in ascending size (any number up to
+/// [`crate::format::ledger_entry::MAX_STEPS`]), and the bundle the feed offers (if any).
+pub mod offline {
+    use serde::{Deserialize, Serialize};
+
+    use crate::format::digest::Digest;
+
+    /// The file extension of an offline file (without the dot).
+    pub const EXTENSION: &str = "ampoule-offline";
+    /// The format version in [`HEADER`]; a reader refuses any other value.
+    pub const FORMAT_VERSION: u32 = 1;
+    /// The first entry: `{"format":1,"channel":"<name>"}`, which says what the file is.
+    pub const HEADER: &str = "offline.json";
+    /// The largest [`HEADER`] entry, in bytes.
+    pub const HEADER_BYTES: u64 = 1024;
+    /// The base URL the device reads the file's feed under. `.invalid` is reserved (RFC 6761
+    /// section 6.4), so nothing here can ever reach a network: a reference that resolves
+    /// outside the file's entries finds nothing.
+    pub const BASE_URL: &str = "https://offline.invalid/";
+
+    /// What [`HEADER`] holds, in this field order; unknown fields and duplicate keys are
+    /// refused.
+    #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+    #[serde(deny_unknown_fields)]
+    pub struct Header {
+        /// Always [`FORMAT_VERSION`].
+        pub format: u32,
+        /// The channel whose feed the file carries.
+        pub channel: String,
+    }
+
+    impl Header {
+        /// The header of an offline file for `channel`.
+        pub fn new(channel: impl Into<String>) -> Header {
+            Header {
+                format: FORMAT_VERSION,
+                channel: channel.into(),
+            }
+        }
+
+        /// The entry's bytes as the writer writes them: compact JSON, no final newline.
+        pub fn to_json(&self) -> String {
+            serde_json::to_string(self).expect("a header of a number and a string serializes")
+        }
+    }
+
+    /// The feed's entry: `feeds/<channel>.json`.
+    pub fn feed_entry(channel: &str) -> String {
+        format!("{}/{channel}.json", super::tree::FEEDS_DIR)
+    }
+
+    /// The trust set's entry: `trust/<version>.json`.
+    pub fn trust_set_entry(version: u64) -> String {
+        format!("{}/{version}.json", super::tree::TRUST_DIR)
+    }
+
+    /// A consistency step's entry: `ledger/consistency/<old size>.json`.
+    pub fn step_entry(old_size: u64) -> String {
+        crate::format::ledger_entry::step_path(old_size)
+    }
+
+    /// The bundle's entry, by the SHA-256 of the whole bundle file the feed declares:
+    /// `bundles/<sha256>.ampoule`.
+    pub fn bundle_entry(sha256: &Digest) -> String {
+        format!(
+            "{}/{sha256}.{}",
+            super::tree::BUNDLES_DIR,
+            super::BUNDLE_EXTENSION
+        )
+    }
+
+    /// The URL a device reads the feed of `channel` under.
+    pub fn feed_url(channel: &str) -> String {
+        format!("{BASE_URL}{}", feed_entry(channel))
+    }
+
+    /// The entry name a resolved URL stands for; `None` for a URL outside [`BASE_URL`].
+    pub fn entry_of_url(url: &str) -> Option<&str> {
+        url.strip_prefix(BASE_URL).filter(|name| !name.is_empty())
+    }
+}
+
+/// The bytes a signer signs: the context followed by the document.
+pub fn signed_bytes(context: &[u8], document: &[u8]) -> Vec<u8> {
+    let mut bytes = Vec::with_capacity(context.len() + document.len());
+    bytes.extend_from_slice(context);
+    bytes.extend_from_slice(document);
+    bytes
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn contexts_are_distinct_and_none_prefixes_another() {
+        let all = [
+            context::MANIFEST,
+            context::FEED,
+            context::TREE_HEAD,
+            context::TRUST_SET,
+        ];
+        for (i, a) in all.iter().enumerate() {
+            for (j, b) in all.iter().enumerate() {
+                if i != j {
+                    assert!(!b.starts_with(a), "{a:?} prefixes {b:?}");
+                }
+            }
+        }
+    }
+}

@@ -1,0 +1,593 @@
+//! Decompressing a verified payload: a bounded zstd decoder on one thread, the inner tar's
+//! checks and the per-file SHA-256 on another, the writes on a third, and the staging
+//! directory that turns into the destination only when everything matched.
+//!
+//! Memory is bounded by the zstd window cap and a few fixed buffers, never by the model size.
+//! Decoded chunks are shared with the writing thread, not copied: the hash and the write of
+//! the same bytes run side by side.
+
+use std::fs::{self, File, OpenOptions};
+use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::ops::Deref;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
+
+use crate::format::digest::Hasher;
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::limit;
+use crate::format::manifest::Manifest;
+use crate::readahead::ReadAhead;
+use crate::format::tar;
+use crate::check::bundle::VerifiedBundle;
+use crate::progress::{Progress, ProgressFn, Stage};
+
+const ARCHIVE: &str = "payload";
+const CHUNK: usize = 256 * 1024;
+const CHUNKS_IN_FLIGHT: usize = 4;
+/// How much of a file is written between flushes to disk while it streams.
+const EARLY_SYNC_BYTES: usize = 16 * 1024 * 1024;
+
+/// Bytes inside a decoded chunk, shared with the writing thread instead of copied.
+struct Piece {
+    chunk: Arc<Vec<u8>>,
+    start: usize,
+    end: usize,
+}
+
+impl Deref for Piece {
+    type Target = [u8];
+
+    fn deref(&self) -> &[u8] {
+        &self.chunk[self.start..self.end]
+    }
+}
+
+/// Hands a chunk back to the decoder for reuse once nobody else holds it; the last holder
+/// does this, whether that is the reader or the writing thread.
+fn recycle(chunk: Arc<Vec<u8>>, spent: &Sender<Vec<u8>>) {
+    if let Ok(buf) = Arc::try_unwrap(chunk) {
+        let _ = spent.send(buf);
+    }
+}
+
+/// Reads the decoder thread's chunks as one stream, handing spent buffers back for reuse.
+struct ChunkReader {
+    chunks: Receiver<Result<Vec<u8>>>,
+    spent: Sender<Vec<u8>>,
+    current: Arc<Vec<u8>>,
+    pos: usize,
+    failed: Option<Error>,
+}
+
+impl ChunkReader {
+    /// Makes sure unread bytes are at hand; false at the end of the stream.
+    fn fill(&mut self) -> io::Result<bool> {
+        while self.pos == self.current.len() {
+            match self.chunks.recv() {
+                Ok(Ok(chunk)) => {
+                    let spent = std::mem::replace(&mut self.current, Arc::new(chunk));
+                    recycle(spent, &self.spent);
+                    self.pos = 0;
+                }
+                Ok(Err(e)) => {
+                    self.failed = Some(e);
+                    return Err(io::Error::other("payload decoding failed"));
+                }
+                Err(_) => return Ok(false),
+            }
+        }
+        Ok(true)
+    }
+
+    /// Up to `max` of the next bytes, without copying them; `None` at the end of the stream.
+    fn piece(&mut self, max: usize) -> io::Result<Option<Piece>> {
+        if !self.fill()? {
+            return Ok(None);
+        }
+        let end = self.current.len().min(self.pos.saturating_add(max));
+        let piece = Piece {
+            chunk: Arc::clone(&self.current),
+            start: self.pos,
+            end,
+        };
+        self.pos = end;
+        Ok(Some(piece))
+    }
+}
+
+impl Read for ChunkReader {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        if !self.fill()? {
+            return Ok(0);
+        }
+        let n = buf.len().min(self.current.len() - self.pos);
+        buf[..n].copy_from_slice(&self.current[self.pos..self.pos + n]);
+        self.pos += n;
+        Ok(n)
+    }
+}
+
+/// Runs on its own thread for each file written: writes the pieces in order, recycling their
+/// chunks, and gives the file back for its flush to disk.
+///
+/// A second thread flushes the file to disk every [`EARLY_SYNC_BYTES`] as it grows, so the
+/// final `sync_all` has little left to wait for, the writes themselves never wait for the
+/// disk, and a device with little memory does not pile up a whole model of unwritten pages.
+fn write_pieces(file: File, pieces: Receiver<Piece>, spent: Sender<Vec<u8>>) -> io::Result<File> {
+    let early = file.try_clone()?;
+    let (kick, kicked) = sync_channel::<()>(1);
+    std::thread::scope(|scope| {
+        let flusher = scope.spawn(move || kicked.iter().try_for_each(|()| early.sync_data()));
+        let written = write_each(file, pieces, &spent, kick);
+        let flushed = flusher
+            .join()
+            .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        let file = written?;
+        flushed?;
+        Ok(file)
+    })
+}
+
+/// The writing loop of [`write_pieces`]; returning drops `kick`, which stops the flusher.
+fn write_each(
+    mut file: File,
+    pieces: Receiver<Piece>,
+    spent: &Sender<Vec<u8>>,
+    kick: SyncSender<()>,
+) -> io::Result<File> {
+    let mut unflushed = 0;
+    for piece in pieces {
+        file.write_all(&piece)?;
+        unflushed += piece.len();
+        recycle(piece.chunk, spent);
+        if unflushed >= EARLY_SYNC_BYTES {
+            // A flush already under way takes these pages too, so a full queue is no loss.
+            let _ = kick.try_send(());
+            unflushed = 0;
+        }
+    }
+    Ok(file)
+}
+
+fn decode_error(e: &io::Error) -> Error {
+    let text = e.to_string();
+    if text.contains("memory") || text.contains("indow") {
+        Error::new(
+            ErrorKind::TooLarge,
+            format!(
+                "payload's zstd frame needs a window larger than the {} MiB this verifier allows ({text})",
+                (1u64 << limit::WINDOW_LOG) >> 20
+            ),
+        )
+    } else {
+        Error::new(
+            ErrorKind::Malformed,
+            format!("payload is not valid zstd data: {text}"),
+        )
+    }
+}
+
+/// Runs on its own thread: decodes exactly the payload bytes, sends the output in chunks, and
+/// stops with an error once the output passes `tar_len`.
+fn decode(
+    mut file: File,
+    offset: u64,
+    size: u64,
+    tar_len: u64,
+    out: SyncSender<Result<Vec<u8>>>,
+    spent: Receiver<Vec<u8>>,
+) {
+    let result = std::thread::scope(|scope| -> Result<()> {
+        file.seek(SeekFrom::Start(offset))
+            .map_err(|e| Error::io("cannot read the payload", e))?;
+        // The compressed bytes are read on yet another thread, so this one only decodes.
+        let input = ReadAhead::spawn(scope, file.take(size));
+        let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
+            .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
+        decoder
+            .window_log_max(limit::WINDOW_LOG)
+            .map_err(|e| Error::io("cannot set the zstd window limit", e))?;
+        let mut limited = decoder.take(tar_len + 1);
+        let mut total = 0u64;
+        loop {
+            let mut buf = spent.try_recv().unwrap_or_default();
+            buf.resize(CHUNK, 0);
+            let mut filled = 0;
+            while filled < buf.len() {
+                match limited.read(&mut buf[filled..]) {
+                    Ok(0) => break,
+                    Ok(n) => filled += n,
+                    Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
+                    Err(e) => return Err(decode_error(&e)),
+                }
+            }
+            total += filled as u64;
+            if total > tar_len {
+                return Err(Error::new(
+                    ErrorKind::TooLarge,
+                    format!(
+                        "payload decompresses to more than the {tar_len} bytes its manifest declares"
+                    ),
+                ));
+            }
+            if filled == 0 {
+                return Ok(());
+            }
+            buf.truncate(filled);
+            if out.send(Ok(buf)).is_err() {
+                // The reader stopped early because it found an error of its own.
+                return Ok(());
+            }
+        }
+    });
+    if let Err(e) = result {
+        let _ = out.send(Err(e));
+    }
+}
+
+/// Where the files go: nowhere (check only) or a staging directory.
+struct Sink<'a> {
+    dir: Option<&'a Path>,
+}
+
+impl Sink<'_> {
+    fn open(&self, name: &str) -> Result<Option<File>> {
+        let Some(dir) = self.dir else { return Ok(None) };
+        let path = dir.join(name);
+        OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&path)
+            .map(Some)
+            .map_err(|e| Error::io(format!("cannot create {}", path.display()), e))
+    }
+}
+
+/// A payload to decompress: the open bundle file, where the payload starts, and the manifest
+/// that declares its size and digests (already checked against the payload's digest).
+pub(crate) struct Source<'a> {
+    pub file: &'a File,
+    pub payload_offset: u64,
+    pub manifest: &'a Manifest,
+    pub progress: Option<&'a ProgressFn>,
+}
+
+/// Decompresses and checks the payload, writing files into `dir` when given. Returns the
+/// labels.
+pub(crate) fn stream(source: &Source<'_>, dir: Option<&Path>) -> Result<Vec<String>> {
+    let manifest = source.manifest;
+    let tar_len = manifest.unpacked_tar_len();
+    // Progress counts file data only (what `read_payload` advances by), not tar headers.
+    let data_len = manifest.files_len();
+    let file = source
+        .file
+        .try_clone()
+        .map_err(|e| Error::io("cannot read the payload", e))?;
+    let (offset, size) = (source.payload_offset, manifest.payload.size);
+    let (chunk_tx, chunk_rx) = sync_channel(CHUNKS_IN_FLIGHT);
+    let (spent_tx, spent_rx) = channel();
+    let sink = Sink { dir };
+    let progress = source.progress.cloned();
+    let done = AtomicU64::new(0);
+    std::thread::scope(|scope| {
+        scope.spawn(move || decode(file, offset, size, tar_len, chunk_tx, spent_rx));
+        let mut reader = ChunkReader {
+            chunks: chunk_rx,
+            spent: spent_tx,
+            current: Arc::new(Vec::new()),
+            pos: 0,
+            failed: None,
+        };
+        let result = read_payload(&mut reader, manifest, &sink, &|n| {
+            let now = done.fetch_add(n, Ordering::Relaxed) + n;
+            if let Some(report) = &progress {
+                report(Progress {
+                    stage: Stage::Unpack,
+                    done: now,
+                    total: data_len,
+                });
+            }
+        });
+        // Dropping the reader closes the channel, which stops the decoder thread.
+        let failed = reader.failed.take();
+        drop(reader);
+        match (result, failed) {
+            (_, Some(decoder_error)) => Err(decoder_error),
+            (result, None) => result,
+        }
+    })
+}
+
+fn read_payload(
+    reader: &mut ChunkReader,
+    manifest: &Manifest,
+    sink: &Sink<'_>,
+    advance: &dyn Fn(u64),
+) -> Result<Vec<String>> {
+    let order: Vec<&str> = manifest.files.iter().map(|f| f.path.as_str()).collect();
+    let mut labels_bytes = Vec::new();
+    for (index, declared) in manifest.files.iter().enumerate() {
+        let size = tar::expect_entry(reader, ARCHIVE, &order, index)?;
+        if size != declared.size {
+            return Err(Error::new(
+                ErrorKind::Digest,
+                format!(
+                    "payload entry '{}' is {size} bytes but the manifest declares {} bytes",
+                    declared.path, declared.size
+                ),
+            ));
+        }
+        let out = sink.open(&declared.path)?;
+        let cannot_write = |e| Error::io(format!("cannot write {}", declared.path), e);
+        let (found, out) = std::thread::scope(|scope| -> Result<_> {
+            let mut writer = out.map(|file| {
+                let (pieces, queued) = sync_channel(CHUNKS_IN_FLIGHT);
+                let spent = reader.spent.clone();
+                (
+                    pieces,
+                    scope.spawn(move || write_pieces(file, queued, spent)),
+                )
+            });
+            let mut hasher = Hasher::new();
+            let mut left = size;
+            while left > 0 {
+                let want = usize::try_from(left).unwrap_or(usize::MAX);
+                let piece = match reader.piece(want) {
+                    Ok(Some(piece)) => piece,
+                    Ok(None) => {
+                        return Err(tar::truncated(&format!(
+                            "{ARCHIVE} entry '{}'",
+                            declared.path
+                        )));
+                    }
+                    Err(e) => {
+                        let what = format!("cannot read {ARCHIVE} entry '{}'", declared.path);
+                        return Err(Error::io(what, e));
+                    }
+                };
+                hasher.update(&piece);
+                if declared.role == crate::format::manifest::Role::Labels {
+                    labels_bytes.extend_from_slice(&piece);
+                }
+                let n = piece.len() as u64;
+                if let Some((pieces, _)) = &writer
+                    && pieces.send(piece).is_err()
+                {
+                    // The writing thread stopped on an error; it is reported below.
+                    break;
+                }
+                left -= n;
+                advance(n);
+            }
+            let file = match writer.take() {
+                Some((pieces, handle)) => {
+                    drop(pieces);
+                    let file = handle
+                        .join()
+                        .unwrap_or_else(|panic| std::panic::resume_unwind(panic))
+                        .map_err(cannot_write)?;
+                    Some(file)
+                }
+                None => None,
+            };
+            Ok((hasher.finish(), file))
+        })?;
+        if found != declared.sha256 {
+            return Err(Error::new(
+                ErrorKind::Digest,
+                format!(
+                    "digest mismatch for '{}': manifest declares sha256 {}, the payload holds {found}",
+                    declared.path, declared.sha256
+                ),
+            ));
+        }
+        if let Some(file) = out {
+            file.sync_all()
+                .map_err(|e| Error::io(format!("cannot flush {} to disk", declared.path), e))?;
+        }
+        tar::read_padding(reader, size, ARCHIVE, &declared.path)?;
+    }
+    tar::read_end(reader, ARCHIVE)?;
+    let labels = manifest.parse_labels(&labels_bytes)?;
+    Ok(labels)
+}
+
+/// A staging directory that removes itself unless it was renamed into place (`keep`).
+pub(crate) struct Staging {
+    pub path: PathBuf,
+    pub keep: bool,
+}
+
+impl Drop for Staging {
+    fn drop(&mut self) {
+        if !self.keep {
+            let _ = fs::remove_dir_all(&self.path);
+        }
+    }
+}
+
+impl Staging {
+    /// Makes a fresh, empty directory in `dir` named `<prefix><pid>-<nanos>-<attempt>`, so
+    /// that leftovers of a crashed run can be recognised by their prefix.
+    pub(crate) fn create_in(dir: &Path, prefix: &str) -> Result<Staging> {
+        let pid = std::process::id();
+        for attempt in 0..100u32 {
+            let nanos = std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(0, |d| d.subsec_nanos());
+            let path = dir.join(format!("{prefix}{pid}-{nanos:x}-{attempt}"));
+            match fs::create_dir(&path) {
+                Ok(()) => return Ok(Staging { path, keep: false }),
+                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+                Err(e) => {
+                    return Err(Error::io(
+                        format!("cannot create a staging directory in {}", dir.display()),
+                        e,
+                    ));
+                }
+            }
+        }
+        Err(Error::new(
+            ErrorKind::Destination,
+            format!(
+                "cannot find a free staging directory name in {}",
+                dir.display()
+            ),
+        ))
+    }
+}
+
+/// Makes a fresh, empty staging directory beside `dest`.
+fn make_staging(dest: &Path) -> Result<Staging> {
+    let stem = dest
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "bundle".into());
+    Staging::create_in(parent_of(dest), &format!(".{stem}.partial-"))
+}
+
+fn parent_of(path: &Path) -> &Path {
+    match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    }
+}
+
+/// Flushes a directory's entries to disk, so a rename in it survives a power cut.
+pub(crate) fn sync_dir(dir: &Path) -> Result<()> {
+    File::open(dir).and_then(|d| d.sync_all()).map_err(|e| {
+        Error::io(
+            format!("cannot flush directory {} to disk", dir.display()),
+            e,
+        )
+    })
+}
+
+/// Unpacks into a staging directory and renames it to `dest` once every check passed,
+/// including `last_checks` on the labels and the staged files.
+pub(crate) fn unpack_to(
+    source: &Source<'_>,
+    dest: &Path,
+    last_checks: &dyn Fn(&[String], &Path) -> Result<()>,
+) -> Result<Vec<String>> {
+    if fs::symlink_metadata(dest).is_ok() {
+        return Err(Error::new(
+            ErrorKind::Destination,
+            format!(
+                "{} already exists; unpack into a new directory (nothing was written)",
+                dest.display()
+            ),
+        ));
+    }
+    let mut staging = make_staging(dest)?;
+    let labels = stream(source, Some(&staging.path))?;
+    last_checks(&labels, &staging.path)?;
+    sync_dir(&staging.path)?;
+    fs::rename(&staging.path, dest).map_err(|e| {
+        Error::io(
+            format!("cannot move the unpacked files to {}", dest.display()),
+            e,
+        )
+    })?;
+    staging.keep = true;
+    sync_dir(parent_of(dest))?;
+    Ok(labels)
+}
+
+/// Decompression of a verified bundle: the payload layer's part of [`VerifiedBundle`], which
+/// the checks below it only ever hand on.
+impl VerifiedBundle {
+    /// Decompresses the payload and checks every file's size and digest without writing
+    /// anything. Memory stays bounded whatever the model's size.
+    pub fn check_contents(&mut self) -> Result<Vec<String>> {
+        let labels = crate::payload::unpack::stream(&self.source(), None)?;
+        self.check_labels(&labels)?;
+        Ok(labels)
+    }
+
+    /// Decompresses into `dir`, an existing empty staging directory, with every check that
+    /// [`VerifiedBundle::unpack`] makes before its rename. For the store, which stages and
+    /// renames on its own.
+    pub(crate) fn unpack_into_staging(&self, dir: &Path) -> Result<Vec<String>> {
+        let labels = crate::payload::unpack::stream(&self.source(), Some(dir))?;
+        self.last_checks(&labels, dir)?;
+        Ok(labels)
+    }
+
+    /// The checks that need the unpacked files: required labels, and the model's signature.
+    fn last_checks(&self, labels: &[String], staged: &Path) -> Result<()> {
+        self.check_labels(labels)?;
+        self.check_model_signature(staged)
+    }
+
+    fn check_labels(&self, labels: &[String]) -> Result<()> {
+        match &self.compatibility {
+            Some(policy) => policy.check_required_labels(labels),
+            None => Ok(()),
+        }
+    }
+
+    /// Reads the unpacked model's signature again and requires it to be the one the signed
+    /// manifest records, so a manifest cannot describe a different model than it ships.
+    fn check_model_signature(&self, dir: &Path) -> Result<()> {
+        if self.manifest.model.is_none() {
+            // Packed as opaque: the manifest makes no claim about the model's structure.
+            return Ok(());
+        }
+        let model = self.manifest.model();
+        let found = crate::format::model::read_model_signature_file(&dir.join(&model.path))?;
+        if found != self.manifest.model {
+            return Err(Error::new(
+                ErrorKind::Manifest,
+                format!(
+                    "{} does not have the model signature its manifest records; the bundle was packed wrongly",
+                    model.path
+                ),
+            ));
+        }
+        Ok(())
+    }
+
+    fn source(&self) -> crate::payload::unpack::Source<'_> {
+        crate::payload::unpack::Source {
+            file: &self.file,
+            payload_offset: self.layout.payload_offset,
+            manifest: &self.manifest,
+            progress: self.progress.as_ref(),
+        }
+    }
+
+    /// Unpacks the model and labels into the new directory `dest`, which must not exist.
+    /// Files are written into a fresh staging directory beside it and checked as they stream;
+    /// only when every check passed is the staging directory renamed to `dest`. On any
+    /// failure nothing is left behind.
+    pub fn unpack(self, dest: &Path) -> Result<Unpacked> {
+        let labels = crate::payload::unpack::unpack_to(&self.source(), dest, &|labels, staged| {
+            self.last_checks(labels, staged)
+        })?;
+        Ok(Unpacked {
+            model: dest.join(&self.manifest.model().path),
+            labels_path: dest.join(&self.manifest.labels().path),
+            dir: dest.to_path_buf(),
+            labels,
+            manifest: self.manifest,
+        })
+    }
+}
+
+/// A verified bundle's files, unpacked and checked.
+#[derive(Debug, Clone)]
+pub struct Unpacked {
+    /// The directory holding the files.
+    pub dir: PathBuf,
+    /// The model file.
+    pub model: PathBuf,
+    /// The label list file.
+    pub labels_path: PathBuf,
+    /// The labels, in output-index order.
+    pub labels: Vec<String>,
+    /// The verified manifest.
+    pub manifest: Manifest,
+}

@@ -1,0 +1,1543 @@
+//! The on-device store: where an app keeps the verified model it runs, the one before it (for
+//! rollback), and what it must remember to refuse old bundles, laid out so that a crash or
+//! power cut at any moment leaves either the old or the new model, never neither.
+//!
+//! # Layout
+//!
+//! ```text
+//! STORE/
+//!   state.json                      the one commit point (see below)
+//!   lock                            empty; updaters hold an exclusive lock on it
+//!   trust-set.json                  the newest trust set the device accepted (see below)
+//!   .state.json.tmp-<pid>-<n>       a new state.json being written (removed if left over)
+//!   releases/
+//!     <name>-<version>-<12 hex>/    one verified release; the hex is the start of the
+//!       model.<ext>                 SHA-256 of its exact manifest bytes
+//!       labels.txt
+//!       manifest.json               the exact signed manifest bytes
+//!       signatures.json             the bundle's signatures over them
+//!     .staging-<pid>-<n>/           a release being unpacked (removed if left over)
+//! ```
+//!
+//! `state.json` names the current and the previous release (directory name, version and
+//! manifest SHA-256), the model line's name, the highest version ever accepted, and per
+//! channel the highest version and feed sequence accepted. Pointers and rollback state live
+//! in this one file on purpose: replacing it (write a temporary file, fsync it, rename it over
+//! `state.json`, fsync the store directory) switches the model and raises the rollback floor
+//! in one atomic step, so no crash can leave a new model running with an old floor, or a
+//! raised floor with the old model (which would refuse the retried install).
+//!
+//! # Install
+//!
+//! Under the lock: remove leftovers of crashed runs; check the bundle against the store (its
+//! signatures again under the store's keys, the model line, a version newer than any accepted,
+//! a feed sequence not lower than the channel's); unpack into a staging directory with every
+//! file fsynced; write the manifest and signatures beside them; fsync the staging directory;
+//! rename it into `releases/`; fsync `releases/`; then commit `state.json` as above. Until the
+//! rename of `state.json` the old model stays current; after it, the new one is. The numbered
+//! points of this sequence are [`Step`]s; tests crash a child process at each one.
+//!
+//! # Opening
+//!
+//! [`Store::open_current`] checks the current release fully before the app uses it: the
+//! manifest's SHA-256 against `state.json`, its signatures against the app's trusted keys, its
+//! policy against the app (name, app-version range, size limit), the directory's name and
+//! entries, and every file's size and SHA-256 (one read of the model). A store edited between
+//! runs (a changed byte, a swapped manifest, a hand-edited `state.json`, a deleted release) is
+//! refused with what is wrong. Opening takes no lock, so an app never waits for a slow
+//! update: `state.json` is replaced atomically, and an update never deletes the current or the
+//! previous release. Only [`Store::gc`] (and the clean-up at the start of every update)
+//! deletes releases, those that are neither current nor previous; an open that loses such a
+//! race sees `state.json` change and checks again.
+//!
+//! # Rollback
+//!
+//! [`Store::rollback`] makes the previous release current again, after checking it fully,
+//! and forgets the release it replaces (there is no previous afterwards). The highest version
+//! accepted is not lowered: the rolled-back-from version, and anything not newer than it, is
+//! refused from then on, so a fixed model must carry a newer version. Going back to the
+//! previous release is allowed despite the floor because the store verified and ran it before.
+//!
+//! # Trust set
+//!
+//! An app that runs on a trust set keeps the newest set it accepted in `trust-set.json`, the
+//! exact bytes of [`TrustSet::to_json`], replaced atomically (temporary file, fsync, rename,
+//! fsync of the directory) under the updaters' lock by [`Store::save_trust_set`]. Its version
+//! is the highest trust-set version the device accepted: saving an older one is refused, and
+//! [`Store::trust_set`] takes the newer of it and the set shipped with the app. The file is
+//! one atomic unit of its own, apart from `state.json`, so a crash leaves the old or the new
+//! set. A damaged file (a changed byte breaks its signatures or its JSON) is an error, never a
+//! reason to fall back to the shipped set, which could bring revoked keys back.
+//!
+//! # Limits of what a store can detect
+//!
+//! Anyone who can write the store directory can do what the store's own code does. The checks
+//! catch damage and edits that do not re-create a consistent store; they cannot stop someone
+//! with the device's write access from deleting the whole store (which resets rollback
+//! protection) or restoring an older consistent copy of it. A missing `state.json` beside
+//! existing releases is refused rather than treated as a fresh store.
+
+use std::collections::BTreeMap;
+use std::fs::{self, File, OpenOptions, TryLockError};
+use std::io::{self, Read, Write};
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use semver::Version;
+use serde::{Deserialize, Serialize};
+
+use crate::format::digest::{Digest, hash_reader};
+use crate::error::{Error, ErrorKind, Result};
+use crate::check::feed::VerifiedFeed;
+use crate::format::{entry, limit, trust_set};
+use crate::format::keys::KeyId;
+use crate::format::manifest::{Manifest, Role};
+use crate::format::merkle::TreeHead;
+use crate::format::time::Timestamp;
+use crate::check::trust::TrustSet;
+use crate::payload::unpack::{Staging, sync_dir};
+use crate::check::bundle::{VerifiedBundle, Verifier};
+
+/// The format version of `state.json` this crate writes. Format 2 added `channel`; a
+/// format 1 file (no `channel`) is read as following no channel yet.
+pub const STATE_FORMAT: u32 = 2;
+/// The oldest `state.json` format this crate reads.
+const OLDEST_STATE_FORMAT: u32 = 1;
+/// The state file's name in the store directory.
+pub const STATE_FILE: &str = "state.json";
+/// The lock file's name in the store directory.
+pub const LOCK_FILE: &str = "lock";
+/// The directory holding the releases.
+pub const RELEASES_DIR: &str = "releases";
+/// The file holding the newest trust set the device accepted.
+pub const TRUST_SET_FILE: &str = "trust-set.json";
+/// The most channels a store remembers.
+pub const MAX_CHANNELS: usize = 64;
+
+const STATE_BYTES: u64 = 64 * 1024;
+const STATE_TEMP_PREFIX: &str = ".state.json.tmp-";
+const TRUST_SET_TEMP_PREFIX: &str = ".trust-set.json.tmp-";
+const STAGING_PREFIX: &str = ".staging-";
+const RELEASE_NAME_BYTES: usize = 200;
+const DIGEST_PREFIX_HEX: usize = 12;
+const LOCK_POLL: Duration = Duration::from_millis(20);
+const OPEN_ATTEMPTS: usize = 3;
+
+/// A release named in `state.json`.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[non_exhaustive]
+pub struct ReleaseRef {
+    /// The release's directory name under `releases/`.
+    pub release: String,
+    /// The release's version, as its manifest states it.
+    pub version: Version,
+    /// SHA-256 of the release's exact manifest bytes.
+    pub manifest_sha256: Digest,
+}
+
+/// What the store accepted on one channel.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[non_exhaustive]
+pub struct ChannelState {
+    /// The highest version installed from this channel; `None` when feeds of the channel were
+    /// recorded ([`Store::record_feed`]) but nothing was installed from it yet.
+    pub highest_version: Option<Version>,
+    /// The highest feed sequence accepted on this channel, if a feed ever named one.
+    pub highest_sequence: Option<u64>,
+    /// SHA-256 of the signed text of the feed accepted under `highest_sequence`, when known:
+    /// with it, another feed under the same sequence is refused too.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub feed_sha256: Option<Digest>,
+}
+
+/// The store's state (`state.json`): which releases are current and previous, and what it
+/// must remember to refuse old bundles.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[non_exhaustive]
+pub struct StoreState {
+    /// Always [`STATE_FORMAT`].
+    pub format: u32,
+    /// The model line this store holds, set by the first install.
+    pub name: Option<String>,
+    /// The channel this store follows, set by the first feed it accepts; changing it is an
+    /// explicit call ([`Store::switch_channel`]). Absent in format 1 files.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub channel: Option<String>,
+    /// The highest version ever accepted; never lowered, not even by a rollback.
+    pub highest_version: Option<Version>,
+    /// The release the app runs.
+    pub current: Option<ReleaseRef>,
+    /// The release before it, kept for [`Store::rollback`].
+    pub previous: Option<ReleaseRef>,
+    /// What was accepted per channel.
+    pub channels: BTreeMap<String, ChannelState>,
+    /// The largest audit-ledger tree head this device verified ([`Store::remember_tree_head`]);
+    /// absent until the first one, and in stores written before the ledger existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tree_head: Option<TreeHead>,
+}
+
+impl StoreState {
+    fn empty() -> Self {
+        StoreState {
+            format: STATE_FORMAT,
+            name: None,
+            channel: None,
+            highest_version: None,
+            current: None,
+            previous: None,
+            channels: BTreeMap::new(),
+            tree_head: None,
+        }
+    }
+
+    fn to_json(&self) -> Vec<u8> {
+        let mut bytes = serde_json::to_vec_pretty(self)
+            .expect("a store state of plain strings and numbers always serializes");
+        bytes.push(b'\n');
+        bytes
+    }
+
+    /// Checks what the types alone do not: names that stay inside `releases/`, and a state
+    /// that the store's own code could have written.
+    fn validate(&self) -> std::result::Result<(), String> {
+        if !(OLDEST_STATE_FORMAT..=STATE_FORMAT).contains(&self.format) {
+            return Err(format!(
+                "format {} is not supported (this reader knows formats \
+                 {OLDEST_STATE_FORMAT} to {STATE_FORMAT})",
+                self.format
+            ));
+        }
+        if let Some(channel) = &self.channel
+            && check_channel(channel).is_err()
+        {
+            return Err(format!(
+                "it follows '{}', which is not a channel name",
+                channel.escape_debug()
+            ));
+        }
+        if let Some(name) = &self.name {
+            crate::format::manifest::check_name(name)
+                .map_err(|_| format!("'{name}' is not a bundle name"))?;
+        }
+        for pointer in [&self.current, &self.previous].into_iter().flatten() {
+            if !is_release_name(&pointer.release) {
+                return Err(format!(
+                    "it names release '{}', which is not a release directory name",
+                    pointer.release.escape_debug()
+                ));
+            }
+            match &self.highest_version {
+                Some(h) if pointer.version.cmp_precedence(h).is_le() => {}
+                _ => {
+                    return Err(format!(
+                        "release {} has version {}, above the highest version accepted ({})",
+                        pointer.release,
+                        pointer.version,
+                        shown_version(self.highest_version.as_ref())
+                    ));
+                }
+            }
+            if self.name.is_none() {
+                return Err(format!(
+                    "it names release {} but no model line",
+                    pointer.release
+                ));
+            }
+        }
+        if let (Some(c), Some(p)) = (&self.current, &self.previous)
+            && c.release == p.release
+        {
+            return Err(format!(
+                "release {} is both current and previous",
+                c.release
+            ));
+        }
+        if self.channels.len() > MAX_CHANNELS {
+            return Err(format!(
+                "it lists {} channels, over the limit of {MAX_CHANNELS}",
+                self.channels.len()
+            ));
+        }
+        for (channel, state) in &self.channels {
+            if check_channel(channel).is_err() {
+                return Err(format!(
+                    "'{}' is not a channel name",
+                    channel.escape_debug()
+                ));
+            }
+            match (&state.highest_version, &self.highest_version) {
+                (None, _) => {}
+                (Some(v), Some(h)) if v.cmp_precedence(h).is_le() => {}
+                (Some(v), _) => {
+                    return Err(format!(
+                        "channel '{channel}' records version {v}, above the highest version accepted ({})",
+                        shown_version(self.highest_version.as_ref())
+                    ));
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+impl StoreState {
+    /// The feed last accepted on `channel`, as [`crate::FeedVerifier::last_accepted`] takes it:
+    /// its sequence and, when the store kept it, the digest of its signed text.
+    pub fn last_feed(&self, channel: &str) -> Option<(u64, Option<Digest>)> {
+        let known = self.channels.get(channel)?;
+        known.highest_sequence.map(|s| (s, known.feed_sha256))
+    }
+}
+
+fn shown_version(v: Option<&Version>) -> String {
+    v.map_or_else(|| "none".to_string(), Version::to_string)
+}
+
+/// A release in the store whose every check passed just now.
+#[derive(Debug, Clone)]
+#[non_exhaustive]
+pub struct Release {
+    /// The release's directory.
+    pub dir: PathBuf,
+    /// The model file.
+    pub model: PathBuf,
+    /// The label list file.
+    pub labels_path: PathBuf,
+    /// The labels, in output-index order.
+    pub labels: Vec<String>,
+    /// The verified manifest.
+    pub manifest: Manifest,
+    /// SHA-256 of the exact manifest bytes.
+    pub manifest_sha256: Digest,
+    /// The trusted keys whose signatures verified.
+    pub signers: Vec<KeyId>,
+}
+
+/// What an install did.
+#[derive(Debug, Clone)]
+#[non_exhaustive]
+pub struct Installed {
+    /// The release now current.
+    pub release: Release,
+    /// The version it replaced, now the previous release.
+    pub replaced: Option<Version>,
+}
+
+/// A point in an install or rollback, in order. A test hook sees each one after it is reached
+/// and may fail it or stop the process there; nothing else uses them.
+#[doc(hidden)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum Step {
+    /// The lock is held, leftovers are removed, the request is allowed; nothing is written.
+    Locked,
+    /// An empty staging directory exists.
+    StagingCreated,
+    /// The model and labels are in the staging directory, fsynced.
+    FilesWritten,
+    /// The manifest and signatures are beside them, fsynced.
+    MetadataWritten,
+    /// The staging directory itself is fsynced.
+    StagingSynced,
+    /// The staging directory is renamed into `releases/`.
+    ReleaseRenamed,
+    /// `releases/` is fsynced.
+    ReleasesSynced,
+    /// The new `state.json` is written to a temporary file and fsynced.
+    StateWritten,
+    /// The temporary file is renamed over `state.json`: the commit.
+    StateRenamed,
+    /// The store directory is fsynced; the operation is durable.
+    StoreSynced,
+}
+
+impl Step {
+    /// Every step of an install, in order.
+    pub const INSTALL: [Step; 10] = [
+        Step::Locked,
+        Step::StagingCreated,
+        Step::FilesWritten,
+        Step::MetadataWritten,
+        Step::StagingSynced,
+        Step::ReleaseRenamed,
+        Step::ReleasesSynced,
+        Step::StateWritten,
+        Step::StateRenamed,
+        Step::StoreSynced,
+    ];
+
+    /// Every step of a rollback, in order.
+    pub const ROLLBACK: [Step; 4] = [
+        Step::Locked,
+        Step::StateWritten,
+        Step::StateRenamed,
+        Step::StoreSynced,
+    ];
+
+    /// The step's name in messages.
+    pub fn name(self) -> &'static str {
+        match self {
+            Step::Locked => "locked",
+            Step::StagingCreated => "staging-created",
+            Step::FilesWritten => "files-written",
+            Step::MetadataWritten => "metadata-written",
+            Step::StagingSynced => "staging-synced",
+            Step::ReleaseRenamed => "release-renamed",
+            Step::ReleasesSynced => "releases-synced",
+            Step::StateWritten => "state-written",
+            Step::StateRenamed => "state-renamed",
+            Step::StoreSynced => "store-synced",
+        }
+    }
+
+    /// Whether the operation's change is visible once this step is reached.
+    pub fn is_committed(self) -> bool {
+        matches!(self, Step::StateRenamed | Step::StoreSynced)
+    }
+}
+
+/// A test hook called at every [`Step`]; an error fails the operation at that point.
+#[doc(hidden)]
+pub type StepHook<'a> = &'a mut dyn FnMut(Step) -> io::Result<()>;
+
+/// An on-device store of verified releases (see the module documentation).
+#[derive(Debug, Clone)]
+pub struct Store {
+    dir: PathBuf,
+    verifier: Verifier,
+    lock_wait: Duration,
+}
+
+/// Holds the updaters' lock until dropped (closing the file releases it, also when the
+/// process dies).
+struct UpdateLock {
+    _file: File,
+}
+
+impl Store {
+    /// Opens the store in `dir`, creating it (and `dir`) if it does not exist yet. `verifier`
+    /// says which keys and policy the stored model must still satisfy whenever it is opened;
+    /// it is normally the same verifier that checks new bundles.
+    ///
+    /// A directory with releases but no `state.json` is refused: the state was lost or
+    /// removed, and with it the memory of which versions are too old.
+    pub fn open(dir: &Path, verifier: Verifier) -> Result<Store> {
+        let store = Store {
+            dir: dir.to_path_buf(),
+            verifier,
+            lock_wait: Duration::ZERO,
+        };
+        fs::create_dir_all(dir)
+            .map_err(|e| Error::io(format!("cannot create store {}", dir.display()), e))?;
+        if !store.state_path().exists() {
+            store.initialize()?;
+        }
+        store.state()?;
+        Ok(store)
+    }
+
+    /// How long an update waits for another process's update to finish before failing;
+    /// zero (the default) fails at once.
+    pub fn wait_for_lock(mut self, wait: Duration) -> Self {
+        self.lock_wait = wait;
+        self
+    }
+
+    /// The store's directory.
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
+    /// The store's state as `state.json` holds it now (parsed and checked for consistency,
+    /// releases not checked).
+    pub fn state(&self) -> Result<StoreState> {
+        let path = self.state_path();
+        let bytes = match read_capped(&path, STATE_BYTES) {
+            Ok(bytes) => bytes,
+            Err(ReadCapped::Missing) => {
+                return Err(Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "{} is missing; the store was damaged or changed outside ampoule-verify",
+                        path.display()
+                    ),
+                ));
+            }
+            Err(ReadCapped::TooLarge) => {
+                return Err(Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "{} is over {STATE_BYTES} bytes; the store was damaged or changed outside ampoule-verify",
+                        path.display()
+                    ),
+                ));
+            }
+            Err(ReadCapped::Io(e)) => {
+                return Err(Error::io(format!("cannot read {}", path.display()), e));
+            }
+        };
+        let state: StoreState = serde_json::from_slice(&bytes).map_err(|e| {
+            Error::new(
+                ErrorKind::Store,
+                format!("{} is not valid: {e}", path.display()),
+            )
+        })?;
+        state.validate().map_err(|why| {
+            Error::new(
+                ErrorKind::Store,
+                format!("{} is inconsistent: {why}", path.display()),
+            )
+        })?;
+        Ok(state)
+    }
+
+    /// Checks the current release fully (see the module documentation) and returns its
+    /// paths; `None` if nothing was installed yet. Costs one read of the model file.
+    pub fn open_current(&self) -> Result<Option<Release>> {
+        let mut state = self.state()?;
+        for _ in 1..OPEN_ATTEMPTS {
+            let Some(pointer) = &state.current else {
+                return Ok(None);
+            };
+            match self.check_release(pointer) {
+                Ok(release) => return Ok(Some(release)),
+                Err(e) => {
+                    // An update may have switched and cleaned up while this read the old
+                    // release; only a failure under an unchanged state.json counts.
+                    let now = self.state()?;
+                    if now.current == state.current {
+                        return Err(e);
+                    }
+                    state = now;
+                }
+            }
+        }
+        match &state.current {
+            Some(pointer) => self.check_release(pointer).map(Some),
+            None => Ok(None),
+        }
+    }
+
+    /// Installs a verified bundle that came without a verified feed: only the version floor
+    /// and the model line protect the device (see [`crate::dangerous::install_without_feed`]).
+    pub(crate) fn install_without_feed(&self, bundle: VerifiedBundle) -> Result<Installed> {
+        self.install_inner(bundle, None, None, None, &mut |_| Ok(()))
+    }
+
+    /// Installs a bundle that an update check found through `feed`, as [`Store::install`]
+    /// does, recording the feed's channel, sequence and digest. The bundle must be the
+    /// release the feed names; a feed under an accepted sequence with another digest, or
+    /// under a lower sequence, is refused.
+    pub fn install_from_feed(
+        &self,
+        bundle: VerifiedBundle,
+        feed: &VerifiedFeed,
+    ) -> Result<Installed> {
+        let m = bundle.manifest();
+        match feed.release() {
+            Some(r) if r.name == m.name && r.version == m.version => {}
+            offered => {
+                return Err(Error::new(
+                    ErrorKind::Feed,
+                    format!(
+                        "bundle {} {} is not the release feed sequence {} offers ({})",
+                        m.name,
+                        m.version,
+                        feed.sequence(),
+                        offered.map_or_else(
+                            || "nothing".to_string(),
+                            |r| format!("{} {}", r.name, r.version)
+                        )
+                    ),
+                ));
+            }
+        }
+        let channel = feed.feed().channel.as_str();
+        let (sequence, digest) = (feed.sequence(), feed.digest());
+        self.install_inner(
+            bundle,
+            Some(channel),
+            Some(sequence),
+            Some(digest),
+            &mut |_| Ok(()),
+        )
+    }
+
+    /// Records that the device acted on `feed` without installing anything (the channel
+    /// offers nothing new for it, or not yet for this device), so that an older feed is
+    /// refused from then on. Returns whether `state.json` changed: polling the same feed again
+    /// writes nothing. Refuses a feed under a lower sequence than the channel's highest, or
+    /// under the same sequence with another digest.
+    pub fn record_feed(&self, feed: &VerifiedFeed) -> Result<bool> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        let channel = feed.feed().channel.as_str();
+        check_channel(channel)?;
+        let (sequence, digest) = (feed.sequence(), feed.digest());
+        let known = state.channels.get(channel);
+        check_feed_sequence(channel, known, sequence, Some(digest))?;
+        if let Some(known) = known
+            && known.highest_sequence == Some(sequence)
+            && known.feed_sha256 == Some(digest)
+            && state.channel.is_some()
+        {
+            return Ok(false);
+        }
+        if known.is_none() && state.channels.len() >= MAX_CHANNELS {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "store {} already tracks {MAX_CHANNELS} channels; refusing a new channel '{channel}'",
+                    self.dir.display()
+                ),
+            ));
+        }
+        let mut next = state.clone();
+        next.channels.insert(
+            channel.to_string(),
+            ChannelState {
+                highest_version: known.and_then(|k| k.highest_version.clone()),
+                highest_sequence: Some(sequence),
+                feed_sha256: Some(digest),
+            },
+        );
+        next.format = STATE_FORMAT;
+        next.channel.get_or_insert_with(|| channel.to_string());
+        self.commit(&next, &mut |_| Ok(()))?;
+        sync_dir(&self.dir)?;
+        Ok(true)
+    }
+
+    /// [`Store::install`] with a hook called at every [`Step`]; for crash and fault tests.
+    #[doc(hidden)]
+    pub fn install_with_hook(
+        &self,
+        bundle: VerifiedBundle,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+        hook: StepHook<'_>,
+    ) -> Result<Installed> {
+        self.install_inner(bundle, channel, feed_sequence, None, hook)
+    }
+
+    fn install_inner(
+        &self,
+        bundle: VerifiedBundle,
+        channel: Option<&str>,
+        feed_sequence: Option<u64>,
+        feed_sha256: Option<Digest>,
+        hook: StepHook<'_>,
+    ) -> Result<Installed> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        self.sweep(&state)?;
+        let (manifest, report) = self
+            .verifier
+            .check_stored(
+                "bundle",
+                &bundle.layout().manifest,
+                &bundle.layout().signatures,
+            )
+            .map_err(|e| e.context("the store's verifier refuses the bundle"))?;
+        let manifest_sha256 = Digest::of(&bundle.layout().manifest);
+        let next = self.next_state(
+            &state,
+            &manifest,
+            manifest_sha256,
+            channel,
+            feed_sequence.map(|s| (s, feed_sha256)),
+        )?;
+        let release = release_dir_name(&manifest, &manifest_sha256);
+        let releases = self.releases_path();
+        let dest = releases.join(&release);
+        if fs::symlink_metadata(&dest).is_ok() {
+            return Err(Error::new(
+                ErrorKind::Store,
+                format!(
+                    "{} already exists although state.json does not name it; run gc and try again",
+                    dest.display()
+                ),
+            ));
+        }
+        step(hook, Step::Locked)?;
+
+        // The staging directory later becomes the renamed release.
+        let mut staging = Staging::create_in(&releases, STAGING_PREFIX)?;
+        step(hook, Step::StagingCreated)?;
+        let labels = bundle.unpack_into_staging(&staging.path)?;
+        step(hook, Step::FilesWritten)?;
+        write_synced(
+            &staging.path.join(entry::MANIFEST),
+            &bundle.layout().manifest,
+        )?;
+        write_synced(
+            &staging.path.join(entry::SIGNATURES),
+            &bundle.layout().signatures,
+        )?;
+        step(hook, Step::MetadataWritten)?;
+        sync_dir(&staging.path)?;
+        step(hook, Step::StagingSynced)?;
+        fs::rename(&staging.path, &dest).map_err(|e| {
+            Error::io(
+                format!("cannot move the unpacked release to {}", dest.display()),
+                e,
+            )
+        })?;
+        // From here a failure must remove the release directory, not the staging name.
+        staging.path = dest.clone();
+        step(hook, Step::ReleaseRenamed)?;
+        sync_dir(&releases)?;
+        step(hook, Step::ReleasesSynced)?;
+
+        self.commit(&next, hook)?;
+        staging.keep = true;
+        step(hook, Step::StateRenamed)?;
+        sync_dir(&self.dir)?;
+        step(hook, Step::StoreSynced)?;
+
+        Ok(Installed {
+            release: Release {
+                model: dest.join(&manifest.model().path),
+                labels_path: dest.join(&manifest.labels().path),
+                dir: dest,
+                labels,
+                manifest,
+                manifest_sha256,
+                signers: report.valid,
+            },
+            replaced: state.current.map(|c| c.version),
+        })
+    }
+
+    /// Remembers the tree head `feed`'s ledger check verified as the largest this device
+    /// saw, for `LedgerVerifier::remembered` next time; nothing for a feed
+    /// checked without the ledger. The update calls it for every feed it acted on, whether or
+    /// not it installed anything.
+    pub(crate) fn remember_feed_tree_head(&self, feed: &VerifiedFeed) -> Result<()> {
+        match feed.ledger() {
+            Some(check) => self.remember_tree_head(&check.tree_head),
+            None => Ok(()),
+        }
+    }
+
+    /// Remembers `head` as the largest ledger tree head this device verified. A head smaller
+    /// than the remembered one, or of the same size with another root, is refused: it cannot
+    /// have passed the ledger check. Outside the crate only through
+    /// [`crate::dangerous::remember_unverified_tree_head`].
+    pub(crate) fn remember_tree_head(&self, head: &TreeHead) -> Result<()> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        if let Some(seen) = &state.tree_head {
+            if head.tree_size < seen.tree_size
+                || (head.tree_size == seen.tree_size && head.root_hash != seen.root_hash)
+            {
+                return Err(Error::new(
+                    ErrorKind::Policy,
+                    format!(
+                        "tree head of size {} (root {}) does not extend the tree head of size {} \
+                         (root {}) this store remembers; refusing to forget the larger one",
+                        head.tree_size, head.root_hash, seen.tree_size, seen.root_hash
+                    ),
+                ));
+            }
+            if seen == head {
+                return Ok(());
+            }
+        }
+        let mut next = state;
+        next.format = STATE_FORMAT;
+        next.tree_head = Some(*head);
+        self.commit(&next, &mut |_| Ok(()))?;
+        sync_dir(&self.dir)
+    }
+
+    /// Makes the store follow `channel` from now on. What it accepted stays: the highest
+    /// version ever installed (so nothing older is installed from the new channel) and the
+    /// feed sequences of every channel it followed.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Policy`] for a name no channel can have; [`ErrorKind::Locked`] while an
+    /// update runs; I/O errors writing `state.json`.
+    pub fn switch_channel(&self, channel: &str) -> Result<()> {
+        check_channel(channel)?;
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        if state.channel.as_deref() == Some(channel) {
+            return Ok(());
+        }
+        let mut next = state;
+        next.format = STATE_FORMAT;
+        next.channel = Some(channel.to_string());
+        self.commit(&next, &mut |_| Ok(()))?;
+        sync_dir(&self.dir)
+    }
+
+    /// Makes the previous release current again, for when the app's own health check fails
+    /// on a new model. The previous release is checked fully first; if it fails, nothing
+    /// changes. The release rolled back from stays refused: the highest version accepted is
+    /// not lowered, so only a newer version can be installed next.
+    pub fn rollback(&self) -> Result<Release> {
+        self.rollback_with_hook(&mut |_| Ok(()))
+    }
+
+    /// [`Store::rollback`] with a hook called at every [`Step`]; for crash and fault tests.
+    #[doc(hidden)]
+    pub fn rollback_with_hook(&self, hook: StepHook<'_>) -> Result<Release> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        self.sweep(&state)?;
+        let Some(previous) = &state.previous else {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "store {} has no previous release to roll back to",
+                    self.dir.display()
+                ),
+            ));
+        };
+        let release = self
+            .check_release(previous)
+            .map_err(|e| e.context("cannot roll back, the previous release failed its check"))?;
+        let mut next = state.clone();
+        next.format = STATE_FORMAT;
+        next.current = Some(previous.clone());
+        next.previous = None;
+        step(hook, Step::Locked)?;
+        self.commit(&next, hook)?;
+        step(hook, Step::StateRenamed)?;
+        sync_dir(&self.dir)?;
+        step(hook, Step::StoreSynced)?;
+        Ok(release)
+    }
+
+    /// Removes every release that is neither current nor previous, and whatever crashed
+    /// updates left behind (staging directories, temporary state files). Returns what was
+    /// removed. Every update does this first as well.
+    pub fn gc(&self) -> Result<Vec<PathBuf>> {
+        let _lock = self.lock()?;
+        let state = self.state()?;
+        self.sweep(&state)
+    }
+
+    /// The trust set an app runs with after a restart: the newer of `initial` (the set
+    /// shipped with the app) and the one in `trust-set.json` in `dir`, each signed by its own
+    /// threshold, and not expired at `now`. Needs no [`Store`], so that the app can build its
+    /// verifier from the result before it opens the store. A damaged `trust-set.json` is an
+    /// error; an expired set is an error too, and [`Store::renew_trust_set`] replaces it.
+    pub fn load_trust_set(dir: &Path, initial: &[u8], now: Timestamp) -> Result<TrustSet> {
+        let set = newest_trust_set(dir, initial)?;
+        set.file().check_expiry(now)?;
+        Ok(set)
+    }
+
+    /// [`Store::load_trust_set`] for this store's directory.
+    pub fn trust_set(&self, initial: &[u8], now: Timestamp) -> Result<TrustSet> {
+        Self::load_trust_set(&self.dir, initial, now)
+    }
+
+    /// The version of the trust set in `trust-set.json`, the highest this store accepted;
+    /// `None` if the device never stored one.
+    pub fn stored_trust_set_version(&self) -> Result<Option<u64>> {
+        Ok(read_stored_trust_set(&self.dir)?.map(|set| set.version()))
+    }
+
+    /// Stores `trust` as the newest trust set the device accepted, under the updaters' lock,
+    /// replacing `trust-set.json` atomically. Refuses a version lower than the stored one (a
+    /// rollback of trust), and an equal version with other content; saving the stored set
+    /// again changes nothing.
+    pub fn save_trust_set(&self, trust: &TrustSet) -> Result<()> {
+        let _lock = self.lock()?;
+        let bytes = trust.to_json();
+        if let Some(stored) = read_stored_trust_set(&self.dir)? {
+            let (new, old) = (trust.version(), stored.version());
+            if new == old && stored.to_json() == bytes {
+                return Ok(());
+            }
+            if new <= old {
+                return Err(Error::new(
+                    ErrorKind::TrustSet,
+                    format!(
+                        "trust set version {new} is not newer than version {old}, the highest \
+                         store {} accepted; refusing to roll trust back",
+                        self.dir.display()
+                    ),
+                ));
+            }
+        }
+        let path = self.dir.join(TRUST_SET_FILE);
+        let mut temp = TempFile {
+            path: self
+                .dir
+                .join(format!("{TRUST_SET_TEMP_PREFIX}{}", unique_suffix())),
+            keep: false,
+        };
+        write_synced(&temp.path, &bytes)?;
+        fs::rename(&temp.path, &path)
+            .map_err(|e| Error::io(format!("cannot replace {}", path.display()), e))?;
+        temp.keep = true;
+        sync_dir(&self.dir)
+    }
+
+    /// For a device whose trust set expired while it was offline: accepts `successor` as the
+    /// successor of the newest of `initial` and the stored set (whose keys may authorise it
+    /// although expired, see [`TrustSet::renew`]), stores it, and returns it.
+    pub fn renew_trust_set(
+        &self,
+        initial: &[u8],
+        successor: &[u8],
+        now: Timestamp,
+    ) -> Result<TrustSet> {
+        let next = newest_trust_set(&self.dir, initial)?.accept_successor(successor, now)?;
+        self.save_trust_set(&next)?;
+        Ok(next)
+    }
+
+    /// This store with its verifier's bundle keys and threshold taken from `trust` (its policy
+    /// stays): after a device accepted a newer trust set, stored releases and new installs are
+    /// checked against the new set's keys, so a revoked key no longer counts.
+    pub fn with_trust_set(mut self, trust: &TrustSet) -> Result<Store> {
+        self.verifier = self.verifier.with_trust_set(trust)?;
+        Ok(self)
+    }
+
+    fn state_path(&self) -> PathBuf {
+        self.dir.join(STATE_FILE)
+    }
+
+    fn releases_path(&self) -> PathBuf {
+        self.dir.join(RELEASES_DIR)
+    }
+
+    /// Creates `releases/` and the first `state.json`, under the lock so that two processes
+    /// opening a new store at once do not both write it.
+    fn initialize(&self) -> Result<()> {
+        let lock = self.lock_file()?;
+        lock.lock()
+            .map_err(|e| Error::io(format!("cannot lock store {}", self.dir.display()), e))?;
+        if self.state_path().exists() {
+            return Ok(());
+        }
+        let releases = self.releases_path();
+        if let Ok(entries) = fs::read_dir(&releases) {
+            for entry in entries {
+                let entry = entry
+                    .map_err(|e| Error::io(format!("cannot list {}", releases.display()), e))?;
+                let name = entry.file_name();
+                if !name.to_string_lossy().starts_with(STAGING_PREFIX) {
+                    return Err(Error::new(
+                        ErrorKind::Store,
+                        format!(
+                            "store {} holds releases but no {STATE_FILE}; it was damaged or changed \
+                             outside ampoule-verify (move it aside and install again)",
+                            self.dir.display()
+                        ),
+                    ));
+                }
+            }
+        }
+        fs::create_dir_all(&releases)
+            .map_err(|e| Error::io(format!("cannot create {}", releases.display()), e))?;
+        sync_dir(&self.dir)?;
+        self.commit(&StoreState::empty(), &mut |_| Ok(()))?;
+        sync_dir(&self.dir)?;
+        // The store directory itself may be new too.
+        match self.dir.parent() {
+            Some(parent) if !parent.as_os_str().is_empty() => sync_dir(parent),
+            _ => Ok(()),
+        }
+    }
+
+    fn lock_file(&self) -> Result<File> {
+        let path = self.dir.join(LOCK_FILE);
+        OpenOptions::new()
+            .read(true)
+            .write(true)
+            .create(true)
+            .truncate(false)
+            .open(&path)
+            .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))
+    }
+
+    /// Takes the updaters' exclusive lock, waiting up to `lock_wait`.
+    fn lock(&self) -> Result<UpdateLock> {
+        let file = self.lock_file()?;
+        let deadline = Instant::now() + self.lock_wait;
+        loop {
+            match file.try_lock() {
+                Ok(()) => return Ok(UpdateLock { _file: file }),
+                Err(TryLockError::WouldBlock) => {
+                    let now = Instant::now();
+                    if now >= deadline {
+                        let waited = if self.lock_wait.is_zero() {
+                            String::new()
+                        } else {
+                            format!(" (waited {} ms)", self.lock_wait.as_millis())
+                        };
+                        return Err(Error::new(
+                            ErrorKind::Locked,
+                            format!(
+                                "store {} is being updated by another process{waited}; try again later",
+                                self.dir.display()
+                            ),
+                        ));
+                    }
+                    std::thread::sleep(LOCK_POLL.min(deadline - now));
+                }
+                Err(TryLockError::Error(e)) => {
+                    return Err(Error::io(
+                        format!("cannot lock store {}", self.dir.display()),
+                        e,
+                    ));
+                }
+            }
+        }
+    }
+
+    /// The state after installing `manifest`, or the refusal.
+    fn next_state(
+        &self,
+        state: &StoreState,
+        manifest: &Manifest,
+        manifest_sha256: Digest,
+        channel: Option<&str>,
+        feed: Option<(u64, Option<Digest>)>,
+    ) -> Result<StoreState> {
+        let refuse = |message: String| Err(Error::new(ErrorKind::Policy, message));
+        if let Some(name) = &state.name
+            && &manifest.name != name
+        {
+            return refuse(format!(
+                "store {} holds model line '{name}'; refusing bundle '{}' (use one store per model line)",
+                self.dir.display(),
+                manifest.name
+            ));
+        }
+        if let Some(highest) = &state.highest_version
+            && manifest.version.cmp_precedence(highest).is_le()
+        {
+            return refuse(format!(
+                "bundle version {} is not newer than {highest}, the highest version this store \
+                     accepted; refusing a downgrade or reinstall",
+                manifest.version
+            ));
+        }
+        let mut next = state.clone();
+        match (channel, feed) {
+            (None, Some((sequence, _))) => {
+                return refuse(format!(
+                    "feed sequence {sequence} was given without a channel; name the channel the feed came from"
+                ));
+            }
+            (None, None) => {}
+            (Some(channel), feed) => {
+                check_channel(channel)?;
+                next.channel.get_or_insert_with(|| channel.to_string());
+                let known = next.channels.get(channel);
+                if let Some((sequence, digest)) = feed {
+                    check_feed_sequence(channel, known, sequence, digest)?;
+                }
+                if known.is_none() && next.channels.len() >= MAX_CHANNELS {
+                    return refuse(format!(
+                        "store {} already tracks {MAX_CHANNELS} channels; refusing a new channel '{channel}'",
+                        self.dir.display()
+                    ));
+                }
+                let (highest_sequence, feed_sha256) = match (feed, known) {
+                    (Some((sequence, digest)), Some(k)) if k.highest_sequence == Some(sequence) => {
+                        (Some(sequence), digest.or(k.feed_sha256))
+                    }
+                    (Some((sequence, digest)), _) => (Some(sequence), digest),
+                    (None, k) => (
+                        k.and_then(|c| c.highest_sequence),
+                        k.and_then(|c| c.feed_sha256),
+                    ),
+                };
+                next.channels.insert(
+                    channel.to_string(),
+                    ChannelState {
+                        highest_version: Some(manifest.version.clone()),
+                        highest_sequence,
+                        feed_sha256,
+                    },
+                );
+            }
+        }
+        next.format = STATE_FORMAT;
+        next.name = Some(manifest.name.clone());
+        next.highest_version = Some(manifest.version.clone());
+        next.previous = state.current.clone();
+        next.current = Some(ReleaseRef {
+            release: release_dir_name(manifest, &manifest_sha256),
+            version: manifest.version.clone(),
+            manifest_sha256,
+        });
+        Ok(next)
+    }
+
+    /// Writes `state` to a temporary file, fsyncs it and renames it over `state.json`.
+    /// Errors before the rename leave the old `state.json` and no temporary file.
+    fn commit(&self, state: &StoreState, hook: StepHook<'_>) -> Result<()> {
+        let path = self.state_path();
+        let mut temp = TempFile {
+            path: self
+                .dir
+                .join(format!("{STATE_TEMP_PREFIX}{}", unique_suffix())),
+            keep: false,
+        };
+        write_synced(&temp.path, &state.to_json())?;
+        step(hook, Step::StateWritten)?;
+        fs::rename(&temp.path, &path)
+            .map_err(|e| Error::io(format!("cannot replace {}", path.display()), e))?;
+        temp.keep = true;
+        Ok(())
+    }
+
+    /// Removes leftovers and releases that `state` names neither current nor previous.
+    fn sweep(&self, state: &StoreState) -> Result<Vec<PathBuf>> {
+        let keep: Vec<&str> = [&state.current, &state.previous]
+            .into_iter()
+            .flatten()
+            .map(|p| p.release.as_str())
+            .collect();
+        let mut removed = Vec::new();
+        let releases = self.releases_path();
+        for entry in list_dir(&releases)? {
+            let name = entry.to_string_lossy();
+            if !keep.contains(&name.as_ref()) {
+                let path = releases.join(&entry);
+                remove_any(&path)?;
+                removed.push(path);
+            }
+        }
+        for entry in list_dir(&self.dir)? {
+            let name = entry.to_string_lossy();
+            if name.starts_with(STATE_TEMP_PREFIX) || name.starts_with(TRUST_SET_TEMP_PREFIX) {
+                let path = self.dir.join(&entry);
+                remove_any(&path)?;
+                removed.push(path);
+            }
+        }
+        if !removed.is_empty() {
+            sync_dir(&releases)?;
+            sync_dir(&self.dir)?;
+        }
+        removed.sort();
+        Ok(removed)
+    }
+
+    /// Checks one stored release fully; every error names the release.
+    fn check_release(&self, pointer: &ReleaseRef) -> Result<Release> {
+        let name = &pointer.release;
+        self.check_release_inner(pointer)
+            .map_err(|e| e.context(format_args!("stored release {name}")))
+    }
+
+    fn check_release_inner(&self, pointer: &ReleaseRef) -> Result<Release> {
+        let damaged = |message: String| Error::new(ErrorKind::Store, message);
+        let dir = self.releases_path().join(&pointer.release);
+        match fs::symlink_metadata(&dir) {
+            Ok(meta) if meta.is_dir() => {}
+            Ok(_) => return Err(damaged(format!("{} is not a directory", dir.display()))),
+            Err(e) if e.kind() == io::ErrorKind::NotFound => {
+                return Err(damaged(format!("{} is missing", dir.display())));
+            }
+            Err(e) => return Err(Error::io(format!("cannot read {}", dir.display()), e)),
+        }
+        let manifest_bytes = read_member(&dir, entry::MANIFEST, limit::MANIFEST_BYTES)?;
+        let manifest_sha256 = Digest::of(&manifest_bytes);
+        if manifest_sha256 != pointer.manifest_sha256 {
+            return Err(damaged(format!(
+                "{} has sha256 {manifest_sha256} but {STATE_FILE} records {}; the store was \
+                 changed outside ampoule-verify",
+                entry::MANIFEST,
+                pointer.manifest_sha256
+            )));
+        }
+        let signatures = read_member(&dir, entry::SIGNATURES, limit::SIGNATURES_BYTES)?;
+        let (manifest, report) =
+            self.verifier
+                .check_stored("manifest", &manifest_bytes, &signatures)?;
+        if manifest.version != pointer.version {
+            return Err(damaged(format!(
+                "{STATE_FILE} records version {} but the manifest says {}",
+                pointer.version, manifest.version
+            )));
+        }
+        let expected = release_dir_name(&manifest, &manifest_sha256);
+        if expected != pointer.release {
+            return Err(damaged(format!(
+                "the directory name does not match its manifest, which gives {expected}"
+            )));
+        }
+        let allowed = [
+            manifest.model().path.as_str(),
+            manifest.labels().path.as_str(),
+            entry::MANIFEST,
+            entry::SIGNATURES,
+        ];
+        for found in list_dir(&dir)? {
+            let found = found.to_string_lossy();
+            if !allowed.contains(&found.as_ref()) {
+                return Err(damaged(format!(
+                    "it holds an unexpected entry '{}'",
+                    found.escape_debug()
+                )));
+            }
+        }
+        let mut labels = None;
+        for file in &manifest.files {
+            let path = dir.join(&file.path);
+            let opened = open_member(&dir, &file.path)?;
+            let len = opened
+                .metadata()
+                .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?
+                .len();
+            let size_error = |len: u64| {
+                Error::new(
+                    ErrorKind::Digest,
+                    format!(
+                        "'{}' is {len} bytes but the manifest declares {} bytes",
+                        file.path, file.size
+                    ),
+                )
+            };
+            if len != file.size {
+                return Err(size_error(len));
+            }
+            let (found, read) = if file.role == Role::Labels {
+                // Bounded by the format's cap on labels.txt, checked in Manifest::validate.
+                let mut bytes = Vec::new();
+                (&opened)
+                    .take(file.size + 1)
+                    .read_to_end(&mut bytes)
+                    .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
+                let found = Digest::of(&bytes);
+                let read = bytes.len() as u64;
+                labels = Some(bytes);
+                (found, read)
+            } else {
+                hash_reader(&opened, file.size + 1)
+                    .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?
+            };
+            if read != file.size {
+                return Err(size_error(read));
+            }
+            if found != file.sha256 {
+                return Err(Error::new(
+                    ErrorKind::Digest,
+                    format!(
+                        "digest mismatch for '{}': manifest declares sha256 {}, the store holds {found}",
+                        file.path, file.sha256
+                    ),
+                ));
+            }
+        }
+        let labels = manifest.parse_labels(&labels.unwrap_or_default())?;
+        Ok(Release {
+            model: dir.join(&manifest.model().path),
+            labels_path: dir.join(&manifest.labels().path),
+            dir,
+            labels,
+            manifest,
+            manifest_sha256,
+            signers: report.valid,
+        })
+    }
+}
+
+/// Reads `trust-set.json` in `dir` and checks it against its own threshold; `None` if there
+/// is none. Every failure names the file.
+fn read_stored_trust_set(dir: &Path) -> Result<Option<TrustSet>> {
+    let path = dir.join(TRUST_SET_FILE);
+    let damaged = |why: String| {
+        Error::new(
+            ErrorKind::Store,
+            format!(
+                "{} is damaged or was changed outside ampoule-verify: {why}",
+                path.display()
+            ),
+        )
+    };
+    let bytes = match read_capped(&path, trust_set::MAX_BYTES) {
+        Ok(bytes) => bytes,
+        Err(ReadCapped::Missing) => return Ok(None),
+        Err(ReadCapped::TooLarge) => {
+            return Err(damaged(format!(
+                "it is over {} bytes",
+                trust_set::MAX_BYTES
+            )));
+        }
+        Err(ReadCapped::Io(e)) => {
+            return Err(Error::io(format!("cannot read {}", path.display()), e));
+        }
+    };
+    TrustSet::self_signed(&bytes)
+        .map(Some)
+        .map_err(|e| damaged(e.to_string()))
+}
+
+/// The newer of the shipped trust set and the stored one, expiry not checked.
+fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
+    let initial = TrustSet::self_signed(initial)
+        .map_err(|e| e.context("the trust set shipped with the app"))?;
+    Ok(match read_stored_trust_set(dir)? {
+        Some(stored) if stored.version() > initial.version() => stored,
+        _ => initial,
+    })
+}
+
+/// Refuses a feed under a lower sequence than the channel's highest (a replay), or under the
+/// same sequence with another digest (a publisher never signs two feeds under one sequence).
+/// Like every refusal of the store's own state, these are [`ErrorKind::Policy`].
+fn check_feed_sequence(
+    channel: &str,
+    known: Option<&ChannelState>,
+    sequence: u64,
+    digest: Option<Digest>,
+) -> Result<()> {
+    let Some(highest) = known.and_then(|c| c.highest_sequence) else {
+        return Ok(());
+    };
+    if sequence < highest {
+        return Err(Error::new(
+            ErrorKind::Policy,
+            format!(
+                "feed sequence {sequence} for channel '{channel}' is lower than {highest}, \
+                 the highest this store accepted; refusing a replayed feed"
+            ),
+        ));
+    }
+    if sequence == highest
+        && let (Some(found), Some(kept)) = (digest, known.and_then(|c| c.feed_sha256))
+        && found != kept
+    {
+        return Err(Error::new(
+            ErrorKind::Policy,
+            format!(
+                "feed sequence {sequence} for channel '{channel}' was accepted with digest {kept}, \
+                 but this feed under the same sequence has digest {found}; refusing it"
+            ),
+        ));
+    }
+    Ok(())
+}
+
+fn step(hook: StepHook<'_>, step: Step) -> Result<()> {
+    hook(step).map_err(|e| Error::io(format!("store step {} failed", step.name()), e))
+}
+
+/// Checks a channel name: the same rule as bundle names.
+fn check_channel(channel: &str) -> Result<()> {
+    crate::format::manifest::check_name(channel).map_err(|_| {
+        Error::new(
+            ErrorKind::Policy,
+            format!(
+                "channel name '{}' is not allowed: use 1 to {} lowercase letters, digits, '-', '_' \
+                 or '.', starting with a letter or digit",
+                channel.escape_debug(),
+                limit::NAME_BYTES
+            ),
+        )
+    })
+}
+
+/// The directory name of a release: `<name>-<version>-<first 12 hex digits of the manifest's
+/// SHA-256>`, or `<name>-<12 hex>` when a very long version would make it too long for a file
+/// name. Bundle names and SemVer versions use only characters safe in file names.
+pub fn release_dir_name(manifest: &Manifest, manifest_sha256: &Digest) -> String {
+    let hex = manifest_sha256.to_hex();
+    let short = &hex[..DIGEST_PREFIX_HEX];
+    let full = format!("{}-{}-{short}", manifest.name, manifest.version);
+    if full.len() <= RELEASE_NAME_BYTES {
+        full
+    } else {
+        format!("{}-{short}", manifest.name)
+    }
+}
+
+/// Whether `name` could be a release directory name: never empty, hidden, or a path.
+fn is_release_name(name: &str) -> bool {
+    !name.is_empty()
+        && name.len() <= RELEASE_NAME_BYTES
+        && name.as_bytes()[0].is_ascii_alphanumeric()
+        && name
+            .bytes()
+            .all(|b| b.is_ascii_alphanumeric() || b"-_.+".contains(&b))
+}
+
+enum ReadCapped {
+    Missing,
+    TooLarge,
+    Io(io::Error),
+}
+
+/// Reads a whole small file, refusing more than `cap` bytes.
+fn read_capped(path: &Path, cap: u64) -> std::result::Result<Vec<u8>, ReadCapped> {
+    let file = File::open(path).map_err(|e| match e.kind() {
+        io::ErrorKind::NotFound => ReadCapped::Missing,
+        _ => ReadCapped::Io(e),
+    })?;
+    let mut bytes = Vec::new();
+    file.take(cap + 1)
+        .read_to_end(&mut bytes)
+        .map_err(ReadCapped::Io)?;
+    if bytes.len() as u64 > cap {
+        return Err(ReadCapped::TooLarge);
+    }
+    Ok(bytes)
+}
+
+/// Opens a file of a stored release, refusing anything but a regular file.
+fn open_member(dir: &Path, name: &str) -> Result<File> {
+    let path = dir.join(name);
+    match fs::symlink_metadata(&path) {
+        Ok(meta) if meta.is_file() => {}
+        Ok(_) => {
+            return Err(Error::new(
+                ErrorKind::Store,
+                format!("{name} is not a regular file"),
+            ));
+        }
+        Err(e) if e.kind() == io::ErrorKind::NotFound => {
+            return Err(Error::new(ErrorKind::Store, format!("{name} is missing")));
+        }
+        Err(e) => return Err(Error::io(format!("cannot read {}", path.display()), e)),
+    }
+    File::open(&path).map_err(|e| Error::io(format!("cannot open {}", path.display()), e))
+}
+
+/// Reads a small file of a stored release whole, refusing more than `cap` bytes.
+fn read_member(dir: &Path, name: &str, cap: u64) -> Result<Vec<u8>> {
+    let file = open_member(dir, name)?;
+    let mut bytes = Vec::new();
+    file.take(cap + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| Error::io(format!("cannot read {}", dir.join(name).display()), e))?;
+    if bytes.len() as u64 > cap {
+        return Err(Error::new(
+            ErrorKind::Store,
+            format!("{name} is over the limit of {cap} bytes"),
+        ));
+    }
+    Ok(bytes)
+}
+
+fn list_dir(dir: &Path) -> Result<Vec<std::ffi::OsString>> {
+    let entries =
+        fs::read_dir(dir).map_err(|e| Error::io(format!("cannot list {}", dir.display()), e))?;
+    let mut names = Vec::new();
+    for entry in entries {
+        let entry = entry.map_err(|e| Error::io(format!("cannot list {}", dir.display()), e))?;
+        names.push(entry.file_name());
+    }
+    names.sort();
+    Ok(names)
+}
+
+/// Removes a file, link or directory tree without following links.
+fn remove_any(path: &Path) -> Result<()> {
+    let result = match fs::symlink_metadata(path) {
+        Ok(meta) if meta.is_dir() => fs::remove_dir_all(path),
+        Ok(_) => fs::remove_file(path),
+        Err(e) if e.kind() == io::ErrorKind::NotFound => Ok(()),
+        Err(e) => Err(e),
+    };
+    result.map_err(|e| Error::io(format!("cannot remove {}", path.display()), e))
+}
+
+/// Creates `path` (which must not exist), writes `bytes` and flushes them to disk.
+fn write_synced(path: &Path, bytes: &[u8]) -> Result<()> {
+    let mut file = OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(path)
+        .map_err(|e| Error::io(format!("cannot create {}", path.display()), e))?;
+    file.write_all(bytes)
+        .map_err(|e| Error::io(format!("cannot write {}", path.display()), e))?;
+    file.sync_all()
+        .map_err(|e| Error::io(format!("cannot flush {} to disk", path.display()), e))
+}
+
+fn unique_suffix() -> String {
+    let nanos = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.subsec_nanos());
+    format!("{}-{nanos:x}", std::process::id())
+}
+
+/// A temporary file that is removed unless kept.
+struct TempFile {
+    path: PathBuf,
+    keep: bool,
+}
+
+impl Drop for TempFile {
+    fn drop(&mut self) {
+        if !self.keep {
+            let _ = fs::remove_file(&self.path);
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn release_names_stay_inside_releases() {
+        for good in [
+            "trailcam-species-1.2.0-0123456789ab",
+            "a-1.0.0-rc.1+build.5-abcdef012345",
+        ] {
+            assert!(is_release_name(good), "{good}");
+        }
+        for bad in [
+            "",
+            ".",
+            "..",
+            "../x",
+            "a/b",
+            ".staging-1",
+            "-a",
+            "a b",
+            "a\\b",
+        ] {
+            assert!(!is_release_name(bad), "{bad}");
+        }
+        assert!(!is_release_name(&"a".repeat(RELEASE_NAME_BYTES + 1)));
+    }
+
+    #[test]
+    fn state_validation_refuses_pointers_above_the_floor_and_unsafe_names() {
+        let pointer = |release: &str, version: &str| ReleaseRef {
+            release: release.into(),
+            version: version.parse().expect("test version"),
+            manifest_sha256: Digest::of(b"x"),
+        };
+        let mut state = StoreState::empty();
+        state.name = Some("fox".into());
+        state.highest_version = Some(Version::new(1, 0, 0));
+        state.current = Some(pointer("fox-2.0.0-0123456789ab", "2.0.0"));
+        assert_eq!(
+            state.validate(),
+            Err("release fox-2.0.0-0123456789ab has version 2.0.0, above the highest version accepted (1.0.0)".into())
+        );
+        state.current = Some(pointer("../fox", "1.0.0"));
+        assert_eq!(
+            state.validate(),
+            Err("it names release '../fox', which is not a release directory name".into())
+        );
+        state.current = Some(pointer("fox-1.0.0-0123456789ab", "1.0.0"));
+        assert_eq!(state.validate(), Ok(()));
+        state.previous = state.current.clone();
+        assert_eq!(
+            state.validate(),
+            Err("release fox-1.0.0-0123456789ab is both current and previous".into())
+        );
+    }
+}

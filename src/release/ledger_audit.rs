@@ -1,0 +1,595 @@
+//! The release tree's audit ledger: what `publish` and `withdraw` append to `ledger/`, the
+//! `ledger` object they put in the feed, and the consistency steps devices walk when they
+//! missed appends. The auditor's commands (`ampoule ledger`) read what this writes.
+//!
+//! Order within one publish or withdraw, all under the tree lock: the ledger entry is appended
+//! (its new tree head signed and committed) and the consistency step written, then the channel
+//! history, then the feed. A crash therefore never leaves a feed naming a release whose publish
+//! entry is not in the ledger. A crash after the append but before the feed leaves an entry no
+//! feed ever carried; `ampoule ledger check` reports it as a warning ("no feed update"), since
+//! the ledger then shows more than devices saw, never less. The next publish takes a sequence
+//! above the ledger's too, so feed sequences in the ledger never repeat.
+
+use std::path::{Path, PathBuf};
+
+use ampoule_verify::bundle::Unverified;
+use ampoule_verify::ledger::{
+    self, ConsistencyStep, Entry, Event, FeedLedger, LEDGER_DIR, Record, TrustSetEntry,
+};
+use ampoule_verify::merkle::{ConsistencyProof, SignedTreeHead};
+use ampoule_verify::{Digest, KeyId};
+use anyhow::{Context, Result};
+use ed25519_dalek::SigningKey;
+
+use crate::release::ledger_storage::{ENTRIES, Ledger};
+use crate::release::tree_records::write_atomic;
+
+/// The ledger directory of the release tree at `root`.
+pub fn ledger_dir(root: &Path) -> PathBuf {
+    root.join(LEDGER_DIR)
+}
+
+/// Opens the tree's ledger, creating it on the first publish.
+fn open_or_create(root: &Path) -> Result<Ledger> {
+    let dir = ledger_dir(root);
+    if dir.join(ENTRIES).is_file() {
+        Ledger::open(&dir)
+    } else {
+        Ledger::create(&dir)
+    }
+}
+
+/// The highest feed sequence the ledger logged for `channel` (0 if none), so that a publish
+/// that crashed after its append never has its sequence reused.
+pub fn last_sequence(root: &Path, channel: &str) -> Result<u64> {
+    let dir = ledger_dir(root);
+    if !dir.join(ENTRIES).is_file() {
+        return Ok(0);
+    }
+    let ledger = Ledger::open(&dir)?;
+    Ok(ledger
+        .find_last(|e| e.channel == channel)?
+        .and_then(|(_, bytes)| Entry::from_bytes(&bytes).ok())
+        .map_or(0, |e| e.feed_sequence))
+}
+
+/// The digests and signers a withdraw entry logs for `sha256`: those of its publish entry on
+/// `channel`, else read from the bundle file (a release published before the ledger existed).
+pub fn withdrawn(root: &Path, channel: &str, sha256: &Digest) -> Result<(Digest, Vec<KeyId>)> {
+    let dir = ledger_dir(root);
+    if dir.join(ENTRIES).is_file() {
+        let found = Ledger::open(&dir)?.find_last(|e| {
+            e.event == Event::Publish && e.channel == channel && e.bundle_digest == *sha256
+        })?;
+        if let Some((_, bytes)) = found {
+            let entry = Entry::from_bytes(&bytes)?;
+            return Ok((entry.manifest_digest, entry.key_ids));
+        }
+    }
+    let path = root
+        .join(crate::release::tree_records::BUNDLES_DIR)
+        .join(format!(
+            "{sha256}.{}",
+            ampoule_verify::format::BUNDLE_EXTENSION
+        ));
+    let bundle = Unverified::open(&path)
+        .with_context(|| format!("cannot read the withdrawn bundle {}", path.display()))?;
+    let mut ids: Vec<KeyId> = bundle
+        .signatures
+        .signatures
+        .iter()
+        .map(|s| s.key_id)
+        .collect();
+    ids.dedup();
+    Ok((Digest::of(&bundle.layout.manifest), ids))
+}
+
+/// Appends the entry of a trust-set publish, before the feeds it renews are signed again.
+pub fn append_trust_set(root: &Path, entry: &TrustSetEntry, keys: &[&SigningKey]) -> Result<()> {
+    append_bytes(root, &entry.to_bytes(), entry.time, keys).context(
+        "cannot append to the release tree's ledger; no feed was renewed for the new trust set",
+    )?;
+    Ok(())
+}
+
+/// Appends one entry under a new tree head and writes the consistency step to it; returns the
+/// ledger, the entry's index, the new head and the proof from the head before.
+fn append_bytes(
+    root: &Path,
+    bytes: &[u8],
+    entry_time: u64,
+    keys: &[&SigningKey],
+) -> Result<(Ledger, u64, SignedTreeHead, ConsistencyProof)> {
+    let mut ledger = open_or_create(root)?;
+    repair_last_step(root, &ledger)?;
+    let old_size = ledger.size();
+    // A tree head never goes back in time, even if this machine's clock did.
+    let time = ledger
+        .tree_head()
+        .map_or(entry_time, |h| h.head().time.max(entry_time));
+    let index = ledger.append(bytes, keys, time)?;
+    let tree_head = ledger
+        .tree_head()
+        .cloned()
+        .context("the ledger has no tree head right after an append")?;
+    let consistency = ledger.consistency_proof(old_size, tree_head.head().tree_size)?;
+    if old_size > 0 {
+        write_step(root, &tree_head, &consistency)?;
+    }
+    Ok((ledger, index, tree_head, consistency))
+}
+
+/// Appends `entry` to the tree's ledger under a tree head signed by every key of `keys`, writes
+/// the consistency step from the previous head, and returns the feed's `ledger` object for
+/// the release whose bundle is `named` on the entry's channel (its latest publish entry).
+pub fn append(
+    root: &Path,
+    entry: &Entry,
+    named: Option<&Digest>,
+    keys: &[&SigningKey],
+) -> Result<FeedLedger> {
+    let (ledger, index, tree_head, consistency) =
+        append_bytes(root, &entry.to_bytes(), entry.time, keys)
+            .context("cannot append to the release tree's ledger; the feed was not changed")?;
+    let new_size = tree_head.head().tree_size;
+    let (entry_text, inclusion) = match named {
+        None => (None, None),
+        Some(sha256) => {
+            let found = if entry.event == Event::Publish && entry.bundle_digest == *sha256 {
+                Some((index, ledger.entry(index)?))
+            } else {
+                ledger.find_last(|e| {
+                    e.event == Event::Publish
+                        && e.channel == entry.channel
+                        && e.bundle_digest == *sha256
+                })?
+            };
+            match found {
+                Some((at, bytes)) => (
+                    Some(String::from_utf8(bytes).context("a ledger entry is not UTF-8")?),
+                    Some(ledger.inclusion_proof(at, new_size)?),
+                ),
+                // Published before the ledger existed: devices that require the ledger
+                // refuse it, which is the truth about it.
+                None => (None, None),
+            }
+        }
+    };
+    Ok(FeedLedger {
+        tree_head,
+        entry: entry_text,
+        inclusion,
+        consistency,
+    })
+}
+
+fn write_step(
+    root: &Path,
+    tree_head: &ampoule_verify::merkle::SignedTreeHead,
+    proof: &ampoule_verify::merkle::ConsistencyProof,
+) -> Result<()> {
+    let path = root.join(ledger::step_path(proof.old_size));
+    let dir = path.parent().expect("a step path has a directory");
+    std::fs::create_dir_all(dir)
+        .with_context(|| format!("cannot create directory {}", dir.display()))?;
+    let step = ConsistencyStep {
+        tree_head: tree_head.clone(),
+        proof: proof.clone(),
+    };
+    write_atomic(&path, &step.to_json())
+}
+
+/// Writes the step into the current head if a crash right after the last append lost it, so
+/// that devices can always walk from any head the ledger ever had.
+fn repair_last_step(root: &Path, ledger: &Ledger) -> Result<()> {
+    let (Some(current), Some(previous)) = (ledger.tree_head(), ledger.previous_head()?) else {
+        return Ok(());
+    };
+    let old_size = previous.head().tree_size;
+    if root.join(ledger::step_path(old_size)).is_file() {
+        return Ok(());
+    }
+    let proof = ledger.consistency_proof(old_size, current.head().tree_size)?;
+    write_step(root, current, &proof)
+}
+
+/// What `ampoule ledger check` found.
+#[derive(Debug, Default)]
+pub struct AuditReport {
+    /// Entries in the ledger.
+    pub tree_size: u64,
+    /// The root they hash to (the current tree head's).
+    pub root_hash: Option<Digest>,
+    /// Tree heads whose signatures, roots and consistency steps were checked.
+    pub heads_checked: u64,
+    /// Distinct bundle files checked against the entries.
+    pub bundles_checked: u64,
+    /// Whether a saved older tree head was proven to be a prefix of the current one.
+    pub since: Option<u64>,
+    /// Each a reason to distrust the ledger or the tree.
+    pub problems: Vec<String>,
+    /// Each worth a look, none a sign of tampering.
+    pub warnings: Vec<String>,
+}
+
+/// Checks the tree's ledger: every hash recomputed, every logged tree head signed as `heads`
+/// requires and consistent with the one before it (through the served consistency steps), the
+/// current head consistent with `since`, and every entry against the tree: version reuse with
+/// different content, feed-sequence gaps, bundle files missing or different, entries no feed
+/// carried, trust-set files missing or different. `keys` are the tree-head keys for the stored-hash pass (threshold checked by `heads`).
+pub fn check(
+    root: &Path,
+    keys: &ampoule_verify::TrustedKeys,
+    heads: &ampoule_verify::ledger::LedgerVerifier,
+    since: Option<&ampoule_verify::merkle::SignedTreeHead>,
+) -> Result<AuditReport> {
+    let mut report = AuditReport::default();
+    let ledger = match Ledger::open(&ledger_dir(root)) {
+        Ok(ledger) => ledger,
+        Err(e) => {
+            report.problems.push(format!("{e:#}"));
+            return Ok(report);
+        }
+    };
+    report.tree_size = ledger.size();
+    report.root_hash = ledger.tree_head().map(|h| h.head().root_hash);
+    match ledger.check(keys) {
+        Ok(checked) => {
+            if !checked.head_logged {
+                report.warnings.push(
+                    "the current tree head is not in tree-heads.jsonl yet (an append stopped \
+                     before logging it; the next append logs it)"
+                        .into(),
+                );
+            }
+            if checked.uncommitted_bytes > 0 {
+                report.warnings.push(format!(
+                    "{} bytes beyond the current tree head are left from an interrupted append \
+                     (never part of the ledger; the next append removes them)",
+                    checked.uncommitted_bytes
+                ));
+            }
+        }
+        Err(e) => report.problems.push(format!("{e:#}")),
+    }
+    check_heads(root, &ledger, heads, &mut report)?;
+    if let (Some(saved), Some(current)) = (since, ledger.tree_head()) {
+        check_since(&ledger, saved, current, heads, &mut report);
+    } else if let Some(saved) = since {
+        report.problems.push(format!(
+            "the saved tree head has size {}, but the ledger is empty: its history was removed",
+            saved.head().tree_size
+        ));
+    }
+    check_entries(root, &ledger, &mut report)?;
+    Ok(report)
+}
+
+fn check_since(
+    ledger: &Ledger,
+    saved: &ampoule_verify::merkle::SignedTreeHead,
+    current: &ampoule_verify::merkle::SignedTreeHead,
+    heads: &ampoule_verify::ledger::LedgerVerifier,
+    report: &mut AuditReport,
+) {
+    let (old, new) = (saved.head(), current.head());
+    if let Err(e) = heads.verify_head(saved) {
+        report
+            .problems
+            .push(format!("the saved tree head is not validly signed: {e}"));
+        return;
+    }
+    if old.tree_size > new.tree_size {
+        report.problems.push(format!(
+            "the ledger has {} entries, fewer than the {} of the saved tree head: its history \
+             was trimmed",
+            new.tree_size, old.tree_size
+        ));
+        return;
+    }
+    let proven = ledger
+        .consistency_proof(old.tree_size, new.tree_size)
+        .map_err(|e| format!("{e:#}"))
+        .and_then(|proof| proof.verify(&old, &new).map_err(|e| e.to_string()));
+    match proven {
+        Ok(()) => report.since = Some(old.tree_size),
+        Err(e) => report.problems.push(format!(
+            "the current tree head (size {}) is not consistent with the saved tree head of size \
+             {}: the history was rewritten ({e})",
+            new.tree_size, old.tree_size
+        )),
+    }
+}
+
+/// Each logged head: signed as `heads` requires, and reached from the one before it by the
+/// consistency step the tree serves for devices.
+fn check_heads(
+    root: &Path,
+    ledger: &Ledger,
+    heads: &ampoule_verify::ledger::LedgerVerifier,
+    report: &mut AuditReport,
+) -> Result<()> {
+    let path = ledger
+        .dir()
+        .join(crate::release::ledger_storage::TREE_HEADS);
+    let text = match std::fs::read(&path) {
+        Ok(text) => text,
+        Err(e) => {
+            report
+                .problems
+                .push(format!("cannot read {}: {e}", path.display()));
+            return Ok(());
+        }
+    };
+    let mut previous: Option<ampoule_verify::merkle::TreeHead> = None;
+    for (number, line) in text.split(|&b| b == b'\n').enumerate() {
+        if line.is_empty() {
+            continue;
+        }
+        let Ok(signed) = ampoule_verify::merkle::SignedTreeHead::from_json(line) else {
+            // The stored-hash pass names a damaged line already.
+            continue;
+        };
+        let head = signed.head();
+        if let Err(e) = heads.verify_head(&signed) {
+            report.problems.push(format!(
+                "line {} of tree-heads.jsonl (tree size {}): {e}",
+                number + 1,
+                head.tree_size
+            ));
+        }
+        if let Some(old) = previous {
+            let step_file = root.join(ledger::step_path(old.tree_size));
+            let step = std::fs::read(&step_file)
+                .map_err(|e| e.to_string())
+                .and_then(|b| ConsistencyStep::from_json(&b).map_err(|e| e.to_string()))
+                .and_then(|step| {
+                    if step.tree_head.head() != head {
+                        return Err(format!(
+                            "it leads to tree size {}, not to the logged head of size {}",
+                            step.tree_head.head().tree_size,
+                            head.tree_size
+                        ));
+                    }
+                    step.proof.verify(&old, &head).map_err(|e| e.to_string())
+                });
+            if let Err(e) = step {
+                report.problems.push(format!(
+                    "consistency step {}: {e}; devices that saw tree size {} cannot catch up",
+                    ledger::step_path(old.tree_size),
+                    old.tree_size
+                ));
+            }
+        }
+        previous = Some(head);
+        report.heads_checked += 1;
+    }
+    Ok(())
+}
+
+/// The entries against each other and against the tree's bundles, histories and feeds.
+fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Result<()> {
+    use std::collections::{BTreeMap, BTreeSet};
+    let mut versions: BTreeMap<(String, String), (u64, Digest)> = BTreeMap::new();
+    let mut sequences: BTreeMap<String, (u64, u64)> = BTreeMap::new();
+    let mut bundles: BTreeSet<Digest> = BTreeSet::new();
+    let mut histories: BTreeMap<String, Option<BTreeSet<u64>>> = BTreeMap::new();
+    let mut trust_sets = TrustSetsSeen::default();
+    let entries = match ledger.entries() {
+        Ok(entries) => entries,
+        Err(e) => {
+            report.problems.push(format!("{e:#}"));
+            return Ok(());
+        }
+    };
+    for item in entries {
+        let (index, bytes) = match item {
+            Ok(item) => item,
+            Err(e) => {
+                report.problems.push(format!("{e:#}"));
+                break;
+            }
+        };
+        let entry = match Record::from_bytes(&bytes) {
+            Ok(Record::Bundle(entry)) => entry,
+            Ok(Record::TrustSet(t)) => {
+                check_trust_set_entry(root, index, &t, &mut trust_sets, report);
+                continue;
+            }
+            Err(e) => {
+                report.problems.push(format!("entry {index}: {e}"));
+                continue;
+            }
+        };
+        // SemVer precedence ignores build metadata, so 1.0.0+a and 1.0.0+b are one version.
+        let mut version = entry.version.clone();
+        version.build = semver::BuildMetadata::EMPTY;
+        let key = (entry.bundle.clone(), version.to_string());
+        match versions.get(&key) {
+            Some((first, digest)) if *digest != entry.bundle_digest => {
+                report.problems.push(format!(
+                    "entry {index}: {} {} is logged with bundle {}, but entry {first} logged it \
+                     with bundle {digest}: a version was reused with different content",
+                    entry.bundle, entry.version, entry.bundle_digest
+                ));
+            }
+            Some(_) => {}
+            None => {
+                versions.insert(key, (index, entry.bundle_digest));
+            }
+        }
+        if let Some((before, at)) = sequences.get(&entry.channel) {
+            if entry.feed_sequence <= *before {
+                report.problems.push(format!(
+                    "entry {index}: channel {} feed sequence {} does not follow {before} \
+                     (entry {at}); a sequence was reused or went back",
+                    entry.channel, entry.feed_sequence
+                ));
+            } else if entry.feed_sequence != before + 1 {
+                report.problems.push(format!(
+                    "entry {index}: sequence gap on channel {}: feed sequence {} follows {before} \
+                     (entry {at}); sequences {} to {} are not in the ledger",
+                    entry.channel,
+                    entry.feed_sequence,
+                    before + 1,
+                    entry.feed_sequence - 1
+                ));
+            }
+        }
+        sequences.insert(entry.channel.clone(), (entry.feed_sequence, index));
+        if entry.event == Event::Publish && bundles.insert(entry.bundle_digest) {
+            check_bundle(root, index, &entry, report);
+        }
+        let history = histories
+            .entry(entry.channel.clone())
+            .or_insert_with(|| history_sequences(root, &entry.channel));
+        if let Some(known) = history
+            && !known.contains(&entry.feed_sequence)
+        {
+            report.warnings.push(format!(
+                "entry {index} ({} of {} {} on channel {}, feed sequence {}) has no feed update: \
+                 the channel's history has no event with that sequence (a publish or withdraw \
+                 that stopped after its ledger append)",
+                entry.event, entry.bundle, entry.version, entry.channel, entry.feed_sequence
+            ));
+        }
+    }
+    report.bundles_checked = bundles.len() as u64;
+    Ok(())
+}
+
+/// The trust-set versions the ledger logged so far: each version's first entry and digest,
+/// and the highest version with its entry.
+#[derive(Default)]
+struct TrustSetsSeen {
+    versions: std::collections::BTreeMap<u64, (u64, Digest)>,
+    highest: Option<(u64, u64)>,
+}
+
+/// A trust-set version is published once with one content, and versions only go up: a
+/// device takes a successor only of a higher version, so anything else in the ledger means
+/// some devices were shown a set others never saw. The tree's file of each version must be
+/// the one logged: devices rotate onto what the tree serves, the auditor sees what was logged.
+fn check_trust_set_entry(
+    root: &Path,
+    index: u64,
+    entry: &TrustSetEntry,
+    seen: &mut TrustSetsSeen,
+    report: &mut AuditReport,
+) {
+    let version = entry.trust_set_version;
+    let digest = entry.trust_set_digest;
+    match seen.versions.get(&version) {
+        Some((first, before)) if *before != digest => {
+            report.problems.push(format!(
+                "entry {index}: trust set version {version} is logged with sha256 {digest}, but \
+                 entry {first} logged it with sha256 {before}: a trust-set version was reused \
+                 with different content"
+            ));
+        }
+        Some(_) => {}
+        None => {
+            seen.versions.insert(version, (index, digest));
+            check_trust_set_file(root, index, entry, report);
+        }
+    }
+    match seen.highest {
+        Some((highest, at)) if version < highest => {
+            report.problems.push(format!(
+                "entry {index}: trust set version {version} follows version {highest} (entry \
+                 {at}); trust-set versions went down"
+            ));
+        }
+        _ => seen.highest = Some((version, index)),
+    }
+}
+
+fn check_trust_set_file(root: &Path, index: u64, entry: &TrustSetEntry, report: &mut AuditReport) {
+    let version = entry.trust_set_version;
+    let name = format!("{}/{version}.json", crate::release::tree_records::TRUST_DIR);
+    let what = format!(
+        "entry {index}: trust set version {version} is logged with sha256 {}, but {name}",
+        entry.trust_set_digest
+    );
+    let found = std::fs::File::open(root.join(&name))
+        .and_then(|file| ampoule_verify::digest::hash_reader(file, u64::MAX));
+    match found {
+        Ok((digest, _)) if digest != entry.trust_set_digest => {
+            report.problems.push(format!("{what} has sha256 {digest}"))
+        }
+        Ok(_) => {}
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => report
+            .problems
+            .push(format!("{what} is missing from the tree")),
+        Err(e) => report.problems.push(format!("{what} cannot be read: {e}")),
+    }
+}
+
+/// The feed sequences a channel's history records; `None` when the tree has no history for it
+/// (a copy of the tree without its release-side records).
+fn history_sequences(root: &Path, channel: &str) -> Option<std::collections::BTreeSet<u64>> {
+    let path = root
+        .join(crate::release::tree_records::HISTORY_DIR)
+        .join(format!("{channel}.json"));
+    let bytes = std::fs::read(path).ok()?;
+    let history: crate::release::tree_records::History = serde_json::from_slice(&bytes).ok()?;
+    Some(history.events.iter().map(|e| e.sequence()).collect())
+}
+
+fn check_bundle(root: &Path, index: u64, entry: &Entry, report: &mut AuditReport) {
+    let name = format!(
+        "{}/{}.{}",
+        crate::release::tree_records::BUNDLES_DIR,
+        entry.bundle_digest,
+        ampoule_verify::format::BUNDLE_EXTENSION
+    );
+    let path = root.join(&name);
+    let what = format!(
+        "entry {index}: bundle {} {} ({name})",
+        entry.bundle, entry.version
+    );
+    let file = match std::fs::File::open(&path) {
+        Ok(file) => file,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            report
+                .problems
+                .push(format!("{what} is missing from the tree"));
+            return;
+        }
+        Err(e) => {
+            report.problems.push(format!("{what} cannot be read: {e}"));
+            return;
+        }
+    };
+    match ampoule_verify::digest::hash_reader(file, u64::MAX) {
+        Ok((digest, _)) if digest != entry.bundle_digest => {
+            report.problems.push(format!(
+                "{what} differs from what was published: its sha256 is {digest}"
+            ));
+            return;
+        }
+        Ok(_) => {}
+        Err(e) => {
+            report.problems.push(format!("{what} cannot be read: {e}"));
+            return;
+        }
+    }
+    match Unverified::open(&path) {
+        Ok(bundle) => {
+            let manifest = Digest::of(&bundle.layout.manifest);
+            if manifest != entry.manifest_digest {
+                report.problems.push(format!(
+                    "{what} has manifest sha256 {manifest}, but the entry logs {}",
+                    entry.manifest_digest
+                ));
+            }
+            if bundle.manifest.name != entry.bundle || bundle.manifest.version != entry.version {
+                report.problems.push(format!(
+                    "{what} holds {} {}, not what the entry names",
+                    bundle.manifest.name, bundle.manifest.version
+                ));
+            }
+        }
+        Err(e) => report.problems.push(format!("{what} is not a bundle: {e}")),
+    }
+}
