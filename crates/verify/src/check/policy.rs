@@ -500,6 +500,10 @@ impl CompatibilityPolicyBuilder {
     }
 
     /// Checks the policy is consistent and returns it.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Policy`] for a tensor stated twice or an empty label-count range.
     pub fn build(self) -> Result<CompatibilityPolicy> {
         let policy = self.policy;
         for (role, specs) in [("input", &policy.inputs), ("output", &policy.outputs)] {

@@ -96,6 +96,10 @@ pub struct PublicKey {
 impl PublicKey {
     /// Loads a key from raw 32 bytes, refusing encodings that are not a point and
     /// small-order (weak) keys, under which forged signatures would verify.
+    ///
+    /// # Errors
+    ///
+    /// [`crate::ErrorKind::Key`] for bytes that are not an Ed25519 point, or a weak key.
     pub fn from_raw(raw: &[u8; 32]) -> Result<Self> {
         let id = KeyId::of_raw_key(raw);
         let key = VerifyingKey::from_bytes(raw).map_err(|_| {
@@ -116,6 +120,11 @@ impl PublicKey {
     }
 
     /// Loads a key from SubjectPublicKeyInfo PEM (RFC 8410 section 4, `-----BEGIN PUBLIC KEY-----`).
+    ///
+    /// # Errors
+    ///
+    /// [`crate::ErrorKind::Key`] for text that is not such a PEM block, a key of another
+    /// algorithm, or a weak key.
     pub fn from_pem(pem: &str) -> Result<Self> {
         // A certificate or secret key given by mistake would otherwise be reported as a
         // Base64 or ASN.1 fault deep inside it; name what the file holds instead.

@@ -203,6 +203,10 @@ impl<K: Kind> Signers<K> {
     /// `threshold` of `keys` must sign. Refuses an empty key set, a threshold of 0 (which
     /// would accept unsigned documents) and one above the number of keys (which nothing
     /// could meet).
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Key`] for an empty key set or an unusable threshold.
     pub fn new(keys: TrustedKeys, threshold: usize) -> Result<Self> {
         if keys.is_empty() {
             return Err(Error::new(
