@@ -13,25 +13,15 @@ use ampoule::release::serve::Server;
 use ampoule_verify::feed::{Feed, SignedFeed, rollout_bucket};
 use ampoule_verify::format::{context, signed_bytes};
 use ampoule_verify::signature::SignatureEntry;
-use ampoule_verify::signed::Signers;
 use ampoule_verify::{
-    App, Device, Digest, ErrorKind, KeyId, Outcome, Report, Timestamp, Trust, Version, tar,
+    App, Device, Digest, ErrorKind, KeyId, Outcome, Report, Timestamp, Version, tar,
 };
 use tree_common::*;
 
 const DAY: u64 = 86_400;
 
-/// The camera app of these tests: the test key pinned for every role, app version 2.3.0.
 fn app(d: &Path) -> App {
-    let keys = keys(d);
-    let trust = Trust::pinned(
-        Signers::new(keys.clone(), 1).expect("bundle signers"),
-        Signers::new(keys.clone(), 1).expect("feed signers"),
-        Signers::new(keys, 1).expect("tree-head signers"),
-    );
-    App::new(trust, Version::new(2, 3, 0))
-        .device_id("camera-7")
-        .expect("device id")
+    pinned_app(d)
 }
 
 fn device(d: &Path, store: &str) -> Device {

@@ -533,25 +533,7 @@ fn update_requires_the_ledger_proof_issue_4() {
     let mut feed: serde_json::Value = serde_json::from_str(&signed.feed).expect("feed text");
     feed.as_object_mut().expect("object").remove("ledger");
     let text = serde_json::to_string(&feed).expect("feed text");
-    let key = ampoule::release::keyfile::read_secret_key(
-        &d.join("k.pem"),
-        &ampoule::release::keyfile::PassphraseSource::None,
-    )
-    .expect("the test key");
-    let stripped = SignedFeed {
-        signatures: vec![ampoule_verify::signature::SignatureEntry {
-            key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
-            signature: ed25519_dalek::Signer::sign(
-                &key,
-                &ampoule_verify::format::signed_bytes(
-                    ampoule_verify::format::context::FEED,
-                    text.as_bytes(),
-                ),
-            )
-            .to_bytes(),
-        }],
-        feed: text,
-    };
+    let stripped = signed_feed_file(d, "k.pem", text);
     std::fs::write(&feed_path, stripped.to_json()).expect("stripped feed");
     let server = serve(d);
     let out = update(d, &server, &[]);

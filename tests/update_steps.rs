@@ -7,9 +7,8 @@ mod tree_common;
 
 use std::path::{Path, PathBuf};
 
-use ampoule_verify::signed::Signers;
 use ampoule_verify::update::Next;
-use ampoule_verify::{App, Device, ErrorKind, Outcome, Report, Timestamp, Trust, Version};
+use ampoule_verify::{App, Device, ErrorKind, Outcome, Report, Timestamp, Version};
 use tree_common::*;
 
 /// Any base works: the test maps each URL back to a file of the tree.
@@ -26,17 +25,8 @@ fn tree_file(d: &Path, url: &str) -> PathBuf {
     d.join("tree").join(path)
 }
 
-/// The camera app of these tests: the test key pinned for every role, app version 2.3.0.
 fn app(d: &Path) -> App {
-    let keys = keys(d);
-    let trust = Trust::pinned(
-        Signers::new(keys.clone(), 1).expect("bundle signers"),
-        Signers::new(keys.clone(), 1).expect("feed signers"),
-        Signers::new(keys, 1).expect("tree-head signers"),
-    );
-    App::new(trust, Version::new(2, 3, 0))
-        .device_id("camera-7")
-        .expect("device id")
+    pinned_app(d)
 }
 
 /// What the app did during one update.
@@ -236,25 +226,7 @@ fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
             .expect("feed");
     let text = signed.feed.replacen("{\"format\":1,", "{\"format\":2,", 1);
     assert_ne!(text, signed.feed);
-    let key = ampoule::release::keyfile::read_secret_key(
-        &d.join("k.pem"),
-        &ampoule::release::keyfile::PassphraseSource::None,
-    )
-    .expect("the test key");
-    let resigned = ampoule_verify::feed::SignedFeed {
-        signatures: vec![ampoule_verify::signature::SignatureEntry {
-            key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
-            signature: ed25519_dalek::Signer::sign(
-                &key,
-                &ampoule_verify::format::signed_bytes(
-                    ampoule_verify::format::context::FEED,
-                    text.as_bytes(),
-                ),
-            )
-            .to_bytes(),
-        }],
-        feed: text,
-    };
+    let resigned = signed_feed_file(d, "k.pem", text);
     std::fs::write(&feed_path, resigned.to_json()).expect("newer feed");
     let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
     for _ in 0..2 {
@@ -276,23 +248,7 @@ fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
         d,
         &["keygen", "--secret", "other.pem", "--public", "other.pub"],
     );
-    let other = ampoule::release::keyfile::read_secret_key(
-        &d.join("other.pem"),
-        &ampoule::release::keyfile::PassphraseSource::None,
-    )
-    .expect("the other key");
-    let mut forged = resigned.clone();
-    forged.signatures[0] = ampoule_verify::signature::SignatureEntry {
-        key_id: ampoule_verify::KeyId::of_raw_key(other.verifying_key().as_bytes()),
-        signature: ed25519_dalek::Signer::sign(
-            &other,
-            &ampoule_verify::format::signed_bytes(
-                ampoule_verify::format::context::FEED,
-                forged.feed.as_bytes(),
-            ),
-        )
-        .to_bytes(),
-    };
+    let forged = signed_feed_file(d, "other.pem", resigned.feed.clone());
     std::fs::write(&feed_path, forged.to_json()).expect("forged feed");
     let (report, _) = drive(&device, d, "stable", &as_served);
     assert!(

@@ -7,7 +7,10 @@ use std::path::Path;
 use std::process::{Command, Output};
 
 use ampoule_verify::feed::{Feed, SignedFeed};
-use ampoule_verify::{Digest, FeedVerifier, PublicKey, Timestamp, TrustedKeys};
+use ampoule_verify::signed::Signers;
+use ampoule_verify::{
+    App, Digest, FeedVerifier, PublicKey, Timestamp, Trust, TrustedKeys, Version,
+};
 
 pub const BIN: &str = env!("CARGO_BIN_EXE_ampoule");
 
@@ -109,6 +112,44 @@ pub fn keys(d: &Path) -> TrustedKeys {
     [PublicKey::from_pem(&pem).expect("key")]
         .into_iter()
         .collect()
+}
+
+/// The camera app of the library-level tests: the test key (`k.pub`) pinned for every role,
+/// app version 2.3.0, device id `camera-7`.
+pub fn pinned_app(d: &Path) -> App {
+    let keys = keys(d);
+    let trust = Trust::pinned(
+        Signers::new(keys.clone(), 1).expect("bundle signers"),
+        Signers::new(keys.clone(), 1).expect("feed signers"),
+        Signers::new(keys, 1).expect("tree-head signers"),
+    );
+    App::new(trust, Version::new(2, 3, 0))
+        .device_id("camera-7")
+        .expect("device id")
+}
+
+/// A feed file whose text is `text`, signed by the secret key in `d/<key>` alone: for tests
+/// that change what a genuine publisher would never sign.
+pub fn signed_feed_file(d: &Path, key: &str, text: String) -> SignedFeed {
+    let key = ampoule::release::keyfile::read_secret_key(
+        &d.join(key),
+        &ampoule::release::keyfile::PassphraseSource::None,
+    )
+    .expect("the test key");
+    SignedFeed {
+        signatures: vec![ampoule_verify::signature::SignatureEntry {
+            key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
+            signature: ed25519_dalek::Signer::sign(
+                &key,
+                &ampoule_verify::format::signed_bytes(
+                    ampoule_verify::format::context::FEED,
+                    text.as_bytes(),
+                ),
+            )
+            .to_bytes(),
+        }],
+        feed: text,
+    }
 }
 
 pub fn read_feed(d: &Path, channel: &str) -> Feed {

@@ -41,6 +41,7 @@ use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, limit};
 use crate::format::keys::{KeyId, TrustedKeys};
+use crate::check::bundle::{VerifiedBundle, Verifier};
 use crate::check::ledger_proof::{LedgerCheck, LedgerVerifier, Walk};
 use crate::format::ledger_entry::{Event, FeedLedger, Record, invalid as not_published};
 use crate::format::manifest::check_name;
@@ -753,6 +754,89 @@ fn remove_dot_segments(path: &str) -> String {
     output
 }
 
+
+
+/// What a verified feed means for one device, decided before a byte of the bundle is fetched.
+#[derive(Debug)]
+pub(crate) enum Decision {
+    /// The channel offers nothing.
+    NothingOffered,
+    /// The release is not newer than the highest version the device accepted.
+    UpToDate,
+    /// The release needs another app version.
+    NeedsOtherApp(Release),
+    /// The release is rolled out to a share of devices without this one.
+    NotInRollout(u16),
+    /// Download and check this release.
+    Fetch(Release),
+}
+
+impl VerifiedFeed {
+    /// Decides by the bundle name the app runs, the highest version it accepted, its version
+    /// and the rollout. A feed offering another model line than the app runs is refused.
+    pub(crate) fn decide(&self, bundles: &Verifier, device_id: &str) -> Result<Decision> {
+        let Some(release) = self.release().cloned() else {
+            return Ok(Decision::NothingOffered);
+        };
+        if let Some(name) = bundles.required_name()
+            && release.name != name
+        {
+            return Err(Error::new(
+                ErrorKind::Policy,
+                format!(
+                    "feed offers bundle '{}' but this app accepts only '{name}'",
+                    release.name
+                ),
+            ));
+        }
+        let newer = |installed: &Version| {
+            release.version.cmp_precedence(installed) == std::cmp::Ordering::Greater
+        };
+        if !bundles.installed_version().is_none_or(newer) {
+            return Ok(Decision::UpToDate);
+        }
+        if let Some(app) = bundles.app_version()
+            && !release.requires_app.matches(app)
+        {
+            return Ok(Decision::NeedsOtherApp(release));
+        }
+        let bucket = rollout_bucket(device_id, &release.sha256);
+        if !in_rollout(device_id, &release.sha256, release.rollout_percent) {
+            return Ok(Decision::NotInRollout(bucket));
+        }
+        Ok(Decision::Fetch(release))
+    }
+
+    /// Checks a verified bundle against what this feed offered: the same name and version,
+    /// and (with the ledger) the manifest the publish entry logs, so a bundle signed but never
+    /// published is refused even when a feed points to it.
+    pub(crate) fn check_bundle(&self, release: &Release, bundle: &VerifiedBundle) -> Result<()> {
+        let m = bundle.manifest();
+        if m.name != release.name || m.version != release.version {
+            return Err(Error::new(
+                ErrorKind::Feed,
+                format!(
+                    "feed announced {} {} but the bundle it points to is {} {}",
+                    release.name, release.version, m.name, m.version
+                ),
+            ));
+        }
+        if let Some(entry) = self.ledger().and_then(|l| l.entry.as_ref()) {
+            let manifest_sha256 = Digest::of(bundle.manifest_bytes());
+            if manifest_sha256 != entry.manifest_digest {
+                return Err(Error::new(
+                    ErrorKind::Proof,
+                    format!(
+                        "bundle {} {} ({}) was signed but never published: its manifest has \
+                         sha256 {manifest_sha256}, but the ledger's publish entry logs {}",
+                        m.name, m.version, release.sha256, entry.manifest_digest
+                    ),
+                ));
+            }
+        }
+        Ok(())
+    }
+}
 
 /// The part of the ledger check that reads a feed: its entry, the release it must log, and the
 /// inclusion proof; the tree head's signatures and the walk come from `check/ledger_proof.rs`.

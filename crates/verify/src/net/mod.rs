@@ -29,11 +29,10 @@ use hyper_rustls::HttpsConnector;
 use hyper_util::client::legacy::Client;
 use hyper_util::client::legacy::connect::HttpConnector;
 use hyper_util::rt::{TokioExecutor, TokioTimer};
-use semver::Version;
 
 use crate::check::bundle::{VerifiedBundle, Verifier};
 use crate::check::feed::{
-    Feed, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, in_rollout, resolve,
+    Decision, Feed, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, resolve,
 };
 use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
@@ -892,34 +891,13 @@ impl Updater {
             rotated = Some(self.bundles.clone().with_trust_set(&next)?);
         }
         let bundles = rotated.as_ref().unwrap_or(&self.bundles);
-        let Some(release) = feed.release().cloned() else {
-            return Ok(Update::NothingCurrent { feed });
+        let release = match feed.decide(bundles, &self.device_id)? {
+            Decision::NothingOffered => return Ok(Update::NothingCurrent { feed }),
+            Decision::UpToDate => return Ok(Update::UpToDate { feed }),
+            Decision::NeedsOtherApp(_) => return Ok(Update::NeedsOtherApp { feed }),
+            Decision::NotInRollout(_) => return Ok(Update::NotInRollout { feed }),
+            Decision::Fetch(release) => release,
         };
-        if let Some(name) = bundles.required_name()
-            && release.name != name
-        {
-            return Err(Error::new(
-                ErrorKind::Policy,
-                format!(
-                    "feed offers bundle '{}' but this app accepts only '{name}'",
-                    release.name
-                ),
-            ));
-        }
-        let newer = |installed: &Version| {
-            release.version.cmp_precedence(installed) == std::cmp::Ordering::Greater
-        };
-        if !bundles.installed_version().is_none_or(newer) {
-            return Ok(Update::UpToDate { feed });
-        }
-        if let Some(app) = bundles.app_version()
-            && !release.requires_app.matches(app)
-        {
-            return Ok(Update::NeedsOtherApp { feed });
-        }
-        if !in_rollout(&self.device_id, &release.sha256, release.rollout_percent) {
-            return Ok(Update::NotInRollout { feed });
-        }
         std::fs::create_dir_all(&self.download_dir).map_err(|e| {
             Error::io(
                 format!(
@@ -946,30 +924,9 @@ impl Updater {
                 return Err(e);
             }
         };
-        let m = bundle.manifest();
-        if m.name != release.name || m.version != release.version {
+        if let Err(e) = feed.check_bundle(&release, &bundle) {
             let _ = std::fs::remove_file(&path);
-            return Err(Error::new(
-                ErrorKind::Feed,
-                format!(
-                    "feed announced {} {} but the bundle it points to is {} {}",
-                    release.name, release.version, m.name, m.version
-                ),
-            ));
-        }
-        if let Some(entry) = feed.ledger().and_then(|l| l.entry.as_ref()) {
-            let manifest_sha256 = Digest::of(bundle.manifest_bytes());
-            if manifest_sha256 != entry.manifest_digest {
-                let _ = std::fs::remove_file(&path);
-                return Err(Error::new(
-                    ErrorKind::Proof,
-                    format!(
-                        "bundle {} {} ({}) was signed but never published: its manifest has \
-                         sha256 {manifest_sha256}, but the ledger's publish entry logs {}",
-                        m.name, m.version, release.sha256, entry.manifest_digest
-                    ),
-                ));
-            }
+            return Err(e);
         }
         Ok(Update::Ready {
             feed,

@@ -10,7 +10,7 @@ use serde::Deserialize;
 
 use crate::check::bundle::Verifier;
 use crate::check::feed::{
-    Expiry, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed, rollout_bucket,
+    Decision, Expiry, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed,
 };
 use crate::check::ledger_proof::{LedgerVerifier, Walk};
 use crate::error::{Error, ErrorKind, Result};
@@ -447,39 +447,24 @@ impl<'d> Session<'d> {
         let store = self.store()?.clone();
         let state = store.state()?;
         let bundles = self.bundle_verifier(&state)?;
-        let Some(release) = feed.release().cloned() else {
-            return self.settle(&store, &feed, Outcome::NothingOffered);
-        };
-        if let Some(name) = bundles.required_name()
-            && release.name != name
-        {
-            return Err(Error::new(
-                ErrorKind::Policy,
-                format!(
-                    "feed offers bundle '{}' but this app accepts only '{name}'",
-                    release.name
-                ),
-            ));
-        }
-        let newer = |installed: &semver::Version| {
-            release.version.cmp_precedence(installed) == std::cmp::Ordering::Greater
-        };
-        if !bundles.installed_version().is_none_or(newer) {
-            return self.settle(&store, &feed, Outcome::UpToDate);
-        }
         let app = self.device.app();
-        if !release.requires_app.matches(&app.version) {
-            let reason = format!(
-                "{} {} requires app {}, and this app is {}",
-                release.name, release.version, release.requires_app, app.version
-            );
-            return self.settle(&store, &feed, Outcome::NeedsOtherApp { reason });
-        }
-        let device_id = self.device.device_id();
-        let bucket = rollout_bucket(device_id, &release.sha256);
-        if u32::from(bucket) >= u32::from(release.rollout_percent.min(100)) * 100 {
-            return self.settle(&store, &feed, Outcome::NotInRollout { bucket });
-        }
+        let release = match feed.decide(&bundles, self.device.device_id())? {
+            Decision::NothingOffered => {
+                return self.settle(&store, &feed, Outcome::NothingOffered);
+            }
+            Decision::UpToDate => return self.settle(&store, &feed, Outcome::UpToDate),
+            Decision::NeedsOtherApp(release) => {
+                let reason = format!(
+                    "{} {} requires app {}, and this app is {}",
+                    release.name, release.version, release.requires_app, app.version
+                );
+                return self.settle(&store, &feed, Outcome::NeedsOtherApp { reason });
+            }
+            Decision::NotInRollout(bucket) => {
+                return self.settle(&store, &feed, Outcome::NotInRollout { bucket });
+            }
+            Decision::Fetch(release) => release,
+        };
         if release.size > app.max_bundle_bytes {
             return Err(Error::new(
                 ErrorKind::TooLarge,
@@ -530,29 +515,7 @@ impl<'d> Session<'d> {
         }
         let bundles = self.bundle_verifier(&store.state()?)?;
         let bundle = bundles.verify_path(path).map_err(discard)?;
-        let m = bundle.manifest();
-        if m.name != release.name || m.version != release.version {
-            return Err(discard(Error::new(
-                ErrorKind::Feed,
-                format!(
-                    "feed announced {} {} but the bundle it points to is {} {}",
-                    release.name, release.version, m.name, m.version
-                ),
-            )));
-        }
-        if let Some(entry) = feed.ledger().and_then(|l| l.entry.as_ref()) {
-            let manifest_sha256 = Digest::of(bundle.manifest_bytes());
-            if manifest_sha256 != entry.manifest_digest {
-                return Err(discard(Error::new(
-                    ErrorKind::Proof,
-                    format!(
-                        "bundle {} {} ({}) was signed but never published: its manifest has \
-                         sha256 {manifest_sha256}, but the ledger's publish entry logs {}",
-                        m.name, m.version, release.sha256, entry.manifest_digest
-                    ),
-                )));
-            }
-        }
+        feed.check_bundle(release, &bundle).map_err(discard)?;
         let installed = store.install_from_feed(bundle, &feed).map_err(discard)?;
         if ours {
             let _ = std::fs::remove_file(path);
