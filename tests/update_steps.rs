@@ -256,3 +256,45 @@ fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
         "{report:?}"
     );
 }
+
+#[test]
+fn issue9_a_finished_session_driven_again_fails_without_touching_the_store() {
+    let dir = setup();
+    let d = dir.path();
+    publish(d, &pack(d, "1.0.0", 0, "k.pem"), "stable", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let url = feed_url("stable");
+    let feed = std::fs::read(tree_file(d, &url)).expect("feed file");
+    let mut session = device.begin(&url, feed, Timestamp::now());
+    let mut first = None;
+    while first.is_none() {
+        match session.advance() {
+            Next::Download(want) => {
+                std::fs::copy(tree_file(d, &want.urls()[0]), want.path()).expect("copy");
+                session.downloaded(want.path());
+            }
+            Next::Done(report) => first = Some(report),
+            other => panic!("unexpected step {other:?}"),
+        }
+    }
+    assert_eq!(
+        installed_version(&first.expect("report")),
+        Version::new(1, 0, 0)
+    );
+    let before = std::fs::read(d.join("cam/state.json")).expect("state");
+    // The app's mistake: driving it again. A failure (not a refusal), and nothing changes.
+    match session.advance() {
+        Next::Done(report) => match &report.outcome {
+            Outcome::Failed(e) => {
+                assert_eq!(e.kind(), ErrorKind::Settings);
+                assert_eq!(e.to_string(), "this update already ended; start another");
+            }
+            other => panic!("expected a failure, got {other:?}"),
+        },
+        other => panic!("expected the end, got {other:?}"),
+    }
+    assert_eq!(
+        std::fs::read(d.join("cam/state.json")).expect("state"),
+        before
+    );
+}

@@ -248,8 +248,9 @@ impl<'d> Session<'d> {
     }
 
     fn report(&mut self, outcome: Outcome) -> Report {
+        // Driving a finished session again is the app's mistake, not a refusal of anything.
         self.state = State::Failed(Error::new(
-            ErrorKind::Policy,
+            ErrorKind::Settings,
             "this update already ended; start another",
         ));
         Report {
@@ -304,7 +305,7 @@ impl<'d> Session<'d> {
             } => self.install(&path, &release, checked),
             State::Failed(e) => Ok(Step::End(Outcome::from_error(e))),
             State::Ended => Err(Error::new(
-                ErrorKind::Policy,
+                ErrorKind::Settings,
                 "this update already ended; start another",
             )),
         }
