@@ -298,3 +298,177 @@ fn issue9_a_finished_session_driven_again_fails_without_touching_the_store() {
         before
     );
 }
+
+/// One update whose download is interrupted half way (`complete` false), as a lost
+/// connection leaves it, or completes; and the documents it asked for.
+fn drive_partly(device: &Device, d: &Path, complete: bool) -> (Report, Vec<String>) {
+    let url = feed_url("stable");
+    let feed = std::fs::read(tree_file(d, &url)).expect("feed file");
+    let mut session = device.begin(&url, feed, Timestamp::now());
+    let mut fetched = Vec::new();
+    loop {
+        match session.advance() {
+            Next::Fetch(want) => {
+                fetched.push(want.url().to_string());
+                session.provide(std::fs::read(tree_file(d, want.url())).expect("file"));
+            }
+            Next::Download(want) => {
+                let bytes = as_served(&tree_file(d, &want.urls()[0]));
+                if complete {
+                    std::fs::write(want.path(), &bytes).expect("write");
+                    session.downloaded(want.path());
+                } else {
+                    std::fs::write(want.path(), &bytes[..bytes.len() / 2]).expect("write");
+                    return (session.fail("connection lost"), fetched);
+                }
+            }
+            Next::Done(report) => return (report, fetched),
+            other => panic!("unexpected step {other:?}"),
+        }
+    }
+}
+
+fn downloads(d: &Path) -> Vec<String> {
+    let mut names: Vec<String> = std::fs::read_dir(d.join("cam/downloads"))
+        .expect("downloads")
+        .map(|e| e.expect("entry").file_name().to_string_lossy().into_owned())
+        .filter(|n| n != "lock")
+        .collect();
+    names.sort();
+    names
+}
+
+#[test]
+fn issue9_review_steps_are_walked_once_and_superseded_partials_are_removed() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    assert_eq!(
+        installed_version(&drive_partly(&device, d, true).0),
+        Version::new(1, 0, 0)
+    );
+    publish(d, &v1, "beta", "100");
+    publish(d, &v1, "beta", "100");
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
+    // The walk to the new head happens once: the proven head is remembered before the
+    // download, so an interrupted download does not cost the next update the same steps.
+    let (report, first) = drive_partly(&device, d, false);
+    assert!(matches!(report.outcome, Outcome::Failed(_)), "{report:?}");
+    assert_eq!(first.len(), 2, "{first:?}");
+    let (_, second) = drive_partly(&device, d, false);
+    assert!(second.is_empty(), "walked again: {second:?}");
+    assert_eq!(
+        downloads(d).len(),
+        1,
+        "the partial of 1.1.0 is kept for resuming"
+    );
+    // 1.2.0 supersedes 1.1.0: the abandoned partial goes as soon as another is handed out.
+    publish(d, &pack(d, "1.2.0", 2, "k.pem"), "stable", "100");
+    assert_eq!(
+        installed_version(&drive_partly(&device, d, true).0),
+        Version::new(1, 2, 0)
+    );
+    assert!(downloads(d).is_empty(), "{:?}", downloads(d));
+    // A partial left some other way is removed by gc too.
+    std::fs::write(d.join("cam/downloads/stray.partial"), b"x").expect("stray");
+    device.gc().expect("gc");
+    assert!(downloads(d).is_empty(), "{:?}", downloads(d));
+}
+
+#[test]
+fn issue9_review_another_channels_newer_format_feed_is_refused_not_needs_other_app() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    publish(d, &v1, "beta", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    assert_eq!(
+        installed_version(&drive_partly(&device, d, true).0),
+        Version::new(1, 0, 0)
+    );
+    // beta moved to feed format 2, and a hostile server serves it at stable's URL.
+    let beta = ampoule_verify::feed::SignedFeed::from_json(
+        &std::fs::read(d.join("tree/feeds/beta.json")).expect("beta"),
+    )
+    .expect("beta feed");
+    let text = beta.feed.replacen("{\"format\":1,", "{\"format\":2,", 1);
+    std::fs::write(
+        d.join("tree/feeds/stable.json"),
+        signed_feed_file(d, "k.pem", text).to_json(),
+    )
+    .expect("served at stable's URL");
+    let (report, _) = drive_partly(&device, d, true);
+    match &report.outcome {
+        Outcome::Refused(e) => assert_eq!(
+            e.to_string(),
+            "feed format 2 is not supported (this reader knows format 1)"
+        ),
+        other => panic!("expected a refusal, got {other:?}"),
+    }
+}
+
+#[test]
+fn issue9_review_a_feed_whose_consistency_walk_failed_is_not_reported() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    assert_eq!(
+        installed_version(&drive_partly(&device, d, true).0),
+        Version::new(1, 0, 0)
+    );
+    publish(d, &v1, "beta", "100");
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
+    let url = feed_url("stable");
+    let mut session = device.begin(
+        &url,
+        std::fs::read(tree_file(d, &url)).expect("feed"),
+        Timestamp::now(),
+    );
+    let Next::Fetch(want) = session.advance() else {
+        panic!("expected the consistency step to be asked for");
+    };
+    assert_eq!(want.url(), format!("{BASE}ledger/consistency/1.json"));
+    session.provide(b"{}".to_vec());
+    let Next::Done(report) = session.advance() else {
+        panic!("expected the end");
+    };
+    assert!(
+        matches!(&report.outcome, Outcome::Refused(e) if e.kind() == ErrorKind::Proof),
+        "{report:?}"
+    );
+    assert!(
+        report.feed.is_none(),
+        "a feed whose ledger walk failed was reported"
+    );
+}
+
+#[test]
+fn issue9_review_a_second_downloaded_call_changes_nothing() {
+    let dir = setup();
+    let d = dir.path();
+    publish(d, &pack(d, "1.0.0", 0, "k.pem"), "stable", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let url = feed_url("stable");
+    let mut session = device.begin(
+        &url,
+        std::fs::read(tree_file(d, &url)).expect("feed"),
+        Timestamp::now(),
+    );
+    let Next::Download(want) = session.advance() else {
+        panic!("expected the download");
+    };
+    std::fs::copy(tree_file(d, &want.urls()[0]), want.path()).expect("copy");
+    // A transfer service's duplicate completion callback.
+    session.downloaded(want.path());
+    session.downloaded(want.path());
+    let Next::Done(report) = session.advance() else {
+        panic!("expected the end");
+    };
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+    assert!(downloads(d).is_empty(), "{:?}", downloads(d));
+}

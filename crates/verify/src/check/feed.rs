@@ -452,6 +452,18 @@ impl FeedVerifier {
             .check(&self.signers, "feed")
     }
 
+    /// The sequence of the feed the device accepted last, if any.
+    pub(crate) fn last_sequence(&self) -> Option<u64> {
+        self.last.map(|(sequence, _)| sequence)
+    }
+
+    /// Whether a feed expiring at `expires` is still current at `now`, under the same skew
+    /// and the same offline rule as [`FeedVerifier::verify`].
+    pub(crate) fn is_current(&self, expires: Timestamp, now: Timestamp) -> bool {
+        self.expiry != Expiry::Checked
+            || expires.unix().saturating_add(self.skew_secs) >= now.unix()
+    }
+
     /// The channel this verifier accepts.
     pub fn channel(&self) -> &str {
         &self.channel

@@ -94,14 +94,20 @@ impl Device {
         self.store.rollback()
     }
 
-    /// Removes releases other than the current and the previous one, and what crashed
-    /// updates left behind; returns what was removed. Every update does this too.
+    /// Removes releases other than the current and the previous one, what crashed updates
+    /// left behind, and downloads no update is using; returns the releases and leftovers
+    /// removed. Every update does this too.
     ///
     /// # Errors
     ///
     /// [`ErrorKind::Locked`] while an update runs; I/O errors.
     pub fn gc(&self) -> Result<Vec<PathBuf>> {
-        self.store.gc()
+        let removed = self.store.gc()?;
+        // Downloads only while no update holds them.
+        if let Ok(_lock) = self.lock_downloads() {
+            self.sweep_downloads(None);
+        }
+        Ok(removed)
     }
 
     /// Makes the store follow this device's channel from now on (see [`Device::open`]); the
@@ -211,6 +217,32 @@ impl Device {
             verifier = verifier.installed(highest.clone());
         }
         store.install_without_feed(verifier.verify_path(bundle)?)
+    }
+
+    /// Removes everything in the download directory but its lock and `keep` (the download in
+    /// progress): partial downloads of releases no feed offers any more would otherwise stay
+    /// for good. Links are removed, never followed. Best effort: a file that cannot be removed
+    /// now is tried again at the next update.
+    pub(crate) fn sweep_downloads(&self, keep: Option<&Path>) {
+        let dir = self.store.dir().join(DOWNLOADS_DIR);
+        let Ok(entries) = fs::read_dir(&dir) else {
+            return;
+        };
+        for entry in entries.flatten() {
+            let path = entry.path();
+            if entry.file_name() == DOWNLOAD_LOCK || Some(path.as_path()) == keep {
+                continue;
+            }
+            match entry.file_type() {
+                Ok(kind) if kind.is_dir() => {
+                    let _ = fs::remove_dir_all(&path);
+                }
+                Ok(_) => {
+                    let _ = fs::remove_file(&path);
+                }
+                Err(_) => {}
+            }
+        }
     }
 
     pub(crate) fn app(&self) -> &App {

@@ -118,7 +118,7 @@ pub struct Session<'d> {
 enum State {
     Start,
     TrustSet(Fetch, TrustSetRef),
-    Steps(Fetch, Walk),
+    Steps(Fetch, Walk, Box<VerifiedFeed>),
     Decide,
     Download(Download, Release),
     Downloaded {
@@ -213,11 +213,13 @@ impl<'d> Session<'d> {
     /// Says the bundle of the last [`Next::Download`] is complete at `path` (normally
     /// [`Download::path`]). Its size and SHA-256 are checked before anything else reads it,
     /// and a bundle in the download directory is removed once installed or refused.
+    ///
+    /// Called when nothing was asked for (twice for one download, say), it changes nothing.
     pub fn downloaded(&mut self, path: &Path) {
-        if let State::Download(_, release) = std::mem::replace(&mut self.state, State::Ended) {
+        if let State::Download(_, release) = &self.state {
             self.state = State::Downloaded {
                 path: path.to_path_buf(),
-                release,
+                release: release.clone(),
                 checked: false,
             };
         }
@@ -226,10 +228,10 @@ impl<'d> Session<'d> {
     /// The download of the last [`Next::Download`] is at its path, and its size and digest
     /// were checked while it streamed (or was copied).
     pub(crate) fn downloaded_and_checked(&mut self) {
-        if let State::Download(want, release) = std::mem::replace(&mut self.state, State::Ended) {
+        if let State::Download(want, release) = &self.state {
             self.state = State::Downloaded {
-                path: want.path,
-                release,
+                path: want.path.clone(),
+                release: release.clone(),
                 checked: true,
             };
         }
@@ -283,14 +285,14 @@ impl<'d> Session<'d> {
                 )),
                 Some(bytes) => self.rotate(&want, &named, &bytes),
             },
-            State::Steps(want, mut walk) => match self.answer.take() {
+            State::Steps(want, mut walk, feed) => match self.answer.take() {
                 None => Ok(Step::Ask(
-                    State::Steps(want.clone(), walk),
+                    State::Steps(want.clone(), walk, feed),
                     Next::Fetch(want),
                 )),
                 Some(bytes) => {
                     walk.advance(&bytes)?;
-                    self.walk_or_decide(walk)
+                    self.walk_or_decide(walk, *feed)
                 }
             },
             State::Decide => self.decide(),
@@ -345,7 +347,7 @@ impl<'d> Session<'d> {
         let (feed, walk) = match feeds.verify_before_steps(&self.feed_bytes, self.now) {
             Ok(checked) => checked,
             Err(e) => {
-                if let Some(format) = newer_feed_format(&feeds, &self.feed_bytes) {
+                if let Some(format) = newer_feed_format(&feeds, &self.feed_bytes, self.now) {
                     return Ok(Step::End(Outcome::NeedsOtherApp {
                         reason: format!(
                             "the feed is in format {format}, and this app's ampoule-verify reads \
@@ -366,11 +368,24 @@ impl<'d> Session<'d> {
             };
             return Ok(Step::Go(State::TrustSet(want, named.clone())));
         }
-        self.feed = Some(feed);
         match walk {
-            Some(walk) => self.walk_or_decide(walk),
-            None => Ok(Step::Go(State::Decide)),
+            Some(walk) => self.walk_or_decide(walk, feed),
+            None => {
+                self.feed = Some(feed);
+                Ok(Step::Go(State::Decide))
+            }
         }
+    }
+
+    /// The feed passed every check after a walk through the tree's consistency steps: it is
+    /// the update's feed from now on, and its tree head (signed, and proven to extend the one
+    /// remembered) is remembered at once, so a failed download or a refused bundle does not
+    /// make the next update fetch the same steps again. Without a walk the head is remembered
+    /// only with what the update does with the feed, and a refusal leaves the store as it was.
+    fn proven(&mut self, feed: VerifiedFeed) -> Result<Step> {
+        self.store()?.remember_feed_tree_head(&feed)?;
+        self.feed = Some(feed);
+        Ok(Step::Go(State::Decide))
     }
 
     /// Accepts the trust set the feed named as the successor of the one held, stores it, and
@@ -422,9 +437,9 @@ impl<'d> Session<'d> {
         })
     }
 
-    fn walk_or_decide(&mut self, walk: Walk) -> Result<Step> {
+    fn walk_or_decide(&mut self, walk: Walk, feed: VerifiedFeed) -> Result<Step> {
         match walk.needs() {
-            None => Ok(Step::Go(State::Decide)),
+            None => self.proven(feed),
             Some(size) => {
                 let want = Fetch {
                     url: crate::check::feed::resolve(
@@ -434,7 +449,7 @@ impl<'d> Session<'d> {
                     what: "consistency step",
                     max_bytes: ledger::MAX_STEP_BYTES,
                 };
-                Ok(Step::Go(State::Steps(want, walk)))
+                Ok(Step::Go(State::Steps(want, walk, Box::new(feed))))
             }
         }
     }
@@ -485,13 +500,16 @@ impl<'d> Session<'d> {
                 .downloads()?
                 .join(format!("{}.ampoule.partial", release.sha256)),
         };
+        self.device.sweep_downloads(Some(&want.path));
         Ok(Step::Go(State::Download(want, release)))
     }
 
-    /// Records the feed (so an older one is refused from now on) and the tree head it proved.
+    /// Records the feed, so that an older one is refused from now on, and the tree head it
+    /// proved, and drops downloads no update asks for any more.
     fn settle(&mut self, store: &Store, feed: &VerifiedFeed, outcome: Outcome) -> Result<Step> {
         store.record_feed(feed)?;
         store.remember_feed_tree_head(feed)?;
+        self.device.sweep_downloads(None);
         Ok(Step::End(outcome))
     }
 
@@ -511,17 +529,24 @@ impl<'d> Session<'d> {
             }
             e
         };
+        // One open of the file: the bytes hashed against the feed are the bytes verified and
+        // unpacked, even if the path is replaced meanwhile.
+        let mut file = File::open(path)
+            .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?;
         if !checked {
-            check_file(path, release).map_err(discard)?;
+            check_file(&mut file, path, release).map_err(discard)?;
         }
         let bundles = self.bundle_verifier(&store.state()?)?;
-        let bundle = bundles.verify_path(path).map_err(discard)?;
+        let bundle = bundles.verify_file(file).map_err(discard)?;
         feed.check_bundle(release, &bundle).map_err(discard)?;
         let installed = store.install_from_feed(bundle, &feed).map_err(discard)?;
         if ours {
             let _ = std::fs::remove_file(path);
         }
-        store.remember_feed_tree_head(&feed)?;
+        // The model is installed whatever happens next: a failure to remember the head now
+        // only means the next update proves it again, so it must not turn the outcome into a
+        // failure that says the old model was kept.
+        let _ = store.remember_feed_tree_head(&feed);
         // The release before the previous one is no rollback target any more: free its space
         // now. A failure here changes nothing that matters (the next update sweeps again).
         let _ = store.gc();
@@ -571,11 +596,12 @@ impl<'d> Session<'d> {
     }
 }
 
-/// Checks a downloaded file against the size and SHA-256 the verified feed declares.
-fn check_file(path: &Path, release: &Release) -> Result<()> {
-    let file =
-        File::open(path).map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?;
-    let (sha256, size) = hash_reader(&file, release.size + 1)
+/// Checks an open downloaded file against the size and SHA-256 the verified feed declares,
+/// and leaves it at its start for the bundle's own checks.
+fn check_file(file: &mut File, path: &Path, release: &Release) -> Result<()> {
+    let (sha256, size) = hash_reader(&*file, release.size.saturating_add(1))
+        .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
+    std::io::Seek::rewind(file)
         .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
     if size != release.size {
         return Err(Error::new(
@@ -601,21 +627,30 @@ fn check_file(path: &Path, release: &Release) -> Result<()> {
     Ok(())
 }
 
-/// The format of a feed whose signatures meet `feeds`' threshold but whose format is newer
-/// than this crate reads; `None` for any other feed. A format number is believed only from a
-/// signed feed, so nobody else can make a device report that it needs another app.
-fn newer_feed_format(feeds: &FeedVerifier, bytes: &[u8]) -> Option<u32> {
+/// The format of a feed whose format is newer than this crate reads, but which this device
+/// would otherwise take: its signatures meet `feeds`' threshold, and the fields every format
+/// keeps (`channel`, `sequence`, `expires`) show it is this device's channel, not older than
+/// the feed it accepted last, and current. `None` for any other feed, which is refused as
+/// usual, so neither a stranger nor a replayed or foreign signed feed can make a device
+/// report that it needs another app.
+fn newer_feed_format(feeds: &FeedVerifier, bytes: &[u8], now: Timestamp) -> Option<u32> {
     #[derive(Deserialize)]
-    struct FormatOnly {
+    struct Lasting {
         format: u32,
+        channel: String,
+        sequence: u64,
+        expires: Timestamp,
     }
     if bytes.len() as u64 > limit::FEED_BYTES {
         return None;
     }
     let signed = SignedFeed::from_json(bytes).ok()?;
     feeds.check_signatures(&signed).ok()?;
-    let format = serde_json::from_str::<FormatOnly>(&signed.feed)
-        .ok()?
-        .format;
-    (format > FEED_FORMAT_VERSION).then_some(format)
+    let lasting = serde_json::from_str::<Lasting>(&signed.feed).ok()?;
+    let ours = lasting.channel == feeds.channel()
+        && feeds
+            .last_sequence()
+            .is_none_or(|last| lasting.sequence >= last)
+        && feeds.is_current(lasting.expires, now);
+    (ours && lasting.format > FEED_FORMAT_VERSION).then_some(lasting.format)
 }
