@@ -8,8 +8,11 @@ use clap::{Args, Parser, Subcommand};
 const EXIT_CODES: &str = "\
 Exit codes:
   0  success
-  1  refused: a signature, digest, version, size or policy check said no
-  2  usage error, or a file could not be read or written";
+  1  refused: a signature, digest, version, size or policy check said no, a file
+     given as a bundle is not one, ledger check found problems
+  2  usage error, a file that could not be read or written, or a key or trust-set
+     file that does not parse
+With --json an error is one document with ok, error, exit_code and kind.";
 
 #[derive(Parser, Debug)]
 #[command(
@@ -328,6 +331,17 @@ pub struct DiffArgs {
     pub old: PathBuf,
     /// The newer bundle.
     pub new: PathBuf,
+    /// Exit 1 when the diff finds a change of this class (breaking: labels reordered or
+    /// removed, an input or output changed or removed).
+    #[arg(long, value_name = "CLASS", value_enum)]
+    pub fail_on: Option<FailOn>,
+}
+
+/// Which changes make `diff --fail-on` exit 1.
+#[derive(clap::ValueEnum, Clone, Copy, Debug, PartialEq, Eq)]
+pub enum FailOn {
+    /// Changes that make an app built for the old model misread the new one.
+    Breaking,
 }
 
 #[derive(Args, Debug)]

@@ -8,6 +8,8 @@ use ampoule_verify::{Progress, ProgressFn, Stage};
 use indicatif::{ProgressBar, ProgressStyle};
 use serde_json::Value;
 
+use crate::failure::Kind;
+
 /// Work below this many bytes finishes too fast for a progress bar to help.
 const PROGRESS_MIN_BYTES: u64 = 32 * 1024 * 1024;
 
@@ -50,27 +52,21 @@ impl Output {
 
     /// Prints an error chain once, prefixed with the program name; with `--json` also a JSON
     /// error document on stdout so scripts can read it.
-    pub fn error(&self, err: &anyhow::Error, exit_code: u8) {
-        let text = format!("{err:#}");
-        eprintln!("ampoule: error: {text}");
+    pub fn error(&self, err: &anyhow::Error, kind: Kind) {
+        self.error_line(err);
         if self.json {
-            let kind = err
-                .chain()
-                .find_map(|c| c.downcast_ref::<ampoule_verify::Error>())
-                .map(|e| format!("{:?}", e.kind()).to_lowercase());
-            let doc = serde_json::json!({
-                "ok": false,
-                "exit_code": exit_code,
-                "error": text,
-                "kind": kind,
-            });
-            let _ = self.result("", doc);
+            let _ = self.result("", error_document(&format!("{err:#}"), kind));
         }
+    }
+
+    /// The one line on stderr for an error whose report is already printed.
+    pub fn error_line(&self, err: &anyhow::Error) {
+        eprintln!("ampoule: error: {err:#}");
     }
 
     /// With `--json`, the JSON error document for a command line that did not parse; clap
     /// has already printed its own message and usage on stderr.
-    pub fn usage_error(&self, err: &clap::Error, exit_code: u8) {
+    pub fn usage_error(&self, err: &clap::Error) {
         if self.json {
             // clap's text minus the usage and help hints, on one line.
             let text = err.to_string();
@@ -84,13 +80,7 @@ impl Output {
                 .collect();
             let message = lines.join(" ");
             let message = message.trim_start_matches("error: ");
-            let doc = serde_json::json!({
-                "ok": false,
-                "exit_code": exit_code,
-                "error": message,
-                "kind": "usage",
-            });
-            let _ = self.result("", doc);
+            let _ = self.result("", error_document(message, Kind::Usage));
         }
     }
 
@@ -137,4 +127,24 @@ impl Output {
             }
         })
     }
+}
+
+/// The fields every `--json` error carries; a report that ends in an error (`ledger check`
+/// with problems, `trust show` refusing) adds them to its own document.
+pub fn error_document(message: &str, kind: Kind) -> Value {
+    serde_json::json!({
+        "ok": false,
+        "exit_code": kind.exit_code(),
+        "error": message,
+        "kind": kind.name(),
+    })
+}
+
+/// A command's report that ends in an error: its own fields plus the error fields, with
+/// `ok` false.
+pub fn failed_report(mut doc: Value, message: &str, kind: Kind) -> Value {
+    if let (Value::Object(doc), Value::Object(fields)) = (&mut doc, error_document(message, kind)) {
+        doc.extend(fields);
+    }
+    doc
 }

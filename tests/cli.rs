@@ -243,7 +243,7 @@ fn json_for_every_command() {
         (
             vec!["--json", "keygen", "--secret", SECRET, "--public", "x.pem"],
             2,
-            Value::Null,
+            Value::from("usage"),
             "release.secret.pem already exists; keygen never overwrites a key file (choose another \
              path, or move the old file away first if you are sure it is not needed)",
         ),

@@ -18,16 +18,17 @@ use anyhow::{Context, Result, bail};
 use serde_json::{Value, json};
 use tempfile::TempDir;
 
+use crate::Refused;
 use crate::cli::{
     LedgerArgs, LedgerCheckArgs, LedgerCommand, LedgerListArgs, LedgerProveArgs, LedgerSourceArgs,
 };
 use crate::cmd::{load_trust, load_trust_set};
-use crate::output::Output;
+use crate::failure::{Failure, Kind, count};
+use crate::output::{Output, failed_report};
 use crate::release::ledger_audit::{self as audit, AuditReport};
 use crate::release::ledger_storage::{
     ENTRIES, Entry, HASHES, Ledger, OFFSETS, TREE_HEAD, TREE_HEADS,
 };
-use crate::{Refused, exit};
 
 pub fn run(args: LedgerArgs, out: &Output) -> Result<()> {
     match args.command {
@@ -253,7 +254,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         bail!("--csv and --json print different formats; choose one");
     }
     if let Some(channel) = &args.channel {
-        ampoule_verify::feed::check_channel(channel)?;
+        crate::cmd::check_channel_arg(channel)?;
     }
     let source = Source::open(&args.source, false)?;
     let ledger = source.ledger()?;
@@ -423,18 +424,11 @@ fn check(args: LedgerCheckArgs, out: &Output) -> Result<()> {
     };
     let source = Source::open(&args.source, true)?;
     let report = audit::check(&source.root, &keys, &heads, since.as_ref())?;
-    print_report(&source, &report, out)?;
-    if !report.problems.is_empty() {
-        // The report is the output; a second error document would confuse a JSON reader.
-        eprintln!(
-            "ampoule: error: ledger check found {} problem(s)",
-            report.problems.len()
-        );
-        std::process::exit(i32::from(exit::REFUSED));
-    }
-    Ok(())
+    print_report(&source, &report, out)
 }
 
+/// Prints the audit's report; with problems, the report itself is the error document (a
+/// second one would confuse a JSON reader), and only the summary line goes to stderr.
 fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<()> {
     let mut human = format!(
         "ledger of {}: {} entries, root {}\nchecked {} tree heads (signatures, roots, consistency \
@@ -461,10 +455,8 @@ fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<(
     if report.problems.is_empty() {
         human.push_str("ok: no problems found\n");
     }
-    out.result(
-        &human,
-        json!({
-            "ok": report.problems.is_empty(),
+    let doc = json!({
+            "ok": true,
             "source": source.shown,
             "tree_size": report.tree_size,
             "root_hash": report.root_hash,
@@ -473,8 +465,16 @@ fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<(
             "consistent_since": report.since,
             "problems": report.problems,
             "warnings": report.warnings,
-        }),
-    )
+    });
+    if report.problems.is_empty() {
+        return out.result(&human, doc);
+    }
+    let message = format!(
+        "ledger check found {}",
+        count(report.problems.len(), "problem", "problems")
+    );
+    out.result(&human, failed_report(doc, &message, Kind::LedgerProblems))?;
+    Err(Failure::reported(Kind::LedgerProblems, message))
 }
 
 fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {

@@ -13,6 +13,7 @@ use serde_json::json;
 
 use crate::cli::PackArgs;
 use crate::cmd::{parse_version, passphrase_source};
+use crate::failure::usage;
 use crate::output::Output;
 use crate::release::keyfile;
 use crate::release::pack::{PackSpec, pack};
@@ -34,7 +35,7 @@ pub fn creation_time(flag: Option<&str>) -> Result<Timestamp> {
             .and_then(Timestamp::from_unix)
             .with_context(|| format!("{source} '{text}' is not a Unix time up to year 9999"));
     }
-    text.parse::<Timestamp>().with_context(|| {
+    text.parse::<Timestamp>().map_err(usage).with_context(|| {
         format!("{source} '{text}' is not Unix seconds or a UTC time like 2026-12-01T08:00:00Z")
     })
 }
@@ -105,7 +106,7 @@ fn check_labels_fit(
 }
 
 pub fn run(args: PackArgs, out: &Output) -> Result<()> {
-    check_name(&args.name)?;
+    check_name(&args.name).map_err(usage)?;
     let version = parse_version(&args.version, "--version")?;
     let requires_app = VersionReq::parse(&args.requires_app).with_context(|| {
         format!(

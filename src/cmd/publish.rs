@@ -4,13 +4,11 @@
 
 use std::path::Path;
 
-use ampoule_verify::format::trust_set;
 use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustedKeys};
 use anyhow::{Context, Result};
 use serde_json::{Value, json};
 
 use crate::cli::PublishArgs;
-use crate::cmd::external::read_bounded;
 use crate::cmd::{load_trust, passphrase_source};
 use crate::output::Output;
 use crate::release::keyfile;
@@ -24,7 +22,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let (Some(bundle), Some(channel)) = (&args.bundle, &args.channel) else {
         anyhow::bail!("publish needs a bundle and --channel, or --trust-set FILE");
     };
-    ampoule_verify::feed::check_channel(channel)?;
+    crate::cmd::check_channel_arg(channel)?;
     if args.rollout > 100 {
         anyhow::bail!(
             "--rollout {} is not a percentage from 0 to 100",
@@ -70,7 +68,7 @@ fn publish_trust_set(
     expires_in_secs: u64,
     out: &Output,
 ) -> Result<()> {
-    let bytes = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+    let (bytes, _) = crate::cmd::read_trust_set_file(path)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;

@@ -12,11 +12,12 @@ use serde_json::json;
 
 use crate::cli::SignArgs;
 use crate::cmd::external::{ToSign, signature, write_file};
+use crate::failure::bundle_error;
 use crate::output::Output;
 use crate::release::pack::rewrite_signatures;
 
 pub fn run(args: SignArgs, out: &Output) -> Result<()> {
-    let mut bundle = Unverified::open(&args.bundle)?;
+    let mut bundle = Unverified::open(&args.bundle).map_err(|e| bundle_error(&args.bundle, e))?;
     let manifest = bundle.manifest.clone();
     let layout = bundle.layout.clone();
     let mut signatures = bundle.signatures.clone();

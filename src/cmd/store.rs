@@ -1,15 +1,13 @@
 //! `ampoule store`: look into an on-device store, roll it back, clean it up; the library's
 //! `Store` from the command line, for scripts and tests on the device side.
 
-use ampoule_verify::format::trust_set;
 use ampoule_verify::store::Release;
 use ampoule_verify::{Store, Timestamp, Verifier};
 use anyhow::{Context, Result};
 use serde_json::{Value, json};
 
 use crate::cli::{StoreArgs, StoreCommand, StoreOptions};
-use crate::cmd::external::read_bounded;
-use crate::cmd::{load_trust, parse_version};
+use crate::cmd::{load_trust, parse_version, read_trust_set_file};
 use crate::output::Output;
 
 pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
@@ -26,7 +24,7 @@ fn open(o: &StoreOptions) -> Result<Store> {
     let app_version = parse_version(&o.app_version, "--app-version")?;
     let verifier = match &o.trust_set {
         Some(path) => {
-            let initial = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+            let (initial, _) = read_trust_set_file(path)?;
             let trust = Store::load_trust_set(&o.store, &initial, Timestamp::now())
                 .with_context(|| format!("trust set {} refused", path.display()))?;
             Verifier::from_trust_set(&trust, app_version)?

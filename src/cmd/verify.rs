@@ -8,6 +8,7 @@ use serde_json::json;
 
 use crate::cli::VerifyArgs;
 use crate::cmd::{load_trust, load_trust_set, parse_version};
+use crate::failure::bundle_error;
 use crate::output::Output;
 
 pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
@@ -35,16 +36,17 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
         .max_bundle_bytes(max_bundle)
         .max_unpacked_bytes(max_unpacked)
         .on_progress(out.verify_progress());
-    let mut verified = verifier.verify_path(&args.bundle)?;
+    let not_a_bundle = |e| bundle_error(&args.bundle, e);
+    let mut verified = verifier.verify_path(&args.bundle).map_err(not_a_bundle)?;
     let manifest = verified.manifest().clone();
     let signers: Vec<String> = verified.signers().iter().map(|k| k.to_string()).collect();
     let report = verified.signature_report().clone();
     let (labels, extracted) = match &args.extract {
         Some(dir) => {
-            let unpacked = verified.unpack(dir)?;
+            let unpacked = verified.unpack(dir).map_err(not_a_bundle)?;
             (unpacked.labels, Some(unpacked.dir))
         }
-        None => (verified.check_contents()?, None),
+        None => (verified.check_contents().map_err(not_a_bundle)?, None),
     };
     let mut human = format!(
         "OK {} {}: signed by {} ({} needed); payload and {} files match their digests; {} labels\n",

@@ -324,12 +324,14 @@ impl Tree {
         let copy = temp
             .reopen()
             .with_context(|| io_context("reopen", temp.path()))?;
-        let mut verified = verifier.verify_file(copy).with_context(|| {
-            format!("bundle {} refused; nothing was published", bundle.display())
-        })?;
-        verified.check_contents().with_context(|| {
-            format!("bundle {} refused; nothing was published", bundle.display())
-        })?;
+        let refused = |e: ampoule_verify::Error| {
+            crate::failure::bundle_error(bundle, e).context(format!(
+                "bundle {} refused; nothing was published",
+                bundle.display()
+            ))
+        };
+        let mut verified = verifier.verify_file(copy).map_err(refused)?;
+        verified.check_contents().map_err(refused)?;
         Ok(StagedBundle {
             manifest_digest: Digest::of(verified.manifest_bytes()),
             signers: verified.signers().to_vec(),
@@ -469,6 +471,15 @@ impl Tree {
     pub fn withdraw(&self, channel: &str, signing: &Signing<'_>) -> Result<Change> {
         check_channel(channel)?;
         let mut history = self.history(channel)?;
+        if history.events.is_empty() {
+            // A channel never published to (often a typo) is a usage error, not a refusal.
+            return Err(crate::failure::usage(anyhow::anyhow!(
+                "channel {channel} was never published to in {}; there is nothing to withdraw \
+                 (check the channel name: 'ampoule ledger list --tree {}' shows the channels)",
+                self.root.display(),
+                self.root.display()
+            )));
+        }
         let mut stack = history.stack();
         let Some(current) = stack.pop() else {
             return Err(Refused(format!(

@@ -217,6 +217,13 @@ impl Env {
         );
     }
 
+    /// [`Env::assert_refused`] for a file whose layout is not a bundle's: since issue 12 the
+    /// message names the file as not a valid bundle, gives `reason` (which quotes none of the
+    /// file's bytes), and says what to check.
+    pub fn assert_not_a_bundle(&self, bundle: &[u8], extra: &[&str], reason: &str) {
+        self.assert_refused(bundle, extra, &not_a_bundle("hostile.ampoule", reason));
+    }
+
     /// Like [`Env::assert_refused`] for a bundle that must pass.
     pub fn assert_accepted(&self, bundle: &[u8]) -> Run {
         self.write("candidate.ampoule", bundle);
@@ -401,4 +408,12 @@ pub fn run_tool(mut command: Command) -> Vec<u8> {
         String::from_utf8_lossy(&out.stderr)
     );
     out.stdout
+}
+
+/// The refusal of `file`, given as a bundle, whose layout is not a bundle's (issue 12).
+pub fn not_a_bundle(file: &str, reason: &str) -> String {
+    format!(
+        "{file} is not a valid bundle: {reason}; check that it names a bundle made by \
+         'ampoule pack' and that it was copied whole"
+    )
 }
