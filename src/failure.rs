@@ -400,8 +400,8 @@ fn shows_no_file_bytes(text: &str) -> bool {
 }
 
 /// Counts in messages: "1 hash", "2 hashes".
-pub fn count(n: usize, one: &str, many: &str) -> String {
-    if n == 1 {
+pub fn count<N: fmt::Display + PartialEq + From<u8>>(n: N, one: &str, many: &str) -> String {
+    if n == N::from(1) {
         format!("1 {one}")
     } else {
         format!("{n} {many}")
@@ -485,8 +485,8 @@ mod tests {
 
     #[test]
     fn counts_use_the_singular_for_one() {
-        assert_eq!(count(1, "hash", "hashes"), "1 hash");
-        assert_eq!(count(0, "hash", "hashes"), "0 hashes");
-        assert_eq!(count(2, "problem", "problems"), "2 problems");
+        assert_eq!(count(1usize, "hash", "hashes"), "1 hash");
+        assert_eq!(count(0usize, "hash", "hashes"), "0 hashes");
+        assert_eq!(count(2u64, "problem", "problems"), "2 problems");
     }
 }

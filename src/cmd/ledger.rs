@@ -373,9 +373,9 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
     }
     if let Some(h) = &head {
         human.push_str(&format!(
-            "{} of {} entries shown; tree head size {}, root {}, {} (unchecked: run ledger check)\n",
+            "{} of {} shown; tree head size {}, root {}, {} (unchecked: run ledger check)\n",
             rows.len(),
-            h.tree_size,
+            count(h.tree_size, "entry", "entries"),
             h.tree_size,
             h.root_hash,
             time_text(h.time)
@@ -431,15 +431,14 @@ fn check(args: LedgerCheckArgs, out: &Output) -> Result<()> {
 /// second one would confuse a JSON reader), and only the summary line goes to stderr.
 fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<()> {
     let mut human = format!(
-        "ledger of {}: {} entries, root {}\nchecked {} tree heads (signatures, roots, consistency \
-         steps) and {} bundles\n",
+        "ledger of {}: {}, root {}\nchecked {} (signatures, roots, consistency steps) and {}\n",
         source.shown,
-        report.tree_size,
+        count(report.tree_size, "entry", "entries"),
         report
             .root_hash
             .map_or_else(|| "none".to_string(), |d| d.to_string()),
-        report.heads_checked,
-        report.bundles_checked,
+        count(report.heads_checked, "tree head", "tree heads"),
+        count(report.bundles_checked, "bundle", "bundles"),
     );
     if let Some(size) = report.since {
         human.push_str(&format!(
@@ -524,7 +523,7 @@ fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {
     let text = String::from_utf8(bytes).context("a ledger entry is not UTF-8")?;
     let mut human = format!(
         "{} {} (sha256 {sha256}) was published on channel {} at {}: entry {index}\n\
-         tree head: size {}, root {}, {}\nleaf hash: {leaf}\ninclusion proof ({} hashes, leaf level first):\n",
+         tree head: size {}, root {}, {}\nleaf hash: {leaf}\ninclusion proof ({}, leaf level first):\n",
         entry.bundle,
         entry.version,
         entry.channel,
@@ -532,7 +531,7 @@ fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {
         head.tree_size,
         head.root_hash,
         time_text(head.time),
-        proof.hashes.len()
+        count(proof.hashes.len(), "hash", "hashes")
     );
     for h in &proof.hashes {
         human.push_str(&format!("  {h}\n"));

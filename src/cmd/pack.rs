@@ -13,7 +13,7 @@ use serde_json::json;
 
 use crate::cli::PackArgs;
 use crate::cmd::{parse_version, passphrase_source};
-use crate::failure::usage;
+use crate::failure::{count, usage};
 use crate::output::Output;
 use crate::release::keyfile;
 use crate::release::pack::{PackSpec, pack};
@@ -150,13 +150,13 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     bar.finish_and_clear();
     let m = &packed.manifest;
     let mut human = format!(
-        "packed {} {} -> {} ({} bytes; model {} bytes, {} labels, payload {} bytes)\n",
+        "packed {} {} -> {} ({} bytes; model {} bytes, {}, payload {} bytes)\n",
         m.name,
         m.version,
         args.out.display(),
         packed.bundle_len,
         m.model().size,
-        m.label_count,
+        count(m.label_count, "label", "labels"),
         m.payload.size
     );
     match packed.signers.first() {

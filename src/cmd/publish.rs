@@ -4,7 +4,7 @@
 
 use std::path::Path;
 
-use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustedKeys};
+use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustSet, TrustedKeys, Verifier};
 use anyhow::{Context, Result};
 use serde_json::{Value, json};
 
@@ -12,7 +12,7 @@ use crate::cli::PublishArgs;
 use crate::cmd::{load_trust, passphrase_source};
 use crate::output::Output;
 use crate::release::keyfile;
-use crate::release::tree::{Change, Signing, Tree, parse_duration};
+use crate::release::tree::{Change, Signing, Tree, check_bundle, parse_duration};
 
 pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
@@ -32,24 +32,37 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     let now = Timestamp::now();
-    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     // Publishing checks the bundle the way devices will: with --trust against those keys;
     // else against the tree's trust set (its bundle keys and threshold); else the feed key
     // must have signed the bundle too.
-    let verifier = if !args.trust.is_empty() {
-        ampoule_verify::dangerous::verifier_without_app_version(load_trust(&args.trust)?)?
-    } else if let Some(current) = tree.current_trust_set()? {
-        let trust = current.verified(now)?;
-        let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
-        ampoule_verify::dangerous::verifier_without_app_version(keys)?.with_threshold(threshold)?
-    } else {
-        ampoule_verify::dangerous::verifier_without_app_version(
-            [PublicKey::from_verifying_key(&key.verifying_key())?]
-                .into_iter()
-                .collect::<TrustedKeys>(),
-        )?
+    let verifier = |tree: Option<&Tree>| -> Result<Verifier> {
+        let current = match tree {
+            Some(tree) => tree.current_trust_set()?,
+            None => None,
+        };
+        Ok(if !args.trust.is_empty() {
+            ampoule_verify::dangerous::verifier_without_app_version(load_trust(&args.trust)?)?
+        } else if let Some(current) = current {
+            let trust = current.verified(now)?;
+            let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
+            ampoule_verify::dangerous::verifier_without_app_version(keys)?
+                .with_threshold(threshold)?
+        } else {
+            ampoule_verify::dangerous::verifier_without_app_version(
+                [PublicKey::from_verifying_key(&key.verifying_key())?]
+                    .into_iter()
+                    .collect::<TrustedKeys>(),
+            )?
+        })
     };
-    let staged = tree.stage_bundle_with(bundle, verifier)?;
+    if !args.tree.exists() {
+        // Locking makes the tree's directories, so a refused bundle would leave an empty
+        // tree behind. A new tree has no trust set and no history, so these checks are the
+        // only ones that can refuse: run them first. The copy is checked again once staged.
+        check_bundle(bundle, &verifier(None)?)?;
+    }
+    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
+    let staged = tree.stage_bundle_with(bundle, verifier(Some(&tree))?)?;
     let signing = Signing {
         key: &key,
         now,
@@ -71,6 +84,15 @@ fn publish_trust_set(
     let (bytes, _) = crate::cmd::read_trust_set_file(path)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
+    if !args.tree.exists() {
+        // As for a bundle: a set the new tree would refuse must not leave an empty tree.
+        TrustSet::verify_initial(&bytes, Timestamp::now()).with_context(|| {
+            format!(
+                "trust set {} refused; nothing was published",
+                path.display()
+            )
+        })?;
+    }
     let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     let signing = Signing {
         key: &key,

@@ -12,7 +12,7 @@ use serde_json::json;
 
 use crate::cli::SignArgs;
 use crate::cmd::external::{ToSign, signature, write_file};
-use crate::failure::bundle_error;
+use crate::failure::{bundle_error, count};
 use crate::output::Output;
 use crate::release::pack::rewrite_signatures;
 
@@ -87,10 +87,10 @@ pub fn run(args: SignArgs, out: &Output) -> Result<()> {
         .collect();
     let human = if changed {
         format!(
-            "signed {summary} in {} with key {}; it now carries {} signature(s)",
+            "signed {summary} in {} with key {}; it now carries {}",
             args.bundle.display(),
             public.id(),
-            signers.len()
+            count(signers.len(), "signature", "signatures")
         )
     } else {
         format!(

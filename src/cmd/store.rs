@@ -1,13 +1,14 @@
 //! `ampoule store`: look into an on-device store, roll it back, clean it up; the library's
 //! `Store` from the command line, for scripts and tests on the device side.
 
-use ampoule_verify::store::Release;
+use ampoule_verify::store::{RELEASES_DIR, Release, STATE_FILE};
 use ampoule_verify::{Store, Timestamp, Verifier};
-use anyhow::{Context, Result};
+use anyhow::{Context, Result, anyhow};
 use serde_json::{Value, json};
 
 use crate::cli::{StoreArgs, StoreCommand, StoreOptions};
 use crate::cmd::{load_trust, parse_version, read_trust_set_file};
+use crate::failure::{count, usage};
 use crate::output::Output;
 
 pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
@@ -21,6 +22,19 @@ pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
 /// Opens the store with the app's verifier: its trusted keys (or the newest trust set the
 /// store accepted, starting from the one given) and its version.
 fn open(o: &StoreOptions) -> Result<Store> {
+    // The library makes a store where there is none (an app's first start); a command that
+    // only looks at one, rolls it back or cleans it up must not leave an empty one behind a
+    // mistyped path.
+    // A store that lost its state but kept releases is damaged, not absent: the library
+    // says so.
+    if !o.store.join(STATE_FILE).exists() && !o.store.join(RELEASES_DIR).exists() {
+        return Err(usage(anyhow!(
+            "{} is not a store (it has no {STATE_FILE}); give the directory an app keeps its \
+             models in, or make one with 'ampoule update --store {}'",
+            o.store.display(),
+            o.store.display()
+        )));
+    }
     let app_version = parse_version(&o.app_version, "--app-version")?;
     let verifier = match &o.trust_set {
         Some(path) => {
@@ -53,10 +67,10 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
     let state = store.state()?;
     let mut human = match &current {
         Some(r) => format!(
-            "current  {} {} ({} labels; model {}) checked: digests and signatures match\n",
+            "current  {} {} ({}; model {}) checked: digests and signatures match\n",
             r.manifest.name,
             r.manifest.version,
-            r.labels.len(),
+            count(r.labels.len(), "label", "labels"),
             r.model.display()
         ),
         None => "current  nothing installed\n".to_string(),

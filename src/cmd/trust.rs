@@ -18,7 +18,7 @@ use crate::cli::{
 };
 use crate::cmd::external::{ToSign, signature, write_file};
 use crate::cmd::{load_trust_set, read_trust_set_file};
-use crate::failure::{Failure, Kind, usage};
+use crate::failure::{Failure, Kind, count, usage};
 use crate::output::{Output, failed_report};
 use crate::release::keyfile;
 
@@ -138,16 +138,16 @@ fn write_new_version(
     write_file(&edit.out, &file.to_json(), false)?;
     let b = file.body();
     let mut human = format!(
-        "wrote trust set version {} to {} (unsigned): {} key(s), thresholds {}, expires {}\n",
+        "wrote trust set version {} to {} (unsigned): {}, thresholds {}, expires {}\n",
         b.version,
         edit.out.display(),
-        b.keys.len(),
+        count(b.keys.len(), "key", "keys"),
         thresholds_text(&b.thresholds),
         b.expires
     );
     human.push_str(&format!(
-        "it needs {} signature(s) by its own trust_set keys",
-        b.thresholds.trust_set
+        "it needs {} by its own trust_set keys",
+        count(b.thresholds.trust_set, "signature", "signatures")
     ));
     if let Some(prev) = previous {
         human.push_str(&format!(
@@ -331,7 +331,8 @@ fn show(args: TrustShowArgs, out: &Output) -> Result<()> {
         human.push_str(&format!("  {}  {}\n", s.key_id, status(&s.key_id)));
     }
     human.push_str(&format!(
-        "own trust_set keys: {own_valid} of {own_needed} needed signature(s){}\n",
+        "own trust_set keys: {own_valid} of {}{}\n",
+        count(own_needed, "needed signature", "needed signatures"),
         if own_valid >= own_needed {
             ""
         } else {
@@ -440,7 +441,10 @@ fn sign(args: TrustSignArgs, out: &Output) -> Result<()> {
     let own_keys = file.keys_for(DocumentKind::TrustSet);
     let own_valid = file.tally(&own_keys).valid.len();
     let own_needed = file.threshold(DocumentKind::TrustSet);
-    let tally = format!("its own trust_set keys: {own_valid} of {own_needed} needed signature(s)");
+    let tally = format!(
+        "its own trust_set keys: {own_valid} of {}",
+        count(own_needed, "needed signature", "needed signatures")
+    );
     let human = if changed {
         format!(
             "signed trust set version {} in {} with key {}; {tally}",

@@ -15,6 +15,7 @@ use serde_json::{Value, json};
 
 use crate::cli::UpdateArgs;
 use crate::cmd::{load_trust, parse_version};
+use crate::failure::count;
 use crate::output::Output;
 
 pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
@@ -139,8 +140,8 @@ fn show(
                 None => format!("installed {} {}", m.name, m.version),
             };
             format!(
-                "{what} from channel {channel} (feed sequence {sequence}): {} labels, model at {}",
-                installed.release.labels.len(),
+                "{what} from channel {channel} (feed sequence {sequence}): {}, model at {}",
+                count(installed.release.labels.len(), "label", "labels"),
                 installed.release.model.display()
             )
         }

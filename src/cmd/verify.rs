@@ -8,7 +8,7 @@ use serde_json::json;
 
 use crate::cli::VerifyArgs;
 use crate::cmd::{load_trust, load_trust_set, parse_version};
-use crate::failure::bundle_error;
+use crate::failure::{bundle_error, count};
 use crate::output::Output;
 
 pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
@@ -49,13 +49,13 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
         None => (verified.check_contents().map_err(not_a_bundle)?, None),
     };
     let mut human = format!(
-        "OK {} {}: signed by {} ({} needed); payload and {} files match their digests; {} labels\n",
+        "OK {} {}: signed by {} ({} needed); payload and {} match their digests; {}\n",
         manifest.name,
         manifest.version,
         signers.join(", "),
         threshold,
-        manifest.files.len(),
-        labels.len()
+        count(manifest.files.len(), "file", "files"),
+        count(labels.len(), "label", "labels")
     );
     match &args.app_version {
         Some(v) => human.push_str(&format!("app {v} is within {}\n", manifest.requires_app)),

@@ -521,6 +521,7 @@ fn write_new_file(dest: &Path, contents: &[u8], mode: u32) -> Result<()> {
         Some(parent) if !parent.as_os_str().is_empty() => parent.to_path_buf(),
         _ => PathBuf::from("."),
     };
+    crate::release::atomic::check_dir_of(dest)?;
     let context = || format!("cannot write {}", dest.display());
     // The temporary file is created 0600, so secret bytes are never readable by others even
     // for a moment; it is removed when `tmp` is dropped, on success and on every error path.

@@ -208,6 +208,27 @@ pub fn parse_duration(text: &str) -> Result<u64> {
     Ok(secs)
 }
 
+/// Checks a bundle file as [`Tree::stage_bundle_with`] checks its copy, with the same
+/// errors, for a publish that must refuse before it creates anything.
+pub fn check_bundle(bundle: &Path, verifier: &Verifier) -> Result<()> {
+    verifier
+        .verify_path(bundle)
+        .and_then(|mut v| v.check_contents())
+        .map_err(|e| publish_refused(bundle, e))?;
+    Ok(())
+}
+
+fn publish_refused(bundle: &Path, e: ampoule_verify::Error) -> anyhow::Error {
+    if e.kind() == ampoule_verify::ErrorKind::Io {
+        // Not a refusal: the file could not be read.
+        return e.into();
+    }
+    crate::failure::bundle_error(bundle, e).context(format!(
+        "bundle {} refused; nothing was published",
+        bundle.display()
+    ))
+}
+
 impl Tree {
     /// Opens (creating if needed) the tree at `root` and takes its lock, failing at once
     /// when another command holds it.
@@ -324,14 +345,12 @@ impl Tree {
         let copy = temp
             .reopen()
             .with_context(|| io_context("reopen", temp.path()))?;
-        let refused = |e: ampoule_verify::Error| {
-            crate::failure::bundle_error(bundle, e).context(format!(
-                "bundle {} refused; nothing was published",
-                bundle.display()
-            ))
-        };
-        let mut verified = verifier.verify_file(copy).map_err(refused)?;
-        verified.check_contents().map_err(refused)?;
+        let mut verified = verifier
+            .verify_file(copy)
+            .map_err(|e| publish_refused(bundle, e))?;
+        verified
+            .check_contents()
+            .map_err(|e| publish_refused(bundle, e))?;
         Ok(StagedBundle {
             manifest_digest: Digest::of(verified.manifest_bytes()),
             signers: verified.signers().to_vec(),
