@@ -44,6 +44,17 @@ The secret key file is created owner-only (0600) and is never overwritten.
 Keep it off shared disks and out of version control.")]
     Keygen(KeygenArgs),
 
+    /// Print the key id of each key file (public, secret or encrypted secret) and the keys of
+    /// each trust set with their roles.
+    #[command(after_help = "Examples:
+  ampoule key-id release.public.pem release.secret.pem
+  AMPOULE_PASS=... ampoule key-id ci.secret.pem --passphrase-env AMPOULE_PASS
+  ampoule key-id trust-2.json --json
+
+Messages, trust sets and the ledger name keys by id; this says which file is which.
+A secret key is read with the same checks as when signing (owner-only, passphrase).")]
+    KeyId(KeyIdArgs),
+
     /// Pack a model and its labels into a bundle, optionally signing it.
     #[command(after_help = "Examples:
   ampoule pack --model species.onnx --labels labels.txt --name trailcam-species \\
@@ -197,6 +208,15 @@ pub struct PassphraseArgs {
     /// for on the terminal when the key is encrypted.
     #[arg(long, value_name = "VAR")]
     pub passphrase_env: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct KeyIdArgs {
+    /// Key files (PEM) and trust-set files (JSON).
+    #[arg(required = true, value_name = "FILE")]
+    pub files: Vec<PathBuf>,
+    #[command(flatten)]
+    pub passphrase: PassphraseArgs,
 }
 
 #[derive(Args, Debug)]

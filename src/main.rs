@@ -44,6 +44,7 @@ fn main() -> ExitCode {
     let out = Output::new(cli.json);
     let result = match cli.command {
         Command::Keygen(args) => cmd::keygen::run(args, &out),
+        Command::KeyId(args) => cmd::keyid::run(args, &out),
         Command::Pack(args) => cmd::pack::run(args, &out),
         Command::Sign(args) => cmd::sign::run(args, &out),
         Command::Verify(args) => cmd::verify::run(args, &out),

@@ -119,7 +119,9 @@ fn flipped_byte_in_key_id() {
         &bytes,
         &[],
         &format!(
-            "bundle has no valid signature by a trusted key (by keys not trusted here: {changed})"
+            "bundle has no valid signature by a trusted key (by keys not trusted here: {changed}); \
+             trusted here: {} ({PUBLIC})",
+            env.key_id()
         ),
     );
 }
@@ -677,8 +679,10 @@ fn signature_by_an_untrusted_key() {
         &Draft::good().signed(&stranger),
         &[],
         &format!(
-            "bundle has no valid signature by a trusted key (by keys not trusted here: {})",
-            key_id(&stranger)
+            "bundle has no valid signature by a trusted key (by keys not trusted here: {}); \
+             trusted here: {} ({PUBLIC})",
+            key_id(&stranger),
+            env.key_id()
         ),
     );
 }

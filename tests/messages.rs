@@ -202,7 +202,7 @@ fn issue12_counts_of_one_are_singular() {
     assert_eq!(
         run.stdout,
         format!(
-            "signed {NAME} 1.0.0 in a.ampoule with key {}; it now carries 1 signature\n",
+            "signed {NAME} 1.0.0 in a.ampoule with key {} ({SECRET}); it now carries 1 signature\n",
             env.key_id()
         )
     );
@@ -240,5 +240,181 @@ fn issue12_counts_of_one_are_singular() {
             "\nchecked 2 tree heads (signatures, roots, consistency steps) and 2 bundles\n"
         ),
         "{run:?}"
+    );
+}
+
+#[test]
+fn issue12_key_id_names_each_key_file_and_a_trust_sets_keys() {
+    let env = Env::new();
+    let pass = [("TRAILCAM_PASS", "fox and badger at dusk")];
+    let run = env.run_env(
+        [
+            "keygen",
+            "--secret",
+            "ci.secret.pem",
+            "--public",
+            "ci.public.pem",
+            "--encrypt",
+            "--passphrase-env",
+            "TRAILCAM_PASS",
+        ],
+        &pass,
+    );
+    assert_eq!(run.code, 0, "{run:?}");
+    let ci: serde_json::Value = {
+        let run = env.run(["--json", "key-id", "ci.public.pem"]);
+        serde_json::from_str(&run.stdout).expect("JSON")
+    };
+    let ci = ci["files"][0]["key_id"].as_str().expect("id").to_string();
+    let run = env.run([
+        "trust",
+        "init",
+        "--key",
+        PUBLIC,
+        "--comment",
+        "release laptop",
+        "-o",
+        "trust-1.json",
+    ]);
+    assert_eq!(run.code, 0, "{run:?}");
+    let run = env.run([
+        "trust",
+        "add",
+        "trust-1.json",
+        "--key",
+        "ci.public.pem",
+        "--roles",
+        "bundle",
+        "-o",
+        "trust.json",
+    ]);
+    assert_eq!(run.code, 0, "{run:?}");
+    let id = env.key_id();
+    let run = env.run_env(
+        [
+            "key-id",
+            PUBLIC,
+            SECRET,
+            "ci.secret.pem",
+            "trust.json",
+            "--passphrase-env",
+            "TRAILCAM_PASS",
+        ],
+        &pass,
+    );
+    assert_eq!(
+        (run.code, run.stdout.as_str(), run.stderr.as_str()),
+        (
+            0,
+            format!(
+                "{PUBLIC}: public key, key id {id}\n\
+                 {SECRET}: secret key, key id {id}\n\
+                 ci.secret.pem: encrypted secret key, key id {ci}\n\
+                 trust.json: trust set version 2 (signatures not checked; see 'ampoule trust show')\n\
+                 \x20 key id {id}  bundle,feed,tree_head,trust_set  release laptop\n\
+                 \x20 key id {ci}  bundle\n"
+            )
+            .as_str(),
+            ""
+        )
+    );
+    let run = env.run(["--json", "key-id", SECRET, "trust.json"]);
+    let doc: serde_json::Value = serde_json::from_str(&run.stdout).expect("JSON");
+    assert_eq!(
+        doc,
+        serde_json::json!({"ok": true, "files": [
+            {"file": SECRET, "kind": "secret_key", "key_id": id.to_string()},
+            {"file": "trust.json", "kind": "trust_set", "version": 2, "keys": [
+                {"key_id": id.to_string(), "roles": ["bundle", "feed", "tree_head", "trust_set"],
+                 "comment": "release laptop"},
+                {"key_id": ci, "roles": ["bundle"], "comment": ""},
+            ]},
+        ]})
+    );
+    // A wrong passphrase and a file that holds no key are the user's to fix: exit 2.
+    let run = env.run_env(
+        [
+            "key-id",
+            "ci.secret.pem",
+            "--passphrase-env",
+            "TRAILCAM_PASS",
+        ],
+        &[("TRAILCAM_PASS", "wrong")],
+    );
+    assert_failed(
+        &run,
+        2,
+        "wrong passphrase for ci.secret.pem or the file is damaged",
+    );
+    assert_failed(
+        &env.run(["key-id", LABELS_FILE]),
+        2,
+        "labels.txt is not a PEM key file; give a public or secret key file",
+    );
+}
+
+#[test]
+fn issue12_messages_name_key_files_beside_their_ids() {
+    let env = Env::new();
+    let id = env.key_id();
+    let run = env.run([
+        "pack",
+        "--model",
+        MODEL,
+        "--labels",
+        LABELS_FILE,
+        "--name",
+        NAME,
+        "--version",
+        "1.0.0",
+        "--requires-app",
+        REQUIRES_APP,
+        "--key",
+        SECRET,
+        "-o",
+        "b.ampoule",
+    ]);
+    assert!(
+        run.stdout
+            .ends_with(&format!("signed by key {id} ({SECRET})\n")),
+        "{run:?}"
+    );
+    let run = env.run([
+        "publish",
+        "b.ampoule",
+        "--tree",
+        "release",
+        "--channel",
+        "stable",
+        "--key",
+        SECRET,
+    ]);
+    assert!(
+        run.stdout
+            .contains(&format!(", signed by key {id} ({SECRET})\n")),
+        "{run:?}"
+    );
+    // Trusting another key: the refusal names the untrusted signer's id and the file trusted.
+    let run = env.run([
+        "keygen",
+        "--secret",
+        "o.secret.pem",
+        "--public",
+        "o.public.pem",
+    ]);
+    assert_eq!(run.code, 0, "{run:?}");
+    let other: serde_json::Value =
+        serde_json::from_str(&env.run(["--json", "key-id", "o.public.pem"]).stdout).expect("JSON");
+    let other = other["files"][0]["key_id"]
+        .as_str()
+        .expect("id")
+        .to_string();
+    assert_failed(
+        &env.run(["verify", "b.ampoule", "--trust", "o.public.pem"]),
+        1,
+        &format!(
+            "bundle has no valid signature by a trusted key (by keys not trusted here: {id}); \
+             trusted here: {other} (o.public.pem)"
+        ),
     );
 }

@@ -54,7 +54,9 @@ fn rfc8410_public_key_is_a_trust_input() {
         (
             1,
             format!(
-                "ampoule: error: bundle has no valid signature by a trusted key (by keys not trusted here: {id})\n"
+                "ampoule: error: bundle has no valid signature by a trusted key (by keys not trusted here: {id}); \
+                 trusted here: {} ({PUBLIC})\n",
+                env.key_id()
             )
         )
     );

@@ -696,6 +696,7 @@ fn withdraw(tree: &Path, key: &ed25519_dalek::SigningKey) -> Result<Change> {
 
 fn signing(key: &ed25519_dalek::SigningKey) -> Signing<'_> {
     Signing {
+        key_file: None,
         key,
         now: Timestamp::now(),
         expires_in_secs: FEED_EXPIRES_SECS,

@@ -6,6 +6,7 @@ pub mod diff;
 pub mod external;
 pub mod inspect;
 pub mod keygen;
+pub mod keyid;
 pub mod ledger;
 pub mod offline;
 pub mod pack;
@@ -31,11 +32,39 @@ use crate::release::keyfile::{self, PassphraseSource};
 
 /// Loads every `--trust` key; any unreadable or weak key stops the command.
 pub fn load_trust(paths: &[PathBuf]) -> Result<TrustedKeys> {
+    Ok(load_trust_named(paths)?.0)
+}
+
+/// [`load_trust`], and the keys as messages name them: "ID (FILE)", comma-separated.
+pub fn load_trust_named(paths: &[PathBuf]) -> Result<(TrustedKeys, String)> {
     let mut keys = TrustedKeys::new();
+    let mut names = Vec::new();
     for path in paths {
-        keys.add(keyfile::read_public_key(path)?);
+        let key = keyfile::read_public_key(path)?;
+        names.push(format!("{} ({})", key.id(), path.display()));
+        keys.add(key);
     }
-    Ok(keys)
+    Ok((keys, names.join(", ")))
+}
+
+/// A refusal that names signers "not trusted here", with the keys that were trusted named
+/// by file: the library names keys only by id, and people know their keys by file. (Other
+/// signature refusals, unsigned or not matching, are about the bundle, not the keys.)
+pub fn name_trusted(err: anyhow::Error, trusted: &str) -> anyhow::Error {
+    let refused_signature = err
+        .chain()
+        .filter_map(|c| c.downcast_ref::<ampoule_verify::Error>())
+        .any(|e| {
+            e.kind() == ampoule_verify::ErrorKind::Signature
+                && e.to_string().contains("not trusted here")
+        });
+    if !refused_signature || trusted.is_empty() {
+        return err;
+    }
+    Failure::wrap(
+        Kind::Verify(ampoule_verify::ErrorKind::Signature),
+        anyhow::anyhow!("{err:#}; trusted here: {trusted}"),
+    )
 }
 
 /// Loads a `--trust-set` file the way a device loads the set shipped with its app: signed by

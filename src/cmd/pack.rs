@@ -160,7 +160,10 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         m.payload.size
     );
     match packed.signers.first() {
-        Some(id) => human.push_str(&format!("signed by key {id}\n")),
+        Some(id) => {
+            let file = args.key.as_deref().map(|k| format!(" ({})", k.display()));
+            human.push_str(&format!("signed by key {id}{}\n", file.unwrap_or_default()));
+        }
         None => human.push_str(
             "UNSIGNED: no --key was given, so every device will refuse this bundle until it is signed with 'ampoule sign'\n",
         ),

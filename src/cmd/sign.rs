@@ -11,7 +11,7 @@ use anyhow::{Context, Result, bail};
 use serde_json::json;
 
 use crate::cli::SignArgs;
-use crate::cmd::external::{ToSign, signature, write_file};
+use crate::cmd::external::{ToSign, key_named, signature, write_file};
 use crate::failure::{bundle_error, count};
 use crate::output::Output;
 use crate::release::pack::rewrite_signatures;
@@ -89,14 +89,14 @@ pub fn run(args: SignArgs, out: &Output) -> Result<()> {
         format!(
             "signed {summary} in {} with key {}; it now carries {}",
             args.bundle.display(),
-            public.id(),
+            key_named(&args.signer, &public),
             count(signers.len(), "signature", "signatures")
         )
     } else {
         format!(
             "{} is already signed by key {}; nothing changed",
             args.bundle.display(),
-            public.id()
+            key_named(&args.signer, &public)
         )
     };
     out.result(

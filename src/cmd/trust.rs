@@ -16,7 +16,7 @@ use crate::cli::{
     TrustAddArgs, TrustArgs, TrustCommand, TrustEditArgs, TrustInitArgs, TrustRemoveArgs,
     TrustShowArgs, TrustSignArgs,
 };
-use crate::cmd::external::{ToSign, signature, write_file};
+use crate::cmd::external::{ToSign, key_named, signature, write_file};
 use crate::cmd::{load_trust_set, read_trust_set_file};
 use crate::failure::{Failure, Kind, count, usage};
 use crate::output::{Output, failed_report};
@@ -434,7 +434,7 @@ fn sign(args: TrustSignArgs, out: &Output) -> Result<()> {
         out.note(&format!(
             "key {} is not listed in trust set version {}; its signature counts only for \
              devices whose current trust set lists it (as when it signs its own successor)",
-            public.id(),
+            key_named(&args.signer, &public),
             file.version()
         ));
     }
@@ -450,14 +450,14 @@ fn sign(args: TrustSignArgs, out: &Output) -> Result<()> {
             "signed trust set version {} in {} with key {}; {tally}",
             file.version(),
             args.trust_set.display(),
-            public.id()
+            key_named(&args.signer, &public)
         )
     } else {
         format!(
             "trust set version {} in {} is already signed by key {}; nothing changed; {tally}",
             file.version(),
             args.trust_set.display(),
-            public.id()
+            key_named(&args.signer, &public)
         )
     };
     out.result(

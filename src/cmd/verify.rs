@@ -7,15 +7,21 @@ use anyhow::Result;
 use serde_json::json;
 
 use crate::cli::VerifyArgs;
-use crate::cmd::{load_trust, load_trust_set, parse_version};
+use crate::cmd::{load_trust_named, load_trust_set, name_trusted, parse_version};
 use crate::failure::{bundle_error, count};
 use crate::output::Output;
 
 pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
     // With a trust set, its bundle keys and bundle threshold; with --trust, any one key.
-    let (keys, threshold) = match &args.trust_set {
-        Some(path) => load_trust_set(path)?.keys_for(DocumentKind::Bundle),
-        None => (load_trust(&args.trust)?, 1),
+    let (keys, threshold, trusted) = match &args.trust_set {
+        Some(path) => {
+            let (keys, threshold) = load_trust_set(path)?.keys_for(DocumentKind::Bundle);
+            (keys, threshold, String::new())
+        }
+        None => {
+            let (keys, trusted) = load_trust_named(&args.trust)?;
+            (keys, 1, trusted)
+        }
     };
     let mut verifier = match &args.app_version {
         Some(v) => Verifier::new(keys, parse_version(v, "--app-version")?)?,
@@ -37,7 +43,9 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
         .max_unpacked_bytes(max_unpacked)
         .on_progress(out.verify_progress());
     let not_a_bundle = |e| bundle_error(&args.bundle, e);
-    let mut verified = verifier.verify_path(&args.bundle).map_err(not_a_bundle)?;
+    let mut verified = verifier
+        .verify_path(&args.bundle)
+        .map_err(|e| name_trusted(not_a_bundle(e), &trusted))?;
     let manifest = verified.manifest().clone();
     let signers: Vec<String> = verified.signers().iter().map(|k| k.to_string()).collect();
     let report = verified.signature_report().clone();

@@ -25,11 +25,12 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
     let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     let signing = Signing {
         key: &key,
+        key_file: Some(&args.key),
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
     };
     let change = tree.withdraw(&args.channel, &signing)?;
     drop(tree);
-    report(&change, out)
+    report(&change, &args.key, out)
 }

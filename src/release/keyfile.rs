@@ -187,6 +187,54 @@ fn read_secret_key_in(
     }
 }
 
+/// What a key file holds, as `ampoule key-id` names it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum KeyFileKind {
+    /// A SubjectPublicKeyInfo public key.
+    Public,
+    /// A plain PKCS#8 secret key.
+    Secret,
+    /// A passphrase-encrypted PKCS#8 secret key.
+    EncryptedSecret,
+}
+
+/// The public key of any key file: read as it is for a public key, derived from the secret
+/// key (after its passphrase, and with the same permission checks) for a secret one.
+pub fn read_any_key(
+    path: &Path,
+    passphrase: &PassphraseSource,
+) -> Result<(KeyFileKind, PublicKey)> {
+    // Only the label is looked at here; a secret key is then read the one careful way.
+    let label = {
+        let bytes = read_key_file(path, false).map_err(key_file_error)?;
+        let text = std::str::from_utf8(&bytes).unwrap_or_default().trim();
+        pkcs8::der::pem::decode_label(text.as_bytes())
+            .unwrap_or_default()
+            .to_string()
+    };
+    let kind = match label.as_str() {
+        PUBLIC_KEY_LABEL => return Ok((KeyFileKind::Public, read_public_key(path)?)),
+        ENCRYPTED_PRIVATE_KEY_LABEL => KeyFileKind::EncryptedSecret,
+        PRIVATE_KEY_LABEL => KeyFileKind::Secret,
+        "" => {
+            return Err(key_file_error(anyhow!(
+                "{} is not a PEM key file; give a public or secret key file",
+                path.display()
+            )));
+        }
+        other => {
+            return Err(key_file_error(anyhow!(
+                "{} holds a '{}' block, not an Ed25519 key; give a public or secret key file",
+                path.display(),
+                other.escape_debug()
+            )));
+        }
+    };
+    let key = read_secret_key(path, passphrase)?;
+    let public = PublicKey::from_verifying_key(&key.verifying_key())?;
+    Ok((kind, public))
+}
+
 /// Writes `key` as SubjectPublicKeyInfo PEM to a new file at `path` (mode 0644), never
 /// replacing an existing file.
 pub fn write_public_key(path: &Path, key: &PublicKey) -> Result<()> {

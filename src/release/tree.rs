@@ -116,6 +116,9 @@ pub struct StagedBundle {
 /// Settings shared by publish and withdraw.
 pub struct Signing<'a> {
     pub key: &'a SigningKey,
+    /// The file `key` was read from, named beside its id in messages (none when the key
+    /// was made in memory, as in the demo and benchmarks).
+    pub key_file: Option<&'a Path>,
     pub now: Timestamp,
     pub expires_in_secs: u64,
     /// Keys that sign the ledger's tree head besides `key`.
@@ -606,8 +609,12 @@ impl Tree {
                 set.threshold(DocumentKind::Feed),
             );
             if keys.get(&signer).is_none() {
+                let file = signing
+                    .key_file
+                    .map(|f| format!(" ({})", f.display()))
+                    .unwrap_or_default();
                 return Err(Refused(format!(
-                    "key {signer} is not a feed key in trust set version {}; devices on that set \
+                    "key {signer}{file} is not a feed key in trust set version {}; devices on that set \
                      would refuse the feeds this tree signs with it (sign with a key that has the \
                      feed role in both the current and the new set)",
                     set.version()
