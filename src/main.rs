@@ -36,12 +36,12 @@ fn main() -> ExitCode {
                     .skip(1)
                     .take_while(|a| a != "--")
                     .any(|a| a == "--json");
-                Output::new(json).usage_error(&e);
+                Output::new(json, false).usage_error(&e);
             }
             return ExitCode::from(code);
         }
     };
-    let out = Output::new(cli.json);
+    let out = Output::new(cli.json, cli.quiet);
     let result = match cli.command {
         Command::Keygen(args) => cmd::keygen::run(args, &out),
         Command::KeyId(args) => cmd::keyid::run(args, &out),
@@ -59,6 +59,8 @@ fn main() -> ExitCode {
         Command::Update(args) => cmd::update::run(args, &out),
         Command::Store(args) => cmd::store::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
+        Command::Completions(args) => cmd::completions::run(args, &out),
+        Command::Man(_) => cmd::man::run(&out),
     };
     match result {
         Ok(()) => ExitCode::from(exit::OK),

@@ -74,7 +74,7 @@ struct Story<'a> {
 
 impl Story<'_> {
     fn tell(&mut self, step: &str, text: String, detail: Value) {
-        if !self.out.json() {
+        if self.out.text() {
             println!("{:>2}. {text}", self.steps.len() + 1);
         }
         self.steps
@@ -115,7 +115,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         }
     };
     let dir = work.path();
-    if !out.json() {
+    if out.text() {
         println!(
             "ampoule demo: trail cameras in a forest reserve (invented data) in {}",
             dir.display()
@@ -460,7 +460,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     )?;
 
     if let Workdir::Kept(path) = &work
-        && !out.json()
+        && out.text()
     {
         println!("everything the demo made is in {}", path.display());
     }

@@ -1,6 +1,7 @@
 //! One module per subcommand: each turns its raw arguments into checked settings, does the
 //! work through `ampoule_verify` and `pack`, and reports through `Output`.
 
+pub mod completions;
 pub mod demo;
 pub mod diff;
 pub mod external;
@@ -8,6 +9,7 @@ pub mod inspect;
 pub mod keygen;
 pub mod keyid;
 pub mod ledger;
+pub mod man;
 pub mod offline;
 pub mod pack;
 pub mod publish;

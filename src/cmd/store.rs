@@ -20,8 +20,9 @@ pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
 }
 
 /// Opens the store with the app's verifier: its trusted keys (or the newest trust set the
-/// store accepted, starting from the one given) and its version.
-fn open(o: &StoreOptions) -> Result<Store> {
+/// store accepted, starting from the one given) and its version. Returns the version of the
+/// trust set in use, if any.
+fn open(o: &StoreOptions) -> Result<(Store, Option<u64>)> {
     // The library makes a store where there is none (an app's first start); a command that
     // only looks at one, rolls it back or cleans it up must not leave an empty one behind a
     // mistyped path.
@@ -36,16 +37,19 @@ fn open(o: &StoreOptions) -> Result<Store> {
         )));
     }
     let app_version = parse_version(&o.app_version, "--app-version")?;
-    let verifier = match &o.trust_set {
+    let (verifier, trust_set) = match &o.trust_set {
         Some(path) => {
             let (initial, _) = read_trust_set_file(path)?;
             let trust = Store::load_trust_set(&o.store, &initial, Timestamp::now())
                 .with_context(|| format!("trust set {} refused", path.display()))?;
-            Verifier::from_trust_set(&trust, app_version)?
+            (
+                Verifier::from_trust_set(&trust, app_version)?,
+                Some(trust.version()),
+            )
         }
-        None => Verifier::new(load_trust(&o.trust)?, app_version)?,
+        None => (Verifier::new(load_trust(&o.trust)?, app_version)?, None),
     };
-    Ok(Store::open(&o.store, verifier)?)
+    Ok((Store::open(&o.store, verifier)?, trust_set))
 }
 
 fn release_json(r: &Release) -> Value {
@@ -61,7 +65,7 @@ fn release_json(r: &Release) -> Value {
 }
 
 fn status(o: &StoreOptions, out: &Output) -> Result<()> {
-    let store = open(o)?;
+    let (store, trust_set) = open(o)?;
     // The full check an app makes before it loads the model: digests and signatures.
     let current = store.open_current()?;
     let state = store.state()?;
@@ -87,6 +91,13 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
             or_none(c.highest_sequence.map(|s| s.to_string()))
         ));
     }
+    human.push_str(&match trust_set {
+        Some(version) => format!(
+            "trust    trust set version {version} (the newer of --trust-set and the one the store \
+             accepted)\n"
+        ),
+        None => "trust    no trust set: the keys given with --trust\n".to_string(),
+    });
     if let Some(head) = &state.tree_head {
         human.push_str(&format!(
             "ledger   largest tree head seen: size {}, root {}\n",
@@ -104,12 +115,13 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
                 (name.clone(), json!({ "highest_sequence": c.highest_sequence }))
             }).collect::<serde_json::Map<_, _>>(),
             "tree_head_size": state.tree_head.as_ref().map(|h| h.tree_size),
+            "trust_set_version": trust_set,
         }),
     )
 }
 
 fn rollback(o: &StoreOptions, out: &Output) -> Result<()> {
-    let store = open(o)?;
+    let (store, _) = open(o)?;
     let from = store.state()?.current.map(|c| c.version.to_string());
     let back = store.rollback()?;
     let human = format!(
@@ -126,7 +138,7 @@ fn rollback(o: &StoreOptions, out: &Output) -> Result<()> {
 }
 
 fn gc(o: &StoreOptions, out: &Output) -> Result<()> {
-    let store = open(o)?;
+    let (store, _) = open(o)?;
     let removed = store.gc()?;
     let human = if removed.is_empty() {
         "nothing to remove: the store holds only its current and previous releases".to_string()
