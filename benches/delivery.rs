@@ -156,6 +156,7 @@ fn publish(
         100,
         &[],
         &Signing {
+            key_file: None,
             key,
             now: Timestamp::now(),
             expires_in_secs: 86_400,

@@ -8,8 +8,11 @@ use clap::{Args, Parser, Subcommand};
 const EXIT_CODES: &str = "\
 Exit codes:
   0  success
-  1  refused: a signature, digest, version, size or policy check said no
-  2  usage error, or a file could not be read or written";
+  1  refused: a signature, digest, version, size or policy check said no, a file
+     given as a bundle is not one, ledger check found problems
+  2  usage error, a file that could not be read or written, or a key or trust-set
+     file that does not parse
+With --json an error is one document with ok, error, exit_code and kind.";
 
 #[derive(Parser, Debug)]
 #[command(
@@ -26,6 +29,11 @@ pub struct Cli {
     #[arg(long, global = true)]
     pub json: bool,
 
+    /// Print nothing on success and show no progress bars; errors still go to stderr, and
+    /// --json output is unchanged.
+    #[arg(short, long, global = true)]
+    pub quiet: bool,
+
     #[command(subcommand)]
     pub command: Command,
 }
@@ -35,32 +43,53 @@ pub enum Command {
     /// Make a new Ed25519 signing key pair.
     #[command(after_help = "Examples:
   ampoule keygen --secret release.secret.pem --public release.public.pem
-  AMPOULE_PASS=... ampoule keygen --secret ci.secret.pem --public ci.public.pem --encrypt --passphrase-env AMPOULE_PASS
+  AMPOULE_PASS=... ampoule keygen --secret ci.secret.pem \\
+      --public ci.public.pem --encrypt --passphrase-env AMPOULE_PASS
 
 The secret key file is created owner-only (0600) and is never overwritten.
 Keep it off shared disks and out of version control.")]
     Keygen(KeygenArgs),
 
+    /// Print the key id of each key file (public, secret or encrypted secret) and the keys of
+    /// each trust set with their roles.
+    #[command(after_help = "Examples:
+  ampoule key-id release.public.pem release.secret.pem
+  AMPOULE_PASS=... ampoule key-id ci.secret.pem --passphrase-env AMPOULE_PASS
+  ampoule key-id trust-2.json --json
+
+Messages, trust sets and the ledger name keys by id; this says which file is which.
+A secret key is read with the same checks as when signing (owner-only, passphrase).")]
+    KeyId(KeyIdArgs),
+
     /// Pack a model and its labels into a bundle, optionally signing it.
     #[command(after_help = "Examples:
-  ampoule pack --model species.onnx --labels labels.txt --name trailcam-species \\
-      --version 1.1.0 --requires-app '>=2.0.0, <3.0.0' --key release.secret.pem -o species-1.1.0.ampoule
-  SOURCE_DATE_EPOCH=1764547200 ampoule pack ... (same inputs and time give a byte-identical bundle)")]
+  ampoule pack --model species.onnx --labels labels.txt \\
+      --name trailcam-species --version 1.1.0 \\
+      --requires-app '>=2.0.0, <3.0.0' --key release.secret.pem \\
+      -o species-1.1.0.ampoule
+  # The same inputs and creation time give a byte-identical bundle:
+  SOURCE_DATE_EPOCH=1796112000 ampoule pack --model species.onnx \\
+      --labels labels.txt --name trailcam-species --version 1.1.0 \\
+      --requires-app '>=2.0.0, <3.0.0' -o species-1.1.0.ampoule")]
     Pack(PackArgs),
 
     /// Add a signature to a bundle (signing twice with one key changes nothing).
     #[command(after_help = "Examples:
   ampoule sign species-1.1.0.ampoule --key second-signer.secret.pem
-  ampoule sign species-1.1.0.ampoule --export-request request.bin   (for an outside signer)
+  # An outside signer signs exactly the exported bytes:
+  ampoule sign species-1.1.0.ampoule --export-request request.bin
   openssl pkeyutl -sign -inkey secret.pem -rawin -in request.bin -out sig.bin
-  ampoule sign species-1.1.0.ampoule --attach sig.bin --pubkey signer.public.pem")]
+  ampoule sign species-1.1.0.ampoule --attach sig.bin \\
+      --pubkey signer.public.pem")]
     Sign(SignArgs),
 
     /// Check a bundle as a device would, and optionally unpack it.
     #[command(after_help = "Examples:
-  ampoule verify species-1.1.0.ampoule --trust release.public.pem --app-version 2.3.0
-  ampoule verify species-1.1.0.ampoule --trust release.public.pem --app-version 2.3.0 \\
-      --installed 1.0.0 --max-size 200000000 --extract ./model-1.1.0
+  ampoule verify species-1.1.0.ampoule --trust release.public.pem \\
+      --app-version 2.3.0
+  ampoule verify species-1.1.0.ampoule --trust release.public.pem \\
+      --app-version 2.3.0 --installed 1.0.0 --max-size 200000000 \\
+      --extract ./model-1.1.0
 
 Exit code 1 means the bundle was refused; the message says which check failed.")]
     Verify(VerifyArgs),
@@ -76,25 +105,33 @@ Exit code 1 means the bundle was refused; the message says which check failed.")
     #[command(after_help = "Examples:
   ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule
   ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule --json
+  ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule --fail-on breaking
 
-diff reads both payloads to compare the label lists; it does not check signatures.")]
+diff reads both payloads to compare the label lists; it does not check signatures.
+Breaking changes (listed under \"breaking\" in --json): a label moved to another index,
+a label removed, an input or output changed or removed. With --fail-on breaking, any
+of them makes diff exit 1.")]
     Diff(DiffArgs),
 
     /// Manage trust sets: which keys may sign what, and how many must agree.
     #[command(after_help = "Examples:
   ampoule trust init --key a.public.pem --key b.public.pem --key c.public.pem \\
       --threshold bundle=2,trust_set=2 --expires-in 365d -o trust-1.json
-  ampoule trust sign trust-1.json --key a.secret.pem        (each signer in turn)
+  ampoule trust sign trust-1.json --key a.secret.pem  # each signer in turn
   ampoule trust show trust-1.json
-  ampoule trust remove trust-1.json --key-id 3f0c... -o trust-2.json   (revoke a key)
-  ampoule trust show trust-2.json --trusted trust-1.json    (would a device on version 1 take it?)")]
+  ampoule trust remove trust-1.json --key-id 3f0c... -o trust-2.json
+  ampoule trust show trust-2.json --trusted trust-1.json")]
     Trust(TrustArgs),
 
     /// Publish a bundle as the current release of a channel in a release tree.
     #[command(after_help = "Examples:
-  ampoule publish species-1.1.0.ampoule --tree ./release --channel beta --key feed.secret.pem --rollout 10
-  ampoule publish species-1.1.0.ampoule --tree ./release --channel beta --key feed.secret.pem --rollout 100
-  ampoule publish --trust-set trust-2.json --tree ./release --key feed.secret.pem   (rotate keys)
+  ampoule publish species-1.1.0.ampoule --tree ./release --channel beta \\
+      --key feed.secret.pem --trust release.public.pem --rollout 10
+  ampoule publish species-1.1.0.ampoule --tree ./release --channel beta \\
+      --key feed.secret.pem --trust release.public.pem --rollout 100
+  # Rotate keys: publish the next trust set, which every feed then names
+  ampoule publish --trust-set trust-2.json --tree ./release \\
+      --key feed.secret.pem
 
 The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
 Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
@@ -119,8 +156,10 @@ withdrawn release keep it too: they never go back to an older version.")]
     #[command(after_help = "Examples:
   ampoule ledger list --tree ./release --channel stable
   ampoule ledger list --url https://models.example.invalid/ --csv > shipped.csv
-  ampoule ledger check --tree ./release --trust feed.public.pem --since saved-tree-head.json
-  ampoule ledger check --url https://models.example.invalid/ --trust-set trust-3.json
+  ampoule ledger check --tree ./release --trust feed.public.pem \\
+      --since saved-tree-head.json
+  ampoule ledger check --url https://models.example.invalid/ \\
+      --trust-set trust-3.json
   ampoule ledger prove species-1.1.0.ampoule --tree ./release --json
 
 Keep the tree heads you have seen (ledger/tree-head.json at each audit) and pass the last one
@@ -132,8 +171,9 @@ problems; each is printed.")]
     /// network: the feed, its trust set, the ledger's steps and the bundle.
     #[command(after_help = "Examples:
   ampoule offline --tree ./release --channel stable -o stable.ampoule-offline
+  # On the device, from the SD card:
   ampoule update --store /media/camera/models --offline stable.ampoule-offline \\
-      --trust-set trust-1.json --app-version 2.3.0          (on the device, from the SD card)
+      --trust-set trust-1.json --app-version 2.3.0
 
 The file holds the channel's current feed, the trust set it names, every consistency step
 of the audit ledger up to the feed's tree head, and the bundle the feed offers. The device
@@ -153,12 +193,16 @@ object store serves the tree. It runs until interrupted (Ctrl-C).")]
 
     /// Check a channel's feed as a device does, and install a newer bundle into a store.
     #[command(after_help = "Examples:
-  ampoule update --store ./camera --feed http://127.0.0.1:8000/feeds/stable.json \\
+  ampoule update --store ./camera \\
+      --feed http://127.0.0.1:8000/feeds/stable.json \\
       --trust release.public.pem --app-version 2.3.0
-  ampoule update --store ./camera --feed https://models.example/feeds/beta.json \\
-      --trust-set trust-1.json --app-version 2.3.0 --device-id camera-0042 --json
+  ampoule update --store ./camera \\
+      --feed https://models.example.invalid/feeds/beta.json \\
+      --trust-set trust-1.json --app-version 2.3.0 --device-id camera-0042 \\
+      --json
+  # No network: from a file made by 'ampoule offline'
   ampoule update --store ./camera --offline stable.ampoule-offline \\
-      --trust release.public.pem --app-version 2.3.0        (no network: see ampoule offline)
+      --trust release.public.pem --app-version 2.3.0
 
 The channel is the feed file's name (feeds/<channel>.json), or the offline file's channel,
 unless --channel names it.
@@ -171,9 +215,11 @@ refused; 2: a network, disk or usage problem (trying again later may work).")]
 
     /// Look into an on-device store, roll it back to the previous release, or clean it up.
     #[command(after_help = "Examples:
-  ampoule store status --store ./camera --trust release.public.pem --app-version 2.3.0
-  ampoule store rollback --store ./camera --trust release.public.pem --app-version 2.3.0
-  ampoule store gc --store ./camera --trust release.public.pem --app-version 2.3.0
+  ampoule store status --store ./camera --trust release.public.pem \\
+      --app-version 2.3.0
+  ampoule store rollback --store ./camera --trust release.public.pem \\
+      --app-version 2.3.0
+  ampoule store gc --store ./camera --trust-set trust-1.json --app-version 2.3.0
 
 status checks the current release the way an app must before it loads the model (digests and
 signatures). rollback is for an app whose own health check fails on a new model: the
@@ -181,11 +227,34 @@ previous release becomes current, and the version rolled back from stays refused
     Store(StoreArgs),
 
     /// Run the trail-camera story end to end on generated data.
-    #[command(after_help = "Example:
-  ampoule demo                 (works in a fresh temporary directory and removes it)
-  ampoule demo --dir ./demo-out (keeps everything it made for a look afterwards)")]
+    #[command(after_help = "Examples:
+  ampoule demo                   # in a temporary directory, removed afterwards
+  ampoule demo --dir ./demo-out  # keeps everything it made")]
     Demo(DemoArgs),
+
+    /// Print a shell completion script for ampoule on stdout.
+    #[command(after_help = "Examples:
+  ampoule completions bash > ~/.local/share/bash-completion/completions/ampoule
+  ampoule completions zsh > ~/.zfunc/_ampoule
+  ampoule completions fish > ~/.config/fish/completions/ampoule.fish")]
+    Completions(CompletionsArgs),
+
+    /// Print ampoule's manual page (roff, every command in one page) on stdout.
+    #[command(after_help = "Examples:
+  ampoule man > ampoule.1
+  ampoule man | man -l -")]
+    Man(ManArgs),
 }
+
+#[derive(Args, Debug)]
+pub struct CompletionsArgs {
+    /// The shell to complete for.
+    #[arg(value_enum)]
+    pub shell: clap_complete::Shell,
+}
+
+#[derive(Args, Debug)]
+pub struct ManArgs {}
 
 /// Where a secret key's passphrase comes from.
 #[derive(Args, Debug, Clone)]
@@ -194,6 +263,15 @@ pub struct PassphraseArgs {
     /// for on the terminal when the key is encrypted.
     #[arg(long, value_name = "VAR")]
     pub passphrase_env: Option<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct KeyIdArgs {
+    /// Key files (PEM) and trust-set files (JSON).
+    #[arg(required = true, value_name = "FILE")]
+    pub files: Vec<PathBuf>,
+    #[command(flatten)]
+    pub passphrase: PassphraseArgs,
 }
 
 #[derive(Args, Debug)]
@@ -328,6 +406,17 @@ pub struct DiffArgs {
     pub old: PathBuf,
     /// The newer bundle.
     pub new: PathBuf,
+    /// Exit 1 when the diff finds a change of this class (breaking: labels reordered or
+    /// removed, an input or output changed or removed).
+    #[arg(long, value_name = "CLASS", value_enum)]
+    pub fail_on: Option<FailOn>,
+}
+
+/// Which changes make `diff --fail-on` exit 1.
+#[derive(clap::ValueEnum, Clone, Copy, Debug, PartialEq, Eq)]
+pub enum FailOn {
+    /// Changes that make an app built for the old model misread the new one.
+    Breaking,
 }
 
 #[derive(Args, Debug)]
@@ -358,8 +447,10 @@ the keys that signed the bundle, and the feed sequence that carried the change."
     /// entries against the tree; exit 1 on any problem.
     #[command(after_help = "Examples:
   ampoule ledger check --tree ./release --trust feed.public.pem
-  ampoule ledger check --tree ./release --trust feed.public.pem --since audit-2026-11.json
-  ampoule ledger check --url http://127.0.0.1:8000/ --trust-set trust-2.json --json
+  ampoule ledger check --tree ./release --trust feed.public.pem \\
+      --since audit-2026-11.json
+  ampoule ledger check --url http://127.0.0.1:8000/ --trust-set trust-2.json \\
+      --json
 
 Problems (exit 1): a hash that does not match the entries, a tree head not signed by the
 trusted keys, a current head not consistent with --since, a version reused with different
@@ -369,7 +460,7 @@ Warnings (exit 0): an entry no feed carried, left by a publish that stopped afte
     /// Print the inclusion proof of a bundle's latest publish entry, and verify it.
     #[command(after_help = "Examples:
   ampoule ledger prove species-1.1.0.ampoule --tree ./release
-  ampoule ledger prove 5f1c...e9 --tree ./release --json      (a bundle's sha256)")]
+  ampoule ledger prove 5f1c...e9 --tree ./release --json  # by its sha256")]
     Prove(LedgerProveArgs),
 }
 
@@ -431,14 +522,43 @@ pub struct TrustArgs {
 #[derive(Subcommand, Debug)]
 pub enum TrustCommand {
     /// Start a trust set: version 1, unsigned, every key with every role.
+    #[command(after_help = "Examples:
+  ampoule trust init --key a.public.pem --key b.public.pem --key c.public.pem \\
+      --threshold bundle=2,trust_set=2 --expires-in 365d -o trust-1.json
+  ampoule trust init --key release.public.pem --comment 'release laptop' \\
+      --expires 2027-12-01T00:00:00Z -o trust-1.json
+
+The new set is unsigned: each signer then runs 'ampoule trust sign'.")]
     Init(TrustInitArgs),
     /// Make the next version with more keys (unsigned: sign it in turn).
+    #[command(after_help = "Examples:
+  ampoule trust add trust-1.json --key d.public.pem -o trust-2.json
+  ampoule trust add trust-1.json --key ci.public.pem --roles feed,tree_head \\
+      --comment 'publishing runner' -o trust-2.json
+
+The new version is unsigned: keys of the current version and of the new one sign it.")]
     Add(TrustAddArgs),
     /// Make the next version without some keys: how a key is revoked (unsigned).
+    #[command(after_help = "Examples:
+  ampoule trust remove trust-1.json --key c.public.pem -o trust-2.json
+  ampoule trust remove trust-1.json --key-id 3f0c... --threshold trust_set=1 \\
+      -o trust-2.json
+
+A device on the old version takes the new one only when enough keys of both sign it.")]
     Remove(TrustRemoveArgs),
     /// Show keys, thresholds, version, expiry and signatures, and check them.
+    #[command(after_help = "Examples:
+  ampoule trust show trust-2.json
+  ampoule trust show trust-2.json --trusted trust-1.json --json
+
+Exit code 1 when a check prints \"refused\" (not signed as required, expired, or not a
+successor a device on --trusted would take).")]
     Show(TrustShowArgs),
     /// Add a signature to a trust set, or export the request for an outside signer.
+    #[command(after_help = "Examples:
+  ampoule trust sign trust-2.json --key a.secret.pem
+  ampoule trust sign trust-2.json --export-request request.bin
+  ampoule trust sign trust-2.json --attach sig.bin --pubkey a.public.pem")]
     Sign(TrustSignArgs),
 }
 
@@ -679,10 +799,23 @@ pub struct StoreArgs {
 #[derive(Subcommand, Debug)]
 pub enum StoreCommand {
     /// The current release (fully checked), the previous one, and what the store remembers.
+    #[command(after_help = "Examples:
+  ampoule store status --store ./camera --trust release.public.pem \\
+      --app-version 2.3.0
+  ampoule store status --store ./camera --trust-set trust-1.json \\
+      --app-version 2.3.0 --json")]
     Status(StoreOptions),
     /// Make the previous release current again (after the app's health check failed).
+    #[command(after_help = "Example:
+  ampoule store rollback --store ./camera --trust release.public.pem \\
+      --app-version 2.3.0
+
+The version rolled back from stays refused, and so does anything not newer than it.")]
     Rollback(StoreOptions),
     /// Remove releases other than the current and previous ones, and leftovers of crashes.
+    #[command(after_help = "Example:
+  ampoule store gc --store ./camera --trust release.public.pem \\
+      --app-version 2.3.0")]
     Gc(StoreOptions),
 }
 

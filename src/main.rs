@@ -8,25 +8,10 @@ use std::process::ExitCode;
 
 use ampoule::cli::{Cli, Command};
 use ampoule::cmd::{self, demo};
+use ampoule::exit;
+use ampoule::failure;
 use ampoule::output::Output;
-use ampoule::{Refused, exit};
 use clap::Parser;
-
-fn exit_code_of(err: &anyhow::Error) -> u8 {
-    for cause in err.chain() {
-        if let Some(e) = cause.downcast_ref::<ampoule_verify::Error>() {
-            return if e.kind().is_refusal() {
-                exit::REFUSED
-            } else {
-                exit::USAGE_OR_IO
-            };
-        }
-        if cause.downcast_ref::<Refused>().is_some() {
-            return exit::REFUSED;
-        }
-    }
-    exit::USAGE_OR_IO
-}
 
 fn is_broken_pipe(err: &anyhow::Error) -> bool {
     err.chain().any(|c| {
@@ -51,14 +36,15 @@ fn main() -> ExitCode {
                     .skip(1)
                     .take_while(|a| a != "--")
                     .any(|a| a == "--json");
-                Output::new(json).usage_error(&e, code);
+                Output::new(json, false).usage_error(&e);
             }
             return ExitCode::from(code);
         }
     };
-    let out = Output::new(cli.json);
+    let out = Output::new(cli.json, cli.quiet);
     let result = match cli.command {
         Command::Keygen(args) => cmd::keygen::run(args, &out),
+        Command::KeyId(args) => cmd::keyid::run(args, &out),
         Command::Pack(args) => cmd::pack::run(args, &out),
         Command::Sign(args) => cmd::sign::run(args, &out),
         Command::Verify(args) => cmd::verify::run(args, &out),
@@ -73,14 +59,21 @@ fn main() -> ExitCode {
         Command::Update(args) => cmd::update::run(args, &out),
         Command::Store(args) => cmd::store::run(args, &out),
         Command::Demo(args) => demo::run(args, &out),
+        Command::Completions(args) => cmd::completions::run(args, &out),
+        Command::Man(_) => cmd::man::run(&out),
     };
     match result {
         Ok(()) => ExitCode::from(exit::OK),
         Err(err) if is_broken_pipe(&err) => ExitCode::from(exit::OK),
         Err(err) => {
-            let code = exit_code_of(&err);
-            out.error(&err, code);
-            ExitCode::from(code)
+            let kind = failure::classify(&err);
+            if failure::is_reported(&err) {
+                // The command printed its report (with `--json`, the error document itself).
+                out.error_line(&err);
+            } else {
+                out.error(&err, kind);
+            }
+            ExitCode::from(kind.exit_code())
         }
     }
 }

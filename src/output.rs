@@ -1,5 +1,6 @@
-//! How the CLI talks: human text or `--json` on stdout, errors once on stderr, and progress
-//! bars on stderr only when it is a terminal and the work is long.
+//! How the CLI talks: human text or `--json` on stdout (nothing on success with `--quiet`),
+//! errors once on stderr, and progress bars on stderr only when it is a terminal and the
+//! work is long.
 
 use std::io::{IsTerminal, Write};
 use std::sync::{Arc, Mutex};
@@ -8,25 +9,38 @@ use ampoule_verify::{Progress, ProgressFn, Stage};
 use indicatif::{ProgressBar, ProgressStyle};
 use serde_json::Value;
 
+use crate::failure::Kind;
+
 /// Work below this many bytes finishes too fast for a progress bar to help.
 const PROGRESS_MIN_BYTES: u64 = 32 * 1024 * 1024;
 
 /// The chosen output mode.
 pub struct Output {
     json: bool,
+    /// `--quiet`: no text on success, no notes, no progress bars; errors and `--json`
+    /// documents are unchanged, since scripts rely on them.
+    quiet: bool,
 }
 
 impl Output {
-    pub fn new(json: bool) -> Self {
-        Output { json }
+    pub fn new(json: bool, quiet: bool) -> Self {
+        Output { json, quiet }
     }
 
     pub fn json(&self) -> bool {
         self.json
     }
 
+    /// Whether human text (as opposed to a JSON document or nothing) is printed.
+    pub fn text(&self) -> bool {
+        !self.json && !self.quiet
+    }
+
     /// Prints a command's result: `human` as text, or `value` as one JSON document.
     pub fn result(&self, human: &str, value: Value) -> anyhow::Result<()> {
+        if self.quiet && !self.json {
+            return Ok(());
+        }
         let mut stdout = std::io::stdout().lock();
         if self.json {
             // Through io::Error, so a closed pipe is still recognised as one (serde_json's
@@ -43,34 +57,39 @@ impl Output {
         Ok(())
     }
 
+    /// Bytes that are the command's product (a completion script, a manual page), written
+    /// as they are whatever the output mode.
+    pub fn raw(&self, bytes: &[u8]) -> anyhow::Result<()> {
+        let mut stdout = std::io::stdout().lock();
+        stdout.write_all(bytes)?;
+        stdout.flush()?;
+        Ok(())
+    }
+
     /// A note for people (warnings, hints) on stderr, never mixed into JSON.
     pub fn note(&self, text: &str) {
-        eprintln!("ampoule: {text}");
+        if !self.quiet {
+            eprintln!("ampoule: {text}");
+        }
     }
 
     /// Prints an error chain once, prefixed with the program name; with `--json` also a JSON
     /// error document on stdout so scripts can read it.
-    pub fn error(&self, err: &anyhow::Error, exit_code: u8) {
-        let text = format!("{err:#}");
-        eprintln!("ampoule: error: {text}");
+    pub fn error(&self, err: &anyhow::Error, kind: Kind) {
+        self.error_line(err);
         if self.json {
-            let kind = err
-                .chain()
-                .find_map(|c| c.downcast_ref::<ampoule_verify::Error>())
-                .map(|e| format!("{:?}", e.kind()).to_lowercase());
-            let doc = serde_json::json!({
-                "ok": false,
-                "exit_code": exit_code,
-                "error": text,
-                "kind": kind,
-            });
-            let _ = self.result("", doc);
+            let _ = self.result("", error_document(&format!("{err:#}"), kind));
         }
+    }
+
+    /// The one line on stderr for an error whose report is already printed.
+    pub fn error_line(&self, err: &anyhow::Error) {
+        eprintln!("ampoule: error: {err:#}");
     }
 
     /// With `--json`, the JSON error document for a command line that did not parse; clap
     /// has already printed its own message and usage on stderr.
-    pub fn usage_error(&self, err: &clap::Error, exit_code: u8) {
+    pub fn usage_error(&self, err: &clap::Error) {
         if self.json {
             // clap's text minus the usage and help hints, on one line.
             let text = err.to_string();
@@ -84,20 +103,15 @@ impl Output {
                 .collect();
             let message = lines.join(" ");
             let message = message.trim_start_matches("error: ");
-            let doc = serde_json::json!({
-                "ok": false,
-                "exit_code": exit_code,
-                "error": message,
-                "kind": "usage",
-            });
-            let _ = self.result("", doc);
+            let _ = self.result("", error_document(message, Kind::Usage));
         }
     }
 
     /// A progress bar for `total` bytes of work, or a hidden one when stderr is not a
     /// terminal, `--json` is on, or the work is short.
     pub fn bar(&self, total: u64, message: &str) -> ProgressBar {
-        if self.json || total < PROGRESS_MIN_BYTES || !std::io::stderr().is_terminal() {
+        if self.json || self.quiet || total < PROGRESS_MIN_BYTES || !std::io::stderr().is_terminal()
+        {
             return ProgressBar::hidden();
         }
         let bar = ProgressBar::new(total);
@@ -115,7 +129,7 @@ impl Output {
     /// A progress callback for the verifier: one bar per stage, made on the stage's first
     /// report (when its size is known) and finished when the stage completes.
     pub fn verify_progress(&self) -> ProgressFn {
-        let json = self.json;
+        let (json, quiet) = (self.json, self.quiet);
         let bars: Mutex<Vec<(Stage, ProgressBar)>> = Mutex::new(Vec::new());
         Arc::new(move |p: Progress| {
             let Ok(mut bars) = bars.lock() else { return };
@@ -127,7 +141,7 @@ impl Output {
                         Stage::Download => "downloading",
                         _ => "checking",
                     };
-                    bars.push((p.stage, Output { json }.bar(p.total, label)));
+                    bars.push((p.stage, Output { json, quiet }.bar(p.total, label)));
                     &bars[bars.len() - 1].1
                 }
             };
@@ -137,4 +151,24 @@ impl Output {
             }
         })
     }
+}
+
+/// The fields every `--json` error carries; a report that ends in an error (`ledger check`
+/// with problems, `trust show` refusing) adds them to its own document.
+pub fn error_document(message: &str, kind: Kind) -> Value {
+    serde_json::json!({
+        "ok": false,
+        "exit_code": kind.exit_code(),
+        "error": message,
+        "kind": kind.name(),
+    })
+}
+
+/// A command's report that ends in an error: its own fields plus the error fields, with
+/// `ok` false.
+pub fn failed_report(mut doc: Value, message: &str, kind: Kind) -> Value {
+    if let (Value::Object(doc), Value::Object(fields)) = (&mut doc, error_document(message, kind)) {
+        doc.extend(fields);
+    }
+    doc
 }

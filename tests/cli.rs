@@ -243,7 +243,7 @@ fn json_for_every_command() {
         (
             vec!["--json", "keygen", "--secret", SECRET, "--public", "x.pem"],
             2,
-            Value::Null,
+            Value::from("usage"),
             "release.secret.pem already exists; keygen never overwrites a key file (choose another \
              path, or move the old file away first if you are sure it is not needed)",
         ),
@@ -338,7 +338,7 @@ fn signing_twice_with_one_key_changes_nothing() {
         (
             0,
             format!(
-                "signed trailcam-species 1.2.0 in s.ampoule with key {}; it now carries 1 signature(s)\n",
+                "signed trailcam-species 1.2.0 in s.ampoule with key {} (release.secret.pem); it now carries 1 signature\n",
                 env.key_id()
             )
         )
@@ -351,7 +351,7 @@ fn signing_twice_with_one_key_changes_nothing() {
         (
             0,
             format!(
-                "s.ampoule is already signed by key {}; nothing changed\n",
+                "s.ampoule is already signed by key {} (release.secret.pem); nothing changed\n",
                 env.key_id()
             )
         )

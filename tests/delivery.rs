@@ -306,8 +306,8 @@ fn publish_checks_the_bundle_signature_first() {
         )),
         "{message}"
     );
-    assert!(!d.join("tree/feeds/stable.json").exists());
-    assert!(files_under(&d.join("tree/bundles")).is_empty());
+    // Since issue 12 a refused first publish leaves no tree at all, not even its directories.
+    assert!(!d.join("tree").exists());
     // With the bundle key trusted explicitly, the feed key may differ from the bundle key.
     ok(
         d,
@@ -324,6 +324,24 @@ fn publish_checks_the_bundle_signature_first() {
             "other.pub",
         ],
     );
+    assert_eq!(read_feed(d, "stable").sequence, 1);
+    // In a tree that exists, the refused bundle's staged copy is removed too.
+    let other = pack(d, "1.1.0", 0, "other.pem");
+    let (code, _) = refused(
+        d,
+        &[
+            "publish",
+            &other,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+        ],
+    );
+    assert_eq!(code, 1);
+    assert_eq!(files_under(&d.join("tree/bundles")).len(), 1);
     assert_eq!(read_feed(d, "stable").sequence, 1);
 }
 

@@ -174,3 +174,54 @@ fn demo_runs_and_refuses_every_attack() {
         .to_string();
     assert!(std::path::Path::new(&model).is_file(), "{model}");
 }
+
+#[test]
+fn issue12_the_demo_inputs_compiled_in_equal_the_demo_folder() {
+    // An installed `ampoule demo` runs from the compiled-in copies; they must be the files a
+    // reader of demo/ sees, and every file there must be compiled in.
+    let folder = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("demo");
+    let mut on_disk: Vec<String> = std::fs::read_dir(&folder)
+        .expect("the demo folder")
+        .map(|e| {
+            e.expect("an entry")
+                .file_name()
+                .into_string()
+                .expect("UTF-8")
+        })
+        .collect();
+    on_disk.sort();
+    let mut embedded: Vec<String> = ampoule::cmd::demo::INPUTS
+        .iter()
+        .map(|(name, _)| name.to_string())
+        .collect();
+    embedded.sort();
+    assert_eq!(embedded, on_disk);
+    for (name, text) in ampoule::cmd::demo::INPUTS {
+        let file = std::fs::read_to_string(folder.join(name)).expect("a demo input");
+        assert_eq!(*text, file, "demo/{name} differs from the copy compiled in");
+    }
+}
+
+#[test]
+fn issue12_an_installed_demo_runs_outside_the_checkout() {
+    // Run from a directory with no demo/ folder: the inputs come from the binary, and the
+    // kept directory holds them beside what the demo made.
+    let dir = tempfile::tempdir().expect("temp dir");
+    let out = Command::new(env!("CARGO_BIN_EXE_ampoule"))
+        .args(["--quiet", "demo", "--dir", "kept"])
+        .current_dir(dir.path())
+        .output()
+        .expect("run ampoule demo");
+    assert_eq!(
+        (
+            out.status.code(),
+            out.stdout.as_slice(),
+            out.stderr.as_slice()
+        ),
+        (Some(0), &b""[..], &b""[..])
+    );
+    for (name, text) in ampoule::cmd::demo::INPUTS {
+        let file = std::fs::read_to_string(dir.path().join("kept").join(name)).expect("input");
+        assert_eq!(*text, file);
+    }
+}

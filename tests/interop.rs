@@ -305,8 +305,15 @@ fn bundle_made_by_hand_with_tar_zstd_and_openssl_verifies() {
         (run.code, run.stderr.as_str()),
         (
             1,
-            "ampoule: error: bundle entry 'manifest.json' is not a POSIX ustar header \
-             (magic \"ustar  \\0\"); write bundles with 'tar --format=ustar'\n"
+            format!(
+                "ampoule: error: {}\n",
+                not_a_bundle(
+                    "gnu.ampoule",
+                    "it has a header that is not a POSIX ustar header; write bundles with \
+                     'tar --format=ustar'"
+                )
+            )
+            .as_str()
         )
     );
 }

@@ -1,4 +1,4 @@
-//! The release side's layers, from the bottom: the domain (`src/release/`: the release tree
+//! The release side's layers, from the bottom: the error contract (`failure.rs`), the domain (`src/release/`: the release tree
 //! and its records, the ledger's files and audit, key files, packing), the front's own types
 //! (`cli.rs`, `output.rs`), then the commands (`src/cmd/`). No domain module imports a command
 //! or the front, and no two modules import each other. The same check as the verifier's
@@ -12,6 +12,7 @@ use std::path::Path;
 use layering::Layer;
 
 const LAYERS: &[Layer] = &[
+    ("errors", &["failure.rs"]),
     ("domain", &["release/"]),
     ("front", &["cli.rs", "output.rs"]),
     ("commands", &["cmd/"]),

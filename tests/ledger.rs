@@ -415,7 +415,7 @@ fn check_refuses_an_untrusted_tree_head_and_a_rewritten_history() {
     assert_eq!(
         problems(&report),
         [
-            "the ledger has 1 entries, fewer than the 3 of the saved tree head: its history was trimmed"
+            "the ledger has 1 entry, fewer than the 3 of the saved tree head: its history was trimmed"
         ]
     );
 }

@@ -176,7 +176,7 @@ fn diff_flags_reordered_labels_and_changed_outputs() {
     assert_eq!(run.code, 0, "{run:?}");
     assert!(
         run.stdout.contains(
-            "WARNING: 2 label(s) changed output index; an app that maps indices to labels itself will report the wrong species:\n  'fox' moved from index 0 to 1\n  'roe deer' moved from index 1 to 0\n"
+            "WARNING: 2 labels changed output index; an app that maps indices to labels itself will report the wrong species:\n  'fox' moved from index 0 to 1\n  'roe deer' moved from index 1 to 0\n"
         ),
         "{}",
         run.stdout

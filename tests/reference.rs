@@ -54,7 +54,9 @@ fn rfc8410_public_key_is_a_trust_input() {
         (
             1,
             format!(
-                "ampoule: error: bundle has no valid signature by a trusted key (by keys not trusted here: {id})\n"
+                "ampoule: error: bundle has no valid signature by a trusted key (by keys not trusted here: {id}); \
+                 trusted here: {} ({PUBLIC})\n",
+                env.key_id()
             )
         )
     );
@@ -71,10 +73,11 @@ fn issue_2_rfc8410_x25519_certificate_is_refused_as_trust() {
         "--trust".as_ref(),
         "cert.pem".as_ref(),
     ]);
+    // Exit 2 since issue 12: a key file that does not parse as a key is a usage error.
     assert_eq!(
         (run.code, run.stderr.as_str(), run.stdout.as_str()),
         (
-            1,
+            2,
             "ampoule: error: cannot read public key cert.pem: PEM block 'CERTIFICATE' is not an \
              Ed25519 public key; expected a '-----BEGIN PUBLIC KEY-----' block as written by keygen \
              or 'openssl pkey -pubout'\n",

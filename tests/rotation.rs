@@ -527,7 +527,7 @@ fn issue5_a_trust_set_that_is_not_a_successor_is_refused_at_publish_and_on_the_d
             1,
             format!(
                 "ampoule: error: trust set trust-2.json refused; nothing was published: key \
-                 {other} is not a feed key in trust set version 2; devices on that set would \
+                 {other} (other.pem) is not a feed key in trust set version 2; devices on that set would \
                  refuse the feeds this tree signs with it (sign with a key that has the feed \
                  role in both the current and the new set)"
             )

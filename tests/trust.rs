@@ -43,6 +43,29 @@ fn ok(dir: &Path, args: &[&str]) -> serde_json::Value {
     serde_json::from_str(&run.stdout).expect("--json prints JSON")
 }
 
+/// A `trust show` that prints "refused": since issue 12 it exits 1, and its JSON report
+/// carries the error fields every JSON error has, `kind` the library's kind of the refusal.
+fn show_refused(dir: &Path, args: &[&str], kind: &str) -> serde_json::Value {
+    let mut all = vec!["--json"];
+    all.extend_from_slice(args);
+    let run = ampoule(dir, &all);
+    assert_eq!(run.code, 1, "{args:?}: {}", run.stderr);
+    let doc: serde_json::Value = serde_json::from_str(&run.stdout).expect("--json prints JSON");
+    assert_eq!(
+        (&doc["ok"], &doc["exit_code"], &doc["kind"]),
+        (&false.into(), &1.into(), &kind.into()),
+        "{doc}"
+    );
+    assert_eq!(
+        run.stderr,
+        format!(
+            "ampoule: error: {}\n",
+            doc["error"].as_str().expect("error")
+        )
+    );
+    doc
+}
+
 /// Makes NAME.secret.pem and NAME.public.pem and returns the key id.
 fn keygen(dir: &Path, name: &str) -> String {
     let doc = ok(
@@ -243,9 +266,10 @@ fn rotation_revocation_and_rollback_from_the_command_line_issue5() {
         ],
     );
     assert_eq!(doc["version"], 2);
-    let doc = ok(
+    let doc = show_refused(
         dir,
         &["trust", "show", "trust-2.json", "--trusted", "trust-1.json"],
+        "signature",
     );
     assert_eq!(doc["as_successor"]["accepted"], false);
     assert_eq!(
@@ -299,9 +323,10 @@ fn rotation_revocation_and_rollback_from_the_command_line_issue5() {
             ],
         );
     }
-    let doc = ok(
+    let doc = show_refused(
         dir,
         &["trust", "show", "trust-3.json", "--trusted", "trust-2.json"],
+        "signature",
     );
     let cx = sorted(vec![&c, &x]);
     assert_eq!(
@@ -314,9 +339,10 @@ fn rotation_revocation_and_rollback_from_the_command_line_issue5() {
     );
 
     // A device on version 2 refuses version 1 again, validly signed as it is.
-    let doc = ok(
+    let doc = show_refused(
         dir,
         &["trust", "show", "trust-1.json", "--trusted", "trust-2.json"],
+        "trust_set",
     );
     assert_eq!(
         doc["as_successor"]["error"],

@@ -27,6 +27,7 @@ use ampoule_verify::{
 };
 use anyhow::{Context, Result, bail};
 use semver::{Version, VersionReq};
+use serde::Deserialize;
 use serde_json::{Value, json};
 
 use crate::cli::DemoArgs;
@@ -37,17 +38,39 @@ use crate::release::serve::Server;
 use crate::release::synth;
 use crate::release::tree::{BUNDLES_DIR, Change, FEEDS_DIR, Signing, Tree};
 
-/// The species the first model knows, in output-index order (invented survey classes).
-const SPECIES_V1: [&str; 6] = [
-    "fox",
-    "roe deer",
-    "wild boar",
-    "badger",
-    "hare",
-    "empty frame",
+/// The scenario's inputs, kept in the top-level `demo/` folder (its README tells the story)
+/// and compiled in, so an installed `ampoule demo` runs outside the checkout. tests/demo.rs
+/// checks that these copies equal the files.
+pub const INPUTS: &[(&str, &str)] = &[
+    ("README.md", include_str!("../../demo/README.md")),
+    (
+        "labels-1.0.0.txt",
+        include_str!("../../demo/labels-1.0.0.txt"),
+    ),
+    (
+        "labels-1.1.0.txt",
+        include_str!("../../demo/labels-1.1.0.txt"),
+    ),
+    (
+        "camera-policy.json",
+        include_str!("../../demo/camera-policy.json"),
+    ),
 ];
-/// The species added in v1.1.0.
-const NEW_SPECIES: &str = "pine marten";
+
+fn input(name: &str) -> &'static str {
+    INPUTS
+        .iter()
+        .find(|(n, _)| *n == name)
+        .map(|(_, text)| *text)
+        .expect("every input the demo reads is in INPUTS")
+}
+
+/// The species model `version` knows, in output-index order (invented survey classes).
+fn species(version: &str) -> Result<Vec<String>> {
+    let name = format!("labels-{version}.txt");
+    ampoule_verify::labels::parse_labels(input(&name).as_bytes())
+        .with_context(|| format!("the demo's {name} is not a valid label list"))
+}
 /// Hidden units of the demo classifier: about 8 MiB of float32 weights, large enough to show
 /// streaming, small enough to run in seconds.
 const HIDDEN: u64 = 76;
@@ -74,7 +97,7 @@ struct Story<'a> {
 
 impl Story<'_> {
     fn tell(&mut self, step: &str, text: String, detail: Value) {
-        if !self.out.json() {
+        if self.out.text() {
             println!("{:>2}. {text}", self.steps.len() + 1);
         }
         self.steps
@@ -115,7 +138,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         }
     };
     let dir = work.path();
-    if !out.json() {
+    if out.text() {
         println!(
             "ampoule demo: trail cameras in a forest reserve (invented data) in {}",
             dir.display()
@@ -125,6 +148,11 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         out,
         steps: Vec::new(),
     };
+    // The story's inputs beside what is made from them, for a look afterwards with --dir.
+    for (name, text) in INPUTS {
+        std::fs::write(dir.join(name), text)
+            .with_context(|| format!("cannot write {}", dir.join(name).display()))?;
+    }
 
     let key = keyfile::generate_key();
     let public = PublicKey::from_verifying_key(&key.verifying_key())?;
@@ -147,16 +175,14 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     let created: Timestamp = CREATED.parse()?;
     let requires_app = VersionReq::parse(REQUIRES_APP)?;
     let mut bundles = Vec::new();
-    let species = |extra: Option<&str>| -> Vec<String> {
-        SPECIES_V1
+    let first = species("1.0.0")?;
+    for (version, seed) in [("1.0.0", 1), ("1.1.0", 2)] {
+        let labels = species(version)?;
+        let added: Vec<String> = labels
             .iter()
-            .copied()
-            .chain(extra)
-            .map(str::to_string)
-            .collect()
-    };
-    for (version, seed, extra) in [("1.0.0", 1, None), ("1.1.0", 2, Some(NEW_SPECIES))] {
-        let labels = species(extra);
+            .filter(|l| !first.contains(l))
+            .map(|l| format!("'{l}'"))
+            .collect();
         let model = dir.join(format!("species-{version}.onnx"));
         synth::write_onnx_classifier(&model, SIDE, HIDDEN, labels.len() as u64, seed)?;
         let spec = model_spec(&model, labels, version, &requires_app, created)?;
@@ -167,7 +193,11 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
             format!(
                 "packed trailcam-species {version}: {} labels{}, model {:.1} MiB ({} parameters) -> bundle {:.1} MiB, signed",
                 packed.manifest.label_count,
-                extra.map(|s| format!(" (adds '{s}')")).unwrap_or_default(),
+                if added.is_empty() {
+                    String::new()
+                } else {
+                    format!(" (adds {})", added.join(", "))
+                },
                 mib(packed.manifest.model().size),
                 packed.manifest.model.as_ref().map_or(0, |m| m.parameters),
                 mib(packed.bundle_len)
@@ -179,14 +209,14 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
 
     let mismatch = model_spec(
         &dir.join("species-1.1.0.onnx"),
-        species(None),
+        first.clone(),
         "1.1.1",
         &requires_app,
         created,
     )?
     .model_signature
     .context("the demo model has a signature")?
-    .check_label_count(None, SPECIES_V1.len());
+    .check_label_count(None, first.len());
     refusal(
         &mut story,
         "labels",
@@ -300,7 +330,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     // v1.1.1: the same model, republished; then one byte of it flips on the server.
     let spec = model_spec(
         &dir.join("species-1.1.0.onnx"),
-        species(Some(NEW_SPECIES)),
+        species("1.1.0")?,
         "1.1.1",
         &requires_app,
         created,
@@ -373,7 +403,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     rotate_keys(&mut story, dir, &tree, &key, cameras, &trust_v1, |v| {
         model_spec(
             &dir.join("species-1.1.0.onnx"),
-            species(Some(NEW_SPECIES)),
+            species("1.1.0")?,
             v,
             &requires_app,
             created,
@@ -411,13 +441,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
 
     let big = dir.join("species-1.2.0-128px.onnx");
     synth::write_onnx_classifier(&big, 128, 8, 7, 3)?;
-    let spec = model_spec(
-        &big,
-        species(Some(NEW_SPECIES)),
-        "1.2.0",
-        &requires_app,
-        created,
-    )?;
+    let spec = model_spec(&big, species("1.1.0")?, "1.2.0", &requires_app, created)?;
     let wrong_input = dir.join("species-1.2.0.ampoule");
     pack(
         &spec,
@@ -438,13 +462,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
 
     let stranger = keyfile::generate_key();
     let forged = dir.join("species-9.9.9-forged.ampoule");
-    let spec = model_spec(
-        &big,
-        species(Some(NEW_SPECIES)),
-        "9.9.9",
-        &requires_app,
-        created,
-    )?;
+    let spec = model_spec(&big, species("1.1.0")?, "9.9.9", &requires_app, created)?;
     pack(
         &spec,
         Some(&stranger),
@@ -460,7 +478,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     )?;
 
     if let Workdir::Kept(path) = &work
-        && !out.json()
+        && out.text()
     {
         println!("everything the demo made is in {}", path.display());
     }
@@ -641,20 +659,60 @@ fn trust_set(
     Ok(file.to_json())
 }
 
-/// What the camera app's code feeds and reads: 96 x 96 RGB float frames in, one score per
-/// species out, and an "empty frame" class it relies on to skip frames.
+/// The camera app's compatibility policy as demo/camera-policy.json writes it down.
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct PolicyFile {
+    /// For people reading the file.
+    #[serde(rename = "about")]
+    _about: String,
+    input: TensorFile,
+    output: TensorFile,
+    classifier_output: String,
+    label_count: CountFile,
+    required_labels: Vec<String>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct TensorFile {
+    name: String,
+    dtype: String,
+    shape: Option<String>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct CountFile {
+    min: usize,
+    max: usize,
+}
+
+impl TensorFile {
+    fn spec(&self) -> Result<TensorSpec> {
+        let spec = TensorSpec::new(self.name.as_str()).dtype(&self.dtype)?;
+        Ok(match &self.shape {
+            Some(shape) => spec.shape(shape.parse()?),
+            None => spec,
+        })
+    }
+}
+
+/// What the camera app's code feeds and reads (demo/camera-policy.json): 96 x 96 RGB float
+/// frames in, one score per species out, and an "empty frame" class it relies on to skip
+/// frames.
 fn camera_policy() -> Result<CompatibilityPolicy> {
-    Ok(CompatibilityPolicy::builder()
-        .input(
-            TensorSpec::new("image")
-                .dtype("float32")?
-                .shape("[*, 3, 96, 96]".parse()?),
-        )
-        .output(TensorSpec::new("species").dtype("float32")?)
-        .classifier_output("species")
-        .label_count(2..=64)
-        .require_label("empty frame")
-        .build()?)
+    let file: PolicyFile = serde_json::from_str(input("camera-policy.json"))
+        .context("the demo's camera-policy.json is not a policy file")?;
+    let mut policy = CompatibilityPolicy::builder()
+        .input(file.input.spec()?)
+        .output(file.output.spec()?)
+        .classifier_output(file.classifier_output.as_str())
+        .label_count(file.label_count.min..=file.label_count.max);
+    for label in &file.required_labels {
+        policy = policy.require_label(label.as_str());
+    }
+    Ok(policy.build()?)
 }
 
 /// What to pack for one demo release: the model, its labels, and the recorded signature.
@@ -696,6 +754,7 @@ fn withdraw(tree: &Path, key: &ed25519_dalek::SigningKey) -> Result<Change> {
 
 fn signing(key: &ed25519_dalek::SigningKey) -> Signing<'_> {
     Signing {
+        key_file: None,
         key,
         now: Timestamp::now(),
         expires_in_secs: FEED_EXPIRES_SECS,

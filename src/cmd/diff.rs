@@ -11,8 +11,9 @@ use anyhow::{Context, Result};
 use serde::Serialize;
 use serde_json::json;
 
-use crate::cli::DiffArgs;
-use crate::output::Output;
+use crate::cli::{DiffArgs, FailOn};
+use crate::failure::{Failure, Kind, bundle_error, count};
+use crate::output::{Output, failed_report};
 
 /// One bundle as the diff sees it.
 struct Side {
@@ -23,10 +24,11 @@ struct Side {
 }
 
 fn load(path: &Path) -> Result<Side> {
-    let mut bundle = Unverified::open(path)?;
+    let mut bundle = Unverified::open(path).map_err(|e| bundle_error(path, e))?;
     // The labels sit inside the payload; reading them means checking the whole payload.
     let labels = bundle
         .dangerous_check_contents()
+        .map_err(|e| bundle_error(path, e))
         .with_context(|| format!("cannot read the labels of {}", path.display()))?;
     Ok(Side {
         signers: bundle
@@ -162,8 +164,8 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
     ));
     if !moved.is_empty() {
         line(format!(
-            "WARNING: {} label(s) changed output index; an app that maps indices to labels itself will report the wrong species:",
-            moved.len()
+            "WARNING: {} changed output index; an app that maps indices to labels itself will report the wrong species:",
+            count(moved.len(), "label", "labels")
         ));
         for m in &moved {
             line(format!(
@@ -245,10 +247,10 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
         "(signatures not checked: diff compares contents; use verify to check who signed)"
             .to_string(),
     );
-    out.result(
-        &human,
-        json!({
+    let breaking = breaking_changes(&moved, &removed, &inputs, &outputs);
+    let doc = json!({
             "ok": true,
+            "breaking": breaking,
             "old": { "name": om.name, "version": om.version.to_string(), "bundle": args.old },
             "new": { "name": nm.name, "version": nm.version.to_string(), "bundle": args.new },
             "labels": {
@@ -265,6 +267,47 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
             "bundle_bytes": { "old": old.size, "new": new.size },
             "requires_app": { "old": om.requires_app.to_string(), "new": nm.requires_app.to_string() },
             "signers": { "added": signers_added, "removed": signers_removed },
-        }),
-    )
+    });
+    if args.fail_on != Some(FailOn::Breaking) || breaking.is_empty() {
+        return out.result(&human, doc);
+    }
+    let message = format!(
+        "{} {} -> {}: {} (--fail-on breaking)",
+        nm.name,
+        om.version,
+        nm.version,
+        count(breaking.len(), "breaking change", "breaking changes")
+    );
+    out.result(&human, failed_report(doc, &message, Kind::BreakingChange))?;
+    Err(Failure::reported(Kind::BreakingChange, message))
+}
+
+/// The changes that make an app built for the old bundle misread the new one, as the README
+/// lists them: a label that moved (every prediction of its index now means another class), a
+/// label removed, and an input or output whose name, dtype or shape the app's code relies on.
+fn breaking_changes(
+    moved: &[Moved],
+    removed: &[&String],
+    inputs: &TensorDiff,
+    outputs: &TensorDiff,
+) -> Vec<String> {
+    let mut found: Vec<String> = moved
+        .iter()
+        .map(|m| {
+            format!(
+                "label '{}' moved from index {} to {}",
+                m.label, m.old_index, m.new_index
+            )
+        })
+        .collect();
+    found.extend(removed.iter().map(|l| format!("label '{l}' removed")));
+    for (what, diff) in [("input", inputs), ("output", outputs)] {
+        found.extend(
+            diff.changed
+                .iter()
+                .map(|c| format!("{what} changed: {} -> {}", c.old, c.new)),
+        );
+        found.extend(diff.removed.iter().map(|r| format!("{what} removed: {r}")));
+    }
+    found
 }

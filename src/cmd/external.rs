@@ -46,6 +46,15 @@ pub fn write_file(path: &Path, bytes: &[u8], replace: bool) -> Result<()> {
     write_bytes(path, bytes, placement)
 }
 
+/// A key named in messages: its id, and the file given for it on the command line (the
+/// secret key with --key, the public key with --attach), so people can tell which is which.
+pub fn key_named(signer: &SignerArgs, public: &PublicKey) -> String {
+    match signer.key.as_ref().or(signer.pubkey.as_ref()) {
+        Some(file) => format!("{} ({})", public.id(), file.display()),
+        None => public.id().to_string(),
+    }
+}
+
 /// A document to sign, and how its command is named in messages.
 pub struct ToSign<'a> {
     /// The document in messages ("bundle's manifest", "trust set version 2").

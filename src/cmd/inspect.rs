@@ -9,6 +9,7 @@ use serde_json::json;
 
 use crate::cli::InspectArgs;
 use crate::cmd::{load_trust, load_trust_set};
+use crate::failure::bundle_error;
 use crate::output::Output;
 
 pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
@@ -16,7 +17,7 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
         Some(path) => load_trust_set(path)?.keys_for(DocumentKind::Bundle),
         None => (load_trust(&args.trust)?, 1),
     };
-    let mut bundle = Unverified::open(&args.bundle)?;
+    let mut bundle = Unverified::open(&args.bundle).map_err(|e| bundle_error(&args.bundle, e))?;
     let payload_ok = bundle.check_payload();
     let Unverified {
         layout,

@@ -18,16 +18,17 @@ use anyhow::{Context, Result, bail};
 use serde_json::{Value, json};
 use tempfile::TempDir;
 
+use crate::Refused;
 use crate::cli::{
     LedgerArgs, LedgerCheckArgs, LedgerCommand, LedgerListArgs, LedgerProveArgs, LedgerSourceArgs,
 };
 use crate::cmd::{load_trust, load_trust_set};
-use crate::output::Output;
+use crate::failure::{Failure, Kind, count};
+use crate::output::{Output, failed_report};
 use crate::release::ledger_audit::{self as audit, AuditReport};
 use crate::release::ledger_storage::{
     ENTRIES, Entry, HASHES, Ledger, OFFSETS, TREE_HEAD, TREE_HEADS,
 };
-use crate::{Refused, exit};
 
 pub fn run(args: LedgerArgs, out: &Output) -> Result<()> {
     match args.command {
@@ -253,7 +254,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         bail!("--csv and --json print different formats; choose one");
     }
     if let Some(channel) = &args.channel {
-        ampoule_verify::feed::check_channel(channel)?;
+        crate::cmd::check_channel_arg(channel)?;
     }
     let source = Source::open(&args.source, false)?;
     let ledger = source.ledger()?;
@@ -372,9 +373,9 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
     }
     if let Some(h) = &head {
         human.push_str(&format!(
-            "{} of {} entries shown; tree head size {}, root {}, {} (unchecked: run ledger check)\n",
+            "{} of {} shown; tree head size {}, root {}, {} (unchecked: run ledger check)\n",
             rows.len(),
-            h.tree_size,
+            count(h.tree_size, "entry", "entries"),
             h.tree_size,
             h.root_hash,
             time_text(h.time)
@@ -423,29 +424,21 @@ fn check(args: LedgerCheckArgs, out: &Output) -> Result<()> {
     };
     let source = Source::open(&args.source, true)?;
     let report = audit::check(&source.root, &keys, &heads, since.as_ref())?;
-    print_report(&source, &report, out)?;
-    if !report.problems.is_empty() {
-        // The report is the output; a second error document would confuse a JSON reader.
-        eprintln!(
-            "ampoule: error: ledger check found {} problem(s)",
-            report.problems.len()
-        );
-        std::process::exit(i32::from(exit::REFUSED));
-    }
-    Ok(())
+    print_report(&source, &report, out)
 }
 
+/// Prints the audit's report; with problems, the report itself is the error document (a
+/// second one would confuse a JSON reader), and only the summary line goes to stderr.
 fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<()> {
     let mut human = format!(
-        "ledger of {}: {} entries, root {}\nchecked {} tree heads (signatures, roots, consistency \
-         steps) and {} bundles\n",
+        "ledger of {}: {}, root {}\nchecked {} (signatures, roots, consistency steps) and {}\n",
         source.shown,
-        report.tree_size,
+        count(report.tree_size, "entry", "entries"),
         report
             .root_hash
             .map_or_else(|| "none".to_string(), |d| d.to_string()),
-        report.heads_checked,
-        report.bundles_checked,
+        count(report.heads_checked, "tree head", "tree heads"),
+        count(report.bundles_checked, "bundle", "bundles"),
     );
     if let Some(size) = report.since {
         human.push_str(&format!(
@@ -461,10 +454,8 @@ fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<(
     if report.problems.is_empty() {
         human.push_str("ok: no problems found\n");
     }
-    out.result(
-        &human,
-        json!({
-            "ok": report.problems.is_empty(),
+    let doc = json!({
+            "ok": true,
             "source": source.shown,
             "tree_size": report.tree_size,
             "root_hash": report.root_hash,
@@ -473,8 +464,16 @@ fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<(
             "consistent_since": report.since,
             "problems": report.problems,
             "warnings": report.warnings,
-        }),
-    )
+    });
+    if report.problems.is_empty() {
+        return out.result(&human, doc);
+    }
+    let message = format!(
+        "ledger check found {}",
+        count(report.problems.len(), "problem", "problems")
+    );
+    out.result(&human, failed_report(doc, &message, Kind::LedgerProblems))?;
+    Err(Failure::reported(Kind::LedgerProblems, message))
 }
 
 fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {
@@ -524,7 +523,7 @@ fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {
     let text = String::from_utf8(bytes).context("a ledger entry is not UTF-8")?;
     let mut human = format!(
         "{} {} (sha256 {sha256}) was published on channel {} at {}: entry {index}\n\
-         tree head: size {}, root {}, {}\nleaf hash: {leaf}\ninclusion proof ({} hashes, leaf level first):\n",
+         tree head: size {}, root {}, {}\nleaf hash: {leaf}\ninclusion proof ({}, leaf level first):\n",
         entry.bundle,
         entry.version,
         entry.channel,
@@ -532,7 +531,7 @@ fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {
         head.tree_size,
         head.root_hash,
         time_text(head.time),
-        proof.hashes.len()
+        count(proof.hashes.len(), "hash", "hashes")
     );
     for h in &proof.hashes {
         human.push_str(&format!("  {h}\n"));

@@ -1,12 +1,15 @@
 //! One module per subcommand: each turns its raw arguments into checked settings, does the
 //! work through `ampoule_verify` and `pack`, and reports through `Output`.
 
+pub mod completions;
 pub mod demo;
 pub mod diff;
 pub mod external;
 pub mod inspect;
 pub mod keygen;
+pub mod keyid;
 pub mod ledger;
+pub mod man;
 pub mod offline;
 pub mod pack;
 pub mod publish;
@@ -21,28 +24,75 @@ pub mod withdraw;
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::format::trust_set;
-use ampoule_verify::{Timestamp, TrustSet, TrustedKeys};
+use ampoule_verify::{Timestamp, TrustSet, TrustSetFile, TrustedKeys};
 use anyhow::{Context, Result};
 use semver::Version;
 
 use crate::cli::PassphraseArgs;
+use crate::failure::{Failure, Kind, usage};
 use crate::release::keyfile::{self, PassphraseSource};
 
 /// Loads every `--trust` key; any unreadable or weak key stops the command.
 pub fn load_trust(paths: &[PathBuf]) -> Result<TrustedKeys> {
+    Ok(load_trust_named(paths)?.0)
+}
+
+/// [`load_trust`], and the keys as messages name them: "ID (FILE)", comma-separated.
+pub fn load_trust_named(paths: &[PathBuf]) -> Result<(TrustedKeys, String)> {
     let mut keys = TrustedKeys::new();
+    let mut names = Vec::new();
     for path in paths {
-        keys.add(keyfile::read_public_key(path)?);
+        let key = keyfile::read_public_key(path)?;
+        names.push(format!("{} ({})", key.id(), path.display()));
+        keys.add(key);
     }
-    Ok(keys)
+    Ok((keys, names.join(", ")))
+}
+
+/// A refusal that names signers "not trusted here", with the keys that were trusted named
+/// by file: the library names keys only by id, and people know their keys by file. (Other
+/// signature refusals, unsigned or not matching, are about the bundle, not the keys.)
+pub fn name_trusted(err: anyhow::Error, trusted: &str) -> anyhow::Error {
+    let refused_signature = err
+        .chain()
+        .filter_map(|c| c.downcast_ref::<ampoule_verify::Error>())
+        .any(|e| {
+            e.kind() == ampoule_verify::ErrorKind::Signature
+                && e.to_string().contains("not trusted here")
+        });
+    if !refused_signature || trusted.is_empty() {
+        return err;
+    }
+    Failure::wrap(
+        Kind::Verify(ampoule_verify::ErrorKind::Signature),
+        anyhow::anyhow!("{err:#}; trusted here: {trusted}"),
+    )
 }
 
 /// Loads a `--trust-set` file the way a device loads the set shipped with its app: signed by
 /// a threshold of its own keys and not expired.
 pub fn load_trust_set(path: &Path) -> Result<TrustSet> {
-    let bytes = external::read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+    let (bytes, _) = read_trust_set_file(path)?;
     TrustSet::verify_initial(&bytes, Timestamp::now())
         .with_context(|| format!("trust set {} refused", path.display()))
+}
+
+/// Reads and parses a trust-set file named on the command line, without checking its
+/// signatures or expiry. A file that cannot be read or parsed is the user's mistake (exit
+/// 2); a parsed set that then fails its checks is a refusal (exit 1), left to the caller.
+pub fn read_trust_set_file(path: &Path) -> Result<(Vec<u8>, TrustSetFile)> {
+    let bytes = external::read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+    match TrustSetFile::from_json(&bytes) {
+        Ok(file) => Ok((bytes, file)),
+        Err(e) => Err(Failure::wrap(
+            Kind::TrustSetFile,
+            anyhow::Error::new(e).context(format!(
+                "{} is not a valid trust-set file (give a file made by 'ampoule trust init', \
+                 'add' or 'remove')",
+                path.display()
+            )),
+        )),
+    }
 }
 
 /// Where the passphrase of an encrypted key comes from: `--passphrase-env`, else the terminal.
@@ -60,6 +110,12 @@ pub fn parse_version(text: &str, flag: &str) -> Result<Version> {
             "{flag} '{text}' is not a Semantic Versioning 2.0.0 version such as 1.2.0 or 2.0.0-rc.1"
         )
     })
+}
+
+/// Checks a channel name given on the command line: a bad one is a usage error (exit 2), not
+/// the refusal the same check means for a channel named in a feed.
+pub fn check_channel_arg(channel: &str) -> Result<()> {
+    ampoule_verify::feed::check_channel(channel).map_err(usage)
 }
 
 /// The path shown for a file in messages.

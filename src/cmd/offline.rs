@@ -29,7 +29,7 @@ use crate::output::Output;
 use crate::release::atomic::{Placement, place, temp_beside};
 
 pub fn run(args: OfflineArgs, out: &Output) -> Result<()> {
-    ampoule_verify::feed::check_channel(&args.channel)?;
+    crate::cmd::check_channel_arg(&args.channel)?;
     let contents = Contents::gather(&args.tree, &args.channel)?;
     if fs::symlink_metadata(&args.out).is_ok() {
         bail!(

@@ -13,6 +13,7 @@ use serde_json::json;
 
 use crate::cli::PackArgs;
 use crate::cmd::{parse_version, passphrase_source};
+use crate::failure::{count, usage};
 use crate::output::Output;
 use crate::release::keyfile;
 use crate::release::pack::{PackSpec, pack};
@@ -34,7 +35,7 @@ pub fn creation_time(flag: Option<&str>) -> Result<Timestamp> {
             .and_then(Timestamp::from_unix)
             .with_context(|| format!("{source} '{text}' is not a Unix time up to year 9999"));
     }
-    text.parse::<Timestamp>().with_context(|| {
+    text.parse::<Timestamp>().map_err(usage).with_context(|| {
         format!("{source} '{text}' is not Unix seconds or a UTC time like 2026-12-01T08:00:00Z")
     })
 }
@@ -105,7 +106,7 @@ fn check_labels_fit(
 }
 
 pub fn run(args: PackArgs, out: &Output) -> Result<()> {
-    check_name(&args.name)?;
+    check_name(&args.name).map_err(usage)?;
     let version = parse_version(&args.version, "--version")?;
     let requires_app = VersionReq::parse(&args.requires_app).with_context(|| {
         format!(
@@ -149,17 +150,20 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     bar.finish_and_clear();
     let m = &packed.manifest;
     let mut human = format!(
-        "packed {} {} -> {} ({} bytes; model {} bytes, {} labels, payload {} bytes)\n",
+        "packed {} {} -> {} ({} bytes; model {} bytes, {}, payload {} bytes)\n",
         m.name,
         m.version,
         args.out.display(),
         packed.bundle_len,
         m.model().size,
-        m.label_count,
+        count(m.label_count, "label", "labels"),
         m.payload.size
     );
     match packed.signers.first() {
-        Some(id) => human.push_str(&format!("signed by key {id}\n")),
+        Some(id) => {
+            let file = args.key.as_deref().map(|k| format!(" ({})", k.display()));
+            human.push_str(&format!("signed by key {id}{}\n", file.unwrap_or_default()));
+        }
         None => human.push_str(
             "UNSIGNED: no --key was given, so every device will refuse this bundle until it is signed with 'ampoule sign'\n",
         ),

@@ -4,17 +4,15 @@
 
 use std::path::Path;
 
-use ampoule_verify::format::trust_set;
-use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustedKeys};
+use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustSet, TrustedKeys, Verifier};
 use anyhow::{Context, Result};
 use serde_json::{Value, json};
 
 use crate::cli::PublishArgs;
-use crate::cmd::external::read_bounded;
-use crate::cmd::{load_trust, passphrase_source};
+use crate::cmd::{load_trust_named, name_trusted, passphrase_source};
 use crate::output::Output;
 use crate::release::keyfile;
-use crate::release::tree::{Change, Signing, Tree, parse_duration};
+use crate::release::tree::{Change, Signing, Tree, check_bundle, parse_duration};
 
 pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
@@ -24,7 +22,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let (Some(bundle), Some(channel)) = (&args.bundle, &args.channel) else {
         anyhow::bail!("publish needs a bundle and --channel, or --trust-set FILE");
     };
-    ampoule_verify::feed::check_channel(channel)?;
+    crate::cmd::check_channel_arg(channel)?;
     if args.rollout > 100 {
         anyhow::bail!(
             "--rollout {} is not a percentage from 0 to 100",
@@ -34,33 +32,66 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     let now = Timestamp::now();
-    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     // Publishing checks the bundle the way devices will: with --trust against those keys;
     // else against the tree's trust set (its bundle keys and threshold); else the feed key
     // must have signed the bundle too.
-    let verifier = if !args.trust.is_empty() {
-        ampoule_verify::dangerous::verifier_without_app_version(load_trust(&args.trust)?)?
-    } else if let Some(current) = tree.current_trust_set()? {
-        let trust = current.verified(now)?;
-        let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
-        ampoule_verify::dangerous::verifier_without_app_version(keys)?.with_threshold(threshold)?
-    } else {
-        ampoule_verify::dangerous::verifier_without_app_version(
-            [PublicKey::from_verifying_key(&key.verifying_key())?]
-                .into_iter()
-                .collect::<TrustedKeys>(),
-        )?
+    let (trust, trust_names) = load_trust_named(&args.trust)?;
+    let feed_key = PublicKey::from_verifying_key(&key.verifying_key())?;
+    let verifier = |tree: Option<&Tree>| -> Result<(Verifier, String)> {
+        let current = match tree {
+            Some(tree) => tree.current_trust_set()?,
+            None => None,
+        };
+        Ok(if !args.trust.is_empty() {
+            (
+                ampoule_verify::dangerous::verifier_without_app_version(trust.clone())?,
+                trust_names.clone(),
+            )
+        } else if let Some(current) = current {
+            let trust = current.verified(now)?;
+            let (keys, threshold) = trust.keys_for(DocumentKind::Bundle);
+            // The trust set's keys have no files here; its ids are in the refusal already.
+            (
+                ampoule_verify::dangerous::verifier_without_app_version(keys)?
+                    .with_threshold(threshold)?,
+                String::new(),
+            )
+        } else {
+            (
+                ampoule_verify::dangerous::verifier_without_app_version(
+                    [feed_key.clone()].into_iter().collect::<TrustedKeys>(),
+                )?,
+                format!(
+                    "only the feed key {} ({}), since neither --trust nor a trust set in the \
+                     tree names the bundle keys",
+                    feed_key.id(),
+                    args.key.display()
+                ),
+            )
+        })
     };
-    let staged = tree.stage_bundle_with(bundle, verifier)?;
+    if !args.tree.exists() {
+        // Locking makes the tree's directories, so a refused bundle would leave an empty
+        // tree behind. A new tree has no trust set and no history, so these checks are the
+        // only ones that can refuse: run them first. The copy is checked again once staged.
+        let (check, trusted) = verifier(None)?;
+        check_bundle(bundle, &check).map_err(|e| name_trusted(e, &trusted))?;
+    }
+    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
+    let (check, trusted) = verifier(Some(&tree))?;
+    let staged = tree
+        .stage_bundle_with(bundle, check)
+        .map_err(|e| name_trusted(e, &trusted))?;
     let signing = Signing {
         key: &key,
+        key_file: Some(&args.key),
         now,
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
     };
     let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
     drop(tree);
-    report(&change, out)
+    report(&change, &args.key, out)
 }
 
 /// Publishes a trust set into the tree and signs every channel's feed again to name it.
@@ -70,12 +101,22 @@ fn publish_trust_set(
     expires_in_secs: u64,
     out: &Output,
 ) -> Result<()> {
-    let bytes = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+    let (bytes, _) = crate::cmd::read_trust_set_file(path)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
+    if !args.tree.exists() {
+        // As for a bundle: a set the new tree would refuse must not leave an empty tree.
+        TrustSet::verify_initial(&bytes, Timestamp::now()).with_context(|| {
+            format!(
+                "trust set {} refused; nothing was published",
+                path.display()
+            )
+        })?;
+    }
     let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     let signing = Signing {
         key: &key,
+        key_file: Some(&args.key),
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
@@ -102,11 +143,12 @@ fn publish_trust_set(
     );
     for c in &change.feeds {
         human.push_str(&format!(
-            "feed {} sequence {} renewed, expires {}, signed by {}\n",
+            "feed {} sequence {} renewed, expires {}, signed by key {} ({})\n",
             c.feed_path.display(),
             c.feed.sequence,
             c.feed.expires,
-            c.signer
+            c.signer,
+            args.key.display()
         ));
     }
     if change.feeds.is_empty() {
@@ -147,7 +189,7 @@ pub fn read_tree_head_keys(
 }
 
 /// Prints what a publish or withdraw changed.
-pub fn report(change: &Change, out: &Output) -> Result<()> {
+pub fn report(change: &Change, key_file: &Path, out: &Output) -> Result<()> {
     let feed = &change.feed;
     let release = |r: &ampoule_verify::feed::Release| -> Value {
         json!({
@@ -179,12 +221,14 @@ pub fn report(change: &Change, out: &Output) -> Result<()> {
         })
     });
     let mut human = format!(
-        "channel {} now offers {now}\nwas: {was}\nfeed {} sequence {}, expires {}, signed by {}\n",
+        "channel {} now offers {now}\nwas: {was}\nfeed {} sequence {}, expires {}, signed by key {} \
+         ({})\n",
         change.channel,
         change.feed_path.display(),
         feed.sequence,
         feed.expires,
-        change.signer
+        change.signer,
+        key_file.display()
     );
     if let Some(l) = &feed.ledger {
         let head = l.tree_head.head();

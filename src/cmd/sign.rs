@@ -11,12 +11,13 @@ use anyhow::{Context, Result, bail};
 use serde_json::json;
 
 use crate::cli::SignArgs;
-use crate::cmd::external::{ToSign, signature, write_file};
+use crate::cmd::external::{ToSign, key_named, signature, write_file};
+use crate::failure::{bundle_error, count};
 use crate::output::Output;
 use crate::release::pack::rewrite_signatures;
 
 pub fn run(args: SignArgs, out: &Output) -> Result<()> {
-    let mut bundle = Unverified::open(&args.bundle)?;
+    let mut bundle = Unverified::open(&args.bundle).map_err(|e| bundle_error(&args.bundle, e))?;
     let manifest = bundle.manifest.clone();
     let layout = bundle.layout.clone();
     let mut signatures = bundle.signatures.clone();
@@ -86,16 +87,16 @@ pub fn run(args: SignArgs, out: &Output) -> Result<()> {
         .collect();
     let human = if changed {
         format!(
-            "signed {summary} in {} with key {}; it now carries {} signature(s)",
+            "signed {summary} in {} with key {}; it now carries {}",
             args.bundle.display(),
-            public.id(),
-            signers.len()
+            key_named(&args.signer, &public),
+            count(signers.len(), "signature", "signatures")
         )
     } else {
         format!(
             "{} is already signed by key {}; nothing changed",
             args.bundle.display(),
-            public.id()
+            key_named(&args.signer, &public)
         )
     };
     out.result(

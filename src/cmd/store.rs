@@ -1,15 +1,14 @@
 //! `ampoule store`: look into an on-device store, roll it back, clean it up; the library's
 //! `Store` from the command line, for scripts and tests on the device side.
 
-use ampoule_verify::format::trust_set;
-use ampoule_verify::store::Release;
+use ampoule_verify::store::{RELEASES_DIR, Release, STATE_FILE};
 use ampoule_verify::{Store, Timestamp, Verifier};
-use anyhow::{Context, Result};
+use anyhow::{Context, Result, anyhow};
 use serde_json::{Value, json};
 
 use crate::cli::{StoreArgs, StoreCommand, StoreOptions};
-use crate::cmd::external::read_bounded;
-use crate::cmd::{load_trust, parse_version};
+use crate::cmd::{load_trust, parse_version, read_trust_set_file};
+use crate::failure::{count, usage};
 use crate::output::Output;
 
 pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
@@ -21,19 +20,36 @@ pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
 }
 
 /// Opens the store with the app's verifier: its trusted keys (or the newest trust set the
-/// store accepted, starting from the one given) and its version.
-fn open(o: &StoreOptions) -> Result<Store> {
+/// store accepted, starting from the one given) and its version. Returns the version of the
+/// trust set in use, if any.
+fn open(o: &StoreOptions) -> Result<(Store, Option<u64>)> {
+    // The library makes a store where there is none (an app's first start); a command that
+    // only looks at one, rolls it back or cleans it up must not leave an empty one behind a
+    // mistyped path.
+    // A store that lost its state but kept releases is damaged, not absent: the library
+    // says so.
+    if !o.store.join(STATE_FILE).exists() && !o.store.join(RELEASES_DIR).exists() {
+        return Err(usage(anyhow!(
+            "{} is not a store (it has no {STATE_FILE}); give the directory an app keeps its \
+             models in, or make one with 'ampoule update --store {}'",
+            o.store.display(),
+            o.store.display()
+        )));
+    }
     let app_version = parse_version(&o.app_version, "--app-version")?;
-    let verifier = match &o.trust_set {
+    let (verifier, trust_set) = match &o.trust_set {
         Some(path) => {
-            let initial = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+            let (initial, _) = read_trust_set_file(path)?;
             let trust = Store::load_trust_set(&o.store, &initial, Timestamp::now())
                 .with_context(|| format!("trust set {} refused", path.display()))?;
-            Verifier::from_trust_set(&trust, app_version)?
+            (
+                Verifier::from_trust_set(&trust, app_version)?,
+                Some(trust.version()),
+            )
         }
-        None => Verifier::new(load_trust(&o.trust)?, app_version)?,
+        None => (Verifier::new(load_trust(&o.trust)?, app_version)?, None),
     };
-    Ok(Store::open(&o.store, verifier)?)
+    Ok((Store::open(&o.store, verifier)?, trust_set))
 }
 
 fn release_json(r: &Release) -> Value {
@@ -49,16 +65,16 @@ fn release_json(r: &Release) -> Value {
 }
 
 fn status(o: &StoreOptions, out: &Output) -> Result<()> {
-    let store = open(o)?;
+    let (store, trust_set) = open(o)?;
     // The full check an app makes before it loads the model: digests and signatures.
     let current = store.open_current()?;
     let state = store.state()?;
     let mut human = match &current {
         Some(r) => format!(
-            "current  {} {} ({} labels; model {}) checked: digests and signatures match\n",
+            "current  {} {} ({}; model {}) checked: digests and signatures match\n",
             r.manifest.name,
             r.manifest.version,
-            r.labels.len(),
+            count(r.labels.len(), "label", "labels"),
             r.model.display()
         ),
         None => "current  nothing installed\n".to_string(),
@@ -75,6 +91,13 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
             or_none(c.highest_sequence.map(|s| s.to_string()))
         ));
     }
+    human.push_str(&match trust_set {
+        Some(version) => format!(
+            "trust    trust set version {version} (the newer of --trust-set and the one the store \
+             accepted)\n"
+        ),
+        None => "trust    no trust set: the keys given with --trust\n".to_string(),
+    });
     if let Some(head) = &state.tree_head {
         human.push_str(&format!(
             "ledger   largest tree head seen: size {}, root {}\n",
@@ -92,12 +115,13 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
                 (name.clone(), json!({ "highest_sequence": c.highest_sequence }))
             }).collect::<serde_json::Map<_, _>>(),
             "tree_head_size": state.tree_head.as_ref().map(|h| h.tree_size),
+            "trust_set_version": trust_set,
         }),
     )
 }
 
 fn rollback(o: &StoreOptions, out: &Output) -> Result<()> {
-    let store = open(o)?;
+    let (store, _) = open(o)?;
     let from = store.state()?.current.map(|c| c.version.to_string());
     let back = store.rollback()?;
     let human = format!(
@@ -114,7 +138,7 @@ fn rollback(o: &StoreOptions, out: &Output) -> Result<()> {
 }
 
 fn gc(o: &StoreOptions, out: &Output) -> Result<()> {
-    let store = open(o)?;
+    let (store, _) = open(o)?;
     let removed = store.gc()?;
     let human = if removed.is_empty() {
         "nothing to remove: the store holds only its current and previous releases".to_string()

@@ -16,8 +16,10 @@ use crate::cli::{
     TrustAddArgs, TrustArgs, TrustCommand, TrustEditArgs, TrustInitArgs, TrustRemoveArgs,
     TrustShowArgs, TrustSignArgs,
 };
-use crate::cmd::external::{ToSign, read_bounded, signature, write_file};
-use crate::output::Output;
+use crate::cmd::external::{ToSign, key_named, signature, write_file};
+use crate::cmd::{load_trust_set, read_trust_set_file};
+use crate::failure::{Failure, Kind, count, usage};
+use crate::output::{Output, failed_report};
 use crate::release::keyfile;
 
 /// How long a new trust set lasts unless told otherwise: a year, long enough that devices
@@ -34,13 +36,8 @@ pub fn run(args: TrustArgs, out: &Output) -> Result<()> {
     }
 }
 
-fn read_bytes(path: &Path) -> Result<Vec<u8>> {
-    read_bounded(path, spec::MAX_BYTES, "a trust-set file")
-}
-
 fn read_file(path: &Path) -> Result<TrustSetFile> {
-    TrustSetFile::from_json(&read_bytes(path)?)
-        .with_context(|| format!("{} is not a valid trust-set file", path.display()))
+    Ok(read_trust_set_file(path)?.1)
 }
 
 fn parse_roles(list: &[String]) -> Result<Vec<DocumentKind>> {
@@ -48,7 +45,7 @@ fn parse_roles(list: &[String]) -> Result<Vec<DocumentKind>> {
         return Ok(DocumentKind::ALL.to_vec());
     }
     list.iter()
-        .map(|r| r.trim().parse::<DocumentKind>().map_err(Into::into))
+        .map(|r| r.trim().parse::<DocumentKind>().map_err(usage))
         .collect()
 }
 
@@ -99,7 +96,8 @@ fn expiry(edit: &TrustEditArgs, default: Timestamp, now: Timestamp) -> Result<Ti
             .ok_or_else(|| anyhow!("--expires-in '{text}' reaches past the year 9999"))?
     } else if let Some(text) = &edit.expires {
         text.parse::<Timestamp>()
-            .with_context(|| format!("--expires '{text}' refused"))?
+            .map_err(usage)
+            .with_context(|| format!("--expires '{text}' is not a UTC time"))?
     } else {
         default
     };
@@ -140,16 +138,16 @@ fn write_new_version(
     write_file(&edit.out, &file.to_json(), false)?;
     let b = file.body();
     let mut human = format!(
-        "wrote trust set version {} to {} (unsigned): {} key(s), thresholds {}, expires {}\n",
+        "wrote trust set version {} to {} (unsigned): {}, thresholds {}, expires {}\n",
         b.version,
         edit.out.display(),
-        b.keys.len(),
+        count(b.keys.len(), "key", "keys"),
         thresholds_text(&b.thresholds),
         b.expires
     );
     human.push_str(&format!(
-        "it needs {} signature(s) by its own trust_set keys",
-        b.thresholds.trust_set
+        "it needs {} by its own trust_set keys",
+        count(b.thresholds.trust_set, "signature", "signatures")
     ));
     if let Some(prev) = previous {
         human.push_str(&format!(
@@ -212,7 +210,7 @@ fn remove(args: TrustRemoveArgs, out: &Output) -> Result<()> {
     let current = read_file(&args.trust_set)?;
     let mut ids = Vec::new();
     for text in &args.key_ids {
-        ids.push(text.parse::<KeyId>()?);
+        ids.push(text.parse::<KeyId>().map_err(usage)?);
     }
     for path in &args.keys {
         ids.push(keyfile::read_public_key(path)?.id());
@@ -269,14 +267,9 @@ fn keys_json(body: &TrustSetBody) -> Value {
 
 fn show(args: TrustShowArgs, out: &Output) -> Result<()> {
     let now = Timestamp::now();
-    let bytes = read_bytes(&args.trust_set)?;
-    let file = TrustSetFile::from_json(&bytes)
-        .with_context(|| format!("{} is not a valid trust-set file", args.trust_set.display()))?;
+    let (bytes, file) = read_trust_set_file(&args.trust_set)?;
     let trusted = match &args.trusted {
-        Some(path) => Some(
-            TrustSet::verify_initial(&read_bytes(path)?, now)
-                .with_context(|| format!("trust set {} refused", path.display()))?,
-        ),
+        Some(path) => Some(load_trust_set(path)?),
         None => None,
     };
     // Check every signature against every key either set lists, so each can be labelled.
@@ -338,7 +331,8 @@ fn show(args: TrustShowArgs, out: &Output) -> Result<()> {
         human.push_str(&format!("  {}  {}\n", s.key_id, status(&s.key_id)));
     }
     human.push_str(&format!(
-        "own trust_set keys: {own_valid} of {own_needed} needed signature(s){}\n",
+        "own trust_set keys: {own_valid} of {}{}\n",
+        count(own_needed, "needed signature", "needed signatures"),
         if own_valid >= own_needed {
             ""
         } else {
@@ -359,9 +353,16 @@ fn show(args: TrustShowArgs, out: &Output) -> Result<()> {
             verdict(result)
         ));
     }
-    out.result(
-        &human,
-        json!({
+    // Printing "refused" is a refusal: the report is the output, and the exit code and the
+    // JSON's error fields say so too, as scripts that gate a release on it expect.
+    let refusal = match (&as_initial, &as_successor) {
+        (Err(e), _) => Some((e, "as a device's initial trust set".to_string())),
+        (Ok(()), Some((version, Err(e)))) => {
+            Some((e, format!("as successor of trusted version {version}")))
+        }
+        _ => None,
+    };
+    let doc = json!({
             "ok": true,
             "file": args.trust_set,
             "format": b.format,
@@ -385,8 +386,14 @@ fn show(args: TrustShowArgs, out: &Output) -> Result<()> {
                 "accepted": r.is_ok(),
                 "error": r.as_ref().err().map(|e| e.to_string()),
             })),
-        }),
-    )
+    });
+    let Some((e, role)) = refusal else {
+        return out.result(&human, doc);
+    };
+    let kind = Kind::Verify(e.kind());
+    let message = format!("trust set {} refused {role}: {e}", args.trust_set.display());
+    out.result(&human, failed_report(doc, &message, kind))?;
+    Err(Failure::reported(kind, message))
 }
 
 fn sign(args: TrustSignArgs, out: &Output) -> Result<()> {
@@ -427,27 +434,30 @@ fn sign(args: TrustSignArgs, out: &Output) -> Result<()> {
         out.note(&format!(
             "key {} is not listed in trust set version {}; its signature counts only for \
              devices whose current trust set lists it (as when it signs its own successor)",
-            public.id(),
+            key_named(&args.signer, &public),
             file.version()
         ));
     }
     let own_keys = file.keys_for(DocumentKind::TrustSet);
     let own_valid = file.tally(&own_keys).valid.len();
     let own_needed = file.threshold(DocumentKind::TrustSet);
-    let tally = format!("its own trust_set keys: {own_valid} of {own_needed} needed signature(s)");
+    let tally = format!(
+        "its own trust_set keys: {own_valid} of {}",
+        count(own_needed, "needed signature", "needed signatures")
+    );
     let human = if changed {
         format!(
             "signed trust set version {} in {} with key {}; {tally}",
             file.version(),
             args.trust_set.display(),
-            public.id()
+            key_named(&args.signer, &public)
         )
     } else {
         format!(
             "trust set version {} in {} is already signed by key {}; nothing changed; {tally}",
             file.version(),
             args.trust_set.display(),
-            public.id()
+            key_named(&args.signer, &public)
         )
     };
     out.result(

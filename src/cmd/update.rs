@@ -6,7 +6,6 @@
 use std::sync::Arc;
 
 use ampoule_verify::fetch::Transfer;
-use ampoule_verify::format::trust_set;
 use ampoule_verify::signed::Signers;
 use ampoule_verify::{
     App, Device, Outcome, Progress, Report, Stage, Store, Timestamp, Trust, dangerous,
@@ -15,8 +14,8 @@ use anyhow::{Context, Result, bail};
 use serde_json::{Value, json};
 
 use crate::cli::UpdateArgs;
-use crate::cmd::external::read_bounded;
 use crate::cmd::{load_trust, parse_version};
+use crate::failure::count;
 use crate::output::Output;
 
 pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
@@ -27,13 +26,13 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
         (None, None, Some(file)) => ampoule_verify::update::offline_channel(file)?,
         (None, None, None) => bail!("give --feed URL, or --offline FILE"),
     };
-    ampoule_verify::feed::check_channel(&channel)?;
+    crate::cmd::check_channel_arg(&channel)?;
     let now = Timestamp::now();
     let trust = match &args.trust_set {
         Some(path) => {
             // As an app starts: the set it shipped with, or the newer one its store accepted
             // through a feed since.
-            let initial = read_bounded(path, trust_set::MAX_BYTES, "a trust-set file")?;
+            let (initial, _) = crate::cmd::read_trust_set_file(path)?;
             let refused = || format!("trust set {} refused", path.display());
             let trust = Trust::shipped_trust_set(initial.clone()).with_context(refused)?;
             Store::load_trust_set(&args.store, &initial, now).with_context(refused)?;
@@ -141,8 +140,8 @@ fn show(
                 None => format!("installed {} {}", m.name, m.version),
             };
             format!(
-                "{what} from channel {channel} (feed sequence {sequence}): {} labels, model at {}",
-                installed.release.labels.len(),
+                "{what} from channel {channel} (feed sequence {sequence}): {}, model at {}",
+                count(installed.release.labels.len(), "label", "labels"),
                 installed.release.model.display()
             )
         }

@@ -7,14 +7,21 @@ use anyhow::Result;
 use serde_json::json;
 
 use crate::cli::VerifyArgs;
-use crate::cmd::{load_trust, load_trust_set, parse_version};
+use crate::cmd::{load_trust_named, load_trust_set, name_trusted, parse_version};
+use crate::failure::{bundle_error, count};
 use crate::output::Output;
 
 pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
     // With a trust set, its bundle keys and bundle threshold; with --trust, any one key.
-    let (keys, threshold) = match &args.trust_set {
-        Some(path) => load_trust_set(path)?.keys_for(DocumentKind::Bundle),
-        None => (load_trust(&args.trust)?, 1),
+    let (keys, threshold, trusted) = match &args.trust_set {
+        Some(path) => {
+            let (keys, threshold) = load_trust_set(path)?.keys_for(DocumentKind::Bundle);
+            (keys, threshold, String::new())
+        }
+        None => {
+            let (keys, trusted) = load_trust_named(&args.trust)?;
+            (keys, 1, trusted)
+        }
     };
     let mut verifier = match &args.app_version {
         Some(v) => Verifier::new(keys, parse_version(v, "--app-version")?)?,
@@ -35,25 +42,28 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
         .max_bundle_bytes(max_bundle)
         .max_unpacked_bytes(max_unpacked)
         .on_progress(out.verify_progress());
-    let mut verified = verifier.verify_path(&args.bundle)?;
+    let not_a_bundle = |e| bundle_error(&args.bundle, e);
+    let mut verified = verifier
+        .verify_path(&args.bundle)
+        .map_err(|e| name_trusted(not_a_bundle(e), &trusted))?;
     let manifest = verified.manifest().clone();
     let signers: Vec<String> = verified.signers().iter().map(|k| k.to_string()).collect();
     let report = verified.signature_report().clone();
     let (labels, extracted) = match &args.extract {
         Some(dir) => {
-            let unpacked = verified.unpack(dir)?;
+            let unpacked = verified.unpack(dir).map_err(not_a_bundle)?;
             (unpacked.labels, Some(unpacked.dir))
         }
-        None => (verified.check_contents()?, None),
+        None => (verified.check_contents().map_err(not_a_bundle)?, None),
     };
     let mut human = format!(
-        "OK {} {}: signed by {} ({} needed); payload and {} files match their digests; {} labels\n",
+        "OK {} {}: signed by {} ({} needed); payload and {} match their digests; {}\n",
         manifest.name,
         manifest.version,
         signers.join(", "),
         threshold,
-        manifest.files.len(),
-        labels.len()
+        count(manifest.files.len(), "file", "files"),
+        count(labels.len(), "label", "labels")
     );
     match &args.app_version {
         Some(v) => human.push_str(&format!("app {v} is within {}\n", manifest.requires_app)),

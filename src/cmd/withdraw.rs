@@ -13,7 +13,7 @@ use crate::release::tree::{FEEDS_DIR, Signing, Tree, parse_duration};
 
 pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
-    ampoule_verify::feed::check_channel(&args.channel)?;
+    crate::cmd::check_channel_arg(&args.channel)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     if !args.tree.join(FEEDS_DIR).is_dir() {
@@ -25,11 +25,12 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
     let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
     let signing = Signing {
         key: &key,
+        key_file: Some(&args.key),
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
     };
     let change = tree.withdraw(&args.channel, &signing)?;
     drop(tree);
-    report(&change, out)
+    report(&change, &args.key, out)
 }

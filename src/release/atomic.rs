@@ -31,9 +31,25 @@ fn dir_of(path: &Path) -> &Path {
     }
 }
 
+/// Refuses to write `path` into a directory that does not exist, naming that directory:
+/// the temporary file's own error would name a file the user never saw.
+pub fn check_dir_of(path: &Path) -> Result<()> {
+    let dir = dir_of(path);
+    if !dir.is_dir() {
+        anyhow::bail!(
+            "cannot write {}: directory {} does not exist; create it first or choose another \
+             path",
+            path.display(),
+            dir.display()
+        );
+    }
+    Ok(())
+}
+
 /// The temporary file for `path`: in the same directory, so the final rename is atomic.
 pub fn temp_beside(path: &Path) -> Result<NamedTempFile> {
     let dir = dir_of(path);
+    check_dir_of(path)?;
     tempfile::Builder::new()
         .prefix(TEMP_PREFIX)
         .tempfile_in(dir)

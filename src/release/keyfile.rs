@@ -16,13 +16,16 @@ use std::path::{Path, PathBuf};
 
 use ampoule_verify::PublicKey;
 use anyhow::{Context, Result, anyhow, bail};
-use ed25519_dalek::SigningKey;
+use ed25519_dalek::pkcs8::DecodePublicKey;
 use ed25519_dalek::pkcs8::{EncodePrivateKey, KeypairBytes};
+use ed25519_dalek::{SigningKey, VerifyingKey};
 use pkcs8::der::pem::LineEnding;
 use pkcs8::der::{Decode, SecretDocument};
 use pkcs8::pkcs5::{self, pbes2, scrypt};
 use pkcs8::{EncryptedPrivateKeyInfoRef, ObjectIdentifier, PrivateKeyInfoRef};
 use zeroize::Zeroizing;
+
+use crate::failure::{Failure, Kind};
 
 /// PEM label of a plain PKCS#8 private key (RFC 7468 section 10).
 const PRIVATE_KEY_LABEL: &str = "PRIVATE KEY";
@@ -115,7 +118,33 @@ fn write_secret_key_in(
 /// Reads an Ed25519 secret key from a PKCS#8 PEM file (plain or encrypted), refusing a file
 /// that group or others can read. The passphrase source is used only if the file is encrypted.
 pub fn read_secret_key(path: &Path, passphrase: &PassphraseSource) -> Result<SigningKey> {
-    read_secret_key_in(path, passphrase, &Inputs::PROCESS)
+    read_secret_key_in(path, passphrase, &Inputs::PROCESS).map_err(key_file_error)
+}
+
+/// A key file that was read but is not a usable key is a usage error of its own kind (exit
+/// 2); one that could not be read at all stays an I/O error.
+fn key_file_error(err: anyhow::Error) -> anyhow::Error {
+    if err
+        .chain()
+        .any(|c| c.is::<io::Error>() || c.is::<Failure>())
+    {
+        err
+    } else {
+        Failure::wrap(Kind::KeyFile, err)
+    }
+}
+
+/// The message for a public key given where a secret key belongs, naming its id so the
+/// user can tell which pair it is from.
+fn public_key_given(path: &Path, text: &str) -> anyhow::Error {
+    let id = PublicKey::from_pem(text)
+        .map(|k| format!(" (key id {})", k.id()))
+        .unwrap_or_default();
+    anyhow!(
+        "{} holds a public key{id}, not a secret key; give the secret key file of the pair \
+         (the one 'ampoule keygen --secret' wrote)",
+        path.display()
+    )
 }
 
 fn read_secret_key_in(
@@ -149,16 +178,61 @@ fn read_secret_key_in(
         ENCRYPTED_PRIVATE_KEY_LABEL => {
             decrypt_secret_key(document()?.as_bytes(), passphrase, path, inputs)
         }
-        PUBLIC_KEY_LABEL => bail!(
-            "{} holds a public key, not a secret key; give the secret key file",
-            path.display()
-        ),
+        PUBLIC_KEY_LABEL => Err(public_key_given(path, text)),
         other => bail!(
             "{} holds a '{}' block, not an Ed25519 secret key ('-----BEGIN {PRIVATE_KEY_LABEL}-----')",
             path.display(),
             other.escape_debug()
         ),
     }
+}
+
+/// What a key file holds, as `ampoule key-id` names it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum KeyFileKind {
+    /// A SubjectPublicKeyInfo public key.
+    Public,
+    /// A plain PKCS#8 secret key.
+    Secret,
+    /// A passphrase-encrypted PKCS#8 secret key.
+    EncryptedSecret,
+}
+
+/// The public key of any key file: read as it is for a public key, derived from the secret
+/// key (after its passphrase, and with the same permission checks) for a secret one.
+pub fn read_any_key(
+    path: &Path,
+    passphrase: &PassphraseSource,
+) -> Result<(KeyFileKind, PublicKey)> {
+    // Only the label is looked at here; a secret key is then read the one careful way.
+    let label = {
+        let bytes = read_key_file(path, false).map_err(key_file_error)?;
+        let text = std::str::from_utf8(&bytes).unwrap_or_default().trim();
+        pkcs8::der::pem::decode_label(text.as_bytes())
+            .unwrap_or_default()
+            .to_string()
+    };
+    let kind = match label.as_str() {
+        PUBLIC_KEY_LABEL => return Ok((KeyFileKind::Public, read_public_key(path)?)),
+        ENCRYPTED_PRIVATE_KEY_LABEL => KeyFileKind::EncryptedSecret,
+        PRIVATE_KEY_LABEL => KeyFileKind::Secret,
+        "" => {
+            return Err(key_file_error(anyhow!(
+                "{} is not a PEM key file; give a public or secret key file",
+                path.display()
+            )));
+        }
+        other => {
+            return Err(key_file_error(anyhow!(
+                "{} holds a '{}' block, not an Ed25519 key; give a public or secret key file",
+                path.display(),
+                other.escape_debug()
+            )));
+        }
+    };
+    let key = read_secret_key(path, passphrase)?;
+    let public = PublicKey::from_verifying_key(&key.verifying_key())?;
+    Ok((kind, public))
 }
 
 /// Writes `key` as SubjectPublicKeyInfo PEM to a new file at `path` (mode 0644), never
@@ -170,6 +244,10 @@ pub fn write_public_key(path: &Path, key: &PublicKey) -> Result<()> {
 
 /// Reads an Ed25519 public key from SubjectPublicKeyInfo PEM, refusing weak keys.
 pub fn read_public_key(path: &Path) -> Result<PublicKey> {
+    read_public_key_in(path).map_err(key_file_error)
+}
+
+fn read_public_key_in(path: &Path) -> Result<PublicKey> {
     let bytes = read_key_file(path, false)?;
     let text = std::str::from_utf8(&bytes)
         .map_err(|_| anyhow!("{} is not a PEM text file", path.display()))?;
@@ -181,7 +259,17 @@ pub fn read_public_key(path: &Path) -> Result<PublicKey> {
             path.display()
         );
     }
-    PublicKey::from_pem(text).with_context(|| format!("cannot read public key {}", path.display()))
+    PublicKey::from_pem(text).map_err(|e| {
+        let err =
+            anyhow::Error::new(e).context(format!("cannot read public key {}", path.display()));
+        // A file that decodes as an Ed25519 public key but that the verifier refuses (a weak,
+        // small-order key) parsed fine: that is a refusal of the key, not a broken file.
+        if VerifyingKey::from_public_key_pem(text.trim()).is_ok() {
+            Failure::wrap(Kind::Verify(ampoule_verify::ErrorKind::Key), err)
+        } else {
+            err
+        }
+    })
 }
 
 fn plain_pem(key: &SigningKey) -> Result<Zeroizing<String>> {
@@ -481,6 +569,7 @@ fn write_new_file(dest: &Path, contents: &[u8], mode: u32) -> Result<()> {
         Some(parent) if !parent.as_os_str().is_empty() => parent.to_path_buf(),
         _ => PathBuf::from("."),
     };
+    crate::release::atomic::check_dir_of(dest)?;
     let context = || format!("cannot write {}", dest.display());
     // The temporary file is created 0600, so secret bytes are never readable by others even
     // for a moment; it is removed when `tmp` is dropped, on success and on every error path.
@@ -528,14 +617,6 @@ fn read_key_file(path: &Path, secret: bool) -> Result<Zeroizing<Vec<u8>>> {
         bail!("{} is not a regular file", path.display());
     }
     let mode = metadata.permissions().mode() & 0o777;
-    if secret && mode & 0o077 != 0 {
-        bail!(
-            "{} is accessible to group or others (mode {mode:04o}); run 'chmod 600 {}', \
-             and treat the key as exposed if other users could have read it",
-            path.display(),
-            path.display()
-        );
-    }
     // Allocated once at the cap, so no reallocation leaves copies of secret bytes behind.
     let mut bytes = Zeroizing::new(Vec::with_capacity(MAX_KEY_FILE_LEN as usize + 1));
     file.take(MAX_KEY_FILE_LEN + 1)
@@ -544,6 +625,21 @@ fn read_key_file(path: &Path, secret: bool) -> Result<Zeroizing<Vec<u8>>> {
     if bytes.len() as u64 > MAX_KEY_FILE_LEN {
         bail!(
             "{} is larger than {MAX_KEY_FILE_LEN} bytes, too large to be a key file",
+            path.display()
+        );
+    }
+    if secret && mode & 0o077 != 0 {
+        // A public key is meant to be readable by all: telling the user to chmod it and
+        // treat it as exposed would send them after the wrong file.
+        if let Ok(text) = std::str::from_utf8(&bytes)
+            && pkcs8::der::pem::decode_label(text.trim().as_bytes()) == Ok(PUBLIC_KEY_LABEL)
+        {
+            return Err(public_key_given(path, text.trim()));
+        }
+        bail!(
+            "{} is accessible to group or others (mode {mode:04o}); run 'chmod 600 {}', \
+             and treat the key as exposed if other users could have read it",
+            path.display(),
             path.display()
         );
     }
@@ -794,11 +890,12 @@ mod tests {
         let err = read_public_key(&path).expect_err("must refuse");
         assert_eq!(
             err.to_string(),
-            format!("cannot read public key {}", path.display())
-        );
-        assert!(
-            format!("{err:#}").contains("not an Ed25519 public key"),
-            "{err:#}"
+            format!(
+                "cannot read public key {}: PEM block 'CERTIFICATE' is not an Ed25519 public key; \
+                 expected a '-----BEGIN PUBLIC KEY-----' block as written by keygen or \
+                 'openssl pkey -pubout'",
+                path.display()
+            )
         );
     }
 
@@ -810,9 +907,22 @@ mod tests {
         assert_eq!(
             err.to_string(),
             format!(
-                "{} holds a public key, not a secret key; give the secret key file",
-                public.display()
+                "{} holds a public key (key id {}), not a secret key; give the secret key file \
+                 of the pair (the one 'ampoule keygen --secret' wrote)",
+                public.display(),
+                PublicKey::from_pem(RFC8410_PUBLIC)
+                    .expect("RFC 8410 key")
+                    .id()
             )
+        );
+        // Readable by all, as public keys are: still named as a public key, not as a secret
+        // key to chmod and treat as exposed.
+        fs::set_permissions(&public, fs::Permissions::from_mode(0o644)).expect("chmod");
+        let err = read_secret_key(&public, &PassphraseSource::None).expect_err("public key");
+        assert!(
+            err.to_string()
+                .starts_with(&format!("{} holds a public key (key id ", public.display())),
+            "{err}"
         );
         let secret = put(dir.path(), "secret.pem", RFC8410_PRIVATE, 0o600);
         let err = read_public_key(&secret).expect_err("secret key");

@@ -21,6 +21,7 @@ use ampoule_verify::{Digest, KeyId};
 use anyhow::{Context, Result};
 use ed25519_dalek::SigningKey;
 
+use crate::failure::count;
 use crate::release::ledger_storage::{ENTRIES, Ledger};
 use crate::release::tree_records::write_atomic;
 
@@ -281,9 +282,10 @@ fn check_since(
     }
     if old.tree_size > new.tree_size {
         report.problems.push(format!(
-            "the ledger has {} entries, fewer than the {} of the saved tree head: its history \
-             was trimmed",
-            new.tree_size, old.tree_size
+            "the ledger has {}, fewer than the {} of the saved tree head: its history was \
+             trimmed",
+            count(new.tree_size, "entry", "entries"),
+            old.tree_size
         ));
         return;
     }

@@ -34,6 +34,8 @@ use ampoule_verify::{Digest, KeyId, TrustedKeys, format};
 use anyhow::{Context, Result, bail, ensure};
 use ed25519_dalek::{Signer, SigningKey};
 
+use crate::failure::count;
+
 /// The entries file.
 pub const ENTRIES: &str = "entries.jsonl";
 /// The file of entry end offsets.
@@ -427,8 +429,8 @@ impl Ledger {
     fn check_index(&self, index: u64) -> Result<()> {
         ensure!(
             index < self.size(),
-            "entry {index} is not in the ledger, which has {} entries",
-            self.size()
+            "entry {index} is not in the ledger, which has {}",
+            count(self.size(), "entry", "entries")
         );
         Ok(())
     }
@@ -798,8 +800,9 @@ impl<'a> HeadLog<'a> {
     fn finish(&self, size: u64) -> Result<()> {
         if let Some(head) = &self.pending {
             bail!(
-                "{TREE_HEADS} holds a tree head of size {}, but the ledger has {size} entries",
-                head.head().tree_size
+                "{TREE_HEADS} holds a tree head of size {}, but the ledger has {}",
+                head.head().tree_size,
+                count(size, "entry", "entries")
             );
         }
         Ok(())

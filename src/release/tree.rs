@@ -116,6 +116,9 @@ pub struct StagedBundle {
 /// Settings shared by publish and withdraw.
 pub struct Signing<'a> {
     pub key: &'a SigningKey,
+    /// The file `key` was read from, named beside its id in messages (none when the key
+    /// was made in memory, as in the demo and benchmarks).
+    pub key_file: Option<&'a Path>,
     pub now: Timestamp,
     pub expires_in_secs: u64,
     /// Keys that sign the ledger's tree head besides `key`.
@@ -206,6 +209,27 @@ pub fn parse_duration(text: &str) -> Result<u64> {
         bail!("duration '{text}' must be between 1s and 400d");
     }
     Ok(secs)
+}
+
+/// Checks a bundle file as [`Tree::stage_bundle_with`] checks its copy, with the same
+/// errors, for a publish that must refuse before it creates anything.
+pub fn check_bundle(bundle: &Path, verifier: &Verifier) -> Result<()> {
+    verifier
+        .verify_path(bundle)
+        .and_then(|mut v| v.check_contents())
+        .map_err(|e| publish_refused(bundle, e))?;
+    Ok(())
+}
+
+fn publish_refused(bundle: &Path, e: ampoule_verify::Error) -> anyhow::Error {
+    if e.kind() == ampoule_verify::ErrorKind::Io {
+        // Not a refusal: the file could not be read.
+        return e.into();
+    }
+    crate::failure::bundle_error(bundle, e).context(format!(
+        "bundle {} refused; nothing was published",
+        bundle.display()
+    ))
 }
 
 impl Tree {
@@ -324,12 +348,12 @@ impl Tree {
         let copy = temp
             .reopen()
             .with_context(|| io_context("reopen", temp.path()))?;
-        let mut verified = verifier.verify_file(copy).with_context(|| {
-            format!("bundle {} refused; nothing was published", bundle.display())
-        })?;
-        verified.check_contents().with_context(|| {
-            format!("bundle {} refused; nothing was published", bundle.display())
-        })?;
+        let mut verified = verifier
+            .verify_file(copy)
+            .map_err(|e| publish_refused(bundle, e))?;
+        verified
+            .check_contents()
+            .map_err(|e| publish_refused(bundle, e))?;
         Ok(StagedBundle {
             manifest_digest: Digest::of(verified.manifest_bytes()),
             signers: verified.signers().to_vec(),
@@ -469,6 +493,15 @@ impl Tree {
     pub fn withdraw(&self, channel: &str, signing: &Signing<'_>) -> Result<Change> {
         check_channel(channel)?;
         let mut history = self.history(channel)?;
+        if history.events.is_empty() {
+            // A channel never published to (often a typo) is a usage error, not a refusal.
+            return Err(crate::failure::usage(anyhow::anyhow!(
+                "channel {channel} was never published to in {}; there is nothing to withdraw \
+                 (check the channel name: 'ampoule ledger list --tree {}' shows the channels)",
+                self.root.display(),
+                self.root.display()
+            )));
+        }
         let mut stack = history.stack();
         let Some(current) = stack.pop() else {
             return Err(Refused(format!(
@@ -576,8 +609,12 @@ impl Tree {
                 set.threshold(DocumentKind::Feed),
             );
             if keys.get(&signer).is_none() {
+                let file = signing
+                    .key_file
+                    .map(|f| format!(" ({})", f.display()))
+                    .unwrap_or_default();
                 return Err(Refused(format!(
-                    "key {signer} is not a feed key in trust set version {}; devices on that set \
+                    "key {signer}{file} is not a feed key in trust set version {}; devices on that set \
                      would refuse the feeds this tree signs with it (sign with a key that has the \
                      feed role in both the current and the new set)",
                     set.version()

@@ -217,6 +217,35 @@ impl Env {
         );
     }
 
+    /// [`Env::assert_refused`] for a file whose layout is not a bundle's: since issue 12 the
+    /// message names the file as not a valid bundle, gives `reason` (which quotes none of the
+    /// file's bytes), and says what to check.
+    pub fn assert_not_a_bundle(&self, bundle: &[u8], extra: &[&str], reason: &str) {
+        self.assert_refused(bundle, extra, &not_a_bundle("hostile.ampoule", reason));
+    }
+
+    /// [`Env::assert_not_a_bundle`], and the library's own refusal of the same bytes,
+    /// exactly: the command line names only the rule (the file's bytes are not shown), and
+    /// this keeps the library's message, which names the entry and what it held, pinned.
+    pub fn assert_not_a_bundle_because(&self, bundle: &[u8], reason: &str, library: &str) {
+        self.assert_not_a_bundle(bundle, &[], reason);
+        let path = self.write("library.ampoule", bundle);
+        let trusted: ampoule_verify::TrustedKeys =
+            [PublicKey::from_verifying_key(&self.key.verifying_key()).expect("not weak")]
+                .into_iter()
+                .collect();
+        let verifier =
+            ampoule_verify::Verifier::new(trusted, Version::parse(APP_VERSION).expect("a version"))
+                .expect("a verifier");
+        let err = verifier
+            .verify_path(&path)
+            .and_then(|mut v| v.check_contents())
+            .expect_err("the library refuses it too");
+        assert_eq!(err.kind(), ampoule_verify::ErrorKind::Malformed);
+        assert_eq!(err.to_string(), library);
+        fs::remove_file(path).expect("remove");
+    }
+
     /// Like [`Env::assert_refused`] for a bundle that must pass.
     pub fn assert_accepted(&self, bundle: &[u8]) -> Run {
         self.write("candidate.ampoule", bundle);
@@ -401,4 +430,12 @@ pub fn run_tool(mut command: Command) -> Vec<u8> {
         String::from_utf8_lossy(&out.stderr)
     );
     out.stdout
+}
+
+/// The refusal of `file`, given as a bundle, whose layout is not a bundle's (issue 12).
+pub fn not_a_bundle(file: &str, reason: &str) -> String {
+    format!(
+        "{file} is not a valid bundle: {reason}; check that it names a bundle made by \
+         'ampoule pack' and that it was copied whole"
+    )
 }

@@ -267,7 +267,8 @@ fn files_are_read_from_disk_and_other_files_are_opaque() {
             fixture.name
         );
     }
-    let other = dir.path().join("model.tflite");
+    // An extension no reader claims (a neutral one, named after no product's format).
+    let other = dir.path().join("model.weights");
     std::fs::write(&other, b"not parsed").expect("write");
     assert_eq!(read_model_signature_file(&other).expect("read"), None);
     assert_eq!(read("model.bin", b"\x08\x01").expect("read"), None);
