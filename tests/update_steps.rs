@@ -176,13 +176,13 @@ fn issue9_a_store_follows_one_channel_until_switched() {
         e.to_string(),
         format!(
             "store {} follows channel 'stable', not 'beta'; switching channels is an explicit \
-             step (Store::switch_channel, or `ampoule update --switch-channel`)",
+             step (Device::switch_channel, or `ampoule update --switch-channel`)",
             store.display()
         )
     );
     assert_eq!(asked.downloads, 0);
 
-    beta.store().switch_channel("beta").expect("switch");
+    beta.switch_channel().expect("switch");
     assert_eq!(
         installed_version(&drive(&beta, d, "beta", &as_served).0),
         Version::new(1, 1, 0)

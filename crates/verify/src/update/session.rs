@@ -329,7 +329,7 @@ impl<'d> Session<'d> {
                 ErrorKind::Policy,
                 format!(
                     "store {} follows channel '{followed}', not '{}'; switching channels is an \
-                     explicit step (Store::switch_channel, or `ampoule update --switch-channel`)",
+                     explicit step (Device::switch_channel, or `ampoule update --switch-channel`)",
                     store.dir().display(),
                     device.channel()
                 ),
