@@ -7,7 +7,7 @@ mod tree_common;
 
 use std::path::{Path, PathBuf};
 
-use ampoule_verify::update::Next;
+use ampoule_verify::update::{Download, Next};
 use ampoule_verify::{App, Device, ErrorKind, Outcome, Report, Timestamp, Version};
 use tree_common::*;
 
@@ -36,13 +36,13 @@ struct Asked {
     downloads: usize,
 }
 
-/// Runs one update by hand; `bundle` gives the bytes the app hands in as the download.
-fn drive(
-    device: &Device,
-    d: &Path,
-    channel: &str,
-    bundle: &dyn Fn(&Path) -> Vec<u8>,
-) -> (Report, Asked) {
+/// What the "app" does with a download: write it somewhere and hand in the path, or give up.
+type Transfer<'a> = &'a dyn Fn(&Path, &Download) -> Option<PathBuf>;
+
+/// Runs one update by hand on the channel's feed as the tree serves it: every fetch is
+/// answered from the tree's files, and `transfer` gets the served bundle's path and the
+/// session's download request.
+fn run(device: &Device, d: &Path, channel: &str, transfer: Transfer<'_>) -> (Report, Asked) {
     let url = feed_url(channel);
     let feed = std::fs::read(tree_file(d, &url)).expect("feed file");
     let mut session = device.begin(&url, feed, Timestamp::now());
@@ -62,15 +62,30 @@ fn drive(
                     std::fs::metadata(&served).expect("bundle").len(),
                     want.size()
                 );
-                // A platform transfer service writes wherever it likes; the app hands it in.
-                let landed = d.join("transfer-service.bin");
-                std::fs::write(&landed, bundle(&served)).expect("downloaded file");
-                session.downloaded(&landed);
+                match transfer(&served, &want) {
+                    Some(landed) => session.downloaded(&landed),
+                    None => return (session.fail("connection lost"), asked),
+                }
             }
             Next::Done(report) => return (report, asked),
             other => panic!("unexpected step {other:?}"),
         }
     }
+}
+
+/// One update whose download a platform transfer service writes wherever it likes (the app
+/// hands the path in); `bundle` gives the bytes it writes.
+fn drive(
+    device: &Device,
+    d: &Path,
+    channel: &str,
+    bundle: &dyn Fn(&Path) -> Vec<u8>,
+) -> (Report, Asked) {
+    let landed = d.join("transfer-service.bin");
+    run(device, d, channel, &|served, _| {
+        std::fs::write(&landed, bundle(served)).expect("downloaded file");
+        Some(landed.clone())
+    })
 }
 
 fn as_served(path: &Path) -> Vec<u8> {
@@ -299,33 +314,20 @@ fn issue9_a_finished_session_driven_again_fails_without_touching_the_store() {
     );
 }
 
-/// One update whose download is interrupted half way (`complete` false), as a lost
-/// connection leaves it, or completes; and the documents it asked for.
+/// One update on `stable` whose download goes to the session's own path, complete or (as a
+/// lost connection leaves it) half of it; and the documents it asked for.
 fn drive_partly(device: &Device, d: &Path, complete: bool) -> (Report, Vec<String>) {
-    let url = feed_url("stable");
-    let feed = std::fs::read(tree_file(d, &url)).expect("feed file");
-    let mut session = device.begin(&url, feed, Timestamp::now());
-    let mut fetched = Vec::new();
-    loop {
-        match session.advance() {
-            Next::Fetch(want) => {
-                fetched.push(want.url().to_string());
-                session.provide(std::fs::read(tree_file(d, want.url())).expect("file"));
-            }
-            Next::Download(want) => {
-                let bytes = as_served(&tree_file(d, &want.urls()[0]));
-                if complete {
-                    std::fs::write(want.path(), &bytes).expect("write");
-                    session.downloaded(want.path());
-                } else {
-                    std::fs::write(want.path(), &bytes[..bytes.len() / 2]).expect("write");
-                    return (session.fail("connection lost"), fetched);
-                }
-            }
-            Next::Done(report) => return (report, fetched),
-            other => panic!("unexpected step {other:?}"),
-        }
-    }
+    let (report, asked) = run(device, d, "stable", &|served, want| {
+        let bytes = as_served(served);
+        let part = if complete {
+            &bytes[..]
+        } else {
+            &bytes[..bytes.len() / 2]
+        };
+        std::fs::write(want.path(), part).expect("write");
+        complete.then(|| want.path().to_path_buf())
+    });
+    (report, asked.fetched)
 }
 
 fn downloads(d: &Path) -> Vec<String> {
