@@ -330,6 +330,18 @@ fn drive_partly(device: &Device, d: &Path, complete: bool) -> (Report, Vec<Strin
     (report, asked.fetched)
 }
 
+/// A camera that installed 1.0.0 from `stable`, and that bundle's file name.
+fn camera_on_1_0_0(d: &Path) -> (Device, String) {
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    assert_eq!(
+        installed_version(&drive_partly(&device, d, true).0),
+        Version::new(1, 0, 0)
+    );
+    (device, v1)
+}
+
 fn downloads(d: &Path) -> Vec<String> {
     let mut names: Vec<String> = std::fs::read_dir(d.join("cam/downloads"))
         .expect("downloads")
@@ -344,13 +356,7 @@ fn downloads(d: &Path) -> Vec<String> {
 fn issue9_review_steps_are_walked_once_and_superseded_partials_are_removed() {
     let dir = setup();
     let d = dir.path();
-    let v1 = pack(d, "1.0.0", 0, "k.pem");
-    publish(d, &v1, "stable", "100");
-    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
-    assert_eq!(
-        installed_version(&drive_partly(&device, d, true).0),
-        Version::new(1, 0, 0)
-    );
+    let (device, v1) = camera_on_1_0_0(d);
     publish(d, &v1, "beta", "100");
     publish(d, &v1, "beta", "100");
     publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
@@ -383,14 +389,8 @@ fn issue9_review_steps_are_walked_once_and_superseded_partials_are_removed() {
 fn issue9_review_another_channels_newer_format_feed_is_refused_not_needs_other_app() {
     let dir = setup();
     let d = dir.path();
-    let v1 = pack(d, "1.0.0", 0, "k.pem");
-    publish(d, &v1, "stable", "100");
+    let (device, v1) = camera_on_1_0_0(d);
     publish(d, &v1, "beta", "100");
-    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
-    assert_eq!(
-        installed_version(&drive_partly(&device, d, true).0),
-        Version::new(1, 0, 0)
-    );
     // beta moved to feed format 2, and a hostile server serves it at stable's URL.
     let beta = ampoule_verify::feed::SignedFeed::from_json(
         &std::fs::read(d.join("tree/feeds/beta.json")).expect("beta"),
@@ -416,13 +416,7 @@ fn issue9_review_another_channels_newer_format_feed_is_refused_not_needs_other_a
 fn issue9_review_a_feed_whose_consistency_walk_failed_is_not_reported() {
     let dir = setup();
     let d = dir.path();
-    let v1 = pack(d, "1.0.0", 0, "k.pem");
-    publish(d, &v1, "stable", "100");
-    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
-    assert_eq!(
-        installed_version(&drive_partly(&device, d, true).0),
-        Version::new(1, 0, 0)
-    );
+    let (device, v1) = camera_on_1_0_0(d);
     publish(d, &v1, "beta", "100");
     publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
     let url = feed_url("stable");
