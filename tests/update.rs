@@ -71,6 +71,8 @@ fn withdraw(d: &Path) {
             "stable",
             "--key",
             "k.pem",
+            "--version",
+            "1.0.0",
         ],
     );
 }
