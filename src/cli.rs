@@ -204,7 +204,8 @@ object store serves the tree. It runs until interrupted (Ctrl-C).")]
     #[command(after_help = "Examples:
   ampoule update --store ./camera \\
       --feed http://127.0.0.1:8000/feeds/stable.json \\
-      --trust release.public.pem --app-version 2.3.0
+      --trust-bundle release.public.pem --trust-feed feed.public.pem \\
+      --app-version 2.3.0
   ampoule update --store ./camera \\
       --feed https://models.example.invalid/feeds/beta.json \\
       --trust-set trust-1.json --app-version 2.3.0 --device-id camera-0042 \\
@@ -778,9 +779,22 @@ pub struct UpdateArgs {
     /// check but the feed's expiry, which cannot be judged without a network.
     #[arg(long, value_name = "FILE", conflicts_with = "feed")]
     pub offline: Option<PathBuf>,
-    /// A public key trusted for feeds and bundles (repeat for several).
-    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
+    /// A public key trusted for every role: bundles, feeds and the audit ledger's tree heads
+    /// (repeat for several). With separate release and feed keys, use --trust-bundle and
+    /// --trust-feed instead.
+    #[arg(
+        long,
+        value_name = "PUB.pem",
+        required_unless_present_any = ["trust_set", "trust_bundle", "trust_feed"]
+    )]
     pub trust: Vec<PathBuf>,
+    /// A public key trusted for bundles only: the release key (repeat for several).
+    #[arg(long, value_name = "PUB.pem", conflicts_with = "trust_set")]
+    pub trust_bundle: Vec<PathBuf>,
+    /// A public key trusted for feeds and the audit ledger's tree heads only: the feed key
+    /// that `publish --key` signs with (repeat for several). It is not trusted for bundles.
+    #[arg(long, value_name = "PUB.pem", conflicts_with = "trust_set")]
+    pub trust_feed: Vec<PathBuf>,
     /// Run on trust sets, starting from this one (the set shipped with the app) or the newer
     /// one the store kept; a newer set the feed names is taken and kept in the store.
     #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
@@ -846,8 +860,13 @@ pub struct StoreOptions {
     /// The on-device store.
     #[arg(long, value_name = "DIR")]
     pub store: PathBuf,
-    /// A public key trusted for bundles (repeat for several).
-    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
+    /// A public key trusted for bundles (repeat for several); the store checks bundles only.
+    #[arg(
+        long,
+        visible_alias = "trust-bundle",
+        value_name = "PUB.pem",
+        required_unless_present = "trust_set"
+    )]
     pub trust: Vec<PathBuf>,
     /// The trust set shipped with the app (the store's newer one is used when it has one).
     #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
