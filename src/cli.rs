@@ -128,6 +128,8 @@ of them makes diff exit 1.")]
   ampoule publish species-1.1.0.ampoule --tree ./release --channel beta \\
       --key feed.secret.pem --trust release.public.pem --rollout 10
   ampoule publish species-1.1.0.ampoule --tree ./release --channel beta \\
+      --key feed.secret.pem --trust release.public.pem --rollout 100 --dry-run
+  ampoule publish species-1.1.0.ampoule --tree ./release --channel beta \\
       --key feed.secret.pem --trust release.public.pem --rollout 100
   # Rotate keys: publish the next trust set, which every feed then names
   ampoule publish --trust-set trust-2.json --tree ./release \\
@@ -135,7 +137,9 @@ of them makes diff exit 1.")]
 
 The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
 Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
-rollout; publish at least once per --expires-in, or devices stop trusting the channel.
+rollout, and says it only renewed; publish at least once per --expires-in, or devices stop
+trusting the channel. --dry-run makes every check and shows the sequence, release, rollout
+and ledger entry it would write, and writes nothing.
 A name and version, once in the tree, always mean the same file.
 A trust set is published only if it verifies as the successor of the tree's current one;
 every channel's feed then names it, and devices take it at their next poll. With a trust set
@@ -143,10 +147,15 @@ in the tree, a bundle is checked against its bundle keys and threshold (unless -
     Publish(PublishArgs),
 
     /// Pull a channel's current release: the release before it becomes current again.
-    #[command(after_help = "Example:
-  ampoule withdraw --tree ./release --channel beta --key feed.secret.pem
+    #[command(after_help = "Examples:
+  ampoule withdraw --tree ./release --channel beta --key feed.secret.pem \\
+      --version 1.1.0 --dry-run
+  ampoule withdraw --tree ./release --channel beta --key feed.secret.pem \\
+      --version 1.1.0
 
-The new feed has a higher sequence. With no earlier release the channel offers nothing
+--version names the release to pull, which must be the current one: a rerun after it was
+pulled changes nothing and exits 0. --dry-run makes every check and shows what it would
+write, and writes nothing. The new feed has a higher sequence. With no earlier release the channel offers nothing
 (release: null), and devices keep what they have. Devices that already installed the
 withdrawn release keep it too: they never go back to an older version.")]
     Withdraw(WithdrawArgs),
@@ -195,7 +204,8 @@ object store serves the tree. It runs until interrupted (Ctrl-C).")]
     #[command(after_help = "Examples:
   ampoule update --store ./camera \\
       --feed http://127.0.0.1:8000/feeds/stable.json \\
-      --trust release.public.pem --app-version 2.3.0
+      --trust-bundle release.public.pem --trust-feed feed.public.pem \\
+      --app-version 2.3.0
   ampoule update --store ./camera \\
       --feed https://models.example.invalid/feeds/beta.json \\
       --trust-set trust-1.json --app-version 2.3.0 --device-id camera-0042 \\
@@ -694,6 +704,10 @@ pub struct PublishArgs {
     /// there too, tried in order after the tree itself.
     #[arg(long, value_name = "URL")]
     pub mirror: Vec<String>,
+    /// Make every check and show the sequence, release, rollout and ledger entry the publish
+    /// would write, and write nothing.
+    #[arg(long, conflicts_with = "trust_set")]
+    pub dry_run: bool,
 }
 
 #[derive(Args, Debug)]
@@ -704,6 +718,14 @@ pub struct WithdrawArgs {
     /// The channel whose current release is pulled.
     #[arg(long, value_name = "NAME")]
     pub channel: String,
+    /// The version to pull: the channel's current release (required, so that a rerun never
+    /// pulls the release before it too; a version already pulled changes nothing).
+    #[arg(long, value_name = "VERSION")]
+    pub version: Option<String>,
+    /// Make every check and show the sequence, release and ledger entry the withdraw would
+    /// write, and write nothing.
+    #[arg(long)]
+    pub dry_run: bool,
     /// The secret key that signs the channel's feed and the audit ledger's tree head.
     #[arg(long, value_name = "SECRET.pem")]
     pub key: PathBuf,
@@ -757,9 +779,22 @@ pub struct UpdateArgs {
     /// check but the feed's expiry, which cannot be judged without a network.
     #[arg(long, value_name = "FILE", conflicts_with = "feed")]
     pub offline: Option<PathBuf>,
-    /// A public key trusted for feeds and bundles (repeat for several).
-    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
+    /// A public key trusted for every role: bundles, feeds and the audit ledger's tree heads
+    /// (repeat for several). With separate release and feed keys, use --trust-bundle and
+    /// --trust-feed instead.
+    #[arg(
+        long,
+        value_name = "PUB.pem",
+        required_unless_present_any = ["trust_set", "trust_bundle", "trust_feed"]
+    )]
     pub trust: Vec<PathBuf>,
+    /// A public key trusted for bundles only: the release key (repeat for several).
+    #[arg(long, value_name = "PUB.pem", conflicts_with = "trust_set")]
+    pub trust_bundle: Vec<PathBuf>,
+    /// A public key trusted for feeds and the audit ledger's tree heads only: the feed key
+    /// that `publish --key` signs with (repeat for several). It is not trusted for bundles.
+    #[arg(long, value_name = "PUB.pem", conflicts_with = "trust_set")]
+    pub trust_feed: Vec<PathBuf>,
     /// Run on trust sets, starting from this one (the set shipped with the app) or the newer
     /// one the store kept; a newer set the feed names is taken and kept in the store.
     #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]
@@ -825,8 +860,13 @@ pub struct StoreOptions {
     /// The on-device store.
     #[arg(long, value_name = "DIR")]
     pub store: PathBuf,
-    /// A public key trusted for bundles (repeat for several).
-    #[arg(long, value_name = "PUB.pem", required_unless_present = "trust_set")]
+    /// A public key trusted for bundles (repeat for several); the store checks bundles only.
+    #[arg(
+        long,
+        visible_alias = "trust-bundle",
+        value_name = "PUB.pem",
+        required_unless_present = "trust_set"
+    )]
     pub trust: Vec<PathBuf>,
     /// The trust set shipped with the app (the store's newer one is used when it has one).
     #[arg(long, value_name = "TRUST.json", conflicts_with = "trust")]

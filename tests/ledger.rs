@@ -68,6 +68,8 @@ fn four_changes(d: &Path) -> (String, String) {
             "stable",
             "--key",
             "k.pem",
+            "--version",
+            "1.1.0",
         ],
     );
     (v1, v2)

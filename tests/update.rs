@@ -71,6 +71,8 @@ fn withdraw(d: &Path) {
             "stable",
             "--key",
             "k.pem",
+            "--version",
+            "1.0.0",
         ],
     );
 }
@@ -650,5 +652,68 @@ fn store_status_rollback_and_gc_issue_3() {
         stderr(&out).contains("digest mismatch for 'model.bin'"),
         "{}",
         stderr(&out)
+    );
+}
+
+/// `update` with separate release and feed keys (issue 12 item 1): each key is trusted for its
+/// own role only.
+#[test]
+fn issue12_update_trusts_the_release_key_for_bundles_and_the_feed_key_for_feeds() {
+    let dir = setup();
+    let d = dir.path();
+    ok(d, &["keygen", "--secret", "r.pem", "--public", "r.pub"]);
+    let bundle = pack(d, "1.0.0", 0, "r.pem");
+    ok(
+        d,
+        &[
+            "publish",
+            &bundle,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+            "--trust",
+            "r.pub",
+        ],
+    );
+    let server = serve(d);
+    let url = feed_url(&server);
+    let run = |store: &str, keys: &[&str]| {
+        let mut args = vec!["update", "--store", store, "--feed", url.as_str()];
+        args.extend_from_slice(keys);
+        args.extend_from_slice(&["--app-version", "2.3.0"]);
+        Command::new(BIN)
+            .args(&args)
+            .current_dir(d)
+            .output()
+            .expect("the ampoule binary runs")
+    };
+    let only_feed = run("cam-1", &["--trust-feed", "k.pub"]);
+    assert_eq!(
+        (only_feed.status.code(), stderr(&only_feed)),
+        (
+            Some(2),
+            "ampoule: error: no key is trusted for bundles; give --trust-bundle RELEASE.pem and \
+             --trust-feed FEED.pem (or --trust for a key that signs both, or --trust-set)"
+                .to_string()
+        )
+    );
+    // The roles swapped: the feed is signed by a key trusted only for bundles.
+    let swapped = run(
+        "cam-2",
+        &["--trust-bundle", "k.pub", "--trust-feed", "r.pub"],
+    );
+    assert_eq!(swapped.status.code(), Some(1), "{}", stderr(&swapped));
+    let installed = succeeded(&run(
+        "cam-3",
+        &["--trust-bundle", "r.pub", "--trust-feed", "k.pub"],
+    ));
+    assert!(
+        installed.starts_with(
+            "installed trailcam-species 1.0.0 from channel stable (feed sequence 1): 6 labels"
+        ),
+        "{installed}"
     );
 }

@@ -36,7 +36,7 @@ use crate::release::keyfile;
 use crate::release::pack::{PackSpec, pack};
 use crate::release::serve::Server;
 use crate::release::synth;
-use crate::release::tree::{BUNDLES_DIR, Change, FEEDS_DIR, Signing, Tree};
+use crate::release::tree::{BUNDLES_DIR, Change, FEEDS_DIR, Signing, Tree, Withdrawal};
 
 /// The scenario's inputs, kept in the top-level `demo/` folder (its README tells the story)
 /// and compiled in, so an installed `ampoule demo` runs outside the checkout. tests/demo.rs
@@ -359,8 +359,8 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     )?;
 
     let mut sequence = 0;
-    for _ in 0..3 {
-        sequence = withdraw(&tree, &key)?.feed.sequence;
+    for version in ["1.1.1", "1.1.0", "1.0.0"] {
+        sequence = withdraw(&tree, version, &key)?.feed.sequence;
     }
     for cam in [&cam_in, &cam_out] {
         match cam.check(Timestamp::now())?.outcome {
@@ -748,8 +748,12 @@ fn publish(
     tree.publish(staged, CHANNEL, rollout, &[], &signing(key))
 }
 
-fn withdraw(tree: &Path, key: &ed25519_dalek::SigningKey) -> Result<Change> {
-    Tree::lock(tree)?.withdraw(CHANNEL, &signing(key))
+/// Withdraws `version`, the current release of the demo channel.
+fn withdraw(tree: &Path, version: &str, key: &ed25519_dalek::SigningKey) -> Result<Change> {
+    match Tree::lock(tree)?.withdraw(CHANNEL, &version.parse()?, &signing(key))? {
+        Withdrawal::Pending(change) => Ok(change),
+        Withdrawal::Already(_) => bail!("the demo withdrew {version} twice"),
+    }
 }
 
 fn signing(key: &ed25519_dalek::SigningKey) -> Signing<'_> {

@@ -4,7 +4,9 @@
 
 use std::path::Path;
 
-use ampoule_verify::{DocumentKind, PublicKey, Timestamp, TrustSet, TrustedKeys, Verifier};
+use ampoule_verify::feed::{Feed, Release};
+use ampoule_verify::ledger::{Entry as LedgerEntry, FeedLedger};
+use ampoule_verify::{DocumentKind, KeyId, PublicKey, Timestamp, TrustSet, TrustedKeys, Verifier};
 use anyhow::{Context, Result};
 use serde_json::{Value, json};
 
@@ -12,7 +14,7 @@ use crate::cli::PublishArgs;
 use crate::cmd::{load_trust_named, name_trusted, passphrase_source};
 use crate::output::Output;
 use crate::release::keyfile;
-use crate::release::tree::{Change, Signing, Tree, check_bundle, parse_duration};
+use crate::release::tree::{Action, Change, Plan, Signing, Tree, check_bundle, parse_duration};
 
 pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
@@ -77,7 +79,23 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         let (check, trusted) = verifier(None)?;
         check_bundle(bundle, &check).map_err(|e| name_trusted(e, &trusted))?;
     }
-    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
+    let wait = std::time::Duration::from_secs(args.lock_wait);
+    if args.dry_run {
+        let tree = Tree::read_only(&args.tree, wait)?;
+        let (check, trusted) = verifier(Some(&tree))?;
+        let facts = check_bundle(bundle, &check).map_err(|e| name_trusted(e, &trusted))?;
+        let signing = Signing {
+            key: &key,
+            key_file: Some(&args.key),
+            now,
+            expires_in_secs,
+            tree_head_keys: &tree_head_keys,
+        };
+        let plan = tree.plan_publish(&facts, channel, args.rollout, &args.mirror, &signing)?;
+        drop(tree);
+        return report_plan(&plan, &signing, &args.key, out);
+    }
+    let tree = Tree::lock_waiting(&args.tree, wait)?;
     let (check, trusted) = verifier(Some(&tree))?;
     let staged = tree
         .stage_bundle_with(bundle, check)
@@ -188,70 +206,188 @@ pub fn read_tree_head_keys(
         .collect()
 }
 
+/// A release as `--json` shows it.
+pub fn release_json(r: &Release) -> Value {
+    json!({
+        "name": r.name,
+        "version": r.version.to_string(),
+        "sha256": r.sha256,
+        "size": r.size,
+        "rollout_percent": r.rollout_percent,
+        "path": r.path,
+    })
+}
+
+/// What a publish or withdraw did or, in a dry run, would do; printed by [`Report::print`].
+struct Report<'a> {
+    action: Action,
+    dry_run: bool,
+    channel: &'a str,
+    feed: &'a Feed,
+    feed_path: &'a Path,
+    previous: Option<&'a Release>,
+    signer: KeyId,
+    key_file: &'a Path,
+    entry: &'a LedgerEntry,
+    entry_index: u64,
+}
+
+impl Report<'_> {
+    /// The first line: in plain words, what happened to the channel.
+    fn headline(&self) -> String {
+        let would = if self.dry_run { "would " } else { "" };
+        let channel = self.channel;
+        let (name, version) = (&self.entry.bundle, &self.entry.version);
+        match self.action {
+            Action::Published => {
+                let verb = if self.dry_run { "publish" } else { "published" };
+                format!("{would}{verb} {name} {version} on channel {channel}: a new release")
+            }
+            Action::Renewed => {
+                let verb = if self.dry_run { "renew" } else { "renewed" };
+                let new = self.feed.release.as_ref().map_or(0, |r| r.rollout_percent);
+                let rollout = match self.previous.map(|r| r.rollout_percent) {
+                    Some(old) if old != new => format!("rollout {old}% -> {new}%"),
+                    _ => format!("rollout {new}% as before"),
+                };
+                format!(
+                    "{would}{verb} the feed only: {name} {version} is already the current \
+                     release on channel {channel} (new sequence and expiry, {rollout})"
+                )
+            }
+            Action::Withdrawn | Action::TrustSetNamed => {
+                let verb = if self.dry_run { "withdraw" } else { "withdrew" };
+                format!("{would}{verb} {name} {version} from channel {channel}")
+            }
+        }
+    }
+
+    fn print(&self, ledger: Option<&FeedLedger>, out: &Output) -> Result<()> {
+        let feed = self.feed;
+        let offers = match &feed.release {
+            Some(r) => format!(
+                "{} {} ({} bytes, sha256 {}) at {}% rollout",
+                r.name, r.version, r.size, r.sha256, r.rollout_percent
+            ),
+            None => "nothing (release: null; devices keep what they have)".into(),
+        };
+        let was = match self.previous {
+            Some(r) => format!("{} {}", r.name, r.version),
+            None => "nothing".into(),
+        };
+        let entry_text = String::from_utf8_lossy(&self.entry.to_bytes()).into_owned();
+        let mut human = format!(
+            "{}
+",
+            self.headline()
+        );
+        if self.dry_run {
+            human.push_str(&format!(
+                "channel {} would offer {offers}
+now: {was}
+feed {} would get sequence {}, \
+                 expires {}, signed by key {} ({})
+ledger: would append entry {}: {entry_text}
+\
+                 dry run: nothing was written
+",
+                self.channel,
+                self.feed_path.display(),
+                feed.sequence,
+                feed.expires,
+                self.signer,
+                self.key_file.display(),
+                self.entry_index,
+            ));
+        } else {
+            human.push_str(&format!(
+                "channel {} now offers {offers}
+was: {was}
+feed {} sequence {}, expires {}, \
+                 signed by key {} ({})
+",
+                self.channel,
+                self.feed_path.display(),
+                feed.sequence,
+                feed.expires,
+                self.signer,
+                self.key_file.display()
+            ));
+        }
+        let ledger = ledger.map(|l| {
+            let head = l.tree_head.head();
+            human.push_str(&format!(
+                "ledger: entry {} logged, tree size {}, root {}\n",
+                head.tree_size - 1,
+                head.tree_size,
+                head.root_hash
+            ));
+            json!({
+                "tree_size": head.tree_size,
+                "root_hash": head.root_hash,
+                "leaf_index": l.inclusion.as_ref().map(|p| p.leaf_index),
+            })
+        });
+        let entry: Value =
+            serde_json::from_slice(&self.entry.to_bytes()).expect("a ledger entry is JSON");
+        out.result(
+            &human,
+            json!({
+                "ok": true,
+                "action": self.action.name(),
+                "dry_run": self.dry_run,
+                "channel": self.channel,
+                "sequence": feed.sequence,
+                "issued": feed.issued,
+                "expires": feed.expires,
+                "feed": self.feed_path,
+                "signer": self.signer.to_string(),
+                "release": feed.release.as_ref().map(release_json),
+                "previous": self.previous.map(release_json),
+                "ledger_entry": entry,
+                "ledger_entry_index": self.entry_index,
+                "ledger": ledger,
+            }),
+        )
+    }
+}
+
 /// Prints what a publish or withdraw changed.
 pub fn report(change: &Change, key_file: &Path, out: &Output) -> Result<()> {
-    let feed = &change.feed;
-    let release = |r: &ampoule_verify::feed::Release| -> Value {
-        json!({
-            "name": r.name,
-            "version": r.version.to_string(),
-            "sha256": r.sha256,
-            "size": r.size,
-            "rollout_percent": r.rollout_percent,
-            "path": r.path,
-        })
-    };
-    let now = match &feed.release {
-        Some(r) => format!(
-            "{} {} ({} bytes, sha256 {}) at {}% rollout",
-            r.name, r.version, r.size, r.sha256, r.rollout_percent
-        ),
-        None => "nothing (release: null; devices keep what they have)".into(),
-    };
-    let was = match &change.previous {
-        Some(r) => format!("{} {}", r.name, r.version),
-        None => "nothing".into(),
-    };
-    let ledger = feed.ledger.as_ref().map(|l| {
-        let head = l.tree_head.head();
-        json!({
-            "tree_size": head.tree_size,
-            "root_hash": head.root_hash,
-            "leaf_index": l.inclusion.as_ref().map(|p| p.leaf_index),
-        })
-    });
-    let mut human = format!(
-        "channel {} now offers {now}\nwas: {was}\nfeed {} sequence {}, expires {}, signed by key {} \
-         ({})\n",
-        change.channel,
-        change.feed_path.display(),
-        feed.sequence,
-        feed.expires,
-        change.signer,
-        key_file.display()
-    );
-    if let Some(l) = &feed.ledger {
-        let head = l.tree_head.head();
-        human.push_str(&format!(
-            "ledger: entry {} logged, tree size {}, root {}\n",
-            head.tree_size - 1,
-            head.tree_size,
-            head.root_hash
-        ));
+    let ledger = change.feed.ledger.as_ref();
+    Report {
+        action: change.action,
+        dry_run: false,
+        channel: &change.channel,
+        feed: &change.feed,
+        feed_path: &change.feed_path,
+        previous: change.previous.as_ref(),
+        signer: change.signer,
+        key_file,
+        entry: &change.entry,
+        entry_index: ledger.map_or(0, |l| l.tree_head.head().tree_size - 1),
     }
-    out.result(
-        &human,
-        json!({
-            "ok": true,
-            "channel": change.channel,
-            "sequence": feed.sequence,
-            "issued": feed.issued,
-            "expires": feed.expires,
-            "feed": change.feed_path,
-            "signer": change.signer.to_string(),
-            "release": feed.release.as_ref().map(release),
-            "previous": change.previous.as_ref().map(release),
-            "ledger": ledger,
-        }),
-    )
+    .print(ledger, out)
+}
+
+/// Prints what a dry run of a publish or withdraw would write.
+pub fn report_plan(
+    plan: &Plan,
+    signing: &Signing<'_>,
+    key_file: &Path,
+    out: &Output,
+) -> Result<()> {
+    Report {
+        action: plan.action,
+        dry_run: true,
+        channel: &plan.channel,
+        feed: &plan.feed,
+        feed_path: &plan.feed_path,
+        previous: plan.previous.as_ref(),
+        signer: KeyId::of_raw_key(signing.key.verifying_key().as_bytes()),
+        key_file,
+        entry: &plan.entry,
+        entry_index: plan.entry_index,
+    }
+    .print(None, out)
 }

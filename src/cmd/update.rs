@@ -39,12 +39,25 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
             trust
         }
         None => {
-            // The keys given are trusted for every role, as the option says.
-            let keys = load_trust(&args.trust)?;
+            // --trust keys hold every role; --trust-bundle only bundles; --trust-feed only
+            // feeds and tree heads, so a feed key never ships a model by itself.
+            let bundle = load_trust(&[&args.trust[..], &args.trust_bundle[..]].concat())?;
+            let feed = load_trust(&[&args.trust[..], &args.trust_feed[..]].concat())?;
+            if bundle.is_empty() || feed.is_empty() {
+                return Err(crate::failure::usage(anyhow::anyhow!(
+                    "no key is trusted for {}; give --trust-bundle RELEASE.pem and --trust-feed \
+                     FEED.pem (or --trust for a key that signs both, or --trust-set)",
+                    if bundle.is_empty() {
+                        "bundles"
+                    } else {
+                        "feeds"
+                    }
+                )));
+            }
             Trust::pinned(
-                Signers::new(keys.clone(), 1)?,
-                Signers::new(keys.clone(), 1)?,
-                Signers::new(keys, 1)?,
+                Signers::new(bundle, 1)?,
+                Signers::new(feed.clone(), 1)?,
+                Signers::new(feed, 1)?,
             )
         }
     };

@@ -54,6 +54,21 @@ pub fn last_sequence(root: &Path, channel: &str) -> Result<u64> {
         .map_or(0, |e| e.feed_sequence))
 }
 
+/// The checks an append of `entry` under a tree head signed by `keys` makes before it writes,
+/// for a dry run: the entry's bytes, the keys, and a ledger that opens. Returns the index the
+/// entry would get. Writes nothing, and makes no ledger where there is none.
+pub fn preview(root: &Path, entry: &Entry, keys: &[&SigningKey]) -> Result<u64> {
+    crate::release::ledger_storage::check_signing_keys(keys)?;
+    let dir = ledger_dir(root);
+    let size = if dir.join(ENTRIES).is_file() {
+        Ledger::open(&dir)?.size()
+    } else {
+        0
+    };
+    crate::release::ledger_storage::check_entry(size, &entry.to_bytes())?;
+    Ok(size)
+}
+
 /// The digests and signers a withdraw entry logs for `sha256`: those of its publish entry on
 /// `channel`, else read from the bundle file (a release published before the ledger existed).
 pub fn withdrawn(root: &Path, channel: &str, sha256: &Digest) -> Result<(Digest, Vec<KeyId>)> {

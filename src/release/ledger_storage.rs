@@ -196,14 +196,7 @@ impl Ledger {
         I: IntoIterator,
         I::Item: AsRef<[u8]>,
     {
-        ensure!(
-            !keys.is_empty(),
-            "a tree head needs at least one signing key"
-        );
-        let ids: Vec<KeyId> = keys.iter().map(|k| key_id(k)).collect();
-        for (i, id) in ids.iter().enumerate() {
-            ensure!(!ids[..i].contains(id), "signing key {id} is given twice");
-        }
+        check_signing_keys(keys)?;
         let lock = self.lock()?;
         // Another process may have appended since this handle last looked.
         self.reload()?;
@@ -883,7 +876,21 @@ impl Appender {
     }
 }
 
-fn check_entry(index: u64, entry: &[u8]) -> Result<()> {
+/// The keys that sign a tree head: at least one, none twice.
+pub fn check_signing_keys(keys: &[&SigningKey]) -> Result<()> {
+    ensure!(
+        !keys.is_empty(),
+        "a tree head needs at least one signing key"
+    );
+    let ids: Vec<KeyId> = keys.iter().map(|k| key_id(k)).collect();
+    for (i, id) in ids.iter().enumerate() {
+        ensure!(!ids[..i].contains(id), "signing key {id} is given twice");
+    }
+    Ok(())
+}
+
+/// An entry the ledger can store as entry `index`: bounded, one line of UTF-8.
+pub fn check_entry(index: u64, entry: &[u8]) -> Result<()> {
     ensure!(
         entry.len() <= MAX_ENTRY_BYTES,
         "entry {index} is {} bytes, more than the limit of {MAX_ENTRY_BYTES}",

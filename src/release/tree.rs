@@ -60,6 +60,79 @@ pub struct Change {
     pub signer: KeyId,
     /// What the change replaced as current, if anything.
     pub previous: Option<Release>,
+    /// What happened to the channel.
+    pub action: Action,
+    /// The ledger entry appended.
+    pub entry: LedgerEntry,
+}
+
+/// What a publish or withdraw does to a channel.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Action {
+    /// A release became current that was not current before.
+    Published,
+    /// The current release stays; only its feed is signed again (new sequence and expiry, the
+    /// rollout given).
+    Renewed,
+    /// The current release was pulled.
+    Withdrawn,
+    /// The feed was signed again to name a newly published trust set.
+    TrustSetNamed,
+}
+
+impl Action {
+    /// The name in `--json` output.
+    pub fn name(self) -> &'static str {
+        match self {
+            Action::Published => "published",
+            Action::Renewed => "renewed",
+            Action::Withdrawn => "withdrawn",
+            Action::TrustSetNamed => "trust_set_named",
+        }
+    }
+}
+
+/// A publish or withdraw worked out and checked against the tree, with nothing written: what
+/// `--dry-run` shows, and what [`Tree::apply`] writes.
+#[derive(Debug, Clone)]
+pub struct Plan {
+    pub action: Action,
+    pub channel: String,
+    /// The feed to sign, without its `ledger` object (that comes from the append).
+    pub feed: Feed,
+    pub feed_path: PathBuf,
+    /// What is current before the change, if anything.
+    pub previous: Option<Release>,
+    /// The ledger entry to append.
+    pub entry: LedgerEntry,
+    /// The index the entry gets in the ledger.
+    pub entry_index: u64,
+    history: History,
+    /// The index with the new name and version, when the release is new to the tree.
+    index: Option<Index>,
+    /// The bundle to place in `bundles/` (publish only).
+    bundle: Option<Digest>,
+}
+
+/// A withdraw of a version, or the finding that the version was withdrawn already, in which
+/// case nothing is written and no ledger entry is added.
+#[derive(Debug, Clone)]
+pub enum Withdrawal<T> {
+    Pending(T),
+    Already(Box<AlreadyWithdrawn>),
+}
+
+/// A version that an earlier withdraw pulled from a channel.
+#[derive(Debug, Clone)]
+pub struct AlreadyWithdrawn {
+    pub channel: String,
+    pub name: String,
+    pub version: semver::Version,
+    /// The sequence and time of the feed that withdrew it.
+    pub sequence: u64,
+    pub time: Timestamp,
+    /// What the channel offers now.
+    pub current: Option<Release>,
 }
 
 /// The tree's current trust set: the highest version under `trust/`.
@@ -104,6 +177,12 @@ pub struct TrustSetChange {
 /// waiting to be renamed to its content address.
 pub struct StagedBundle {
     temp: NamedTempFile,
+    pub facts: BundleFacts,
+}
+
+/// What publishing needs to know of a checked bundle.
+#[derive(Debug, Clone)]
+pub struct BundleFacts {
     pub manifest: Manifest,
     pub sha256: Digest,
     pub size: u64,
@@ -125,10 +204,13 @@ pub struct Signing<'a> {
     pub tree_head_keys: &'a [SigningKey],
 }
 
-/// A release tree with its lock held; the lock is released when this is dropped.
+/// A release tree with its lock held; the lock is released when this is dropped. A tree
+/// opened with [`Tree::read_only`] (for a dry run) holds a shared lock, or none when the tree
+/// does not exist yet, and refuses to write.
 pub struct Tree {
     root: PathBuf,
-    _lock: File,
+    _lock: Option<File>,
+    writable: bool,
 }
 
 fn io_context(doing: &str, path: &Path) -> String {
@@ -212,13 +294,24 @@ pub fn parse_duration(text: &str) -> Result<u64> {
 }
 
 /// Checks a bundle file as [`Tree::stage_bundle_with`] checks its copy, with the same
-/// errors, for a publish that must refuse before it creates anything.
-pub fn check_bundle(bundle: &Path, verifier: &Verifier) -> Result<()> {
-    verifier
+/// errors, for a publish that must refuse before it creates anything, and for a dry run.
+pub fn check_bundle(bundle: &Path, verifier: &Verifier) -> Result<BundleFacts> {
+    let mut verified = verifier
         .verify_path(bundle)
-        .and_then(|mut v| v.check_contents())
         .map_err(|e| publish_refused(bundle, e))?;
-    Ok(())
+    verified
+        .check_contents()
+        .map_err(|e| publish_refused(bundle, e))?;
+    let file = File::open(bundle).with_context(|| io_context("open bundle", bundle))?;
+    let (sha256, size) = ampoule_verify::digest::hash_reader(file, u64::MAX)
+        .with_context(|| io_context("read", bundle))?;
+    Ok(BundleFacts {
+        manifest_digest: Digest::of(verified.manifest_bytes()),
+        signers: verified.signers().to_vec(),
+        manifest: verified.manifest().clone(),
+        sha256,
+        size,
+    })
 }
 
 fn publish_refused(bundle: &Path, e: ampoule_verify::Error) -> anyhow::Error {
@@ -230,6 +323,46 @@ fn publish_refused(bundle: &Path, e: ampoule_verify::Error) -> anyhow::Error {
         "bundle {} refused; nothing was published",
         bundle.display()
     ))
+}
+
+/// The keys that sign a change's tree head: the feed key first.
+fn signing_keys<'a>(signing: &Signing<'a>) -> Vec<&'a SigningKey> {
+    std::iter::once(signing.key)
+        .chain(signing.tree_head_keys)
+        .collect()
+}
+
+/// Takes a lock with `try_lock`, trying again for up to `wait`.
+fn wait_for_lock(
+    root: &Path,
+    lock_path: &Path,
+    wait: std::time::Duration,
+    try_lock: impl Fn() -> std::result::Result<(), TryLockError>,
+) -> Result<()> {
+    let started = std::time::Instant::now();
+    loop {
+        match try_lock() {
+            Ok(()) => return Ok(()),
+            Err(TryLockError::WouldBlock) if started.elapsed() < wait => {
+                std::thread::sleep(std::time::Duration::from_millis(50));
+            }
+            Err(TryLockError::WouldBlock) => {
+                let waited = if wait.is_zero() {
+                    String::new()
+                } else {
+                    format!(" (waited {} s)", wait.as_secs())
+                };
+                bail!(
+                    "another publish or withdraw is changing the release tree {}{waited}; try \
+                     again when it has finished",
+                    root.display()
+                )
+            }
+            Err(TryLockError::Error(e)) => {
+                return Err(e).with_context(|| io_context("lock", lock_path));
+            }
+        }
+    }
 }
 
 impl Tree {
@@ -253,34 +386,42 @@ impl Tree {
             .write(true)
             .open(&lock_path)
             .with_context(|| io_context("open the lock file", &lock_path))?;
-        let started = std::time::Instant::now();
-        loop {
-            match lock.try_lock() {
-                Ok(()) => break,
-                Err(TryLockError::WouldBlock) if started.elapsed() < wait => {
-                    std::thread::sleep(std::time::Duration::from_millis(50));
-                }
-                Err(TryLockError::WouldBlock) => {
-                    let waited = if wait.is_zero() {
-                        String::new()
-                    } else {
-                        format!(" (waited {} s)", wait.as_secs())
-                    };
-                    bail!(
-                        "another publish or withdraw is changing the release tree {}{waited}; try \
-                         again when it has finished",
-                        root.display()
-                    )
-                }
-                Err(TryLockError::Error(e)) => {
-                    return Err(e).with_context(|| io_context("lock", &lock_path));
-                }
+        wait_for_lock(root, &lock_path, wait, || lock.try_lock())?;
+        Ok(Tree {
+            root: root.to_path_buf(),
+            _lock: Some(lock),
+            writable: true,
+        })
+    }
+
+    /// Opens the tree at `root` for a dry run: it creates nothing, not even the tree, and
+    /// takes the lock shared (waiting up to `wait`), so that it reads no half-made change.
+    /// Every method that would write refuses.
+    pub fn read_only(root: &Path, wait: std::time::Duration) -> Result<Tree> {
+        let lock_path = root.join(LOCK_FILE);
+        let lock = match File::open(&lock_path) {
+            Ok(lock) => {
+                wait_for_lock(root, &lock_path, wait, || lock.try_lock_shared())?;
+                Some(lock)
             }
-        }
+            Err(e) if e.kind() == io::ErrorKind::NotFound => None,
+            Err(e) => return Err(e).with_context(|| io_context("open the lock file", &lock_path)),
+        };
         Ok(Tree {
             root: root.to_path_buf(),
             _lock: lock,
+            writable: false,
         })
+    }
+
+    fn writable(&self) -> Result<()> {
+        if !self.writable {
+            bail!(
+                "the release tree {} was opened for a dry run; nothing may be written",
+                self.root.display()
+            );
+        }
+        Ok(())
     }
 
     pub fn root(&self) -> &Path {
@@ -321,6 +462,7 @@ impl Tree {
 
     /// [`Tree::stage_bundle`] with the signature check of `verifier` (keys and threshold).
     pub fn stage_bundle_with(&self, bundle: &Path, verifier: Verifier) -> Result<StagedBundle> {
+        self.writable()?;
         let dir = self.root.join(BUNDLES_DIR);
         let mut temp = tempfile::Builder::new()
             .prefix(crate::release::atomic::TEMP_PREFIX)
@@ -355,12 +497,14 @@ impl Tree {
             .check_contents()
             .map_err(|e| publish_refused(bundle, e))?;
         Ok(StagedBundle {
-            manifest_digest: Digest::of(verified.manifest_bytes()),
-            signers: verified.signers().to_vec(),
-            manifest: verified.manifest().clone(),
+            facts: BundleFacts {
+                manifest_digest: Digest::of(verified.manifest_bytes()),
+                signers: verified.signers().to_vec(),
+                manifest: verified.manifest().clone(),
+                sha256,
+                size,
+            },
             temp,
-            sha256,
-            size,
         })
     }
 
@@ -398,11 +542,26 @@ impl Tree {
         mirrors: &[String],
         signing: &Signing<'_>,
     ) -> Result<Change> {
+        let plan = self.plan_publish(&staged.facts, channel, rollout_percent, mirrors, signing)?;
+        self.place_bundle(staged)?;
+        self.apply(plan, signing)
+    }
+
+    /// Works out and checks a publish of the bundle `facts` describes, writing nothing: the
+    /// version rules, the feed, the ledger entry and the keys that would sign its tree head.
+    pub fn plan_publish(
+        &self,
+        facts: &BundleFacts,
+        channel: &str,
+        rollout_percent: u8,
+        mirrors: &[String],
+        signing: &Signing<'_>,
+    ) -> Result<Plan> {
         check_channel(channel)?;
         if rollout_percent > 100 {
             bail!("--rollout {rollout_percent} is not a percentage from 0 to 100");
         }
-        let m = &staged.manifest;
+        let m = &facts.manifest;
         let mut index = self.index()?;
         let same_version = index
             .releases
@@ -410,45 +569,44 @@ impl Tree {
             .find(|r| r.name == m.name && r.version.cmp_precedence(&m.version).is_eq())
             .cloned();
         if let Some(old) = &same_version
-            && old.sha256 != staged.sha256
+            && old.sha256 != facts.sha256
         {
             return Err(Refused(format!(
                 "{} {} is already in the release tree as bundle {} (published {}), and this \
                  file is {}; a published version never changes: pack it as a new version",
-                m.name, m.version, old.sha256, old.first_published, staged.sha256
+                m.name, m.version, old.sha256, old.first_published, facts.sha256
             ))
             .into());
         }
         let mut history = self.history(channel)?;
         let previous = history.stack().pop();
-        if let Some(current) = &previous {
-            let renew = current.sha256 == staged.sha256;
-            if !renew
-                && current.name == m.name
-                && m.version.cmp_precedence(&current.version).is_le()
-            {
-                return Err(Refused(format!(
-                    "{} {} is not newer than {}, the current release on channel {channel}; \
-                     devices would not take it (use withdraw to go back to an earlier release)",
-                    m.name, m.version, current.version
-                ))
-                .into());
-            }
+        let renew = previous.as_ref().is_some_and(|c| c.sha256 == facts.sha256);
+        if let Some(current) = &previous
+            && !renew
+            && current.name == m.name
+            && m.version.cmp_precedence(&current.version).is_le()
+        {
+            return Err(Refused(format!(
+                "{} {} is not newer than {}, the current release on channel {channel}; \
+                 devices would not take it (use withdraw to go back to an earlier release)",
+                m.name, m.version, current.version
+            ))
+            .into());
         }
         let release = Release {
             name: m.name.clone(),
             version: m.version.clone(),
             requires_app: m.requires_app.clone(),
-            size: staged.size,
-            sha256: staged.sha256,
-            path: format!("../{BUNDLES_DIR}/{}.{BUNDLE_EXTENSION}", staged.sha256),
+            size: facts.size,
+            sha256: facts.sha256,
+            path: format!("../{BUNDLES_DIR}/{}.{BUNDLE_EXTENSION}", facts.sha256),
             mirrors: mirrors
                 .iter()
                 .map(|base| {
                     format!(
                         "{}/{BUNDLES_DIR}/{}.{BUNDLE_EXTENSION}",
                         base.trim_end_matches('/'),
-                        staged.sha256
+                        facts.sha256
                     )
                 })
                 .collect(),
@@ -463,14 +621,14 @@ impl Tree {
             bundle: release.name.clone(),
             version: release.version.clone(),
             bundle_digest: release.sha256,
-            manifest_digest: staged.manifest_digest,
-            key_ids: staged.signers.clone(),
+            manifest_digest: facts.manifest_digest,
+            key_ids: facts.signers.clone(),
             time: signing.now.unix(),
             feed_sequence: sequence,
         };
-
-        self.place_bundle(staged)?;
-        if same_version.is_none() {
+        let entry_index =
+            crate::release::ledger_audit::preview(&self.root, &entry, &signing_keys(signing))?;
+        let index = same_version.is_none().then(|| {
             index.releases.push(IndexEntry {
                 name: release.name.clone(),
                 version: release.version.clone(),
@@ -478,23 +636,66 @@ impl Tree {
                 size: release.size,
                 first_published: signing.now,
             });
-            write_atomic(&self.root.join(INDEX_FILE), &to_pretty_json(&index))?;
-        }
+            index
+        });
         history.events.push(Event::Publish {
             sequence,
             time: signing.now,
             release,
         });
-        self.commit(channel, &history, feed, previous, signing, &entry)
+        Ok(Plan {
+            action: if renew {
+                Action::Renewed
+            } else {
+                Action::Published
+            },
+            channel: channel.to_string(),
+            feed,
+            feed_path: self.feed_path(channel),
+            previous,
+            entry,
+            entry_index,
+            history,
+            index,
+            bundle: Some(facts.sha256),
+        })
     }
 
-    /// Pulls the current release of `channel`: the release before it becomes current again,
-    /// or the channel offers nothing (`release: null`) when there is none.
-    pub fn withdraw(&self, channel: &str, signing: &Signing<'_>) -> Result<Change> {
+    /// Writes what `plan` worked out: the index, the ledger entry, the history and the feed.
+    /// A publish's bundle must be in `bundles/` already ([`Tree::publish`] puts it there).
+    pub fn apply(&self, plan: Plan, signing: &Signing<'_>) -> Result<Change> {
+        self.writable()?;
+        if let Some(sha256) = &plan.bundle {
+            let path = self.bundle_path(sha256);
+            if !path.is_file() {
+                bail!("{} is missing; the bundle was not placed", path.display());
+            }
+        }
+        if let Some(index) = &plan.index {
+            write_atomic(&self.root.join(INDEX_FILE), &to_pretty_json(index))?;
+        }
+        let mut change = self.commit(
+            &plan.channel,
+            &plan.history,
+            plan.feed,
+            plan.previous,
+            signing,
+            &plan.entry,
+        )?;
+        change.action = plan.action;
+        Ok(change)
+    }
+
+    /// The release `channel` offers now, if any. A channel never published to is a usage
+    /// error (often a typo).
+    pub fn current(&self, channel: &str) -> Result<Option<Release>> {
+        Ok(self.published_history(channel)?.stack().pop())
+    }
+
+    fn published_history(&self, channel: &str) -> Result<History> {
         check_channel(channel)?;
-        let mut history = self.history(channel)?;
+        let history = self.history(channel)?;
         if history.events.is_empty() {
-            // A channel never published to (often a typo) is a usage error, not a refusal.
             return Err(crate::failure::usage(anyhow::anyhow!(
                 "channel {channel} was never published to in {}; there is nothing to withdraw \
                  (check the channel name: 'ampoule ledger list --tree {}' shows the channels)",
@@ -502,13 +703,72 @@ impl Tree {
                 self.root.display()
             )));
         }
+        Ok(history)
+    }
+
+    /// Pulls `version`, the current release of `channel`: the release before it becomes
+    /// current again, or the channel offers nothing (`release: null`) when there is none. A
+    /// version withdrawn from the channel before changes nothing.
+    pub fn withdraw(
+        &self,
+        channel: &str,
+        version: &semver::Version,
+        signing: &Signing<'_>,
+    ) -> Result<Withdrawal<Change>> {
+        Ok(match self.plan_withdraw(channel, version, signing)? {
+            Withdrawal::Pending(plan) => Withdrawal::Pending(self.apply(plan, signing)?),
+            Withdrawal::Already(already) => Withdrawal::Already(already),
+        })
+    }
+
+    /// Works out and checks a withdraw of `version`, writing nothing. Only the current release
+    /// can be withdrawn; any other version that was never withdrawn from `channel` is a usage
+    /// error that names the current release.
+    pub fn plan_withdraw(
+        &self,
+        channel: &str,
+        version: &semver::Version,
+        signing: &Signing<'_>,
+    ) -> Result<Withdrawal<Plan>> {
+        let mut history = self.published_history(channel)?;
         let mut stack = history.stack();
-        let Some(current) = stack.pop() else {
-            return Err(Refused(format!(
-                "channel {channel} has no current release in {}; there is nothing to withdraw",
-                self.root.display()
-            ))
-            .into());
+        let same = |v: &semver::Version| v.cmp_precedence(version).is_eq();
+        let current = stack.pop();
+        let offers = current.as_ref().map_or_else(
+            || "it offers nothing now".to_string(),
+            |c| format!("its current release is {} {}", c.name, c.version),
+        );
+        let Some(current) = current.filter(|c| same(&c.version)) else {
+            if stack.iter().any(|r| same(&r.version)) {
+                return Err(crate::failure::usage(anyhow!(
+                    "{version} is an earlier release on channel {channel}, not the current one \
+                     ({offers}); withdraw pulls only the current release"
+                )));
+            }
+            let withdrawn = history.events.iter().rev().find_map(|e| match e {
+                Event::Withdraw {
+                    sequence,
+                    time,
+                    name,
+                    version: v,
+                    ..
+                } if same(v) => Some((*sequence, *time, name.clone(), v.clone())),
+                _ => None,
+            });
+            let Some((sequence, time, name, version)) = withdrawn else {
+                return Err(crate::failure::usage(anyhow!(
+                    "version {version} was never published on channel {channel} ({offers}); \
+                     give --version the release to pull"
+                )));
+            };
+            return Ok(Withdrawal::Already(Box::new(AlreadyWithdrawn {
+                channel: channel.to_string(),
+                name,
+                version,
+                sequence,
+                time,
+                current: history.stack().pop(),
+            })));
         };
         let sequence = self.next_sequence(channel, &history)?;
         let feed = self.feed(channel, sequence, stack.pop(), signing)?;
@@ -525,6 +785,8 @@ impl Tree {
             time: signing.now.unix(),
             feed_sequence: sequence,
         };
+        let entry_index =
+            crate::release::ledger_audit::preview(&self.root, &entry, &signing_keys(signing))?;
         history.events.push(Event::Withdraw {
             sequence,
             time: signing.now,
@@ -532,7 +794,18 @@ impl Tree {
             version: current.version.clone(),
             sha256: current.sha256,
         });
-        self.commit(channel, &history, feed, Some(current), signing, &entry)
+        Ok(Withdrawal::Pending(Plan {
+            action: Action::Withdrawn,
+            channel: channel.to_string(),
+            feed,
+            feed_path: self.feed_path(channel),
+            previous: Some(current),
+            entry,
+            entry_index,
+            history,
+            index: None,
+            bundle: None,
+        }))
     }
 
     pub fn trust_set_path(&self, version: u64) -> PathBuf {
@@ -590,6 +863,7 @@ impl Tree {
     /// tree has none, and the feed key must be able to sign feeds under both. The ledger logs
     /// it (one trust-set entry), then every channel's feed is signed again, naming it.
     pub fn publish_trust_set(&self, bytes: &[u8], signing: &Signing<'_>) -> Result<TrustSetChange> {
+        self.writable()?;
         let current = self.current_trust_set()?;
         let accepted = match &current {
             None => TrustSet::verify_initial(bytes, signing.now),
@@ -632,9 +906,7 @@ impl Tree {
         }
         // The ledger logs the new set before any file names it, so an auditor never learns of
         // a trust set later than devices do.
-        let keys: Vec<&SigningKey> = std::iter::once(signing.key)
-            .chain(signing.tree_head_keys)
-            .collect();
+        let keys = signing_keys(signing);
         let entry = TrustSetEntry {
             event: LedgerEvent::TrustSet,
             trust_set_version: accepted.version(),
@@ -684,14 +956,16 @@ impl Tree {
                 version: published.version,
                 sha256: published.sha256,
             });
-            feeds.push(self.commit(
+            let mut change = self.commit(
                 &channel,
                 &history,
                 feed,
                 Some(release.clone()),
                 signing,
                 &entry,
-            )?);
+            )?;
+            change.action = Action::TrustSetNamed;
+            feeds.push(change);
         }
         Ok(TrustSetChange {
             trust_set: published,
@@ -758,9 +1032,8 @@ impl Tree {
         signing: &Signing<'_>,
         entry: &LedgerEntry,
     ) -> Result<Change> {
-        let keys: Vec<&SigningKey> = std::iter::once(signing.key)
-            .chain(signing.tree_head_keys)
-            .collect();
+        self.writable()?;
+        let keys = signing_keys(signing);
         let named = feed.release.as_ref().map(|r| r.sha256);
         feed.ledger = Some(crate::release::ledger_audit::append(
             &self.root,
@@ -790,17 +1063,20 @@ impl Tree {
             feed_path,
             signer,
             previous,
+            action: Action::Published,
+            entry: entry.clone(),
         })
     }
 
     /// Renames a staged bundle to its content address. A file already there with the same
     /// name holds the same bytes unless it was damaged, so it is checked and replaced if so.
     fn place_bundle(&self, staged: StagedBundle) -> Result<()> {
-        let dest = self.bundle_path(&staged.sha256);
+        self.writable()?;
+        let dest = self.bundle_path(&staged.facts.sha256);
         if let Ok(existing) = File::open(&dest) {
             let (digest, _) = ampoule_verify::digest::hash_reader(existing, u64::MAX)
                 .with_context(|| io_context("read", &dest))?;
-            if digest == staged.sha256 {
+            if digest == staged.facts.sha256 {
                 return Ok(());
             }
         }
