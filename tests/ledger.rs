@@ -175,7 +175,7 @@ fn publish_and_withdraw_append_entries_issue_4() {
     assert_eq!(
         lines[0],
         "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,\
-         feed_sequence,trust_set_version,trust_set_sha256"
+         feed_sequence,trust_set_version,trust_set_sha256,rollout_percent_from_history"
     );
     assert_eq!(lines.len(), 2);
     assert!(
@@ -1115,13 +1115,14 @@ fn a_trust_set_publish_logs_each_renewed_feed_issue_5() {
             "1",
             short_sha.as_str(),
             short_key.as_str(),
+            "-",
             "-"
         ]
     );
     let csv = ok(d, &["ledger", "list", "--tree", "tree", "--csv"]);
     assert_eq!(
         csv.lines().nth(2),
-        Some(format!("1,{time},trust_set,,,,,,{signer},,1,{trust_sha}").as_str())
+        Some(format!("1,{time},trust_set,,,,,,{signer},,1,{trust_sha},").as_str())
     );
 
     // The feed may not pass the trust-set entry off as its release's entry, although that
@@ -1282,4 +1283,77 @@ fn check_compares_trust_set_entries_with_the_tree_files_issue_5() {
         )]
     );
     assert_eq!(over_http(), (1, problems(&report)));
+}
+
+#[test]
+fn issue12_ledger_list_shows_each_publishs_rollout_from_the_history_marked_as_such() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "25");
+    // The same release again at a wider rollout: a renewal, logged as a second publish entry.
+    publish(d, &v1, "stable", "100");
+    ok(
+        d,
+        &[
+            "withdraw",
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+            "--version",
+            "1.0.0",
+        ],
+    );
+    let rollouts = |json: &serde_json::Value| -> Vec<serde_json::Value> {
+        json["entries"]
+            .as_array()
+            .expect("entries")
+            .iter()
+            .map(|e| e["rollout_percent_from_history"].clone())
+            .collect()
+    };
+    let listed: serde_json::Value =
+        serde_json::from_str(&ok(d, &["--json", "ledger", "list", "--tree", "tree"]))
+            .expect("list --json");
+    assert_eq!(
+        rollouts(&listed),
+        [
+            serde_json::json!(25),
+            serde_json::json!(100),
+            serde_json::Value::Null
+        ]
+    );
+    assert_eq!(
+        listed["rollout_source"],
+        "history/ files of the tree, not covered by the ledger"
+    );
+    let text = ok(d, &["ledger", "list", "--tree", "tree"]);
+    let last_cells: Vec<&str> = text
+        .lines()
+        .skip(1)
+        .take(3)
+        .map(|l| l.split_whitespace().last().unwrap_or_default())
+        .collect();
+    assert_eq!(last_cells, ["25%", "100%", "-"], "{text}");
+    assert!(
+        text.contains("* rollout: from the tree's history/ files, which the ledger does not cover"),
+        "{text}"
+    );
+    let csv = ok(d, &["ledger", "list", "--tree", "tree", "--csv"]);
+    let last: Vec<&str> = csv
+        .lines()
+        .skip(1)
+        .map(|l| l.rsplit(',').next().unwrap_or_default())
+        .collect();
+    assert_eq!(last, ["25", "100", ""], "{csv}");
+    // Over HTTP the histories are fetched for the listing too.
+    let served = serve_tree(d, "tree");
+    let url = format!("http://{}/", served.addr);
+    let over_http: serde_json::Value =
+        serde_json::from_str(&ok(d, &["--json", "ledger", "list", "--url", &url]))
+            .expect("list --url --json");
+    assert_eq!(rollouts(&over_http), rollouts(&listed));
 }

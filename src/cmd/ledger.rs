@@ -131,9 +131,6 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
             (size >> level) * 32 + SLACK_BYTES,
         )?;
     }
-    if !whole_tree {
-        return Ok(());
-    }
     // Optional files: what is missing is reported by the checks, not here.
     let heads = fs::read(root.join(ledger(TREE_HEADS))).context("cannot read the fetched log")?;
     let mut sizes: Vec<u64> = heads
@@ -142,10 +139,12 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
         .map(|h| h.head().tree_size)
         .collect();
     sizes.pop();
-    for old in sizes {
-        let _ = fetch(&step_path(old), ampoule_verify::ledger::MAX_STEP_BYTES);
+    if whole_tree {
+        for old in sizes {
+            let _ = fetch(&step_path(old), ampoule_verify::ledger::MAX_STEP_BYTES);
+        }
+        let _ = fetch(crate::release::tree::INDEX_FILE, RECORD_BYTES);
     }
-    let _ = fetch(crate::release::tree::INDEX_FILE, RECORD_BYTES);
     let index: crate::release::tree::Index = fs::read(root.join(crate::release::tree::INDEX_FILE))
         .ok()
         .and_then(|b| serde_json::from_slice(&b).ok())
@@ -168,11 +167,15 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
             bundles.insert(entry.bundle_digest);
         }
     }
+    // `list` shows each publish's rollout from the histories, so they are fetched for it too.
     for channel in channels {
         let _ = fetch(
             &format!("{}/{channel}.json", crate::release::tree::HISTORY_DIR),
             RECORD_BYTES,
         );
+    }
+    if !whole_tree {
+        return Ok(());
     }
     for version in trust_sets {
         // Larger than any valid trust set, so that a grown file is reported changed, not missing.
@@ -272,10 +275,17 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
             rows.push((index, record));
         }
     }
+    let rollouts = rollouts_from_history(&source.root, &rows);
+    let rollout_of = |record: &Record| match record {
+        Record::Bundle(e) if e.event == Event::Publish => {
+            rollouts.get(&(e.channel.clone(), e.feed_sequence)).copied()
+        }
+        _ => None,
+    };
     if args.csv {
         let mut text = String::from(
             "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,\
-             feed_sequence,trust_set_version,trust_set_sha256\n",
+             feed_sequence,trust_set_version,trust_set_sha256,rollout_percent_from_history\n",
         );
         for (index, record) in &rows {
             let fields = match record {
@@ -292,6 +302,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                     e.feed_sequence.to_string(),
                     String::new(),
                     String::new(),
+                    rollout_of(record).map_or_else(String::new, |r| r.to_string()),
                 ],
                 Record::TrustSet(e) => [
                     index.to_string(),
@@ -306,6 +317,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                     String::new(),
                     e.trust_set_version.to_string(),
                     e.trust_set_digest.to_string(),
+                    String::new(),
                 ],
             };
             let fields: Vec<String> = fields.iter().map(|f| csv_field(f)).collect();
@@ -325,6 +337,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         "sha256".into(),
         "signed by".into(),
         "sequence".into(),
+        "rollout*".into(),
     ]];
     for (index, record) in &rows {
         table.push(match record {
@@ -338,6 +351,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                 e.bundle_digest.to_string()[..16].to_string(),
                 key_list(&e.key_ids, ",", 8),
                 e.feed_sequence.to_string(),
+                rollout_of(record).map_or_else(|| "-".into(), |r| format!("{r}%")),
             ],
             Record::TrustSet(e) => [
                 index.to_string(),
@@ -349,10 +363,11 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                 e.trust_set_digest.to_string()[..16].to_string(),
                 key_list(&e.key_ids, ",", 8),
                 "-".into(),
+                "-".into(),
             ],
         });
     }
-    let widths: Vec<usize> = (0..9)
+    let widths: Vec<usize> = (0..10)
         .map(|i| {
             table
                 .iter()
@@ -371,6 +386,10 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         human.push_str(cells.join("  ").trim_end());
         human.push('\n');
     }
+    human.push_str(
+        "* rollout: from the tree's history/ files, which the ledger does not cover (a later \
+         ledger entry format will log it)\n",
+    );
     if let Some(h) = &head {
         human.push_str(&format!(
             "{} of {} shown; tree head size {}, root {}, {} (unchecked: run ledger check)\n",
@@ -388,9 +407,54 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
             "source": source.shown,
             "tree_size": head.map(|h| h.tree_size),
             "root_hash": head.map(|h| h.root_hash),
-            "entries": rows.iter().map(|(i, e)| entry_json(*i, e)).collect::<Vec<_>>(),
+            "entries": rows.iter().map(|(i, e)| {
+                let mut entry = entry_json(*i, e);
+                if let Some(rollout) = rollout_of(e) {
+                    entry["rollout_percent_from_history"] = json!(rollout);
+                }
+                entry
+            }).collect::<Vec<_>>(),
+            "rollout_source": "history/ files of the tree, not covered by the ledger",
         }),
     )
+}
+
+/// The rollout of each publish, by channel and feed sequence, as the tree's history files
+/// record it. The ledger entry does not hold the rollout yet, so what this gives is only as
+/// trustworthy as the tree's files; the listing says so. A missing or unreadable history
+/// gives nothing for its channel.
+fn rollouts_from_history(
+    root: &Path,
+    rows: &[(u64, Record)],
+) -> std::collections::BTreeMap<(String, u64), u8> {
+    use crate::release::tree_records::{Event as HistoryEvent, HISTORY_DIR, History};
+    let channels: BTreeSet<&str> = rows
+        .iter()
+        .filter_map(|(_, r)| match r {
+            Record::Bundle(e) => Some(e.channel.as_str()),
+            Record::TrustSet(_) => None,
+        })
+        .collect();
+    let mut rollouts = std::collections::BTreeMap::new();
+    for channel in channels {
+        let path = root.join(HISTORY_DIR).join(format!("{channel}.json"));
+        let Ok(bytes) = crate::release::files::read_bounded(&path, RECORD_BYTES, "a history file")
+        else {
+            continue;
+        };
+        let Ok(history) = serde_json::from_slice::<History>(&bytes) else {
+            continue;
+        };
+        for event in history.events {
+            if let HistoryEvent::Publish {
+                sequence, release, ..
+            } = event
+            {
+                rollouts.insert((channel.to_string(), sequence), release.rollout_percent);
+            }
+        }
+    }
+    rollouts
 }
 
 fn check(args: LedgerCheckArgs, out: &Output) -> Result<()> {
