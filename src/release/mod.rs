@@ -12,3 +12,4 @@ pub mod serve;
 pub mod synth;
 pub mod tree;
 pub mod tree_records;
+pub mod ustar;

@@ -2,7 +2,8 @@
 //! manifest that binds the result, and the atomic write of the bundle file.
 //!
 //! Every name, limit and layout rule comes from `ampoule_verify` (format, tar, bundle), so
-//! what is written here is exactly what the device-side reader accepts.
+//! what is written here is exactly what the device-side reader accepts; the tar headers
+//! themselves come from the `tar` crate ([`crate::release::ustar`]).
 //!
 //! Packing is meant to take no longer than `tar | zstd | openssl dgst` would, although it
 //! also hashes the model: the thread that reads the model only feeds zstd's workers, while
@@ -28,6 +29,7 @@ use ed25519_dalek::{Signer, SigningKey};
 use indicatif::ProgressBar;
 
 use crate::release::atomic::{Placement, place, temp_beside};
+use crate::release::ustar;
 use semver::{Version, VersionReq};
 
 /// The zstd level for payloads: on weight-like float data higher levels buy almost nothing
@@ -270,8 +272,7 @@ fn write_payload(
         enc.include_contentsize(true)?;
         enc.set_pledged_src_size(Some(inner_tar_len(model_len, labels_file)))?;
 
-        let zeros = [0u8; 512];
-        enc.write_all(&tar::header(&spec.model_path, model_len, mtime))?;
+        ustar::write_header(&mut enc, &spec.model_path, model_len, mtime)?;
         let mut seen = 0u64;
         let mut buf = Vec::with_capacity(CHUNK);
         loop {
@@ -300,11 +301,9 @@ fn write_payload(
                 spec.model.display()
             );
         }
-        enc.write_all(&zeros[..tar::padding(model_len) as usize])?;
-        enc.write_all(&tar::header(entry::LABELS, labels_file.len() as u64, mtime))?;
-        enc.write_all(labels_file)?;
-        enc.write_all(&zeros[..tar::padding(labels_file.len() as u64) as usize])?;
-        enc.write_all(&tar::END_OF_ARCHIVE)?;
+        ustar::write_padding(&mut enc, model_len)?;
+        ustar::write_entry(&mut enc, entry::LABELS, labels_file, mtime)?;
+        ustar::write_end(&mut enc)?;
         let mut sink = enc
             .finish()
             .context("cannot finish compressing the payload")?;
@@ -457,7 +456,7 @@ fn pack_guessing(
     let bundle_len = if offset == guess {
         let file = temp.as_file_mut();
         file.seek(SeekFrom::Start(0))?;
-        bundle::write_head(
+        ustar::write_head(
             file,
             parts.mtime,
             parts.manifest,
@@ -465,7 +464,7 @@ fn pack_guessing(
             payload_len,
         )
         .and_then(|()| file.seek(SeekFrom::Start(guess + payload_len)))
-        .and_then(|_| bundle::write_tail(file, payload_len))
+        .and_then(|_| ustar::write_tail(file, payload_len))
         .with_context(|| format!("cannot write bundle {}", out.display()))?;
         place(out, temp, Placement::New)?
     } else {
@@ -498,7 +497,7 @@ pub fn write_bundle_file(
     placement: Placement<'_>,
 ) -> Result<u64> {
     let mut temp = temp_beside(out)?;
-    bundle::write_bundle(
+    ustar::write_bundle(
         temp.as_file_mut(),
         parts.mtime,
         parts.manifest,

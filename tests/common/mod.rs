@@ -5,6 +5,9 @@
 //! Each test file uses only some of these, hence the `dead_code` allowance.
 #![allow(dead_code)]
 
+#[path = "../bundle_check/mod.rs"]
+pub mod bundle_check;
+
 use std::ffi::OsStr;
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -168,6 +171,12 @@ impl Env {
             &indicatif::ProgressBar::hidden(),
         )
         .expect("pack");
+        bundle_check::assert_readers_accept(
+            env!("CARGO_BIN_EXE_ampoule"),
+            &out,
+            Some(&self.path(PUBLIC)),
+            "model.onnx",
+        );
         out
     }
 

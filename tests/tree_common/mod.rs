@@ -3,6 +3,9 @@
 //! invented trail-camera model, publish them into a release tree.
 #![allow(dead_code)]
 
+#[path = "../bundle_check/mod.rs"]
+pub mod bundle_check;
+
 use std::path::Path;
 use std::process::{Command, Output};
 
@@ -83,6 +86,14 @@ pub fn pack(d: &Path, version: &str, variant: u8, key: &str) -> String {
             "-o",
             &out,
         ],
+    );
+    // The tests name key pairs X.pem and X.pub.
+    let public = d.join(format!("{}.pub", key.trim_end_matches(".pem")));
+    bundle_check::assert_readers_accept(
+        BIN,
+        &d.join(&out),
+        public.is_file().then_some(public.as_path()),
+        "model.bin",
     );
     out
 }

@@ -5,6 +5,22 @@
 //! links; this module instead accepts exactly what the writer produces: regular-file headers with
 //! the POSIX `ustar\0` magic, short names, octal sizes, a correct checksum, zero padding and the
 //! two zero blocks at the end. Everything else is refused with the reason.
+//!
+//! Why the device's reader stays hand-written while the release side (`ampoule pack`, in
+//! `src/release/ustar.rs`) writes its archives with the `tar` crate:
+//! - Bounded reading: every size is checked against the format's caps before a byte of the
+//!   entry is read, and the payload is streamed, never held; a general reader buffers GNU
+//!   long names and pax extension payloads in memory before the caller sees the entry.
+//! - A fixed subset: exactly the headers a bundle has (plain short names in a fixed order,
+//!   regular files, the POSIX magic, a correct checksum, zero padding, nothing after the end
+//!   marker), so anything else is refused with its reason rather than interpreted.
+//! - No GNU or pax extensions, links, devices or directories to get wrong on a device.
+//! - No dependency: the library apps embed stays small, within its size budget, and its
+//!   whole reading path can be audited in this one file.
+//!
+//! The writer here ([`header`]) remains for the offline file, the library's `release` feature
+//! and tests that lay out hostile bundles by hand; both writers' headers pass this reader, and
+//! the pack tests check every bundle they make with it and with GNU tar.
 
 use std::io::{self, Read};
 
