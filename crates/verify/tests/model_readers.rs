@@ -580,8 +580,49 @@ fn class_count_finds_the_classifier_output() {
         two.class_count(Some("species"))
             .expect_err("symbolic")
             .to_string(),
-        "output 'species' has shape [N, C]: its last dimension (the class count) is not fixed"
+        "output 'species' has shape [N, C]: its class count cannot be determined (neither its \
+         last dimension nor a single dimension after the first is a fixed size above 1 with \
+         every other one fixed at 1)"
     );
+}
+
+/// Issue 11's rule for the class dimension, on the output shapes its table names, each from a
+/// model file that ships inside a Python-registry package: image classifiers of a model zoo
+/// (`[1, 1000]`), older image classifiers whose last layer is a convolution
+/// (`[1, 1000, 1, 1]`), an OCR text recognizer (`[N, T, 6625]`), a voice-activity model
+/// (`[batch, 1]`), and a segmentation-like output whose class count no rule can read
+/// (`[N, 1, H, W]`). The shapes are as the issue reports them (from onnx's reading of those
+/// files), not re-read here.
+#[test]
+fn issue11_the_class_dimension_rule_reads_real_output_shapes() {
+    let float = signature(ONNX_FIXTURES[0].name, ONNX_FIXTURES[0].bytes);
+    let fixed = |n: u64| Dim::Fixed(n);
+    let named = |s: &str| Dim::Symbolic(s.into());
+    let count = |shape: Vec<Dim>| {
+        let mut sig = float.clone();
+        sig.outputs[0].shape = Some(shape);
+        sig.class_count(None).ok()
+    };
+    assert_eq!(count(vec![fixed(1), fixed(1000)]), Some(1000));
+    assert_eq!(
+        count(vec![fixed(1), fixed(1000), fixed(1), fixed(1)]),
+        Some(1000)
+    );
+    assert_eq!(count(vec![named("N"), named("T"), fixed(6625)]), Some(6625));
+    assert_eq!(count(vec![named("batch"), fixed(1)]), Some(1));
+    assert_eq!(
+        count(vec![named("N"), fixed(1), named("H"), named("W")]),
+        None
+    );
+    // And the edges of the rule: two dimensions above 1 after the batch, or one not fixed.
+    assert_eq!(count(vec![fixed(1), fixed(10), fixed(10), fixed(1)]), None);
+    assert_eq!(count(vec![fixed(1), fixed(1000), named("X")]), None);
+    // A label list of 1000 fits the older classifier's output; one label does not.
+    let mut conv = float.clone();
+    conv.outputs[0].shape = Some(vec![fixed(1), fixed(1000), fixed(1), fixed(1)]);
+    conv.check_label_count(None, 1000)
+        .expect("1000 labels for 1000 classes");
+    assert!(conv.check_label_count(None, 1).is_err());
 }
 
 #[test]
@@ -1091,6 +1132,17 @@ fn hostile_safetensors_offsets() {
         (sig.weight_tensors, sig.parameters, sig.weights_8bit),
         (0, 0, false)
     );
+}
+
+/// The two FNUZ float8 types, named as safetensors 0.8.0 writes and reads them: the names are
+/// taken from that PyPI wheel's own library (`F8_E4M3FNUZ`, `F8_E5M2FNUZ`, beside
+/// `F8_E4M3` and `F8_E5M2`), and the ONNX codes 18 and 20 from onnx.proto's DataType.
+#[test]
+fn issue11_safetensors_fnuz_float8_tensors_are_read() {
+    let header = r#"{"a":{"dtype":"F8_E4M3FNUZ","shape":[2,3],"data_offsets":[0,6]},"b":{"dtype":"F8_E5M2FNUZ","shape":[4],"data_offsets":[6,10]}}"#;
+    let sig = signature(ST, &safetensors(header, 10));
+    assert_eq!((sig.weight_tensors, sig.parameters), (2, 10));
+    assert!(sig.weights_8bit, "one-byte floats are 8-bit weights");
 }
 
 #[test]

@@ -185,9 +185,10 @@ const DTYPES: [(DType, &str, i64, Option<&str>); 28] = [
     (DType::Complex128, "complex128", 15, None),
     (DType::Bfloat16, "bfloat16", 16, Some("BF16")),
     (DType::Float8E4M3Fn, "float8e4m3fn", 17, Some("F8_E4M3")),
-    (DType::Float8E4M3Fnuz, "float8e4m3fnuz", 18, None),
+    // The two FNUZ names as the safetensors 0.8.0 wheel's library spells them (issue 11).
+    (DType::Float8E4M3Fnuz, "float8e4m3fnuz", 18, Some("F8_E4M3FNUZ")),
     (DType::Float8E5M2, "float8e5m2", 19, Some("F8_E5M2")),
-    (DType::Float8E5M2Fnuz, "float8e5m2fnuz", 20, None),
+    (DType::Float8E5M2Fnuz, "float8e5m2fnuz", 20, Some("F8_E5M2FNUZ")),
     (DType::Uint4, "uint4", 21, None),
     (DType::Int4, "int4", 22, None),
     (DType::Float4E2M1, "float4e2m1", 23, Some("F4")),
@@ -593,8 +594,15 @@ impl ModelSignature {
         }
     }
 
-    /// The class count of the classifier output (the one named, or else the only output): the
-    /// last dimension of its shape, which must be fixed.
+    /// The class count of the classifier output (the one named, or else the only output), by
+    /// this rule:
+    ///
+    /// 1. the last dimension, when it is fixed and larger than 1 (`[N, 7]`, `[N, T, 6625]`);
+    /// 2. else, with dimension 0 (the batch) dropped, the one dimension that is fixed and
+    ///    larger than 1 when every other one is fixed at 1 (`[1, 1000, 1, 1]`, the shape of
+    ///    older image classifiers whose last layer is a convolution);
+    /// 3. else 1 when every dimension after the first is fixed at 1 (`[batch, 1]`);
+    /// 4. else the count cannot be determined (`[N, 1, H, W]`), and this is an error.
     pub fn class_count(&self, output: Option<&str>) -> Result<u64> {
         let value = self.classifier_output(output)?;
         let refuse = |why: String| {
@@ -614,13 +622,14 @@ impl ModelSignature {
                 "has no recorded shape, so its class count is unknown".into(),
             )),
             Some([]) => Err(refuse("is a scalar, not a tensor of class scores".into())),
-            Some(shape) => match shape.last() {
-                Some(Dim::Fixed(classes)) => Ok(*classes),
-                _ => Err(refuse(format!(
-                    "has shape {}: its last dimension (the class count) is not fixed",
+            Some(shape) => class_dimension(shape).ok_or_else(|| {
+                refuse(format!(
+                    "has shape {}: its class count cannot be determined (neither its last \
+                     dimension nor a single dimension after the first is a fixed size above \
+                     1 with every other one fixed at 1)",
                     ShapeDisplay(shape)
-                ))),
-            },
+                ))
+            }),
         }
     }
 
@@ -655,6 +664,30 @@ impl ModelSignature {
             float32_as_8bit_bytes,
             estimated_8bit_total_bytes: total_bytes - float32_bytes + float32_as_8bit_bytes,
         }
+    }
+}
+
+/// The class count of a tensor shape by the rule of [`ModelSignature::class_count`]; `None`
+/// when the rule cannot tell.
+fn class_dimension(shape: &[Dim]) -> Option<u64> {
+    let fixed = |dim: &Dim| match dim {
+        Dim::Fixed(size) => Some(*size),
+        Dim::Symbolic(_) | Dim::Unknown => None,
+    };
+    if let Some(last) = shape.last().and_then(fixed)
+        && last > 1
+    {
+        return Some(last);
+    }
+    // Dimension 0 is the batch; every other one must be fixed for the rule to say anything.
+    let rest: Vec<u64> = shape.get(1..)?.iter().map(fixed).collect::<Option<_>>()?;
+    let mut above_one = rest.iter().copied().filter(|&size| size > 1);
+    match (above_one.next(), above_one.next()) {
+        (None, _) if rest.iter().all(|&size| size == 1) => Some(1),
+        (Some(classes), None) if rest.iter().all(|&size| size == 1 || size == classes) => {
+            Some(classes)
+        }
+        _ => None,
     }
 }
 
