@@ -247,3 +247,78 @@ fn inspect_shows_the_signature_and_the_8bit_estimate() {
     assert_eq!(doc["size_report"]["float32_bytes"], 588);
     assert_eq!(doc["size_report"]["float32_as_8bit_bytes"], 147);
 }
+
+/// Issue 11 item 7: `diff` reports every model-wide change an app's compatibility policy can
+/// refuse, and marks it. The fixtures are the committed models made with the onnx package
+/// (`crates/verify/tests/data/models/gen_models.py`): `trailcam-oldstyle.onnx` imports
+/// operator set 8, `trailcam-f32.onnx` set 13 with float weights, `trailcam-int8.onnx` set 13
+/// with 8-bit weights, as each file's `.json` beside it records from onnx's own reading.
+#[test]
+fn issue11_diff_reports_opset_8bit_and_format_changes_as_breaking() {
+    let env = Env::new();
+    let fixture = |name: &str| {
+        std::fs::read(
+            std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join(format!("crates/verify/tests/data/models/{name}")),
+        )
+        .expect("fixture")
+    };
+    env.write("old.onnx", &fixture("trailcam-oldstyle.onnx"));
+    env.write("f32.onnx", F32_ONNX);
+    env.write("int8.onnx", &fixture("trailcam-int8.onnx"));
+    env.write("w.safetensors", &fixture("trailcam-int8.safetensors"));
+    env.write("seven.txt", SEVEN.as_bytes());
+    for (model, version, out) in [
+        ("old.onnx", "1.0.0", "a.ampoule"),
+        ("f32.onnx", "1.1.0", "b.ampoule"),
+        ("int8.onnx", "1.2.0", "c.ampoule"),
+        ("w.safetensors", "1.3.0", "d.ampoule"),
+    ] {
+        let run = pack(&env, model, "seven.txt", version, out, &[]);
+        assert_eq!(run.code, 0, "{run:?}");
+    }
+    let breaking = |old: &str, new: &str| -> Vec<String> {
+        let doc = json(&env.run(["--json", "diff", old, new]));
+        doc["breaking"]
+            .as_array()
+            .expect("breaking")
+            .iter()
+            .map(|v| v.as_str().expect("text").to_string())
+            .collect()
+    };
+    assert!(
+        breaking("a.ampoule", "b.ampoule").contains(&"operator set raised: 8 -> 13".to_string())
+    );
+    // Going back down crosses no app's cap: reported, not breaking.
+    let run = env.run(["diff", "b.ampoule", "a.ampoule"]);
+    assert!(
+        run.stdout.contains("\noperator set lowered: 13 -> 8\n"),
+        "{}",
+        run.stdout
+    );
+    assert!(
+        !breaking("b.ampoule", "a.ampoule")
+            .iter()
+            .any(|b| b.starts_with("operator set"))
+    );
+    // The 8-bit model also takes uint8 frames: both are breaking, each named.
+    assert_eq!(
+        breaking("b.ampoule", "c.ampoule"),
+        [
+            "input changed: image: float32 [N, 3, 96, 96] -> image: uint8 [N, 3, 96, 96]",
+            "weights changed: float -> 8-bit"
+        ]
+    );
+    assert!(
+        breaking("c.ampoule", "d.ampoule")
+            .contains(&"model format changed: onnx -> safetensors".to_string())
+    );
+    let run = env.run(["diff", "b.ampoule", "c.ampoule", "--fail-on", "breaking"]);
+    assert_eq!(run.code, 1, "{run:?}");
+    assert!(
+        run.stdout
+            .contains("WARNING: weights changed: float -> 8-bit"),
+        "{}",
+        run.stdout
+    );
+}

@@ -141,6 +141,7 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
     let (new_in, new_out) = signature_parts(nm.model.as_ref());
     let inputs = tensor_diff(old_in, new_in);
     let outputs = tensor_diff(old_out, new_out);
+    let model = model_changes(om.model.as_ref(), nm.model.as_ref());
     let params = |m: &Manifest| m.model.as_ref().map_or(0, |s| s.parameters);
     let signers_added: Vec<String> = new
         .signers
@@ -184,6 +185,10 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
         for r in &diff.removed {
             line(format!("WARNING: {what} removed: {r}"));
         }
+    }
+    for change in &model {
+        let mark = if change.breaking { "WARNING: " } else { "" };
+        line(format!("{mark}{}", change.text));
     }
     line(format!(
         "labels: {} -> {}; added: {}; removed: {}",
@@ -247,7 +252,8 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
         "(signatures not checked: diff compares contents; use verify to check who signed)"
             .to_string(),
     );
-    let breaking = breaking_changes(&moved, &removed, &inputs, &outputs);
+    let mut breaking = breaking_changes(&moved, &removed, &inputs, &outputs);
+    breaking.extend(model.iter().filter(|c| c.breaking).map(|c| c.text.clone()));
     let doc = json!({
             "ok": true,
             "breaking": breaking,
@@ -262,6 +268,7 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
             },
             "inputs": inputs,
             "outputs": outputs,
+            "model": model,
             "parameters": { "old": params(om), "new": params(nm) },
             "model_bytes": { "old": om.model().size, "new": nm.model().size },
             "bundle_bytes": { "old": old.size, "new": new.size },
@@ -280,6 +287,62 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
     );
     out.result(&human, failed_report(doc, &message, Kind::BreakingChange))?;
     Err(Failure::reported(Kind::BreakingChange, message))
+}
+
+/// A change of the model as a whole that an app's compatibility policy can refuse.
+#[derive(Debug, Serialize)]
+struct ModelChange {
+    /// What changed, old -> new.
+    text: String,
+    /// Whether an app built for the old bundle may refuse or misread the new one.
+    breaking: bool,
+}
+
+/// The model-wide changes a `CompatibilityPolicy` checks: the file format (a policy can
+/// require one), the ONNX operator set (a policy can cap it: only a raise can cross the cap),
+/// and 8-bit against float weights (a policy can require either). Tensor names, dtypes and
+/// shapes, and labels, are compared elsewhere.
+fn model_changes(old: Option<&ModelSignature>, new: Option<&ModelSignature>) -> Vec<ModelChange> {
+    let format = |s: Option<&ModelSignature>| s.map_or("opaque", |s| s.format.name());
+    let mut changes = Vec::new();
+    if format(old) != format(new) {
+        changes.push(ModelChange {
+            text: format!("model format changed: {} -> {}", format(old), format(new)),
+            breaking: true,
+        });
+    }
+    let (Some(old), Some(new)) = (old, new) else {
+        return changes;
+    };
+    if old.opset != new.opset {
+        let shown = |o: Option<u64>| o.map_or_else(|| "none".to_string(), |v| v.to_string());
+        let raised = match (old.opset, new.opset) {
+            (Some(a), Some(b)) => b > a,
+            (None, Some(_)) => true,
+            _ => false,
+        };
+        changes.push(ModelChange {
+            text: format!(
+                "operator set {}: {} -> {}",
+                if raised { "raised" } else { "lowered" },
+                shown(old.opset),
+                shown(new.opset)
+            ),
+            breaking: raised,
+        });
+    }
+    if old.weights_8bit != new.weights_8bit {
+        let kind = |eight: bool| if eight { "8-bit" } else { "float" };
+        changes.push(ModelChange {
+            text: format!(
+                "weights changed: {} -> {}",
+                kind(old.weights_8bit),
+                kind(new.weights_8bit)
+            ),
+            breaking: true,
+        });
+    }
+    changes
 }
 
 /// The changes that make an app built for the old bundle misread the new one, as the README
