@@ -29,6 +29,18 @@ fn pack_args<'a>(out: &'a str, extra: &[&'a str]) -> Vec<&'a str> {
     args
 }
 
+/// Every valid bundle pack writes here also passes the device's reader and, where installed,
+/// GNU tar (issue 12 item 7); `signed` says whether the whole device check can run.
+fn readers_accept(env: &Env, out: &str, signed: bool) {
+    let public = env.path(PUBLIC);
+    bundle_check::assert_readers_accept(
+        env!("CARGO_BIN_EXE_ampoule"),
+        &env.path(out),
+        signed.then_some(public.as_path()),
+        "model.onnx",
+    );
+}
+
 fn json(run: &Run) -> Value {
     serde_json::from_str(&run.stdout)
         .unwrap_or_else(|e| panic!("stdout is not one JSON document ({e}): {run:?}"))
@@ -149,6 +161,7 @@ fn json_for_every_command() {
     ));
     let pack = env.run(&args);
     assert_eq!(pack.code, 0, "{pack:?}");
+    readers_accept(&env, "j.ampoule", true);
     let doc = json(&pack);
     assert_eq!(
         (&doc["ok"], &doc["signed"], &doc["manifest"]["version"]),
@@ -332,6 +345,7 @@ fn signing_twice_with_one_key_changes_nothing() {
     let env = Env::new();
     let run = env.run(pack_args("s.ampoule", &["--created", CREATED]));
     assert_eq!(run.code, 0, "{run:?}");
+    readers_accept(&env, "s.ampoule", false);
     let run = env.run(["sign", "s.ampoule", "--key", SECRET]);
     assert_eq!(
         (run.code, run.stdout),
@@ -364,6 +378,7 @@ fn signing_twice_with_one_key_changes_nothing() {
         &["--created", CREATED, "--key", SECRET],
     ));
     assert_eq!(run.code, 0, "{run:?}");
+    readers_accept(&env, "p.ampoule", true);
     assert_eq!(env.read("p.ampoule"), once);
 }
 
@@ -372,6 +387,7 @@ fn unsigned_pack_says_so_and_verify_refuses_it() {
     let env = Env::new();
     let run = env.run(pack_args("u.ampoule", &["--created", CREATED]));
     assert_eq!(run.code, 0, "{run:?}");
+    readers_accept(&env, "u.ampoule", false);
     let lines: Vec<&str> = run.stdout.lines().collect();
     assert_eq!(
         lines[1],
@@ -485,6 +501,7 @@ fn packing_is_deterministic() {
     let pack = |out: &str, extra: &[&str], vars: &[(&str, &str)]| {
         let run = env.run_env(pack_args(out, extra), vars);
         assert_eq!(run.code, 0, "{run:?}");
+        readers_accept(&env, out, extra.contains(&"--key"));
         env.read(out)
     };
     let signed = ["--key", SECRET];

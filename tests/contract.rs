@@ -304,6 +304,13 @@ fn pack_with_labels(env: &Env, labels: &str, version: &str, out: &str) {
         out,
     ]);
     assert_eq!(run.code, 0, "{run:?}");
+    // Unsigned, so the device's layout reader and GNU tar (issue 12 item 7).
+    bundle_check::assert_readers_accept(
+        env!("CARGO_BIN_EXE_ampoule"),
+        &env.path(out),
+        None,
+        "model.onnx",
+    );
 }
 
 #[test]

@@ -1,5 +1,8 @@
 //! `ampoule demo` runs the whole story and every attack in it is refused.
 
+#[path = "bundle_check/mod.rs"]
+mod bundle_check;
+
 use std::process::Command;
 
 #[test]
@@ -17,6 +20,25 @@ fn demo_runs_and_refuses_every_attack() {
         String::from_utf8_lossy(&out.stderr)
     );
     let doc: serde_json::Value = serde_json::from_slice(&out.stdout).expect("demo --json is JSON");
+    // Every bundle the demo packed (the served copy it tampers with is in the tree, not here)
+    // passes the device's layout reader and GNU tar (issue 12 item 7).
+    let mut bundles = 0;
+    for entry in std::fs::read_dir(&work).expect("demo dir") {
+        let path = entry.expect("entry").path();
+        if path.extension().is_some_and(|e| e == "ampoule") {
+            bundle_check::assert_readers_accept(
+                env!("CARGO_BIN_EXE_ampoule"),
+                &path,
+                None,
+                "model.onnx",
+            );
+            bundles += 1;
+        }
+    }
+    assert!(
+        bundles >= 3,
+        "the demo packs several bundles, found {bundles}"
+    );
     let steps: Vec<&str> = doc["steps"]
         .as_array()
         .expect("steps")

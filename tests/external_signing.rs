@@ -5,6 +5,9 @@
 //! (RFC 8032 section 5.1.6); `pkeyutl -verify -rawin` checks one. Each test prints why it
 //! skipped when openssl is missing.
 
+#[path = "bundle_check/mod.rs"]
+mod bundle_check;
+
 use std::path::Path;
 use std::process::Command;
 
@@ -126,6 +129,13 @@ fn pack_unsigned(dir: &Path) {
             "-o",
             "species.ampoule",
         ],
+    );
+    // Unsigned: the device's layout reader and GNU tar (issue 12 item 7).
+    bundle_check::assert_readers_accept(
+        env!("CARGO_BIN_EXE_ampoule"),
+        &dir.join("species.ampoule"),
+        None,
+        "model.bin",
     );
 }
 

@@ -40,6 +40,12 @@ fn packed(env: &Env) -> std::path::PathBuf {
         "species.ampoule",
     ]);
     assert_eq!(run.code, 0, "{run:?}");
+    bundle_check::assert_readers_accept(
+        env!("CARGO_BIN_EXE_ampoule"),
+        &env.path("species.ampoule"),
+        Some(&env.path(PUBLIC)),
+        "model.onnx",
+    );
     env.path("species.ampoule")
 }
 

@@ -196,6 +196,12 @@ fn issue12_counts_of_one_are_singular() {
         args.extend_from_slice(key);
         let run = env.run(&args);
         assert_eq!(run.code, 0, "{run:?}");
+        bundle_check::assert_readers_accept(
+            env!("CARGO_BIN_EXE_ampoule"),
+            &env.path(out),
+            None,
+            "model.onnx",
+        );
     };
     pack("1.0.0", "a.ampoule", &[]);
     let run = env.run(["sign", "a.ampoule", "--key", SECRET]);

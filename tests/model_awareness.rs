@@ -42,7 +42,19 @@ fn pack(
         out,
     ];
     args.extend_from_slice(extra);
-    env.run(&args)
+    let run = env.run(&args);
+    if run.code == 0 {
+        // Every bundle made here, real-model fixtures included, passes the device's reader
+        // and GNU tar (issue 12 item 7).
+        let extension = model.rsplit('.').next().unwrap_or("bin");
+        common::bundle_check::assert_readers_accept(
+            env!("CARGO_BIN_EXE_ampoule"),
+            &env.path(out),
+            Some(&env.path(common::PUBLIC)),
+            &format!("model.{extension}"),
+        );
+    }
+    run
 }
 
 fn json(run: &common::Run) -> Value {

@@ -1,6 +1,9 @@
 //! Trust sets from the command line (issue 5): bundle thresholds, rotation, revocation,
 //! rollback of trust, refusals with their exact messages, and no secret in any output.
 
+#[path = "bundle_check/mod.rs"]
+mod bundle_check;
+
 use std::fs::File;
 use std::path::Path;
 use std::process::Command;
@@ -110,6 +113,13 @@ fn pack(dir: &Path, key: Option<&str>, out: &str) {
         args.extend(["--key", s.as_str()]);
     }
     ok(dir, &args);
+    // Signed by trust-set keys here, so the device's layout reader and GNU tar.
+    bundle_check::assert_readers_accept(
+        env!("CARGO_BIN_EXE_ampoule"),
+        &dir.join(out),
+        None,
+        "model.bin",
+    );
 }
 
 /// Three keys a, b, c in a trust set needing 2 of them for bundles and trust sets, signed

@@ -134,7 +134,10 @@ pub fn pinned_app(d: &Path) -> App {
         Signers::new(keys.clone(), 1).expect("feed signers"),
         Signers::new(keys, 1).expect("tree-head signers"),
     );
+    // Tests in one binary start `ampoule` processes while others hold a store's lock; a started
+    // process briefly holds a copy of every open file, so a test device waits a little.
     App::new(trust, Version::new(2, 3, 0))
+        .wait_for_lock(std::time::Duration::from_secs(5))
         .device_id("camera-7")
         .expect("device id")
 }

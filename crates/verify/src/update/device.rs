@@ -13,6 +13,7 @@
 use std::fs::{self, File, TryLockError};
 use std::io::{self, Read, Write};
 use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
 
 use crate::check::bundle::Verifier;
 use crate::error::{Error, ErrorKind, Result};
@@ -31,6 +32,8 @@ pub(crate) const DOWNLOADS_DIR: &str = "downloads";
 const DOWNLOAD_LOCK: &str = "lock";
 /// The longest device id accepted.
 pub const DEVICE_ID_BYTES: usize = 128;
+/// How often a waiting update tries the lock again.
+const LOCK_POLL: Duration = Duration::from_millis(20);
 
 /// One device following one channel into one store, for one app (see the module
 /// documentation of [`crate::update`]).
@@ -58,7 +61,7 @@ impl Device {
         crate::check::feed::check_channel(channel)
             .map_err(|e| Error::new(ErrorKind::Settings, e.to_string()))?;
         let held = Held::load(&app.trust, dir, now)?;
-        let store = Store::open(dir, bundle_verifier(&app, &held)?)?;
+        let store = Store::open(dir, bundle_verifier(&app, &held)?)?.wait_for_lock(app.lock_wait);
         let device_id = match &app.device_id {
             Some(id) => id.clone(),
             None => stored_device_id(dir)?,
@@ -272,17 +275,26 @@ impl Device {
             .write(true)
             .open(&path)
             .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?;
-        match file.try_lock() {
-            Ok(()) => Ok(file),
-            Err(TryLockError::WouldBlock) => Err(Error::new(
-                ErrorKind::Locked,
-                format!(
-                    "another update is running on store {}; try again when it has finished",
-                    self.store.dir().display()
-                ),
-            )),
-            Err(TryLockError::Error(e)) => {
-                Err(Error::io(format!("cannot lock {}", path.display()), e))
+        let deadline = Instant::now() + self.app.lock_wait;
+        loop {
+            match file.try_lock() {
+                Ok(()) => return Ok(file),
+                Err(TryLockError::WouldBlock) if Instant::now() < deadline => {
+                    std::thread::sleep(LOCK_POLL);
+                }
+                Err(TryLockError::WouldBlock) => {
+                    return Err(Error::new(
+                        ErrorKind::Locked,
+                        format!(
+                            "another update is running on store {}; try again when it has \
+                             finished",
+                            self.store.dir().display()
+                        ),
+                    ));
+                }
+                Err(TryLockError::Error(e)) => {
+                    return Err(Error::io(format!("cannot lock {}", path.display()), e));
+                }
             }
         }
     }

@@ -33,6 +33,7 @@ mod outcome;
 mod session;
 
 use std::fmt;
+use std::time::Duration;
 
 use semver::Version;
 
@@ -136,6 +137,7 @@ pub struct App {
     device_id: Option<String>,
     progress: Option<ProgressFn>,
     ledger: Ledger,
+    lock_wait: Duration,
 }
 
 /// Whether feeds must prove their release in the audit ledger: always, except through
@@ -175,6 +177,7 @@ impl App {
             device_id: None,
             progress: None,
             ledger: Ledger::Required,
+            lock_wait: Duration::ZERO,
         }
     }
 
@@ -223,6 +226,15 @@ impl App {
         device::check_device_id(&id)?;
         self.device_id = Some(id);
         Ok(self)
+    }
+
+    /// How long an update (or a rollback or clean-up) waits for another one on the same store
+    /// to finish before it fails with [`ErrorKind::Locked`]; zero, the default, fails at once.
+    /// An app that starts other processes while it updates should allow a little: a process
+    /// being started briefly holds a copy of every open file, locks included.
+    pub fn wait_for_lock(mut self, wait: Duration) -> App {
+        self.lock_wait = wait;
+        self
     }
 
     /// Calls `progress` while a bundle downloads (with `fetch`), is hashed and is unpacked.
