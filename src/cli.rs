@@ -706,7 +706,7 @@ pub struct PublishArgs {
     pub mirror: Vec<String>,
     /// Make every check and show the sequence, release, rollout and ledger entry the publish
     /// would write, and write nothing.
-    #[arg(long, conflicts_with = "trust_set")]
+    #[arg(long)]
     pub dry_run: bool,
 }
 

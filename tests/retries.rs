@@ -443,3 +443,61 @@ fn issue12_withdraw_dry_run_writes_nothing() {
         assert_eq!(dry[field], real[field], "{field}");
     }
 }
+
+#[test]
+fn issue12_publish_of_a_trust_set_dry_run_checks_everything_and_writes_nothing() {
+    let dir = setup();
+    let d = dir.path();
+    two_releases(d);
+    // A first trust set: the test key with every role, signed by it.
+    for args in [
+        &[
+            "trust",
+            "init",
+            "--key",
+            "k.pub",
+            "--expires-in",
+            "365d",
+            "-o",
+            "trust-1.json",
+        ][..],
+        &["trust", "sign", "trust-1.json", "--key", "k.pem"][..],
+    ] {
+        ok(d, args);
+    }
+    let before = snapshot(&d.join("tree"));
+    let args = [
+        "--json",
+        "publish",
+        "--trust-set",
+        "trust-1.json",
+        "--tree",
+        "tree",
+        "--key",
+        "k.pem",
+        "--dry-run",
+    ];
+    let planned = json(&ok(d, &args));
+    assert_eq!(
+        snapshot(&d.join("tree")),
+        before,
+        "a dry run writes nothing"
+    );
+    assert_eq!(planned["dry_run"], true);
+    assert_eq!(planned["trust_set_version"], 1);
+    assert_eq!(planned["ledger_entry"]["event"], "trust_set");
+    assert_eq!(planned["renewed"][0]["channel"], "stable");
+    let sequence = planned["renewed"][0]["sequence"].clone();
+    // The real publish then writes what the dry run showed.
+    let done = json(&ok(d, &args[..args.len() - 1]));
+    assert_eq!(done["feeds"][0]["sequence"], sequence, "{done}");
+    // A set the tree refuses is refused by the dry run too, and nothing is written.
+    let before = snapshot(&d.join("tree"));
+    let (code, err) = refused(d, &args);
+    assert_eq!(code, 1, "{err}");
+    assert!(
+        err.contains("trust set version 1 is not newer than the trusted version 1"),
+        "{err}"
+    );
+    assert_eq!(snapshot(&d.join("tree")), before);
+}

@@ -14,7 +14,9 @@ use crate::cli::PublishArgs;
 use crate::cmd::{load_trust_named, name_trusted, passphrase_source};
 use crate::output::Output;
 use crate::release::keyfile;
-use crate::release::tree::{Action, Change, Plan, Signing, Tree, check_bundle, parse_duration};
+use crate::release::tree::{
+    Action, Change, Plan, Signing, Tree, TrustSetPlan, check_bundle, parse_duration,
+};
 
 pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
@@ -131,7 +133,7 @@ fn publish_trust_set(
             )
         })?;
     }
-    let tree = Tree::lock_waiting(&args.tree, std::time::Duration::from_secs(args.lock_wait))?;
+    let wait = std::time::Duration::from_secs(args.lock_wait);
     let signing = Signing {
         key: &key,
         key_file: Some(&args.key),
@@ -139,6 +141,18 @@ fn publish_trust_set(
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
     };
+    if args.dry_run {
+        let tree = Tree::read_only(&args.tree, wait)?;
+        let plan = tree.plan_trust_set(&bytes, &signing).with_context(|| {
+            format!(
+                "trust set {} refused; nothing would be published",
+                path.display()
+            )
+        })?;
+        drop(tree);
+        return report_trust_set_plan(&args.tree, &plan, out);
+    }
+    let tree = Tree::lock_waiting(&args.tree, wait)?;
     let change = tree.publish_trust_set(&bytes, &signing).with_context(|| {
         format!(
             "trust set {} refused; nothing was published",
@@ -390,4 +404,51 @@ pub fn report_plan(
         entry_index: plan.entry_index,
     }
     .print(None, out)
+}
+
+/// What a trust-set publish would write, for `--dry-run`: nothing was written.
+fn report_trust_set_plan(tree: &Path, plan: &TrustSetPlan, out: &Output) -> Result<()> {
+    let entry = &plan.entry;
+    let was = plan
+        .previous_version
+        .map_or_else(|| "none".to_string(), |v| format!("version {v}"));
+    let mut human = format!(
+        "dry run: nothing was written
+would publish trust set version {} (sha256 {}) into \
+         release tree {}
+was: {was}
+would append ledger entry: {}\n",
+        entry.trust_set_version,
+        entry.trust_set_digest,
+        tree.display(),
+        String::from_utf8_lossy(&entry.to_bytes())
+    );
+    for (channel, sequence, release) in &plan.renewed {
+        human.push_str(&format!(
+            "would renew feed {channel} as sequence {sequence}, naming {} {}\n",
+            release.name, release.version
+        ));
+    }
+    if plan.renewed.is_empty() {
+        human.push_str("no channel has a release to renew a feed for\n");
+    }
+    let entry_json: serde_json::Value =
+        serde_json::from_slice(&entry.to_bytes()).expect("a ledger entry is JSON");
+    out.result(
+        &human,
+        serde_json::json!({
+            "ok": true,
+            "dry_run": true,
+            "trust_set_version": entry.trust_set_version,
+            "trust_set_sha256": entry.trust_set_digest,
+            "previous_version": plan.previous_version,
+            "ledger_entry": entry_json,
+            "renewed": plan.renewed.iter().map(|(channel, sequence, release)| serde_json::json!({
+                "channel": channel,
+                "sequence": sequence,
+                "name": release.name,
+                "version": release.version.to_string(),
+            })).collect::<Vec<_>>(),
+        }),
+    )
 }

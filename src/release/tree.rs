@@ -164,6 +164,17 @@ impl TreeTrustSet {
     }
 }
 
+/// What publishing a trust set would do, from [`Tree::plan_trust_set`].
+pub struct TrustSetPlan {
+    /// The ledger entry it would append first.
+    pub entry: TrustSetEntry,
+    /// The version of the tree's trust set now, if it has one.
+    pub previous_version: Option<u64>,
+    /// Each channel whose feed it would renew: the channel, the new feed sequence, and the
+    /// release the renewed feed names.
+    pub renewed: Vec<(String, u64, Release)>,
+}
+
 /// What publishing a trust set wrote.
 pub struct TrustSetChange {
     pub trust_set: TreeTrustSet,
@@ -862,8 +873,46 @@ impl Tree {
     /// successor of the current set (as a device would take it), or as an initial set when the
     /// tree has none, and the feed key must be able to sign feeds under both. The ledger logs
     /// it (one trust-set entry), then every channel's feed is signed again, naming it.
-    pub fn publish_trust_set(&self, bytes: &[u8], signing: &Signing<'_>) -> Result<TrustSetChange> {
-        self.writable()?;
+    /// What [`Tree::publish_trust_set`] would do, after every one of its checks, writing
+    /// nothing: the set's version, the ledger entry it would append, and each channel's feed
+    /// it would renew, with its new sequence.
+    pub fn plan_trust_set(&self, bytes: &[u8], signing: &Signing<'_>) -> Result<TrustSetPlan> {
+        let (accepted, current) = self.accept_trust_set(bytes, signing)?;
+        let mut renewed = Vec::new();
+        // A tree not made yet has no channels.
+        let channels = if self.root.join(FEEDS_DIR).is_dir() {
+            self.channels()?
+        } else {
+            Vec::new()
+        };
+        for channel in channels {
+            let history = self.history(&channel)?;
+            let Some(release) = history.stack().pop() else {
+                continue;
+            };
+            let sequence = self.next_sequence(&channel, &history)?;
+            renewed.push((channel, sequence, release));
+        }
+        Ok(TrustSetPlan {
+            entry: TrustSetEntry {
+                event: LedgerEvent::TrustSet,
+                trust_set_version: accepted.version(),
+                trust_set_digest: Digest::of(bytes),
+                key_ids: accepted.signature_report().valid.clone(),
+                time: signing.now.unix(),
+            },
+            previous_version: current.map(|c| c.version),
+            renewed,
+        })
+    }
+
+    /// Accepts `bytes` as the tree's next trust set: the successor of the current one (or a
+    /// valid first one), under which the signing key still signs feeds alone.
+    fn accept_trust_set(
+        &self,
+        bytes: &[u8],
+        signing: &Signing<'_>,
+    ) -> Result<(TrustSet, Option<TreeTrustSet>)> {
         let current = self.current_trust_set()?;
         let accepted = match &current {
             None => TrustSet::verify_initial(bytes, signing.now),
@@ -904,6 +953,12 @@ impl Tree {
                 .into());
             }
         }
+        Ok((accepted, current))
+    }
+
+    pub fn publish_trust_set(&self, bytes: &[u8], signing: &Signing<'_>) -> Result<TrustSetChange> {
+        self.writable()?;
+        let (accepted, current) = self.accept_trust_set(bytes, signing)?;
         // The ledger logs the new set before any file names it, so an auditor never learns of
         // a trust set later than devices do.
         let keys = signing_keys(signing);
