@@ -468,3 +468,30 @@ fn issue9_review_a_second_downloaded_call_changes_nothing() {
     assert_eq!(installed_version(&report), Version::new(1, 0, 0));
     assert!(downloads(d).is_empty(), "{:?}", downloads(d));
 }
+
+/// The store's download directory replaced by a link to a directory outside the store (what
+/// someone with write access to the store can do): the clean-up of downloads never deletes
+/// through it.
+#[cfg(unix)]
+#[test]
+fn issue9_review_a_linked_download_directory_is_not_swept() {
+    let dir = setup();
+    let d = dir.path();
+    let (device, _) = camera_on_1_0_0(d);
+    let outside = d.join("app-data");
+    std::fs::create_dir(&outside).expect("outside dir");
+    std::fs::write(outside.join("photos.db"), b"the app's own data").expect("outside file");
+    std::fs::remove_dir_all(d.join("cam/downloads")).expect("remove downloads");
+    std::os::unix::fs::symlink(&outside, d.join("cam/downloads")).expect("plant the link");
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "0");
+    let (report, _) = drive_partly(&device, d, true);
+    assert!(
+        matches!(report.outcome, Outcome::NotInRollout { .. }),
+        "{report:?}"
+    );
+    device.gc().expect("gc");
+    assert_eq!(
+        std::fs::read(outside.join("photos.db")).expect("still there"),
+        b"the app's own data"
+    );
+}

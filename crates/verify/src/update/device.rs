@@ -18,7 +18,7 @@ use std::time::{Duration, Instant};
 use crate::check::bundle::Verifier;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::time::Timestamp;
-use crate::store::{Release, Store};
+use crate::store::{Release, Store, StoreState};
 
 #[cfg(feature = "fetch")]
 use super::Report;
@@ -161,15 +161,16 @@ impl Device {
         transfer: &crate::net::Transfer,
         now: Timestamp,
     ) -> Report {
-        let lock = self.lock_downloads();
-        if let Err(e) = &lock {
-            return Report::ended_early(clone_error(e));
-        }
+        // Locked before the feed is fetched, so a second updater costs no transfer.
+        let lock = match self.lock_downloads() {
+            Ok(lock) => lock,
+            Err(e) => return Report::ended_early(e),
+        };
         let feed = match crate::net::fetch_feed(feed_url, transfer) {
             Ok(bytes) => bytes,
             Err(e) => return Report::ended_early(e),
         };
-        let mut session = Session::new(self, lock, feed_url, feed, now);
+        let mut session = Session::new(self, Ok(lock), feed_url, feed, now);
         loop {
             match session.advance() {
                 super::Next::Fetch(want) => {
@@ -209,16 +210,7 @@ impl Device {
         if let Some(set) = held.set() {
             store = store.with_trust_set(set)?;
         }
-        let state = store.state()?;
-        let mut verifier = bundle_verifier(&self.app, &held)?;
-        if let Some(name) = &state.name
-            && verifier.required_name().is_none()
-        {
-            verifier = verifier.require_name(name.clone());
-        }
-        if let Some(highest) = &state.highest_version {
-            verifier = verifier.installed(highest.clone());
-        }
+        let verifier = store_verifier(&self.app, &held, &store.state()?)?;
         store.install_without_feed(verifier.verify_path(bundle)?)
     }
 
@@ -228,6 +220,12 @@ impl Device {
     /// now is tried again at the next update.
     pub(crate) fn sweep_downloads(&self, keep: Option<&Path>) {
         let dir = self.store.dir().join(DOWNLOADS_DIR);
+        // Someone with write access to the store could make `downloads` a link to a directory
+        // elsewhere; listing through it would delete that directory's files. Only a real
+        // directory is swept.
+        if !fs::symlink_metadata(&dir).is_ok_and(|meta| meta.is_dir()) {
+            return;
+        }
         let Ok(entries) = fs::read_dir(&dir) else {
             return;
         };
@@ -321,9 +319,20 @@ pub(crate) fn bundle_verifier(app: &App, held: &Held) -> Result<Verifier> {
         .max_unpacked_bytes(app.max_unpacked_bytes))
 }
 
-#[cfg(feature = "fetch")]
-fn clone_error(e: &Error) -> Error {
-    Error::new(e.kind(), e.to_string())
+/// The app's bundle verifier under the trust held, with the store's model line and the
+/// highest version it ever accepted (not the current one: after a rollback the store refuses
+/// everything up to it, so downloading it would be wasted).
+pub(crate) fn store_verifier(app: &App, held: &Held, state: &StoreState) -> Result<Verifier> {
+    let mut bundles = bundle_verifier(app, held)?;
+    if let Some(name) = &state.name
+        && bundles.required_name().is_none()
+    {
+        bundles = bundles.require_name(name.clone());
+    }
+    if let Some(highest) = &state.highest_version {
+        bundles = bundles.installed(highest.clone());
+    }
+    Ok(bundles)
 }
 
 /// Checks a device id: 1 to [`DEVICE_ID_BYTES`] printable ASCII characters, no spaces.

@@ -20,7 +20,7 @@ use crate::format::time::Timestamp;
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
 use crate::store::{Store, StoreState};
 
-use super::device::bundle_verifier;
+use super::device::store_verifier;
 use super::{Device, Held, Ledger, Outcome, Report};
 
 /// What an update needs next, or how it ended.
@@ -579,20 +579,8 @@ impl<'d> Session<'d> {
         Ok(feeds)
     }
 
-    /// The app's bundle verifier under the trust held, with the store's model line and the
-    /// highest version it ever accepted (not the current one: after a rollback the store
-    /// refuses everything up to it, so downloading it would be wasted).
     fn bundle_verifier(&self, state: &StoreState) -> Result<Verifier> {
-        let mut bundles = bundle_verifier(self.device.app(), self.held()?)?;
-        if let Some(name) = &state.name
-            && bundles.required_name().is_none()
-        {
-            bundles = bundles.require_name(name.clone());
-        }
-        if let Some(highest) = &state.highest_version {
-            bundles = bundles.installed(highest.clone());
-        }
-        Ok(bundles)
+        store_verifier(self.device.app(), self.held()?, state)
     }
 }
 
