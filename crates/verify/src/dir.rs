@@ -414,7 +414,10 @@ mod tests {
             .read_to_string(&mut kept)
             .expect("test setup");
         assert_eq!(kept, "keep me");
-        assert_eq!(store.list().expect("test setup"), vec![OsString::from("dangling")]);
+        assert_eq!(
+            store.list().expect("test setup"),
+            vec![OsString::from("dangling")]
+        );
         let _ = std::fs::remove_dir_all(&base);
     }
 
@@ -422,7 +425,8 @@ mod tests {
     fn hard_links_fifos_and_directories_are_refused_where_a_file_belongs() {
         let base = temp();
         std::fs::write(base.join("outside/victim"), b"x").expect("test setup");
-        std::fs::hard_link(base.join("outside/victim"), base.join("store/hard")).expect("test setup");
+        std::fs::hard_link(base.join("outside/victim"), base.join("store/hard"))
+            .expect("test setup");
         std::fs::create_dir(base.join("store/adir")).expect("test setup");
         // mkfifo(1), from coreutils.
         let made = std::process::Command::new("mkfifo")
@@ -441,7 +445,11 @@ mod tests {
         ));
         assert!(matches!(store.open_file("missing"), Err(Refused::Missing)));
         // A file the store made itself passes.
-        store.create_new("own").expect("test setup").write_all(b"ok").expect("test setup");
+        store
+            .create_new("own")
+            .expect("test setup")
+            .write_all(b"ok")
+            .expect("test setup");
         assert!(store.open_file("own").is_ok());
         let nested = store.create_dir("nested").expect("test setup");
         nested.create_new("f").expect("test setup");
