@@ -135,6 +135,11 @@ pub fn pinned_app(d: &Path) -> App {
 
 /// [`pinned_app`] without a device id: the store makes and keeps its own.
 pub fn pinned_app_own_id(d: &Path) -> App {
+    pinned_app_version(d, Version::new(2, 3, 0))
+}
+
+/// [`pinned_app_own_id`] as app version `version`.
+pub fn pinned_app_version(d: &Path, version: Version) -> App {
     let keys = keys(d);
     let trust = Trust::pinned(
         Signers::new(keys.clone(), 1).expect("bundle signers"),
@@ -143,7 +148,7 @@ pub fn pinned_app_own_id(d: &Path) -> App {
     );
     // Tests in one binary start `ampoule` processes while others hold a store's lock; a started
     // process briefly holds a copy of every open file, so a test device waits a little.
-    App::new(trust, Version::new(2, 3, 0)).wait_for_lock(std::time::Duration::from_secs(5))
+    App::new(trust, version).wait_for_lock(std::time::Duration::from_secs(5))
 }
 
 /// A feed file whose text is `text`, signed by the secret key in `d/<key>` alone: for tests

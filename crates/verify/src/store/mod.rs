@@ -115,6 +115,12 @@ pub const RELEASES_DIR: &str = "releases";
 pub const TRUST_SET_FILE: &str = "trust-set.json";
 /// The most channels a store remembers.
 pub const MAX_CHANNELS: usize = 64;
+/// The directory where bundles download (and resume) before install; the update's.
+pub const DOWNLOADS_DIR: &str = "downloads";
+/// The lock file in [`DOWNLOADS_DIR`], held for a whole update.
+pub const DOWNLOAD_LOCK: &str = "lock";
+/// The refusal the update remembers, in [`DOWNLOADS_DIR`].
+pub const REFUSED_FILE: &str = "refused.json";
 /// The most planted entries one run notes (and `state.json` lists) as removed.
 pub const MAX_REMOVED_NOTES: usize = 16;
 
@@ -863,11 +869,60 @@ impl Store {
     /// Removes every release that is neither current nor previous, and whatever crashed
     /// updates left behind (staging directories, temporary state files). Returns what was
     /// removed. Every update does this first as well.
+    ///
+    /// Downloads are removed too (partial downloads and a remembered refusal), unless an update
+    /// holds the download lock.
     pub fn gc(&self) -> Result<Vec<PathBuf>> {
         let _lock = self.lock()?;
         let root = self.root()?;
         let state = self.state_in(&root)?;
-        self.sweep(&root, &state)
+        let mut removed = self.sweep(&root, &state)?;
+        if root.found(DOWNLOADS_DIR).ok().flatten() == Some(Found::Dir) {
+            let downloads = self.downloads(&root)?;
+            let lock = open_own_file(&downloads, DOWNLOAD_LOCK, &mut |what| {
+                self.note_removed(what)
+            })?;
+            if lock.try_lock().is_ok() {
+                removed.extend(self.sweep_downloads(&downloads, None, false));
+            }
+        }
+        removed.sort();
+        Ok(removed)
+    }
+
+    /// `downloads/`, opened without following a link (something else at its name is removed
+    /// and noted).
+    pub(crate) fn downloads(&self, root: &Dir) -> Result<Dir> {
+        open_own_dir(root, DOWNLOADS_DIR, &mut |what| self.note_removed(what))
+    }
+
+    /// Removes everything in the download directory `dir` but its lock, `keep` (the download
+    /// in progress) and, when `keep_refusal`, the remembered refusal: partial downloads of
+    /// releases no feed offers any more would otherwise stay for good. Links are unlinked,
+    /// never followed. Best effort: what cannot be removed now is tried again next time.
+    /// The caller holds the download lock.
+    pub(crate) fn sweep_downloads(
+        &self,
+        dir: &Dir,
+        keep: Option<&str>,
+        keep_refusal: bool,
+    ) -> Vec<PathBuf> {
+        let Ok(entries) = dir.list() else {
+            return Vec::new();
+        };
+        let mut removed = Vec::new();
+        for name in entries {
+            if name == DOWNLOAD_LOCK
+                || (keep_refusal && name == REFUSED_FILE)
+                || keep.is_some_and(|k| name == k)
+            {
+                continue;
+            }
+            if dir.remove(&name).is_ok() {
+                removed.push(dir.join(&name));
+            }
+        }
+        removed
     }
 
     /// What this handle removed because the store's own code could not have put it there

@@ -30,6 +30,7 @@
 mod device;
 mod offline;
 mod outcome;
+mod refusals;
 mod session;
 
 use std::fmt;
