@@ -443,6 +443,42 @@ fn pack_refuses_an_empty_label_list_and_writes_nothing() {
 }
 
 #[test]
+fn issue10_pack_refuses_labels_with_invisible_or_bidirectional_characters_or_not_in_nfc() {
+    let env = Env::new();
+    let mut args = pack_args("h.ampoule", &[]);
+    args[4] = "hostile.txt";
+    for (line, expected) in [
+        (
+            "wild \u{202E}raob",
+            "label on line 3 ('wild \\u{202e}raob') holds U+202E, a bidirectional control, \
+             which can make text display in another order; labels may not hold invisible or \
+             bidirectional format characters (Unicode 14.0.0)",
+        ),
+        (
+            "badger\u{200B}",
+            "label on line 3 ('badger\\u{200b}') holds U+200B, an invisible format character; \
+             labels may not hold invisible or bidirectional format characters (Unicode 14.0.0)",
+        ),
+        (
+            "che\u{0300}vre",
+            "label on line 3 ('che\u{300}vre') is not in Unicode Normalization Form C (NFC, \
+             Unicode 14.0.0); write it composed, for example with Python's \
+             unicodedata.normalize('NFC', text)",
+        ),
+    ] {
+        let text = format!("fox\nroe deer\n{line}\nbadger\n");
+        env.write("hostile.txt", text.as_bytes());
+        let before = env.listing();
+        assert_failed(
+            &env.run(&args),
+            1,
+            &format!("label list hostile.txt refused: {expected}"),
+        );
+        assert_eq!(env.listing(), before);
+    }
+}
+
+#[test]
 fn verify_extract_refuses_an_existing_directory_and_changes_nothing() {
     let env = Env::new();
     env.pack("1.0.0", "b.ampoule");

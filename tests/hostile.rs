@@ -1229,3 +1229,55 @@ fn payload_that_is_not_zstd_or_labels_not_in_stored_form() {
         "labels.txt is not in the stored form (one label per line, each ending in a single '\\n')",
     );
 }
+
+/// Hostile label lists of issue 10 item 7, each with the fixture's six labels: the line, and
+/// what the device and `pack` say about it (the label shown escaped, so no terminal obeys it).
+pub const HOSTILE_LABELS: &[(&str, &str)] = &[
+    (
+        // A right-to-left override: "boar" shows as "raob" reversed back, i.e. as "boar".
+        "wild \u{202E}raob",
+        "label on line 3 ('wild \\u{202e}raob') holds U+202E, a bidirectional control, which \
+         can make text display in another order; labels may not hold invisible or \
+         bidirectional format characters (Unicode 14.0.0)",
+    ),
+    (
+        "badger\u{200B}",
+        "label on line 3 ('badger\\u{200b}') holds U+200B, an invisible format character; \
+         labels may not hold invisible or bidirectional format characters (Unicode 14.0.0)",
+    ),
+    (
+        "\u{FEFF}wild boar",
+        "label on line 3 ('\\u{feff}wild boar') holds U+FEFF, an invisible format character; \
+         labels may not hold invisible or bidirectional format characters (Unicode 14.0.0)",
+    ),
+    (
+        "che\u{0300}vre",
+        "label on line 3 ('che\u{300}vre') is not in Unicode Normalization Form C (NFC, \
+         Unicode 14.0.0); write it composed, for example with Python's \
+         unicodedata.normalize('NFC', text)",
+    ),
+];
+
+/// The fixture's labels with line 3 replaced by `line`.
+pub fn labels_with_line_3(line: &str) -> Vec<u8> {
+    let text = std::str::from_utf8(LABELS).expect("UTF-8");
+    let mut lines: Vec<&str> = text.lines().collect();
+    lines[2] = line;
+    (lines.join("\n") + "\n").into_bytes()
+}
+
+#[test]
+fn issue10_signed_labels_with_invisible_or_bidirectional_characters_or_not_in_nfc() {
+    // Issue 10 item 7: the device's verifier refuses each, though the bundle is signed.
+    let env = Env::new();
+    let model = model_bytes(3000);
+    for (line, expected) in HOSTILE_LABELS {
+        let labels = labels_with_line_3(line);
+        let inner = tar_of(&[
+            tar_entry("model.onnx", &model),
+            tar_entry(entry::LABELS, &labels),
+        ]);
+        let draft = Draft::with_payload(model.clone(), labels, zstd(&inner));
+        env.assert_refused(&draft.signed(&env.key), &[], expected);
+    }
+}
