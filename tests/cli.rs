@@ -569,3 +569,59 @@ fn packing_is_deterministic() {
     );
     assert_ne!(g, a);
 }
+
+#[test]
+fn issue10_text_output_escapes_names_from_a_bundle() {
+    // Issue 10 item 7: a model whose output tensor is named "s", RIGHT-TO-LEFT OVERRIDE, "eci"
+    // (the same 7 bytes as "species", so the ONNX file stays valid). A terminal would show
+    // the raw name reversed; the text output shows the override as an escape instead.
+    let env = Env::new();
+    let path = env.path("evil.onnx");
+    ampoule::release::synth::write_onnx_classifier(&path, 8, 4, 6, 7).expect("a model");
+    let bytes = std::fs::read(&path).expect("model");
+    let evil = "s\u{202E}eci".as_bytes();
+    assert_eq!(evil.len(), "species".len());
+    let mut swapped = Vec::with_capacity(bytes.len());
+    let mut i = 0;
+    while i < bytes.len() {
+        if bytes[i..].starts_with(b"species") {
+            swapped.extend_from_slice(evil);
+            i += evil.len();
+        } else {
+            swapped.push(bytes[i]);
+            i += 1;
+        }
+    }
+    std::fs::write(&path, &swapped).expect("write");
+    ampoule::release::synth::write_onnx_classifier(&env.path("good.onnx"), 8, 4, 6, 7)
+        .expect("a model");
+    for (model, out) in [("evil.onnx", "evil.ampoule"), ("good.onnx", "good.ampoule")] {
+        let mut args = pack_args(out, &["--key", SECRET]);
+        args[2] = model;
+        let run = env.run(&args);
+        assert_eq!(run.code, 0, "{run:?}");
+    }
+    let inspect = env.run(["inspect", "evil.ampoule"]);
+    assert_eq!(inspect.code, 0, "{inspect:?}");
+    assert!(
+        inspect
+            .stdout
+            .contains("output   s\\u{202e}eci: float32 [N, 6]\n"),
+        "{}",
+        inspect.stdout
+    );
+    let diff = env.run(["diff", "good.ampoule", "evil.ampoule"]);
+    assert!(
+        diff.stdout
+            .contains("output added: s\\u{202e}eci: float32 [N, 6]\n"),
+        "{}",
+        diff.stdout
+    );
+    for run in [&inspect, &diff] {
+        assert!(!run.stdout.contains('\u{202E}'), "{}", run.stdout);
+    }
+    // JSON carries the exact name.
+    let doc: Value =
+        serde_json::from_str(&env.run(["--json", "inspect", "evil.ampoule"]).stdout).expect("JSON");
+    assert!(doc.to_string().contains('\u{202E}'), "{doc}");
+}

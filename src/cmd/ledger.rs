@@ -25,7 +25,7 @@ use crate::cli::{
 };
 use crate::cmd::{load_trust, load_trust_set};
 use crate::failure::{Failure, Kind, count};
-use crate::output::{Output, failed_report};
+use crate::output::{Output, failed_report, shown};
 use crate::release::ledger_audit::{self as audit, AuditReport};
 use crate::release::ledger_storage::{
     ENTRIES, Entry, HASHES, Ledger, OFFSETS, TREE_HEAD, TREE_HEADS,
@@ -433,8 +433,8 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                 index.to_string(),
                 time_text(e.time),
                 e.event.to_string(),
-                e.channel.clone(),
-                e.bundle.clone(),
+                shown(&e.channel).into_owned(),
+                shown(&e.bundle).into_owned(),
                 e.version.to_string(),
                 e.bundle_digest.to_string()[..16].to_string(),
                 key_list(&e.key_ids, ",", 8),

@@ -80,6 +80,13 @@ fn in_ranges(table: &[(u32, u32)], c: char) -> bool {
     i > 0 && table[i - 1].1 >= c
 }
 
+/// Whether `c` is a format character, line or paragraph separator, or default-ignorable code
+/// point (the table the label rule refuses outside its few contexts): text that a terminal
+/// does not show as itself, or that changes how the text around it is shown.
+pub fn is_invisible(c: char) -> bool {
+    in_ranges(INVISIBLE, c)
+}
+
 /// Why the character at `i` of a label may not stand there, or `None` when it may.
 fn invisible_at(chars: &[char], i: usize) -> Option<&'static str> {
     let c = chars[i];
