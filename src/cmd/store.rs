@@ -9,7 +9,7 @@ use serde_json::{Value, json};
 use crate::cli::{StoreArgs, StoreCommand, StoreOptions};
 use crate::cmd::{load_trust, parse_version, read_trust_set_file};
 use crate::failure::{count, usage};
-use crate::output::Output;
+use crate::output::{Output, shown};
 
 pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
     match args.command {
@@ -72,7 +72,7 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
     let mut human = match &current {
         Some(r) => format!(
             "current  {} {} ({}; model {}) checked: digests and signatures match\n",
-            r.manifest.name,
+            shown(&r.manifest.name),
             r.manifest.version,
             count(r.labels.len(), "label", "labels"),
             r.model.display()
@@ -136,7 +136,7 @@ fn rollback(o: &StoreOptions, out: &Output) -> Result<()> {
     let human = format!(
         "rolled back from {} to {} {}; {} stays refused, and so is anything not newer than it",
         from.as_deref().unwrap_or("nothing"),
-        back.manifest.name,
+        shown(&back.manifest.name),
         back.manifest.version,
         from.as_deref().unwrap_or("it"),
     );

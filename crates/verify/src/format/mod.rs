@@ -19,6 +19,9 @@ pub mod signature;
 pub mod signed;
 pub mod tar;
 pub mod time;
+// Generated tables (crates/verify/tools/unicode_tables.py), kept as written.
+#[rustfmt::skip]
+pub mod unicode;
 
 /// The format version written into every manifest; a reader refuses any other value.
 pub const FORMAT_VERSION: u32 = 1;

@@ -597,54 +597,53 @@ impl Session {
                 }
             }
             let remaining = size - have;
+            // A length other than the signed one, larger or smaller, is the server's fault
+            // (exit 2, kind network), not the release's: the feed and bundle may be fine.
             if let Some(len) = declared
                 && len != remaining
             {
-                let kind = if len > remaining {
-                    ErrorKind::TooLarge
-                } else {
-                    ErrorKind::Network
-                };
-                return Err(Error::new(
-                    kind,
-                    format!(
-                        "server declares {len} bytes for {url}, but {remaining} of the {size} \
-                             bytes the feed signed were expected"
-                    ),
-                ));
+                return Err(network(format!(
+                    "server declares {len} bytes for {url}, but {remaining} of the {size} \
+                     bytes the feed signed were expected"
+                )));
             }
             file.seek(SeekFrom::Start(have))
                 .map_err(|e| io("seek in", e))?;
             let start = have;
             kept = have.min(earlier);
+            let mut overrun = false;
             // Plain blocking writes: this runtime runs nothing else, and a local disk keeps up
             // with any network a device has.
-            let result = read_body(&self.transfer, url, response.into_body(), deadline, |data| {
-                if have + data.len() as u64 > size {
-                    return Err(Error::new(
-                        ErrorKind::TooLarge,
-                        format!(
+            let result = read_body(
+                &self.transfer,
+                url,
+                response.into_body(),
+                deadline,
+                |data| {
+                    if have + data.len() as u64 > size {
+                        overrun = true;
+                        return Err(network(format!(
                             "server sent more than the {size} bytes the feed declares for {url}; \
-                             stopped reading"
-                        ),
-                    ));
-                }
-                file.write_all(data).map_err(|e| io("write", e))?;
-                hasher.update(data);
-                have += data.len() as u64;
-                if let Some(progress) = &self.transfer.progress {
-                    progress(Progress {
-                        stage: Stage::Download,
-                        done: have,
-                        total: size,
-                    });
-                }
-                Ok(())
-            })
+                         stopped reading"
+                        )));
+                    }
+                    file.write_all(data).map_err(|e| io("write", e))?;
+                    hasher.update(data);
+                    have += data.len() as u64;
+                    if let Some(progress) = &self.transfer.progress {
+                        progress(Progress {
+                            stage: Stage::Download,
+                            done: have,
+                            total: size,
+                        });
+                    }
+                    Ok(())
+                },
+            )
             .await;
             file.sync_data().map_err(|e| io("flush", e))?;
             match result {
-                Err(BodyError::Refused(e)) if e.kind() == ErrorKind::TooLarge => {
+                Err(BodyError::Refused(e)) if overrun => {
                     // Nothing this server sent can be trusted as a prefix.
                     file.set_len(0).map_err(|e| io("truncate", e))?;
                     return Err(e);
