@@ -221,3 +221,15 @@ pub fn serve_tree(d: &Path, tree: &str) -> Served {
         .unwrap_or_else(|| panic!("unexpected first line {line:?}"));
     Served { child, addr }
 }
+
+/// The newest trust set a store keeps: the last of `trust-chain.json`, as stored; `None` when
+/// the store keeps none.
+pub fn newest_stored_trust_set(store: &Path) -> Option<Vec<u8>> {
+    let bytes = std::fs::read(store.join("trust-chain.json")).ok()?;
+    let chain: serde_json::Value = serde_json::from_slice(&bytes).expect("chain JSON");
+    chain["sets"]
+        .as_array()
+        .and_then(|sets| sets.last())
+        .and_then(|set| set.as_str())
+        .map(|text| text.as_bytes().to_vec())
+}

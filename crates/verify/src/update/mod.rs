@@ -268,6 +268,16 @@ impl fmt::Debug for Pinned {
     }
 }
 
+impl App {
+    /// The trust set shipped with the app, when it runs on trust sets.
+    pub(crate) fn shipped_trust_set(&self) -> Option<&[u8]> {
+        match &self.trust.source {
+            Source::Shipped(initial) => Some(initial),
+            Source::Pinned(_) => None,
+        }
+    }
+}
+
 impl Held {
     /// The trust for a store in `dir` at `now`: the newer of the shipped and the stored
     /// trust set, unexpired, or the pinned keys.

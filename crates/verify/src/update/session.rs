@@ -502,7 +502,13 @@ impl<'d> Session<'d> {
             ));
         }
         let store = self.store()?.clone();
-        store.save_trust_set(&next)?;
+        let initial = self.device.app().shipped_trust_set().ok_or_else(|| {
+            Error::new(
+                ErrorKind::TrustSet,
+                "a trust-set rotation needs a device that runs on trust sets",
+            )
+        })?;
+        store.save_trust_set(initial, &next)?;
         self.store = Some(store.with_trust_set(&next)?);
         self.rotated_to = Some(next.version());
         self.held = Some(Held::Set(next));
