@@ -884,3 +884,30 @@ fn issue10_a_refusal_after_a_full_download_is_remembered_until_the_offer_or_app_
     let (_, written) = drive_counting(&other, d, now);
     assert_eq!(written, whole);
 }
+
+/// Issue 10 item 1: a planted highest version (or model line) in `state.json` used to lock the
+/// device out for good. The store believes only what the signed manifests it keeps prove.
+#[test]
+fn issue10_a_planted_highest_version_or_model_line_is_not_believed() {
+    let dir = setup();
+    let d = dir.path();
+    let (device, _) = camera_on_1_0_0(d);
+    let path = d.join("cam/state.json");
+    let mut state: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&path).expect("state")).expect("json");
+    state["highest_version"] = "999.0.0".into();
+    state["channels"]["stable"]["highest_version"] = "999.0.0".into();
+    state["name"] = "someone-elses-line".into();
+    std::fs::write(&path, serde_json::to_vec_pretty(&state).expect("json")).expect("plant");
+    // A garbage proof of the highest version is no proof either.
+    std::fs::write(d.join("cam/highest.json"), b"{\"manifest\": \"999\"}").expect("plant");
+    let seen = device.store().state().expect("state");
+    assert_eq!(seen.highest_version, Some(Version::new(1, 0, 0)));
+    assert_eq!(seen.name.as_deref(), Some("trailcam-species"));
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
+    let (report, _) = drive_partly(&device, d, true);
+    assert_eq!(installed_version(&report), Version::new(1, 1, 0));
+    // And the real floor holds: 1.0.0 again is refused as a downgrade.
+    let state = device.store().state().expect("state");
+    assert_eq!(state.highest_version, Some(Version::new(1, 1, 0)));
+}

@@ -631,15 +631,25 @@ fn tamper_state_pointer_escaping_releases() {
 
 #[test]
 fn tamper_state_floor_lowered() {
+    // Issue 10: the floor is what the kept signed manifests prove, not the number in
+    // state.json. Lowered there, it stays at the current release's version (what deleting
+    // the store's proof of a higher one would give), and the release still opens.
     let t = tampered();
     t.edit_state(|v| v["highest_version"] = "0.9.0".into());
     assert_eq!(
-        t.open_error().to_string(),
-        format!(
-            "{} is inconsistent: release {} has version 1.1.0, above the highest version accepted (0.9.0)",
-            t.state.display(),
-            t.rel
-        )
+        t.store.state().expect("state").highest_version,
+        Some("1.1.0".parse().expect("version"))
+    );
+    assert!(t.store.open_current().expect("opens").is_some());
+}
+
+#[test]
+fn issue10_tamper_state_floor_raised_is_not_believed() {
+    let t = tampered();
+    t.edit_state(|v| v["highest_version"] = "999.0.0".into());
+    assert_eq!(
+        t.store.state().expect("state").highest_version,
+        Some("1.1.0".parse().expect("version"))
     );
 }
 
@@ -951,7 +961,7 @@ fn killed_at_every_install_step_leaves_old_or_new_and_the_next_run_recovers() {
         assert_eq!(entries(&dir.join("releases")), kept, "{step:?}");
         assert_eq!(
             entries(&dir),
-            ["lock", "releases", "state.json"],
+            ["highest.json", "lock", "releases", "state.json"],
             "{step:?}"
         );
 
@@ -1018,7 +1028,7 @@ fn killed_at_every_rollback_step_leaves_old_or_new_and_the_next_run_recovers() {
         );
         assert_eq!(
             entries(&dir),
-            ["lock", "releases", "state.json"],
+            ["highest.json", "lock", "releases", "state.json"],
             "{step:?}"
         );
         store
@@ -1080,7 +1090,7 @@ fn an_io_error_at_every_install_step_leaves_the_store_as_it_was() {
             );
             assert_eq!(
                 entries(&dir),
-                ["lock", "releases", "state.json"],
+                ["highest.json", "lock", "releases", "state.json"],
                 "{failing:?}"
             );
         }
@@ -1145,7 +1155,10 @@ fn a_full_disk_fails_the_install_and_keeps_the_old_model() {
     assert_eq!(store.state().expect("state"), before);
     assert_eq!(current_version(&store).as_deref(), Some("1.0.0"));
     assert_eq!(entries(&dir.join("releases")), [bundles.release("1.0.0")]);
-    assert_eq!(entries(&dir), ["lock", "releases", "state.json"]);
+    assert_eq!(
+        entries(&dir),
+        ["highest.json", "lock", "releases", "state.json"]
+    );
 
     // Fill the disk to the last byte: a small install fails too, and the old model stays.
     let filler = disk.path.join("filler");

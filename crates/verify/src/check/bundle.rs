@@ -265,6 +265,21 @@ impl Verifier {
         Ok((manifest, len))
     }
 
+    /// Checks only a manifest's signatures (no policy): for the store's proof of its highest
+    /// version, which must outlive an app update that changes the policy.
+    /// `signers` replaces the verifier's own when given.
+    pub(crate) fn check_signed_manifest(
+        &self,
+        manifest: &[u8],
+        signatures: &[u8],
+        signers: Option<&Signers<kind::Manifest>>,
+    ) -> Result<Manifest> {
+        let signatures = Signatures::from_json(signatures)?;
+        SignedDocument::<kind::Manifest>::new(manifest, &signatures.signatures)?
+            .check(signers.unwrap_or(&self.signers), "manifest")?;
+        Manifest::from_json(manifest)
+    }
+
     /// Re-checks a manifest and its signatures kept in the on-device store: the same
     /// signature and policy checks as [`Verifier::verify_file`], except the installed-version
     /// rule, which the store enforces itself from its own state.

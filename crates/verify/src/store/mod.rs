@@ -98,6 +98,7 @@ use crate::check::feed::VerifiedFeed;
 use crate::format::{entry, limit, trust_set};
 use crate::format::keys::KeyId;
 use crate::format::manifest::{Manifest, Role};
+use crate::format::signed::{Signers, kind};
 use crate::format::merkle::TreeHead;
 use crate::format::time::Timestamp;
 use crate::check::trust::{TrustSet, TrustSetFile};
@@ -133,6 +134,18 @@ pub const DOWNLOADS_DIR: &str = "downloads";
 pub const DOWNLOAD_LOCK: &str = "lock";
 /// The refusal the update remembers, in [`DOWNLOADS_DIR`].
 pub const REFUSED_FILE: &str = "refused.json";
+/// The manifest and signatures of the release that set the highest version, which back it.
+pub const HIGHEST_FILE: &str = "highest.json";
+const HIGHEST_TEMP_PREFIX: &str = ".highest.json.tmp-";
+
+/// `highest.json`: a signed manifest as the bundle carried it.
+#[derive(Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct KeptManifest {
+    manifest: String,
+    signatures: String,
+}
+
 /// The most planted entries one run notes (and `state.json` lists) as removed.
 pub const MAX_REMOVED_NOTES: usize = 16;
 
@@ -258,23 +271,9 @@ impl StoreState {
                     pointer.release.escape_debug()
                 ));
             }
-            match &self.highest_version {
-                Some(h) if pointer.version.cmp_precedence(h).is_le() => {}
-                _ => {
-                    return Err(format!(
-                        "release {} has version {}, above the highest version accepted ({})",
-                        pointer.release,
-                        pointer.version,
-                        shown_version(self.highest_version.as_ref())
-                    ));
-                }
-            }
-            if self.name.is_none() {
-                return Err(format!(
-                    "it names release {} but no model line",
-                    pointer.release
-                ));
-            }
+            // The highest version and the model line are what the kept manifests prove
+            // (Store::back_versions); a release whose manifest does not verify is refused when
+            // it is opened, with what is wrong.
         }
         if let (Some(c), Some(p)) = (&self.current, &self.previous)
             && c.release == p.release
@@ -449,6 +448,10 @@ pub struct Store {
     /// (a link, a FIFO, a file with several hard links), for the update's report; also
     /// written into `state.json` by the next commit, for `store status`.
     removed: Arc<Mutex<Vec<String>>>,
+    /// The trust set shipped with the app, when it runs on trust sets: every set of the chain
+    /// it starts counts for the proof of the version floor, so that a release installed under
+    /// a set whose key a later set revoked still proves the floor it set (`back_versions`).
+    shipped: Option<Arc<Vec<u8>>>,
 }
 
 /// Holds the updaters' lock until dropped (closing the file releases it, also when the
@@ -470,6 +473,7 @@ impl Store {
             verifier,
             lock_wait: Duration::ZERO,
             removed: Arc::default(),
+            shipped: None,
         };
         let root = Dir::open_root(dir, true)
             .map_err(|e| Error::io(format!("cannot create store {}", dir.display()), e))?;
@@ -538,12 +542,13 @@ impl Store {
                 return Err(Error::io(format!("cannot read {}", path.display()), e));
             }
         };
-        let state: StoreState = serde_json::from_slice(&bytes).map_err(|e| {
+        let mut state: StoreState = serde_json::from_slice(&bytes).map_err(|e| {
             Error::new(
                 ErrorKind::Store,
                 format!("{} is not valid: {e}", path.display()),
             )
         })?;
+        self.back_versions(root, &mut state);
         state.validate().map_err(|why| {
             Error::new(
                 ErrorKind::Store,
@@ -551,6 +556,86 @@ impl Store {
             )
         })?;
         Ok(state)
+    }
+
+    /// Replaces the model line and the highest version `state.json` states with what signed
+    /// manifests the store keeps prove (issue 10): `highest.json` (the manifest that set the
+    /// highest version, after a rollback the only proof of it) and the current and previous
+    /// releases' manifests, each counted only if its signatures meet the bundle threshold of the
+    /// trust held now or of a set before it in the device's chain. A planted value (a highest
+    /// version of 999.0.0, another model line) is thereby absent, not believed; a lowered one
+    /// leaves the floor at the current release, as deleting `highest.json` would; per-channel
+    /// versions above the proven highest are dropped too.
+    fn back_versions(&self, root: &Dir, state: &mut StoreState) {
+        let mut proven: Option<(String, Version)> = None;
+        let mut consider = |manifest: Option<Manifest>| {
+            let Some(m) = manifest else { return };
+            match &proven {
+                // One model line per store: a manifest of another line proves nothing.
+                Some((name, _)) if name != &m.name => {}
+                Some((_, v)) if m.version.cmp_precedence(v).is_le() => {}
+                _ => proven = Some((m.name.clone(), m.version.clone())),
+            }
+        };
+        for pointer in [&state.current, &state.previous].into_iter().flatten() {
+            consider(self.signed_manifest_in(root, Some(&pointer.release)));
+        }
+        // `highest.json` is written just before the state that names its version: it counts
+        // only once that state was committed, so that a crash between the two cannot raise the
+        // floor over the retried install (and a planted version matches nothing it proves).
+        consider(
+            self.signed_manifest_in(root, None)
+                .filter(|m| state.highest_version.as_ref() == Some(&m.version)),
+        );
+        let (name, highest) = proven.unzip();
+        for channel in state.channels.values_mut() {
+            if let Some(v) = &channel.highest_version
+                && highest.as_ref().is_none_or(|h| v.cmp_precedence(h).is_gt())
+            {
+                channel.highest_version = None;
+            }
+        }
+        state.name = name.or_else(|| {
+            // Nothing installed yet, or nothing proven: a name alone decides nothing a
+            // signed manifest would not, so it stays only while no release is named.
+            (state.current.is_none() && state.previous.is_none())
+                .then(|| state.name.take())
+                .flatten()
+        });
+        state.highest_version = highest;
+    }
+
+    /// The manifest kept for `release` (or in `highest.json` for `None`), if its signatures
+    /// verify under the trust held now.
+    fn signed_manifest_in(&self, root: &Dir, release: Option<&str>) -> Option<Manifest> {
+        let (manifest, signatures) = match release {
+            Some(release) => {
+                let dir = root.open_dir(RELEASES_DIR).ok()?.open_dir(release).ok()?;
+                (
+                    read_member(&dir, entry::MANIFEST, limit::MANIFEST_BYTES).ok()?,
+                    read_member(&dir, entry::SIGNATURES, limit::SIGNATURES_BYTES).ok()?,
+                )
+            }
+            None => {
+                let cap = limit::MANIFEST_BYTES + limit::SIGNATURES_BYTES + 1024;
+                let bytes = read_capped(root, HIGHEST_FILE, cap).ok()?;
+                let kept: KeptManifest = serde_json::from_slice(&bytes).ok()?;
+                (kept.manifest.into_bytes(), kept.signatures.into_bytes())
+            }
+        };
+        let check = |signers: Option<&Signers<kind::Manifest>>| {
+            self.verifier
+                .check_signed_manifest(&manifest, &signatures, signers)
+                .ok()
+        };
+        check(None).or_else(|| {
+            // Only when the keys held now do not prove it: the sets before them.
+            let chain = TrustChain::read(&self.dir, self.shipped.as_deref()?).ok()?;
+            chain.all.iter().find_map(|set| {
+                let signers = set.signers::<kind::Manifest>().ok()?;
+                check(Some(&signers))
+            })
+        })
     }
 
     /// Checks the current release fully (see the module documentation) and returns its
@@ -753,6 +838,13 @@ impl Store {
         sync_dir(&releases)?;
         step(hook, Step::ReleasesSynced)?;
 
+        // What proves the new highest version, before the state that names it.
+        let kept = serde_json::to_vec(&KeptManifest {
+            manifest: String::from_utf8_lossy(&bundle.layout().manifest).into_owned(),
+            signatures: String::from_utf8_lossy(&bundle.layout().signatures).into_owned(),
+        })
+        .map_err(|e| Error::new(ErrorKind::Store, format!("cannot keep the manifest: {e}")))?;
+        replace_file(&root, HIGHEST_FILE, HIGHEST_TEMP_PREFIX, &kept, &mut |_| Ok(()))?;
         self.commit(&root, &next, hook)?;
         staging.keep = true;
         step(hook, Step::StateRenamed)?;
@@ -1053,6 +1145,13 @@ impl Store {
         Ok(self)
     }
 
+    /// This store with the bundle signers of every set of its trust chain from `initial`
+    /// (the set shipped with the app), for the proof of its version floor.
+    pub(crate) fn with_trust_chain(mut self, initial: &[u8]) -> Store {
+        self.shipped = Some(Arc::new(initial.to_vec()));
+        self
+    }
+
     /// The store's directory, opened (links in the path the app gave are followed; nothing
     /// inside it is).
     fn root(&self) -> Result<Dir> {
@@ -1279,7 +1378,9 @@ impl Store {
                 remove_any(root, &entry)?;
                 self.note_removed(format!("{} ({})", root.join(&entry).display(), kind.describe()));
                 removed.push(root.join(&entry));
-            } else if name.starts_with(STATE_TEMP_PREFIX) || name.starts_with(TRUST_SET_TEMP_PREFIX)
+            } else if name.starts_with(STATE_TEMP_PREFIX)
+                || name.starts_with(TRUST_SET_TEMP_PREFIX)
+                || name.starts_with(HIGHEST_TEMP_PREFIX)
             {
                 remove_any(root, &entry)?;
                 removed.push(root.join(&entry));
@@ -1444,6 +1545,8 @@ struct StoredChain {
 struct TrustChain {
     /// The newest set the chain proves (the shipped set when it proves none).
     newest: TrustSet,
+    /// Every set it proves, the shipped one first.
+    all: Vec<TrustSet>,
     /// The texts of the stored sets it proves, oldest first, newer than the shipped set.
     sets: Vec<String>,
     /// Why the stored sets after those are not believed, if any are not.
@@ -1455,6 +1558,7 @@ impl TrustChain {
         let shipped = TrustSet::self_signed(initial)
             .map_err(|e| e.context("the trust set shipped with the app"))?;
         let mut chain = TrustChain {
+            all: vec![shipped.clone()],
             newest: shipped,
             sets: Vec::new(),
             ignored: None,
@@ -1525,6 +1629,7 @@ impl TrustChain {
             }
             match chain.newest.successor_of_any_age(text.as_bytes()) {
                 Ok(next) => {
+                    chain.all.push(next.clone());
                     chain.newest = next;
                     chain.sets.push(text);
                 }
@@ -1824,7 +1929,7 @@ mod tests {
     }
 
     #[test]
-    fn state_validation_refuses_pointers_above_the_floor_and_unsafe_names() {
+    fn state_validation_refuses_unsafe_names() {
         let pointer = |release: &str, version: &str| ReleaseRef {
             release: release.into(),
             version: version.parse().expect("test version"),
@@ -1833,11 +1938,10 @@ mod tests {
         let mut state = StoreState::empty();
         state.name = Some("fox".into());
         state.highest_version = Some(Version::new(1, 0, 0));
+        // Issue 10: a pointer above the recorded floor is no longer refused here; the floor
+        // is what the kept signed manifests prove (Store::back_versions).
         state.current = Some(pointer("fox-2.0.0-0123456789ab", "2.0.0"));
-        assert_eq!(
-            state.validate(),
-            Err("release fox-2.0.0-0123456789ab has version 2.0.0, above the highest version accepted (1.0.0)".into())
-        );
+        assert_eq!(state.validate(), Ok(()));
         state.current = Some(pointer("../fox", "1.0.0"));
         assert_eq!(
             state.validate(),

@@ -64,7 +64,11 @@ impl Device {
         crate::check::feed::check_channel(channel)
             .map_err(|e| Error::new(ErrorKind::Settings, e.to_string()))?;
         let held = Held::load(&app.trust, dir, now)?;
-        let store = Store::open(dir, bundle_verifier(&app, &held)?)?.wait_for_lock(app.lock_wait);
+        let mut store =
+            Store::open(dir, bundle_verifier(&app, &held)?)?.wait_for_lock(app.lock_wait);
+        if let Some(initial) = app.shipped_trust_set() {
+            store = store.with_trust_chain(initial);
+        }
         let device_id = match &app.device_id {
             Some(id) => id.clone(),
             None => stored_device_id(&store)?,
