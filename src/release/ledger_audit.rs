@@ -136,45 +136,19 @@ fn append_bytes(
 }
 
 /// Appends `entry` to the tree's ledger under a tree head signed by every key of `keys`, writes
-/// the consistency step from the previous head, and returns the feed's `ledger` object for
-/// the release whose bundle is `named` on the entry's channel (its latest publish entry).
-pub fn append(
-    root: &Path,
-    entry: &Entry,
-    named: Option<&Digest>,
-    keys: &[&SigningKey],
-) -> Result<FeedLedger> {
-    let (ledger, index, tree_head, consistency) =
-        append_bytes(root, &entry.to_bytes(), entry.time, keys)
-            .context("cannot append to the release tree's ledger; the feed was not changed")?;
-    let new_size = tree_head.head().tree_size;
-    let (entry_text, inclusion) = match named {
-        None => (None, None),
-        Some(sha256) => {
-            let found = if entry.event == Event::Publish && entry.bundle_digest == *sha256 {
-                Some((index, ledger.entry(index)?))
-            } else {
-                ledger.find_last(|e| {
-                    e.event == Event::Publish
-                        && e.channel == entry.channel
-                        && e.bundle_digest == *sha256
-                })?
-            };
-            match found {
-                Some((at, bytes)) => (
-                    Some(String::from_utf8(bytes).context("a ledger entry is not UTF-8")?),
-                    Some(ledger.inclusion_proof(at, new_size)?),
-                ),
-                // Published before the ledger existed: devices that require the ledger
-                // refuse it, which is the truth about it.
-                None => (None, None),
-            }
-        }
-    };
+/// the consistency step from the previous head, and returns the feed's `ledger` object: the
+/// new head, `entry` itself (the head's last leaf) and its inclusion proof. Every feed carries
+/// the entry its own change appended, so a device can check that the feed is its channel's
+/// newest logged state (FORMAT.md, "The feed's ledger entry").
+pub fn append(root: &Path, entry: &Entry, keys: &[&SigningKey]) -> Result<FeedLedger> {
+    let bytes = entry.to_bytes();
+    let (ledger, index, tree_head, consistency) = append_bytes(root, &bytes, entry.time, keys)
+        .context("cannot append to the release tree's ledger; the feed was not changed")?;
+    let inclusion = ledger.inclusion_proof(index, tree_head.head().tree_size)?;
     Ok(FeedLedger {
         tree_head,
-        entry: entry_text,
-        inclusion,
+        entry: Some(String::from_utf8(bytes).context("a ledger entry is not UTF-8")?),
+        inclusion: Some(inclusion),
         consistency,
     })
 }

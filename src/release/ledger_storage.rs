@@ -1074,6 +1074,9 @@ mod tests {
             "empty-frame",
         ];
         Entry {
+            // Legacy entries: these tests are about storage, not the entry format.
+            format: ampoule_verify::ledger::LEGACY_ENTRY_FORMAT,
+            offered: None,
             event: if i % 7 == 6 {
                 Event::Withdraw
             } else {

@@ -33,7 +33,9 @@ use ampoule_verify::feed::{Feed, Release, SignedFeed, TrustSetRef, check_channel
 use ampoule_verify::format::{
     BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes, trust_set as trust_spec,
 };
-use ampoule_verify::ledger::{Entry as LedgerEntry, Event as LedgerEvent, TrustSetEntry};
+use ampoule_verify::ledger::{
+    ENTRY_FORMAT, Entry as LedgerEntry, Event as LedgerEvent, Offered, TrustSetEntry,
+};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{
     Digest, DocumentKind, KeyId, Manifest, Timestamp, TrustSet, TrustSetFile, TrustedKeys, Verifier,
@@ -336,6 +338,18 @@ fn publish_refused(bundle: &Path, e: ampoule_verify::Error) -> anyhow::Error {
     ))
 }
 
+/// What a feed offering `release` logs in its ledger entry (no deltas yet: issue 13 adds them).
+fn offered(release: &Release, manifest_digest: Digest) -> Offered {
+    Offered {
+        bundle: release.name.clone(),
+        version: release.version.clone(),
+        bundle_digest: release.sha256,
+        manifest_digest,
+        rollout_percent: release.rollout_percent,
+        deltas: Vec::new(),
+    }
+}
+
 /// The keys that sign a change's tree head: the feed key first.
 fn signing_keys<'a>(signing: &Signing<'a>) -> Vec<&'a SigningKey> {
     std::iter::once(signing.key)
@@ -627,6 +641,7 @@ impl Tree {
         let sequence = self.next_sequence(channel, &history)?;
         let feed = self.feed(channel, sequence, Some(release.clone()), signing)?;
         let entry = LedgerEntry {
+            format: ENTRY_FORMAT,
             event: LedgerEvent::Publish,
             channel: channel.to_string(),
             bundle: release.name.clone(),
@@ -636,6 +651,7 @@ impl Tree {
             key_ids: facts.signers.clone(),
             time: signing.now.unix(),
             feed_sequence: sequence,
+            offered: Some(Some(offered(&release, facts.manifest_digest))),
         };
         let entry_index =
             crate::release::ledger_audit::preview(&self.root, &entry, &signing_keys(signing))?;
@@ -782,10 +798,22 @@ impl Tree {
             })));
         };
         let sequence = self.next_sequence(channel, &history)?;
-        let feed = self.feed(channel, sequence, stack.pop(), signing)?;
+        let now_offered = stack.pop();
+        // The withdraw entry names both the release pulled (its own fields) and what the
+        // channel's feed offers from now on, so the feed carries an entry of its own.
+        let logged_offer = match &now_offered {
+            Some(r) => {
+                let (manifest_digest, _) =
+                    crate::release::ledger_audit::withdrawn(&self.root, channel, &r.sha256)?;
+                Some(offered(r, manifest_digest))
+            }
+            None => None,
+        };
+        let feed = self.feed(channel, sequence, now_offered, signing)?;
         let (manifest_digest, key_ids) =
             crate::release::ledger_audit::withdrawn(&self.root, channel, &current.sha256)?;
         let entry = LedgerEntry {
+            format: ENTRY_FORMAT,
             event: LedgerEvent::Withdraw,
             channel: channel.to_string(),
             bundle: current.name.clone(),
@@ -795,6 +823,7 @@ impl Tree {
             key_ids,
             time: signing.now.unix(),
             feed_sequence: sequence,
+            offered: Some(logged_offer),
         };
         let entry_index =
             crate::release::ledger_audit::preview(&self.root, &entry, &signing_keys(signing))?;
@@ -995,6 +1024,7 @@ impl Tree {
             let (manifest_digest, key_ids) =
                 crate::release::ledger_audit::withdrawn(&self.root, &channel, &release.sha256)?;
             let entry = LedgerEntry {
+                format: ENTRY_FORMAT,
                 event: LedgerEvent::Publish,
                 channel: channel.clone(),
                 bundle: release.name.clone(),
@@ -1004,6 +1034,7 @@ impl Tree {
                 key_ids,
                 time: signing.now.unix(),
                 feed_sequence: sequence,
+                offered: Some(Some(offered(&release, manifest_digest))),
             };
             history.events.push(Event::TrustSet {
                 sequence,
@@ -1089,12 +1120,8 @@ impl Tree {
     ) -> Result<Change> {
         self.writable()?;
         let keys = signing_keys(signing);
-        let named = feed.release.as_ref().map(|r| r.sha256);
         feed.ledger = Some(crate::release::ledger_audit::append(
-            &self.root,
-            entry,
-            named.as_ref(),
-            &keys,
+            &self.root, entry, &keys,
         )?);
         feed.validate()?;
         write_atomic(&self.history_path(channel), &to_pretty_json(history))?;

@@ -35,7 +35,8 @@ pub struct LedgerCheck {
     pub tree_head: TreeHead,
     /// The trusted keys that signed it.
     pub signers: Vec<KeyId>,
-    /// The publish entry of the feed's release, checked to be in the tree.
+    /// The entry the feed's own change appended (format 2), checked to be the tree head's
+    /// last leaf; `Some` whenever the check passed.
     pub entry: Option<Entry>,
 }
 
@@ -120,7 +121,9 @@ impl Walk {
                 ErrorKind::Stale,
                 format!(
                     "ledger tree head of size {} is smaller than the tree head of size {} this \
-                     device saw before; refusing a rolled-back ledger",
+                     device saw before; refusing a rolled-back ledger (after a channel switch, \
+                     the new channel's feed is taken once a renewal of it carries a head at \
+                     least that large: 'ampoule publish' of its current bundle renews it)",
                     head.tree_size, seen.tree_size
                 ),
             ));
