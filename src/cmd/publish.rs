@@ -94,8 +94,13 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
             tree_head_keys: &tree_head_keys,
         };
         let plan = tree.plan_publish(&facts, channel, args.rollout, &args.mirror, &signing)?;
+        let warning = tree_head_warning(&tree, &signing)?;
         drop(tree);
-        return report_plan(&plan, &signing, &args.key, out);
+        report_plan(&plan, &signing, &args.key, out)?;
+        if let Some(w) = warning {
+            out.note(&w);
+        }
+        return Ok(());
     }
     let tree = Tree::lock_waiting(&args.tree, wait)?;
     let (check, trusted) = verifier(Some(&tree))?;
@@ -110,8 +115,13 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         tree_head_keys: &tree_head_keys,
     };
     let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
+    let warning = tree_head_warning(&tree, &signing)?;
     drop(tree);
-    report(&change, &args.key, out)
+    report(&change, &args.key, out)?;
+    if let Some(w) = warning {
+        out.note(&w);
+    }
+    Ok(())
 }
 
 /// Publishes a trust set into the tree and signs every channel's feed again to name it.
@@ -159,6 +169,9 @@ fn publish_trust_set(
             path.display()
         )
     })?;
+    if let Some(w) = tree_head_warning(&tree, &signing)? {
+        out.note(&w);
+    }
     // Each renewed feed was logged in the ledger as a renewal of its channel's release; the
     // trust set itself is in the tree under trust/ (its own ledger event is still to come).
     drop(tree);
@@ -205,6 +218,41 @@ fn publish_trust_set(
             })).collect::<Vec<_>>(),
         }),
     )
+}
+
+/// The warning `publish` and `withdraw` print when the feed key alone meets the tree-head
+/// threshold: then a thief of the runner's feed key signs feeds and the tree heads they carry,
+/// and the device's ledger checks (the feed's entry is its channel's newest) no longer hold
+/// against that thief (issue 10 item 3). Under the tree's trust set the roles say; with
+/// pinned keys (no trust set) the tree cannot know what devices pin, so it warns when the
+/// feed key is the only key signing tree heads.
+pub fn tree_head_warning(tree: &Tree, signing: &Signing<'_>) -> Result<Option<String>> {
+    let feed_key = KeyId::of_raw_key(signing.key.verifying_key().as_bytes());
+    let named = match signing.key_file {
+        Some(file) => format!("{feed_key} ({})", file.display()),
+        None => feed_key.to_string(),
+    };
+    let advice = "give the publishing runner's key the feed role only and sign tree heads with \
+                  a key it does not hold (FORMAT.md, \"Who signs tree heads\")";
+    if let Some(current) = tree.current_trust_set()? {
+        let file = ampoule_verify::TrustSetFile::from_json(&current.bytes)?;
+        let alone = crate::cmd::trust::feed_keys_meeting_tree_head_alone(file.body());
+        return Ok(alone.contains(&feed_key).then(|| {
+            format!(
+                "warning: the feed key {named} alone meets the tree_head threshold of trust set \
+                 version {}: whoever holds it can make devices accept feeds that the ledger does \
+                 not check; {advice}",
+                current.version
+            )
+        }));
+    }
+    Ok(signing.tree_head_keys.is_empty().then(|| {
+        format!(
+            "warning: the ledger's tree heads are signed by the feed key {named} alone: devices \
+             that also trust it for tree heads cannot tell a feed signed with a stolen feed key \
+             from a genuine one; {advice}, given with --tree-head-key"
+        )
+    }))
 }
 
 /// Reads the `--tree-head-key` files: keys that sign the ledger's tree head besides the feed

@@ -8,7 +8,9 @@ use serde_json::json;
 
 use crate::cli::WithdrawArgs;
 use crate::cmd::passphrase_source;
-use crate::cmd::publish::{read_tree_head_keys, release_json, report, report_plan};
+use crate::cmd::publish::{
+    read_tree_head_keys, release_json, report, report_plan, tree_head_warning,
+};
 use crate::output::Output;
 use crate::release::keyfile;
 use crate::release::tree::{
@@ -60,14 +62,22 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
     };
     if args.dry_run {
         let planned = tree.plan_withdraw(&args.channel, &version, &signing)?;
+        let warning = tree_head_warning(&tree, &signing)?;
         drop(tree);
+        if let Some(w) = warning {
+            out.note(&w);
+        }
         return match planned {
             Withdrawal::Pending(plan) => report_plan(&plan, &signing, &args.key, out),
             Withdrawal::Already(already) => report_already(&already, true, out),
         };
     }
     let done = tree.withdraw(&args.channel, &version, &signing)?;
+    let warning = tree_head_warning(&tree, &signing)?;
     drop(tree);
+    if let Some(w) = warning {
+        out.note(&w);
+    }
     match done {
         Withdrawal::Pending(change) => report(&change, &args.key, out),
         Withdrawal::Already(already) => report_already(&already, false, out),

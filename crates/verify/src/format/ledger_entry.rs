@@ -36,6 +36,11 @@ pub const MAX_STEP_BYTES: u64 = 32 * 1024;
 /// daily releases, yet a bound on what a hostile server can make it fetch.
 pub const MAX_STEPS: usize = 20_000;
 
+/// The most deltas one ledger entry may list for its release (reserved for delta updates,
+/// issue 13; entries written today list none). A delta is a way to send a release to devices
+/// on one of a few recent bases, so a handful suffices.
+pub const MAX_DELTAS: usize = 8;
+
 /// The ledger's directory in a release tree.
 pub const LEDGER_DIR: &str = "ledger";
 
@@ -165,7 +170,7 @@ pub struct Offered {
     /// The share of devices the feed offers it to, 0 to 100 percent.
     pub rollout_percent: u8,
     /// Deltas that rebuild this release from an older one (reserved for delta updates: always
-    /// empty today, at most [`crate::format::limit::DELTAS`]).
+    /// empty today, at most [`MAX_DELTAS`]).
     pub deltas: Vec<DeltaRef>,
 }
 
@@ -255,13 +260,13 @@ impl Entry {
                     offered.rollout_percent
                 )));
             }
-            if offered.deltas.len() > crate::format::limit::DELTAS {
+            if offered.deltas.len() > MAX_DELTAS {
                 return Err(Error::new(
                     ErrorKind::TooLarge,
                     format!(
                         "ledger entry lists {} deltas, over the limit of {}",
                         offered.deltas.len(),
-                        crate::format::limit::DELTAS
+                        MAX_DELTAS
                     ),
                 ));
             }
@@ -413,5 +418,88 @@ impl ConsistencyStep {
             serde_json::to_vec_pretty(self).expect("a consistency step always serializes");
         bytes.push(b'\n');
         bytes
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const DIGEST: &str = "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855";
+
+    /// A format-2 publish entry of trailcam-species 1.0.0 with `deltas` in its offer.
+    fn publish(deltas: &str) -> String {
+        format!(
+            "{{\"format\":2,\"event\":\"publish\",\"channel\":\"stable\",\"bundle\":\
+             \"trailcam-species\",\"version\":\"1.0.0\",\"bundle_digest\":\"{DIGEST}\",\
+             \"manifest_digest\":\"{DIGEST}\",\"key_ids\":[],\"time\":1,\"feed_sequence\":1,\
+             \"offered\":{{\"bundle\":\"trailcam-species\",\"version\":\"1.0.0\",\
+             \"bundle_digest\":\"{DIGEST}\",\"manifest_digest\":\"{DIGEST}\",\
+             \"rollout_percent\":100,\"deltas\":[{deltas}]}}}}"
+        )
+    }
+
+    fn delta() -> String {
+        format!("{{\"base\":\"{DIGEST}\",\"size\":45285,\"sha256\":\"{DIGEST}\"}}")
+    }
+
+    #[test]
+    fn issue10_format_2_entries_parse_round_trip_and_bound_their_deltas() {
+        let none = publish("");
+        let entry = Entry::from_bytes(none.as_bytes()).expect("a format-2 entry");
+        assert!(entry.is_bound());
+        assert_eq!(entry.to_bytes(), none.as_bytes(), "byte for byte");
+
+        let eight = vec![delta(); MAX_DELTAS].join(",");
+        let entry = Entry::from_bytes(publish(&eight).as_bytes()).expect("eight deltas");
+        assert_eq!(entry.offered().map(|o| o.deltas.len()), Some(MAX_DELTAS));
+
+        let nine = vec![delta(); MAX_DELTAS + 1].join(",");
+        let err = Entry::from_bytes(publish(&nine).as_bytes()).expect_err("nine deltas");
+        assert_eq!(err.to_string(), "ledger entry lists 9 deltas, over the limit of 8");
+        assert_eq!(err.kind(), ErrorKind::TooLarge);
+    }
+
+    #[test]
+    fn issue10_an_entry_whose_fields_disagree_is_refused() {
+        let cases = [
+            (
+                publish("").replace("\"format\":2", "\"format\":3"),
+                "ledger entry format 3 is not supported (this reader knows formats 1 and 2)",
+            ),
+            (
+                publish("").replace("\"format\":2,", ""),
+                "ledger entry has an offered field but no format; entries with offered are \
+                 format 2",
+            ),
+            (
+                publish("").replace("\"rollout_percent\":100", "\"rollout_percent\":101"),
+                "ledger entry offers a rollout of 101 percent; it must be 0 to 100",
+            ),
+        ];
+        for (text, message) in &cases {
+            let err = Entry::from_bytes(text.as_bytes()).expect_err(message);
+            assert_eq!(err.to_string(), *message);
+        }
+        // A publish whose offer names another release.
+        let other = publish("").replace(
+            "\"offered\":{\"bundle\":\"trailcam-species\",\"version\":\"1.0.0\"",
+            "\"offered\":{\"bundle\":\"trailcam-species\",\"version\":\"0.9.0\"",
+        );
+        assert_eq!(
+            Entry::from_bytes(other.as_bytes())
+                .expect_err("another release")
+                .to_string(),
+            "publish entry of trailcam-species 1.0.0 offers another release than the one it \
+             publishes"
+        );
+        // Format 2 without offered (null must be written out when nothing is offered).
+        let cut = publish("");
+        let cut = &cut[..cut.find(",\"offered\"").expect("offered")];
+        let err = Entry::from_bytes(format!("{cut}}}").as_bytes()).expect_err("no offered");
+        assert_eq!(
+            err.to_string(),
+            "ledger entry of format 2 has no offered field (null when the feed offers nothing)"
+        );
     }
 }

@@ -77,9 +77,6 @@ pub mod limit {
     pub const URL_BYTES: usize = 2048;
     /// The largest signed tree head (head and signatures, as JSON), in bytes.
     pub const TREE_HEAD_BYTES: u64 = 16 * 1024;
-    /// The most deltas one ledger entry may list for its release (reserved for delta
-    /// updates; entries written today list none).
-    pub const DELTAS: usize = 8;
 }
 
 /// The domain string hashed ahead of a device id and a bundle digest to place a device in or
