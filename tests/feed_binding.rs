@@ -495,3 +495,173 @@ fn issue10_old_format_ledgers_stay_readable_and_devices_require_the_new_binding(
     let report = update(&camera, d, feed_file(d, "stable"));
     assert_eq!(installed(&report), Version::new(1, 0, 0));
 }
+
+/// The tree-head signer the runner calls: a script beside the tree-head key in `vault/`, a
+/// stand-in for a signing service or hardware token the runner reaches but cannot read. It logs
+/// the entry it is shown, then signs with openssl (the general-purpose Ed25519 signer of
+/// RFC 8032, which cannot read stdin with -rawin, hence the file).
+fn vault(d: &Path, key: &str) -> String {
+    std::fs::create_dir(d.join("vault")).expect("vault");
+    std::fs::rename(d.join(key), d.join("vault/heads.pem")).expect("move the key");
+    std::fs::write(
+        d.join("vault/sign.sh"),
+        "set -e\nprintf '%s\\n' \"$AMPOULE_LEDGER_ENTRY\" >> vault/shown.log\n\
+         f=$(mktemp)\ncat > \"$f\"\nopenssl pkeyutl -sign -rawin -inkey vault/heads.pem -in \"$f\"\n\
+         rm -f \"$f\"\n",
+    )
+    .expect("script");
+    "sh vault/sign.sh".to_string()
+}
+
+fn publish_with_signer(d: &Path, bundle: &str, signer: &str) -> std::process::Output {
+    run(
+        d,
+        &[
+            "publish",
+            bundle,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "runner.pem",
+            "--trust",
+            "k.pub",
+            "--tree-head-signer",
+            signer,
+            "--tree-head-signer-key",
+            "heads.pub",
+        ],
+    )
+}
+
+#[test]
+fn issue10_tree_heads_signed_outside_the_runner() {
+    let dir = three_keys();
+    let d = dir.path();
+    if std::process::Command::new("openssl")
+        .arg("version")
+        .output()
+        .is_err()
+    {
+        eprintln!("skipped: openssl is not installed");
+        return;
+    }
+    let signer = vault(d, "heads.pem");
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    let out = publish_with_signer(d, &v1, &signer);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // Feed role for the runner, tree heads from elsewhere: nothing to warn about.
+    assert_eq!(String::from_utf8_lossy(&out.stderr), "");
+    let shown = std::fs::read_to_string(d.join("vault/shown.log")).expect("log");
+    let feed = feed_of(&feed_file(d, "stable"));
+    assert_eq!(
+        shown.trim_end(),
+        feed.ledger
+            .as_ref()
+            .and_then(|l| l.entry.as_deref())
+            .expect("entry"),
+        "the signer was shown the entry the head logs"
+    );
+    let camera = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    assert_eq!(
+        installed(&update(&camera, d, feed_file(d, "stable"))),
+        Version::new(1, 0, 0)
+    );
+
+    // A signer that fails, and one that signs with another key: nothing is appended.
+    let before = std::fs::read(d.join("tree/ledger/tree-head.json")).expect("head");
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    let out = publish_with_signer(d, &v2, "cat > /dev/null; exit 3");
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains(
+            "the tree-head signer 'cat > /dev/null; exit 3' failed (exit status: 3); nothing \
+             was appended and no feed was changed"
+        ),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let other =
+        "f=$(mktemp); cat > \"$f\"; openssl pkeyutl -sign -rawin -inkey runner.pem -in \"$f\"";
+    let out = publish_with_signer(d, &v2, other);
+    assert_eq!(out.status.code(), Some(1));
+    let heads_id = public(d, "heads.pub").iter().next().expect("key").id();
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains(&format!(
+            "signature does not verify under key {heads_id} over this tree head: the tree-head \
+             signer '{other}' did not sign this tree head with the key given for it \
+             ({heads_id}); nothing was appended"
+        )),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        std::fs::read(d.join("tree/ledger/tree-head.json")).expect("head"),
+        before,
+        "the ledger did not move"
+    );
+    assert_eq!(feed_of(&feed_file(d, "stable")).sequence, 1);
+    let out = publish_with_signer(d, &v2, &signer);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        installed(&update(&camera, d, feed_file(d, "stable"))),
+        Version::new(1, 1, 0)
+    );
+}
+
+#[test]
+fn issue10_publish_warns_when_the_feed_key_alone_signs_tree_heads() {
+    let dir = three_keys();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    let out = run(
+        d,
+        &[
+            "publish",
+            &v1,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "runner.pem",
+            "--trust",
+            "k.pub",
+        ],
+    );
+    assert!(out.status.success());
+    let runner = public(d, "runner.pub").iter().next().expect("key").id();
+    assert_eq!(
+        String::from_utf8_lossy(&out.stderr),
+        format!(
+            "ampoule: warning: the ledger's tree heads are signed by the feed key {runner} \
+             (runner.pem) alone: devices that also trust it for tree heads cannot tell a feed \
+             signed with a stolen feed key from a genuine one; give the publishing runner's key \
+             the feed role only and sign tree heads with a key it does not hold (FORMAT.md, \
+             \"Who signs tree heads\"), given with --tree-head-signer or --tree-head-key\n"
+        )
+    );
+    // trust init's default gives one key every role: it says so.
+    let out = run(
+        d,
+        &["trust", "init", "--key", "runner.pub", "-o", "trust.json"],
+    );
+    assert!(out.status.success());
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains(&format!(
+            "warning: key {runner} holds both the feed and the tree_head role and tree heads \
+             need 1 signature"
+        )),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}

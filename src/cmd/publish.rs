@@ -35,6 +35,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     }
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
+    let outside = outside_signer(&args.tree_head_signer, &args.tree_head_signer_key)?;
     let now = Timestamp::now();
     // Publishing checks the bundle the way devices will: with --trust against those keys;
     // else against the tree's trust set (its bundle keys and threshold); else the feed key
@@ -92,6 +93,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
             now,
             expires_in_secs,
             tree_head_keys: &tree_head_keys,
+            outside: outside.as_ref(),
         };
         let plan = tree.plan_publish(&facts, channel, args.rollout, &args.mirror, &signing)?;
         let warning = tree_head_warning(&tree, &signing)?;
@@ -113,6 +115,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         now,
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
+        outside: outside.as_ref(),
     };
     let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
     let warning = tree_head_warning(&tree, &signing)?;
@@ -134,6 +137,7 @@ fn publish_trust_set(
     let (bytes, _) = crate::cmd::read_trust_set_file(path)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
+    let outside = outside_signer(&args.tree_head_signer, &args.tree_head_signer_key)?;
     if !args.tree.exists() {
         // As for a bundle: a set the new tree would refuse must not leave an empty tree.
         TrustSet::verify_initial(&bytes, Timestamp::now()).with_context(|| {
@@ -150,6 +154,7 @@ fn publish_trust_set(
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
+        outside: outside.as_ref(),
     };
     if args.dry_run {
         let tree = Tree::read_only(&args.tree, wait)?;
@@ -246,13 +251,27 @@ pub fn tree_head_warning(tree: &Tree, signing: &Signing<'_>) -> Result<Option<St
             )
         }));
     }
-    Ok(signing.tree_head_keys.is_empty().then(|| {
+    Ok((signing.tree_head_keys.is_empty() && signing.outside.is_none()).then(|| {
         format!(
             "warning: the ledger's tree heads are signed by the feed key {named} alone: devices \
              that also trust it for tree heads cannot tell a feed signed with a stolen feed key \
-             from a genuine one; {advice}, given with --tree-head-key"
+             from a genuine one; {advice}, given with --tree-head-signer or --tree-head-key"
         )
     }))
+}
+
+/// The `--tree-head-signer` command with the public key its signatures must verify under.
+pub fn outside_signer(
+    command: &Option<String>,
+    key: &Option<std::path::PathBuf>,
+) -> Result<Option<crate::release::ledger_audit::OutsideHeadSigner>> {
+    match (command, key) {
+        (Some(command), Some(key)) => Ok(Some(crate::release::ledger_audit::OutsideHeadSigner {
+            command: command.clone(),
+            key: keyfile::read_public_key(key)?,
+        })),
+        _ => Ok(None),
+    }
 }
 
 /// Reads the `--tree-head-key` files: keys that sign the ledger's tree head besides the feed

@@ -184,6 +184,28 @@ impl Ledger {
         self.append(&entry.to_bytes(), keys, time)
     }
 
+    /// Appends one entry like [`Ledger::append`], and adds the signatures `outside` returns for
+    /// the new head (a tree-head key held outside this process) before the head is committed.
+    /// If `outside` fails, nothing is appended.
+    pub fn append_with_outside(
+        &mut self,
+        entry: &[u8],
+        keys: &[&SigningKey],
+        outside: &dyn Fn(&TreeHead) -> Result<Vec<TreeHeadSignature>>,
+        time: u64,
+    ) -> Result<u64> {
+        check_signing_keys(keys)?;
+        let lock = self.lock()?;
+        self.reload()?;
+        self.truncate_uncommitted()?;
+        let result = self.write_and_commit([entry], keys, Some(outside), time);
+        if result.is_err() {
+            let _ = self.truncate_uncommitted();
+        }
+        drop(lock);
+        Ok(result?.start)
+    }
+
     /// Appends several entries under one new tree head; returns their indexes. Either all of
     /// them are in the ledger afterwards or, after an error or crash, none.
     pub fn append_batch<I>(
@@ -201,7 +223,7 @@ impl Ledger {
         // Another process may have appended since this handle last looked.
         self.reload()?;
         self.truncate_uncommitted()?;
-        let result = self.write_and_commit(entries, keys, time);
+        let result = self.write_and_commit(entries, keys, None, time);
         if result.is_err() {
             // Best effort: leave no uncommitted bytes behind; the next append would remove them
             // anyway, and readers never see them.
@@ -228,6 +250,7 @@ impl Ledger {
         &mut self,
         entries: I,
         keys: &[&SigningKey],
+        outside: Option<&dyn Fn(&TreeHead) -> Result<Vec<TreeHeadSignature>>>,
         time: u64,
     ) -> Result<Range<u64>>
     where
@@ -274,7 +297,12 @@ impl Ledger {
             root_hash: merkle::fold_frontier(&frontier).expect("a non-empty tree"),
             time,
         };
-        let signed = sign_tree_head(head, keys);
+        let mut signed = sign_tree_head(head, keys);
+        if let Some(outside) = outside {
+            let mut signatures = signed.signatures().to_vec();
+            signatures.extend(outside(&head)?);
+            signed = SignedTreeHead::new(head, signatures);
+        }
         self.commit(&signed)?;
         self.reload()?;
         Ok(start..size)

@@ -215,6 +215,8 @@ pub struct Signing<'a> {
     pub expires_in_secs: u64,
     /// Keys that sign the ledger's tree head besides `key`.
     pub tree_head_keys: &'a [SigningKey],
+    /// A tree-head signer outside this process, whose key this process never holds.
+    pub outside: Option<&'a crate::release::ledger_audit::OutsideHeadSigner>,
 }
 
 /// A release tree with its lock held; the lock is released when this is dropped. A tree
@@ -998,7 +1000,7 @@ impl Tree {
             key_ids: accepted.signature_report().valid.clone(),
             time: signing.now.unix(),
         };
-        crate::release::ledger_audit::append_trust_set(&self.root, &entry, &keys)?;
+        crate::release::ledger_audit::append_trust_set(&self.root, &entry, &keys, signing.outside)?;
         let dir = self.root.join(TRUST_DIR);
         fs::create_dir_all(&dir).with_context(|| io_context("create directory", &dir))?;
         let path = self.trust_set_path(accepted.version());
@@ -1121,7 +1123,10 @@ impl Tree {
         self.writable()?;
         let keys = signing_keys(signing);
         feed.ledger = Some(crate::release::ledger_audit::append(
-            &self.root, entry, &keys,
+            &self.root,
+            entry,
+            &keys,
+            signing.outside,
         )?);
         feed.validate()?;
         write_atomic(&self.history_path(channel), &to_pretty_json(history))?;

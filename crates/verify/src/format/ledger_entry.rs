@@ -1,13 +1,20 @@
 //! The audit ledger's documents, as the release side writes them and devices and auditors read
 //! them: the entry appended for every publish and withdraw (and the one for every trust-set
-//! publish), the `ledger` object a feed carries for the release it names, and the consistency
-//! steps a release tree serves. The checks a device makes with them live in
-//! `check/ledger_proof.rs`.
+//! publish), the `ledger` object every feed carries, and the consistency steps a release tree
+//! serves. The checks a device makes with them live in `check/feed.rs` (the feed's entry) and
+//! `check/ledger_proof.rs` (tree heads, the consistency walk).
+//!
+//! One entry format binds each feed (format 2, issue 10): every feed carries the entry its own
+//! change appended, with the feed's sequence and what the feed offers afterwards (`offered`:
+//! release, rollout and the deltas reserved for delta updates, or `null`), as the last leaf of
+//! the tree head it carries. So a device can tell the channel's newest logged state from an
+//! older one that a thief of the feed key re-signs. Entries written before (format 1: no
+//! `format`, no `offered`) stay readable for auditors; devices refuse them in a feed.
 //!
 //! Which bytes are the leaf: the entry exactly as the ledger stores it (one line of compact
-//! JSON, [`Entry::to_bytes`]). The feed carries that text, and the device checks that it names
-//! the release the feed offers (event, channel, bundle name, version, bundle SHA-256) before
-//! hashing it, so the device never has to rebuild a JSON serialization byte for byte.
+//! JSON, [`Entry::to_bytes`]). The feed carries that text, and the device checks that it
+//! matches the feed (channel, sequence, offer) before hashing it, so the device never has to
+//! rebuild a JSON serialization byte for byte.
 //!
 //! Consistency for devices that missed publishes: the feed carries a proof from the tree head
 //! just before its own, which suffices for a device that saw every head. Every append also
