@@ -466,6 +466,7 @@ fn issue10_old_format_ledgers_stay_readable_and_devices_require_the_new_binding(
         serde_json::from_str(&ok(d, &["--json", "ledger", "list", "--tree", "tree"]))
             .expect("JSON");
     assert_eq!(listed["entries"][0]["version"], "1.0.0");
+    assert_eq!(listed["entries"][0]["format"], 1);
 
     // A feed carrying the old entry as the head's last leaf is refused by devices.
     let old_feed = forge(d, &feed_file(d, "stable"), &|f| {
@@ -492,6 +493,12 @@ fn issue10_old_format_ledgers_stay_readable_and_devices_require_the_new_binding(
     publish_genuine(d, &v1, "stable");
     let doc = check("mixed ledger");
     assert_eq!(doc["tree_size"], 2);
+    let listed: serde_json::Value =
+        serde_json::from_str(&ok(d, &["--json", "ledger", "list", "--tree", "tree"]))
+            .expect("JSON");
+    assert_eq!(listed["entries"][1]["format"], 2);
+    assert_eq!(listed["entries"][1]["offered"]["rollout_percent"], 100);
+    assert_eq!(listed["entries"][1]["offered"]["deltas"], 0);
     let report = update(&camera, d, feed_file(d, "stable"));
     assert_eq!(installed(&report), Version::new(1, 0, 0));
 }

@@ -100,8 +100,8 @@ pub struct Feed {
     /// revocations; absent in trees that publish none.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub trust_set: Option<TrustSetRef>,
-    /// The audit ledger's proof for this feed: signed tree head, the release's publish entry
-    /// and its inclusion proof, and a consistency proof (see `format/ledger_entry.rs`).
+    /// The audit ledger's proof for this feed: signed tree head, the entry this feed's own
+    /// change appended and its inclusion proof, and a consistency proof (see `format/ledger_entry.rs`).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub ledger: Option<FeedLedger>,
 }
@@ -822,7 +822,7 @@ impl VerifiedFeed {
     }
 
     /// Checks a verified bundle against what this feed offered: the same name and version,
-    /// and (with the ledger) the manifest the publish entry logs, so a bundle signed but never
+    /// and (with the ledger) the manifest the feed's entry logs for its offer, so a bundle signed but never
     /// published is refused even when a feed points to it.
     pub(crate) fn check_bundle(&self, release: &Release, bundle: &VerifiedBundle) -> Result<()> {
         let m = bundle.manifest();

@@ -1,6 +1,7 @@
 //! The checks a device makes of the audit ledger before it trusts a release: the tree head is
-//! signed by the keys holding the tree-head role, the release's publish entry is in it, and the
-//! ledger only ever grew since the largest tree head the device saw before.
+//! signed by the keys holding the tree-head role, the feed's own entry is its last leaf (that
+//! part reads the feed and lives in `check/feed.rs`), and the ledger only ever grew since the
+//! largest tree head the device saw before.
 //!
 //! A bundle signed with a stolen key and sent to one device in a feed of its own is refused
 //! unless its publish entry is in a signed ledger that extends what the device saw; to put it
