@@ -137,7 +137,8 @@ of them makes diff exit 1.")]
   # Tree heads signed outside the runner, which holds the feed key only
   ampoule publish species-1.1.0.ampoule --tree ./release --channel stable \\
       --key feed.secret.pem --trust release.public.pem \\
-      --tree-head-signer './sign-tree-head' --tree-head-signer-key heads.public.pem
+      --tree-head-signer ./sign-tree-head \\
+      --tree-head-signer-key heads.public.pem
 
 The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
 Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
