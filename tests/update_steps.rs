@@ -5,6 +5,7 @@
 
 mod tree_common;
 
+use std::io::{Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::update::{Download, Next};
@@ -324,7 +325,12 @@ fn drive_partly(device: &Device, d: &Path, complete: bool) -> (Report, Vec<Strin
         } else {
             &bytes[..bytes.len() / 2]
         };
-        std::fs::write(want.path(), part).expect("write");
+        // As the crate documents: through the file the store opened, appended at its end.
+        let mut file = want.file().expect("the store's download file");
+        let have = file.metadata().expect("size").len() as usize;
+        file.seek(SeekFrom::End(0)).expect("seek");
+        file.write_all(&part[have.min(part.len())..])
+            .expect("write");
         complete.then(|| want.path().to_path_buf())
     });
     (report, asked.fetched)
@@ -493,5 +499,184 @@ fn issue9_review_a_linked_download_directory_is_not_swept() {
     assert_eq!(
         std::fs::read(outside.join("photos.db")).expect("still there"),
         b"the app's own data"
+    );
+}
+
+// Issue 10 item 2: links and other files planted where the store keeps its own. Whoever can
+// write the store directory (an SD card, a shared folder) gains nothing beyond deleting it:
+// nothing outside the store is written, truncated or removed, and the update goes on.
+
+/// A file of the app's own outside the store, which a planted link points at.
+fn outside_file(d: &Path) -> PathBuf {
+    let outside = d.join("app-data");
+    std::fs::create_dir_all(&outside).expect("outside dir");
+    let file = outside.join("photos.db");
+    std::fs::write(&file, b"the app's own data").expect("outside file");
+    file
+}
+
+fn assert_untouched(file: &Path) {
+    assert_eq!(
+        std::fs::read(file).expect("the outside file is still there"),
+        b"the app's own data",
+        "{} was written through a planted link",
+        file.display()
+    );
+}
+
+/// Publishes 1.1.0 on `stable` for everyone; returns its partial download's name, which
+/// anyone can work out from the public feed (the bundle's SHA-256).
+fn offer_1_1_0(d: &Path) -> String {
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    publish(d, &v2, "stable", "100");
+    let bytes = std::fs::read(d.join(&v2)).expect("bundle");
+    format!("{}.ampoule.partial", ampoule_verify::Digest::of(&bytes))
+}
+
+fn removed_mentions(report: &Report, what: &str) -> bool {
+    report.removed.iter().any(|r| r.contains(what))
+}
+
+#[test]
+fn issue10_a_link_at_the_partial_download_name_is_unlinked_and_its_target_untouched() {
+    let dir = setup();
+    let d = dir.path();
+    let (device, _) = camera_on_1_0_0(d);
+    let partial = offer_1_1_0(d);
+    let victim = outside_file(d);
+    std::os::unix::fs::symlink(&victim, d.join("cam/downloads").join(&partial))
+        .expect("plant the link");
+    let (report, _) = drive_partly(&device, d, true);
+    assert_eq!(installed_version(&report), Version::new(1, 1, 0));
+    assert_untouched(&victim);
+    assert!(
+        removed_mentions(&report, &format!("{partial} (a symbolic link)")),
+        "{:?}",
+        report.removed
+    );
+}
+
+#[test]
+fn issue10_a_hard_link_at_a_recorded_partial_download_is_never_resumed() {
+    let dir = setup();
+    let d = dir.path();
+    let (device, _) = camera_on_1_0_0(d);
+    let partial = offer_1_1_0(d);
+    let victim = outside_file(d);
+    // The attacker also writes the name into the download lock, as the store records the
+    // download it started.
+    std::fs::write(d.join("cam/downloads/lock"), &partial).expect("record");
+    std::fs::hard_link(&victim, d.join("cam/downloads").join(&partial)).expect("hard link");
+    let (report, _) = drive_partly(&device, d, true);
+    assert_eq!(installed_version(&report), Version::new(1, 1, 0));
+    assert_untouched(&victim);
+    assert!(
+        removed_mentions(&report, "has 2 hard links; a file the store wrote has one"),
+        "{:?}",
+        report.removed
+    );
+}
+
+#[test]
+fn issue10_a_linked_releases_directory_is_replaced_and_nothing_outside_is_deleted() {
+    let dir = setup();
+    let d = dir.path();
+    let (device, _) = camera_on_1_0_0(d);
+    let victim = outside_file(d);
+    let outside = victim.parent().expect("dir").to_path_buf();
+    // releases/ becomes a link to the app's data, which also holds a directory named like a
+    // stale release that gc would remove.
+    std::fs::create_dir(outside.join("trailcam-species-0.9.0-000000000000")).expect("decoy");
+    std::fs::rename(d.join("cam/releases"), d.join("releases-moved")).expect("move aside");
+    std::os::unix::fs::symlink(&outside, d.join("cam/releases")).expect("plant the link");
+    offer_1_1_0(d);
+    let (report, _) = drive_partly(&device, d, true);
+    assert_eq!(installed_version(&report), Version::new(1, 1, 0));
+    device.gc().expect("gc");
+    assert_untouched(&victim);
+    assert!(outside.join("trailcam-species-0.9.0-000000000000").is_dir());
+    assert!(
+        removed_mentions(&report, "releases (releases is a symbolic link"),
+        "{:?}",
+        report.removed
+    );
+    assert!(
+        !std::fs::symlink_metadata(d.join("cam/releases"))
+            .expect("releases")
+            .file_type()
+            .is_symlink()
+    );
+    // store status names what was removed, from state.json.
+    let state: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.join("cam/state.json")).expect("state"))
+            .expect("json");
+    assert!(
+        state["removed"].as_array().is_some_and(|r| r
+            .iter()
+            .any(|v| v.as_str().unwrap_or("").contains("releases"))),
+        "{state}"
+    );
+}
+
+#[test]
+fn issue10_dangling_links_at_the_locks_and_device_id_create_nothing_outside() {
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let cam = d.join("cam");
+    std::fs::create_dir_all(cam.join("downloads")).expect("store dirs");
+    let target = |name: &str| d.join("app-data").join(name);
+    std::fs::create_dir_all(d.join("app-data")).expect("outside");
+    for (link, name) in [
+        ("lock", "store-lock"),
+        ("device-id", "device-id"),
+        ("downloads/lock", "download-lock"),
+    ] {
+        std::os::unix::fs::symlink(target(name), cam.join(link)).expect("plant");
+    }
+    let device =
+        Device::open(&cam, "stable", pinned_app_own_id(d), Timestamp::now()).expect("open");
+    let (report, _) = drive_partly(&device, d, true);
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+    for name in ["store-lock", "device-id", "download-lock"] {
+        assert!(
+            std::fs::symlink_metadata(target(name)).is_err(),
+            "a dangling link made {name} outside the store"
+        );
+    }
+    for link in ["lock", "device-id", "downloads/lock"] {
+        assert!(
+            std::fs::symlink_metadata(cam.join(link)).is_ok_and(|m| m.is_file()),
+            "{link} is a file of the store's own again"
+        );
+        assert!(
+            removed_mentions(&report, &format!("{link} is a symbolic link"))
+                || removed_mentions(&report, &format!("{link} (")),
+            "{link}: {:?}",
+            report.removed
+        );
+    }
+}
+
+#[test]
+fn issue10_a_linked_state_file_is_refused_with_how_to_clear_it() {
+    let dir = setup();
+    let d = dir.path();
+    let (_device, _) = camera_on_1_0_0(d);
+    let cam = d.join("cam");
+    let elsewhere = d.join("state-elsewhere.json");
+    std::fs::rename(cam.join("state.json"), &elsewhere).expect("move");
+    std::os::unix::fs::symlink(&elsewhere, cam.join("state.json")).expect("plant");
+    let err = Device::open(&cam, "stable", app(d), Timestamp::now()).expect_err("refused");
+    assert_eq!(err.kind(), ErrorKind::Store);
+    assert_eq!(
+        err.to_string(),
+        format!(
+            "{} cannot be read: state.json is a symbolic link where the store keeps a file; \
+             ampoule-verify did not write it. Remove it and move the store's other files aside \
+             to start the store afresh",
+            cam.join("state.json").display()
+        )
     );
 }

@@ -104,10 +104,19 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
             head.tree_size, head.root_hash
         ));
     }
+    // Names come from whoever planted them: shown escaped.
+    for removed in &state.removed {
+        human.push_str(&format!(
+            "removed  {} (planted in the store by someone else; the update removed it without \
+             following it)\n",
+            removed.escape_debug()
+        ));
+    }
     out.result(
         &human,
         json!({
             "ok": true,
+            "removed": state.removed,
             "current": current.as_ref().map(release_json),
             "previous": state.previous.as_ref().map(|p| p.version.to_string()),
             "highest_version": state.highest_version.as_ref().map(|v| v.to_string()),

@@ -183,6 +183,14 @@ fn show(
         Some(version) => format!("trust set rotated to version {version}; {human}"),
         None => human,
     };
+    // Planted links and the like, removed without following them (issue 10): the update went
+    // on, but someone else writes the store directory. Names are shown escaped.
+    let human = report.removed.iter().fold(human, |human, removed| {
+        format!(
+            "removed {} from the store: it was not put there by ampoule; {human}",
+            removed.escape_debug()
+        )
+    });
     let offered_json = offered.map(|r| {
         json!({
             "name": r.name,
@@ -212,6 +220,7 @@ fn show(
         "offered": offered_json,
         "current": installed,
         "store": device.store().dir(),
+        "removed": report.removed,
     });
     if let Some(version) = report.trust_set_version {
         doc["trust_set_version"] = json!(version);

@@ -128,6 +128,13 @@ pub fn keys(d: &Path) -> TrustedKeys {
 /// The camera app of the library-level tests: the test key (`k.pub`) pinned for every role,
 /// app version 2.3.0, device id `camera-7`.
 pub fn pinned_app(d: &Path) -> App {
+    pinned_app_own_id(d)
+        .device_id("camera-7")
+        .expect("device id")
+}
+
+/// [`pinned_app`] without a device id: the store makes and keeps its own.
+pub fn pinned_app_own_id(d: &Path) -> App {
     let keys = keys(d);
     let trust = Trust::pinned(
         Signers::new(keys.clone(), 1).expect("bundle signers"),
@@ -136,10 +143,7 @@ pub fn pinned_app(d: &Path) -> App {
     );
     // Tests in one binary start `ampoule` processes while others hold a store's lock; a started
     // process briefly holds a copy of every open file, so a test device waits a little.
-    App::new(trust, Version::new(2, 3, 0))
-        .wait_for_lock(std::time::Duration::from_secs(5))
-        .device_id("camera-7")
-        .expect("device id")
+    App::new(trust, Version::new(2, 3, 0)).wait_for_lock(std::time::Duration::from_secs(5))
 }
 
 /// A feed file whose text is `text`, signed by the secret key in `d/<key>` alone: for tests

@@ -47,6 +47,14 @@ macro_rules! internal {
 internal!(error);
 mod progress;
 mod readahead;
+// Opening and removing inside the store without following links.
+#[cfg(unix)]
+mod dir;
+#[cfg(not(unix))]
+compile_error!(
+    "ampoule-verify needs a Unix-like system: its store opens every file with openat and \
+     O_NOFOLLOW so that a planted link is never followed"
+);
 // The format and its documents.
 internal!(format);
 // The checks: signatures, trust sets, feeds, the ledger's proofs, the app's policy.

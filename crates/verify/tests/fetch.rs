@@ -804,3 +804,37 @@ fn https_with_the_team_ca_works_and_an_unknown_issuer_is_refused() {
         "{text}"
     );
 }
+
+/// Issue 10 item 9: a resumed download whose whole file has the wrong digest cannot tell
+/// which source was wrong, the kept partial file or the server that sent the rest; the message
+/// names both, and neither is kept.
+#[test]
+fn issue10_a_digest_mismatch_after_resuming_names_both_sources_and_keeps_neither() {
+    let server = serve(answer_range);
+    let dir = tempfile::tempdir().expect("tempdir");
+    let mut wrong_prefix = data()[..HALF].to_vec();
+    wrong_prefix[7] ^= 1;
+    std::fs::write(partial_in(dir.path()), &wrong_prefix).expect("prefill");
+    let err = fetch(&server, dir.path(), &fast()).expect_err("refused");
+    let mut whole = wrong_prefix;
+    whole.extend_from_slice(&data()[HALF..]);
+    assert_eq!(err.kind(), ampoule_verify::ErrorKind::Digest);
+    assert_eq!(
+        err.to_string(),
+        format!(
+            "the {HALF} bytes kept in {} from an earlier try and the {} bytes from {} have \
+             SHA-256 {} together, but the feed declares {}; both were discarded, and the next \
+             try downloads the whole file again",
+            partial_in(dir.path()).display(),
+            SIZE - HALF,
+            server.url("/b.ampoule"),
+            Digest::of(&whole),
+            Digest::of(&data())
+        )
+    );
+    assert_eq!(
+        len_of(&partial_in(dir.path())),
+        0,
+        "nothing of either is kept"
+    );
+}

@@ -13,7 +13,10 @@ use layering::Layer;
 
 /// The layers in order, bottom first. Files directly in `src/` are listed by name.
 const LAYERS: &[Layer] = &[
-    ("base", &["error.rs", "readahead.rs", "progress.rs"]),
+    (
+        "base",
+        &["error.rs", "readahead.rs", "progress.rs", "dir.rs"],
+    ),
     ("format", &["format/"]),
     ("check", &["check/"]),
     ("payload", &["payload/"]),

@@ -732,7 +732,10 @@ fn tamper_model_replaced_by_symlink() {
     std::os::unix::fs::symlink(&outside, &model).expect("symlink");
     assert_eq!(
         t.open_error().to_string(),
-        format!("stored release {}: model.onnx is not a regular file", t.rel)
+        format!(
+            "stored release {}: model.onnx is a symbolic link where the store keeps a file",
+            t.rel
+        )
     );
 }
 

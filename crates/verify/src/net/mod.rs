@@ -540,6 +540,9 @@ impl Session {
     ) -> Result<()> {
         let io = |doing: &str, e| Error::io(format!("cannot {doing} {}", path.display()), e);
         let (mut have, mut hasher) = resume_state(file, path, size)?;
+        // How many of the bytes hashed below were kept from an earlier try rather than sent
+        // by `url` now: a digest mismatch names both sources.
+        let mut kept = have;
         if have < size || size == 0 {
             let deadline = Instant::now() + self.transfer.total_timeout;
             let response = self.get(url, have, deadline).await?;
@@ -595,6 +598,7 @@ impl Session {
             file.seek(SeekFrom::Start(have))
                 .map_err(|e| io("seek in", e))?;
             let start = have;
+            kept = have;
             // Plain blocking writes: this runtime runs nothing else, and a local disk keeps up
             // with any network a device has.
             let result = read_body(&self.transfer, url, response.into_body(), deadline, |data| {
@@ -645,26 +649,44 @@ impl Session {
         }
         let got = hasher.finish();
         if got != *sha256 {
+            // Either source may be the wrong one; neither is kept.
             file.set_len(0).map_err(|e| io("truncate", e))?;
-            return Err(Error::new(
-                ErrorKind::Digest,
+            let message = if kept == 0 {
                 format!(
                     "file downloaded from {url} has SHA-256 {got}, but the feed declares \
                      {sha256}; the partial file was discarded"
-                ),
-            ));
+                )
+            } else if kept >= size {
+                format!(
+                    "the {kept} bytes kept in {} from an earlier try have SHA-256 {got}, but the \
+                     feed declares {sha256} (nothing was fetched from {url}); they were \
+                     discarded, and the next try downloads the whole file again",
+                    path.display()
+                )
+            } else {
+                format!(
+                    "the {kept} bytes kept in {} from an earlier try and the {} bytes from {url} \
+                     have SHA-256 {got} together, but the feed declares {sha256}; both were \
+                     discarded, and the next try downloads the whole file again",
+                    path.display(),
+                    size - kept
+                )
+            };
+            return Err(Error::new(ErrorKind::Digest, message));
         }
         Ok(())
     }
 }
 
-/// Downloads a file of exactly `size` bytes with SHA-256 `sha256` into `partial`, trying
-/// `urls` in order. Bytes already in `partial` are kept and the rest is asked for with a Range
-/// request; one source is tried again while its tries make progress. On success `partial`
-/// holds exactly the expected file. A failure keeps a correct-looking prefix for the next
-/// call, and discards the file when the bytes were proven wrong (digest) or too many.
-pub fn download(
+/// Downloads a file of exactly `size` bytes with SHA-256 `sha256` into `file` (opened for
+/// reading and writing; `partial` names it in messages), trying `urls` in order. Bytes
+/// already in the file are kept and the rest is asked for with a Range request; one source is
+/// tried again while its tries make progress. On success the file holds exactly the expected
+/// bytes. A failure keeps a correct-looking prefix for the next call, and empties the file
+/// when the bytes were proven wrong (digest) or too many.
+pub fn download_into(
     urls: &[String],
+    file: &mut File,
     partial: &Path,
     size: u64,
     sha256: &Digest,
@@ -673,13 +695,6 @@ pub fn download(
     if urls.is_empty() {
         return Err(network("no URL to download from".into()));
     }
-    let mut file = OpenOptions::new()
-        .read(true)
-        .write(true)
-        .create(true)
-        .truncate(false)
-        .open(partial)
-        .map_err(|e| Error::io(format!("cannot open {}", partial.display()), e))?;
     let session = Session::new(transfer)?;
     let mut failures: Vec<Error> = Vec::new();
     for url in urls {
@@ -687,7 +702,7 @@ pub fn download(
             let before = file.metadata().map(|m| m.len()).unwrap_or(0);
             let result = session
                 .runtime
-                .block_on(session.download_once(url, &mut file, partial, size, sha256));
+                .block_on(session.download_once(url, file, partial, size, sha256));
             let err = match result {
                 Ok(()) => return Ok(()),
                 Err(e) => e,
@@ -713,6 +728,26 @@ pub fn download(
         kind,
         format!("download failed from all {} sources: {all}", failures.len()),
     ))
+}
+
+/// [`download_into`] the file at `partial`, opened (or created) by path: for the release
+/// side's tools and tests, which name their own files. A device's store opens its partial
+/// downloads without following links instead (`Download::file`).
+pub fn download(
+    urls: &[String],
+    partial: &Path,
+    size: u64,
+    sha256: &Digest,
+    transfer: &Transfer,
+) -> Result<()> {
+    let mut file = OpenOptions::new()
+        .read(true)
+        .write(true)
+        .create(true)
+        .truncate(false)
+        .open(partial)
+        .map_err(|e| Error::io(format!("cannot open {}", partial.display()), e))?;
+    download_into(urls, &mut file, partial, size, sha256, transfer)
 }
 
 /// What one update check found. The device stores the feed's sequence and digest

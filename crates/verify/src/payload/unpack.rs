@@ -6,7 +6,8 @@
 //! Decoded chunks are shared with the writing thread, not copied: the hash and the write of
 //! the same bytes run side by side.
 
-use std::fs::{self, File, OpenOptions};
+use std::ffi::OsString;
+use std::fs::File;
 use std::io::{self, Read, Seek, SeekFrom, Write};
 use std::ops::Deref;
 use std::path::{Path, PathBuf};
@@ -15,6 +16,7 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 
 use crate::format::digest::Hasher;
+use crate::dir::{Dir, Refused};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::limit;
 use crate::format::manifest::Manifest;
@@ -229,19 +231,16 @@ fn decode(
 
 /// Where the files go: nowhere (check only) or a staging directory.
 struct Sink<'a> {
-    dir: Option<&'a Path>,
+    dir: Option<&'a Dir>,
 }
 
 impl Sink<'_> {
     fn open(&self, name: &str) -> Result<Option<File>> {
         let Some(dir) = self.dir else { return Ok(None) };
-        let path = dir.join(name);
-        OpenOptions::new()
-            .write(true)
-            .create_new(true)
-            .open(&path)
+        // Created new inside the open staging directory: never through a link.
+        dir.create_new(name)
             .map(Some)
-            .map_err(|e| Error::io(format!("cannot create {}", path.display()), e))
+            .map_err(|e| Error::io(format!("cannot create {}", dir.join(name).display()), e))
     }
 }
 
@@ -256,7 +255,7 @@ pub(crate) struct Source<'a> {
 
 /// Decompresses and checks the payload, writing files into `dir` when given. Returns the
 /// labels.
-pub(crate) fn stream(source: &Source<'_>, dir: Option<&Path>) -> Result<Vec<String>> {
+pub(crate) fn stream(source: &Source<'_>, dir: Option<&Dir>) -> Result<Vec<String>> {
     let manifest = source.manifest;
     let tar_len = manifest.unpacked_tar_len();
     // Progress counts file data only (what `read_payload` advances by), not tar headers.
@@ -394,38 +393,61 @@ fn read_payload(
     Ok(labels)
 }
 
-/// A staging directory that removes itself unless it was renamed into place (`keep`).
-pub(crate) struct Staging {
-    pub path: PathBuf,
+/// A staging directory that removes itself unless it was renamed into place (`keep`). It is
+/// created and used through open directory handles, so a link planted at its name or at its
+/// parent's name never redirects a write.
+pub(crate) struct Staging<'p> {
+    /// The directory it lives in.
+    pub parent: &'p Dir,
+    /// Its name in `parent`; after a rename, the new name, so that a failure removes that.
+    pub name: OsString,
+    /// The open staging directory.
+    pub dir: Dir,
     pub keep: bool,
 }
 
-impl Drop for Staging {
+impl Drop for Staging<'_> {
     fn drop(&mut self) {
         if !self.keep {
-            let _ = fs::remove_dir_all(&self.path);
+            let _ = self.parent.remove(&self.name);
         }
     }
 }
 
-impl Staging {
-    /// Makes a fresh, empty directory in `dir` named `<prefix><pid>-<nanos>-<attempt>`, so
+impl<'p> Staging<'p> {
+    /// Makes a fresh, empty directory in `parent` named `<prefix><pid>-<nanos>-<attempt>`, so
     /// that leftovers of a crashed run can be recognised by their prefix.
-    pub(crate) fn create_in(dir: &Path, prefix: &str) -> Result<Staging> {
+    pub(crate) fn create_in(parent: &'p Dir, prefix: &str) -> Result<Staging<'p>> {
         let pid = std::process::id();
+        let cannot = |e| {
+            Error::io(
+                format!(
+                    "cannot create a staging directory in {}",
+                    parent.path().display()
+                ),
+                e,
+            )
+        };
         for attempt in 0..100u32 {
             let nanos = std::time::SystemTime::now()
                 .duration_since(std::time::UNIX_EPOCH)
                 .map_or(0, |d| d.subsec_nanos());
-            let path = dir.join(format!("{prefix}{pid}-{nanos:x}-{attempt}"));
-            match fs::create_dir(&path) {
-                Ok(()) => return Ok(Staging { path, keep: false }),
-                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
-                Err(e) => {
-                    return Err(Error::io(
-                        format!("cannot create a staging directory in {}", dir.display()),
-                        e,
-                    ));
+            let name = OsString::from(format!("{prefix}{pid}-{nanos:x}-{attempt}"));
+            match parent.make_dir(&name) {
+                Ok(dir) => {
+                    return Ok(Staging {
+                        parent,
+                        name,
+                        dir,
+                        keep: false,
+                    });
+                }
+                Err(Refused::Io(e)) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+                Err(Refused::Io(e)) => return Err(cannot(e)),
+                Err(Refused::Missing | Refused::Planted(_)) => {
+                    return Err(cannot(io::Error::other(
+                        "the new directory was replaced while it was being opened",
+                    )));
                 }
             }
         }
@@ -433,19 +455,10 @@ impl Staging {
             ErrorKind::Destination,
             format!(
                 "cannot find a free staging directory name in {}",
-                dir.display()
+                parent.path().display()
             ),
         ))
     }
-}
-
-/// Makes a fresh, empty staging directory beside `dest`.
-fn make_staging(dest: &Path) -> Result<Staging> {
-    let stem = dest
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "bundle".into());
-    Staging::create_in(parent_of(dest), &format!(".{stem}.partial-"))
 }
 
 fn parent_of(path: &Path) -> &Path {
@@ -456,10 +469,10 @@ fn parent_of(path: &Path) -> &Path {
 }
 
 /// Flushes a directory's entries to disk, so a rename in it survives a power cut.
-pub(crate) fn sync_dir(dir: &Path) -> Result<()> {
-    File::open(dir).and_then(|d| d.sync_all()).map_err(|e| {
+pub(crate) fn sync_dir(dir: &Dir) -> Result<()> {
+    dir.sync().map_err(|e| {
         Error::io(
-            format!("cannot flush directory {} to disk", dir.display()),
+            format!("cannot flush directory {} to disk", dir.path().display()),
             e,
         )
     })
@@ -470,29 +483,44 @@ pub(crate) fn sync_dir(dir: &Path) -> Result<()> {
 pub(crate) fn unpack_to(
     source: &Source<'_>,
     dest: &Path,
-    last_checks: &dyn Fn(&[String], &Path) -> Result<()>,
+    last_checks: &dyn Fn(&[String], &Dir) -> Result<()>,
 ) -> Result<Vec<String>> {
-    if fs::symlink_metadata(dest).is_ok() {
-        return Err(Error::new(
+    let exists = || {
+        Error::new(
             ErrorKind::Destination,
             format!(
                 "{} already exists; unpack into a new directory (nothing was written)",
                 dest.display()
             ),
-        ));
-    }
-    let mut staging = make_staging(dest)?;
-    let labels = stream(source, Some(&staging.path))?;
-    last_checks(&labels, &staging.path)?;
-    sync_dir(&staging.path)?;
-    fs::rename(&staging.path, dest).map_err(|e| {
-        Error::io(
-            format!("cannot move the unpacked files to {}", dest.display()),
-            e,
         )
-    })?;
+    };
+    let Some(name) = dest.file_name() else {
+        return Err(exists());
+    };
+    let parent = Dir::open_root(parent_of(dest), false)
+        .map_err(|e| Error::io(format!("cannot open {}", parent_of(dest).display()), e))?;
+    if parent
+        .found(name)
+        .map_err(|e| Error::io(format!("cannot read {}", dest.display()), e))?
+        .is_some()
+    {
+        return Err(exists());
+    }
+    let stem = name.to_string_lossy().into_owned();
+    let mut staging = Staging::create_in(&parent, &format!(".{stem}.partial-"))?;
+    let labels = stream(source, Some(&staging.dir))?;
+    last_checks(&labels, &staging.dir)?;
+    sync_dir(&staging.dir)?;
+    parent
+        .rename(&staging.name, &parent, name)
+        .map_err(|e| {
+            Error::io(
+                format!("cannot move the unpacked files to {}", dest.display()),
+                e,
+            )
+        })?;
     staging.keep = true;
-    sync_dir(parent_of(dest))?;
+    sync_dir(&parent)?;
     Ok(labels)
 }
 
@@ -510,14 +538,14 @@ impl VerifiedBundle {
     /// Decompresses into `dir`, an existing empty staging directory, with every check that
     /// [`VerifiedBundle::unpack`] makes before its rename. For the store, which stages and
     /// renames on its own.
-    pub(crate) fn unpack_into_staging(&self, dir: &Path) -> Result<Vec<String>> {
+    pub(crate) fn unpack_into_staging(&self, dir: &Dir) -> Result<Vec<String>> {
         let labels = crate::payload::unpack::stream(&self.source(), Some(dir))?;
         self.last_checks(&labels, dir)?;
         Ok(labels)
     }
 
     /// The checks that need the unpacked files: required labels, and the model's signature.
-    fn last_checks(&self, labels: &[String], staged: &Path) -> Result<()> {
+    fn last_checks(&self, labels: &[String], staged: &Dir) -> Result<()> {
         self.check_labels(labels)?;
         self.check_model_signature(staged)
     }
@@ -531,13 +559,25 @@ impl VerifiedBundle {
 
     /// Reads the unpacked model's signature again and requires it to be the one the signed
     /// manifest records, so a manifest cannot describe a different model than it ships.
-    fn check_model_signature(&self, dir: &Path) -> Result<()> {
+    fn check_model_signature(&self, dir: &Dir) -> Result<()> {
         if self.manifest.model.is_none() {
             // Packed as opaque: the manifest makes no claim about the model's structure.
             return Ok(());
         }
         let model = self.manifest.model();
-        let found = crate::format::model::read_model_signature_file(&dir.join(&model.path))?;
+        let shown = dir.join(&model.path);
+        let file = dir.open_file(&model.path).map_err(|e| {
+            Error::io(
+                format!("cannot open {}", shown.display()),
+                e.into_io(),
+            )
+        })?;
+        let len = file
+            .metadata()
+            .map_err(|e| Error::io(format!("cannot read {}", shown.display()), e))?
+            .len();
+        let found =
+            crate::format::model::read_model_signature_seekable(&model.path, file, len)?;
         if found != self.manifest.model {
             return Err(Error::new(
                 ErrorKind::Manifest,

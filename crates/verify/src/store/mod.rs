@@ -78,9 +78,10 @@
 //! existing releases is refused rather than treated as a fresh store.
 
 use std::collections::BTreeMap;
-use std::fs::{self, File, OpenOptions, TryLockError};
+use std::fs::{File, TryLockError};
 use std::io::{self, Read, Write};
 use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use semver::Version;
@@ -95,6 +96,7 @@ use crate::format::manifest::{Manifest, Role};
 use crate::format::merkle::TreeHead;
 use crate::format::time::Timestamp;
 use crate::check::trust::TrustSet;
+use crate::dir::{Dir, Found, Refused};
 use crate::payload::unpack::{Staging, sync_dir};
 use crate::check::bundle::{VerifiedBundle, Verifier};
 
@@ -113,6 +115,8 @@ pub const RELEASES_DIR: &str = "releases";
 pub const TRUST_SET_FILE: &str = "trust-set.json";
 /// The most channels a store remembers.
 pub const MAX_CHANNELS: usize = 64;
+/// The most planted entries one run notes (and `state.json` lists) as removed.
+pub const MAX_REMOVED_NOTES: usize = 16;
 
 const STATE_BYTES: u64 = 64 * 1024;
 const STATE_TEMP_PREFIX: &str = ".state.json.tmp-";
@@ -178,6 +182,11 @@ pub struct StoreState {
     /// absent until the first one, and in stores written before the ledger existed.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub tree_head: Option<TreeHead>,
+    /// What the last run that removed anything found planted in the store and removed (a
+    /// link, a FIFO, a file with several hard links), for `store status`. Informative only:
+    /// nothing is decided from it.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub removed: Vec<String>,
 }
 
 impl StoreState {
@@ -191,6 +200,7 @@ impl StoreState {
             previous: None,
             channels: BTreeMap::new(),
             tree_head: None,
+            removed: Vec::new(),
         }
     }
 
@@ -254,6 +264,13 @@ impl StoreState {
             return Err(format!(
                 "release {} is both current and previous",
                 c.release
+            ));
+        }
+        if self.removed.len() > MAX_REMOVED_NOTES
+            || self.removed.iter().any(|r| r.len() > 4096)
+        {
+            return Err(format!(
+                "it lists more than {MAX_REMOVED_NOTES} removed entries, or one over 4096 bytes"
             ));
         }
         if self.channels.len() > MAX_CHANNELS {
@@ -410,6 +427,10 @@ pub struct Store {
     dir: PathBuf,
     verifier: Verifier,
     lock_wait: Duration,
+    /// What this handle removed because the store's own code could not have put it there
+    /// (a link, a FIFO, a file with several hard links), for the update's report; also
+    /// written into `state.json` by the next commit, for `store status`.
+    removed: Arc<Mutex<Vec<String>>>,
 }
 
 /// Holds the updaters' lock until dropped (closing the file releases it, also when the
@@ -430,11 +451,16 @@ impl Store {
             dir: dir.to_path_buf(),
             verifier,
             lock_wait: Duration::ZERO,
+            removed: Arc::default(),
         };
-        fs::create_dir_all(dir)
+        let root = Dir::open_root(dir, true)
             .map_err(|e| Error::io(format!("cannot create store {}", dir.display()), e))?;
-        if !store.state_path().exists() {
-            store.initialize()?;
+        if root
+            .found(STATE_FILE)
+            .map_err(|e| Error::io(format!("cannot read store {}", dir.display()), e))?
+            .is_none()
+        {
+            store.initialize(&root)?;
         }
         store.state()?;
         Ok(store)
@@ -455,9 +481,23 @@ impl Store {
     /// The store's state as `state.json` holds it now (parsed and checked for consistency,
     /// releases not checked).
     pub fn state(&self) -> Result<StoreState> {
-        let path = self.state_path();
-        let bytes = match read_capped(&path, STATE_BYTES) {
+        self.state_in(&self.root()?)
+    }
+
+    fn state_in(&self, root: &Dir) -> Result<StoreState> {
+        let path = root.join(STATE_FILE);
+        let bytes = match read_capped(root, STATE_FILE, STATE_BYTES) {
             Ok(bytes) => bytes,
+            Err(ReadCapped::Planted(why)) => {
+                return Err(Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "{} cannot be read: {why}; ampoule-verify did not write it. Remove it \
+                         and move the store's other files aside to start the store afresh",
+                        path.display()
+                    ),
+                ));
+            }
             Err(ReadCapped::Missing) => {
                 return Err(Error::new(
                     ErrorKind::Store,
@@ -607,8 +647,9 @@ impl Store {
         );
         next.format = STATE_FORMAT;
         next.channel.get_or_insert_with(|| channel.to_string());
-        self.commit(&next, &mut |_| Ok(()))?;
-        sync_dir(&self.dir)?;
+        let root = self.root()?;
+        self.commit(&root, &next, &mut |_| Ok(()))?;
+        sync_dir(&root)?;
         Ok(true)
     }
 
@@ -633,8 +674,9 @@ impl Store {
         hook: StepHook<'_>,
     ) -> Result<Installed> {
         let _lock = self.lock()?;
-        let state = self.state()?;
-        self.sweep(&state)?;
+        let root = self.root()?;
+        let state = self.state_in(&root)?;
+        self.sweep(&root, &state)?;
         let (manifest, report) = self
             .verifier
             .check_stored(
@@ -652,9 +694,13 @@ impl Store {
             feed_sequence.map(|s| (s, feed_sha256)),
         )?;
         let release = release_dir_name(&manifest, &manifest_sha256);
-        let releases = self.releases_path();
+        let releases = self.releases(&root)?;
         let dest = releases.join(&release);
-        if fs::symlink_metadata(&dest).is_ok() {
+        if releases
+            .found(&release)
+            .map_err(|e| Error::io(format!("cannot read {}", dest.display()), e))?
+            .is_some()
+        {
             return Err(Error::new(
                 ErrorKind::Store,
                 format!(
@@ -668,35 +714,31 @@ impl Store {
         // The staging directory later becomes the renamed release.
         let mut staging = Staging::create_in(&releases, STAGING_PREFIX)?;
         step(hook, Step::StagingCreated)?;
-        let labels = bundle.unpack_into_staging(&staging.path)?;
+        let labels = bundle.unpack_into_staging(&staging.dir)?;
         step(hook, Step::FilesWritten)?;
-        write_synced(
-            &staging.path.join(entry::MANIFEST),
-            &bundle.layout().manifest,
-        )?;
-        write_synced(
-            &staging.path.join(entry::SIGNATURES),
-            &bundle.layout().signatures,
-        )?;
+        write_synced(&staging.dir, entry::MANIFEST, &bundle.layout().manifest)?;
+        write_synced(&staging.dir, entry::SIGNATURES, &bundle.layout().signatures)?;
         step(hook, Step::MetadataWritten)?;
-        sync_dir(&staging.path)?;
+        sync_dir(&staging.dir)?;
         step(hook, Step::StagingSynced)?;
-        fs::rename(&staging.path, &dest).map_err(|e| {
-            Error::io(
-                format!("cannot move the unpacked release to {}", dest.display()),
-                e,
-            )
-        })?;
+        releases
+            .rename(&staging.name, &releases, &release)
+            .map_err(|e| {
+                Error::io(
+                    format!("cannot move the unpacked release to {}", dest.display()),
+                    e,
+                )
+            })?;
         // From here a failure must remove the release directory, not the staging name.
-        staging.path = dest.clone();
+        staging.name = release.clone().into();
         step(hook, Step::ReleaseRenamed)?;
         sync_dir(&releases)?;
         step(hook, Step::ReleasesSynced)?;
 
-        self.commit(&next, hook)?;
+        self.commit(&root, &next, hook)?;
         staging.keep = true;
         step(hook, Step::StateRenamed)?;
-        sync_dir(&self.dir)?;
+        sync_dir(&root)?;
         step(hook, Step::StoreSynced)?;
 
         Ok(Installed {
@@ -751,8 +793,9 @@ impl Store {
         let mut next = state;
         next.format = STATE_FORMAT;
         next.tree_head = Some(*head);
-        self.commit(&next, &mut |_| Ok(()))?;
-        sync_dir(&self.dir)
+        let root = self.root()?;
+        self.commit(&root, &next, &mut |_| Ok(()))?;
+        sync_dir(&root)
     }
 
     /// Makes the store follow `channel` from now on. What it accepted stays: the highest
@@ -773,8 +816,9 @@ impl Store {
         let mut next = state;
         next.format = STATE_FORMAT;
         next.channel = Some(channel.to_string());
-        self.commit(&next, &mut |_| Ok(()))?;
-        sync_dir(&self.dir)
+        let root = self.root()?;
+        self.commit(&root, &next, &mut |_| Ok(()))?;
+        sync_dir(&root)
     }
 
     /// Makes the previous release current again, for when the app's own health check fails
@@ -789,8 +833,9 @@ impl Store {
     #[doc(hidden)]
     pub fn rollback_with_hook(&self, hook: StepHook<'_>) -> Result<Release> {
         let _lock = self.lock()?;
-        let state = self.state()?;
-        self.sweep(&state)?;
+        let root = self.root()?;
+        let state = self.state_in(&root)?;
+        self.sweep(&root, &state)?;
         let Some(previous) = &state.previous else {
             return Err(Error::new(
                 ErrorKind::Policy,
@@ -808,9 +853,9 @@ impl Store {
         next.current = Some(previous.clone());
         next.previous = None;
         step(hook, Step::Locked)?;
-        self.commit(&next, hook)?;
+        self.commit(&root, &next, hook)?;
         step(hook, Step::StateRenamed)?;
-        sync_dir(&self.dir)?;
+        sync_dir(&root)?;
         step(hook, Step::StoreSynced)?;
         Ok(release)
     }
@@ -820,8 +865,24 @@ impl Store {
     /// removed. Every update does this first as well.
     pub fn gc(&self) -> Result<Vec<PathBuf>> {
         let _lock = self.lock()?;
-        let state = self.state()?;
-        self.sweep(&state)
+        let root = self.root()?;
+        let state = self.state_in(&root)?;
+        self.sweep(&root, &state)
+    }
+
+    /// What this handle removed because the store's own code could not have put it there
+    /// (links, FIFOs, files with several hard links), since the last call; each entry names
+    /// the path and what was found. The update reports them.
+    pub fn take_removed(&self) -> Vec<String> {
+        std::mem::take(&mut *self.removed.lock().unwrap_or_else(|e| e.into_inner()))
+    }
+
+    /// Notes a planted entry that was removed.
+    pub(crate) fn note_removed(&self, what: String) {
+        let mut removed = self.removed.lock().unwrap_or_else(|e| e.into_inner());
+        if removed.len() < MAX_REMOVED_NOTES && !removed.contains(&what) {
+            removed.push(what);
+        }
     }
 
     /// The trust set an app runs with after a restart: the newer of `initial` (the set
@@ -869,18 +930,9 @@ impl Store {
                 ));
             }
         }
-        let path = self.dir.join(TRUST_SET_FILE);
-        let mut temp = TempFile {
-            path: self
-                .dir
-                .join(format!("{TRUST_SET_TEMP_PREFIX}{}", unique_suffix())),
-            keep: false,
-        };
-        write_synced(&temp.path, &bytes)?;
-        fs::rename(&temp.path, &path)
-            .map_err(|e| Error::io(format!("cannot replace {}", path.display()), e))?;
-        temp.keep = true;
-        sync_dir(&self.dir)
+        let root = self.root()?;
+        replace_file(&root, TRUST_SET_FILE, TRUST_SET_TEMP_PREFIX, &bytes, &mut |_| Ok(()))?;
+        sync_dir(&root)
     }
 
     /// For a device whose trust set expired while it was offline: accepts `successor` as the
@@ -905,67 +957,74 @@ impl Store {
         Ok(self)
     }
 
-    fn state_path(&self) -> PathBuf {
-        self.dir.join(STATE_FILE)
+    /// The store's directory, opened (links in the path the app gave are followed; nothing
+    /// inside it is).
+    fn root(&self) -> Result<Dir> {
+        Dir::open_root(&self.dir, false)
+            .map_err(|e| Error::io(format!("cannot open store {}", self.dir.display()), e))
     }
 
-    fn releases_path(&self) -> PathBuf {
-        self.dir.join(RELEASES_DIR)
+    /// `releases/`, opened without following a link. Anything else at the name (a link, a
+    /// file) is removed, noted, and the directory made anew: the releases `state.json` names
+    /// are then missing, which opening the current release reports.
+    fn releases(&self, root: &Dir) -> Result<Dir> {
+        open_own_dir(root, RELEASES_DIR, &mut |what| self.note_removed(what))
     }
 
     /// Creates `releases/` and the first `state.json`, under the lock so that two processes
     /// opening a new store at once do not both write it.
-    fn initialize(&self) -> Result<()> {
-        let lock = self.lock_file()?;
+    fn initialize(&self, root: &Dir) -> Result<()> {
+        let lock = self.lock_file(root)?;
         lock.lock()
             .map_err(|e| Error::io(format!("cannot lock store {}", self.dir.display()), e))?;
-        if self.state_path().exists() {
+        let found = |name: &str| {
+            root.found(name)
+                .map_err(|e| Error::io(format!("cannot read {}", root.join(name).display()), e))
+        };
+        if found(STATE_FILE)?.is_some() {
             return Ok(());
         }
-        let releases = self.releases_path();
-        if let Ok(entries) = fs::read_dir(&releases) {
-            for entry in entries {
-                let entry = entry
-                    .map_err(|e| Error::io(format!("cannot list {}", releases.display()), e))?;
-                let name = entry.file_name();
-                if !name.to_string_lossy().starts_with(STAGING_PREFIX) {
-                    return Err(Error::new(
-                        ErrorKind::Store,
-                        format!(
-                            "store {} holds releases but no {STATE_FILE}; it was damaged or changed \
-                             outside ampoule-verify (move it aside and install again)",
-                            self.dir.display()
-                        ),
-                    ));
-                }
+        if found(RELEASES_DIR)? == Some(Found::Dir) {
+            let releases = self.releases(root)?;
+            let names = releases
+                .list()
+                .map_err(|e| Error::io(format!("cannot list {}", releases.path().display()), e))?;
+            if names
+                .iter()
+                .any(|name| !name.to_string_lossy().starts_with(STAGING_PREFIX))
+            {
+                return Err(Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "store {} holds releases but no {STATE_FILE}; it was damaged or changed \
+                         outside ampoule-verify (move it aside and install again)",
+                        self.dir.display()
+                    ),
+                ));
             }
         }
-        fs::create_dir_all(&releases)
-            .map_err(|e| Error::io(format!("cannot create {}", releases.display()), e))?;
-        sync_dir(&self.dir)?;
-        self.commit(&StoreState::empty(), &mut |_| Ok(()))?;
-        sync_dir(&self.dir)?;
+        self.releases(root)?;
+        sync_dir(root)?;
+        self.commit(root, &StoreState::empty(), &mut |_| Ok(()))?;
+        sync_dir(root)?;
         // The store directory itself may be new too.
         match self.dir.parent() {
-            Some(parent) if !parent.as_os_str().is_empty() => sync_dir(parent),
+            Some(parent) if !parent.as_os_str().is_empty() => Dir::open_root(parent, false)
+                .and_then(|d| d.sync())
+                .map_err(|e| Error::io(format!("cannot flush {} to disk", parent.display()), e)),
             _ => Ok(()),
         }
     }
 
-    fn lock_file(&self) -> Result<File> {
-        let path = self.dir.join(LOCK_FILE);
-        OpenOptions::new()
-            .read(true)
-            .write(true)
-            .create(true)
-            .truncate(false)
-            .open(&path)
-            .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))
+    /// The lock file, made if missing. Anything but a regular file of the store's own at the
+    /// name (a link, dangling or not, a FIFO, a hard link) is removed, noted, and made anew.
+    fn lock_file(&self, root: &Dir) -> Result<File> {
+        open_own_file(root, LOCK_FILE, &mut |what| self.note_removed(what))
     }
 
     /// Takes the updaters' exclusive lock, waiting up to `lock_wait`.
     fn lock(&self) -> Result<UpdateLock> {
-        let file = self.lock_file()?;
+        let file = self.lock_file(&self.root()?)?;
         let deadline = Instant::now() + self.lock_wait;
         loop {
             match file.try_lock() {
@@ -1081,50 +1140,58 @@ impl Store {
 
     /// Writes `state` to a temporary file, fsyncs it and renames it over `state.json`.
     /// Errors before the rename leave the old `state.json` and no temporary file.
-    fn commit(&self, state: &StoreState, hook: StepHook<'_>) -> Result<()> {
-        let path = self.state_path();
-        let mut temp = TempFile {
-            path: self
-                .dir
-                .join(format!("{STATE_TEMP_PREFIX}{}", unique_suffix())),
-            keep: false,
-        };
-        write_synced(&temp.path, &state.to_json())?;
-        step(hook, Step::StateWritten)?;
-        fs::rename(&temp.path, &path)
-            .map_err(|e| Error::io(format!("cannot replace {}", path.display()), e))?;
-        temp.keep = true;
-        Ok(())
+    /// What this handle removed as planted also goes into the file, for `store status`.
+    fn commit(&self, root: &Dir, state: &StoreState, hook: StepHook<'_>) -> Result<()> {
+        let removed = self
+            .removed
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .clone();
+        let mut state = state.clone();
+        if !removed.is_empty() {
+            state.removed = removed;
+        }
+        replace_file(root, STATE_FILE, STATE_TEMP_PREFIX, &state.to_json(), hook)
     }
 
     /// Removes leftovers and releases that `state` names neither current nor previous.
-    fn sweep(&self, state: &StoreState) -> Result<Vec<PathBuf>> {
+    /// Links planted directly in the store directory are unlinked (never followed) and
+    /// noted; so is anything in `releases/` that is not a kept release.
+    fn sweep(&self, root: &Dir, state: &StoreState) -> Result<Vec<PathBuf>> {
         let keep: Vec<&str> = [&state.current, &state.previous]
             .into_iter()
             .flatten()
             .map(|p| p.release.as_str())
             .collect();
         let mut removed = Vec::new();
-        let releases = self.releases_path();
+        let releases = self.releases(root)?;
         for entry in list_dir(&releases)? {
             let name = entry.to_string_lossy();
             if !keep.contains(&name.as_ref()) {
-                let path = releases.join(&entry);
-                remove_any(&path)?;
-                removed.push(path);
+                remove_any(&releases, &entry)?;
+                removed.push(releases.join(&entry));
             }
         }
-        for entry in list_dir(&self.dir)? {
+        for entry in list_dir(root)? {
             let name = entry.to_string_lossy();
-            if name.starts_with(STATE_TEMP_PREFIX) || name.starts_with(TRUST_SET_TEMP_PREFIX) {
-                let path = self.dir.join(&entry);
-                remove_any(&path)?;
-                removed.push(path);
+            let planted = matches!(
+                root.found(&entry),
+                Ok(Some(Found::Link | Found::Other))
+            );
+            if planted {
+                let kind = root.found(&entry).ok().flatten().unwrap_or(Found::Other);
+                remove_any(root, &entry)?;
+                self.note_removed(format!("{} ({})", root.join(&entry).display(), kind.describe()));
+                removed.push(root.join(&entry));
+            } else if name.starts_with(STATE_TEMP_PREFIX) || name.starts_with(TRUST_SET_TEMP_PREFIX)
+            {
+                remove_any(root, &entry)?;
+                removed.push(root.join(&entry));
             }
         }
         if !removed.is_empty() {
             sync_dir(&releases)?;
-            sync_dir(&self.dir)?;
+            sync_dir(root)?;
         }
         removed.sort();
         Ok(removed)
@@ -1139,15 +1206,31 @@ impl Store {
 
     fn check_release_inner(&self, pointer: &ReleaseRef) -> Result<Release> {
         let damaged = |message: String| Error::new(ErrorKind::Store, message);
-        let dir = self.releases_path().join(&pointer.release);
-        match fs::symlink_metadata(&dir) {
-            Ok(meta) if meta.is_dir() => {}
-            Ok(_) => return Err(damaged(format!("{} is not a directory", dir.display()))),
-            Err(e) if e.kind() == io::ErrorKind::NotFound => {
-                return Err(damaged(format!("{} is missing", dir.display())));
+        let root = self.root()?;
+        let releases_path = root.join(RELEASES_DIR);
+        let releases = match root.open_dir(RELEASES_DIR) {
+            Ok(dir) => dir,
+            Err(Refused::Missing) => {
+                return Err(damaged(format!("{} is missing", releases_path.display())));
             }
-            Err(e) => return Err(Error::io(format!("cannot read {}", dir.display()), e)),
-        }
+            Err(Refused::Planted(why)) => return Err(damaged(why)),
+            Err(Refused::Io(e)) => {
+                return Err(Error::io(format!("cannot read {}", releases_path.display()), e));
+            }
+        };
+        let path = releases.join(&pointer.release);
+        let dir = match releases.open_dir(&pointer.release) {
+            Ok(dir) => dir,
+            Err(Refused::Missing) => {
+                return Err(damaged(format!("{} is missing", path.display())));
+            }
+            Err(Refused::Planted(_)) => {
+                return Err(damaged(format!("{} is not a directory", path.display())));
+            }
+            Err(Refused::Io(e)) => {
+                return Err(Error::io(format!("cannot read {}", path.display()), e));
+            }
+        };
         let manifest_bytes = read_member(&dir, entry::MANIFEST, limit::MANIFEST_BYTES)?;
         let manifest_sha256 = Digest::of(&manifest_bytes);
         if manifest_sha256 != pointer.manifest_sha256 {
@@ -1241,7 +1324,7 @@ impl Store {
         Ok(Release {
             model: dir.join(&manifest.model().path),
             labels_path: dir.join(&manifest.labels().path),
-            dir,
+            dir: path,
             labels,
             manifest,
             manifest_sha256,
@@ -1254,6 +1337,12 @@ impl Store {
 /// is none. Every failure names the file.
 fn read_stored_trust_set(dir: &Path) -> Result<Option<TrustSet>> {
     let path = dir.join(TRUST_SET_FILE);
+    let root = match Dir::open_root(dir, false) {
+        Ok(root) => root,
+        // No store yet: no stored set.
+        Err(e) if e.kind() == io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(Error::io(format!("cannot open store {}", dir.display()), e)),
+    };
     let damaged = |why: String| {
         Error::new(
             ErrorKind::Store,
@@ -1263,9 +1352,15 @@ fn read_stored_trust_set(dir: &Path) -> Result<Option<TrustSet>> {
             ),
         )
     };
-    let bytes = match read_capped(&path, trust_set::MAX_BYTES) {
+    let bytes = match read_capped(&root, TRUST_SET_FILE, trust_set::MAX_BYTES) {
         Ok(bytes) => bytes,
         Err(ReadCapped::Missing) => return Ok(None),
+        Err(ReadCapped::Planted(why)) => {
+            return Err(damaged(format!(
+                "{why}; remove it (the device then runs on the trust set shipped with the app \
+                 until a feed names a newer one)"
+            )));
+        }
         Err(ReadCapped::TooLarge) => {
             return Err(damaged(format!(
                 "it is over {} bytes",
@@ -1372,15 +1467,18 @@ fn is_release_name(name: &str) -> bool {
 
 enum ReadCapped {
     Missing,
+    Planted(String),
     TooLarge,
     Io(io::Error),
 }
 
-/// Reads a whole small file, refusing more than `cap` bytes.
-fn read_capped(path: &Path, cap: u64) -> std::result::Result<Vec<u8>, ReadCapped> {
-    let file = File::open(path).map_err(|e| match e.kind() {
-        io::ErrorKind::NotFound => ReadCapped::Missing,
-        _ => ReadCapped::Io(e),
+/// Reads a whole small file of the store, refusing more than `cap` bytes, and anything at
+/// the name that the store could not have written (a link, a FIFO, a hard link).
+fn read_capped(dir: &Dir, name: &str, cap: u64) -> std::result::Result<Vec<u8>, ReadCapped> {
+    let file = dir.open_file(name).map_err(|e| match e {
+        Refused::Missing => ReadCapped::Missing,
+        Refused::Planted(why) => ReadCapped::Planted(why),
+        Refused::Io(e) => ReadCapped::Io(e),
     })?;
     let mut bytes = Vec::new();
     file.take(cap + 1)
@@ -1392,27 +1490,17 @@ fn read_capped(path: &Path, cap: u64) -> std::result::Result<Vec<u8>, ReadCapped
     Ok(bytes)
 }
 
-/// Opens a file of a stored release, refusing anything but a regular file.
-fn open_member(dir: &Path, name: &str) -> Result<File> {
-    let path = dir.join(name);
-    match fs::symlink_metadata(&path) {
-        Ok(meta) if meta.is_file() => {}
-        Ok(_) => {
-            return Err(Error::new(
-                ErrorKind::Store,
-                format!("{name} is not a regular file"),
-            ));
-        }
-        Err(e) if e.kind() == io::ErrorKind::NotFound => {
-            return Err(Error::new(ErrorKind::Store, format!("{name} is missing")));
-        }
-        Err(e) => return Err(Error::io(format!("cannot read {}", path.display()), e)),
-    }
-    File::open(&path).map_err(|e| Error::io(format!("cannot open {}", path.display()), e))
+/// Opens a file of a stored release, refusing anything but a regular file with one link.
+fn open_member(dir: &Dir, name: &str) -> Result<File> {
+    dir.open_file(name).map_err(|e| match e {
+        Refused::Missing => Error::new(ErrorKind::Store, format!("{name} is missing")),
+        Refused::Planted(why) => Error::new(ErrorKind::Store, why),
+        Refused::Io(e) => Error::io(format!("cannot open {}", dir.join(name).display()), e),
+    })
 }
 
 /// Reads a small file of a stored release whole, refusing more than `cap` bytes.
-fn read_member(dir: &Path, name: &str, cap: u64) -> Result<Vec<u8>> {
+fn read_member(dir: &Dir, name: &str, cap: u64) -> Result<Vec<u8>> {
     let file = open_member(dir, name)?;
     let mut bytes = Vec::new();
     file.take(cap + 1)
@@ -1427,40 +1515,106 @@ fn read_member(dir: &Path, name: &str, cap: u64) -> Result<Vec<u8>> {
     Ok(bytes)
 }
 
-fn list_dir(dir: &Path) -> Result<Vec<std::ffi::OsString>> {
-    let entries =
-        fs::read_dir(dir).map_err(|e| Error::io(format!("cannot list {}", dir.display()), e))?;
-    let mut names = Vec::new();
-    for entry in entries {
-        let entry = entry.map_err(|e| Error::io(format!("cannot list {}", dir.display()), e))?;
-        names.push(entry.file_name());
-    }
-    names.sort();
-    Ok(names)
+fn list_dir(dir: &Dir) -> Result<Vec<std::ffi::OsString>> {
+    dir.list()
+        .map_err(|e| Error::io(format!("cannot list {}", dir.path().display()), e))
 }
 
 /// Removes a file, link or directory tree without following links.
-fn remove_any(path: &Path) -> Result<()> {
-    let result = match fs::symlink_metadata(path) {
-        Ok(meta) if meta.is_dir() => fs::remove_dir_all(path),
-        Ok(_) => fs::remove_file(path),
-        Err(e) if e.kind() == io::ErrorKind::NotFound => Ok(()),
-        Err(e) => Err(e),
-    };
-    result.map_err(|e| Error::io(format!("cannot remove {}", path.display()), e))
+fn remove_any(dir: &Dir, name: &std::ffi::OsStr) -> Result<()> {
+    dir.remove(name)
+        .map_err(|e| Error::io(format!("cannot remove {}", dir.join(name).display()), e))
 }
 
-/// Creates `path` (which must not exist), writes `bytes` and flushes them to disk.
-fn write_synced(path: &Path, bytes: &[u8]) -> Result<()> {
-    let mut file = OpenOptions::new()
-        .write(true)
-        .create_new(true)
-        .open(path)
+/// Creates `name` in `dir` (it must not exist: a link there is never written through),
+/// writes `bytes` and flushes them to disk.
+fn write_synced(dir: &Dir, name: &str, bytes: &[u8]) -> Result<()> {
+    let path = dir.join(name);
+    let mut file = dir
+        .create_new(name)
         .map_err(|e| Error::io(format!("cannot create {}", path.display()), e))?;
     file.write_all(bytes)
         .map_err(|e| Error::io(format!("cannot write {}", path.display()), e))?;
     file.sync_all()
         .map_err(|e| Error::io(format!("cannot flush {} to disk", path.display()), e))
+}
+
+/// Replaces `name` in `dir` atomically: a new temporary file, fsynced, renamed over it.
+/// Errors before the rename leave the old file and no temporary one.
+fn replace_file(
+    dir: &Dir,
+    name: &str,
+    temp_prefix: &str,
+    bytes: &[u8],
+    hook: StepHook<'_>,
+) -> Result<()> {
+    let mut temp = TempFile {
+        dir,
+        name: format!("{temp_prefix}{}", unique_suffix()),
+        keep: false,
+    };
+    write_synced(dir, &temp.name, bytes)?;
+    step(hook, Step::StateWritten)?;
+    dir.rename(&temp.name, dir, name)
+        .map_err(|e| Error::io(format!("cannot replace {}", dir.join(name).display()), e))?;
+    temp.keep = true;
+    Ok(())
+}
+
+/// Opens the store's own directory `name` in `dir`, making it if missing. Anything else at the
+/// name (a link, a file) is removed (a link is unlinked, never followed), told to `removed`,
+/// and the directory made anew.
+pub(crate) fn open_own_dir(
+    dir: &Dir,
+    name: &str,
+    removed: &mut dyn FnMut(String),
+) -> Result<Dir> {
+    let path = dir.join(name);
+    match dir.open_dir(name) {
+        Ok(opened) => return Ok(opened),
+        Err(Refused::Io(e)) => {
+            return Err(Error::io(format!("cannot open {}", path.display()), e));
+        }
+        Err(Refused::Planted(why)) => {
+            remove_any(dir, name.as_ref())?;
+            removed(format!("{} ({why})", path.display()));
+        }
+        Err(Refused::Missing) => {}
+    }
+    dir.create_dir(name)
+        .map_err(|e| Error::io(format!("cannot create {}", path.display()), e.into_io()))
+}
+
+/// Opens the store's own small read-write file `name` in `dir` (a lock file), making it if
+/// missing. Anything else at the name is removed (a link is unlinked, never followed), told to
+/// `removed`, and the file made anew.
+pub(crate) fn open_own_file(
+    dir: &Dir,
+    name: &str,
+    removed: &mut dyn FnMut(String),
+) -> Result<File> {
+    let path = dir.join(name);
+    for _ in 0..2 {
+        match dir.open_or_create(name) {
+            Ok(file) => return Ok(file),
+            Err(Refused::Planted(why)) => {
+                remove_any(dir, name.as_ref())?;
+                removed(format!("{} ({why})", path.display()));
+            }
+            Err(Refused::Missing) => {}
+            Err(Refused::Io(e)) => {
+                return Err(Error::io(format!("cannot open {}", path.display()), e));
+            }
+        }
+    }
+    Err(Error::new(
+        ErrorKind::Store,
+        format!(
+            "{} keeps being replaced by something other than a file; check who else writes \
+             the store directory",
+            path.display()
+        ),
+    ))
 }
 
 fn unique_suffix() -> String {
@@ -1471,15 +1625,16 @@ fn unique_suffix() -> String {
 }
 
 /// A temporary file that is removed unless kept.
-struct TempFile {
-    path: PathBuf,
+struct TempFile<'d> {
+    dir: &'d Dir,
+    name: String,
     keep: bool,
 }
 
-impl Drop for TempFile {
+impl Drop for TempFile<'_> {
     fn drop(&mut self) {
         if !self.keep {
-            let _ = fs::remove_file(&self.path);
+            let _ = self.dir.remove(&self.name);
         }
     }
 }

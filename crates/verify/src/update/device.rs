@@ -5,20 +5,27 @@
 //! STORE/
 //!   device-id          the id made on first use (unless the app gives its own)
 //!   downloads/
-//!     lock             held for a whole update
+//!     lock             held for a whole update; holds the name of the partial download
+//!                      this store started, the only one it resumes
 //!     <sha256>.ampoule.partial   a bundle being downloaded, named by its feed's SHA-256
+//!
+//! Every file and directory here is opened without following links and checked as
+//! `crate::dir` describes; anything planted at one of these names is removed (a link is
+//! unlinked, never followed) and reported in the update's outcome.
 //!   ...                the store's own files (see crate::store)
 //! ```
 
-use std::fs::{self, File, TryLockError};
-use std::io::{self, Read, Write};
+use std::fs::{File, TryLockError};
+use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::os::unix::fs::FileExt;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
 use crate::check::bundle::Verifier;
+use crate::dir::{Dir, Found, Refused};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::time::Timestamp;
-use crate::store::{Release, Store, StoreState};
+use crate::store::{Release, Store, StoreState, open_own_dir, open_own_file};
 
 #[cfg(feature = "fetch")]
 use super::Report;
@@ -64,7 +71,7 @@ impl Device {
         let store = Store::open(dir, bundle_verifier(&app, &held)?)?.wait_for_lock(app.lock_wait);
         let device_id = match &app.device_id {
             Some(id) => id.clone(),
-            None => stored_device_id(dir)?,
+            None => stored_device_id(&store)?,
         };
         Ok(Device {
             app,
@@ -185,8 +192,13 @@ impl Device {
                     }
                 }
                 super::Next::Download(want) => {
-                    match crate::net::download(
+                    let mut file = match want.file() {
+                        Ok(file) => file,
+                        Err(e) => return session.fail_with(e),
+                    };
+                    match crate::net::download_into(
                         want.urls(),
+                        &mut file,
                         want.path(),
                         want.size(),
                         want.sha256(),
@@ -216,33 +228,90 @@ impl Device {
 
     /// Removes everything in the download directory but its lock and `keep` (the download in
     /// progress): partial downloads of releases no feed offers any more would otherwise stay
-    /// for good. Links are removed, never followed. Best effort: a file that cannot be removed
-    /// now is tried again at the next update.
-    pub(crate) fn sweep_downloads(&self, keep: Option<&Path>) {
-        let dir = self.store.dir().join(DOWNLOADS_DIR);
-        // Someone with write access to the store could make `downloads` a link to a directory
-        // elsewhere; listing through it would delete that directory's files. Only a real
-        // directory is swept.
-        if !fs::symlink_metadata(&dir).is_ok_and(|meta| meta.is_dir()) {
-            return;
-        }
-        let Ok(entries) = fs::read_dir(&dir) else {
+    /// for good. Links are unlinked, never followed, and the directory itself is opened
+    /// without following a link. Best effort: a file that cannot be removed now is tried
+    /// again at the next update.
+    pub(crate) fn sweep_downloads(&self, keep: Option<&str>) {
+        let Ok(dir) = self.downloads() else {
             return;
         };
-        for entry in entries.flatten() {
-            let path = entry.path();
-            if entry.file_name() == DOWNLOAD_LOCK || Some(path.as_path()) == keep {
+        let Ok(entries) = dir.list() else {
+            return;
+        };
+        for name in entries {
+            if name == DOWNLOAD_LOCK || keep.is_some_and(|k| name == k) {
                 continue;
             }
-            match entry.file_type() {
-                Ok(kind) if kind.is_dir() => {
-                    let _ = fs::remove_dir_all(&path);
+            let _ = dir.remove(&name);
+        }
+    }
+
+    /// Opens the partial download `name` in the download directory to write the bundle of
+    /// `size` bytes into, at its end. A file is resumed only when this store started it (its
+    /// name is the one recorded in the download lock `lock`) and it passes the store's checks
+    /// (a regular file with one link, on the store's file system, not longer than `size`).
+    /// Anything else at the name is removed, never followed, and a new file made and recorded.
+    pub(crate) fn partial_download(&self, lock: &File, name: &str, size: u64) -> Result<File> {
+        let dir = self.downloads()?;
+        let path = dir.join(name);
+        let recorded = recorded_partial(lock);
+        if recorded.as_deref() == Some(name) {
+            match dir.open_file_rw(name) {
+                Ok(file) if file.metadata().is_ok_and(|m| m.len() <= size) => return Ok(file),
+                Ok(_) | Err(Refused::Missing) => {}
+                Err(Refused::Planted(why)) => {
+                    self.store
+                        .note_removed(format!("{} ({why})", path.display()));
                 }
-                Ok(_) => {
-                    let _ = fs::remove_file(&path);
+                Err(Refused::Io(e)) => {
+                    return Err(Error::io(format!("cannot open {}", path.display()), e));
                 }
-                Err(_) => {}
             }
+        }
+        // Whatever is at the name was not started by this store, or cannot be resumed. A
+        // link or special file there was planted: say so.
+        if let Ok(Some(found @ (Found::Link | Found::Other))) = dir.found(name) {
+            self.store
+                .note_removed(format!("{} ({})", path.display(), found.describe()));
+        }
+        dir.remove(name)
+            .map_err(|e| Error::io(format!("cannot remove {}", path.display()), e))?;
+        let file = dir
+            .create_new(name)
+            .map_err(|e| Error::io(format!("cannot create {}", path.display()), e))?;
+        record_partial(lock, name).map_err(|e| {
+            Error::io(
+                format!("cannot record the download in {}", path.display()),
+                e,
+            )
+        })?;
+        Ok(file)
+    }
+
+    /// The partial download `name`, opened again with the store's checks, for the download
+    /// itself or the install after it.
+    pub(crate) fn open_partial(&self, name: &str) -> Result<File> {
+        let dir = self.downloads()?;
+        dir.open_file_rw(name).map_err(|e| {
+            let path = dir.join(name);
+            match e {
+                Refused::Planted(why) => Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "{} was replaced during the update ({why}); the next update removes it \
+                         and downloads again",
+                        path.display()
+                    ),
+                ),
+                other => Error::io(format!("cannot open {}", path.display()), other.into_io()),
+            }
+        })
+    }
+
+    /// Removes the partial download `name` (a link there is unlinked, never followed).
+    pub(crate) fn remove_partial(&self, name: &str) {
+        if let Ok(dir) = self.downloads() {
+            let _ = dir.remove(name);
         }
     }
 
@@ -255,24 +324,33 @@ impl Device {
         Held::load(&self.app.trust, self.store.dir(), now)
     }
 
-    /// The downloads directory, created if missing.
-    pub(crate) fn downloads(&self) -> Result<PathBuf> {
-        let dir = self.store.dir().join(DOWNLOADS_DIR);
-        fs::create_dir_all(&dir)
-            .map_err(|e| Error::io(format!("cannot create {}", dir.display()), e))?;
-        Ok(dir)
+    /// The downloads directory, created if missing, opened without following a link
+    /// (something else at its name is removed and reported).
+    pub(crate) fn downloads(&self) -> Result<Dir> {
+        let root = Dir::open_root(self.store.dir(), false).map_err(|e| {
+            Error::io(
+                format!("cannot open store {}", self.store.dir().display()),
+                e,
+            )
+        })?;
+        open_own_dir(&root, DOWNLOADS_DIR, &mut |what| {
+            self.store.note_removed(what)
+        })
+    }
+
+    /// The downloads directory's path, for the names a session gives the app.
+    pub(crate) fn downloads_path(&self) -> PathBuf {
+        self.store.dir().join(DOWNLOADS_DIR)
     }
 
     /// Holds `downloads/lock` for a whole update: a second updater on the same store fails
     /// at once instead of writing the same partial download.
     fn lock_downloads(&self) -> Result<File> {
-        let path = self.downloads()?.join(DOWNLOAD_LOCK);
-        let file = File::options()
-            .create(true)
-            .truncate(false)
-            .write(true)
-            .open(&path)
-            .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?;
+        let dir = self.downloads()?;
+        let path = dir.join(DOWNLOAD_LOCK);
+        let file = open_own_file(&dir, DOWNLOAD_LOCK, &mut |what| {
+            self.store.note_removed(what)
+        })?;
         let deadline = Instant::now() + self.app.lock_wait;
         loop {
             match file.try_lock() {
@@ -296,6 +374,25 @@ impl Device {
             }
         }
     }
+}
+
+/// The longest partial-download name the download lock records.
+const PARTIAL_NAME_BYTES: u64 = 128;
+
+/// The partial download the store started, as the download lock records it.
+fn recorded_partial(lock: &File) -> Option<String> {
+    let mut bytes = vec![0u8; PARTIAL_NAME_BYTES as usize + 1];
+    let n = lock.read_at(&mut bytes, 0).ok()?;
+    bytes.truncate(n);
+    String::from_utf8(bytes).ok().filter(|s| !s.is_empty())
+}
+
+/// Records `name` in the download lock as the partial download this store started.
+fn record_partial(mut lock: &File, name: &str) -> io::Result<()> {
+    lock.set_len(0)?;
+    lock.seek(SeekFrom::Start(0))?;
+    lock.write_all(name.as_bytes())?;
+    lock.sync_data()
 }
 
 /// The bundle verifier of `app` under the trust held.
@@ -352,9 +449,40 @@ pub(crate) fn check_device_id(id: &str) -> Result<()> {
 
 /// The device id kept in the store directory, made from 128 random bits on the first call.
 /// It lives beside the store so that one device keeps its rollout place across runs; a
-/// copied store copies the id too.
-fn stored_device_id(store_dir: &Path) -> Result<String> {
-    let path = store_dir.join(DEVICE_ID_FILE);
+/// copied store copies the id too. Something other than a file the store wrote at the name (a
+/// link, dangling or not, a FIFO, a hard link) is removed, reported, and a new id made: the
+/// device then takes a new place in rollouts, as it would had the file been deleted.
+fn stored_device_id(store: &Store) -> Result<String> {
+    let root = Dir::open_root(store.dir(), false)
+        .map_err(|e| Error::io(format!("cannot open store {}", store.dir().display()), e))?;
+    let path = root.join(DEVICE_ID_FILE);
+    match root.open_file(DEVICE_ID_FILE) {
+        Ok(file) => {
+            let mut text = String::new();
+            file.take(DEVICE_ID_BYTES as u64 + 2)
+                .read_to_string(&mut text)
+                .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
+            let id = text.trim_end_matches('\n');
+            check_device_id(id).map_err(|e| {
+                Error::new(
+                    ErrorKind::Store,
+                    format!(
+                        "{} is damaged ({e}); remove it to make a new id (the device then takes \
+                         a new place in rollouts)",
+                        path.display()
+                    ),
+                )
+            })?;
+            return Ok(id.to_string());
+        }
+        Err(Refused::Missing) => {}
+        Err(Refused::Planted(why)) => {
+            root.remove(DEVICE_ID_FILE)
+                .map_err(|e| Error::io(format!("cannot remove {}", path.display()), e))?;
+            store.note_removed(format!("{} ({why})", path.display()));
+        }
+        Err(Refused::Io(e)) => return Err(Error::io(format!("cannot read {}", path.display()), e)),
+    }
     let mut random = [0u8; 16];
     getrandom::fill(&mut random).map_err(|e| {
         Error::io(
@@ -363,34 +491,15 @@ fn stored_device_id(store_dir: &Path) -> Result<String> {
         )
     })?;
     let fresh = hex::encode(random);
-    match fs::OpenOptions::new()
-        .write(true)
-        .create_new(true)
-        .open(&path)
-    {
+    match root.create_new(DEVICE_ID_FILE) {
         Ok(mut file) => {
             file.write_all(format!("{fresh}\n").as_bytes())
                 .and_then(|()| file.sync_all())
                 .map_err(|e| Error::io(format!("cannot write {}", path.display()), e))?;
-            return Ok(fresh);
+            Ok(fresh)
         }
-        Err(e) if e.kind() == io::ErrorKind::AlreadyExists => {}
-        Err(e) => return Err(Error::io(format!("cannot create {}", path.display()), e)),
+        // Another process made it first: use theirs.
+        Err(e) if e.kind() == io::ErrorKind::AlreadyExists => stored_device_id(store),
+        Err(e) => Err(Error::io(format!("cannot create {}", path.display()), e)),
     }
-    let mut text = String::new();
-    File::open(&path)
-        .and_then(|f| f.take(DEVICE_ID_BYTES as u64 + 2).read_to_string(&mut text))
-        .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
-    let id = text.trim_end_matches('\n');
-    check_device_id(id).map_err(|e| {
-        Error::new(
-            ErrorKind::Store,
-            format!(
-                "{} is damaged ({e}); remove it to make a new id (the device then takes a new \
-                 place in rollouts)",
-                path.display()
-            ),
-        )
-    })?;
-    Ok(id.to_string())
 }

@@ -335,7 +335,7 @@ impl OfflineFile {
                 ),
             ));
         }
-        let copied = self.copy_to(span, &name, want.path(), progress);
+        let copied = self.copy_to(span, &name, want, progress);
         let refusal = match copied {
             Ok(sha256) if sha256 == *want.sha256() => return Ok(()),
             Ok(sha256) => Error::new(
@@ -348,31 +348,29 @@ impl OfflineFile {
             Err(e) => e,
         };
         // Another update would otherwise take these bytes for the start of a download.
-        let _ = std::fs::remove_file(want.path());
+        want.discard();
         Err(refusal)
     }
 
-    /// Copies the entry at `span` to `to`, flushed to disk, and returns its SHA-256.
+    /// Copies the entry at `span` into the download's file, flushed to disk, and returns its
+    /// SHA-256.
     fn copy_to(
         &self,
         span: Span,
         name: &str,
-        to: &Path,
+        want: &Download,
         progress: Option<&ProgressFn>,
     ) -> Result<Digest> {
+        let to = want.path();
         let mut reader = &self.file;
         reader
             .seek(SeekFrom::Start(span.offset))
             .map_err(|e| Error::io(format!("cannot read {}", self.path.display()), e))?;
         let write_error = |e: io::Error| Error::io(format!("cannot write {}", to.display()), e);
-        // Whoever can write the store directory may have left a link here: remove whatever
-        // is there and create the file anew, so that nothing outside the store is written.
-        let _ = std::fs::remove_file(to);
-        let mut out = std::fs::OpenOptions::new()
-            .write(true)
-            .create_new(true)
-            .open(to)
-            .map_err(write_error)?;
+        // Opened by the store without following links (see `Download::file`); whatever a
+        // partial download left is overwritten from the start.
+        let mut out = want.file()?;
+        out.set_len(0).map_err(write_error)?;
         let mut hasher = Hasher::new();
         let mut buf = vec![0u8; 64 * 1024];
         let mut done = 0u64;

@@ -81,6 +81,11 @@ pub struct Report {
     pub rotated_to: Option<u64>,
     /// The trust-set version the device holds after the update, when it runs on trust sets.
     pub trust_set_version: Option<u64>,
+    /// What the update found in the store that the store's own code could not have put there
+    /// (a symbolic link, a FIFO, a file with several hard links) and removed, never following
+    /// it: each entry names the path and what was there. Someone else writes the store
+    /// directory; the update went on regardless.
+    pub removed: Vec<String>,
 }
 
 impl Report {
@@ -91,6 +96,7 @@ impl Report {
             feed: None,
             rotated_to: None,
             trust_set_version: None,
+            removed: Vec::new(),
         }
     }
 

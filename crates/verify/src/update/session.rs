@@ -72,6 +72,10 @@ pub struct Download {
     size: u64,
     sha256: Digest,
     path: PathBuf,
+    /// The store's directory and the file's name in its download directory, to open it again
+    /// without following links.
+    store: PathBuf,
+    name: String,
 }
 
 impl Download {
@@ -90,11 +94,59 @@ impl Download {
         &self.sha256
     }
 
-    /// The file in the store's download directory where the bundle belongs; a partial file
-    /// there is the start of this very bundle (its name is the digest), so a download may
-    /// resume from its length.
+    /// The file in the store's download directory where the bundle belongs, for messages.
+    /// Write through [`Download::file`], not through this path: the store's directory may be
+    /// writable by others, and only `file` refuses a link planted at the name.
     pub fn path(&self) -> &Path {
         &self.path
+    }
+
+    /// The file to download into, opened without following links and checked (a regular
+    /// file with one link, on the store's file system). Its length is how many bytes of this
+    /// very bundle a previous try already wrote (the session resumes only a file the store
+    /// started); ask for the rest (an HTTP Range request) and append it at the end.
+    ///
+    /// # Errors
+    ///
+    /// [`ErrorKind::Store`] when the file was replaced since the session prepared it; I/O
+    /// errors.
+    pub fn file(&self) -> Result<File> {
+        self.downloads()?.open_file_rw(&self.name).map_err(|e| {
+            Error::new(
+                ErrorKind::Store,
+                format!(
+                    "{} was replaced during the update ({}); the next update removes it and \
+                     downloads again",
+                    self.path.display(),
+                    e.into_io()
+                ),
+            )
+        })
+    }
+
+    /// Removes the file (a link at its name is unlinked, never followed): its bytes were
+    /// proven wrong.
+    pub(crate) fn discard(&self) {
+        if let Ok(dir) = self.downloads() {
+            let _ = dir.remove(&self.name);
+        }
+    }
+
+    /// The store's download directory, opened without following links.
+    fn downloads(&self) -> Result<crate::dir::Dir> {
+        let root = crate::dir::Dir::open_root(&self.store, false)
+            .map_err(|e| Error::io(format!("cannot open store {}", self.store.display()), e))?;
+        let dir = root.open_dir(super::device::DOWNLOADS_DIR).map_err(|e| {
+            Error::new(
+                ErrorKind::Store,
+                format!(
+                    "{} was replaced during the update ({}); the next update makes it again",
+                    root.join(super::device::DOWNLOADS_DIR).display(),
+                    e.into_io()
+                ),
+            )
+        })?;
+        Ok(dir)
     }
 }
 
@@ -102,7 +154,7 @@ impl Download {
 /// it is dropped.
 pub struct Session<'d> {
     device: &'d Device,
-    _lock: Option<File>,
+    lock: Option<File>,
     feed_url: String,
     feed_bytes: Vec<u8>,
     now: Timestamp,
@@ -162,7 +214,7 @@ impl<'d> Session<'d> {
         };
         Session {
             device,
-            _lock: lock,
+            lock,
             feed_url: feed_url.to_string(),
             feed_bytes,
             now,
@@ -260,6 +312,7 @@ impl<'d> Session<'d> {
             feed: self.feed.take(),
             rotated_to: self.rotated_to,
             trust_set_version: self.held.as_ref().and_then(Held::set).map(|s| s.version()),
+            removed: self.device.store().take_removed(),
         }
     }
 
@@ -491,16 +544,23 @@ impl<'d> Session<'d> {
                 ),
             ));
         }
+        let name = format!("{}.ampoule.partial", release.sha256);
+        let lock = self
+            .lock
+            .as_ref()
+            .ok_or_else(|| Error::new(ErrorKind::Locked, "the session does not hold the lock"))?;
+        // Made (or checked for resuming) now, so that the app only ever opens a file the
+        // store prepared.
+        self.device.partial_download(lock, &name, release.size)?;
         let want = Download {
             urls: release.urls(&self.feed_url)?,
             size: release.size,
             sha256: release.sha256,
-            path: self
-                .device
-                .downloads()?
-                .join(format!("{}.ampoule.partial", release.sha256)),
+            path: self.device.downloads_path().join(&name),
+            store: self.device.store().dir().to_path_buf(),
+            name,
         };
-        self.device.sweep_downloads(Some(&want.path));
+        self.device.sweep_downloads(Some(&want.name));
         Ok(Step::Go(State::Download(want, release)))
     }
 
@@ -520,19 +580,28 @@ impl<'d> Session<'d> {
             .clone()
             .ok_or_else(|| Error::new(ErrorKind::Feed, "no verified feed to install from"))?;
         let store = self.store()?.clone();
-        let ours = path.parent() == Some(self.device.downloads()?.as_path());
+        // The store's own partial download is opened without following links; a file the
+        // app downloaded elsewhere is the app's to name.
+        let ours = (path.parent() == Some(self.device.downloads_path().as_path()))
+            .then(|| path.file_name().map(|n| n.to_string_lossy().into_owned()))
+            .flatten();
         let discard = |e: Error| {
             // The bytes are the ones the feed signed, yet the bundle is refused: keeping
             // them would only refuse them again on every update.
-            if ours && e.kind().is_refusal() {
-                let _ = std::fs::remove_file(path);
+            if let Some(name) = &ours
+                && e.kind().is_refusal()
+            {
+                self.device.remove_partial(name);
             }
             e
         };
         // One open of the file: the bytes hashed against the feed are the bytes verified and
         // unpacked, even if the path is replaced meanwhile.
-        let mut file = File::open(path)
-            .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?;
+        let mut file = match &ours {
+            Some(name) => self.device.open_partial(name)?,
+            None => File::open(path)
+                .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?,
+        };
         if !checked {
             check_file(&mut file, path, release).map_err(discard)?;
         }
@@ -540,8 +609,8 @@ impl<'d> Session<'d> {
         let bundle = bundles.verify_file(file).map_err(discard)?;
         feed.check_bundle(release, &bundle).map_err(discard)?;
         let installed = store.install_from_feed(bundle, &feed).map_err(discard)?;
-        if ours {
-            let _ = std::fs::remove_file(path);
+        if let Some(name) = &ours {
+            self.device.remove_partial(name);
         }
         // The model is installed whatever happens next: a failure to remember the head now
         // only means the next update proves it again, so it must not turn the outcome into a
