@@ -191,7 +191,7 @@ impl Ledger {
         &mut self,
         entry: &[u8],
         keys: &[&SigningKey],
-        outside: &dyn Fn(&TreeHead) -> Result<Vec<TreeHeadSignature>>,
+        outside: OutsideSignatures<'_>,
         time: u64,
     ) -> Result<u64> {
         check_signing_keys(keys)?;
@@ -250,7 +250,7 @@ impl Ledger {
         &mut self,
         entries: I,
         keys: &[&SigningKey],
-        outside: Option<&dyn Fn(&TreeHead) -> Result<Vec<TreeHeadSignature>>>,
+        outside: Option<OutsideSignatures<'_>>,
         time: u64,
     ) -> Result<Range<u64>>
     where
@@ -903,6 +903,9 @@ impl Appender {
         Ok(())
     }
 }
+
+/// Signatures over a new tree head made outside this process, added before it is committed.
+pub type OutsideSignatures<'a> = &'a dyn Fn(&TreeHead) -> Result<Vec<TreeHeadSignature>>;
 
 /// The keys that sign a tree head: at least one, none twice.
 pub fn check_signing_keys(keys: &[&SigningKey]) -> Result<()> {

@@ -324,6 +324,10 @@ impl TrustSetEntry {
 
 /// Any ledger entry, told apart by its `event` field.
 #[derive(Clone, Debug, PartialEq, Eq)]
+// A bundle entry is a few hundred bytes larger than a trust-set entry since format 2 logs the
+// offer too; records are parsed one at a time or listed once for a person, so boxing would
+// only add an allocation per entry.
+#[allow(clippy::large_enum_variant)]
 pub enum Record {
     /// A publish or withdraw of a bundle.
     Bundle(Entry),
