@@ -501,6 +501,17 @@ pub struct LedgerListArgs {
     /// Print comma-separated values (RFC 4180) with a header line (not with --json).
     #[arg(long)]
     pub csv: bool,
+    /// A public key that signs tree heads (repeat for several): the tree head is verified
+    /// before anything is sized from it, and the listed entries must hash to its root.
+    #[arg(long, value_name = "PUB.pem")]
+    pub trust: Vec<PathBuf>,
+    /// A trust set: tree heads need its tree_head threshold.
+    #[arg(long, value_name = "FILE", conflicts_with = "trust")]
+    pub trust_set: Option<PathBuf>,
+    /// With --url and without --trust or --trust-set: read at most this many bytes in all
+    /// from the server, since an unverified tree head cannot size the downloads.
+    #[arg(long, value_name = "BYTES", default_value_t = 256 * 1024 * 1024)]
+    pub max_bytes: u64,
 }
 
 #[derive(Args, Debug)]

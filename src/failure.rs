@@ -338,6 +338,10 @@ const LAYOUT_RULES: &[(&str, &str)] = &[
         "is not allowed: entry",
         "has an entry that is not the one its place calls for",
     ),
+    (
+        "after its last declared entry",
+        "has an extra entry after its last declared entry",
+    ),
 ];
 
 fn layout_reason(text: &str) -> String {

@@ -11,6 +11,50 @@ use serde_json::Value;
 
 use crate::failure::Kind;
 
+/// Text from a bundle, feed or ledger (a label, a bundle or tensor name, a producer) as a
+/// terminal can show it without being fooled (issue 10 item 7): every character that is not
+/// shown as itself or that changes how the text around it is shown (controls, bidirectional
+/// controls, zero-width and other invisible format characters, white space other than the
+/// plain space) is written as `\u{...}`, and a backslash as `\\`, so an escaped text cannot pose
+/// as another. ZWNJ, ZWJ and the emoji presentation selectors stay: they reorder nothing, and
+/// the label rule allows them only where scripts and emoji need them. `--json` output is not
+/// escaped this way; JSON strings carry the exact text.
+pub fn shown(text: &str) -> std::borrow::Cow<'_, str> {
+    escaped(text, true)
+}
+
+/// Whether a terminal must be shown `c` escaped (see [`shown`]).
+fn hidden(c: char) -> bool {
+    c.is_control()
+        || (c.is_whitespace() && c != ' ')
+        || (ampoule_verify::labels::is_invisible(c)
+            && !matches!(c, '\u{200C}' | '\u{200D}' | '\u{FE0E}' | '\u{FE0F}'))
+}
+
+/// [`shown`], or with `whole_text` false the last line of defence for a whole output: line
+/// breaks and backslashes stay as they are.
+fn escaped(text: &str, whole_text: bool) -> std::borrow::Cow<'_, str> {
+    let escape = |c: char| {
+        if whole_text {
+            c == '\\' || hidden(c)
+        } else {
+            c != '\n' && hidden(c)
+        }
+    };
+    if !text.chars().any(escape) {
+        return std::borrow::Cow::Borrowed(text);
+    }
+    let mut out = String::with_capacity(text.len() + 16);
+    for c in text.chars() {
+        match c {
+            '\\' if whole_text => out.push_str("\\\\"),
+            c if escape(c) => out.push_str(&format!("\\u{{{:x}}}", u32::from(c))),
+            c => out.push(c),
+        }
+    }
+    std::borrow::Cow::Owned(out)
+}
+
 /// Work below this many bytes finishes too fast for a progress bar to help.
 const PROGRESS_MIN_BYTES: u64 = 32 * 1024 * 1024;
 
@@ -48,6 +92,9 @@ impl Output {
             serde_json::to_writer_pretty(&mut stdout, &value).map_err(std::io::Error::from)?;
             writeln!(stdout)?;
         } else {
+            // Commands escape what they print from a bundle with `shown`; this catches what
+            // one did not, so no text output can carry a control to the terminal.
+            let human = escaped(human, false);
             stdout.write_all(human.as_bytes())?;
             if !human.ends_with('\n') {
                 writeln!(stdout)?;
@@ -69,7 +116,7 @@ impl Output {
     /// A note for people (warnings, hints) on stderr, never mixed into JSON.
     pub fn note(&self, text: &str) {
         if !self.quiet {
-            eprintln!("ampoule: {text}");
+            eprintln!("ampoule: {}", escaped(text, false));
         }
     }
 
@@ -84,7 +131,7 @@ impl Output {
 
     /// The one line on stderr for an error whose report is already printed.
     pub fn error_line(&self, err: &anyhow::Error) {
-        eprintln!("ampoule: error: {err:#}");
+        eprintln!("ampoule: error: {}", escaped(&format!("{err:#}"), false));
     }
 
     /// With `--json`, the JSON error document for a command line that did not parse; clap
@@ -171,4 +218,40 @@ pub fn failed_report(mut doc: Value, message: &str, kind: Kind) -> Value {
         doc.extend(fields);
     }
     doc
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn issue10_shown_escapes_what_could_fool_a_terminal() {
+        // A right-to-left override would show "wild \u{202E}raob" as "wild boar".
+        assert_eq!(shown("wild \u{202E}raob"), "wild \\u{202e}raob");
+        assert_eq!(
+            shown("\u{FEFF}fox\u{200B}\u{2066}x\u{2069}"),
+            "\\u{feff}fox\\u{200b}\\u{2066}x\\u{2069}"
+        );
+        assert_eq!(shown("a\nb\tc\u{1b}[2J"), "a\\u{a}b\\u{9}c\\u{1b}[2J");
+        assert_eq!(
+            shown("roe\u{2002}deer\u{3000}"),
+            "roe\\u{2002}deer\\u{3000}"
+        );
+        // A backslash is doubled, so a name cannot pose as an escaped one.
+        assert_eq!(shown("wild \\u{202e}raob"), "wild \\\\u{202e}raob");
+        // Text a person reads as it is stays unchanged, joiners in emoji and scripts too.
+        for plain in [
+            "roe deer",
+            "\u{1F469}\u{200D}\u{1F4BB}",
+            "\u{0645}\u{06CC}\u{200C}\u{062E}",
+            "Ti\u{1EBF}ng Vi\u{1EC7}t",
+        ] {
+            assert!(
+                matches!(shown(plain), std::borrow::Cow::Borrowed(_)),
+                "{plain}"
+            );
+        }
+        // The whole-output pass keeps line breaks and backslashes.
+        assert_eq!(escaped("a\\b\nc\u{202E}\n", false), "a\\b\nc\\u{202e}\n");
+    }
 }

@@ -443,6 +443,42 @@ fn pack_refuses_an_empty_label_list_and_writes_nothing() {
 }
 
 #[test]
+fn issue10_pack_refuses_labels_with_invisible_or_bidirectional_characters_or_not_in_nfc() {
+    let env = Env::new();
+    let mut args = pack_args("h.ampoule", &[]);
+    args[4] = "hostile.txt";
+    for (line, expected) in [
+        (
+            "wild \u{202E}raob",
+            "label on line 3 ('wild \\u{202e}raob') holds U+202E, a bidirectional control, \
+             which can make text display in another order; labels may not hold invisible or \
+             bidirectional format characters (Unicode 14.0.0)",
+        ),
+        (
+            "badger\u{200B}",
+            "label on line 3 ('badger\\u{200b}') holds U+200B, an invisible format character; \
+             labels may not hold invisible or bidirectional format characters (Unicode 14.0.0)",
+        ),
+        (
+            "che\u{0300}vre",
+            "label on line 3 ('che\u{300}vre') is not in Unicode Normalization Form C (NFC, \
+             Unicode 14.0.0); write it composed, for example with Python's \
+             unicodedata.normalize('NFC', text)",
+        ),
+    ] {
+        let text = format!("fox\nroe deer\n{line}\nbadger\n");
+        env.write("hostile.txt", text.as_bytes());
+        let before = env.listing();
+        assert_failed(
+            &env.run(&args),
+            1,
+            &format!("label list hostile.txt refused: {expected}"),
+        );
+        assert_eq!(env.listing(), before);
+    }
+}
+
+#[test]
 fn verify_extract_refuses_an_existing_directory_and_changes_nothing() {
     let env = Env::new();
     env.pack("1.0.0", "b.ampoule");
@@ -532,4 +568,60 @@ fn packing_is_deterministic() {
         &[],
     );
     assert_ne!(g, a);
+}
+
+#[test]
+fn issue10_text_output_escapes_names_from_a_bundle() {
+    // Issue 10 item 7: a model whose output tensor is named "s", RIGHT-TO-LEFT OVERRIDE, "eci"
+    // (the same 7 bytes as "species", so the ONNX file stays valid). A terminal would show
+    // the raw name reversed; the text output shows the override as an escape instead.
+    let env = Env::new();
+    let path = env.path("evil.onnx");
+    ampoule::release::synth::write_onnx_classifier(&path, 8, 4, 6, 7).expect("a model");
+    let bytes = std::fs::read(&path).expect("model");
+    let evil = "s\u{202E}eci".as_bytes();
+    assert_eq!(evil.len(), "species".len());
+    let mut swapped = Vec::with_capacity(bytes.len());
+    let mut i = 0;
+    while i < bytes.len() {
+        if bytes[i..].starts_with(b"species") {
+            swapped.extend_from_slice(evil);
+            i += evil.len();
+        } else {
+            swapped.push(bytes[i]);
+            i += 1;
+        }
+    }
+    std::fs::write(&path, &swapped).expect("write");
+    ampoule::release::synth::write_onnx_classifier(&env.path("good.onnx"), 8, 4, 6, 7)
+        .expect("a model");
+    for (model, out) in [("evil.onnx", "evil.ampoule"), ("good.onnx", "good.ampoule")] {
+        let mut args = pack_args(out, &["--key", SECRET]);
+        args[2] = model;
+        let run = env.run(&args);
+        assert_eq!(run.code, 0, "{run:?}");
+    }
+    let inspect = env.run(["inspect", "evil.ampoule"]);
+    assert_eq!(inspect.code, 0, "{inspect:?}");
+    assert!(
+        inspect
+            .stdout
+            .contains("output   s\\u{202e}eci: float32 [N, 6]\n"),
+        "{}",
+        inspect.stdout
+    );
+    let diff = env.run(["diff", "good.ampoule", "evil.ampoule"]);
+    assert!(
+        diff.stdout
+            .contains("output added: s\\u{202e}eci: float32 [N, 6]\n"),
+        "{}",
+        diff.stdout
+    );
+    for run in [&inspect, &diff] {
+        assert!(!run.stdout.contains('\u{202E}'), "{}", run.stdout);
+    }
+    // JSON carries the exact name.
+    let doc: Value =
+        serde_json::from_str(&env.run(["--json", "inspect", "evil.ampoule"]).stdout).expect("JSON");
+    assert!(doc.to_string().contains('\u{202E}'), "{doc}");
 }

@@ -177,11 +177,19 @@ fn demo_runs_and_refuses_every_attack() {
         assert_eq!(s["previous"]["version"], previous, "{camera}");
         assert_eq!(s["channels"]["stable"]["highest_version"], "1.1.2");
         assert_eq!(s["channels"]["stable"]["highest_sequence"], 7);
-        let stored = work.join("cameras").join(camera).join("trust-set.json");
-        let stored = ampoule_verify::TrustSetFile::from_json(
-            &std::fs::read(stored).expect("trust-set.json"),
+        // The store's trust chain: every set after the shipped one, the newest last.
+        let chain: serde_json::Value = serde_json::from_slice(
+            &std::fs::read(work.join("cameras").join(camera).join("trust-chain.json"))
+                .expect("trust-chain.json"),
         )
-        .expect("stored trust set");
+        .expect("chain JSON");
+        let newest = chain["sets"]
+            .as_array()
+            .and_then(|sets| sets.last())
+            .and_then(|set| set.as_str())
+            .expect("a stored set");
+        let stored =
+            ampoule_verify::TrustSetFile::from_json(newest.as_bytes()).expect("stored trust set");
         assert_eq!(stored.version(), 3, "{camera}");
         assert!(
             stored

@@ -285,10 +285,10 @@ fn extra_entry() {
     let s = tar_entry(entry::SIGNATURES, &sigs);
     let p = tar_entry(entry::PAYLOAD, &draft.payload);
     let extra = tar_entry("notes.txt", b"badger seen at camera 4\n");
-    env.assert_not_a_bundle(
+    env.assert_not_a_bundle_because(
         &tar_of(&[m.clone(), s.clone(), p.clone(), extra.clone()]),
-        &[],
-        "bundle has an unexpected extra entry or bytes where the end-of-archive marker belongs",
+        "it has an extra entry after its last declared entry",
+        "bundle has an extra entry 'notes.txt' after its last declared entry",
     );
     env.assert_not_a_bundle_because(
         &tar_of(&[m, extra, s, p]),
@@ -1073,14 +1073,131 @@ fn damaged_inner_tar_headers_and_padding() {
     extra.truncate(full.len() - 1024);
     extra.extend_from_slice(&tar_entry("notes.txt", b"x"));
     extra.extend_from_slice(&tar::END_OF_ARCHIVE);
-    let declared = Draft::with_payload(model.clone(), LABELS.to_vec(), Vec::new())
-        .manifest
-        .unpacked_tar_len();
-    env.assert_refused(
+    // Issue 10 item 8: the extra entry is named, not hidden behind the size it adds.
+    env.assert_not_a_bundle_because(
         &signed_inner(&env, &model, LABELS, &extra),
-        &[],
-        &format!("payload decompresses to more than the {declared} bytes its manifest declares"),
+        "its payload has an extra entry after its last declared entry",
+        "payload has an extra entry 'notes.txt' after its last declared entry",
     );
+}
+
+/// A header of type `flag` named `name` with `size` bytes of data, as a general tar writer
+/// would make it.
+fn typed_header(name: &str, flag: u8, size: usize) -> [u8; 512] {
+    retyped(header_named(name, size), flag, "")
+}
+
+#[test]
+fn issue10_pax_gnu_long_name_and_dot_entries_in_a_small_payload_name_their_cause() {
+    // Issue 10 item 8. Each of these makes the inner tar longer than the manifest declares,
+    // and before the fix the payload was refused as "decompresses to more than the N bytes
+    // its manifest declares", hiding what was wrong. The names and type bytes are the ones
+    // GNU tar writes (from memory of GNU tar 1.35: `--format=pax` extended headers, the
+    // `././@LongLink` entry of `--format=gnu` for a name over 100 bytes, `./` from
+    // `tar -C dir .`); the magic stays POSIX so that the type or name is what is refused.
+    let env = Env::new();
+    let model = model_bytes(3000);
+    let pax_records = b"30 mtime=1764547200.123456789\n";
+    let long_name = format!("{}.onnx", "m".repeat(120));
+    let cases: Vec<(Vec<u8>, &str, String)> = vec![
+        (
+            tar_of(&[
+                tar_entry_with_header(
+                    typed_header("PaxHeaders/model.onnx", b'x', pax_records.len()),
+                    pax_records,
+                ),
+                tar_entry("model.onnx", &model),
+                tar_entry(entry::LABELS, LABELS),
+            ]),
+            "its payload has an entry that is not a regular file (a link, device, directory or \
+             extended header); only regular files are allowed",
+            "payload entry 'PaxHeaders/model.onnx' is a pax extended header (tar type 'x'); \
+             only regular files are allowed"
+                .into(),
+        ),
+        (
+            tar_of(&[
+                tar_entry("model.onnx", &model),
+                tar_entry_with_header(
+                    typed_header("PaxHeaders/labels.txt", b'x', pax_records.len()),
+                    pax_records,
+                ),
+                tar_entry(entry::LABELS, LABELS),
+            ]),
+            "its payload has an entry that is not a regular file (a link, device, directory or \
+             extended header); only regular files are allowed",
+            "payload entry 'PaxHeaders/labels.txt' is a pax extended header (tar type 'x'); \
+             only regular files are allowed"
+                .into(),
+        ),
+        (
+            tar_of(&[
+                tar_entry_with_header(
+                    typed_header("././@LongLink", b'L', long_name.len() + 1),
+                    format!("{long_name}\0").as_bytes(),
+                ),
+                tar_entry("model.onnx", &model),
+                tar_entry(entry::LABELS, LABELS),
+            ]),
+            "its payload has an entry that is not a regular file (a link, device, directory or \
+             extended header); only regular files are allowed",
+            "payload entry '././@LongLink' is a GNU long-name header (tar type 'L'); only \
+             regular files are allowed"
+                .into(),
+        ),
+        (
+            tar_of(&[
+                tar_entry_with_header(typed_header("./", b'5', 0), b""),
+                tar_entry("model.onnx", &model),
+                tar_entry(entry::LABELS, LABELS),
+            ]),
+            "its payload has an entry that is not a regular file (a link, device, directory or \
+             extended header); only regular files are allowed",
+            "payload entry './' is a directory (tar type '5'); only regular files are allowed"
+                .into(),
+        ),
+        (
+            tar_of(&[
+                tar_entry_with_header(header_named(".", 0), b""),
+                tar_entry("model.onnx", &model),
+                tar_entry(entry::LABELS, LABELS),
+            ]),
+            "its payload has an entry name that is a path; bundles hold only plain file names",
+            "payload entry name '.' is a path; bundles hold only plain file names, nothing \
+             outside them"
+                .into(),
+        ),
+        (
+            // After the last file: a pax global header where the end marker belongs.
+            tar_of(&[
+                tar_entry("model.onnx", &model),
+                tar_entry(entry::LABELS, LABELS),
+                tar_entry_with_header(
+                    typed_header("pax_global_header", b'g', pax_records.len()),
+                    pax_records,
+                ),
+            ]),
+            "its payload has an entry that is not a regular file (a link, device, directory or \
+             extended header); only regular files are allowed",
+            "payload entry 'pax_global_header' is a pax extended header (tar type 'g'); only \
+             regular files are allowed"
+                .into(),
+        ),
+    ];
+    for (inner, reason, library) in cases {
+        let declared = Draft::with_payload(model.clone(), LABELS.to_vec(), Vec::new())
+            .manifest
+            .unpacked_tar_len();
+        assert!(
+            inner.len() as u64 > declared,
+            "each case is longer than declared, as the attack is"
+        );
+        env.assert_not_a_bundle_because(
+            &signed_inner(&env, &model, LABELS, &inner),
+            reason,
+            &library,
+        );
+    }
 }
 
 #[test]
@@ -1111,4 +1228,56 @@ fn payload_that_is_not_zstd_or_labels_not_in_stored_form() {
         &[],
         "labels.txt is not in the stored form (one label per line, each ending in a single '\\n')",
     );
+}
+
+/// Hostile label lists of issue 10 item 7, each with the fixture's six labels: the line, and
+/// what the device and `pack` say about it (the label shown escaped, so no terminal obeys it).
+pub const HOSTILE_LABELS: &[(&str, &str)] = &[
+    (
+        // A right-to-left override: "boar" shows as "raob" reversed back, i.e. as "boar".
+        "wild \u{202E}raob",
+        "label on line 3 ('wild \\u{202e}raob') holds U+202E, a bidirectional control, which \
+         can make text display in another order; labels may not hold invisible or \
+         bidirectional format characters (Unicode 14.0.0)",
+    ),
+    (
+        "badger\u{200B}",
+        "label on line 3 ('badger\\u{200b}') holds U+200B, an invisible format character; \
+         labels may not hold invisible or bidirectional format characters (Unicode 14.0.0)",
+    ),
+    (
+        "\u{FEFF}wild boar",
+        "label on line 3 ('\\u{feff}wild boar') holds U+FEFF, an invisible format character; \
+         labels may not hold invisible or bidirectional format characters (Unicode 14.0.0)",
+    ),
+    (
+        "che\u{0300}vre",
+        "label on line 3 ('che\u{300}vre') is not in Unicode Normalization Form C (NFC, \
+         Unicode 14.0.0); write it composed, for example with Python's \
+         unicodedata.normalize('NFC', text)",
+    ),
+];
+
+/// The fixture's labels with line 3 replaced by `line`.
+pub fn labels_with_line_3(line: &str) -> Vec<u8> {
+    let text = std::str::from_utf8(LABELS).expect("UTF-8");
+    let mut lines: Vec<&str> = text.lines().collect();
+    lines[2] = line;
+    (lines.join("\n") + "\n").into_bytes()
+}
+
+#[test]
+fn issue10_signed_labels_with_invisible_or_bidirectional_characters_or_not_in_nfc() {
+    // Issue 10 item 7: the device's verifier refuses each, though the bundle is signed.
+    let env = Env::new();
+    let model = model_bytes(3000);
+    for (line, expected) in HOSTILE_LABELS {
+        let labels = labels_with_line_3(line);
+        let inner = tar_of(&[
+            tar_entry("model.onnx", &model),
+            tar_entry(entry::LABELS, &labels),
+        ]);
+        let draft = Draft::with_payload(model.clone(), labels, zstd(&inner));
+        env.assert_refused(&draft.signed(&env.key), &[], expected);
+    }
 }

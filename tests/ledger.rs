@@ -1403,3 +1403,210 @@ fn issue12_ledger_list_shows_each_publishs_rollout_from_the_history_marked_as_su
             .expect("list --url --json");
     assert_eq!(rollouts(&over_http), rollouts(&listed));
 }
+
+/// A hostile server for a release tree (issue 10 item 6): `ledger/tree-head.json` is `head`,
+/// and any other path answers 200 with `flood` bytes and no length. It serves at most 20
+/// connections on 127.0.0.1 and records each request's path.
+fn hostile_tree_server(
+    head: Vec<u8>,
+    flood: usize,
+) -> (String, std::sync::Arc<std::sync::Mutex<Vec<String>>>) {
+    use std::io::{Read, Write};
+    let listener = std::net::TcpListener::bind("127.0.0.1:0").expect("bind");
+    let url = format!("http://{}/", listener.local_addr().expect("addr"));
+    let requests = std::sync::Arc::new(std::sync::Mutex::new(Vec::new()));
+    let seen = std::sync::Arc::clone(&requests);
+    std::thread::spawn(move || {
+        for stream in listener.incoming().take(20) {
+            let Ok(mut stream) = stream else { break };
+            let _ = stream.set_read_timeout(Some(std::time::Duration::from_secs(5)));
+            let mut request = Vec::new();
+            let mut buf = [0u8; 1024];
+            while !request.windows(4).any(|w| w == b"\r\n\r\n") {
+                match stream.read(&mut buf) {
+                    Ok(0) | Err(_) => break,
+                    Ok(n) => request.extend_from_slice(&buf[..n]),
+                }
+            }
+            let text = String::from_utf8_lossy(&request).into_owned();
+            let path = text.split(' ').nth(1).unwrap_or_default().to_string();
+            seen.lock().expect("requests").push(path.clone());
+            if path.ends_with("/ledger/tree-head.json") {
+                let _ = write!(
+                    stream,
+                    "HTTP/1.1 200 OK\r\nContent-Length: {}\r\nConnection: close\r\n\r\n",
+                    head.len()
+                );
+                let _ = stream.write_all(&head);
+            } else {
+                let _ = stream.write_all(b"HTTP/1.1 200 OK\r\nConnection: close\r\n\r\n");
+                let chunk = vec![b'x'; 64 * 1024];
+                let mut left = flood;
+                while left > 0 {
+                    let n = left.min(chunk.len());
+                    if stream.write_all(&chunk[..n]).is_err() {
+                        break;
+                    }
+                    left -= n;
+                }
+            }
+        }
+    });
+    (url, requests)
+}
+
+/// The tree's genuine head with its size raised to 2^40 entries: what a hostile server sends
+/// to make an auditor download without end. Its signature no longer verifies.
+fn inflated_head(d: &Path) -> Vec<u8> {
+    let mut head: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(d.join("tree/ledger/tree-head.json")).expect("head"))
+            .expect("head JSON");
+    let at = if head.pointer("/tree_head/tree_size").is_some() {
+        "/tree_head/tree_size"
+    } else {
+        "/tree_size"
+    };
+    let size = head.pointer_mut(at).expect("the head has a tree_size");
+    *size = serde_json::json!(1u64 << 40);
+    let bytes = serde_json::to_vec(&head).expect("JSON");
+    assert!(
+        SignedTreeHead::from_json(&bytes).is_ok(),
+        "still a well-formed head"
+    );
+    bytes
+}
+
+#[test]
+fn issue10_ledger_list_and_check_verify_the_served_tree_head_before_sizing_anything() {
+    let dir = setup();
+    let d = dir.path();
+    four_changes(d);
+    let (url, requests) = hostile_tree_server(inflated_head(d), 4 << 20);
+    let head_url = format!("{url}ledger/tree-head.json");
+    for command in ["list", "check"] {
+        requests.lock().expect("requests").clear();
+        let out = run(
+            d,
+            &[
+                "--json", "ledger", command, "--url", &url, "--trust", "k.pub",
+            ],
+        );
+        let doc: serde_json::Value = serde_json::from_slice(&out.stdout).expect("JSON error");
+        assert_eq!(out.status.code(), Some(1), "ledger {command}: {doc}");
+        assert_eq!(doc["kind"], "signature", "ledger {command}: {doc}");
+        let key = keys(d).iter().next().expect("a key").id();
+        assert_eq!(
+            doc["error"],
+            format!(
+                "the tree head at {head_url} is refused, and nothing was sized from it or \
+                 downloaded after it: tree head of size 1099511627776 has no valid signature \
+                 by a trusted key (not matching this document: {key})"
+            ),
+            "ledger {command}"
+        );
+        assert_eq!(
+            *requests.lock().expect("requests"),
+            vec!["/ledger/tree-head.json".to_string()],
+            "ledger {command} asked for nothing after the refused head"
+        );
+    }
+}
+
+#[test]
+fn issue10_ledger_list_without_trust_reads_at_most_max_bytes_and_says_it_is_unauthenticated() {
+    let dir = setup();
+    let d = dir.path();
+    four_changes(d);
+    let (url, requests) = hostile_tree_server(inflated_head(d), 4 << 20);
+    let out = run(
+        d,
+        &[
+            "--json",
+            "ledger",
+            "list",
+            "--url",
+            &url,
+            "--max-bytes",
+            "1048576",
+        ],
+    );
+    let doc: serde_json::Value = serde_json::from_slice(&out.stdout).expect("JSON error");
+    assert_eq!(out.status.code(), Some(1), "{doc}");
+    assert_eq!(doc["kind"], "too_large");
+    let head_len = inflated_head(d).len();
+    assert_eq!(
+        doc["error"],
+        format!(
+            "stopped after 1048576 bytes from {url} (--max-bytes): its tree head is not \
+             verified, so it cannot size the downloads; give --trust or --trust-set, or a \
+             larger --max-bytes: {url}ledger/entries.jsonl is over the limit of {} bytes; \
+             stopped reading",
+            1_048_576 - head_len
+        )
+    );
+    assert_eq!(
+        *requests.lock().expect("requests"),
+        vec![
+            "/ledger/tree-head.json".to_string(),
+            "/ledger/entries.jsonl".to_string()
+        ]
+    );
+    // The default budget is 256 MiB, as the help says.
+    let help = ok(d, &["ledger", "list", "--help"]);
+    assert!(help.contains("[default: 268435456]"), "{help}");
+}
+
+#[test]
+fn issue10_ledger_list_says_whether_the_listing_is_authenticated() {
+    let dir = setup();
+    let d = dir.path();
+    four_changes(d);
+    let served = serve(d);
+    let url = format!("http://{}/", served.addr);
+    let key = keys(d).iter().next().expect("a key").id().to_string();
+    for source in [["--tree", "tree"], ["--url", url.as_str()]] {
+        let plain = json(d, &["ledger", "list", source[0], source[1]]);
+        assert_eq!(plain["authenticated"], false);
+        assert_eq!(plain["tree_head_signed_by"], serde_json::Value::Null);
+        let text = ok(d, &["ledger", "list", source[0], source[1]]);
+        assert!(
+            text.ends_with(
+                "unauthenticated: no --trust or --trust-set was given, so neither the tree head \
+                 nor the entries were checked\n"
+            ),
+            "{text}"
+        );
+        let checked = json(
+            d,
+            &["ledger", "list", source[0], source[1], "--trust", "k.pub"],
+        );
+        assert_eq!(checked["authenticated"], true);
+        assert_eq!(checked["tree_head_signed_by"], serde_json::json!([key]));
+        assert_eq!(checked["entries"], plain["entries"]);
+        let text = ok(
+            d,
+            &["ledger", "list", source[0], source[1], "--trust", "k.pub"],
+        );
+        assert!(
+            text.ends_with(&format!(
+                "authenticated: the entries hash to the root of the tree head, signed by {key} \
+                 (the history's consistency: run ledger check)\n"
+            )),
+            "{text}"
+        );
+    }
+    // An entry changed in place: the signed head no longer covers the listing.
+    let entries = d.join("tree/ledger/entries.jsonl");
+    let text = std::fs::read_to_string(&entries).expect("entries");
+    std::fs::write(&entries, text.replacen("stable", "stabld", 1)).expect("tamper");
+    let (code, err) = refused(d, &["ledger", "list", "--tree", "tree", "--trust", "k.pub"]);
+    assert_eq!(code, 1);
+    assert!(
+        err.starts_with("ampoule: error: the ledger's 4 entries hash to root "),
+        "{err}"
+    );
+    assert!(
+        err.ends_with(": the entries are not the ones the head signed (run ledger check)"),
+        "{err}"
+    );
+}

@@ -553,7 +553,7 @@ fn issue9_a_trust_set_rotation_comes_from_the_file() {
         "ampoule: error: offline file no-trust.ampoule-offline holds no 'trust/2.json', the \
          trust set the update needs"
     );
-    assert!(!d.join("cam/trust-set.json").exists());
+    assert!(!d.join("cam/trust-chain.json").exists());
 
     let out = update("stable.ampoule-offline");
     assert_eq!(out.status.code(), Some(0), "{}", stderr(&out));
@@ -564,8 +564,15 @@ fn issue9_a_trust_set_rotation_comes_from_the_file() {
         "{}",
         stdout(&out)
     );
+    let chain: serde_json::Value = serde_json::from_slice(
+        &std::fs::read(d.join("cam/trust-chain.json")).expect("the stored chain"),
+    )
+    .expect("chain JSON");
     assert_eq!(
-        std::fs::read(d.join("cam/trust-set.json")).expect("the stored set"),
+        chain["sets"][0]
+            .as_str()
+            .expect("the stored set")
+            .as_bytes(),
         std::fs::read(d.join("trust-2.json")).expect("trust-2.json")
     );
 }

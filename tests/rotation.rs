@@ -160,7 +160,7 @@ fn device_check(
     let mut saved = Vec::new();
     let result = updater.check_with(now, &mut |next| {
         saved.push(next.version());
-        store.save_trust_set(next)
+        store.save_trust_set(initial, next)
     });
     (result, saved)
 }
@@ -302,7 +302,7 @@ fn issue5_a_rotation_published_in_the_tree_revokes_a_key_on_devices() {
         Store::load_trust_set(&store_dir, &v1_bytes, Timestamp::now()).expect("stored trust set");
     assert_eq!(store_trust.version(), 2);
     assert_eq!(
-        std::fs::read(store_dir.join("trust-set.json")).expect("stored"),
+        newest_stored_trust_set(&store_dir).expect("stored"),
         store_trust.to_json()
     );
     // Under version 1 alone the same bundle would have been taken: the rotation made the
@@ -392,7 +392,7 @@ fn issue5_a_feed_naming_an_older_trust_set_is_ignored() {
     )
     .expect("store")
     .wait_for_lock(LOCK_WAIT)
-    .save_trust_set(&v2)
+    .save_trust_set(&v1_bytes, &v2)
     .expect("saved");
 
     // The feed verifies under version 2 (k is a feed key there too); the older set it names
@@ -576,7 +576,7 @@ fn issue5_a_trust_set_that_is_not_a_successor_is_refused_at_publish_and_on_the_d
         )
     );
     assert!(saved.is_empty());
-    assert!(!store_dir.join("trust-set.json").exists());
+    assert!(newest_stored_trust_set(&store_dir).is_none());
 
     // Bytes on the server that are not the ones the feed names are refused before parsing.
     std::fs::copy(d.join("trust-2.json"), d.join("tree/trust/2.json")).expect("swap");
@@ -739,7 +739,7 @@ fn issue5_a_device_whose_trust_set_expired_renews_it_through_the_feed() {
             server.addr
         )
     );
-    assert_eq!(other.stored_trust_set_version().expect("readable"), None);
+    assert_eq!(other.trust_chain(&v1_bytes).expect("readable").1, 0);
 }
 
 /// `ampoule update --trust-set` as a camera on trust sets runs it, from store `store`.
@@ -799,7 +799,7 @@ fn issue5_update_on_a_trust_set_rotates_through_the_feed_and_keeps_the_new_set()
         (&doc["trust_set_version"], &doc["trust_set_rotated"]),
         (&serde_json::json!(1), &serde_json::json!(false))
     );
-    assert!(!d.join("cam/trust-set.json").exists());
+    assert!(newest_stored_trust_set(&d.join("cam")).is_none());
 
     // Version 2 revokes c; the renewed feed names it. The camera, started on version 1 again,
     // rotates within the update and keeps version 2.
@@ -809,7 +809,7 @@ fn issue5_update_on_a_trust_set_rotates_through_the_feed_and_keeps_the_new_set()
         "trust set rotated to version 2; up to date: channel stable offers trailcam-species \
          1.0.0 (feed sequence 2); keeping trailcam-species 1.0.0"
     );
-    let stored = std::fs::read(d.join("cam/trust-set.json")).expect("the store keeps the set");
+    let stored = newest_stored_trust_set(&d.join("cam")).expect("the store keeps the set");
     let kept = TrustSet::verify_initial(&stored, Timestamp::now()).expect("stored set verifies");
     assert_eq!(kept.version(), 2);
     assert_eq!(
@@ -871,7 +871,7 @@ fn issue5_update_on_a_trust_set_rotates_through_the_feed_and_keeps_the_new_set()
              (valid: {a}; by keys not trusted here: {c})"
         )
     );
-    let stored = std::fs::read(d.join("cam2/trust-set.json")).expect("kept despite the refusal");
+    let stored = newest_stored_trust_set(&d.join("cam2")).expect("kept despite the refusal");
     assert_eq!(
         TrustSet::verify_initial(&stored, Timestamp::now())
             .expect("stored set verifies")

@@ -375,6 +375,52 @@ fn a_tampered_bundle_on_the_server_is_refused_and_the_model_kept_issue_3() {
 }
 
 #[test]
+fn issue10_a_server_that_sends_more_than_the_feed_declares_is_a_network_fault() {
+    // Issue 10 item 9: the feed and bundle are genuine; the server is what is wrong, so the
+    // device says "try again later" (exit 2, kind network), not "refused" (exit 1).
+    let dir = setup();
+    let d = dir.path();
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    publish(d, &v1, "stable", "100");
+    let digest = bundle_digest(d, &v1);
+    let served = d.join(format!("tree/bundles/{digest}.ampoule"));
+    let size = std::fs::metadata(&served).expect("served bundle").len();
+    let mut bytes = std::fs::read(&served).expect("served bundle");
+    bytes.extend_from_slice(&[0u8; 4096]);
+    std::fs::write(&served, &bytes).expect("grow the served file");
+    let server = serve(d);
+    let out = update(d, &server, &[]);
+    assert_eq!(out.status.code(), Some(2), "{}", stderr(&out));
+    let expected = format!(
+        "server declares {} bytes for http://{}/bundles/{digest}.ampoule, but {size} of the \
+         {size} bytes the feed signed were expected",
+        size + 4096,
+        server.addr()
+    );
+    assert_eq!(stderr(&out), format!("ampoule: error: {expected}"));
+    let out = update(d, &server, &["--json"]);
+    assert_eq!(out.status.code(), Some(2));
+    let doc: serde_json::Value = serde_json::from_str(&stdout(&out)).expect("JSON error");
+    assert_eq!(
+        (&doc["ok"], &doc["exit_code"], &doc["kind"], &doc["error"]),
+        (
+            &serde_json::json!(false),
+            &serde_json::json!(2),
+            &serde_json::json!("network"),
+            &serde_json::json!(expected)
+        )
+    );
+    let installed = std::fs::read(d.join("cam/state.json"))
+        .ok()
+        .and_then(|b| serde_json::from_slice::<serde_json::Value>(&b).ok())
+        .map(|s| s["current"].clone());
+    assert!(
+        installed.is_none_or(|c| c.is_null()),
+        "nothing was installed"
+    );
+}
+
+#[test]
 fn exit_codes_for_refusals_and_network_and_usage_issue_3() {
     let dir = setup();
     let d = dir.path();

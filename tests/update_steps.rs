@@ -680,3 +680,207 @@ fn issue10_a_linked_state_file_is_refused_with_how_to_clear_it() {
         )
     );
 }
+
+// Issue 10 items 3 and 5: the bundle's size is bound by its signers, checked from its head
+// before the payload is downloaded; a refusal is remembered so that a metered link does not
+// carry the same refused bundle again on every poll.
+
+/// Packs `version` with a 300,000-byte model that does not compress (a linear congruential
+/// sequence, the constants of Numerical Recipes' `ranqd1`, from memory), so the bundle is
+/// larger than its head (129.5 KiB) and the session asks for the head first.
+fn pack_large(d: &Path, version: &str) -> String {
+    let mut x: u32 = 0x2545_f491;
+    let bytes: Vec<u8> = (0..300_000)
+        .map(|_| {
+            x = x.wrapping_mul(1_664_525).wrapping_add(1_013_904_223);
+            (x >> 24) as u8
+        })
+        .collect();
+    let model = format!("large-{version}.bin");
+    std::fs::write(d.join(&model), bytes).expect("model");
+    let out = format!("large-{version}.ampoule");
+    ok(
+        d,
+        &[
+            "pack",
+            "--model",
+            &model,
+            "--labels",
+            "labels.txt",
+            "--name",
+            "trailcam-species",
+            "--version",
+            version,
+            "--requires-app",
+            ">=2.0.0, <3.0.0",
+            "--created",
+            "2026-12-01T08:00:00Z",
+            "--key",
+            "k.pem",
+            "-o",
+            &out,
+        ],
+    );
+    out
+}
+
+/// Re-signs the channel's feed after `change` edits its text, as someone holding the feed key
+/// alone could (the ledger entry and tree head stay the genuine ones).
+fn resign_feed(d: &Path, channel: &str, change: impl Fn(&str) -> String) {
+    let path = d.join(format!("tree/feeds/{channel}.json"));
+    let signed = ampoule_verify::feed::SignedFeed::from_json(&std::fs::read(&path).expect("feed"))
+        .expect("feed");
+    let text = change(&signed.feed);
+    assert_ne!(text, signed.feed, "the change changed nothing");
+    std::fs::write(&path, signed_feed_file(d, "k.pem", text).to_json()).expect("feed");
+}
+
+/// One update whose downloads write exactly what the session asks for from the served file,
+/// through the store's file; returns the report and the bytes written.
+fn drive_counting(device: &Device, d: &Path, now: Timestamp) -> (Report, u64) {
+    let url = feed_url("stable");
+    let feed = std::fs::read(tree_file(d, &url)).expect("feed file");
+    let mut session = device.begin(&url, feed, now);
+    let mut written = 0u64;
+    loop {
+        match session.advance() {
+            Next::Fetch(want) => {
+                session.provide(std::fs::read(tree_file(d, want.url())).expect("file"));
+            }
+            Next::Download(want) => {
+                let served = as_served(&tree_file(d, &want.urls()[0]));
+                let mut file = want.file().expect("the store's download file");
+                let have = file.metadata().expect("size").len();
+                let upto = want.size().min(served.len() as u64);
+                file.seek(SeekFrom::End(0)).expect("seek");
+                file.write_all(&served[have as usize..upto as usize])
+                    .expect("write");
+                written += upto - have;
+                session.downloaded(want.path());
+            }
+            Next::Done(report) => return (report, written),
+            other => panic!("unexpected step {other:?}"),
+        }
+    }
+}
+
+fn refusal(report: &Report) -> &ampoule_verify::Error {
+    match &report.outcome {
+        Outcome::Refused(e) => e,
+        other => panic!("expected a refusal, got {other:?}"),
+    }
+}
+
+#[test]
+fn issue10_a_feed_that_overstates_the_size_costs_the_head_alone() {
+    let dir = setup();
+    let d = dir.path();
+    let bundle = pack_large(d, "1.0.0");
+    let real = std::fs::metadata(d.join(&bundle)).expect("bundle").len();
+    assert!(real > ampoule_verify::format::limit::HEAD_BYTES);
+    publish(d, &bundle, "stable", "100");
+    // The feed key alone states a size of 90 MiB, under the app's limit.
+    let claimed = 90 * 1024 * 1024u64;
+    resign_feed(d, "stable", |text| {
+        text.replacen(
+            &format!("\"size\":{real}"),
+            &format!("\"size\":{claimed}"),
+            1,
+        )
+    });
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let (report, written) = drive_counting(&device, d, Timestamp::now());
+    let e = refusal(&report);
+    assert_eq!(e.kind(), ErrorKind::Feed);
+    assert_eq!(
+        e.to_string(),
+        format!(
+            "feed offers trailcam-species 1.0.0 as {claimed} bytes, but its signed manifest \
+             makes the bundle {real} bytes; refusing it before its payload is downloaded"
+        )
+    );
+    assert_eq!(written, ampoule_verify::format::limit::HEAD_BYTES);
+    assert!(
+        downloads(d).iter().all(|n| !n.ends_with(".partial")),
+        "the head was discarded: {:?}",
+        downloads(d)
+    );
+    // The next poll downloads nothing at all.
+    let (report, written) = drive_counting(&device, d, Timestamp::now());
+    assert!(
+        refusal(&report).to_string().starts_with(&format!(
+            "feed offers trailcam-species 1.0.0 as {claimed} bytes"
+        )),
+        "{report:?}"
+    );
+    assert!(refusal(&report).to_string().contains("remembered"));
+    assert_eq!(written, 0);
+}
+
+#[test]
+fn issue10_a_refusal_after_a_full_download_is_remembered_until_the_offer_or_app_changes() {
+    let dir = setup();
+    let d = dir.path();
+    let bundle = pack_large(d, "1.0.0");
+    publish(d, &bundle, "stable", "100");
+    // This app needs a label the bundle lacks: only the unpacked label list shows it, after
+    // the whole bundle came.
+    let needs_lynx = |version: Version| {
+        pinned_app_version(d, version)
+            .device_id("camera-7")
+            .expect("id")
+            .compatibility(
+                ampoule_verify::CompatibilityPolicy::builder()
+                    .require_label("lynx")
+                    .build()
+                    .expect("policy"),
+            )
+    };
+    let device = Device::open(
+        &d.join("cam"),
+        "stable",
+        needs_lynx(Version::new(2, 3, 0)),
+        Timestamp::now(),
+    )
+    .expect("open");
+    let whole = std::fs::metadata(tree_file(
+        d,
+        &read_feed(d, "stable")
+            .release
+            .expect("offered")
+            .urls(&feed_url("stable"))
+            .expect("urls")[0],
+    ))
+    .expect("bundle")
+    .len();
+    let now = Timestamp::now();
+    let (report, written) = drive_counting(&device, d, now);
+    let first = refusal(&report).to_string();
+    assert_eq!(refusal(&report).kind(), ErrorKind::Incompatible, "{first}");
+    assert_eq!(written, whole, "{first}");
+    // Polls within a day, even of a renewed feed, download nothing.
+    let renewed = publish(d, &bundle, "stable", "100");
+    assert!(renewed.to_string().contains("renew"), "{renewed}");
+    let (report, written) = drive_counting(&device, d, now);
+    assert_eq!(written, 0, "{report:?}");
+    assert!(
+        refusal(&report).to_string().starts_with(&first),
+        "{report:?}"
+    );
+    assert!(refusal(&report).to_string().contains("remembered"));
+    // After 24 hours the bundle is worth another look.
+    let later = Timestamp::from_unix(now.unix() + 24 * 3600 + 60).expect("time");
+    let (_, written) = drive_counting(&device, d, later);
+    assert_eq!(written, whole);
+    // So it is at once for another app version.
+    drop(device);
+    let other = Device::open(
+        &d.join("cam"),
+        "stable",
+        needs_lynx(Version::new(2, 4, 0)),
+        Timestamp::now(),
+    )
+    .expect("open");
+    let (_, written) = drive_counting(&other, d, now);
+    assert_eq!(written, whole);
+}

@@ -13,7 +13,7 @@ use serde_json::json;
 
 use crate::cli::{DiffArgs, FailOn};
 use crate::failure::{Failure, Kind, bundle_error, count};
-use crate::output::{Output, failed_report};
+use crate::output::{Output, failed_report, shown};
 
 /// One bundle as the diff sees it.
 struct Side {
@@ -161,7 +161,10 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
     };
     line(format!(
         "{} {} -> {} {}",
-        om.name, om.version, nm.name, nm.version
+        shown(&om.name),
+        om.version,
+        shown(&nm.name),
+        nm.version
     ));
     if !moved.is_empty() {
         line(format!(
@@ -171,19 +174,28 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
         for m in &moved {
             line(format!(
                 "  '{}' moved from index {} to {}",
-                m.label, m.old_index, m.new_index
+                shown(&m.label),
+                m.old_index,
+                m.new_index
             ));
         }
     }
     for (what, diff) in [("input", &inputs), ("output", &outputs)] {
         for c in &diff.changed {
-            line(format!("WARNING: {what} changed: {} -> {}", c.old, c.new));
+            line(format!(
+                "WARNING: {what} changed: {} -> {}",
+                shown(&c.old.to_string()),
+                shown(&c.new.to_string())
+            ));
         }
         for a in &diff.added {
-            line(format!("{what} added: {a}"));
+            line(format!("{what} added: {}", shown(&a.to_string())));
         }
         for r in &diff.removed {
-            line(format!("WARNING: {what} removed: {r}"));
+            line(format!(
+                "WARNING: {what} removed: {}",
+                shown(&r.to_string())
+            ));
         }
     }
     for change in &model {
@@ -199,7 +211,7 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
         } else {
             added
                 .iter()
-                .map(|l| format!("'{l}'"))
+                .map(|l| format!("'{}'", shown(l)))
                 .collect::<Vec<_>>()
                 .join(", ")
         },
@@ -208,7 +220,7 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
         } else {
             removed
                 .iter()
-                .map(|l| format!("'{l}'"))
+                .map(|l| format!("'{}'", shown(l)))
                 .collect::<Vec<_>>()
                 .join(", ")
         },

@@ -10,7 +10,7 @@ use serde_json::json;
 use crate::cli::InspectArgs;
 use crate::cmd::{load_trust, load_trust_set};
 use crate::failure::bundle_error;
-use crate::output::Output;
+use crate::output::{Output, shown};
 
 pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
     let (keys, threshold) = match &args.trust_set {
@@ -30,8 +30,8 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
     let m = &manifest;
     let mut human = format!(
         "bundle   {}\nname     {}\nversion  {}\ncreated  {}\nrequires app {}\nsize     {} bytes (manifest {} bytes, sha256 {})\npayload  {} bytes zstd, sha256 {} ({})\n",
-        args.bundle.display(),
-        m.name,
+        shown(&args.bundle.display().to_string()),
+        shown(&m.name),
         m.version,
         m.created,
         m.requires_app,
@@ -48,7 +48,10 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
     for f in &m.files {
         human.push_str(&format!(
             "file     {:<16} {:>12} bytes  sha256 {}  ({:?})\n",
-            f.path, f.size, f.sha256, f.role
+            shown(&f.path),
+            f.size,
+            f.sha256,
+            f.role
         ));
     }
     human.push_str(&format!("labels   {}\n", m.label_count));
@@ -62,7 +65,7 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
                     .unwrap_or_default(),
                 sig.producer
                     .as_ref()
-                    .map(|p| format!(", made by {p}"))
+                    .map(|p| format!(", made by {}", shown(p)))
                     .unwrap_or_default(),
                 sig.parameters,
                 sig.weight_tensors,
@@ -73,10 +76,10 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
                 },
             ));
             for v in &sig.inputs {
-                human.push_str(&format!("input    {v}\n"));
+                human.push_str(&format!("input    {}\n", shown(&v.to_string())));
             }
             for v in &sig.outputs {
-                human.push_str(&format!("output   {v}\n"));
+                human.push_str(&format!("output   {}\n", shown(&v.to_string())));
             }
             for line in sig.size_report().to_string().lines() {
                 human.push_str(&format!("weights  {line}\n"));

@@ -3,6 +3,7 @@
 //! a bundle's inclusion proof. With `--url` the files are fetched over HTTP(S) into a
 //! temporary copy of the tree first, so every check runs on exactly the same code.
 
+use std::cell::Cell;
 use std::collections::BTreeSet;
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -13,7 +14,7 @@ use ampoule_verify::ledger::{
     Event, LEDGER_DIR, LedgerVerifier, MAX_ENTRY_BYTES, Record, step_path,
 };
 use ampoule_verify::merkle::{self, MAX_SIGNED_TREE_HEAD_BYTES, SignedTreeHead};
-use ampoule_verify::{Digest, DocumentKind, KeyId, Timestamp};
+use ampoule_verify::{Digest, DocumentKind, ErrorKind, KeyId, Timestamp};
 use anyhow::{Context, Result, bail};
 use serde_json::{Value, json};
 use tempfile::TempDir;
@@ -24,7 +25,7 @@ use crate::cli::{
 };
 use crate::cmd::{load_trust, load_trust_set};
 use crate::failure::{Failure, Kind, count};
-use crate::output::{Output, failed_report};
+use crate::output::{Output, failed_report, shown};
 use crate::release::ledger_audit::{self as audit, AuditReport};
 use crate::release::ledger_storage::{
     ENTRIES, Entry, HASHES, Ledger, OFFSETS, TREE_HEAD, TREE_HEADS,
@@ -38,6 +39,16 @@ pub fn run(args: LedgerArgs, out: &Output) -> Result<()> {
     }
 }
 
+/// How [`mirror`] may size what it downloads from a served tree.
+#[derive(Clone, Copy)]
+enum Sizing<'a> {
+    /// The served tree head must verify under these keys before anything is sized from it.
+    Verified(&'a LedgerVerifier),
+    /// The tree head is not verified (`ledger list` without `--trust`): all downloads
+    /// together stop at this many bytes, whatever the head claims.
+    Unverified { max_bytes: u64 },
+}
+
 /// A release tree to read: the given directory, or a temporary copy of a served one.
 struct Source {
     root: PathBuf,
@@ -46,7 +57,7 @@ struct Source {
 }
 
 impl Source {
-    fn open(args: &LedgerSourceArgs, whole_tree: bool) -> Result<Source> {
+    fn open(args: &LedgerSourceArgs, whole_tree: bool, sizing: Sizing<'_>) -> Result<Source> {
         match (&args.tree, &args.url) {
             (Some(tree), _) => {
                 if !tree.join(LEDGER_DIR).join(ENTRIES).is_file() {
@@ -63,7 +74,7 @@ impl Source {
             }
             (None, Some(url)) => {
                 let copy = tempfile::tempdir().context("cannot create a temporary directory")?;
-                mirror(url, copy.path(), whole_tree)?;
+                mirror(url, copy.path(), whole_tree, sizing)?;
                 Ok(Source {
                     root: copy.path().to_path_buf(),
                     shown: url.clone(),
@@ -87,34 +98,74 @@ const SLACK_BYTES: u64 = 64 * 1024 * 1024;
 /// Copies what the checks read from the tree served at `base` into `root`: the ledger's files
 /// and, for `check`, the consistency steps, histories, index and published bundles. Files the
 /// server does not have are left out, and the checks report them missing.
-fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
+///
+/// Download sizes follow from the tree head, so a hostile server's head could otherwise ask
+/// for any amount of disk: with [`Sizing::Verified`] the head is checked before anything else
+/// is fetched, and with [`Sizing::Unverified`] every download together stops at a fixed
+/// number of bytes (issue 10 item 6).
+fn mirror(base: &str, root: &Path, whole_tree: bool, sizing: Sizing<'_>) -> Result<()> {
     let base = if base.ends_with('/') {
         base.to_string()
     } else {
         format!("{base}/")
     };
     let transfer = Transfer::default();
+    let budget = Cell::new(match sizing {
+        Sizing::Verified(_) => u64::MAX,
+        Sizing::Unverified { max_bytes } => max_bytes,
+    });
+    let exhausted = Cell::new(false);
+    let over_budget = || match sizing {
+        Sizing::Unverified { max_bytes } => format!(
+            "stopped after {max_bytes} bytes from {base} (--max-bytes): its tree head is not \
+             verified, so it cannot size the downloads; give --trust or --trust-set, or a \
+             larger --max-bytes"
+        ),
+        Sizing::Verified(_) => unreachable!("a verified head sets no byte budget"),
+    };
     let fetch = |rel: &str, max: u64| -> Result<()> {
+        if exhausted.get() {
+            bail!("{}", over_budget());
+        }
         let url = resolve(&base, rel)?;
         let dest = root.join(rel);
         if let Some(dir) = dest.parent() {
             fs::create_dir_all(dir)
                 .with_context(|| format!("cannot create directory {}", dir.display()))?;
         }
-        fetch_to_file(&url, &dest, max, &transfer)
-            .map(|_| ())
-            .inspect_err(|_| {
+        let left = budget.get();
+        let cap = max.min(left);
+        match fetch_to_file(&url, &dest, cap, &transfer) {
+            Ok(written) => {
+                budget.set(left - written.min(left));
+                Ok(())
+            }
+            Err(e) => {
                 // A failed fetch may leave an empty or partial file; the checks must see the
                 // file as missing, not as one with other content.
                 let _ = fs::remove_file(&dest);
-            })
-            .with_context(|| format!("cannot fetch {url}"))
+                if e.kind() == ErrorKind::TooLarge && cap < max {
+                    exhausted.set(true);
+                    return Err(anyhow::Error::new(e).context(over_budget()));
+                }
+                Err(anyhow::Error::new(e).context(format!("cannot fetch {url}")))
+            }
+        }
     };
     let ledger = |name: &str| format!("{LEDGER_DIR}/{name}");
     fetch(&ledger(TREE_HEAD), MAX_SIGNED_TREE_HEAD_BYTES as u64 + 2)?;
     let head = fs::read(root.join(ledger(TREE_HEAD))).context("cannot read the fetched head")?;
     let head = SignedTreeHead::from_json(head.strip_suffix(b"\n").unwrap_or(&head))
         .with_context(|| format!("{base}{} is not a signed tree head", ledger(TREE_HEAD)))?;
+    if let Sizing::Verified(verifier) = sizing {
+        verifier.verify_head(&head).with_context(|| {
+            format!(
+                "the tree head at {base}{} is refused, and nothing was sized from it or \
+                 downloaded after it",
+                ledger(TREE_HEAD)
+            )
+        })?;
+    }
     let size = head.head().tree_size;
     fetch(
         &ledger(ENTRIES),
@@ -174,6 +225,9 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
             RECORD_BYTES,
         );
     }
+    if exhausted.get() {
+        bail!("{}", over_budget());
+    }
     if !whole_tree {
         return Ok(());
     }
@@ -201,6 +255,9 @@ fn mirror(base: &str, root: &Path, whole_tree: bool) -> Result<()> {
                 size,
             );
         }
+    }
+    if exhausted.get() {
+        bail!("{}", over_budget());
     }
     Ok(())
 }
@@ -270,11 +327,25 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
     if let Some(channel) = &args.channel {
         crate::cmd::check_channel_arg(channel)?;
     }
-    let source = Source::open(&args.source, false)?;
+    let verifier = match (&args.trust_set, args.trust.is_empty()) {
+        (Some(path), _) => Some(LedgerVerifier::from_trust_set(&load_trust_set(path)?)?),
+        (None, false) => Some(LedgerVerifier::new(load_trust(&args.trust)?, 1)?),
+        (None, true) => None,
+    };
+    let sizing = verifier.as_ref().map_or(
+        Sizing::Unverified {
+            max_bytes: args.max_bytes,
+        },
+        Sizing::Verified,
+    );
+    let source = Source::open(&args.source, false, sizing)?;
     let ledger = source.ledger()?;
     let mut rows = Vec::new();
+    // The complete subtrees of every entry read so far, for the root the tree head must sign.
+    let mut frontier: Vec<Digest> = Vec::new();
     for item in ledger.entries()? {
         let (index, bytes) = item?;
+        push_leaf(&mut frontier, index, merkle::leaf_hash(&bytes));
         let record =
             Record::from_bytes(&bytes).with_context(|| format!("entry {index} of the ledger"))?;
         // A trust-set publish renews every channel's feed, so it belongs to each channel's list.
@@ -285,6 +356,23 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         if shown {
             rows.push((index, record));
         }
+    }
+    let signers = match &verifier {
+        Some(verifier) => Some(authenticate(&ledger, verifier, &frontier)?),
+        None => None,
+    };
+    let authenticity = match &signers {
+        Some(ids) => format!(
+            "authenticated: the entries hash to the root of the tree head, signed by {}",
+            key_list(ids, ", ", usize::MAX)
+        ),
+        None => "unauthenticated: no --trust or --trust-set was given, so neither the tree \
+                 head nor the entries were checked"
+            .to_string(),
+    };
+    if signers.is_none() && args.csv {
+        // CSV has no room for it; the list must not pass for a checked one.
+        out.note(&format!("warning: {authenticity}"));
     }
     let rollouts = rollouts_from_history(&source.root, &rows);
     let rollout_of = |record: &Record| match record {
@@ -356,8 +444,8 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                 index.to_string(),
                 time_text(e.time),
                 e.event.to_string(),
-                e.channel.clone(),
-                e.bundle.clone(),
+                shown(&e.channel).into_owned(),
+                shown(&e.bundle).into_owned(),
                 e.version.to_string(),
                 e.bundle_digest.to_string()[..16].to_string(),
                 key_list(&e.key_ids, ",", 8),
@@ -403,7 +491,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
     );
     if let Some(h) = &head {
         human.push_str(&format!(
-            "{} of {} shown; tree head size {}, root {}, {} (unchecked: run ledger check)\n",
+            "{} of {} shown; tree head size {}, root {}, {}\n",
             rows.len(),
             count(h.tree_size, "entry", "entries"),
             h.tree_size,
@@ -411,11 +499,21 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
             time_text(h.time)
         ));
     }
+    human.push_str(&authenticity);
+    human.push_str(if signers.is_some() {
+        " (the history's consistency: run ledger check)\n"
+    } else {
+        "\n"
+    });
     out.result(
         &human,
         json!({
             "ok": true,
             "source": source.shown,
+            "authenticated": signers.is_some(),
+            "tree_head_signed_by": signers
+                .as_ref()
+                .map(|ids| ids.iter().map(|k| k.to_string()).collect::<Vec<_>>()),
             "tree_size": head.map(|h| h.tree_size),
             "root_hash": head.map(|h| h.root_hash),
             "entries": rows.iter().map(|(i, e)| {
@@ -428,6 +526,46 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
             "rollout_source": "history/ files of the tree, not covered by the ledger",
         }),
     )
+}
+
+/// Adds leaf `index` to the complete subtrees in `frontier` (RFC 9162 section 2.1.1).
+fn push_leaf(frontier: &mut Vec<Digest>, index: u64, leaf: Digest) {
+    frontier.push(leaf);
+    let mut count = index + 1;
+    while count & 1 == 0 {
+        let right = frontier.pop().expect("a merge has two subtrees");
+        let left = frontier.pop().expect("a merge has two subtrees");
+        frontier.push(merkle::node_hash(&left, &right));
+        count >>= 1;
+    }
+}
+
+/// Checks the ledger's tree head under `verifier` and that the entries listed (folded into
+/// `frontier`) hash to its root; returns the keys that signed it.
+fn authenticate(
+    ledger: &Ledger,
+    verifier: &LedgerVerifier,
+    frontier: &[Digest],
+) -> Result<Vec<KeyId>> {
+    let Some(signed) = ledger.tree_head() else {
+        bail!("the ledger has no tree head, so nothing in it can be authenticated");
+    };
+    let report = verifier
+        .verify_head(signed)
+        .context("the ledger's tree head is refused")?;
+    let head = signed.head();
+    let root = merkle::fold_frontier(frontier).unwrap_or_else(merkle::empty_root);
+    if root != head.root_hash {
+        return Err(Refused(format!(
+            "the ledger's {} hash to root {root}, but its signed tree head of size {} has \
+                 root {}: the entries are not the ones the head signed (run ledger check)",
+            count(head.tree_size, "entry", "entries"),
+            head.tree_size,
+            head.root_hash
+        ))
+        .into());
+    }
+    Ok(report.valid)
 }
 
 /// The rollout of each publish, by channel and feed sequence, as the tree's history files
@@ -497,7 +635,7 @@ fn check(args: LedgerCheckArgs, out: &Output) -> Result<()> {
         }
         None => None,
     };
-    let source = Source::open(&args.source, true)?;
+    let source = Source::open(&args.source, true, Sizing::Verified(&heads))?;
     let report = audit::check(&source.root, &keys, &heads, since.as_ref())?;
     print_report(&source, &report, out)
 }
@@ -574,6 +712,7 @@ fn prove(args: LedgerProveArgs, out: &Output) -> Result<()> {
             url: None,
         },
         false,
+        Sizing::Unverified { max_bytes: 0 },
     )?;
     let ledger = source.ledger()?;
     let Some((index, bytes)) =

@@ -9,7 +9,7 @@ use serde_json::{Value, json};
 use crate::cli::{StoreArgs, StoreCommand, StoreOptions};
 use crate::cmd::{load_trust, parse_version, read_trust_set_file};
 use crate::failure::{count, usage};
-use crate::output::Output;
+use crate::output::{Output, shown};
 
 pub fn run(args: StoreArgs, out: &Output) -> Result<()> {
     match args.command {
@@ -72,7 +72,7 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
     let mut human = match &current {
         Some(r) => format!(
             "current  {} {} ({}; model {}) checked: digests and signatures match\n",
-            r.manifest.name,
+            shown(&r.manifest.name),
             r.manifest.version,
             count(r.labels.len(), "label", "labels"),
             r.model.display()
@@ -104,6 +104,21 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
             head.tree_size, head.root_hash
         ));
     }
+    // A trust chain the store holds but cannot prove from the shipped set is not believed:
+    // say why, so that whoever looks knows something else wrote the store.
+    let ignored = match &o.trust_set {
+        Some(path) => {
+            let (initial, _) = read_trust_set_file(path)?;
+            store.trust_chain(&initial)?.2
+        }
+        None => None,
+    };
+    if let Some(why) = &ignored {
+        human.push_str(&format!(
+            "ignored  {} (not believed: the device runs on the trust sets before it)\n",
+            why.escape_debug()
+        ));
+    }
     // Names come from whoever planted them: shown escaped.
     for removed in &state.removed {
         human.push_str(&format!(
@@ -117,6 +132,7 @@ fn status(o: &StoreOptions, out: &Output) -> Result<()> {
         json!({
             "ok": true,
             "removed": state.removed,
+            "trust_chain_ignored": ignored,
             "current": current.as_ref().map(release_json),
             "previous": state.previous.as_ref().map(|p| p.version.to_string()),
             "highest_version": state.highest_version.as_ref().map(|v| v.to_string()),
@@ -136,7 +152,7 @@ fn rollback(o: &StoreOptions, out: &Output) -> Result<()> {
     let human = format!(
         "rolled back from {} to {} {}; {} stays refused, and so is anything not newer than it",
         from.as_deref().unwrap_or("nothing"),
-        back.manifest.name,
+        shown(&back.manifest.name),
         back.manifest.version,
         from.as_deref().unwrap_or("it"),
     );

@@ -16,7 +16,7 @@ use serde_json::{Value, json};
 use crate::cli::UpdateArgs;
 use crate::cmd::{load_trust, parse_version};
 use crate::failure::count;
-use crate::output::Output;
+use crate::output::{Output, shown};
 
 pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
     let app_version = parse_version(&args.app_version, "--app-version")?;
@@ -143,14 +143,14 @@ fn show(
     let offered = feed.release();
     let offered_text = offered.map_or_else(
         || "nothing".to_string(),
-        |r| format!("{} {}", r.name, r.version),
+        |r| format!("{} {}", shown(&r.name), r.version),
     );
     let human = match outcome {
         Outcome::Installed(installed) => {
             let m = &installed.release.manifest;
             let what = match &installed.replaced {
-                Some(old) => format!("updated {} {old} -> {}", m.name, m.version),
-                None => format!("installed {} {}", m.name, m.version),
+                Some(old) => format!("updated {} {old} -> {}", shown(&m.name), m.version),
+                None => format!("installed {} {}", shown(&m.name), m.version),
             };
             format!(
                 "{what} from channel {channel} (feed sequence {sequence}): {}, model at {}",

@@ -9,7 +9,7 @@ use serde_json::json;
 use crate::cli::VerifyArgs;
 use crate::cmd::{load_trust_named, load_trust_set, name_trusted, parse_version};
 use crate::failure::{bundle_error, count};
-use crate::output::Output;
+use crate::output::{Output, shown};
 
 pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
     // With a trust set, its bundle keys and bundle threshold; with --trust, any one key.
@@ -58,7 +58,7 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
     };
     let mut human = format!(
         "OK {} {}: signed by {} ({} needed); payload and {} match their digests; {}\n",
-        manifest.name,
+        shown(&manifest.name),
         manifest.version,
         signers.join(", "),
         threshold,

@@ -135,6 +135,11 @@ pub fn pinned_app(d: &Path) -> App {
 
 /// [`pinned_app`] without a device id: the store makes and keeps its own.
 pub fn pinned_app_own_id(d: &Path) -> App {
+    pinned_app_version(d, Version::new(2, 3, 0))
+}
+
+/// [`pinned_app_own_id`] as app version `version`.
+pub fn pinned_app_version(d: &Path, version: Version) -> App {
     let keys = keys(d);
     let trust = Trust::pinned(
         Signers::new(keys.clone(), 1).expect("bundle signers"),
@@ -143,7 +148,7 @@ pub fn pinned_app_own_id(d: &Path) -> App {
     );
     // Tests in one binary start `ampoule` processes while others hold a store's lock; a started
     // process briefly holds a copy of every open file, so a test device waits a little.
-    App::new(trust, Version::new(2, 3, 0)).wait_for_lock(std::time::Duration::from_secs(5))
+    App::new(trust, version).wait_for_lock(std::time::Duration::from_secs(5))
 }
 
 /// A feed file whose text is `text`, signed by the secret key in `d/<key>` alone: for tests
@@ -215,4 +220,16 @@ pub fn serve_tree(d: &Path, tree: &str) -> Served {
         .map(|(_, a)| a.trim_end_matches('/').to_string())
         .unwrap_or_else(|| panic!("unexpected first line {line:?}"));
     Served { child, addr }
+}
+
+/// The newest trust set a store keeps: the last of `trust-chain.json`, as stored; `None` when
+/// the store keeps none.
+pub fn newest_stored_trust_set(store: &Path) -> Option<Vec<u8>> {
+    let bytes = std::fs::read(store.join("trust-chain.json")).ok()?;
+    let chain: serde_json::Value = serde_json::from_slice(&bytes).expect("chain JSON");
+    chain["sets"]
+        .as_array()
+        .and_then(|sets| sets.last())
+        .and_then(|set| set.as_str())
+        .map(|text| text.as_bytes().to_vec())
 }

@@ -48,7 +48,7 @@ pub enum ErrorKind {
     /// the one accepted before (a replay).
     Stale,
     /// A transfer failed: connection, timeout, HTTP status, redirect, a server that sent
-    /// fewer bytes than declared. Trying again later may work.
+    /// fewer or more bytes than the feed declares. Trying again later may work.
     Network,
     /// A setting the app gave is not usable (a device id, a bundle or channel name); fix the
     /// app's configuration.

@@ -6,7 +6,7 @@
 use ampoule_verify::feed::{Feed, SignedFeed, TrustSetRef};
 use ampoule_verify::format::{context, signed_bytes};
 use ampoule_verify::signature::SignatureEntry;
-use ampoule_verify::store::TRUST_SET_FILE;
+use ampoule_verify::store::{TRUST_CHAIN_FILE, TRUST_SET_FILE};
 use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody};
 use ampoule_verify::{
     Digest, DocumentKind, ErrorKind, FeedVerifier, KeyId, PublicKey, Store, Timestamp, TrustSet,
@@ -88,6 +88,19 @@ fn store_in(dir: &std::path::Path, trust: &TrustSet) -> Store {
     Store::open(dir, verifier).expect("store opens")
 }
 
+/// The chain file's sets, as stored.
+fn stored_chain(store_dir: &std::path::Path) -> Vec<String> {
+    let bytes = std::fs::read(store_dir.join(TRUST_CHAIN_FILE)).expect("stored");
+    let json: serde_json::Value = serde_json::from_slice(&bytes).expect("json");
+    assert_eq!(json["format"], 1);
+    json["sets"]
+        .as_array()
+        .expect("sets")
+        .iter()
+        .map(|v| v.as_str().expect("text").to_string())
+        .collect()
+}
+
 #[test]
 fn issue5_the_store_keeps_the_newest_trust_set_and_refuses_older_ones() {
     let (v1, v2) = v1_v2();
@@ -97,18 +110,19 @@ fn issue5_the_store_keeps_the_newest_trust_set_and_refuses_older_ones() {
     let trust = Store::load_trust_set(&store_dir, &v1, at(NOW)).expect("initial");
     assert_eq!(trust.version(), 1);
     let store = store_in(&store_dir, &trust);
-    assert_eq!(store.stored_trust_set_version().expect("readable"), None);
+    assert_eq!(store.trust_chain(&v1).expect("readable").1, 0);
 
     let next = trust
         .accept_successor(&v2, at(NOW))
         .expect("v2 is a successor");
-    store.save_trust_set(&next).expect("saved");
+    store.save_trust_set(&v1, &next).expect("saved");
     assert_eq!(
-        std::fs::read(store_dir.join(TRUST_SET_FILE)).expect("stored"),
-        next.to_json(),
-        "the exact bytes of the accepted set"
+        stored_chain(&store_dir),
+        [String::from_utf8(next.to_json()).expect("utf-8")],
+        "the exact bytes of the accepted set, after the shipped one"
     );
-    assert_eq!(store.stored_trust_set_version().expect("readable"), Some(2));
+    let (newest, proven, ignored) = store.trust_chain(&v1).expect("readable");
+    assert_eq!((newest.version(), proven, ignored), (2, 1, None));
     // After a restart the app still ships version 1; the stored version 2 wins.
     let resumed = store.trust_set(&v1, at(NOW)).expect("resumed");
     assert_eq!(resumed.version(), 2);
@@ -121,9 +135,11 @@ fn issue5_the_store_keeps_the_newest_trust_set_and_refuses_older_ones() {
         "the revoked key stays revoked after a restart"
     );
     // Saving the same set again changes nothing; saving the older one is a rollback.
-    store.save_trust_set(&next).expect("idempotent");
+    store.save_trust_set(&v1, &next).expect("idempotent");
     let older = TrustSet::verify_initial(&v1, at(NOW)).expect("v1 alone is valid");
-    let e = store.save_trust_set(&older).expect_err("rollback of trust");
+    let e = store
+        .save_trust_set(&v1, &older)
+        .expect_err("rollback of trust");
     assert_eq!(e.kind(), ErrorKind::TrustSet);
     assert_eq!(
         e.to_string(),
@@ -140,7 +156,7 @@ fn issue5_the_store_keeps_the_newest_trust_set_and_refuses_older_ones() {
         .expect("a valid successor of version 1");
     assert_eq!(
         store
-            .save_trust_set(&other_v2)
+            .save_trust_set(&v1, &other_v2)
             .expect_err("same version, other content")
             .to_string(),
         format!(
@@ -150,9 +166,9 @@ fn issue5_the_store_keeps_the_newest_trust_set_and_refuses_older_ones() {
         )
     );
     assert_eq!(
-        std::fs::read(store_dir.join(TRUST_SET_FILE)).expect("stored"),
-        next.to_json(),
-        "refusals leave the stored set alone"
+        stored_chain(&store_dir),
+        [String::from_utf8(next.to_json()).expect("utf-8")],
+        "refusals leave the stored chain alone"
     );
     // No temporary file is left in the store directory.
     let names: Vec<String> = std::fs::read_dir(&store_dir)
@@ -165,72 +181,119 @@ fn issue5_the_store_keeps_the_newest_trust_set_and_refuses_older_ones() {
     );
 }
 
+/// Issue 10 item 1 changed issue 5's rule. A damaged chain used to be an error "never a
+/// reason to fall back to the shipped set"; but whoever can damage the file can delete the
+/// store, which falls back just as well, while the error locked the device out for good. Now
+/// the chain is believed exactly as far as each set is a successor of the one before, from the
+/// set shipped with the app; the rest is ignored, said, and dropped at the next rotation.
 #[test]
-fn issue5_a_tampered_stored_trust_set_is_an_error_not_a_fallback() {
+fn issue10_a_damaged_stored_trust_chain_is_believed_only_as_far_as_it_is_proven() {
     let (v1, v2) = v1_v2();
     let dir = tempfile::tempdir().expect("tempdir");
     let store_dir = dir.path().join("store");
     let trust = TrustSet::verify_initial(&v1, at(NOW)).expect("v1");
     let store = store_in(&store_dir, &trust);
-    store
-        .save_trust_set(&trust.accept_successor(&v2, at(NOW)).expect("v2"))
-        .expect("saved");
-    let path = store_dir.join(TRUST_SET_FILE);
+    let v2_set = trust.accept_successor(&v2, at(NOW)).expect("v2");
+    store.save_trust_set(&v1, &v2_set).expect("saved");
+    let path = store_dir.join(TRUST_CHAIN_FILE);
 
     // One changed hex digit in the first signature: that signature no longer verifies, and
     // the stored set falls below its own threshold of 2.
     let text = String::from_utf8(std::fs::read(&path).expect("stored")).expect("utf-8");
-    let at_sig = text.find("\"signature\": \"").expect("a signature") + 14;
+    let at_sig = text.find("\\\"signature\\\": \\\"").expect("a signature") + 18;
     let mut bytes = text.into_bytes();
     bytes[at_sig] = if bytes[at_sig] == b'0' { b'1' } else { b'0' };
     std::fs::write(&path, &bytes).expect("tamper");
     let mut signers = [id(&key(1)), id(&key(2))];
     signers.sort();
-    let e = Store::load_trust_set(&store_dir, &v1, at(NOW)).expect_err("tampered");
-    assert_eq!(e.kind(), ErrorKind::Store);
+    let loaded = Store::load_trust_set(&store_dir, &v1, at(NOW)).expect("the shipped set");
+    assert_eq!(loaded.version(), 1);
+    let (_, proven, ignored) = store.trust_chain(&v1).expect("readable");
+    assert_eq!(proven, 0);
     assert_eq!(
-        e.to_string(),
+        ignored.expect("said"),
         format!(
-            "{} is damaged or was changed outside ampoule-verify: trust set version 2 has 1 \
-             valid signature(s) by trusted keys but needs 2 (valid: {}; not matching this \
-             document: {})",
-            path.display(),
-            signers[1],
-            signers[0]
+            "set 1 of trust-chain.json is not a successor of trust set version 1: trust set \
+             version 2, counting the keys of trusted version 1, has 1 valid signature(s) by \
+             trusted keys but needs 2 (valid: {}; not matching this document: {})",
+            signers[1], signers[0]
         )
     );
-    // Saving over a damaged file is refused too: its version cannot be known.
+    // Saving the genuine set again replaces what was not proven.
+    store.save_trust_set(&v1, &v2_set).expect("saved again");
     assert_eq!(
-        store
-            .save_trust_set(&trust.accept_successor(&v2, at(NOW)).expect("v2"))
-            .expect_err("damaged")
-            .kind(),
-        ErrorKind::Store
+        Store::load_trust_set(&store_dir, &v1, at(NOW))
+            .expect("v2")
+            .version(),
+        2
     );
 
-    // Not JSON at all.
+    // Not a chain at all, or over the cap: ignored, and said.
     std::fs::write(&path, b"{\"trust_set\": 1}").expect("tamper");
     assert_eq!(
         Store::load_trust_set(&store_dir, &v1, at(NOW))
-            .expect_err("not a trust set")
-            .to_string(),
-        format!(
-            "{} is damaged or was changed outside ampoule-verify: trust-set file is not valid: \
-             invalid type: integer `1`, expected a string at line 1 column 15",
-            path.display()
-        )
+            .expect("v1")
+            .version(),
+        1
     );
-    // Over the cap: refused before it is parsed.
-    std::fs::write(&path, vec![b' '; 64 * 1024 + 1]).expect("tamper");
     assert_eq!(
-        Store::load_trust_set(&store_dir, &v1, at(NOW))
-            .expect_err("too large")
-            .to_string(),
-        format!(
-            "{} is damaged or was changed outside ampoule-verify: it is over 65536 bytes",
-            path.display()
-        )
+        store.trust_chain(&v1).expect("readable").2.expect("said"),
+        "trust-chain.json is not valid: unknown field `trust_set`, expected `format` or `sets` \
+         at line 1 column 12"
     );
+    std::fs::write(&path, vec![b' '; 64 * 1024 * 65 + 1]).expect("tamper");
+    assert_eq!(
+        store.trust_chain(&v1).expect("readable").2.expect("said"),
+        format!("trust-chain.json is over {} bytes", 64 * 1024 * 65)
+    );
+}
+
+/// Issue 10 item 1: a trust set written into the store and signed only by the writer's own
+/// key (valid on its own, a successor of nothing the device trusts) is not believed, in the
+/// chain file or in the one-set file stores used to keep.
+#[test]
+fn issue10_a_self_signed_trust_set_planted_in_the_store_is_not_believed() {
+    let (v1, _) = v1_v2();
+    let dir = tempfile::tempdir().expect("tempdir");
+    let store_dir = dir.path().join("store");
+    let trust = TrustSet::verify_initial(&v1, at(NOW)).expect("v1");
+    let store = store_in(&store_dir, &trust);
+    // Two keys of the writer's own, to meet the test sets' thresholds of 2.
+    let (mallory, mallet, runner) = (key(9), key(10), key(11));
+    let planted = trust_set(2, &[&mallory, &mallet], &[&runner], &[&mallory, &mallet]);
+    let planted_set = TrustSet::verify_initial(&planted, at(NOW)).expect("valid on its own");
+    assert_eq!(planted_set.version(), 2);
+    let planted_text = String::from_utf8(planted.clone()).expect("utf-8");
+    for (file, bytes) in [
+        (TRUST_SET_FILE, planted.clone()),
+        (
+            TRUST_CHAIN_FILE,
+            serde_json::to_vec(&serde_json::json!({"format": 1, "sets": [planted_text]}))
+                .expect("json"),
+        ),
+    ] {
+        std::fs::write(store_dir.join(file), &bytes).expect("plant");
+        let loaded = Store::load_trust_set(&store_dir, &v1, at(NOW)).expect("the shipped set");
+        assert_eq!(loaded.version(), 1, "{file}");
+        assert!(
+            loaded
+                .keys_for(DocumentKind::Bundle)
+                .0
+                .get(&id(&mallory))
+                .is_none(),
+            "{file}: the planted key is not trusted"
+        );
+        let ignored = store.trust_chain(&v1).expect("readable").2.expect("said");
+        assert!(
+            ignored.starts_with(&format!(
+                "set 1 of {file} is not a successor of trust set version 1: trust set version \
+                 2, counting the keys of trusted version 1, has 0 valid signature(s) by trusted \
+                 keys but needs"
+            )),
+            "{ignored}"
+        );
+        std::fs::remove_file(store_dir.join(file)).expect("clean");
+    }
 }
 
 #[test]

@@ -8,6 +8,7 @@
 
 use std::fmt;
 use std::fs::File;
+use std::io::{self, Read, Seek, SeekFrom};
 use std::path::Path;
 
 use semver::Version;
@@ -220,6 +221,48 @@ impl Verifier {
             compatibility: self.compatibility.clone(),
             progress: self.progress.clone(),
         })
+    }
+
+    /// Checks the head of a bundle still being downloaded (the first bytes of `file`, at most
+    /// [`crate::format::limit::HEAD_BYTES`]): the manifest's signatures and the app's policy,
+    /// as [`Verifier::verify_file`] checks them, and that the payload's tar header states the
+    /// payload size the signed manifest declares. Returns the manifest and the bundle's exact
+    /// length, which the bundle signers thereby fixed: a feed that states another size is not
+    /// telling the truth about this bundle.
+    pub(crate) fn check_head(&self, file: &mut File) -> Result<(Manifest, u64)> {
+        file.seek(SeekFrom::Start(0))
+            .map_err(|e| Error::io("cannot read the bundle's head", e))?;
+        let head = bundle::read_head(&mut io::BufReader::new(
+            Read::take(&mut *file, crate::format::limit::HEAD_BYTES),
+        ))?;
+        let signatures = Signatures::from_json(&head.signatures)?;
+        SignedDocument::<kind::Manifest>::new(&head.manifest, &signatures.signatures)?
+            .check(&self.signers, "bundle")?;
+        let manifest = Manifest::from_json(&head.manifest)?;
+        self.check_policy(&manifest, true)?;
+        if head.payload_len != manifest.payload.size {
+            return Err(Error::new(
+                ErrorKind::Malformed,
+                format!(
+                    "bundle's payload entry is {} bytes but its signed manifest declares {}",
+                    head.payload_len, manifest.payload.size
+                ),
+            ));
+        }
+        let len = head.bundle_len().ok_or_else(|| {
+            Error::new(ErrorKind::Malformed, "bundle's length overflows a 64-bit count")
+        })?;
+        if len > self.max_bundle_bytes {
+            return Err(Error::new(
+                ErrorKind::TooLarge,
+                format!(
+                    "bundle is {len} bytes by its signed manifest, over this app's limit of {} \
+                     bytes",
+                    self.max_bundle_bytes
+                ),
+            ));
+        }
+        Ok((manifest, len))
     }
 
     /// Re-checks a manifest and its signatures kept in the on-device store: the same

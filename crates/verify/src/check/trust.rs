@@ -489,6 +489,15 @@ impl TrustSet {
     /// at `now`. This set may itself have expired. The device then stores the new set's
     /// [`TrustSet::to_json`] bytes and uses the new set from then on.
     pub fn accept_successor(&self, bytes: &[u8], now: Timestamp) -> Result<TrustSet> {
+        let next = self.successor_of_any_age(bytes)?;
+        next.file.check_expiry(now)?;
+        Ok(next)
+    }
+
+    /// [`TrustSet::accept_successor`] without the expiry check: for re-checking a chain of
+    /// sets the device accepted one by one, each when it was current. The newest set's expiry
+    /// is the caller's to check.
+    pub(crate) fn successor_of_any_age(&self, bytes: &[u8]) -> Result<TrustSet> {
         let next = TrustSetFile::from_json(bytes)?;
         let (new, old) = (next.version(), self.version());
         if new <= old {
@@ -505,7 +514,6 @@ impl TrustSet {
         // A key the new set adds takes effect only if its holders signed too.
         let report =
             next.check_own_signatures(&format!("trust set version {new}, counting its own keys,"))?;
-        next.check_expiry(now)?;
         Ok(TrustSet { file: next, report })
     }
 

@@ -46,6 +46,50 @@ fn read_small<R: Read>(reader: &mut R, name: &str, size: u64, cap: u64) -> Resul
     Ok(data)
 }
 
+/// A bundle's head: everything before the payload's bytes, at most [`limit::HEAD_BYTES`].
+#[derive(Debug, Clone)]
+pub struct Head {
+    /// The manifest's exact bytes, as signed.
+    pub manifest: Vec<u8>,
+    /// The signatures document's bytes.
+    pub signatures: Vec<u8>,
+    /// The payload's offset in the file.
+    pub payload_offset: u64,
+    /// The payload's size in bytes, as its tar header states it.
+    pub payload_len: u64,
+}
+
+impl Head {
+    /// The whole bundle's exact length: the head, the payload and its padding, and the
+    /// end-of-archive blocks. Once the manifest's signatures are checked and its payload size
+    /// equals [`Head::payload_len`], this is a length the bundle signers fixed.
+    pub fn bundle_len(&self) -> Option<u64> {
+        self.payload_offset
+            .checked_add(self.payload_len)?
+            .checked_add(tar::padding(self.payload_len))?
+            .checked_add(tar::END_OF_ARCHIVE.len() as u64)
+    }
+}
+
+/// Reads a bundle's head from the start of `reader`: the fixed entry order, the headers, the
+/// caps on the small entries and their padding, and the payload's header. Nothing after it
+/// is read, so the head of a bundle still downloading can be checked.
+pub fn read_head<R: Read>(reader: &mut R) -> Result<Head> {
+    let order = &entry::OUTER;
+    let size = tar::expect_entry(reader, ARCHIVE, order, 0)?;
+    let manifest = read_small(reader, entry::MANIFEST, size, limit::MANIFEST_BYTES)?;
+    let size = tar::expect_entry(reader, ARCHIVE, order, 1)?;
+    let signatures = read_small(reader, entry::SIGNATURES, size, limit::SIGNATURES_BYTES)?;
+    let payload_len = tar::expect_entry(reader, ARCHIVE, order, 2)?;
+    let payload_offset = payload_offset(manifest.len() as u64, signatures.len() as u64);
+    Ok(Head {
+        manifest,
+        signatures,
+        payload_offset,
+        payload_len,
+    })
+}
+
 /// Reads the layout of an open bundle file of `file_len` bytes, checking the fixed entry
 /// order, every header, the caps on the small entries, the padding and that nothing follows
 /// the end-of-archive marker. The payload itself is not read.
@@ -53,18 +97,12 @@ pub fn read_layout(file: &mut File, file_len: u64) -> Result<Layout> {
     file.seek(SeekFrom::Start(0))
         .map_err(|e| Error::io("cannot read the bundle", e))?;
     let mut reader = io::BufReader::with_capacity(8 * 1024, &mut *file);
-    let order = &entry::OUTER;
-    let size = tar::expect_entry(&mut reader, ARCHIVE, order, 0)?;
-    let manifest = read_small(&mut reader, entry::MANIFEST, size, limit::MANIFEST_BYTES)?;
-    let size = tar::expect_entry(&mut reader, ARCHIVE, order, 1)?;
-    let signatures = read_small(
-        &mut reader,
-        entry::SIGNATURES,
-        size,
-        limit::SIGNATURES_BYTES,
-    )?;
-    let payload_len = tar::expect_entry(&mut reader, ARCHIVE, order, 2)?;
-    let payload_offset = payload_offset(manifest.len() as u64, signatures.len() as u64);
+    let Head {
+        manifest,
+        signatures,
+        payload_offset,
+        payload_len,
+    } = read_head(&mut reader)?;
     drop(reader);
     let needed = payload_offset
         .checked_add(payload_len + tar::padding(payload_len))

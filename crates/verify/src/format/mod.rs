@@ -19,6 +19,9 @@ pub mod signature;
 pub mod signed;
 pub mod tar;
 pub mod time;
+// Generated tables (crates/verify/tools/unicode_tables.py), kept as written.
+#[rustfmt::skip]
+pub mod unicode;
 
 /// The format version written into every manifest; a reader refuses any other value.
 pub const FORMAT_VERSION: u32 = 1;
@@ -52,6 +55,11 @@ pub mod limit {
     pub const MANIFEST_BYTES: u64 = 64 * 1024;
     /// The signatures document's largest size in bytes.
     pub const SIGNATURES_BYTES: u64 = 64 * 1024;
+    /// The most bytes before a bundle's payload: three 512-byte tar headers and the two small
+    /// entries at their caps (129.5 KiB). A device downloads and checks this head (manifest,
+    /// signatures, policy, and the bundle's exact size, which follows from them) before it
+    /// asks for the payload (issue 10).
+    pub const HEAD_BYTES: u64 = 3 * 512 + MANIFEST_BYTES + SIGNATURES_BYTES;
     /// The most signatures one bundle may carry.
     pub const SIGNATURES: usize = 32;
     /// The zstd window the decoder accepts, as a power of two: 2^23 bytes = 8 MiB.

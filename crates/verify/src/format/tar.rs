@@ -121,6 +121,20 @@ pub(crate) fn shown(bytes: &[u8]) -> String {
         .to_string()
 }
 
+/// The header checksum: the byte sum with the checksum field read as spaces.
+fn checksum(h: &[u8; 512]) -> u64 {
+    h.iter()
+        .enumerate()
+        .map(|(i, &b)| u64::from(if (148..156).contains(&i) { b' ' } else { b }))
+        .sum()
+}
+
+/// Whether a block is a tar header at all (its checksum field matches), as opposed to stray
+/// bytes.
+fn has_valid_checksum(h: &[u8; 512]) -> bool {
+    parse_octal(&h[148..156]) == Some(checksum(h))
+}
+
 /// What a header block holds, once checked.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub enum Block {
@@ -165,14 +179,7 @@ pub(crate) fn parse_header_with(h: &[u8; 512], archive: &str, names: Names) -> R
             "{archive} entry '{name}' has an unreadable tar checksum"
         ))
     })?;
-    let mut sum: u64 = 0;
-    for (i, &b) in h.iter().enumerate() {
-        sum += if (148..156).contains(&i) {
-            u64::from(b' ')
-        } else {
-            u64::from(b)
-        };
-    }
+    let sum = checksum(h);
     if stored != sum {
         return Err(malformed(format!(
             "{archive} entry '{name}' has a bad tar header checksum (stored {stored:o}, computed {sum:o}): \
@@ -294,12 +301,36 @@ pub(crate) fn read_padding<R: Read>(
 }
 
 /// Reads the end-of-archive marker and checks that nothing follows it.
+///
+/// A header where the marker belongs is named with its own refusal (a pax header, a GNU long
+/// name, a directory, a link) or as an extra entry, whatever its size.
 pub(crate) fn read_end<R: Read>(reader: &mut R, archive: &str) -> Result<()> {
-    let mut end = [0u8; 1024];
-    read_exact_or_truncated(reader, &mut end, || {
+    let mut first = [0u8; 512];
+    read_exact_or_truncated(reader, &mut first, || {
         format!("{archive} end-of-archive marker")
     })?;
-    if end != END_OF_ARCHIVE {
+    if first != [0u8; 512] && !has_valid_checksum(&first) {
+        return Err(Error::new(
+            ErrorKind::Malformed,
+            format!(
+                "{archive} has an unexpected extra entry or bytes where the end-of-archive marker belongs"
+            ),
+        ));
+    }
+    if let Block::File { name, .. } = parse_header(&first, archive)? {
+        return Err(Error::new(
+            ErrorKind::Malformed,
+            format!(
+                "{archive} has an extra entry '{}' after its last declared entry",
+                shown(name.as_bytes())
+            ),
+        ));
+    }
+    let mut second = [0u8; 512];
+    read_exact_or_truncated(reader, &mut second, || {
+        format!("{archive} end-of-archive marker")
+    })?;
+    if second != [0u8; 512] {
         return Err(Error::new(
             ErrorKind::Malformed,
             format!(

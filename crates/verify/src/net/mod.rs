@@ -243,14 +243,31 @@ impl Session {
     /// Sends a GET and waits for the response headers. Refuses anything but 2xx, naming the
     /// status; a 3xx is reported with where it pointed and not followed.
     async fn get(&self, url: &str, from: u64, deadline: Instant) -> Result<Response<Incoming>> {
+        self.get_range(url, from, None, deadline).await
+    }
+
+    /// GET from byte `from` up to byte `last` (inclusive) when given, else to the end.
+    async fn get_range(
+        &self,
+        url: &str,
+        from: u64,
+        last: Option<u64>,
+        deadline: Instant,
+    ) -> Result<Response<Incoming>> {
         self.transfer.cancelled(url)?;
         let uri = parse_url(url)?;
         let mut request = Request::get(uri).header(
             header::USER_AGENT,
             concat!("ampoule-verify/", env!("CARGO_PKG_VERSION")),
         );
-        if from > 0 {
-            request = request.header(header::RANGE, format!("bytes={from}-"));
+        match last {
+            Some(last) => {
+                request = request.header(header::RANGE, format!("bytes={from}-{last}"));
+            }
+            None if from > 0 => {
+                request = request.header(header::RANGE, format!("bytes={from}-"));
+            }
+            None => {}
         }
         let request = request
             .body(Empty::new())
@@ -537,12 +554,13 @@ impl Session {
         path: &Path,
         size: u64,
         sha256: &Digest,
+        earlier: u64,
     ) -> Result<()> {
         let io = |doing: &str, e| Error::io(format!("cannot {doing} {}", path.display()), e);
         let (mut have, mut hasher) = resume_state(file, path, size)?;
         // How many of the bytes hashed below were kept from an earlier try rather than sent
         // by `url` now: a digest mismatch names both sources.
-        let mut kept = have;
+        let mut kept = have.min(earlier);
         if have < size || size == 0 {
             let deadline = Instant::now() + self.transfer.total_timeout;
             let response = self.get(url, have, deadline).await?;
@@ -579,54 +597,53 @@ impl Session {
                 }
             }
             let remaining = size - have;
+            // A length other than the signed one, larger or smaller, is the server's fault
+            // (exit 2, kind network), not the release's: the feed and bundle may be fine.
             if let Some(len) = declared
                 && len != remaining
             {
-                let kind = if len > remaining {
-                    ErrorKind::TooLarge
-                } else {
-                    ErrorKind::Network
-                };
-                return Err(Error::new(
-                    kind,
-                    format!(
-                        "server declares {len} bytes for {url}, but {remaining} of the {size} \
-                             bytes the feed signed were expected"
-                    ),
-                ));
+                return Err(network(format!(
+                    "server declares {len} bytes for {url}, but {remaining} of the {size} \
+                     bytes the feed signed were expected"
+                )));
             }
             file.seek(SeekFrom::Start(have))
                 .map_err(|e| io("seek in", e))?;
             let start = have;
-            kept = have;
+            kept = have.min(earlier);
+            let mut overrun = false;
             // Plain blocking writes: this runtime runs nothing else, and a local disk keeps up
             // with any network a device has.
-            let result = read_body(&self.transfer, url, response.into_body(), deadline, |data| {
-                if have + data.len() as u64 > size {
-                    return Err(Error::new(
-                        ErrorKind::TooLarge,
-                        format!(
+            let result = read_body(
+                &self.transfer,
+                url,
+                response.into_body(),
+                deadline,
+                |data| {
+                    if have + data.len() as u64 > size {
+                        overrun = true;
+                        return Err(network(format!(
                             "server sent more than the {size} bytes the feed declares for {url}; \
-                             stopped reading"
-                        ),
-                    ));
-                }
-                file.write_all(data).map_err(|e| io("write", e))?;
-                hasher.update(data);
-                have += data.len() as u64;
-                if let Some(progress) = &self.transfer.progress {
-                    progress(Progress {
-                        stage: Stage::Download,
-                        done: have,
-                        total: size,
-                    });
-                }
-                Ok(())
-            })
+                         stopped reading"
+                        )));
+                    }
+                    file.write_all(data).map_err(|e| io("write", e))?;
+                    hasher.update(data);
+                    have += data.len() as u64;
+                    if let Some(progress) = &self.transfer.progress {
+                        progress(Progress {
+                            stage: Stage::Download,
+                            done: have,
+                            total: size,
+                        });
+                    }
+                    Ok(())
+                },
+            )
             .await;
             file.sync_data().map_err(|e| io("flush", e))?;
             match result {
-                Err(BodyError::Refused(e)) if e.kind() == ErrorKind::TooLarge => {
+                Err(BodyError::Refused(e)) if overrun => {
                     // Nothing this server sent can be trusted as a prefix.
                     file.set_len(0).map_err(|e| io("truncate", e))?;
                     return Err(e);
@@ -684,12 +701,17 @@ impl Session {
 /// tried again while its tries make progress. On success the file holds exactly the expected
 /// bytes. A failure keeps a correct-looking prefix for the next call, and empties the file
 /// when the bytes were proven wrong (digest) or too many.
+///
+/// `earlier` says how many of the bytes already in the file came from an earlier update (the
+/// rest, if any, is the bundle's head fetched from these URLs just now): a digest mismatch
+/// names the kept bytes as a source of their own only then.
 pub fn download_into(
     urls: &[String],
     file: &mut File,
     partial: &Path,
     size: u64,
     sha256: &Digest,
+    earlier: u64,
     transfer: &Transfer,
 ) -> Result<()> {
     if urls.is_empty() {
@@ -702,7 +724,7 @@ pub fn download_into(
             let before = file.metadata().map(|m| m.len()).unwrap_or(0);
             let result = session
                 .runtime
-                .block_on(session.download_once(url, file, partial, size, sha256));
+                .block_on(session.download_once(url, file, partial, size, sha256, earlier));
             let err = match result {
                 Ok(()) => return Ok(()),
                 Err(e) => e,
@@ -730,6 +752,95 @@ pub fn download_into(
     ))
 }
 
+/// Makes `file` (named `partial` in messages) hold the first `upto` bytes of the file of
+/// `size` bytes at the first of `urls` that works: the bundle's head, which the session checks
+/// before it asks for the payload. Bytes already there are kept; the rest is asked for with a
+/// Range request, and a server that ignores it is read only up to `upto`. Nothing is written
+/// past `upto`.
+pub fn download_head(
+    urls: &[String],
+    file: &mut File,
+    partial: &Path,
+    upto: u64,
+    size: u64,
+    transfer: &Transfer,
+) -> Result<()> {
+    let io = |doing: &str, e| Error::io(format!("cannot {doing} {}", partial.display()), e);
+    let have = file
+        .metadata()
+        .map_err(|e| io("read the size of", e))?
+        .len();
+    if have >= upto {
+        return Ok(());
+    }
+    let Some(url) = urls.first() else {
+        return Err(network("no URL to download from".into()));
+    };
+    let session = Session::new(transfer)?;
+    session.runtime.block_on(async {
+        let deadline = Instant::now() + transfer.total_timeout;
+        let response = session
+            .get_range(url, have, Some(upto - 1), deadline)
+            .await?;
+        let mut have = have;
+        match response.status() {
+            StatusCode::PARTIAL_CONTENT => {
+                let expected = format!("bytes {have}-{}/{size}", upto - 1);
+                let got = response
+                    .headers()
+                    .get(header::CONTENT_RANGE)
+                    .map(|v| String::from_utf8_lossy(v.as_bytes()).into_owned())
+                    .unwrap_or_default();
+                if got != expected {
+                    return Err(network(format!(
+                        "server answered 206 Partial Content for {url} with Content-Range \
+                         '{}', but '{expected}' was asked for",
+                        got.chars().take(100).collect::<String>().escape_debug()
+                    )));
+                }
+            }
+            StatusCode::OK => {
+                // The whole file comes: keep only its first `upto` bytes.
+                file.set_len(0).map_err(|e| io("truncate", e))?;
+                have = 0;
+            }
+            other => {
+                return Err(network(format!(
+                    "server answered {} for {url}; expected 200 OK or 206 Partial Content",
+                    shown_status(other)
+                )));
+            }
+        }
+        file.seek(SeekFrom::Start(have))
+            .map_err(|e| io("seek in", e))?;
+        let mut enough = false;
+        let result = read_body(transfer, url, response.into_body(), deadline, |data| {
+            let room = (upto - have).min(data.len() as u64) as usize;
+            file.write_all(&data[..room]).map_err(|e| io("write", e))?;
+            have += room as u64;
+            if have == upto {
+                // Stop reading: the rest is the payload, asked for once the head passed.
+                enough = true;
+                return Err(Error::new(ErrorKind::Cancelled, "the head is complete"));
+            }
+            Ok(())
+        })
+        .await;
+        file.sync_data().map_err(|e| io("flush", e))?;
+        match result {
+            _ if enough => Ok(()),
+            Err(BodyError::Refused(e)) => Err(e),
+            Err(BodyError::Broken(why)) => Err(network(format!(
+                "transfer of the bundle's head from {url} broke off after {have} of {upto} \
+                 bytes: {why}"
+            ))),
+            Ok(()) => Err(network(format!(
+                "transfer of the bundle's head from {url} ended after {have} of {upto} bytes"
+            ))),
+        }
+    })
+}
+
 /// [`download_into`] the file at `partial`, opened (or created) by path: for the release
 /// side's tools and tests, which name their own files. A device's store opens its partial
 /// downloads without following links instead (`Download::file`).
@@ -747,7 +858,7 @@ pub fn download(
         .truncate(false)
         .open(partial)
         .map_err(|e| Error::io(format!("cannot open {}", partial.display()), e))?;
-    download_into(urls, &mut file, partial, size, sha256, transfer)
+    download_into(urls, &mut file, partial, size, sha256, u64::MAX, transfer)
 }
 
 /// What one update check found. The device stores the feed's sequence and digest

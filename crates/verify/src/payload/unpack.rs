@@ -207,6 +207,14 @@ fn decode(
             }
             total += filled as u64;
             if total > tar_len {
+                // The declared bytes go to the reader first: what they hold (a pax header, a
+                // GNU long name, a directory entry, an extra file) is the real cause, and the
+                // reader names it before it reaches this error.
+                let excess = usize::try_from(total - tar_len).unwrap_or(usize::MAX);
+                buf.truncate(filled.saturating_sub(excess));
+                if !buf.is_empty() && out.send(Ok(buf)).is_err() {
+                    return Ok(());
+                }
                 return Err(Error::new(
                     ErrorKind::TooLarge,
                     format!(

@@ -60,14 +60,19 @@
 //!
 //! # Trust set
 //!
-//! An app that runs on a trust set keeps the newest set it accepted in `trust-set.json`, the
-//! exact bytes of [`TrustSet::to_json`], replaced atomically (temporary file, fsync, rename,
-//! fsync of the directory) under the updaters' lock by [`Store::save_trust_set`]. Its version
-//! is the highest trust-set version the device accepted: saving an older one is refused, and
-//! [`Store::trust_set`] takes the newer of it and the set shipped with the app. The file is
+//! An app that runs on a trust set keeps every set it accepted after the one shipped with the
+//! app in `trust-chain.json`, oldest first, each the exact bytes of [`TrustSet::to_json`],
+//! replaced atomically (temporary file, fsync, rename, fsync of the directory) under the
+//! updaters' lock by [`Store::save_trust_set`]. Whoever can write the store can write this
+//! file, so it is believed only as far as it proves itself: from the shipped set, each stored
+//! set must be a successor of the one before (signed by that one's trust-set threshold and by
+//! its own). The first that is not is ignored with everything after it (issue 10: a set
+//! planted in the store, signed by its writer's own keys, used to be believed). Falling back to
+//! an older set is what deleting the store would do too; the feed then names the newer set
+//! again and the device rotates once more. Saving an older version is refused. The file is
 //! one atomic unit of its own, apart from `state.json`, so a crash leaves the old or the new
-//! set. A damaged file (a changed byte breaks its signatures or its JSON) is an error, never a
-//! reason to fall back to the shipped set, which could bring revoked keys back.
+//! chain. Stores written before the chain kept the newest set alone in `trust-set.json`,
+//! which is read as a chain of one.
 //!
 //! # Limits of what a store can detect
 //!
@@ -95,7 +100,7 @@ use crate::format::keys::KeyId;
 use crate::format::manifest::{Manifest, Role};
 use crate::format::merkle::TreeHead;
 use crate::format::time::Timestamp;
-use crate::check::trust::TrustSet;
+use crate::check::trust::{TrustSet, TrustSetFile};
 use crate::dir::{Dir, Found, Refused};
 use crate::payload::unpack::{Staging, sync_dir};
 use crate::check::bundle::{VerifiedBundle, Verifier};
@@ -111,10 +116,23 @@ pub const STATE_FILE: &str = "state.json";
 pub const LOCK_FILE: &str = "lock";
 /// The directory holding the releases.
 pub const RELEASES_DIR: &str = "releases";
-/// The file holding the newest trust set the device accepted.
+/// The file in which stores written before issue 10 kept the newest trust set they accepted;
+/// read as a chain of one set, and replaced by [`TRUST_CHAIN_FILE`] at the next rotation.
 pub const TRUST_SET_FILE: &str = "trust-set.json";
+/// The file holding every trust set the device accepted after the one shipped with the app.
+pub const TRUST_CHAIN_FILE: &str = "trust-chain.json";
+/// The format of [`TRUST_CHAIN_FILE`].
+const TRUST_CHAIN_FORMAT: u32 = 1;
+/// The most trust sets a store keeps after the one shipped with the app.
+pub const MAX_TRUST_CHAIN: usize = 64;
 /// The most channels a store remembers.
 pub const MAX_CHANNELS: usize = 64;
+/// The directory where bundles download (and resume) before install; the update's.
+pub const DOWNLOADS_DIR: &str = "downloads";
+/// The lock file in [`DOWNLOADS_DIR`], held for a whole update.
+pub const DOWNLOAD_LOCK: &str = "lock";
+/// The refusal the update remembers, in [`DOWNLOADS_DIR`].
+pub const REFUSED_FILE: &str = "refused.json";
 /// The most planted entries one run notes (and `state.json` lists) as removed.
 pub const MAX_REMOVED_NOTES: usize = 16;
 
@@ -863,11 +881,60 @@ impl Store {
     /// Removes every release that is neither current nor previous, and whatever crashed
     /// updates left behind (staging directories, temporary state files). Returns what was
     /// removed. Every update does this first as well.
+    ///
+    /// Downloads are removed too (partial downloads and a remembered refusal), unless an update
+    /// holds the download lock.
     pub fn gc(&self) -> Result<Vec<PathBuf>> {
         let _lock = self.lock()?;
         let root = self.root()?;
         let state = self.state_in(&root)?;
-        self.sweep(&root, &state)
+        let mut removed = self.sweep(&root, &state)?;
+        if root.found(DOWNLOADS_DIR).ok().flatten() == Some(Found::Dir) {
+            let downloads = self.downloads(&root)?;
+            let lock = open_own_file(&downloads, DOWNLOAD_LOCK, &mut |what| {
+                self.note_removed(what)
+            })?;
+            if lock.try_lock().is_ok() {
+                removed.extend(self.sweep_downloads(&downloads, None, false));
+            }
+        }
+        removed.sort();
+        Ok(removed)
+    }
+
+    /// `downloads/`, opened without following a link (something else at its name is removed
+    /// and noted).
+    pub(crate) fn downloads(&self, root: &Dir) -> Result<Dir> {
+        open_own_dir(root, DOWNLOADS_DIR, &mut |what| self.note_removed(what))
+    }
+
+    /// Removes everything in the download directory `dir` but its lock, `keep` (the download
+    /// in progress) and, when `keep_refusal`, the remembered refusal: partial downloads of
+    /// releases no feed offers any more would otherwise stay for good. Links are unlinked,
+    /// never followed. Best effort: what cannot be removed now is tried again next time.
+    /// The caller holds the download lock.
+    pub(crate) fn sweep_downloads(
+        &self,
+        dir: &Dir,
+        keep: Option<&str>,
+        keep_refusal: bool,
+    ) -> Vec<PathBuf> {
+        let Ok(entries) = dir.list() else {
+            return Vec::new();
+        };
+        let mut removed = Vec::new();
+        for name in entries {
+            if name == DOWNLOAD_LOCK
+                || (keep_refusal && name == REFUSED_FILE)
+                || keep.is_some_and(|k| name == k)
+            {
+                continue;
+            }
+            if dir.remove(&name).is_ok() {
+                removed.push(dir.join(&name));
+            }
+        }
+        removed
     }
 
     /// What this handle removed because the store's own code could not have put it there
@@ -891,7 +958,7 @@ impl Store {
     /// verifier from the result before it opens the store. A damaged `trust-set.json` is an
     /// error; an expired set is an error too, and [`Store::renew_trust_set`] replaces it.
     pub fn load_trust_set(dir: &Path, initial: &[u8], now: Timestamp) -> Result<TrustSet> {
-        let set = newest_trust_set(dir, initial)?;
+        let set = TrustChain::read(dir, initial)?.newest;
         set.file().check_expiry(now)?;
         Ok(set)
     }
@@ -901,51 +968,80 @@ impl Store {
         Self::load_trust_set(&self.dir, initial, now)
     }
 
-    /// The version of the trust set in `trust-set.json`, the highest this store accepted;
-    /// `None` if the device never stored one.
-    pub fn stored_trust_set_version(&self) -> Result<Option<u64>> {
-        Ok(read_stored_trust_set(&self.dir)?.map(|set| set.version()))
+    /// The trust chain as the store holds it, checked from `initial`: the newest set it
+    /// proves, how many stored sets it proves, and why the rest (if any) is not believed.
+    pub fn trust_chain(&self, initial: &[u8]) -> Result<(TrustSet, usize, Option<String>)> {
+        let chain = TrustChain::read(&self.dir, initial)?;
+        Ok((chain.newest, chain.sets.len(), chain.ignored))
     }
 
-    /// Stores `trust` as the newest trust set the device accepted, under the updaters' lock,
-    /// replacing `trust-set.json` atomically. Refuses a version lower than the stored one (a
-    /// rollback of trust), and an equal version with other content; saving the stored set
-    /// again changes nothing.
-    pub fn save_trust_set(&self, trust: &TrustSet) -> Result<()> {
+    /// Stores `trust` as the newest trust set the device accepted, under the updaters' lock:
+    /// appended to the chain of sets that leads to it from `initial` (the set shipped with the
+    /// app), replaced atomically. `trust` must be a successor of the newest set the chain
+    /// proves; anything stored that the chain does not prove is dropped. Refuses a version
+    /// lower than the newest (a rollback of trust), and an equal version with other content;
+    /// saving the newest set again changes nothing.
+    pub fn save_trust_set(&self, initial: &[u8], trust: &TrustSet) -> Result<()> {
         let _lock = self.lock()?;
-        let bytes = trust.to_json();
-        if let Some(stored) = read_stored_trust_set(&self.dir)? {
-            let (new, old) = (trust.version(), stored.version());
-            if new == old && stored.to_json() == bytes {
-                return Ok(());
-            }
-            if new <= old {
-                return Err(Error::new(
-                    ErrorKind::TrustSet,
-                    format!(
-                        "trust set version {new} is not newer than version {old}, the highest \
-                         store {} accepted; refusing to roll trust back",
-                        self.dir.display()
-                    ),
-                ));
-            }
+        let chain = TrustChain::read(&self.dir, initial)?;
+        let (new, old) = (trust.version(), chain.newest.version());
+        if new == old && chain.newest.to_json() == trust.to_json() {
+            return Ok(());
         }
+        if new <= old {
+            return Err(Error::new(
+                ErrorKind::TrustSet,
+                format!(
+                    "trust set version {new} is not newer than version {old}, the highest \
+                     store {} accepted; refusing to roll trust back",
+                    self.dir.display()
+                ),
+            ));
+        }
+        // The chain only ever holds successors: re-check this one against the newest.
+        let text = String::from_utf8(trust.to_json())
+            .map_err(|_| Error::new(ErrorKind::TrustSet, "trust set is not UTF-8"))?;
+        chain
+            .newest
+            .successor_of_any_age(text.as_bytes())
+            .map_err(|e| e.context("the trust set to store does not follow the chain"))?;
+        let mut sets = chain.sets;
+        if sets.len() >= MAX_TRUST_CHAIN {
+            return Err(Error::new(
+                ErrorKind::TrustSet,
+                format!(
+                    "store {} already holds {MAX_TRUST_CHAIN} trust sets after the one shipped \
+                     with the app; ship a newer trust set with the app",
+                    self.dir.display()
+                ),
+            ));
+        }
+        sets.push(text);
+        let bytes = serde_json::to_vec(&StoredChain {
+            format: TRUST_CHAIN_FORMAT,
+            sets,
+        })
+        .map_err(|e| Error::new(ErrorKind::TrustSet, format!("cannot write the chain: {e}")))?;
         let root = self.root()?;
-        replace_file(&root, TRUST_SET_FILE, TRUST_SET_TEMP_PREFIX, &bytes, &mut |_| Ok(()))?;
+        replace_file(&root, TRUST_CHAIN_FILE, TRUST_SET_TEMP_PREFIX, &bytes, &mut |_| Ok(()))?;
+        // The one-set file of earlier versions is in the chain now.
+        let _ = root.remove(TRUST_SET_FILE);
         sync_dir(&root)
     }
 
     /// For a device whose trust set expired while it was offline: accepts `successor` as the
-    /// successor of the newest of `initial` and the stored set (whose keys may authorise it
-    /// although expired, see [`TrustSet::renew`]), stores it, and returns it.
+    /// successor of the newest set the store's chain proves from `initial` (whose keys may
+    /// authorise it although expired, see [`TrustSet::renew`]), stores it, and returns it.
     pub fn renew_trust_set(
         &self,
         initial: &[u8],
         successor: &[u8],
         now: Timestamp,
     ) -> Result<TrustSet> {
-        let next = newest_trust_set(&self.dir, initial)?.accept_successor(successor, now)?;
-        self.save_trust_set(&next)?;
+        let next = TrustChain::read(&self.dir, initial)?
+            .newest
+            .accept_successor(successor, now)?;
+        self.save_trust_set(initial, &next)?;
         Ok(next)
     }
 
@@ -1333,57 +1429,117 @@ impl Store {
     }
 }
 
-/// Reads `trust-set.json` in `dir` and checks it against its own threshold; `None` if there
-/// is none. Every failure names the file.
-fn read_stored_trust_set(dir: &Path) -> Result<Option<TrustSet>> {
-    let path = dir.join(TRUST_SET_FILE);
-    let root = match Dir::open_root(dir, false) {
-        Ok(root) => root,
-        // No store yet: no stored set.
-        Err(e) if e.kind() == io::ErrorKind::NotFound => return Ok(None),
-        Err(e) => return Err(Error::io(format!("cannot open store {}", dir.display()), e)),
-    };
-    let damaged = |why: String| {
-        Error::new(
-            ErrorKind::Store,
-            format!(
-                "{} is damaged or was changed outside ampoule-verify: {why}",
-                path.display()
-            ),
-        )
-    };
-    let bytes = match read_capped(&root, TRUST_SET_FILE, trust_set::MAX_BYTES) {
-        Ok(bytes) => bytes,
-        Err(ReadCapped::Missing) => return Ok(None),
-        Err(ReadCapped::Planted(why)) => {
-            return Err(damaged(format!(
-                "{why}; remove it (the device then runs on the trust set shipped with the app \
-                 until a feed names a newer one)"
-            )));
-        }
-        Err(ReadCapped::TooLarge) => {
-            return Err(damaged(format!(
-                "it is over {} bytes",
-                trust_set::MAX_BYTES
-            )));
-        }
-        Err(ReadCapped::Io(e)) => {
-            return Err(Error::io(format!("cannot read {}", path.display()), e));
-        }
-    };
-    TrustSet::self_signed(&bytes)
-        .map(Some)
-        .map_err(|e| damaged(e.to_string()))
+/// `trust-chain.json`: every trust set the device accepted after the one shipped with the
+/// app, oldest first, each the exact text of [`TrustSet::to_json`].
+#[derive(Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct StoredChain {
+    format: u32,
+    sets: Vec<String>,
 }
 
-/// The newer of the shipped trust set and the stored one, expiry not checked.
-fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
-    let initial = TrustSet::self_signed(initial)
-        .map_err(|e| e.context("the trust set shipped with the app"))?;
-    Ok(match read_stored_trust_set(dir)? {
-        Some(stored) if stored.version() > initial.version() => stored,
-        _ => initial,
-    })
+/// The stored trust sets, believed only as far as each is the successor of the one before,
+/// starting from the set shipped with the app (issue 10: a set planted in the store, signed by
+/// anyone else, is not believed).
+struct TrustChain {
+    /// The newest set the chain proves (the shipped set when it proves none).
+    newest: TrustSet,
+    /// The texts of the stored sets it proves, oldest first, newer than the shipped set.
+    sets: Vec<String>,
+    /// Why the stored sets after those are not believed, if any are not.
+    ignored: Option<String>,
+}
+
+impl TrustChain {
+    fn read(dir: &Path, initial: &[u8]) -> Result<TrustChain> {
+        let shipped = TrustSet::self_signed(initial)
+            .map_err(|e| e.context("the trust set shipped with the app"))?;
+        let mut chain = TrustChain {
+            newest: shipped,
+            sets: Vec::new(),
+            ignored: None,
+        };
+        let root = match Dir::open_root(dir, false) {
+            Ok(root) => root,
+            // No store yet: no stored sets.
+            Err(e) if e.kind() == io::ErrorKind::NotFound => return Ok(chain),
+            Err(e) => return Err(Error::io(format!("cannot open store {}", dir.display()), e)),
+        };
+        let cap = trust_set::MAX_BYTES * (MAX_TRUST_CHAIN as u64 + 1);
+        let (name, texts) = match read_capped(&root, TRUST_CHAIN_FILE, cap) {
+            Ok(bytes) => match serde_json::from_slice::<StoredChain>(&bytes) {
+                Ok(stored) if stored.format == TRUST_CHAIN_FORMAT => {
+                    (TRUST_CHAIN_FILE, stored.sets)
+                }
+                Ok(stored) => {
+                    chain.ignored = Some(format!(
+                        "{TRUST_CHAIN_FILE} is in format {}, which this reader does not know",
+                        stored.format
+                    ));
+                    return Ok(chain);
+                }
+                Err(e) => {
+                    chain.ignored = Some(format!("{TRUST_CHAIN_FILE} is not valid: {e}"));
+                    return Ok(chain);
+                }
+            },
+            // Stores written before the chain kept the newest set alone.
+            Err(ReadCapped::Missing) => match read_capped(&root, TRUST_SET_FILE, trust_set::MAX_BYTES) {
+                Ok(bytes) => match String::from_utf8(bytes) {
+                    Ok(text) => (TRUST_SET_FILE, vec![text]),
+                    Err(_) => {
+                        chain.ignored = Some(format!("{TRUST_SET_FILE} is not UTF-8"));
+                        return Ok(chain);
+                    }
+                },
+                Err(ReadCapped::Missing) => return Ok(chain),
+                Err(ReadCapped::Io(e)) => {
+                    return Err(Error::io(format!("cannot read {}", root.join(TRUST_SET_FILE).display()), e));
+                }
+                Err(ReadCapped::Planted(why)) => {
+                    chain.ignored = Some(why);
+                    return Ok(chain);
+                }
+                Err(ReadCapped::TooLarge) => {
+                    chain.ignored = Some(format!("{TRUST_SET_FILE} is over {} bytes", trust_set::MAX_BYTES));
+                    return Ok(chain);
+                }
+            },
+            Err(ReadCapped::Io(e)) => {
+                return Err(Error::io(format!("cannot read {}", root.join(TRUST_CHAIN_FILE).display()), e));
+            }
+            Err(ReadCapped::Planted(why)) => {
+                chain.ignored = Some(why);
+                return Ok(chain);
+            }
+            Err(ReadCapped::TooLarge) => {
+                chain.ignored = Some(format!("{TRUST_CHAIN_FILE} is over {cap} bytes"));
+                return Ok(chain);
+            }
+        };
+        for (index, text) in texts.into_iter().enumerate().take(MAX_TRUST_CHAIN) {
+            let version = TrustSetFile::from_json(text.as_bytes()).map(|f| f.version());
+            // An app update may ship a set the chain already went past the start of.
+            if matches!(version, Ok(v) if v <= chain.newest.version()) {
+                continue;
+            }
+            match chain.newest.successor_of_any_age(text.as_bytes()) {
+                Ok(next) => {
+                    chain.newest = next;
+                    chain.sets.push(text);
+                }
+                Err(e) => {
+                    chain.ignored = Some(format!(
+                        "set {} of {name} is not a successor of trust set version {}: {e}",
+                        index + 1,
+                        chain.newest.version()
+                    ));
+                    break;
+                }
+            }
+        }
+        Ok(chain)
+    }
 }
 
 /// Refuses a feed under a lower sequence than the channel's highest (a replay), or under the

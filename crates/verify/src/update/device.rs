@@ -25,7 +25,7 @@ use crate::check::bundle::Verifier;
 use crate::dir::{Dir, Found, Refused};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::time::Timestamp;
-use crate::store::{Release, Store, StoreState, open_own_dir, open_own_file};
+use crate::store::{DOWNLOAD_LOCK, DOWNLOADS_DIR, Release, Store, StoreState, open_own_file};
 
 #[cfg(feature = "fetch")]
 use super::Report;
@@ -33,10 +33,6 @@ use super::{App, Held, Session};
 
 /// The file in the store directory that holds the device id made on first use.
 const DEVICE_ID_FILE: &str = "device-id";
-/// The directory in the store directory where bundles download (and resume) before install.
-pub(crate) const DOWNLOADS_DIR: &str = "downloads";
-/// The lock file in [`DOWNLOADS_DIR`], held for a whole update.
-const DOWNLOAD_LOCK: &str = "lock";
 /// The longest device id accepted.
 pub const DEVICE_ID_BYTES: usize = 128;
 /// How often a waiting update tries the lock again.
@@ -112,12 +108,8 @@ impl Device {
     ///
     /// [`ErrorKind::Locked`] while an update runs; I/O errors.
     pub fn gc(&self) -> Result<Vec<PathBuf>> {
-        let removed = self.store.gc()?;
-        // Downloads only while no update holds them.
-        if let Ok(_lock) = self.lock_downloads() {
-            self.sweep_downloads(None);
-        }
-        Ok(removed)
+        // The store's gc removes downloads too, while no update holds them.
+        self.store.gc()
     }
 
     /// Makes the store follow this device's channel from now on (see [`Device::open`]); the
@@ -191,6 +183,22 @@ impl Device {
                         Err(e) => return session.fail_with(e),
                     }
                 }
+                super::Next::Download(want) if want.head => {
+                    let done = want.file().and_then(|mut file| {
+                        crate::net::download_head(
+                            want.urls(),
+                            &mut file,
+                            want.path(),
+                            want.size(),
+                            want.whole,
+                            transfer,
+                        )
+                    });
+                    match done {
+                        Ok(()) => session.downloaded_and_checked(),
+                        Err(e) => return session.fail_with(e),
+                    }
+                }
                 super::Next::Download(want) => {
                     let mut file = match want.file() {
                         Ok(file) => file,
@@ -202,6 +210,7 @@ impl Device {
                         want.path(),
                         want.size(),
                         want.sha256(),
+                        want.earlier,
                         transfer,
                     ) {
                         // The download checked size and SHA-256 as it streamed.
@@ -226,23 +235,12 @@ impl Device {
         store.install_without_feed(verifier.verify_path(bundle)?)
     }
 
-    /// Removes everything in the download directory but its lock and `keep` (the download in
-    /// progress): partial downloads of releases no feed offers any more would otherwise stay
-    /// for good. Links are unlinked, never followed, and the directory itself is opened
-    /// without following a link. Best effort: a file that cannot be removed now is tried
-    /// again at the next update.
+    /// Removes everything in the download directory but its lock, the remembered refusal and
+    /// `keep` (the download in progress); see `Store::sweep_downloads`. The caller holds the
+    /// download lock.
     pub(crate) fn sweep_downloads(&self, keep: Option<&str>) {
-        let Ok(dir) = self.downloads() else {
-            return;
-        };
-        let Ok(entries) = dir.list() else {
-            return;
-        };
-        for name in entries {
-            if name == DOWNLOAD_LOCK || keep.is_some_and(|k| name == k) {
-                continue;
-            }
-            let _ = dir.remove(&name);
+        if let Ok(dir) = self.downloads() {
+            self.store.sweep_downloads(&dir, keep, true);
         }
     }
 
@@ -333,9 +331,7 @@ impl Device {
                 e,
             )
         })?;
-        open_own_dir(&root, DOWNLOADS_DIR, &mut |what| {
-            self.store.note_removed(what)
-        })
+        self.store.downloads(&root)
     }
 
     /// The downloads directory's path, for the names a session gives the app.

@@ -30,6 +30,7 @@
 mod device;
 mod offline;
 mod outcome;
+mod refusals;
 mod session;
 
 use std::fmt;
@@ -264,6 +265,16 @@ pub(crate) enum Held {
 impl fmt::Debug for Pinned {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.debug_struct("Pinned").finish_non_exhaustive()
+    }
+}
+
+impl App {
+    /// The trust set shipped with the app, when it runs on trust sets.
+    pub(crate) fn shipped_trust_set(&self) -> Option<&[u8]> {
+        match &self.trust.source {
+            Source::Shipped(initial) => Some(initial),
+            Source::Pinned(_) => None,
+        }
     }
 }
 

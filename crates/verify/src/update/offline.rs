@@ -322,18 +322,34 @@ impl OfflineFile {
     /// Answers a [`Next::Download`]: copies the bundle entry named by the SHA-256 the feed
     /// declares into the download's path, exactly at the declared size, and refuses it
     /// (removing the copy) unless it hashes to that SHA-256.
+    /// When the session asks for the bundle's head first, only the head is copied.
     fn copy_bundle(&self, want: &Download, progress: Option<&ProgressFn>) -> Result<()> {
+        let copied = self.copy_bundle_inner(want, progress);
+        if copied.is_err() {
+            // Another update would otherwise take these bytes for the start of a download.
+            want.discard();
+        }
+        copied
+    }
+
+    fn copy_bundle_inner(&self, want: &Download, progress: Option<&ProgressFn>) -> Result<()> {
         let name = bundle_entry(want.sha256());
         let span = self.entry(&name, "the bundle the feed offers")?;
-        if span.size != want.size() {
+        if span.size != want.whole {
             return Err(Error::new(
                 ErrorKind::Digest,
                 format!(
                     "{ARCHIVE} entry '{name}' is {} bytes, but the feed declares {} bytes",
-                    span.size,
-                    want.size()
+                    span.size, want.whole
                 ),
             ));
+        }
+        if want.head {
+            let head = Span {
+                offset: span.offset,
+                size: want.size(),
+            };
+            return self.copy_to(head, &name, want, progress).map(|_| ());
         }
         let copied = self.copy_to(span, &name, want, progress);
         let refusal = match copied {
@@ -347,8 +363,6 @@ impl OfflineFile {
             ),
             Err(e) => e,
         };
-        // Another update would otherwise take these bytes for the start of a download.
-        want.discard();
         Err(refusal)
     }
 

@@ -21,6 +21,7 @@ use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
 use crate::store::{Store, StoreState};
 
 use super::device::store_verifier;
+use super::refusals;
 use super::{Device, Held, Ledger, Outcome, Report};
 
 /// What an update needs next, or how it ended.
@@ -64,8 +65,14 @@ impl Fetch {
     }
 }
 
-/// The bundle to download: exactly [`Download::size`] bytes with SHA-256 [`Download::sha256`],
-/// as the verified feed declares, from the first of [`Download::urls`] that works.
+/// The bundle to download, from the first of [`Download::urls`] that works, into
+/// [`Download::file`] until it holds [`Download::size`] bytes.
+///
+/// A bundle larger than its head (at most 129.5 KiB) is asked for in two parts, both into the
+/// same file: first its head, whose signed manifest the session checks (signatures, the app's
+/// policy, and the bundle's exact size, which must be the size the feed states), then the
+/// whole bundle. Resume from the file's length with an HTTP Range request each time; never
+/// write more than `size` bytes.
 #[derive(Debug, Clone)]
 pub struct Download {
     urls: Vec<String>,
@@ -76,6 +83,11 @@ pub struct Download {
     /// without following links.
     store: PathBuf,
     name: String,
+    /// Whether this asks for the head only; the whole bundle's size is then `whole`.
+    pub(crate) head: bool,
+    pub(crate) whole: u64,
+    /// How many bytes the file held from an earlier update when this one began.
+    pub(crate) earlier: u64,
 }
 
 impl Download {
@@ -84,12 +96,14 @@ impl Download {
         &self.urls
     }
 
-    /// Its exact size in bytes: never write more.
+    /// How many bytes the file must hold when [`Session::downloaded`] is called: the head's
+    /// length first, then the whole bundle's. Never write more.
     pub fn size(&self) -> u64 {
         self.size
     }
 
-    /// Its SHA-256.
+    /// The whole bundle's SHA-256, as the feed declares it; the session checks it once the
+    /// whole bundle is there.
     pub fn sha256(&self) -> &Digest {
         &self.sha256
     }
@@ -136,12 +150,12 @@ impl Download {
     fn downloads(&self) -> Result<crate::dir::Dir> {
         let root = crate::dir::Dir::open_root(&self.store, false)
             .map_err(|e| Error::io(format!("cannot open store {}", self.store.display()), e))?;
-        let dir = root.open_dir(super::device::DOWNLOADS_DIR).map_err(|e| {
+        let dir = root.open_dir(crate::store::DOWNLOADS_DIR).map_err(|e| {
             Error::new(
                 ErrorKind::Store,
                 format!(
                     "{} was replaced during the update ({}); the next update makes it again",
-                    root.join(super::device::DOWNLOADS_DIR).display(),
+                    root.join(crate::store::DOWNLOADS_DIR).display(),
                     e.into_io()
                 ),
             )
@@ -177,6 +191,7 @@ enum State {
         path: PathBuf,
         release: Release,
         checked: bool,
+        head: Option<Download>,
     },
     Failed(Error),
     Ended,
@@ -268,11 +283,12 @@ impl<'d> Session<'d> {
     ///
     /// Called when nothing was asked for (twice for one download, say), it changes nothing.
     pub fn downloaded(&mut self, path: &Path) {
-        if let State::Download(_, release) = &self.state {
+        if let State::Download(want, release) = &self.state {
             self.state = State::Downloaded {
                 path: path.to_path_buf(),
                 release: release.clone(),
                 checked: false,
+                head: want.head.then(|| want.clone()),
             };
         }
     }
@@ -284,7 +300,8 @@ impl<'d> Session<'d> {
             self.state = State::Downloaded {
                 path: want.path.clone(),
                 release: release.clone(),
-                checked: true,
+                checked: !want.head,
+                head: want.head.then(|| want.clone()),
             };
         }
     }
@@ -356,7 +373,14 @@ impl<'d> Session<'d> {
             State::Downloaded {
                 path,
                 release,
+                head: Some(want),
+                ..
+            } => self.check_head(&path, want, release),
+            State::Downloaded {
+                path,
+                release,
                 checked,
+                head: None,
             } => self.install(&path, &release, checked),
             State::Failed(e) => Ok(Step::End(Outcome::from_error(e))),
             State::Ended => Err(Error::new(
@@ -478,7 +502,13 @@ impl<'d> Session<'d> {
             ));
         }
         let store = self.store()?.clone();
-        store.save_trust_set(&next)?;
+        let initial = self.device.app().shipped_trust_set().ok_or_else(|| {
+            Error::new(
+                ErrorKind::TrustSet,
+                "a trust-set rotation needs a device that runs on trust sets",
+            )
+        })?;
+        store.save_trust_set(initial, &next)?;
         self.store = Some(store.with_trust_set(&next)?);
         self.rotated_to = Some(next.version());
         self.held = Some(Held::Set(next));
@@ -544,6 +574,16 @@ impl<'d> Session<'d> {
                 ),
             ));
         }
+        // A bundle refused before, under the same app and trust, is not downloaded again.
+        let app_print = refusals::fingerprint(app, self.held()?, &bundles);
+        if let Some(refusal) = refusals::recall(
+            &self.device.downloads()?,
+            &release.sha256,
+            &app_print,
+            self.now,
+        ) {
+            return Err(refusal);
+        }
         let name = format!("{}.ampoule.partial", release.sha256);
         let lock = self
             .lock
@@ -551,14 +591,28 @@ impl<'d> Session<'d> {
             .ok_or_else(|| Error::new(ErrorKind::Locked, "the session does not hold the lock"))?;
         // Made (or checked for resuming) now, so that the app only ever opens a file the
         // store prepared.
-        self.device.partial_download(lock, &name, release.size)?;
+        let earlier = self
+            .device
+            .partial_download(lock, &name, release.size)?
+            .metadata()
+            .map_or(0, |m| m.len());
+        // The head first when the bundle is larger than one: its signed manifest fixes the
+        // bundle's size before the payload is asked for.
+        let head = release.size > limit::HEAD_BYTES;
         let want = Download {
             urls: release.urls(&self.feed_url)?,
-            size: release.size,
+            size: if head {
+                limit::HEAD_BYTES
+            } else {
+                release.size
+            },
             sha256: release.sha256,
             path: self.device.downloads_path().join(&name),
             store: self.device.store().dir().to_path_buf(),
             name,
+            head,
+            whole: release.size,
+            earlier,
         };
         self.device.sweep_downloads(Some(&want.name));
         Ok(Step::Go(State::Download(want, release)))
@@ -573,6 +627,80 @@ impl<'d> Session<'d> {
         Ok(Step::End(outcome))
     }
 
+    /// Checks the head of the bundle being downloaded (see [`Download`]), then asks for the
+    /// whole bundle. A refusal here costs at most the head's bytes, and is remembered.
+    fn check_head(&mut self, path: &Path, head: Download, release: Release) -> Result<Step> {
+        let store = self.store()?.clone();
+        let bundles = self.bundle_verifier(&store.state()?)?;
+        let app_print = refusals::fingerprint(self.device.app(), self.held()?, &bundles);
+        let ours = path == head.path;
+        // A head that fails to parse or to verify may have been damaged on the way (no digest
+        // covers it yet): discarded, not remembered. What its valid signatures say is the
+        // bundle's own, and is remembered.
+        let refuse = |e: Error| {
+            if e.kind().is_refusal() {
+                if ours {
+                    head.discard();
+                }
+                let damaged = matches!(
+                    e.kind(),
+                    ErrorKind::Malformed | ErrorKind::Signature | ErrorKind::Manifest
+                );
+                if !damaged && let Ok(dir) = self.device.downloads() {
+                    refusals::remember(&dir, &release.sha256, &e, &app_print, self.now);
+                }
+            }
+            e
+        };
+        let mut file = if ours {
+            head.file()?
+        } else {
+            File::open(path).map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?
+        };
+        let have = file
+            .metadata()
+            .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?
+            .len();
+        if have < head.size {
+            return Err(Error::new(
+                ErrorKind::Network,
+                format!(
+                    "the download at {} holds {have} bytes, but the bundle's first {} were asked \
+                     for; the next update resumes it",
+                    path.display(),
+                    head.size
+                ),
+            ));
+        }
+        let (manifest, len) = bundles.check_head(&mut file).map_err(refuse)?;
+        if manifest.name != release.name || manifest.version != release.version {
+            return Err(refuse(Error::new(
+                ErrorKind::Feed,
+                format!(
+                    "feed offers {} {}, but the bundle at its URL is {} {}; refusing it before \
+                     its payload is downloaded",
+                    release.name, release.version, manifest.name, manifest.version
+                ),
+            )));
+        }
+        if len != release.size {
+            return Err(refuse(Error::new(
+                ErrorKind::Feed,
+                format!(
+                    "feed offers {} {} as {} bytes, but its signed manifest makes the bundle \
+                     {len} bytes; refusing it before its payload is downloaded",
+                    release.name, release.version, release.size
+                ),
+            )));
+        }
+        let want = Download {
+            size: head.whole,
+            head: false,
+            ..head
+        };
+        Ok(Step::Go(State::Download(want, release)))
+    }
+
     /// Checks the downloaded file and the bundle in it, then installs it.
     fn install(&mut self, path: &Path, release: &Release, checked: bool) -> Result<Step> {
         let feed = self
@@ -585,13 +713,32 @@ impl<'d> Session<'d> {
         let ours = (path.parent() == Some(self.device.downloads_path().as_path()))
             .then(|| path.file_name().map(|n| n.to_string_lossy().into_owned()))
             .flatten();
-        let discard = |e: Error| {
-            // The bytes are the ones the feed signed, yet the bundle is refused: keeping
-            // them would only refuse them again on every update.
+        let app_print = refusals::fingerprint(
+            self.device.app(),
+            self.held()?,
+            &self.bundle_verifier(&store.state()?)?,
+        );
+        // Bytes that are not the file the feed signed: the server or the transfer is at
+        // fault, not the bundle, so they are discarded but nothing is remembered.
+        let wrong_bytes = |e: Error| {
             if let Some(name) = &ours
                 && e.kind().is_refusal()
             {
                 self.device.remove_partial(name);
+            }
+            e
+        };
+        let discard = |e: Error| {
+            // The bytes are the ones the feed signed, yet the bundle is refused: keeping
+            // them would only refuse them again on every update, and so would downloading
+            // them again (the refusal is remembered).
+            if e.kind().is_refusal() {
+                if let Some(name) = &ours {
+                    self.device.remove_partial(name);
+                }
+                if let Ok(dir) = self.device.downloads() {
+                    refusals::remember(&dir, &release.sha256, &e, &app_print, self.now);
+                }
             }
             e
         };
@@ -603,7 +750,7 @@ impl<'d> Session<'d> {
                 .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?,
         };
         if !checked {
-            check_file(&mut file, path, release).map_err(discard)?;
+            check_file(&mut file, path, release).map_err(wrong_bytes)?;
         }
         let bundles = self.bundle_verifier(&store.state()?)?;
         let bundle = bundles.verify_file(file).map_err(discard)?;
@@ -611,6 +758,9 @@ impl<'d> Session<'d> {
         let installed = store.install_from_feed(bundle, &feed).map_err(discard)?;
         if let Some(name) = &ours {
             self.device.remove_partial(name);
+        }
+        if let Ok(dir) = self.device.downloads() {
+            refusals::forget(&dir);
         }
         // The model is installed whatever happens next: a failure to remember the head now
         // only means the next update proves it again, so it must not turn the outcome into a
