@@ -22,7 +22,8 @@ fn sample_entry(i: u64, key: KeyId) -> Entry {
         "hare",
         "empty-frame",
     ];
-    Entry {
+    let mut entry = Entry {
+        format: ampoule_verify::ledger::ENTRY_FORMAT,
         event: if i % 50 == 49 {
             Event::Withdraw
         } else {
@@ -36,7 +37,20 @@ fn sample_entry(i: u64, key: KeyId) -> Entry {
         key_ids: vec![key],
         time: 1_767_225_600 + i,
         feed_sequence: i + 1,
+        offered: Some(None),
+    };
+    // The new entry format: a publish offers its own release; a withdraw here offers nothing.
+    if entry.event == Event::Publish {
+        entry.offered = Some(Some(ampoule_verify::ledger::Offered {
+            bundle: entry.bundle.clone(),
+            version: entry.version.clone(),
+            bundle_digest: entry.bundle_digest,
+            manifest_digest: entry.manifest_digest,
+            rollout_percent: 100,
+            deltas: Vec::new(),
+        }));
     }
+    entry
 }
 
 /// Peak resident memory of this process so far, in KiB (Linux `VmHWM`).

@@ -134,6 +134,11 @@ of them makes diff exit 1.")]
   # Rotate keys: publish the next trust set, which every feed then names
   ampoule publish --trust-set trust-2.json --tree ./release \\
       --key feed.secret.pem
+  # Tree heads signed outside the runner, which holds the feed key only
+  ampoule publish species-1.1.0.ampoule --tree ./release --channel stable \\
+      --key feed.secret.pem --trust release.public.pem \\
+      --tree-head-signer ./sign-tree-head \\
+      --tree-head-signer-key heads.public.pem
 
 The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
 Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
@@ -695,6 +700,15 @@ pub struct PublishArgs {
     /// several), for devices whose trust set needs more than one tree-head signature.
     #[arg(long, value_name = "SECRET.pem")]
     pub tree_head_key: Vec<PathBuf>,
+    /// A command that signs the ledger's tree head outside this process, so the tree-head key
+    /// never comes here (run with `sh -c`): it reads the bytes to sign on stdin and writes the
+    /// raw 64-byte Ed25519 signature on stdout, like `openssl pkeyutl -sign -rawin`; the entry
+    /// is in $AMPOULE_LEDGER_ENTRY. Needs --tree-head-signer-key.
+    #[arg(long, value_name = "COMMAND", requires = "tree_head_signer_key")]
+    pub tree_head_signer: Option<String>,
+    /// The public key the --tree-head-signer's signatures must verify under.
+    #[arg(long, value_name = "PUB.pem", requires = "tree_head_signer")]
+    pub tree_head_signer_key: Option<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// Keys the bundle's signature is checked against before publishing (repeat for
@@ -744,6 +758,15 @@ pub struct WithdrawArgs {
     /// several), for devices whose trust set needs more than one tree-head signature.
     #[arg(long, value_name = "SECRET.pem")]
     pub tree_head_key: Vec<PathBuf>,
+    /// A command that signs the ledger's tree head outside this process, so the tree-head key
+    /// never comes here (run with `sh -c`): it reads the bytes to sign on stdin and writes the
+    /// raw 64-byte Ed25519 signature on stdout, like `openssl pkeyutl -sign -rawin`; the entry
+    /// is in $AMPOULE_LEDGER_ENTRY. Needs --tree-head-signer-key.
+    #[arg(long, value_name = "COMMAND", requires = "tree_head_signer_key")]
+    pub tree_head_signer: Option<String>,
+    /// The public key the --tree-head-signer's signatures must verify under.
+    #[arg(long, value_name = "PUB.pem", requires = "tree_head_signer")]
+    pub tree_head_signer_key: Option<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// How long the new feed stays valid (like 7d, 12h, 90m).

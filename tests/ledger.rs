@@ -100,6 +100,20 @@ fn device(d: &Path, channel: &str, remembered: Option<TreeHead>) -> FeedVerifier
         )
 }
 
+/// Makes an edited publish entry offer its own (edited) release again, as a format-2 publish
+/// entry must, so the ledger check looks at the edit itself.
+fn offer_itself(entry: &mut Entry) {
+    let mut offered = entry
+        .offered()
+        .cloned()
+        .expect("a format-2 publish entry offers");
+    offered.bundle = entry.bundle.clone();
+    offered.version = entry.version.clone();
+    offered.bundle_digest = entry.bundle_digest;
+    offered.manifest_digest = entry.manifest_digest;
+    entry.offered = Some(Some(offered));
+}
+
 /// Reads consistency steps straight from the tree, as the updater does over HTTP.
 fn steps_from(d: &Path) -> impl FnMut(u64) -> ampoule_verify::Result<Vec<u8>> + '_ {
     move |size| Ok(std::fs::read(d.join("tree").join(step_path(size))).expect("step file"))
@@ -142,16 +156,39 @@ fn publish_and_withdraw_append_entries_issue_4() {
     assert_eq!(entries[0]["key_ids"], serde_json::json!([signer]));
     assert_eq!(listed["tree_size"], 4);
 
-    // The feed of the withdraw names 1.0.0 again, with the inclusion of its publish entry 0.
+    // The feed of the withdraw names 1.0.0 again and carries its own entry, the withdraw
+    // (entry 3, the head's last leaf), which names both the release pulled (1.1.0) and the
+    // one offered now (1.0.0, with its manifest's digest and the feed's rollout) (issue 10
+    // item 3).
     let feed = read_feed(d, "stable");
     let ledger = feed.ledger.expect("the feed carries the ledger");
     assert_eq!(ledger.tree_head.head(), head_of(d));
     let inclusion = ledger.inclusion.expect("inclusion proof");
-    assert_eq!((inclusion.leaf_index, inclusion.tree_size), (0, 4));
+    assert_eq!((inclusion.leaf_index, inclusion.tree_size), (3, 4));
     let entry = Entry::from_bytes(ledger.entry.expect("entry").as_bytes()).expect("entry");
     assert_eq!(
-        (entry.event, entry.version.to_string()),
-        (Event::Publish, "1.0.0".into())
+        (entry.event, entry.version.to_string(), entry.feed_sequence),
+        (Event::Withdraw, "1.1.0".into(), feed.sequence)
+    );
+    assert_eq!(entry.bundle_digest, sha(d, &v2));
+    let offered = entry.offered().expect("the withdraw offers 1.0.0 again");
+    assert_eq!(
+        (
+            offered.version.to_string(),
+            offered.bundle_digest,
+            offered.rollout_percent
+        ),
+        ("1.0.0".to_string(), sha(d, &v1), 100)
+    );
+    assert!(offered.deltas.is_empty());
+    assert_eq!(
+        offered.manifest_digest,
+        Digest::of(
+            &ampoule_verify::bundle::Unverified::open(&d.join(&v1))
+                .expect("bundle")
+                .layout
+                .manifest
+        )
     );
     assert_eq!(
         (ledger.consistency.old_size, ledger.consistency.new_size),
@@ -436,6 +473,7 @@ fn check_flags_version_reuse_sequence_gaps_and_entries_without_a_feed() {
     let mut reuse = first.clone();
     reuse.bundle_digest = Digest::of(b"other bundle bytes");
     reuse.feed_sequence = 2;
+    offer_itself(&mut reuse);
     let mut gap = first.clone();
     gap.feed_sequence = 5;
     let time = head_of(d).time;
@@ -529,13 +567,9 @@ fn a_publish_that_stops_after_its_append_leaves_a_warning_and_no_reused_sequence
     );
     entry.version = Version::new(1, 1, 0);
     entry.feed_sequence = 2;
-    ampoule::release::ledger_audit::append(
-        &d.join("tree"),
-        &entry,
-        Some(&entry.bundle_digest),
-        &[&key],
-    )
-    .expect("append as publish does");
+    offer_itself(&mut entry);
+    ampoule::release::ledger_audit::append(&d.join("tree"), &entry, &[&key], None)
+        .expect("append as publish does");
     assert_eq!(
         read_feed(d, "stable").sequence,
         1,
@@ -648,19 +682,26 @@ fn the_device_refuses_a_bundle_signed_but_never_published() {
         release.version = Version::new(2, 0, 0);
         release.sha256 = digest;
     };
-    let never =
-        format!("bundle trailcam-species 2.0.0 (sha256 {digest}) was signed but never published: ");
+    let never = format!(
+        "feed sequence 1 offers trailcam-species 2.0.0 (sha256 {digest}), but the ledger does \
+             not log that as channel stable's current release: "
+    );
     let cases: Vec<(Vec<u8>, String)> = vec![
         (
             forge(&|f| {
                 retarget(f);
                 f.ledger = None;
             }),
-            format!("{never}feed sequence 1 carries no ledger proof"),
+            format!("{never}the feed carries no ledger proof, and this device requires one"),
         ),
         (
             forge(&|f| retarget(f)),
-            format!("{never}the ledger entry the feed carries has version 1.0.0, not 2.0.0"),
+            format!(
+                "{never}the ledger entry the feed carries offers trailcam-species 1.0.0 (sha256 \
+                 {}) at 100% rollout, not trailcam-species 2.0.0 (sha256 {digest}) at 100% \
+                 rollout",
+                sha(d, &v1)
+            ),
         ),
         (
             // The entry text rewritten to match: the real tree head does not include it.
@@ -671,10 +712,12 @@ fn the_device_refuses_a_bundle_signed_but_never_published() {
                 let mut entry = Entry::from_bytes(text.as_bytes()).expect("entry");
                 entry.version = Version::new(2, 0, 0);
                 entry.bundle_digest = digest;
+                offer_itself(&mut entry);
                 l.entry = Some(String::from_utf8(entry.to_bytes()).expect("utf-8"));
             }),
             format!(
-                "{never}its publish entry is not in the ledger's tree head of size 1 (inclusion \
+                "{never}the ledger entry the feed carries is not in the ledger's tree head of \
+                 size 1 (inclusion \
                  proof of leaf 0 in tree size 1 does not lead to root {})",
                 head_of(d).root_hash
             ),
@@ -772,7 +815,9 @@ fn the_device_refuses_a_smaller_or_inconsistent_tree_head_and_follows_after_miss
     assert_eq!(
         err.to_string(),
         "ledger tree head of size 1 is smaller than the tree head of size 5 this device saw \
-         before; refusing a rolled-back ledger"
+         before; refusing a rolled-back ledger (after a channel switch, the new channel's feed \
+         is taken once a renewal of it carries a head at least that large: 'ampoule publish' \
+         of its current bundle renews it)"
     );
     assert_eq!(err.kind(), ErrorKind::Stale);
 
@@ -1153,8 +1198,9 @@ fn a_trust_set_publish_logs_each_renewed_feed_issue_5() {
     assert_eq!(
         err.to_string(),
         format!(
-            "bundle trailcam-species 1.0.0 (sha256 {}) was signed but never published: the \
-             ledger entry the feed carries logs trust set version 1, not a publish of this bundle",
+            "feed sequence 2 offers trailcam-species 1.0.0 (sha256 {}), but the ledger does not \
+             log that as channel stable's current release: the ledger entry the feed carries \
+             logs trust set version 1, not the feed's own change",
             sha(d, &v1)
         )
     );

@@ -317,10 +317,12 @@ fn issue12_publish_dry_run_checks_everything_and_writes_nothing() {
              at 10% rollout\nnow: nothing\n\
              feed tree/feeds/stable.json would get sequence 1, expires {expires}, signed by key \
              {key} (k.pem)\n\
-             ledger: would append entry 0: {{\"event\":\"publish\",\"channel\":\"stable\",\
-             \"bundle\":\"trailcam-species\",\"version\":\"1.0.0\",\"bundle_digest\":\"{digest}\",\
-             \"manifest_digest\":\"{manifest}\",\"key_ids\":[\"{key}\"],\"time\":{time},\
-             \"feed_sequence\":1}}\n\
+             ledger: would append entry 0: {{\"format\":2,\"event\":\"publish\",\
+             \"channel\":\"stable\",\"bundle\":\"trailcam-species\",\"version\":\"1.0.0\",\
+             \"bundle_digest\":\"{digest}\",\"manifest_digest\":\"{manifest}\",\"key_ids\":\
+             [\"{key}\"],\"time\":{time},\"feed_sequence\":1,\"offered\":{{\"bundle\":\
+             \"trailcam-species\",\"version\":\"1.0.0\",\"bundle_digest\":\"{digest}\",\
+             \"manifest_digest\":\"{manifest}\",\"rollout_percent\":10,\"deltas\":[]}}}}\n\
              dry run: nothing was written\n"
         )
     );

@@ -590,8 +590,9 @@ fn update_requires_the_ledger_proof_issue_4() {
     assert_eq!(
         stderr(&out),
         format!(
-            "ampoule: error: bundle trailcam-species 1.0.0 (sha256 {sha}) was signed but never \
-             published: feed sequence 1 carries no ledger proof"
+            "ampoule: error: feed sequence 1 offers trailcam-species 1.0.0 (sha256 {sha}), but \
+             the ledger does not log that as channel stable's current release: the feed carries \
+             no ledger proof, and this device requires one"
         )
     );
     assert!(!d.join("cam/releases").exists() || state(d)["current"].is_null());

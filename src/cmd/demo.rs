@@ -166,7 +166,10 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
         "keygen",
         format!(
             "made a demo-only release key {} (release.secret.pem, owner-only) and trust set v1 \
-             listing it, which the camera app ships with (trust-1.json)",
+             listing it, which the camera app ships with (trust-1.json); for brevity this one \
+             key holds every role, tree heads included, which a real release must not do: \
+             there the publishing runner holds the feed role only and the tree-head key is \
+             kept elsewhere (FORMAT.md, \"Who signs tree heads\")",
             public.id()
         ),
         json!({ "key_id": public.id().to_string(), "trust_set_version": 1 }),
@@ -763,6 +766,7 @@ fn signing(key: &ed25519_dalek::SigningKey) -> Signing<'_> {
         now: Timestamp::now(),
         expires_in_secs: FEED_EXPIRES_SECS,
         tree_head_keys: &[],
+        outside: None,
     }
 }
 

@@ -279,6 +279,17 @@ fn entry_json(index: u64, record: &Record) -> Value {
             "manifest_sha256": entry.manifest_digest,
             "key_ids": entry.key_ids.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
             "feed_sequence": entry.feed_sequence,
+            // Format 2 (issue 10): what the entry's feed offers after the change, or null for
+            // nothing; format-1 entries do not say (null too: read `format`).
+            "format": entry.format,
+            "offered": entry.offered.as_ref().map(|o| o.as_ref().map(|o| json!({
+                "bundle": o.bundle,
+                "version": o.version.to_string(),
+                "bundle_sha256": o.bundle_digest,
+                "manifest_sha256": o.manifest_digest,
+                "rollout_percent": o.rollout_percent,
+                "deltas": o.deltas.len(),
+            }))),
         }),
         Record::TrustSet(entry) => json!({
             "index": index,

@@ -35,6 +35,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     }
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
+    let outside = outside_signer(&args.tree_head_signer, &args.tree_head_signer_key)?;
     let now = Timestamp::now();
     // Publishing checks the bundle the way devices will: with --trust against those keys;
     // else against the tree's trust set (its bundle keys and threshold); else the feed key
@@ -92,10 +93,16 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
             now,
             expires_in_secs,
             tree_head_keys: &tree_head_keys,
+            outside: outside.as_ref(),
         };
         let plan = tree.plan_publish(&facts, channel, args.rollout, &args.mirror, &signing)?;
+        let warning = tree_head_warning(&tree, &signing)?;
         drop(tree);
-        return report_plan(&plan, &signing, &args.key, out);
+        report_plan(&plan, &signing, &args.key, out)?;
+        if let Some(w) = warning {
+            out.note(&w);
+        }
+        return Ok(());
     }
     let tree = Tree::lock_waiting(&args.tree, wait)?;
     let (check, trusted) = verifier(Some(&tree))?;
@@ -108,10 +115,16 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         now,
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
+        outside: outside.as_ref(),
     };
     let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
+    let warning = tree_head_warning(&tree, &signing)?;
     drop(tree);
-    report(&change, &args.key, out)
+    report(&change, &args.key, out)?;
+    if let Some(w) = warning {
+        out.note(&w);
+    }
+    Ok(())
 }
 
 /// Publishes a trust set into the tree and signs every channel's feed again to name it.
@@ -124,6 +137,7 @@ fn publish_trust_set(
     let (bytes, _) = crate::cmd::read_trust_set_file(path)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
+    let outside = outside_signer(&args.tree_head_signer, &args.tree_head_signer_key)?;
     if !args.tree.exists() {
         // As for a bundle: a set the new tree would refuse must not leave an empty tree.
         TrustSet::verify_initial(&bytes, Timestamp::now()).with_context(|| {
@@ -140,6 +154,7 @@ fn publish_trust_set(
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
+        outside: outside.as_ref(),
     };
     if args.dry_run {
         let tree = Tree::read_only(&args.tree, wait)?;
@@ -159,6 +174,9 @@ fn publish_trust_set(
             path.display()
         )
     })?;
+    if let Some(w) = tree_head_warning(&tree, &signing)? {
+        out.note(&w);
+    }
     // Each renewed feed was logged in the ledger as a renewal of its channel's release; the
     // trust set itself is in the tree under trust/ (its own ledger event is still to come).
     drop(tree);
@@ -205,6 +223,55 @@ fn publish_trust_set(
             })).collect::<Vec<_>>(),
         }),
     )
+}
+
+/// The warning `publish` and `withdraw` print when the feed key alone meets the tree-head
+/// threshold: then a thief of the runner's feed key signs feeds and the tree heads they carry,
+/// and the device's ledger checks (the feed's entry is its channel's newest) no longer hold
+/// against that thief (issue 10 item 3). Under the tree's trust set the roles say; with
+/// pinned keys (no trust set) the tree cannot know what devices pin, so it warns when the
+/// feed key is the only key signing tree heads.
+pub fn tree_head_warning(tree: &Tree, signing: &Signing<'_>) -> Result<Option<String>> {
+    let feed_key = KeyId::of_raw_key(signing.key.verifying_key().as_bytes());
+    let named = match signing.key_file {
+        Some(file) => format!("{feed_key} ({})", file.display()),
+        None => feed_key.to_string(),
+    };
+    let advice = "give the publishing runner's key the feed role only and sign tree heads with \
+                  a key it does not hold (FORMAT.md, \"Who signs tree heads\")";
+    if let Some(current) = tree.current_trust_set()? {
+        let file = ampoule_verify::TrustSetFile::from_json(&current.bytes)?;
+        let alone = crate::cmd::trust::feed_keys_meeting_tree_head_alone(file.body());
+        return Ok(alone.contains(&feed_key).then(|| {
+            format!(
+                "warning: the feed key {named} alone meets the tree_head threshold of trust set \
+                 version {}: whoever holds it can make devices accept feeds that the ledger does \
+                 not check; {advice}",
+                current.version
+            )
+        }));
+    }
+    Ok((signing.tree_head_keys.is_empty() && signing.outside.is_none()).then(|| {
+        format!(
+            "warning: the ledger's tree heads are signed by the feed key {named} alone: devices \
+             that also trust it for tree heads cannot tell a feed signed with a stolen feed key \
+             from a genuine one; {advice}, given with --tree-head-signer or --tree-head-key"
+        )
+    }))
+}
+
+/// The `--tree-head-signer` command with the public key its signatures must verify under.
+pub fn outside_signer(
+    command: &Option<String>,
+    key: &Option<std::path::PathBuf>,
+) -> Result<Option<crate::release::ledger_audit::OutsideHeadSigner>> {
+    match (command, key) {
+        (Some(command), Some(key)) => Ok(Some(crate::release::ledger_audit::OutsideHeadSigner {
+            command: command.clone(),
+            key: keyfile::read_public_key(key)?,
+        })),
+        _ => Ok(None),
+    }
 }
 
 /// Reads the `--tree-head-key` files: keys that sign the ledger's tree head besides the feed

@@ -124,6 +124,43 @@ fn entries(paths: &[std::path::PathBuf], roles: &[String], comment: &str) -> Res
         .collect()
 }
 
+/// The keys that hold both the feed and the tree_head role when tree heads need one
+/// signature: whoever holds one of them (a publishing runner) can alone sign a feed and the
+/// tree head it carries, so the ledger no longer checks that runner (issue 10 item 3).
+pub fn feed_keys_meeting_tree_head_alone(body: &TrustSetBody) -> Vec<KeyId> {
+    if body.thresholds.tree_head > 1 {
+        return Vec::new();
+    }
+    body.keys
+        .iter()
+        .filter(|k| {
+            k.roles.contains(&DocumentKind::Feed) && k.roles.contains(&DocumentKind::TreeHead)
+        })
+        .map(|k| k.key_id)
+        .collect()
+}
+
+/// The warning `trust init`/`add`/`remove` print when [`feed_keys_meeting_tree_head_alone`]
+/// finds keys.
+fn tree_head_role_warning(body: &TrustSetBody) -> Option<String> {
+    let keys = feed_keys_meeting_tree_head_alone(body);
+    if keys.is_empty() {
+        return None;
+    }
+    let ids = keys
+        .iter()
+        .map(|k| k.to_string())
+        .collect::<Vec<_>>()
+        .join(", ");
+    Some(format!(
+        "warning: key {ids} holds both the feed and the tree_head role and tree heads need 1 \
+         signature: a thief of that key alone can make devices accept feeds the ledger does not \
+         check. Give the publishing runner's key --roles feed, and the tree_head role to a key \
+         it does not hold (or raise --threshold tree_head=2 with one key held elsewhere); see \
+         FORMAT.md, \"Who signs tree heads\""
+    ))
+}
+
 /// Validates the new body, writes it unsigned and says who must sign it.
 fn write_new_version(
     body: TrustSetBody,
@@ -160,6 +197,10 @@ fn write_new_version(
         "; each signer runs 'ampoule trust sign {} --key SECRET.pem'\n",
         edit.out.display()
     ));
+    let warning = tree_head_role_warning(b);
+    if let Some(w) = &warning {
+        out.note(w);
+    }
     out.result(
         &human,
         json!({
@@ -170,6 +211,7 @@ fn write_new_version(
             "keys": keys_json(b),
             "thresholds": b.thresholds,
             "previous_version": previous.map(|p| p.version()),
+            "warnings": warning.into_iter().collect::<Vec<_>>(),
         }),
     )
 }

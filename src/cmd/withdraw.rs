@@ -8,7 +8,9 @@ use serde_json::json;
 
 use crate::cli::WithdrawArgs;
 use crate::cmd::passphrase_source;
-use crate::cmd::publish::{read_tree_head_keys, release_json, report, report_plan};
+use crate::cmd::publish::{
+    outside_signer, read_tree_head_keys, release_json, report, report_plan, tree_head_warning,
+};
 use crate::output::Output;
 use crate::release::keyfile;
 use crate::release::tree::{
@@ -46,6 +48,7 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
     })?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
+    let outside = outside_signer(&args.tree_head_signer, &args.tree_head_signer_key)?;
     let tree = if args.dry_run {
         Tree::read_only(&args.tree, wait)?
     } else {
@@ -57,17 +60,26 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
+        outside: outside.as_ref(),
     };
     if args.dry_run {
         let planned = tree.plan_withdraw(&args.channel, &version, &signing)?;
+        let warning = tree_head_warning(&tree, &signing)?;
         drop(tree);
+        if let Some(w) = warning {
+            out.note(&w);
+        }
         return match planned {
             Withdrawal::Pending(plan) => report_plan(&plan, &signing, &args.key, out),
             Withdrawal::Already(already) => report_already(&already, true, out),
         };
     }
     let done = tree.withdraw(&args.channel, &version, &signing)?;
+    let warning = tree_head_warning(&tree, &signing)?;
     drop(tree);
+    if let Some(w) = warning {
+        out.note(&w);
+    }
     match done {
         Withdrawal::Pending(change) => report(&change, &args.key, out),
         Withdrawal::Already(already) => report_already(&already, false, out),

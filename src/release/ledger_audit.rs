@@ -13,11 +13,13 @@
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::bundle::Unverified;
+use ampoule_verify::format::{context, signed_bytes};
 use ampoule_verify::ledger::{
     self, ConsistencyStep, Entry, Event, FeedLedger, LEDGER_DIR, Record, TrustSetEntry,
 };
-use ampoule_verify::merkle::{ConsistencyProof, SignedTreeHead};
-use ampoule_verify::{Digest, KeyId};
+use ampoule_verify::merkle::{ConsistencyProof, SignedTreeHead, TreeHead};
+use ampoule_verify::signature::SignatureEntry;
+use ampoule_verify::{Digest, KeyId, PublicKey};
 use anyhow::{Context, Result};
 use ed25519_dalek::SigningKey;
 
@@ -100,9 +102,92 @@ pub fn withdrawn(root: &Path, channel: &str, sha256: &Digest) -> Result<(Digest,
     Ok((Digest::of(&bundle.layout.manifest), ids))
 }
 
+/// A tree-head signer outside this process (issue 10 item 3): a command, run with `sh -c`, that
+/// reads the exact bytes to sign on stdin (the tree-head context and the head's canonical form,
+/// as `sign --export-request` writes them for bundles) and writes the raw 64-byte Ed25519
+/// signature on stdout, as `openssl pkeyutl -sign -rawin` does. It also finds the entry
+/// appended under the head in `AMPOULE_LEDGER_ENTRY` and the head's size in
+/// `AMPOULE_TREE_SIZE`, to check or log before it signs. The key stays wherever the command
+/// reaches (a signing service, a hardware token); this process sees only the signature, which
+/// is verified under `key` before the head is committed.
+pub struct OutsideHeadSigner {
+    /// The command line, run with `sh -c`.
+    pub command: String,
+    /// The public key its signatures must verify under.
+    pub key: PublicKey,
+}
+
+impl OutsideHeadSigner {
+    /// Runs the command for `head`, the head over `entry`; a failure appends nothing.
+    pub fn sign(&self, head: &TreeHead, entry: &[u8]) -> Result<SignatureEntry> {
+        use std::io::{Read, Write};
+        use std::process::{Command, Stdio};
+        let document = head.signed_document();
+        let request = signed_bytes(context::TREE_HEAD, &document);
+        let what = format!("the tree-head signer '{}'", self.command);
+        let mut child = Command::new("sh")
+            .arg("-c")
+            .arg(&self.command)
+            .env(
+                "AMPOULE_LEDGER_ENTRY",
+                String::from_utf8_lossy(entry).as_ref(),
+            )
+            .env("AMPOULE_TREE_SIZE", head.tree_size.to_string())
+            .stdin(Stdio::piped())
+            .stdout(Stdio::piped())
+            .spawn()
+            .with_context(|| format!("cannot start {what}"))?;
+        let mut stdin = child.stdin.take().context("the signer's stdin")?;
+        let written = stdin.write_all(&request);
+        drop(stdin);
+        let mut signature = Vec::new();
+        let read = child
+            .stdout
+            .take()
+            .context("the signer's stdout")?
+            .take(65)
+            .read_to_end(&mut signature);
+        let status = child
+            .wait()
+            .with_context(|| format!("cannot wait for {what}"))?;
+        if !status.success() {
+            anyhow::bail!("{what} failed ({status}); nothing was appended and no feed was changed");
+        }
+        written.with_context(|| format!("cannot write the request to {what}"))?;
+        read.with_context(|| format!("cannot read the signature from {what}"))?;
+        let signature = <[u8; 64]>::try_from(signature.as_slice()).map_err(|_| {
+            anyhow::anyhow!(
+                "{what} wrote {} bytes; it must write the raw 64-byte Ed25519 signature (as \
+                 'openssl pkeyutl -sign -rawin' does); nothing was appended",
+                signature.len()
+            )
+        })?;
+        SignatureEntry::verified(
+            "tree head",
+            &self.key,
+            context::TREE_HEAD,
+            &document,
+            signature,
+        )
+        .map_err(|e| {
+            crate::Refused(format!(
+                "{e}: {what} did not sign this tree head with the key given for it ({}); \
+                     nothing was appended",
+                self.key.id()
+            ))
+            .into()
+        })
+    }
+}
+
 /// Appends the entry of a trust-set publish, before the feeds it renews are signed again.
-pub fn append_trust_set(root: &Path, entry: &TrustSetEntry, keys: &[&SigningKey]) -> Result<()> {
-    append_bytes(root, &entry.to_bytes(), entry.time, keys).context(
+pub fn append_trust_set(
+    root: &Path,
+    entry: &TrustSetEntry,
+    keys: &[&SigningKey],
+    outside: Option<&OutsideHeadSigner>,
+) -> Result<()> {
+    append_bytes(root, &entry.to_bytes(), entry.time, keys, outside).context(
         "cannot append to the release tree's ledger; no feed was renewed for the new trust set",
     )?;
     Ok(())
@@ -115,6 +200,7 @@ fn append_bytes(
     bytes: &[u8],
     entry_time: u64,
     keys: &[&SigningKey],
+    outside: Option<&OutsideHeadSigner>,
 ) -> Result<(Ledger, u64, SignedTreeHead, ConsistencyProof)> {
     let mut ledger = open_or_create(root)?;
     repair_last_step(root, &ledger)?;
@@ -123,7 +209,27 @@ fn append_bytes(
     let time = ledger
         .tree_head()
         .map_or(entry_time, |h| h.head().time.max(entry_time));
-    let index = ledger.append(bytes, keys, time)?;
+    let index = match outside {
+        None => ledger.append(bytes, keys, time)?,
+        Some(signer) => {
+            let ids: Vec<KeyId> = keys
+                .iter()
+                .map(|k| KeyId::of_raw_key(k.verifying_key().as_bytes()))
+                .collect();
+            anyhow::ensure!(
+                !ids.contains(&signer.key.id()),
+                "the tree-head signer's key {} also signs here; give the outside signer a key \
+                 of its own",
+                signer.key.id()
+            );
+            ledger.append_with_outside(
+                bytes,
+                keys,
+                &|head| Ok(vec![signer.sign(head, bytes)?]),
+                time,
+            )?
+        }
+    };
     let tree_head = ledger
         .tree_head()
         .cloned()
@@ -136,45 +242,25 @@ fn append_bytes(
 }
 
 /// Appends `entry` to the tree's ledger under a tree head signed by every key of `keys`, writes
-/// the consistency step from the previous head, and returns the feed's `ledger` object for
-/// the release whose bundle is `named` on the entry's channel (its latest publish entry).
+/// the consistency step from the previous head, and returns the feed's `ledger` object: the
+/// new head, `entry` itself (the head's last leaf) and its inclusion proof. Every feed carries
+/// the entry its own change appended, so a device can check that the feed is its channel's
+/// newest logged state (FORMAT.md, "The feed's ledger entry").
 pub fn append(
     root: &Path,
     entry: &Entry,
-    named: Option<&Digest>,
     keys: &[&SigningKey],
+    outside: Option<&OutsideHeadSigner>,
 ) -> Result<FeedLedger> {
+    let bytes = entry.to_bytes();
     let (ledger, index, tree_head, consistency) =
-        append_bytes(root, &entry.to_bytes(), entry.time, keys)
+        append_bytes(root, &bytes, entry.time, keys, outside)
             .context("cannot append to the release tree's ledger; the feed was not changed")?;
-    let new_size = tree_head.head().tree_size;
-    let (entry_text, inclusion) = match named {
-        None => (None, None),
-        Some(sha256) => {
-            let found = if entry.event == Event::Publish && entry.bundle_digest == *sha256 {
-                Some((index, ledger.entry(index)?))
-            } else {
-                ledger.find_last(|e| {
-                    e.event == Event::Publish
-                        && e.channel == entry.channel
-                        && e.bundle_digest == *sha256
-                })?
-            };
-            match found {
-                Some((at, bytes)) => (
-                    Some(String::from_utf8(bytes).context("a ledger entry is not UTF-8")?),
-                    Some(ledger.inclusion_proof(at, new_size)?),
-                ),
-                // Published before the ledger existed: devices that require the ledger
-                // refuse it, which is the truth about it.
-                None => (None, None),
-            }
-        }
-    };
+    let inclusion = ledger.inclusion_proof(index, tree_head.head().tree_size)?;
     Ok(FeedLedger {
         tree_head,
-        entry: entry_text,
-        inclusion,
+        entry: Some(String::from_utf8(bytes).context("a ledger entry is not UTF-8")?),
+        inclusion: Some(inclusion),
         consistency,
     })
 }

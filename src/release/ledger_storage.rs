@@ -184,6 +184,28 @@ impl Ledger {
         self.append(&entry.to_bytes(), keys, time)
     }
 
+    /// Appends one entry like [`Ledger::append`], and adds the signatures `outside` returns for
+    /// the new head (a tree-head key held outside this process) before the head is committed.
+    /// If `outside` fails, nothing is appended.
+    pub fn append_with_outside(
+        &mut self,
+        entry: &[u8],
+        keys: &[&SigningKey],
+        outside: OutsideSignatures<'_>,
+        time: u64,
+    ) -> Result<u64> {
+        check_signing_keys(keys)?;
+        let lock = self.lock()?;
+        self.reload()?;
+        self.truncate_uncommitted()?;
+        let result = self.write_and_commit([entry], keys, Some(outside), time);
+        if result.is_err() {
+            let _ = self.truncate_uncommitted();
+        }
+        drop(lock);
+        Ok(result?.start)
+    }
+
     /// Appends several entries under one new tree head; returns their indexes. Either all of
     /// them are in the ledger afterwards or, after an error or crash, none.
     pub fn append_batch<I>(
@@ -201,7 +223,7 @@ impl Ledger {
         // Another process may have appended since this handle last looked.
         self.reload()?;
         self.truncate_uncommitted()?;
-        let result = self.write_and_commit(entries, keys, time);
+        let result = self.write_and_commit(entries, keys, None, time);
         if result.is_err() {
             // Best effort: leave no uncommitted bytes behind; the next append would remove them
             // anyway, and readers never see them.
@@ -228,6 +250,7 @@ impl Ledger {
         &mut self,
         entries: I,
         keys: &[&SigningKey],
+        outside: Option<OutsideSignatures<'_>>,
         time: u64,
     ) -> Result<Range<u64>>
     where
@@ -274,7 +297,12 @@ impl Ledger {
             root_hash: merkle::fold_frontier(&frontier).expect("a non-empty tree"),
             time,
         };
-        let signed = sign_tree_head(head, keys);
+        let mut signed = sign_tree_head(head, keys);
+        if let Some(outside) = outside {
+            let mut signatures = signed.signatures().to_vec();
+            signatures.extend(outside(&head)?);
+            signed = SignedTreeHead::new(head, signatures);
+        }
         self.commit(&signed)?;
         self.reload()?;
         Ok(start..size)
@@ -876,6 +904,9 @@ impl Appender {
     }
 }
 
+/// Signatures over a new tree head made outside this process, added before it is committed.
+pub type OutsideSignatures<'a> = &'a dyn Fn(&TreeHead) -> Result<Vec<TreeHeadSignature>>;
+
 /// The keys that sign a tree head: at least one, none twice.
 pub fn check_signing_keys(keys: &[&SigningKey]) -> Result<()> {
     ensure!(
@@ -1074,6 +1105,9 @@ mod tests {
             "empty-frame",
         ];
         Entry {
+            // Legacy entries: these tests are about storage, not the entry format.
+            format: ampoule_verify::ledger::LEGACY_ENTRY_FORMAT,
+            offered: None,
             event: if i % 7 == 6 {
                 Event::Withdraw
             } else {

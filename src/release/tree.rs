@@ -33,7 +33,9 @@ use ampoule_verify::feed::{Feed, Release, SignedFeed, TrustSetRef, check_channel
 use ampoule_verify::format::{
     BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes, trust_set as trust_spec,
 };
-use ampoule_verify::ledger::{Entry as LedgerEntry, Event as LedgerEvent, TrustSetEntry};
+use ampoule_verify::ledger::{
+    ENTRY_FORMAT, Entry as LedgerEntry, Event as LedgerEvent, Offered, TrustSetEntry,
+};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{
     Digest, DocumentKind, KeyId, Manifest, Timestamp, TrustSet, TrustSetFile, TrustedKeys, Verifier,
@@ -213,6 +215,8 @@ pub struct Signing<'a> {
     pub expires_in_secs: u64,
     /// Keys that sign the ledger's tree head besides `key`.
     pub tree_head_keys: &'a [SigningKey],
+    /// A tree-head signer outside this process, whose key this process never holds.
+    pub outside: Option<&'a crate::release::ledger_audit::OutsideHeadSigner>,
 }
 
 /// A release tree with its lock held; the lock is released when this is dropped. A tree
@@ -334,6 +338,18 @@ fn publish_refused(bundle: &Path, e: ampoule_verify::Error) -> anyhow::Error {
         "bundle {} refused; nothing was published",
         bundle.display()
     ))
+}
+
+/// What a feed offering `release` logs in its ledger entry (no deltas yet: issue 13 adds them).
+fn offered(release: &Release, manifest_digest: Digest) -> Offered {
+    Offered {
+        bundle: release.name.clone(),
+        version: release.version.clone(),
+        bundle_digest: release.sha256,
+        manifest_digest,
+        rollout_percent: release.rollout_percent,
+        deltas: Vec::new(),
+    }
 }
 
 /// The keys that sign a change's tree head: the feed key first.
@@ -627,6 +643,7 @@ impl Tree {
         let sequence = self.next_sequence(channel, &history)?;
         let feed = self.feed(channel, sequence, Some(release.clone()), signing)?;
         let entry = LedgerEntry {
+            format: ENTRY_FORMAT,
             event: LedgerEvent::Publish,
             channel: channel.to_string(),
             bundle: release.name.clone(),
@@ -636,6 +653,7 @@ impl Tree {
             key_ids: facts.signers.clone(),
             time: signing.now.unix(),
             feed_sequence: sequence,
+            offered: Some(Some(offered(&release, facts.manifest_digest))),
         };
         let entry_index =
             crate::release::ledger_audit::preview(&self.root, &entry, &signing_keys(signing))?;
@@ -782,10 +800,22 @@ impl Tree {
             })));
         };
         let sequence = self.next_sequence(channel, &history)?;
-        let feed = self.feed(channel, sequence, stack.pop(), signing)?;
+        let now_offered = stack.pop();
+        // The withdraw entry names both the release pulled (its own fields) and what the
+        // channel's feed offers from now on, so the feed carries an entry of its own.
+        let logged_offer = match &now_offered {
+            Some(r) => {
+                let (manifest_digest, _) =
+                    crate::release::ledger_audit::withdrawn(&self.root, channel, &r.sha256)?;
+                Some(offered(r, manifest_digest))
+            }
+            None => None,
+        };
+        let feed = self.feed(channel, sequence, now_offered, signing)?;
         let (manifest_digest, key_ids) =
             crate::release::ledger_audit::withdrawn(&self.root, channel, &current.sha256)?;
         let entry = LedgerEntry {
+            format: ENTRY_FORMAT,
             event: LedgerEvent::Withdraw,
             channel: channel.to_string(),
             bundle: current.name.clone(),
@@ -795,6 +825,7 @@ impl Tree {
             key_ids,
             time: signing.now.unix(),
             feed_sequence: sequence,
+            offered: Some(logged_offer),
         };
         let entry_index =
             crate::release::ledger_audit::preview(&self.root, &entry, &signing_keys(signing))?;
@@ -969,7 +1000,7 @@ impl Tree {
             key_ids: accepted.signature_report().valid.clone(),
             time: signing.now.unix(),
         };
-        crate::release::ledger_audit::append_trust_set(&self.root, &entry, &keys)?;
+        crate::release::ledger_audit::append_trust_set(&self.root, &entry, &keys, signing.outside)?;
         let dir = self.root.join(TRUST_DIR);
         fs::create_dir_all(&dir).with_context(|| io_context("create directory", &dir))?;
         let path = self.trust_set_path(accepted.version());
@@ -995,6 +1026,7 @@ impl Tree {
             let (manifest_digest, key_ids) =
                 crate::release::ledger_audit::withdrawn(&self.root, &channel, &release.sha256)?;
             let entry = LedgerEntry {
+                format: ENTRY_FORMAT,
                 event: LedgerEvent::Publish,
                 channel: channel.clone(),
                 bundle: release.name.clone(),
@@ -1004,6 +1036,7 @@ impl Tree {
                 key_ids,
                 time: signing.now.unix(),
                 feed_sequence: sequence,
+                offered: Some(Some(offered(&release, manifest_digest))),
             };
             history.events.push(Event::TrustSet {
                 sequence,
@@ -1089,12 +1122,11 @@ impl Tree {
     ) -> Result<Change> {
         self.writable()?;
         let keys = signing_keys(signing);
-        let named = feed.release.as_ref().map(|r| r.sha256);
         feed.ledger = Some(crate::release::ledger_audit::append(
             &self.root,
             entry,
-            named.as_ref(),
             &keys,
+            signing.outside,
         )?);
         feed.validate()?;
         write_atomic(&self.history_path(channel), &to_pretty_json(history))?;

@@ -495,7 +495,8 @@ fn issue5_a_rotation_keeps_the_ledger_requirement() {
         .expect_err("no ledger proof");
     assert_eq!(
         e.to_string(),
-        "feed sequence 4 carries no ledger proof, and this device requires one"
+        "feed sequence 4 offers nothing, but the ledger does not log that as channel stable's \
+         current state: the feed carries no ledger proof, and this device requires one"
     );
     assert_eq!(e.kind(), ErrorKind::Proof);
 }

@@ -43,7 +43,9 @@ use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, limit};
 use crate::format::keys::{KeyId, TrustedKeys};
 use crate::check::bundle::{VerifiedBundle, Verifier};
 use crate::check::ledger_proof::{LedgerCheck, LedgerVerifier, Walk};
-use crate::format::ledger_entry::{Event, FeedLedger, Record, invalid as not_published};
+use crate::format::ledger_entry::{
+    ENTRY_FORMAT, Entry, FeedLedger, LEGACY_ENTRY_FORMAT, Record, invalid as not_published,
+};
 use crate::format::manifest::check_name;
 use crate::format::signature::{SignatureEntry, SignatureReport};
 use crate::format::signed::{SignedDocument, Signers, kind};
@@ -98,8 +100,8 @@ pub struct Feed {
     /// revocations; absent in trees that publish none.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub trust_set: Option<TrustSetRef>,
-    /// The audit ledger's proof for this feed: signed tree head, the release's publish entry
-    /// and its inclusion proof, and a consistency proof (see `format/ledger_entry.rs`).
+    /// The audit ledger's proof for this feed: signed tree head, the entry this feed's own
+    /// change appended and its inclusion proof, and a consistency proof (see `format/ledger_entry.rs`).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub ledger: Option<FeedLedger>,
 }
@@ -820,7 +822,7 @@ impl VerifiedFeed {
     }
 
     /// Checks a verified bundle against what this feed offered: the same name and version,
-    /// and (with the ledger) the manifest the publish entry logs, so a bundle signed but never
+    /// and (with the ledger) the manifest the feed's entry logs for its offer, so a bundle signed but never
     /// published is refused even when a feed points to it.
     pub(crate) fn check_bundle(&self, release: &Release, bundle: &VerifiedBundle) -> Result<()> {
         let m = bundle.manifest();
@@ -833,15 +835,19 @@ impl VerifiedFeed {
                 ),
             ));
         }
-        if let Some(entry) = self.ledger().and_then(|l| l.entry.as_ref()) {
+        let logged = self
+            .ledger()
+            .and_then(|l| l.entry.as_ref())
+            .and_then(|e| e.offered());
+        if let Some(offered) = logged {
             let manifest_sha256 = Digest::of(bundle.manifest_bytes());
-            if manifest_sha256 != entry.manifest_digest {
+            if manifest_sha256 != offered.manifest_digest {
                 return Err(Error::new(
                     ErrorKind::Proof,
                     format!(
                         "bundle {} {} ({}) was signed but never published: its manifest has \
-                         sha256 {manifest_sha256}, but the ledger's publish entry logs {}",
-                        m.name, m.version, release.sha256, entry.manifest_digest
+                         sha256 {manifest_sha256}, but the ledger's entry logs {}",
+                        m.name, m.version, release.sha256, offered.manifest_digest
                     ),
                 ));
             }
@@ -854,8 +860,9 @@ impl VerifiedFeed {
 /// inclusion proof; the tree head's signatures and the walk come from `check/ledger_proof.rs`.
 impl LedgerVerifier {
     /// Checks the ledger object of an already authenticated `feed`: the tree head's
-    /// signatures, that the release the feed names is the one its entry logs and that the
-    /// entry is in the tree, and that the tree extends the remembered head. `step` fetches
+    /// signatures; that the entry it carries is the one its own change appended (format 2,
+    /// the feed's channel and sequence, offering what the feed offers) and the head's last
+    /// leaf; and that the tree extends the remembered head. `step` fetches
     /// `ledger/consistency/<size>.json` when the device missed appends.
     pub fn check(
         &self,
@@ -875,84 +882,29 @@ impl LedgerVerifier {
     /// [`LedgerVerifier::check`] up to the consistency steps: the result, and the walk still
     /// to make when the feed's proof does not start at the remembered head.
     pub(crate) fn check_before_steps(&self, feed: &Feed) -> Result<(LedgerCheck, Option<Walk>)> {
-        let Some(ledger) = &feed.ledger else {
+        let refuse = |why: String| {
             let what = match &feed.release {
                 Some(r) => format!(
-                    "bundle {} {} (sha256 {}) was signed but never published: feed sequence {} \
-                     carries no ledger proof",
-                    r.name, r.version, r.sha256, feed.sequence
+                    "feed sequence {} offers {} {} (sha256 {}), but the ledger does not log that \
+                     as channel {}'s current release",
+                    feed.sequence, r.name, r.version, r.sha256, feed.channel
                 ),
                 None => format!(
-                    "feed sequence {} carries no ledger proof, and this device requires one",
-                    feed.sequence
+                    "feed sequence {} offers nothing, but the ledger does not log that as \
+                     channel {}'s current state",
+                    feed.sequence, feed.channel
                 ),
             };
-            return Err(not_published(what));
+            not_published(format!("{what}: {why}"))
+        };
+        let Some(ledger) = &feed.ledger else {
+            return Err(refuse(
+                "the feed carries no ledger proof, and this device requires one".into(),
+            ));
         };
         let report = self.verify_head(&ledger.tree_head)?;
         let head = ledger.tree_head.head();
-        let entry = match &feed.release {
-            None => None,
-            Some(release) => {
-                let never = |why: String| {
-                    not_published(format!(
-                        "bundle {} {} (sha256 {}) was signed but never published: {why}",
-                        release.name, release.version, release.sha256
-                    ))
-                };
-                let (Some(text), Some(inclusion)) = (&ledger.entry, &ledger.inclusion) else {
-                    return Err(never("the feed carries no ledger entry for it".to_string()));
-                };
-                let entry = match Record::from_bytes(text.as_bytes())? {
-                    Record::Bundle(entry) => entry,
-                    Record::TrustSet(t) => {
-                        return Err(never(format!(
-                            "the ledger entry the feed carries logs trust set version {}, not \
-                             a publish of this bundle",
-                            t.trust_set_version
-                        )));
-                    }
-                };
-                let mismatch = [
-                    ("event", entry.event.to_string(), Event::Publish.to_string()),
-                    ("channel", entry.channel.clone(), feed.channel.clone()),
-                    ("bundle", entry.bundle.clone(), release.name.clone()),
-                    (
-                        "version",
-                        entry.version.to_string(),
-                        release.version.to_string(),
-                    ),
-                    (
-                        "bundle_digest",
-                        entry.bundle_digest.to_string(),
-                        release.sha256.to_string(),
-                    ),
-                ]
-                .into_iter()
-                .find(|(_, found, wanted)| found != wanted);
-                if let Some((field, found, wanted)) = mismatch {
-                    return Err(never(format!(
-                        "the ledger entry the feed carries has {field} {found}, not {wanted}"
-                    )));
-                }
-                if entry.feed_sequence > feed.sequence {
-                    return Err(never(format!(
-                        "the ledger entry the feed carries is for feed sequence {}, after this \
-                         feed's {}",
-                        entry.feed_sequence, feed.sequence
-                    )));
-                }
-                inclusion
-                    .verify(&crate::format::merkle::leaf_hash(text.as_bytes()), &head)
-                    .map_err(|e| {
-                        never(format!(
-                            "its publish entry is not in the ledger's tree head of size {} ({e})",
-                            head.tree_size
-                        ))
-                    })?;
-                Some(entry)
-            }
-        };
+        let entry = feed_entry(feed, ledger, &head).map_err(refuse)?;
         let walk = match &self.remembered {
             Some(seen) => Walk::start(seen, &head, &ledger.consistency)?,
             None => None,
@@ -960,10 +912,98 @@ impl LedgerVerifier {
         let check = LedgerCheck {
             tree_head: head,
             signers: report.valid,
-            entry,
+            entry: Some(entry),
         };
         Ok((check, walk))
     }
+}
+
+/// The entry a feed carries, checked to be the one its own change appended: format 2, the
+/// feed's channel and sequence, offering exactly what the feed offers, and the last leaf of
+/// the signed tree head the feed carries. Being the last leaf makes it the newest entry of the
+/// whole ledger at that head, so of its channel too: an older entry (a withdrawn release's
+/// publish) is never the last leaf of a head that logged something after it. Returns the
+/// reason, for the caller's message, when it is not.
+fn feed_entry(
+    feed: &Feed,
+    ledger: &FeedLedger,
+    head: &crate::format::merkle::TreeHead,
+) -> std::result::Result<Entry, String> {
+    let (Some(text), Some(inclusion)) = (&ledger.entry, &ledger.inclusion) else {
+        return Err("the feed carries no ledger entry".into());
+    };
+    let entry = match Record::from_bytes(text.as_bytes()).map_err(|e| e.to_string())? {
+        Record::Bundle(entry) => entry,
+        Record::TrustSet(t) => {
+            return Err(format!(
+                "the ledger entry the feed carries logs trust set version {}, not the feed's \
+                 own change",
+                t.trust_set_version
+            ));
+        }
+    };
+    if !entry.is_bound() {
+        return Err(format!(
+            "the ledger entry the feed carries is in the old entry format (format \
+             {LEGACY_ENTRY_FORMAT}), which does not bind a feed; the publisher must publish or \
+             renew the channel with a version of ampoule that writes format {ENTRY_FORMAT}"
+        ));
+    }
+    if entry.channel != feed.channel {
+        return Err(format!(
+            "the ledger entry the feed carries is for channel {}",
+            entry.channel
+        ));
+    }
+    if entry.feed_sequence != feed.sequence {
+        return Err(format!(
+            "the ledger entry the feed carries was appended for feed sequence {}, not {}",
+            entry.feed_sequence, feed.sequence
+        ));
+    }
+    let describe = |o: Option<(&str, &Version, &Digest, u8)>| match o {
+        Some((name, version, sha256, rollout)) => {
+            format!("{name} {version} (sha256 {sha256}) at {rollout}% rollout")
+        }
+        None => "nothing".to_string(),
+    };
+    let logged = entry
+        .offered()
+        .map(|o| (o.bundle.as_str(), &o.version, &o.bundle_digest, o.rollout_percent));
+    let offered = feed
+        .release
+        .as_ref()
+        .map(|r| (r.name.as_str(), &r.version, &r.sha256, r.rollout_percent));
+    let same = match (logged, offered) {
+        (None, None) => true,
+        (Some(a), Some(b)) => a == b,
+        _ => false,
+    };
+    if !same {
+        return Err(format!(
+            "the ledger entry the feed carries offers {}, not {}",
+            describe(logged),
+            describe(offered)
+        ));
+    }
+    let last = head.tree_size.checked_sub(1);
+    if Some(inclusion.leaf_index) != last {
+        return Err(format!(
+            "the ledger entry the feed carries is entry {} of the tree head of size {}, not its \
+             newest; an older entry is not the channel's current state",
+            inclusion.leaf_index, head.tree_size
+        ));
+    }
+    inclusion
+        .verify(&crate::format::merkle::leaf_hash(text.as_bytes()), head)
+        .map_err(|e| {
+            format!(
+                "the ledger entry the feed carries is not in the ledger's tree head of size {} \
+                 ({e})",
+                head.tree_size
+            )
+        })?;
+    Ok(entry)
 }
 
 #[cfg(test)]

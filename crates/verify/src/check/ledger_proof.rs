@@ -1,6 +1,7 @@
 //! The checks a device makes of the audit ledger before it trusts a release: the tree head is
-//! signed by the keys holding the tree-head role, the release's publish entry is in it, and the
-//! ledger only ever grew since the largest tree head the device saw before.
+//! signed by the keys holding the tree-head role, the feed's own entry is its last leaf (that
+//! part reads the feed and lives in `check/feed.rs`), and the ledger only ever grew since the
+//! largest tree head the device saw before.
 //!
 //! A bundle signed with a stolen key and sent to one device in a feed of its own is refused
 //! unless its publish entry is in a signed ledger that extends what the device saw; to put it
@@ -35,7 +36,8 @@ pub struct LedgerCheck {
     pub tree_head: TreeHead,
     /// The trusted keys that signed it.
     pub signers: Vec<KeyId>,
-    /// The publish entry of the feed's release, checked to be in the tree.
+    /// The entry the feed's own change appended (format 2), checked to be the tree head's
+    /// last leaf; `Some` whenever the check passed.
     pub entry: Option<Entry>,
 }
 
@@ -120,7 +122,9 @@ impl Walk {
                 ErrorKind::Stale,
                 format!(
                     "ledger tree head of size {} is smaller than the tree head of size {} this \
-                     device saw before; refusing a rolled-back ledger",
+                     device saw before; refusing a rolled-back ledger (after a channel switch, \
+                     the new channel's feed is taken once a renewal of it carries a head at \
+                     least that large: 'ampoule publish' of its current bundle renews it)",
                     head.tree_size, seen.tree_size
                 ),
             ));

@@ -7,7 +7,7 @@
 //! 1. take the store's download lock (a second updater waits for nothing and fails cleanly);
 //! 2. verify the channel's feed under the trust the device holds now: signatures, channel,
 //!    freshness, sequence against what the store accepted, the ledger's signed tree head and
-//!    the inclusion proof of the feed's release;
+//!    the feed's own ledger entry (its sequence, its offer, the head's last leaf);
 //! 3. follow a trust-set rotation the feed names (accepted only as the successor of the set
 //!    the device holds, and stored before anything else), then verify the feed again under it;
 //! 4. prove the ledger only grew since the largest tree head the store remembers, walking the
