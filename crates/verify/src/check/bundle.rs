@@ -229,7 +229,7 @@ impl Verifier {
     /// payload size the signed manifest declares. Returns the manifest and the bundle's exact
     /// length, which the bundle signers thereby fixed: a feed that states another size is not
     /// telling the truth about this bundle.
-    pub(crate) fn check_head(&self, file: &mut File) -> Result<(Manifest, u64)> {
+    pub(crate) fn check_head(&self, file: &mut File) -> Result<(Manifest, Vec<u8>, u64)> {
         file.seek(SeekFrom::Start(0))
             .map_err(|e| Error::io("cannot read the bundle's head", e))?;
         let head = bundle::read_head(&mut io::BufReader::new(
@@ -262,7 +262,7 @@ impl Verifier {
                 ),
             ));
         }
-        Ok((manifest, len))
+        Ok((manifest, head.manifest, len))
     }
 
     /// Checks only a manifest's signatures (no policy): for the store's proof of its highest

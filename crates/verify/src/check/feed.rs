@@ -825,7 +825,17 @@ impl VerifiedFeed {
     /// and (with the ledger) the manifest the feed's entry logs for its offer, so a bundle signed but never
     /// published is refused even when a feed points to it.
     pub(crate) fn check_bundle(&self, release: &Release, bundle: &VerifiedBundle) -> Result<()> {
-        let m = bundle.manifest();
+        self.check_manifest(release, bundle.manifest(), bundle.manifest_bytes())
+    }
+
+    /// [`VerifiedFeed::check_bundle`] on a manifest alone (its parsed form and exact bytes):
+    /// the session checks a bundle's head with it before the payload is downloaded.
+    pub(crate) fn check_manifest(
+        &self,
+        release: &Release,
+        m: &crate::format::manifest::Manifest,
+        manifest_bytes: &[u8],
+    ) -> Result<()> {
         if m.name != release.name || m.version != release.version {
             return Err(Error::new(
                 ErrorKind::Feed,
@@ -840,7 +850,7 @@ impl VerifiedFeed {
             .and_then(|l| l.entry.as_ref())
             .and_then(|e| e.offered());
         if let Some(offered) = logged {
-            let manifest_sha256 = Digest::of(bundle.manifest_bytes());
+            let manifest_sha256 = Digest::of(manifest_bytes);
             if manifest_sha256 != offered.manifest_digest {
                 return Err(Error::new(
                     ErrorKind::Proof,

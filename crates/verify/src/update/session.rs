@@ -672,17 +672,14 @@ impl<'d> Session<'d> {
                 ),
             ));
         }
-        let (manifest, len) = bundles.check_head(&mut file).map_err(refuse)?;
-        if manifest.name != release.name || manifest.version != release.version {
-            return Err(refuse(Error::new(
-                ErrorKind::Feed,
-                format!(
-                    "feed offers {} {}, but the bundle at its URL is {} {}; refusing it before \
-                     its payload is downloaded",
-                    release.name, release.version, manifest.name, manifest.version
-                ),
-            )));
-        }
+        let (manifest, manifest_bytes, len) = bundles.check_head(&mut file).map_err(refuse)?;
+        // The release the feed offers, and the manifest its ledger entry logs.
+        let feed = self
+            .feed
+            .as_ref()
+            .ok_or_else(|| Error::new(ErrorKind::Feed, "no verified feed to check the head on"))?;
+        feed.check_manifest(&release, &manifest, &manifest_bytes)
+            .map_err(|e| refuse(e.context("refused before its payload was downloaded")))?;
         if len != release.size {
             return Err(refuse(Error::new(
                 ErrorKind::Feed,
