@@ -918,6 +918,20 @@ impl Tree {
             None => TrustSet::verify_initial(bytes, signing.now),
             Some(current) => TrustSet::renew(&current.bytes, None, bytes, signing.now),
         }?;
+        // Devices behind on trust sets walk `trust/<n>.json` one version at a time.
+        if let Some(current) = &current
+            && accepted.version() != current.version + 1
+        {
+            return Err(Refused(format!(
+                "trust set version {} does not follow the release tree's version {} directly; \
+                 devices that missed rotations fetch every version in turn, so publish version \
+                 {} next",
+                accepted.version(),
+                current.version,
+                current.version + 1
+            ))
+            .into());
+        }
         let signer = KeyId::of_raw_key(signing.key.verifying_key().as_bytes());
         // The feed announcing the new set is verified under the current one first, then under
         // the new one, so the feed key must hold under both. The current set may have expired

@@ -1431,8 +1431,9 @@ fn read_stored_trust_set(dir: &Path) -> Result<Option<TrustSet>> {
         .map_err(|e| damaged(e.to_string()))
 }
 
-/// The newer of the shipped trust set and the stored one, expiry not checked.
-fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
+/// The newer of the shipped trust set and the stored one, expiry not checked (a device runs
+/// its verified model on an expired set; the update renews it).
+pub(crate) fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
     let initial = TrustSet::self_signed(initial)
         .map_err(|e| e.context("the trust set shipped with the app"))?;
     Ok(match read_stored_trust_set(dir)? {
