@@ -514,3 +514,171 @@ fn issue10_a_clock_in_1970_is_clock_wrong_and_a_clock_in_2100_lets_nothing_expir
         Version::new(1, 0, 0)
     );
 }
+
+/// A trust set written with the library, for roles the CLI's `trust init` cannot give in one
+/// version: each key named in `d` with its roles, thresholds 1 except 2 for trust sets, signed
+/// by a and b.
+fn custom_set(d: &Path, version: u64, keys: &[(&str, &[&str])], out: &str) {
+    use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody, TrustSetFile};
+    use ampoule_verify::{DocumentKind, PublicKey};
+    let entries = keys
+        .iter()
+        .map(|(name, roles)| {
+            let pem = std::fs::read_to_string(d.join(format!("{name}.public.pem"))).expect("pem");
+            KeyEntry::new(
+                &PublicKey::from_pem(&pem).expect("key"),
+                roles
+                    .iter()
+                    .map(|r| r.parse::<DocumentKind>().expect("role"))
+                    .collect(),
+                format!("key {name}"),
+            )
+        })
+        .collect();
+    let body = TrustSetBody {
+        format: 1,
+        version,
+        expires: at(Timestamp::now().unix() + 365 * DAY),
+        keys: entries,
+        thresholds: Thresholds {
+            bundle: 1,
+            feed: 1,
+            tree_head: 1,
+            trust_set: 2,
+        },
+    };
+    let mut file = TrustSetFile::unsigned(body).expect("valid");
+    for signer in ["a", "b"] {
+        let key = ampoule::release::keyfile::read_secret_key(
+            &d.join(format!("{signer}.secret.pem")),
+            &ampoule::release::keyfile::PassphraseSource::None,
+        )
+        .expect("key");
+        let signature = ed25519_dalek::Signer::sign(&key, &file.signing_request()).to_bytes();
+        file.insert_signature(ampoule_verify::signature::SignatureEntry {
+            key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
+            signature,
+        })
+        .expect("under the limit");
+    }
+    std::fs::write(d.join(out), file.to_json()).expect("written");
+}
+
+fn key_id(d: &Path, name: &str) -> ampoule_verify::KeyId {
+    let pem = std::fs::read_to_string(d.join(format!("{name}.public.pem"))).expect("pem");
+    ampoule_verify::PublicKey::from_pem(&pem).expect("key").id()
+}
+
+#[test]
+fn issue10_a_secret_rotation_on_a_forked_ledger_needs_the_old_tree_head_keys() {
+    let dir = setup();
+    let d = dir.path();
+    for name in ["a", "b", "k2", "t", "x"] {
+        ok(
+            d,
+            &[
+                "keygen",
+                "--secret",
+                &format!("{name}.secret.pem"),
+                "--public",
+                &format!("{name}.public.pem"),
+            ],
+        );
+    }
+    std::fs::copy(d.join("k.pub"), d.join("k.public.pem")).expect("the feed key's copy");
+    // The documented configuration: the runner's key k signs feeds only; t, held elsewhere,
+    // signs tree heads; a and b sign bundles and trust sets.
+    let team: &[(&str, &[&str])] = &[
+        ("a", &["bundle", "trust_set"]),
+        ("b", &["bundle", "trust_set"]),
+        ("k", &["feed"]),
+        ("t", &["tree_head"]),
+    ];
+    custom_set(d, 1, team, "trust-1.json");
+    let publish_with = |tree: &str, args: &[&str], head_key: &str| {
+        let mut all = vec!["publish"];
+        all.extend_from_slice(args);
+        all.extend_from_slice(&[
+            "--tree",
+            tree,
+            "--key",
+            "k.pem",
+            "--tree-head-key",
+            head_key,
+        ]);
+        ok(d, &all);
+    };
+    publish_with("tree", &["--trust-set", "trust-1.json"], "t.secret.pem");
+    let bundle = pack(d, "1.0.0", 0, "a.secret.pem");
+    publish_with("tree", &[&bundle, "--channel", "stable"], "t.secret.pem");
+
+    // Whoever holds a, b and the runner's key k, but not t, makes version 2 with a tree-head
+    // key x of their own, and forks the ledger on a copy of the tree, signing its heads with x.
+    custom_set(
+        d,
+        2,
+        &[
+            ("a", &["bundle", "trust_set"]),
+            ("b", &["bundle", "trust_set"]),
+            ("k", &["feed"]),
+            ("x", &["tree_head"]),
+        ],
+        "forged-2.json",
+    );
+    copy_dir(&d.join("tree"), &d.join("fork"));
+    publish_with("fork", &["--trust-set", "forged-2.json"], "x.secret.pem");
+    let fork = serve_tree(d, "fork");
+    let camera = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let report = update(&camera, &fork.addr, Timestamp::now());
+    let sha256 = Digest::of(&std::fs::read(d.join("forged-2.json")).expect("forged"));
+    // The head that logs version 2 in the fork is the third (the set, the bundle, then it).
+    let mut ids = [key_id(d, "k"), key_id(d, "x")];
+    ids.sort();
+    assert_eq!(
+        refusal(&report),
+        (
+            ErrorKind::Proof,
+            format!(
+                "trust set version 2 (sha256 {sha256}) is not in the ledger the feed proves (the \
+                 tree head of size 3 that logs it is not signed by the tree-head keys trusted \
+                 before it: tree head of size 3 has no valid signature by a trusted key (by \
+                 keys not trusted here: {}, {})); refusing a trust set that may have been \
+                 rotated in secret",
+                ids[0], ids[1]
+            )
+        )
+    );
+    assert_eq!(stored_version(d, "cam"), None);
+
+    // The same rotation published in the genuine tree, its heads signed by t, goes through.
+    custom_set(
+        d,
+        2,
+        &[
+            ("a", &["bundle", "trust_set"]),
+            ("b", &["bundle", "trust_set"]),
+            ("k", &["feed"]),
+            ("t", &["tree_head"]),
+            ("k2", &["feed"]),
+        ],
+        "trust-2.json",
+    );
+    publish_with("tree", &["--trust-set", "trust-2.json"], "t.secret.pem");
+    let genuine = serve_tree(d, "tree");
+    let report = update(&camera, &genuine.addr, Timestamp::now());
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+    assert_eq!(report.rotated_to, Some(2));
+}
+
+fn copy_dir(from: &Path, to: &Path) {
+    std::fs::create_dir_all(to).expect("mkdir");
+    for entry in std::fs::read_dir(from).expect("list") {
+        let entry = entry.expect("entry");
+        let target = to.join(entry.file_name());
+        if entry.file_type().expect("type").is_dir() {
+            copy_dir(&entry.path(), &target);
+        } else {
+            std::fs::copy(entry.path(), &target).expect("copy");
+        }
+    }
+}

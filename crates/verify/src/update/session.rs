@@ -17,6 +17,7 @@ use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::digest::{Digest, hash_reader};
 use crate::format::ledger_entry as ledger;
+use crate::format::signed::{Signers, kind};
 use crate::format::time::Timestamp;
 use crate::format::trust_proofs::{self, TrustSetProofs};
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
@@ -195,8 +196,16 @@ struct TrustWalk {
     named: TrustSetRef,
     /// The set accepted last (the device's own at the start).
     last: TrustSet,
-    /// The version and the file's SHA-256 of every set accepted on the way.
-    accepted: Vec<(u64, Digest)>,
+    /// Every set accepted on the way (see [`Accepted`]).
+    accepted: Vec<Accepted>,
+}
+
+/// One set a walk accepted: its version, the SHA-256 of the file fetched, and the tree-head
+/// keys of the set it succeeded, which must have signed the head that logs it.
+struct Accepted {
+    version: u64,
+    sha256: Digest,
+    before: Signers<kind::TreeHead>,
 }
 
 /// The outcome of a finished walk, not stored yet.
@@ -206,7 +215,7 @@ struct Pending {
     /// The set the walk ended on, which the session now verifies with.
     set: TrustSet,
     /// Every set accepted on the way, for the ledger's proofs.
-    accepted: Vec<(u64, Digest)>,
+    accepted: Vec<Accepted>,
 }
 
 enum State {
@@ -508,10 +517,11 @@ impl<'d> Session<'d> {
         };
         // The feed verified under the set the walk ended on; it must name exactly that set
         // (the walk read the name before the feed's signatures could be checked).
-        let (version, sha256) =
-            pending.accepted.last().copied().ok_or_else(|| {
-                Error::new(ErrorKind::TrustSet, "the trust-set walk accepted no set")
-            })?;
+        let (version, sha256) = pending
+            .accepted
+            .last()
+            .map(|a| (a.version, a.sha256))
+            .ok_or_else(|| Error::new(ErrorKind::TrustSet, "the trust-set walk accepted no set"))?;
         match feed.trust_set() {
             Some(named) if named.version == version && named.sha256 == sha256 => {}
             named => {
@@ -599,7 +609,7 @@ impl<'d> Session<'d> {
                 want.url,
                 walk.accepted
                     .first()
-                    .map_or(walk.last.version(), |a| a.0 - 1),
+                    .map_or(walk.last.version(), |a| a.version - 1),
                 walk.named.version
             ))
         })?;
@@ -616,7 +626,11 @@ impl<'d> Session<'d> {
             ));
         }
         let sha256 = Digest::of(bytes);
-        walk.accepted.push((version, sha256));
+        walk.accepted.push(Accepted {
+            version,
+            sha256,
+            before: walk.last.signers::<kind::TreeHead>()?,
+        });
         walk.last = next;
         if version < walk.named.version {
             return self.next_trust_set(walk);
@@ -658,8 +672,8 @@ impl<'d> Session<'d> {
             return Ok(());
         };
         let proofs = TrustSetProofs::from_json(bytes)?;
-        for (version, sha256) in &pending.accepted {
-            proofs.prove(*version, sha256, &check.tree_head)?;
+        for set in &pending.accepted {
+            proofs.prove(set.version, &set.sha256, &check.tree_head, &set.before)?;
         }
         Ok(())
     }
