@@ -682,3 +682,61 @@ fn copy_dir(from: &Path, to: &Path) {
         }
     }
 }
+
+#[test]
+fn issue10_trust_set_proofs_lost_in_a_crash_are_rebuilt_and_an_offline_file_carries_the_walk() {
+    let dir = setup();
+    let d = dir.path();
+    team(d, 3, 365, 365);
+    publish_trust_set(d, "trust-1.json", 7);
+    publish_for(d, &pack_ab(d, "1.0.0", 0), 7);
+    publish_trust_set(d, "trust-2.json", 7);
+    // A crash after an append lost the proofs files (here: all of them). The next append reads
+    // the ledger and its head log through and writes the file for its head again.
+    std::fs::remove_dir_all(d.join("tree/ledger/trust-sets")).expect("removed");
+    publish_trust_set(d, "trust-3.json", 7);
+    let head = read_feed(d, "stable")
+        .ledger
+        .expect("a ledger proof")
+        .tree_head
+        .head();
+    let rebuilt = TrustSetProofs::from_json(
+        &std::fs::read(d.join(format!("tree/ledger/trust-sets/{}.json", head.tree_size)))
+            .expect("rebuilt"),
+    )
+    .expect("valid");
+    assert_eq!(rebuilt.trust_sets.len(), 3);
+
+    // A camera still on version 1, without a network: the technician's offline file holds
+    // versions 1 to 3 and the proofs, and the camera walks them as it would online.
+    ok(
+        d,
+        &[
+            "offline",
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "-o",
+            "stable.ampoule-offline",
+        ],
+    );
+    let listing = std::process::Command::new("tar")
+        .args(["tf", "stable.ampoule-offline"])
+        .current_dir(d)
+        .output()
+        .expect("GNU tar runs");
+    let names = String::from_utf8_lossy(&listing.stdout).into_owned();
+    let proofs = format!("ledger/trust-sets/{}.json", head.tree_size);
+    assert!(
+        names.contains("trust/1.json\ntrust/2.json\ntrust/3.json\n") && names.contains(&proofs),
+        "{names}"
+    );
+    let camera = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let report = camera.install_offline(&d.join("stable.ampoule-offline"), Timestamp::now());
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+    assert_eq!(
+        (report.rotated_to, stored_version(d, "cam")),
+        (Some(3), Some(3))
+    );
+}
