@@ -519,6 +519,23 @@ fn issue10_a_clock_in_1970_is_clock_wrong_and_a_clock_in_2100_lets_nothing_expir
 /// version: each key named in `d` with its roles, thresholds 1 except 2 for trust sets, signed
 /// by a and b.
 fn custom_set(d: &Path, version: u64, keys: &[(&str, &[&str])], out: &str) {
+    custom_set_expiring(
+        d,
+        version,
+        keys,
+        out,
+        at(Timestamp::now().unix() + 365 * DAY),
+    );
+}
+
+/// [`custom_set`] expiring at `expires`.
+fn custom_set_expiring(
+    d: &Path,
+    version: u64,
+    keys: &[(&str, &[&str])],
+    out: &str,
+    expires: Timestamp,
+) {
     use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody, TrustSetFile};
     use ampoule_verify::{DocumentKind, PublicKey};
     let entries = keys
@@ -538,7 +555,7 @@ fn custom_set(d: &Path, version: u64, keys: &[(&str, &[&str])], out: &str) {
     let body = TrustSetBody {
         format: 1,
         version,
-        expires: at(Timestamp::now().unix() + 365 * DAY),
+        expires,
         keys: entries,
         thresholds: Thresholds {
             bundle: 1,
@@ -739,4 +756,58 @@ fn issue10_trust_set_proofs_lost_in_a_crash_are_rebuilt_and_an_offline_file_carr
         (report.rotated_to, stored_version(d, "cam")),
         (Some(3), Some(3))
     );
+}
+
+#[test]
+fn issue10_ampoule_update_renews_an_expired_shipped_trust_set_through_the_tree() {
+    let dir = setup();
+    let d = dir.path();
+    for name in ["a", "b"] {
+        ok(
+            d,
+            &[
+                "keygen",
+                "--secret",
+                &format!("{name}.secret.pem"),
+                "--public",
+                &format!("{name}.public.pem"),
+            ],
+        );
+    }
+    std::fs::copy(d.join("k.pub"), d.join("k.public.pem")).expect("the feed key's copy");
+    let all: &[&str] = &["bundle", "feed", "tree_head", "trust_set"];
+    let keys: &[(&str, &[&str])] = &[("a", all), ("b", all), ("k", all)];
+    // The app shipped version 1, which expired yesterday; the tree runs on version 2.
+    custom_set_expiring(
+        d,
+        1,
+        keys,
+        "trust-1.json",
+        at(Timestamp::now().unix() - DAY),
+    );
+    custom_set(d, 2, keys, "trust-2.json");
+    publish_trust_set(d, "trust-2.json", 7);
+    publish_for(d, &pack_ab(d, "1.0.0", 0), 7);
+    let server = serve_tree(d, "tree");
+    let out = ok(
+        d,
+        &[
+            "update",
+            "--store",
+            "cam",
+            "--feed",
+            &format!("http://{}/feeds/stable.json", server.addr),
+            "--trust-set",
+            "trust-1.json",
+            "--app-version",
+            "2.3.0",
+            "--device-id",
+            "camera-7",
+        ],
+    );
+    assert!(
+        out.starts_with("trust set rotated to version 2; installed trailcam-species 1.0.0"),
+        "{out}"
+    );
+    assert_eq!(stored_version(d, "cam"), Some(2));
 }
