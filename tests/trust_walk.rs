@@ -643,6 +643,46 @@ fn issue10_a_secret_rotation_on_a_forked_ledger_needs_the_old_tree_head_keys() {
         "forged-2.json",
     );
     copy_dir(&d.join("tree"), &d.join("fork"));
+    // The tool refuses: the head that logs version 2 would lack version 1's tree-head key.
+    let (code, message) = refused(
+        d,
+        &[
+            "publish",
+            "--trust-set",
+            "forged-2.json",
+            "--tree",
+            "fork",
+            "--key",
+            "k.pem",
+            "--tree-head-key",
+            "x.secret.pem",
+        ],
+    );
+    assert_eq!(
+        (code, message.as_str()),
+        (
+            1,
+            "ampoule: error: trust set forged-2.json refused; nothing was published: trust set \
+             version 2 must be logged in a tree head signed by 1 \
+             tree-head key(s) of the current version 1, but this publish signs with 0 of them; \
+             devices on version 1 would refuse the new set. Give those keys with \
+             --tree-head-key"
+        )
+    );
+    // So the forger goes around it: in the fork, version 1 is replaced by one of their own
+    // (a and b sign it) that gives x the tree-head role. Devices still hold the real one.
+    custom_set(
+        d,
+        1,
+        &[
+            ("a", &["bundle", "trust_set"]),
+            ("b", &["bundle", "trust_set"]),
+            ("k", &["feed"]),
+            ("x", &["tree_head"]),
+        ],
+        "forged-1.json",
+    );
+    std::fs::copy(d.join("forged-1.json"), d.join("fork/trust/1.json")).expect("replaced");
     publish_with("fork", &["--trust-set", "forged-2.json"], "x.secret.pem");
     let fork = serve_tree(d, "fork");
     let camera = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");

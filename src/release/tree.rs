@@ -967,6 +967,36 @@ impl Tree {
                 .into());
             }
         }
+        // A device accepts the new set only if the tree head that logs it carries the
+        // signatures of the current set's tree-head keys (FORMAT.md, trust-set proofs): a
+        // publish without them would strand every device on the current set.
+        if let Some(current) = &current {
+            let file = TrustSetFile::from_json(&current.bytes)?;
+            let (keys, threshold) = (
+                file.keys_for(DocumentKind::TreeHead),
+                file.threshold(DocumentKind::TreeHead),
+            );
+            let mut signers: Vec<KeyId> = signing_keys(signing)
+                .into_iter()
+                .map(|k| KeyId::of_raw_key(k.verifying_key().as_bytes()))
+                .filter(|id| keys.get(id).is_some())
+                .collect();
+            signers.sort();
+            signers.dedup();
+            if signers.len() < threshold {
+                return Err(Refused(format!(
+                    "trust set version {} must be logged in a tree head signed by {threshold} \
+                     tree-head key(s) of the current version {}, but this publish signs with \
+                     {} of them; devices on version {} would refuse the new set. Give those \
+                     keys with --tree-head-key",
+                    accepted.version(),
+                    current.version,
+                    signers.len(),
+                    current.version
+                ))
+                .into());
+            }
+        }
         Ok((accepted, current))
     }
 
