@@ -851,3 +851,76 @@ fn issue10_ampoule_update_renews_an_expired_shipped_trust_set_through_the_tree()
     );
     assert_eq!(stored_version(d, "cam"), Some(2));
 }
+
+#[test]
+fn issue10_a_server_that_tampers_with_the_walk_is_refused_and_nothing_is_kept() {
+    let dir = setup();
+    let d = dir.path();
+    team(d, 3, 365, 365);
+    publish_trust_set(d, "trust-1.json", 7);
+    publish_for(d, &pack_ab(d, "1.0.0", 0), 7);
+    publish_trust_set(d, "trust-2.json", 7);
+    publish_trust_set(d, "trust-3.json", 7);
+    let server = serve_tree(d, "tree");
+    let camera = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let tree = d.join("tree");
+    let v3 = std::fs::read(tree.join("trust/3.json")).expect("v3");
+
+    // The server hands out version 2 again where version 3 belongs.
+    std::fs::copy(tree.join("trust/2.json"), tree.join("trust/3.json")).expect("swapped");
+    let report = update(&camera, &server.addr, Timestamp::now());
+    assert_eq!(
+        refusal(&report),
+        (
+            ErrorKind::TrustSet,
+            format!(
+                "the trust set at http://{}/trust/3.json (version 3 of the walk from version 1 \
+                 to 3) was refused: trust set version 2 is not newer than the trusted version \
+                 2; refusing to roll trust back",
+                server.addr
+            )
+        )
+    );
+    std::fs::write(tree.join("trust/3.json"), &v3).expect("restored");
+
+    // The server flips one hash of version 3's inclusion proof in the proofs file.
+    let head = read_feed(d, "stable")
+        .ledger
+        .expect("a ledger proof")
+        .tree_head
+        .head();
+    let path = tree.join(format!("ledger/trust-sets/{}.json", head.tree_size));
+    let good = std::fs::read(&path).expect("proofs");
+    let mut proofs = TrustSetProofs::from_json(&good).expect("valid");
+    let last = proofs.trust_sets.last_mut().expect("version 3's proof");
+    let hash = last
+        .inclusion
+        .hashes
+        .first_mut()
+        .expect("a tree of 5 has a path");
+    *hash = Digest::of(b"not the sibling");
+    std::fs::write(&path, proofs.to_json()).expect("tampered");
+    let report = update(&camera, &server.addr, Timestamp::now());
+    let (kind, text) = refusal(&report);
+    let sha256 = Digest::of(&v3);
+    assert_eq!(kind, ErrorKind::Proof);
+    assert!(
+        text.starts_with(&format!(
+            "trust set version 3 (sha256 {sha256}) is not in the ledger the feed proves (its \
+             inclusion proof in the tree head of size 5 does not verify: "
+        )) && text.ends_with("); refusing a trust set that may have been rotated in secret"),
+        "{text}"
+    );
+    assert_eq!(
+        stored_version(d, "cam"),
+        None,
+        "nothing kept from a refused walk"
+    );
+    assert_eq!(report.trust_set_version, Some(1));
+
+    // The genuine files again: the walk goes through.
+    std::fs::write(&path, &good).expect("restored");
+    let report = update(&camera, &server.addr, Timestamp::now());
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+    assert_eq!(stored_version(d, "cam"), Some(3));
+}
