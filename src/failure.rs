@@ -64,6 +64,7 @@ pub const KINDS: &[(&str, u8)] = &[
     ("network", exit::USAGE_OR_IO),
     ("settings", exit::USAGE_OR_IO),
     ("cancelled", exit::USAGE_OR_IO),
+    ("clock", exit::USAGE_OR_IO),
     ("refused", exit::REFUSED),
     ("not_a_bundle", exit::REFUSED),
     ("ledger_problems", exit::REFUSED),
@@ -135,6 +136,7 @@ fn verify_kind_name(kind: ErrorKind) -> &'static str {
         ErrorKind::Network => "network",
         ErrorKind::Settings => "settings",
         ErrorKind::Cancelled => "cancelled",
+        ErrorKind::Clock => "clock",
         // A kind added to the library later still gets a documented name and the library's
         // own verdict on whether it is a refusal.
         other if other.is_refusal() => "refused",
@@ -451,6 +453,7 @@ mod tests {
                 ErrorKind::Network,
                 ErrorKind::Settings,
                 ErrorKind::Cancelled,
+                ErrorKind::Clock,
             ]
             .map(Kind::Verify),
         );

@@ -363,10 +363,15 @@ fn issue9_offline_still_refuses_a_feed_issued_in_the_future() {
     let clock = Timestamp::from_unix(now).expect("now");
     let report = camera.install_offline(&d.join("stable.ampoule-offline"), clock);
     let issued = Timestamp::from_unix(now + DAY).expect("issued");
+    // A wrong clock is a failure to retry once the clock is set, not a refusal (issue 10
+    // item 4); it is still not installed.
+    let Outcome::Failed(e) = &report.outcome else {
+        panic!("expected a failure, got {:?}", report.outcome);
+    };
     assert_eq!(
-        refusal(&report),
+        (e.kind(), e.to_string()),
         (
-            ErrorKind::Stale,
+            ErrorKind::Clock,
             format!(
                 "feed was issued at {issued}, after this device's clock ({clock}) by more than \
                  the allowed 300 s; check the device clock"
@@ -626,8 +631,8 @@ fn issue9_hostile_offline_files_are_refused_with_the_exact_reason() {
             kind: ErrorKind::Malformed,
             message: "offline file entry 'notes.txt' is not allowed: an offline file for \
                       channel 'stable' holds only offline.json, feeds/stable.json, \
-                      trust/<version>.json, ledger/consistency/<size>.json and \
-                      bundles/<sha256>.ampoule"
+                      trust/<version>.json, ledger/trust-sets/<size>.json, \
+                      ledger/consistency/<size>.json and bundles/<sha256>.ampoule"
                 .into(),
         },
         Hostile {

@@ -16,7 +16,7 @@ use ampoule_verify::feed::{Feed, SignedFeed, resolve};
 use ampoule_verify::format::offline::{
     HEADER, Header, bundle_entry, entry_of_url, feed_entry, feed_url, step_entry, trust_set_entry,
 };
-use ampoule_verify::format::{limit, trust_set};
+use ampoule_verify::format::{limit, trust_proofs, trust_set};
 use ampoule_verify::ledger::{CONSISTENCY_DIR, LEDGER_DIR, MAX_STEP_BYTES, MAX_STEPS};
 use ampoule_verify::{Digest, tar};
 use anyhow::{Context, Result, bail};
@@ -47,6 +47,12 @@ struct Contents {
     feed_bytes: Vec<u8>,
     feed: Feed,
     trust_set: Option<(u64, Vec<u8>)>,
+    /// The trust sets before the one the feed names, ascending, as many as a device walks
+    /// (those the tree has), for a device that missed rotations.
+    earlier_trust_sets: Vec<(u64, Vec<u8>)>,
+    /// The ledger's proofs of the trust sets against the feed's tree head, when the tree has
+    /// any.
+    trust_proofs: Option<(u64, Vec<u8>)>,
     /// Each step's old size and file, ascending.
     steps: Vec<(u64, PathBuf)>,
     bundle: Option<PathBuf>,
@@ -100,6 +106,28 @@ impl Contents {
             .ledger
             .as_ref()
             .map_or(0, |l| l.tree_head.head().tree_size);
+        let mut earlier_trust_sets = Vec::new();
+        if let Some((named, _)) = &trust_set {
+            let first = named.saturating_sub(trust_set::MAX_WALK - 1).max(1);
+            for version in first..*named {
+                let path = tree.join(trust_set_entry(version));
+                // A tree started on a later version has none before it.
+                if path.is_file() {
+                    earlier_trust_sets.push((
+                        version,
+                        read_bounded(&path, trust_set::MAX_BYTES, "a trust set")?,
+                    ));
+                }
+            }
+        }
+        let proofs_path = tree.join(trust_proofs::path(head_size));
+        let trust_proofs = match trust_set.is_some() && proofs_path.is_file() {
+            true => Some((
+                head_size,
+                read_bounded(&proofs_path, trust_proofs::MAX_BYTES, "trust-set proofs")?,
+            )),
+            false => None,
+        };
         let steps = steps_below(tree, head_size)?;
         let bundle = match &feed.release {
             Some(release) => {
@@ -129,6 +157,8 @@ impl Contents {
             feed_bytes,
             feed,
             trust_set,
+            earlier_trust_sets,
+            trust_proofs,
             steps,
             bundle,
         })
@@ -146,8 +176,11 @@ impl Contents {
         let w = &mut buffered;
         put(w, HEADER, header.as_bytes(), mtime).map_err(io)?;
         put(w, &feed_entry(&self.channel), &self.feed_bytes, mtime).map_err(io)?;
-        if let Some((version, bytes)) = &self.trust_set {
+        for (version, bytes) in self.earlier_trust_sets.iter().chain(&self.trust_set) {
             put(w, &trust_set_entry(*version), bytes, mtime).map_err(io)?;
+        }
+        if let Some((size, bytes)) = &self.trust_proofs {
+            put(w, &trust_proofs::path(*size), bytes, mtime).map_err(io)?;
         }
         for (size, path) in &self.steps {
             let bytes = read_bounded(path, MAX_STEP_BYTES, "a consistency step")?;

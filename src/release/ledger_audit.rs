@@ -238,6 +238,8 @@ fn append_bytes(
     if old_size > 0 {
         write_step(root, &tree_head, &consistency)?;
     }
+    // Devices following several trust-set rotations prove each set against this head.
+    crate::release::trust_proofs::write(root, &ledger, old_size, index, bytes)?;
     Ok((ledger, index, tree_head, consistency))
 }
 

@@ -12,4 +12,5 @@ pub mod serve;
 pub mod synth;
 pub mod tree;
 pub mod tree_records;
+pub mod trust_proofs;
 pub mod ustar;

@@ -949,6 +949,20 @@ impl Tree {
             None => TrustSet::verify_initial(bytes, signing.now),
             Some(current) => TrustSet::renew(&current.bytes, None, bytes, signing.now),
         }?;
+        // Devices behind on trust sets walk `trust/<n>.json` one version at a time.
+        if let Some(current) = &current
+            && accepted.version() != current.version + 1
+        {
+            return Err(Refused(format!(
+                "trust set version {} does not follow the release tree's version {} directly; \
+                 devices that missed rotations fetch every version in turn, so publish version \
+                 {} next",
+                accepted.version(),
+                current.version,
+                current.version + 1
+            ))
+            .into());
+        }
         let signer = KeyId::of_raw_key(signing.key.verifying_key().as_bytes());
         // The feed announcing the new set is verified under the current one first, then under
         // the new one, so the feed key must hold under both. The current set may have expired
@@ -980,6 +994,36 @@ impl Tree {
                     "trust set version {} needs {threshold} feed signatures, but the release tree \
                      signs each feed with one key; set its feed threshold to 1",
                     set.version()
+                ))
+                .into());
+            }
+        }
+        // A device accepts the new set only if the tree head that logs it carries the
+        // signatures of the current set's tree-head keys (FORMAT.md, trust-set proofs): a
+        // publish without them would strand every device on the current set.
+        if let Some(current) = &current {
+            let file = TrustSetFile::from_json(&current.bytes)?;
+            let (keys, threshold) = (
+                file.keys_for(DocumentKind::TreeHead),
+                file.threshold(DocumentKind::TreeHead),
+            );
+            let mut signers: Vec<KeyId> = signing_keys(signing)
+                .into_iter()
+                .map(|k| KeyId::of_raw_key(k.verifying_key().as_bytes()))
+                .filter(|id| keys.get(id).is_some())
+                .collect();
+            signers.sort();
+            signers.dedup();
+            if signers.len() < threshold {
+                return Err(Refused(format!(
+                    "trust set version {} must be logged in a tree head signed by {threshold} \
+                     tree-head key(s) of the current version {}, but this publish signs with \
+                     {} of them; devices on version {} would refuse the new set. Give those \
+                     keys with --tree-head-key",
+                    accepted.version(),
+                    current.version,
+                    signers.len(),
+                    current.version
                 ))
                 .into());
             }

@@ -65,7 +65,9 @@ use crate::{
 ///
 /// **What is lost:** a bundle signed with a stolen key and offered to one device in a feed of
 /// its own is installed without ever appearing where auditors look; a rolled-back or forked
-/// ledger goes unnoticed. Only for release trees published before the ledger existed.
+/// ledger goes unnoticed; and a trust set the device rotates to need not be logged either, so
+/// whoever holds a trust-set threshold and the feed key can rotate one device in secret. Only
+/// for release trees published before the ledger existed.
 pub fn skip_ledger(app: App) -> App {
     app.without_ledger()
 }

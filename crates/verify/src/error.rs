@@ -44,8 +44,8 @@ pub enum ErrorKind {
     TrustSet,
     /// A feed is not valid: envelope, JSON, field values, channel, format version.
     Feed,
-    /// A validly signed feed is not current: expired, issued in the future, or older than
-    /// the one accepted before (a replay).
+    /// A validly signed feed is not current: expired, or older than the one accepted before
+    /// (a replay). One issued in the future is [`ErrorKind::Clock`].
     Stale,
     /// A transfer failed: connection, timeout, HTTP status, redirect, a server that sent
     /// fewer or more bytes than the feed declares. Trying again later may work.
@@ -55,6 +55,11 @@ pub enum ErrorKind {
     Settings,
     /// The app cancelled a transfer; a partial download is kept for the next try.
     Cancelled,
+    /// This device's clock cannot be right: a validly signed feed was issued after it (a
+    /// board without a real-time clock that booted in 1970, say), or it reads earlier than a
+    /// time the device verified before. Nothing was changed; set the clock (network time) and
+    /// try again.
+    Clock,
 }
 
 impl ErrorKind {
@@ -68,6 +73,7 @@ impl ErrorKind {
                 | ErrorKind::Network
                 | ErrorKind::Settings
                 | ErrorKind::Cancelled
+                | ErrorKind::Clock
         )
     }
 }

@@ -537,11 +537,13 @@ impl FeedVerifier {
         }
         let stale = |message: String| Err(Error::new(ErrorKind::Stale, message));
         if feed.issued.unix() > now.unix().saturating_add(self.skew_secs) {
-            return stale(format!(
+            // Signed by trusted keys, so the clock is the likelier fault: a failure to retry
+            // once the clock is set, not a refusal of the feed.
+            return Err(Error::new(ErrorKind::Clock, format!(
                 "feed was issued at {}, after this device's clock ({now}) by more than the \
                  allowed {} s; check the device clock",
                 feed.issued, self.skew_secs
-            ));
+            )));
         }
         if self.expiry == Expiry::Checked
             && feed.expires.unix().saturating_add(self.skew_secs) < now.unix()
@@ -647,15 +649,17 @@ impl VerifiedFeed {
         self.feed.expires
     }
 
-    /// The feed's sequence: the store remembers it (with [`VerifiedFeed::digest`]) once the
-    /// device acted on the feed, and refuses a lower one from then on.
+    /// The feed's sequence: the store remembers it (with the digest of the feed's text) once
+    /// the device acted on the feed, and refuses a lower one from then on.
     pub fn sequence(&self) -> u64 {
         self.feed.sequence
     }
 
-    /// SHA-256 of the signed feed text.
-    pub fn digest(&self) -> Digest {
-        self.digest
+    pub_for_release! {
+        /// SHA-256 of the signed feed text (the store keeps it; apps need not).
+        fn digest(&self) -> Digest {
+            self.digest
+        }
     }
 
     pub_for_release! {

@@ -489,15 +489,18 @@ impl TrustSet {
     /// at `now`. This set may itself have expired. The device then stores the new set's
     /// [`TrustSet::to_json`] bytes and uses the new set from then on.
     pub fn accept_successor(&self, bytes: &[u8], now: Timestamp) -> Result<TrustSet> {
-        let next = self.successor_of_any_age(bytes)?;
+        let next = self.accept_step(bytes)?;
         next.file.check_expiry(now)?;
         Ok(next)
     }
 
-    /// [`TrustSet::accept_successor`] without the expiry check: for re-checking a chain of
-    /// sets the device accepted one by one, each when it was current. The newest set's expiry
-    /// is the caller's to check.
-    pub(crate) fn successor_of_any_age(&self, bytes: &[u8]) -> Result<TrustSet> {
+    /// [`TrustSet::accept_successor`] without the expiry check: one step of a device's walk
+    /// through several versions at once (`trust/<n>.json`, n from its own version up to the
+    /// one a feed names), where a set in the middle may have expired since it was published.
+    /// Its keys then authorise only the next set, as an expired set's keys always may; the
+    /// walk checks the expiry of the set it ends on, which is the one that verifies anything.
+    /// The store re-checks its chain of accepted sets with it too.
+    pub(crate) fn accept_step(&self, bytes: &[u8]) -> Result<TrustSet> {
         let next = TrustSetFile::from_json(bytes)?;
         let (new, old) = (next.version(), self.version());
         if new <= old {

@@ -19,6 +19,7 @@ pub mod signature;
 pub mod signed;
 pub mod tar;
 pub mod time;
+pub mod trust_proofs;
 // Generated tables (crates/verify/tools/unicode_tables.py), kept as written.
 #[rustfmt::skip]
 pub mod unicode;
@@ -117,6 +118,17 @@ pub mod trust_set {
     pub const MAX_KEYS: usize = 32;
     /// The longest comment on a key, in bytes.
     pub const COMMENT_BYTES: usize = 128;
+    /// The most trust-set versions a device follows in one update, from its own to the one
+    /// a feed names, each accepted as the successor of the one before: enough for years of
+    /// rotations by a device left in a drawer, yet a bound on what a server can make it
+    /// fetch. A device further behind needs an app that ships a newer trust set.
+    pub const MAX_WALK: u64 = 32;
+
+    /// Where trust set `version` is, relative to a feed's URL (`feeds/<channel>.json`):
+    /// `../trust/<version>.json`.
+    pub fn reference(version: u64) -> String {
+        format!("../{}/{version}.json", super::tree::TRUST_DIR)
+    }
 }
 
 /// The directories of a release tree that devices read, relative to its root. The release
@@ -135,8 +147,10 @@ pub mod tree {
 ///
 /// Entries are named by their paths in the release tree, so a reference in the feed resolved
 /// against [`offline::feed_url`] names an entry (see [`offline::entry_of_url`]). In order:
-/// [`offline::HEADER`], the channel's feed, the trust set the feed names (if any), the
-/// ledger's consistency steps in ascending size (any number up to
+/// [`offline::HEADER`], the channel's feed, the trust set the feed names (if any) with the
+/// versions before it by ascending version (at most [`trust_set::MAX_WALK`] in all), the
+/// ledger's trust-set proofs for the feed's head ([`trust_proofs`]), the ledger's consistency
+/// steps in ascending size (any number up to
 /// [`crate::format::ledger_entry::MAX_STEPS`]), and the bundle the feed offers (if any).
 pub mod offline {
     use serde::{Deserialize, Serialize};

@@ -1095,7 +1095,7 @@ impl Store {
             .map_err(|_| Error::new(ErrorKind::TrustSet, "trust set is not UTF-8"))?;
         chain
             .newest
-            .successor_of_any_age(text.as_bytes())
+            .accept_step(text.as_bytes())
             .map_err(|e| e.context("the trust set to store does not follow the chain"))?;
         let mut sets = chain.sets;
         if sets.len() >= MAX_TRUST_CHAIN {
@@ -1627,7 +1627,7 @@ impl TrustChain {
             if matches!(version, Ok(v) if v <= chain.newest.version()) {
                 continue;
             }
-            match chain.newest.successor_of_any_age(text.as_bytes()) {
+            match chain.newest.accept_step(text.as_bytes()) {
                 Ok(next) => {
                     chain.all.push(next.clone());
                     chain.newest = next;
@@ -1645,6 +1645,12 @@ impl TrustChain {
         }
         Ok(chain)
     }
+}
+
+/// The newest trust set the store's chain proves from the shipped one, expiry not checked (a
+/// device runs its verified model on an expired set; the update renews it).
+pub(crate) fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
+    Ok(TrustChain::read(dir, initial)?.newest)
 }
 
 /// Refuses a feed under a lower sequence than the channel's highest (a replay), or under the

@@ -51,8 +51,11 @@ pub struct Device {
 impl Device {
     /// Opens (or creates) the store in `dir` for `app`, following `channel`. The trust the
     /// device holds is checked now: the newer of the shipped and the stored trust set must be
-    /// signed by its own threshold and not expired at `now`. A store follows one channel: the
-    /// first feed it accepts sets it, and an update on another channel is refused until
+    /// signed by its own threshold. A set that expired by `now` still opens the store and
+    /// still checks the release the device verified and runs ([`Device::current`]): expiry
+    /// stops new installs, not the running model, and the next update renews the set through
+    /// the tree (or reports why it cannot). A store follows one channel: the first feed it
+    /// accepts sets it, and an update on another channel is refused until
     /// [`Device::switch_channel`].
     ///
     /// # Errors
@@ -63,7 +66,10 @@ impl Device {
     pub fn open(dir: &Path, channel: &str, app: App, now: Timestamp) -> Result<Device> {
         crate::check::feed::check_channel(channel)
             .map_err(|e| Error::new(ErrorKind::Settings, e.to_string()))?;
-        let held = Held::load(&app.trust, dir, now)?;
+        // Expiry is the update's to check (see above); `now` stays in the signature so that
+        // an app's call reads the same whichever way expiry is handled.
+        let _ = now;
+        let held = Held::load(&app.trust, dir)?;
         let mut store =
             Store::open(dir, bundle_verifier(&app, &held)?)?.wait_for_lock(app.lock_wait);
         if let Some(initial) = app.shipped_trust_set() {
@@ -230,7 +236,9 @@ impl Device {
     /// Verifies the bundle file under the trust held now and installs it with no feed; only
     /// through [`crate::dangerous::install_bundle_without_feed`].
     pub(crate) fn install_without_feed(&self, bundle: &Path) -> Result<crate::store::Installed> {
-        let held = self.held(Timestamp::now())?;
+        let held = self.held()?;
+        // Expiry stops new installs, this one included.
+        held.check_unexpired(Timestamp::now())?;
         let mut store = self.store.clone();
         if let Some(set) = held.set() {
             store = store.with_trust_set(set)?;
@@ -321,9 +329,9 @@ impl Device {
         &self.app
     }
 
-    /// The trust held now and the verifiers built on it.
-    pub(crate) fn held(&self, now: Timestamp) -> Result<Held> {
-        Held::load(&self.app.trust, self.store.dir(), now)
+    /// The trust held now (possibly expired: see [`Held::load`]).
+    pub(crate) fn held(&self) -> Result<Held> {
+        Held::load(&self.app.trust, self.store.dir())
     }
 
     /// The downloads directory, created if missing, opened without following a link

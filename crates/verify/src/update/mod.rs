@@ -5,11 +5,14 @@
 //! Every app runs the same steps in the same order, so no app can leave one out:
 //!
 //! 1. take the store's download lock (a second updater waits for nothing and fails cleanly);
-//! 2. verify the channel's feed under the trust the device holds now: signatures, channel,
+//! 2. when the feed names a newer trust set than the device holds, walk the tree's trust sets
+//!    from the device's version to that one (`trust/<n>.json`, each accepted only as the
+//!    successor of the one before, at most 32), then verify the feed under the last one;
+//! 3. verify the channel's feed under the trust the device holds now: signatures, channel,
 //!    freshness, sequence against what the store accepted, the ledger's signed tree head and
-//!    the feed's own ledger entry (its sequence, its offer, the head's last leaf);
-//! 3. follow a trust-set rotation the feed names (accepted only as the successor of the set
-//!    the device holds, and stored before anything else), then verify the feed again under it;
+//!    the feed's own ledger entry (its sequence, its offer, the head's last leaf); after a
+//!    walk, the feed must name the set it ended on, and the ledger must log every set on the
+//!    way (the tree's `ledger/trust-sets/<size>.json`); only then are the new sets stored;
 //! 4. prove the ledger only grew since the largest tree head the store remembers, walking the
 //!    tree's consistency steps when the device missed appends;
 //! 5. decide by the store's version floor, the app's version, the rollout and the app's size
@@ -279,14 +282,24 @@ impl App {
 }
 
 impl Held {
-    /// The trust for a store in `dir` at `now`: the newer of the shipped and the stored
-    /// trust set, unexpired, or the pinned keys.
-    fn load(trust: &Trust, dir: &std::path::Path, now: Timestamp) -> Result<Held> {
+    /// The trust for a store in `dir`: the newer of the shipped and the stored trust set,
+    /// or the pinned keys. The set may have expired: expiry stops new installs, not the
+    /// model the device verified and runs, so opening the store and checking the current
+    /// release still work. Every check of a new document refuses an expired set (a feed
+    /// verifier built from it refuses every feed), and the update renews it through the
+    /// tree when a successor is published there.
+    fn load(trust: &Trust, dir: &std::path::Path) -> Result<Held> {
         match &trust.source {
-            Source::Shipped(initial) => {
-                crate::store::Store::load_trust_set(dir, initial, now).map(Held::Set)
-            }
+            Source::Shipped(initial) => crate::store::newest_trust_set(dir, initial).map(Held::Set),
             Source::Pinned(p) => Ok(Held::Pinned((**p).clone())),
+        }
+    }
+
+    /// Refuses new installs under a trust set that expired before `now`.
+    fn check_unexpired(&self, now: Timestamp) -> Result<()> {
+        match self {
+            Held::Set(set) => set.file().check_expiry(now),
+            Held::Pinned(_) => Ok(()),
         }
     }
 

@@ -1,6 +1,7 @@
 //! Offline install: one update answered from a file instead of a network, for a device that a
 //! technician visits with an SD card. The file holds what the device would have fetched (its
-//! channel's feed, the trust set the feed names, the ledger's consistency steps, the bundle;
+//! channel's feed, the trust sets up to the one the feed names with the ledger's proofs of
+//! them, the ledger's consistency steps, the bundle;
 //! see [`crate::format::offline`]), and the same [`Session`](super::Session) as an online update asks for each
 //! of them, so every check runs, in the same order, with one exception: a device without a
 //! network cannot tell a fresh feed from a stale one, so the feed's expiry is not checked.
@@ -36,6 +37,7 @@ use crate::format::offline::{
 };
 use crate::format::tar::{self, Block, Names};
 use crate::format::time::Timestamp;
+use crate::format::trust_proofs;
 use crate::format::{limit, trust_set};
 use crate::progress::{Progress, ProgressFn, Stage};
 
@@ -45,13 +47,14 @@ use super::{Device, Download, Fetch, Next, Report};
 const ARCHIVE: &str = "offline file";
 
 /// What an entry is, in the only order entries may come: each entry's part must be greater
-/// than the one before, which also refuses a second feed, trust set or bundle, and steps out
-/// of ascending order.
+/// than the one before, which also refuses a second feed, proofs file or bundle, and trust
+/// sets or steps out of ascending order.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
 enum Part {
     Header,
     Feed,
-    TrustSet,
+    TrustSet(u64),
+    TrustProofs,
     Step(u64),
     Bundle,
 }
@@ -61,7 +64,8 @@ impl Part {
         match self {
             Part::Header => HEADER_BYTES,
             Part::Feed => limit::FEED_BYTES,
-            Part::TrustSet => trust_set::MAX_BYTES,
+            Part::TrustSet(_) => trust_set::MAX_BYTES,
+            Part::TrustProofs => trust_proofs::MAX_BYTES,
             Part::Step(_) => MAX_STEP_BYTES,
             Part::Bundle => max_bundle_bytes,
         }
@@ -173,7 +177,10 @@ fn part_of(name: &str, channel: &str) -> Option<Part> {
         .and_then(|n| n.parse::<u64>().ok())
     {
         if n >= 1 && trust_set_entry(n) == name {
-            return Some(Part::TrustSet);
+            return Some(Part::TrustSet(n));
+        }
+        if trust_proofs::path(n) == name {
+            return Some(Part::TrustProofs);
         }
         return (step_entry(n) == name).then_some(Part::Step(n));
     }
@@ -209,6 +216,7 @@ impl OfflineFile {
         let mut entries = BTreeMap::new();
         let mut last = (Part::Header, HEADER.to_string());
         let mut steps = 0usize;
+        let mut trust_sets = 0u64;
         loop {
             let mut h = [0u8; 512];
             tar::read_exact_or_truncated(&mut reader, &mut h, || {
@@ -227,6 +235,18 @@ impl OfflineFile {
                 }
             };
             let part = next_part(&name, &channel, &last, &entries)?;
+            if matches!(part, Part::TrustSet(_)) {
+                trust_sets += 1;
+                if trust_sets > trust_set::MAX_WALK {
+                    return Err(Error::new(
+                        ErrorKind::TooLarge,
+                        format!(
+                            "{ARCHIVE} holds more than {} trust sets",
+                            trust_set::MAX_WALK
+                        ),
+                    ));
+                }
+            }
             if matches!(part, Part::Step(_)) {
                 steps += 1;
                 if steps > MAX_STEPS {
@@ -424,7 +444,8 @@ fn next_part(
         return refuse(format!(
             "{ARCHIVE} entry '{shown}' is not allowed: an offline file for channel '{channel}' \
              holds only {HEADER}, {feed}, trust/<version>.json, \
-             ledger/consistency/<size>.json and bundles/<sha256>.ampoule"
+             ledger/trust-sets/<size>.json, ledger/consistency/<size>.json and \
+             bundles/<sha256>.ampoule"
         ));
     };
     if name == HEADER || seen.contains_key(name) {
@@ -439,7 +460,7 @@ fn next_part(
         let what = if part == Part::Bundle {
             "bundle"
         } else {
-            "trust set"
+            "trust-set proofs file"
         };
         return refuse(format!(
             "{ARCHIVE} entry '{shown}' is a second {what} after '{}'; an offline file holds \
@@ -450,7 +471,8 @@ fn next_part(
     if part < last.0 {
         return refuse(format!(
             "{ARCHIVE} entry '{shown}' is out of order after '{}': the order is {HEADER}, the \
-             feed, the trust set, the consistency steps by ascending size, the bundle",
+             feed, the trust sets by ascending version, the trust-set proofs, the consistency \
+             steps by ascending size, the bundle",
             last.1
         ));
     }
@@ -507,7 +529,9 @@ mod tests {
         for (name, part) in [
             ("offline.json", Some(Part::Header)),
             ("feeds/stable.json", Some(Part::Feed)),
-            ("trust/2.json", Some(Part::TrustSet)),
+            ("trust/2.json", Some(Part::TrustSet(2))),
+            ("ledger/trust-sets/9.json", Some(Part::TrustProofs)),
+            ("ledger/trust-sets/09.json", None),
             ("ledger/consistency/0.json", Some(Part::Step(0))),
             ("ledger/consistency/17.json", Some(Part::Step(17))),
             (bundle.as_str(), Some(Part::Bundle)),
@@ -531,8 +555,10 @@ mod tests {
     #[test]
     fn parts_order_as_the_format_says() {
         assert!(Part::Header < Part::Feed);
-        assert!(Part::Feed < Part::TrustSet);
-        assert!(Part::TrustSet < Part::Step(0));
+        assert!(Part::Feed < Part::TrustSet(1));
+        assert!(Part::TrustSet(1) < Part::TrustSet(2));
+        assert!(Part::TrustSet(u64::MAX) < Part::TrustProofs);
+        assert!(Part::TrustProofs < Part::Step(0));
         assert!(Part::Step(1) < Part::Step(2));
         assert!(Part::Step(u64::MAX) < Part::Bundle);
     }

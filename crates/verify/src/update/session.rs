@@ -13,10 +13,13 @@ use crate::check::feed::{
     Decision, Expiry, FeedVerifier, Release, SignedFeed, TrustSetRef, VerifiedFeed,
 };
 use crate::check::ledger_proof::{LedgerVerifier, Walk};
+use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::digest::{Digest, hash_reader};
 use crate::format::ledger_entry as ledger;
+use crate::format::signed::{Signers, kind};
 use crate::format::time::Timestamp;
+use crate::format::trust_proofs::{self, TrustSetProofs};
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
 use crate::store::{Store, StoreState};
 
@@ -39,8 +42,9 @@ pub enum Next {
     Done(Report),
 }
 
-/// A small document the update needs: a trust set the feed names, or a consistency step of
-/// the ledger. Its bytes are checked when handed in; stop reading at [`Fetch::max_bytes`].
+/// A small document the update needs: a trust set on the way to the one the feed names, the
+/// ledger's proofs that those trust sets were logged, or a consistency step of the ledger.
+/// Its bytes are checked when handed in; stop reading at [`Fetch::max_bytes`].
 #[derive(Debug, Clone)]
 pub struct Fetch {
     url: String,
@@ -54,7 +58,7 @@ impl Fetch {
         &self.url
     }
 
-    /// What it is, for messages: `trust set` or `consistency step`.
+    /// What it is, for messages: `trust set`, `trust-set proofs` or `consistency step`.
     pub fn what(&self) -> &'static str {
         self.what
     }
@@ -176,14 +180,50 @@ pub struct Session<'d> {
     store: Option<Store>,
     feed: Option<VerifiedFeed>,
     rotated_to: Option<u64>,
+    /// Trust sets accepted in memory on the way to the one the feed names, stored only once
+    /// the feed verified under it and the ledger proved every one of them.
+    pending: Option<Pending>,
     answer: Option<Vec<u8>>,
     state: State,
     expiry: Expiry,
 }
 
+/// A walk through the tree's trust sets, from the device's own version up to the one the
+/// feed names: each `trust/<n>.json` accepted as the successor of the one before.
+struct TrustWalk {
+    /// What the (not yet verified) feed names; the feed is verified under the set the walk
+    /// ends on, and must then name exactly that set.
+    named: TrustSetRef,
+    /// The set accepted last (the device's own at the start).
+    last: TrustSet,
+    /// Every set accepted on the way (see [`Accepted`]).
+    accepted: Vec<Accepted>,
+}
+
+/// One set a walk accepted: its version, the SHA-256 of the file fetched, and the tree-head
+/// keys of the set it succeeded, which must have signed the head that logs it.
+struct Accepted {
+    version: u64,
+    sha256: Digest,
+    /// The set itself, stored in the device's trust chain once the walk is proven.
+    set: TrustSet,
+    before: Signers<kind::TreeHead>,
+}
+
+/// The outcome of a finished walk, not stored yet.
+struct Pending {
+    /// The device's version before the walk, reported until the new set is stored.
+    before: u64,
+    /// The set the walk ended on, which the session now verifies with.
+    set: TrustSet,
+    /// Every set accepted on the way, for the ledger's proofs.
+    accepted: Vec<Accepted>,
+}
+
 enum State {
     Start,
-    TrustSet(Fetch, TrustSetRef),
+    TrustSet(Fetch, Box<TrustWalk>),
+    Proofs(Fetch, Box<VerifiedFeed>, Option<Walk>),
     Steps(Fetch, Walk, Box<VerifiedFeed>),
     Decide,
     Download(Download, Release),
@@ -237,6 +277,7 @@ impl<'d> Session<'d> {
             store: None,
             feed: None,
             rotated_to: None,
+            pending: None,
             answer: None,
             state,
             expiry: Expiry::Checked,
@@ -328,7 +369,11 @@ impl<'d> Session<'d> {
             outcome,
             feed: self.feed.take(),
             rotated_to: self.rotated_to,
-            trust_set_version: self.held.as_ref().and_then(Held::set).map(|s| s.version()),
+            // A walk not stored is not what the device holds.
+            trust_set_version: match &self.pending {
+                Some(p) => Some(p.before),
+                None => self.held.as_ref().and_then(Held::set).map(|s| s.version()),
+            },
             removed: self.device.store().take_removed(),
         }
     }
@@ -348,12 +393,22 @@ impl<'d> Session<'d> {
     fn step(&mut self, state: State) -> Result<Step> {
         match state {
             State::Start => self.start(),
-            State::TrustSet(want, named) => match self.answer.take() {
+            State::TrustSet(want, walk) => match self.answer.take() {
                 None => Ok(Step::Ask(
-                    State::TrustSet(want.clone(), named),
+                    State::TrustSet(want.clone(), walk),
                     Next::Fetch(want),
                 )),
-                Some(bytes) => self.rotate(&want, &named, &bytes),
+                Some(bytes) => self.trust_step(&want, *walk, &bytes),
+            },
+            State::Proofs(want, feed, walk) => match self.answer.take() {
+                None => Ok(Step::Ask(
+                    State::Proofs(want.clone(), feed, walk),
+                    Next::Fetch(want),
+                )),
+                Some(bytes) => {
+                    self.prove_trust_sets(&bytes, &feed)?;
+                    self.after_feed(*feed, walk)
+                }
             },
             State::Steps(want, mut walk, feed) => match self.answer.take() {
                 None => Ok(Step::Ask(
@@ -393,7 +448,7 @@ impl<'d> Session<'d> {
     /// Loads the trust held now and checks the feed under it.
     fn start(&mut self) -> Result<Step> {
         let device = self.device;
-        let held = device.held(self.now)?;
+        let held = device.held()?;
         let mut store = device.store().clone();
         if let Some(set) = held.set() {
             store = store.with_trust_set(set)?;
@@ -417,8 +472,32 @@ impl<'d> Session<'d> {
         self.check_feed()
     }
 
-    /// Verifies the feed under the trust held now; follows a rotation it names first.
+    /// Verifies the feed under the trust held now. When the feed names a newer trust set than
+    /// the device's, walks to it first (see [`Session::walk_trust`]), and verifies the feed
+    /// under the set the walk ends on.
     fn check_feed(&mut self) -> Result<Step> {
+        if self.pending.is_none()
+            && let Some(set) = self.held()?.set()
+        {
+            if let Some(named) = named_trust_set(&self.feed_bytes)
+                && named.version > set.version()
+            {
+                return self.walk_trust(set.clone(), named);
+            }
+            if let Err(e) = set.file().check_expiry(self.now) {
+                return Err(Error::new(
+                    ErrorKind::TrustSet,
+                    format!(
+                        "{e}; the feed names no newer trust set. The model in use stays and still \
+                         opens, but nothing new installs until the release tree publishes a \
+                         successor signed by the keys of version {} (ampoule publish \
+                         --trust-set) or the app ships a newer trust set; if the device clock \
+                         is wrong, set it",
+                        set.version()
+                    ),
+                ));
+            }
+        }
         let state = self.store()?.state()?;
         let feeds = self.feed_verifier(&state)?;
         let (feed, walk) = match feeds.verify_before_steps(&self.feed_bytes, self.now) {
@@ -435,23 +514,209 @@ impl<'d> Session<'d> {
                 return Err(e);
             }
         };
-        if let (Some(set), Some(named)) = (self.held()?.set(), feed.trust_set())
-            && named.version > set.version()
-        {
-            let want = Fetch {
-                url: named.url(&self.feed_url)?,
-                what: "trust set",
-                max_bytes: trust_set::MAX_BYTES,
-            };
-            return Ok(Step::Go(State::TrustSet(want, named.clone())));
+        let Some(pending) = &self.pending else {
+            return self.after_feed(feed, walk);
+        };
+        // The feed verified under the set the walk ended on; it must name exactly that set
+        // (the walk read the name before the feed's signatures could be checked).
+        let (version, sha256) = pending
+            .accepted
+            .last()
+            .map(|a| (a.version, a.sha256))
+            .ok_or_else(|| Error::new(ErrorKind::TrustSet, "the trust-set walk accepted no set"))?;
+        match feed.trust_set() {
+            Some(named) if named.version == version && named.sha256 == sha256 => {}
+            named => {
+                return Err(Error::new(
+                    ErrorKind::Feed,
+                    format!(
+                        "the verified feed names {}, not trust set version {version} (sha256 \
+                         {sha256}) that the update walked to",
+                        named.map_or_else(
+                            || "no trust set".to_string(),
+                            |n| format!("trust set version {} (sha256 {})", n.version, n.sha256)
+                        )
+                    ),
+                ));
+            }
         }
+        // Every set the walk accepted must be in the ledger the feed proves.
+        match feed.ledger() {
+            Some(check) => {
+                let want = Fetch {
+                    url: crate::check::feed::resolve(
+                        &self.feed_url,
+                        &trust_proofs::reference(check.tree_head.tree_size),
+                    )?,
+                    what: "trust-set proofs",
+                    max_bytes: trust_proofs::MAX_BYTES,
+                };
+                Ok(Step::Go(State::Proofs(want, Box::new(feed), walk)))
+            }
+            // Only through dangerous::skip_ledger, whose documentation says what is lost.
+            None => self.after_feed(feed, walk),
+        }
+    }
+
+    /// Starts the walk from the device's trust set `own` to the one the feed names: for each
+    /// version after its own, `trust/<n>.json` (relative to the feed), each accepted only as
+    /// the successor of the one before, at most [`trust_set::MAX_WALK`] of them. The feed is
+    /// not verified yet (its keys may be among those the walk leads to), so nothing it says
+    /// is trusted: each set is checked by the signatures of the one before, the last must be
+    /// the file the feed names, and the feed must then verify under it and name it.
+    fn walk_trust(&mut self, own: TrustSet, named: TrustSetRef) -> Result<Step> {
+        let gap = named.version - own.version();
+        if gap > trust_set::MAX_WALK {
+            return Err(Error::new(
+                ErrorKind::TrustSet,
+                format!(
+                    "the feed names trust set version {}, {gap} versions after this device's \
+                     version {}; a device follows at most {} versions in one update, so it \
+                     cannot reach it. Ship an app with trust set version {} or newer",
+                    named.version,
+                    own.version(),
+                    trust_set::MAX_WALK,
+                    named.version - trust_set::MAX_WALK
+                ),
+            ));
+        }
+        let walk = TrustWalk {
+            named,
+            accepted: Vec::new(),
+            last: own,
+        };
+        self.next_trust_set(walk)
+    }
+
+    fn next_trust_set(&self, walk: TrustWalk) -> Result<Step> {
+        let want = Fetch {
+            url: crate::check::feed::resolve(
+                &self.feed_url,
+                &trust_set::reference(walk.last.version() + 1),
+            )?,
+            what: "trust set",
+            max_bytes: trust_set::MAX_BYTES,
+        };
+        Ok(Step::Go(State::TrustSet(want, Box::new(walk))))
+    }
+
+    /// Accepts the trust set the walk asked for as the successor of the one before; fetches
+    /// the next one, or, at the version the feed names, verifies the feed under it.
+    fn trust_step(&mut self, want: &Fetch, mut walk: TrustWalk, bytes: &[u8]) -> Result<Step> {
+        let version = walk.last.version() + 1;
+        let next = walk.last.accept_step(bytes).map_err(|e| {
+            e.context(format_args!(
+                "the trust set at {} (version {version} of the walk from version {} to {}) was \
+                 refused",
+                want.url,
+                walk.accepted
+                    .first()
+                    .map_or(walk.last.version(), |a| a.version - 1),
+                walk.named.version
+            ))
+        })?;
+        if next.version() != version {
+            return Err(Error::new(
+                ErrorKind::TrustSet,
+                format!(
+                    "{} holds trust set version {}, not {version}; a release tree keeps each \
+                     trust set under its own version, and a device follows them one version \
+                     at a time",
+                    want.url,
+                    next.version()
+                ),
+            ));
+        }
+        let sha256 = Digest::of(bytes);
+        walk.accepted.push(Accepted {
+            version,
+            sha256,
+            before: walk.last.signers::<kind::TreeHead>()?,
+            set: next.clone(),
+        });
+        walk.last = next;
+        if version < walk.named.version {
+            return self.next_trust_set(walk);
+        }
+        if sha256 != walk.named.sha256 {
+            return Err(Error::new(
+                ErrorKind::Digest,
+                format!(
+                    "trust set downloaded from {} has SHA-256 {sha256}, but the feed declares {}",
+                    want.url, walk.named.sha256
+                ),
+            ));
+        }
+        walk.last.file().check_expiry(self.now).map_err(|e| {
+            e.context(format_args!(
+                "the trust set at {} that the feed names",
+                want.url
+            ))
+        })?;
+        let before = self.held()?.set().map_or(0, TrustSet::version);
+        self.store = Some(self.store()?.clone().with_trust_set(&walk.last)?);
+        self.held = Some(Held::Set(walk.last.clone()));
+        self.pending = Some(Pending {
+            before,
+            set: walk.last,
+            accepted: walk.accepted,
+        });
+        self.check_feed().map_err(|e| {
+            e.context(format_args!(
+                "feed refused under the new trust set version {version}"
+            ))
+        })
+    }
+
+    /// Checks that the ledger the feed proves logs every trust set the walk accepted, with
+    /// the proofs file for the feed's tree head.
+    fn prove_trust_sets(&self, bytes: &[u8], feed: &VerifiedFeed) -> Result<()> {
+        let (Some(pending), Some(check)) = (&self.pending, feed.ledger()) else {
+            return Ok(());
+        };
+        let proofs = TrustSetProofs::from_json(bytes)?;
+        for set in &pending.accepted {
+            proofs.prove(set.version, &set.sha256, &check.tree_head, &set.before)?;
+        }
+        Ok(())
+    }
+
+    /// The feed passed its own checks (and any trust-set proofs): walk the consistency steps
+    /// it needs, or decide.
+    fn after_feed(&mut self, feed: VerifiedFeed, walk: Option<Walk>) -> Result<Step> {
         match walk {
             Some(walk) => self.walk_or_decide(walk, feed),
             None => {
+                self.keep_trust_set()?;
                 self.feed = Some(feed);
                 Ok(Step::Go(State::Decide))
             }
         }
+    }
+
+    /// Stores the trust set a walk ended on, now that the feed verified under it and the
+    /// ledger proved every set on the way.
+    fn keep_trust_set(&mut self) -> Result<()> {
+        if let Some(pending) = self.pending.take() {
+            let initial = self.device.app().shipped_trust_set().ok_or_else(|| {
+                Error::new(
+                    ErrorKind::TrustSet,
+                    "a trust-set rotation needs a device that runs on trust sets",
+                )
+            })?;
+            // Each set of the walk in turn: the store's chain holds only successors.
+            let store = self.store()?;
+            let result = pending
+                .accepted
+                .iter()
+                .try_for_each(|step| store.save_trust_set(initial, &step.set));
+            if let Err(e) = result {
+                self.pending = Some(pending);
+                return Err(e);
+            }
+            self.rotated_to = Some(pending.set.version());
+        }
+        Ok(())
     }
 
     /// The feed passed every check after a walk through the tree's consistency steps: it is
@@ -461,63 +726,9 @@ impl<'d> Session<'d> {
     /// only with what the update does with the feed, and a refusal leaves the store as it was.
     fn proven(&mut self, feed: VerifiedFeed) -> Result<Step> {
         self.store()?.remember_feed_tree_head(&feed)?;
+        self.keep_trust_set()?;
         self.feed = Some(feed);
         Ok(Step::Go(State::Decide))
-    }
-
-    /// Accepts the trust set the feed named as the successor of the one held, stores it, and
-    /// checks the feed again under it.
-    fn rotate(&mut self, want: &Fetch, named: &TrustSetRef, bytes: &[u8]) -> Result<Step> {
-        let got = Digest::of(bytes);
-        if got != named.sha256 {
-            return Err(Error::new(
-                ErrorKind::Digest,
-                format!(
-                    "trust set downloaded from {} has SHA-256 {got}, but the feed declares {}",
-                    want.url, named.sha256
-                ),
-            ));
-        }
-        let Some(current) = self.held()?.set() else {
-            return Err(Error::new(
-                ErrorKind::TrustSet,
-                "a trust-set rotation needs a device that runs on trust sets",
-            ));
-        };
-        let next = current.accept_successor(bytes, self.now).map_err(|e| {
-            e.context(format_args!(
-                "the trust set at {} that the feed names was refused",
-                want.url
-            ))
-        })?;
-        if next.version() != named.version {
-            return Err(Error::new(
-                ErrorKind::Feed,
-                format!(
-                    "feed names trust set version {} but {} holds version {}",
-                    named.version,
-                    want.url,
-                    next.version()
-                ),
-            ));
-        }
-        let store = self.store()?.clone();
-        let initial = self.device.app().shipped_trust_set().ok_or_else(|| {
-            Error::new(
-                ErrorKind::TrustSet,
-                "a trust-set rotation needs a device that runs on trust sets",
-            )
-        })?;
-        store.save_trust_set(initial, &next)?;
-        self.store = Some(store.with_trust_set(&next)?);
-        self.rotated_to = Some(next.version());
-        self.held = Some(Held::Set(next));
-        self.check_feed().map_err(|e| {
-            e.context(format_args!(
-                "feed refused under the new trust set version {}",
-                named.version
-            ))
-        })
     }
 
     fn walk_or_decide(&mut self, walk: Walk, feed: VerifiedFeed) -> Result<Step> {
@@ -857,4 +1068,24 @@ fn newer_feed_format(feeds: &FeedVerifier, bytes: &[u8], now: Timestamp) -> Opti
             .is_none_or(|last| lasting.sequence >= last)
         && feeds.is_current(lasting.expires, now);
     (ours && lasting.format > FEED_FORMAT_VERSION).then_some(lasting.format)
+}
+
+/// The trust set a feed names, read **without** verifying the feed: a device behind on
+/// trust sets may not hold the keys that signed it. Only where to walk is taken from it;
+/// see [`Session::walk_trust`] for why that is safe. `None` for anything that does not parse,
+/// which the feed's own check then refuses.
+fn named_trust_set(bytes: &[u8]) -> Option<TrustSetRef> {
+    if bytes.len() as u64 > limit::FEED_BYTES {
+        return None;
+    }
+    let signed = SignedFeed::from_json(bytes).ok()?;
+    #[derive(Deserialize)]
+    struct Named {
+        trust_set: Option<TrustSetRef>,
+    }
+    let named = serde_json::from_str::<Named>(&signed.feed)
+        .ok()?
+        .trust_set?;
+    named.validate().ok()?;
+    Some(named)
 }
