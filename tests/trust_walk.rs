@@ -186,7 +186,7 @@ fn at(secs: u64) -> Timestamp {
 }
 
 fn stored_version(d: &Path, store: &str) -> Option<u64> {
-    let bytes = std::fs::read(d.join(store).join("trust-set.json")).ok()?;
+    let bytes = newest_stored_trust_set(&d.join(store))?;
     Some(
         TrustSet::verify_initial(&bytes, at(0))
             .expect("the stored set verifies")
@@ -241,7 +241,7 @@ fn issue10_a_device_two_rotations_behind_catches_up_through_update() {
         (Some(3), Some(3))
     );
     assert_eq!(
-        std::fs::read(d.join("cam/trust-set.json")).expect("stored"),
+        newest_stored_trust_set(&d.join("cam")).expect("stored"),
         std::fs::read(d.join("tree/trust/3.json")).expect("version 3")
     );
     // The next update starts on version 3: nothing to walk.
