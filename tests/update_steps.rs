@@ -911,3 +911,39 @@ fn issue10_a_planted_highest_version_or_model_line_is_not_believed() {
     let state = device.store().state().expect("state");
     assert_eq!(state.highest_version, Some(Version::new(1, 1, 0)));
 }
+
+/// Issue 10 item 1: a planted feed sequence of 2^64-1 or a made-up tree head in `state.json`
+/// used to make the device refuse every genuine feed for good. The store believes them only as
+/// far as the signed feed it kept proves them.
+#[test]
+fn issue10_a_planted_sequence_or_tree_head_is_not_believed() {
+    let dir = setup();
+    let d = dir.path();
+    let (device, _) = camera_on_1_0_0(d);
+    let path = d.join("cam/state.json");
+    let mut state: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&path).expect("state")).expect("json");
+    state["channels"]["stable"]["highest_sequence"] = u64::MAX.into();
+    state["tree_head"] = serde_json::json!({
+        "tree_size": 1_000_000,
+        "root_hash": "ab".repeat(32),
+        "time": 1_800_000_000u64,
+    });
+    std::fs::write(&path, serde_json::to_vec_pretty(&state).expect("json")).expect("plant");
+    let seen = device.store().state().expect("state");
+    assert_eq!(seen.last_feed("stable").map(|(s, _)| s), Some(1));
+    assert_eq!(seen.tree_head.map(|h| h.tree_size), Some(1));
+    publish(d, &pack(d, "1.1.0", 1, "k.pem"), "stable", "100");
+    let (report, _) = drive_partly(&device, d, true);
+    assert_eq!(installed_version(&report), Version::new(1, 1, 0));
+
+    // A kept feed that is not a genuine one proves nothing either: the values are absent,
+    // and the next genuine feed is taken.
+    std::fs::write(d.join("cam/feeds/stable.json"), b"{\"feed\": \"forged\"}").expect("plant");
+    let seen = device.store().state().expect("state");
+    assert_eq!(seen.last_feed("stable"), None);
+    assert_eq!(seen.tree_head, None);
+    publish(d, &pack(d, "1.2.0", 2, "k.pem"), "stable", "100");
+    let (report, _) = drive_partly(&device, d, true);
+    assert_eq!(installed_version(&report), Version::new(1, 2, 0));
+}

@@ -588,6 +588,7 @@ impl FeedVerifier {
             report,
             is_new,
             ledger,
+            bytes: bytes.to_vec(),
         };
         Ok((verified, walk))
     }
@@ -602,6 +603,9 @@ pub struct VerifiedFeed {
     report: SignatureReport,
     is_new: bool,
     ledger: Option<LedgerCheck>,
+    /// The feed file exactly as it was verified: the store keeps it, and believes the
+    /// sequence and tree head it remembers only as far as this signed document backs them.
+    bytes: Vec<u8>,
 }
 
 impl fmt::Debug for VerifiedFeed {
@@ -616,6 +620,11 @@ impl fmt::Debug for VerifiedFeed {
 }
 
 impl VerifiedFeed {
+    /// The feed file exactly as it was verified.
+    pub(crate) fn signed_bytes(&self) -> &[u8] {
+        &self.bytes
+    }
+
     pub_for_release! {
         /// What the ledger check established, when the verifier required one: the device
         /// remembers its tree head ([`crate::Store::remember_tree_head`]) once it acted on the feed.

@@ -94,11 +94,11 @@ use serde::{Deserialize, Serialize};
 
 use crate::format::digest::{Digest, hash_reader};
 use crate::error::{Error, ErrorKind, Result};
-use crate::check::feed::VerifiedFeed;
+use crate::check::feed::{Feed, SignedFeed, VerifiedFeed};
 use crate::format::{entry, limit, trust_set};
 use crate::format::keys::KeyId;
 use crate::format::manifest::{Manifest, Role};
-use crate::format::signed::{Signers, kind};
+use crate::format::signed::{SignedDocument, Signers, kind};
 use crate::format::merkle::TreeHead;
 use crate::format::time::Timestamp;
 use crate::check::trust::{TrustSet, TrustSetFile};
@@ -134,6 +134,11 @@ pub const DOWNLOADS_DIR: &str = "downloads";
 pub const DOWNLOAD_LOCK: &str = "lock";
 /// The refusal the update remembers, in [`DOWNLOADS_DIR`].
 pub const REFUSED_FILE: &str = "refused.json";
+/// The directory of kept feeds: for each channel, the last feed the store accepted on it,
+/// exactly as verified, which backs the channel's sequence and the remembered tree head.
+pub const KEPT_FEEDS_DIR: &str = "feeds";
+const KEPT_TEMP_PREFIX: &str = ".feed.tmp-";
+
 /// The manifest and signatures of the release that set the highest version, which back it.
 pub const HIGHEST_FILE: &str = "highest.json";
 const HIGHEST_TEMP_PREFIX: &str = ".highest.json.tmp-";
@@ -452,6 +457,18 @@ pub struct Store {
     /// it starts counts for the proof of the version floor, so that a release installed under
     /// a set whose key a later set revoked still proves the floor it set (`back_versions`).
     shipped: Option<Arc<Vec<u8>>>,
+    /// Whose signatures the kept feeds and their tree heads need (the device's feed and
+    /// tree-head signers); with them, the feed sequences and the tree head the store remembers
+    /// are what the kept signed feeds prove (`back_feeds`). Without them (the release side's
+    /// tools), `state.json` is shown as it is.
+    documents: Option<Arc<Documents>>,
+}
+
+/// The signers of the documents the store keeps besides manifests.
+#[derive(Debug)]
+pub(crate) struct Documents {
+    feeds: Signers<kind::Feed>,
+    heads: Signers<kind::TreeHead>,
 }
 
 /// Holds the updaters' lock until dropped (closing the file releases it, also when the
@@ -474,6 +491,7 @@ impl Store {
             lock_wait: Duration::ZERO,
             removed: Arc::default(),
             shipped: None,
+            documents: None,
         };
         let root = Dir::open_root(dir, true)
             .map_err(|e| Error::io(format!("cannot create store {}", dir.display()), e))?;
@@ -549,6 +567,9 @@ impl Store {
             )
         })?;
         self.back_versions(root, &mut state);
+        if let Some(documents) = &self.documents {
+            back_feeds(root, documents, &mut state);
+        }
         state.validate().map_err(|why| {
             Error::new(
                 ErrorKind::Store,
@@ -701,6 +722,7 @@ impl Store {
         }
         let channel = feed.feed().channel.as_str();
         let (sequence, digest) = (feed.sequence(), feed.digest());
+        self.keep_feed(&self.root()?, feed)?;
         self.install_inner(
             bundle,
             Some(channel),
@@ -728,6 +750,9 @@ impl Store {
             && known.feed_sha256 == Some(digest)
             && state.channel.is_some()
         {
+            // Nothing new to remember; the feed that backs it is kept (stores written
+            // before the feeds were kept get it now).
+            self.keep_feed(&self.root()?, feed)?;
             return Ok(false);
         }
         if known.is_none() && state.channels.len() >= MAX_CHANNELS {
@@ -751,6 +776,7 @@ impl Store {
         next.format = STATE_FORMAT;
         next.channel.get_or_insert_with(|| channel.to_string());
         let root = self.root()?;
+        self.keep_feed(&root, feed)?;
         self.commit(&root, &next, &mut |_| Ok(()))?;
         sync_dir(&root)?;
         Ok(true)
@@ -871,9 +897,26 @@ impl Store {
     /// not it installed anything.
     pub(crate) fn remember_feed_tree_head(&self, feed: &VerifiedFeed) -> Result<()> {
         match feed.ledger() {
-            Some(check) => self.remember_tree_head(&check.tree_head),
+            Some(check) => {
+                self.keep_feed(&self.root()?, feed)?;
+                self.remember_tree_head(&check.tree_head)
+            }
             None => Ok(()),
         }
+    }
+
+    /// Keeps `feed`'s file as the store's proof of what it accepted on the feed's channel
+    /// (`feeds/<channel>.json`, replaced atomically), unless it is kept already.
+    fn keep_feed(&self, root: &Dir, feed: &VerifiedFeed) -> Result<()> {
+        let channel = feed.feed().channel.as_str();
+        check_channel(channel)?;
+        let dir = open_own_dir(root, KEPT_FEEDS_DIR, &mut |what| self.note_removed(what))?;
+        let name = format!("{channel}.json");
+        if read_capped(&dir, &name, limit::FEED_BYTES).is_ok_and(|b| b == feed.signed_bytes()) {
+            return Ok(());
+        }
+        replace_file(&dir, &name, KEPT_TEMP_PREFIX, feed.signed_bytes(), &mut |_| Ok(()))?;
+        sync_dir(&dir)
     }
 
     /// Remembers `head` as the largest ledger tree head this device verified. A head smaller
@@ -1142,11 +1185,27 @@ impl Store {
     /// checked against the new set's keys, so a revoked key no longer counts.
     pub fn with_trust_set(mut self, trust: &TrustSet) -> Result<Store> {
         self.verifier = self.verifier.with_trust_set(trust)?;
+        if self.documents.is_some() {
+            self.documents = Some(Arc::new(Documents {
+                feeds: trust.signers()?,
+                heads: trust.signers()?,
+            }));
+        }
         Ok(self)
     }
 
     /// This store with the bundle signers of every set of its trust chain from `initial`
     /// (the set shipped with the app), for the proof of its version floor.
+    /// This store with the signers of the feeds and tree heads it keeps (see `documents`).
+    pub(crate) fn with_documents(
+        mut self,
+        feeds: Signers<kind::Feed>,
+        heads: Signers<kind::TreeHead>,
+    ) -> Store {
+        self.documents = Some(Arc::new(Documents { feeds, heads }));
+        self
+    }
+
     pub(crate) fn with_trust_chain(mut self, initial: &[u8]) -> Store {
         self.shipped = Some(Arc::new(initial.to_vec()));
         self
@@ -1651,6 +1710,46 @@ impl TrustChain {
 /// device runs its verified model on an expired set; the update renews it).
 pub(crate) fn newest_trust_set(dir: &Path, initial: &[u8]) -> Result<TrustSet> {
     Ok(TrustChain::read(dir, initial)?.newest)
+}
+
+/// Replaces each channel's sequence and feed digest, and the remembered tree head, with what
+/// the kept feeds prove (issue 10): a kept feed counts only if its signatures meet the feed
+/// threshold and it is the channel's; its tree head counts only if its signatures meet the
+/// tree-head threshold. The tree head is the largest such. A value `state.json` states but no
+/// kept feed backs (a sequence of 2^64-1, a made-up head) is absent, not believed.
+fn back_feeds(root: &Dir, documents: &Documents, state: &mut StoreState) {
+    let kept = root.open_dir(KEPT_FEEDS_DIR).ok();
+    let mut largest: Option<TreeHead> = None;
+    for (channel, known) in state.channels.iter_mut() {
+        let proven = kept
+            .as_ref()
+            .and_then(|dir| kept_feed(dir, channel, documents));
+        known.highest_sequence = proven.as_ref().map(|(feed, _)| feed.sequence);
+        known.feed_sha256 = proven.as_ref().map(|(_, digest)| *digest);
+        let head = proven.and_then(|(feed, _)| {
+            let signed = feed.ledger?.tree_head;
+            signed.check(&documents.heads).ok()?;
+            Some(signed.head())
+        });
+        if let Some(head) = head
+            && largest.is_none_or(|l| head.tree_size > l.tree_size)
+        {
+            largest = Some(head);
+        }
+    }
+    state.tree_head = largest;
+}
+
+/// The kept feed of `channel`, if its signatures verify and it is that channel's.
+fn kept_feed(dir: &Dir, channel: &str, documents: &Documents) -> Option<(Feed, Digest)> {
+    let bytes = read_capped(dir, &format!("{channel}.json"), limit::FEED_BYTES).ok()?;
+    let signed = SignedFeed::from_json(&bytes).ok()?;
+    SignedDocument::<kind::Feed>::new(signed.feed.as_bytes(), &signed.signatures)
+        .ok()?
+        .check(&documents.feeds, "kept feed")
+        .ok()?;
+    let feed = Feed::from_json(signed.feed.as_bytes()).ok()?;
+    (feed.channel == channel).then(|| (feed, Digest::of(signed.feed.as_bytes())))
 }
 
 /// Refuses a feed under a lower sequence than the channel's highest (a replay), or under the

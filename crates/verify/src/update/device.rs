@@ -75,6 +75,12 @@ impl Device {
         if let Some(initial) = app.shipped_trust_set() {
             store = store.with_trust_chain(initial);
         }
+        // What the store remembers of feeds and tree heads is believed only as far as the
+        // kept signed feeds prove it, under the signers the device holds.
+        store = match &held {
+            Held::Set(set) => store.with_documents(set.signers()?, set.signers()?),
+            Held::Pinned(p) => store.with_documents(p.feed.clone(), p.tree_head.clone()),
+        };
         let device_id = match &app.device_id {
             Some(id) => id.clone(),
             None => stored_device_id(&store)?,
