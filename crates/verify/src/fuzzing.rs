@@ -20,7 +20,7 @@
 
 use std::fs::{self, File, OpenOptions};
 use std::io::Write;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::sync::OnceLock;
 
 use ed25519_dalek::{Signer, SigningKey};
@@ -48,6 +48,7 @@ use crate::format::signed::{SignedDocument, kind};
 use crate::format::time::Timestamp;
 use crate::format::{FEED_FORMAT_VERSION, FORMAT_VERSION, context, entry, signed_bytes, tar};
 use crate::store::Store;
+use crate::update::{App, Device, Trust};
 
 /// The secret half of the key every entry point's verifiers trust for every role (the same
 /// fixed seed the crate's integration tests sign with). Public knowledge: only fuzzing uses it.
@@ -601,12 +602,13 @@ pub fn ledger_entry(data: &[u8]) {
 // ---------------------------------------------------------------------------------------------
 // The store
 
-/// This process's store directory: made once, holding one installed release of the seed
-/// bundle, whose `state.json` the target then replaces.
-fn store_dir() -> &'static Path {
-    static DIR: OnceLock<PathBuf> = OnceLock::new();
-    DIR.get_or_init(|| {
-        let dir = scratch("store");
+/// This process's store directory, holding one installed release of the seed bundle, whose
+/// `state.json` the target then replaces; made again if anything removed the release.
+fn store_dir() -> PathBuf {
+    let dir = scratch("store");
+    let releases = dir.join(crate::store::RELEASES_DIR);
+    let installed = fs::read_dir(&releases).is_ok_and(|mut d| d.next().is_some());
+    if !installed {
         let _ = fs::remove_dir_all(&dir);
         let store = Store::open(&dir, verifier()).expect("a fresh store opens");
         let verified = verifier()
@@ -615,15 +617,25 @@ fn store_dir() -> &'static Path {
         store
             .install_without_feed(verified)
             .expect("the seed bundle installs");
-        dir
-    })
+    }
+    dir
+}
+
+/// Removes this process's scratch files (the bundle file and the stores), for tests that run
+/// the entry points in a process that goes on.
+pub fn clean_up() {
+    for name in ["bundle", "store", "device", "offline"] {
+        let path = scratch(name);
+        let _ = fs::remove_dir_all(&path);
+        let _ = fs::remove_file(&path);
+    }
 }
 
 /// `store`: sections `state.json [-- trust-set.json]`, written into a store that holds one
 /// installed release: opening the store (parse and consistency checks of the state), opening
 /// the current release under that state, and loading the trust set the store keeps.
 pub fn store(data: &[u8]) {
-    let dir = store_dir();
+    let dir = &store_dir();
     let parts = sections(data);
     let write = |name: &str, bytes: &[u8]| {
         fs::write(dir.join(name), bytes).expect("the fuzzer can write its store");
@@ -641,6 +653,50 @@ pub fn store(data: &[u8]) {
         let _ = store.stored_trust_set_version();
     }
     let _ = Store::load_trust_set(dir, &initial_trust_set(), now());
+}
+
+/// `offline`: the bytes as an offline file, installed by a device on the fuzz key's trust set
+/// into an empty store: the archive's layout (ustar headers, the order and names of its parts,
+/// each part's cap, the end marker) and then the update it carries, each document through the
+/// checks of the targets above (signatures included, which the fuzzer keeps only where it
+/// leaves a seed's documents whole).
+pub fn offline(data: &[u8]) {
+    let dir = scratch("device");
+    let _ = fs::remove_dir_all(&dir);
+    let file = scratch("offline");
+    fs::write(&file, data).expect("the fuzzer can write its scratch file");
+    let Ok(device) = Device::open(&dir, CHANNEL, app(), now()) else {
+        return;
+    };
+    let _ = device.install_offline(&file, now()).into_result();
+}
+
+fn app() -> App {
+    let trust = Trust::shipped_trust_set(initial_trust_set()).expect("the fuzz trust set verifies");
+    App::new(trust, APP_VERSION)
+        .bundle_name(NAME)
+        .and_then(|app| app.device_id("fuzz-device"))
+        .expect("a valid name and device id")
+        .max_bundle_bytes(1 << 20)
+        .max_unpacked_bytes(1 << 20)
+}
+
+/// An offline file as `ampoule offline` lays it out: its header, the feed, the bundle.
+fn offline_file(feed: &[u8], bundle: &[u8]) -> Vec<u8> {
+    use crate::format::offline::{HEADER, Header, bundle_entry, feed_entry};
+    let mut out = Vec::new();
+    let header = Header::new(CHANNEL).to_json();
+    for (name, data) in [
+        (HEADER.to_string(), header.as_bytes()),
+        (feed_entry(CHANNEL), feed),
+        (bundle_entry(&Digest::of(bundle)), bundle),
+    ] {
+        out.extend_from_slice(&tar::header(&name, data.len() as u64, MADE));
+        out.extend_from_slice(data);
+        out.resize(out.len() + tar::padding(data.len() as u64) as usize, 0);
+    }
+    out.extend_from_slice(&tar::END_OF_ARCHIVE);
+    out
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -793,10 +849,8 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
     let step12 = ledger.step(1, 2).to_json();
     let successor = trust_set_body(2).to_json();
 
-    let state = {
-        let dir = store_dir();
-        fs::read(dir.join(crate::store::STATE_FILE)).expect("the seed store has a state")
-    };
+    let state =
+        fs::read(store_dir().join(crate::store::STATE_FILE)).expect("the seed store has a state");
     let v2_file = trust_set_file(&successor);
 
     let mut seeds: Vec<(&'static str, String, Vec<u8>)> = vec![
@@ -880,6 +934,11 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
             "with-trust-set.txt".into(),
             joined(&[&state, &v2_file]),
         ),
+        (
+            "offline",
+            "release.ampoule-offline".into(),
+            offline_file(&envelope(&full_feed), &bundle),
+        ),
     ];
     seeds.sort_by(|a, b| (a.0, &a.1).cmp(&(b.0, &b.1)));
     seeds
@@ -901,6 +960,7 @@ pub fn run(target: &str, data: &[u8]) -> bool {
         "proofs" => proofs,
         "ledger_entry" => ledger_entry,
         "store" => store,
+        "offline" => offline,
         _ => return false,
     };
     entry(data);

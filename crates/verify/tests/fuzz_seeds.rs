@@ -4,11 +4,18 @@
 //! that writes the seeds with the crate's own writers.
 
 use std::path::{Path, PathBuf};
+use std::sync::Mutex;
 
 use ampoule_verify::feed::FeedVerifier;
 use ampoule_verify::ledger::LedgerVerifier;
-use ampoule_verify::{PublicKey, Timestamp, TrustSet, TrustedKeys, Verifier, fuzzing};
+use ampoule_verify::{
+    App, Device, PublicKey, Timestamp, Trust, TrustSet, TrustedKeys, Verifier, fuzzing,
+};
 use ed25519_dalek::SigningKey;
+
+/// The entry points keep scratch files of this process (a bundle file, a store); the tests
+/// here take turns, and each removes them when it is done.
+static SCRATCH: Mutex<()> = Mutex::new(());
 
 fn corpus_dir() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("../../fuzz/corpus")
@@ -16,6 +23,7 @@ fn corpus_dir() -> PathBuf {
 
 #[test]
 fn fuzz_seeds_and_committed_corpora_run_through_their_targets() {
+    let _turn = SCRATCH.lock().unwrap_or_else(|e| e.into_inner());
     for (target, name, bytes) in fuzzing::seeds() {
         assert!(
             fuzzing::run(target, &bytes),
@@ -44,6 +52,7 @@ fn fuzz_seeds_and_committed_corpora_run_through_their_targets() {
         }
     }
     assert!(ran >= fuzzing::seeds().len(), "ran only {ran} corpus files");
+    fuzzing::clean_up();
 }
 
 fn seed(target: &str, name: &str) -> Vec<u8> {
@@ -59,6 +68,7 @@ fn seed(target: &str, name: &str) -> Vec<u8> {
 /// (regenerate with the test below).
 #[test]
 fn fuzz_seeds_that_stand_for_valid_documents_pass_every_check() {
+    let _turn = SCRATCH.lock().unwrap_or_else(|e| e.into_inner());
     let key = PublicKey::from_raw(
         SigningKey::from_bytes(&fuzzing::FUZZ_KEY)
             .verifying_key()
@@ -95,6 +105,21 @@ fn fuzz_seeds_that_stand_for_valid_documents_pass_every_check() {
     assert_eq!(v2.version(), 2);
     ampoule_verify::merkle::verify_tree_head(&seed("tree_head", "signed.json"), &trusted, 1)
         .expect("the tree-head seed verifies");
+    let trust = Trust::shipped_trust_set(seed("trust_set", "v1.json")).expect("v1 verifies");
+    let app = App::new(trust, "1.4.0".parse().expect("version"))
+        .bundle_name("trailcam-species")
+        .expect("a bundle name");
+    let device = Device::open(&dir.path().join("store"), "stable", app, now).expect("a device");
+    let offline = dir.path().join("seed.ampoule-offline");
+    std::fs::write(&offline, seed("offline", "release.ampoule-offline")).expect("write");
+    let report = device.install_offline(&offline, now);
+    assert_eq!(
+        report.outcome.name(),
+        "installed",
+        "{:?}",
+        report.outcome.error()
+    );
+    fuzzing::clean_up();
 }
 
 /// Writes the seeds into `fuzz/corpus/<target>/`: `cargo test -p ampoule-verify --test
@@ -102,9 +127,11 @@ fn fuzz_seeds_that_stand_for_valid_documents_pass_every_check() {
 #[test]
 #[ignore = "regenerates the committed seed corpora"]
 fn regenerate_fuzz_seeds() {
+    let _turn = SCRATCH.lock().unwrap_or_else(|e| e.into_inner());
     for (target, name, bytes) in fuzzing::seeds() {
         let dir = corpus_dir().join(target);
         std::fs::create_dir_all(&dir).expect("create the corpus directory");
         std::fs::write(dir.join(format!("seed-{name}")), bytes).expect("write a seed");
     }
+    fuzzing::clean_up();
 }
