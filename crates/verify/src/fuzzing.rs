@@ -624,35 +624,42 @@ fn store_dir() -> PathBuf {
 /// Removes this process's scratch files (the bundle file and the stores), for tests that run
 /// the entry points in a process that goes on.
 pub fn clean_up() {
-    for name in ["bundle", "store", "device", "offline"] {
+    for name in ["bundle", "store", "device", "offline", "chain"] {
         let path = scratch(name);
         let _ = fs::remove_dir_all(&path);
         let _ = fs::remove_file(&path);
     }
 }
 
-/// `store`: sections `state.json [-- trust-set.json]`, written into a store that holds one
-/// installed release: opening the store (parse and consistency checks of the state), opening
-/// the current release under that state, and loading the trust set the store keeps.
+/// `store`: sections `state.json [-- trust-set.json [-- trust-chain.json]]`, written into a
+/// store that holds one installed release (a file whose section is absent is removed):
+/// opening the store (parse and consistency checks of the state), opening the current release
+/// under that state, and the trust sets the store keeps, believed only as far as they chain
+/// from the set shipped with the app.
 pub fn store(data: &[u8]) {
     let dir = &store_dir();
     let parts = sections(data);
-    let write = |name: &str, bytes: &[u8]| {
-        fs::write(dir.join(name), bytes).expect("the fuzzer can write its store");
-    };
-    write(crate::store::STATE_FILE, parts[0]);
-    match parts.get(1) {
-        Some(trust) => write(crate::store::TRUST_SET_FILE, trust),
-        None => {
-            let _ = fs::remove_file(dir.join(crate::store::TRUST_SET_FILE));
+    let files = [
+        crate::store::STATE_FILE,
+        crate::store::TRUST_SET_FILE,
+        crate::store::TRUST_CHAIN_FILE,
+    ];
+    for (index, name) in files.into_iter().enumerate() {
+        let path = dir.join(name);
+        match parts.get(index) {
+            Some(bytes) => fs::write(&path, bytes).expect("the fuzzer can write its store"),
+            None => {
+                let _ = fs::remove_file(&path);
+            }
         }
     }
+    let initial = initial_trust_set();
     if let Ok(store) = Store::open(dir, verifier()) {
         let _ = store.state();
         let _ = store.open_current();
-        let _ = store.stored_trust_set_version();
+        let _ = store.trust_chain(&initial);
     }
-    let _ = Store::load_trust_set(dir, &initial_trust_set(), now());
+    let _ = Store::load_trust_set(dir, &initial, now());
 }
 
 /// `offline`: the bytes as an offline file, installed by a device on the fuzz key's trust set
@@ -852,6 +859,21 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
     let state =
         fs::read(store_dir().join(crate::store::STATE_FILE)).expect("the seed store has a state");
     let v2_file = trust_set_file(&successor);
+    let chain = {
+        let dir = scratch("chain");
+        let _ = fs::remove_dir_all(&dir);
+        let initial = initial_trust_set();
+        let v2 = TrustSet::verify_initial(&initial, now())
+            .and_then(|v1| v1.accept_successor(&v2_file, now()))
+            .expect("the seed trust sets chain");
+        Store::open(&dir, verifier())
+            .and_then(|store| store.save_trust_set(&initial, &v2))
+            .expect("a store keeps an accepted trust set");
+        let chain = fs::read(dir.join(crate::store::TRUST_CHAIN_FILE))
+            .expect("the store wrote its trust chain");
+        let _ = fs::remove_dir_all(&dir);
+        chain
+    };
 
     let mut seeds: Vec<(&'static str, String, Vec<u8>)> = vec![
         ("bundle", "valid.ampoule".into(), bundle.clone()),
@@ -933,6 +955,11 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
             "store",
             "with-trust-set.txt".into(),
             joined(&[&state, &v2_file]),
+        ),
+        (
+            "store",
+            "with-trust-chain.txt".into(),
+            joined(&[&state, b"", &chain]),
         ),
         (
             "offline",
