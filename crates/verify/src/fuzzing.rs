@@ -36,7 +36,7 @@ use crate::format::bundle::{read_layout, write_bundle};
 use crate::format::digest::Digest;
 use crate::format::keys::{PublicKey, TrustedKeys};
 use crate::format::ledger_entry::{
-    ConsistencyStep, Entry, Event, FeedLedger, Record, TrustSetEntry,
+    ConsistencyStep, ENTRY_FORMAT, Entry, Event, FeedLedger, Offered, Record, TrustSetEntry,
 };
 use crate::format::manifest::{Compression, FileEntry, Manifest, Payload, Role};
 use crate::format::merkle::{
@@ -747,23 +747,35 @@ impl SeedLedger {
             key_ids: vec![public_key().id()],
             time: MADE - 200,
         });
-        let publish = |version: &str, time: u64, sequence: u64| {
+        let offered = |version: &str| Offered {
+            bundle: NAME.into(),
+            version: version.parse().expect("a fixed version"),
+            bundle_digest: Digest::of(bundle),
+            manifest_digest: Digest::of(manifest),
+            rollout_percent: 100,
+            deltas: Vec::new(),
+        };
+        let entry = |event: Event, version: &str, sequence: u64, offered: Option<Offered>| {
             Record::Bundle(Entry {
-                event: Event::Publish,
+                format: ENTRY_FORMAT,
+                event,
                 channel: CHANNEL.into(),
                 bundle: NAME.into(),
                 version: version.parse().expect("a fixed version"),
                 bundle_digest: Digest::of(bundle),
                 manifest_digest: Digest::of(manifest),
                 key_ids: vec![public_key().id()],
-                time,
+                time: MADE - 100 + sequence,
                 feed_sequence: sequence,
+                offered: Some(offered),
             })
         };
+        // The trust set, two publishes, then a withdraw that leaves nothing offered.
         let entries: Vec<Vec<u8>> = [
             trust,
-            publish("0.9.0", MADE - 100, 1),
-            publish("1.0.0", MADE, 2),
+            entry(Event::Publish, "0.9.0", 1, Some(offered("0.9.0"))),
+            entry(Event::Publish, "1.0.0", 2, Some(offered("1.0.0"))),
+            entry(Event::Withdraw, "1.0.0", 3, None),
         ]
         .iter()
         .map(Record::to_bytes)
@@ -788,16 +800,18 @@ impl SeedLedger {
         }
     }
 
-    fn feed_ledger(&self) -> FeedLedger {
+    /// The ledger object of the feed that appended entry `size - 1`.
+    fn feed_ledger(&self, size: u64) -> FeedLedger {
+        let last = (size - 1) as usize;
         FeedLedger {
-            tree_head: signed_head(self.head(3)),
-            entry: Some(String::from_utf8(self.entries[2].clone()).expect("JSON is UTF-8")),
+            tree_head: signed_head(self.head(size)),
+            entry: Some(String::from_utf8(self.entries[last].clone()).expect("JSON is UTF-8")),
             inclusion: Some(InclusionProof {
-                leaf_index: 2,
-                tree_size: 3,
-                hashes: inclusion_proof(&self.tree, 2, 3).expect("leaf in the ledger"),
+                leaf_index: size - 1,
+                tree_size: size,
+                hashes: inclusion_proof(&self.tree, size - 1, size).expect("leaf in the ledger"),
             }),
-            consistency: self.consistency(2, 3),
+            consistency: self.consistency(size - 1, size),
         }
     }
 
@@ -843,8 +857,8 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
         }),
         ledger,
     };
-    let full_feed = feed(2, Some(release), Some(ledger.feed_ledger())).to_json();
-    let empty_feed = feed(3, None, Some(ledger.feed_ledger())).to_json();
+    let full_feed = feed(2, Some(release), Some(ledger.feed_ledger(3))).to_json();
+    let empty_feed = feed(3, None, Some(ledger.feed_ledger(4))).to_json();
     let envelope = |text: &str| {
         SignedFeed {
             feed: text.to_string(),
@@ -948,7 +962,7 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
         (
             "ledger_entry",
             "feed-ledger.json".into(),
-            serde_json::to_vec(&ledger.feed_ledger()).expect("a ledger object serializes"),
+            serde_json::to_vec(&ledger.feed_ledger(3)).expect("a ledger object serializes"),
         ),
         ("store", "installed.txt".into(), state.clone()),
         (
