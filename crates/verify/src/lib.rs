@@ -71,6 +71,9 @@ mod net;
 // The device's update on top, and the weak paths beside it.
 pub mod dangerous;
 pub mod update;
+// The fuzz targets' entry points (`fuzz/`), beside the top layer: absent from every other build.
+#[cfg(feature = "fuzzing")]
+pub mod fuzzing;
 
 /// The paths the release side and the tests have always used, for the `release` feature.
 #[cfg(feature = "release")]

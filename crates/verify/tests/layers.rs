@@ -22,7 +22,7 @@ const LAYERS: &[Layer] = &[
     ("payload", &["payload/"]),
     ("store", &["store/"]),
     ("net", &["net/"]),
-    ("update", &["update/", "dangerous.rs"]),
+    ("update", &["update/", "dangerous.rs", "fuzzing.rs"]),
 ];
 
 /// lib.rs declares modules and the public API; it may name anything.
