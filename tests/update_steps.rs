@@ -537,43 +537,47 @@ fn removed_mentions(report: &Report, what: &str) -> bool {
     report.removed.iter().any(|r| r.contains(what))
 }
 
-#[test]
-fn issue10_a_link_at_the_partial_download_name_is_unlinked_and_its_target_untouched() {
+/// A camera on 1.0.0 offered 1.1.0, with `plant` run on the download directory, the partial
+/// download's name and a file of the app's own outside the store: the update installs, the
+/// outside file is untouched, and the report names what was removed with `removed`.
+fn planted_at_the_partial_download(plant: impl Fn(&Path, &str, &Path), removed: &str) {
     let dir = setup();
     let d = dir.path();
     let (device, _) = camera_on_1_0_0(d);
     let partial = offer_1_1_0(d);
     let victim = outside_file(d);
-    std::os::unix::fs::symlink(&victim, d.join("cam/downloads").join(&partial))
-        .expect("plant the link");
+    plant(&d.join("cam/downloads"), &partial, &victim);
     let (report, _) = drive_partly(&device, d, true);
     assert_eq!(installed_version(&report), Version::new(1, 1, 0));
     assert_untouched(&victim);
+    let removed = removed.replace("{partial}", &partial);
     assert!(
-        removed_mentions(&report, &format!("{partial} (a symbolic link)")),
-        "{:?}",
+        removed_mentions(&report, &removed),
+        "{removed}: {:?}",
         report.removed
     );
 }
 
 #[test]
+fn issue10_a_link_at_the_partial_download_name_is_unlinked_and_its_target_untouched() {
+    planted_at_the_partial_download(
+        |downloads, partial, victim| {
+            std::os::unix::fs::symlink(victim, downloads.join(partial)).expect("plant the link");
+        },
+        "{partial} (a symbolic link)",
+    );
+}
+
+#[test]
 fn issue10_a_hard_link_at_a_recorded_partial_download_is_never_resumed() {
-    let dir = setup();
-    let d = dir.path();
-    let (device, _) = camera_on_1_0_0(d);
-    let partial = offer_1_1_0(d);
-    let victim = outside_file(d);
-    // The attacker also writes the name into the download lock, as the store records the
-    // download it started.
-    std::fs::write(d.join("cam/downloads/lock"), &partial).expect("record");
-    std::fs::hard_link(&victim, d.join("cam/downloads").join(&partial)).expect("hard link");
-    let (report, _) = drive_partly(&device, d, true);
-    assert_eq!(installed_version(&report), Version::new(1, 1, 0));
-    assert_untouched(&victim);
-    assert!(
-        removed_mentions(&report, "has 2 hard links; a file the store wrote has one"),
-        "{:?}",
-        report.removed
+    planted_at_the_partial_download(
+        |downloads, partial, victim| {
+            // The attacker also writes the name into the download lock, as the store records
+            // the download it started.
+            std::fs::write(downloads.join("lock"), partial).expect("record");
+            std::fs::hard_link(victim, downloads.join(partial)).expect("hard link");
+        },
+        "has 2 hard links; a file the store wrote has one",
     );
 }
 
@@ -699,28 +703,7 @@ fn pack_large(d: &Path, version: &str) -> String {
     let model = format!("large-{version}.bin");
     std::fs::write(d.join(&model), bytes).expect("model");
     let out = format!("large-{version}.ampoule");
-    ok(
-        d,
-        &[
-            "pack",
-            "--model",
-            &model,
-            "--labels",
-            "labels.txt",
-            "--name",
-            "trailcam-species",
-            "--version",
-            version,
-            "--requires-app",
-            ">=2.0.0, <3.0.0",
-            "--created",
-            "2026-12-01T08:00:00Z",
-            "--key",
-            "k.pem",
-            "-o",
-            &out,
-        ],
-    );
+    pack_model(d, &model, version, "k.pem", &out);
     out
 }
 

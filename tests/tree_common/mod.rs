@@ -65,12 +65,27 @@ pub fn pack(d: &Path, version: &str, variant: u8, key: &str) -> String {
         .collect();
     std::fs::write(d.join(&model), bytes).expect("model");
     let out = format!("species-{version}-{variant}.ampoule");
+    pack_model(d, &model, version, key, &out);
+    // The tests name key pairs X.pem and X.pub.
+    let public = d.join(format!("{}.pub", key.trim_end_matches(".pem")));
+    bundle_check::assert_readers_accept(
+        BIN,
+        &d.join(&out),
+        public.is_file().then_some(public.as_path()),
+        "model.bin",
+    );
+    out
+}
+
+/// Packs the model file `model` in `d` as `version` of the trail-camera line, signed with
+/// `key`, into `out`.
+pub fn pack_model(d: &Path, model: &str, version: &str, key: &str, out: &str) {
     ok(
         d,
         &[
             "pack",
             "--model",
-            &model,
+            model,
             "--labels",
             "labels.txt",
             "--name",
@@ -84,18 +99,9 @@ pub fn pack(d: &Path, version: &str, variant: u8, key: &str) -> String {
             "--key",
             key,
             "-o",
-            &out,
+            out,
         ],
     );
-    // The tests name key pairs X.pem and X.pub.
-    let public = d.join(format!("{}.pub", key.trim_end_matches(".pem")));
-    bundle_check::assert_readers_accept(
-        BIN,
-        &d.join(&out),
-        public.is_file().then_some(public.as_path()),
-        "model.bin",
-    );
-    out
 }
 
 pub fn publish(d: &Path, bundle: &str, channel: &str, rollout: &str) -> serde_json::Value {

@@ -361,6 +361,23 @@ fn content_length(response: &Response<Incoming>, url: &str) -> Result<Option<u64
     }
 }
 
+/// Refuses a 206 answer whose Content-Range is not the `expected` one asked for.
+fn check_content_range(response: &Response<Incoming>, url: &str, expected: &str) -> Result<()> {
+    let got = response
+        .headers()
+        .get(header::CONTENT_RANGE)
+        .map(|v| String::from_utf8_lossy(v.as_bytes()).into_owned())
+        .unwrap_or_default();
+    if got != expected {
+        return Err(network(format!(
+            "server answered 206 Partial Content for {url} with Content-Range '{}', but \
+             '{expected}' was asked for",
+            got.chars().take(100).collect::<String>().escape_debug()
+        )));
+    }
+    Ok(())
+}
+
 /// Why reading a body stopped early.
 enum BodyError {
     /// The connection failed mid-body (reset, closed before the declared length, bad framing).
@@ -568,18 +585,7 @@ impl Session {
             match response.status() {
                 StatusCode::PARTIAL_CONTENT => {
                     let expected = format!("bytes {have}-{}/{size}", size.saturating_sub(1));
-                    let got = response
-                        .headers()
-                        .get(header::CONTENT_RANGE)
-                        .map(|v| String::from_utf8_lossy(v.as_bytes()).into_owned())
-                        .unwrap_or_default();
-                    if got != expected {
-                        return Err(network(format!(
-                            "server answered 206 Partial Content for {url} with Content-Range \
-                             '{}', but '{expected}' was asked for",
-                            got.chars().take(100).collect::<String>().escape_debug()
-                        )));
-                    }
+                    check_content_range(&response, url, &expected)?;
                 }
                 StatusCode::OK => {
                     if have > 0 {
@@ -786,18 +792,7 @@ pub fn download_head(
         match response.status() {
             StatusCode::PARTIAL_CONTENT => {
                 let expected = format!("bytes {have}-{}/{size}", upto - 1);
-                let got = response
-                    .headers()
-                    .get(header::CONTENT_RANGE)
-                    .map(|v| String::from_utf8_lossy(v.as_bytes()).into_owned())
-                    .unwrap_or_default();
-                if got != expected {
-                    return Err(network(format!(
-                        "server answered 206 Partial Content for {url} with Content-Range \
-                         '{}', but '{expected}' was asked for",
-                        got.chars().take(100).collect::<String>().escape_debug()
-                    )));
-                }
+                check_content_range(&response, url, &expected)?;
             }
             StatusCode::OK => {
                 // The whole file comes: keep only its first `upto` bytes.
