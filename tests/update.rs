@@ -764,3 +764,74 @@ fn issue12_update_trusts_the_release_key_for_bundles_and_the_feed_key_for_feeds(
         "{installed}"
     );
 }
+
+/// Issue 10 items 3 and 5, with separate `ampoule update` processes and the bytes the server
+/// sent: a feed (signed with the feed key alone) that states a size far above the bundle's
+/// costs the bundle's head once, and nothing more on the next poll, until the app changes.
+#[test]
+fn issue10_separate_updates_download_a_refused_bundles_head_once() {
+    let dir = setup();
+    let d = dir.path();
+    let bundle = pack_large(d, "1.0.0");
+    let real = std::fs::metadata(d.join(&bundle)).expect("bundle").len();
+    publish(d, &bundle, "stable", "100");
+    let claimed = 90 * 1024 * 1024u64;
+    resign_feed(d, "stable", |text| {
+        text.replacen(
+            &format!("\"size\":{real}"),
+            &format!("\"size\":{claimed}"),
+            1,
+        )
+    });
+    let feed_len = std::fs::metadata(d.join("tree/feeds/stable.json"))
+        .expect("feed")
+        .len();
+    let server = serve(d);
+    let head = ampoule_verify::format::limit::HEAD_BYTES;
+
+    let out = update(d, &server, &["--max-size", "104857600"]);
+    assert_eq!(out.status.code(), Some(1), "{}", stderr(&out));
+    assert_eq!(
+        stderr(&out),
+        format!(
+            "ampoule: error: feed offers trailcam-species 1.0.0 as {claimed} bytes, but its \
+             signed manifest makes the bundle {real} bytes; refusing it before its payload is \
+             downloaded"
+        )
+    );
+    assert_eq!(
+        server.bytes_served(),
+        feed_len + head,
+        "the feed and the head alone"
+    );
+
+    let out = update(d, &server, &["--max-size", "104857600"]);
+    assert_eq!(out.status.code(), Some(1), "{}", stderr(&out));
+    assert!(stderr(&out).contains("remembered"), "{}", stderr(&out));
+    assert_eq!(
+        server.bytes_served(),
+        2 * feed_len + head,
+        "the second poll fetched the feed and nothing of the bundle"
+    );
+
+    // Another app version is worth another look: the head once more.
+    let out = Command::new(BIN)
+        .args([
+            "update",
+            "--store",
+            "cam",
+            "--feed",
+            &feed_url(&server),
+            "--trust",
+            "k.pub",
+            "--app-version",
+            "2.4.0",
+            "--max-size",
+            "104857600",
+        ])
+        .current_dir(d)
+        .output()
+        .expect("the ampoule binary runs");
+    assert_eq!(out.status.code(), Some(1), "{}", stderr(&out));
+    assert_eq!(server.bytes_served(), 3 * feed_len + 2 * head);
+}

@@ -689,35 +689,6 @@ fn issue10_a_linked_state_file_is_refused_with_how_to_clear_it() {
 // before the payload is downloaded; a refusal is remembered so that a metered link does not
 // carry the same refused bundle again on every poll.
 
-/// Packs `version` with a 300,000-byte model that does not compress (a linear congruential
-/// sequence, the constants of Numerical Recipes' `ranqd1`, from memory), so the bundle is
-/// larger than its head (129.5 KiB) and the session asks for the head first.
-fn pack_large(d: &Path, version: &str) -> String {
-    let mut x: u32 = 0x2545_f491;
-    let bytes: Vec<u8> = (0..300_000)
-        .map(|_| {
-            x = x.wrapping_mul(1_664_525).wrapping_add(1_013_904_223);
-            (x >> 24) as u8
-        })
-        .collect();
-    let model = format!("large-{version}.bin");
-    std::fs::write(d.join(&model), bytes).expect("model");
-    let out = format!("large-{version}.ampoule");
-    pack_model(d, &model, version, "k.pem", &out);
-    out
-}
-
-/// Re-signs the channel's feed after `change` edits its text, as someone holding the feed key
-/// alone could (the ledger entry and tree head stay the genuine ones).
-fn resign_feed(d: &Path, channel: &str, change: impl Fn(&str) -> String) {
-    let path = d.join(format!("tree/feeds/{channel}.json"));
-    let signed = ampoule_verify::feed::SignedFeed::from_json(&std::fs::read(&path).expect("feed"))
-        .expect("feed");
-    let text = change(&signed.feed);
-    assert_ne!(text, signed.feed, "the change changed nothing");
-    std::fs::write(&path, signed_feed_file(d, "k.pem", text).to_json()).expect("feed");
-}
-
 /// One update whose downloads write exactly what the session asks for from the served file,
 /// through the store's file; returns the report and the bytes written.
 fn drive_counting(device: &Device, d: &Path, now: Timestamp) -> (Report, u64) {

@@ -13,7 +13,7 @@ use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::pin::Pin;
 use std::sync::Arc;
-use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::task::{Context, Poll};
 use std::time::Duration;
 
@@ -213,7 +213,7 @@ pub fn handle<B>(root: &Path, request: &Request<B>) -> Response<ServeBody> {
 pub fn run(root: PathBuf, addr: SocketAddr, ready: impl FnOnce(SocketAddr)) -> io::Result<()> {
     let listener = std::net::TcpListener::bind(addr)?;
     ready(listener.local_addr()?);
-    serve_until(root, listener, &AtomicBool::new(false))
+    serve_until(root, listener, &AtomicBool::new(false), None)
 }
 
 /// A server running on a background thread of this process (for the demo, tests and
@@ -221,6 +221,7 @@ pub fn run(root: PathBuf, addr: SocketAddr, ready: impl FnOnce(SocketAddr)) -> i
 pub struct Server {
     addr: SocketAddr,
     stop: Arc<AtomicBool>,
+    served: Arc<AtomicU64>,
     thread: Option<std::thread::JoinHandle<io::Result<()>>>,
 }
 
@@ -231,14 +232,23 @@ impl Server {
         let addr = listener.local_addr()?;
         let stop = Arc::new(AtomicBool::new(false));
         let flag = Arc::clone(&stop);
+        let served = Arc::new(AtomicU64::new(0));
+        let count = Arc::clone(&served);
         let thread = std::thread::Builder::new()
             .name("ampoule-serve".into())
-            .spawn(move || serve_until(root, listener, &flag))?;
+            .spawn(move || serve_until(root, listener, &flag, Some(count)))?;
         Ok(Server {
             addr,
             stop,
+            served,
             thread: Some(thread),
         })
+    }
+
+    /// How many bytes of files this server has answered with so far (the bodies of 200 and
+    /// 206 answers, as their lengths state them), for tests that count what a client cost.
+    pub fn bytes_served(&self) -> u64 {
+        self.served.load(Ordering::SeqCst)
     }
 
     /// The address the server listens on.
@@ -281,6 +291,7 @@ fn serve_until(
     root: PathBuf,
     listener: std::net::TcpListener,
     stop: &AtomicBool,
+    served: Option<Arc<AtomicU64>>,
 ) -> io::Result<()> {
     let runtime = tokio::runtime::Builder::new_current_thread()
         .enable_io()
@@ -304,9 +315,15 @@ fn serve_until(
                 }
             };
             let root = Arc::clone(&root);
+            let served = served.clone();
             tokio::spawn(async move {
                 let service = service_fn(move |request: Request<hyper::body::Incoming>| {
                     let response = handle(&root, &request);
+                    if let (Some(served), ServeBody::File { remaining, .. }) =
+                        (&served, response.body())
+                    {
+                        served.fetch_add(*remaining, Ordering::SeqCst);
+                    }
                     async move { Ok::<_, std::convert::Infallible>(response) }
                 });
                 let _ = http1::Builder::new()

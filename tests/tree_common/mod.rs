@@ -104,6 +104,35 @@ pub fn pack_model(d: &Path, model: &str, version: &str, key: &str, out: &str) {
     );
 }
 
+/// Packs `version` with a 300,000-byte model that does not compress (a linear congruential
+/// sequence, the constants of Numerical Recipes' `ranqd1`, from memory), so the bundle is
+/// larger than its head (129.5 KiB) and the session asks for the head first.
+pub fn pack_large(d: &Path, version: &str) -> String {
+    let mut x: u32 = 0x2545_f491;
+    let bytes: Vec<u8> = (0..300_000)
+        .map(|_| {
+            x = x.wrapping_mul(1_664_525).wrapping_add(1_013_904_223);
+            (x >> 24) as u8
+        })
+        .collect();
+    let model = format!("large-{version}.bin");
+    std::fs::write(d.join(&model), bytes).expect("model");
+    let out = format!("large-{version}.ampoule");
+    pack_model(d, &model, version, "k.pem", &out);
+    out
+}
+
+/// Re-signs the channel's feed after `change` edits its text, as someone holding the feed key
+/// alone could (the ledger entry and tree head stay the genuine ones).
+pub fn resign_feed(d: &Path, channel: &str, change: impl Fn(&str) -> String) {
+    let path = d.join(format!("tree/feeds/{channel}.json"));
+    let signed = ampoule_verify::feed::SignedFeed::from_json(&std::fs::read(&path).expect("feed"))
+        .expect("feed");
+    let text = change(&signed.feed);
+    assert_ne!(text, signed.feed, "the change changed nothing");
+    std::fs::write(&path, signed_feed_file(d, "k.pem", text).to_json()).expect("feed");
+}
+
 pub fn publish(d: &Path, bundle: &str, channel: &str, rollout: &str) -> serde_json::Value {
     let out = ok(
         d,

@@ -363,12 +363,33 @@ fn content_length(response: &Response<Incoming>, url: &str) -> Result<Option<u64
 
 /// Refuses a 206 answer whose Content-Range is not the `expected` one asked for.
 fn check_content_range(response: &Response<Incoming>, url: &str, expected: &str) -> Result<()> {
+    content_range_is(response, url, expected, |got| got == expected)
+}
+
+/// Refuses a 206 answer whose Content-Range does not start with `expected`.
+fn check_content_range_prefix(
+    response: &Response<Incoming>,
+    url: &str,
+    expected: &str,
+) -> Result<()> {
+    content_range_is(response, url, &format!("{expected}*"), |got| {
+        got.strip_prefix(expected)
+            .is_some_and(|total| !total.is_empty() && total.bytes().all(|b| b.is_ascii_digit()))
+    })
+}
+
+fn content_range_is(
+    response: &Response<Incoming>,
+    url: &str,
+    expected: &str,
+    fits: impl Fn(&str) -> bool,
+) -> Result<()> {
     let got = response
         .headers()
         .get(header::CONTENT_RANGE)
         .map(|v| String::from_utf8_lossy(v.as_bytes()).into_owned())
         .unwrap_or_default();
-    if got != expected {
+    if !fits(&got) {
         return Err(network(format!(
             "server answered 206 Partial Content for {url} with Content-Range '{}', but \
              '{expected}' was asked for",
@@ -758,17 +779,17 @@ pub fn download_into(
     ))
 }
 
-/// Makes `file` (named `partial` in messages) hold the first `upto` bytes of the file of
-/// `size` bytes at the first of `urls` that works: the bundle's head, which the session checks
-/// before it asks for the payload. Bytes already there are kept; the rest is asked for with a
-/// Range request, and a server that ignores it is read only up to `upto`. Nothing is written
-/// past `upto`.
+/// Makes `file` (named `partial` in messages) hold the first `upto` bytes of the file at the
+/// first of `urls` that works: the bundle's head, which the session checks before it asks for
+/// the payload. Bytes already there are kept; the rest is asked for with a Range request, and
+/// a server that ignores it is read only up to `upto`. Nothing is written past `upto`. The
+/// whole file's length the server states is not checked here: the feed states one, and the
+/// head's signed manifest settles which is true.
 pub fn download_head(
     urls: &[String],
     file: &mut File,
     partial: &Path,
     upto: u64,
-    size: u64,
     transfer: &Transfer,
 ) -> Result<()> {
     let io = |doing: &str, e| Error::io(format!("cannot {doing} {}", partial.display()), e);
@@ -791,8 +812,10 @@ pub fn download_head(
         let mut have = have;
         match response.status() {
             StatusCode::PARTIAL_CONTENT => {
-                let expected = format!("bytes {have}-{}/{size}", upto - 1);
-                check_content_range(&response, url, &expected)?;
+                // The range must be the one asked for; the total after the slash is the
+                // server's word against the feed's, which the head's signed manifest settles.
+                let expected = format!("bytes {have}-{}/", upto - 1);
+                check_content_range_prefix(&response, url, &expected)?;
             }
             StatusCode::OK => {
                 // The whole file comes: keep only its first `upto` bytes.

@@ -206,7 +206,6 @@ impl Device {
                             &mut file,
                             want.path(),
                             want.size(),
-                            want.whole,
                             transfer,
                         )
                     });
