@@ -113,6 +113,9 @@ fn one_name(name: &OsStr) -> io::Result<&OsStr> {
     Ok(name)
 }
 
+/// How deep [`Dir::remove`] goes into a directory tree.
+const MAX_REMOVE_DEPTH: usize = 16;
+
 /// Never follow a link at the last component; never block on a FIFO.
 const OPEN_FLAGS: OFlags = OFlags::NOFOLLOW
     .union(OFlags::CLOEXEC)
@@ -296,16 +299,29 @@ impl Dir {
     /// directory is removed with everything in it, each level opened without following
     /// links. Nothing at the name is not an error.
     pub(crate) fn remove(&self, name: impl AsRef<OsStr>) -> io::Result<()> {
-        let name = one_name(name.as_ref())?;
+        self.remove_at_depth(name.as_ref(), 0)
+    }
+
+    fn remove_at_depth(&self, name: &OsStr, depth: usize) -> io::Result<()> {
+        let name = one_name(name)?;
         match rustix::fs::unlinkat(&self.fd, name, AtFlags::empty()) {
             Ok(()) | Err(Errno::NOENT) => return Ok(()),
             Err(Errno::ISDIR | Errno::PERM) => {}
             Err(e) => return Err(e.into()),
         }
         match self.open_dir(name) {
+            // The store's own trees are two levels deep; a deeper one was planted, and is not
+            // followed down far enough to exhaust the stack or the descriptors.
+            Ok(_) if depth >= MAX_REMOVE_DEPTH => {
+                return Err(io::Error::other(format!(
+                    "{} is nested more than {MAX_REMOVE_DEPTH} directories deep; the store \
+                     never makes that: remove it by hand",
+                    self.join(name).display()
+                )));
+            }
             Ok(dir) => {
                 for entry in dir.list()? {
-                    dir.remove(&entry)?;
+                    dir.remove_at_depth(&entry, depth + 1)?;
                 }
             }
             Err(Refused::Missing) => return Ok(()),
@@ -454,6 +470,16 @@ mod tests {
         let nested = store.create_dir("nested").expect("test setup");
         nested.create_new("f").expect("test setup");
         store.remove("nested").expect("test setup");
+        // A planted tree deeper than the store ever makes is refused, not followed down.
+        let mut deep = store.create_dir("deep").expect("test setup");
+        for _ in 0..MAX_REMOVE_DEPTH + 2 {
+            deep = deep.create_dir("d").expect("test setup");
+        }
+        let refused = store.remove("deep").expect_err("too deep");
+        assert!(
+            refused.to_string().contains("nested more than 16"),
+            "{refused}"
+        );
         assert_eq!(store.found("nested").expect("test setup"), None);
         assert!(one_name(OsStr::new("../x")).is_err());
         assert!(one_name(OsStr::new("..")).is_err());

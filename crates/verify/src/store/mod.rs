@@ -1422,8 +1422,12 @@ impl Store {
         for entry in list_dir(&releases)? {
             let name = entry.to_string_lossy();
             if !keep.contains(&name.as_ref()) {
-                remove_any(&releases, &entry)?;
-                removed.push(releases.join(&entry));
+                // What cannot be removed (a tree planted deeper than the store ever makes)
+                // is named, and the update goes on: it blocks nothing but its own name.
+                match remove_any(&releases, &entry) {
+                    Ok(()) => removed.push(releases.join(&entry)),
+                    Err(e) => self.note_removed(format!("not removed: {e}")),
+                }
             }
         }
         for entry in list_dir(root)? {

@@ -90,7 +90,9 @@ pub struct Download {
     /// Whether this asks for the head only; the whole bundle's size is then `whole`.
     pub(crate) head: bool,
     pub(crate) whole: u64,
-    /// How many bytes the file held from an earlier update when this one began.
+    /// How many bytes the file held from an earlier update when this one began (for the
+    /// `fetch` driver's messages).
+    #[cfg_attr(not(feature = "fetch"), allow(dead_code))]
     pub(crate) earlier: u64,
 }
 
