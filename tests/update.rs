@@ -772,17 +772,7 @@ fn issue12_update_trusts_the_release_key_for_bundles_and_the_feed_key_for_feeds(
 fn issue10_separate_updates_download_a_refused_bundles_head_once() {
     let dir = setup();
     let d = dir.path();
-    let bundle = pack_large(d, "1.0.0");
-    let real = std::fs::metadata(d.join(&bundle)).expect("bundle").len();
-    publish(d, &bundle, "stable", "100");
-    let claimed = 90 * 1024 * 1024u64;
-    resign_feed(d, "stable", |text| {
-        text.replacen(
-            &format!("\"size\":{real}"),
-            &format!("\"size\":{claimed}"),
-            1,
-        )
-    });
+    let (real, claimed) = publish_with_overstated_size(d);
     let feed_len = std::fs::metadata(d.join("tree/feeds/stable.json"))
         .expect("feed")
         .len();

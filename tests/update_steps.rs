@@ -729,19 +729,7 @@ fn refusal(report: &Report) -> &ampoule_verify::Error {
 fn issue10_a_feed_that_overstates_the_size_costs_the_head_alone() {
     let dir = setup();
     let d = dir.path();
-    let bundle = pack_large(d, "1.0.0");
-    let real = std::fs::metadata(d.join(&bundle)).expect("bundle").len();
-    assert!(real > ampoule_verify::format::limit::HEAD_BYTES);
-    publish(d, &bundle, "stable", "100");
-    // The feed key alone states a size of 90 MiB, under the app's limit.
-    let claimed = 90 * 1024 * 1024u64;
-    resign_feed(d, "stable", |text| {
-        text.replacen(
-            &format!("\"size\":{real}"),
-            &format!("\"size\":{claimed}"),
-            1,
-        )
-    });
+    let (real, claimed) = publish_with_overstated_size(d);
     let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
     let (report, written) = drive_counting(&device, d, Timestamp::now());
     let e = refusal(&report);

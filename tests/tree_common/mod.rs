@@ -133,6 +133,24 @@ pub fn resign_feed(d: &Path, channel: &str, change: impl Fn(&str) -> String) {
     std::fs::write(&path, signed_feed_file(d, "k.pem", text).to_json()).expect("feed");
 }
 
+/// Publishes a large 1.0.0 on `stable`, then re-signs the feed (with the feed key alone) so
+/// that it states a size of 90 MiB; returns the bundle's real size and the size claimed.
+pub fn publish_with_overstated_size(d: &Path) -> (u64, u64) {
+    let bundle = pack_large(d, "1.0.0");
+    let real = std::fs::metadata(d.join(&bundle)).expect("bundle").len();
+    assert!(real > ampoule_verify::format::limit::HEAD_BYTES);
+    publish(d, &bundle, "stable", "100");
+    let claimed = 90 * 1024 * 1024u64;
+    resign_feed(d, "stable", |text| {
+        text.replacen(
+            &format!("\"size\":{real}"),
+            &format!("\"size\":{claimed}"),
+            1,
+        )
+    });
+    (real, claimed)
+}
+
 pub fn publish(d: &Path, bundle: &str, channel: &str, rollout: &str) -> serde_json::Value {
     let out = ok(
         d,
