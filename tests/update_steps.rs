@@ -409,13 +409,10 @@ fn issue9_review_another_channels_newer_format_feed_is_refused_not_needs_other_a
     )
     .expect("served at stable's URL");
     let (report, _) = drive_partly(&device, d, true);
-    match &report.outcome {
-        Outcome::Refused(e) => assert_eq!(
-            e.to_string(),
-            "feed format 2 is not supported (this reader knows format 1)"
-        ),
-        other => panic!("expected a refusal, got {other:?}"),
-    }
+    assert_eq!(
+        refusal(&report).to_string(),
+        "feed format 2 is not supported (this reader knows format 1)"
+    );
 }
 
 #[test]
@@ -888,4 +885,37 @@ fn issue10_a_planted_sequence_or_tree_head_is_not_believed() {
     publish(d, &pack(d, "1.2.0", 2, "k.pem"), "stable", "100");
     let (report, _) = drive_partly(&device, d, true);
     assert_eq!(installed_version(&report), Version::new(1, 2, 0));
+}
+
+/// Issue 10 item 5, from the web server's side: a head is not covered by any digest until the
+/// whole file is there, so a server that serves another genuine bundle's head gets it refused,
+/// but not remembered. Once the server serves the right file, the next update installs.
+#[test]
+fn issue10_a_head_the_server_swapped_is_refused_but_not_remembered() {
+    let dir = setup();
+    let d = dir.path();
+    let genuine = pack_large(d, "1.0.0");
+    publish(d, &genuine, "stable", "100");
+    let other = pack_large(d, "2.0.0");
+    let url = read_feed(d, "stable")
+        .release
+        .expect("offered")
+        .urls(&feed_url("stable"))
+        .expect("urls")[0]
+        .clone();
+    let served = tree_file(d, &url);
+    let kept = std::fs::read(&served).expect("bundle");
+    std::fs::copy(d.join(&other), &served).expect("swap");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let (report, written) = drive_counting(&device, d, Timestamp::now());
+    assert!(
+        refusal(&report)
+            .to_string()
+            .contains("feed announced trailcam-species 1.0.0 but the bundle it points to is trailcam-species 2.0.0"),
+        "{report:?}"
+    );
+    assert_eq!(written, ampoule_verify::format::limit::HEAD_BYTES);
+    std::fs::write(&served, &kept).expect("the right file again");
+    let (report, _) = drive_counting(&device, d, Timestamp::now());
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
 }

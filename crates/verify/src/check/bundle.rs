@@ -224,11 +224,12 @@ impl Verifier {
     }
 
     /// Checks the head of a bundle still being downloaded (the first bytes of `file`, at most
-    /// [`crate::format::limit::HEAD_BYTES`]): the manifest's signatures and the app's policy,
-    /// as [`Verifier::verify_file`] checks them, and that the payload's tar header states the
-    /// payload size the signed manifest declares. Returns the manifest and the bundle's exact
-    /// length, which the bundle signers thereby fixed: a feed that states another size is not
-    /// telling the truth about this bundle.
+    /// [`crate::format::limit::HEAD_BYTES`]): the manifest's signatures, as
+    /// [`Verifier::verify_file`] checks them, and that the payload's tar header states the
+    /// payload size the signed manifest declares. Returns the manifest, its exact bytes and
+    /// the bundle's exact length, which the bundle signers thereby fixed: a feed that states
+    /// another size is not telling the truth about this bundle. The app's policy is
+    /// [`Verifier::check_head_policy`].
     pub(crate) fn check_head(&self, file: &mut File) -> Result<(Manifest, Vec<u8>, u64)> {
         file.seek(SeekFrom::Start(0))
             .map_err(|e| Error::io("cannot read the bundle's head", e))?;
@@ -239,7 +240,6 @@ impl Verifier {
         SignedDocument::<kind::Manifest>::new(&head.manifest, &signatures.signatures)?
             .check(&self.signers, "bundle")?;
         let manifest = Manifest::from_json(&head.manifest)?;
-        self.check_policy(&manifest, true)?;
         if head.payload_len != manifest.payload.size {
             return Err(Error::new(
                 ErrorKind::Malformed,
@@ -252,6 +252,14 @@ impl Verifier {
         let len = head.bundle_len().ok_or_else(|| {
             Error::new(ErrorKind::Malformed, "bundle's length overflows a 64-bit count")
         })?;
+        Ok((manifest, head.manifest, len))
+    }
+
+    /// The app's policy on a head [`Verifier::check_head`] read, and the bundle length it
+    /// fixes against the app's limit: the checks [`Verifier::verify_file`] makes before it
+    /// reads the payload.
+    pub(crate) fn check_head_policy(&self, manifest: &Manifest, len: u64) -> Result<()> {
+        self.check_policy(manifest, true)?;
         if len > self.max_bundle_bytes {
             return Err(Error::new(
                 ErrorKind::TooLarge,
@@ -262,7 +270,7 @@ impl Verifier {
                 ),
             ));
         }
-        Ok((manifest, head.manifest, len))
+        Ok(())
     }
 
     /// Checks only a manifest's signatures (no policy): for the store's proof of its highest

@@ -841,6 +841,16 @@ impl VerifiedFeed {
         self.check_manifest(release, bundle.manifest(), bundle.manifest_bytes())
     }
 
+    /// Whether the feed's ledger entry logs the manifest of what it offers: once
+    /// [`VerifiedFeed::check_manifest`] passed, a manifest is then proven to be the offered
+    /// release's own, whoever served it.
+    pub(crate) fn logs_offered_manifest(&self) -> bool {
+        self.ledger()
+            .and_then(|l| l.entry.as_ref())
+            .and_then(|e| e.offered())
+            .is_some()
+    }
+
     /// [`VerifiedFeed::check_bundle`] on a manifest alone (its parsed form and exact bytes):
     /// the session checks a bundle's head with it before the payload is downloaded.
     pub(crate) fn check_manifest(

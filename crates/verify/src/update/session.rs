@@ -847,19 +847,16 @@ impl<'d> Session<'d> {
         let bundles = self.bundle_verifier(&store.state()?)?;
         let app_print = refusals::fingerprint(self.device.app(), self.held()?, &bundles);
         let ours = path == head.path;
-        // A head that fails to parse or to verify may have been damaged on the way (no digest
-        // covers it yet): discarded, not remembered. What its valid signatures say is the
-        // bundle's own, and is remembered.
-        let refuse = |e: Error| {
+        // No digest covers the head yet: whoever serves the file chose it. A refusal is
+        // remembered only once the head is proven to be the offered release's own (its
+        // manifest is the one the feed's ledger entry logs), so that a web server that served
+        // something else, or a damaged head, delays nothing beyond this update.
+        let refuse = |e: Error, proven: bool| {
             if e.kind().is_refusal() {
                 if ours {
                     head.discard();
                 }
-                let damaged = matches!(
-                    e.kind(),
-                    ErrorKind::Malformed | ErrorKind::Signature | ErrorKind::Manifest
-                );
-                if !damaged && let Ok(dir) = self.device.downloads() {
+                if proven && let Ok(dir) = self.device.downloads() {
                     refusals::remember(&dir, &release.sha256, &e, &app_print, self.now);
                 }
             }
@@ -885,23 +882,37 @@ impl<'d> Session<'d> {
                 ),
             ));
         }
-        let (manifest, manifest_bytes, len) = bundles.check_head(&mut file).map_err(refuse)?;
+        let (manifest, manifest_bytes, len) = bundles
+            .check_head(&mut file)
+            .map_err(|e| refuse(e, false))?;
         // The release the feed offers, and the manifest its ledger entry logs.
         let feed = self
             .feed
             .as_ref()
             .ok_or_else(|| Error::new(ErrorKind::Feed, "no verified feed to check the head on"))?;
         feed.check_manifest(&release, &manifest, &manifest_bytes)
-            .map_err(|e| refuse(e.context("refused before its payload was downloaded")))?;
+            .map_err(|e| {
+                refuse(
+                    e.context("refused before its payload was downloaded"),
+                    false,
+                )
+            })?;
+        let proven = feed.logs_offered_manifest();
+        bundles
+            .check_head_policy(&manifest, len)
+            .map_err(|e| refuse(e, proven))?;
         if len != release.size {
-            return Err(refuse(Error::new(
-                ErrorKind::Feed,
-                format!(
-                    "feed offers {} {} as {} bytes, but its signed manifest makes the bundle \
+            return Err(refuse(
+                Error::new(
+                    ErrorKind::Feed,
+                    format!(
+                        "feed offers {} {} as {} bytes, but its signed manifest makes the bundle \
                      {len} bytes; refusing it before its payload is downloaded",
-                    release.name, release.version, release.size
+                        release.name, release.version, release.size
+                    ),
                 ),
-            )));
+                proven,
+            ));
         }
         let want = Download {
             size: head.whole,
