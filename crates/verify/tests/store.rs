@@ -600,7 +600,9 @@ fn tamper_state_not_json() {
     assert_eq!(
         e.to_string(),
         format!(
-            "{} is not valid: expected value at line 1 column 1",
+            "{} is not valid: expected value at line 1 column 1; the store was damaged or \
+             changed outside ampoule-verify. Remove it and move the store's other files aside to \
+             start the store afresh",
             t.state.display()
         )
     );
@@ -610,7 +612,9 @@ fn tamper_state_not_json() {
             .expect_err("refused")
             .to_string(),
         format!(
-            "{} is not valid: expected value at line 1 column 1",
+            "{} is not valid: expected value at line 1 column 1; the store was damaged or \
+             changed outside ampoule-verify. Remove it and move the store's other files aside to \
+             start the store afresh",
             t.state.display()
         )
     );
@@ -623,7 +627,9 @@ fn tamper_state_pointer_escaping_releases() {
     assert_eq!(
         t.open_error().to_string(),
         format!(
-            "{} is inconsistent: it names release '../../etc', which is not a release directory name",
+            "{} is inconsistent: it names release '../../etc', which is not a release directory \
+             name; the store was damaged or changed outside ampoule-verify. Remove it and move \
+             the store's other files aside to start the store afresh",
             t.state.display()
         )
     );

@@ -155,8 +155,14 @@ struct KeptManifest {
 pub const MAX_REMOVED_NOTES: usize = 16;
 
 const STATE_BYTES: u64 = 64 * 1024;
+/// What a `state.json` the store cannot use asks for. The release it names cannot be known
+/// without it, and moving the store aside loses nothing a genuine update cannot bring back.
+const START_AFRESH: &str =
+    "Remove it and move the store's other files aside to start the store afresh";
 const STATE_TEMP_PREFIX: &str = ".state.json.tmp-";
 const TRUST_SET_TEMP_PREFIX: &str = ".trust-set.json.tmp-";
+/// The prefix of any other small file of the store's being written ([`replace_own_file`]).
+const OWN_TEMP_PREFIX: &str = ".own.tmp-";
 const STAGING_PREFIX: &str = ".staging-";
 const RELEASE_NAME_BYTES: usize = 200;
 const DIGEST_PREFIX_HEX: usize = 12;
@@ -532,8 +538,7 @@ impl Store {
                 return Err(Error::new(
                     ErrorKind::Store,
                     format!(
-                        "{} cannot be read: {why}; ampoule-verify did not write it. Remove it \
-                         and move the store's other files aside to start the store afresh",
+                        "{} cannot be read: {why}; ampoule-verify did not write it. {START_AFRESH}",
                         path.display()
                     ),
                 ));
@@ -551,7 +556,8 @@ impl Store {
                 return Err(Error::new(
                     ErrorKind::Store,
                     format!(
-                        "{} is over {STATE_BYTES} bytes; the store was damaged or changed outside ampoule-verify",
+                        "{} is over {STATE_BYTES} bytes; the store was damaged or changed outside \
+                         ampoule-verify. {START_AFRESH}",
                         path.display()
                     ),
                 ));
@@ -563,7 +569,11 @@ impl Store {
         let mut state: StoreState = serde_json::from_slice(&bytes).map_err(|e| {
             Error::new(
                 ErrorKind::Store,
-                format!("{} is not valid: {e}", path.display()),
+                format!(
+                    "{} is not valid: {e}; the store was damaged or changed outside \
+                     ampoule-verify. {START_AFRESH}",
+                    path.display()
+                ),
             )
         })?;
         self.back_versions(root, &mut state);
@@ -573,7 +583,11 @@ impl Store {
         state.validate().map_err(|why| {
             Error::new(
                 ErrorKind::Store,
-                format!("{} is inconsistent: {why}", path.display()),
+                format!(
+                    "{} is inconsistent: {why}; the store was damaged or changed outside \
+                     ampoule-verify. {START_AFRESH}",
+                    path.display()
+                ),
             )
         })?;
         Ok(state)
@@ -1421,7 +1435,17 @@ impl Store {
         let releases = self.releases(root)?;
         for entry in list_dir(&releases)? {
             let name = entry.to_string_lossy();
-            if !keep.contains(&name.as_ref()) {
+            // A link or special file is removed even at a name `state.json` keeps: the store
+            // never makes one, and opening that release refuses it anyway.
+            if let Ok(Some(kind @ (Found::Link | Found::Other))) = releases.found(&entry) {
+                remove_any(&releases, &entry)?;
+                self.note_removed(format!(
+                    "{} ({})",
+                    releases.join(&entry).display(),
+                    kind.describe()
+                ));
+                removed.push(releases.join(&entry));
+            } else if !keep.contains(&name.as_ref()) {
                 // What cannot be removed (a tree planted deeper than the store ever makes)
                 // is named, and the update goes on: it blocks nothing but its own name.
                 match remove_any(&releases, &entry) {
@@ -1444,6 +1468,7 @@ impl Store {
             } else if name.starts_with(STATE_TEMP_PREFIX)
                 || name.starts_with(TRUST_SET_TEMP_PREFIX)
                 || name.starts_with(HIGHEST_TEMP_PREFIX)
+                || name.starts_with(OWN_TEMP_PREFIX)
             {
                 remove_any(root, &entry)?;
                 removed.push(root.join(&entry));
@@ -1929,6 +1954,14 @@ fn replace_file(
         .map_err(|e| Error::io(format!("cannot replace {}", dir.join(name).display()), e))?;
     temp.keep = true;
     Ok(())
+}
+
+/// Writes the store's own small file `name` in `dir` whole or not at all: a temporary file,
+/// synced, renamed over whatever is at the name (a link there is replaced, never followed).
+pub(crate) fn replace_own_file(dir: &Dir, name: &str, bytes: &[u8]) -> Result<()> {
+    replace_file(dir, name, OWN_TEMP_PREFIX, bytes, &mut |_| Ok(()))?;
+    dir.sync()
+        .map_err(|e| Error::io(format!("cannot sync {}", dir.join(name).display()), e))
 }
 
 /// Opens the store's own directory `name` in `dir`, making it if missing. Anything else at the

@@ -462,31 +462,29 @@ pub(crate) fn check_device_id(id: &str) -> Result<()> {
 
 /// The device id kept in the store directory, made from 128 random bits on the first call.
 /// It lives beside the store so that one device keeps its rollout place across runs; a
-/// copied store copies the id too. Something other than a file the store wrote at the name (a
-/// link, dangling or not, a FIFO, a hard link) is removed, reported, and a new id made: the
-/// device then takes a new place in rollouts, as it would had the file been deleted.
+/// copied store copies the id too. Something other than an id the store wrote at the name (a
+/// link, dangling or not, a FIFO, a hard link, a file that holds no usable id) is removed,
+/// reported, and a new id made: the device then takes a new place in rollouts, as it would had
+/// the file been deleted. A trail camera has nobody to delete it, so a damaged id must not stop
+/// its updates. The id is written whole or not at all (a temporary file renamed into place), so
+/// a reader never sees half of one; two processes making one at once each use their own for
+/// that run, and the one renamed last is kept.
 fn stored_device_id(store: &Store) -> Result<String> {
     let root = Dir::open_root(store.dir(), false)
         .map_err(|e| Error::io(format!("cannot open store {}", store.dir().display()), e))?;
     let path = root.join(DEVICE_ID_FILE);
     match root.open_file(DEVICE_ID_FILE) {
         Ok(file) => {
-            let mut text = String::new();
+            let mut bytes = Vec::new();
             file.take(DEVICE_ID_BYTES as u64 + 2)
-                .read_to_string(&mut text)
+                .read_to_end(&mut bytes)
                 .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
+            let text = String::from_utf8_lossy(&bytes);
             let id = text.trim_end_matches('\n');
-            check_device_id(id).map_err(|e| {
-                Error::new(
-                    ErrorKind::Store,
-                    format!(
-                        "{} is damaged ({e}); remove it to make a new id (the device then takes \
-                         a new place in rollouts)",
-                        path.display()
-                    ),
-                )
-            })?;
-            return Ok(id.to_string());
+            match check_device_id(id) {
+                Ok(()) => return Ok(id.to_string()),
+                Err(e) => store.note_removed(format!("{} ({e})", path.display())),
+            }
         }
         Err(Refused::Missing) => {}
         Err(Refused::Planted(why)) => {
@@ -504,15 +502,6 @@ fn stored_device_id(store: &Store) -> Result<String> {
         )
     })?;
     let fresh = hex::encode(random);
-    match root.create_new(DEVICE_ID_FILE) {
-        Ok(mut file) => {
-            file.write_all(format!("{fresh}\n").as_bytes())
-                .and_then(|()| file.sync_all())
-                .map_err(|e| Error::io(format!("cannot write {}", path.display()), e))?;
-            Ok(fresh)
-        }
-        // Another process made it first: use theirs.
-        Err(e) if e.kind() == io::ErrorKind::AlreadyExists => stored_device_id(store),
-        Err(e) => Err(Error::io(format!("cannot create {}", path.display()), e)),
-    }
+    crate::store::replace_own_file(&root, DEVICE_ID_FILE, format!("{fresh}\n").as_bytes())?;
+    Ok(fresh)
 }

@@ -234,6 +234,8 @@ enum State {
         release: Release,
         checked: bool,
         head: Option<Download>,
+        /// The bytes the store's file held from an earlier update when this one began.
+        earlier: u64,
     },
     Failed(Error),
     Ended,
@@ -332,6 +334,7 @@ impl<'d> Session<'d> {
                 release: release.clone(),
                 checked: false,
                 head: want.head.then(|| want.clone()),
+                earlier: want.earlier,
             };
         }
     }
@@ -345,6 +348,7 @@ impl<'d> Session<'d> {
                 release: release.clone(),
                 checked: !want.head,
                 head: want.head.then(|| want.clone()),
+                earlier: want.earlier,
             };
         }
     }
@@ -438,7 +442,8 @@ impl<'d> Session<'d> {
                 release,
                 checked,
                 head: None,
-            } => self.install(&path, &release, checked),
+                earlier,
+            } => self.install(&path, &release, checked, earlier),
             State::Failed(e) => Ok(Step::End(Outcome::from_error(e))),
             State::Ended => Err(Error::new(
                 ErrorKind::Settings,
@@ -923,7 +928,13 @@ impl<'d> Session<'d> {
     }
 
     /// Checks the downloaded file and the bundle in it, then installs it.
-    fn install(&mut self, path: &Path, release: &Release, checked: bool) -> Result<Step> {
+    fn install(
+        &mut self,
+        path: &Path,
+        release: &Release,
+        checked: bool,
+        earlier: u64,
+    ) -> Result<Step> {
         let feed = self
             .feed
             .clone()
@@ -971,7 +982,8 @@ impl<'d> Session<'d> {
                 .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?,
         };
         if !checked {
-            check_file(&mut file, path, release).map_err(wrong_bytes)?;
+            let kept = if ours.is_some() { earlier } else { 0 };
+            check_file(&mut file, path, release, kept).map_err(wrong_bytes)?;
         }
         let bundles = self.bundle_verifier(&store.state()?)?;
         let bundle = bundles.verify_file(file).map_err(discard)?;
@@ -1025,8 +1037,10 @@ impl<'d> Session<'d> {
 }
 
 /// Checks an open downloaded file against the size and SHA-256 the verified feed declares,
-/// and leaves it at its start for the bundle's own checks.
-fn check_file(file: &mut File, path: &Path, release: &Release) -> Result<()> {
+/// and leaves it at its start for the bundle's own checks. `kept` is how many of its bytes the
+/// store kept from an earlier update: a wrong digest then names both sources, since either may
+/// be the wrong one.
+fn check_file(file: &mut File, path: &Path, release: &Release, kept: u64) -> Result<()> {
     let (sha256, size) = hash_reader(&*file, release.size.saturating_add(1))
         .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
     std::io::Seek::rewind(file)
@@ -1043,14 +1057,23 @@ fn check_file(file: &mut File, path: &Path, release: &Release) -> Result<()> {
         ));
     }
     if sha256 != release.sha256 {
-        return Err(Error::new(
-            ErrorKind::Digest,
+        let message = if kept == 0 {
             format!(
                 "downloaded file {} has SHA-256 {sha256}, but the feed declares {}",
                 path.display(),
                 release.sha256
-            ),
-        ));
+            )
+        } else {
+            format!(
+                "the {kept} bytes kept in {} from an earlier update and the {} bytes the app \
+                 downloaded after them have SHA-256 {sha256} together, but the feed declares {}; \
+                 both were discarded, and the next update downloads the whole file again",
+                path.display(),
+                size - kept.min(size),
+                release.sha256
+            )
+        };
+        return Err(Error::new(ErrorKind::Digest, message));
     }
     Ok(())
 }
