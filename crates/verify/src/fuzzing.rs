@@ -624,42 +624,93 @@ fn store_dir() -> PathBuf {
 /// Removes this process's scratch files (the bundle file and the stores), for tests that run
 /// the entry points in a process that goes on.
 pub fn clean_up() {
-    for name in ["bundle", "store", "device", "offline", "chain"] {
+    for name in ["bundle", "store", "device", "offline", "chain", "outside"] {
         let path = scratch(name);
         let _ = fs::remove_dir_all(&path);
         let _ = fs::remove_file(&path);
     }
 }
 
-/// `store`: sections `state.json [-- trust-set.json [-- trust-chain.json]]`, written into a
-/// store that holds one installed release (a file whose section is absent is removed):
-/// opening the store (parse and consistency checks of the state), opening the current release
-/// under that state, and the trust sets the store keeps, believed only as far as they chain
-/// from the set shipped with the app.
+/// The files the `store` target writes, in the order of its sections.
+const STORE_FILES: [&str; 7] = [
+    crate::store::STATE_FILE,
+    crate::store::TRUST_SET_FILE,
+    crate::store::TRUST_CHAIN_FILE,
+    crate::store::HIGHEST_FILE,
+    "feeds/stable.json",
+    "downloads/refused.json",
+    "device-id",
+];
+
+/// A section that plants a symbolic link (to a file outside the store) instead of a file.
+const LINK: &[u8] = b"@link";
+
+/// `store`: sections `state.json -- trust-set.json -- trust-chain.json -- highest.json --
+/// feeds/stable.json -- downloads/refused.json -- device-id`, written into a store that holds
+/// one installed release (a file whose section is absent is removed; a section `@link` plants a
+/// symbolic link to a file outside the store instead): opening the store (parse and
+/// consistency checks of the state, then what the kept signed manifests and feeds prove of it),
+/// opening the current release under that state, the trust sets the store keeps (believed only
+/// as far as they chain from the set shipped with the app), the device id and remembered
+/// refusal a device reads, and the store's clean-up. Nothing outside the store may change.
 pub fn store(data: &[u8]) {
     let dir = &store_dir();
     let parts = sections(data);
-    let files = [
-        crate::store::STATE_FILE,
-        crate::store::TRUST_SET_FILE,
-        crate::store::TRUST_CHAIN_FILE,
-    ];
-    for (index, name) in files.into_iter().enumerate() {
+    let outside = scratch("outside");
+    let victim = outside.join("photos.db");
+    fs::create_dir_all(&outside).expect("the fuzzer can write its scratch files");
+    fs::write(&victim, b"the app's own data").expect("the fuzzer can write its scratch files");
+    for (index, name) in STORE_FILES.into_iter().enumerate() {
         let path = dir.join(name);
-        match parts.get(index) {
-            Some(bytes) => fs::write(&path, bytes).expect("the fuzzer can write its store"),
-            None => {
-                let _ = fs::remove_file(&path);
-            }
+        match fs::symlink_metadata(&path) {
+            Ok(m) if m.is_dir() => fs::remove_dir_all(&path).expect("the fuzzer owns its store"),
+            Ok(_) => fs::remove_file(&path).expect("the fuzzer owns its store"),
+            Err(_) => {}
+        }
+        let Some(bytes) = parts.get(index) else {
+            continue;
+        };
+        if let Some(parent) = path.parent() {
+            fs::create_dir_all(parent).expect("the fuzzer can write its store");
+        }
+        if *bytes == LINK {
+            std::os::unix::fs::symlink(&victim, &path).expect("the fuzzer can plant a link");
+        } else {
+            fs::write(&path, bytes).expect("the fuzzer can write its store");
         }
     }
     let initial = initial_trust_set();
+    let held = TrustSet::verify_initial(&initial, now()).expect("the fuzz trust set verifies");
     if let Ok(store) = Store::open(dir, verifier()) {
+        let store = store.with_trust_chain(&initial).with_documents(
+            held.signers().expect("feed signers"),
+            held.signers().expect("tree-head signers"),
+        );
         let _ = store.state();
         let _ = store.open_current();
         let _ = store.trust_chain(&initial);
     }
     let _ = Store::load_trust_set(dir, &initial, now());
+    let own_id = App::new(
+        Trust::shipped_trust_set(initial.clone()).expect("the fuzz trust set verifies"),
+        APP_VERSION,
+    );
+    if let Ok(device) = Device::open(dir, CHANNEL, own_id, now()) {
+        if let Ok(downloads) = device.downloads() {
+            let _ = crate::update::refusals::recall(
+                &downloads,
+                &Digest::of(b"offered"),
+                &Digest::of(b"app"),
+                now(),
+            );
+        }
+        let _ = device.gc();
+    }
+    assert_eq!(
+        fs::read(&victim).expect("the file outside the store is still there"),
+        b"the app's own data",
+        "the store wrote through a planted link"
+    );
 }
 
 /// `offline`: the bytes as an offline file, installed by a device on the fuzz key's trust set
@@ -889,6 +940,24 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
         chain
     };
 
+    // highest.json as the store keeps it: the seed bundle's signed manifest; and a refusal
+    // as the update remembers one.
+    let kept_manifest = serde_json::to_vec(&serde_json::json!({
+        "manifest": String::from_utf8_lossy(&manifest_bytes),
+        "signatures": String::from_utf8_lossy(&Signatures {
+            signatures: vec![sign(context::MANIFEST, &manifest_bytes)],
+        }
+        .to_json()),
+    }))
+    .expect("JSON serializes");
+    let refused = serde_json::to_vec(&serde_json::json!({
+        "sha256": Digest::of(b"offered").to_string(),
+        "kind": "Incompatible",
+        "reason": "bundle needs a label this app lacks",
+        "at": NOW - 60,
+        "app": Digest::of(b"app").to_string(),
+    }))
+    .expect("JSON serializes");
     let mut seeds: Vec<(&'static str, String, Vec<u8>)> = vec![
         ("bundle", "valid.ampoule".into(), bundle.clone()),
         ("manifest", "valid.json".into(), manifest_bytes.clone()),
@@ -974,6 +1043,24 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
             "store",
             "with-trust-chain.txt".into(),
             joined(&[&state, b"", &chain]),
+        ),
+        (
+            "store",
+            "every-file.txt".into(),
+            joined(&[
+                &state,
+                b"",
+                &chain,
+                &kept_manifest,
+                &envelope(&full_feed),
+                &refused,
+                b"fuzz-device-2\n",
+            ]),
+        ),
+        (
+            "store",
+            "links.txt".into(),
+            joined(&[&state, LINK, LINK, LINK, LINK, LINK, LINK]),
         ),
         (
             "offline",

@@ -33,7 +33,7 @@
 mod device;
 mod offline;
 mod outcome;
-mod refusals;
+pub(crate) mod refusals;
 mod session;
 
 use std::fmt;
