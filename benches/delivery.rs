@@ -161,7 +161,7 @@ fn publish(
             now: Timestamp::now(),
             expires_in_secs: 86_400,
             tree_head_keys: &[],
-            outside: None,
+            outside: &[],
         },
     )
 }

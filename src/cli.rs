@@ -703,12 +703,14 @@ pub struct PublishArgs {
     /// A command that signs the ledger's tree head outside this process, so the tree-head key
     /// never comes here (run with `sh -c`): it reads the bytes to sign on stdin and writes the
     /// raw 64-byte Ed25519 signature on stdout, like `openssl pkeyutl -sign -rawin`; the entry
-    /// is in $AMPOULE_LEDGER_ENTRY. Needs --tree-head-signer-key.
+    /// is in $AMPOULE_LEDGER_ENTRY. Repeat for several signers, each with its own
+    /// --tree-head-signer-key, paired in the order given.
     #[arg(long, value_name = "COMMAND", requires = "tree_head_signer_key")]
-    pub tree_head_signer: Option<String>,
-    /// The public key the --tree-head-signer's signatures must verify under.
+    pub tree_head_signer: Vec<String>,
+    /// The public key a --tree-head-signer's signatures must verify under (one per signer,
+    /// in the same order).
     #[arg(long, value_name = "PUB.pem", requires = "tree_head_signer")]
-    pub tree_head_signer_key: Option<PathBuf>,
+    pub tree_head_signer_key: Vec<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// Keys the bundle's signature is checked against before publishing (repeat for
@@ -761,12 +763,14 @@ pub struct WithdrawArgs {
     /// A command that signs the ledger's tree head outside this process, so the tree-head key
     /// never comes here (run with `sh -c`): it reads the bytes to sign on stdin and writes the
     /// raw 64-byte Ed25519 signature on stdout, like `openssl pkeyutl -sign -rawin`; the entry
-    /// is in $AMPOULE_LEDGER_ENTRY. Needs --tree-head-signer-key.
+    /// is in $AMPOULE_LEDGER_ENTRY. Repeat for several signers, each with its own
+    /// --tree-head-signer-key, paired in the order given.
     #[arg(long, value_name = "COMMAND", requires = "tree_head_signer_key")]
-    pub tree_head_signer: Option<String>,
-    /// The public key the --tree-head-signer's signatures must verify under.
+    pub tree_head_signer: Vec<String>,
+    /// The public key a --tree-head-signer's signatures must verify under (one per signer,
+    /// in the same order).
     #[arg(long, value_name = "PUB.pem", requires = "tree_head_signer")]
-    pub tree_head_signer_key: Option<PathBuf>,
+    pub tree_head_signer_key: Vec<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
     /// How long the new feed stays valid (like 7d, 12h, 90m).

@@ -625,6 +625,136 @@ fn issue10_tree_heads_signed_outside_the_runner() {
     );
 }
 
+/// Two tree-head signers outside the runner, for devices that need two tree-head signatures:
+/// `--tree-head-signer` repeats, each paired in order with its `--tree-head-signer-key`.
+#[test]
+fn issue10_two_outside_tree_head_signers_meet_a_threshold_of_two() {
+    let dir = three_keys();
+    let d = dir.path();
+    if std::process::Command::new("openssl")
+        .arg("version")
+        .output()
+        .is_err()
+    {
+        eprintln!("skipped: openssl is not installed");
+        return;
+    }
+    ok(
+        d,
+        &["keygen", "--secret", "heads2.pem", "--public", "heads2.pub"],
+    );
+    let signer = |key: &str| {
+        format!("f=$(mktemp); cat > \"$f\"; openssl pkeyutl -sign -rawin -inkey {key} -in \"$f\"")
+    };
+    let (first, second) = (signer("heads.pem"), signer("heads2.pem"));
+    let publish = |bundle: &str, pairs: &[(&str, &str)]| {
+        let mut args = vec![
+            "publish",
+            bundle,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "runner.pem",
+            "--trust",
+            "k.pub",
+        ];
+        for (command, key) in pairs {
+            args.extend(["--tree-head-signer", command, "--tree-head-signer-key", key]);
+        }
+        run(d, &args)
+    };
+    let v1 = pack(d, "1.0.0", 0, "k.pem");
+    // One key short of a pair, and one outside key given twice: refused, nothing appended.
+    let out = run(
+        d,
+        &[
+            "publish",
+            &v1,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "runner.pem",
+            "--trust",
+            "k.pub",
+            "--tree-head-signer",
+            &first,
+            "--tree-head-signer",
+            &second,
+            "--tree-head-signer-key",
+            "heads.pub",
+        ],
+    );
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains(
+            "2 --tree-head-signer command(s) but 1 --tree-head-signer-key file(s): give one key \
+             for each signer, in the same order"
+        ),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let out = publish(&v1, &[(&first, "heads.pub"), (&first, "heads.pub")]);
+    assert!(!out.status.success());
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains("also signs here"),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(
+        !d.join("tree/ledger/tree-head.json").exists(),
+        "nothing was appended"
+    );
+
+    let heads: TrustedKeys = ["heads.pub", "heads2.pub"]
+        .into_iter()
+        .map(|name| {
+            PublicKey::from_pem(&std::fs::read_to_string(d.join(name)).expect("public key"))
+                .expect("key")
+        })
+        .collect();
+    let trust = Trust::pinned(
+        Signers::new(public(d, "k.pub"), 1).expect("bundle signers"),
+        Signers::new(public(d, "runner.pub"), 1).expect("feed signers"),
+        Signers::new(heads, 2).expect("two tree-head signatures"),
+    );
+    let camera = Device::open(
+        &d.join("cam"),
+        "stable",
+        App::new(trust, Version::new(2, 3, 0))
+            .device_id("camera-7")
+            .expect("device id"),
+        Timestamp::now(),
+    )
+    .expect("open");
+    // One outside signer: the tree takes it (pinned devices' thresholds are theirs to
+    // know), but this device needs two signatures on the tree head.
+    let out = publish(&v1, &[(&first, "heads.pub")]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let report = update(&camera, d, feed_file(d, "stable"));
+    assert!(
+        matches!(&report.outcome, Outcome::Refused(e) if e.kind() == ErrorKind::Signature),
+        "{report:?}"
+    );
+    let v2 = pack(d, "1.1.0", 1, "k.pem");
+    let out = publish(&v2, &[(&first, "heads.pub"), (&second, "heads2.pub")]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        installed(&update(&camera, d, feed_file(d, "stable"))),
+        Version::new(1, 1, 0)
+    );
+}
+
 #[test]
 fn issue10_publish_warns_when_the_feed_key_alone_signs_tree_heads() {
     let dir = three_keys();

@@ -568,7 +568,7 @@ fn a_publish_that_stops_after_its_append_leaves_a_warning_and_no_reused_sequence
     entry.version = Version::new(1, 1, 0);
     entry.feed_sequence = 2;
     offer_itself(&mut entry);
-    ampoule::release::ledger_audit::append(&d.join("tree"), &entry, &[&key], None)
+    ampoule::release::ledger_audit::append(&d.join("tree"), &entry, &[&key], &[])
         .expect("append as publish does");
     assert_eq!(
         read_feed(d, "stable").sequence,

@@ -766,7 +766,7 @@ fn signing(key: &ed25519_dalek::SigningKey) -> Signing<'_> {
         now: Timestamp::now(),
         expires_in_secs: FEED_EXPIRES_SECS,
         tree_head_keys: &[],
-        outside: None,
+        outside: &[],
     }
 }
 

@@ -93,7 +93,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
             now,
             expires_in_secs,
             tree_head_keys: &tree_head_keys,
-            outside: outside.as_ref(),
+            outside: &outside,
         };
         let plan = tree.plan_publish(&facts, channel, args.rollout, &args.mirror, &signing)?;
         let warning = tree_head_warning(&tree, &signing)?;
@@ -115,7 +115,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         now,
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
-        outside: outside.as_ref(),
+        outside: &outside,
     };
     let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
     let warning = tree_head_warning(&tree, &signing)?;
@@ -154,7 +154,7 @@ fn publish_trust_set(
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
-        outside: outside.as_ref(),
+        outside: &outside,
     };
     if args.dry_run {
         let tree = Tree::read_only(&args.tree, wait)?;
@@ -251,7 +251,7 @@ pub fn tree_head_warning(tree: &Tree, signing: &Signing<'_>) -> Result<Option<St
             )
         }));
     }
-    Ok((signing.tree_head_keys.is_empty() && signing.outside.is_none()).then(|| {
+    Ok((signing.tree_head_keys.is_empty() && signing.outside.is_empty()).then(|| {
         format!(
             "warning: the ledger's tree heads are signed by the feed key {named} alone: devices \
              that also trust it for tree heads cannot tell a feed signed with a stolen feed key \
@@ -260,18 +260,31 @@ pub fn tree_head_warning(tree: &Tree, signing: &Signing<'_>) -> Result<Option<St
     }))
 }
 
-/// The `--tree-head-signer` command with the public key its signatures must verify under.
+/// The `--tree-head-signer` commands, each with the public key (`--tree-head-signer-key`, in
+/// the same order) its signatures must verify under.
 pub fn outside_signer(
-    command: &Option<String>,
-    key: &Option<std::path::PathBuf>,
-) -> Result<Option<crate::release::ledger_audit::OutsideHeadSigner>> {
-    match (command, key) {
-        (Some(command), Some(key)) => Ok(Some(crate::release::ledger_audit::OutsideHeadSigner {
-            command: command.clone(),
-            key: keyfile::read_public_key(key)?,
-        })),
-        _ => Ok(None),
+    commands: &[String],
+    keys: &[std::path::PathBuf],
+) -> Result<Vec<crate::release::ledger_audit::OutsideHeadSigner>> {
+    if commands.len() != keys.len() {
+        return Err(crate::Refused(format!(
+            "{} --tree-head-signer command(s) but {} --tree-head-signer-key file(s): give one key \
+             for each signer, in the same order",
+            commands.len(),
+            keys.len()
+        ))
+        .into());
     }
+    commands
+        .iter()
+        .zip(keys)
+        .map(|(command, key)| {
+            Ok(crate::release::ledger_audit::OutsideHeadSigner {
+                command: command.clone(),
+                key: keyfile::read_public_key(key)?,
+            })
+        })
+        .collect()
 }
 
 /// Reads the `--tree-head-key` files: keys that sign the ledger's tree head besides the feed

@@ -60,7 +60,7 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
         now: Timestamp::now(),
         expires_in_secs,
         tree_head_keys: &tree_head_keys,
-        outside: outside.as_ref(),
+        outside: &outside,
     };
     if args.dry_run {
         let planned = tree.plan_withdraw(&args.channel, &version, &signing)?;

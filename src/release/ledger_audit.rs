@@ -185,7 +185,7 @@ pub fn append_trust_set(
     root: &Path,
     entry: &TrustSetEntry,
     keys: &[&SigningKey],
-    outside: Option<&OutsideHeadSigner>,
+    outside: &[OutsideHeadSigner],
 ) -> Result<()> {
     append_bytes(root, &entry.to_bytes(), entry.time, keys, outside).context(
         "cannot append to the release tree's ledger; no feed was renewed for the new trust set",
@@ -200,7 +200,7 @@ fn append_bytes(
     bytes: &[u8],
     entry_time: u64,
     keys: &[&SigningKey],
-    outside: Option<&OutsideHeadSigner>,
+    outside: &[OutsideHeadSigner],
 ) -> Result<(Ledger, u64, SignedTreeHead, ConsistencyProof)> {
     let mut ledger = open_or_create(root)?;
     repair_last_step(root, &ledger)?;
@@ -209,26 +209,28 @@ fn append_bytes(
     let time = ledger
         .tree_head()
         .map_or(entry_time, |h| h.head().time.max(entry_time));
-    let index = match outside {
-        None => ledger.append(bytes, keys, time)?,
-        Some(signer) => {
-            let ids: Vec<KeyId> = keys
-                .iter()
-                .map(|k| KeyId::of_raw_key(k.verifying_key().as_bytes()))
-                .collect();
+    let index = if outside.is_empty() {
+        ledger.append(bytes, keys, time)?
+    } else {
+        let mut ids: Vec<KeyId> = keys
+            .iter()
+            .map(|k| KeyId::of_raw_key(k.verifying_key().as_bytes()))
+            .collect();
+        for signer in outside {
             anyhow::ensure!(
                 !ids.contains(&signer.key.id()),
-                "the tree-head signer's key {} also signs here; give the outside signer a key \
+                "the tree-head signer's key {} also signs here; give each outside signer a key \
                  of its own",
                 signer.key.id()
             );
-            ledger.append_with_outside(
-                bytes,
-                keys,
-                &|head| Ok(vec![signer.sign(head, bytes)?]),
-                time,
-            )?
+            ids.push(signer.key.id());
         }
+        ledger.append_with_outside(
+            bytes,
+            keys,
+            &|head| outside.iter().map(|s| s.sign(head, bytes)).collect(),
+            time,
+        )?
     };
     let tree_head = ledger
         .tree_head()
@@ -252,7 +254,7 @@ pub fn append(
     root: &Path,
     entry: &Entry,
     keys: &[&SigningKey],
-    outside: Option<&OutsideHeadSigner>,
+    outside: &[OutsideHeadSigner],
 ) -> Result<FeedLedger> {
     let bytes = entry.to_bytes();
     let (ledger, index, tree_head, consistency) =

@@ -215,8 +215,8 @@ pub struct Signing<'a> {
     pub expires_in_secs: u64,
     /// Keys that sign the ledger's tree head besides `key`.
     pub tree_head_keys: &'a [SigningKey],
-    /// A tree-head signer outside this process, whose key this process never holds.
-    pub outside: Option<&'a crate::release::ledger_audit::OutsideHeadSigner>,
+    /// Tree-head signers outside this process, whose keys this process never holds.
+    pub outside: &'a [crate::release::ledger_audit::OutsideHeadSigner],
 }
 
 /// A release tree with its lock held; the lock is released when this is dropped. A tree
