@@ -520,20 +520,30 @@ fn vault(d: &Path, key: &str) -> String {
     "sh vault/sign.sh".to_string()
 }
 
+/// `publish` as the runner runs it (the feed key, the bundle checked against the release
+/// key), with `extra` arguments.
+fn publish_on_runner(d: &Path, bundle: &str, extra: &[&str]) -> std::process::Output {
+    let mut args = vec![
+        "publish",
+        bundle,
+        "--tree",
+        "tree",
+        "--channel",
+        "stable",
+        "--key",
+        "runner.pem",
+        "--trust",
+        "k.pub",
+    ];
+    args.extend(extra);
+    run(d, &args)
+}
+
 fn publish_with_signer(d: &Path, bundle: &str, signer: &str) -> std::process::Output {
-    run(
+    publish_on_runner(
         d,
+        bundle,
         &[
-            "publish",
-            bundle,
-            "--tree",
-            "tree",
-            "--channel",
-            "stable",
-            "--key",
-            "runner.pem",
-            "--trust",
-            "k.pub",
             "--tree-head-signer",
             signer,
             "--tree-head-signer-key",
@@ -648,38 +658,18 @@ fn issue10_two_outside_tree_head_signers_meet_a_threshold_of_two() {
     };
     let (first, second) = (signer("heads.pem"), signer("heads2.pem"));
     let publish = |bundle: &str, pairs: &[(&str, &str)]| {
-        let mut args = vec![
-            "publish",
-            bundle,
-            "--tree",
-            "tree",
-            "--channel",
-            "stable",
-            "--key",
-            "runner.pem",
-            "--trust",
-            "k.pub",
-        ];
+        let mut extra = Vec::new();
         for (command, key) in pairs {
-            args.extend(["--tree-head-signer", command, "--tree-head-signer-key", key]);
+            extra.extend(["--tree-head-signer", command, "--tree-head-signer-key", key]);
         }
-        run(d, &args)
+        publish_on_runner(d, bundle, &extra)
     };
     let v1 = pack(d, "1.0.0", 0, "k.pem");
     // One key short of a pair, and one outside key given twice: refused, nothing appended.
-    let out = run(
+    let out = publish_on_runner(
         d,
+        &v1,
         &[
-            "publish",
-            &v1,
-            "--tree",
-            "tree",
-            "--channel",
-            "stable",
-            "--key",
-            "runner.pem",
-            "--trust",
-            "k.pub",
             "--tree-head-signer",
             &first,
             "--tree-head-signer",
@@ -760,21 +750,7 @@ fn issue10_publish_warns_when_the_feed_key_alone_signs_tree_heads() {
     let dir = three_keys();
     let d = dir.path();
     let v1 = pack(d, "1.0.0", 0, "k.pem");
-    let out = run(
-        d,
-        &[
-            "publish",
-            &v1,
-            "--tree",
-            "tree",
-            "--channel",
-            "stable",
-            "--key",
-            "runner.pem",
-            "--trust",
-            "k.pub",
-        ],
-    );
+    let out = publish_on_runner(d, &v1, &[]);
     assert!(out.status.success());
     let runner = public(d, "runner.pub").iter().next().expect("key").id();
     assert_eq!(
