@@ -647,12 +647,13 @@ const LINK: &[u8] = b"@link";
 
 /// `store`: sections `state.json -- trust-set.json -- trust-chain.json -- highest.json --
 /// feeds/stable.json -- downloads/refused.json -- device-id`, written into a store that holds
-/// one installed release (a file whose section is absent is removed; a section `@link` plants a
-/// symbolic link to a file outside the store instead): opening the store (parse and
-/// consistency checks of the state, then what the kept signed manifests and feeds prove of it),
-/// opening the current release under that state, the trust sets the store keeps (believed only
-/// as far as they chain from the set shipped with the app), the device id and remembered
-/// refusal a device reads, and the store's clean-up. Nothing outside the store may change.
+/// one installed release (a file whose section is absent is removed, except that the device id
+/// is then a valid one; a section `@link` plants a symbolic link to a file outside the store
+/// instead): opening the store (parse and consistency checks of the state, then what the kept
+/// signed manifests and feeds prove of it), opening the current release under that state, the
+/// trust sets the store keeps (believed only as far as they chain from the set shipped with
+/// the app), the device id and remembered refusal a device reads, and the store's clean-up.
+/// Nothing outside the store may change.
 pub fn store(data: &[u8]) {
     let dir = &store_dir();
     let parts = sections(data);
@@ -667,13 +668,20 @@ pub fn store(data: &[u8]) {
             Ok(_) => fs::remove_file(&path).expect("the fuzzer owns its store"),
             Err(_) => {}
         }
-        let Some(bytes) = parts.get(index) else {
+        // Without its section the device id stays a valid one: a fresh id is written and
+        // synced to disk, which would slow every input down to the disk's pace.
+        let kept_id: &[u8] = b"fuzz-device-kept\n";
+        let Some(bytes) = parts
+            .get(index)
+            .copied()
+            .or((name == "device-id").then_some(kept_id))
+        else {
             continue;
         };
         if let Some(parent) = path.parent() {
             fs::create_dir_all(parent).expect("the fuzzer can write its store");
         }
-        if *bytes == LINK {
+        if bytes == LINK {
             std::os::unix::fs::symlink(&victim, &path).expect("the fuzzer can plant a link");
         } else {
             fs::write(&path, bytes).expect("the fuzzer can write its store");
