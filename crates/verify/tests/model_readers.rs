@@ -286,7 +286,7 @@ fn the_signature_json_is_stable_and_strict() {
     assert_eq!(
         json,
         concat!(
-            r#"{"format":"onnx","ir_version":8,"opset":13,"producer":"trailcam-export","producer_version":"1.0","#,
+            r#"{"format":"onnx","rules":2,"ir_version":8,"opset":13,"producer":"trailcam-export","producer_version":"1.0","#,
             r#""inputs":[{"name":"image","dtype":"float32","shape":["N",3,96,96]}],"#,
             r#""outputs":[{"name":"species","dtype":"float32","shape":["N",7]}],"#,
             r#""weight_tensors":4,"parameters":147,"weights_8bit":false,"bytes_by_dtype":{"float32":588}}"#
@@ -543,19 +543,19 @@ fn policies_and_patterns_refuse_nonsense() {
 #[test]
 fn class_count_finds_the_classifier_output() {
     let float = signature(ONNX_FIXTURES[0].name, ONNX_FIXTURES[0].bytes);
-    assert_eq!(float.class_count(None).expect("only output"), 7);
-    assert_eq!(float.class_count(Some("species")).expect("named"), 7);
-    float.check_label_count(None, 7).expect("seven labels");
+    assert_eq!(float.class_count(None, None).expect("only output"), 7);
+    assert_eq!(float.class_count(Some("species"), None).expect("named"), 7);
+    float.check_label_count(None, None, 7).expect("seven labels");
     assert_eq!(
         float
-            .check_label_count(None, 6)
+            .check_label_count(None, None, 6)
             .expect_err("six")
             .to_string(),
         "the label list has 6 labels, but output 'species' has 7 classes (shape [N, 7])"
     );
     assert_eq!(
         float
-            .class_count(Some("logits"))
+            .class_count(Some("logits"), None)
             .expect_err("missing")
             .to_string(),
         "the model has no output 'logits' (its outputs: 'species')"
@@ -563,21 +563,21 @@ fn class_count_finds_the_classifier_output() {
     let weights = signature(SAFETENSORS_FIXTURES[0].name, SAFETENSORS_FIXTURES[0].bytes);
     assert_eq!(
         weights
-            .class_count(None)
+            .class_count(None, None)
             .expect_err("no outputs")
             .to_string(),
-        "the safetensors model has no outputs to match labels to"
+        "the safetensors model has no outputs to match labels to: name the tensor that counts the classes (a [C] bias or a [C, in] weight)"
     );
     let mut two = float.clone();
     two.outputs.push(two.outputs[0].clone());
     two.outputs[1].name = "box".into();
     assert_eq!(
-        two.class_count(None).expect_err("two").to_string(),
+        two.class_count(None, None).expect_err("two").to_string(),
         "the model has 2 outputs ('species', 'box'): name the classifier output"
     );
     two.outputs[0].shape = Some(vec![Dim::Symbolic("N".into()), Dim::Symbolic("C".into())]);
     assert_eq!(
-        two.class_count(Some("species"))
+        two.class_count(Some("species"), None)
             .expect_err("symbolic")
             .to_string(),
         "output 'species' has shape [N, C]: its class count cannot be determined (neither its \
@@ -601,7 +601,7 @@ fn issue11_the_class_dimension_rule_reads_real_output_shapes() {
     let count = |shape: Vec<Dim>| {
         let mut sig = float.clone();
         sig.outputs[0].shape = Some(shape);
-        sig.class_count(None).ok()
+        sig.class_count(None, None).ok()
     };
     assert_eq!(count(vec![fixed(1), fixed(1000)]), Some(1000));
     assert_eq!(
@@ -620,9 +620,9 @@ fn issue11_the_class_dimension_rule_reads_real_output_shapes() {
     // A label list of 1000 fits the older classifier's output; one label does not.
     let mut conv = float.clone();
     conv.outputs[0].shape = Some(vec![fixed(1), fixed(1000), fixed(1), fixed(1)]);
-    conv.check_label_count(None, 1000)
+    conv.check_label_count(None, None, 1000)
         .expect("1000 labels for 1000 classes");
-    assert!(conv.check_label_count(None, 1).is_err());
+    assert!(conv.check_label_count(None, None, 1).is_err());
 }
 
 #[test]
@@ -828,14 +828,16 @@ fn hostile_onnx_huge_declared_dims() {
         error_of("model.onnx", &model_with_graph(&graph)),
         "onnx: initializer 'w' has shape [4611686018427387904] whose size in bytes overflows 64 bits"
     );
-    // Four uint8 initializers of 2^62 elements each: 2^64 parameters in total.
+    // Four uint8 initializers of 2^62 elements each (2^64 parameters in total) holding no
+    // data: under reading rules 2 the first is refused for claiming more than it holds (issue
+    // 11 item 4), before any total can overflow.
     let mut graph = initializer("a", 2, &[1 << 62], None);
     graph.extend(initializer("b", 2, &[1 << 62], None));
     graph.extend(initializer("c", 2, &[1 << 62], None));
     graph.extend(initializer("d", 2, &[1 << 62], None));
     assert_eq!(
         error_of("model.onnx", &model_with_graph(&graph)),
-        "onnx: the initializers' total parameter count or size overflows 64 bits"
+        "onnx: initializer 'a' has shape [4611686018427387904] (4611686018427387904 elements of uint8), but it holds only 0 bytes of data"
     );
     let graph = initializer("w", 1, &[u64::MAX], None);
     assert_eq!(
@@ -1031,7 +1033,7 @@ fn a_64_gib_initializer_is_skipped_not_read() {
     assert_eq!(sig.parameters, RAW / 4);
     assert_eq!(sig.bytes_by_dtype.get(DType::Float32), RAW);
     assert_eq!(sig.outputs[0].name, "species");
-    assert_eq!(sig.class_count(None).expect("classes"), 7);
+    assert_eq!(sig.class_count(None, None).expect("classes"), 7);
 }
 
 // ---- Hostile safetensors files (format: u64 LE header length, JSON header, data). ----

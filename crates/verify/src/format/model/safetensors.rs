@@ -18,7 +18,8 @@ use serde::{Deserialize, Deserializer};
 use crate::error::{Error, ErrorKind, Result};
 
 use super::{
-    DType, ModelFormat, ModelSignature, WeightTotals, element_count, limit, list, read_error,
+    DType, ModelFormat, ModelSignature, TensorEntry, WeightTotals, element_count, limit, list,
+    read_error,
 };
 
 fn malformed(message: String) -> Error {
@@ -32,8 +33,9 @@ const METADATA_KEY: &str = "__metadata__";
 /// length costs no memory.
 const HEADER_INITIAL_CAPACITY: u64 = 64 * 1024;
 
-/// Reads a safetensors file's signature from `reader`, which holds exactly `len` bytes.
-pub(crate) fn read<R: Read>(mut reader: R, len: u64) -> Result<ModelSignature> {
+/// Reads a safetensors file's signature and its tensors (in data order) from `reader`, which
+/// holds exactly `len` bytes.
+pub(crate) fn read<R: Read>(mut reader: R, len: u64) -> Result<(ModelSignature, Vec<TensorEntry>)> {
     if len < 8 {
         return Err(malformed(format!(
             "the file is {len} bytes, shorter than the 8-byte header length"
@@ -222,13 +224,17 @@ impl<'de> Deserialize<'de> for StringOnly {
     }
 }
 
-fn validate(mut entries: Vec<(String, Entry)>, data_len: u64) -> Result<ModelSignature> {
+fn validate(
+    mut entries: Vec<(String, Entry)>,
+    data_len: u64,
+) -> Result<(ModelSignature, Vec<TensorEntry>)> {
     // Sort by offsets so that coverage is one pass: each tensor must begin where the previous
     // one ended.
     entries.sort_by_key(|(_, entry)| entry.data_offsets);
     let mut weights = WeightTotals::default();
     let mut covered = 0u64;
     let mut previous: Option<(&str, (u64, u64))> = None;
+    let mut tensors = Vec::with_capacity(entries.len());
     for (name, entry) in &entries {
         let (begin, end) = entry.data_offsets;
         let dtype = DType::from_safetensors_name(&entry.dtype).ok_or_else(|| {
@@ -290,6 +296,11 @@ fn validate(mut entries: Vec<(String, Entry)>, data_len: u64) -> Result<ModelSig
         })?;
         covered = end;
         previous = Some((name, entry.data_offsets));
+        tensors.push(TensorEntry {
+            name: name.clone(),
+            dtype,
+            shape: shape.clone(),
+        });
     }
     if covered != data_len {
         return Err(malformed(format!(
@@ -297,8 +308,9 @@ fn validate(mut entries: Vec<(String, Entry)>, data_len: u64) -> Result<ModelSig
         )));
     }
     let weights_8bit = weights.weights_8bit();
-    Ok(ModelSignature {
+    let signature = ModelSignature {
         format: ModelFormat::Safetensors,
+        rules: 1,
         ir_version: None,
         opset: None,
         producer: None,
@@ -309,5 +321,7 @@ fn validate(mut entries: Vec<(String, Entry)>, data_len: u64) -> Result<ModelSig
         parameters: weights.parameters,
         weights_8bit,
         bytes_by_dtype: weights.bytes_by_dtype,
-    })
+        classifier: None,
+    };
+    Ok((signature, tensors))
 }
