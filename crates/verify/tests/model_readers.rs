@@ -582,7 +582,7 @@ fn class_count_finds_the_classifier_output() {
             .to_string(),
         "output 'species' has shape [N, C]: its class count cannot be determined (neither its \
          last dimension nor a single dimension after the first is a fixed size above 1 with \
-         every other one fixed at 1)"
+         every other one fixed at 1; name the class dimension)"
     );
 }
 
