@@ -143,7 +143,9 @@ fn issue11_a_manifest_whose_rules_do_not_match_the_model_is_refused_after_unpack
         .expect("onnx");
     signature.rules = 1;
     let bundle = repack(dir.path(), signature);
-    let verified = verifier().verify_path(&bundle).expect("verified before unpacking");
+    let verified = verifier()
+        .verify_path(&bundle)
+        .expect("verified before unpacking");
     let err = verified
         .unpack(&dir.path().join("installed"))
         .expect_err("refused");

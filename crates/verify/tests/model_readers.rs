@@ -545,7 +545,9 @@ fn class_count_finds_the_classifier_output() {
     let float = signature(ONNX_FIXTURES[0].name, ONNX_FIXTURES[0].bytes);
     assert_eq!(float.class_count(None, None).expect("only output"), 7);
     assert_eq!(float.class_count(Some("species"), None).expect("named"), 7);
-    float.check_label_count(None, None, 7).expect("seven labels");
+    float
+        .check_label_count(None, None, 7)
+        .expect("seven labels");
     assert_eq!(
         float
             .check_label_count(None, None, 6)

@@ -119,13 +119,19 @@ fn check_values(name: &str, role: &str, ours: &[ValueSignature], onnx: &Value, o
         assert_eq!(value.name, theirs["name"].as_str().expect("name"), "{what}");
         let their_type = theirs["type"].as_str().expect("type");
         let ours_type = onnxruntime_type(value);
-        assert!(their_type.starts_with(&ours_type), "{what}: {ours_type} vs {their_type}");
+        assert!(
+            their_type.starts_with(&ours_type),
+            "{what}: {ours_type} vs {their_type}"
+        );
         if value.kind == ValueKind::Tensor {
             let shape = value.shape.as_deref().expect("a shape");
             let expected = theirs["shape"].as_array().expect("shape");
             assert_eq!(shape.len(), expected.len(), "{what}");
             for (dim, theirs) in shape.iter().zip(expected) {
-                assert!(dim_matches_onnxruntime(dim, theirs), "{what}: {dim} vs {theirs}");
+                assert!(
+                    dim_matches_onnxruntime(dim, theirs),
+                    "{what}: {dim} vs {theirs}"
+                );
             }
         }
     }
@@ -146,17 +152,31 @@ fn issue11_real_onnx_models_read_as_onnx_and_onnxruntime_read_them() {
         // onnx 1.23.2: ModelProto.ir_version, opset_import (default domain), producer_*.
         assert_eq!(Value::from(sig.ir_version), onnx["ir_version"], "{name}");
         assert_eq!(Value::from(sig.opset), onnx["opset"], "{name}");
-        assert_eq!(Value::from(sig.producer.clone()), onnx["producer_name"], "{name}");
+        assert_eq!(
+            Value::from(sig.producer.clone()),
+            onnx["producer_name"],
+            "{name}"
+        );
         assert_eq!(
             Value::from(sig.producer_version.clone()),
             onnx["producer_version"],
             "{name}"
         );
         check_values(name, "input", &sig.inputs, &onnx["inputs"], &ort["inputs"]);
-        check_values(name, "output", &sig.outputs, &onnx["outputs"], &ort["outputs"]);
+        check_values(
+            name,
+            "output",
+            &sig.outputs,
+            &onnx["outputs"],
+            &ort["outputs"],
+        );
         // onnx 1.23.2 with numpy 2.4.6: numpy_helper.to_array over the initializers, every
         // Constant node's value and the same in every subgraph (size, nbytes), by data type.
-        assert_eq!(Value::from(sig.weight_tensors), onnx["weight_tensors"], "{name}");
+        assert_eq!(
+            Value::from(sig.weight_tensors),
+            onnx["weight_tensors"],
+            "{name}"
+        );
         assert_eq!(Value::from(sig.parameters), onnx["parameters"], "{name}");
         let ours: BTreeMap<String, u64> = sig
             .bytes_by_dtype
@@ -198,7 +218,11 @@ fn issue11_class_counts_match_what_the_packages_say() {
             "{name} ({})",
             classes["from"]
         );
-        assert_eq!(sig.class_count(None, None).expect("the only output"), count, "{name}");
+        assert_eq!(
+            sig.class_count(None, None).expect("the only output"),
+            count,
+            "{name}"
+        );
     }
 }
 
@@ -241,7 +265,9 @@ fn issue11_safetensors_tensors_and_class_count_match_the_safetensors_package() {
     let bytes = std::fs::read(&file).expect("fixture");
     let tensors = read_safetensors_tensors(bytes.as_slice(), bytes.len() as u64).expect("read");
     // safetensors 0.8.0: safe_open(framework="np").keys(), get_tensor(name).dtype / .shape.
-    let theirs = expected["safetensors"]["tensors"].as_object().expect("tensors");
+    let theirs = expected["safetensors"]["tensors"]
+        .as_object()
+        .expect("tensors");
     assert_eq!(tensors.len(), theirs.len());
     for tensor in &tensors {
         let their = &theirs[&tensor.name];
@@ -256,7 +282,11 @@ fn issue11_safetensors_tensors_and_class_count_match_the_safetensors_package() {
         let sig = read_model_signature_for_pack(&file, Some(tensor), None)
             .expect("read")
             .expect("safetensors");
-        assert_eq!(sig.class_count(None, None).expect("count"), count, "{tensor}");
+        assert_eq!(
+            sig.class_count(None, None).expect("count"),
+            count,
+            "{tensor}"
+        );
         assert_eq!(
             sig.class_count(Some(tensor), None).expect("count"),
             count,
@@ -274,5 +304,80 @@ fn issue11_safetensors_tensors_and_class_count_match_the_safetensors_package() {
             .expect_err("no such tensor")
             .to_string(),
         "the safetensors model has no tensor 'head.missing'"
+    );
+}
+
+/// Issue 11 items 1 and 6 on the device: the app's policy counts classes with the dimension it
+/// sets, else the one `pack --class-dim` recorded for that output, else the rule; for
+/// safetensors, only the tensor whose shape the signed record holds can be named.
+#[test]
+fn issue11_the_device_policy_uses_the_recorded_or_its_own_class_dimension() {
+    use ampoule_verify::model::CompatibilityPolicy;
+    let labels = |n: usize| -> Vec<String> { (0..n).map(|i| format!("class {i}")).collect() };
+    let policy = |dim: Option<u32>| {
+        let builder = CompatibilityPolicy::builder().classifier_output("scores");
+        match dim {
+            Some(dim) => builder.class_dim(dim),
+            None => builder,
+        }
+        .build()
+        .expect("policy")
+    };
+    // An output [N, 5, 7] (invented): the rule takes the last dimension, 7.
+    let mut sig: ModelSignature = serde_json::from_value(serde_json::json!({
+        "format": "onnx", "ir_version": 8, "opset": 13, "producer": null,
+        "producer_version": null, "inputs": [],
+        "outputs": [{"name": "scores", "dtype": "float32", "shape": ["N", 5, 7]}],
+        "weight_tensors": 0, "parameters": 0, "weights_8bit": false, "bytes_by_dtype": {}
+    }))
+    .expect("a signature");
+    policy(None)
+        .check(Some(&sig), &labels(7))
+        .expect("the rule: 7");
+    // Recorded by pack --class-dim 1: the device counts 5.
+    sig.classifier = serde_json::from_value(serde_json::json!({"tensor": "scores", "dim": 1}))
+        .expect("classifier");
+    policy(None)
+        .check(Some(&sig), &labels(5))
+        .expect("recorded: 5");
+    assert_eq!(
+        policy(None)
+            .check(Some(&sig), &labels(7))
+            .expect_err("7 labels for 5 classes")
+            .to_string(),
+        "the label list has 7 labels, but output 'scores' has 5 classes (shape [N, 5, 7])"
+    );
+    // The app's own dimension wins over the record.
+    policy(Some(2))
+        .check(Some(&sig), &labels(7))
+        .expect("the app's: 7");
+    assert_eq!(
+        policy(Some(0))
+            .check(Some(&sig), &labels(7))
+            .expect_err("a named dimension")
+            .to_string(),
+        "output 'scores' has shape [N, 5, 7]: its class dimension 0 is N, not a fixed size"
+    );
+
+    // safetensors: the record names head.bias with its shape [7].
+    let file = path("classifier.safetensors");
+    let sig = read_model_signature_for_pack(&file, Some("head.bias"), None)
+        .expect("read")
+        .expect("safetensors");
+    let named = |name: &str| {
+        CompatibilityPolicy::builder()
+            .classifier_output(name)
+            .build()
+            .expect("policy")
+    };
+    named("head.bias")
+        .check(Some(&sig), &labels(7))
+        .expect("7 classes");
+    assert_eq!(
+        named("backbone.weight")
+            .check(Some(&sig), &labels(8))
+            .expect_err("no recorded shape")
+            .to_string(),
+        "the safetensors model records the shape of no tensor 'backbone.weight'; pack it with --classifier-output backbone.weight"
     );
 }
