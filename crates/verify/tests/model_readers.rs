@@ -1207,3 +1207,212 @@ fn hostile_safetensors_headers() {
     let sig = signature(ST, &safetensors("{}        ", 0));
     assert_eq!(sig.weight_tensors, 0);
 }
+
+// ---- Issue 11 item 4: weights in Constant nodes and subgraphs, each read bounded. ----
+
+/// A node (GraphProto field 1) of `op_type` with these attributes.
+fn node(op_type: &str, attributes: &[Vec<u8>]) -> Vec<u8> {
+    let mut node = field_len(4, op_type.as_bytes());
+    for attribute in attributes {
+        node.extend(field_len(5, attribute));
+    }
+    field_len(1, &node)
+}
+
+/// A tensor attribute (AttributeProto: name 1, t 5) holding `tensor`, a TensorProto's bytes.
+fn tensor_attribute(name: &str, tensor: &[u8]) -> Vec<u8> {
+    let mut attribute = field_len(1, name.as_bytes());
+    attribute.extend(field_len(5, tensor));
+    attribute
+}
+
+/// A graph attribute (AttributeProto: name 1, g 6) holding a graph's bytes.
+fn graph_attribute(name: &str, graph: &[u8]) -> Vec<u8> {
+    let mut attribute = field_len(1, name.as_bytes());
+    attribute.extend(field_len(6, graph));
+    attribute
+}
+
+/// A TensorProto's bytes: dims, data type, then `data` as raw_data (field 9) when given.
+fn tensor(data_type: u64, dims: &[u64], raw: Option<&[u8]>) -> Vec<u8> {
+    let mut tensor = Vec::new();
+    for dim in dims {
+        tensor.extend(field_varint(1, *dim));
+    }
+    tensor.extend(field_varint(2, data_type));
+    if let Some(raw) = raw {
+        tensor.extend(field_len(9, raw));
+    }
+    tensor
+}
+
+fn with_output(mut graph: Vec<u8>) -> Vec<u8> {
+    graph.extend(field_len(12, &tensor_value("species", 1, &[1, 7])));
+    model_with_graph(&graph)
+}
+
+#[test]
+fn issue11_constant_and_subgraph_weights_are_counted() {
+    // A Constant of 3 x 4 float32 (raw data), a ConstantOfShape whose `value` attribute is its
+    // fill value (not a weight), and an If whose branch holds a Constant and an initializer.
+    let mut graph = node(
+        "Constant",
+        &[tensor_attribute(
+            "value",
+            &tensor(1, &[3, 4], Some(&[0; 48])),
+        )],
+    );
+    graph.extend(node(
+        "ConstantOfShape",
+        &[tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4])))],
+    ));
+    let mut branch = node(
+        "Constant",
+        &[tensor_attribute("value", &tensor(3, &[5], Some(&[0; 5])))],
+    );
+    branch.extend(initializer("w", 1, &[2], Some(8)));
+    graph.extend(node("If", &[graph_attribute("then_branch", &branch)]));
+    let sig = signature("model.onnx", &with_output(graph));
+    assert_eq!((sig.weight_tensors, sig.parameters), (3, 12 + 5 + 2));
+    assert_eq!(sig.bytes_by_dtype.get(DType::Float32), 48 + 8);
+    assert_eq!(sig.bytes_by_dtype.get(DType::Int8), 5);
+    // Typed data (float_data, packed) holding exactly the elements is consistent too.
+    let mut typed = tensor(1, &[3], None);
+    typed.extend(field_len(4, &[0; 12]));
+    let graph = node("Constant", &[tensor_attribute("value", &typed)]);
+    assert_eq!(signature("model.onnx", &with_output(graph)).parameters, 3);
+}
+
+#[test]
+fn hostile_onnx_constants_past_their_bytes_or_u64_are_refused() {
+    let constant = |t: Vec<u8>| with_output(node("Constant", &[tensor_attribute("value", &t)]));
+    assert_eq!(
+        error_of(
+            "model.onnx",
+            &constant(tensor(1, &[1 << 32, 1 << 32], None))
+        ),
+        "onnx: attribute tensor at byte 25 has shape [4294967296, 4294967296] whose element count overflows 64 bits"
+    );
+    // 2^40 float32 elements claimed, 12 bytes of float_data held.
+    let mut typed = tensor(1, &[1 << 40], None);
+    typed.extend(field_len(4, &[0; 12]));
+    assert_eq!(
+        error_of("model.onnx", &constant(typed)),
+        "onnx: attribute tensor at byte 25 has shape [1099511627776] (1099511627776 elements of float32), but it holds only 12 bytes of data"
+    );
+    assert_eq!(
+        error_of("model.onnx", &constant(tensor(1, &[4], Some(&[0; 12])))),
+        "onnx: attribute tensor at byte 25 has 12 bytes of raw data, its shape [4] of float32 needs 16"
+    );
+    // External data in a Constant (data_location 1 = EXTERNAL) is refused, as at the top.
+    let mut external = tensor(1, &[4], None);
+    external.extend(field_varint(14, 1));
+    assert_eq!(
+        error_of("model.onnx", &constant(external)),
+        "onnx: attribute tensor at byte 25 keeps its data in an external file, which a bundle cannot carry"
+    );
+    // A Constant with two `value` tensors.
+    let twice = with_output(node(
+        "Constant",
+        &[
+            tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4]))),
+            tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4]))),
+        ],
+    ));
+    assert_eq!(
+        error_of("model.onnx", &twice),
+        "onnx: the node ending at byte 58 has two attributes named 'value'"
+    );
+}
+
+#[test]
+fn hostile_onnx_subgraphs_nested_too_deep_or_with_external_data_are_refused() {
+    // Subgraphs nested `depth` deep, each an If's then_branch, the innermost holding one
+    // Constant of one float32.
+    let nested = |depth: usize| {
+        let mut graph = node(
+            "Constant",
+            &[tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4])))],
+        );
+        for _ in 0..depth {
+            graph = node("If", &[graph_attribute("then_branch", &graph)]);
+        }
+        with_output(graph)
+    };
+    // The limit itself reads: 16 levels below the main graph.
+    assert_eq!(signature("model.onnx", &nested(16)).parameters, 1);
+    assert_eq!(
+        error_of("model.onnx", &nested(17)),
+        "onnx: subgraphs are nested more than 16 deep"
+    );
+    // An initializer with external data inside a subgraph.
+    let mut inner = tensor(1, &[4], None);
+    inner.extend(field_len(8, b"w"));
+    inner.extend(field_varint(14, 1));
+    let branch = field_len(5, &inner);
+    let graph = with_output(node("If", &[graph_attribute("else_branch", &branch)]));
+    assert_eq!(
+        error_of("model.onnx", &graph),
+        "onnx: initializer 'w' keeps its data in an external file, which a bundle cannot carry"
+    );
+}
+
+#[test]
+fn issue11_a_dimension_of_minus_one_is_unknown_and_other_negatives_stay_errors() {
+    // onnx's checker and onnxruntime accept -1 ("unknown"; real files: the OCR classifier in
+    // tests/data/real-models/); -2 means nothing and is refused.
+    let output = |dim: u64| model_with_graph(&field_len(12, &tensor_value("scores", 1, &[dim, 2])));
+    let sig = signature("model.onnx", &output(u64::MAX));
+    assert_eq!(
+        sig.outputs[0].shape,
+        Some(vec![Dim::Unknown, Dim::Fixed(2)])
+    );
+    assert_eq!(sig.class_count(None, None).expect("the last dimension"), 2);
+    assert_eq!(
+        error_of("model.onnx", &output(u64::MAX - 1)),
+        "onnx: output 'scores' has a negative dimension -2"
+    );
+}
+
+#[test]
+fn a_64_gib_constant_is_measured_not_read() {
+    // Issue 11 item 4: a large but consistent Constant is counted without being read into
+    // memory; the Virtual file is 64 GiB of zeros that exist only as a count.
+    const RAW: u64 = 64 << 30;
+    let mut t = field_varint(1, RAW / 4);
+    t.extend(field_varint(2, 1));
+    t.extend(varint((9 << 3) | 2));
+    t.extend(varint(RAW));
+    let t_len = t.len() as u64 + RAW;
+    let mut attribute = field_len(1, b"value");
+    attribute.extend(varint((5 << 3) | 2));
+    attribute.extend(varint(t_len));
+    let attribute_len = attribute.len() as u64 + t_len;
+    let mut node = field_len(4, b"Constant");
+    node.extend(varint((5 << 3) | 2));
+    node.extend(varint(attribute_len));
+    let node_len = node.len() as u64 + attribute_len;
+    let output = field_len(12, &tensor_value("species", 1, &[1, 7]));
+    let mut graph = varint((1 << 3) | 2);
+    graph.extend(varint(node_len));
+    let graph_len = graph.len() as u64 + node_len + output.len() as u64;
+    let mut head = field_varint(1, 8);
+    head.extend(varint((7 << 3) | 2));
+    head.extend(varint(graph_len));
+    head.extend(graph);
+    head.extend(node);
+    head.extend(attribute);
+    head.extend(t);
+    let file = Virtual {
+        head,
+        zeros: RAW,
+        tail: output,
+        pos: 0,
+    };
+    let len = file.len();
+    let sig = read_model_signature_seekable("model.onnx", file, len)
+        .expect("read")
+        .expect("signature");
+    assert_eq!((sig.weight_tensors, sig.parameters), (1, RAW / 4));
+    assert_eq!(sig.bytes_by_dtype.get(DType::Float32), RAW);
+}

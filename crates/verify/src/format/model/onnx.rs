@@ -594,6 +594,11 @@ fn read_tensor<S: Source>(w: &mut Wire<S>, end: u64, at: u64, what: &str) -> Res
                 w.skip_field(&field, end, MESSAGE)?;
             }
             (14, _) => external |= w.varint_field(&field, end, MESSAGE)? == 1,
+            (4 | 5 | 7 | 10 | 11, LEN) => {
+                let data_end = w.payload_end(&field, end, MESSAGE)?;
+                typed_bytes = typed_bytes.saturating_add(data_end - w.pos);
+                w.skip_to(data_end)?;
+            }
             (4 | 5 | 7 | 10 | 11, _) => {
                 let from = w.pos;
                 w.skip_field(&field, end, MESSAGE)?;
