@@ -240,12 +240,7 @@ fn issue11_the_ocr_recognizers_labels_pack_and_match_its_class_count() {
     // The recognizer's output as onnx 1.23.2 reads it ([N, T, 6625], the file itself is 10.9 MB
     // and not committed): its class count is the last dimension, one class per label.
     let output = &rec["outputs"][0];
-    let shape: Vec<Value> = output["shape"]
-        .as_array()
-        .expect("shape")
-        .iter()
-        .map(|d| d.clone())
-        .collect();
+    let shape: Vec<Value> = output["shape"].as_array().expect("shape").clone();
     let sig: ModelSignature = serde_json::from_value(serde_json::json!({
         "format": "onnx", "ir_version": null, "opset": null, "producer": null,
         "producer_version": null, "inputs": [],
