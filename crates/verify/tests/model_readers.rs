@@ -594,7 +594,8 @@ fn class_count_finds_the_classifier_output() {
 /// (`[1, 1000, 1, 1]`), an OCR text recognizer (`[N, T, 6625]`), a voice-activity model
 /// (`[batch, 1]`), and a segmentation-like output whose class count no rule can read
 /// (`[N, 1, H, W]`). The shapes are as the issue reports them (from onnx's reading of those
-/// files), not re-read here.
+/// files), not re-read here; `real_models.rs::issue11_the_class_dimension_rule_on_real_output_shapes`
+/// takes them from model files in the onnx and rapidocr-onnxruntime packages, with their sources.
 #[test]
 fn issue11_the_class_dimension_rule_reads_real_output_shapes() {
     let float = signature(ONNX_FIXTURES[0].name, ONNX_FIXTURES[0].bytes);

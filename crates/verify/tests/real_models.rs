@@ -376,3 +376,31 @@ fn issue11_the_device_policy_uses_the_recorded_or_its_own_class_dimension() {
         "the safetensors model records the shape of no tensor 'backbone.weight'; pack it with --classifier-output backbone.weight"
     );
 }
+
+/// Issue 11 item 1: the class-dimension rule on the five shapes the issue lists, each the output
+/// of a model file inside a package (reference.json's `class_shapes` names each source and where
+/// its class count comes from): `[1, 1000]`, `[1, 1000, 1, 1]`, `[N, T, 6625]`, `[1, 1]` (a
+/// `[batch, 1]` score; no small voice-activity model ships in a package we searched), and
+/// `[N, 1, H, W]`, which no rule can read as classes.
+#[test]
+fn issue11_the_class_dimension_rule_on_real_output_shapes() {
+    let reference = reference();
+    let shapes = reference["class_shapes"].as_array().expect("class_shapes");
+    assert_eq!(shapes.len(), 5);
+    for case in shapes {
+        let sig: ModelSignature = serde_json::from_value(serde_json::json!({
+            "format": "onnx", "ir_version": null, "opset": null, "producer": null,
+            "producer_version": null, "inputs": [],
+            "outputs": [{"name": "out", "dtype": "float32", "shape": case["shape"]}],
+            "weight_tensors": 0, "parameters": 0, "weights_8bit": false, "bytes_by_dtype": {}
+        }))
+        .expect("a signature");
+        assert_eq!(
+            sig.class_count(None, None).ok(),
+            case["classes"].as_u64(),
+            "{} ({})",
+            case["source"],
+            case["classes_from"]
+        );
+    }
+}

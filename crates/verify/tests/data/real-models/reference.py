@@ -175,6 +175,8 @@ def main():
         models = "rapidocr_onnxruntime/models/"
         config = wheel.read("rapidocr_onnxruntime/config.yaml").decode()
         rec = onnx.load_from_string(wheel.read(models + "ch_PP-OCRv4_rec_infer.onnx"))
+        det = onnx.load_from_string(wheel.read(models + "ch_PP-OCRv4_det_infer.onnx"))
+    view = onnx.load(os.path.join(ONNX_DATA, "pytorch-operator", "test_operator_view", "model.onnx"))
     # config.yaml's "label_list: ['0', '180']" under Cls, read without a YAML parser.
     label_list = ast.literal_eval(config.split("label_list:")[1].splitlines()[0].strip())
     character = next(p.value for p in rec.metadata_props if p.key == "character")
@@ -219,6 +221,33 @@ def main():
                 "classes": {"output": "head.bias", "count": 7, "from": "written by reference.py"},
             },
         },
+        # Issue 11 item 1's shapes, each the output of a model file inside a package, with the
+        # class count its package states (null: the output is not a list of class scores).
+        "class_shapes": [
+            {"source": "onnx 1.23.2 light_bvlc_alexnet.onnx, output prob_1",
+             "shape": value_of(onnx.load(os.path.join(HERE, "onnx-1.23.2-light_bvlc_alexnet.onnx")).graph.output[0])["shape"],
+             "classes": expected_output_shape("bvlc_alexnet")[1],
+             "classes_from": "the expected output light_bvlc_alexnet_output_0.pb"},
+            {"source": "onnx 1.23.2 light_squeezenet.onnx, output softmaxout_1",
+             "shape": value_of(onnx.load(os.path.join(HERE, "onnx-1.23.2-light_squeezenet.onnx")).graph.output[0])["shape"],
+             "classes": expected_output_shape("squeezenet")[1],
+             "classes_from": "the expected output light_squeezenet_output_0.pb"},
+            {"source": f"{RAPIDOCR} ch_PP-OCRv4_rec_infer.onnx, output {rec.graph.output[0].name}",
+             "shape": value_of(rec.graph.output[0])["shape"],
+             "classes": len(rec_labels),
+             "classes_from": "ch_ppocr_rec/utils.py: 'blank', the 'character' metadata, ' '"},
+            {"source": "onnx 1.23.2 pytorch-operator/test_operator_view/model.onnx, output "
+                       f"{view.graph.output[0].name}",
+             "shape": value_of(view.graph.output[0])["shape"],
+             "classes": 1,
+             "classes_from": "one score per row (a [batch, 1] output with a fixed batch; no "
+                             "package we searched ships a small voice-activity model)"},
+            {"source": f"{RAPIDOCR} ch_PP-OCRv4_det_infer.onnx, output {det.graph.output[0].name}",
+             "shape": value_of(det.graph.output[0])["shape"],
+             "classes": None,
+             "classes_from": "a text-probability map [N, 1, H, W] (rapidocr ch_ppocr_det), "
+                             "not class scores"},
+        ],
         "ocr_recognizer": {
             "file": f"{RAPIDOCR} rapidocr_onnxruntime/models/ch_PP-OCRv4_rec_infer.onnx "
                     "(10.9 MB, not committed)",
