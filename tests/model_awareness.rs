@@ -520,3 +520,65 @@ fn issue11_a_real_ocr_label_list_packs() {
     assert_eq!(run.code, 0, "{run:?}");
     assert_eq!(json(&run)["manifest"]["label_count"], 6625);
 }
+
+/// Issue 11 with item 7: `diff` reports a changed classifier record and newer reading rules as
+/// breaking (a policy naming the output counts classes by the record; a verifier that knows only
+/// the older rules refuses the bundle). The old bundle is the one packed before issue 11
+/// (tests/data/before-issue11/README.md).
+#[test]
+fn issue11_diff_reports_classifier_and_reading_rule_changes_as_breaking() {
+    let env = Env::new();
+    env.write(
+        "squeezenet.onnx",
+        &real("onnx-1.23.2-light_squeezenet.onnx"),
+    );
+    let labels: String = (0..1000).map(|i| format!("class {i}\n")).collect();
+    env.write("thousand.txt", labels.as_bytes());
+    let a = pack(
+        &env,
+        "squeezenet.onnx",
+        "thousand.txt",
+        "1.0.0",
+        "a.ampoule",
+        &[],
+    );
+    assert_eq!(a.code, 0, "{a:?}");
+    let b = pack(
+        &env,
+        "squeezenet.onnx",
+        "thousand.txt",
+        "1.1.0",
+        "b.ampoule",
+        &["--class-dim", "1"],
+    );
+    assert_eq!(b.code, 0, "{b:?}");
+    let doc = json(&env.run(["--json", "diff", "a.ampoule", "b.ampoule"]));
+    assert_eq!(
+        doc["breaking"],
+        serde_json::json!(["classifier changed: none recorded -> 'softmaxout_1' dimension 1"])
+    );
+
+    let data = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/data/before-issue11/");
+    env.write(
+        "old.ampoule",
+        &std::fs::read(format!("{data}trailcam-species-1.0.0.ampoule")).expect("old bundle"),
+    );
+    env.write(
+        "mm.onnx",
+        &std::fs::read(format!("{data}operator-mm.onnx")).expect("model"),
+    );
+    env.write(
+        "four.txt",
+        &std::fs::read(format!("{data}labels.txt")).expect("labels"),
+    );
+    let new = pack(&env, "mm.onnx", "four.txt", "1.1.0", "new.ampoule", &[]);
+    assert_eq!(new.code, 0, "{new:?}");
+    let doc = json(&env.run(["--json", "diff", "old.ampoule", "new.ampoule"]));
+    let breaking = doc["breaking"].as_array().expect("breaking");
+    assert!(
+        breaking.contains(&serde_json::json!(
+            "model read under newer rules: 1 -> 2 (verifiers that know only rules 1 refuse it)"
+        )),
+        "{doc}"
+    );
+}
