@@ -486,6 +486,7 @@ fn issue11_safetensors_classifier_output_and_inspect_tensors() {
     let run = env.run(["inspect", "b.ampoule"]);
     assert_eq!(run.code, 0, "{run:?}");
     for line in [
+        "classes  counted on 'head.weight', shape [7, 8]\n",
         "tensor   backbone.weight: float32 [8, 12]\n",
         "tensor   head.bias: float32 [7]\n",
         "tensor   head.weight: float16 [7, 8]\n",

@@ -95,6 +95,23 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
             for v in &sig.outputs {
                 human.push_str(&format!("output   {}\n", shown(&v.to_string())));
             }
+            if let Some(c) = &sig.classifier {
+                let mut line = format!("classes  counted on '{}'", shown(&c.tensor));
+                if let Some(dim) = c.dim {
+                    line.push_str(&format!(", dimension {dim}"));
+                }
+                if let Some(shape) = &c.shape {
+                    let dims: Vec<String> = shape.iter().map(u64::to_string).collect();
+                    line.push_str(&format!(", shape [{}]", dims.join(", ")));
+                }
+                human.push_str(&format!("{line}\n"));
+            }
+            if sig.rules > 1 {
+                human.push_str(&format!(
+                    "rules    model read under reading rules {} (FORMAT.md, the model object)\n",
+                    sig.rules
+                ));
+            }
             for t in tensors.iter().flatten() {
                 let shape: Vec<String> = t.shape.iter().map(u64::to_string).collect();
                 human.push_str(&format!(

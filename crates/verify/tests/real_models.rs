@@ -404,3 +404,58 @@ fn issue11_the_class_dimension_rule_on_real_output_shapes() {
         );
     }
 }
+
+/// Extra coverage, never the only coverage: with `AMPOULE_RAPIDOCR_WHEEL` naming the
+/// rapidocr-onnxruntime 1.4.4 wheel and a Python (`AMPOULE_PYTHON`, default `python3`) that has
+/// onnx, onnxruntime, safetensors and numpy, reference.py run afresh in a copy of the folder must
+/// write the committed values (all but `source`, which names the versions it ran with) and
+/// the same derived files. Without them the test says it skipped.
+#[test]
+fn reference_py_rewrites_the_committed_values_when_its_packages_are_present() {
+    use std::process::Command;
+    let Ok(wheel) = std::env::var("AMPOULE_RAPIDOCR_WHEEL") else {
+        println!("skipped: AMPOULE_RAPIDOCR_WHEEL does not name the rapidocr-onnxruntime wheel");
+        return;
+    };
+    let python = std::env::var("AMPOULE_PYTHON").unwrap_or_else(|_| "python3".into());
+    let probe = Command::new(&python)
+        .args(["-c", "import onnx, onnxruntime, safetensors, numpy"])
+        .status();
+    if !probe.is_ok_and(|status| status.success()) {
+        println!("skipped: {python} lacks onnx, onnxruntime, safetensors or numpy");
+        return;
+    }
+    let dir = tempfile::tempdir().expect("temp dir");
+    let folder = path("");
+    for entry in std::fs::read_dir(&folder).expect("the folder") {
+        let entry = entry.expect("an entry");
+        std::fs::copy(entry.path(), dir.path().join(entry.file_name())).expect("copy");
+    }
+    let run = Command::new(&python)
+        .arg(dir.path().join("reference.py"))
+        .arg(&wheel)
+        .output()
+        .expect("python runs");
+    assert!(
+        run.status.success(),
+        "{}",
+        String::from_utf8_lossy(&run.stderr)
+    );
+    let fresh: Value =
+        serde_json::from_slice(&std::fs::read(dir.path().join("reference.json")).expect("written"))
+            .expect("json");
+    let mut committed = reference();
+    committed["source"] = fresh["source"].clone();
+    assert_eq!(fresh, committed);
+    for derived in [
+        "subgraphs.onnx",
+        "classifier.safetensors",
+        "rapidocr_onnxruntime-1.4.4-rec-labels.txt",
+    ] {
+        assert!(
+            std::fs::read(dir.path().join(derived)).expect("written")
+                == std::fs::read(folder.join(derived)).expect("committed"),
+            "{derived} differs from the committed file"
+        );
+    }
+}
