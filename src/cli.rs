@@ -330,10 +330,15 @@ pub struct PackArgs {
     pub key: Option<PathBuf>,
     #[command(flatten)]
     pub passphrase: PassphraseArgs,
-    /// The model output whose last dimension counts the classes (needed when the model has
-    /// several outputs).
+    /// The model output (ONNX) or tensor (safetensors: a [C] bias or [C, in] weight) whose
+    /// classes the labels name; needed when the model has several outputs, and for safetensors.
+    /// A safetensors tensor is recorded in the signed manifest.
     #[arg(long, value_name = "NAME")]
     pub classifier_output: Option<String>,
+    /// The dimension of the classifier output that counts the classes (0 is the first), when
+    /// the shape alone does not say; recorded in the signed manifest, and devices use it.
+    #[arg(long, value_name = "N")]
+    pub class_dim: Option<u32>,
     /// Pack even if the label count differs from the classifier output's class count
     /// (the devices' own policy may still refuse it).
     #[arg(long)]

@@ -334,3 +334,252 @@ fn issue11_diff_reports_opset_8bit_and_format_changes_as_breaking() {
         run.stdout
     );
 }
+
+/// Real models from Python packages (crates/verify/tests/data/real-models/README.md names each
+/// package, version and licence).
+const REAL: &str = concat!(
+    env!("CARGO_MANIFEST_DIR"),
+    "/crates/verify/tests/data/real-models/"
+);
+
+fn real(name: &str) -> Vec<u8> {
+    std::fs::read(format!("{REAL}{name}")).expect("a real-model fixture")
+}
+
+/// Issue 11 items 2 and 4: the OCR text-direction classifier of rapidocr-onnxruntime 1.4.4
+/// keeps every weight in Constant nodes and stores its batch dimension as -1; it packs with
+/// its two labels (`label_list: ['0', '180']` in that wheel's config.yaml), and the record
+/// counts the Constants' weights as onnx 1.23.2 reads them (reference.json: 308 tensors,
+/// 133,777 parameters) under reading rules 2.
+#[test]
+fn issue11_a_real_model_with_constant_weights_and_minus_one_dims_packs() {
+    let env = Env::new();
+    env.write(
+        "cls.onnx",
+        &real("rapidocr_onnxruntime-1.4.4-ch_ppocr_mobile_v2.0_cls_infer.onnx"),
+    );
+    env.write("two.txt", b"0\n180\n");
+    let run = pack(&env, "cls.onnx", "two.txt", "1.0.0", "a.ampoule", &[]);
+    assert_eq!(run.code, 0, "{run:?}");
+    let model = &json(&run)["manifest"]["model"];
+    assert_eq!(model["rules"], 2);
+    assert_eq!(model["weight_tensors"], 308);
+    assert_eq!(model["parameters"], 133_777);
+    assert_eq!(model["outputs"][0]["shape"], serde_json::json!([null, 2]));
+    assert_eq!(model.get("classifier"), None);
+}
+
+/// Issue 11 item 1: `--class-dim` is recorded in the signed manifest; a wrong one is refused
+/// by the label check. The model is onnx 1.23.2's light SqueezeNet, output [1, 1000, 1, 1]
+/// (the shape of its expected output light_squeezenet_output_0.pb); its weights come from
+/// ConstantOfShape at run time, so reading rules 1 read it the same and it keeps them.
+#[test]
+fn issue11_pack_records_the_class_dimension() {
+    let env = Env::new();
+    env.write(
+        "squeezenet.onnx",
+        &real("onnx-1.23.2-light_squeezenet.onnx"),
+    );
+    let labels: String = (0..1000).map(|i| format!("class {i}\n")).collect();
+    env.write("thousand.txt", labels.as_bytes());
+    let run = pack(
+        &env,
+        "squeezenet.onnx",
+        "thousand.txt",
+        "1.0.0",
+        "a.ampoule",
+        &["--class-dim", "1"],
+    );
+    assert_eq!(run.code, 0, "{run:?}");
+    let model = &json(&run)["manifest"]["model"];
+    assert_eq!(
+        model["classifier"],
+        serde_json::json!({"tensor": "softmaxout_1", "dim": 1})
+    );
+    assert_eq!(model.get("rules"), None, "rules 1 read it alike");
+    let run = pack(
+        &env,
+        "squeezenet.onnx",
+        "thousand.txt",
+        "1.0.1",
+        "b.ampoule",
+        &["--class-dim", "3"],
+    );
+    assert_eq!(run.code, 1, "{run:?}");
+    assert!(
+        run.stderr.contains(
+            "the label list has 1000 labels, but output 'softmaxout_1' has 1 classes (shape [1, 1000, 1, 1])"
+        ),
+        "{run:?}"
+    );
+    let run = pack(
+        &env,
+        "squeezenet.onnx",
+        "thousand.txt",
+        "1.0.1",
+        "b.ampoule",
+        &["--class-dim", "4"],
+    );
+    assert_eq!(run.code, 1, "{run:?}");
+    assert_eq!(
+        run.stderr,
+        "ampoule: error: cannot read the model's signature from squeezenet.onnx: output \
+         'softmaxout_1' has shape [1, 1000, 1, 1], which has no dimension 4\n"
+    );
+}
+
+/// Issue 11 item 6: a safetensors model's class count is the first dimension of the tensor
+/// `--classifier-output` names; the name and the tensor's shape are recorded, and `inspect`
+/// lists the tensors as the safetensors 0.8.0 package reads them (reference.json).
+#[test]
+fn issue11_safetensors_classifier_output_and_inspect_tensors() {
+    let env = Env::new();
+    env.write("classifier.safetensors", &real("classifier.safetensors"));
+    env.write("seven.txt", SEVEN.as_bytes());
+    let run = pack(
+        &env,
+        "classifier.safetensors",
+        "seven.txt",
+        "1.0.0",
+        "a.ampoule",
+        &[],
+    );
+    assert_eq!(run.code, 0, "{run:?}");
+    assert!(
+        run.stderr.contains(
+            "label count not checked against the model: the safetensors model has no outputs to match labels to"
+        ),
+        "{run:?}"
+    );
+    let run = pack(
+        &env,
+        "classifier.safetensors",
+        "seven.txt",
+        "1.0.1",
+        "b.ampoule",
+        &["--classifier-output", "head.weight"],
+    );
+    assert_eq!(run.code, 0, "{run:?}");
+    assert_eq!(
+        json(&run)["manifest"]["model"]["classifier"],
+        serde_json::json!({"tensor": "head.weight", "shape": [7, 8]})
+    );
+    env.write(
+        "six.txt",
+        b"fox\nroe deer\nwild boar\nbadger\nhare\nempty frame\n",
+    );
+    let run = pack(
+        &env,
+        "classifier.safetensors",
+        "six.txt",
+        "1.0.2",
+        "c.ampoule",
+        &["--classifier-output", "head.bias"],
+    );
+    assert_eq!(run.code, 1, "{run:?}");
+    assert!(
+        run.stderr.contains(
+            "the label list has 6 labels, but tensor 'head.bias' has 7 classes (shape [7])"
+        ),
+        "{run:?}"
+    );
+    let run = env.run(["inspect", "b.ampoule"]);
+    assert_eq!(run.code, 0, "{run:?}");
+    for line in [
+        "classes  counted on 'head.weight', shape [7, 8]\n",
+        "tensor   backbone.weight: float32 [8, 12]\n",
+        "tensor   head.bias: float32 [7]\n",
+        "tensor   head.weight: float16 [7, 8]\n",
+    ] {
+        assert!(run.stdout.contains(line), "{line}{}", run.stdout);
+    }
+    let doc = json(&env.run(["--json", "inspect", "b.ampoule"]));
+    assert_eq!(
+        doc["tensors"][1],
+        serde_json::json!({"name": "head.bias", "dtype": "float32", "shape": [7]})
+    );
+}
+
+/// Issue 11 item 5: the real OCR label list of rapidocr-onnxruntime 1.4.4 (a single space,
+/// U+3000 and two CJK compatibility ideographs among its 6625 labels) packs.
+#[test]
+fn issue11_a_real_ocr_label_list_packs() {
+    let env = Env::new();
+    env.write("model.bin", b"an opaque model");
+    env.write(
+        "dictionary.txt",
+        &real("rapidocr_onnxruntime-1.4.4-rec-labels.txt"),
+    );
+    let run = pack(
+        &env,
+        "model.bin",
+        "dictionary.txt",
+        "1.0.0",
+        "a.ampoule",
+        &[],
+    );
+    assert_eq!(run.code, 0, "{run:?}");
+    assert_eq!(json(&run)["manifest"]["label_count"], 6625);
+}
+
+/// Issue 11 with item 7: `diff` reports a changed classifier record and newer reading rules as
+/// breaking (a policy naming the output counts classes by the record; a verifier that knows only
+/// the older rules refuses the bundle). The old bundle is the one packed before issue 11
+/// (tests/data/before-issue11/README.md).
+#[test]
+fn issue11_diff_reports_classifier_and_reading_rule_changes_as_breaking() {
+    let env = Env::new();
+    env.write(
+        "squeezenet.onnx",
+        &real("onnx-1.23.2-light_squeezenet.onnx"),
+    );
+    let labels: String = (0..1000).map(|i| format!("class {i}\n")).collect();
+    env.write("thousand.txt", labels.as_bytes());
+    let a = pack(
+        &env,
+        "squeezenet.onnx",
+        "thousand.txt",
+        "1.0.0",
+        "a.ampoule",
+        &[],
+    );
+    assert_eq!(a.code, 0, "{a:?}");
+    let b = pack(
+        &env,
+        "squeezenet.onnx",
+        "thousand.txt",
+        "1.1.0",
+        "b.ampoule",
+        &["--class-dim", "1"],
+    );
+    assert_eq!(b.code, 0, "{b:?}");
+    let doc = json(&env.run(["--json", "diff", "a.ampoule", "b.ampoule"]));
+    assert_eq!(
+        doc["breaking"],
+        serde_json::json!(["classifier changed: none recorded -> 'softmaxout_1' dimension 1"])
+    );
+
+    let data = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/data/before-issue11/");
+    env.write(
+        "old.ampoule",
+        &std::fs::read(format!("{data}trailcam-species-1.0.0.ampoule")).expect("old bundle"),
+    );
+    env.write(
+        "mm.onnx",
+        &std::fs::read(format!("{data}operator-mm.onnx")).expect("model"),
+    );
+    env.write(
+        "four.txt",
+        &std::fs::read(format!("{data}labels.txt")).expect("labels"),
+    );
+    let new = pack(&env, "mm.onnx", "four.txt", "1.1.0", "new.ampoule", &[]);
+    assert_eq!(new.code, 0, "{new:?}");
+    let doc = json(&env.run(["--json", "diff", "old.ampoule", "new.ampoule"]));
+    let breaking = doc["breaking"].as_array().expect("breaking");
+    assert!(
+        breaking.contains(&serde_json::json!(
+            "model read under newer rules: 1 -> 2 (verifiers that know only rules 1 refuse it)"
+        )),
+        "{doc}"
+    );
+}

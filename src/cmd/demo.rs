@@ -219,7 +219,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     )?
     .model_signature
     .context("the demo model has a signature")?
-    .check_label_count(None, first.len());
+    .check_label_count(None, None, first.len());
     refusal(
         &mut story,
         "labels",

@@ -312,7 +312,9 @@ struct ModelChange {
 
 /// The model-wide changes a `CompatibilityPolicy` checks: the file format (a policy can
 /// require one), the ONNX operator set (a policy can cap it: only a raise can cross the cap),
-/// and 8-bit against float weights (a policy can require either). Tensor names, dtypes and
+/// the recorded classifier (a policy naming it counts classes by it), and 8-bit against float
+/// weights (a policy can require either); and newer reading rules, which a verifier that does
+/// not know them refuses whatever its policy. Tensor names, dtypes and
 /// shapes, and labels, are compared elsewhere.
 fn model_changes(old: Option<&ModelSignature>, new: Option<&ModelSignature>) -> Vec<ModelChange> {
     let format = |s: Option<&ModelSignature>| s.map_or("opaque", |s| s.format.name());
@@ -341,6 +343,39 @@ fn model_changes(old: Option<&ModelSignature>, new: Option<&ModelSignature>) -> 
                 shown(new.opset)
             ),
             breaking: raised,
+        });
+    }
+    if new.rules > old.rules {
+        changes.push(ModelChange {
+            text: format!(
+                "model read under newer rules: {} -> {} (verifiers that know only rules {} refuse it)",
+                old.rules, new.rules, old.rules
+            ),
+            breaking: true,
+        });
+    }
+    if old.classifier != new.classifier {
+        let shown = |c: Option<&ampoule_verify::model::Classifier>| match c {
+            None => "none recorded".to_string(),
+            Some(c) => {
+                let mut text = format!("'{}'", c.tensor);
+                if let Some(dim) = c.dim {
+                    text.push_str(&format!(" dimension {dim}"));
+                }
+                if let Some(shape) = &c.shape {
+                    let dims: Vec<String> = shape.iter().map(u64::to_string).collect();
+                    text.push_str(&format!(" [{}]", dims.join(", ")));
+                }
+                text
+            }
+        };
+        changes.push(ModelChange {
+            text: format!(
+                "classifier changed: {} -> {}",
+                shown(old.classifier.as_ref()),
+                shown(new.classifier.as_ref())
+            ),
+            breaking: true,
         });
     }
     if old.weights_8bit != new.weights_8bit {

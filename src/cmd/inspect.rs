@@ -1,10 +1,15 @@
 //! `ampoule inspect`: what a bundle holds and who signed it, without unpacking it.
 
+use std::io::{Read, Seek, SeekFrom};
+
 use ampoule_verify::Digest;
 use ampoule_verify::DocumentKind;
+use ampoule_verify::ModelFormat;
 use ampoule_verify::bundle::Unverified;
+use ampoule_verify::format::limit;
+use ampoule_verify::model::{TensorEntry, read_safetensors_tensors};
 use ampoule_verify::signed::{SignedDocument, kind};
-use anyhow::Result;
+use anyhow::{Context, Result};
 use serde_json::json;
 
 use crate::cli::InspectArgs;
@@ -19,6 +24,15 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
     };
     let mut bundle = Unverified::open(&args.bundle).map_err(|e| bundle_error(&args.bundle, e))?;
     let payload_ok = bundle.check_payload();
+    // A safetensors file has no inputs or outputs to show: its tensors are read from the
+    // payload's model header, once the payload's digest matched the manifest.
+    let tensors = match (
+        &payload_ok,
+        bundle.manifest.model.as_ref().map(|m| m.format),
+    ) {
+        (Ok(()), Some(ModelFormat::Safetensors)) => Some(safetensors_tensors(&mut bundle)?),
+        _ => None,
+    };
     let Unverified {
         layout,
         manifest,
@@ -81,6 +95,32 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
             for v in &sig.outputs {
                 human.push_str(&format!("output   {}\n", shown(&v.to_string())));
             }
+            if let Some(c) = &sig.classifier {
+                let mut line = format!("classes  counted on '{}'", shown(&c.tensor));
+                if let Some(dim) = c.dim {
+                    line.push_str(&format!(", dimension {dim}"));
+                }
+                if let Some(shape) = &c.shape {
+                    let dims: Vec<String> = shape.iter().map(u64::to_string).collect();
+                    line.push_str(&format!(", shape [{}]", dims.join(", ")));
+                }
+                human.push_str(&format!("{line}\n"));
+            }
+            if sig.rules > 1 {
+                human.push_str(&format!(
+                    "rules    model read under reading rules {} (FORMAT.md, the model object)\n",
+                    sig.rules
+                ));
+            }
+            for t in tensors.iter().flatten() {
+                let shape: Vec<String> = t.shape.iter().map(u64::to_string).collect();
+                human.push_str(&format!(
+                    "tensor   {}: {} [{}]\n",
+                    shown(&t.name),
+                    t.dtype,
+                    shape.join(", ")
+                ));
+            }
             for line in sig.size_report().to_string().lines() {
                 human.push_str(&format!("weights  {line}\n"));
             }
@@ -136,7 +176,27 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
                 })
             }).collect::<Vec<_>>(),
             "size_report": m.model.as_ref().map(|s| s.size_report()),
+            "tensors": tensors,
             "manifest": m,
         }),
     )
+}
+
+/// The tensors of the bundle's safetensors model: its header, read from the decompressed
+/// payload's first entry (the model), within the format's window and size caps.
+fn safetensors_tensors(bundle: &mut Unverified) -> Result<Vec<TensorEntry>> {
+    let (offset, len) = (bundle.layout.payload_offset, bundle.layout.payload_len);
+    let size = bundle.manifest.model().size;
+    let file = bundle.file_mut();
+    file.seek(SeekFrom::Start(offset))
+        .context("cannot read the bundle's payload")?;
+    let mut decoder = zstd::Decoder::new(file.take(len)).context("cannot read the payload")?;
+    decoder
+        .window_log_max(limit::WINDOW_LOG)
+        .context("cannot read the payload")?;
+    let mut header = [0u8; 512];
+    decoder
+        .read_exact(&mut header)
+        .context("cannot read the payload's first tar header")?;
+    Ok(read_safetensors_tensors(decoder.take(size), size)?)
 }

@@ -5,7 +5,7 @@ use std::path::Path;
 
 use ampoule_verify::format::limit;
 use ampoule_verify::manifest::{check_name, model_path};
-use ampoule_verify::model::{ModelSignature, read_model_signature_file};
+use ampoule_verify::model::{ModelSignature, read_model_signature_for_pack};
 use ampoule_verify::{Timestamp, labels};
 use anyhow::{Context, Result, bail};
 use semver::VersionReq;
@@ -81,8 +81,9 @@ fn check_labels_fit(
     out: &Output,
 ) -> Result<()> {
     let output = args.classifier_output.as_deref();
-    match signature.class_count(output) {
-        Ok(_) => match signature.check_label_count(output, labels.len()) {
+    let dim = args.class_dim;
+    match signature.class_count(output, dim) {
+        Ok(_) => match signature.check_label_count(output, dim, labels.len()) {
             Ok(()) => Ok(()),
             Err(e) if args.allow_label_mismatch => {
                 out.note(&format!(
@@ -95,10 +96,11 @@ fn check_labels_fit(
                  model really has a different number of outputs than labels",
             )),
         },
-        Err(e) if output.is_some() => Err(e.into()),
+        Err(e) if output.is_some() || dim.is_some() => Err(e.into()),
         Err(e) => {
             out.note(&format!(
-                "label count not checked against the model: {e} (use --classifier-output NAME)"
+                "label count not checked against the model: {e} (use --classifier-output NAME, \
+                 and --class-dim N when the shape does not say which dimension counts classes)"
             ));
             Ok(())
         }
@@ -119,14 +121,27 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     let model_len = std::fs::metadata(&args.model)
         .with_context(|| format!("cannot read model {}", args.model.display()))?
         .len();
-    let model_signature = read_model_signature_file(&args.model).with_context(|| {
+    let model_signature = read_model_signature_for_pack(
+        &args.model,
+        args.classifier_output.as_deref(),
+        args.class_dim,
+    )
+    .with_context(|| {
         format!(
             "cannot read the model's signature from {}",
             args.model.display()
         )
     })?;
-    if let Some(signature) = &model_signature {
-        check_labels_fit(signature, &labels, &args, out)?;
+    match &model_signature {
+        Some(signature) => check_labels_fit(signature, &labels, &args, out)?,
+        None if args.classifier_output.is_some() || args.class_dim.is_some() => {
+            return Err(usage(anyhow::anyhow!(
+                "--classifier-output and --class-dim need a model ampoule reads (.onnx or \
+                 .safetensors); {} is packed as an opaque file",
+                args.model.display()
+            )));
+        }
+        None => {}
     }
     let spec = PackSpec {
         model_path: inner_model_path(&args.model)?,

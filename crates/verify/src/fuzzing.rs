@@ -721,6 +721,106 @@ pub fn store(data: &[u8]) {
     );
 }
 
+/// `onnx`: the bytes as an ONNX model (issue 11's reading paths): under every reading rule the
+/// streaming and the seeking reader agree, a signature survives its own JSON, and the pack
+/// path (the oldest rules that read alike, a class dimension recorded for the first output)
+/// and the device's re-read under the record's rules and classifier give the same record.
+pub fn onnx(data: &[u8]) {
+    use crate::format::model::{
+        ModelSignature, read_as, read_model_signature, read_model_signature_seekable,
+    };
+    let len = data.len() as u64;
+    let streamed = read_model_signature("model.onnx", data, len);
+    let seeked = read_model_signature_seekable("model.onnx", std::io::Cursor::new(data), len);
+    match (&streamed, &seeked) {
+        (Ok(a), Ok(b)) => assert_eq!(a, b, "the streaming and seeking readers disagree"),
+        (Err(a), Err(b)) => assert_eq!(a.to_string(), b.to_string()),
+        (a, b) => panic!("the readers disagree: {a:?} / {b:?}"),
+    }
+    for rules in 1..=crate::format::MODEL_READING_RULES {
+        let Ok(Some(signature)) =
+            read_as("model.onnx", std::io::Cursor::new(data), len, rules, None)
+        else {
+            continue;
+        };
+        let json = serde_json::to_string(&signature).expect("a signature serializes");
+        let back: ModelSignature = serde_json::from_str(&json).expect("a signature reads back");
+        assert_eq!(back, signature);
+        let _ = signature.class_count(None, None);
+        let _ = signature.size_report();
+        let Some(output) = signature.outputs.first() else {
+            continue;
+        };
+        let request = crate::format::model::Classifier {
+            tensor: output.name.clone(),
+            dim: Some(1),
+            shape: None,
+        };
+        if let Ok(Some(recorded)) = read_as(
+            "model.onnx",
+            std::io::Cursor::new(data),
+            len,
+            rules,
+            Some(&request),
+        ) {
+            let again = read_as(
+                "model.onnx",
+                std::io::Cursor::new(data),
+                len,
+                recorded.rules,
+                recorded.classifier.as_ref(),
+            )
+            .expect("a record re-reads under its own rules");
+            assert_eq!(again.as_ref(), Some(&recorded));
+            let _ = recorded.check_label_count(None, None, 7);
+        }
+    }
+}
+
+/// `safetensors`: the bytes as a safetensors model: the signature survives its own JSON, the
+/// tensor list agrees with it, and a classifier named after its first tensor (`pack
+/// --classifier-output`) re-reads to the same record, as the device re-reads it.
+pub fn safetensors(data: &[u8]) {
+    use crate::format::model::{
+        Classifier, ModelSignature, read_as, read_model_signature, read_safetensors_tensors,
+    };
+    let len = data.len() as u64;
+    let Ok(Some(signature)) = read_model_signature("model.safetensors", data, len) else {
+        return;
+    };
+    let json = serde_json::to_string(&signature).expect("a signature serializes");
+    let back: ModelSignature = serde_json::from_str(&json).expect("a signature reads back");
+    assert_eq!(back, signature);
+    let tensors = read_safetensors_tensors(data, len).expect("the same file reads again");
+    assert_eq!(tensors.len() as u64, signature.weight_tensors);
+    let Some(first) = tensors.first() else {
+        return;
+    };
+    let request = Classifier {
+        tensor: first.name.clone(),
+        dim: None,
+        shape: None,
+    };
+    if let Ok(Some(recorded)) = read_as(
+        "model.safetensors",
+        std::io::Cursor::new(data),
+        len,
+        1,
+        Some(&request),
+    ) {
+        let again = read_as(
+            "model.safetensors",
+            std::io::Cursor::new(data),
+            len,
+            recorded.rules,
+            recorded.classifier.as_ref(),
+        )
+        .expect("a record re-reads");
+        assert_eq!(again.as_ref(), Some(&recorded));
+        let _ = recorded.check_label_count(None, None, 7);
+    }
+}
+
 /// `offline`: the bytes as an offline file, installed by a device on the fuzz key's trust set
 /// into an empty store: the archive's layout (ustar headers, the order and names of its parts,
 /// each part's cap, the end marker) and then the update it carries, each document through the
@@ -1076,6 +1176,47 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
             offline_file(&envelope(&full_feed), &bundle),
         ),
     ];
+    // Real and reference models (crates/verify/tests/data/*/README.md names their sources).
+    for (name, bytes) in [
+        (
+            "light_bvlc_alexnet.onnx",
+            &include_bytes!("../tests/data/real-models/onnx-1.23.2-light_bvlc_alexnet.onnx")[..],
+        ),
+        (
+            "test_operator_mm.onnx",
+            include_bytes!("../tests/data/real-models/onnx-1.23.2-test_operator_mm.onnx"),
+        ),
+        (
+            "logreg_iris.onnx",
+            include_bytes!("../tests/data/real-models/onnxruntime-1.32.0-logreg_iris.onnx"),
+        ),
+        (
+            "subgraphs.onnx",
+            include_bytes!("../tests/data/real-models/subgraphs.onnx"),
+        ),
+        (
+            "trailcam-f32.onnx",
+            include_bytes!("../tests/data/models/trailcam-f32.onnx"),
+        ),
+        (
+            "trailcam-oldstyle.onnx",
+            include_bytes!("../tests/data/models/trailcam-oldstyle.onnx"),
+        ),
+    ] {
+        seeds.push(("onnx", name.into(), bytes.to_vec()));
+    }
+    for (name, bytes) in [
+        (
+            "classifier.safetensors",
+            &include_bytes!("../tests/data/real-models/classifier.safetensors")[..],
+        ),
+        (
+            "trailcam-int8.safetensors",
+            include_bytes!("../tests/data/models/trailcam-int8.safetensors"),
+        ),
+    ] {
+        seeds.push(("safetensors", name.into(), bytes.to_vec()));
+    }
     seeds.sort_by(|a, b| (a.0, &a.1).cmp(&(b.0, &b.1)));
     seeds
 }
@@ -1097,6 +1238,8 @@ pub fn run(target: &str, data: &[u8]) -> bool {
         "ledger_entry" => ledger_entry,
         "store" => store,
         "offline" => offline,
+        "onnx" => onnx,
+        "safetensors" => safetensors,
         _ => return false,
     };
     entry(data);

@@ -286,7 +286,7 @@ fn the_signature_json_is_stable_and_strict() {
     assert_eq!(
         json,
         concat!(
-            r#"{"format":"onnx","ir_version":8,"opset":13,"producer":"trailcam-export","producer_version":"1.0","#,
+            r#"{"format":"onnx","rules":2,"ir_version":8,"opset":13,"producer":"trailcam-export","producer_version":"1.0","#,
             r#""inputs":[{"name":"image","dtype":"float32","shape":["N",3,96,96]}],"#,
             r#""outputs":[{"name":"species","dtype":"float32","shape":["N",7]}],"#,
             r#""weight_tensors":4,"parameters":147,"weights_8bit":false,"bytes_by_dtype":{"float32":588}}"#
@@ -543,19 +543,21 @@ fn policies_and_patterns_refuse_nonsense() {
 #[test]
 fn class_count_finds_the_classifier_output() {
     let float = signature(ONNX_FIXTURES[0].name, ONNX_FIXTURES[0].bytes);
-    assert_eq!(float.class_count(None).expect("only output"), 7);
-    assert_eq!(float.class_count(Some("species")).expect("named"), 7);
-    float.check_label_count(None, 7).expect("seven labels");
+    assert_eq!(float.class_count(None, None).expect("only output"), 7);
+    assert_eq!(float.class_count(Some("species"), None).expect("named"), 7);
+    float
+        .check_label_count(None, None, 7)
+        .expect("seven labels");
     assert_eq!(
         float
-            .check_label_count(None, 6)
+            .check_label_count(None, None, 6)
             .expect_err("six")
             .to_string(),
         "the label list has 6 labels, but output 'species' has 7 classes (shape [N, 7])"
     );
     assert_eq!(
         float
-            .class_count(Some("logits"))
+            .class_count(Some("logits"), None)
             .expect_err("missing")
             .to_string(),
         "the model has no output 'logits' (its outputs: 'species')"
@@ -563,26 +565,26 @@ fn class_count_finds_the_classifier_output() {
     let weights = signature(SAFETENSORS_FIXTURES[0].name, SAFETENSORS_FIXTURES[0].bytes);
     assert_eq!(
         weights
-            .class_count(None)
+            .class_count(None, None)
             .expect_err("no outputs")
             .to_string(),
-        "the safetensors model has no outputs to match labels to"
+        "the safetensors model has no outputs to match labels to: name the tensor that counts the classes (a [C] bias or a [C, in] weight)"
     );
     let mut two = float.clone();
     two.outputs.push(two.outputs[0].clone());
     two.outputs[1].name = "box".into();
     assert_eq!(
-        two.class_count(None).expect_err("two").to_string(),
+        two.class_count(None, None).expect_err("two").to_string(),
         "the model has 2 outputs ('species', 'box'): name the classifier output"
     );
     two.outputs[0].shape = Some(vec![Dim::Symbolic("N".into()), Dim::Symbolic("C".into())]);
     assert_eq!(
-        two.class_count(Some("species"))
+        two.class_count(Some("species"), None)
             .expect_err("symbolic")
             .to_string(),
         "output 'species' has shape [N, C]: its class count cannot be determined (neither its \
          last dimension nor a single dimension after the first is a fixed size above 1 with \
-         every other one fixed at 1)"
+         every other one fixed at 1; name the class dimension)"
     );
 }
 
@@ -592,7 +594,8 @@ fn class_count_finds_the_classifier_output() {
 /// (`[1, 1000, 1, 1]`), an OCR text recognizer (`[N, T, 6625]`), a voice-activity model
 /// (`[batch, 1]`), and a segmentation-like output whose class count no rule can read
 /// (`[N, 1, H, W]`). The shapes are as the issue reports them (from onnx's reading of those
-/// files), not re-read here.
+/// files), not re-read here; `real_models.rs::issue11_the_class_dimension_rule_on_real_output_shapes`
+/// takes them from model files in the onnx and rapidocr-onnxruntime packages, with their sources.
 #[test]
 fn issue11_the_class_dimension_rule_reads_real_output_shapes() {
     let float = signature(ONNX_FIXTURES[0].name, ONNX_FIXTURES[0].bytes);
@@ -601,7 +604,7 @@ fn issue11_the_class_dimension_rule_reads_real_output_shapes() {
     let count = |shape: Vec<Dim>| {
         let mut sig = float.clone();
         sig.outputs[0].shape = Some(shape);
-        sig.class_count(None).ok()
+        sig.class_count(None, None).ok()
     };
     assert_eq!(count(vec![fixed(1), fixed(1000)]), Some(1000));
     assert_eq!(
@@ -620,9 +623,9 @@ fn issue11_the_class_dimension_rule_reads_real_output_shapes() {
     // A label list of 1000 fits the older classifier's output; one label does not.
     let mut conv = float.clone();
     conv.outputs[0].shape = Some(vec![fixed(1), fixed(1000), fixed(1), fixed(1)]);
-    conv.check_label_count(None, 1000)
+    conv.check_label_count(None, None, 1000)
         .expect("1000 labels for 1000 classes");
-    assert!(conv.check_label_count(None, 1).is_err());
+    assert!(conv.check_label_count(None, None, 1).is_err());
 }
 
 #[test]
@@ -828,14 +831,16 @@ fn hostile_onnx_huge_declared_dims() {
         error_of("model.onnx", &model_with_graph(&graph)),
         "onnx: initializer 'w' has shape [4611686018427387904] whose size in bytes overflows 64 bits"
     );
-    // Four uint8 initializers of 2^62 elements each: 2^64 parameters in total.
+    // Four uint8 initializers of 2^62 elements each (2^64 parameters in total) holding no
+    // data: under reading rules 2 the first is refused for claiming more than it holds (issue
+    // 11 item 4), before any total can overflow.
     let mut graph = initializer("a", 2, &[1 << 62], None);
     graph.extend(initializer("b", 2, &[1 << 62], None));
     graph.extend(initializer("c", 2, &[1 << 62], None));
     graph.extend(initializer("d", 2, &[1 << 62], None));
     assert_eq!(
         error_of("model.onnx", &model_with_graph(&graph)),
-        "onnx: the initializers' total parameter count or size overflows 64 bits"
+        "onnx: initializer 'a' has shape [4611686018427387904] (4611686018427387904 elements of uint8), but it holds only 0 bytes of data"
     );
     let graph = initializer("w", 1, &[u64::MAX], None);
     assert_eq!(
@@ -1031,7 +1036,7 @@ fn a_64_gib_initializer_is_skipped_not_read() {
     assert_eq!(sig.parameters, RAW / 4);
     assert_eq!(sig.bytes_by_dtype.get(DType::Float32), RAW);
     assert_eq!(sig.outputs[0].name, "species");
-    assert_eq!(sig.class_count(None).expect("classes"), 7);
+    assert_eq!(sig.class_count(None, None).expect("classes"), 7);
 }
 
 // ---- Hostile safetensors files (format: u64 LE header length, JSON header, data). ----
@@ -1202,4 +1207,213 @@ fn hostile_safetensors_headers() {
     // Trailing spaces pad the header to an alignment; the reference library writes them.
     let sig = signature(ST, &safetensors("{}        ", 0));
     assert_eq!(sig.weight_tensors, 0);
+}
+
+// ---- Issue 11 item 4: weights in Constant nodes and subgraphs, each read bounded. ----
+
+/// A node (GraphProto field 1) of `op_type` with these attributes.
+fn node(op_type: &str, attributes: &[Vec<u8>]) -> Vec<u8> {
+    let mut node = field_len(4, op_type.as_bytes());
+    for attribute in attributes {
+        node.extend(field_len(5, attribute));
+    }
+    field_len(1, &node)
+}
+
+/// A tensor attribute (AttributeProto: name 1, t 5) holding `tensor`, a TensorProto's bytes.
+fn tensor_attribute(name: &str, tensor: &[u8]) -> Vec<u8> {
+    let mut attribute = field_len(1, name.as_bytes());
+    attribute.extend(field_len(5, tensor));
+    attribute
+}
+
+/// A graph attribute (AttributeProto: name 1, g 6) holding a graph's bytes.
+fn graph_attribute(name: &str, graph: &[u8]) -> Vec<u8> {
+    let mut attribute = field_len(1, name.as_bytes());
+    attribute.extend(field_len(6, graph));
+    attribute
+}
+
+/// A TensorProto's bytes: dims, data type, then `data` as raw_data (field 9) when given.
+fn tensor(data_type: u64, dims: &[u64], raw: Option<&[u8]>) -> Vec<u8> {
+    let mut tensor = Vec::new();
+    for dim in dims {
+        tensor.extend(field_varint(1, *dim));
+    }
+    tensor.extend(field_varint(2, data_type));
+    if let Some(raw) = raw {
+        tensor.extend(field_len(9, raw));
+    }
+    tensor
+}
+
+fn with_output(mut graph: Vec<u8>) -> Vec<u8> {
+    graph.extend(field_len(12, &tensor_value("species", 1, &[1, 7])));
+    model_with_graph(&graph)
+}
+
+#[test]
+fn issue11_constant_and_subgraph_weights_are_counted() {
+    // A Constant of 3 x 4 float32 (raw data), a ConstantOfShape whose `value` attribute is its
+    // fill value (not a weight), and an If whose branch holds a Constant and an initializer.
+    let mut graph = node(
+        "Constant",
+        &[tensor_attribute(
+            "value",
+            &tensor(1, &[3, 4], Some(&[0; 48])),
+        )],
+    );
+    graph.extend(node(
+        "ConstantOfShape",
+        &[tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4])))],
+    ));
+    let mut branch = node(
+        "Constant",
+        &[tensor_attribute("value", &tensor(3, &[5], Some(&[0; 5])))],
+    );
+    branch.extend(initializer("w", 1, &[2], Some(8)));
+    graph.extend(node("If", &[graph_attribute("then_branch", &branch)]));
+    let sig = signature("model.onnx", &with_output(graph));
+    assert_eq!((sig.weight_tensors, sig.parameters), (3, 12 + 5 + 2));
+    assert_eq!(sig.bytes_by_dtype.get(DType::Float32), 48 + 8);
+    assert_eq!(sig.bytes_by_dtype.get(DType::Int8), 5);
+    // Typed data (float_data, packed) holding exactly the elements is consistent too.
+    let mut typed = tensor(1, &[3], None);
+    typed.extend(field_len(4, &[0; 12]));
+    let graph = node("Constant", &[tensor_attribute("value", &typed)]);
+    assert_eq!(signature("model.onnx", &with_output(graph)).parameters, 3);
+}
+
+#[test]
+fn hostile_onnx_constants_past_their_bytes_or_u64_are_refused() {
+    let constant = |t: Vec<u8>| with_output(node("Constant", &[tensor_attribute("value", &t)]));
+    assert_eq!(
+        error_of(
+            "model.onnx",
+            &constant(tensor(1, &[1 << 32, 1 << 32], None))
+        ),
+        "onnx: attribute tensor at byte 25 has shape [4294967296, 4294967296] whose element count overflows 64 bits"
+    );
+    // 2^40 float32 elements claimed, 12 bytes of float_data held.
+    let mut typed = tensor(1, &[1 << 40], None);
+    typed.extend(field_len(4, &[0; 12]));
+    assert_eq!(
+        error_of("model.onnx", &constant(typed)),
+        "onnx: attribute tensor at byte 25 has shape [1099511627776] (1099511627776 elements of float32), but it holds only 12 bytes of data"
+    );
+    assert_eq!(
+        error_of("model.onnx", &constant(tensor(1, &[4], Some(&[0; 12])))),
+        "onnx: attribute tensor at byte 25 has 12 bytes of raw data, its shape [4] of float32 needs 16"
+    );
+    // External data in a Constant (data_location 1 = EXTERNAL) is refused, as at the top.
+    let mut external = tensor(1, &[4], None);
+    external.extend(field_varint(14, 1));
+    assert_eq!(
+        error_of("model.onnx", &constant(external)),
+        "onnx: attribute tensor at byte 25 keeps its data in an external file, which a bundle cannot carry"
+    );
+    // A Constant with two `value` tensors.
+    let twice = with_output(node(
+        "Constant",
+        &[
+            tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4]))),
+            tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4]))),
+        ],
+    ));
+    assert_eq!(
+        error_of("model.onnx", &twice),
+        "onnx: the node ending at byte 58 has two attributes named 'value'"
+    );
+}
+
+#[test]
+fn hostile_onnx_subgraphs_nested_too_deep_or_with_external_data_are_refused() {
+    // Subgraphs nested `depth` deep, each an If's then_branch, the innermost holding one
+    // Constant of one float32.
+    let nested = |depth: usize| {
+        let mut graph = node(
+            "Constant",
+            &[tensor_attribute("value", &tensor(1, &[1], Some(&[0; 4])))],
+        );
+        for _ in 0..depth {
+            graph = node("If", &[graph_attribute("then_branch", &graph)]);
+        }
+        with_output(graph)
+    };
+    // The limit itself reads: 16 levels below the main graph.
+    assert_eq!(signature("model.onnx", &nested(16)).parameters, 1);
+    assert_eq!(
+        error_of("model.onnx", &nested(17)),
+        "onnx: subgraphs are nested more than 16 deep"
+    );
+    // An initializer with external data inside a subgraph.
+    let mut inner = tensor(1, &[4], None);
+    inner.extend(field_len(8, b"w"));
+    inner.extend(field_varint(14, 1));
+    let branch = field_len(5, &inner);
+    let graph = with_output(node("If", &[graph_attribute("else_branch", &branch)]));
+    assert_eq!(
+        error_of("model.onnx", &graph),
+        "onnx: initializer 'w' keeps its data in an external file, which a bundle cannot carry"
+    );
+}
+
+#[test]
+fn issue11_a_dimension_of_minus_one_is_unknown_and_other_negatives_stay_errors() {
+    // onnx's checker and onnxruntime accept -1 ("unknown"; real files: the OCR classifier in
+    // tests/data/real-models/); -2 means nothing and is refused.
+    let output = |dim: u64| model_with_graph(&field_len(12, &tensor_value("scores", 1, &[dim, 2])));
+    let sig = signature("model.onnx", &output(u64::MAX));
+    assert_eq!(
+        sig.outputs[0].shape,
+        Some(vec![Dim::Unknown, Dim::Fixed(2)])
+    );
+    assert_eq!(sig.class_count(None, None).expect("the last dimension"), 2);
+    assert_eq!(
+        error_of("model.onnx", &output(u64::MAX - 1)),
+        "onnx: output 'scores' has a negative dimension -2"
+    );
+}
+
+#[test]
+fn a_64_gib_constant_is_measured_not_read() {
+    // Issue 11 item 4: a large but consistent Constant is counted without being read into
+    // memory; the Virtual file is 64 GiB of zeros that exist only as a count.
+    const RAW: u64 = 64 << 30;
+    let mut t = field_varint(1, RAW / 4);
+    t.extend(field_varint(2, 1));
+    t.extend(varint((9 << 3) | 2));
+    t.extend(varint(RAW));
+    let t_len = t.len() as u64 + RAW;
+    let mut attribute = field_len(1, b"value");
+    attribute.extend(varint((5 << 3) | 2));
+    attribute.extend(varint(t_len));
+    let attribute_len = attribute.len() as u64 + t_len;
+    let mut node = field_len(4, b"Constant");
+    node.extend(varint((5 << 3) | 2));
+    node.extend(varint(attribute_len));
+    let node_len = node.len() as u64 + attribute_len;
+    let output = field_len(12, &tensor_value("species", 1, &[1, 7]));
+    let mut graph = varint((1 << 3) | 2);
+    graph.extend(varint(node_len));
+    let graph_len = graph.len() as u64 + node_len + output.len() as u64;
+    let mut head = field_varint(1, 8);
+    head.extend(varint((7 << 3) | 2));
+    head.extend(varint(graph_len));
+    head.extend(graph);
+    head.extend(node);
+    head.extend(attribute);
+    head.extend(t);
+    let file = Virtual {
+        head,
+        zeros: RAW,
+        tail: output,
+        pos: 0,
+    };
+    let len = file.len();
+    let sig = read_model_signature_seekable("model.onnx", file, len)
+        .expect("read")
+        .expect("signature");
+    assert_eq!((sig.weight_tensors, sig.parameters), (1, RAW / 4));
+    assert_eq!(sig.bytes_by_dtype.get(DType::Float32), RAW);
 }

@@ -332,6 +332,9 @@ impl Verifier {
                 m.requires_app
             ));
         }
+        if let Some(model) = &m.model {
+            model.check_rules()?;
+        }
         if let Some(policy) = &self.compatibility {
             policy.check_before_unpack(m.model.as_ref(), m.label_count as usize)?;
         }

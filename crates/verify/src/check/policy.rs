@@ -261,6 +261,7 @@ pub struct CompatibilityPolicy {
     label_count: Option<RangeInclusive<usize>>,
     required_labels: Vec<String>,
     classifier_output: Option<String>,
+    class_dim: Option<u32>,
 }
 
 impl CompatibilityPolicy {
@@ -276,6 +277,7 @@ impl CompatibilityPolicy {
                 label_count: None,
                 required_labels: Vec::new(),
                 classifier_output: None,
+                class_dim: None,
             },
         }
     }
@@ -328,7 +330,7 @@ impl CompatibilityPolicy {
             }
             self.check_label_count(label_count)?;
             if let (Some(output), Some(signature)) = (&self.classifier_output, signature) {
-                signature.check_label_count(Some(output), label_count)?;
+                signature.check_label_count(Some(output), self.class_dim, label_count)?;
             }
             Ok(())
         }
@@ -492,10 +494,22 @@ impl CompatibilityPolicyBuilder {
         self
     }
 
-    /// Names the classifier output: the label list must have one label per class of its last
-    /// dimension.
+    /// Names the classifier: the label list must have one label per class of this ONNX output
+    /// or safetensors tensor (one `pack --classifier-output` recorded). The class dimension is
+    /// the one [`CompatibilityPolicyBuilder::class_dim`] sets; else the one `pack --class-dim`
+    /// recorded for this tensor; else, for ONNX, the last dimension when it is fixed above 1,
+    /// or the one dimension after the first fixed above 1 with every other fixed at 1
+    /// (`[1, 1000, 1, 1]`), and for safetensors dimension 0 (a `[C]` bias or a `[C, in]`
+    /// weight).
     pub fn classifier_output(mut self, name: impl Into<String>) -> Self {
         self.policy.classifier_output = Some(name.into());
+        self
+    }
+
+    /// The dimension of the classifier output that counts the classes (0 is the first), when
+    /// the app knows it better than the model's shape says; it must be a fixed size.
+    pub fn class_dim(mut self, dim: u32) -> Self {
+        self.policy.class_dim = Some(dim);
         self
     }
 

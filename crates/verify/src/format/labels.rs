@@ -20,7 +20,13 @@
 //! - Normalization Form C: a label not in NFC is refused rather than normalized, so two labels
 //!   that look alike are never two byte strings, the stored bytes are the ones compared and
 //!   shown, and the check needs only the small tables NFC quick checks use, not a normalizer's.
-//!   Duplicates are then compared byte for byte.
+//!   Duplicates are then compared byte for byte. One exception (issue 11 item 5): a label that
+//!   is exactly one CJK compatibility ideograph (U+F900..U+FAFF, U+2F800..U+2FA1F), which NFC
+//!   would replace by its unified ideograph. A character-level OCR model has a class for each
+//!   code point its dictionary lists, and real dictionaries list both: the label list of the
+//!   PP-OCRv4 recognizer in the `rapidocr-onnxruntime` 1.4.4 wheel (its model's `character`
+//!   metadata, with "blank" first) has U+F92C on line 5931 and U+90CE on line 4975, U+F979 on
+//!   line 6581 and U+51C9 on line 5399; refusing them would refuse that model.
 
 use std::collections::HashSet;
 
@@ -274,7 +280,7 @@ fn unreadable(label: &str) -> Option<String> {
             ));
         }
     }
-    if !is_nfc(label) {
+    if !is_nfc(label) && !is_cjk_compatibility_ideograph(label) {
         return Some(format!(
             "is not in Unicode Normalization Form C (NFC, Unicode {}); write it composed, \
              for example with Python's unicodedata.normalize('NFC', text)",
@@ -282,6 +288,16 @@ fn unreadable(label: &str) -> Option<String> {
         ));
     }
     None
+}
+
+/// Whether `label` is exactly one CJK compatibility ideograph (Blocks.txt, Unicode 14.0: CJK
+/// Compatibility Ideographs and its Supplement); see the module documentation.
+fn is_cjk_compatibility_ideograph(label: &str) -> bool {
+    let mut chars = label.chars();
+    matches!(
+        (chars.next(), chars.next()),
+        (Some('\u{F900}'..='\u{FAFF}' | '\u{2F800}'..='\u{2FA1F}'), None)
+    )
 }
 
 fn refused(message: String) -> Error {
@@ -492,6 +508,23 @@ mod tests {
         ] {
             assert_eq!(why(label), None, "{source}: {}", label.escape_unicode());
         }
+    }
+
+    #[test]
+    fn issue11_a_lone_cjk_compatibility_ideograph_is_a_label() {
+        // rapidocr-onnxruntime 1.4.4, the PP-OCRv4 recognizer's label list, lines 5931 and 6581
+        // (crates/verify/tests/real_models.rs reads the whole list): each is its own class
+        // beside its unified ideograph (lines 4975 and 5399), which NFC would turn it into.
+        for label in ["\u{F92C}", "\u{F979}", "\u{90CE}", "\u{51C9}"] {
+            assert_eq!(why(label), None, "{}", label.escape_unicode());
+        }
+        // Blocks.txt (Unicode 14.0): the supplement's first code point, U+2F800.
+        assert_eq!(why("\u{2F800}"), None);
+        // Only alone: inside a longer label the NFC rule still holds, and a neighbour of the
+        // blocks is not excused.
+        assert_eq!(why("\u{F92C}\u{F979}"), Some(NFC_WHY.into()));
+        assert_eq!(why("a\u{F92C}"), Some(NFC_WHY.into()));
+        assert_eq!(why("\u{212B}"), Some(NFC_WHY.into()));
     }
 
     #[test]

@@ -33,6 +33,14 @@ pub const FEED_FORMAT_VERSION: u32 = 1;
 /// The file extension of a bundle (without the dot).
 pub const BUNDLE_EXTENSION: &str = "ampoule";
 
+/// The newest reading rules for model files (the manifest model object's `rules`): 1 is the
+/// reader before issue 11 (ONNX initializers only, a dimension of -1 refused); 2 also counts
+/// the weights of Constant nodes and of subgraphs and reads a dimension of -1 as unknown. `pack`
+/// writes the oldest rules that read the model the same, so verifiers that know only rules 1
+/// still install what reads alike; a device re-reads a model under the rules its manifest
+/// names, and refuses rules it does not know.
+pub const MODEL_READING_RULES: u32 = 2;
+
 /// Names of the entries of the outer tar, in the only order a reader accepts.
 pub mod entry {
     /// The manifest: UTF-8 JSON, the document every signature covers.

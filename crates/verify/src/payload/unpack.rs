@@ -565,13 +565,15 @@ impl VerifiedBundle {
         }
     }
 
-    /// Reads the unpacked model's signature again and requires it to be the one the signed
-    /// manifest records, so a manifest cannot describe a different model than it ships.
+    /// Reads the unpacked model's signature again, under the reading rules and with the
+    /// classifier the signed manifest names, and requires it to be the record the manifest
+    /// holds, so a manifest cannot describe a different model than it ships, and a bundle packed
+    /// under older rules still installs.
     fn check_model_signature(&self, dir: &Dir) -> Result<()> {
-        if self.manifest.model.is_none() {
+        let Some(recorded) = &self.manifest.model else {
             // Packed as opaque: the manifest makes no claim about the model's structure.
             return Ok(());
-        }
+        };
         let model = self.manifest.model();
         let shown = dir.join(&model.path);
         let file = dir.open_file(&model.path).map_err(|e| {
@@ -584,9 +586,14 @@ impl VerifiedBundle {
             .metadata()
             .map_err(|e| Error::io(format!("cannot read {}", shown.display()), e))?
             .len();
-        let found =
-            crate::format::model::read_model_signature_seekable(&model.path, file, len)?;
-        if found != self.manifest.model {
+        let found = crate::format::model::read_as(
+            &model.path,
+            file,
+            len,
+            recorded.rules,
+            recorded.classifier.as_ref(),
+        )?;
+        if found.as_ref() != Some(recorded) {
             return Err(Error::new(
                 ErrorKind::Manifest,
                 format!(

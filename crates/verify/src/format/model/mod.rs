@@ -24,6 +24,7 @@ use serde::de::{self, MapAccess, Visitor};
 use serde::{Deserialize, Deserializer, Serialize, Serializer};
 
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::MODEL_READING_RULES;
 
 mod onnx;
 mod safetensors;
@@ -54,6 +55,9 @@ pub mod limit {
     pub const SAFETENSORS_HEADER_BYTES: u64 = 100_000_000;
     /// The most `__metadata__` entries in a safetensors header.
     pub const SAFETENSORS_METADATA_ENTRIES: usize = 4096;
+    /// The deepest an ONNX subgraph (an attribute graph of If, Loop, Scan, ...) may be nested
+    /// below the main graph; real models nest a few levels.
+    pub const SUBGRAPH_DEPTH: usize = 16;
 }
 
 /// A model file format ampoule can read a signature from.
@@ -85,11 +89,13 @@ impl ModelFormat {
         }
     }
 
-    /// The name used in JSON and messages.
-    pub fn name(self) -> &'static str {
-        match self {
-            ModelFormat::Onnx => "onnx",
-            ModelFormat::Safetensors => "safetensors",
+    pub_for_release! {
+        /// The name used in JSON and messages (apps have it from `Display`).
+        fn name(self) -> &'static str {
+            match self {
+                ModelFormat::Onnx => "onnx",
+                ModelFormat::Safetensors => "safetensors",
+            }
         }
     }
 }
@@ -511,21 +517,33 @@ impl<'de> Deserialize<'de> for BytesByDtype {
 /// JSON, fields always in this order:
 ///
 /// ```json
-/// {"format":"onnx","ir_version":8,"opset":13,"producer":"trailcam-export","producer_version":"1.0",
+/// {"format":"onnx","rules":2,"ir_version":8,"opset":13,"producer":"trailcam-export",
+///  "producer_version":"1.0",
 ///  "inputs":[{"name":"image","dtype":"float32","shape":["N",3,96,96]}],
 ///  "outputs":[{"name":"species","dtype":"float32","shape":["N",7]}],
-///  "weight_tensors":4,"parameters":147,"weights_8bit":false,"bytes_by_dtype":{"float32":588}}
+///  "weight_tensors":4,"parameters":147,"weights_8bit":false,"bytes_by_dtype":{"float32":588},
+///  "classifier":{"tensor":"species","dim":1}}
 /// ```
 ///
 /// `ir_version`, `opset`, `producer` and `producer_version` are `null` when the file does not
-/// state them (always for safetensors, which also has no inputs or outputs). For ONNX, weights
-/// are the graph's initializers; sparse initializers and constants inside nodes are not counted.
+/// state them (always for safetensors, which also has no inputs or outputs). `rules` is absent
+/// for reading rules 1, and `classifier` when `pack` recorded none. For ONNX, weights are the
+/// graph's initializers and, under reading rules 2, the `value` tensors of Constant nodes and
+/// the initializers and Constants of subgraphs. Never counted: sparse initializers, a
+/// Constant's sparse, scalar or list forms (`sparse_value`, `value_float(s)`,
+/// `value_int(s)`), and tensors made at run time (ConstantOfShape and every other operator's
+/// output), which are computed, not stored.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 #[non_exhaustive]
 pub struct ModelSignature {
     /// The file format.
     pub format: ModelFormat,
+    /// The reading rules that produced this record (see
+    /// [`crate::format::MODEL_READING_RULES`]); 1 when absent from the JSON, as in every
+    /// bundle packed before the field existed.
+    #[serde(default = "rules_one", skip_serializing_if = "is_rules_one")]
+    pub rules: u32,
     /// ONNX: the IR version.
     pub ir_version: Option<u64>,
     /// ONNX: the version of the default operator set (domain `""` or `ai.onnx`) it imports.
@@ -548,6 +566,39 @@ pub struct ModelSignature {
     pub weights_8bit: bool,
     /// Weight bytes per dtype.
     pub bytes_by_dtype: BytesByDtype,
+    /// The tensor whose classes the label list names, when `pack` recorded it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub classifier: Option<Classifier>,
+}
+
+fn rules_one() -> u32 {
+    1
+}
+
+fn is_rules_one(rules: &u32) -> bool {
+    *rules == 1
+}
+
+/// Which tensor's classes the label list names, as `pack --classifier-output NAME
+/// [--class-dim N]` recorded it, so the device can count them before it unpacks anything.
+///
+/// Recorded when the count needs more than the model's outputs say: a class dimension given
+/// with `--class-dim`, or a safetensors tensor (the format has no outputs, so the tensor's shape
+/// is recorded here). JSON: `{"tensor":"species","dim":1}` or
+/// `{"tensor":"head.bias","shape":[1000]}`.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[non_exhaustive]
+pub struct Classifier {
+    /// The ONNX output, or the safetensors tensor (a `[C]` bias or a `[C, in]` weight).
+    pub tensor: String,
+    /// The dimension that counts the classes; when absent, the rule of
+    /// [`ModelSignature::class_count`] (ONNX) or dimension 0 (safetensors).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub dim: Option<u32>,
+    /// safetensors: the tensor's shape, as the file's header states it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shape: Option<Vec<u64>>,
 }
 
 impl ModelSignature {
@@ -561,9 +612,37 @@ impl ModelSignature {
         self.outputs.iter().find(|value| value.name == name)
     }
 
-    /// The classifier output: the one named, or else the only output.
-    pub fn classifier_output(&self, name: Option<&str>) -> Result<&ValueSignature> {
-        match name {
+    /// The tensor whose classes the label list names, and its shape: for ONNX the output named
+    /// (or else the recorded classifier's, or else the only output); for safetensors the
+    /// recorded classifier tensor, the only one whose shape the record holds.
+    fn classified(&self, name: Option<&str>) -> Result<(String, Vec<Dim>)> {
+        let recorded = self.classifier.as_ref();
+        let name = name.or(recorded.map(|c| c.tensor.as_str()));
+        if self.format == ModelFormat::Safetensors {
+            let Some(name) = name else {
+                return Err(Error::new(
+                    ErrorKind::Incompatible,
+                    "the safetensors model has no outputs to match labels to: name the tensor that counts the classes (a [C] bias or a [C, in] weight)"
+                        .to_string(),
+                ));
+            };
+            return match recorded {
+                Some(Classifier {
+                    tensor,
+                    shape: Some(shape),
+                    ..
+                }) if tensor == name => {
+                    Ok((name.into(), shape.iter().copied().map(Dim::Fixed).collect()))
+                }
+                _ => Err(Error::new(
+                    ErrorKind::Incompatible,
+                    format!(
+                        "the safetensors model records the shape of no tensor '{name}'; pack it with --classifier-output {name}"
+                    ),
+                )),
+            };
+        }
+        let value = match name {
             Some(name) => self.output(name).ok_or_else(|| {
                 Error::new(
                     ErrorKind::Incompatible,
@@ -572,30 +651,57 @@ impl ModelSignature {
                         name_list(&self.outputs)
                     ),
                 )
-            }),
+            })?,
             None => match self.outputs.as_slice() {
-                [only] => Ok(only),
-                [] => Err(Error::new(
-                    ErrorKind::Incompatible,
-                    format!(
-                        "the {} model has no outputs to match labels to",
-                        self.format
-                    ),
-                )),
-                many => Err(Error::new(
-                    ErrorKind::Incompatible,
-                    format!(
-                        "the model has {} outputs ({}): name the classifier output",
-                        many.len(),
-                        name_list(many)
-                    ),
-                )),
+                [only] => only,
+                [] => {
+                    return Err(Error::new(
+                        ErrorKind::Incompatible,
+                        format!(
+                            "the {} model has no outputs to match labels to",
+                            self.format
+                        ),
+                    ));
+                }
+                many => {
+                    return Err(Error::new(
+                        ErrorKind::Incompatible,
+                        format!(
+                            "the model has {} outputs ({}): name the classifier output",
+                            many.len(),
+                            name_list(many)
+                        ),
+                    ));
+                }
             },
+        };
+        let refuse = |why: &str| {
+            Error::new(
+                ErrorKind::Incompatible,
+                format!("output '{}' {why}", value.name),
+            )
+        };
+        if value.kind != ValueKind::Tensor {
+            return Err(refuse(&format!(
+                "is a {}, not a tensor of class scores",
+                value.kind.name()
+            )));
+        }
+        match value.shape.as_deref() {
+            None => Err(refuse(
+                "has no recorded shape, so its class count is unknown",
+            )),
+            Some([]) => Err(refuse("is a scalar, not a tensor of class scores")),
+            Some(shape) => Ok((value.name.clone(), shape.to_vec())),
         }
     }
 
-    /// The class count of the classifier output (the one named, or else the only output), by
-    /// this rule:
+    /// The class count of the classifier tensor: the ONNX output named (or else the recorded
+    /// classifier's, or else the only output), or the safetensors tensor `pack` recorded.
+    ///
+    /// With `dim` (the app's own), or else the dimension `pack --class-dim` recorded for this
+    /// tensor, that dimension counts the classes; it must be fixed. Otherwise, for safetensors,
+    /// dimension 0 (a `[C]` bias or a `[C, in]` weight); for ONNX, this rule:
     ///
     /// 1. the last dimension, when it is fixed and larger than 1 (`[N, 7]`, `[N, T, 6625]`);
     /// 2. else, with dimension 0 (the batch) dropped, the one dimension that is fixed and
@@ -603,49 +709,75 @@ impl ModelSignature {
     ///    older image classifiers whose last layer is a convolution);
     /// 3. else 1 when every dimension after the first is fixed at 1 (`[batch, 1]`);
     /// 4. else the count cannot be determined (`[N, 1, H, W]`), and this is an error.
-    pub fn class_count(&self, output: Option<&str>) -> Result<u64> {
-        let value = self.classifier_output(output)?;
-        let refuse = |why: String| {
-            Error::new(
-                ErrorKind::Incompatible,
-                format!("output '{}' {why}", value.name),
-            )
+    pub fn class_count(&self, tensor: Option<&str>, dim: Option<u32>) -> Result<u64> {
+        let (name, shape) = self.classified(tensor)?;
+        let recorded = self
+            .classifier
+            .as_ref()
+            .filter(|c| c.tensor == name)
+            .and_then(|c| c.dim);
+        let what = if self.format == ModelFormat::Safetensors {
+            "tensor"
+        } else {
+            "output"
         };
-        if value.kind != ValueKind::Tensor {
-            return Err(refuse(format!(
-                "is a {}, not a tensor of class scores",
-                value.kind.name()
-            )));
-        }
-        match value.shape.as_deref() {
-            None => Err(refuse(
-                "has no recorded shape, so its class count is unknown".into(),
+        let at = |index: u32| match shape.get(index as usize) {
+            Some(Dim::Fixed(size)) => Ok(*size),
+            Some(other) => Err(Error::new(
+                ErrorKind::Incompatible,
+                format!(
+                    "{what} '{name}' has shape {}: its class dimension {index} is {other}, \
+                     not a fixed size",
+                    ShapeDisplay(&shape)
+                ),
             )),
-            Some([]) => Err(refuse("is a scalar, not a tensor of class scores".into())),
-            Some(shape) => class_dimension(shape).ok_or_else(|| {
-                refuse(format!(
-                    "has shape {}: its class count cannot be determined (neither its last \
-                     dimension nor a single dimension after the first is a fixed size above \
-                     1 with every other one fixed at 1)",
-                    ShapeDisplay(shape)
-                ))
+            None => Err(Error::new(
+                ErrorKind::Incompatible,
+                format!(
+                    "{what} '{name}' has shape {}, which has no dimension {index}",
+                    ShapeDisplay(&shape)
+                ),
+            )),
+        };
+        match dim.or(recorded) {
+            Some(index) => at(index),
+            None if self.format == ModelFormat::Safetensors => at(0),
+            None => class_dimension(&shape).ok_or_else(|| {
+                Error::new(
+                    ErrorKind::Incompatible,
+                    format!(
+                        "output '{name}' has shape {}: its class count cannot be determined \
+                         (neither its last dimension nor a single dimension after the first is \
+                         a fixed size above 1 with every other one fixed at 1; name the class \
+                         dimension)",
+                        ShapeDisplay(&shape)
+                    ),
+                )
             }),
         }
     }
 
     /// Checks that a label list of `label_count` labels has one label per class of the
-    /// classifier output (see [`ModelSignature::class_count`]).
-    pub fn check_label_count(&self, output: Option<&str>, label_count: usize) -> Result<()> {
-        let classes = self.class_count(output)?;
+    /// classifier tensor (see [`ModelSignature::class_count`]).
+    pub fn check_label_count(
+        &self,
+        tensor: Option<&str>,
+        dim: Option<u32>,
+        label_count: usize,
+    ) -> Result<()> {
+        let classes = self.class_count(tensor, dim)?;
         if u64::try_from(label_count).ok() != Some(classes) {
-            let value = self.classifier_output(output)?;
-            let shape = value.shape.as_deref().unwrap_or(&[]);
+            let (name, shape) = self.classified(tensor)?;
+            let what = if self.format == ModelFormat::Safetensors {
+                "tensor"
+            } else {
+                "output"
+            };
             return Err(Error::new(
                 ErrorKind::Incompatible,
                 format!(
-                    "the label list has {label_count} labels, but output '{}' has {classes} classes (shape {})",
-                    value.name,
-                    ShapeDisplay(shape)
+                    "the label list has {label_count} labels, but {what} '{name}' has {classes} classes (shape {})",
+                    ShapeDisplay(&shape)
                 ),
             ));
         }
@@ -785,7 +917,8 @@ impl<R: Read + Seek> Source for Seeking<R> {
 }
 
 /// Reads the signature of a model file from a stream, choosing the format by `file_name`'s
-/// extension (see [`ModelFormat::from_file_name`]); `Ok(None)` for an opaque model.
+/// extension (see [`ModelFormat::from_file_name`]); `Ok(None)` for an opaque model. The newest
+/// reading rules apply ([`crate::format::MODEL_READING_RULES`]).
 ///
 /// `file_len` must be the file's true length (from the file system, or the size the verified
 /// manifest declares): every length in the file is checked against it. Weight data is read and
@@ -799,8 +932,15 @@ pub fn read_model_signature<R: Read>(
 ) -> Result<Option<ModelSignature>> {
     match ModelFormat::from_file_name(file_name) {
         None => Ok(None),
-        Some(ModelFormat::Onnx) => onnx::read(Streamed(BufReader::new(reader)), file_len).map(Some),
-        Some(ModelFormat::Safetensors) => safetensors::read(reader, file_len).map(Some),
+        Some(ModelFormat::Onnx) => onnx::read(
+            Streamed(BufReader::new(reader)),
+            file_len,
+            MODEL_READING_RULES,
+        )
+        .map(Some),
+        Some(ModelFormat::Safetensors) => {
+            safetensors::read(reader, file_len).map(|(signature, _)| Some(signature))
+        }
     }
 }
 
@@ -811,19 +951,88 @@ pub fn read_model_signature_seekable<R: Read + Seek>(
     reader: R,
     file_len: u64,
 ) -> Result<Option<ModelSignature>> {
-    match ModelFormat::from_file_name(file_name) {
-        None => Ok(None),
-        Some(ModelFormat::Onnx) => onnx::read(Seeking(BufReader::new(reader)), file_len).map(Some),
-        Some(ModelFormat::Safetensors) => safetensors::read(reader, file_len).map(Some),
-    }
+    read_as(file_name, reader, file_len, MODEL_READING_RULES, None)
 }
 
 /// Reads the signature of the model file at `path` (format by its extension; `Ok(None)` for an
-/// opaque model), seeking past weight data.
+/// opaque model), seeking past weight data, under the newest reading rules.
 pub fn read_model_signature_file(path: &Path) -> Result<Option<ModelSignature>> {
+    let Some((file_name, file, len)) = open_model(path)? else {
+        return Ok(None);
+    };
+    read_model_signature_seekable(&file_name, file, len)
+}
+
+/// The record `pack` signs for the model at `path`: read under the oldest reading rules that
+/// read it the same as the newest (so a verifier that knows only the older rules still
+/// installs it), with the classifier tensor recorded when `tensor` names a safetensors tensor
+/// or `dim` names a class dimension (see [`Classifier`]).
+///
+/// # Errors
+///
+/// As the readers; and [`ErrorKind::Incompatible`] when the classifier tensor does not exist
+/// or its class dimension is not a fixed size.
+pub fn read_model_signature_for_pack(
+    path: &Path,
+    tensor: Option<&str>,
+    dim: Option<u32>,
+) -> Result<Option<ModelSignature>> {
+    let Some((file_name, mut file, len)) = open_model(path)? else {
+        return Ok(None);
+    };
+    let format = ModelFormat::from_file_name(&file_name);
+    let request = match (format, tensor, dim) {
+        (Some(ModelFormat::Safetensors), Some(tensor), _) => Some(Classifier {
+            tensor: tensor.to_owned(),
+            dim,
+            shape: None,
+        }),
+        (_, _, Some(dim)) => {
+            let unread = read_as(&file_name, &mut file, len, MODEL_READING_RULES, None)?;
+            let name = match (tensor, unread.as_ref()) {
+                (Some(tensor), _) => tensor.to_owned(),
+                (None, Some(signature)) => signature.classified(None)?.0,
+                (None, None) => return Ok(None),
+            };
+            file.seek(SeekFrom::Start(0))
+                .map_err(|e| Error::io(format!("reading {}", path.display()), e))?;
+            Some(Classifier {
+                tensor: name,
+                dim: Some(dim),
+                shape: None,
+            })
+        }
+        _ => None,
+    };
+    let newest = read_as(
+        &file_name,
+        &mut file,
+        len,
+        MODEL_READING_RULES,
+        request.as_ref(),
+    )?;
+    let Some(newest) = newest else {
+        return Ok(None);
+    };
+    for rules in 1..MODEL_READING_RULES {
+        file.seek(SeekFrom::Start(0))
+            .map_err(|e| Error::io(format!("reading {}", path.display()), e))?;
+        // A model the older rules refuse (a dimension of -1) simply needs the newer ones.
+        if let Ok(Some(older)) = read_as(&file_name, &mut file, len, rules, request.as_ref()) {
+            let mut same = newest.clone();
+            same.rules = rules;
+            if older == same {
+                return Ok(Some(older));
+            }
+        }
+    }
+    Ok(Some(newest))
+}
+
+fn open_model(path: &Path) -> Result<Option<(String, File, u64)>> {
     let file_name = path
         .file_name()
-        .map(|name| name.to_string_lossy())
+        .map(|name| name.to_string_lossy().into_owned())
         .unwrap_or_default();
     if ModelFormat::from_file_name(&file_name).is_none() {
         return Ok(None);
@@ -834,7 +1043,104 @@ pub fn read_model_signature_file(path: &Path) -> Result<Option<ModelSignature>> 
         .metadata()
         .map_err(|e| Error::io(format!("reading the size of {shown}"), e))?
         .len();
-    read_model_signature_seekable(&file_name, file, len)
+    Ok(Some((file_name, file, len)))
+}
+
+/// Reads a model under reading `rules`, recording the classifier `request` names (its tensor
+/// and dimension; for safetensors the tensor's shape is taken from the file): how `pack` makes
+/// the record, and how the device re-reads an unpacked model under the rules and classifier
+/// its signed manifest names.
+pub(crate) fn read_as<R: Read + Seek>(
+    file_name: &str,
+    reader: R,
+    file_len: u64,
+    rules: u32,
+    request: Option<&Classifier>,
+) -> Result<Option<ModelSignature>> {
+    if !(1..=MODEL_READING_RULES).contains(&rules) {
+        return Err(unknown_rules(rules));
+    }
+    let mut signature = match ModelFormat::from_file_name(file_name) {
+        None => return Ok(None),
+        Some(ModelFormat::Onnx) => onnx::read(Seeking(BufReader::new(reader)), file_len, rules)?,
+        Some(ModelFormat::Safetensors) => {
+            let (signature, tensors) = safetensors::read(reader, file_len)?;
+            if let Some(request) = request {
+                let shape = tensors
+                    .into_iter()
+                    .find(|tensor| tensor.name == request.tensor)
+                    .map(|tensor| tensor.shape)
+                    .ok_or_else(|| {
+                        Error::new(
+                            ErrorKind::Incompatible,
+                            format!(
+                                "the safetensors model has no tensor '{}'",
+                                request.tensor
+                            ),
+                        )
+                    })?;
+                let mut signature = signature;
+                signature.classifier = Some(Classifier {
+                    tensor: request.tensor.clone(),
+                    dim: request.dim,
+                    shape: Some(shape),
+                });
+                signature.class_count(None, None)?;
+                return Ok(Some(signature));
+            }
+            signature
+        }
+    };
+    if let Some(request) = request {
+        signature.classifier = Some(Classifier {
+            tensor: request.tensor.clone(),
+            dim: request.dim,
+            shape: None,
+        });
+        signature.class_count(None, None)?;
+    }
+    Ok(Some(signature))
+}
+
+fn unknown_rules(rules: u32) -> Error {
+    Error::new(
+        ErrorKind::Manifest,
+        format!(
+            "the manifest's model was read under reading rules {rules}, which this verifier does \
+             not know (it knows 1 to {MODEL_READING_RULES}); update ampoule-verify to install it"
+        ),
+    )
+}
+
+impl ModelSignature {
+    pub_for_release! {
+        /// Refuses a record made under reading rules this verifier does not know.
+        fn check_rules(&self) -> Result<()> {
+            if (1..=MODEL_READING_RULES).contains(&self.rules) {
+                Ok(())
+            } else {
+                Err(unknown_rules(self.rules))
+            }
+        }
+    }
+}
+
+/// One tensor of a safetensors file, as its header states it.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[non_exhaustive]
+pub struct TensorEntry {
+    /// The tensor's name.
+    pub name: String,
+    /// Its element type.
+    pub dtype: DType,
+    /// Its shape.
+    pub shape: Vec<u64>,
+}
+
+/// The tensors of a safetensors file (name, dtype, shape), in the order of their data, for
+/// `inspect`; the file is checked as [`read_model_signature`] checks it.
+pub fn read_safetensors_tensors<R: Read>(reader: R, file_len: u64) -> Result<Vec<TensorEntry>> {
+    safetensors::read(reader, file_len).map(|(_, tensors)| tensors)
 }
 
 /// Maps a read error to a model error: running out of bytes means the file is shorter than

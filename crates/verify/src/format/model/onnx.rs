@@ -3,14 +3,26 @@
 //! A general protobuf library would decode the whole message, weights included, into memory; a
 //! model can be hundreds of MiB. This reader walks the protobuf wire format (field key varint,
 //! then a varint, fixed 4 or 8 bytes, or a length-delimited payload) over a stream, descends only
-//! into ModelProto -> GraphProto -> initializer / input / output -> TypeProto -> tensor shape,
-//! and skips everything else by its length, so memory stays bounded whatever the file holds.
+//! into ModelProto -> GraphProto -> initializer / input / output -> TypeProto -> tensor shape
+//! (and, under reading rules 2, node -> attribute -> tensor or subgraph), and skips everything
+//! else by its length, so memory stays bounded whatever the file holds.
 //!
 //! Every length is checked against the bytes left in the enclosing message before it is used.
-//! The walk follows the schema, so its depth is fixed (seven levels) and a file cannot make it
-//! recurse: nested messages in fields it does not read are skipped unparsed, and groups (the
-//! deprecated wire types 3 and 4, whose skipping would need recursion) are refused. Field
-//! numbers follow onnx.proto as shipped with the `onnx` Python package 1.23.
+//! The walk follows the schema: nested messages in fields it does not read are skipped
+//! unparsed, and groups (the deprecated wire types 3 and 4, whose skipping would need
+//! recursion) are refused. The one recursion is a subgraph (an attribute of If, Loop, Scan and
+//! the like), refused past [`limit::SUBGRAPH_DEPTH`] levels, so a file cannot make the walk
+//! deeper than that. Field numbers follow onnx.proto as shipped with the `onnx` Python package
+//! 1.23.
+//!
+//! Reading rules (see [`crate::format::MODEL_READING_RULES`]): under rules 1 only the top
+//! graph's initializers are weights and any negative dimension is refused, exactly as before
+//! issue 11, so a bundle packed then re-reads to the record it signed. Under rules 2, the
+//! `value` tensor of every Constant node and the initializers and Constants of every subgraph
+//! count too, each tensor must fit in the bytes it holds, and a dimension of -1 (which
+//! exporters write for "unknown", and onnx's checker and onnxruntime accept) reads as unknown.
+//! A tensor made at run time (ConstantOfShape, or any other operator's output) is not a weight
+//! and is not counted.
 
 use std::collections::HashSet;
 
@@ -46,6 +58,8 @@ struct Wire<S> {
     src: S,
     pos: u64,
     len: u64,
+    /// The reading rules (1 or 2).
+    rules: u32,
 }
 
 impl<S: Source> Wire<S> {
@@ -197,9 +211,15 @@ impl<S: Source> Wire<S> {
     }
 }
 
-/// Reads a model's signature from `src`, which holds exactly `len` bytes.
-pub(crate) fn read<S: Source>(src: S, len: u64) -> Result<ModelSignature> {
-    let mut wire = Wire { src, pos: 0, len };
+/// Reads a model's signature from `src`, which holds exactly `len` bytes, under reading `rules`
+/// (1 or 2; the caller has refused any other).
+pub(crate) fn read<S: Source>(src: S, len: u64, rules: u32) -> Result<ModelSignature> {
+    let mut wire = Wire {
+        src,
+        pos: 0,
+        len,
+        rules,
+    };
     let signature = read_model(&mut wire)?;
     wire.src
         .finish()
@@ -240,7 +260,9 @@ fn read_model<S: Source>(w: &mut Wire<S>) -> Result<ModelSignature> {
                     )));
                 }
                 let graph_end = w.payload_end(&field, end, MESSAGE)?;
-                graph = Some(read_graph(w, graph_end)?);
+                let mut weights = WeightTotals::default();
+                let values = read_graph(w, graph_end, 0, &mut weights)?;
+                graph = Some((values, weights));
             }
             8 => {
                 let import_end = w.payload_end(&field, end, MESSAGE)?;
@@ -258,15 +280,12 @@ fn read_model<S: Source>(w: &mut Wire<S>) -> Result<ModelSignature> {
             _ => w.skip_field(&field, end, MESSAGE)?,
         }
     }
-    let graph = graph.ok_or_else(|| malformed("the model has no graph".into()))?;
-    let Graph {
-        inputs,
-        outputs,
-        weights,
-    } = graph;
+    let ((inputs, outputs), weights) =
+        graph.ok_or_else(|| malformed("the model has no graph".into()))?;
     let weights_8bit = weights.weights_8bit();
     Ok(ModelSignature {
         format: ModelFormat::Onnx,
+        rules: w.rules,
         ir_version,
         opset,
         producer,
@@ -277,6 +296,7 @@ fn read_model<S: Source>(w: &mut Wire<S>) -> Result<ModelSignature> {
         parameters: weights.parameters,
         weights_8bit,
         bytes_by_dtype: weights.bytes_by_dtype,
+        classifier: None,
     })
 }
 
@@ -295,12 +315,6 @@ fn read_opset_import<S: Source>(w: &mut Wire<S>, end: u64) -> Result<(String, u6
     Ok((domain, version))
 }
 
-struct Graph {
-    inputs: Vec<ValueSignature>,
-    outputs: Vec<ValueSignature>,
-    weights: WeightTotals,
-}
-
 /// A weight's name reduced to a fixed 16 bytes, so remembering up to
 /// [`limit::WEIGHT_TENSORS`] initializer names costs a bounded amount of memory.
 fn name_key(name: &str) -> [u8; 16] {
@@ -310,31 +324,51 @@ fn name_key(name: &str) -> [u8; 16] {
     key
 }
 
-fn read_graph<S: Source>(w: &mut Wire<S>, end: u64) -> Result<Graph> {
+/// Reads a graph, adding its weights to `weights`. The top graph (`depth` 0) returns its inputs
+/// (initializers taken out) and outputs; a subgraph's are the parent node's business and are
+/// skipped.
+fn read_graph<S: Source>(
+    w: &mut Wire<S>,
+    end: u64,
+    depth: usize,
+    weights: &mut WeightTotals,
+) -> Result<(Vec<ValueSignature>, Vec<ValueSignature>)> {
     const MESSAGE: &str = "graph";
+    if depth > limit::SUBGRAPH_DEPTH {
+        return Err(malformed(format!(
+            "subgraphs are nested more than {} deep",
+            limit::SUBGRAPH_DEPTH
+        )));
+    }
+    let top = depth == 0;
     let mut raw_inputs: Vec<ValueSignature> = Vec::new();
     let mut outputs: Vec<ValueSignature> = Vec::new();
     let mut weight_names = HashSet::new();
-    let mut weights = WeightTotals::default();
     while w.pos < end {
         let field = w.field(end, MESSAGE)?;
         match field.number {
+            1 if w.rules >= 2 => {
+                let node_end = w.payload_end(&field, end, MESSAGE)?;
+                read_node(w, node_end, depth, weights)?;
+            }
             5 => {
-                if weight_names.len() >= limit::WEIGHT_TENSORS {
+                if weights.tensors >= limit::WEIGHT_TENSORS as u64 {
                     return Err(malformed(format!(
                         "the graph has more than {} initializers",
                         limit::WEIGHT_TENSORS
                     )));
                 }
                 let tensor_end = w.payload_end(&field, end, MESSAGE)?;
-                let name = read_initializer(w, tensor_end, field.at, &mut weights)?;
-                if !weight_names.insert(name_key(&name)) {
+                let tensor = read_tensor(w, tensor_end, field.at, "initializer")?;
+                add_weight(weights, &tensor)?;
+                if top && !weight_names.insert(name_key(&tensor.name)) {
                     return Err(malformed(format!(
-                        "the graph has two initializers named '{name}'"
+                        "the graph has two initializers named '{}'",
+                        tensor.name
                     )));
                 }
             }
-            11 => {
+            11 if top => {
                 if raw_inputs.len() >= limit::RAW_INPUTS {
                     return Err(malformed(format!(
                         "the graph lists more than {} inputs",
@@ -344,7 +378,7 @@ fn read_graph<S: Source>(w: &mut Wire<S>, end: u64) -> Result<Graph> {
                 let value_end = w.payload_end(&field, end, MESSAGE)?;
                 raw_inputs.push(read_value_info(w, value_end, field.at, "input")?);
             }
-            12 => {
+            12 if top => {
                 if outputs.len() >= limit::VALUES {
                     return Err(malformed(format!(
                         "the graph has more than {} outputs",
@@ -372,11 +406,101 @@ fn read_graph<S: Source>(w: &mut Wire<S>, end: u64) -> Result<Graph> {
     }
     check_names(&inputs, "input")?;
     check_names(&outputs, "output")?;
-    Ok(Graph {
-        inputs,
-        outputs,
-        weights,
-    })
+    Ok((inputs, outputs))
+}
+
+fn add_weight(weights: &mut WeightTotals, tensor: &Tensor) -> Result<()> {
+    weights
+        .add(tensor.dtype, tensor.elements, tensor.bytes)
+        .ok_or_else(|| {
+            malformed("the weights' total parameter count or size overflows 64 bits".into())
+        })
+}
+
+/// Reads a node (rules 2): a Constant's `value` tensor is a weight; a subgraph in any
+/// attribute is walked for its own weights; every tensor an attribute holds is read (so
+/// external data is refused wherever it hides) but only a Constant's counts.
+fn read_node<S: Source>(
+    w: &mut Wire<S>,
+    end: u64,
+    depth: usize,
+    weights: &mut WeightTotals,
+) -> Result<()> {
+    const MESSAGE: &str = "node";
+    let mut op_type = String::new();
+    let mut domain = String::new();
+    let mut value: Option<Tensor> = None;
+    while w.pos < end {
+        let field = w.field(end, MESSAGE)?;
+        match field.number {
+            4 => {
+                op_type = w.string(&field, end, MESSAGE, "operator type", limit::PRODUCER_BYTES)?
+            }
+            5 => {
+                let attribute_end = w.payload_end(&field, end, MESSAGE)?;
+                if let Some(tensor) = read_attribute(w, attribute_end, depth, weights)?
+                    && value.replace(tensor).is_some()
+                {
+                    return Err(malformed(format!(
+                        "the node ending at byte {end} has two attributes named 'value'"
+                    )));
+                }
+            }
+            7 => {
+                domain = w.string(&field, end, MESSAGE, "operator domain", limit::PRODUCER_BYTES)?
+            }
+            _ => w.skip_field(&field, end, MESSAGE)?,
+        }
+    }
+    let default_domain = domain.is_empty() || domain == "ai.onnx";
+    if let (Some(tensor), "Constant", true) = (value, op_type.as_str(), default_domain) {
+        if weights.tensors >= limit::WEIGHT_TENSORS as u64 {
+            return Err(malformed(format!(
+                "the model has more than {} weight tensors",
+                limit::WEIGHT_TENSORS
+            )));
+        }
+        add_weight(weights, &tensor)?;
+    }
+    Ok(())
+}
+
+/// Reads a node's attribute (an AttributeProto); returns its tensor when the attribute is
+/// named `value` and holds one (the weight of a Constant node).
+fn read_attribute<S: Source>(
+    w: &mut Wire<S>,
+    end: u64,
+    depth: usize,
+    weights: &mut WeightTotals,
+) -> Result<Option<Tensor>> {
+    const MESSAGE: &str = "attribute";
+    let mut name = String::new();
+    let mut tensor = None;
+    while w.pos < end {
+        let field = w.field(end, MESSAGE)?;
+        match field.number {
+            1 => name = w.string(&field, end, MESSAGE, "attribute name", limit::PRODUCER_BYTES)?,
+            5 => {
+                let tensor_end = w.payload_end(&field, end, MESSAGE)?;
+                let read = read_tensor(w, tensor_end, field.at, "attribute tensor")?;
+                if tensor.replace(read).is_some() {
+                    return Err(malformed(format!(
+                        "the attribute ending at byte {end} has two tensors"
+                    )));
+                }
+            }
+            10 => {
+                let tensor_end = w.payload_end(&field, end, MESSAGE)?;
+                read_tensor(w, tensor_end, field.at, "attribute tensor")?;
+            }
+            6 | 11 => {
+                let graph_end = w.payload_end(&field, end, MESSAGE)?;
+                read_graph(w, graph_end, depth + 1, weights)?;
+            }
+            _ => w.skip_field(&field, end, MESSAGE)?,
+        }
+    }
+    Ok(tensor.filter(|_| name == "value"))
 }
 
 fn check_names(values: &[ValueSignature], role: &str) -> Result<()> {
@@ -395,25 +519,34 @@ fn check_names(values: &[ValueSignature], role: &str) -> Result<()> {
     Ok(())
 }
 
-/// Reads one initializer (a TensorProto), adds it to `weights`, and returns its name. Its data
-/// is skipped, never kept.
-fn read_initializer<S: Source>(
-    w: &mut Wire<S>,
-    end: u64,
-    at: u64,
-    weights: &mut WeightTotals,
-) -> Result<String> {
-    const MESSAGE: &str = "initializer";
+/// A tensor's name and size, its data skipped, never kept.
+struct Tensor {
+    name: String,
+    dtype: DType,
+    elements: u64,
+    bytes: u64,
+}
+
+/// Reads one TensorProto: an initializer (`what` is "initializer", which must be named) or a
+/// tensor an attribute holds. External data is refused. Under rules 2 the tensor must fit in the
+/// bytes it holds: `raw_data` of exactly its size, or typed data fields (`float_data`,
+/// `int64_data`, ...) of at least one byte per element (a varint's least; sub-byte types pack
+/// several per byte); a large tensor is still only measured, its data skipped.
+fn read_tensor<S: Source>(w: &mut Wire<S>, end: u64, at: u64, what: &str) -> Result<Tensor> {
+    const MESSAGE: &str = "tensor";
     let mut dims: Vec<i64> = Vec::new();
     let mut data_type = 0i64;
     let mut name = String::new();
     let mut raw_bytes: Option<u64> = None;
     let mut string_bytes = 0u64;
+    let mut strings = 0u64;
+    // Bytes of typed data (float_data, int32_data, int64_data, double_data, uint64_data).
+    let mut typed_bytes = 0u64;
     let mut external = false;
     let push_dim = |dims: &mut Vec<i64>, value: u64| {
         if dims.len() >= limit::WEIGHT_RANK {
             return Err(malformed(format!(
-                "the initializer at byte {at} has more than {} dimensions",
+                "the {what} at byte {at} has more than {} dimensions",
                 limit::WEIGHT_RANK
             )));
         }
@@ -439,6 +572,7 @@ fn read_initializer<S: Source>(
             (6, _) => {
                 let data_end = w.payload_end(&field, end, MESSAGE)?;
                 string_bytes = string_bytes.saturating_add(data_end - w.pos);
+                strings += 1;
                 w.skip_to(data_end)?;
             }
             (8, _) => {
@@ -446,7 +580,7 @@ fn read_initializer<S: Source>(
                     &field,
                     end,
                     MESSAGE,
-                    "initializer name",
+                    &format!("{what} name"),
                     limit::WEIGHT_NAME_BYTES,
                 )?
             }
@@ -460,6 +594,16 @@ fn read_initializer<S: Source>(
                 w.skip_field(&field, end, MESSAGE)?;
             }
             (14, _) => external |= w.varint_field(&field, end, MESSAGE)? == 1,
+            (4 | 5 | 7 | 10 | 11, LEN) => {
+                let data_end = w.payload_end(&field, end, MESSAGE)?;
+                typed_bytes = typed_bytes.saturating_add(data_end - w.pos);
+                w.skip_to(data_end)?;
+            }
+            (4 | 5 | 7 | 10 | 11, _) => {
+                let from = w.pos;
+                w.skip_field(&field, end, MESSAGE)?;
+                typed_bytes = typed_bytes.saturating_add(w.pos - from);
+            }
             _ => w.skip_field(&field, end, MESSAGE)?,
         }
     }
@@ -468,24 +612,22 @@ fn read_initializer<S: Source>(
     } else {
         format!("'{name}'")
     };
-    if name.is_empty() {
+    if name.is_empty() && what == "initializer" {
         return Err(malformed(format!("the initializer {shown} has no name")));
     }
     if external {
         return Err(malformed(format!(
-            "initializer {shown} keeps its data in an external file, which a bundle cannot carry"
+            "{what} {shown} keeps its data in an external file, which a bundle cannot carry"
         )));
     }
     let dtype = DType::from_onnx_code(data_type).ok_or_else(|| {
-        malformed(format!(
-            "initializer {shown} has unknown element type {data_type}"
-        ))
+        malformed(format!("{what} {shown} has unknown element type {data_type}"))
     })?;
     let mut shape = Vec::with_capacity(dims.len());
     for dim in &dims {
         let dim = u64::try_from(*dim).map_err(|_| {
             malformed(format!(
-                "initializer {shown} has a negative dimension in its shape {}",
+                "{what} {shown} has a negative dimension in its shape {}",
                 list(&dims)
             ))
         })?;
@@ -493,7 +635,7 @@ fn read_initializer<S: Source>(
     }
     let elements = element_count(&shape).ok_or_else(|| {
         malformed(format!(
-            "initializer {shown} has shape {} whose element count overflows 64 bits",
+            "{what} {shown} has shape {} whose element count overflows 64 bits",
             list(&dims)
         ))
     })?;
@@ -502,7 +644,7 @@ fn read_initializer<S: Source>(
         None if dtype == DType::String => string_bytes,
         None => {
             return Err(malformed(format!(
-                "initializer {shown} has shape {} whose size in bytes overflows 64 bits",
+                "{what} {shown} has shape {} whose size in bytes overflows 64 bits",
                 list(&dims)
             )));
         }
@@ -514,14 +656,30 @@ fn read_initializer<S: Source>(
         && raw != bytes
     {
         return Err(malformed(format!(
-            "initializer {shown} has {raw} bytes of raw data, its shape {} of {dtype} needs {bytes}",
+            "{what} {shown} has {raw} bytes of raw data, its shape {} of {dtype} needs {bytes}",
             list(&dims)
         )));
     }
-    weights.add(dtype, elements, bytes).ok_or_else(|| {
-        malformed("the initializers' total parameter count or size overflows 64 bits".into())
-    })?;
-    Ok(name)
+    if w.rules >= 2 && raw_bytes.is_none() {
+        let (held, unit) = match dtype.bits() {
+            None => (strings, "strings"),
+            Some(bits) if bits < 8 => (typed_bytes.saturating_mul(u64::from(8 / bits)), "bytes"),
+            Some(_) => (typed_bytes, "bytes"),
+        };
+        if elements > held {
+            let holds = if unit == "strings" { strings } else { typed_bytes };
+            return Err(malformed(format!(
+                "{what} {shown} has shape {} ({elements} elements of {dtype}), but it holds only {holds} {unit} of data",
+                list(&dims)
+            )));
+        }
+    }
+    Ok(Tensor {
+        name,
+        dtype,
+        elements,
+        bytes,
+    })
 }
 
 /// Reads a graph input or output (a ValueInfoProto).
@@ -572,6 +730,8 @@ fn read_value_info<S: Source>(
             let mut shape = Vec::with_capacity(dims.len());
             for dim in dims {
                 shape.push(match dim {
+                    // Exporters write -1 for "unknown"; onnx's checker and onnxruntime accept it.
+                    RawDim::Value(-1) if w.rules >= 2 => Dim::Unknown,
                     RawDim::Value(value) => Dim::Fixed(u64::try_from(value).map_err(|_| {
                         malformed(format!("{role} '{name}' has a negative dimension {value}"))
                     })?),
