@@ -346,6 +346,7 @@ fn manifest_for(
         ],
         label_count: u32::try_from(spec.labels.len()).context("too many labels")?,
         model: spec.model_signature.clone(),
+        metadata: spec.metadata.clone(),
     })
 }
 

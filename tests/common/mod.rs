@@ -372,6 +372,7 @@ impl Draft {
             ],
             label_count: LABEL_COUNT,
             model: None,
+            metadata: None,
         };
         Draft {
             model,

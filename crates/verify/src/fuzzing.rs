@@ -233,6 +233,7 @@ fn template_manifest(payload: &[u8], files: [(u64, Digest); 2], label_count: u32
         ],
         label_count,
         model: None,
+        metadata: None,
     }
 }
 

@@ -53,6 +53,7 @@ fn bundle(key: &SigningKey, model: &[u8], edit: impl FnOnce(&mut Manifest)) -> V
         ],
         label_count: 3,
         model: None,
+        metadata: None,
     };
     edit(&mut manifest);
     let manifest = manifest.to_json();
