@@ -162,6 +162,7 @@ impl Env {
             created: CREATED.parse().expect("an RFC 3339 time"),
             model_signature: ampoule_verify::model::read_model_signature_file(&self.path(MODEL))
                 .expect("the fixture model reads"),
+            metadata: None,
         };
         let out = self.path(out);
         pack(

@@ -174,13 +174,15 @@ pub fn takes_string(key: &str) -> bool {
 /// Checks the value at `path`, held by an object or array `level` levels deep (the metadata
 /// object is level 1).
 fn check_value(path: &mut Vec<String>, value: &Value, level: usize) -> Result<()> {
+    if value.is_null() {
+        return Err(invalid(format!(
+            "metadata key '{}' is null; leave out a key that has no value",
+            path.join(".")
+        )));
+    }
     let segments: Vec<&str> = path.iter().map(String::as_str).collect();
     check_documented(&segments, value)?;
     match value {
-        Value::Null => Err(invalid(format!(
-            "metadata key '{}' is null; leave out a key that has no value",
-            path.join(".")
-        ))),
         Value::Object(map) => check_object(path, map, level + 1),
         Value::Array(items) => {
             if level + 1 > limit::METADATA_DEPTH {
@@ -201,7 +203,8 @@ fn check_value(path: &mut Vec<String>, value: &Value, level: usize) -> Result<()
             }
             Ok(())
         }
-        Value::Bool(_) | Value::Number(_) | Value::String(_) => Ok(()),
+        // Null was refused above.
+        Value::Null | Value::Bool(_) | Value::Number(_) | Value::String(_) => Ok(()),
     }
 }
 
