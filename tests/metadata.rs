@@ -571,3 +571,26 @@ fn issue11_diff_compares_metadata_and_marks_preprocess_changes_breaking() {
         ],
     );
 }
+
+#[test]
+fn issue11_format_md_states_the_caps_the_format_defines() {
+    use ampoule_verify::format::limit;
+    let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("FORMAT.md"))
+        .expect("FORMAT.md");
+    for (value, stated, phrase) in [
+        (
+            limit::METADATA_BYTES,
+            16 * 1024,
+            "At most 16 KiB (16,384 bytes) as compact JSON",
+        ),
+        (limit::METADATA_DEPTH, 8, "at most 8 levels deep"),
+        (
+            limit::METADATA_KEY_BYTES,
+            64,
+            "1 to 64 bytes of `a`-`z`, `0`-`9`, `_`",
+        ),
+    ] {
+        assert_eq!(value, stated, "{phrase}");
+        assert!(text.contains(phrase), "FORMAT.md no longer says {phrase:?}");
+    }
+}

@@ -198,6 +198,14 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         count(m.label_count, "label", "labels"),
         m.payload.size
     );
+    if let Some(metadata) = &m.metadata {
+        let keys: Vec<String> = metadata.leaves().into_iter().map(|(k, _)| k).collect();
+        human.push_str(&format!(
+            "metadata {} signed in the manifest: {}\n",
+            count(keys.len(), "key", "keys"),
+            keys.join(", ")
+        ));
+    }
     match packed.signers.first() {
         Some(id) => {
             let file = args.key.as_deref().map(|k| format!(" ({})", k.display()));

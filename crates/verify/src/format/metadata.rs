@@ -10,10 +10,10 @@
 //! holds no `null` and no empty object, so that every key has one value and one way to be
 //! written. Arrays hold numbers, strings, booleans and arrays, never objects: every object
 //! member has a dotted name. A few keys have a documented meaning and type (see
-//! [`check_documented`]); the others are free.
+//! `check_documented`); the others are free.
 //!
 //! `pack` builds the object ([`MetadataBuilder`]) and the device reads it (the manifest's
-//! strict parse, then [`Metadata::validate`]) under the same rules, the documented types
+//! strict parse, then `Metadata::validate`) under the same rules, the documented types
 //! included: whoever holds a bundle key cannot hand devices metadata that `pack` refuses, and
 //! an app that reads `preprocess.colour_order` can rely on `rgb` or `bgr`. (The price: a later
 //! format that widens a documented type needs newer devices, as any format change does.)
