@@ -594,3 +594,30 @@ fn issue11_format_md_states_the_caps_the_format_defines() {
         assert!(text.contains(phrase), "FORMAT.md no longer says {phrase:?}");
     }
 }
+
+#[test]
+fn issue11_metadata_that_makes_the_manifest_too_large_is_refused_at_pack() {
+    // 8,000 small numbers 7 levels down: 16,043 bytes as compact JSON, within the metadata's
+    // cap, but the manifest stores it indented, one number per line, and would pass 64 KiB.
+    let dir = setup();
+    let d = dir.path();
+    let numbers = vec!["1"; 8000].join(",");
+    std::fs::write(
+        d.join("long.json"),
+        format!(r#"{{"a":{{"b":{{"c":{{"d":{{"e":{{"f":{{"g":[{numbers}]}}}}}}}}}}}}}}"#),
+    )
+    .expect("write");
+    let out = pack_with(d, "1.0.0", 0, &["--meta-file", "long.json"], "long.ampoule");
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{stderr}");
+    assert!(
+        stderr.starts_with("ampoule: error: the manifest would be ")
+            && stderr.contains(
+                "bytes, over the format's limit of 65536 bytes (the model declares very many or \
+                 very long inputs and outputs, or the metadata holds long arrays: the manifest \
+                 stores it indented)"
+            ),
+        "{stderr}"
+    );
+    assert!(!d.join("long.ampoule").exists());
+}
