@@ -71,9 +71,8 @@ A secret key is read with the same checks as when signing (owner-only, passphras
   SOURCE_DATE_EPOCH=1796112000 ampoule pack --model species.onnx \\
       --labels labels.txt --name trailcam-species --version 1.1.0 \\
       --requires-app '>=2.0.0, <3.0.0' -o species-1.1.0.ampoule
-  # Signed metadata: strings with --meta, numbers and arrays from a JSON file
-  echo '{\"preprocess\": {\"mean\": [0.485, 0.456, 0.406], \"colour_order\": \"rgb\"},
-        \"eval\": {\"top1\": 0.912}}' > metadata.json
+  # Signed metadata: strings with --meta; numbers and arrays from a JSON object
+  # in metadata.json, like {\"eval\": {\"top1\": 0.912}}
   ampoule pack --model species.onnx --labels labels.txt \\
       --name trailcam-species --version 1.1.0 --key release.secret.pem \\
       --meta data.snapshot=2026-11-30 --meta notes='Adds pine marten' \\
