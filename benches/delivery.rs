@@ -136,6 +136,7 @@ fn pack_release(
         requires_app: ">=2.0.0, <3.0.0".parse()?,
         created: "2026-12-01T06:00:00Z".parse()?,
         model_signature: read_model_signature_file(&model)?,
+        metadata: None,
     };
     let bundle = dir.join(format!("species-{version}.ampoule"));
     pack(&spec, Some(key), &bundle, &indicatif::ProgressBar::hidden())?;

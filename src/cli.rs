@@ -70,7 +70,18 @@ A secret key is read with the same checks as when signing (owner-only, passphras
   # The same inputs and creation time give a byte-identical bundle:
   SOURCE_DATE_EPOCH=1796112000 ampoule pack --model species.onnx \\
       --labels labels.txt --name trailcam-species --version 1.1.0 \\
-      --requires-app '>=2.0.0, <3.0.0' -o species-1.1.0.ampoule")]
+      --requires-app '>=2.0.0, <3.0.0' -o species-1.1.0.ampoule
+  # Signed metadata: strings with --meta; numbers and arrays from a JSON object
+  # in metadata.json, like {\"eval\": {\"top1\": 0.912}}
+  ampoule pack --model species.onnx --labels labels.txt \\
+      --name trailcam-species --version 1.1.0 --key release.secret.pem \\
+      --meta data.snapshot=2026-11-30 --meta notes='Adds pine marten' \\
+      --meta-file metadata.json -o species-1.1.0.ampoule
+
+Metadata keys are dotted paths (segments of a-z, 0-9, _; at most 8 deep); a key set twice
+is refused. Documented keys and their types: preprocess.input_size, .mean, .std, .scale
+(numbers or arrays of numbers), preprocess.colour_order (rgb or bgr), eval.* (numbers),
+data.snapshot and notes (strings). The object is at most 16 KiB as compact JSON.")]
     Pack(PackArgs),
 
     /// Add a signature to a bundle (signing twice with one key changes nothing).
@@ -109,8 +120,8 @@ Exit code 1 means the bundle was refused; the message says which check failed.")
 
 diff reads both payloads to compare the label lists; it does not check signatures.
 Breaking changes (listed under \"breaking\" in --json): a label moved to another index,
-a label removed, an input or output changed or removed. With --fail-on breaking, any
-of them makes diff exit 1.")]
+a label removed, an input or output changed or removed, a preprocess.* metadata key
+added, removed or changed. With --fail-on breaking, any of them makes diff exit 1.")]
     Diff(DiffArgs),
 
     /// Manage trust sets: which keys may sign what, and how many must agree.
@@ -343,6 +354,14 @@ pub struct PackArgs {
     /// (the devices' own policy may still refuse it).
     #[arg(long)]
     pub allow_label_mismatch: bool,
+    /// Record a string in the signed manifest's metadata under a dotted KEY, like
+    /// data.snapshot=2026-11-30 or notes='Adds pine marten' (repeat for several).
+    #[arg(long = "meta", value_name = "KEY=VALUE")]
+    pub meta: Vec<String>,
+    /// Record every value of the JSON object in this file in the signed metadata, numbers,
+    /// booleans and arrays as they are (repeat for several files; at most 256 KiB each).
+    #[arg(long = "meta-file", value_name = "FILE.json")]
+    pub meta_file: Vec<PathBuf>,
     /// The bundle file to write; it must not exist yet.
     #[arg(short = 'o', long = "out", value_name = "OUT.ampoule")]
     pub out: PathBuf,
@@ -405,6 +424,18 @@ pub struct VerifyArgs {
     /// Unpack the checked model and labels into this new directory.
     #[arg(long, value_name = "DIR")]
     pub extract: Option<PathBuf>,
+    #[command(flatten)]
+    pub require_meta: RequireMetaArgs,
+}
+
+/// The app's metadata requirements, as `verify` and `update` take them.
+#[derive(Args, Debug)]
+pub struct RequireMetaArgs {
+    /// Refuse a bundle whose signed metadata does not hold VALUE at the dotted KEY (repeat
+    /// for several). VALUE is JSON when it reads as a number, boolean, array or quoted
+    /// string (96, true, [0.5,0.5], '"96"'), and a plain string otherwise (rgb).
+    #[arg(long = "require-meta", value_name = "KEY=VALUE")]
+    pub require_meta: Vec<String>,
 }
 
 #[derive(Args, Debug)]
@@ -866,6 +897,8 @@ pub struct UpdateArgs {
     /// another one. The highest version it accepted stays, so nothing older installs.
     #[arg(long)]
     pub switch_channel: bool,
+    #[command(flatten)]
+    pub require_meta: RequireMetaArgs,
 }
 
 #[derive(Args, Debug)]

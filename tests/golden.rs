@@ -2,6 +2,8 @@
 //! 768-byte "model" and the trail-camera labels), signed with the published demo-only key in
 //! keys-example/, packed at a fixed time. Pack must write exactly the committed bundle, whose
 //! SHA-256 is pinned below; the device's reader and GNU tar (where installed) must accept it.
+//! The golden bundle predates signed metadata (issue 11) and is packed without it, so the
+//! pinned bytes also prove that a bundle without metadata is byte for byte what it was.
 
 #[path = "bundle_check/mod.rs"]
 mod bundle_check;

@@ -920,7 +920,7 @@ fn manifest_with_an_unknown_field() {
         &signed_text(&env, &draft, &edited),
         &[],
         "manifest is not valid: unknown field `comment`, expected one of `format`, `name`, \
-         `version`, `created`, `requires_app`, `payload`, `files`, `label_count`, `model` at line 2 column 11",
+         `version`, `created`, `requires_app`, `payload`, `files`, `label_count`, `model`, `metadata` at line 2 column 11",
     );
 }
 
@@ -942,6 +942,102 @@ fn manifest_with_a_duplicate_key() {
         &[],
         "manifest is not valid: duplicate field `name` at line 4 column 8",
     );
+}
+
+/// The draft's manifest with `metadata` (JSON text) added as its last field, signed.
+fn with_metadata(env: &Env, draft: &Draft, metadata: &str) -> Vec<u8> {
+    let text = String::from_utf8(draft.manifest.to_json()).expect("utf-8");
+    let body = text
+        .strip_suffix("\n}\n")
+        .expect("the writer ends the object so");
+    signed_text(
+        env,
+        draft,
+        &format!("{body},\n  \"metadata\": {metadata}\n}}\n"),
+    )
+}
+
+#[test]
+fn issue11_signed_metadata_that_pack_would_refuse_is_refused_by_the_device() {
+    // A holder of a bundle key signs metadata by hand; the device applies pack's rules.
+    let env = Env::new();
+    let draft = Draft::good();
+    env.assert_accepted(&with_metadata(
+        &env,
+        &draft,
+        r#"{"eval": {"top1": 0.91}, "notes": "ok", "preprocess": {"colour_order": "bgr"}}"#,
+    ));
+    let segment_rule = "each dot-separated segment must be 1 to 64 bytes of a-z, 0-9 and _";
+    let nine = r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":{"h":{"i":1}}}}}}}}}"#;
+    let big = format!(r#"{{"notes": "{}"}}"#, "n".repeat(16 * 1024));
+    let long = format!(r#"{{"{}": 1}}"#, "k".repeat(65));
+    for (metadata, refusal) in [
+        (
+            r#"{"Eval": 1}"#,
+            format!("metadata key 'Eval' is not allowed: {segment_rule}"),
+        ),
+        (
+            r#"{"a.b": 1}"#,
+            format!("metadata key 'a.b' is not allowed: {segment_rule}"),
+        ),
+        (
+            long.as_str(),
+            format!(
+                "metadata key '{}' is not allowed: {segment_rule}",
+                "k".repeat(65)
+            ),
+        ),
+        (
+            r#"{"notes": "a", "notes": "b"}"#,
+            "manifest is not valid: metadata key 'notes' appears twice at line 27 column 36"
+                .to_string(),
+        ),
+        (
+            r#"{"notes": "a", "eval": {"top1": 1}}"#,
+            "manifest is not valid: metadata key 'eval' comes after 'notes'; a manifest stores \
+             keys in sorted order at line 27 column 35"
+                .to_string(),
+        ),
+        (
+            nine,
+            "metadata key 'a.b.c.d.e.f.g.h' is 9 levels deep; the format allows at most 8 (the \
+             metadata object and each object or array in it count one)"
+                .to_string(),
+        ),
+        (
+            big.as_str(),
+            "metadata is 16396 bytes as compact JSON, over the format's limit of 16384 bytes"
+                .to_string(),
+        ),
+        (
+            r#"{"eval": {"top1": "0.91"}}"#,
+            "metadata key 'eval.top1' must be a number (every key under eval is a result), not \
+             the string \"0.91\""
+                .to_string(),
+        ),
+        (
+            r#"{"preprocess": {"colour_order": "rgba"}}"#,
+            "metadata key 'preprocess.colour_order' must be \"rgb\" or \"bgr\", not the string \
+             \"rgba\""
+                .to_string(),
+        ),
+        (
+            r#"{"notes": null}"#,
+            "metadata key 'notes' is null; leave out a key that has no value".to_string(),
+        ),
+        (
+            r#"{}"#,
+            "the metadata object is empty; leave the field out instead".to_string(),
+        ),
+        (
+            r#""notes""#,
+            "manifest is not valid: metadata must be a JSON object, not the string \"notes\" at \
+             line 28 column 1"
+                .to_string(),
+        ),
+    ] {
+        env.assert_refused(&with_metadata(&env, &draft, metadata), &[], &refusal);
+    }
 }
 
 #[test]

@@ -96,6 +96,7 @@ fn repack(dir: &Path, signature: ampoule_verify::model::ModelSignature) -> PathB
         requires_app: VersionReq::STAR,
         created: Timestamp::from_unix(1_764_547_200).expect("a time"),
         model_signature: Some(signature),
+        metadata: None,
     };
     let out = dir.join("new.ampoule");
     pack(&spec, Some(&key), &out, &ProgressBar::hidden()).expect("pack");

@@ -71,6 +71,7 @@ fn write_bundle(dir: &Path, model: &[u8], tar_bytes: &[u8]) -> PathBuf {
         ],
         label_count: 3,
         model: None,
+        metadata: None,
     };
     let manifest_bytes = manifest.to_json();
     let mut signatures = Signatures::default();

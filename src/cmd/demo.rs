@@ -735,6 +735,7 @@ fn model_spec(
         requires_app: requires_app.clone(),
         created,
         model_signature: read_model_signature_file(model)?,
+        metadata: None,
     })
 }
 

@@ -1,7 +1,7 @@
 //! `ampoule diff`: what changed between two releases, with the changes that silently break
 //! an app (reordered labels, changed tensors) called out first.
 
-use std::collections::{BTreeSet, HashMap};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 use std::path::Path;
 
 use ampoule_verify::bundle::Unverified;
@@ -9,7 +9,7 @@ use ampoule_verify::model::{ModelSignature, ValueSignature};
 use ampoule_verify::{KeyId, Manifest};
 use anyhow::{Context, Result};
 use serde::Serialize;
-use serde_json::json;
+use serde_json::{Value, json};
 
 use crate::cli::{DiffArgs, FailOn};
 use crate::failure::{Failure, Kind, bundle_error, count};
@@ -202,6 +202,11 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
         let mark = if change.breaking { "WARNING: " } else { "" };
         line(format!("{mark}{}", change.text));
     }
+    let metadata = metadata_changes(om, nm);
+    for change in &metadata {
+        let mark = if change.breaking { "WARNING: " } else { "" };
+        line(format!("{mark}{}", shown(&change.text())));
+    }
     line(format!(
         "labels: {} -> {}; added: {}; removed: {}",
         old.labels.len(),
@@ -266,6 +271,12 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
     );
     let mut breaking = breaking_changes(&moved, &removed, &inputs, &outputs);
     breaking.extend(model.iter().filter(|c| c.breaking).map(|c| c.text.clone()));
+    breaking.extend(
+        metadata
+            .iter()
+            .filter(|c| c.breaking)
+            .map(MetadataChange::text),
+    );
     let doc = json!({
             "ok": true,
             "breaking": breaking,
@@ -281,6 +292,7 @@ pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
             "inputs": inputs,
             "outputs": outputs,
             "model": model,
+            "metadata": metadata,
             "parameters": { "old": params(om), "new": params(nm) },
             "model_bytes": { "old": om.model().size, "new": nm.model().size },
             "bundle_bytes": { "old": old.size, "new": new.size },
@@ -390,6 +402,65 @@ fn model_changes(old: Option<&ModelSignature>, new: Option<&ModelSignature>) -> 
         });
     }
     changes
+}
+
+/// One key of the signed metadata that differs between the bundles: added (no `old`),
+/// removed (no `new`) or changed.
+#[derive(Debug, Serialize)]
+struct MetadataChange {
+    key: String,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    old: Option<Value>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    new: Option<Value>,
+    /// A change under `preprocess`: an app that prepares its input as the old bundle said
+    /// feeds the new model input it was not trained on.
+    breaking: bool,
+}
+
+impl MetadataChange {
+    /// The change in one line, as text output and the `breaking` list show it.
+    fn text(&self) -> String {
+        let json = |v: &Value| v.to_string();
+        match (&self.old, &self.new) {
+            (None, Some(new)) => format!("metadata added: {} = {}", self.key, json(new)),
+            (Some(old), None) => format!("metadata removed: {} = {}", self.key, json(old)),
+            (Some(old), Some(new)) => format!(
+                "metadata changed: {}: {} -> {}",
+                self.key,
+                json(old),
+                json(new)
+            ),
+            (None, None) => format!("metadata unchanged: {}", self.key),
+        }
+    }
+}
+
+/// Every key that holds a value in either bundle's metadata and differs, in key order. Only
+/// changes under `preprocess` are breaking; an app's policy may require other keys too, but
+/// diff does not know the app.
+fn metadata_changes(old: &Manifest, new: &Manifest) -> Vec<MetadataChange> {
+    let leaves = |m: &Manifest| -> BTreeMap<String, Value> {
+        m.metadata.as_ref().map_or_else(BTreeMap::new, |meta| {
+            meta.leaves()
+                .into_iter()
+                .map(|(k, v)| (k, v.clone()))
+                .collect()
+        })
+    };
+    let (mut old, mut new) = (leaves(old), leaves(new));
+    let keys: BTreeSet<String> = old.keys().chain(new.keys()).cloned().collect();
+    keys.into_iter()
+        .filter_map(|key| {
+            let (o, n) = (old.remove(&key), new.remove(&key));
+            (o != n).then(|| MetadataChange {
+                breaking: key.starts_with("preprocess."),
+                key,
+                old: o,
+                new: n,
+            })
+        })
+        .collect()
 }
 
 /// The changes that make an app built for the old bundle misread the new one, as the README

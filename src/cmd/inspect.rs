@@ -129,6 +129,11 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
             "model    opaque (not a format ampoule reads; no tensor signature recorded)\n",
         ),
     }
+    if let Some(metadata) = &m.metadata {
+        for (key, value) in metadata.leaves() {
+            human.push_str(&format!("metadata {key} = {}\n", shown(&value.to_string())));
+        }
+    }
     if !keys.is_empty() {
         human.push_str(&format!(
             "signed   {} valid of {threshold} needed{}\n",

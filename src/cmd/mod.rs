@@ -24,11 +24,12 @@ pub mod withdraw;
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::format::trust_set;
-use ampoule_verify::{Timestamp, TrustSet, TrustSetFile, TrustedKeys};
+use ampoule_verify::{CompatibilityPolicy, Timestamp, TrustSet, TrustSetFile, TrustedKeys};
 use anyhow::{Context, Result};
 use semver::Version;
+use serde_json::Value;
 
-use crate::cli::PassphraseArgs;
+use crate::cli::{PassphraseArgs, RequireMetaArgs};
 use crate::failure::{Failure, Kind, usage};
 use crate::release::keyfile::{self, PassphraseSource};
 
@@ -116,6 +117,29 @@ pub fn parse_version(text: &str, flag: &str) -> Result<Version> {
 /// the refusal the same check means for a channel named in a feed.
 pub fn check_channel_arg(channel: &str) -> Result<()> {
     ampoule_verify::feed::check_channel(channel).map_err(usage)
+}
+
+/// The app's metadata requirements from `--require-meta KEY=VALUE`, as a compatibility
+/// policy; `None` when there are none. VALUE is JSON when it reads as a number, boolean,
+/// array or quoted string, and a plain string otherwise.
+pub fn metadata_policy(args: &RequireMetaArgs) -> Result<Option<CompatibilityPolicy>> {
+    if args.require_meta.is_empty() {
+        return Ok(None);
+    }
+    let mut policy = CompatibilityPolicy::builder();
+    for pair in &args.require_meta {
+        let Some((key, text)) = pair.split_once('=') else {
+            return Err(usage(anyhow::anyhow!(
+                "--require-meta '{pair}' is not KEY=VALUE, like preprocess.colour_order=rgb"
+            )));
+        };
+        let value = match serde_json::from_str::<serde_json::Value>(text) {
+            Ok(v @ (Value::Number(_) | Value::Bool(_) | Value::Array(_) | Value::String(_))) => v,
+            _ => Value::String(text.to_string()),
+        };
+        policy = policy.require_metadata(key, value);
+    }
+    Ok(Some(policy.build().map_err(usage)?))
 }
 
 /// The path shown for a file in messages.

@@ -5,6 +5,7 @@ use std::path::Path;
 
 use ampoule_verify::format::limit;
 use ampoule_verify::manifest::{check_name, model_path};
+use ampoule_verify::metadata::{self, Metadata, MetadataBuilder};
 use ampoule_verify::model::{ModelSignature, read_model_signature_for_pack};
 use ampoule_verify::{Timestamp, labels};
 use anyhow::{Context, Result, bail};
@@ -15,6 +16,7 @@ use crate::cli::PackArgs;
 use crate::cmd::{parse_version, passphrase_source};
 use crate::failure::{count, usage};
 use crate::output::Output;
+use crate::release::files::read_bounded;
 use crate::release::keyfile;
 use crate::release::pack::{PackSpec, pack};
 
@@ -107,6 +109,41 @@ fn check_labels_fit(
     }
 }
 
+/// The largest `--meta-file` read: the metadata itself is capped at 16 KiB as compact JSON,
+/// and this leaves room for indentation and white space around it.
+const META_FILE_BYTES: u64 = 256 * 1024;
+
+/// The signed metadata from `--meta-file` (each file in turn) and `--meta`, checked as a
+/// device checks it; `None` when neither was given, so the manifest has no metadata field.
+fn read_metadata(args: &PackArgs) -> Result<Option<Metadata>> {
+    let mut builder = MetadataBuilder::new();
+    for path in &args.meta_file {
+        let text = read_bounded(path, META_FILE_BYTES, "a metadata file")?;
+        builder
+            .add_json(&text)
+            .map_err(usage)
+            .with_context(|| format!("--meta-file {} refused", path.display()))?;
+    }
+    for pair in &args.meta {
+        let Some((key, value)) = pair.split_once('=') else {
+            return Err(usage(anyhow::anyhow!(
+                "--meta '{pair}' is not KEY=VALUE, like data.snapshot=2026-11-30"
+            )));
+        };
+        if !metadata::takes_string(key) {
+            return Err(usage(anyhow::anyhow!(
+                "--meta {key}=... sets a string, but {key} is a documented key that holds numbers \
+                 (or is an object); set it in --meta-file, like {{\"eval\": {{\"top1\": 0.91}}}}"
+            )));
+        }
+        builder
+            .set_string(key, value)
+            .map_err(usage)
+            .with_context(|| format!("--meta {key}=... refused"))?;
+    }
+    builder.build().map_err(usage).context("metadata refused")
+}
+
 pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     check_name(&args.name).map_err(usage)?;
     let version = parse_version(&args.version, "--version")?;
@@ -117,6 +154,7 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         )
     })?;
     let created = creation_time(args.created.as_deref())?;
+    let metadata = read_metadata(&args)?;
     let labels = read_labels(&args.labels)?;
     let model_len = std::fs::metadata(&args.model)
         .with_context(|| format!("cannot read model {}", args.model.display()))?
@@ -152,6 +190,7 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         requires_app,
         created,
         model_signature,
+        metadata,
     };
     let key = match &args.key {
         Some(path) => Some(keyfile::read_secret_key(
@@ -174,6 +213,14 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
         count(m.label_count, "label", "labels"),
         m.payload.size
     );
+    if let Some(metadata) = &m.metadata {
+        let keys: Vec<String> = metadata.leaves().into_iter().map(|(k, _)| k).collect();
+        human.push_str(&format!(
+            "metadata {} signed in the manifest: {}\n",
+            count(keys.len(), "key", "keys"),
+            keys.join(", ")
+        ));
+    }
     match packed.signers.first() {
         Some(id) => {
             let file = args.key.as_deref().map(|k| format!(" ({})", k.display()));

@@ -75,6 +75,9 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
     if let Some(max) = args.max_size {
         app = app.max_bundle_bytes(max).max_unpacked_bytes(max);
     }
+    if let Some(policy) = crate::cmd::metadata_policy(&args.require_meta)? {
+        app = app.compatibility(policy);
+    }
     if args.dangerous_skip_ledger {
         // Without the ledger a bundle signed with a stolen key but never published would pass.
         app = dangerous::skip_ledger(app);

@@ -7,7 +7,7 @@ use anyhow::Result;
 use serde_json::json;
 
 use crate::cli::VerifyArgs;
-use crate::cmd::{load_trust_named, load_trust_set, name_trusted, parse_version};
+use crate::cmd::{load_trust_named, load_trust_set, metadata_policy, name_trusted, parse_version};
 use crate::failure::{bundle_error, count};
 use crate::output::{Output, shown};
 
@@ -33,6 +33,9 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
     }
     if let Some(name) = &args.name {
         verifier = verifier.require_name(name.clone());
+    }
+    if let Some(policy) = metadata_policy(&args.require_meta)? {
+        verifier = verifier.compatibility(policy);
     }
     let (max_bundle, max_unpacked) = match args.max_size {
         Some(n) => (n, n),

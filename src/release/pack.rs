@@ -21,6 +21,7 @@ use ampoule_verify::bundle::{self, Layout};
 use ampoule_verify::digest::Hasher;
 use ampoule_verify::format::{context, entry, limit, signed_bytes};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};
+use ampoule_verify::metadata::Metadata;
 use ampoule_verify::model::ModelSignature;
 use ampoule_verify::signature::{SignatureEntry, Signatures};
 use ampoule_verify::{Digest, KeyId, Manifest, Timestamp, labels, tar};
@@ -57,6 +58,8 @@ pub struct PackSpec {
     pub created: Timestamp,
     /// The model's tensor signature, when its format is one ampoule reads.
     pub model_signature: Option<ModelSignature>,
+    /// The signed metadata (`--meta`, `--meta-file`), checked; `None` writes no field.
+    pub metadata: Option<Metadata>,
 }
 
 /// What was written.
@@ -346,6 +349,7 @@ fn manifest_for(
         ],
         label_count: u32::try_from(spec.labels.len()).context("too many labels")?,
         model: spec.model_signature.clone(),
+        metadata: spec.metadata.clone(),
     })
 }
 
@@ -435,7 +439,8 @@ fn pack_guessing(
     if manifest_bytes.len() as u64 > limit::MANIFEST_BYTES {
         bail!(
             "the manifest would be {} bytes, over the format's limit of {} bytes (the model \
-             declares very many or very long inputs and outputs)",
+             declares very many or very long inputs and outputs, or the metadata holds long \
+             arrays: the manifest stores it indented)",
             manifest_bytes.len(),
             limit::MANIFEST_BYTES
         );
@@ -556,6 +561,7 @@ mod tests {
             requires_app: VersionReq::STAR,
             created: Timestamp::from_unix(1_764_547_200).expect("a time"),
             model_signature: None,
+            metadata: None,
         }
     }
 

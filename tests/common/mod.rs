@@ -162,6 +162,7 @@ impl Env {
             created: CREATED.parse().expect("an RFC 3339 time"),
             model_signature: ampoule_verify::model::read_model_signature_file(&self.path(MODEL))
                 .expect("the fixture model reads"),
+            metadata: None,
         };
         let out = self.path(out);
         pack(
@@ -372,6 +373,7 @@ impl Draft {
             ],
             label_count: LABEL_COUNT,
             model: None,
+            metadata: None,
         };
         Draft {
             model,

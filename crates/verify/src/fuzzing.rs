@@ -29,6 +29,7 @@ use semver::Version;
 use crate::check::bundle::Verifier;
 use crate::check::feed::{Feed, FeedVerifier, Release, SignedFeed, TrustSetRef};
 use crate::check::ledger_proof::LedgerVerifier;
+use crate::check::policy::CompatibilityPolicy;
 use crate::check::trust::{
     DocumentKind, KeyEntry, Thresholds, TrustSet, TrustSetBody, TrustSetFile,
 };
@@ -43,6 +44,7 @@ use crate::format::merkle::{
     ConsistencyProof, InclusionProof, MemoryTree, SignedTreeHead, TreeHead, consistency_proof,
     inclusion_proof, leaf_hash, tree_root,
 };
+use crate::format::metadata::{Metadata, MetadataBuilder};
 use crate::format::signature::{SignatureEntry, Signatures};
 use crate::format::signed::{SignedDocument, kind};
 use crate::format::time::Timestamp;
@@ -176,8 +178,10 @@ pub fn bundle(data: &[u8]) {
 }
 
 /// `manifest`: the bytes as a manifest, signed with the fuzz key, through the store's re-check
-/// of a stored manifest (signature, strict parse, validation, the app's policy); a manifest
-/// that passes must survive its own JSON.
+/// of a stored manifest (signature, strict parse, validation of every field and of the signed
+/// metadata, the app's policy); a manifest that passes must survive its own JSON, its metadata
+/// is read back by key, and a policy that requires a metadata value compares it. Then the same bytes as
+/// `pack --meta-file` reads a metadata file (strict JSON, repeated keys, the same rules).
 pub fn manifest(data: &[u8]) {
     let signatures = Signatures {
         signatures: vec![sign(context::MANIFEST, data)],
@@ -188,7 +192,47 @@ pub fn manifest(data: &[u8]) {
         assert_eq!(again, manifest);
         let _ = manifest.unpacked_tar_len();
         let _ = manifest.parse_labels(LABELS.as_bytes());
+        if let Some(metadata) = &manifest.metadata {
+            for (key, value) in metadata.leaves() {
+                assert_eq!(
+                    manifest.metadata(&key),
+                    Some(value),
+                    "a leaf reads back by key"
+                );
+            }
+        }
+        let _ = metadata_policy().check_metadata(&manifest);
     }
+    let mut builder = MetadataBuilder::new();
+    if builder.add_json(data).is_ok() {
+        let _ = builder.build();
+    }
+}
+
+/// The metadata requirement the `manifest` entry point compares a passing manifest with.
+fn metadata_policy() -> CompatibilityPolicy {
+    CompatibilityPolicy::builder()
+        .require_metadata("preprocess.colour_order", "rgb")
+        .build()
+        .expect("a fixed, valid requirement")
+}
+
+/// The seed manifest's metadata: every documented key and a free one.
+fn seed_metadata() -> Metadata {
+    let mut builder = MetadataBuilder::new();
+    builder
+        .add_json(
+            br#"{"preprocess": {"input_size": [96, 96], "mean": [0.485, 0.456, 0.406],
+                 "std": [0.229, 0.224, 0.225], "scale": 255, "colour_order": "rgb"},
+                 "eval": {"top1": 0.912, "reserve_2026": {"top5": 0.987}},
+                 "data": {"snapshot": "2026-11-30"}, "notes": "first reserve model",
+                 "team": {"site": "north ridge", "night_frames": true}}"#,
+        )
+        .expect("valid seed metadata");
+    builder
+        .build()
+        .expect("valid seed metadata")
+        .expect("seed metadata is not empty")
 }
 
 /// `signatures`: the bytes as a signatures entry, counted against a fixed manifest.
@@ -233,6 +277,7 @@ fn template_manifest(payload: &[u8], files: [(u64, Digest); 2], label_count: u32
         ],
         label_count,
         model: None,
+        metadata: None,
     }
 }
 
@@ -1069,6 +1114,20 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
     let mut seeds: Vec<(&'static str, String, Vec<u8>)> = vec![
         ("bundle", "valid.ampoule".into(), bundle.clone()),
         ("manifest", "valid.json".into(), manifest_bytes.clone()),
+        (
+            "manifest",
+            "with-metadata.json".into(),
+            Manifest {
+                metadata: Some(seed_metadata()),
+                ..manifest.clone()
+            }
+            .to_json(),
+        ),
+        (
+            "manifest",
+            "meta-file.json".into(),
+            serde_json::to_vec_pretty(&seed_metadata()).expect("metadata serializes"),
+        ),
         (
             "signatures",
             "valid.json".into(),

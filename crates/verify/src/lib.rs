@@ -79,7 +79,7 @@ pub mod fuzzing;
 #[cfg(feature = "release")]
 pub use {
     check::{feed, trust},
-    format::{digest, keys, labels, manifest, merkle, signature, signed, tar, time},
+    format::{digest, keys, labels, manifest, merkle, metadata, signature, signed, tar, time},
 };
 
 /// The audit ledger: its documents and the device's checks of them.

@@ -90,6 +90,13 @@ fn fuzz_seeds_that_stand_for_valid_documents_pass_every_check() {
         bundle.check_contents().expect("its payload checks").len(),
         6
     );
+    let manifest = ampoule_verify::Manifest::from_json(&seed("manifest", "with-metadata.json"))
+        .expect("the metadata seed is a valid manifest");
+    assert_eq!(
+        manifest.metadata("preprocess.colour_order"),
+        Some(&serde_json::json!("rgb")),
+        "the manifest target's policy requires it"
+    );
     let feeds = FeedVerifier::new(trusted.clone(), "stable")
         .expect("a key")
         .require_ledger(LedgerVerifier::new(trusted.clone(), 1).expect("a key"));

@@ -53,6 +53,7 @@ fn bundle(key: &SigningKey, model: &[u8], edit: impl FnOnce(&mut Manifest)) -> V
         ],
         label_count: 3,
         model: None,
+        metadata: None,
     };
     edit(&mut manifest);
     let manifest = manifest.to_json();
@@ -210,4 +211,111 @@ fn refusals_have_kinds_apps_can_match_on() {
         .expect_err("exists");
     assert_eq!(err.kind(), ErrorKind::Destination);
     assert!(!err.kind().is_refusal());
+}
+
+#[test]
+fn issue11_the_policy_requires_metadata_values_by_key() {
+    use ampoule_verify::CompatibilityPolicy;
+    use ampoule_verify::metadata::MetadataBuilder;
+    use serde_json::{Value, json};
+
+    let key = SigningKey::from_bytes(&[3; 32]);
+    let mut builder = MetadataBuilder::new();
+    builder
+        .add_json(br#"{"preprocess": {"colour_order": "rgb", "mean": [0.5, 0.5, 0.5]}, "eval": {"top1": 0.9}}"#)
+        .expect("valid metadata");
+    let metadata = builder.build().expect("valid metadata");
+    let dir = tempfile::tempdir().expect("temp dir");
+    let (with, without) = (
+        dir.path().join("with.ampoule"),
+        dir.path().join("without.ampoule"),
+    );
+    std::fs::write(&with, bundle(&key, b"model", |m| m.metadata = metadata)).expect("write");
+    std::fs::write(&without, bundle(&key, b"model", |_| {})).expect("write");
+    let verify = |path: &std::path::Path, policy: CompatibilityPolicy| {
+        Verifier::new(trusting(&key), app())
+            .expect("verifier")
+            .compatibility(policy)
+            .verify_path(path)
+    };
+
+    let all = CompatibilityPolicy::builder()
+        .require_metadata("preprocess.colour_order", "rgb")
+        .require_metadata("eval.top1", 0.9)
+        .require_metadata("preprocess.mean", json!([0.5, 0.5, 0.5]))
+        .build()
+        .expect("a policy");
+    let verified = verify(&with, all).expect("every value is there");
+    assert_eq!(verified.manifest().metadata("eval.top1"), Some(&json!(0.9)));
+    // Numbers compare by value: the integer 1 equals 1.0, whichever side writes which.
+    let one = CompatibilityPolicy::builder()
+        .require_metadata("eval.top1", 1)
+        .build()
+        .expect("a policy");
+    let err = verify(&with, one).expect_err("0.9 is not 1");
+    assert_eq!(err.kind(), ErrorKind::Incompatible);
+    assert_eq!(
+        err.to_string(),
+        "the bundle's metadata has eval.top1 = 0.9, the app requires 1"
+    );
+    for (policy, path, message) in [
+        (
+            ("preprocess.colour_order", json!("bgr")),
+            &with,
+            "the bundle's metadata has preprocess.colour_order = \"rgb\", the app requires \"bgr\"",
+        ),
+        (
+            ("notes", json!("first")),
+            &with,
+            "the bundle's metadata has no notes, the app requires notes = \"first\"",
+        ),
+        (
+            ("preprocess.colour_order", json!("rgb")),
+            &without,
+            "the bundle's metadata has no preprocess.colour_order, the app requires \
+             preprocess.colour_order = \"rgb\"",
+        ),
+    ] {
+        let policy = CompatibilityPolicy::builder()
+            .require_metadata(policy.0, policy.1)
+            .build()
+            .expect("a policy");
+        let err = verify(path, policy).expect_err("refused");
+        assert_eq!(
+            (err.kind(), err.to_string().as_str()),
+            (ErrorKind::Incompatible, message)
+        );
+    }
+
+    for (key, value, message) in [
+        (
+            "Colour",
+            json!("rgb"),
+            "the policy's required metadata key 'Colour' is not allowed: each dot-separated \
+             segment must be 1 to 64 bytes of a-z, 0-9 and _",
+        ),
+        (
+            "notes",
+            Value::Null,
+            "the policy requires metadata key 'notes' to be null, which no bundle holds",
+        ),
+    ] {
+        let err = CompatibilityPolicy::builder()
+            .require_metadata(key, value)
+            .build()
+            .expect_err("not a usable requirement");
+        assert_eq!(
+            (err.kind(), err.to_string().as_str()),
+            (ErrorKind::Policy, message)
+        );
+    }
+    let err = CompatibilityPolicy::builder()
+        .require_metadata("notes", "a")
+        .require_metadata("notes", "b")
+        .build()
+        .expect_err("twice");
+    assert_eq!(
+        err.to_string(),
+        "the policy requires metadata key 'notes' twice"
+    );
 }

@@ -337,6 +337,7 @@ impl Verifier {
         }
         if let Some(policy) = &self.compatibility {
             policy.check_before_unpack(m.model.as_ref(), m.label_count as usize)?;
+            policy.check_metadata(m)?;
         }
         if m.files_len() > self.max_unpacked_bytes {
             return refuse(format!(

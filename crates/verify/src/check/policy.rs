@@ -11,6 +11,8 @@ use std::ops::RangeInclusive;
 use std::str::FromStr;
 
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::manifest::Manifest;
+use crate::format::metadata::{parse_key, same_value, shown_value};
 
 use crate::format::model::{
     DType, Dim, ModelFormat, ModelSignature, ShapeDisplay, ValueKind, ValueSignature, name_list,
@@ -262,6 +264,7 @@ pub struct CompatibilityPolicy {
     required_labels: Vec<String>,
     classifier_output: Option<String>,
     class_dim: Option<u32>,
+    required_metadata: Vec<(String, serde_json::Value)>,
 }
 
 impl CompatibilityPolicy {
@@ -278,6 +281,7 @@ impl CompatibilityPolicy {
                 required_labels: Vec::new(),
                 classifier_output: None,
                 class_dim: None,
+                required_metadata: Vec::new(),
             },
         }
     }
@@ -428,6 +432,32 @@ impl CompatibilityPolicy {
     }
 
     pub_for_release! {
+        /// Checks that the manifest's signed metadata holds every value the app requires;
+        /// the refusal names the key, the value wanted and the value found.
+        fn check_metadata(&self, manifest: &Manifest) -> Result<()> {
+            for (key, want) in &self.required_metadata {
+                match manifest.metadata(key) {
+                    Some(found) if same_value(found, want) => {}
+                    Some(found) => {
+                        return Err(incompatible(format!(
+                            "the bundle's metadata has {key} = {}, the app requires {}",
+                            shown_value(found),
+                            shown_value(want)
+                        )));
+                    }
+                    None => {
+                        return Err(incompatible(format!(
+                            "the bundle's metadata has no {key}, the app requires {key} = {}",
+                            shown_value(want)
+                        )));
+                    }
+                }
+            }
+            Ok(())
+        }
+    }
+
+    pub_for_release! {
         /// Checks that every label the app requires is in the unpacked label list.
         fn check_required_labels<S: AsRef<str>>(&self, labels: &[S]) -> Result<()> {
             for required in &self.required_labels {
@@ -513,13 +543,43 @@ impl CompatibilityPolicyBuilder {
         self
     }
 
+    /// Requires the bundle's signed metadata to hold `value` at the dotted `key`
+    /// (`.require_metadata("preprocess.colour_order", "rgb")`). Numbers compare by value,
+    /// so `1` equals `1.0`; anything else must be equal exactly.
+    pub fn require_metadata(
+        mut self,
+        key: impl Into<String>,
+        value: impl Into<serde_json::Value>,
+    ) -> Self {
+        self.policy
+            .required_metadata
+            .push((key.into(), value.into()));
+        self
+    }
+
     /// Checks the policy is consistent and returns it.
     ///
     /// # Errors
     ///
-    /// [`ErrorKind::Policy`] for a tensor stated twice or an empty label-count range.
+    /// [`ErrorKind::Policy`] for a tensor or metadata key stated twice, an empty label-count
+    /// range, a metadata key that is not a key (segments of `a-z`, `0-9`, `_` joined by dots)
+    /// or a required metadata value of `null`.
     pub fn build(self) -> Result<CompatibilityPolicy> {
         let policy = self.policy;
+        for (i, (key, value)) in policy.required_metadata.iter().enumerate() {
+            let refuse = |why: String| Err(Error::new(ErrorKind::Policy, why));
+            if let Err(e) = parse_key(key) {
+                return refuse(format!("the policy's required {e}"));
+            }
+            if value.is_null() {
+                return refuse(format!(
+                    "the policy requires metadata key '{key}' to be null, which no bundle holds"
+                ));
+            }
+            if policy.required_metadata[..i].iter().any(|(k, _)| k == key) {
+                return refuse(format!("the policy requires metadata key '{key}' twice"));
+            }
+        }
         for (role, specs) in [("input", &policy.inputs), ("output", &policy.outputs)] {
             for (i, spec) in specs.iter().enumerate() {
                 if specs[..i].iter().any(|other| other.name == spec.name) {

@@ -10,6 +10,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::metadata::Metadata;
 use crate::format::{FORMAT_VERSION, entry, limit};
 use crate::format::model::ModelSignature;
 use crate::format::tar;
@@ -85,6 +86,17 @@ pub struct Manifest {
     /// model in a format ampoule does not read.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub model: Option<ModelSignature>,
+    /// What the release engineer recorded beyond the files (issue 11): preprocessing,
+    /// evaluation, data snapshot, notes. Absent when none was given, so such a manifest is
+    /// byte for byte what it was before the field existed. Apps read it through
+    /// [`Manifest::metadata`].
+    #[cfg(feature = "release")]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub metadata: Option<Metadata>,
+    /// See the field above: apps read it through [`Manifest::metadata`].
+    #[cfg(not(feature = "release"))]
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub(crate) metadata: Option<Metadata>,
 }
 
 fn invalid(message: String) -> Error {
@@ -157,6 +169,9 @@ impl Manifest {
                 )));
             }
             check_name(&self.name)?;
+            if let Some(metadata) = &self.metadata {
+                metadata.validate()?;
+            }
             let [model, labels] = self.files.as_slice() else {
                 return Err(invalid(format!(
                     "manifest lists {} files; format {FORMAT_VERSION} requires exactly two, the model then the labels",
@@ -216,6 +231,22 @@ impl Manifest {
             }
             Ok(())
         }
+    }
+
+    /// The value the release engineer recorded under a dotted key of the signed metadata
+    /// (`preprocess.mean`, `eval.top1`, `notes`; an object for a key with keys under it), or
+    /// `None`. The manifest was validated, so a documented key has its documented type:
+    /// `preprocess.colour_order` is `"rgb"` or `"bgr"`, `eval.*` are numbers.
+    ///
+    /// ```
+    /// # fn show(release: &ampoule_verify::Release) {
+    /// if let Some(mean) = release.manifest.metadata("preprocess.mean") {
+    ///     println!("normalize with mean {mean}");
+    /// }
+    /// # }
+    /// ```
+    pub fn metadata(&self, key: &str) -> Option<&serde_json::Value> {
+        self.metadata.as_ref()?.get(key)
     }
 
     pub_for_release! {

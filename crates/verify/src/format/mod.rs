@@ -14,6 +14,7 @@ pub mod labels;
 pub mod ledger_entry;
 pub mod manifest;
 pub mod merkle;
+pub mod metadata;
 pub mod model;
 pub mod signature;
 pub mod signed;
@@ -94,6 +95,15 @@ pub mod limit {
     pub const URL_BYTES: usize = 2048;
     /// The largest signed tree head (head and signatures, as JSON), in bytes.
     pub const TREE_HEAD_BYTES: u64 = 16 * 1024;
+    /// The largest `metadata` object of a manifest, in bytes of its compact JSON (no white
+    /// space; what `serde_json::to_vec` writes). It counts toward [`MANIFEST_BYTES`] too,
+    /// where it is stored pretty-printed.
+    pub const METADATA_BYTES: usize = 16 * 1024;
+    /// The deepest `metadata` object: the object itself is level 1, and each object or array
+    /// inside adds one, so a key has at most 8 segments (`a.b.c.d.e.f.g.h`).
+    pub const METADATA_DEPTH: usize = 8;
+    /// The longest segment of a metadata key (`[a-z0-9_]`, at least one byte), in bytes.
+    pub const METADATA_KEY_BYTES: usize = 64;
 }
 
 /// The domain string hashed ahead of a device id and a bundle digest to place a device in or

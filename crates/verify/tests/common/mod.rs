@@ -145,6 +145,7 @@ pub fn write_bundle_signed_by(
         ],
         label_count: LABELS.len() as u32,
         model: None,
+        metadata: None,
     };
     let manifest_bytes = manifest.to_json();
     let signatures = sign_manifest(&manifest_bytes);
