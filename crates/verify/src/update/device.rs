@@ -83,7 +83,9 @@ impl Device {
         };
         let device_id = match &app.device_id {
             Some(id) => id.clone(),
-            None => stored_device_id(&store)?,
+            // A clean-up in another process (not under the lock the id is made without) may
+            // remove the temporary file of a new id before it is renamed: one more try.
+            None => stored_device_id(&store).or_else(|_| stored_device_id(&store))?,
         };
         Ok(Device {
             app,
