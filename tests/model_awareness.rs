@@ -369,12 +369,8 @@ fn issue11_a_real_model_with_constant_weights_and_minus_one_dims_packs() {
     assert_eq!(model.get("classifier"), None);
 }
 
-/// Issue 11 item 1: `--class-dim` is recorded in the signed manifest; a wrong one is refused
-/// by the label check. The model is onnx 1.23.2's light SqueezeNet, output [1, 1000, 1, 1]
-/// (the shape of its expected output light_squeezenet_output_0.pb); its weights come from
-/// ConstantOfShape at run time, so reading rules 1 read it the same and it keeps them.
-#[test]
-fn issue11_pack_records_the_class_dimension() {
+/// onnx 1.23.2's light SqueezeNet as `squeezenet.onnx`, beside `thousand.txt`: 1000 labels.
+fn squeezenet_with_a_thousand_labels() -> Env {
     let env = Env::new();
     env.write(
         "squeezenet.onnx",
@@ -382,6 +378,16 @@ fn issue11_pack_records_the_class_dimension() {
     );
     let labels: String = (0..1000).map(|i| format!("class {i}\n")).collect();
     env.write("thousand.txt", labels.as_bytes());
+    env
+}
+
+/// Issue 11 item 1: `--class-dim` is recorded in the signed manifest; a wrong one is refused
+/// by the label check. The model is onnx 1.23.2's light SqueezeNet, output [1, 1000, 1, 1]
+/// (the shape of its expected output light_squeezenet_output_0.pb); its weights come from
+/// ConstantOfShape at run time, so reading rules 1 read it the same and it keeps them.
+#[test]
+fn issue11_pack_records_the_class_dimension() {
+    let env = squeezenet_with_a_thousand_labels();
     let run = pack(
         &env,
         "squeezenet.onnx",
@@ -528,13 +534,7 @@ fn issue11_a_real_ocr_label_list_packs() {
 /// (tests/data/before-issue11/README.md).
 #[test]
 fn issue11_diff_reports_classifier_and_reading_rule_changes_as_breaking() {
-    let env = Env::new();
-    env.write(
-        "squeezenet.onnx",
-        &real("onnx-1.23.2-light_squeezenet.onnx"),
-    );
-    let labels: String = (0..1000).map(|i| format!("class {i}\n")).collect();
-    env.write("thousand.txt", labels.as_bytes());
+    let env = squeezenet_with_a_thousand_labels();
     let a = pack(
         &env,
         "squeezenet.onnx",
