@@ -263,6 +263,11 @@ fn undo(t: Transform, data: &mut [u8], ranges: &[std::ops::Range<usize>], scratc
     }
 }
 
+/// One range over a whole file's floats, as if every 4 bytes were one.
+fn whole_file(len: usize) -> Vec<std::ops::Range<usize>> {
+    std::iter::once(0..len - len % 4).collect()
+}
+
 /// Runs the `ampoule` binary in `dir`; panics with its stderr if it fails.
 fn ampoule(dir: &Path, args: &[&str]) -> f64 {
     let start = Instant::now();
@@ -358,7 +363,7 @@ fn measure(dir: &Path, file: &str, labels: &str, title: &str, runs: usize) -> bo
     let ranges = if file.ends_with(".onnx") {
         onnx::float32_ranges(&data)
     } else {
-        vec![0..len - len % 4]
+        whole_file(len)
     };
     let float_bytes: usize = ranges.iter().map(|r| r.len()).sum();
     let bundle_len = pack(dir, file, labels);
@@ -442,7 +447,7 @@ fn measure(dir: &Path, file: &str, labels: &str, title: &str, runs: usize) -> bo
         false,
     );
     if file.ends_with(".onnx") {
-        let whole = vec![0..len - len % 4];
+        let whole = whole_file(len);
         row(
             "shuffle whole file + zstd",
             Some(Transform::Shuffle),
