@@ -262,7 +262,10 @@ fn issue13_a_delta_rebuilds_a_retrained_head_byte_for_byte() {
         delta
     );
     let made: serde_json::Value = serde_json::from_str(&run.stdout).expect("json");
-    assert_eq!(made["chunks"], 4, "three chunks of the model, one of the labels");
+    assert_eq!(
+        made["chunks"], 4,
+        "three chunks of the model, one of the labels"
+    );
     let inspect = env.run(["inspect", "cli.ampoule-delta", "--json"]);
     assert_eq!(inspect.code, 0, "{}", inspect.stderr);
     let shown: serde_json::Value = serde_json::from_str(&inspect.stdout).expect("json");
@@ -546,4 +549,52 @@ fn issue13_a_delta_signed_by_an_untrusted_key_is_refused_before_its_base_and_pat
             .starts_with("delta's manifest has no valid signature by a trusted key"),
         "{err}"
     );
+}
+
+#[test]
+fn issue13_a_zstd_record_decodes_with_the_zstd_command_and_its_base_window() {
+    // The outside reference for the patch encoding: the zstd command (`--patch-from`, the
+    // same reference-prefix mechanism) decodes a record's frame with the base bytes it names.
+    let pair = pair(7, 4);
+    let delta = made(&pair);
+    let base = unpacked(&pair.env, &pair.old, "base");
+    let reference = unpacked(&pair.env, &pair.new, "reference");
+    let mut reader = Cursor::new(delta.as_slice());
+    let head = delta_file::read_head(&mut reader).expect("head");
+    let mut at = reader.position() as usize;
+    let mut rebuilt_offset = 0usize;
+    for index in 0..head.header.records {
+        let bytes: [u8; 24] = delta[at..at + 24].try_into().expect("24 bytes");
+        let record = delta_file::Record::parse(&bytes, index, &head.header).expect("a record");
+        at += 24;
+        if record.op == delta_file::Op::Zstd && record.file == 0 {
+            let model = fs::read(base.join("model.bin")).expect("base model");
+            let start = record.offset as usize;
+            pair.env
+                .write("window", &model[start..start + record.window as usize]);
+            pair.env
+                .write("patch.zst", &delta[at..at + record.patch as usize]);
+            let Some(mut zstd) = tool("zstd") else { return };
+            zstd.current_dir(pair.env.dir.path()).args([
+                "-d",
+                "-q",
+                "--patch-from=window",
+                "patch.zst",
+                "-o",
+                "chunk",
+            ]);
+            run_tool(zstd);
+            let expected = fs::read(reference.join("model.bin")).expect("reference");
+            assert_eq!(
+                pair.env.read("chunk"),
+                expected[rebuilt_offset..rebuilt_offset + record.len as usize]
+            );
+            return;
+        }
+        at += record.patch as usize;
+        if record.file == 0 {
+            rebuilt_offset += record.len as usize;
+        }
+    }
+    panic!("the delta has no zstd record for the model");
 }
