@@ -312,3 +312,115 @@ pub fn write_head<W: Write>(
 pub fn write_tail<W: Write>(out: &mut W, patches_len: u64) -> std::io::Result<()> {
     crate::format::bundle::write_tail(out, patches_len)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::format::manifest::Role;
+
+    fn header() -> Header {
+        Header {
+            format: FORMAT_VERSION,
+            name: "trailcam-species".into(),
+            version: Version::new(1, 1, 0),
+            base: vec![FileEntry {
+                path: "model.bin".into(),
+                role: Role::Model,
+                size: 100,
+                sha256: Digest::of(b"base"),
+            }],
+            chunk_bytes: 64,
+            window_bytes: 128,
+            records: 1,
+        }
+    }
+
+    fn record() -> Record {
+        Record {
+            op: Op::Zstd,
+            file: 0,
+            base: 0,
+            len: 64,
+            offset: 0,
+            window: 100,
+            patch: 20,
+        }
+    }
+
+    #[test]
+    fn issue13_records_and_headers_round_trip() {
+        let h = header();
+        assert_eq!(Header::from_json(&h.to_json()).expect("a header"), h);
+        let r = record();
+        assert_eq!(Record::parse(&r.to_bytes(), 0, &h).expect("a record"), r);
+    }
+
+    #[test]
+    fn issue13_records_outside_their_header_are_refused_by_name() {
+        let h = header();
+        let refused = |edit: &dyn Fn(&mut [u8; RECORD_BYTES])| {
+            let mut b = record().to_bytes();
+            edit(&mut b);
+            Record::parse(&b, 3, &h).expect_err("refused").to_string()
+        };
+        assert_eq!(refused(&|b| b[0] = 7), "delta record 3 has an unknown op 7");
+        assert_eq!(refused(&|b| b[3] = 1), "delta record 3 has a nonzero reserved byte");
+        assert_eq!(
+            refused(&|b| b[2] = 1),
+            "delta record 3 names base file 1, but the header lists 1"
+        );
+        assert_eq!(
+            refused(&|b| b[4..8].copy_from_slice(&65u32.to_le_bytes())),
+            "delta record 3 rebuilds 65 bytes; chunks are 1 to 64 bytes"
+        );
+        assert_eq!(
+            refused(&|b| b[16..20].copy_from_slice(&129u32.to_le_bytes())),
+            format!(
+                "delta record 3 asks for a window of 129 bytes and a patch of 20 bytes, over 128 \
+                 and {PATCH_BYTES}"
+            )
+        );
+        assert_eq!(
+            refused(&|b| b[0] = 1),
+            "delta record 3 is a copy with a window or patch"
+        );
+        assert_eq!(
+            refused(&|b| b[20..24].copy_from_slice(&0u32.to_le_bytes())),
+            "delta record 3 is a zstd record without a patch"
+        );
+    }
+
+    #[test]
+    fn issue13_headers_of_another_format_or_without_a_base_are_refused() {
+        let mut h = header();
+        h.format = 2;
+        assert_eq!(
+            Header::from_json(&h.to_json()).expect_err("format 2").to_string(),
+            "delta format 2 is not supported (this reader knows format 1); use the full bundle"
+        );
+        let mut h = header();
+        h.base.clear();
+        assert_eq!(
+            Header::from_json(&h.to_json()).expect_err("no base").to_string(),
+            "delta header lists 0 base files; 1 to 8 are allowed"
+        );
+        let unknown = br#"{"format":1,"extra":0}"#;
+        assert!(
+            Header::from_json(unknown)
+                .expect_err("unknown field")
+                .to_string()
+                .starts_with("delta header is not valid: unknown field `extra`")
+        );
+    }
+
+    #[test]
+    fn base_ids_follow_the_documented_lines() {
+        // FORMAT.md: SHA-256 of the domain line and one "<sha256> <size> <path>" line per file.
+        let h = header();
+        let text = format!(
+            "ampoule-delta-base-v1\n{} 100 model.bin\n",
+            Digest::of(b"base")
+        );
+        assert_eq!(h.base_id(), Digest::of(text.as_bytes()));
+    }
+}
