@@ -84,6 +84,20 @@ is refused. Documented keys and their types: preprocess.input_size, .mean, .std,
 data.snapshot and notes (strings). The object is at most 16 KiB as compact JSON.")]
     Pack(PackArgs),
 
+    /// Make a delta: the patches that rebuild a newer bundle's files from an older one's,
+    /// carrying the newer bundle's manifest and signatures as they are (no key needed).
+    #[command(after_help = "Examples:
+  ampoule delta --from species-1.0.0.ampoule species-1.1.0.ampoule \\
+      -o species-1.0.0-to-1.1.0.ampoule-delta
+  ampoule inspect species-1.0.0-to-1.1.0.ampoule-delta
+  ampoule delta --from species-1.0.0.ampoule species-1.1.0.ampoule \\
+      -o species-1.0.0-to-1.1.0.ampoule-delta --json
+
+A device on 1.0.0 rebuilds 1.1.0's files from its own and checks them against 1.1.0's
+signed manifest. The delta names its base by the SHA-256 of the base's files, never by
+version. Applying one takes about 17 MiB of memory whatever the model's size.")]
+    Delta(DeltaArgs),
+
     /// Add a signature to a bundle (signing twice with one key changes nothing).
     #[command(after_help = "Examples:
   ampoule sign species-1.1.0.ampoule --key second-signer.secret.pem
@@ -364,6 +378,18 @@ pub struct PackArgs {
     pub meta_file: Vec<PathBuf>,
     /// The bundle file to write; it must not exist yet.
     #[arg(short = 'o', long = "out", value_name = "OUT.ampoule")]
+    pub out: PathBuf,
+}
+
+#[derive(Args, Debug)]
+pub struct DeltaArgs {
+    /// The older bundle, the base devices hold.
+    #[arg(long, value_name = "OLD.ampoule")]
+    pub from: PathBuf,
+    /// The newer bundle, the release the delta rebuilds.
+    pub bundle: PathBuf,
+    /// The delta file to write; it must not exist yet.
+    #[arg(short = 'o', long = "out", value_name = "OUT.ampoule-delta")]
     pub out: PathBuf,
 }
 

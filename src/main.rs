@@ -46,6 +46,7 @@ fn main() -> ExitCode {
         Command::Keygen(args) => cmd::keygen::run(args, &out),
         Command::KeyId(args) => cmd::keyid::run(args, &out),
         Command::Pack(args) => cmd::pack::run(args, &out),
+        Command::Delta(args) => cmd::delta::run(args, &out),
         Command::Sign(args) => cmd::sign::run(args, &out),
         Command::Verify(args) => cmd::verify::run(args, &out),
         Command::Inspect(args) => cmd::inspect::run(args, &out),

@@ -18,6 +18,9 @@ use crate::failure::bundle_error;
 use crate::output::{Output, shown};
 
 pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
+    if crate::cmd::delta::is_delta(&args.bundle) {
+        return crate::cmd::delta::inspect(&args.bundle, out);
+    }
     let (keys, threshold) = match &args.trust_set {
         Some(path) => load_trust_set(path)?.keys_for(DocumentKind::Bundle),
         None => (load_trust(&args.trust)?, 1),

@@ -2,6 +2,7 @@
 //! work through `ampoule_verify` and `pack`, and reports through `Output`.
 
 pub mod completions;
+pub mod delta;
 pub mod demo;
 pub mod diff;
 pub mod external;

@@ -3,6 +3,7 @@
 //! these; nothing here reads command-line arguments or prints.
 
 pub mod atomic;
+pub mod delta;
 pub mod files;
 pub mod keyfile;
 pub mod ledger_audit;

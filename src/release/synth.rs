@@ -62,6 +62,12 @@ impl SplitMix64 {
 /// multiple of four ends with the first bytes of one last weight.
 pub fn write_weights(path: &Path, bytes: u64, seed: u64) -> io::Result<()> {
     let mut out = BufWriter::with_capacity(1024 * 1024, File::create(path)?);
+    weights_to(&mut out, bytes, seed)?;
+    out.into_inner().map_err(|e| e.into_error())?.sync_all()
+}
+
+/// [`write_weights`]'s bytes, written to `out`.
+fn weights_to<W: Write>(out: &mut W, bytes: u64, seed: u64) -> io::Result<()> {
     let mut rng = SplitMix64(seed);
     let mut left = bytes;
     let mut index = 0usize;
@@ -78,6 +84,36 @@ pub fn write_weights(path: &Path, bytes: u64, seed: u64) -> io::Result<()> {
         out.write_all(&block[..n])?;
         left -= n as u64;
     }
+    Ok(())
+}
+
+/// Features into the invented classifier head of [`write_head_model`].
+pub const HEAD_FEATURES: u64 = 2048;
+/// The weights stored after the head in [`write_head_model`]'s file.
+pub const HEAD_TAIL_BYTES: u64 = 256 * 1024;
+
+/// The bytes of a classifier head of [`HEAD_FEATURES`] x `classes` float32 weights and its
+/// bias: 49,176 for 6 classes.
+pub fn head_bytes(classes: u64) -> u64 {
+    (HEAD_FEATURES * classes + classes) * 4
+}
+
+/// The invented model of issue 13, for deltas: the weights of a backbone, then a classifier
+/// head of [`HEAD_FEATURES`] x `classes` with its bias, then [`HEAD_TAIL_BYTES`] of other
+/// weights, which move when the head changes size. `bytes` is the file's size at 6 classes
+/// (the backbone's size follows from it). Retraining the head is another `head_seed`; one
+/// more class is `classes` 7, which makes the file 8,196 bytes longer.
+///
+/// # Panics
+/// If `bytes` cannot hold a 6-class head and the tail.
+pub fn write_head_model(path: &Path, bytes: u64, classes: u64, head_seed: u64) -> io::Result<()> {
+    let backbone = bytes
+        .checked_sub(head_bytes(6) + HEAD_TAIL_BYTES)
+        .expect("the model holds a head and a tail");
+    let mut out = BufWriter::with_capacity(1024 * 1024, File::create(path)?);
+    weights_to(&mut out, backbone, 1)?;
+    weights_to(&mut out, head_bytes(classes), head_seed)?;
+    weights_to(&mut out, HEAD_TAIL_BYTES, 3)?;
     out.into_inner().map_err(|e| e.into_error())?.sync_all()
 }
 

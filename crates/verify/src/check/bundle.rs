@@ -288,6 +288,23 @@ impl Verifier {
         Manifest::from_json(manifest)
     }
 
+    /// Checks a manifest and signatures a delta carries (issue 13) as
+    /// [`Verifier::verify_file`] checks a bundle's, before any patch byte is read: the
+    /// signatures by trusted keys, then the app's whole policy (name, newer version, app
+    /// version, compatibility, unpacked size).
+    pub(crate) fn check_carried(
+        &self,
+        manifest: &[u8],
+        signatures: &[u8],
+    ) -> Result<(Manifest, SignatureReport)> {
+        let signatures = Signatures::from_json(signatures)?;
+        let report = SignedDocument::<kind::Manifest>::new(manifest, &signatures.signatures)?
+            .check(&self.signers, "delta's manifest")?;
+        let manifest = Manifest::from_json(manifest)?;
+        self.check_policy(&manifest, true)?;
+        Ok((manifest, report))
+    }
+
     /// Re-checks a manifest and its signatures kept in the on-device store: the same
     /// signature and policy checks as [`Verifier::verify_file`], except the installed-version
     /// rule, which the store enforces itself from its own state.

@@ -32,17 +32,24 @@ pub struct Layout {
     pub file_len: u64,
 }
 
-/// Reads a small entry's data after its header, refusing it if it is over `cap`.
-fn read_small<R: Read>(reader: &mut R, name: &str, size: u64, cap: u64) -> Result<Vec<u8>> {
+/// Reads a small entry's data after its header, refusing it if it is over `cap`. `archive`
+/// names the archive in messages ("bundle", "delta").
+pub(crate) fn read_small<R: Read>(
+    reader: &mut R,
+    archive: &str,
+    name: &str,
+    size: u64,
+    cap: u64,
+) -> Result<Vec<u8>> {
     if size > cap {
         return Err(Error::new(
             ErrorKind::TooLarge,
-            format!("{ARCHIVE} entry '{name}' is {size} bytes, over the limit of {cap} bytes"),
+            format!("{archive} entry '{name}' is {size} bytes, over the limit of {cap} bytes"),
         ));
     }
     let mut data = vec![0u8; size as usize];
-    tar::read_exact_or_truncated(reader, &mut data, || format!("{ARCHIVE} entry '{name}'"))?;
-    tar::read_padding(reader, size, ARCHIVE, name)?;
+    tar::read_exact_or_truncated(reader, &mut data, || format!("{archive} entry '{name}'"))?;
+    tar::read_padding(reader, size, archive, name)?;
     Ok(data)
 }
 
@@ -77,9 +84,9 @@ impl Head {
 pub fn read_head<R: Read>(reader: &mut R) -> Result<Head> {
     let order = &entry::OUTER;
     let size = tar::expect_entry(reader, ARCHIVE, order, 0)?;
-    let manifest = read_small(reader, entry::MANIFEST, size, limit::MANIFEST_BYTES)?;
+    let manifest = read_small(reader, ARCHIVE, entry::MANIFEST, size, limit::MANIFEST_BYTES)?;
     let size = tar::expect_entry(reader, ARCHIVE, order, 1)?;
-    let signatures = read_small(reader, entry::SIGNATURES, size, limit::SIGNATURES_BYTES)?;
+    let signatures = read_small(reader, ARCHIVE, entry::SIGNATURES, size, limit::SIGNATURES_BYTES)?;
     let payload_len = tar::expect_entry(reader, ARCHIVE, order, 2)?;
     let payload_offset = payload_offset(manifest.len() as u64, signatures.len() as u64);
     Ok(Head {

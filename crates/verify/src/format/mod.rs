@@ -8,6 +8,7 @@
 // The documents of the format, each read strictly and within its caps. Nothing here checks a
 // signature against trust or decides anything: that is `check/`, the layer above.
 pub mod bundle;
+pub mod delta_file;
 pub mod digest;
 pub mod keys;
 pub mod labels;
@@ -104,6 +105,46 @@ pub mod limit {
     pub const METADATA_DEPTH: usize = 8;
     /// The longest segment of a metadata key (`[a-z0-9_]`, at least one byte), in bytes.
     pub const METADATA_KEY_BYTES: usize = 64;
+}
+
+/// Deltas (issue 13): a way to send a full release to a device that holds an older one. A
+/// delta carries the release's manifest and signatures exactly as the bundle signers made
+/// them, and patches that rebuild the release's files from the base release's files, chunk
+/// by chunk, so that applying one needs a fixed amount of memory whatever the model's size.
+/// The layout and the patch records are in [`crate::format::delta_file`].
+pub mod delta {
+    use super::entry;
+
+    /// The file extension of a delta (without the dot).
+    pub const EXTENSION: &str = "ampoule-delta";
+    /// The format version in the header entry; a reader refuses any other value.
+    pub const FORMAT_VERSION: u32 = 1;
+    /// The first entry: the delta's own header (JSON), which names the base by its files.
+    pub const HEADER: &str = "delta.json";
+    /// The last entry: the patch records, one per chunk of the rebuilt files.
+    pub const PATCHES: &str = "patches.bin";
+    /// All outer entries in order: header, the carried manifest and signatures, patches.
+    pub const OUTER: [&str; 4] = [HEADER, entry::MANIFEST, entry::SIGNATURES, PATCHES];
+    /// The largest header entry, in bytes.
+    pub const HEADER_BYTES: u64 = 16 * 1024;
+    /// The largest chunk of a rebuilt file one record may produce: 4 MiB.
+    pub const CHUNK_BYTES: u32 = 4 * 1024 * 1024;
+    /// The largest window of a base file one record may refer to: 8 MiB. With the chunk, the
+    /// record's compressed bytes and the decoder, applying a delta needs about 17 MiB
+    /// whatever the model's size.
+    pub const WINDOW_BYTES: u32 = 8 * 1024 * 1024;
+    /// The largest compressed patch of one record: a chunk that does not compress at all,
+    /// plus zstd's frame overhead (well under 1/128 of the chunk, RFC 8878 section 3.1.1.2).
+    pub const PATCH_BYTES: u32 = CHUNK_BYTES + CHUNK_BYTES / 128;
+    /// The zstd window a patch frame may declare, as a power of two: 2^24 bytes covers the
+    /// reference window and the chunk together. Frames are decoded whole into a buffer of the
+    /// chunk's size, so this bounds what the frame may ask for, not memory the decoder takes.
+    pub const WINDOW_LOG: u32 = 24;
+    /// The size of one record's fixed header in [`PATCHES`].
+    pub const RECORD_BYTES: usize = 24;
+    /// The domain string hashed ahead of the base's file list to name the base by one digest
+    /// (the `base` of a delta in a feed or ledger entry).
+    pub const BASE_DOMAIN: &[u8] = b"ampoule-delta-base-v1\n";
 }
 
 /// The domain string hashed ahead of a device id and a bundle digest to place a device in or

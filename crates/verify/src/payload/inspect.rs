@@ -62,6 +62,25 @@ impl Unverified {
         )
     }
 
+    /// Checks the payload digest, then unpacks the files into the new directory `dest` with
+    /// every per-file check (sizes, digests, the inner tar's rules): for the release side's
+    /// delta maker, which reads the files of two bundles it was given. As with
+    /// [`Unverified::dangerous_check_contents`], no signature vouched for these bytes.
+    pub fn dangerous_unpack(&mut self, dest: &std::path::Path) -> Result<()> {
+        self.check_payload()?;
+        crate::payload::unpack::unpack_to(
+            &crate::payload::unpack::Source {
+                file: &self.file,
+                payload_offset: self.layout.payload_offset,
+                manifest: &self.manifest,
+                progress: None,
+            },
+            dest,
+            &|_, _| Ok(()),
+        )?;
+        Ok(())
+    }
+
     /// The open bundle file (for copying its payload into a rewritten bundle).
     pub fn file_mut(&mut self) -> &mut File {
         &mut self.file

@@ -2,5 +2,6 @@
 //! decoder and the inner tar reader here, and every file is checked against its digest as it
 //! streams out.
 
+pub mod delta;
 pub mod inspect;
 pub mod unpack;
