@@ -239,6 +239,12 @@ impl Case<'_> {
         self.clear(name);
         std::fs::write(self.at(name), bytes).expect("plant a file");
     }
+    /// Writes the intruder's signed manifest and signatures into the directory `dir`.
+    fn intruders_release(&self, dir: &str) {
+        for entry in ["manifest.json", "signatures.json"] {
+            self.write(&format!("{dir}/{entry}"), self.s.intruders(entry));
+        }
+    }
     /// The one release directory in `releases/` (1.0.0's).
     fn release_dir(&self) -> String {
         let names: Vec<String> = std::fs::read_dir(self.at("releases"))
@@ -609,15 +615,9 @@ fn plants() -> Vec<Plant> {
             kind: "forged",
             plant: |c| {
                 // Beside the real release, a release directory of the intruder's bundle.
-                let fake = c.at("releases/trailcam-species-9.0.0-000000000000");
-                std::fs::create_dir(&fake).expect("mkdir");
-                std::fs::write(fake.join("manifest.json"), c.s.intruders("manifest.json"))
-                    .expect("manifest");
-                std::fs::write(
-                    fake.join("signatures.json"),
-                    c.s.intruders("signatures.json"),
-                )
-                .expect("signatures");
+                std::fs::create_dir(c.at("releases/trailcam-species-9.0.0-000000000000"))
+                    .expect("mkdir");
+                c.intruders_release("releases/trailcam-species-9.0.0-000000000000");
             },
             then: Installs,
         },
@@ -645,15 +645,7 @@ fn plants() -> Vec<Plant> {
             row: "`releases/<name>-<version>-<hex>/`",
             kind: "forged",
             plant: |c| {
-                let release = c.release_dir();
-                c.write(
-                    &format!("{release}/manifest.json"),
-                    c.s.intruders("manifest.json"),
-                );
-                c.write(
-                    &format!("{release}/signatures.json"),
-                    c.s.intruders("signatures.json"),
-                );
+                c.intruders_release(&c.release_dir());
             },
             then: Installs,
         },
@@ -674,13 +666,8 @@ fn plants() -> Vec<Plant> {
             kind: "forged",
             plant: |c| {
                 // A staged copy of the intruder's release, as if an install were under way.
-                let staging = c.at("releases/.staging-1-1");
-                std::fs::create_dir(&staging).expect("mkdir");
-                std::fs::write(
-                    staging.join("manifest.json"),
-                    c.s.intruders("manifest.json"),
-                )
-                .expect("manifest");
+                std::fs::create_dir(c.at("releases/.staging-1-1")).expect("mkdir");
+                c.intruders_release("releases/.staging-1-1");
             },
             then: Installs,
         },
