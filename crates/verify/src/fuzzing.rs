@@ -669,7 +669,9 @@ fn store_dir() -> PathBuf {
 /// Removes this process's scratch files (the bundle file and the stores), for tests that run
 /// the entry points in a process that goes on.
 pub fn clean_up() {
-    for name in ["bundle", "store", "device", "offline", "chain", "outside"] {
+    for name in [
+        "bundle", "store", "device", "offline", "chain", "outside", "delta",
+    ] {
         let path = scratch(name);
         let _ = fs::remove_dir_all(&path);
         let _ = fs::remove_file(&path);
@@ -880,6 +882,102 @@ pub fn offline(data: &[u8]) {
         return;
     };
     let _ = device.install_offline(&file, now()).into_result();
+}
+
+/// `delta`: the bytes as a delta file (FORMAT.md, "Deltas"), applied to the seed bundle's
+/// files under the fuzz key's verifier: the outer layout and its caps, the header (its base
+/// list and the memory it asks for), the carried manifest and signatures (the fuzzer keeps a
+/// valid signature only where it leaves a seed's manifest whole), the base files' digests, each
+/// record against the header's caps, the zstd frames against their base windows, and every
+/// rebuilt file against the manifest. Whatever fails, nothing is left in the output directory.
+pub fn delta(data: &[u8]) {
+    let (model, labels) = seed_files();
+    let mut base = [std::io::Cursor::new(model), std::io::Cursor::new(labels)];
+    let dir = scratch("delta");
+    let _ = fs::remove_dir_all(&dir);
+    fs::create_dir_all(&dir).expect("the fuzzer can make its scratch directory");
+    if crate::payload::delta::apply(&verifier(), data, &mut base, &dir).is_err() {
+        assert!(
+            fs::read_dir(&dir)
+                .expect("the scratch directory")
+                .next()
+                .is_none(),
+            "a failed delta left files behind"
+        );
+    }
+}
+
+/// The seed delta: 1.0.1 from the seed bundle's files, its model copied from the base and its
+/// labels (the same six, in reverse order) a zstd frame without a base window.
+fn seed_delta() -> Vec<u8> {
+    use crate::format::delta_file::{self, Header, Op, Record};
+    let (model, labels) = seed_files();
+    let reversed: String = LABELS.lines().rev().map(|l| format!("{l}\n")).collect();
+    let patch = zstd::bulk::compress(reversed.as_bytes(), 3).expect("zstd compresses in memory");
+    let mut manifest = template_manifest(
+        b"",
+        [
+            (model.len() as u64, Digest::of(&model)),
+            (reversed.len() as u64, Digest::of(reversed.as_bytes())),
+        ],
+        6,
+    );
+    manifest.version = Version::new(1, 0, 1);
+    let base = template_manifest(b"", seed_entries(), 6).files;
+    let records = [
+        Record {
+            op: Op::Copy,
+            file: 0,
+            base: 0,
+            len: model.len() as u32,
+            offset: 0,
+            window: 0,
+            patch: 0,
+        },
+        Record {
+            op: Op::Zstd,
+            file: 1,
+            base: 1,
+            len: reversed.len() as u32,
+            offset: 0,
+            window: labels.len() as u32,
+            patch: patch.len() as u32,
+        },
+    ];
+    let header = Header {
+        format: crate::format::delta::FORMAT_VERSION,
+        name: NAME.into(),
+        version: manifest.version.clone(),
+        base,
+        chunk_bytes: 4096,
+        window_bytes: 4096,
+        records: records.len() as u64,
+    };
+    let mut patches = Vec::new();
+    for record in &records {
+        patches.extend_from_slice(&record.to_bytes());
+    }
+    patches.extend_from_slice(&patch);
+    let manifest = manifest.to_json();
+    let signatures = Signatures {
+        signatures: vec![sign(context::MANIFEST, &manifest)],
+    }
+    .to_json();
+    let mut out = Vec::new();
+    delta_file::write_head(
+        &mut out,
+        MADE,
+        &header,
+        &manifest,
+        &signatures,
+        patches.len() as u64,
+    )
+    .and_then(|()| {
+        out.extend_from_slice(&patches);
+        delta_file::write_tail(&mut out, patches.len() as u64)
+    })
+    .expect("writing to memory cannot fail");
+    out
 }
 
 fn app() -> App {
@@ -1230,6 +1328,11 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
             joined(&[&state, LINK, LINK, LINK, LINK, LINK, LINK]),
         ),
         (
+            "delta",
+            "labels-reordered.ampoule-delta".into(),
+            seed_delta(),
+        ),
+        (
             "offline",
             "release.ampoule-offline".into(),
             offline_file(&envelope(&full_feed), &bundle),
@@ -1297,10 +1400,38 @@ pub fn run(target: &str, data: &[u8]) -> bool {
         "ledger_entry" => ledger_entry,
         "store" => store,
         "offline" => offline,
+        "delta" => delta,
         "onnx" => onnx,
         "safetensors" => safetensors,
         _ => return false,
     };
     entry(data);
     true
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The delta seed stands for a valid delta: it rebuilds its release from the seed files,
+    /// so a campaign starts past every check.
+    #[test]
+    fn the_delta_seed_rebuilds_its_release() {
+        let (model, labels) = seed_files();
+        let dir = tempfile::tempdir().expect("temp dir");
+        let mut base = [
+            std::io::Cursor::new(model.clone()),
+            std::io::Cursor::new(labels),
+        ];
+        crate::payload::delta::apply(&verifier(), &seed_delta()[..], &mut base, dir.path())
+            .expect("the seed delta applies");
+        assert_eq!(
+            fs::read(dir.path().join("model.onnx")).expect("model"),
+            model
+        );
+        assert_eq!(
+            fs::read_to_string(dir.path().join(entry::LABELS)).expect("labels"),
+            "empty frame\nhare\nbadger\nwild boar\nroe deer\nfox\n"
+        );
+    }
 }
