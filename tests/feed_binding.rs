@@ -539,6 +539,26 @@ fn publish_on_runner(d: &Path, bundle: &str, extra: &[&str]) -> std::process::Ou
     run(d, &args)
 }
 
+/// Whether the `openssl` command (the outside signer's stand-in) is here; says so when not.
+fn openssl_available() -> bool {
+    let found = std::process::Command::new("openssl")
+        .arg("version")
+        .output()
+        .is_ok_and(|o| o.status.success());
+    if !found {
+        eprintln!("skipped: openssl is not installed");
+    }
+    found
+}
+
+fn assert_published(out: &std::process::Output) {
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
+
 fn publish_with_signer(d: &Path, bundle: &str, signer: &str) -> std::process::Output {
     publish_on_runner(
         d,
@@ -556,22 +576,13 @@ fn publish_with_signer(d: &Path, bundle: &str, signer: &str) -> std::process::Ou
 fn issue10_tree_heads_signed_outside_the_runner() {
     let dir = three_keys();
     let d = dir.path();
-    if std::process::Command::new("openssl")
-        .arg("version")
-        .output()
-        .is_err()
-    {
-        eprintln!("skipped: openssl is not installed");
+    if !openssl_available() {
         return;
     }
     let signer = vault(d, "heads.pem");
     let v1 = pack(d, "1.0.0", 0, "k.pem");
     let out = publish_with_signer(d, &v1, &signer);
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    assert_published(&out);
     // Feed role for the runner, tree heads from elsewhere: nothing to warn about.
     assert_eq!(String::from_utf8_lossy(&out.stderr), "");
     let shown = std::fs::read_to_string(d.join("vault/shown.log")).expect("log");
@@ -624,11 +635,7 @@ fn issue10_tree_heads_signed_outside_the_runner() {
     );
     assert_eq!(feed_of(&feed_file(d, "stable")).sequence, 1);
     let out = publish_with_signer(d, &v2, &signer);
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    assert_published(&out);
     assert_eq!(
         installed(&update(&camera, d, feed_file(d, "stable"))),
         Version::new(1, 1, 0)
@@ -641,12 +648,7 @@ fn issue10_tree_heads_signed_outside_the_runner() {
 fn issue10_two_outside_tree_head_signers_meet_a_threshold_of_two() {
     let dir = three_keys();
     let d = dir.path();
-    if std::process::Command::new("openssl")
-        .arg("version")
-        .output()
-        .is_err()
-    {
-        eprintln!("skipped: openssl is not installed");
+    if !openssl_available() {
         return;
     }
     ok(
@@ -722,11 +724,7 @@ fn issue10_two_outside_tree_head_signers_meet_a_threshold_of_two() {
     // One outside signer: the tree takes it (pinned devices' thresholds are theirs to
     // know), but this device needs two signatures on the tree head.
     let out = publish(&v1, &[(&first, "heads.pub")]);
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    assert_published(&out);
     let report = update(&camera, d, feed_file(d, "stable"));
     assert!(
         matches!(&report.outcome, Outcome::Refused(e) if e.kind() == ErrorKind::Signature),
@@ -734,11 +732,7 @@ fn issue10_two_outside_tree_head_signers_meet_a_threshold_of_two() {
     );
     let v2 = pack(d, "1.1.0", 1, "k.pem");
     let out = publish(&v2, &[(&first, "heads.pub"), (&second, "heads2.pub")]);
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    assert_published(&out);
     assert_eq!(
         installed(&update(&camera, d, feed_file(d, "stable"))),
         Version::new(1, 1, 0)

@@ -34,31 +34,8 @@ fn pack_with(
     out: &str,
 ) -> std::process::Output {
     let model = format!("model-{variant}.bin");
-    let bytes: Vec<u8> = (0..40_000u32)
-        .map(|i| (i.wrapping_mul(31) as u8) ^ variant)
-        .collect();
-    std::fs::write(d.join(&model), bytes).expect("model");
-    let mut args = vec![
-        "pack",
-        "--model",
-        &model,
-        "--labels",
-        "labels.txt",
-        "--name",
-        "trailcam-species",
-        "--version",
-        version,
-        "--requires-app",
-        ">=2.0.0, <3.0.0",
-        "--created",
-        "2026-12-01T08:00:00Z",
-        "--key",
-        "k.pem",
-        "-o",
-        out,
-    ];
-    args.extend_from_slice(extra);
-    run(d, &args)
+    write_model(d, &model, variant);
+    pack_model_with(d, &model, version, "k.pem", out, extra)
 }
 
 fn pack_ok(d: &Path, version: &str, variant: u8, extra: &[&str], out: &str) {

@@ -239,6 +239,18 @@ impl Case<'_> {
         self.clear(name);
         std::fs::write(self.at(name), bytes).expect("plant a file");
     }
+    /// Rewrites `state.json` after `change` edits it, as well-formed JSON.
+    fn edit_state(&self, change: impl FnOnce(&mut serde_json::Value)) {
+        let mut state: serde_json::Value =
+            serde_json::from_slice(&std::fs::read(self.at("state.json")).expect("state"))
+                .expect("json");
+        change(&mut state);
+        self.write(
+            "state.json",
+            serde_json::to_vec_pretty(&state).expect("json"),
+        );
+    }
+
     /// Writes the intruder's signed manifest and signatures into the directory `dir`.
     fn intruders_release(&self, dir: &str) {
         for entry in ["manifest.json", "signatures.json"] {
@@ -310,22 +322,17 @@ fn plants() -> Vec<Plant> {
             row: "`state.json`",
             kind: "forged",
             plant: |c| {
-                let mut state: serde_json::Value =
-                    serde_json::from_slice(&std::fs::read(c.at("state.json")).expect("state"))
-                        .expect("json");
-                state["highest_version"] = "999.0.0".into();
-                state["channels"]["stable"]["highest_version"] = "999.0.0".into();
-                state["channels"]["stable"]["highest_sequence"] = u64::MAX.into();
-                state["name"] = "someone-elses-line".into();
-                state["tree_head"] = serde_json::json!({
-                    "tree_size": 1_000_000,
-                    "root_hash": "ab".repeat(32),
-                    "time": 1_800_000_000u64,
+                c.edit_state(|state| {
+                    state["highest_version"] = "999.0.0".into();
+                    state["channels"]["stable"]["highest_version"] = "999.0.0".into();
+                    state["channels"]["stable"]["highest_sequence"] = u64::MAX.into();
+                    state["name"] = "someone-elses-line".into();
+                    state["tree_head"] = serde_json::json!({
+                        "tree_size": 1_000_000,
+                        "root_hash": "ab".repeat(32),
+                        "time": 1_800_000_000u64,
+                    });
                 });
-                c.write(
-                    "state.json",
-                    serde_json::to_vec_pretty(&state).expect("json"),
-                );
             },
             then: Installs,
         },
@@ -391,14 +398,7 @@ fn plants() -> Vec<Plant> {
                     "signatures": c.s.intruders("signatures.json"),
                 });
                 c.write("highest.json", kept.to_string());
-                let mut state: serde_json::Value =
-                    serde_json::from_slice(&std::fs::read(c.at("state.json")).expect("state"))
-                        .expect("json");
-                state["highest_version"] = "9.0.0".into();
-                c.write(
-                    "state.json",
-                    serde_json::to_vec_pretty(&state).expect("json"),
-                );
+                c.edit_state(|state| state["highest_version"] = "9.0.0".into());
             },
             then: Installs,
         },

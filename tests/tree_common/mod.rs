@@ -60,10 +60,7 @@ pub fn setup() -> tempfile::TempDir {
 /// Packs version `version` of the model line, with model bytes that depend on `variant`.
 pub fn pack(d: &Path, version: &str, variant: u8, key: &str) -> String {
     let model = format!("model-{version}-{variant}.bin");
-    let bytes: Vec<u8> = (0..40_000u32)
-        .map(|i| (i.wrapping_mul(31) as u8) ^ variant)
-        .collect();
-    std::fs::write(d.join(&model), bytes).expect("model");
+    write_model(d, &model, variant);
     let out = format!("species-{version}-{variant}.ampoule");
     pack_model(d, &model, version, key, &out);
     // The tests name key pairs X.pem and X.pub.
@@ -80,28 +77,52 @@ pub fn pack(d: &Path, version: &str, variant: u8, key: &str) -> String {
 /// Packs the model file `model` in `d` as `version` of the trail-camera line, signed with
 /// `key`, into `out`.
 pub fn pack_model(d: &Path, model: &str, version: &str, key: &str, out: &str) {
-    ok(
-        d,
-        &[
-            "pack",
-            "--model",
-            model,
-            "--labels",
-            "labels.txt",
-            "--name",
-            "trailcam-species",
-            "--version",
-            version,
-            "--requires-app",
-            ">=2.0.0, <3.0.0",
-            "--created",
-            "2026-12-01T08:00:00Z",
-            "--key",
-            key,
-            "-o",
-            out,
-        ],
+    let run = pack_model_with(d, model, version, key, out, &[]);
+    assert!(
+        run.status.success(),
+        "ampoule pack failed: {}",
+        String::from_utf8_lossy(&run.stderr)
     );
+}
+
+/// [`pack_model`] with `extra` arguments, whatever its outcome.
+pub fn pack_model_with(
+    d: &Path,
+    model: &str,
+    version: &str,
+    key: &str,
+    out: &str,
+    extra: &[&str],
+) -> Output {
+    let mut args = vec![
+        "pack",
+        "--model",
+        model,
+        "--labels",
+        "labels.txt",
+        "--name",
+        "trailcam-species",
+        "--version",
+        version,
+        "--requires-app",
+        ">=2.0.0, <3.0.0",
+        "--created",
+        "2026-12-01T08:00:00Z",
+        "--key",
+        key,
+        "-o",
+        out,
+    ];
+    args.extend_from_slice(extra);
+    run(d, &args)
+}
+
+/// Writes the invented model bytes of `variant` (40,000 bytes) to `d/name`.
+pub fn write_model(d: &Path, name: &str, variant: u8) {
+    let bytes: Vec<u8> = (0..40_000u32)
+        .map(|i| (i.wrapping_mul(31) as u8) ^ variant)
+        .collect();
+    std::fs::write(d.join(name), bytes).expect("model");
 }
 
 /// Packs `version` with a 300,000-byte model that does not compress (a linear congruential
