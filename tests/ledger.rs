@@ -12,7 +12,9 @@ use std::process::{Child, Command, Stdio};
 use ampoule::release::ledger_storage::Ledger;
 use ampoule_verify::feed::{Feed, SignedFeed};
 use ampoule_verify::fetch::{Update, Updater};
-use ampoule_verify::ledger::{Entry, Event, LedgerVerifier, Record, TrustSetEntry, step_path};
+use ampoule_verify::ledger::{
+    DeltaRef, Entry, Event, LedgerVerifier, Record, TrustSetEntry, step_path,
+};
 use ampoule_verify::merkle::{SignedTreeHead, TreeHead};
 use ampoule_verify::{Digest, ErrorKind, FeedVerifier, KeyId, Timestamp, Verifier};
 use ed25519_dalek::{Signer, SigningKey};
@@ -720,6 +722,24 @@ fn the_device_refuses_a_bundle_signed_but_never_published() {
                  size 1 (inclusion \
                  proof of leaf 0 in tree size 1 does not lead to root {})",
                 head_of(d).root_hash
+            ),
+        ),
+        (
+            // Issue 13: the real release with a delta the ledger never logged, so that a
+            // device downloads a file of the thief's choosing first.
+            forge(&|f| {
+                f.release.as_mut().expect("release").deltas = vec![DeltaRef {
+                    base: Digest::of(b"a base"),
+                    size: 1000,
+                    sha256: Digest::of(b"the thief's delta"),
+                }];
+            }),
+            format!(
+                "feed sequence 1 offers trailcam-species 1.0.0 (sha256 {}), but the ledger does \
+                 not log that as channel stable's current release: the ledger entry the feed \
+                 carries lists 0 delta(s) for this release, and the feed 1 that differ from \
+                 them; a feed offers only the deltas the ledger logged",
+                sha(d, &v1)
             ),
         ),
     ];

@@ -240,7 +240,7 @@ fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
     let signed =
         ampoule_verify::feed::SignedFeed::from_json(&std::fs::read(&feed_path).expect("feed"))
             .expect("feed");
-    let text = signed.feed.replacen("{\"format\":1,", "{\"format\":2,", 1);
+    let text = signed.feed.replacen("{\"format\":2,", "{\"format\":3,", 1);
     assert_ne!(text, signed.feed);
     let resigned = signed_feed_file(d, "k.pem", text);
     std::fs::write(&feed_path, resigned.to_json()).expect("newer feed");
@@ -250,7 +250,7 @@ fn issue9_a_feed_in_a_newer_format_needs_another_app_and_downloads_nothing() {
         match &report.outcome {
             Outcome::NeedsOtherApp { reason } => assert_eq!(
                 reason,
-                "the feed is in format 2, and this app's ampoule-verify reads format 1; update \
+                "the feed is in format 3, and this app's ampoule-verify reads format 2; update \
                  the app"
             ),
             other => panic!("expected needs_other_app, got {other:?}"),
@@ -397,12 +397,12 @@ fn issue9_review_another_channels_newer_format_feed_is_refused_not_needs_other_a
     let d = dir.path();
     let (device, v1) = camera_on_1_0_0(d);
     publish(d, &v1, "beta", "100");
-    // beta moved to feed format 2, and a hostile server serves it at stable's URL.
+    // beta moved to feed format 3, and a hostile server serves it at stable's URL.
     let beta = ampoule_verify::feed::SignedFeed::from_json(
         &std::fs::read(d.join("tree/feeds/beta.json")).expect("beta"),
     )
     .expect("beta feed");
-    let text = beta.feed.replacen("{\"format\":1,", "{\"format\":2,", 1);
+    let text = beta.feed.replacen("{\"format\":2,", "{\"format\":3,", 1);
     std::fs::write(
         d.join("tree/feeds/stable.json"),
         signed_feed_file(d, "k.pem", text).to_json(),
@@ -411,7 +411,7 @@ fn issue9_review_another_channels_newer_format_feed_is_refused_not_needs_other_a
     let (report, _) = drive_partly(&device, d, true);
     assert_eq!(
         refusal(&report).to_string(),
-        "feed format 2 is not supported (this reader knows format 1)"
+        "feed format 3 is not supported (this reader knows formats 1 to 2)"
     );
 }
 

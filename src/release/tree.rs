@@ -340,7 +340,7 @@ fn publish_refused(bundle: &Path, e: ampoule_verify::Error) -> anyhow::Error {
     ))
 }
 
-/// What a feed offering `release` logs in its ledger entry (no deltas yet: issue 13 adds them).
+/// What a feed offering `release` logs in its ledger entry: the release and its deltas.
 fn offered(release: &Release, manifest_digest: Digest) -> Offered {
     Offered {
         bundle: release.name.clone(),
@@ -348,7 +348,7 @@ fn offered(release: &Release, manifest_digest: Digest) -> Offered {
         bundle_digest: release.sha256,
         manifest_digest,
         rollout_percent: release.rollout_percent,
-        deltas: Vec::new(),
+        deltas: release.deltas.clone(),
     }
 }
 
@@ -638,6 +638,7 @@ impl Tree {
                 })
                 .collect(),
             rollout_percent,
+            deltas: Vec::new(),
         };
         release.validate()?;
         let sequence = self.next_sequence(channel, &history)?;

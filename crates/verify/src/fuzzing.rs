@@ -1144,6 +1144,7 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
         path: format!("../bundles/{}.ampoule", Digest::of(&bundle)),
         mirrors: vec!["https://mirror.example.invalid/bundles/b.ampoule".into()],
         rollout_percent: 100,
+        deltas: Vec::new(),
     };
     let feed = |sequence: u64, release: Option<Release>, ledger: Option<FeedLedger>| Feed {
         format: FEED_FORMAT_VERSION,

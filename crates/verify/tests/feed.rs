@@ -3,6 +3,7 @@
 
 use ampoule_verify::feed::{Feed, Release, SignedFeed, in_rollout, rollout_bucket};
 use ampoule_verify::format::{context, signed_bytes};
+use ampoule_verify::ledger::DeltaRef;
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{Digest, ErrorKind, FeedVerifier, KeyId, PublicKey, Timestamp, TrustedKeys};
 use ed25519_dalek::{Signer, SigningKey};
@@ -33,6 +34,7 @@ fn release() -> Release {
         path: format!("../bundles/{}.ampoule", Digest::of(b"bundle bytes")),
         mirrors: vec!["https://mirror.example.invalid/bundles/x.ampoule".into()],
         rollout_percent: 25,
+        deltas: Vec::new(),
     }
 }
 
@@ -360,8 +362,8 @@ fn field_values_are_checked() {
     type Change = Box<dyn Fn(&mut Feed)>;
     let cases: Vec<(Change, &str)> = vec![
         (
-            Box::new(|f| f.format = 2),
-            "feed format 2 is not supported (this reader knows format 1)",
+            Box::new(|f| f.format = 3),
+            "feed format 3 is not supported (this reader knows formats 1 to 2)",
         ),
         (
             Box::new(|f| f.expires = f.issued),
@@ -392,6 +394,101 @@ fn field_values_are_checked() {
         let (kind, message) = refusal(&verifier(), &signed(&f, &[&key(1)]), NOW);
         assert_eq!((kind, message.as_str()), (ErrorKind::Feed, expected));
     }
+}
+
+/// A delta the feed lists: `n` picks its base and file.
+fn delta(n: u8, size: u64) -> DeltaRef {
+    DeltaRef {
+        base: Digest::of(&[b'b', n]),
+        size,
+        sha256: Digest::of(&[b'd', n]),
+    }
+}
+
+#[test]
+fn issue13_a_feed_lists_deltas_within_their_rules() {
+    // Format 2 (FORMAT.md "Channel feeds"): up to 8 deltas, one per base, each smaller than
+    // the bundle (123,456 bytes here) and not the bundle itself.
+    let with = |deltas: Vec<DeltaRef>| {
+        let mut f = feed(3);
+        f.format = 2;
+        f.release.as_mut().expect("release").deltas = deltas;
+        f
+    };
+    let eight: Vec<DeltaRef> = (0..8).map(|n| delta(n, 1000)).collect();
+    let ok = verifier()
+        .verify(&signed(&with(eight.clone()), &[&key(1)]), ts(NOW))
+        .expect("eight deltas");
+    assert_eq!(ok.release().expect("release").deltas, eight);
+
+    let bundle = Digest::of(b"bundle bytes");
+    let mut own = delta(1, 1000);
+    own.sha256 = bundle;
+    let mut format_1 = with(vec![delta(1, 1000)]);
+    format_1.format = 1;
+    let nine: Vec<DeltaRef> = (0..9).map(|n| delta(n, 1000)).collect();
+    let cases: Vec<(Feed, String)> = vec![
+        (
+            format_1,
+            "feed format 1 lists deltas; deltas came with format 2".into(),
+        ),
+        (
+            with(nine),
+            "feed release lists 9 deltas, over the limit of 8".into(),
+        ),
+        (
+            with(vec![delta(1, 1000), delta(1, 2000)]),
+            format!(
+                "feed release lists two deltas for base {}; a base has at most one",
+                delta(1, 0).base
+            ),
+        ),
+        (
+            with(vec![delta(1, 123_456)]),
+            format!(
+                "feed release delta {} is 123456 bytes; a delta is at least 1 byte and smaller \
+                 than its bundle (123456 bytes)",
+                delta(1, 0).sha256
+            ),
+        ),
+        (
+            with(vec![delta(1, 0)]),
+            format!(
+                "feed release delta {} is 0 bytes; a delta is at least 1 byte and smaller than \
+                 its bundle (123456 bytes)",
+                delta(1, 0).sha256
+            ),
+        ),
+        (
+            with(vec![own]),
+            format!("feed release delta {bundle} has the bundle's own digest"),
+        ),
+    ];
+    for (f, expected) in cases {
+        let (kind, message) = refusal(&verifier(), &signed(&f, &[&key(1)]), NOW);
+        assert_eq!(
+            (kind, message.as_str()),
+            (ErrorKind::Feed, expected.as_str())
+        );
+    }
+}
+
+#[test]
+fn issue13_a_delta_is_fetched_beside_its_bundle() {
+    // RFC 3986 section 5.2: `<sha256>.ampoule-delta` resolved against the bundle's URL.
+    let r = release();
+    let d = delta(1, 1000);
+    assert_eq!(
+        r.delta_url(
+            "https://updates.example.invalid/reserve/feeds/stable.json",
+            &d
+        )
+        .expect("url"),
+        format!(
+            "https://updates.example.invalid/reserve/bundles/{}.ampoule-delta",
+            d.sha256
+        )
+    );
 }
 
 #[test]

@@ -33,6 +33,7 @@ fn feed(sequence: u64, version: Option<&str>, salt: &str) -> (Vec<u8>, String) {
         path: "../bundles/x.ampoule".into(),
         mirrors: vec![],
         rollout_percent: 100,
+        deltas: Vec::new(),
     });
     let text = Feed {
         format: 1,

@@ -39,12 +39,13 @@ use serde::{Deserialize, Deserializer, Serialize};
 
 use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, limit};
+use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, delta, limit};
 use crate::format::keys::{KeyId, TrustedKeys};
 use crate::check::bundle::{VerifiedBundle, Verifier};
 use crate::check::ledger_proof::{LedgerCheck, LedgerVerifier, Walk};
 use crate::format::ledger_entry::{
-    ENTRY_FORMAT, Entry, FeedLedger, LEGACY_ENTRY_FORMAT, Record, invalid as not_published,
+    DeltaRef, ENTRY_FORMAT, Entry, FeedLedger, LEGACY_ENTRY_FORMAT, MAX_DELTAS, Record,
+    invalid as not_published,
 };
 use crate::format::manifest::check_name;
 use crate::format::signature::{SignatureEntry, SignatureReport};
@@ -77,9 +78,15 @@ pub struct Release {
     pub mirrors: Vec<String>,
     /// The share of devices that should take this release, 0 to 100 percent.
     pub rollout_percent: u8,
+    /// Deltas that rebuild this release from an older release's files (feed format 2; a
+    /// format-1 feed has none), at most 8, each for another base. A delta is
+    /// only a way to send this release: each names its base by the digest of the base's files,
+    /// and its file is `<sha256>.ampoule-delta` beside the bundle at `path`.
+    #[serde(default)]
+    pub deltas: Vec<DeltaRef>,
 }
 
-/// A channel feed (format 1). Field order here is the order in the JSON.
+/// A channel feed (format 2; format 1 is format 2 without `deltas`). Field order here is the order in the JSON.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Feed {
@@ -243,7 +250,49 @@ impl Release {
                     bad.chars().take(120).collect::<String>().escape_debug()
                 )));
             }
-            Ok(())
+            self.validate_deltas()
+        }
+    }
+
+    /// The delta rules: at most [`MAX_DELTAS`], one per base, each smaller than the bundle
+    /// (a delta as large as the bundle saves a device nothing) and not the bundle itself.
+    fn validate_deltas(&self) -> Result<()> {
+        if self.deltas.len() > MAX_DELTAS {
+            return Err(invalid(format!(
+                "feed release lists {} deltas, over the limit of {MAX_DELTAS}",
+                self.deltas.len()
+            )));
+        }
+        for (i, delta) in self.deltas.iter().enumerate() {
+            if delta.size == 0 || delta.size >= self.size {
+                return Err(invalid(format!(
+                    "feed release delta {} is {} bytes; a delta is at least 1 byte and smaller \
+                     than its bundle ({} bytes)",
+                    delta.sha256, delta.size, self.size
+                )));
+            }
+            if delta.sha256 == self.sha256 {
+                return Err(invalid(format!(
+                    "feed release delta {} has the bundle's own digest",
+                    delta.sha256
+                )));
+            }
+            if self.deltas[..i].iter().any(|d| d.base == delta.base) {
+                return Err(invalid(format!(
+                    "feed release lists two deltas for base {}; a base has at most one",
+                    delta.base
+                )));
+            }
+        }
+        Ok(())
+    }
+
+    pub_for_release! {
+        /// The URL of one of this release's deltas: `<sha256>.ampoule-delta` resolved against
+        /// the bundle's URL (`path` resolved against the feed's URL).
+        fn delta_url(&self, feed_url: &str, delta: &DeltaRef) -> Result<String> {
+            let bundle = resolve(feed_url, &self.path)?;
+            resolve(&bundle, &format!("{}.{}", delta.sha256, delta::EXTENSION))
         }
     }
 
@@ -274,11 +323,17 @@ impl Feed {
 
     /// Checks every field against the format's rules.
     pub fn validate(&self) -> Result<()> {
-        if self.format != FEED_FORMAT_VERSION {
+        if !(1..=FEED_FORMAT_VERSION).contains(&self.format) {
             return Err(invalid(format!(
-                "feed format {} is not supported (this reader knows format {FEED_FORMAT_VERSION})",
+                "feed format {} is not supported (this reader knows formats 1 to \
+                 {FEED_FORMAT_VERSION})",
                 self.format
             )));
+        }
+        if self.format == 1 && self.release.as_ref().is_some_and(|r| !r.deltas.is_empty()) {
+            return Err(invalid(
+                "feed format 1 lists deltas; deltas came with format 2".into(),
+            ));
         }
         check_channel(&self.channel)?;
         if self.expires <= self.issued {
@@ -1017,6 +1072,16 @@ fn feed_entry(
             "the ledger entry the feed carries offers {}, not {}",
             describe(logged),
             describe(offered)
+        ));
+    }
+    let logged_deltas = entry.offered().map_or(&[][..], |o| &o.deltas[..]);
+    let offered_deltas = feed.release.as_ref().map_or(&[][..], |r| &r.deltas[..]);
+    if logged_deltas != offered_deltas {
+        return Err(format!(
+            "the ledger entry the feed carries lists {} delta(s) for this release, and the feed \
+             {} that differ from them; a feed offers only the deltas the ledger logged",
+            logged_deltas.len(),
+            offered_deltas.len()
         ));
     }
     let last = head.tree_size.checked_sub(1);

@@ -6,7 +6,7 @@
 //!
 //! One entry format binds each feed (format 2, issue 10): every feed carries the entry its own
 //! change appended, with the feed's sequence and what the feed offers afterwards (`offered`:
-//! release, rollout and the deltas reserved for delta updates, or `null`), as the last leaf of
+//! release, rollout and the deltas the feed lists, or `null`), as the last leaf of
 //! the tree head it carries. So a device can tell the channel's newest logged state from an
 //! older one that a thief of the feed key re-signs. Entries written before (format 1: no
 //! `format`, no `offered`) stay readable for auditors; devices refuse them in a feed.
@@ -43,8 +43,7 @@ pub const MAX_STEP_BYTES: u64 = 32 * 1024;
 /// daily releases, yet a bound on what a hostile server can make it fetch.
 pub const MAX_STEPS: usize = 20_000;
 
-/// The most deltas one ledger entry may list for its release (reserved for delta updates,
-/// issue 13; entries written today list none). A delta is a way to send a release to devices
+/// The most deltas one ledger entry (and one feed) may list for its release. A delta is a way to send a release to devices
 /// on one of a few recent bases, so a handful suffices.
 pub const MAX_DELTAS: usize = 8;
 
@@ -176,12 +175,12 @@ pub struct Offered {
     pub manifest_digest: Digest,
     /// The share of devices the feed offers it to, 0 to 100 percent.
     pub rollout_percent: u8,
-    /// Deltas that rebuild this release from an older one (reserved for delta updates: always
-    /// empty today, at most [`MAX_DELTAS`]).
+    /// Deltas that rebuild this release from an older one, exactly as the feed lists them (at
+    /// most [`MAX_DELTAS`]).
     pub deltas: Vec<DeltaRef>,
 }
 
-/// One delta of a release, as the ledger logs it (reserved for delta updates).
+/// One delta of a release, as the feed lists it and the ledger logs it.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct DeltaRef {

@@ -29,8 +29,9 @@ pub mod unicode;
 /// The format version written into every manifest; a reader refuses any other value.
 pub const FORMAT_VERSION: u32 = 1;
 
-/// The format version written into every feed; a reader refuses any other value.
-pub const FEED_FORMAT_VERSION: u32 = 1;
+/// The format version written into every feed. A reader also reads format 1, which is format
+/// 2 without the release's `deltas`, and refuses any other value.
+pub const FEED_FORMAT_VERSION: u32 = 2;
 
 /// The file extension of a bundle (without the dot).
 pub const BUNDLE_EXTENSION: &str = "ampoule";

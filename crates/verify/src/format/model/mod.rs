@@ -73,19 +73,21 @@ pub enum ModelFormat {
 }
 
 impl ModelFormat {
-    /// The format a file name declares by its extension (ASCII case ignored); `None` for an
-    /// opaque model.
-    ///
-    /// The extension decides, not the content: a file named `.onnx` that does not parse is an
-    /// error, never silently opaque, and a file of another name is never guessed at.
-    pub fn from_file_name(name: &str) -> Option<ModelFormat> {
-        let (_, extension) = name.rsplit_once('.')?;
-        if extension.eq_ignore_ascii_case("onnx") {
-            Some(ModelFormat::Onnx)
-        } else if extension.eq_ignore_ascii_case("safetensors") {
-            Some(ModelFormat::Safetensors)
-        } else {
-            None
+    pub_for_release! {
+        /// The format a file name declares by its extension (ASCII case ignored); `None` for an
+        /// opaque model.
+        ///
+        /// The extension decides, not the content: a file named `.onnx` that does not parse is an
+        /// error, never silently opaque, and a file of another name is never guessed at.
+        fn from_file_name(name: &str) -> Option<ModelFormat> {
+            let (_, extension) = name.rsplit_once('.')?;
+            if extension.eq_ignore_ascii_case("onnx") {
+                Some(ModelFormat::Onnx)
+            } else if extension.eq_ignore_ascii_case("safetensors") {
+                Some(ModelFormat::Safetensors)
+            } else {
+                None
+            }
         }
     }
 
