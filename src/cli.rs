@@ -115,8 +115,19 @@ version. Applying one takes about 17 MiB of memory whatever the model's size.")]
   ampoule verify species-1.1.0.ampoule --trust release.public.pem \\
       --app-version 2.3.0 --installed 1.0.0 --max-size 200000000 \\
       --extract ./model-1.1.0
+  ampoule verify species-1.1.0.ampoule --trust release.public.pem \\
+      --app-version 2.3.0 --policy camera-policy.json
 
-Exit code 1 means the bundle was refused; the message says which check failed.")]
+Exit code 1 means the bundle was refused; the message says which check failed.
+
+A policy document (FORMAT.md, \"The policy document\"; only policy_format is required),
+the same file the C interface reads:
+  {\"policy_format\": 1, \"bundle_name\": \"trailcam-species\",
+   \"model\": {\"inputs\": [{\"name\": \"image\", \"dtype\": \"float32\",
+                          \"shape\": \"[*, 3, 96, 96]\"}],
+             \"outputs\": [{\"name\": \"species\"}], \"classifier_output\": \"species\"},
+   \"labels\": {\"min_count\": 2, \"max_count\": 64, \"required\": [\"empty frame\"]},
+   \"metadata\": {\"preprocess.colour_order\": \"rgb\"}}")]
     Verify(VerifyArgs),
 
     /// Show what is inside a bundle: manifest, files, sizes, digests, signers.
@@ -242,7 +253,8 @@ object store serves the tree. It runs until interrupted (Ctrl-C).")]
       --json
   # No network: from a file made by 'ampoule offline'
   ampoule update --store ./camera --offline stable.ampoule-offline \\
-      --trust release.public.pem --app-version 2.3.0
+      --trust release.public.pem --app-version 2.3.0 \\
+      --policy camera-policy.json
 
 The channel is the feed file's name (feeds/<channel>.json), or the offline file's channel,
 unless --channel names it.
@@ -462,6 +474,11 @@ pub struct RequireMetaArgs {
     /// string (96, true, [0.5,0.5], '"96"'), and a plain string otherwise (rgb).
     #[arg(long = "require-meta", value_name = "KEY=VALUE")]
     pub require_meta: Vec<String>,
+    /// The app's policy document (JSON; see `ampoule verify --help` and FORMAT.md): what the
+    /// app's code expects of a model and its labels, the bundle name it runs and its size
+    /// limits. --name and --max-size, when given too, win over the document's.
+    #[arg(long, value_name = "POLICY.json", conflicts_with = "require_meta")]
+    pub policy: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]

@@ -25,6 +25,7 @@ pub mod withdraw;
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::format::trust_set;
+use ampoule_verify::model::PolicyDocument;
 use ampoule_verify::{CompatibilityPolicy, Timestamp, TrustSet, TrustSetFile, TrustedKeys};
 use anyhow::{Context, Result};
 use semver::Version;
@@ -141,6 +142,30 @@ pub fn metadata_policy(args: &RequireMetaArgs) -> Result<Option<CompatibilityPol
         policy = policy.require_metadata(key, value);
     }
     Ok(Some(policy.build().map_err(usage)?))
+}
+
+/// The bytes of the app's policy document from `--policy FILE`, read within the document's
+/// cap; `None` without `--policy`.
+pub fn policy_document_bytes(args: &RequireMetaArgs) -> Result<Option<Vec<u8>>> {
+    let Some(path) = &args.policy else {
+        return Ok(None);
+    };
+    let max = ampoule_verify::format::policy_document::BYTES as u64;
+    crate::release::files::read_bounded(path, max, "a policy document")
+        .map(Some)
+        .map_err(usage)
+}
+
+/// The app's policy document from `--policy FILE`, read and checked; a refused document is a
+/// usage error (exit 2) that names the file and the field.
+pub fn policy_document(args: &RequireMetaArgs) -> Result<Option<PolicyDocument>> {
+    let (Some(path), Some(bytes)) = (&args.policy, policy_document_bytes(args)?) else {
+        return Ok(None);
+    };
+    PolicyDocument::parse(&bytes)
+        .map(Some)
+        .with_context(|| format!("--policy {}", path.display()))
+        .map_err(usage)
 }
 
 /// The path shown for a file in messages.

@@ -69,6 +69,16 @@ pub fn run(args: UpdateArgs, out: &Output) -> Result<()> {
     if let Some(id) = &args.device_id {
         app = app.device_id(id.clone())?;
     }
+    // The policy document first, so that --name and --max-size win over it.
+    if let (Some(path), Some(document)) = (
+        &args.require_meta.policy,
+        crate::cmd::policy_document_bytes(&args.require_meta)?,
+    ) {
+        app = app
+            .policy_document(&document)
+            .with_context(|| format!("--policy {}", path.display()))
+            .map_err(crate::failure::usage)?;
+    }
     if let Some(name) = &args.name {
         app = app.bundle_name(name.clone())?;
     }

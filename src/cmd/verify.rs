@@ -7,7 +7,10 @@ use anyhow::Result;
 use serde_json::json;
 
 use crate::cli::VerifyArgs;
-use crate::cmd::{load_trust_named, load_trust_set, metadata_policy, name_trusted, parse_version};
+use crate::cmd::{
+    load_trust_named, load_trust_set, metadata_policy, name_trusted, parse_version,
+    policy_document,
+};
 use crate::failure::{bundle_error, count};
 use crate::output::{Output, shown};
 
@@ -31,16 +34,34 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
     if let Some(v) = &args.installed {
         verifier = verifier.installed(parse_version(v, "--installed")?);
     }
-    if let Some(name) = &args.name {
-        verifier = verifier.require_name(name.clone());
+    // --name and --max-size win over what the policy document sets.
+    let document = policy_document(&args.require_meta)?;
+    let (name, mut max_bundle, mut max_unpacked) = match document {
+        Some(document) => {
+            verifier = verifier.compatibility(document.compatibility);
+            (
+                args.name.clone().or(document.bundle_name),
+                document.max_bundle_bytes.unwrap_or(DEFAULT_MAX_BUNDLE_BYTES),
+                document
+                    .max_unpacked_bytes
+                    .unwrap_or(DEFAULT_MAX_UNPACKED_BYTES),
+            )
+        }
+        None => (
+            args.name.clone(),
+            DEFAULT_MAX_BUNDLE_BYTES,
+            DEFAULT_MAX_UNPACKED_BYTES,
+        ),
+    };
+    if let Some(name) = name {
+        verifier = verifier.require_name(name);
     }
     if let Some(policy) = metadata_policy(&args.require_meta)? {
         verifier = verifier.compatibility(policy);
     }
-    let (max_bundle, max_unpacked) = match args.max_size {
-        Some(n) => (n, n),
-        None => (DEFAULT_MAX_BUNDLE_BYTES, DEFAULT_MAX_UNPACKED_BYTES),
-    };
+    if let Some(n) = args.max_size {
+        (max_bundle, max_unpacked) = (n, n);
+    }
     verifier = verifier
         .max_bundle_bytes(max_bundle)
         .max_unpacked_bytes(max_unpacked)

@@ -100,6 +100,7 @@ pub mod bundle {
 #[cfg(any(feature = "release", feature = "fuzzing"))]
 pub mod model {
     pub use crate::check::policy::*;
+    pub use crate::check::policy_document::*;
     pub use crate::format::model::*;
 }
 

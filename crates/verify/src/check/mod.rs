@@ -7,4 +7,5 @@ pub mod bundle;
 pub mod feed;
 pub mod ledger_proof;
 pub mod policy;
+pub mod policy_document;
 pub mod trust;

@@ -67,7 +67,12 @@ pub struct Payload {
 #[serde(deny_unknown_fields)]
 pub struct Manifest {
     /// The format version; always 1 (`format::FORMAT_VERSION`).
+    #[cfg(feature = "release")]
     pub format: u32,
+    /// The format version: the reader refuses any other than 1, so an app has nothing to
+    /// learn from it, and it stays out of the app's API (issue 14 made room there).
+    #[cfg(not(feature = "release"))]
+    pub(crate) format: u32,
     /// The bundle's name: which model line this is (`trailcam-species`).
     pub name: String,
     /// The release's version (Semantic Versioning 2.0.0).

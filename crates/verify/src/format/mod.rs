@@ -292,6 +292,27 @@ pub mod offline {
     }
 }
 
+/// The app's policy document (issue 14): its compatibility policy, the bundle name it runs and
+/// its size limits as one JSON file that the C interface and the CLI's `--policy` read (FORMAT.md,
+/// "The policy document"). The app writes it, but it is parsed as strictly as anything
+/// untrusted, within these caps, since a C caller may hand over any bytes.
+pub mod policy_document {
+    /// The document format this reader knows (`"policy_format"`); any other value is refused.
+    pub const FORMAT_VERSION: u64 = 1;
+    /// The largest document, in bytes.
+    pub const BYTES: usize = 64 * 1024;
+    /// The deepest nesting of arrays and objects (the document itself is depth 1).
+    pub const DEPTH: usize = 8;
+    /// The longest string, key or value, in bytes.
+    pub const STRING_BYTES: usize = 1024;
+    /// The most members of one object or items of one array.
+    pub const ITEMS: usize = 1024;
+    /// The most inputs, and the most outputs, a document states.
+    pub const TENSORS: usize = 64;
+    /// The most metadata requirements.
+    pub const METADATA: usize = 64;
+}
+
 /// The bytes a signer signs: the context followed by the document.
 pub fn signed_bytes(context: &[u8], document: &[u8]) -> Vec<u8> {
     let mut bytes = Vec::with_capacity(context.len() + document.len());

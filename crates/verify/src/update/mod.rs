@@ -30,6 +30,7 @@
 //! Nothing here can be switched off. The weak paths (no ledger, no feed, an unchecked tree
 //! head) live in [`crate::dangerous`], whose documentation says what each one loses.
 
+mod app_policy;
 mod device;
 mod offline;
 mod outcome;
