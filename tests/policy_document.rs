@@ -117,22 +117,18 @@ fn issue14_each_policy_setting_refuses_a_bundle_through_the_document() {
         let (code, stderr) = verify_with(&env, &document(members));
         assert_eq!(code, 1, "{members}: {stderr}");
         if !message.is_empty() {
-            assert_eq!(
-                stderr,
-                format!("ampoule: error: {message}\n"),
-                "{members}"
-            );
+            assert_eq!(stderr, format!("ampoule: error: {message}\n"), "{members}");
         }
     }
 }
 
 /// Hostile documents and the refusal each must get, from the library's reader.
 pub const HOSTILE: &[(&str, &str)] = &[
-    ("", "policy document: not valid: EOF while parsing a value at line 1 column 0"),
     (
-        "[1]",
-        "policy document: it is an array, not an object",
+        "",
+        "policy document: not valid: EOF while parsing a value at line 1 column 0",
     ),
+    ("[1]", "policy document: it is an array, not an object"),
     (
         r#"{"policy_format": 1,}"#,
         "policy document: not valid: trailing comma at line 1 column 21",
@@ -269,7 +265,10 @@ pub fn over_caps() -> Vec<(String, String)> {
     let keys: Vec<String> = (0..65).map(|i| format!(r#""k{i}": 1"#)).collect();
     vec![
         (
-            format!(r#"{{"policy_format": 1, "about": "{}"}}"#, "x".repeat(70_000)),
+            format!(
+                r#"{{"policy_format": 1, "about": "{}"}}"#,
+                "x".repeat(70_000)
+            ),
             "policy document: it is 70033 bytes, over the limit of 65536 bytes".into(),
         ),
         (
@@ -307,7 +306,10 @@ pub fn over_caps() -> Vec<(String, String)> {
             "policy document: model.inputs: it states 65 tensors, over the limit of 64".into(),
         ),
         (
-            format!(r#"{{"policy_format": 1, "metadata": {{{}}}}}"#, keys.join(",")),
+            format!(
+                r#"{{"policy_format": 1, "metadata": {{{}}}}}"#,
+                keys.join(",")
+            ),
             "policy document: metadata: it requires 65 keys, over the limit of 64".into(),
         ),
     ]

@@ -8,8 +8,7 @@ use serde_json::json;
 
 use crate::cli::VerifyArgs;
 use crate::cmd::{
-    load_trust_named, load_trust_set, metadata_policy, name_trusted, parse_version,
-    policy_document,
+    load_trust_named, load_trust_set, metadata_policy, name_trusted, parse_version, policy_document,
 };
 use crate::failure::{bundle_error, count};
 use crate::output::{Output, shown};
@@ -41,7 +40,9 @@ pub fn run(args: VerifyArgs, out: &Output) -> Result<()> {
             verifier = verifier.compatibility(document.compatibility);
             (
                 args.name.clone().or(document.bundle_name),
-                document.max_bundle_bytes.unwrap_or(DEFAULT_MAX_BUNDLE_BYTES),
+                document
+                    .max_bundle_bytes
+                    .unwrap_or(DEFAULT_MAX_BUNDLE_BYTES),
                 document
                     .max_unpacked_bytes
                     .unwrap_or(DEFAULT_MAX_UNPACKED_BYTES),

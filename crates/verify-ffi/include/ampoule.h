@@ -1,0 +1,271 @@
+/*
+ * ampoule.h: the C interface of ampoule-verify (ABI version 1).
+ *
+ * An app not written in Rust (Kotlin or Java through JNI, Swift, C++, C) checks and installs
+ * signed model bundles through these calls. They wrap the library's safe update path only:
+ * every check runs, and nothing here can switch one off.
+ *
+ * Calls in order:
+ *   1. ampoule_abi_version()                   compare with AMPOULE_ABI_VERSION
+ *   2. ampoule_store_open_with_trust_set()     or ..._with_pinned_keys(): the app's trust, its
+ *                                              version and its policy document (FORMAT.md,
+ *                                              "The policy document")
+ *   3. ampoule_current()                       the release to load at start-up (checked in full)
+ *   4. ampoule_install_offline()               an update from a file made by `ampoule offline`;
+ *                                              its outcome says what happened
+ *   5. ampoule_release_field(), _label_count(), _label(), _metadata()
+ *                                              the model's path, labels and manifest
+ *   6. ampoule_rollback()                      when the app's own health check fails
+ *   7. ampoule_release_free(), ampoule_store_free()
+ *
+ * Status and errors. Every call that can fail returns an int32_t status (AMPOULE_OK is 0) and
+ * fills the ampoule_error the caller passes (which may be NULL when only the status is wanted):
+ * the same code and a UTF-8 message with its length, also NUL-terminated. The error object
+ * belongs to the caller, usually on its stack; the library never keeps a pointer to it, and
+ * keeps no error state per thread, so a call may resume on another thread (Kotlin coroutines,
+ * Swift tasks) and still read its own error.
+ *
+ * Memory. Inputs are pointers with explicit lengths in bytes; strings are UTF-8 without a
+ * terminating NUL inside the length (a NUL inside it, invalid UTF-8, or a length over the
+ * field's limit is refused with AMPOULE_INVALID_ARGUMENT). The library reads inputs only during
+ * the call. Outputs are written into memory the caller owns: text into a buffer the caller
+ * gives (buf, cap); *len always receives the full length, and AMPOULE_BUFFER_TOO_SMALL means
+ * "call again with a buffer of *len bytes" (a NULL buffer with cap 0 asks for the length).
+ * Text outputs are not NUL-terminated. Objects are handles (ampoule_store, ampoule_release):
+ * numbers, not pointers, that the caller frees with the matching free call. A freed,
+ * double-freed, made-up or other type's handle is refused with AMPOULE_INVALID_HANDLE; the
+ * library looks handles up in a registry of live ones and never dereferences them.
+ *
+ * Threads. Every function may be called from any thread, at the same time as any other,
+ * including on the same handle, unless its comment says otherwise. Two updates on one store
+ * at once: the second fails at once with AMPOULE_LOCKED (and its outcome FAILED); reading
+ * releases never waits for an update. Freeing a handle while another thread's call uses it is
+ * safe: that call finishes, and later calls with the handle get AMPOULE_INVALID_HANDLE. An
+ * ampoule_error or an output buffer must not be shared by two calls running at once.
+ *
+ * Panics. No Rust panic crosses this boundary: a caught one returns AMPOULE_PANIC (a bug; please
+ * report it). The library must be built with panic = "unwind" (Rust's default) for that.
+ *
+ * ABI changes. AMPOULE_ABI_VERSION changes whenever an existing function's signature, a struct's
+ * layout, or the meaning of an existing code changes (CHANGELOG.md lists what breaks the ABI).
+ * New functions, new status codes, new outcome kinds and new field numbers do not change it:
+ * treat an unknown status as an error, and an unknown outcome kind as FAILED.
+ */
+#ifndef AMPOULE_H
+#define AMPOULE_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+#define AMPOULE_ABI_VERSION 1
+
+/* Status codes. 1-7 are the interface's own; 10 and up are the library's error kinds (the
+ * same names as the `kind` of the CLI's --json errors). */
+#define AMPOULE_OK 0
+#define AMPOULE_INVALID_ARGUMENT 1 /* a null pointer, non-UTF-8 text, a length that does not fit */
+#define AMPOULE_INVALID_HANDLE 2   /* a freed, double-freed, made-up or other type's handle */
+#define AMPOULE_BUFFER_TOO_SMALL 3 /* *len holds the length needed */
+#define AMPOULE_POLICY_DOCUMENT 4  /* the policy document is refused; the message names the field */
+#define AMPOULE_NEEDS_OTHER_APP 5  /* the offered release needs another app version */
+#define AMPOULE_PANIC 6            /* an internal error (a bug), stopped at the boundary */
+#define AMPOULE_NOT_FOUND 7        /* no such label index or metadata key */
+#define AMPOULE_IO 10
+#define AMPOULE_MALFORMED 11
+#define AMPOULE_TOO_LARGE 12
+#define AMPOULE_SIGNATURE 13
+#define AMPOULE_KEY 14
+#define AMPOULE_DIGEST 15
+#define AMPOULE_MANIFEST 16
+#define AMPOULE_POLICY 17
+#define AMPOULE_DESTINATION 18
+#define AMPOULE_MODEL 19
+#define AMPOULE_INCOMPATIBLE 20 /* the app's policy document refuses the model or labels */
+#define AMPOULE_PROOF 21
+#define AMPOULE_STORE 22
+#define AMPOULE_LOCKED 23 /* another update runs on this store */
+#define AMPOULE_TRUST_SET 24
+#define AMPOULE_FEED 25
+#define AMPOULE_STALE 26
+#define AMPOULE_NETWORK 27
+#define AMPOULE_SETTINGS 28
+#define AMPOULE_CANCELLED 29
+#define AMPOULE_CLOCK 30
+#define AMPOULE_OTHER 99 /* an error kind newer than this ABI version */
+
+/* Outcome kinds (ampoule_outcome.kind). */
+#define AMPOULE_OUTCOME_INSTALLED 1       /* a newer release is current: load it */
+#define AMPOULE_OUTCOME_UP_TO_DATE 2      /* nothing newer than what the store accepted */
+#define AMPOULE_OUTCOME_NOT_IN_ROLLOUT 3  /* not this device's turn yet; see rollout_bucket */
+#define AMPOULE_OUTCOME_NOTHING_OFFERED 4 /* the channel offers nothing; keep what runs */
+#define AMPOULE_OUTCOME_NEEDS_OTHER_APP 5 /* status AMPOULE_NEEDS_OTHER_APP; message says why */
+#define AMPOULE_OUTCOME_REFUSED 6         /* a check refused it; the status says which kind */
+#define AMPOULE_OUTCOME_FAILED 7          /* could not finish (I/O, lock); try again later */
+
+/* Release fields (ampoule_release_field). */
+#define AMPOULE_FIELD_NAME 1            /* the bundle's name: trailcam-species */
+#define AMPOULE_FIELD_VERSION 2         /* its SemVer version */
+#define AMPOULE_FIELD_CREATED 3         /* RFC 3339 UTC time it was made */
+#define AMPOULE_FIELD_REQUIRES_APP 4    /* the app versions it works with */
+#define AMPOULE_FIELD_MANIFEST_SHA256 5 /* lowercase hex SHA-256 of the exact manifest */
+#define AMPOULE_FIELD_MODEL_PATH 6      /* the model file to load */
+#define AMPOULE_FIELD_LABELS_PATH 7     /* the label list file */
+#define AMPOULE_FIELD_DIR 8             /* the release's directory */
+#define AMPOULE_FIELD_MANIFEST_JSON 9   /* the verified manifest as JSON */
+#define AMPOULE_FIELD_SIGNERS 10        /* key ids that signed, one per line */
+
+/* The bytes an error message may use, its NUL included. */
+#define AMPOULE_MESSAGE_BYTES 1024
+
+/* The error object the caller owns. */
+typedef struct ampoule_error {
+    int32_t code;         /* the status the call returned */
+    uint32_t message_len; /* bytes of message, UTF-8, without the NUL after them */
+    uint8_t message[AMPOULE_MESSAGE_BYTES];
+} ampoule_error;
+
+/* A store: one app's store directory following one channel. 0 is no store. */
+typedef struct ampoule_store {
+    uint64_t id;
+} ampoule_store;
+
+/* A release in the store that passed every check. 0 is no release. */
+typedef struct ampoule_release {
+    uint64_t id;
+} ampoule_release;
+
+/* Keys pinned for one role: keys_len / 32 raw Ed25519 public keys (RFC 8032), of which
+ * threshold must sign. */
+typedef struct ampoule_role_keys {
+    const uint8_t *keys;
+    size_t keys_len;
+    uint32_t threshold;
+} ampoule_role_keys;
+
+/* What an update did. */
+typedef struct ampoule_outcome {
+    int32_t kind;            /* AMPOULE_OUTCOME_* */
+    uint32_t rollout_bucket; /* NOT_IN_ROLLOUT: 0 to 9999; it installs at bucket / 100 percent */
+    ampoule_release installed; /* INSTALLED: the new current release; the caller frees it */
+} ampoule_outcome;
+
+/* The ABI version the library implements; refuse to run if it is not AMPOULE_ABI_VERSION.
+ * Never fails. */
+uint32_t ampoule_abi_version(void);
+
+/* A status code's name ("incompatible"), or "unknown": a static NUL-terminated string the
+ * caller must not free. Never fails. */
+const char *ampoule_status_name(int32_t status);
+
+/* Opens (or creates) the store in dir for the app, following channel. trust_set: the exact
+ * trust-set file the app ships (the device then follows rotations published in the tree).
+ * app_version: the app's SemVer version. policy: the app's policy document (JSON, FORMAT.md),
+ * or NULL with length 0 for none. now_unix: the clock, in seconds since 1970. On success *out
+ * is a store handle to free with ampoule_store_free. Errors: AMPOULE_INVALID_ARGUMENT,
+ * AMPOULE_POLICY_DOCUMENT, AMPOULE_TRUST_SET or AMPOULE_SIGNATURE (an unusable trust set),
+ * AMPOULE_SETTINGS (a channel name no feed can carry), AMPOULE_STORE, AMPOULE_IO. */
+int32_t ampoule_store_open_with_trust_set(const char *dir, size_t dir_len,
+                                          const char *channel, size_t channel_len,
+                                          const uint8_t *trust_set, size_t trust_set_len,
+                                          const char *app_version, size_t app_version_len,
+                                          const uint8_t *policy, size_t policy_len,
+                                          int64_t now_unix, ampoule_store *out,
+                                          ampoule_error *err);
+
+/* As ampoule_store_open_with_trust_set, with keys pinned per role instead of a trust set:
+ * bundle_keys sign bundles, feed_keys feeds, tree_head_keys the ledger's tree heads. A key
+ * that holds two roles is passed for both. Pinned keys cannot rotate without an app update;
+ * prefer the trust set. Also AMPOULE_KEY for a key that is not a usable Ed25519 key. */
+int32_t ampoule_store_open_with_pinned_keys(const char *dir, size_t dir_len,
+                                            const char *channel, size_t channel_len,
+                                            const ampoule_role_keys *bundle_keys,
+                                            const ampoule_role_keys *feed_keys,
+                                            const ampoule_role_keys *tree_head_keys,
+                                            const char *app_version, size_t app_version_len,
+                                            const uint8_t *policy, size_t policy_len,
+                                            int64_t now_unix, ampoule_store *out,
+                                            ampoule_error *err);
+
+/* Frees a store handle. A second free of the same handle is AMPOULE_INVALID_HANDLE. A call
+ * running on the store in another thread finishes first on its own reference. */
+int32_t ampoule_store_free(ampoule_store store, ampoule_error *err);
+
+/* Runs one update from an offline file (made by `ampoule offline`) at clock time now_unix:
+ * every check of an online update but the feed's expiry. *out always receives the outcome
+ * (out must not be NULL). The status is AMPOULE_OK for INSTALLED, UP_TO_DATE, NOT_IN_ROLLOUT
+ * and NOTHING_OFFERED; AMPOULE_NEEDS_OTHER_APP; or the error kind of a refusal (REFUSED:
+ * AMPOULE_DIGEST for a tampered bundle, AMPOULE_INCOMPATIBLE for one the policy refuses, ...)
+ * or failure (FAILED: AMPOULE_LOCKED while another update runs, AMPOULE_IO, ...). The running
+ * model is kept on every outcome but INSTALLED. Concurrent calls on one store: one runs, the
+ * others get AMPOULE_LOCKED. */
+int32_t ampoule_install_offline(ampoule_store store, const char *file, size_t file_len,
+                                int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
+
+/* The current release, checked in full before the app loads it (manifest digest, signatures,
+ * policy, every file's size and SHA-256: one read of the model). *out is a release handle to
+ * free, or {0} before the first install. */
+int32_t ampoule_current(ampoule_store store, ampoule_release *out, ampoule_error *err);
+
+/* Makes the previous release current again (after the app's own health check failed on a new
+ * model); it is checked in full first. *out is the release now current, a handle to free. The
+ * release rolled back from stays refused. AMPOULE_POLICY when there is no previous release;
+ * AMPOULE_LOCKED while an update runs. */
+int32_t ampoule_rollback(ampoule_store store, ampoule_release *out, ampoule_error *err);
+
+/* Frees a release handle. A second free is AMPOULE_INVALID_HANDLE. */
+int32_t ampoule_release_free(ampoule_release release, ampoule_error *err);
+
+/* One field of the release (AMPOULE_FIELD_*) as UTF-8 text, copied into buf (cap bytes);
+ * *len receives its length. */
+int32_t ampoule_release_field(ampoule_release release, int32_t field, uint8_t *buf, size_t cap,
+                              size_t *len, ampoule_error *err);
+
+/* The number of labels in the release's label list (in output-index order). */
+int32_t ampoule_release_label_count(ampoule_release release, size_t *count, ampoule_error *err);
+
+/* The label at index, copied into buf; AMPOULE_NOT_FOUND past the last one. */
+int32_t ampoule_release_label(ampoule_release release, size_t index, uint8_t *buf, size_t cap,
+                              size_t *len, ampoule_error *err);
+
+/* The signed metadata's value at a dotted key ("preprocess.mean") as JSON text, copied into
+ * buf; with key NULL and key_len 0, the whole metadata object ("{}" when there is none).
+ * AMPOULE_NOT_FOUND for a key the metadata does not hold. */
+int32_t ampoule_release_metadata(ampoule_release release, const char *key, size_t key_len,
+                                 uint8_t *buf, size_t cap, size_t *len, ampoule_error *err);
+
+/*
+ * Planned for ABI version 1 additions, once the update session's delta support (issue 13)
+ * settles; declared here as a design, not implemented:
+ *
+ * The step-by-step update, for apps with their own HTTP stack (the library's Session):
+ *   int32_t ampoule_update_begin(ampoule_store store, const char *feed_url, size_t feed_url_len,
+ *                                const uint8_t *feed, size_t feed_len, int64_t now_unix,
+ *                                ampoule_session *out, ampoule_error *err);
+ *   int32_t ampoule_update_next(ampoule_session session, ampoule_step *step, ampoule_error *err);
+ *       step->kind: AMPOULE_STEP_FETCH (fetch step->url, at most step->max_bytes, then call
+ *       ampoule_update_provide), AMPOULE_STEP_DOWNLOAD (write the bundle into the file at
+ *       step->path, step->size bytes with SHA-256 step->sha256, from one of the URLs read
+ *       with ampoule_step_url, then call ampoule_update_downloaded), AMPOULE_STEP_DONE
+ *       (step->outcome holds the outcome, as ampoule_install_offline's).
+ *   int32_t ampoule_update_provide(ampoule_session session, const uint8_t *bytes, size_t len,
+ *                                  ampoule_error *err);
+ *   int32_t ampoule_update_downloaded(ampoule_session session, ampoule_error *err);
+ *   int32_t ampoule_update_fail(ampoule_session session, int32_t status, const char *message,
+ *                               size_t message_len, ampoule_error *err);
+ *   int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
+ *   A session holds the store's update lock until it is done or freed; it may be driven from
+ *   any thread, one call at a time.
+ *
+ * The URL update, in builds with the `fetch` feature:
+ *   int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_url_len,
+ *                          int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
+ */
+
+#ifdef __cplusplus
+}
+#endif
+
+#endif /* AMPOULE_H */

@@ -1,0 +1,633 @@
+//! The exported functions, one per declaration in `include/ampoule.h` (tests/header.rs keeps
+//! the two the same). Each one runs its body inside `catch_unwind`, so no panic crosses into
+//! C, and turns the body's result into a status code and the caller's error object.
+//!
+//! Every function is `unsafe extern "C"`: its safety contract is the header's (input pointers
+//! point at the bytes their lengths say, output pointers at writable objects the caller owns
+//! for the call). The only unsafe blocks call the readers and writers of [`crate::raw`].
+
+#![allow(unsafe_code)]
+
+use std::ffi::{CStr, c_char};
+use std::panic::{AssertUnwindSafe, catch_unwind};
+use std::path::Path;
+
+use ampoule_verify::{
+    App, Device, Outcome, PublicKey, Release, Signers, Timestamp, Trust, TrustedKeys, Version,
+};
+
+use crate::handles;
+use crate::raw;
+use crate::status::{AmpouleError, Failure, STATUSES, Status};
+
+/// The ABI version this library implements (`AMPOULE_ABI_VERSION` in ampoule.h).
+pub const ABI_VERSION: u32 = 1;
+
+/// The longest path, directory or file, the interface takes.
+const PATH_BYTES: usize = 4096;
+/// The longest channel name, version or metadata key it takes (each is checked further by
+/// the library's own rules).
+const SHORT_BYTES: usize = 256;
+/// The largest trust set or policy document it passes on; the library's own caps are lower
+/// and are checked there, with their own messages.
+const DOCUMENT_BYTES: usize = 1 << 20;
+/// An Ed25519 public key, raw (RFC 8032, section 5.1.5).
+const KEY_BYTES: usize = 32;
+/// The most keys a role may pin.
+const MAX_KEYS: usize = 64;
+
+/// A store handle (`ampoule_store`): 0 is no store.
+#[repr(C)]
+#[derive(Debug, Clone, Copy)]
+pub struct AmpouleStore {
+    pub id: u64,
+}
+
+/// A release handle (`ampoule_release`): 0 is no release.
+#[repr(C)]
+#[derive(Debug, Clone, Copy)]
+pub struct AmpouleRelease {
+    pub id: u64,
+}
+
+/// The keys pinned for one role (`ampoule_role_keys`).
+#[repr(C)]
+pub struct AmpouleRoleKeys {
+    /// `keys_len / 32` raw Ed25519 public keys, one after the other.
+    pub keys: *const u8,
+    pub keys_len: usize,
+    /// How many of them must sign.
+    pub threshold: u32,
+}
+
+/// What an update did (`ampoule_outcome`).
+#[repr(C)]
+pub struct AmpouleOutcome {
+    /// One of `AMPOULE_OUTCOME_*`.
+    pub kind: i32,
+    /// With `AMPOULE_OUTCOME_NOT_IN_ROLLOUT`: the device's bucket, 0 to 9999.
+    pub rollout_bucket: u32,
+    /// With `AMPOULE_OUTCOME_INSTALLED`: the release now current, a handle the caller frees.
+    pub installed: AmpouleRelease,
+}
+
+/// The outcome kinds, as `AMPOULE_OUTCOME_*` numbers them.
+pub const OUTCOMES: &[(&str, i32)] = &[
+    ("INSTALLED", 1),
+    ("UP_TO_DATE", 2),
+    ("NOT_IN_ROLLOUT", 3),
+    ("NOTHING_OFFERED", 4),
+    ("NEEDS_OTHER_APP", 5),
+    ("REFUSED", 6),
+    ("FAILED", 7),
+];
+
+/// The release fields `ampoule_release_field` reads, as `AMPOULE_FIELD_*` numbers them.
+pub const FIELDS: &[(&str, i32)] = &[
+    ("NAME", 1),
+    ("VERSION", 2),
+    ("CREATED", 3),
+    ("REQUIRES_APP", 4),
+    ("MANIFEST_SHA256", 5),
+    ("MODEL_PATH", 6),
+    ("LABELS_PATH", 7),
+    ("DIR", 8),
+    ("MANIFEST_JSON", 9),
+    ("SIGNERS", 10),
+];
+
+/// Runs `body` for the function `name`, catching any panic, and reports its result.
+fn call(name: &str, err: *mut AmpouleError, body: impl FnOnce() -> Result<(), Failure>) -> i32 {
+    let (status, message) = match catch_unwind(AssertUnwindSafe(body)) {
+        Ok(Ok(())) => (Status::Ok, String::new()),
+        Ok(Err(failure)) => (failure.status, failure.message),
+        Err(_) => (
+            Status::Panic,
+            format!(
+                "internal error: {name} panicked; the panic was stopped at the C boundary. \
+                 Please report this as a bug in ampoule-verify"
+            ),
+        ),
+    };
+    // SAFETY: `err` is the caller's error object; the header's contract is that it is null
+    // or points at a writable `ampoule_error` the caller owns during the call.
+    unsafe { raw::fill_error(err, status, &message) };
+    status as i32
+}
+
+/// The clock time the caller passed.
+fn time(now_unix: i64) -> Result<Timestamp, Failure> {
+    u64::try_from(now_unix)
+        .ok()
+        .and_then(Timestamp::from_unix)
+        .ok_or_else(|| {
+            Failure::argument(format!(
+                "now_unix {now_unix} is not a time: pass seconds since 1970-01-01T00:00:00Z"
+            ))
+        })
+}
+
+/// Opens the store once the trust is known: the part both open calls share.
+fn open(
+    dir: &str,
+    channel: &str,
+    trust: Trust,
+    app_version: &str,
+    policy: Option<&[u8]>,
+    now_unix: i64,
+) -> Result<u64, Failure> {
+    let version = Version::parse(app_version).map_err(|e| {
+        Failure::argument(format!(
+            "app_version '{}' is not a Semantic Versioning 2.0.0 version: {e}",
+            app_version.escape_debug()
+        ))
+    })?;
+    let mut app = App::new(trust, version);
+    if let Some(policy) = policy {
+        app = app
+            .policy_document(policy)
+            .map_err(|e| Failure::new(Status::PolicyDocument, e.to_string()))?;
+    }
+    let device = Device::open(Path::new(dir), channel, app, time(now_unix)?)?;
+    handles::add_store(device)
+}
+
+/// The ABI version; see `ampoule_abi_version` in ampoule.h.
+#[unsafe(no_mangle)]
+pub extern "C" fn ampoule_abi_version() -> u32 {
+    ABI_VERSION
+}
+
+/// A status code's name; see `ampoule_status_name` in ampoule.h.
+#[unsafe(no_mangle)]
+pub extern "C" fn ampoule_status_name(status: i32) -> *const c_char {
+    static NAMES: &[&CStr] = &[
+        c"ok",
+        c"invalid_argument",
+        c"invalid_handle",
+        c"buffer_too_small",
+        c"policy_document",
+        c"needs_other_app",
+        c"panic",
+        c"not_found",
+        c"io",
+        c"malformed",
+        c"too_large",
+        c"signature",
+        c"key",
+        c"digest",
+        c"manifest",
+        c"policy",
+        c"destination",
+        c"model",
+        c"incompatible",
+        c"proof",
+        c"store",
+        c"locked",
+        c"trust_set",
+        c"feed",
+        c"stale",
+        c"network",
+        c"settings",
+        c"cancelled",
+        c"clock",
+        c"other",
+    ];
+    let name = STATUSES
+        .iter()
+        .zip(NAMES)
+        .find(|((code, _), _)| *code as i32 == status)
+        .map_or(c"unknown", |(_, name)| *name);
+    name.as_ptr()
+}
+
+/// Opens a store with the trust set the app ships; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_store_open_with_trust_set(
+    dir: *const c_char,
+    dir_len: usize,
+    channel: *const c_char,
+    channel_len: usize,
+    trust_set: *const u8,
+    trust_set_len: usize,
+    app_version: *const c_char,
+    app_version_len: usize,
+    policy: *const u8,
+    policy_len: usize,
+    now_unix: i64,
+    out: *mut AmpouleStore,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_store_open_with_trust_set", err, || {
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        // SAFETY: the header's contract: each pointer is null or points at its length's
+        // bytes (UTF-8 for strings), unchanged during the call.
+        let (dir, channel, trust_set, app_version, policy) = unsafe {
+            (
+                raw::string(dir, dir_len, PATH_BYTES, "dir")?,
+                raw::string(channel, channel_len, SHORT_BYTES, "channel")?,
+                raw::required(trust_set, trust_set_len, DOCUMENT_BYTES, "trust_set")?,
+                raw::string(app_version, app_version_len, SHORT_BYTES, "app_version")?,
+                raw::bytes(policy, policy_len, DOCUMENT_BYTES, "policy")?,
+            )
+        };
+        let trust = Trust::shipped_trust_set(trust_set)?;
+        let id = open(dir, channel, trust, app_version, policy, now_unix)?;
+        // SAFETY: `out` is null or the caller's writable `ampoule_store` (the header).
+        unsafe { raw::put(out, AmpouleStore { id }, "out") }.inspect_err(|_| {
+            let _ = handles::free_store(id);
+        })
+    })
+}
+
+/// The keys and threshold of one role from the caller's pinned keys.
+///
+/// # Safety
+///
+/// `role` is null or points at an `ampoule_role_keys` whose `keys` points at `keys_len` bytes.
+unsafe fn role_keys(
+    role: *const AmpouleRoleKeys,
+    what: &str,
+) -> Result<(TrustedKeys, usize), Failure> {
+    if role.is_null() {
+        return Err(Failure::argument(format!("{what} is a null pointer")));
+    }
+    // SAFETY: `role` is not null and, by the header's contract, points at a readable
+    // `ampoule_role_keys`; its fields are plain integers and a pointer, valid in any bit pattern.
+    let role = unsafe { &*role };
+    // SAFETY: the header's contract: `keys` points at `keys_len` readable bytes.
+    let keys = unsafe { raw::required(role.keys, role.keys_len, KEY_BYTES * MAX_KEYS, what) }?;
+    if keys.len() % KEY_BYTES != 0 {
+        return Err(Failure::argument(format!(
+            "{what} has keys_len {}, which is not a whole number of {KEY_BYTES}-byte keys",
+            keys.len()
+        )));
+    }
+    let mut trusted = TrustedKeys::new();
+    for raw_key in keys.chunks_exact(KEY_BYTES) {
+        let raw_key: &[u8; KEY_BYTES] = raw_key
+            .try_into()
+            .map_err(|_| Failure::argument(format!("{what}: a key is not {KEY_BYTES} bytes")))?;
+        trusted.add(PublicKey::from_raw(raw_key)?);
+    }
+    Ok((trusted, role.threshold as usize))
+}
+
+/// Opens a store with keys pinned per role; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_store_open_with_pinned_keys(
+    dir: *const c_char,
+    dir_len: usize,
+    channel: *const c_char,
+    channel_len: usize,
+    bundle_keys: *const AmpouleRoleKeys,
+    feed_keys: *const AmpouleRoleKeys,
+    tree_head_keys: *const AmpouleRoleKeys,
+    app_version: *const c_char,
+    app_version_len: usize,
+    policy: *const u8,
+    policy_len: usize,
+    now_unix: i64,
+    out: *mut AmpouleStore,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_store_open_with_pinned_keys", err, || {
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        // SAFETY: the header's contract, as for `ampoule_store_open_with_trust_set`, and each
+        // role pointer is null or points at an `ampoule_role_keys` with its keys' bytes.
+        let (dir, channel, app_version, policy, bundle, feed, tree_head) = unsafe {
+            (
+                raw::string(dir, dir_len, PATH_BYTES, "dir")?,
+                raw::string(channel, channel_len, SHORT_BYTES, "channel")?,
+                raw::string(app_version, app_version_len, SHORT_BYTES, "app_version")?,
+                raw::bytes(policy, policy_len, DOCUMENT_BYTES, "policy")?,
+                role_keys(bundle_keys, "bundle_keys")?,
+                role_keys(feed_keys, "feed_keys")?,
+                role_keys(tree_head_keys, "tree_head_keys")?,
+            )
+        };
+        let trust = Trust::pinned(
+            Signers::new(bundle.0, bundle.1)?,
+            Signers::new(feed.0, feed.1)?,
+            Signers::new(tree_head.0, tree_head.1)?,
+        );
+        let id = open(dir, channel, trust, app_version, policy, now_unix)?;
+        // SAFETY: `out` is null or the caller's writable `ampoule_store` (the header).
+        unsafe { raw::put(out, AmpouleStore { id }, "out") }.inspect_err(|_| {
+            let _ = handles::free_store(id);
+        })
+    })
+}
+
+/// Frees a store handle; see ampoule.h.
+///
+/// # Safety
+///
+/// `err` is null or the caller's writable `ampoule_error`.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_store_free(store: AmpouleStore, err: *mut AmpouleError) -> i32 {
+    call("ampoule_store_free", err, || handles::free_store(store.id))
+}
+
+/// Installs from an offline file; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_install_offline(
+    store: AmpouleStore,
+    file: *const c_char,
+    file_len: usize,
+    now_unix: i64,
+    out: *mut AmpouleOutcome,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_install_offline", err, || {
+        // SAFETY: the header's contract: `file` points at `file_len` bytes of UTF-8.
+        let file = unsafe { raw::string(file, file_len, PATH_BYTES, "file") }?;
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        let device = handles::store(store.id)?;
+        let report = device.install_offline(Path::new(file), time(now_unix)?);
+        let mut outcome = AmpouleOutcome {
+            kind: 0,
+            rollout_bucket: 0,
+            installed: AmpouleRelease { id: 0 },
+        };
+        let mut result = Ok(());
+        match report.outcome {
+            Outcome::Installed(installed) => {
+                outcome.kind = 1;
+                outcome.installed.id = handles::add_release(installed.release)?;
+            }
+            Outcome::UpToDate => outcome.kind = 2,
+            Outcome::NotInRollout { bucket } => {
+                outcome.kind = 3;
+                outcome.rollout_bucket = u32::from(bucket);
+            }
+            Outcome::NothingOffered => outcome.kind = 4,
+            Outcome::NeedsOtherApp { reason } => {
+                outcome.kind = 5;
+                result = Err(Failure::new(Status::NeedsOtherApp, reason));
+            }
+            Outcome::Refused(e) => {
+                outcome.kind = 6;
+                result = Err(e.into());
+            }
+            Outcome::Failed(e) => {
+                outcome.kind = 7;
+                result = Err(e.into());
+            }
+            other => {
+                outcome.kind = 7;
+                result = Err(Failure::new(
+                    Status::Other,
+                    format!(
+                        "the update ended in an outcome this ABI version does not know: {}",
+                        other.name()
+                    ),
+                ));
+            }
+        }
+        // SAFETY: `out` is not null (checked above) and is the caller's writable
+        // `ampoule_outcome` (the header).
+        unsafe { raw::put(out, outcome, "out") }?;
+        result
+    })
+}
+
+/// Puts a release handle for `release` (or 0 for none) into `out`.
+///
+/// # Safety
+///
+/// `out` is null or the caller's writable `ampoule_release`.
+unsafe fn put_release(release: Option<Release>, out: *mut AmpouleRelease) -> Result<(), Failure> {
+    if out.is_null() {
+        return Err(Failure::argument("out is a null pointer"));
+    }
+    let id = match release {
+        Some(release) => handles::add_release(release)?,
+        None => 0,
+    };
+    // SAFETY: `out` is not null and is the caller's writable `ampoule_release`.
+    unsafe { raw::put(out, AmpouleRelease { id }, "out") }
+}
+
+/// The current release, fully checked; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_current(
+    store: AmpouleStore,
+    out: *mut AmpouleRelease,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_current", err, || {
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        let current = handles::store(store.id)?.current()?;
+        // SAFETY: `out` is null or the caller's writable `ampoule_release` (the header).
+        unsafe { put_release(current, out) }
+    })
+}
+
+/// Rolls back to the previous release; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_rollback(
+    store: AmpouleStore,
+    out: *mut AmpouleRelease,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_rollback", err, || {
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        let release = handles::store(store.id)?.rollback()?;
+        // SAFETY: `out` is null or the caller's writable `ampoule_release` (the header).
+        unsafe { put_release(Some(release), out) }
+    })
+}
+
+/// Frees a release handle; see ampoule.h.
+///
+/// # Safety
+///
+/// `err` is null or the caller's writable `ampoule_error`.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_release_free(
+    release: AmpouleRelease,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_release_free", err, || {
+        handles::free_release(release.id)
+    })
+}
+
+/// One field of a release as text.
+fn field(release: &Release, field: i32) -> Result<Vec<u8>, Failure> {
+    let path = |p: &Path| p.to_string_lossy().into_owned().into_bytes();
+    let manifest = &release.manifest;
+    Ok(match field {
+        1 => manifest.name.clone().into_bytes(),
+        2 => manifest.version.to_string().into_bytes(),
+        3 => manifest.created.to_string().into_bytes(),
+        4 => manifest.requires_app.to_string().into_bytes(),
+        5 => release.manifest_sha256.to_string().into_bytes(),
+        6 => path(&release.model),
+        7 => path(&release.labels_path),
+        8 => path(&release.dir),
+        9 => serde_json::to_vec(manifest)
+            .map_err(|e| Failure::new(Status::Other, format!("the manifest as JSON: {e}")))?,
+        10 => release
+            .signers
+            .iter()
+            .map(|k| k.to_string())
+            .collect::<Vec<_>>()
+            .join("\n")
+            .into_bytes(),
+        other => {
+            return Err(Failure::argument(format!(
+                "field {other} is not an AMPOULE_FIELD_* value"
+            )));
+        }
+    })
+}
+
+/// One field of a release; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_release_field(
+    release: AmpouleRelease,
+    which: i32,
+    buf: *mut u8,
+    cap: usize,
+    len: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_release_field", err, || {
+        let value = field(&*handles::release(release.id)?, which)?;
+        // SAFETY: `buf` is null or `cap` writable bytes, `len` the caller's `size_t`.
+        unsafe { raw::copy_out(&value, buf, cap, len, "the field") }
+    })
+}
+
+/// The number of labels; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_release_label_count(
+    release: AmpouleRelease,
+    count: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_release_label_count", err, || {
+        let labels = handles::release(release.id)?.labels.len();
+        // SAFETY: `count` is null or the caller's writable `size_t`.
+        unsafe { raw::put(count, labels, "count") }
+    })
+}
+
+/// One label; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_release_label(
+    release: AmpouleRelease,
+    index: usize,
+    buf: *mut u8,
+    cap: usize,
+    len: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_release_label", err, || {
+        let release = handles::release(release.id)?;
+        let label = release.labels.get(index).ok_or_else(|| {
+            Failure::new(
+                Status::NotFound,
+                format!(
+                    "label index {index} is out of range: the release has {} labels",
+                    release.labels.len()
+                ),
+            )
+        })?;
+        // SAFETY: `buf` is null or `cap` writable bytes, `len` the caller's `size_t`.
+        unsafe { raw::copy_out(label.as_bytes(), buf, cap, len, "the label") }
+    })
+}
+
+/// A value of the signed metadata, as JSON; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_release_metadata(
+    release: AmpouleRelease,
+    key: *const c_char,
+    key_len: usize,
+    buf: *mut u8,
+    cap: usize,
+    len: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_release_metadata", err, || {
+        // SAFETY: `key` is null with length 0, or points at `key_len` bytes of UTF-8.
+        let key = match unsafe { raw::bytes(key.cast(), key_len, SHORT_BYTES, "key") }? {
+            Some(bytes) => raw::text(bytes, "key")?,
+            None => "",
+        };
+        let release = handles::release(release.id)?;
+        let json = if key.is_empty() {
+            // The whole object: the manifest's `metadata` member, `{}` when it has none.
+            let manifest = serde_json::to_value(&release.manifest)
+                .map_err(|e| Failure::new(Status::Other, format!("the manifest as JSON: {e}")))?;
+            manifest
+                .get("metadata")
+                .map_or_else(|| "{}".to_string(), ToString::to_string)
+        } else {
+            release
+                .manifest
+                .metadata(key)
+                .ok_or_else(|| {
+                    Failure::new(
+                        Status::NotFound,
+                        format!(
+                            "the release's signed metadata has no key '{}'",
+                            key.escape_debug()
+                        ),
+                    )
+                })?
+                .to_string()
+        };
+        // SAFETY: `buf` is null or `cap` writable bytes, `len` the caller's `size_t`.
+        unsafe { raw::copy_out(json.as_bytes(), buf, cap, len, "the metadata value") }
+    })
+}

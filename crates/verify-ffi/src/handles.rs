@@ -1,0 +1,115 @@
+//! Handles: what a C caller holds instead of a pointer. A handle is a number, a type tag in its
+//! top 16 bits and a serial number below, looked up in a registry of live objects on every
+//! call. The library never dereferences anything a caller passes as a handle, so a freed, a
+//! double-freed, a made-up or another type's handle is refused with `AMPOULE_INVALID_HANDLE`,
+//! never read. Serial numbers are not reused, so a stale copy of a freed handle can never name
+//! a newer object.
+//!
+//! A call takes a reference-counted copy of the object out of the registry and works on that,
+//! so another thread freeing the handle meanwhile ends nothing: the call finishes on its copy,
+//! and later calls are refused.
+
+use std::collections::BTreeMap;
+use std::sync::{Arc, Mutex, MutexGuard, PoisonError};
+
+use ampoule_verify::{Device, Release};
+
+use crate::status::Failure;
+
+/// The tag of a store handle ("ST").
+pub const STORE_TAG: u64 = 0x5354;
+/// The tag of a release handle ("RL").
+pub const RELEASE_TAG: u64 = 0x524c;
+const SERIAL_BITS: u32 = 48;
+
+/// One live object.
+#[derive(Clone)]
+enum Entry {
+    Store(Arc<Device>),
+    Release(Arc<Release>),
+}
+
+struct Registry {
+    next: u64,
+    live: BTreeMap<u64, Entry>,
+}
+
+static REGISTRY: Mutex<Registry> = Mutex::new(Registry {
+    next: 1,
+    live: BTreeMap::new(),
+});
+
+fn registry() -> MutexGuard<'static, Registry> {
+    // A panic while the lock was held (caught at the boundary) leaves the map itself whole:
+    // every change to it is one insert or remove.
+    REGISTRY.lock().unwrap_or_else(PoisonError::into_inner)
+}
+
+fn add(tag: u64, entry: Entry) -> Result<u64, Failure> {
+    let mut registry = registry();
+    let serial = registry.next;
+    if serial >= 1 << SERIAL_BITS {
+        return Err(Failure::argument(
+            "this process has made 2^48 handles; no more can be made",
+        ));
+    }
+    registry.next += 1;
+    let id = (tag << SERIAL_BITS) | serial;
+    registry.live.insert(id, entry);
+    Ok(id)
+}
+
+fn get(id: u64, tag: u64) -> Option<Entry> {
+    if id >> SERIAL_BITS != tag {
+        return None;
+    }
+    registry().live.get(&id).cloned()
+}
+
+fn remove(id: u64, tag: u64) -> bool {
+    id >> SERIAL_BITS == tag && registry().live.remove(&id).is_some()
+}
+
+/// Registers a store and returns its handle.
+pub fn add_store(device: Device) -> Result<u64, Failure> {
+    add(STORE_TAG, Entry::Store(Arc::new(device)))
+}
+
+/// Registers a release and returns its handle.
+pub fn add_release(release: Release) -> Result<u64, Failure> {
+    add(RELEASE_TAG, Entry::Release(Arc::new(release)))
+}
+
+/// The store a handle names.
+pub fn store(id: u64) -> Result<Arc<Device>, Failure> {
+    match get(id, STORE_TAG) {
+        Some(Entry::Store(device)) => Ok(device),
+        _ => Err(Failure::handle("the store handle")),
+    }
+}
+
+/// The release a handle names.
+pub fn release(id: u64) -> Result<Arc<Release>, Failure> {
+    match get(id, RELEASE_TAG) {
+        Some(Entry::Release(release)) => Ok(release),
+        _ => Err(Failure::handle("the release handle")),
+    }
+}
+
+/// Frees a store handle.
+pub fn free_store(id: u64) -> Result<(), Failure> {
+    if remove(id, STORE_TAG) {
+        Ok(())
+    } else {
+        Err(Failure::handle("the store handle"))
+    }
+}
+
+/// Frees a release handle.
+pub fn free_release(id: u64) -> Result<(), Failure> {
+    if remove(id, RELEASE_TAG) {
+        Ok(())
+    } else {
+        Err(Failure::handle("the release handle"))
+    }
+}

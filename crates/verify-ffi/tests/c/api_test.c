@@ -1,0 +1,606 @@
+/*
+ * The C interface as a C program uses it (issue 14). tests/c_api.rs compiles this file with
+ * the system C compiler against include/ampoule.h and the static library, once plainly and once
+ * under AddressSanitizer, and runs one case per test:
+ *
+ *   api_test CASE FIXTURES SCRATCH
+ *
+ * FIXTURES holds what the `ampoule` binary made (key.raw: the raw Ed25519 public key that
+ * signed everything; v1.offline and v2.offline: offline files of versions 1.0.0 and 1.1.0 of
+ * an invented trail-camera model; tampered.offline: v2.offline with one byte of its bundle
+ * flipped; policy-*.json). SCRATCH is an empty directory for the case's stores. A case prints
+ * nothing and exits 0, or names the failed check and exits 1.
+ */
+#define _DEFAULT_SOURCE /* flock */
+#define _POSIX_C_SOURCE 200809L
+#include <fcntl.h>
+#include <pthread.h>
+#include <stdarg.h>
+#include <stdint.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/file.h>
+#include <sys/stat.h>
+#include <time.h>
+#include <unistd.h>
+
+#include "ampoule.h"
+
+static const char *fixtures;
+static const char *scratch;
+
+static void fail(int line, const char *format, ...) {
+    va_list args;
+    fprintf(stderr, "api_test.c:%d: ", line);
+    va_start(args, format);
+    vfprintf(stderr, format, args);
+    va_end(args);
+    fputc('\n', stderr);
+    exit(1);
+}
+
+#define CHECK(cond)                                                                            \
+    do {                                                                                       \
+        if (!(cond)) fail(__LINE__, "check failed: %s", #cond);                                \
+    } while (0)
+
+/* The call returned `want`, its error object says the same, and its message holds `part`. */
+#define EXPECT(got, want, err, part) expect(__LINE__, #got, (got), (want), (err), (part))
+
+static void expect(int line, const char *call, int32_t got, int32_t want, const ampoule_error *err,
+                   const char *part) {
+    if (got != want) {
+        fail(line, "%s returned %d (%s), not %d (%s): %.*s", call, got, ampoule_status_name(got),
+             want, ampoule_status_name(want), (int)err->message_len, (const char *)err->message);
+    }
+    if (err->code != want) fail(line, "%s: the error object's code is %d, not %d", call, err->code, want);
+    if (err->message_len >= AMPOULE_MESSAGE_BYTES || err->message[err->message_len] != 0) {
+        fail(line, "%s: the message's length %u is wrong or it is not NUL-terminated", call,
+             err->message_len);
+    }
+    if (want == AMPOULE_OK && err->message_len != 0) fail(line, "%s: a success with a message", call);
+    if (part && !strstr((const char *)err->message, part)) {
+        fail(line, "%s: the message \"%s\" does not hold \"%s\"", call, (const char *)err->message,
+             part);
+    }
+}
+
+static uint8_t *read_file(const char *name, size_t *len) {
+    char path[4096];
+    snprintf(path, sizeof path, "%s/%s", fixtures, name);
+    FILE *f = fopen(path, "rb");
+    if (!f) fail(__LINE__, "cannot open %s", path);
+    fseek(f, 0, SEEK_END);
+    long size = ftell(f);
+    fseek(f, 0, SEEK_SET);
+    uint8_t *bytes = malloc((size_t)size + 1);
+    CHECK(bytes != NULL);
+    CHECK(fread(bytes, 1, (size_t)size, f) == (size_t)size);
+    fclose(f);
+    *len = (size_t)size;
+    return bytes;
+}
+
+static const char *fixture(const char *name) {
+    static char paths[8][4096];
+    static int next;
+    char *path = paths[next++ % 8];
+    snprintf(path, 4096, "%s/%s", fixtures, name);
+    return path;
+}
+
+static const char *store_dir(const char *name) {
+    static char path[4096];
+    snprintf(path, sizeof path, "%s/%s", scratch, name);
+    return path;
+}
+
+static uint8_t key[32];
+
+static int32_t open_store(const char *dir, const uint8_t *policy, size_t policy_len,
+                          ampoule_store *out, ampoule_error *err) {
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    return ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &keys, &keys, &keys,
+                                               "2.3.0", 5, policy, policy_len, (int64_t)time(NULL),
+                                               out, err);
+}
+
+static ampoule_store open_ok(const char *name, const char *policy_file) {
+    ampoule_error err;
+    ampoule_store store = {0};
+    size_t policy_len = 0;
+    uint8_t *policy = policy_file ? read_file(policy_file, &policy_len) : NULL;
+    EXPECT(open_store(store_dir(name), policy, policy_len, &store, &err), AMPOULE_OK, &err, NULL);
+    CHECK(store.id != 0);
+    free(policy);
+    return store;
+}
+
+static int32_t install(ampoule_store store, const char *file, ampoule_outcome *outcome,
+                       ampoule_error *err) {
+    const char *path = fixture(file);
+    return ampoule_install_offline(store, path, strlen(path), (int64_t)time(NULL), outcome, err);
+}
+
+/* A release field as a NUL-terminated string in a static buffer. */
+static const char *field(ampoule_release release, int32_t which) {
+    static char text[8192];
+    ampoule_error err;
+    size_t len = 0;
+    EXPECT(ampoule_release_field(release, which, (uint8_t *)text, sizeof text - 1, &len, &err),
+           AMPOULE_OK, &err, NULL);
+    text[len] = 0;
+    return text;
+}
+
+static const char *metadata(ampoule_release release, const char *key_text) {
+    static char text[4096];
+    ampoule_error err;
+    size_t len = 0;
+    EXPECT(ampoule_release_metadata(release, key_text, key_text ? strlen(key_text) : 0,
+                                    (uint8_t *)text, sizeof text - 1, &len, &err),
+           AMPOULE_OK, &err, NULL);
+    text[len] = 0;
+    return text;
+}
+
+static void release_free(ampoule_release release) {
+    ampoule_error err;
+    EXPECT(ampoule_release_free(release, &err), AMPOULE_OK, &err, NULL);
+}
+
+static void store_free(ampoule_store store) {
+    ampoule_error err;
+    EXPECT(ampoule_store_free(store, &err), AMPOULE_OK, &err, NULL);
+}
+
+/* ABI version and status names. */
+static void case_abi(void) {
+    CHECK(ampoule_abi_version() == AMPOULE_ABI_VERSION);
+    CHECK(strcmp(ampoule_status_name(AMPOULE_OK), "ok") == 0);
+    CHECK(strcmp(ampoule_status_name(AMPOULE_INCOMPATIBLE), "incompatible") == 0);
+    CHECK(strcmp(ampoule_status_name(AMPOULE_INVALID_HANDLE), "invalid_handle") == 0);
+    CHECK(strcmp(ampoule_status_name(-5), "unknown") == 0);
+}
+
+/* Open, install 1.0.0 then 1.1.0 offline, read labels and metadata, roll back. */
+static void case_lifecycle(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", "policy-fits.json");
+    ampoule_release current = {99};
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(current.id == 0);
+
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    ampoule_release first = outcome.installed;
+    CHECK(strcmp(field(first, AMPOULE_FIELD_NAME), "trailcam-species") == 0);
+    CHECK(strcmp(field(first, AMPOULE_FIELD_VERSION), "1.0.0") == 0);
+    CHECK(strcmp(field(first, AMPOULE_FIELD_CREATED), "2026-12-01T08:00:00Z") == 0);
+    CHECK(strcmp(field(first, AMPOULE_FIELD_REQUIRES_APP), ">=2.0.0, <3.0.0") == 0);
+    CHECK(strlen(field(first, AMPOULE_FIELD_MANIFEST_SHA256)) == 64);
+    CHECK(strlen(field(first, AMPOULE_FIELD_SIGNERS)) > 0);
+    CHECK(strstr(field(first, AMPOULE_FIELD_MANIFEST_JSON), "\"name\":\"trailcam-species\""));
+    const char *model = field(first, AMPOULE_FIELD_MODEL_PATH);
+    struct stat st;
+    CHECK(stat(model, &st) == 0 && st.st_size == 40000);
+    CHECK(strstr(model, store_dir("camera")) == model);
+    CHECK(access(field(first, AMPOULE_FIELD_LABELS_PATH), R_OK) == 0);
+
+    size_t count = 0;
+    EXPECT(ampoule_release_label_count(first, &count, &err), AMPOULE_OK, &err, NULL);
+    CHECK(count == 6);
+    const char *expected[] = {"fox", "roe deer", "wild boar", "badger", "hare", "empty frame"};
+    for (size_t i = 0; i < count; i++) {
+        uint8_t label[64];
+        size_t len = 0;
+        EXPECT(ampoule_release_label(first, i, label, sizeof label, &len, &err), AMPOULE_OK, &err,
+               NULL);
+        CHECK(len == strlen(expected[i]) && memcmp(label, expected[i], len) == 0);
+    }
+    CHECK(strcmp(metadata(first, "preprocess.colour_order"), "\"rgb\"") == 0);
+    CHECK(strcmp(metadata(first, "eval.top1"), "0.91") == 0);
+    CHECK(strcmp(metadata(first, NULL), "{\"eval\":{\"top1\":0.91},\"preprocess\":{\"colour_order\":\"rgb\"}}") == 0);
+    size_t len = 0;
+    uint8_t buf[8];
+    EXPECT(ampoule_release_metadata(first, "notes", 5, buf, sizeof buf, &len, &err),
+           AMPOULE_NOT_FOUND, &err, "has no key 'notes'");
+    release_free(first);
+
+    EXPECT(install(store, "v2.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
+    release_free(outcome.installed);
+    EXPECT(install(store, "v2.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_UP_TO_DATE && outcome.installed.id == 0);
+    /* An older file after a newer install is a replay: refused. */
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_STALE, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_REFUSED);
+
+    ampoule_release back = {0};
+    EXPECT(ampoule_rollback(store, &back, &err), AMPOULE_OK, &err, NULL);
+    CHECK(strcmp(field(back, AMPOULE_FIELD_VERSION), "1.0.0") == 0);
+    release_free(back);
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(strcmp(field(current, AMPOULE_FIELD_VERSION), "1.0.0") == 0);
+    release_free(current);
+    /* Nothing before 1.0.0: a second rollback has nothing to go back to. */
+    EXPECT(ampoule_rollback(store, &back, &err), AMPOULE_POLICY, &err, NULL);
+    store_free(store);
+}
+
+/* The shipped trust set path: a file that is not a trust set is refused by kind. */
+static void case_trust_set(void) {
+    ampoule_error err;
+    ampoule_store store = {0};
+    const char *dir = store_dir("camera");
+    const char *garbage = "{\"not\": \"a trust set\"}";
+    EXPECT(ampoule_store_open_with_trust_set(dir, strlen(dir), "stable", 6,
+                                             (const uint8_t *)garbage, strlen(garbage), "2.3.0", 5,
+                                             NULL, 0, (int64_t)time(NULL), &store, &err),
+           AMPOULE_TRUST_SET, &err, "the trust set shipped with the app");
+    CHECK(store.id == 0);
+}
+
+/* A bundle changed after signing: refused by its digest, nothing installed. */
+static void case_tampered(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "tampered.offline", &outcome, &err), AMPOULE_DIGEST, &err,
+           "but the feed declares");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_REFUSED && outcome.installed.id == 0);
+    ampoule_release current = {7};
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(current.id == 0);
+    store_free(store);
+}
+
+/* A validly signed bundle the app's policy document refuses. */
+static void case_policy_refused(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", "policy-refuses.json");
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_INCOMPATIBLE, &err,
+           "the label list lacks 'wolf', which the app requires");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_REFUSED);
+    store_free(store);
+}
+
+/* Null pointers, each refused by name. */
+static void case_null_pointers(void) {
+    ampoule_error err;
+    ampoule_store store = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir("camera");
+    EXPECT(ampoule_store_open_with_pinned_keys(NULL, 5, "stable", 6, &keys, &keys, &keys, "2.3.0",
+                                               5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "dir is a null pointer with length 5");
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, NULL, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "bundle_keys is a null pointer");
+    ampoule_role_keys no_keys = {NULL, 32, 1};
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &keys, &no_keys,
+                                               &keys, "2.3.0", 5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "feed_keys is a null pointer with length 32");
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &keys, &keys, &keys,
+                                               NULL, 0, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "app_version is empty");
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &keys, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, (int64_t)time(NULL), NULL, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "out is a null pointer");
+    /* A NULL error object: the status alone. */
+    CHECK(ampoule_store_open_with_pinned_keys(NULL, 5, "stable", 6, &keys, &keys, &keys, "2.3.0",
+                                              5, NULL, 0, 0, &store, NULL) ==
+          AMPOULE_INVALID_ARGUMENT);
+
+    store = open_ok("camera", NULL);
+    EXPECT(ampoule_install_offline(store, NULL, 0, 0, NULL, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "file is empty");
+    const char *v1 = fixture("v1.offline");
+    EXPECT(ampoule_install_offline(store, v1, strlen(v1), (int64_t)time(NULL), NULL, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "out is a null pointer");
+    EXPECT(ampoule_current(store, NULL, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "out is a null pointer");
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    ampoule_release release = outcome.installed;
+    uint8_t buf[64];
+    EXPECT(ampoule_release_field(release, AMPOULE_FIELD_NAME, buf, sizeof buf, NULL, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "the length output is a null pointer");
+    size_t len = 0;
+    EXPECT(ampoule_release_field(release, AMPOULE_FIELD_NAME, NULL, 64, &len, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "the buffer for the field is a null pointer");
+    EXPECT(ampoule_release_label_count(release, NULL, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "count is a null pointer");
+    EXPECT(ampoule_release_metadata(release, NULL, 3, buf, sizeof buf, &len, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "key is a null pointer with length 3");
+    release_free(release);
+    store_free(store);
+}
+
+/* Strings that are not UTF-8. */
+static void case_non_utf8(void) {
+    ampoule_error err;
+    ampoule_store store = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir("camera");
+    const char bad[] = {'c', 'a', 'm', (char)0xff, (char)0xfe};
+    EXPECT(ampoule_store_open_with_pinned_keys(bad, sizeof bad, "stable", 6, &keys, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "dir is not UTF-8");
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), bad, sizeof bad, &keys, &keys,
+                                               &keys, "2.3.0", 5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "channel is not UTF-8");
+    /* Overlong encoding of '/' (0xC0 0xAF): not UTF-8 either. */
+    const char overlong[] = {'2', '.', (char)0xc0, (char)0xaf};
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &keys, &keys, &keys,
+                                               overlong, sizeof overlong, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "app_version is not UTF-8");
+    store = open_ok("camera", NULL);
+    EXPECT(ampoule_install_offline(store, bad, sizeof bad, 0, NULL, &err), AMPOULE_INVALID_ARGUMENT,
+           &err, "file is not UTF-8");
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    uint8_t buf[64];
+    size_t len = 0;
+    EXPECT(ampoule_release_metadata(outcome.installed, bad, sizeof bad, buf, sizeof buf, &len,
+                                    &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "key is not UTF-8");
+    release_free(outcome.installed);
+    store_free(store);
+}
+
+/* Lengths that do not belong to their pointers, and buffers too small. */
+static void case_mismatched_lengths(void) {
+    ampoule_error err;
+    ampoule_store store = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir("camera");
+    /* A -1 length: refused before anything is read. */
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, (size_t)-1, "stable", 6, &keys, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "dir has length 18446744073709551615, over its limit");
+    /* The terminating NUL counted in the length. */
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 7, &keys, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "channel holds a NUL byte at offset 6");
+    ampoule_role_keys odd = {key, 31, 1};
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &odd, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, 0, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "bundle_keys has keys_len 31, which is not a whole");
+    ampoule_role_keys too_many = {key, 32, 2};
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &too_many, &keys,
+                                               &keys, "2.3.0", 5, NULL, 0, (int64_t)time(NULL),
+                                               &store, &err),
+           AMPOULE_KEY, &err, "a threshold of 2 signature(s) is not usable with 1 trusted key(s)");
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "stable", 6, &keys, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, -1, &store, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "now_unix -1 is not a time");
+
+    store = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    ampoule_release release = outcome.installed;
+    size_t len = 0;
+    uint8_t small[4];
+    EXPECT(ampoule_release_field(release, AMPOULE_FIELD_NAME, small, sizeof small, &len, &err),
+           AMPOULE_BUFFER_TOO_SMALL, &err, "call again with a buffer of at least 16 bytes");
+    CHECK(len == strlen("trailcam-species"));
+    /* Asking for the length with a NULL buffer of capacity 0. */
+    EXPECT(ampoule_release_label(release, 5, NULL, 0, &len, &err), AMPOULE_BUFFER_TOO_SMALL, &err,
+           NULL);
+    CHECK(len == strlen("empty frame"));
+    EXPECT(ampoule_release_label(release, 6, small, sizeof small, &len, &err), AMPOULE_NOT_FOUND,
+           &err, "label index 6 is out of range: the release has 6 labels");
+    EXPECT(ampoule_release_field(release, 42, small, sizeof small, &len, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "field 42 is not an AMPOULE_FIELD_* value");
+    release_free(release);
+    store_free(store);
+}
+
+/* Freed and double-freed handles. */
+static void case_freed_handles(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    ampoule_release release = outcome.installed;
+    release_free(release);
+    size_t count = 0;
+    EXPECT(ampoule_release_label_count(release, &count, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the release handle is not a live handle");
+    EXPECT(ampoule_release_free(release, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the release handle is not a live handle");
+    store_free(store);
+    ampoule_release current;
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the store handle is not a live handle");
+    EXPECT(install(store, "v2.offline", &outcome, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    EXPECT(ampoule_store_free(store, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    /* A new store gets a new handle: the freed one stays dead. */
+    ampoule_store again = open_ok("camera", NULL);
+    CHECK(again.id != store.id);
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    store_free(again);
+}
+
+/* Handles the library never made, and handles of the other type. */
+static void case_foreign_handles(void) {
+    ampoule_error err;
+    ampoule_release current;
+    size_t count = 0;
+    ampoule_store zero = {0}, made_up = {0x5354000000001234ull}, random = {0xdeadbeefcafef00dull};
+    EXPECT(ampoule_current(zero, &current, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    EXPECT(ampoule_current(made_up, &current, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    EXPECT(ampoule_store_free(random, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    ampoule_store store = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    /* The same number, read as the other type. */
+    ampoule_release store_as_release = {store.id};
+    ampoule_store release_as_store = {outcome.installed.id};
+    EXPECT(ampoule_release_label_count(store_as_release, &count, &err), AMPOULE_INVALID_HANDLE,
+           &err, "the release handle is not a live handle");
+    EXPECT(ampoule_current(release_as_store, &current, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the store handle is not a live handle");
+    EXPECT(ampoule_store_free(release_as_store, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    /* Both still work. */
+    EXPECT(ampoule_release_label_count(outcome.installed, &count, &err), AMPOULE_OK, &err, NULL);
+    release_free(outcome.installed);
+    store_free(store);
+}
+
+static ampoule_store shared_store;
+static const char *shared_file;
+static int32_t results[4];
+static int32_t kinds[4];
+
+static void *install_thread(void *arg) {
+    int i = (int)(intptr_t)arg;
+    ampoule_error err;
+    ampoule_outcome outcome;
+    results[i] = ampoule_install_offline(shared_store, shared_file, strlen(shared_file),
+                                         (int64_t)time(NULL), &outcome, &err);
+    kinds[i] = outcome.kind;
+    if (outcome.kind == AMPOULE_OUTCOME_INSTALLED) release_free(outcome.installed);
+    return NULL;
+}
+
+/* Two updates at once on one store: one runs, the other is told the store is locked. */
+static void case_two_updates_at_once(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    /* Another updater (here: this process, as a second program would) holds the lock. */
+    char lock[4096];
+    snprintf(lock, sizeof lock, "%s/downloads/lock", store_dir("camera"));
+    ampoule_release current;
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    mkdir(store_dir("camera/downloads"), 0700);
+    int fd = open(lock, O_RDWR | O_CREAT, 0600);
+    CHECK(fd >= 0);
+    CHECK(flock(fd, LOCK_EX) == 0);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_LOCKED, &err,
+           "another update is running on store");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_FAILED);
+    CHECK(flock(fd, LOCK_UN) == 0);
+    close(fd);
+
+    /* Four threads at once on one handle: exactly one installs; the others find the store
+     * locked or, having started after it finished, up to date. */
+    shared_store = store;
+    shared_file = fixture("v1.offline");
+    pthread_t threads[4];
+    for (int i = 0; i < 4; i++) {
+        CHECK(pthread_create(&threads[i], NULL, install_thread, (void *)(intptr_t)i) == 0);
+    }
+    int installed = 0;
+    for (int i = 0; i < 4; i++) {
+        CHECK(pthread_join(threads[i], NULL) == 0);
+        if (kinds[i] == AMPOULE_OUTCOME_INSTALLED) {
+            installed++;
+            CHECK(results[i] == AMPOULE_OK);
+        } else if (kinds[i] == AMPOULE_OUTCOME_FAILED) {
+            CHECK(results[i] == AMPOULE_LOCKED);
+        } else {
+            CHECK(kinds[i] == AMPOULE_OUTCOME_UP_TO_DATE && results[i] == AMPOULE_OK);
+        }
+    }
+    CHECK(installed == 1);
+    store_free(store);
+}
+
+static void expect_policy_refused(const uint8_t *policy, size_t len, const char *part) {
+    ampoule_error err;
+    ampoule_store store = {0};
+    EXPECT(open_store(store_dir("camera"), policy, len, &store, &err), AMPOULE_POLICY_DOCUMENT,
+           &err, part);
+    CHECK(store.id == 0);
+}
+
+#define POLICY(text, part) expect_policy_refused((const uint8_t *)(text), strlen(text), (part))
+
+/* Policy documents that are not JSON, repeat a key, name an unknown one or a wrong type. */
+static void case_policy_document_malformed(void) {
+    POLICY("{\"policy_format\": 1", "policy document: not valid: EOF while parsing an object");
+    POLICY("{\"policy_format\": 1, \"policy_format\": 1}",
+           "policy document: not valid: key 'policy_format' appears twice");
+    POLICY("{\"policy_format\": 1, \"labels\": {\"required\": [\"fox\"], \"required\": []}}",
+           "key 'labels.required' appears twice");
+    POLICY("{\"policy_format\": 1, \"modle\": {}}", "policy document: unknown key 'modle'");
+    POLICY("{\"policy_format\": 1, \"model\": {\"inputs\": [{\"name\": \"image\", \"dtype\": "
+           "\"float33\"}]}}",
+           "policy document: model.inputs[0].dtype: 'float33' is not a tensor element type");
+    POLICY("{\"bundle_name\": \"trailcam-species\"}", "policy document: it has no policy_format");
+    const char not_utf8[] = "{\"policy_format\": 1, \"about\": \"\xff\"}";
+    POLICY(not_utf8, "policy document: not valid: invalid unicode code point");
+}
+
+/* Policy documents over a cap: size, nesting, string length, item count. */
+static void case_policy_document_over_caps(void) {
+    size_t big = 70000;
+    char *huge = malloc(big + 1);
+    CHECK(huge != NULL);
+    memset(huge, ' ', big);
+    memcpy(huge, "{\"policy_format\": 1}", 20);
+    huge[big] = 0;
+    POLICY(huge, "policy document: it is 70000 bytes, over the limit of 65536 bytes");
+    free(huge);
+    POLICY("{\"policy_format\": 1, \"metadata\": {\"notes\": [[[[[[[1]]]]]]]}}",
+           "nested deeper than 8 levels");
+    char *long_string = malloc(2000);
+    CHECK(long_string != NULL);
+    snprintf(long_string, 2000, "{\"policy_format\": 1, \"about\": \"%01100d\"}", 0);
+    POLICY(long_string, "about: a string of 1100 bytes, over the limit of 1024 bytes");
+    free(long_string);
+    char *many = malloc(20000);
+    CHECK(many != NULL);
+    size_t at = (size_t)sprintf(many, "{\"policy_format\": 1, \"labels\": {\"required\": [");
+    for (int i = 0; i < 1100; i++) at += (size_t)sprintf(many + at, "%s\"l%d\"", i ? "," : "", i);
+    sprintf(many + at, "]}}");
+    POLICY(many, "labels.required: more than 1024 items");
+    free(many);
+}
+
+int main(int argc, char **argv) {
+    if (argc != 4) {
+        fprintf(stderr, "usage: api_test CASE FIXTURES SCRATCH\n");
+        return 2;
+    }
+    fixtures = argv[2];
+    scratch = argv[3];
+    size_t key_len = 0;
+    uint8_t *raw = read_file("key.raw", &key_len);
+    CHECK(key_len == sizeof key);
+    memcpy(key, raw, sizeof key);
+    free(raw);
+    static const struct {
+        const char *name;
+        void (*run)(void);
+    } cases[] = {
+        {"abi", case_abi},
+        {"lifecycle", case_lifecycle},
+        {"trust_set", case_trust_set},
+        {"tampered", case_tampered},
+        {"policy_refused", case_policy_refused},
+        {"null_pointers", case_null_pointers},
+        {"non_utf8", case_non_utf8},
+        {"mismatched_lengths", case_mismatched_lengths},
+        {"freed_handles", case_freed_handles},
+        {"foreign_handles", case_foreign_handles},
+        {"two_updates_at_once", case_two_updates_at_once},
+        {"policy_document_malformed", case_policy_document_malformed},
+        {"policy_document_over_caps", case_policy_document_over_caps},
+    };
+    for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+        if (strcmp(cases[i].name, argv[1]) == 0) {
+            cases[i].run();
+            return 0;
+        }
+    }
+    fprintf(stderr, "no case named %s\n", argv[1]);
+    return 2;
+}
