@@ -361,3 +361,45 @@ fn issue14_the_cli_refuses_a_hostile_policy_document_as_a_usage_error() {
         )
     );
 }
+
+#[test]
+fn issue14_format_md_s_example_document_reads_as_the_builder_would_build_it() {
+    let format = include_str!("../FORMAT.md");
+    let section = format
+        .split("## The policy document")
+        .nth(1)
+        .expect("FORMAT.md has the policy document's section");
+    let json = section
+        .split("```json\n")
+        .nth(1)
+        .and_then(|rest| rest.split("```").next())
+        .expect("the section's example");
+    let document = PolicyDocument::parse(json.as_bytes()).expect("the example reads");
+    assert_eq!(document.bundle_name.as_deref(), Some("trailcam-species"));
+    assert_eq!(document.max_bundle_bytes, Some(64 << 20));
+    let built = ampoule_verify::CompatibilityPolicy::builder()
+        .format(ampoule_verify::ModelFormat::Onnx)
+        .max_opset(17)
+        .weights_8bit(false)
+        .input(
+            ampoule_verify::TensorSpec::new("image")
+                .dtype("float32")
+                .expect("dtype")
+                .shape("[*, 3, 96, 96]".parse().expect("shape")),
+        )
+        .output(
+            ampoule_verify::TensorSpec::new("species")
+                .dtype("float32")
+                .expect("dtype")
+                .shape("[*, 7]".parse().expect("shape")),
+        )
+        .classifier_output("species")
+        .class_dim(1)
+        .label_count(2..=64)
+        .require_label("empty frame")
+        .require_metadata("preprocess.colour_order", "rgb")
+        .require_metadata("preprocess.input_size", 96)
+        .build()
+        .expect("the builder's policy");
+    assert_eq!(document.compatibility, built);
+}

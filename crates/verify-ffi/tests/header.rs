@@ -324,3 +324,45 @@ fn issue14_the_shared_library_exports_exactly_the_header_s_functions() {
     let declared: Vec<String> = header_functions().into_keys().collect();
     assert_eq!(exported, declared);
 }
+
+#[test]
+fn readme_c_example_compiles_against_the_header() {
+    let readme = crate_file("../../README.md");
+    let section = readme
+        .split("## Using ampoule from Kotlin, Swift or C++")
+        .nth(1)
+        .expect("the README's section for other languages");
+    let example = section
+        .split("```c\n")
+        .nth(1)
+        .and_then(|rest| rest.split("```").next())
+        .expect("the section's C example");
+    let mut cc = std::process::Command::new("cc")
+        .args([
+            "-std=c11",
+            "-Wall",
+            "-Wextra",
+            "-Werror",
+            "-fsyntax-only",
+            "-x",
+            "c",
+            "-I",
+        ])
+        .arg(Path::new(env!("CARGO_MANIFEST_DIR")).join("include"))
+        .arg("-")
+        .stdin(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("the system C compiler `cc` runs");
+    std::io::Write::write_all(
+        &mut cc.stdin.take().expect("cc's stdin"),
+        example.as_bytes(),
+    )
+    .expect("the example goes to cc");
+    let out = cc.wait_with_output().expect("cc finishes");
+    assert!(
+        out.status.success(),
+        "the README's C example does not compile:\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}

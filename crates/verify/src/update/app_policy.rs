@@ -19,7 +19,7 @@ impl App {
     ///   "model": { "inputs": [{ "name": "image", "dtype": "float32", "shape": "[*, 3, 96, 96]" }] },
     ///   "labels": { "min_count": 2, "required": ["empty frame"] }
     /// }"#;
-    /// ampoule_verify::App::new(trust, "2.3.0".parse()?).policy_document(document)
+    /// ampoule_verify::App::new(trust, ampoule_verify::Version::new(2, 3, 0)).policy_document(document)
     /// # }
     /// ```
     ///
