@@ -120,8 +120,8 @@ version. Applying one takes about 17 MiB of memory whatever the model's size.")]
 
 Exit code 1 means the bundle was refused; the message says which check failed.
 
-A policy document (FORMAT.md, \"The policy document\"; only policy_format is required),
-the same file the C interface reads:
+A policy document (only policy_format is required; FORMAT.md has every key), the
+same file the C interface reads:
   {\"policy_format\": 1, \"bundle_name\": \"trailcam-species\",
    \"model\": {\"inputs\": [{\"name\": \"image\", \"dtype\": \"float32\",
                           \"shape\": \"[*, 3, 96, 96]\"}],

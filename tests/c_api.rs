@@ -165,6 +165,14 @@ fn make_fixtures(d: &Path) {
     offline[at + bundle.len() / 2] ^= 0x01;
     std::fs::write(d.join("tampered.offline"), offline).expect("tampered.offline");
 
+    // A trust set holding the same key for every role, for the shipped-trust-set path.
+    ok(
+        d,
+        &[
+            "trust", "init", "--key", "k.pub", "--expires-in", "365d", "-o", "trust-1.json",
+        ],
+    );
+    ok(d, &["trust", "sign", "trust-1.json", "--key", "k.pem"]);
     let pem = std::fs::read_to_string(d.join("k.pub")).expect("k.pub");
     let key = PublicKey::from_pem(&pem).expect("a public key");
     std::fs::write(d.join("key.raw"), key.as_bytes()).expect("key.raw");
@@ -220,7 +228,7 @@ fn issue14_c_open_install_offline_read_labels_and_metadata_roll_back() {
 }
 
 #[test]
-fn issue14_c_a_file_that_is_no_trust_set_is_refused_at_open() {
+fn issue14_c_a_shipped_trust_set_opens_and_one_that_is_none_is_refused() {
     case("trust_set");
 }
 

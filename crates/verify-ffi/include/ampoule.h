@@ -153,11 +153,11 @@ typedef struct ampoule_outcome {
 } ampoule_outcome;
 
 /* The ABI version the library implements; refuse to run if it is not AMPOULE_ABI_VERSION.
- * Never fails. */
+ * Never fails. Concurrency: any thread, any time. */
 uint32_t ampoule_abi_version(void);
 
 /* A status code's name ("incompatible"), or "unknown": a static NUL-terminated string the
- * caller must not free. Never fails. */
+ * caller must not free. Never fails. Concurrency: any thread, any time. */
 const char *ampoule_status_name(int32_t status);
 
 /* Opens (or creates) the store in dir for the app, following channel. trust_set: the exact
@@ -166,7 +166,9 @@ const char *ampoule_status_name(int32_t status);
  * or NULL with length 0 for none. now_unix: the clock, in seconds since 1970. On success *out
  * is a store handle to free with ampoule_store_free. Errors: AMPOULE_INVALID_ARGUMENT,
  * AMPOULE_POLICY_DOCUMENT, AMPOULE_TRUST_SET or AMPOULE_SIGNATURE (an unusable trust set),
- * AMPOULE_SETTINGS (a channel name no feed can carry), AMPOULE_STORE, AMPOULE_IO. */
+ * AMPOULE_SETTINGS (a channel name no feed can carry), AMPOULE_STORE, AMPOULE_IO.
+ * Concurrency: any thread, with any call; several stores may be open at once, even on one
+ * directory, and their updates exclude each other through the store's lock. */
 int32_t ampoule_store_open_with_trust_set(const char *dir, size_t dir_len,
                                           const char *channel, size_t channel_len,
                                           const uint8_t *trust_set, size_t trust_set_len,
@@ -178,7 +180,8 @@ int32_t ampoule_store_open_with_trust_set(const char *dir, size_t dir_len,
 /* As ampoule_store_open_with_trust_set, with keys pinned per role instead of a trust set:
  * bundle_keys sign bundles, feed_keys feeds, tree_head_keys the ledger's tree heads. A key
  * that holds two roles is passed for both. Pinned keys cannot rotate without an app update;
- * prefer the trust set. Also AMPOULE_KEY for a key that is not a usable Ed25519 key. */
+ * prefer the trust set. Also AMPOULE_KEY for a key that is not a usable Ed25519 key, or a
+ * threshold outside 1 to the number of keys. Concurrency: as ampoule_store_open_with_trust_set. */
 int32_t ampoule_store_open_with_pinned_keys(const char *dir, size_t dir_len,
                                             const char *channel, size_t channel_len,
                                             const ampoule_role_keys *bundle_keys,
@@ -190,7 +193,8 @@ int32_t ampoule_store_open_with_pinned_keys(const char *dir, size_t dir_len,
                                             ampoule_error *err);
 
 /* Frees a store handle. A second free of the same handle is AMPOULE_INVALID_HANDLE. A call
- * running on the store in another thread finishes first on its own reference. */
+ * running on the store in another thread finishes first on its own reference. Concurrency:
+ * any thread, with any call on the store. */
 int32_t ampoule_store_free(ampoule_store store, ampoule_error *err);
 
 /* Runs one update from an offline file (made by `ampoule offline`) at clock time now_unix:
@@ -206,20 +210,26 @@ int32_t ampoule_install_offline(ampoule_store store, const char *file, size_t fi
 
 /* The current release, checked in full before the app loads it (manifest digest, signatures,
  * policy, every file's size and SHA-256: one read of the model). *out is a release handle to
- * free, or {0} before the first install. */
+ * free, or {0} before the first install. Concurrency: any thread, with any call, an update of
+ * the same store included: it never waits for one, and sees the old or the new release. */
 int32_t ampoule_current(ampoule_store store, ampoule_release *out, ampoule_error *err);
 
 /* Makes the previous release current again (after the app's own health check failed on a new
  * model); it is checked in full first. *out is the release now current, a handle to free. The
- * release rolled back from stays refused. AMPOULE_POLICY when there is no previous release;
- * AMPOULE_LOCKED while an update runs. */
+ * release rolled back from stays refused. AMPOULE_POLICY when there is no previous release.
+ * Concurrency: any thread; it excludes updates and other rollbacks of the store as an update
+ * does (AMPOULE_LOCKED while one runs). */
 int32_t ampoule_rollback(ampoule_store store, ampoule_release *out, ampoule_error *err);
 
-/* Frees a release handle. A second free is AMPOULE_INVALID_HANDLE. */
+/* Frees a release handle. A second free is AMPOULE_INVALID_HANDLE. Concurrency: any thread;
+ * reads of the release running in other threads finish first on their own reference. */
 int32_t ampoule_release_free(ampoule_release release, ampoule_error *err);
 
 /* One field of the release (AMPOULE_FIELD_*) as UTF-8 text, copied into buf (cap bytes);
- * *len receives its length. */
+ * *len receives its length. Concurrency (this and the three calls below): any thread, several
+ * at once on the same release, each with its own buf, len and err. A release handle is a
+ * snapshot: what it reads stays the same after an update or rollback, but its files on disk
+ * stay only while it is the store's current or previous release. */
 int32_t ampoule_release_field(ampoule_release release, int32_t field, uint8_t *buf, size_t cap,
                               size_t *len, ampoule_error *err);
 

@@ -231,7 +231,8 @@ static void case_lifecycle(void) {
     store_free(store);
 }
 
-/* The shipped trust set path: a file that is not a trust set is refused by kind. */
+/* The shipped trust set path: a file that is not a trust set is refused by kind; the genuine
+ * one opens the store. */
 static void case_trust_set(void) {
     ampoule_error err;
     ampoule_store store = {0};
@@ -242,6 +243,19 @@ static void case_trust_set(void) {
                                              NULL, 0, (int64_t)time(NULL), &store, &err),
            AMPOULE_TRUST_SET, &err, "the trust set shipped with the app");
     CHECK(store.id == 0);
+    /* The genuine set: the store opens, and a bundle its keys signed installs. */
+    size_t set_len = 0;
+    uint8_t *set = read_file("trust-1.json", &set_len);
+    EXPECT(ampoule_store_open_with_trust_set(dir, strlen(dir), "stable", 6, set, set_len, "2.3.0",
+                                             5, NULL, 0, (int64_t)time(NULL), &store, &err),
+           AMPOULE_OK, &err, NULL);
+    free(set);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.0.0") == 0);
+    release_free(outcome.installed);
+    store_free(store);
 }
 
 /* A bundle changed after signing: refused by its digest, nothing installed. */
