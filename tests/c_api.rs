@@ -169,7 +169,14 @@ fn make_fixtures(d: &Path) {
     ok(
         d,
         &[
-            "trust", "init", "--key", "k.pub", "--expires-in", "365d", "-o", "trust-1.json",
+            "trust",
+            "init",
+            "--key",
+            "k.pub",
+            "--expires-in",
+            "365d",
+            "-o",
+            "trust-1.json",
         ],
     );
     ok(d, &["trust", "sign", "trust-1.json", "--key", "k.pem"]);
