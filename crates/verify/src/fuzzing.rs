@@ -30,6 +30,7 @@ use crate::check::bundle::Verifier;
 use crate::check::feed::{Feed, FeedVerifier, Release, SignedFeed, TrustSetRef};
 use crate::check::ledger_proof::LedgerVerifier;
 use crate::check::policy::CompatibilityPolicy;
+use crate::check::policy_document::PolicyDocument;
 use crate::check::trust::{
     DocumentKind, KeyEntry, Thresholds, TrustSet, TrustSetBody, TrustSetFile,
 };
@@ -520,6 +521,51 @@ pub fn trust_set_signed(data: &[u8]) {
     }
     let _ = TrustSet::resume(&initial_bytes, Some(&file), now());
     let _ = TrustSet::renew(&initial_bytes, None, &file, now());
+}
+
+/// The app's policy document every setting of which the seed states (FORMAT.md's example).
+const SEED_POLICY: &str = r#"{
+  "policy_format": 1,
+  "about": "what the trail camera's code feeds the species model and reads from it",
+  "bundle_name": "trailcam-species",
+  "max_bundle_bytes": 67108864,
+  "max_unpacked_bytes": 268435456,
+  "model": {
+    "format": "onnx",
+    "max_opset": 17,
+    "weights_8bit": false,
+    "inputs": [{ "name": "image", "dtype": "float32", "shape": "[*, 3, 96, 96]" }],
+    "outputs": [{ "name": "species", "dtype": "float32", "shape": "[*, 7]" }],
+    "classifier_output": "species",
+    "class_dim": 1
+  },
+  "labels": { "min_count": 2, "max_count": 64, "required": ["empty frame"] },
+  "metadata": { "preprocess.colour_order": "rgb", "preprocess.input_size": 96 }
+}"#;
+
+/// `policy_document`: the bytes as the app's policy document (what the C interface's open
+/// calls and the CLI's `--policy` pass on): the strict reader with its caps, and, when it
+/// reads, the policy's checks of a real ONNX classifier's signature and six labels.
+pub fn policy_document(data: &[u8]) {
+    static SIGNATURE: OnceLock<Option<crate::format::model::ModelSignature>> = OnceLock::new();
+    let Ok(document) = PolicyDocument::parse(data) else {
+        return;
+    };
+    let signature = SIGNATURE.get_or_init(|| {
+        let model = include_bytes!("../tests/data/models/trailcam-f32.onnx");
+        crate::format::model::read_model_signature("model.onnx", &model[..], model.len() as u64)
+            .expect("the seed model reads")
+    });
+    let labels = [
+        "fox",
+        "roe deer",
+        "wild boar",
+        "badger",
+        "hare",
+        "empty frame",
+    ];
+    let _ = document.compatibility.check(signature.as_ref(), &labels);
+    let _ = document.compatibility.check(None, &labels[..1]);
 }
 
 /// `tree_head`: the bytes as a signed tree head (parse, caps, signature check, and its JSON
@@ -1338,6 +1384,12 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
             "release.ampoule-offline".into(),
             offline_file(&envelope(&full_feed), &bundle),
         ),
+        ("policy_document", "full.json".into(), SEED_POLICY.into()),
+        (
+            "policy_document",
+            "smallest.json".into(),
+            br#"{"policy_format": 1}"#.to_vec(),
+        ),
     ];
     // Real and reference models (crates/verify/tests/data/*/README.md names their sources).
     for (name, bytes) in [
@@ -1402,6 +1454,7 @@ pub fn run(target: &str, data: &[u8]) -> bool {
         "store" => store,
         "offline" => offline,
         "delta" => delta,
+        "policy_document" => policy_document,
         "onnx" => onnx,
         "safetensors" => safetensors,
         _ => return false,

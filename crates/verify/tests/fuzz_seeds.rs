@@ -126,6 +126,10 @@ fn fuzz_seeds_that_stand_for_valid_documents_pass_every_check() {
         "{:?}",
         report.outcome.error()
     );
+    let policy =
+        ampoule_verify::model::PolicyDocument::parse(&seed("policy_document", "full.json"))
+            .expect("the policy document seed reads");
+    assert_eq!(policy.bundle_name.as_deref(), Some("trailcam-species"));
     fuzzing::clean_up();
 }
 
