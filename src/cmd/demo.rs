@@ -18,16 +18,15 @@ use ampoule_verify::digest::hash_reader;
 use ampoule_verify::feed::rollout_bucket;
 use ampoule_verify::fetch::Transfer;
 use ampoule_verify::format::BUNDLE_EXTENSION;
-use ampoule_verify::model::{TensorSpec, read_model_signature_file};
+use ampoule_verify::model::{PolicyDocument, read_model_signature_file};
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::trust::{KeyEntry, Thresholds, TrustSetBody};
 use ampoule_verify::{
-    App, CompatibilityPolicy, Device, Digest, DocumentKind, Outcome, PublicKey, Report, Store,
-    Timestamp, Trust, TrustSetFile, TrustedKeys, Verifier, dangerous, in_rollout,
+    App, Device, Digest, DocumentKind, Outcome, PublicKey, Report, Store, Timestamp, Trust,
+    TrustSetFile, TrustedKeys, Verifier, dangerous, in_rollout,
 };
 use anyhow::{Context, Result, bail};
 use semver::{Version, VersionReq};
-use serde::Deserialize;
 use serde_json::{Value, json};
 
 use crate::cli::DemoArgs;
@@ -228,9 +227,12 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
     )?;
 
     let trusted: TrustedKeys = [public.clone()].into_iter().collect();
-    let camera = Verifier::new(trusted.clone(), Version::parse(APP_VERSION)?)?
-        .require_name("trailcam-species")
-        .compatibility(camera_policy()?);
+    let policy = camera_policy()?;
+    let mut camera = Verifier::new(trusted.clone(), Version::parse(APP_VERSION)?)?
+        .compatibility(policy.compatibility);
+    if let Some(name) = policy.bundle_name {
+        camera = camera.require_name(name);
+    }
 
     // The release tree, served from this process as any static web server would serve it.
     let tree = dir.join("release");
@@ -260,8 +262,7 @@ pub fn run(args: DemoArgs, out: &Output) -> Result<()> {
             Trust::shipped_trust_set(trust_v1.clone())?,
             Version::parse(APP_VERSION)?,
         )
-        .bundle_name("trailcam-species")?
-        .compatibility(camera_policy()?)
+        .policy_document(input("camera-policy.json").as_bytes())?
         .device_id(id)?;
         let store_dir = dir.join("cameras").join(id);
         Ok(Camera {
@@ -662,60 +663,13 @@ fn trust_set(
     Ok(file.to_json())
 }
 
-/// The camera app's compatibility policy as demo/camera-policy.json writes it down.
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct PolicyFile {
-    /// For people reading the file.
-    #[serde(rename = "about")]
-    _about: String,
-    input: TensorFile,
-    output: TensorFile,
-    classifier_output: String,
-    label_count: CountFile,
-    required_labels: Vec<String>,
-}
-
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct TensorFile {
-    name: String,
-    dtype: String,
-    shape: Option<String>,
-}
-
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct CountFile {
-    min: usize,
-    max: usize,
-}
-
-impl TensorFile {
-    fn spec(&self) -> Result<TensorSpec> {
-        let spec = TensorSpec::new(self.name.as_str()).dtype(&self.dtype)?;
-        Ok(match &self.shape {
-            Some(shape) => spec.shape(shape.parse()?),
-            None => spec,
-        })
-    }
-}
-
-/// What the camera app's code feeds and reads (demo/camera-policy.json): 96 x 96 RGB float
-/// frames in, one score per species out, and an "empty frame" class it relies on to skip
-/// frames.
-fn camera_policy() -> Result<CompatibilityPolicy> {
-    let file: PolicyFile = serde_json::from_str(input("camera-policy.json"))
-        .context("the demo's camera-policy.json is not a policy file")?;
-    let mut policy = CompatibilityPolicy::builder()
-        .input(file.input.spec()?)
-        .output(file.output.spec()?)
-        .classifier_output(file.classifier_output.as_str())
-        .label_count(file.label_count.min..=file.label_count.max);
-    for label in &file.required_labels {
-        policy = policy.require_label(label.as_str());
-    }
-    Ok(policy.build()?)
+/// The camera app's policy document, demo/camera-policy.json (FORMAT.md, "The policy
+/// document"): what its code feeds and reads (96 x 96 RGB float frames in, one score per
+/// species out), the model line it runs, and the "empty frame" class it relies on to skip
+/// frames. The same file `ampoule verify --policy` and the C interface read.
+fn camera_policy() -> Result<PolicyDocument> {
+    PolicyDocument::parse(input("camera-policy.json").as_bytes())
+        .context("the demo's camera-policy.json is not a policy document")
 }
 
 /// What to pack for one demo release: the model, its labels, and the recorded signature.
