@@ -182,6 +182,11 @@ impl Verifier {
         self.signers.keys()
     }
 
+    /// The app's compatibility policy, for the checks of files a delta rebuilt.
+    pub(crate) fn compatibility_policy(&self) -> Option<&CompatibilityPolicy> {
+        self.compatibility.as_ref()
+    }
+
     /// Opens and verifies the bundle at `path`.
     pub fn verify_path(&self, path: &Path) -> Result<VerifiedBundle> {
         let file = File::open(path)

@@ -23,6 +23,7 @@ use crate::format::manifest::Manifest;
 use crate::readahead::ReadAhead;
 use crate::format::tar;
 use crate::check::bundle::VerifiedBundle;
+use crate::check::policy::CompatibilityPolicy;
 use crate::progress::{Progress, ProgressFn, Stage};
 
 const ARCHIVE: &str = "payload";
@@ -532,6 +533,62 @@ pub(crate) fn unpack_to(
     Ok(labels)
 }
 
+
+/// The checks a release's files get once they are all written and each matched the manifest,
+/// whether they were unpacked from a bundle or rebuilt from a delta: the labels the app
+/// requires, and the model's signature read again.
+pub(crate) fn check_unpacked(
+    manifest: &Manifest,
+    compatibility: Option<&CompatibilityPolicy>,
+    labels: &[String],
+    dir: &Dir,
+) -> Result<()> {
+    if let Some(policy) = compatibility {
+        policy.check_required_labels(labels)?;
+    }
+    check_model_signature(manifest, dir)
+}
+
+/// Reads the unpacked model's signature again, under the reading rules and with the
+/// classifier the signed manifest names, and requires it to be the record the manifest
+/// holds, so a manifest cannot describe a different model than it ships, and a bundle packed
+/// under older rules still installs.
+fn check_model_signature(manifest: &Manifest, dir: &Dir) -> Result<()> {
+    let Some(recorded) = &manifest.model else {
+        // Packed as opaque: the manifest makes no claim about the model's structure.
+        return Ok(());
+    };
+    let model = manifest.model();
+    let shown = dir.join(&model.path);
+    let file = dir.open_file(&model.path).map_err(|e| {
+        Error::io(
+            format!("cannot open {}", shown.display()),
+            e.into_io(),
+        )
+    })?;
+    let len = file
+        .metadata()
+        .map_err(|e| Error::io(format!("cannot read {}", shown.display()), e))?
+        .len();
+    let found = crate::format::model::read_as(
+        &model.path,
+        file,
+        len,
+        recorded.rules,
+        recorded.classifier.as_ref(),
+    )?;
+    if found.as_ref() != Some(recorded) {
+        return Err(Error::new(
+            ErrorKind::Manifest,
+            format!(
+                "{} does not have the model signature its manifest records; the bundle was packed wrongly",
+                model.path
+            ),
+        ));
+    }
+    Ok(())
+}
+
 /// Decompression of a verified bundle: the payload layer's part of [`VerifiedBundle`], which
 /// the checks below it only ever hand on.
 impl VerifiedBundle {
@@ -554,8 +611,7 @@ impl VerifiedBundle {
 
     /// The checks that need the unpacked files: required labels, and the model's signature.
     fn last_checks(&self, labels: &[String], staged: &Dir) -> Result<()> {
-        self.check_labels(labels)?;
-        self.check_model_signature(staged)
+        check_unpacked(&self.manifest, self.compatibility.as_ref(), labels, staged)
     }
 
     fn check_labels(&self, labels: &[String]) -> Result<()> {
@@ -563,46 +619,6 @@ impl VerifiedBundle {
             Some(policy) => policy.check_required_labels(labels),
             None => Ok(()),
         }
-    }
-
-    /// Reads the unpacked model's signature again, under the reading rules and with the
-    /// classifier the signed manifest names, and requires it to be the record the manifest
-    /// holds, so a manifest cannot describe a different model than it ships, and a bundle packed
-    /// under older rules still installs.
-    fn check_model_signature(&self, dir: &Dir) -> Result<()> {
-        let Some(recorded) = &self.manifest.model else {
-            // Packed as opaque: the manifest makes no claim about the model's structure.
-            return Ok(());
-        };
-        let model = self.manifest.model();
-        let shown = dir.join(&model.path);
-        let file = dir.open_file(&model.path).map_err(|e| {
-            Error::io(
-                format!("cannot open {}", shown.display()),
-                e.into_io(),
-            )
-        })?;
-        let len = file
-            .metadata()
-            .map_err(|e| Error::io(format!("cannot read {}", shown.display()), e))?
-            .len();
-        let found = crate::format::model::read_as(
-            &model.path,
-            file,
-            len,
-            recorded.rules,
-            recorded.classifier.as_ref(),
-        )?;
-        if found.as_ref() != Some(recorded) {
-            return Err(Error::new(
-                ErrorKind::Manifest,
-                format!(
-                    "{} does not have the model signature its manifest records; the bundle was packed wrongly",
-                    model.path
-                ),
-            ));
-        }
-        Ok(())
     }
 
     fn source(&self) -> crate::payload::unpack::Source<'_> {

@@ -59,7 +59,7 @@ pub(crate) fn fingerprint(app: &App, held: &Held, bundles: &Verifier) -> Digest 
     )
 }
 
-/// The kinds a remembered refusal may carry: refusals only, never a failure worth retrying.
+/// The kinds a remembered refusal may carry: refusals, and for a delta a failed transfer.
 fn kind_named(name: &str) -> Option<ErrorKind> {
     let kinds = [
         ErrorKind::Malformed,
@@ -75,6 +75,8 @@ fn kind_named(name: &str) -> Option<ErrorKind> {
         ErrorKind::Feed,
         ErrorKind::Stale,
         ErrorKind::TrustSet,
+        // Only ever remembered for a delta; a bundle is skipped only for a refusal.
+        ErrorKind::Network,
     ];
     kinds.into_iter().find(|k| format!("{k:?}") == name)
 }
@@ -106,9 +108,22 @@ pub(crate) fn recall(dir: &Dir, sha256: &Digest, app: &Digest, now: Timestamp) -
 /// Remembers that the bundle `sha256` was refused with `error` under `app`. Best effort: a
 /// failure to write only means the next update may download the bundle again.
 pub(crate) fn remember(dir: &Dir, sha256: &Digest, error: &Error, app: &Digest, now: Timestamp) {
-    if !error.kind().is_refusal() {
-        return;
+    if error.kind().is_refusal() {
+        remember_any(dir, sha256, error, app, now);
     }
+}
+
+/// Remembers the file `sha256` with `error` of any kind: for a delta (issue 13), which the
+/// update also remembers when it could not be downloaded, so that the next update goes
+/// straight to the full bundle and resumes it. Remembering a delta never costs more than the
+/// full bundle, which a device without deltas always downloads.
+pub(crate) fn remember_any(
+    dir: &Dir,
+    sha256: &Digest,
+    error: &Error,
+    app: &Digest,
+    now: Timestamp,
+) {
     let kept = Remembered {
         sha256: *sha256,
         kind: format!("{:?}", error.kind()),
