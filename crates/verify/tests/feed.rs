@@ -474,7 +474,7 @@ fn issue13_a_feed_lists_deltas_within_their_rules() {
 }
 
 #[test]
-fn issue13_a_delta_is_fetched_beside_its_bundle() {
+fn a_delta_is_fetched_beside_its_bundle() {
     // RFC 3986 section 5.2: `<sha256>.ampoule-delta` resolved against the bundle's URL.
     let r = release();
     let d = delta(1, 1000);
