@@ -277,7 +277,7 @@ fn delivery(report: &Report) -> Option<String> {
         .map_or(0, |r| r.size);
     match (&report.delta, &report.delta_refused) {
         (Some(delta), _) => Some(format!(
-            "downloaded {bytes} as delta {delta} instead of the {} bundle",
+            "downloaded {bytes} (delta {delta}) instead of the bundle's {}",
             count(bundle, "byte", "bytes")
         )),
         (None, Some(why)) => Some(format!("downloaded {bytes}, the full bundle: {why}")),

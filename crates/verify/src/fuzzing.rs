@@ -757,6 +757,7 @@ pub fn store(data: &[u8]) {
                 &Digest::of(b"offered"),
                 &Digest::of(b"app"),
                 now(),
+                "bundle",
             );
         }
         let _ = device.gc();

@@ -83,7 +83,14 @@ fn kind_named(name: &str) -> Option<ErrorKind> {
 
 /// The refusal remembered for the bundle `sha256` under `app`, if one is and it is less than
 /// a day old by `now`.
-pub(crate) fn recall(dir: &Dir, sha256: &Digest, app: &Digest, now: Timestamp) -> Option<Error> {
+/// `what` names the file in the message: `bundle`, or `delta`.
+pub(crate) fn recall(
+    dir: &Dir,
+    sha256: &Digest,
+    app: &Digest,
+    now: Timestamp,
+    what: &str,
+) -> Option<Error> {
     let file: File = dir.open_file(REFUSED_FILE).ok()?;
     let mut bytes = Vec::new();
     file.take(MAX_BYTES + 1).read_to_end(&mut bytes).ok()?;
@@ -97,7 +104,7 @@ pub(crate) fn recall(dir: &Dir, sha256: &Digest, app: &Digest, now: Timestamp) -
     Some(Error::new(
         kind,
         format!(
-            "{reason} (refused {} min ago and remembered: this bundle is not downloaded again \
+            "{reason} (refused {} min ago and remembered: this {what} is not downloaded again \
              until the feed offers another one, the app or its trust changes, or {} hours pass)",
             age / 60,
             REMEMBER_SECS / 3600

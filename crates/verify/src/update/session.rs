@@ -875,8 +875,9 @@ impl<'d> Session<'d> {
         // A bundle refused before, under the same app and trust, is not downloaded again.
         let app_print = refusals::fingerprint(app, self.held()?, &bundles);
         let downloads = self.device.downloads()?;
-        if let Some(refusal) = refusals::recall(&downloads, &release.sha256, &app_print, self.now)
-            .filter(|e| e.kind().is_refusal())
+        if let Some(refusal) =
+            refusals::recall(&downloads, &release.sha256, &app_print, self.now, "bundle")
+                .filter(|e| e.kind().is_refusal())
         {
             return Err(refusal);
         }
@@ -897,9 +898,7 @@ impl<'d> Session<'d> {
         release: &Release,
         app_print: &Digest,
     ) -> Result<Option<DeltaRef>> {
-        if self.delta_tried
-            || release.deltas.is_empty()
-            || self.expiry == Expiry::NotCheckedOffline
+        if self.delta_tried || release.deltas.is_empty() || self.expiry == Expiry::NotCheckedOffline
         {
             return Ok(None);
         }
@@ -918,9 +917,13 @@ impl<'d> Session<'d> {
         let Some(delta) = release.deltas.iter().find(|d| d.base == base) else {
             return Ok(None);
         };
-        if let Some(refusal) =
-            refusals::recall(&self.device.downloads()?, &delta.sha256, app_print, self.now)
-        {
+        if let Some(refusal) = refusals::recall(
+            &self.device.downloads()?,
+            &delta.sha256,
+            app_print,
+            self.now,
+            "delta",
+        ) {
             self.delta_refused = Some(refusal.context(format_args!("delta {}", delta.sha256)));
             return Ok(None);
         }
