@@ -331,11 +331,14 @@ fn alter_patch(delta: &[u8]) -> Vec<u8> {
     altered
 }
 
+/// Makes a bad delta from the bundles of 1.0.0, 1.1.0 and 1.2.0 and places it in the tree:
+/// its listing, and the bytes the server sends instead of it (if other than the file's).
+type MakeBad = fn(&Path, &str, &str, &str) -> (DeltaRef, Option<Vec<u8>>);
+
 /// One way a delta fails, and what the report then says about it.
 struct Bad {
     what: &'static str,
-    /// The listing, and the bytes the server sends for the listed delta.
-    make: fn(&Path, &str, &str, &str) -> (DeltaRef, Option<Vec<u8>>),
+    make: MakeBad,
     kind: ErrorKind,
     says: &'static str,
 }

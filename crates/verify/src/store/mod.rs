@@ -483,7 +483,7 @@ pub(crate) struct Documents {
 /// install does (the store's own checks, staging, the swap, the state) is the same for both.
 pub(crate) enum Incoming {
     Bundle(VerifiedBundle),
-    Delta(Box<VerifiedDelta<File>>),
+    Delta(VerifiedDelta<File>),
 }
 
 impl Incoming {
@@ -759,7 +759,7 @@ impl Store {
         delta: VerifiedDelta<File>,
         feed: &VerifiedFeed,
     ) -> Result<Installed> {
-        self.install_incoming(Incoming::Delta(Box::new(delta)), feed)
+        self.install_incoming(Incoming::Delta(delta), feed)
     }
 
     fn install_incoming(&self, incoming: Incoming, feed: &VerifiedFeed) -> Result<Installed> {

@@ -233,10 +233,11 @@ impl Device {
                         // The download checked size and SHA-256 as it streamed.
                         Ok(()) => session.downloaded_and_checked(),
                         // A delta that cannot be had: the bundle next, in this update.
-                        Err(e) if want.delta.is_some() => match session.delta_failed(e) {
-                            Ok(next) => session = next,
-                            Err(report) => return report,
-                        },
+                        Err(e) if want.delta.is_some() => {
+                            if let Err(e) = session.delta_failed(e) {
+                                return session.fail_with(e);
+                            }
+                        }
                         Err(e) => return session.fail_with(e),
                     }
                 }

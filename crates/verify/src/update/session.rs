@@ -391,18 +391,18 @@ impl<'d> Session<'d> {
 
     /// The delta of the last [`Next::Download`] could not be downloaded (`fetch` driver):
     /// the session asks for the bundle next, in the same update. For a bundle, or when the
-    /// app cancelled, the update ends as [`Session::fail_with`] ends it.
+    /// app cancelled, `error` comes back for [`Session::fail_with`].
     #[cfg(feature = "fetch")]
-    pub(crate) fn delta_failed(mut self, error: Error) -> std::result::Result<Self, Report> {
+    pub(crate) fn delta_failed(&mut self, error: Error) -> Result<()> {
         match &self.state {
             State::Download(want, release) if error.kind() != ErrorKind::Cancelled => {
                 let Some(delta) = want.delta.clone() else {
-                    return Err(self.fail_with(error));
+                    return Err(error);
                 };
                 self.state = State::DeltaFailed(release.clone(), delta, error);
-                Ok(self)
+                Ok(())
             }
-            _ => Err(self.fail_with(error)),
+            _ => Err(error),
         }
     }
 
