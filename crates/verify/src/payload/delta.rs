@@ -15,10 +15,11 @@
 //! the model's size; the frame is decoded whole into the chunk's buffer, so the decoder keeps
 //! no window of its own.
 //!
-//! This is the store-independent core: it takes the base files as open readers and writes into
-//! a directory the caller owns. The device's update (`update/`) decides which delta to fetch,
-//! where the base files come from, and hands the result to the same install path as a full
-//! bundle.
+//! This is the store-independent core: it takes the base files as open readers and writes
+//! through an open directory handle (files created new, never through a link). The device's
+//! update (`update/`) decides which delta to fetch and checks it into a [`VerifiedDelta`]; the
+//! store (`store/`) opens the base files in the current release and rebuilds into its staging
+//! directory, within the same install as a full bundle's payload.
 
 use std::fs::File;
 use std::io::{self, BufReader, Read, Seek, SeekFrom, Write};

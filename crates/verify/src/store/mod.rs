@@ -32,7 +32,8 @@
 //! Under the lock: remove leftovers of crashed runs; check the bundle against the store (its
 //! signatures again under the store's keys, the model line, a version newer than any accepted,
 //! a feed sequence not lower than the channel's); unpack into a staging directory with every
-//! file fsynced; write the manifest and signatures beside them; fsync the staging directory;
+//! file fsynced (or, for a delta, rebuild the files there from the current release's, which the
+//! delta hashes again first: [`Incoming`]); write the manifest and signatures beside them; fsync the staging directory;
 //! rename it into `releases/`; fsync `releases/`; then commit `state.json` as above. Until the
 //! rename of `state.json` the old model stays current; after it, the new one is. The numbered
 //! points of this sequence are [`Step`]s; tests crash a child process at each one.

@@ -7,7 +7,8 @@
 //!   downloads/
 //!     lock             held for a whole update; holds the name of the partial download
 //!                      this store started, the only one it resumes
-//!     <sha256>.ampoule.partial   a bundle being downloaded, named by its feed's SHA-256
+//!     <sha256>.ampoule.partial   a bundle being downloaded, or the delta the update chose
+//!                      instead, named by the SHA-256 the feed lists for it
 //!
 //! Every file and directory here is opened without following links and checked as
 //! `crate::dir` describes; anything planted at one of these names is removed (a link is
