@@ -164,8 +164,16 @@ added, removed or changed. With --fail-on breaking, any of them makes diff exit 
       --key feed.secret.pem --trust release.public.pem \\
       --tree-head-signer ./sign-tree-head \\
       --tree-head-signer-key heads.public.pem
+  # Deltas from the last 5 releases of the channel instead of 3 (0: none)
+  ampoule publish species-1.2.0.ampoule --tree ./release --channel stable \\
+      --key feed.secret.pem --trust release.public.pem --deltas 5
 
 The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
+A new release gets deltas (bundles/<sha256>.ampoule-delta) from the channel's last --deltas
+earlier releases of its name, withdrawn ones included: a delta is a way to send the release to a
+device on that base, not a release; it carries the release's own signatures, so no key is
+needed. One that is over 3/4 of the bundle is skipped, and said so. A renewal offers the
+deltas it offered before; a withdraw offers the release before it as it was published.
 Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
 rollout, and says it only renewed; publish at least once per --expires-in, or devices stop
 trusting the channel. --dry-run makes every check and shows the sequence, release, rollout
@@ -793,6 +801,13 @@ pub struct PublishArgs {
     /// there too, tried in order after the tree itself.
     #[arg(long, value_name = "URL")]
     pub mirror: Vec<String>,
+    /// Make deltas to this release from the channel's last N earlier releases of the same
+    /// bundle name (0 to 8; 0: none), written beside the bundles as
+    /// bundles/<sha256>.ampoule-delta and listed in the feed and the ledger. A delta is kept
+    /// only if it is at most 3/4 of the bundle. Renewing the current release offers its
+    /// deltas again (at most N).
+    #[arg(long, value_name = "N", default_value_t = 3)]
+    pub deltas: usize,
     /// Make every check and show the sequence, release, rollout and ledger entry the publish
     /// would write, and write nothing.
     #[arg(long)]
