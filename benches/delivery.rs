@@ -7,11 +7,10 @@
 //!
 //! Then (issue 13) the update of a device on 1.0.0 to 1.1.0 of the issue's 84 MiB model with
 //! a retrained last layer (`synth::write_head_model`), with a delta against with the full
-//! bundle: two release trees with the same two bundles, one whose feed lists the delta, each
-//! device updating from its own; the whole `ampoule update` process's time, peak RSS and
-//! downloaded bytes. Until `publish` lists deltas, the delta is made with `ampoule delta` and
-//! the feed re-signed with it, so these devices skip the ledger (`--dangerous-skip-ledger`)
-//! on both sides alike.
+//! bundle: two release trees with the same two bundles, one published with deltas (`publish`
+//! makes the delta from 1.0.0 and lists it in the feed and the ledger) and one without, each
+//! device updating from its own with the ledger checked; the whole `ampoule update` process's
+//! time, peak RSS and downloaded bytes.
 //!
 //! Run with `cargo bench --bench delivery`; it prints its numbers and is not part of the test
 //! suite. It needs curl, openssl, tar and zstd; /usr/bin/time (or python3) for peak memory.
@@ -157,6 +156,18 @@ fn publish(
     key: &ed25519_dalek::SigningKey,
     trusted: &TrustedKeys,
 ) -> Result<ampoule::release::tree::Change> {
+    // Full bundles only: this part measures the full download.
+    publish_with_deltas(tree, bundle, key, trusted, 0)
+}
+
+/// Publishes `bundle` on `stable` with deltas from up to `bases` earlier releases.
+fn publish_with_deltas(
+    tree: &Path,
+    bundle: &Path,
+    key: &ed25519_dalek::SigningKey,
+    trusted: &TrustedKeys,
+    bases: usize,
+) -> Result<ampoule::release::tree::Change> {
     let tree = Tree::lock(tree)?;
     let staged = tree.stage_bundle(bundle, trusted)?;
     tree.publish(
@@ -164,8 +175,7 @@ fn publish(
         "stable",
         100,
         &[],
-        // Full bundles only: this benchmark measures the full download.
-        0,
+        bases,
         &Signing {
             key_file: None,
             key,
@@ -363,36 +373,8 @@ fn pack_head_model(
     Ok(bundle)
 }
 
-/// Lists `delta` in the tree's `stable` feed, re-signed with `key` (what `publish` will do).
-fn list_delta(
-    tree: &Path,
-    delta: ampoule_verify::ledger::DeltaRef,
-    key: &ed25519_dalek::SigningKey,
-) -> Result<()> {
-    use ampoule_verify::feed::{Feed, SignedFeed};
-    use ed25519_dalek::Signer;
-    let path = tree.join("feeds/stable.json");
-    let signed = SignedFeed::from_json(&std::fs::read(&path)?)?;
-    let mut feed = Feed::from_json(signed.feed.as_bytes())?;
-    feed.release.as_mut().context("a published release")?.deltas = vec![delta];
-    let text = feed.to_json();
-    let signature = key.sign(&ampoule_verify::format::signed_bytes(
-        ampoule_verify::format::context::FEED,
-        text.as_bytes(),
-    ));
-    let resigned = SignedFeed {
-        signatures: vec![ampoule_verify::signature::SignatureEntry {
-            key_id: ampoule_verify::KeyId::of_raw_key(key.verifying_key().as_bytes()),
-            signature: signature.to_bytes(),
-        }],
-        feed: text,
-    };
-    std::fs::write(&path, resigned.to_json())?;
-    Ok(())
-}
-
-/// `ampoule update --json` without the ledger; returns the report's `downloaded_bytes` and
-/// whether a delta was used, with the time and peak RSS.
+/// `ampoule update --json`; returns the report's `downloaded_bytes` and whether a delta was
+/// used, with the time and peak RSS.
 fn update_json(dir: &Path, store: &Path, feed: &str) -> Result<(Duration, Option<u64>, u64, bool)> {
     let out = dir.join("update.json");
     let mut c = Command::new("bash");
@@ -402,7 +384,7 @@ fn update_json(dir: &Path, store: &Path, feed: &str) -> Result<(Duration, Option
         .arg(&out);
     let update = update_command(dir, store, feed);
     c.arg(update.get_program()).arg("--json");
-    c.args(update.get_args()).arg("--dangerous-skip-ledger");
+    c.args(update.get_args());
     let (t, rss) = run_measured(c, dir)?;
     let doc: serde_json::Value = serde_json::from_slice(&std::fs::read(&out)?)?;
     let downloaded = doc["downloaded_bytes"]
@@ -431,36 +413,16 @@ fn delta_update(dir: &Path, key: &ed25519_dalek::SigningKey, trusted: &TrustedKe
             update_json(dir, &store, feed)?;
         }
     }
-    for tree in [&with, &without] {
-        publish(tree, &v2, key, trusted)?;
-    }
-    let made = dir.join("made.ampoule-delta");
-    let out = Command::new(BIN)
-        .arg("delta")
-        .arg("--from")
-        .arg(&v1)
-        .arg(&v2)
-        .arg("-o")
-        .arg(&made)
-        .output()?;
-    if !out.status.success() {
-        bail!(
-            "ampoule delta failed: {}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-    }
-    let bytes = std::fs::read(&made)?;
-    let head = ampoule_verify::payload::delta::read_head(&mut &bytes[..])?;
-    let delta = ampoule_verify::ledger::DeltaRef {
-        base: head.header.base_id(),
-        size: bytes.len() as u64,
-        sha256: ampoule_verify::Digest::of(&bytes),
-    };
-    std::fs::rename(
-        &made,
-        with.join(format!("bundles/{}.ampoule-delta", delta.sha256)),
-    )?;
-    list_delta(&with, delta.clone(), key)?;
+    publish_with_deltas(&with, &v2, key, trusted, 1)?;
+    publish(&without, &v2, key, trusted)?;
+    let signed = ampoule_verify::feed::SignedFeed::from_json(&std::fs::read(
+        with.join("feeds/stable.json"),
+    )?)?;
+    let feed = ampoule_verify::feed::Feed::from_json(signed.feed.as_bytes())?;
+    let delta = feed
+        .release
+        .and_then(|r| r.deltas.into_iter().next())
+        .context("publish listed no delta")?;
     println!(
         "update 1.0.0 -> 1.1.0 of the 84.0 MiB model with a retrained last layer: a {} byte \
          delta against the {:.1} MiB bundle ({:.3}%)",

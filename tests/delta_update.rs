@@ -6,9 +6,11 @@
 //! remembered; installed files altered on disk get no delta at all. Step by step (an app with
 //! its own HTTP), over HTTP (the `fetch` path) and through `ampoule update`.
 //!
-//! Until `publish` lists deltas, each test makes its delta with `ampoule delta`, puts it beside
-//! the bundles as `<sha256>.ampoule-delta`, and re-signs the feed with the delta listed; such a
-//! feed is not what the ledger logged, so the test devices skip the ledger
+//! End to end, `publish` makes the delta and lists it in the feed and the ledger, and a device
+//! that requires the ledger uses it. The other tests list deltas a publisher would not (another
+//! base, a damaged or foreign delta): each makes its delta with `ampoule delta`, puts it beside
+//! the bundles as `<sha256>.ampoule-delta`, and re-signs the feed with the deltas it lists;
+//! such a feed is not what the ledger logged, so those devices skip the ledger
 //! (`dangerous::skip_ledger`, `--dangerous-skip-ledger`). The reference for "the same files" is
 //! the full bundle, installed by a second store from the same tree.
 
@@ -105,6 +107,7 @@ fn delta_url(delta: &DeltaRef) -> String {
     format!("{BASE}bundles/{}.ampoule-delta", delta.sha256)
 }
 
+/// A camera that skips the ledger, for feeds re-signed with deltas the ledger did not log.
 fn open(d: &Path, store: &str) -> Device {
     let app = dangerous::skip_ledger(pinned_app(d));
     Device::open(&d.join(store), "stable", app, Timestamp::now()).expect("open")
@@ -225,19 +228,63 @@ fn full_bundle_files(d: &Path) -> Vec<(String, Vec<u8>)> {
     files(d, "reference")
 }
 
-/// A tree with 1.0.0 published and `stores` on it, then 1.1.0 published; returns the two
-/// bundles' file names and 1.1.0's size.
+/// Publishes `bundle` on `stable` without deltas: the test lists its own.
+fn publish_plain(d: &Path, bundle: &str) {
+    ok(
+        d,
+        &[
+            "publish",
+            bundle,
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "--key",
+            "k.pem",
+            "--deltas",
+            "0",
+        ],
+    );
+}
+
+/// A tree with 1.0.0 published and `stores` on it, then 1.1.0 published (neither with
+/// deltas); returns the two bundles' file names and 1.1.0's size.
 fn on_1_0_0_offered_1_1_0(d: &Path, stores: &[&str]) -> (String, String, u64) {
     let v1 = pack_retrained(d, "1.0.0", 0);
-    publish(d, &v1, "stable", "100");
+    publish_plain(d, &v1);
     for store in stores {
         let p = poll(&open(d, store), d, &as_is);
         assert_eq!(installed(&p.report), Version::new(1, 0, 0));
     }
     let v2 = pack_retrained(d, "1.1.0", 0x5a);
-    publish(d, &v2, "stable", "100");
+    publish_plain(d, &v2);
     let size = std::fs::metadata(d.join(&v2)).expect("bundle").len();
     (v1, v2, size)
+}
+
+#[test]
+fn issue13_end_to_end_publish_lists_a_delta_and_a_device_that_requires_the_ledger_uses_it() {
+    let dir = setup();
+    let d = dir.path();
+    let camera = || Device::open(&d.join("cam"), "stable", pinned_app(d), Timestamp::now());
+    let v1 = pack_retrained(d, "1.0.0", 0);
+    publish(d, &v1, "stable", "100");
+    let p = poll(&camera().expect("open"), d, &as_is);
+    assert_eq!(installed(&p.report), Version::new(1, 0, 0));
+    let v2 = pack_retrained(d, "1.1.0", 0x5a);
+    publish(d, &v2, "stable", "100");
+    let bundle = std::fs::metadata(d.join(&v2)).expect("bundle").len();
+    let listed = read_feed(d, "stable").release.expect("offered").deltas;
+    let [delta] = listed.as_slice() else {
+        panic!("publish lists one delta, from 1.0.0: {listed:?}")
+    };
+    let p = poll(&camera().expect("open"), d, &as_is);
+    assert_eq!(installed(&p.report), Version::new(1, 1, 0));
+    assert_eq!(p.asked, [delta_url(delta)]);
+    assert_eq!(p.report.delta, Some(delta.sha256));
+    assert_eq!(p.report.downloaded, delta.size);
+    assert!(delta.size * 20 < bundle, "{} against {bundle}", delta.size);
+    assert_eq!(files(d, "cam"), full_bundle_files(d));
 }
 
 #[test]
@@ -599,13 +646,13 @@ fn issue13_over_http_the_update_uses_the_delta_and_falls_back_when_it_is_missing
     let url = server.url("feeds/stable.json");
     let transfer = Transfer::new();
     let v1 = pack_retrained(d, "1.0.0", 0);
-    publish(d, &v1, "stable", "100");
+    publish_plain(d, &v1);
     for store in ["cam", "cam2"] {
         let report = open(d, store).update(&url, &transfer, Timestamp::now());
         assert_eq!(installed(&report), Version::new(1, 0, 0));
     }
     let v2 = pack_retrained(d, "1.1.0", 0x5a);
-    publish(d, &v2, "stable", "100");
+    publish_plain(d, &v2);
     let bundle = std::fs::metadata(d.join(&v2)).expect("bundle").len();
     let (bytes, base) = make_delta(d, &v1, &v2);
     let listed = place(d, &bytes, base);
@@ -646,7 +693,6 @@ fn issue13_ampoule_update_says_a_delta_was_used_and_what_it_downloaded() {
             "k.pub",
             "--app-version",
             "2.3.0",
-            "--dangerous-skip-ledger",
         ];
         if json {
             args.insert(0, "--json");
@@ -668,11 +714,10 @@ fn issue13_ampoule_update_says_a_delta_was_used_and_what_it_downloaded() {
     update("cam", false);
     update("cam2", false);
     let v2 = pack_retrained(d, "1.1.0", 0x5a);
+    // `publish` makes the delta from 1.0.0 and lists it; the ledger is checked.
     publish(d, &v2, "stable", "100");
     let bundle = std::fs::metadata(d.join(&v2)).expect("bundle").len();
-    let (bytes, base) = make_delta(d, &v1, &v2);
-    let listed = place(d, &bytes, base);
-    list(d, std::slice::from_ref(&listed));
+    let listed = read_feed(d, "stable").release.expect("offered").deltas[0].clone();
 
     let doc: serde_json::Value = serde_json::from_str(&update("cam", true)).expect("JSON");
     assert_eq!(doc["outcome"], "updated");
