@@ -334,9 +334,17 @@ fn issue13_the_update_picks_the_delta_of_the_installed_files_and_installs_the_bu
         .map(|e| e.expect("entry").file_name())
         .collect();
     assert_eq!(left, ["lock"]);
-    // The store opens the rebuilt release as it opens any (every file checked again).
-    let current = open(d, "cam").current().expect("opens").expect("current");
+    // The store opens the rebuilt release as it opens any (every file checked again), and
+    // rolls back from it to the release the delta read, untouched.
+    let camera = open(d, "cam");
+    let current = camera.current().expect("opens").expect("current");
     assert_eq!(current.manifest.version, Version::new(1, 1, 0));
+    let back = camera.rollback().expect("rollback");
+    assert_eq!(back.manifest.version, Version::new(1, 0, 0));
+    assert_eq!(
+        std::fs::read(back.model).expect("model"),
+        std::fs::read(d.join("model-1.0.0-0.bin")).expect("packed")
+    );
 }
 
 #[test]
@@ -588,8 +596,8 @@ fn issue13_installed_files_altered_on_disk_get_no_delta_and_the_full_bundle_inst
     let text = why.to_string();
     assert!(
         text.starts_with(
-            "no delta used, the installed files failed the store's check; the full bundle is \
-             downloaded instead: stored release trailcam-species-1.0.0-"
+            "no delta used, the installed release failed the store's check; the full bundle \
+             is downloaded instead: stored release trailcam-species-1.0.0-"
         ) && text.contains("digest mismatch for 'model.bin'"),
         "{text}"
     );

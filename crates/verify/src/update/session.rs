@@ -907,7 +907,7 @@ impl<'d> Session<'d> {
             Ok(None) => return Ok(None),
             Err(e) => {
                 self.delta_refused = Some(e.context(
-                    "no delta used, the installed files failed the store's check; the full \
+                    "no delta used, the installed release failed the store's check; the full \
                      bundle is downloaded instead",
                 ));
                 return Ok(None);
