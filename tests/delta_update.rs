@@ -748,3 +748,46 @@ fn issue13_ampoule_update_says_a_delta_was_used_and_what_it_downloaded() {
         "{text}"
     );
 }
+
+#[test]
+fn issue13_an_offline_install_takes_the_bundle_even_when_the_feed_lists_a_delta() {
+    let dir = setup();
+    let d = dir.path();
+    let camera = || Device::open(&d.join("cam"), "stable", pinned_app(d), Timestamp::now());
+    let v1 = pack_retrained(d, "1.0.0", 0);
+    publish(d, &v1, "stable", "100");
+    assert_eq!(
+        installed(&poll(&camera().expect("open"), d, &as_is).report),
+        Version::new(1, 0, 0)
+    );
+    let v2 = pack_retrained(d, "1.1.0", 0x5a);
+    publish(d, &v2, "stable", "100");
+    assert_eq!(
+        read_feed(d, "stable")
+            .release
+            .expect("offered")
+            .deltas
+            .len(),
+        1
+    );
+    // The offline file carries the feed (with its delta listed) and the bundle alone.
+    ok(
+        d,
+        &[
+            "offline",
+            "--tree",
+            "tree",
+            "--channel",
+            "stable",
+            "-o",
+            "stable.ampoule-offline",
+        ],
+    );
+    let report = camera()
+        .expect("open")
+        .install_offline(&d.join("stable.ampoule-offline"), Timestamp::now());
+    assert_eq!(installed(&report), Version::new(1, 1, 0));
+    assert_eq!(report.delta, None);
+    assert!(report.delta_refused.is_none(), "{:?}", report.delta_refused);
+    assert_eq!(files(d, "cam"), full_bundle_files(d));
+}
