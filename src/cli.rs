@@ -77,6 +77,10 @@ A secret key is read with the same checks as when signing (owner-only, passphras
       --name trailcam-species --version 1.1.0 --key release.secret.pem \\
       --meta data.snapshot=2026-11-30 --meta notes='Adds pine marten' \\
       --meta-file metadata.json -o species-1.1.0.ampoule
+  # Also a delta for devices on 1.0.0: species-1.1.0-from-1.0.0.ampoule-delta
+  ampoule pack --model species.onnx --labels labels.txt \\
+      --name trailcam-species --version 1.1.0 --key release.secret.pem \\
+      --delta-from species-1.0.0.ampoule -o species-1.1.0.ampoule
 
 Metadata keys are dotted paths (segments of a-z, 0-9, _; at most 8 deep); a key set twice
 is refused. Documented keys and their types: preprocess.input_size, .mean, .std, .scale
@@ -387,6 +391,11 @@ pub struct PackArgs {
     /// The bundle file to write; it must not exist yet.
     #[arg(short = 'o', long = "out", value_name = "OUT.ampoule")]
     pub out: PathBuf,
+    /// Also write a delta from this older signed bundle of the same name to the new one,
+    /// beside it as OUT-from-<old version>.ampoule-delta (needs --key: a delta carries the
+    /// bundle's signatures as they are).
+    #[arg(long, value_name = "OLD.ampoule", requires = "key")]
+    pub delta_from: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]
