@@ -928,7 +928,7 @@ fn issue13_inspect_diff_and_ledger_list_show_a_delta_as_a_way_to_send_a_release(
     let list = ok(d, &["ledger", "list", "--tree", "tree", "--trust", "k.pub"]);
     let line = format!(
         "    delta to trailcam-species 1.1.0 from trailcam-species 1.0.0 (base {}): {} bytes, \
-         {:.1}% of the {bundle_size}-byte bundle, sha256 {}\n",
+         {:.2}% of the {bundle_size}-byte bundle, sha256 {}\n",
         &delta.base.to_string()[..16],
         delta.size,
         delta.size as f64 * 100.0 / bundle_size as f64,

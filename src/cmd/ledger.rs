@@ -321,7 +321,7 @@ fn delta_line(
     );
     let share = bundle_size.map_or_else(String::new, |b| {
         format!(
-            ", {:.1}% of the {b}-byte bundle",
+            ", {:.2}% of the {b}-byte bundle",
             delta.size as f64 * 100.0 / b.max(1) as f64
         )
     });

@@ -354,7 +354,7 @@ fn write_delta(
     };
     let percent = made.size as f64 * 100.0 / bundle_len.max(1) as f64;
     let mut text = format!(
-        "delta {} from {} {} (base {}): {} bytes, {percent:.1}% of the bundle, sha256 {}\n",
+        "delta {} from {} {} (base {}): {} bytes, {percent:.2}% of the bundle, sha256 {}\n",
         path.display(),
         base.name,
         base.version,

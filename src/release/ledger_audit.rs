@@ -489,6 +489,7 @@ fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Resu
     let mut trust_sets = TrustSetsSeen::default();
     let mut releases = Releases::new();
     let mut deltas: BTreeSet<Digest> = BTreeSet::new();
+    let mut rebuilds: Vec<Rebuild> = Vec::new();
     let entries = match ledger.entries() {
         Ok(entries) => entries,
         Err(e) => {
@@ -567,8 +568,11 @@ fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Resu
         }
         if let Some(Some(offered)) = &entry.offered {
             for delta in &offered.deltas {
-                if deltas.insert(delta.sha256) {
-                    check_delta(root, index, offered, delta, &releases, report);
+                if deltas.insert(delta.sha256)
+                    && let Some(pending) =
+                        check_delta(root, index, offered, delta, &releases, report)
+                {
+                    rebuilds.push(pending);
                 }
             }
         }
@@ -588,8 +592,48 @@ fn check_entries(root: &Path, ledger: &Ledger, report: &mut AuditReport) -> Resu
     }
     report.bundles_checked = bundles.len() as u64;
     report.deltas_checked = deltas.len() as u64;
+    rebuild_all(root, rebuilds, report);
     Ok(())
 }
+
+/// A delta whose file and head passed, to rebuild from its base.
+struct Rebuild {
+    /// How problems name it (`entry <n>: delta <path> of <release> (base <id>)`).
+    what: String,
+    path: PathBuf,
+    /// The release it rebuilds, as `<name> <version>`.
+    release: String,
+    base: Release,
+}
+
+/// Rebuilds each delta from its base with the library's apply, unpacking each base bundle once
+/// for all the deltas from it (unpacking is most of the cost: on the 84 MiB model, about 0.8 s
+/// of the 1.3 s one delta took alone).
+fn rebuild_all(root: &Path, mut rebuilds: Vec<Rebuild>, report: &mut AuditReport) {
+    rebuilds.sort_by_key(|r| r.base.bundle);
+    for group in rebuilds.chunk_by(|a, b| a.base.bundle == b.base.bundle) {
+        let base = &group[0].base;
+        let unpacked = unpack_base(root, base);
+        for r in group {
+            let rebuilt = match &unpacked {
+                Ok((work, files)) => rebuild(work.path(), files, &r.path),
+                Err(e) => Err(anyhow::anyhow!("{e:#}")),
+            };
+            match rebuilt {
+                Ok(()) => report.deltas_rebuilt += 1,
+                Err(e) => report.problems.push(format!(
+                    "{} does not rebuild {} from {} {} (bundle {}): {e:#}{LOGGED_BY_THIEF}",
+                    r.what, r.release, base.name, base.version, base.bundle
+                )),
+            }
+        }
+    }
+}
+
+/// What a problem with a delta whose file is the one logged says of it.
+const LOGGED_BY_THIEF: &str = "; publish never makes such a delta, so whoever holds the feed \
+                               key logged one it did not make: devices fail on it and \
+                               download the full bundle";
 
 /// A release the ledger logged, by the digest that names its files as a delta's base.
 #[derive(Debug, Clone)]
@@ -656,7 +700,7 @@ fn check_delta(
     delta: &ampoule_verify::ledger::DeltaRef,
     releases: &Releases,
     report: &mut AuditReport,
-) {
+) -> Option<Rebuild> {
     let name = format!(
         "{}/{}.{}",
         crate::release::tree_records::BUNDLES_DIR,
@@ -683,7 +727,7 @@ fn check_delta(
                  restore it from a backup",
                 delta.sha256, delta.size
             ));
-            return;
+            return None;
         }
         Ok(_) => {}
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
@@ -692,24 +736,31 @@ fn check_delta(
                  bundle instead; restore it from a backup (publishing the release again stops \
                  offering it)"
             ));
-            return;
+            return None;
         }
         Err(e) => {
             report.problems.push(format!("{what} cannot be read: {e}"));
-            return;
+            return None;
         }
     }
-    if let Err(problem) = delta_contents(root, &path, offered, delta, releases, index) {
-        report.problems.push(format!(
-            "{what} {problem}; publish never makes such a delta, so whoever holds the feed key \
-             logged one it did not make: devices fail on it and download the full bundle"
-        ));
-        return;
+    match delta_contents(root, &path, offered, delta, releases, index) {
+        Ok(base) => Some(Rebuild {
+            what,
+            path,
+            release: format!("{} {}", offered.bundle, offered.version),
+            base,
+        }),
+        Err(problem) => {
+            report
+                .problems
+                .push(format!("{what} {problem}{LOGGED_BY_THIEF}"));
+            None
+        }
     }
-    report.deltas_rebuilt += 1;
 }
 
-/// The checks of [`check_delta`] past the file's digest; the error says what is wrong.
+/// The checks of [`check_delta`] past the file's digest, but the rebuild; returns the base
+/// release, or says what is wrong.
 fn delta_contents(
     root: &Path,
     path: &Path,
@@ -717,7 +768,7 @@ fn delta_contents(
     delta: &ampoule_verify::ledger::DeltaRef,
     releases: &Releases,
     index: u64,
-) -> std::result::Result<(), String> {
+) -> std::result::Result<Release, String> {
     use std::io::BufReader;
     let file = std::fs::File::open(path).map_err(|e| format!("cannot be read: {e}"))?;
     let head = ampoule_verify::format::delta_file::read_head(&mut BufReader::new(file))
@@ -750,7 +801,7 @@ fn delta_contents(
     if delta.base == base_id(&bundle.manifest.files) {
         return Err("leads from the release's own files to themselves".into());
     }
-    let base = releases
+    releases
         .get(&delta.base)
         .and_then(|list| {
             list.iter().find(|r| {
@@ -759,41 +810,46 @@ fn delta_contents(
                     && r.version.cmp_precedence(&offered.version).is_lt()
             })
         })
+        .cloned()
         .ok_or_else(|| {
             format!(
                 "has a base that is no earlier release of {} in the ledger",
                 offered.bundle
             )
-        })?;
-    rebuild(root, path, base).map_err(|e| {
-        format!(
-            "does not rebuild {} {} from {} {} (bundle {}): {e:#}",
-            offered.bundle, offered.version, base.name, base.version, base.bundle
-        )
-    })
+        })
 }
 
-/// Rebuilds the delta at `path` from the files of `base`'s bundle in a temporary directory,
-/// with the library's apply: every rebuilt file must have the size and SHA-256 the carried
-/// manifest declares (compared above with the logged manifest digest).
-fn rebuild(root: &Path, path: &Path, base: &Release) -> Result<()> {
+/// `base`'s bundle unpacked (its payload checked against its manifest) into a temporary
+/// directory, with the files' paths in manifest order.
+fn unpack_base(root: &Path, base: &Release) -> Result<(tempfile::TempDir, Vec<PathBuf>)> {
     let work = tempfile::tempdir().context("cannot create a temporary directory")?;
-    let (base_dir, out_dir) = (work.path().join("base"), work.path().join("rebuilt"));
+    let dir = work.path().join("base");
     let mut bundle = Unverified::open(&bundle_path(root, &base.bundle))?;
     bundle
-        .dangerous_unpack(&base_dir)
+        .dangerous_unpack(&dir)
         .context("its base bundle does not unpack")?;
-    let mut files = bundle
+    let files = bundle
         .manifest
         .files
         .iter()
-        .map(|f| std::fs::File::open(base_dir.join(&f.path)))
+        .map(|f| dir.join(&f.path))
+        .collect();
+    Ok((work, files))
+}
+
+/// Rebuilds the delta at `delta` from `base` (the base files in manifest order) into a fresh
+/// directory under `work`, with the library's apply: every rebuilt file must have the size and
+/// SHA-256 the carried manifest declares (compared before with the logged manifest digest).
+fn rebuild(work: &Path, base: &[PathBuf], delta: &Path) -> Result<()> {
+    let out = tempfile::tempdir_in(work).context("cannot create a temporary directory")?;
+    let mut files = base
+        .iter()
+        .map(std::fs::File::open)
         .collect::<std::io::Result<Vec<_>>>()?;
-    std::fs::create_dir(&out_dir)?;
     ampoule_verify::payload::delta::dangerous_rebuild_for_audit(
-        std::fs::File::open(path)?,
+        std::fs::File::open(delta)?,
         &mut files,
-        &out_dir,
+        out.path(),
     )?;
     Ok(())
 }
