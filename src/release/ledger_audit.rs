@@ -607,8 +607,8 @@ struct Rebuild {
 }
 
 /// Rebuilds each delta from its base with the library's apply, unpacking each base bundle once
-/// for all the deltas from it (unpacking is most of the cost: on the 84 MiB model, about 0.8 s
-/// of the 1.3 s one delta took alone).
+/// for all the deltas from it (unpacking is most of the cost: on the 84 MiB model, most of the
+/// 1.2 s one delta takes, BENCHMARKS.md).
 fn rebuild_all(root: &Path, mut rebuilds: Vec<Rebuild>, report: &mut AuditReport) {
     rebuilds.sort_by_key(|r| r.base.bundle);
     for group in rebuilds.chunk_by(|a, b| a.base.bundle == b.base.bundle) {
