@@ -209,6 +209,13 @@ fn issue13_publish_makes_deltas_from_the_channels_last_releases_and_lists_them()
     let fourth = publish_json(d, &v4, &["--deltas", "0"]);
     assert_eq!(fourth["deltas"], serde_json::json!([]));
     assert_served(d, &[]);
+    // Nothing staged is left beside the bundles.
+    let left: Vec<String> = std::fs::read_dir(d.join("tree/bundles"))
+        .expect("bundles")
+        .map(|e| e.expect("entry").file_name().to_string_lossy().into_owned())
+        .filter(|n| n.starts_with('.'))
+        .collect();
+    assert!(left.is_empty(), "{left:?}");
 }
 
 #[test]
@@ -591,6 +598,21 @@ fn issue13_ledger_check_rebuilds_each_delta_and_names_one_altered_or_removed() {
     assert_eq!((code, problems(&report)), (0, Vec::<String>::new()));
     assert_eq!(report["deltas_checked"], 3);
     assert_eq!(report["deltas_rebuilt"], 3, "each rebuilt from its base");
+    // The same over HTTP: check fetches the logged deltas with the rest of the tree.
+    let served = serve_tree(d, "tree");
+    let url = format!("http://{}/", served.addr);
+    let over_http: Value = serde_json::from_str(&ok(
+        d,
+        &[
+            "--json", "ledger", "check", "--url", &url, "--trust", "k.pub",
+        ],
+    ))
+    .expect("JSON");
+    assert_eq!(
+        (&over_http["deltas_checked"], &over_http["deltas_rebuilt"]),
+        (&serde_json::json!(3), &serde_json::json!(3))
+    );
+    drop(served);
 
     // One altered (a byte in its patches), one removed: each named, with what to do.
     let altered = reference(&third["deltas"][0]);
