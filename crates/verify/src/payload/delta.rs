@@ -125,9 +125,37 @@ pub fn apply<R: Read, B: Read + Seek>(
     base: &mut [B],
     dir: &Path,
 ) -> Result<Rebuilt> {
+    rebuild(delta, base, dir, |manifest, signatures| {
+        verifier.check_carried(manifest, signatures)
+    })
+}
+
+/// [`apply`] without the carried manifest's signature and policy checks (the report lists no
+/// signer), for the release side's audit (`ampoule ledger check`): it has compared the carried
+/// manifest and signatures with the published bundle's byte for byte, and asks only whether
+/// the patches rebuild the files that manifest declares. Every other check of [`apply`] is
+/// made. A device never calls this: what it installs must pass [`apply`].
+#[cfg(feature = "release")]
+pub fn dangerous_rebuild_for_audit<R: Read, B: Read + Seek>(
+    delta: R,
+    base: &mut [B],
+    dir: &Path,
+) -> Result<Rebuilt> {
+    rebuild(delta, base, dir, |manifest, _| {
+        Ok((Manifest::from_json(manifest)?, SignatureReport::default()))
+    })
+}
+
+/// [`apply`] with `carried` checking the carried manifest and signatures.
+fn rebuild<R: Read, B: Read + Seek>(
+    delta: R,
+    base: &mut [B],
+    dir: &Path,
+    carried: impl FnOnce(&[u8], &[u8]) -> Result<(Manifest, SignatureReport)>,
+) -> Result<Rebuilt> {
     let mut delta = BufReader::with_capacity(64 * 1024, delta);
     let head = read_head(&mut delta)?;
-    let (manifest, report) = verifier.check_carried(&head.manifest, &head.signatures)?;
+    let (manifest, report) = carried(&head.manifest, &head.signatures)?;
     let header = &head.header;
     check_header(header, &manifest)?;
     check_base(header, base)?;
