@@ -503,7 +503,7 @@ fn deltas_text(deltas: &Deltas, release: Option<&Release>, dry_run: bool) -> Str
             (false, false) => "offers (already in the tree)",
         };
         text.push_str(&format!(
-            "delta from {from}: {written} {}, {} bytes ({:.1}% of the bundle)\n",
+            "delta from {from}: {written} {}, {} bytes ({:.2}% of the bundle)\n",
             path(r.sha256),
             r.size,
             r.size as f64 * 100.0 / bundle as f64

@@ -564,8 +564,9 @@ impl Tree {
     /// Publishes a staged bundle as the current release of `channel`, with deltas from up to
     /// `bases` earlier releases of the channel (see [`Tree::deltas`]). Publishing the bundle
     /// that is current already renews the feed (new sequence and expiry) with the new rollout.
-    /// The bundle and the deltas take their places before the ledger append; on any failure
-    /// before, nothing of them is left.
+    /// The bundle and the deltas are made and checked under temporary names, removed on any
+    /// failure, and renamed to their content addresses just before the ledger append: a crash
+    /// after that leaves whole files no feed names yet, which the next publish reuses.
     pub fn publish(
         &self,
         staged: StagedBundle,

@@ -79,16 +79,30 @@ impl<R: Read> VerifiedDelta<R> {
     /// a full bundle's is checked, then the header against it (same release, a base that is
     /// not the release itself).
     pub(crate) fn read(verifier: &Verifier, delta: R) -> Result<VerifiedDelta<R>> {
+        Self::read_with(
+            delta,
+            |manifest, signatures| verifier.check_carried(manifest, signatures),
+            verifier.compatibility_policy().cloned(),
+        )
+    }
+
+    /// [`VerifiedDelta::read`] with `carried` checking the carried manifest and signatures,
+    /// and the app's policy (if any) for the checks after rebuilding.
+    fn read_with(
+        delta: R,
+        carried: impl FnOnce(&[u8], &[u8]) -> Result<(Manifest, SignatureReport)>,
+        compatibility: Option<CompatibilityPolicy>,
+    ) -> Result<VerifiedDelta<R>> {
         let mut reader = BufReader::with_capacity(64 * 1024, delta);
         let head = read_head(&mut reader)?;
-        let (manifest, report) = verifier.check_carried(&head.manifest, &head.signatures)?;
+        let (manifest, report) = carried(&head.manifest, &head.signatures)?;
         check_header(&head.header, &manifest)?;
         Ok(VerifiedDelta {
             reader,
             head,
             manifest,
             report,
-            compatibility: verifier.compatibility_policy().cloned(),
+            compatibility,
         })
     }
 
@@ -289,7 +303,34 @@ pub fn apply<R: Read, B: Read + Seek>(
     base: &mut [B],
     dir: &Path,
 ) -> Result<Rebuilt> {
-    let mut delta = VerifiedDelta::read(verifier, delta)?;
+    rebuild(VerifiedDelta::read(verifier, delta)?, base, dir)
+}
+
+/// [`apply`] without the carried manifest's signature and policy checks (the report lists no
+/// signer), for the release side's audit (`ampoule ledger check`): it has compared the carried
+/// manifest and signatures with the published bundle's byte for byte, and asks only whether
+/// the patches rebuild the files that manifest declares. Every other check of [`apply`] is
+/// made. A device never calls this: what it installs must pass [`apply`].
+#[cfg(feature = "release")]
+pub fn dangerous_rebuild_for_audit<R: Read, B: Read + Seek>(
+    delta: R,
+    base: &mut [B],
+    dir: &Path,
+) -> Result<Rebuilt> {
+    let delta = VerifiedDelta::read_with(
+        delta,
+        |manifest, _| Ok((Manifest::from_json(manifest)?, SignatureReport::default())),
+        None,
+    )?;
+    rebuild(delta, base, dir)
+}
+
+/// Rebuilds a checked delta's files into the directory `dir`, removing them on failure.
+fn rebuild<R: Read, B: Read + Seek>(
+    mut delta: VerifiedDelta<R>,
+    base: &mut [B],
+    dir: &Path,
+) -> Result<Rebuilt> {
     let out = Dir::open_root(dir, false)
         .map_err(|e| Error::io(format!("cannot open {}", dir.display()), e))?;
     let mut written = Written {
