@@ -136,7 +136,7 @@ fn flipped_byte_in_payload() {
         &[],
         &format!(
             "payload digest mismatch: manifest declares sha256 {}, the bundle holds {found}",
-            draft.manifest.payload.sha256
+            draft.manifest.payload.sha256.expect("a format 1 draft")
         ),
     );
 }

@@ -8,6 +8,7 @@ use std::path::{Path, PathBuf};
 
 use ampoule::release::atomic::Placement;
 use ampoule::release::pack::{Parts, sign_manifest, write_bundle_file};
+use ampoule::release::ustar::Small;
 use ampoule::release::synth;
 use ampoule_verify::format::{FORMAT_VERSION, entry};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};
@@ -43,7 +44,11 @@ fn inner_tar(entries: &[(&str, &[u8], Option<u64>)]) -> Vec<u8> {
 /// Writes a signed bundle whose manifest declares `model` (size and digest) and the labels,
 /// with `tar_bytes` as the payload's content.
 fn write_bundle(dir: &Path, model: &[u8], tar_bytes: &[u8]) -> PathBuf {
-    let payload = zstd::bulk::compress(tar_bytes, 3).expect("zstd compresses");
+    // Format 2, in 1 MiB chunks as pack writes them: the chunks are checked on one thread and
+    // decoded on another, ahead of the tar reader.
+    let chunk_bytes = 1 << 20;
+    let (payload, chunks) = ampoule_verify::bundle::chunked_payload(tar_bytes, chunk_bytes, 3)
+        .expect("zstd compresses");
     let manifest = Manifest {
         format: FORMAT_VERSION,
         name: "trailcam-species".into(),
@@ -53,7 +58,9 @@ fn write_bundle(dir: &Path, model: &[u8], tar_bytes: &[u8]) -> PathBuf {
         payload: Payload {
             compression: Compression::Zstd,
             size: payload.len() as u64,
-            sha256: Digest::of(&payload),
+            sha256: None,
+            chunk_bytes: Some(chunk_bytes),
+            chunks_sha256: Some(Digest::of(&chunks)),
         },
         files: vec![
             FileEntry {
@@ -83,8 +90,11 @@ fn write_bundle(dir: &Path, model: &[u8], tar_bytes: &[u8]) -> PathBuf {
         &out,
         &Parts {
             mtime: 0,
-            manifest: &manifest_bytes,
-            signatures: &signatures.to_json(),
+            small: Small {
+                manifest: &manifest_bytes,
+                signatures: &signatures.to_json(),
+                chunks: Some(&chunks),
+            },
             payload_len: payload.len() as u64,
         },
         &mut std::fs::File::open(&payload_path).expect("open the payload"),

@@ -8,7 +8,7 @@
 
 use std::ffi::OsString;
 use std::fs::File;
-use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::io::{self, BufRead, Read, Seek, SeekFrom, Write};
 use std::ops::Deref;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -18,12 +18,14 @@ use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 use crate::format::digest::Hasher;
 use crate::dir::{Dir, Refused};
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::chunks::{Checked, Plan};
 use crate::format::limit;
 use crate::format::manifest::Manifest;
 use crate::readahead::ReadAhead;
 use crate::format::tar;
 use crate::check::bundle::VerifiedBundle;
 use crate::progress::{Progress, ProgressFn, Stage};
+use zstd::zstd_safe::DCtx;
 
 const ARCHIVE: &str = "payload";
 const CHUNK: usize = 256 * 1024;
@@ -172,68 +174,144 @@ fn decode_error(e: &io::Error) -> Error {
 }
 
 /// Runs on its own thread: decodes exactly the payload bytes, sends the output in chunks, and
-/// stops with an error once the output passes `tar_len`.
+/// stops with an error once the output passes `tar_len`. With a chunk plan (format 2) each
+/// chunk of the payload is checked against its signed digest, on a thread of its own, before
+/// the decoder sees it; without one (format 1) the payload's whole digest was checked before.
 fn decode(
     mut file: File,
-    offset: u64,
-    size: u64,
-    tar_len: u64,
+    (offset, size, tar_len): (u64, u64, u64),
+    plan: Option<Plan>,
     out: SyncSender<Result<Vec<u8>>>,
     spent: Receiver<Vec<u8>>,
 ) {
     let result = std::thread::scope(|scope| -> Result<()> {
         file.seek(SeekFrom::Start(offset))
             .map_err(|e| Error::io("cannot read the payload", e))?;
-        // The compressed bytes are read on yet another thread, so this one only decodes.
-        let input = ReadAhead::spawn(scope, file.take(size));
-        let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
-            .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
-        decoder
-            .window_log_max(limit::WINDOW_LOG)
-            .map_err(|e| Error::io("cannot set the zstd window limit", e))?;
-        let mut limited = decoder.take(tar_len + 1);
-        let mut total = 0u64;
-        loop {
-            let mut buf = spent.try_recv().unwrap_or_default();
-            buf.resize(CHUNK, 0);
-            let mut filled = 0;
-            while filled < buf.len() {
-                match limited.read(&mut buf[filled..]) {
-                    Ok(0) => break,
-                    Ok(n) => filled += n,
-                    Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
-                    Err(e) => return Err(decode_error(&e)),
-                }
-            }
-            total += filled as u64;
-            if total > tar_len {
-                // The declared bytes go to the reader first: what they hold (a pax header, a
-                // GNU long name, a directory entry, an extra file) is the real cause, and the
-                // reader names it before it reaches this error.
-                let excess = usize::try_from(total - tar_len).unwrap_or(usize::MAX);
-                buf.truncate(filled.saturating_sub(excess));
-                if !buf.is_empty() && out.send(Ok(buf)).is_err() {
-                    return Ok(());
-                }
-                return Err(Error::new(
-                    ErrorKind::TooLarge,
-                    format!(
-                        "payload decompresses to more than the {tar_len} bytes its manifest declares"
-                    ),
-                ));
-            }
-            if filled == 0 {
-                return Ok(());
-            }
-            buf.truncate(filled);
-            if out.send(Ok(buf)).is_err() {
-                // The reader stopped early because it found an error of its own.
-                return Ok(());
-            }
+        // The compressed bytes are read (and checked) on yet another thread, so this one only
+        // decodes.
+        match plan {
+            Some(plan) => decode_chunks(Checked::spawn(scope, file, &plan), &plan, (&out, &spent)),
+            None => decode_stream(ReadAhead::spawn(scope, file.take(size)), tar_len, (&out, &spent)),
         }
     });
     if let Err(e) = result {
         let _ = out.send(Err(e));
+    }
+}
+
+/// Format 2: decodes each checked chunk, one zstd frame, whole into a buffer of the size the
+/// chunk must decode to, and sends it on. A chunk that is not exactly one frame, or decodes to
+/// another size, stops the payload.
+fn decode_chunks(
+    mut input: Checked,
+    plan: &Plan,
+    (out, spent): (&SyncSender<Result<Vec<u8>>>, &Receiver<Vec<u8>>),
+) -> Result<()> {
+    let mut dctx = DCtx::create();
+    let mut index = 0;
+    while let Some(chunk) = input.next_chunk() {
+        let chunk = chunk?;
+        let want = plan.len_of(index);
+        let bad = |why: String| {
+            Error::new(
+                ErrorKind::Malformed,
+                format!("payload chunk {index} is not valid zstd data: {why}"),
+            )
+        };
+        let name = |code| zstd::zstd_safe::get_error_name(code).to_string();
+        let frame = zstd::zstd_safe::find_frame_compressed_size(&chunk).map_err(|c| bad(name(c)))?;
+        if frame != chunk.len() {
+            return Err(bad(format!(
+                "its first frame ends after {frame} of its {} bytes; a chunk is one frame",
+                chunk.len()
+            )));
+        }
+        // The writer always states each frame's decoded size; a frame must state its place's.
+        match zstd::zstd_safe::get_frame_content_size(&chunk) {
+            Ok(Some(n)) if n == want as u64 => {}
+            Ok(Some(n)) => {
+                return Err(bad(format!(
+                    "its frame declares {n} decoded bytes, but its place in the inner tar holds {want}"
+                )));
+            }
+            Ok(None) | Err(_) => {
+                return Err(bad("its frame does not declare its decoded size".into()));
+            }
+        }
+        let mut buf = spent.try_recv().unwrap_or_default();
+        buf.clear();
+        buf.reserve_exact(want);
+        // The buffer holds at least `want` bytes; a frame that does not decode to exactly its
+        // declared size is an error of zstd's, or a count that differs below.
+        let n = dctx.decompress(&mut buf, &chunk).map_err(|c| bad(name(c)))?;
+        if n != want {
+            return Err(bad(format!(
+                "it decodes to {n} bytes, not the {want} bytes of its place in the inner tar"
+            )));
+        }
+        input.recycle(chunk);
+        if out.send(Ok(buf)).is_err() {
+            // The reader stopped early because it found an error of its own.
+            return Ok(());
+        }
+        index += 1;
+    }
+    Ok(())
+}
+
+fn decompresses_past(tar_len: u64) -> Error {
+    Error::new(
+        ErrorKind::TooLarge,
+        format!("payload decompresses to more than the {tar_len} bytes its manifest declares"),
+    )
+}
+
+/// Format 1: decodes the payload as one zstd stream (its digest was checked whole before),
+/// sending the output in chunks, until it passes `tar_len`.
+fn decode_stream<R: BufRead>(
+    input: R,
+    tar_len: u64,
+    (out, spent): (&SyncSender<Result<Vec<u8>>>, &Receiver<Vec<u8>>),
+) -> Result<()> {
+    let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
+        .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
+    decoder
+        .window_log_max(limit::WINDOW_LOG)
+        .map_err(|e| Error::io("cannot set the zstd window limit", e))?;
+    let mut limited = decoder.take(tar_len + 1);
+    let mut total = 0u64;
+    loop {
+        let mut buf = spent.try_recv().unwrap_or_default();
+        buf.resize(CHUNK, 0);
+        let mut filled = 0;
+        while filled < buf.len() {
+            match limited.read(&mut buf[filled..]) {
+                Ok(0) => break,
+                Ok(n) => filled += n,
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
+                Err(e) => return Err(decode_error(&e)),
+            }
+        }
+        total += filled as u64;
+        if total > tar_len {
+            // The declared bytes go to the reader first: what they hold (a pax header, a
+            // GNU long name, a directory entry, an extra file) is the real cause, and the
+            // reader names it before it reaches this error.
+            let excess = usize::try_from(total - tar_len).unwrap_or(usize::MAX);
+            buf.truncate(filled.saturating_sub(excess));
+            if !buf.is_empty() && out.send(Ok(buf)).is_err() {
+                return Ok(());
+            }
+            return Err(decompresses_past(tar_len));
+        }
+        if filled == 0 {
+            return Ok(());
+        }
+        buf.truncate(filled);
+        if out.send(Ok(buf)).is_err() {
+            // The reader stopped early because it found an error of its own.
+            return Ok(());
+        }
     }
 }
 
@@ -252,12 +330,14 @@ impl Sink<'_> {
     }
 }
 
-/// A payload to decompress: the open bundle file, where the payload starts, and the manifest
-/// that declares its size and digests (already checked against the payload's digest).
+/// A payload to decompress: the open bundle file, where the payload starts, the manifest
+/// that declares its size and digests, and, in format 2, the chunk plan each chunk is checked
+/// against as it is read (in format 1 the whole payload's digest was checked already).
 pub(crate) struct Source<'a> {
     pub file: &'a File,
     pub payload_offset: u64,
     pub manifest: &'a Manifest,
+    pub chunks: Option<&'a [u8]>,
     pub progress: Option<&'a ProgressFn>,
 }
 
@@ -273,13 +353,17 @@ pub(crate) fn stream(source: &Source<'_>, dir: Option<&Dir>) -> Result<Vec<Strin
         .try_clone()
         .map_err(|e| Error::io("cannot read the payload", e))?;
     let (offset, size) = (source.payload_offset, manifest.payload.size);
+    let plan = match source.chunks {
+        Some(list) => Some(Plan::new(list, manifest)?),
+        None => None,
+    };
     let (chunk_tx, chunk_rx) = sync_channel(CHUNKS_IN_FLIGHT);
     let (spent_tx, spent_rx) = channel();
     let sink = Sink { dir };
     let progress = source.progress.cloned();
     let done = AtomicU64::new(0);
     std::thread::scope(|scope| {
-        scope.spawn(move || decode(file, offset, size, tar_len, chunk_tx, spent_rx));
+        scope.spawn(move || decode(file, (offset, size, tar_len), plan, chunk_tx, spent_rx));
         let mut reader = ChunkReader {
             chunks: chunk_rx,
             spent: spent_tx,
@@ -610,6 +694,7 @@ impl VerifiedBundle {
             file: &self.file,
             payload_offset: self.layout.payload_offset,
             manifest: &self.manifest,
+            chunks: self.layout.chunks.as_deref(),
             progress: self.progress.as_ref(),
         }
     }
