@@ -349,7 +349,7 @@ impl Draft {
     /// A correct format 2 draft: the fixture model (grown to make several chunks) and labels,
     /// the inner tar in chunks of 64 KiB, each a zstd frame bound by the chunk list.
     pub fn chunked() -> Draft {
-        let model = model_bytes(150 * 1024);
+        let model = model_bytes(200 * 1024);
         let inner = tar_of(&[
             tar_entry("model.onnx", &model),
             tar_entry(entry::LABELS, LABELS),

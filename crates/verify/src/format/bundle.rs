@@ -230,12 +230,13 @@ pub fn write_bundle<W: Write, R: Read>(
 
 /// A format 2 payload made in memory, for tests and tools that build small bundles: the inner
 /// tar cut into `chunk_bytes` chunks, each compressed at zstd `level` as a frame of its own
-/// with a checksum and its content size. Returns the payload and its chunk list.
+/// that states its content size (no checksum, as pack writes them). Returns the payload and
+/// its chunk list.
 pub fn chunked_payload(inner_tar: &[u8], chunk_bytes: u32, level: i32) -> io::Result<(Vec<u8>, Vec<u8>)> {
     let mut payload = Vec::new();
     let mut list = chunks::ListWriter::default();
     let mut compressor = zstd::bulk::Compressor::new(level)?;
-    compressor.set_parameter(zstd::zstd_safe::CParameter::ChecksumFlag(true))?;
+    compressor.set_parameter(zstd::zstd_safe::CParameter::ChecksumFlag(false))?;
     compressor.set_parameter(zstd::zstd_safe::CParameter::ContentSizeFlag(true))?;
     for chunk in inner_tar.chunks(chunk_bytes as usize) {
         let frame = compressor.compress(chunk)?;

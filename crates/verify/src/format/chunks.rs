@@ -30,8 +30,7 @@ use crate::format::{entry, limit};
 /// little-endian) and its SHA-256 (32 bytes).
 pub const RECORD_BYTES: usize = 36;
 
-/// Checked chunks queued ahead of the decoder: with the one being read and the one being
-/// decoded, three compressed chunks are held at once.
+/// Checked chunks queued ahead of the release tools' check ([`check_all`]).
 const CHUNKS_IN_FLIGHT: usize = 1;
 
 /// The most compressed bytes one chunk of `len` bytes may take: zstd's worst case for
@@ -120,7 +119,7 @@ impl Plan {
                 ErrorKind::Malformed,
                 format!(
                     "bundle entry '{}' lists {listed} chunks, but the manifest's files make an \
-                     inner tar of {} bytes, {count} chunks of {chunk_bytes} bytes",
+                     inner tar of {} bytes, which needs {count} in chunks of {chunk_bytes} bytes",
                     entry::CHUNKS,
                     manifest.unpacked_tar_len()
                 ),
@@ -181,11 +180,13 @@ impl Plan {
     }
 }
 
-/// The chunk size a writer uses for an inner tar of `tar_len` bytes: 1 MiB, or the smallest
-/// larger power of two that keeps the list within [`limit::CHUNKS`] records. `None` when even
-/// the largest chunk size would need more.
+/// The chunk size a writer uses for an inner tar of `tar_len` bytes: 512 KiB, or the smallest
+/// larger power of two that keeps the list within [`limit::CHUNKS`] records (1 MiB from 2 GiB
+/// on). `None` when even the largest chunk size would need more. A reader holds about ten
+/// chunks at a time, so the size bounds its memory; 512 KiB keeps a verifier within 16 MiB
+/// and costs no measurable compression on weights (BENCHMARKS.md).
 pub fn writer_chunk_bytes(tar_len: u64) -> Option<u32> {
-    (20..=limit::CHUNK_LOG_MAX)
+    (19..=limit::CHUNK_LOG_MAX)
         .map(|log| 1u32 << log)
         .find(|&chunk| tar_len.div_ceil(u64::from(chunk)) <= limit::CHUNKS)
 }
@@ -221,40 +222,32 @@ impl ListWriter {
 }
 
 /// The payload's chunks, each read and hashed on a thread of its own and handed on only once
-/// its SHA-256 equals its record's. A chunk that differs, or a file that ends early, ends the
-/// stream with an error that says which chunk.
-pub(crate) struct Checked {
-    chunks: Receiver<Result<Vec<u8>>>,
-    spent: Sender<Vec<u8>>,
-}
+/// its SHA-256 equals its record's, chunk `i` to `outputs[i % outputs.len()]`. A chunk that
+/// differs, or a file that ends early, ends the stream with an error that says which chunk.
+pub(crate) struct Checked;
 
 impl Checked {
     /// Starts reading `file` (positioned at the payload's first byte) on a thread of `scope`.
-    pub(crate) fn spawn<'scope>(scope: &'scope Scope<'scope, '_>, file: File, plan: &Plan) -> Self {
-        let (full, chunks) = sync_channel(CHUNKS_IN_FLIGHT);
+    /// Returns where the consumers hand each chunk's buffer back for reuse.
+    pub(crate) fn spawn<'scope>(
+        scope: &'scope Scope<'scope, '_>,
+        file: File,
+        plan: &Plan,
+        outputs: Vec<SyncSender<Result<Vec<u8>>>>,
+    ) -> Sender<Vec<u8>> {
         let (spent, reuse) = channel();
         let records = plan.records.clone();
-        scope.spawn(move || check_chunks(file, &records, &full, &reuse));
-        Checked { chunks, spent }
-    }
-
-    /// The next checked chunk's compressed bytes; `None` after the last one.
-    pub(crate) fn next_chunk(&mut self) -> Option<Result<Vec<u8>>> {
-        self.chunks.recv().ok()
-    }
-
-    /// Hands a chunk's buffer back for reuse.
-    pub(crate) fn recycle(&self, buf: Vec<u8>) {
-        let _ = self.spent.send(buf);
+        scope.spawn(move || check_chunks(file, &records, &outputs, &reuse));
+        spent
     }
 }
 
 /// Reads, hashes and checks every chunk in order, sending each one on, until the end, the
-/// first error, or the consumer leaving.
+/// first error, or a consumer leaving.
 fn check_chunks(
     mut file: File,
     records: &[Record],
-    full: &SyncSender<Result<Vec<u8>>>,
+    outputs: &[SyncSender<Result<Vec<u8>>>],
     reuse: &Receiver<Vec<u8>>,
 ) {
     let mut start = 0u64;
@@ -278,7 +271,7 @@ fn check_chunks(
             }
         });
         let stop = checked.is_err();
-        if full.send(checked).is_err() || stop {
+        if outputs[index % outputs.len()].send(checked).is_err() || stop {
             return;
         }
         start = end;
@@ -310,9 +303,10 @@ fn read_chunk(file: &mut File, buf: &mut [u8], start: u64) -> Result<()> {
 /// tools' check of a format 2 bundle they only look at (`inspect`, `sign`).
 pub(crate) fn check_all(file: File, plan: &Plan) -> Result<()> {
     std::thread::scope(|scope| {
-        let mut checked = Checked::spawn(scope, file, plan);
-        while let Some(chunk) = checked.next_chunk() {
-            checked.recycle(chunk?);
+        let (output, checked) = sync_channel(CHUNKS_IN_FLIGHT);
+        let returned = Checked::spawn(scope, file, plan, vec![output]);
+        for chunk in checked {
+            let _ = returned.send(chunk?);
         }
         Ok(())
     })
@@ -350,8 +344,9 @@ mod tests {
 
     #[test]
     fn the_writer_keeps_the_list_within_its_cap() {
-        assert_eq!(writer_chunk_bytes(88 << 20), Some(1 << 20));
-        assert_eq!(writer_chunk_bytes(4096 << 20), Some(1 << 20));
+        assert_eq!(writer_chunk_bytes(88 << 20), Some(512 << 10));
+        assert_eq!(writer_chunk_bytes(2048 << 20), Some(512 << 10));
+        assert_eq!(writer_chunk_bytes((2048 << 20) + 1), Some(1 << 20));
         assert_eq!(writer_chunk_bytes((4096 << 20) + 1), Some(2 << 20));
         assert_eq!(writer_chunk_bytes(limit::CHUNKS << limit::CHUNK_LOG_MAX), Some(4 << 20));
         assert_eq!(writer_chunk_bytes((limit::CHUNKS << limit::CHUNK_LOG_MAX) + 1), None);

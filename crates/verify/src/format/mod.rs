@@ -91,7 +91,7 @@ pub mod limit {
     /// Format 2: the largest chunk of the inner tar, as a power of two: 2^22 bytes = 4 MiB. A
     /// reader holds a few chunks at a time (compressed: one being checked, one queued, one
     /// being decoded; and their decoded bytes), so this bounds its memory whatever the
-    /// payload's size. Writers use 1 MiB for inner tars up to 4 GiB.
+    /// payload's size. Writers use 512 KiB for inner tars up to 2 GiB.
     pub const CHUNK_LOG_MAX: u32 = 22;
     /// Format 2: the most chunks one payload may have. With chunks of 4 MiB, that covers the
     /// largest inner tar the format allows (16 GiB, more than a tar size field describes).

@@ -1,8 +1,13 @@
 //! Decompressing a verified payload: a bounded zstd decoder on one thread, the inner tar's
 //! checks and the per-file SHA-256 on another, the writes on a third, and the staging
-//! directory that turns into the destination only when everything matched.
+//! directory that turns into the destination only when everything matched. In format 2 a
+//! fourth thread reads each chunk and checks its SHA-256 against the signed chunk list just
+//! before the decoder gets it ([`crate::format::chunks`]), so checking and decoding overlap
+//! and the payload is read once; each chunk's frame is decoded whole into a buffer of its
+//! size. In format 1 the decoder reads one zstd stream whose digest was checked whole before.
 //!
-//! Memory is bounded by the zstd window cap and a few fixed buffers, never by the model size.
+//! Memory is bounded by the chunk size (format 2) or the zstd window cap (format 1) and a few
+//! fixed buffers, never by the model size.
 //! Decoded chunks are shared with the writing thread, not copied: the hash and the write of
 //! the same bytes run side by side.
 
@@ -11,7 +16,7 @@ use std::fs::File;
 use std::io::{self, BufRead, Read, Seek, SeekFrom, Write};
 use std::ops::Deref;
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 
@@ -30,6 +35,10 @@ use zstd::zstd_safe::DCtx;
 const ARCHIVE: &str = "payload";
 const CHUNK: usize = 256 * 1024;
 const CHUNKS_IN_FLIGHT: usize = 4;
+/// Format 2's decoded chunks are whole chunks of the inner tar (512 KiB as pack writes them,
+/// up to 4 MiB), not [`CHUNK`]s: fewer of them wait in each queue, so memory stays at a few
+/// chunks.
+const WHOLE_CHUNKS_IN_FLIGHT: usize = 2;
 /// How much of a file is written between flushes to disk while it streams.
 const EARLY_SYNC_BYTES: usize = 16 * 1024 * 1024;
 
@@ -56,9 +65,11 @@ fn recycle(chunk: Arc<Vec<u8>>, spent: &Sender<Vec<u8>>) {
     }
 }
 
-/// Reads the decoder thread's chunks as one stream, handing spent buffers back for reuse.
+/// Reads the decoder threads' chunks as one stream, chunk `i` from decoder `i` mod their
+/// number, handing spent buffers back for reuse.
 struct ChunkReader {
-    chunks: Receiver<Result<Vec<u8>>>,
+    chunks: Vec<Receiver<Result<Vec<u8>>>>,
+    next: usize,
     spent: Sender<Vec<u8>>,
     current: Arc<Vec<u8>>,
     pos: usize,
@@ -69,7 +80,9 @@ impl ChunkReader {
     /// Makes sure unread bytes are at hand; false at the end of the stream.
     fn fill(&mut self) -> io::Result<bool> {
         while self.pos == self.current.len() {
-            match self.chunks.recv() {
+            let decoder = &self.chunks[self.next % self.chunks.len()];
+            self.next += 1;
+            match decoder.recv() {
                 Ok(Ok(chunk)) => {
                     let spent = std::mem::replace(&mut self.current, Arc::new(chunk));
                     recycle(spent, &self.spent);
@@ -173,43 +186,66 @@ fn decode_error(e: &io::Error) -> Error {
     }
 }
 
+/// Format 2 decodes chunks on this many threads at once, each taking every second chunk:
+/// frames are independent, so on two cores decoding no longer waits for one.
+const DECODERS: usize = 2;
+
 /// Runs on its own thread: decodes exactly the payload bytes, sends the output in chunks, and
 /// stops with an error once the output passes `tar_len`. With a chunk plan (format 2) each
 /// chunk of the payload is checked against its signed digest, on a thread of its own, before
-/// the decoder sees it; without one (format 1) the payload's whole digest was checked before.
+/// a decoder sees it, and [`DECODERS`] threads decode the chunks, chunk `i` sent out on
+/// `outs[i % DECODERS]`; without one (format 1) the payload's whole digest was checked before,
+/// and one stream goes out on `outs[0]`.
 fn decode(
     mut file: File,
     (offset, size, tar_len): (u64, u64, u64),
     plan: Option<Plan>,
-    out: SyncSender<Result<Vec<u8>>>,
+    outs: Vec<SyncSender<Result<Vec<u8>>>>,
     spent: Receiver<Vec<u8>>,
 ) {
+    let spent = Mutex::new(spent);
     let result = std::thread::scope(|scope| -> Result<()> {
         file.seek(SeekFrom::Start(offset))
             .map_err(|e| Error::io("cannot read the payload", e))?;
-        // The compressed bytes are read (and checked) on yet another thread, so this one only
-        // decodes.
-        match plan {
-            Some(plan) => decode_chunks(Checked::spawn(scope, file, &plan), &plan, (&out, &spent)),
-            None => decode_stream(ReadAhead::spawn(scope, file.take(size)), tar_len, (&out, &spent)),
+        // The compressed bytes are read (and checked) on yet another thread, so these only
+        // decode.
+        let Some(plan) = &plan else {
+            let spent = spent.lock().unwrap_or_else(|e| e.into_inner());
+            let input = ReadAhead::spawn(scope, file.take(size));
+            return decode_stream(input, tar_len, (&outs[0], &spent));
+        };
+        let (inputs, checked): (Vec<_>, Vec<_>) = (0..outs.len()).map(|_| sync_channel(1)).unzip();
+        let returned = Checked::spawn(scope, file, plan, inputs);
+        let spent = &spent;
+        for (first, (input, out)) in checked.into_iter().zip(&outs).enumerate() {
+            let returned = returned.clone();
+            scope.spawn(move || {
+                let decoded = decode_chunks(first, (input, &returned), plan, (out, spent));
+                if let Err(e) = decoded {
+                    let _ = out.send(Err(e));
+                }
+            });
         }
+        Ok(())
     });
     if let Err(e) = result {
-        let _ = out.send(Err(e));
+        let _ = outs[0].send(Err(e));
     }
 }
 
-/// Format 2: decodes each checked chunk, one zstd frame, whole into a buffer of the size the
-/// chunk must decode to, and sends it on. A chunk that is not exactly one frame, or decodes to
-/// another size, stops the payload.
+/// Format 2, on one of the [`DECODERS`] threads: decodes chunks `first`, `first + DECODERS`,
+/// ... as they arrive checked, each one zstd frame decoded whole into a buffer of the size the
+/// chunk must decode to, and sends them on. A chunk that is not exactly one frame, or decodes
+/// to another size, stops the payload.
 fn decode_chunks(
-    mut input: Checked,
+    first: usize,
+    (input, returned): (Receiver<Result<Vec<u8>>>, &Sender<Vec<u8>>),
     plan: &Plan,
-    (out, spent): (&SyncSender<Result<Vec<u8>>>, &Receiver<Vec<u8>>),
+    (out, spent): (&SyncSender<Result<Vec<u8>>>, &Mutex<Receiver<Vec<u8>>>),
 ) -> Result<()> {
     let mut dctx = DCtx::create();
-    let mut index = 0;
-    while let Some(chunk) = input.next_chunk() {
+    for (n, chunk) in input.into_iter().enumerate() {
+        let index = first + n * DECODERS;
         let chunk = chunk?;
         let want = plan.len_of(index);
         let bad = |why: String| {
@@ -238,7 +274,8 @@ fn decode_chunks(
                 return Err(bad("its frame does not declare its decoded size".into()));
             }
         }
-        let mut buf = spent.try_recv().unwrap_or_default();
+        let reused = spent.try_lock().ok().and_then(|spent| spent.try_recv().ok());
+        let mut buf = reused.unwrap_or_default();
         buf.clear();
         buf.reserve_exact(want);
         // The buffer holds at least `want` bytes; a frame that does not decode to exactly its
@@ -249,12 +286,11 @@ fn decode_chunks(
                 "it decodes to {n} bytes, not the {want} bytes of its place in the inner tar"
             )));
         }
-        input.recycle(chunk);
+        let _ = returned.send(chunk);
         if out.send(Ok(buf)).is_err() {
             // The reader stopped early because it found an error of its own.
             return Ok(());
         }
-        index += 1;
     }
     Ok(())
 }
@@ -315,9 +351,11 @@ fn decode_stream<R: BufRead>(
     }
 }
 
-/// Where the files go: nowhere (check only) or a staging directory.
+/// Where the files go: nowhere (check only) or a staging directory, and how many decoded
+/// pieces may wait for the writing thread.
 struct Sink<'a> {
     dir: Option<&'a Dir>,
+    depth: usize,
 }
 
 impl Sink<'_> {
@@ -357,15 +395,21 @@ pub(crate) fn stream(source: &Source<'_>, dir: Option<&Dir>) -> Result<Vec<Strin
         Some(list) => Some(Plan::new(list, manifest)?),
         None => None,
     };
-    let (chunk_tx, chunk_rx) = sync_channel(CHUNKS_IN_FLIGHT);
+    let depth = match plan {
+        Some(_) => WHOLE_CHUNKS_IN_FLIGHT,
+        None => CHUNKS_IN_FLIGHT,
+    };
+    let decoders = if plan.is_some() { DECODERS } else { 1 };
+    let (chunk_txs, chunk_rxs): (Vec<_>, Vec<_>) = (0..decoders).map(|_| sync_channel(depth)).unzip();
     let (spent_tx, spent_rx) = channel();
-    let sink = Sink { dir };
+    let sink = Sink { dir, depth };
     let progress = source.progress.cloned();
     let done = AtomicU64::new(0);
     std::thread::scope(|scope| {
-        scope.spawn(move || decode(file, (offset, size, tar_len), plan, chunk_tx, spent_rx));
+        scope.spawn(move || decode(file, (offset, size, tar_len), plan, chunk_txs, spent_rx));
         let mut reader = ChunkReader {
-            chunks: chunk_rx,
+            chunks: chunk_rxs,
+            next: 0,
             spent: spent_tx,
             current: Arc::new(Vec::new()),
             pos: 0,
@@ -414,7 +458,7 @@ fn read_payload(
         let cannot_write = |e| Error::io(format!("cannot write {}", declared.path), e);
         let (found, out) = std::thread::scope(|scope| -> Result<_> {
             let mut writer = out.map(|file| {
-                let (pieces, queued) = sync_channel(CHUNKS_IN_FLIGHT);
+                let (pieces, queued) = sync_channel(sink.depth);
                 let spent = reader.spent.clone();
                 (
                     pieces,
