@@ -47,10 +47,31 @@ fn env_number(name: &str, default: u64) -> u64 {
     }
 }
 
-/// One timed child run: wall time and, when sampled, its peak resident memory in bytes.
+/// One timed child run: wall time, CPU time (user and system, of the child and everything it
+/// waited for), and, when sampled, its peak resident memory in bytes.
 struct Run {
     secs: f64,
+    cpu: f64,
     peak_rss: Option<u64>,
+}
+
+/// The CPU time, in seconds, of every child this process has waited for: `cutime` and
+/// `cstime` of /proc/self/stat (proc(5)), in clock ticks of 1/100 s (the usual USER_HZ on
+/// Linux, from memory; the resolution is one tick).
+fn children_cpu() -> f64 {
+    let stat = fs::read_to_string("/proc/self/stat").unwrap_or_default();
+    // The command name may hold spaces; the fields after its closing parenthesis do not.
+    let fields: Vec<&str> = stat
+        .rsplit_once(')')
+        .map_or(Vec::new(), |(_, rest)| rest.split_whitespace().collect());
+    // Fields 16 and 17 of the line are 14 and 15 after the name (state is field 3).
+    let tick = |i: usize| {
+        fields
+            .get(i)
+            .and_then(|f| f.parse::<f64>().ok())
+            .unwrap_or(0.0)
+    };
+    (tick(13) + tick(14)) / 100.0
 }
 
 fn vm_hwm(pid: u32) -> Option<u64> {
@@ -63,6 +84,7 @@ fn vm_hwm(pid: u32) -> Option<u64> {
 /// Runs `cmd` to completion in `dir`, timing it; panics with its stderr if it fails, because
 /// a timing of a failed run would mean nothing.
 fn run(dir: &Path, program: &str, args: &[&str], sample_rss: bool) -> Run {
+    let cpu_before = children_cpu();
     let start = Instant::now();
     let mut child = Command::new(program)
         .args(args)
@@ -94,13 +116,18 @@ fn run(dir: &Path, program: &str, args: &[&str], sample_rss: bool) -> Run {
     }
     let status = child.wait().expect("waiting for a child works");
     let secs = start.elapsed().as_secs_f64();
+    let cpu = children_cpu() - cpu_before;
     stop.store(true, Ordering::Relaxed);
     let peak_rss = sampler.map(|s| s.join().expect("the sampler thread does not panic"));
     assert!(
         status.success(),
         "{program} {args:?} failed ({status}):\n{stderr}"
     );
-    Run { secs, peak_rss }
+    Run {
+        secs,
+        cpu,
+        peak_rss,
+    }
 }
 
 fn bash(dir: &Path, script: &str) -> Run {
@@ -173,6 +200,13 @@ impl Series {
         format!("{:.3} ({:.3}-{:.3})", self.median(), self.min(), self.max())
     }
 
+    /// The median CPU time.
+    fn cpu(&self) -> f64 {
+        let mut cpu: Vec<f64> = self.runs.iter().map(|r| r.cpu).collect();
+        cpu.sort_by(f64::total_cmp);
+        cpu[cpu.len() / 2]
+    }
+
     fn all(&self) -> String {
         let times: Vec<String> = self.runs.iter().map(|r| format!("{:.3}", r.secs)).collect();
         times.join(" ")
@@ -197,7 +231,10 @@ fn main() {
         ampoule_verify::Timestamp::now(),
         model_bytes,
         model_bytes >> 20,
-        load.split_whitespace().take(3).collect::<Vec<_>>().join(" ")
+        load.split_whitespace()
+            .take(3)
+            .collect::<Vec<_>>()
+            .join(" ")
     );
 
     synth::write_weights(&dir.join("model.bin"), model_bytes, 2026).expect("write the model");
@@ -339,6 +376,20 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
         verify.median() / verify_pipe_fsync.median()
     );
     println!(
+        "{:<28} {:>21.3} {:>21.3} {:>6.2}  (CPU time, user + system: less load-dependent)",
+        "pack, median CPU",
+        pack.cpu(),
+        pack_pipe.cpu(),
+        pack.cpu() / pack_pipe.cpu()
+    );
+    println!(
+        "{:<28} {:>21.3} {:>21.3} {:>6.2}",
+        "verify + extract, median CPU",
+        verify.cpu(),
+        verify_pipe.cpu(),
+        verify.cpu() / verify_pipe.cpu()
+    );
+    println!(
         "{:<28} {:>21} {:>21} {:>6}  <= {TARGET_RSS_MIB:.0} MiB  {}",
         "verify peak RSS (MiB)",
         format!("{verify_rss:.1}"),
@@ -376,9 +427,15 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
     let load = fs::read_to_string("/proc/loadavg").unwrap_or_default();
     println!(
         "load average at the end: {}",
-        load.split_whitespace().take(3).collect::<Vec<_>>().join(" ")
+        load.split_whitespace()
+            .take(3)
+            .collect::<Vec<_>>()
+            .join(" ")
     );
-    levels(&dir.join("model.bin"), runs);
+    // The level table is about the data, not the scale: it runs at 1x only.
+    if scale == 1 {
+        levels(&dir.join("model.bin"), runs);
+    }
 }
 
 /// The compression level's and the chunk size's price and gain on these weights, measured as

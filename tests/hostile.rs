@@ -1447,7 +1447,10 @@ fn issue13_the_untouched_format_2_fixture_verifies_and_unpacks() {
     let env = Env::new();
     let draft = Draft::chunked();
     assert_eq!(frames(&draft).len(), 4, "the fixture spans several chunks");
-    assert_eq!(list_of(&frames(&draft)), draft.chunks.clone().expect("a list"));
+    assert_eq!(
+        list_of(&frames(&draft)),
+        draft.chunks.clone().expect("a list")
+    );
     let bundle = draft.signed(&env.key);
     env.assert_accepted(&bundle);
     env.write("unpack.ampoule", &bundle);
@@ -1476,7 +1479,12 @@ fn issue13_an_altered_chunk_is_refused_before_it_is_decoded() {
     payload[start + 100] ^= 0x01;
     let found = Digest::of(&payload[start..end]);
     env.assert_refused(
-        &relaid(&env, &draft, draft.chunks.as_deref().expect("a list"), &payload),
+        &relaid(
+            &env,
+            &draft,
+            draft.chunks.as_deref().expect("a list"),
+            &payload,
+        ),
         &[],
         &format!(
             "payload chunk 1 (bytes {start} to {end}) has sha256 {found}, but the chunk list \
@@ -1585,7 +1593,12 @@ fn issue13_reordered_chunks_are_refused() {
     let payload = swapped.concat();
     let end = chunks[0].len() + chunks[1].len();
     env.assert_refused(
-        &relaid(&env, &draft, draft.chunks.as_deref().expect("a list"), &payload),
+        &relaid(
+            &env,
+            &draft,
+            draft.chunks.as_deref().expect("a list"),
+            &payload,
+        ),
         &[],
         &format!(
             "payload chunk 1 (bytes {} to {end}) has sha256 {}, but the chunk list declares {}; \
@@ -1603,7 +1616,13 @@ fn issue13_reordered_chunks_are_refused() {
         tar_entry(entry::LABELS, LABELS),
     ]);
     let k = CHUNK_BYTES as usize;
-    let seen = [&inner[..k], &inner[2 * k..3 * k], &inner[k..2 * k], &inner[3 * k..]].concat();
+    let seen = [
+        &inner[..k],
+        &inner[2 * k..3 * k],
+        &inner[k..2 * k],
+        &inner[3 * k..],
+    ]
+    .concat();
     let model = &seen[512..512 + draft.model.len()];
     env.assert_refused(
         &resigned(&env, &draft, list_of(&swapped), payload),
@@ -1650,7 +1669,11 @@ fn issue13_a_format_1_layout_under_a_format_2_manifest_and_the_reverse_are_refus
     let chunked = Draft::chunked();
     let manifest = chunked.manifest.to_json();
     env.assert_not_a_bundle(
-        &assemble(&manifest, &signatures(&[&env.key], &manifest), &chunked.payload),
+        &assemble(
+            &manifest,
+            &signatures(&[&env.key], &manifest),
+            &chunked.payload,
+        ),
         &[],
         "bundle has no 'chunks.sha256' entry, which its format 2 manifest requires before \
          'payload.tar.zst'",

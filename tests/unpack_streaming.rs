@@ -8,8 +8,8 @@ use std::path::{Path, PathBuf};
 
 use ampoule::release::atomic::Placement;
 use ampoule::release::pack::{Parts, sign_manifest, write_bundle_file};
-use ampoule::release::ustar::Small;
 use ampoule::release::synth;
+use ampoule::release::ustar::Small;
 use ampoule_verify::format::{FORMAT_VERSION, entry};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};
 use ampoule_verify::signature::Signatures;
@@ -48,12 +48,14 @@ fn inner_tar(entries: &[(&str, &[u8], Option<u64>)]) -> Vec<u8> {
 fn write_bundle(dir: &Path, model: &[u8], tar_bytes: &[u8], format: u32) -> PathBuf {
     let chunk_bytes = 1 << 20;
     let (payload, chunks) = if format == FORMAT_VERSION {
-        let (payload, chunks) =
-            ampoule_verify::bundle::chunked_payload(tar_bytes, chunk_bytes, 3)
-                .expect("zstd compresses");
+        let (payload, chunks) = ampoule_verify::bundle::chunked_payload(tar_bytes, chunk_bytes, 3)
+            .expect("zstd compresses");
         (payload, Some(chunks))
     } else {
-        (zstd::bulk::compress(tar_bytes, 3).expect("zstd compresses"), None)
+        (
+            zstd::bulk::compress(tar_bytes, 3).expect("zstd compresses"),
+            None,
+        )
     };
     let manifest = Manifest {
         format,
@@ -192,7 +194,10 @@ fn a_payload_that_ends_inside_the_model_is_refused() {
     // Format 1 finds the end in the stream; format 2 before decoding, in the one chunk's
     // frame, which states fewer bytes than its place holds.
     for (format, expected) in [
-        (1, "payload entry 'model.bin' is truncated: the file ended early".to_string()),
+        (
+            1,
+            "payload entry 'model.bin' is truncated: the file ended early".to_string(),
+        ),
         (
             FORMAT_VERSION,
             format!(

@@ -60,7 +60,10 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
             (Some(sha256), ..) => format!("sha256 {sha256}"),
             (None, Some(count), Some(bytes)) => format!(
                 "{count} chunks of {bytes} bytes decoded, chunk list sha256 {}",
-                m.payload.chunks_sha256.map(|d| d.to_string()).unwrap_or_default()
+                m.payload
+                    .chunks_sha256
+                    .map(|d| d.to_string())
+                    .unwrap_or_default()
             ),
             _ => "no digest".to_string(),
         },

@@ -20,8 +20,8 @@ use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 use std::thread::{Scope, ScopedJoinHandle};
 
 use ampoule_verify::bundle::{self, Layout};
-use ampoule_verify::format::chunks::{self, ListWriter};
 use ampoule_verify::digest::Hasher;
+use ampoule_verify::format::chunks::{self, ListWriter};
 use ampoule_verify::format::{context, entry, limit, signed_bytes};
 use ampoule_verify::manifest::{Compression, FileEntry, Payload, Role};
 use ampoule_verify::metadata::Metadata;
@@ -173,6 +173,9 @@ impl<'scope> Flusher<'scope> {
     }
 }
 
+/// A compressed chunk (its frame) and the chunk's buffer, handed back for reuse.
+type Frame = io::Result<(Vec<u8>, Vec<u8>)>;
+
 /// The inner tar, cut into chunks of `chunk_bytes` as it is written, each chunk handed to
 /// the compression workers in turn (chunk i to worker i mod [`ZSTD_WORKERS`]).
 struct ChunkCutter {
@@ -226,10 +229,7 @@ impl Write for ChunkCutter {
 
 /// A compression worker: each chunk it is given becomes one zstd frame (level
 /// [`ZSTD_LEVEL`], stating its decoded size), sent on with the chunk's buffer for reuse.
-fn compress_chunks(
-    jobs: Receiver<Vec<u8>>,
-    frames: SyncSender<io::Result<(Vec<u8>, Vec<u8>)>>,
-) {
+fn compress_chunks(jobs: Receiver<Vec<u8>>, frames: SyncSender<Frame>) {
     let compressor = zstd::bulk::Compressor::new(ZSTD_LEVEL).and_then(|mut c| {
         // No content checksum: each frame's SHA-256 is in the chunk list and every file's in
         // the manifest, so zstd's own XXH64 would only cost time on both sides.
@@ -259,7 +259,7 @@ fn compress_chunks(
 fn write_frames<'scope>(
     scope: &'scope Scope<'scope, '_>,
     file: &mut File,
-    frames: &[Receiver<io::Result<(Vec<u8>, Vec<u8>)>>],
+    frames: &[Receiver<Frame>],
     spent: &Sender<Vec<u8>>,
 ) -> io::Result<ListWriter> {
     let mut flusher = Flusher::spawn(scope, file.try_clone()?);
@@ -534,8 +534,7 @@ fn pack_guessing(
     }
     let labels_file = labels::labels_file(&spec.labels);
     let model = open_model(spec)?;
-    let Some(chunk_bytes) = chunks::writer_chunk_bytes(inner_tar_len(model.1, &labels_file))
-    else {
+    let Some(chunk_bytes) = chunks::writer_chunk_bytes(inner_tar_len(model.1, &labels_file)) else {
         bail!(
             "model {} is {} bytes, more than a bundle's {} chunks of {} bytes hold",
             spec.model.display(),
@@ -597,8 +596,8 @@ fn pack_guessing(
         file.seek(SeekFrom::Start(0))?;
         ustar::write_head(file, parts.mtime, parts.small, payload_len)
             .and_then(|()| file.seek(SeekFrom::Start(guess + payload_len)))
-        .and_then(|_| ustar::write_tail(file, payload_len))
-        .with_context(|| format!("cannot write bundle {}", out.display()))?;
+            .and_then(|_| ustar::write_tail(file, payload_len))
+            .with_context(|| format!("cannot write bundle {}", out.display()))?;
         place(out, temp, Placement::New)?
     } else {
         // Rare: the guess was a block off. Copy the payload to its place in a second file

@@ -34,6 +34,7 @@ use crate::check::trust::{
     DocumentKind, KeyEntry, Thresholds, TrustSet, TrustSetBody, TrustSetFile,
 };
 use crate::format::bundle::{read_layout, write_bundle};
+use crate::format::chunks::ListWriter;
 use crate::format::digest::Digest;
 use crate::format::keys::{PublicKey, TrustedKeys};
 use crate::format::ledger_entry::{
@@ -48,7 +49,6 @@ use crate::format::metadata::{Metadata, MetadataBuilder};
 use crate::format::signature::{SignatureEntry, Signatures};
 use crate::format::signed::{SignedDocument, kind};
 use crate::format::time::Timestamp;
-use crate::format::chunks::ListWriter;
 use crate::format::{
     FEED_FORMAT_VERSION, FORMAT_VERSION, OLDEST_FORMAT_VERSION, context, entry, signed_bytes, tar,
 };
@@ -1046,7 +1046,11 @@ fn offline_file(feed: &[u8], bundle: &[u8]) -> Vec<u8> {
 fn seed_bundle() -> Vec<u8> {
     let (model, labels) = seed_files();
     let payload = seed_payload(&model, &labels);
-    bundle_bytes(&template_manifest(&payload, seed_entries(), 6), None, &payload)
+    bundle_bytes(
+        &template_manifest(&payload, seed_entries(), 6),
+        None,
+        &payload,
+    )
 }
 
 /// The seed payload: the inner tar of `model` and `labels`, compressed.

@@ -249,8 +249,8 @@ pub fn chunked_payload(inner_tar: &[u8], chunk_bytes: u32, level: i32) -> io::Re
 /// The checks that must pass before any payload byte is decoded. The payload's size must be
 /// the manifest's, and the layout the manifest's format: a chunk list in format 2, none in
 /// format 1. In format 2 the chunk list must match the manifest; each chunk is then checked
-/// as it is read for decoding ([`chunks::Checked`]), so nothing of the payload is read here.
-/// In format 1 the whole payload is hashed now, as [`check_payload`] does.
+/// as it is read for decoding (`chunks::spawn_checker`), so nothing of the payload is read
+/// here. In format 1 the whole payload is hashed now, as [`check_payload`] does.
 pub fn check_before_decoding(
     file: &mut File,
     layout: &Layout,

@@ -102,7 +102,7 @@ impl Plan {
                 ),
             ));
         };
-        if list.len() % RECORD_BYTES != 0 {
+        if !list.len().is_multiple_of(RECORD_BYTES) {
             return Err(Error::new(
                 ErrorKind::Malformed,
                 format!(
@@ -221,25 +221,21 @@ impl ListWriter {
     }
 }
 
-/// The payload's chunks, each read and hashed on a thread of its own and handed on only once
-/// its SHA-256 equals its record's, chunk `i` to `outputs[i % outputs.len()]`. A chunk that
-/// differs, or a file that ends early, ends the stream with an error that says which chunk.
-pub(crate) struct Checked;
-
-impl Checked {
-    /// Starts reading `file` (positioned at the payload's first byte) on a thread of `scope`.
-    /// Returns where the consumers hand each chunk's buffer back for reuse.
-    pub(crate) fn spawn<'scope>(
-        scope: &'scope Scope<'scope, '_>,
-        file: File,
-        plan: &Plan,
-        outputs: Vec<SyncSender<Result<Vec<u8>>>>,
-    ) -> Sender<Vec<u8>> {
-        let (spent, reuse) = channel();
-        let records = plan.records.clone();
-        scope.spawn(move || check_chunks(file, &records, &outputs, &reuse));
-        spent
-    }
+/// Starts reading `file` (positioned at the payload's first byte) on a thread of `scope`:
+/// each chunk is read, hashed, and handed on only once its SHA-256 equals its record's, chunk
+/// `i` to `outputs[i % outputs.len()]`. A chunk that differs, or a file that ends early, ends
+/// the stream with an error that says which chunk. Returns where the consumers hand each
+/// chunk's buffer back for reuse.
+pub(crate) fn spawn_checker<'scope>(
+    scope: &'scope Scope<'scope, '_>,
+    file: File,
+    plan: &Plan,
+    outputs: Vec<SyncSender<Result<Vec<u8>>>>,
+) -> Sender<Vec<u8>> {
+    let (spent, reuse) = channel();
+    let records = plan.records.clone();
+    scope.spawn(move || check_chunks(file, &records, &outputs, &reuse));
+    spent
 }
 
 /// Reads, hashes and checks every chunk in order, sending each one on, until the end, the
@@ -304,7 +300,7 @@ fn read_chunk(file: &mut File, buf: &mut [u8], start: u64) -> Result<()> {
 pub(crate) fn check_all(file: File, plan: &Plan) -> Result<()> {
     std::thread::scope(|scope| {
         let (output, checked) = sync_channel(CHUNKS_IN_FLIGHT);
-        let returned = Checked::spawn(scope, file, plan, vec![output]);
+        let returned = spawn_checker(scope, file, plan, vec![output]);
         for chunk in checked {
             let _ = returned.send(chunk?);
         }

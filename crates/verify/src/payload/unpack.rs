@@ -23,7 +23,7 @@ use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 use crate::format::digest::Hasher;
 use crate::dir::{Dir, Refused};
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::chunks::{Checked, Plan};
+use crate::format::chunks::{Plan, spawn_checker};
 use crate::format::limit;
 use crate::format::manifest::Manifest;
 use crate::readahead::ReadAhead;
@@ -39,6 +39,9 @@ const CHUNKS_IN_FLIGHT: usize = 4;
 /// up to 4 MiB), not [`CHUNK`]s: fewer of them wait in each queue, so memory stays at a few
 /// chunks.
 const WHOLE_CHUNKS_IN_FLIGHT: usize = 2;
+/// Where a decoding thread sends its decoded chunks, or the error that stopped it.
+type Decoded = SyncSender<Result<Vec<u8>>>;
+
 /// How much of a file is written between flushes to disk while it streams.
 const EARLY_SYNC_BYTES: usize = 16 * 1024 * 1024;
 
@@ -200,7 +203,7 @@ fn decode(
     mut file: File,
     (offset, size, tar_len): (u64, u64, u64),
     plan: Option<Plan>,
-    outs: Vec<SyncSender<Result<Vec<u8>>>>,
+    outs: Vec<Decoded>,
     spent: Receiver<Vec<u8>>,
 ) {
     let spent = Mutex::new(spent);
@@ -215,7 +218,7 @@ fn decode(
             return decode_stream(input, tar_len, (&outs[0], &spent));
         };
         let (inputs, checked): (Vec<_>, Vec<_>) = (0..outs.len()).map(|_| sync_channel(1)).unzip();
-        let returned = Checked::spawn(scope, file, plan, inputs);
+        let returned = spawn_checker(scope, file, plan, inputs);
         let spent = &spent;
         for (first, (input, out)) in checked.into_iter().zip(&outs).enumerate() {
             let returned = returned.clone();
@@ -241,7 +244,7 @@ fn decode_chunks(
     first: usize,
     (input, returned): (Receiver<Result<Vec<u8>>>, &Sender<Vec<u8>>),
     plan: &Plan,
-    (out, spent): (&SyncSender<Result<Vec<u8>>>, &Mutex<Receiver<Vec<u8>>>),
+    (out, spent): (&Decoded, &Mutex<Receiver<Vec<u8>>>),
 ) -> Result<()> {
     let mut dctx = DCtx::create();
     for (n, chunk) in input.into_iter().enumerate() {
@@ -307,7 +310,7 @@ fn decompresses_past(tar_len: u64) -> Error {
 fn decode_stream<R: BufRead>(
     input: R,
     tar_len: u64,
-    (out, spent): (&SyncSender<Result<Vec<u8>>>, &Receiver<Vec<u8>>),
+    (out, spent): (&Decoded, &Receiver<Vec<u8>>),
 ) -> Result<()> {
     let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
         .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
