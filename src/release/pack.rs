@@ -37,10 +37,10 @@ use crate::release::ustar::{self, Small};
 use semver::{Version, VersionReq};
 
 /// The zstd level for payloads. On weight-like float data level 1 compresses as well as 3
-/// (ratio 1.083 against 1.082 on the invented weights, in chunks of 512 KiB) in about
-/// two thirds of the time, and decodes as fast; negative levels leave the literals
+/// (ratio 1.083 against 1.082 on the invented weights, in chunks of 512 KiB) in about three
+/// quarters of the time, and decodes as fast; negative levels leave the literals
 /// uncompressed (ratio 1.000, 8% more to download) and higher ones buy nothing at many
-/// times the time (BENCHMARKS.md, "Compression level"; ../shared/CRATES.md for level 19).
+/// times the time (BENCHMARKS.md, "Issue 13 item 4"; ../shared/CRATES.md for level 19).
 const ZSTD_LEVEL: i32 = 1;
 /// Compression workers, each compressing whole chunks. Fixed, not the machine's core count,
 /// though the output would not change with it: every chunk is a frame of its own, compressed
