@@ -5,6 +5,13 @@
 //! for the unpacked files. Also the update's peak resident memory and the store's extra disk
 //! space while it installs.
 //!
+//! Then (issue 13) the update of a device on 1.0.0 to 1.1.0 of the issue's 84 MiB model with
+//! a retrained last layer (`synth::write_head_model`), with a delta against with the full
+//! bundle: two release trees with the same two bundles, one published with deltas (`publish`
+//! makes the delta from 1.0.0 and lists it in the feed and the ledger) and one without, each
+//! device updating from its own with the ledger checked; the whole `ampoule update` process's
+//! time, peak RSS and downloaded bytes.
+//!
 //! Run with `cargo bench --bench delivery`; it prints its numbers and is not part of the test
 //! suite. It needs curl, openssl, tar and zstd; /usr/bin/time (or python3) for peak memory.
 
@@ -149,6 +156,18 @@ fn publish(
     key: &ed25519_dalek::SigningKey,
     trusted: &TrustedKeys,
 ) -> Result<ampoule::release::tree::Change> {
+    // Full bundles only: this part measures the full download.
+    publish_with_deltas(tree, bundle, key, trusted, 0)
+}
+
+/// Publishes `bundle` on `stable` with deltas from up to `bases` earlier releases.
+fn publish_with_deltas(
+    tree: &Path,
+    bundle: &Path,
+    key: &ed25519_dalek::SigningKey,
+    trusted: &TrustedKeys,
+    bases: usize,
+) -> Result<ampoule::release::tree::Change> {
     let tree = Tree::lock(tree)?;
     let staged = tree.stage_bundle(bundle, trusted)?;
     tree.publish(
@@ -156,6 +175,7 @@ fn publish(
         "stable",
         100,
         &[],
+        bases,
         &Signing {
             key_file: None,
             key,
@@ -165,6 +185,7 @@ fn publish(
             outside: &[],
         },
     )
+    .map(|(change, _)| change)
 }
 
 /// The reference: curl, then the FORMAT.md checks with openssl, tar and zstd, then sync.
@@ -323,5 +344,129 @@ fn main() -> Result<()> {
         (peak - before) as f64 / model_len as f64
     );
     server.shutdown()?;
+    delta_update(dir, &key, &trusted)
+}
+
+/// The 84 MiB model with a retrained head, packed opaque as `version`.
+fn pack_head_model(
+    dir: &Path,
+    version: &str,
+    head_seed: u64,
+    key: &ed25519_dalek::SigningKey,
+) -> Result<PathBuf> {
+    let model = dir.join(format!("head-{version}.bin"));
+    synth::write_head_model(&model, 84 * 1024 * 1024, 6, head_seed)?;
+    let spec = PackSpec {
+        model: model.clone(),
+        model_path: "model.bin".into(),
+        labels: LABELS[..6].iter().map(|s| s.to_string()).collect(),
+        name: "trailcam-species".into(),
+        version: version.parse()?,
+        requires_app: ">=2.0.0, <3.0.0".parse()?,
+        created: "2026-12-01T06:00:00Z".parse()?,
+        model_signature: None,
+        metadata: None,
+    };
+    let bundle = dir.join(format!("head-{version}.ampoule"));
+    pack(&spec, Some(key), &bundle, &indicatif::ProgressBar::hidden())?;
+    std::fs::remove_file(&model)?;
+    Ok(bundle)
+}
+
+/// `ampoule update --json`; returns the report's `downloaded_bytes` and whether a delta was
+/// used, with the time and peak RSS.
+fn update_json(dir: &Path, store: &Path, feed: &str) -> Result<(Duration, Option<u64>, u64, bool)> {
+    let out = dir.join("update.json");
+    let mut c = Command::new("bash");
+    c.arg("-c")
+        .arg(r#"out="$1"; shift; exec "$@" > "$out""#)
+        .arg("update")
+        .arg(&out);
+    let update = update_command(dir, store, feed);
+    c.arg(update.get_program()).arg("--json");
+    c.args(update.get_args());
+    let (t, rss) = run_measured(c, dir)?;
+    let doc: serde_json::Value = serde_json::from_slice(&std::fs::read(&out)?)?;
+    let downloaded = doc["downloaded_bytes"]
+        .as_u64()
+        .context("downloaded_bytes")?;
+    Ok((t, rss, downloaded, !doc["delta"].is_null()))
+}
+
+fn delta_update(dir: &Path, key: &ed25519_dalek::SigningKey, trusted: &TrustedKeys) -> Result<()> {
+    let v1 = pack_head_model(dir, "1.0.0", 2, key)?;
+    let v2 = pack_head_model(dir, "1.1.0", 4, key)?;
+    let bundle_len = std::fs::metadata(&v2)?.len();
+    let (with, without) = (dir.join("tree-deltas"), dir.join("tree-plain"));
+    let mut feeds = Vec::new();
+    let mut servers = Vec::new();
+    for tree in [&with, &without] {
+        publish(tree, &v1, key, trusted)?;
+        let server = Server::start(tree.clone(), "127.0.0.1:0".parse()?)?;
+        feeds.push(server.url("feeds/stable.json"));
+        servers.push(server);
+    }
+    // Devices on 1.0.0, one per run and side.
+    for run in 0..RUNS {
+        for (side, feed) in ["delta", "full"].iter().zip(&feeds) {
+            let store = dir.join(format!("head-{side}-{run}"));
+            update_json(dir, &store, feed)?;
+        }
+    }
+    publish_with_deltas(&with, &v2, key, trusted, 1)?;
+    publish(&without, &v2, key, trusted)?;
+    let signed = ampoule_verify::feed::SignedFeed::from_json(&std::fs::read(
+        with.join("feeds/stable.json"),
+    )?)?;
+    let feed = ampoule_verify::feed::Feed::from_json(signed.feed.as_bytes())?;
+    let delta = feed
+        .release
+        .and_then(|r| r.deltas.into_iter().next())
+        .context("publish listed no delta")?;
+    println!(
+        "update 1.0.0 -> 1.1.0 of the 84.0 MiB model with a retrained last layer: a {} byte \
+         delta against the {:.1} MiB bundle ({:.3}%)",
+        delta.size,
+        mib(bundle_len),
+        delta.size as f64 * 100.0 / bundle_len as f64
+    );
+    let (mut times, mut rss, mut bytes) = ([Vec::new(), Vec::new()], [0u64; 2], [0u64; 2]);
+    for run in 0..RUNS {
+        for (i, (side, feed)) in ["delta", "full"].iter().zip(&feeds).enumerate() {
+            let store = dir.join(format!("head-{side}-{run}"));
+            let (t, r, downloaded, used) = update_json(dir, &store, feed)?;
+            if used != (i == 0) {
+                bail!("the {side} update used a delta: {used}");
+            }
+            times[i].push(t);
+            rss[i] = rss[i].max(r.unwrap_or(0));
+            bytes[i] = downloaded;
+        }
+    }
+    let shown = |t: &[Duration]| {
+        let mut t: Vec<f64> = t.iter().map(Duration::as_secs_f64).collect();
+        t.sort_by(f64::total_cmp);
+        format!(
+            "median {:.3} s of {RUNS} (min {:.3}, max {:.3})",
+            t[t.len() / 2],
+            t[0],
+            t[t.len() - 1]
+        )
+    };
+    for (i, side) in ["with the delta", "full bundle"].iter().enumerate() {
+        println!(
+            "  ampoule update, {side}: {}, {} bytes downloaded, peak RSS {:.1} MiB",
+            shown(&times[i]),
+            bytes[i],
+            rss[i] as f64 / 1024.0
+        );
+    }
+    println!(
+        "  ratio delta / full bundle: {:.2}",
+        median(times[0].clone()).as_secs_f64() / median(times[1].clone()).as_secs_f64()
+    );
+    for server in servers {
+        server.shutdown()?;
+    }
     Ok(())
 }

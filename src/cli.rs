@@ -77,6 +77,10 @@ A secret key is read with the same checks as when signing (owner-only, passphras
       --name trailcam-species --version 1.1.0 --key release.secret.pem \\
       --meta data.snapshot=2026-11-30 --meta notes='Adds pine marten' \\
       --meta-file metadata.json -o species-1.1.0.ampoule
+  # Also a delta for devices on 1.0.0: species-1.1.0-from-1.0.0.ampoule-delta
+  ampoule pack --model species.onnx --labels labels.txt \\
+      --name trailcam-species --version 1.1.0 --key release.secret.pem \\
+      --delta-from species-1.0.0.ampoule -o species-1.1.0.ampoule
 
 Metadata keys are dotted paths (segments of a-z, 0-9, _; at most 8 deep); a key set twice
 is refused. Documented keys and their types: preprocess.input_size, .mean, .std, .scale
@@ -142,11 +146,14 @@ same file the C interface reads:
   ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule
   ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule --json
   ampoule diff species-1.0.0.ampoule species-1.1.0.ampoule --fail-on breaking
+  ampoule diff species-1.0.0.ampoule species-1.0.0-to-1.1.0.ampoule-delta
 
 diff reads both payloads to compare the label lists; it does not check signatures.
 Breaking changes (listed under \"breaking\" in --json): a label moved to another index,
 a label removed, an input or output changed or removed, a preprocess.* metadata key
-added, removed or changed. With --fail-on breaking, any of them makes diff exit 1.")]
+added, removed or changed. With --fail-on breaking, any of them makes diff exit 1.
+Given a delta (.ampoule-delta) and a bundle, diff says whether the bundle is the delta's
+base, the release it sends, or neither, with their sizes: a delta is not a release.")]
     Diff(DiffArgs),
 
     /// Manage trust sets: which keys may sign what, and how many must agree.
@@ -175,8 +182,16 @@ added, removed or changed. With --fail-on breaking, any of them makes diff exit 
       --key feed.secret.pem --trust release.public.pem \\
       --tree-head-signer ./sign-tree-head \\
       --tree-head-signer-key heads.public.pem
+  # Deltas from the last 5 releases of the channel instead of 3 (0: none)
+  ampoule publish species-1.2.0.ampoule --tree ./release --channel stable \\
+      --key feed.secret.pem --trust release.public.pem --deltas 5
 
 The tree is plain static files: serve it with any web server. Devices poll feeds/<channel>.json.
+A new release gets deltas (bundles/<sha256>.ampoule-delta) from the channel's last --deltas
+earlier releases of its name, withdrawn ones included: a delta is a way to send the release to a
+device on that base, not a release; it carries the release's own signatures, so no key is
+needed. One that is over 3/4 of the bundle is skipped, and said so. A renewal offers the
+deltas it offered before; a withdraw offers the release before it as it was published.
 Publishing the current bundle again renews its feed (new sequence and expiry) and sets its
 rollout, and says it only renewed; publish at least once per --expires-in, or devices stop
 trusting the channel. --dry-run makes every check and shows the sequence, release, rollout
@@ -391,6 +406,11 @@ pub struct PackArgs {
     /// The bundle file to write; it must not exist yet.
     #[arg(short = 'o', long = "out", value_name = "OUT.ampoule")]
     pub out: PathBuf,
+    /// Also write a delta from this older signed bundle of the same name to the new one,
+    /// beside it as OUT-from-<old version>.ampoule-delta (needs --key: a delta carries the
+    /// bundle's signatures as they are).
+    #[arg(long, value_name = "OLD.ampoule", requires = "key")]
+    pub delta_from: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]
@@ -535,7 +555,9 @@ pub enum LedgerCommand {
   ampoule ledger list --url http://127.0.0.1:8000/ --json
 
 Columns: entry number, time (UTC), event, channel, bundle name, version, bundle sha256,
-the keys that signed the bundle, and the feed sequence that carried the change.")]
+the keys that signed the bundle, and the feed sequence that carried the change. Under a
+publish, one line per delta it offers: a way to send that release to devices on a base, with
+its size against the bundle's (a delta is not a release).")]
     List(LedgerListArgs),
     /// Recompute every hash, check every tree head's signature and consistency, and the
     /// entries against the tree; exit 1 on any problem.
@@ -548,7 +570,10 @@ the keys that signed the bundle, and the feed sequence that carried the change."
 
 Problems (exit 1): a hash that does not match the entries, a tree head not signed by the
 trusted keys, a current head not consistent with --since, a version reused with different
-content, a feed-sequence gap, a bundle missing from the tree or different from the one logged.
+content, a feed-sequence gap, a bundle missing from the tree or different from the one logged,
+a delta missing or different, or one publish would never make (not carrying the release's
+signed manifest, not from an earlier release of the same name, or not rebuilding its files
+from that base; each is rebuilt with the library's apply).
 Warnings (exit 0): an entry no feed carried, left by a publish that stopped after its append.")]
     Check(LedgerCheckArgs),
     /// Print the inclusion proof of a bundle's latest publish entry, and verify it.
@@ -810,6 +835,13 @@ pub struct PublishArgs {
     /// there too, tried in order after the tree itself.
     #[arg(long, value_name = "URL")]
     pub mirror: Vec<String>,
+    /// Make deltas to this release from the channel's last N earlier releases of the same
+    /// bundle name (0 to 8; 0: none), written beside the bundles as
+    /// bundles/<sha256>.ampoule-delta and listed in the feed and the ledger. A delta is kept
+    /// only if it is at most 3/4 of the bundle. Renewing the current release offers its
+    /// deltas again (at most N).
+    #[arg(long, value_name = "N", default_value_t = 3)]
+    pub deltas: usize,
     /// Make every check and show the sequence, release, rollout and ledger entry the publish
     /// would write, and write nothing.
     #[arg(long)]

@@ -355,7 +355,7 @@ fn layout_reason(text: &str) -> String {
     match LAYOUT_RULES.iter().find(|(words, _)| text.contains(words)) {
         Some((_, rule)) => format!("{subject} {rule}"),
         None => "its layout is not a bundle's (a POSIX ustar file of manifest.json, \
-                 signatures.json and payload.tar.zst, in that order)"
+                 signatures.json, chunks.sha256 and payload.tar.zst, in that order)"
             .to_string(),
     }
 }

@@ -498,7 +498,10 @@ fn issue10_old_format_ledgers_stay_readable_and_devices_require_the_new_binding(
             .expect("JSON");
     assert_eq!(listed["entries"][1]["format"], 2);
     assert_eq!(listed["entries"][1]["offered"]["rollout_percent"], 100);
-    assert_eq!(listed["entries"][1]["offered"]["deltas"], 0);
+    assert_eq!(
+        listed["entries"][1]["offered"]["deltas"],
+        serde_json::json!([])
+    );
     let report = update(&camera, d, feed_file(d, "stable"));
     assert_eq!(installed(&report), Version::new(1, 0, 0));
 }

@@ -136,7 +136,7 @@ fn flipped_byte_in_payload() {
         &[],
         &format!(
             "payload digest mismatch: manifest declares sha256 {}, the bundle holds {found}",
-            draft.manifest.payload.sha256
+            draft.manifest.payload.sha256.expect("a format 1 draft")
         ),
     );
 }
@@ -1044,11 +1044,11 @@ fn issue11_signed_metadata_that_pack_would_refuse_is_refused_by_the_device() {
 fn unsupported_format_version() {
     let env = Env::new();
     let mut draft = Draft::good();
-    draft.manifest.format = 2;
+    draft.manifest.format = 3;
     env.assert_refused(
         &draft.signed(&env.key),
         &[],
-        "manifest format 2 is not supported (this reader knows format 1); \
+        "manifest format 3 is not supported (this reader knows formats 1 to 2); \
          update ampoule-verify to read newer bundles",
     );
 }
@@ -1376,4 +1376,319 @@ fn issue10_signed_labels_with_invisible_or_bidirectional_characters_or_not_in_nf
         let draft = Draft::with_payload(model.clone(), labels, zstd(&inner));
         env.assert_refused(&draft.signed(&env.key), &[], expected);
     }
+}
+
+// ---------------------------------------------------------------------------------------------
+// Format 2 (issue 13): the payload in chunks, each bound by its size and SHA-256 in the chunk
+// list, whose SHA-256 the signed manifest declares. Each chunk is checked just before it is
+// decoded, so every refusal below comes before the decoder sees a byte it should not.
+
+/// Each chunk's compressed size and SHA-256, from a chunk list (36 bytes a record: the size,
+/// 4 bytes little-endian, then the digest; FORMAT.md, "The chunk list").
+fn records(list: &[u8]) -> Vec<(u32, Vec<u8>)> {
+    list.chunks_exact(36)
+        .map(|r| {
+            let size = u32::from_le_bytes(r[..4].try_into().expect("4 bytes"));
+            (size, r[4..].to_vec())
+        })
+        .collect()
+}
+
+/// The chunk list of `frames`, made here by hand from its definition.
+fn list_of(frames: &[Vec<u8>]) -> Vec<u8> {
+    frames
+        .iter()
+        .flat_map(|f| {
+            let mut record = (f.len() as u32).to_le_bytes().to_vec();
+            record.extend_from_slice(Digest::of(f).as_bytes());
+            record
+        })
+        .collect()
+}
+
+/// The payload of a format 2 draft cut into its chunks, by the sizes its list gives.
+fn frames(draft: &Draft) -> Vec<Vec<u8>> {
+    let mut at = 0;
+    records(draft.chunks.as_deref().expect("a format 2 draft"))
+        .into_iter()
+        .map(|(size, _)| {
+            let frame = draft.payload[at..at + size as usize].to_vec();
+            at += size as usize;
+            frame
+        })
+        .collect()
+}
+
+/// A bundle of `draft` with its chunk list and payload replaced, laid out without re-signing:
+/// the signed manifest still binds the original list.
+fn relaid(env: &Env, draft: &Draft, list: &[u8], payload: &[u8]) -> Vec<u8> {
+    let manifest = draft.manifest.to_json();
+    assemble_with(
+        &manifest,
+        &signatures(&[&env.key], &manifest),
+        Some(list),
+        payload,
+    )
+}
+
+/// A bundle whose signed manifest binds `list` and a payload of `payload`'s size: what a
+/// careless packer holding the bundle key could write.
+fn resigned(env: &Env, draft: &Draft, list: Vec<u8>, payload: Vec<u8>) -> Vec<u8> {
+    let mut draft = draft.clone();
+    draft.manifest.payload.size = payload.len() as u64;
+    draft.manifest.payload.chunks_sha256 = Some(Digest::of(&list));
+    draft.payload = payload;
+    draft.chunks = Some(list);
+    draft.signed(&env.key)
+}
+
+#[test]
+fn issue13_the_untouched_format_2_fixture_verifies_and_unpacks() {
+    let env = Env::new();
+    let draft = Draft::chunked();
+    assert_eq!(frames(&draft).len(), 4, "the fixture spans several chunks");
+    assert_eq!(
+        list_of(&frames(&draft)),
+        draft.chunks.clone().expect("a list")
+    );
+    let bundle = draft.signed(&env.key);
+    env.assert_accepted(&bundle);
+    env.write("unpack.ampoule", &bundle);
+    let run = env.run([
+        "verify",
+        "unpack.ampoule",
+        "--trust",
+        PUBLIC,
+        "--app-version",
+        APP_VERSION,
+        "--extract",
+        "unpacked-2",
+    ]);
+    assert_eq!(run.code, 0, "{run:?}");
+    let model = std::fs::read(env.path("unpacked-2/model.onnx")).expect("unpacked model");
+    assert!(model == draft.model, "the unpacked model differs");
+}
+
+#[test]
+fn issue13_an_altered_chunk_is_refused_before_it_is_decoded() {
+    let env = Env::new();
+    let draft = Draft::chunked();
+    let chunks = frames(&draft);
+    let (start, end) = (chunks[0].len(), chunks[0].len() + chunks[1].len());
+    let mut payload = draft.payload.clone();
+    payload[start + 100] ^= 0x01;
+    let found = Digest::of(&payload[start..end]);
+    env.assert_refused(
+        &relaid(
+            &env,
+            &draft,
+            draft.chunks.as_deref().expect("a list"),
+            &payload,
+        ),
+        &[],
+        &format!(
+            "payload chunk 1 (bytes {start} to {end}) has sha256 {found}, but the chunk list \
+             declares {}; the bundle is damaged or was altered",
+            Digest::of(&chunks[1])
+        ),
+    );
+}
+
+#[test]
+fn issue13_a_chunk_list_not_matching_the_manifest_is_refused() {
+    let env = Env::new();
+    let draft = Draft::chunked();
+    let mut list = draft.chunks.clone().expect("a list");
+    // A digest byte of the second record: a list made for other chunks.
+    list[36 + 4 + 7] ^= 0x80;
+    env.assert_refused(
+        &relaid(&env, &draft, &list, &draft.payload),
+        &[],
+        &format!(
+            "chunk list digest mismatch: manifest declares chunks_sha256 {}, the bundle's \
+             'chunks.sha256' holds {}",
+            draft.manifest.payload.chunks_sha256.expect("format 2"),
+            Digest::of(&list)
+        ),
+    );
+}
+
+#[test]
+fn issue13_a_truncated_chunk_list_is_refused() {
+    let env = Env::new();
+    let draft = Draft::chunked();
+    let list = draft.chunks.clone().expect("a list");
+    env.assert_not_a_bundle(
+        &relaid(&env, &draft, &list[..list.len() - 10], &draft.payload),
+        &[],
+        &format!(
+            "bundle entry 'chunks.sha256' is {} bytes, not a whole number of 36-byte records: \
+             the chunk list is truncated or damaged",
+            list.len() - 10
+        ),
+    );
+    // One whole record fewer: too few chunks for the inner tar the manifest's files make.
+    env.assert_not_a_bundle(
+        &relaid(&env, &draft, &list[..list.len() - 36], &draft.payload),
+        &[],
+        &format!(
+            "bundle entry 'chunks.sha256' lists 3 chunks, but the manifest's files make an \
+             inner tar of {} bytes, which needs 4 in chunks of 65536 bytes",
+            draft.manifest.unpacked_tar_len()
+        ),
+    );
+}
+
+#[test]
+fn issue13_chunk_sizes_that_do_not_add_up_are_refused() {
+    let env = Env::new();
+    let draft = Draft::chunked();
+    let chunks = frames(&draft);
+    // The list says the last chunk is one byte longer than the payload holds, and the
+    // manifest is signed over it: refused before the payload is read.
+    let mut list = list_of(&chunks);
+    let last = list.len() - 36;
+    let size = u32::from_le_bytes(list[last..last + 4].try_into().expect("4 bytes")) + 1;
+    list[last..last + 4].copy_from_slice(&size.to_le_bytes());
+    env.assert_not_a_bundle(
+        &resigned(&env, &draft, list, draft.payload.clone()),
+        &[],
+        &format!(
+            "bundle entry 'chunks.sha256' lists chunks of {} bytes in all, but the manifest \
+             declares a payload of {} bytes: the chunk sizes do not add up",
+            draft.payload.len() + 1,
+            draft.payload.len()
+        ),
+    );
+    // Sizes that add up but cut the payload elsewhere: the first chunk takes one byte of the
+    // second frame, and each digest is of the bytes so cut. The first chunk is then not one
+    // zstd frame.
+    let mut cut = chunks.clone();
+    let moved = cut[1].remove(0);
+    cut[0].push(moved);
+    env.assert_not_a_bundle(
+        &resigned(&env, &draft, list_of(&cut), draft.payload.clone()),
+        &[],
+        &format!(
+            "payload chunk 0 is not valid zstd data: its first frame ends after {} of its {} \
+             bytes; a chunk is one frame",
+            chunks[0].len(),
+            cut[0].len()
+        ),
+    );
+}
+
+#[test]
+fn issue13_reordered_chunks_are_refused() {
+    let env = Env::new();
+    let draft = Draft::chunked();
+    let chunks = frames(&draft);
+    // Two frames of the model swapped in the payload, the signed list unchanged.
+    let swapped = [
+        chunks[0].clone(),
+        chunks[2].clone(),
+        chunks[1].clone(),
+        chunks[3].clone(),
+    ];
+    let payload = swapped.concat();
+    let end = chunks[0].len() + chunks[1].len();
+    env.assert_refused(
+        &relaid(
+            &env,
+            &draft,
+            draft.chunks.as_deref().expect("a list"),
+            &payload,
+        ),
+        &[],
+        &format!(
+            "payload chunk 1 (bytes {} to {end}) has sha256 {}, but the chunk list declares {}; \
+             the bundle is damaged or was altered",
+            chunks[0].len(),
+            Digest::of(&payload[chunks[0].len()..end]),
+            Digest::of(&chunks[1])
+        ),
+    );
+    // Swapped in the list too, and signed so: every chunk checks and decodes to its place's
+    // size, but the model comes out with two of its pieces swapped, and its digest is not
+    // the manifest's.
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &draft.model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    let k = CHUNK_BYTES as usize;
+    let seen = [
+        &inner[..k],
+        &inner[2 * k..3 * k],
+        &inner[k..2 * k],
+        &inner[3 * k..],
+    ]
+    .concat();
+    let model = &seen[512..512 + draft.model.len()];
+    env.assert_refused(
+        &resigned(&env, &draft, list_of(&swapped), payload),
+        &[],
+        &format!(
+            "digest mismatch for 'model.onnx': manifest declares sha256 {}, the payload holds {}",
+            Digest::of(&draft.model),
+            Digest::of(model)
+        ),
+    );
+}
+
+#[test]
+fn issue13_a_chunk_decoding_to_another_size_than_its_place_is_refused() {
+    let env = Env::new();
+    let draft = Draft::chunked();
+    let mut chunks = frames(&draft);
+    // The last chunk's frame replaced by one holding its bytes and 1 MiB of zeros more, the
+    // list and manifest signed over it: a bomb stopped by the size the frame must declare.
+    let inner = tar_of(&[
+        tar_entry("model.onnx", &draft.model),
+        tar_entry(entry::LABELS, LABELS),
+    ]);
+    let last = 3 * CHUNK_BYTES as usize;
+    let mut tail = inner[last..].to_vec();
+    let place = tail.len();
+    tail.resize(place + (1 << 20), 0);
+    // The library's one-shot compressor states the frame's decoded size, as pack's does.
+    chunks[3] = ::zstd::bulk::compress(&tail, 3).expect("zstd compresses in memory");
+    env.assert_not_a_bundle(
+        &resigned(&env, &draft, list_of(&chunks), chunks.concat()),
+        &[],
+        &format!(
+            "payload chunk 3 is not valid zstd data: its frame declares {} decoded bytes, but \
+             its place in the inner tar holds {place}",
+            tail.len()
+        ),
+    );
+}
+
+#[test]
+fn issue13_a_format_1_layout_under_a_format_2_manifest_and_the_reverse_are_refused() {
+    let env = Env::new();
+    let chunked = Draft::chunked();
+    let manifest = chunked.manifest.to_json();
+    env.assert_not_a_bundle(
+        &assemble(
+            &manifest,
+            &signatures(&[&env.key], &manifest),
+            &chunked.payload,
+        ),
+        &[],
+        "bundle has no 'chunks.sha256' entry, which its format 2 manifest requires before \
+         'payload.tar.zst'",
+    );
+    let plain = Draft::good();
+    let manifest = plain.manifest.to_json();
+    env.assert_not_a_bundle(
+        &assemble_with(
+            &manifest,
+            &signatures(&[&env.key], &manifest),
+            Some(&list_of(std::slice::from_ref(&plain.payload))),
+            &plain.payload,
+        ),
+        &[],
+        "bundle has a 'chunks.sha256' entry, but its format 1 manifest binds the payload by one \
+         digest",
+    );
 }

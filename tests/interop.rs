@@ -124,7 +124,7 @@ fn openssl_verifies_the_signature_over_the_documented_bytes() {
 }
 
 #[test]
-fn gnu_tar_lists_exactly_the_three_entries() {
+fn gnu_tar_lists_exactly_the_four_entries() {
     if !tools(&["tar"]) {
         return;
     }
@@ -142,7 +142,12 @@ fn gnu_tar_lists_exactly_the_three_entries() {
     let names: Vec<&str> = rows.iter().map(|r| r[5]).collect();
     assert_eq!(
         names,
-        ["manifest.json", "signatures.json", "payload.tar.zst"]
+        [
+            "manifest.json",
+            "signatures.json",
+            "chunks.sha256",
+            "payload.tar.zst"
+        ]
     );
     for row in &rows {
         // Mode 0644, owner and group 0, and the --created time as mtime (tar prints UTC here).
@@ -176,10 +181,29 @@ fn payload_decompresses_with_zstd_and_lists_with_tar() {
     let mut c = tar_in(env.dir.path());
     c.arg("xOf").arg(&bundle).arg("manifest.json");
     let manifest = json(&run_tool(c));
+    // Format 2: openssl's SHA-256 of the chunk list is the manifest's, and of each chunk (cut
+    // from the payload by the sizes the list gives: 4 bytes little-endian, then 32 bytes of
+    // digest) the list's.
+    let mut c = tar_in(env.dir.path());
+    c.arg("xOf").arg(&bundle).arg("chunks.sha256");
+    let list = run_tool(c);
+    env.write("chunks.sha256", &list);
     assert_eq!(
-        manifest["payload"]["sha256"].as_str(),
-        Some(openssl_sha256(&env.path("payload.tar.zst")).as_str())
+        manifest["payload"]["chunks_sha256"].as_str(),
+        Some(openssl_sha256(&env.path("chunks.sha256")).as_str())
     );
+    let mut at = 0;
+    for record in list.chunks(36) {
+        let size = u32::from_le_bytes(record[..4].try_into().expect("a whole record")) as usize;
+        env.write("chunk.bin", &payload[at..at + size]);
+        assert_eq!(
+            openssl_sha256(&env.path("chunk.bin")),
+            hex::encode(&record[4..]),
+            "the chunk at {at}"
+        );
+        at += size;
+    }
+    assert_eq!(at, payload.len(), "the chunks cover the payload");
     assert_eq!(
         manifest["payload"]["size"].as_u64(),
         Some(payload.len() as u64)
@@ -219,6 +243,89 @@ fn payload_decompresses_with_zstd_and_lists_with_tar() {
     assert_eq!(
         std::fs::read(env.path("inner/labels.txt")).expect("labels"),
         LABELS
+    );
+}
+
+#[test]
+fn issue13_a_format_2_bundle_made_by_hand_with_split_zstd_python_and_openssl_verifies() {
+    // FORMAT.md's recipe for format 2: the inner tar cut with split, each piece compressed
+    // alone by the zstd command, the chunk list written with Python's standard library.
+    if !tools(&["tar", "zstd", "openssl", "sha256sum", "split", "python3"]) {
+        return;
+    }
+    let env = Env::new();
+    let dir = env.dir.path();
+    let sh = |script: &str| {
+        let mut c = Command::new("sh");
+        c.current_dir(dir).args(["-e", "-c", script]);
+        String::from_utf8(run_tool(c)).expect("text")
+    };
+    sh("openssl genpkey -algorithm ed25519 -out hand.secret.pem
+        openssl pkey -in hand.secret.pem -pubout -out hand.public.pem");
+    std::fs::create_dir(env.path("files")).expect("mkdir");
+    // Over 1 MiB, so the inner tar makes three chunks of 512 KiB.
+    let model = model_bytes(1200 * 1024);
+    std::fs::write(env.path("files/model.onnx"), &model).expect("write");
+    std::fs::write(env.path("files/labels.txt"), LABELS).expect("write");
+    sh(
+        "tar --format=ustar -b1 -C files -cf payload.tar model.onnx labels.txt
+        split -b 524288 -d -a 4 payload.tar part.
+        for p in part.[0-9][0-9][0-9][0-9]; do zstd -1 -q \"$p\" -o \"$p.zst\"; done
+        cat part.*.zst > payload.tar.zst
+        python3 -c '
+import glob, hashlib, os, struct
+with open(\"chunks.sha256\", \"wb\") as out:
+    for name in sorted(glob.glob(\"part.*.zst\")):
+        data = open(name, \"rb\").read()
+        out.write(struct.pack(\"<I\", len(data)) + hashlib.sha256(data).digest())'",
+    );
+    assert_eq!(sh("ls part.*.zst | wc -l").trim(), "3");
+    let digest = |path: &str| sh(&format!("sha256sum {path}"))[..64].to_string();
+    let size = |path: &str| std::fs::metadata(env.path(path)).expect("file").len();
+    let manifest = format!(
+        "{{\"format\":2,\"name\":\"trailcam-species\",\"version\":\"3.0.0\",\
+         \"created\":\"2026-12-01T08:00:00Z\",\"requires_app\":\">=2.0.0\",\
+         \"payload\":{{\"compression\":\"zstd\",\"size\":{},\"chunk_bytes\":524288,\
+         \"chunks_sha256\":\"{}\"}},\
+         \"files\":[{{\"path\":\"model.onnx\",\"role\":\"model\",\"size\":{},\"sha256\":\"{}\"}},\
+         {{\"path\":\"labels.txt\",\"role\":\"labels\",\"size\":{},\"sha256\":\"{}\"}}],\
+         \"label_count\":6}}",
+        size("payload.tar.zst"),
+        digest("chunks.sha256"),
+        size("files/model.onnx"),
+        digest("files/model.onnx"),
+        size("files/labels.txt"),
+        digest("files/labels.txt"),
+    );
+    std::fs::create_dir(env.path("outer")).expect("mkdir");
+    env.write("outer/manifest.json", manifest.as_bytes());
+    let mut signed = MANIFEST_CONTEXT.to_vec();
+    signed.extend_from_slice(manifest.as_bytes());
+    env.write("signed.bin", &signed);
+    sh("openssl pkeyutl -sign -inkey hand.secret.pem -rawin -in signed.bin -out sig.bin");
+    let signatures = format!(
+        "{{\"signatures\":[{{\"key_id\":\"{}\",\"signature\":\"{}\"}}]}}\n",
+        openssl_key_id(dir, "hand.public.pem"),
+        hex::encode(env.read("sig.bin"))
+    );
+    env.write("outer/signatures.json", signatures.as_bytes());
+    sh("cp payload.tar.zst chunks.sha256 outer/
+        tar --format=ustar -b1 -C outer -cf hand.ampoule manifest.json signatures.json \
+            chunks.sha256 payload.tar.zst");
+    let run = env.run([
+        "verify",
+        "hand.ampoule",
+        "--trust",
+        "hand.public.pem",
+        "--app-version",
+        APP_VERSION,
+        "--extract",
+        "unpacked",
+    ]);
+    assert_eq!(run.code, 0, "{run:?}");
+    assert_eq!(
+        std::fs::read(env.path("unpacked/model.onnx")).expect("model"),
+        model
     );
 }
 

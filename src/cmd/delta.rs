@@ -1,5 +1,6 @@
-//! `ampoule delta`: make a delta from an older bundle to a newer one (issue 13), and the view
-//! `ampoule inspect` gives of a delta file.
+//! `ampoule delta`: make a delta from an older bundle to a newer one (issue 13), and the views
+//! `ampoule inspect` and `ampoule diff` give of a delta file: a way to send a release, not a
+//! release of its own.
 
 use std::fs::File;
 use std::io::{BufReader, Read};
@@ -81,14 +82,17 @@ pub fn inspect(path: &Path, out: &Output) -> Result<()> {
         records,
         ..
     } = &head.header;
+    let rebuilt: u64 = manifest.files.iter().map(|f| f.size).sum();
     let mut human = format!(
-        "delta    {}\nrebuilds {} {} (manifest sha256 {})\nsize     {size} bytes ({} bytes of patches, {records} chunks)\nbase     {} (the SHA-256 of the base's files)\n",
+        "delta    {}\nrebuilds {} {} (manifest sha256 {})\nsize     {size} bytes ({} bytes of patches, {records} chunks), for {rebuilt} bytes of files\nbase     {} (the SHA-256 of the base's files)\nwhat     not a release: a way to send {} {} to a device that holds exactly the base files below; it carries that release's signed manifest and rebuilds only its files\n",
         shown(&path.display().to_string()),
         shown(name),
         version,
         Digest::of(&head.manifest),
         head.patches_len,
         head.header.base_id(),
+        shown(&manifest.name),
+        manifest.version,
     );
     for f in base {
         human.push_str(&format!(
@@ -131,9 +135,104 @@ pub fn inspect(path: &Path, out: &Output) -> Result<()> {
             "base_files": files_json(base),
             "files": files_json(&manifest.files),
             "patches_size": head.patches_len,
+            "rebuilt_size": rebuilt,
+            "kind": "delta",
             "chunks": records,
             "chunk_bytes": chunk_bytes,
             "window_bytes": window_bytes,
+        }),
+    )
+}
+
+/// `ampoule diff` with a delta on one side: a delta is not a release, so there is nothing to
+/// compare it with; this says how it relates to the bundle on the other side (its base, the
+/// release it rebuilds, or neither) and with which sizes, and how to compare the releases.
+pub fn diff(old: &Path, new: &Path, out: &Output) -> Result<()> {
+    let (delta, bundle) = match (is_delta(old), is_delta(new)) {
+        (true, true) => {
+            return Err(crate::failure::usage(anyhow::anyhow!(
+                "{} and {} are both deltas; a delta is a way to send a release, not a release, \
+                 and diff compares releases: give their bundles",
+                old.display(),
+                new.display()
+            )));
+        }
+        (true, false) => (old, new),
+        _ => (new, old),
+    };
+    let file = File::open(delta).with_context(|| format!("cannot open {}", delta.display()))?;
+    let delta_size = file.metadata()?.len();
+    let head =
+        delta_file::read_head(&mut BufReader::new(file)).map_err(|e| bundle_error(delta, e))?;
+    let manifest = Manifest::from_json(&head.manifest).map_err(|e| bundle_error(delta, e))?;
+    let other =
+        ampoule_verify::bundle::Unverified::open(bundle).map_err(|e| bundle_error(bundle, e))?;
+    let o = &other.manifest;
+    let base = head.header.base_id();
+    let rebuilt: u64 = manifest.files.iter().map(|f| f.size).sum();
+    let (relation, says) = if delta_file::base_id(&o.files) == base {
+        (
+            "base",
+            format!(
+                "{} ({} {}) is the delta's base: a device that holds its files can take the delta \
+                 instead of the {} {} bundle",
+                shown(&bundle.display().to_string()),
+                shown(&o.name),
+                o.version,
+                shown(&manifest.name),
+                manifest.version
+            ),
+        )
+    } else if other.layout.manifest == head.manifest {
+        (
+            "release",
+            format!(
+                "{} is the release the delta rebuilds ({} {}, the same signed manifest): the \
+                 delta is another way to send it",
+                shown(&bundle.display().to_string()),
+                shown(&o.name),
+                o.version
+            ),
+        )
+    } else {
+        (
+            "unrelated",
+            format!(
+                "{} ({} {}) is neither the delta's base nor the release it rebuilds",
+                shown(&bundle.display().to_string()),
+                shown(&o.name),
+                o.version
+            ),
+        )
+    };
+    let human = format!(
+        "{} is a delta, not a release: a way to send {} {} to devices on base {base}\n{says}\n\
+         sizes: delta {delta_size} bytes, bundle {} {} bytes, files the delta rebuilds {rebuilt} \
+         bytes\nto see what changed between two releases, diff their bundles: ampoule diff \
+         OLD.ampoule NEW.ampoule\n",
+        shown(&delta.display().to_string()),
+        shown(&manifest.name),
+        manifest.version,
+        shown(&bundle.display().to_string()),
+        other.layout.file_len,
+    );
+    out.result(
+        &human,
+        json!({
+            "ok": true,
+            "delta": delta.display().to_string(),
+            "rebuilds": {
+                "name": manifest.name,
+                "version": manifest.version.to_string(),
+                "manifest_sha256": Digest::of(&head.manifest).to_string(),
+            },
+            "base": base.to_string(),
+            "bundle": bundle.display().to_string(),
+            "bundle_release": {"name": o.name, "version": o.version.to_string()},
+            "relation": relation,
+            "delta_size": delta_size,
+            "bundle_size": other.layout.file_len,
+            "rebuilt_size": rebuilt,
         }),
     )
 }

@@ -703,7 +703,15 @@ fn publish(
 ) -> Result<Change> {
     let tree = Tree::lock(tree)?;
     let staged = tree.stage_bundle(bundle, trusted)?;
-    tree.publish(staged, CHANNEL, rollout, &[], &signing(key))
+    let (change, _) = tree.publish(
+        staged,
+        CHANNEL,
+        rollout,
+        &[],
+        crate::release::tree_deltas::DEFAULT_BASES,
+        &signing(key),
+    )?;
+    Ok(change)
 }
 
 /// Withdraws `version`, the current release of the demo channel.

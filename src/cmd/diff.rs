@@ -123,6 +123,15 @@ fn signed_change(old: u64, new: u64) -> String {
 }
 
 pub fn run(args: DiffArgs, out: &Output) -> Result<()> {
+    if crate::cmd::delta::is_delta(&args.old) || crate::cmd::delta::is_delta(&args.new) {
+        if args.fail_on.is_some() {
+            return Err(crate::failure::usage(anyhow::anyhow!(
+                "--fail-on compares two releases, and a delta is not a release: give the \
+                 bundles"
+            )));
+        }
+        return crate::cmd::delta::diff(&args.old, &args.new, out);
+    }
     let old = load(&args.old)?;
     let new = load(&args.new)?;
     let (om, nm) = (&old.manifest, &new.manifest);

@@ -46,7 +46,7 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
         .tally(&keys);
     let m = &manifest;
     let mut human = format!(
-        "bundle   {}\nname     {}\nversion  {}\ncreated  {}\nrequires app {}\nsize     {} bytes (manifest {} bytes, sha256 {})\npayload  {} bytes zstd, sha256 {} ({})\n",
+        "bundle   {}\nname     {}\nversion  {}\ncreated  {}\nrequires app {}\nsize     {} bytes (manifest {} bytes, sha256 {})\npayload  {} bytes zstd, {} ({})\n",
         shown(&args.bundle.display().to_string()),
         shown(&m.name),
         m.version,
@@ -56,7 +56,17 @@ pub fn run(args: InspectArgs, out: &Output) -> Result<()> {
         layout.manifest.len(),
         Digest::of(&layout.manifest),
         m.payload.size,
-        m.payload.sha256,
+        match (m.payload.sha256, m.chunk_count(), m.payload.chunk_bytes) {
+            (Some(sha256), ..) => format!("sha256 {sha256}"),
+            (None, Some(count), Some(bytes)) => format!(
+                "{count} chunks of {bytes} bytes decoded, chunk list sha256 {}",
+                m.payload
+                    .chunks_sha256
+                    .map(|d| d.to_string())
+                    .unwrap_or_default()
+            ),
+            _ => "no digest".to_string(),
+        },
         match &payload_ok {
             Ok(()) => "matches".to_string(),
             Err(e) => format!("DOES NOT MATCH: {e}"),

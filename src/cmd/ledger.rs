@@ -203,6 +203,7 @@ fn mirror(base: &str, root: &Path, whole_tree: bool, sizing: Sizing<'_>) -> Resu
     let ledger = Ledger::open(&root.join(LEDGER_DIR))?;
     let mut channels = BTreeSet::new();
     let mut bundles = BTreeSet::new();
+    let mut deltas = std::collections::BTreeMap::new();
     let mut trust_sets = BTreeSet::new();
     for item in ledger.entries()? {
         let entry = match Record::from_bytes(&item?.1) {
@@ -216,6 +217,9 @@ fn mirror(base: &str, root: &Path, whole_tree: bool, sizing: Sizing<'_>) -> Resu
         channels.insert(entry.channel.clone());
         if entry.event == Event::Publish {
             bundles.insert(entry.bundle_digest);
+        }
+        for delta in entry.offered().map_or(&[][..], |o| &o.deltas[..]) {
+            deltas.insert(delta.sha256, delta.size);
         }
     }
     // `list` shows each publish's rollout from the histories, so they are fetched for it too.
@@ -256,6 +260,18 @@ fn mirror(base: &str, root: &Path, whole_tree: bool, sizing: Sizing<'_>) -> Resu
             );
         }
     }
+    for (digest, size) in deltas {
+        // The entry logs each delta's size; a larger file is not fetched and is reported
+        // missing.
+        let _ = fetch(
+            &format!(
+                "{}/{digest}.{}",
+                crate::release::tree::BUNDLES_DIR,
+                ampoule_verify::format::delta::EXTENSION
+            ),
+            size,
+        );
+    }
     if exhausted.get() {
         bail!("{}", over_budget());
     }
@@ -266,7 +282,64 @@ fn time_text(secs: u64) -> String {
     Timestamp::from_unix(secs).map_or_else(|| secs.to_string(), |t| t.to_string())
 }
 
-fn entry_json(index: u64, record: &Record) -> Value {
+/// A logged delta as `ledger list` shows it: a way to send the release it rebuilds to devices
+/// on its base, with the base named as a release when the tree's bundles say which.
+fn delta_json(
+    delta: &ampoule_verify::ledger::DeltaRef,
+    releases: &audit::Releases,
+    bundle_size: Option<u64>,
+) -> Value {
+    let base = releases.get(&delta.base).map(|list| {
+        list.iter()
+            .map(|r| json!({"name": r.name, "version": r.version.to_string(), "bundle_sha256": r.bundle}))
+            .collect::<Vec<_>>()
+    });
+    json!({
+        "base": delta.base,
+        "base_releases": base,
+        "size": delta.size,
+        "sha256": delta.sha256,
+        "bundle_size": bundle_size,
+    })
+}
+
+/// The text line under an entry for one of its deltas.
+fn delta_line(
+    delta: &ampoule_verify::ledger::DeltaRef,
+    offered: &ampoule_verify::ledger::Offered,
+    releases: &audit::Releases,
+    bundle_size: Option<u64>,
+) -> String {
+    let base = releases.get(&delta.base).map_or_else(
+        || "a base not in this tree".to_string(),
+        |list| {
+            list.iter()
+                .map(|r| format!("{} {}", shown(&r.name), r.version))
+                .collect::<Vec<_>>()
+                .join(" or ")
+        },
+    );
+    let share = bundle_size.map_or_else(String::new, |b| {
+        format!(
+            ", {:.2}% of the {b}-byte bundle",
+            delta.size as f64 * 100.0 / b.max(1) as f64
+        )
+    });
+    format!(
+        "    delta to {} {} from {base} (base {}): {} bytes{share}, sha256 {}\n",
+        shown(&offered.bundle),
+        offered.version,
+        &delta.base.to_string()[..16],
+        delta.size,
+        &delta.sha256.to_string()[..16],
+    )
+}
+
+fn entry_json(
+    index: u64,
+    record: &Record,
+    deltas: &dyn Fn(&ampoule_verify::ledger::Offered) -> Value,
+) -> Value {
     match record {
         Record::Bundle(entry) => json!({
             "index": index,
@@ -288,7 +361,7 @@ fn entry_json(index: u64, record: &Record) -> Value {
                 "bundle_sha256": o.bundle_digest,
                 "manifest_sha256": o.manifest_digest,
                 "rollout_percent": o.rollout_percent,
-                "deltas": o.deltas.len(),
+                "deltas": deltas(o),
             }))),
         }),
         Record::TrustSet(entry) => json!({
@@ -375,6 +448,30 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         out.note(&format!("warning: {authenticity}"));
     }
     let rollouts = rollouts_from_history(&source.root, &rows);
+    // Deltas name their base by its files' digest; the tree's bundles say which release that
+    // is, and the index how big each bundle is (neither is covered by the ledger).
+    let releases = audit::logged_releases(&source.root, &ledger);
+    let index: crate::release::tree::Index = crate::release::files::read_bounded(
+        &source.root.join(crate::release::tree::INDEX_FILE),
+        RECORD_BYTES,
+        "the index",
+    )
+    .ok()
+    .and_then(|b| serde_json::from_slice(&b).ok())
+    .unwrap_or_default();
+    let bundle_size = |sha256: &Digest| {
+        index
+            .releases
+            .iter()
+            .find(|r| r.sha256 == *sha256)
+            .map(|r| r.size)
+    };
+    let deltas_json = |o: &ampoule_verify::ledger::Offered| -> Value {
+        o.deltas
+            .iter()
+            .map(|d| delta_json(d, &releases, bundle_size(&o.bundle_digest)))
+            .collect()
+    };
     let rollout_of = |record: &Record| match record {
         Record::Bundle(e) if e.event == Event::Publish => {
             rollouts.get(&(e.channel.clone(), e.feed_sequence)).copied()
@@ -384,7 +481,8 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
     if args.csv {
         let mut text = String::from(
             "index,time,event,channel,bundle,version,bundle_sha256,manifest_sha256,key_ids,\
-             feed_sequence,trust_set_version,trust_set_sha256,rollout_percent_from_history\n",
+             feed_sequence,trust_set_version,trust_set_sha256,rollout_percent_from_history,\
+             deltas\n",
         );
         for (index, record) in &rows {
             let fields = match record {
@@ -402,6 +500,16 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                     String::new(),
                     String::new(),
                     rollout_of(record).map_or_else(String::new, |r| r.to_string()),
+                    // Each delta the entry's feed offers: base:size:sha256, space-separated.
+                    e.offered()
+                        .map(|o| {
+                            o.deltas
+                                .iter()
+                                .map(|d| format!("{}:{}:{}", d.base, d.size, d.sha256))
+                                .collect::<Vec<_>>()
+                                .join(" ")
+                        })
+                        .unwrap_or_default(),
                 ],
                 Record::TrustSet(e) => [
                     index.to_string(),
@@ -417,6 +525,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
                     e.trust_set_version.to_string(),
                     e.trust_set_digest.to_string(),
                     String::new(),
+                    String::new(),
                 ],
             };
             let fields: Vec<String> = fields.iter().map(|f| csv_field(f)).collect();
@@ -426,6 +535,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         return out.result(&text, Value::Null);
     }
     let head = ledger.tree_head().map(|h| h.head());
+    let mut shown_deltas = BTreeSet::new();
     let mut table = vec![[
         "#".to_string(),
         "time".into(),
@@ -476,7 +586,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
         })
         .collect();
     let mut human = String::new();
-    for row in &table {
+    for (i, row) in table.iter().enumerate() {
         let cells: Vec<String> = row
             .iter()
             .zip(&widths)
@@ -484,11 +594,29 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
             .collect();
         human.push_str(cells.join("  ").trim_end());
         human.push('\n');
+        // A delta is a way to send the release, not a release: a line under the publish
+        // entry that first offered it (a renewal or a withdraw offering it again adds none).
+        if let Some((_, Record::Bundle(e))) = i.checked_sub(1).and_then(|r| rows.get(r))
+            && let Some(o) = e.offered()
+            && e.event == Event::Publish
+        {
+            for d in &o.deltas {
+                if shown_deltas.insert(d.sha256) {
+                    human.push_str(&delta_line(d, o, &releases, bundle_size(&o.bundle_digest)));
+                }
+            }
+        }
     }
     human.push_str(
         "* rollout: from the tree's history/ files, which the ledger does not cover (a later \
          ledger entry format will log it)\n",
     );
+    if !shown_deltas.is_empty() {
+        human.push_str(
+            "deltas: each is a way to send the release above it to devices on its base, not a \
+             release; the base is named from the tree's bundles (ledger check verifies each)\n",
+        );
+    }
     if let Some(h) = &head {
         human.push_str(&format!(
             "{} of {} shown; tree head size {}, root {}, {}\n",
@@ -517,7 +645,7 @@ fn list(args: LedgerListArgs, out: &Output) -> Result<()> {
             "tree_size": head.map(|h| h.tree_size),
             "root_hash": head.map(|h| h.root_hash),
             "entries": rows.iter().map(|(i, e)| {
-                let mut entry = entry_json(*i, e);
+                let mut entry = entry_json(*i, e, &deltas_json);
                 if let Some(rollout) = rollout_of(e) {
                     entry["rollout_percent_from_history"] = json!(rollout);
                 }
@@ -653,6 +781,14 @@ fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<(
         count(report.heads_checked, "tree head", "tree heads"),
         count(report.bundles_checked, "bundle", "bundles"),
     );
+    if report.deltas_checked > 0 {
+        human.push_str(&format!(
+            "checked {} (file, carried manifest and signatures, base), {} rebuilt from its base \
+             to the release's files\n",
+            count(report.deltas_checked, "delta", "deltas"),
+            report.deltas_rebuilt
+        ));
+    }
     if let Some(size) = report.since {
         human.push_str(&format!(
             "consistent with the saved tree head of size {size}: the history only grew\n"
@@ -674,6 +810,8 @@ fn print_report(source: &Source, report: &AuditReport, out: &Output) -> Result<(
             "root_hash": report.root_hash,
             "tree_heads_checked": report.heads_checked,
             "bundles_checked": report.bundles_checked,
+            "deltas_checked": report.deltas_checked,
+            "deltas_rebuilt": report.deltas_rebuilt,
             "consistent_since": report.since,
             "problems": report.problems,
             "warnings": report.warnings,

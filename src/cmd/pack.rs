@@ -1,24 +1,28 @@
-//! `ampoule pack`: validates the inputs once, then writes the bundle in one pass.
+//! `ampoule pack`: validates the inputs once, then writes the bundle in one pass; with
+//! `--delta-from`, also the delta from an older bundle to it (issue 13).
 
 use std::io::Read;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
-use ampoule_verify::format::limit;
-use ampoule_verify::manifest::{check_name, model_path};
+use ampoule_verify::bundle::Unverified;
+use ampoule_verify::format::delta as delta_format;
+use ampoule_verify::format::delta_file::base_id;
+use ampoule_verify::format::{BUNDLE_EXTENSION, limit};
+use ampoule_verify::manifest::{Manifest, check_name, model_path};
 use ampoule_verify::metadata::{self, Metadata, MetadataBuilder};
 use ampoule_verify::model::{ModelSignature, read_model_signature_for_pack};
 use ampoule_verify::{Timestamp, labels};
 use anyhow::{Context, Result, bail};
-use semver::VersionReq;
-use serde_json::json;
+use semver::{Version, VersionReq};
+use serde_json::{Value, json};
 
 use crate::cli::PackArgs;
 use crate::cmd::{parse_version, passphrase_source};
 use crate::failure::{count, usage};
 use crate::output::Output;
 use crate::release::files::read_bounded;
-use crate::release::keyfile;
 use crate::release::pack::{PackSpec, pack};
+use crate::release::{delta, keyfile};
 
 /// The creation time: `--created`, else `SOURCE_DATE_EPOCH` (reproducible-builds.org's
 /// convention for build timestamps), else now.
@@ -144,9 +148,63 @@ fn read_metadata(args: &PackArgs) -> Result<Option<Metadata>> {
     builder.build().map_err(usage).context("metadata refused")
 }
 
+/// `--delta-from OLD`, checked before anything is packed: OLD's manifest (a bundle of the same
+/// name and an older version) and where the delta goes, beside `out` as
+/// `<out without .ampoule>-from-<old version>.ampoule-delta`, which must not exist.
+fn delta_from(
+    old: &Path,
+    name: &str,
+    version: &Version,
+    out: &Path,
+) -> Result<(Manifest, PathBuf)> {
+    let base = Unverified::open(old)
+        .map_err(|e| crate::failure::bundle_error(old, e))
+        .with_context(|| format!("--delta-from {} refused; nothing was packed", old.display()))?
+        .manifest;
+    if base.name != name {
+        return Err(usage(anyhow::anyhow!(
+            "--delta-from {} is bundle '{}', not '{name}'; a delta rebuilds a release of the same \
+             bundle from an older one (nothing was packed)",
+            old.display(),
+            base.name
+        )));
+    }
+    if !base.version.cmp_precedence(version).is_lt() {
+        return Err(usage(anyhow::anyhow!(
+            "--delta-from {} is {name} {}, not older than {version}; a delta leads from an older \
+             release to a newer one (nothing was packed)",
+            old.display(),
+            base.version
+        )));
+    }
+    let file = out
+        .file_name()
+        .map(|f| f.to_string_lossy())
+        .unwrap_or_default();
+    let stem = file
+        .strip_suffix(&format!(".{BUNDLE_EXTENSION}"))
+        .unwrap_or(&file);
+    let path = out.with_file_name(format!(
+        "{stem}-from-{}.{}",
+        base.version,
+        delta_format::EXTENSION
+    ));
+    if path.exists() {
+        return Err(usage(anyhow::anyhow!(
+            "{} exists already; remove it or choose another -o (nothing was packed)",
+            path.display()
+        )));
+    }
+    Ok((base, path))
+}
+
 pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     check_name(&args.name).map_err(usage)?;
     let version = parse_version(&args.version, "--version")?;
+    let delta = match &args.delta_from {
+        Some(old) => Some(delta_from(old, &args.name, &version, &args.out)?),
+        None => None,
+    };
     let requires_app = VersionReq::parse(&args.requires_app).with_context(|| {
         format!(
             "--requires-app '{}' is not a SemVer requirement such as '>=2.0.0, <3.0.0'",
@@ -183,9 +241,9 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
     }
     let spec = PackSpec {
         model_path: inner_model_path(&args.model)?,
-        model: args.model,
+        model: args.model.clone(),
         labels,
-        name: args.name,
+        name: args.name.clone(),
         version,
         requires_app,
         created,
@@ -230,6 +288,14 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
             "UNSIGNED: no --key was given, so every device will refuse this bundle until it is signed with 'ampoule sign'\n",
         ),
     }
+    let delta = match (delta, &args.delta_from) {
+        (Some((base, path)), Some(old)) => {
+            let (text, doc) = write_delta(old, &base, &args.out, &path, m, packed.bundle_len)?;
+            human.push_str(&text);
+            doc
+        }
+        _ => Value::Null,
+    };
     out.result(
         &human,
         json!({
@@ -239,6 +305,80 @@ pub fn run(args: PackArgs, out: &Output) -> Result<()> {
             "signed": !packed.signers.is_empty(),
             "signers": packed.signers.iter().map(|k| k.to_string()).collect::<Vec<_>>(),
             "manifest": m,
+            "delta": delta,
         }),
     )
+}
+
+/// Writes the delta from `old` (whose manifest is `base`) to the bundle just packed at
+/// `bundle`, to `path`; returns its lines of text and its `--json` object. A new release with
+/// the same files as `old` needs no delta, and gets none. If making it fails, the bundle is
+/// removed too, so that the command leaves both or neither.
+fn write_delta(
+    old: &Path,
+    base: &Manifest,
+    bundle: &Path,
+    path: &Path,
+    target: &Manifest,
+    bundle_len: u64,
+) -> Result<(String, Value)> {
+    let base_files = base_id(&base.files);
+    if base_files == base_id(&target.files) {
+        return Ok((
+            format!(
+                "no delta: {} holds the same files as the new release; a device on {} {} has \
+                 them already\n",
+                old.display(),
+                base.name,
+                base.version
+            ),
+            Value::Null,
+        ));
+    }
+    let made = match delta::make(old, bundle, path) {
+        Ok(made) => made,
+        Err(e) => {
+            let removed = std::fs::remove_file(bundle).is_ok();
+            let what = if removed {
+                format!("{} was removed again", bundle.display())
+            } else {
+                format!("{} is left; remove it", bundle.display())
+            };
+            return Err(e.context(format!(
+                "cannot make the delta from {} ({what}); pack again, or make the delta later \
+                 with 'ampoule delta --from {} BUNDLE -o OUT'",
+                old.display(),
+                old.display()
+            )));
+        }
+    };
+    let percent = made.size as f64 * 100.0 / bundle_len.max(1) as f64;
+    let mut text = format!(
+        "delta {} from {} {} (base {}): {} bytes, {percent:.2}% of the bundle, sha256 {}\n",
+        path.display(),
+        base.name,
+        base.version,
+        made.header.base_id(),
+        made.size,
+        made.sha256
+    );
+    if !crate::release::tree_deltas::kept(made.size, bundle_len) {
+        text.push_str(&format!(
+            "note: publish would not offer this delta: it offers only deltas of at most {}% of \
+             the bundle\n",
+            crate::release::tree_deltas::MAX_SHARE_PERCENT
+        ));
+    }
+    Ok((
+        text,
+        json!({
+            "path": path,
+            "size": made.size,
+            "sha256": made.sha256,
+            "base": made.header.base_id(),
+            "from": {"name": base.name, "version": base.version.to_string(), "bundle": old},
+            "chunks": made.header.records,
+            "copied_chunks": made.copies,
+        }),
+    ))
 }

@@ -17,6 +17,7 @@ use crate::release::keyfile;
 use crate::release::tree::{
     Action, Change, Plan, Signing, Tree, TrustSetPlan, check_bundle, parse_duration,
 };
+use crate::release::tree_deltas::{self, Deltas};
 
 pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
     let expires_in_secs = parse_duration(&args.expires_in)?;
@@ -33,6 +34,7 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
             args.rollout
         );
     }
+    tree_deltas::check_count(args.deltas)?;
     let key = keyfile::read_secret_key(&args.key, &passphrase_source(&args.passphrase))?;
     let tree_head_keys = read_tree_head_keys(&args.tree_head_key, &args.passphrase)?;
     let outside = outside_signer(&args.tree_head_signer, &args.tree_head_signer_key)?;
@@ -95,10 +97,22 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
             tree_head_keys: &tree_head_keys,
             outside: &outside,
         };
-        let plan = tree.plan_publish(&facts, channel, args.rollout, &args.mirror, &signing)?;
+        tree.plan_publish(&facts, channel, args.rollout, &args.mirror, &[], &signing)?;
+        // The deltas are made as a publish would make them, to show their exact sizes, but in
+        // a temporary directory outside the tree, removed afterwards.
+        let scratch = tempfile::tempdir().context("cannot create a temporary directory")?;
+        let deltas = tree.deltas(bundle, &facts, channel, args.deltas, scratch.path())?;
+        let plan = tree.plan_publish(
+            &facts,
+            channel,
+            args.rollout,
+            &args.mirror,
+            &deltas.references(),
+            &signing,
+        )?;
         let warning = tree_head_warning(&tree, &signing)?;
         drop(tree);
-        report_plan(&plan, &signing, &args.key, out)?;
+        report_plan(&plan, Some(&deltas), &signing, &args.key, out)?;
         if let Some(w) = warning {
             out.note(&w);
         }
@@ -117,10 +131,17 @@ pub fn run(args: PublishArgs, out: &Output) -> Result<()> {
         tree_head_keys: &tree_head_keys,
         outside: &outside,
     };
-    let change = tree.publish(staged, channel, args.rollout, &args.mirror, &signing)?;
+    let (change, deltas) = tree.publish(
+        staged,
+        channel,
+        args.rollout,
+        &args.mirror,
+        args.deltas,
+        &signing,
+    )?;
     let warning = tree_head_warning(&tree, &signing)?;
     drop(tree);
-    report(&change, &args.key, out)?;
+    report(&change, Some(&deltas), &args.key, out)?;
     if let Some(w) = warning {
         out.note(&w);
     }
@@ -324,6 +345,8 @@ struct Report<'a> {
     key_file: &'a Path,
     entry: &'a LedgerEntry,
     entry_index: u64,
+    /// The deltas of a publish (none for a withdraw).
+    deltas: Option<&'a Deltas>,
 }
 
 impl Report<'_> {
@@ -370,6 +393,10 @@ impl Report<'_> {
             None => "nothing".into(),
         };
         let entry_text = String::from_utf8_lossy(&self.entry.to_bytes()).into_owned();
+        let deltas_text = self.deltas.map_or_else(String::new, |d| {
+            deltas_text(d, feed.release.as_ref(), self.dry_run)
+        });
+        let deltas = self.deltas.map(deltas_json);
         let mut human = format!(
             "{}
 ",
@@ -381,7 +408,7 @@ impl Report<'_> {
 now: {was}
 feed {} would get sequence {}, \
                  expires {}, signed by key {} ({})
-ledger: would append entry {}: {entry_text}
+{}ledger: would append entry {}: {entry_text}
 \
                  dry run: nothing was written
 ",
@@ -391,6 +418,7 @@ ledger: would append entry {}: {entry_text}
                 feed.expires,
                 self.signer,
                 self.key_file.display(),
+                deltas_text,
                 self.entry_index,
             ));
         } else {
@@ -399,13 +427,14 @@ ledger: would append entry {}: {entry_text}
 was: {was}
 feed {} sequence {}, expires {}, \
                  signed by key {} ({})
-",
+{}",
                 self.channel,
                 self.feed_path.display(),
                 feed.sequence,
                 feed.expires,
                 self.signer,
-                self.key_file.display()
+                self.key_file.display(),
+                deltas_text,
             ));
         }
         let ledger = ledger.map(|l| {
@@ -441,13 +470,101 @@ feed {} sequence {}, expires {}, \
                 "ledger_entry": entry,
                 "ledger_entry_index": self.entry_index,
                 "ledger": ledger,
+                "deltas": deltas.as_ref().map(|d| &d["offered"]),
+                "deltas_skipped": deltas.as_ref().map(|d| &d["skipped"]),
+                "deltas_dropped": deltas.as_ref().map(|d| &d["dropped"]),
             }),
         )
     }
 }
 
+/// The text lines on a publish's deltas: each offered (from which release, size, share of the
+/// bundle), each base skipped and why, each dropped from a renewal and why; nothing when the
+/// channel has no earlier release of the name.
+fn deltas_text(deltas: &Deltas, release: Option<&Release>, dry_run: bool) -> String {
+    let bundle = release.map_or(0, |r| r.size).max(1);
+    let path = |sha256| {
+        format!(
+            "{}/{sha256}.{}",
+            crate::release::tree::BUNDLES_DIR,
+            ampoule_verify::format::delta::EXTENSION
+        )
+    };
+    let mut text = String::new();
+    for o in &deltas.offered {
+        let r = &o.reference;
+        let from = o.from.as_ref().map_or_else(
+            || format!("base {} (offered before)", r.base),
+            |b| format!("{} {} (base {})", b.name, b.version, r.base),
+        );
+        let written = match (dry_run, o.new) {
+            (true, _) => "would offer (made in a temporary directory for its size)",
+            (false, true) => "wrote",
+            (false, false) => "offers (already in the tree)",
+        };
+        text.push_str(&format!(
+            "delta from {from}: {written} {}, {} bytes ({:.2}% of the bundle)\n",
+            path(r.sha256),
+            r.size,
+            r.size as f64 * 100.0 / bundle as f64
+        ));
+    }
+    for s in &deltas.skipped {
+        text.push_str(&format!(
+            "no delta from {} {}: {}\n",
+            s.from.name, s.from.version, s.reason
+        ));
+    }
+    for (r, why) in &deltas.dropped {
+        text.push_str(&format!(
+            "delta {} (base {}) no longer offered: {why}\n",
+            path(r.sha256),
+            r.base
+        ));
+    }
+    text
+}
+
+/// The same for `--json`: `offered`, `skipped` and `dropped` lists.
+fn deltas_json(deltas: &Deltas) -> Value {
+    let base = |b: &tree_deltas::Base| json!({"name": b.name, "version": b.version.to_string(), "bundle_sha256": b.bundle});
+    let path = |sha256| {
+        format!(
+            "{}/{sha256}.{}",
+            crate::release::tree::BUNDLES_DIR,
+            ampoule_verify::format::delta::EXTENSION
+        )
+    };
+    json!({
+        "offered": deltas.offered.iter().map(|o| json!({
+            "from": o.from.as_ref().map(base),
+            "base": o.reference.base,
+            "size": o.reference.size,
+            "sha256": o.reference.sha256,
+            "path": path(o.reference.sha256),
+            "new": o.new,
+        })).collect::<Vec<_>>(),
+        "skipped": deltas.skipped.iter().map(|s| json!({
+            "from": base(&s.from),
+            "size": s.size,
+            "reason": s.reason,
+        })).collect::<Vec<_>>(),
+        "dropped": deltas.dropped.iter().map(|(r, why)| json!({
+            "base": r.base,
+            "size": r.size,
+            "sha256": r.sha256,
+            "reason": why,
+        })).collect::<Vec<_>>(),
+    })
+}
+
 /// Prints what a publish or withdraw changed.
-pub fn report(change: &Change, key_file: &Path, out: &Output) -> Result<()> {
+pub fn report(
+    change: &Change,
+    deltas: Option<&Deltas>,
+    key_file: &Path,
+    out: &Output,
+) -> Result<()> {
     let ledger = change.feed.ledger.as_ref();
     Report {
         action: change.action,
@@ -460,6 +577,7 @@ pub fn report(change: &Change, key_file: &Path, out: &Output) -> Result<()> {
         key_file,
         entry: &change.entry,
         entry_index: ledger.map_or(0, |l| l.tree_head.head().tree_size - 1),
+        deltas,
     }
     .print(ledger, out)
 }
@@ -467,6 +585,7 @@ pub fn report(change: &Change, key_file: &Path, out: &Output) -> Result<()> {
 /// Prints what a dry run of a publish or withdraw would write.
 pub fn report_plan(
     plan: &Plan,
+    deltas: Option<&Deltas>,
     signing: &Signing<'_>,
     key_file: &Path,
     out: &Output,
@@ -482,6 +601,7 @@ pub fn report_plan(
         key_file,
         entry: &plan.entry,
         entry_index: plan.entry_index,
+        deltas,
     }
     .print(None, out)
 }

@@ -169,11 +169,15 @@ fn show(
                 Some(old) => format!("updated {} {old} -> {}", shown(&m.name), m.version),
                 None => format!("installed {} {}", shown(&m.name), m.version),
             };
-            format!(
+            let done = format!(
                 "{what} from channel {channel} (feed sequence {sequence}): {}, model at {}",
                 count(installed.release.labels.len(), "label", "labels"),
-                installed.release.model.display()
-            )
+                installed.release.model.display(),
+            );
+            match delivery(report) {
+                Some(how) => format!("{done}; {how}"),
+                None => done,
+            }
         }
         Outcome::UpToDate => format!(
             "up to date: channel {channel} offers {offered_text} (feed sequence {sequence}); \
@@ -216,6 +220,11 @@ fn show(
             "size": r.size,
             "rollout_percent": r.rollout_percent,
             "requires_app": r.requires_app.to_string(),
+            "deltas": r.deltas.iter().map(|d| json!({
+                "base": d.base,
+                "size": d.size,
+                "sha256": d.sha256,
+            })).collect::<Vec<_>>(),
         })
     });
     let installed = current.map(|c| {
@@ -238,6 +247,16 @@ fn show(
         "current": installed,
         "store": device.store().dir(),
         "removed": report.removed,
+        "downloaded_bytes": report.downloaded,
+        "delta": report.delta.map(|sha256| {
+            let listed = offered.and_then(|r| r.deltas.iter().find(|d| d.sha256 == sha256));
+            json!({
+                "sha256": sha256,
+                "size": listed.map(|d| d.size),
+                "base": listed.map(|d| d.base),
+            })
+        }),
+        "delta_refused": report.delta_refused.as_ref().map(ToString::to_string),
     });
     if let Some(version) = report.trust_set_version {
         doc["trust_set_version"] = json!(version);
@@ -255,6 +274,25 @@ fn show(
         _ => {}
     }
     out.result(&human, doc)
+}
+
+/// How the installed release's bytes arrived, for the text output, when a delta had a part
+/// in it: the delta, or the bundle and why an offered delta was not used.
+fn delivery(report: &Report) -> Option<String> {
+    let bytes = count(report.downloaded, "byte", "bytes");
+    let bundle = report
+        .feed
+        .as_ref()
+        .and_then(|f| f.release())
+        .map_or(0, |r| r.size);
+    match (&report.delta, &report.delta_refused) {
+        (Some(delta), _) => Some(format!(
+            "downloaded {bytes} (delta {delta}) instead of the bundle's {}",
+            count(bundle, "byte", "bytes")
+        )),
+        (None, Some(why)) => Some(format!("downloaded {bytes}, the full bundle: {why}")),
+        (None, None) => None,
+    }
 }
 
 /// The outcome's name in `update --json`, as the README documents it.

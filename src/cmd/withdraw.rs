@@ -70,7 +70,7 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
             out.note(&w);
         }
         return match planned {
-            Withdrawal::Pending(plan) => report_plan(&plan, &signing, &args.key, out),
+            Withdrawal::Pending(plan) => report_plan(&plan, None, &signing, &args.key, out),
             Withdrawal::Already(already) => report_already(&already, true, out),
         };
     }
@@ -81,7 +81,7 @@ pub fn run(args: WithdrawArgs, out: &Output) -> Result<()> {
         out.note(&w);
     }
     match done {
-        Withdrawal::Pending(change) => report(&change, &args.key, out),
+        Withdrawal::Pending(change) => report(&change, None, &args.key, out),
         Withdrawal::Already(already) => report_already(&already, false, out),
     }
 }

@@ -12,6 +12,7 @@ pub mod pack;
 pub mod serve;
 pub mod synth;
 pub mod tree;
+pub mod tree_deltas;
 pub mod tree_records;
 pub mod trust_proofs;
 pub mod ustar;

@@ -3,6 +3,7 @@
 //!
 //! ```text
 //! bundles/<sha256>.ampoule   every bundle ever published, named by the SHA-256 of the file
+//! bundles/<sha256>.ampoule-delta  every delta a feed listed (issue 13), named likewise
 //! feeds/<channel>.json       each channel's signed feed: what devices poll
 //! history/<channel>.json     each channel's publish and withdraw events, oldest first
 //! index.json                 every name and version in the tree, with its bundle's digest
@@ -34,7 +35,7 @@ use ampoule_verify::format::{
     BUNDLE_EXTENSION, FEED_FORMAT_VERSION, context, signed_bytes, trust_set as trust_spec,
 };
 use ampoule_verify::ledger::{
-    ENTRY_FORMAT, Entry as LedgerEntry, Event as LedgerEvent, Offered, TrustSetEntry,
+    DeltaRef, ENTRY_FORMAT, Entry as LedgerEntry, Event as LedgerEvent, Offered, TrustSetEntry,
 };
 use ampoule_verify::signature::SignatureEntry;
 use ampoule_verify::{
@@ -48,6 +49,7 @@ use tempfile::NamedTempFile;
 
 use crate::Refused;
 
+use super::tree_deltas::{self, Deltas};
 use super::tree_records::RECORD_FILE_BYTES;
 pub use super::tree_records::{
     BUNDLES_DIR, Event, FEEDS_DIR, HISTORY_DIR, History, INDEX_FILE, Index, IndexEntry, LOCK_FILE,
@@ -559,29 +561,91 @@ impl Tree {
             .ok_or_else(|| anyhow!("channel {channel} has used every sequence number"))
     }
 
-    /// Publishes a staged bundle as the current release of `channel`. Publishing the bundle
+    /// Publishes a staged bundle as the current release of `channel`, with deltas from up to
+    /// `bases` earlier releases of the channel (see [`Tree::deltas`]). Publishing the bundle
     /// that is current already renews the feed (new sequence and expiry) with the new rollout.
+    /// The bundle and the deltas are made and checked under temporary names, removed on any
+    /// failure, and renamed to their content addresses just before the ledger append: a crash
+    /// after that leaves whole files no feed names yet, which the next publish reuses.
     pub fn publish(
         &self,
         staged: StagedBundle,
         channel: &str,
         rollout_percent: u8,
         mirrors: &[String],
+        bases: usize,
         signing: &Signing<'_>,
-    ) -> Result<Change> {
-        let plan = self.plan_publish(&staged.facts, channel, rollout_percent, mirrors, signing)?;
+    ) -> Result<(Change, Deltas)> {
+        // Every refusal first: deltas cost time, and are not made for a refused publish.
+        self.plan_publish(
+            &staged.facts,
+            channel,
+            rollout_percent,
+            mirrors,
+            &[],
+            signing,
+        )?;
+        let mut deltas = self.deltas(
+            staged.temp.path(),
+            &staged.facts,
+            channel,
+            bases,
+            &self.root.join(BUNDLES_DIR),
+        )?;
+        let plan = self.plan_publish(
+            &staged.facts,
+            channel,
+            rollout_percent,
+            mirrors,
+            &deltas.references(),
+            signing,
+        )?;
         self.place_bundle(staged)?;
-        self.apply(plan, signing)
+        deltas.place(&self.root)?;
+        Ok((self.apply(plan, signing)?, deltas))
     }
 
-    /// Works out and checks a publish of the bundle `facts` describes, writing nothing: the
-    /// version rules, the feed, the ledger entry and the keys that would sign its tree head.
+    /// The deltas a publish of `bundle` (a checked file that `facts` describes) on `channel`
+    /// offers. A new release gets one from each of the channel's last `bases` earlier
+    /// releases of the same name that saves enough ([`tree_deltas`]), made in a staging
+    /// directory inside `staging_in`; a renewal (the current release again) offers the deltas
+    /// it lists again, at most `bases`, each whose file is still intact.
+    pub fn deltas(
+        &self,
+        bundle: &Path,
+        facts: &BundleFacts,
+        channel: &str,
+        bases: usize,
+        staging_in: &Path,
+    ) -> Result<Deltas> {
+        tree_deltas::check_count(bases)?;
+        let history = self.history(channel)?;
+        if let Some(current) = history.stack().pop()
+            && current.sha256 == facts.sha256
+        {
+            return Ok(tree_deltas::renewed(&self.root, &current.deltas, bases));
+        }
+        let found = tree_deltas::bases(&history, &facts.manifest, &facts.sha256, bases);
+        tree_deltas::make(
+            &self.root,
+            &found,
+            bundle,
+            &facts.manifest,
+            facts.size,
+            staging_in,
+        )
+    }
+
+    /// Works out and checks a publish of the bundle `facts` describes, offering `deltas`,
+    /// writing nothing: the version rules, the feed, the ledger entry and the keys that would
+    /// sign its tree head.
     pub fn plan_publish(
         &self,
         facts: &BundleFacts,
         channel: &str,
         rollout_percent: u8,
         mirrors: &[String],
+        deltas: &[DeltaRef],
         signing: &Signing<'_>,
     ) -> Result<Plan> {
         check_channel(channel)?;
@@ -638,7 +702,7 @@ impl Tree {
                 })
                 .collect(),
             rollout_percent,
-            deltas: Vec::new(),
+            deltas: deltas.to_vec(),
         };
         release.validate()?;
         let sequence = self.next_sequence(channel, &history)?;

@@ -64,17 +64,30 @@ pub fn write_end<W: Write>(out: &mut W) -> io::Result<()> {
     out.write_all(&END_OF_ARCHIVE)
 }
 
-/// Writes everything of a bundle before the payload's bytes: the manifest and signatures
-/// entries and the payload's header, `ampoule_verify::bundle::payload_offset` bytes in all.
+/// The small entries of a bundle: the manifest, the signatures and, in format 2, the chunk
+/// list.
+#[derive(Clone, Copy)]
+pub struct Small<'a> {
+    pub manifest: &'a [u8],
+    pub signatures: &'a [u8],
+    /// `None` for a format 1 bundle (re-signing one keeps its layout).
+    pub chunks: Option<&'a [u8]>,
+}
+
+/// Writes everything of a bundle before the payload's bytes: the manifest, signatures and
+/// chunk list entries and the payload's header, `ampoule_verify::bundle::payload_offset`
+/// bytes in all.
 pub fn write_head<W: Write>(
     out: &mut W,
     mtime: u64,
-    manifest: &[u8],
-    signatures: &[u8],
+    small: Small<'_>,
     payload_len: u64,
 ) -> io::Result<()> {
-    write_entry(out, entry::MANIFEST, manifest, mtime)?;
-    write_entry(out, entry::SIGNATURES, signatures, mtime)?;
+    write_entry(out, entry::MANIFEST, small.manifest, mtime)?;
+    write_entry(out, entry::SIGNATURES, small.signatures, mtime)?;
+    if let Some(chunks) = small.chunks {
+        write_entry(out, entry::CHUNKS, chunks, mtime)?;
+    }
     write_header(out, entry::PAYLOAD, payload_len, mtime)
 }
 
@@ -90,12 +103,11 @@ pub fn write_tail<W: Write>(out: &mut W, payload_len: u64) -> io::Result<()> {
 pub fn write_bundle<W: Write, R: Read>(
     out: &mut W,
     mtime: u64,
-    manifest: &[u8],
-    signatures: &[u8],
+    small: Small<'_>,
     payload: &mut R,
     payload_len: u64,
 ) -> io::Result<()> {
-    write_head(out, mtime, manifest, signatures, payload_len)?;
+    write_head(out, mtime, small, payload_len)?;
     let copied = io::copy(&mut payload.take(payload_len), out)?;
     if copied != payload_len {
         return Err(io::Error::new(

@@ -1,7 +1,9 @@
 //! The check every pack test can run on a valid bundle it made: the device's hand-written
 //! reader (`ampoule verify --extract`, which reads the outer archive and the payload's inner
-//! one) accepts it, and, where GNU tar is on PATH, `tar tf` lists exactly the three entries in
-//! order, and the decompressed payload lists exactly the model and `labels.txt`.
+//! one) accepts it, and, where GNU tar is on PATH, `tar tf` lists exactly the entries in order
+//! (four in format 2, three in format 1), and the decompressed payload lists exactly the model
+//! and `labels.txt`. In format 2 the chunk list's records (FORMAT.md: a 4-byte little-endian
+//! size, then a SHA-256) are checked here by hand against the payload's bytes.
 //!
 //! Included by tests/common and tests/tree_common with `#[path]`.
 #![allow(dead_code)]
@@ -55,9 +57,13 @@ pub fn assert_readers_accept(bin: &str, bundle: &Path, trust: Option<&Path>, mod
     if !gnu_tar() {
         return;
     }
+    let expected: &[&str] = match layout.chunks {
+        Some(_) => &entry::OUTER,
+        None => &entry::OUTER_FORMAT_1,
+    };
     assert_eq!(
         gnu_tar_names(bundle),
-        [entry::MANIFEST, entry::SIGNATURES, entry::PAYLOAD],
+        expected,
         "GNU tar's listing of {}",
         bundle.display()
     );
@@ -65,6 +71,20 @@ pub fn assert_readers_accept(bin: &str, bundle: &Path, trust: Option<&Path>, mod
     let bytes = std::fs::read(bundle).expect("read the bundle");
     let start = usize::try_from(layout.payload_offset).expect("fits");
     let end = start + usize::try_from(layout.payload_len).expect("fits");
+    if let Some(list) = &layout.chunks {
+        let mut at = start;
+        for record in list.chunks(36) {
+            let size = u32::from_le_bytes(record[..4].try_into().expect("a whole record"));
+            let chunk = &bytes[at..at + size as usize];
+            assert_eq!(
+                ampoule_verify::Digest::of(chunk).as_bytes()[..],
+                record[4..],
+                "a chunk's digest"
+            );
+            at += size as usize;
+        }
+        assert_eq!(at, end, "the chunks cover the payload exactly");
+    }
     let inner = zstd::decode_all(&bytes[start..end]).expect("the payload decompresses");
     let inner_path = scratch.path().join("payload.tar");
     std::fs::write(&inner_path, inner).expect("write the inner archive");

@@ -324,13 +324,15 @@ pub fn zstd(data: &[u8]) -> Vec<u8> {
     zstd::encode_all(data, 3).expect("zstd compresses in memory")
 }
 
-/// The parts of a bundle before they are laid out: the manifest to sign and the payload.
+/// The parts of a bundle before they are laid out: the manifest to sign, the payload and, in
+/// format 2, the chunk list.
 #[derive(Clone)]
 pub struct Draft {
     pub model: Vec<u8>,
     pub labels: Vec<u8>,
     pub manifest: Manifest,
     pub payload: Vec<u8>,
+    pub chunks: Option<Vec<u8>>,
 }
 
 impl Draft {
@@ -344,7 +346,33 @@ impl Draft {
         Draft::with_payload(model, LABELS.to_vec(), zstd(&inner))
     }
 
-    /// A draft whose manifest declares `model` and `labels` and binds `payload` as it is.
+    /// A correct format 2 draft: the fixture model (grown to make several chunks) and labels,
+    /// the inner tar in chunks of 64 KiB, each a zstd frame bound by the chunk list.
+    pub fn chunked() -> Draft {
+        let model = model_bytes(200 * 1024);
+        let inner = tar_of(&[
+            tar_entry("model.onnx", &model),
+            tar_entry(entry::LABELS, LABELS),
+        ]);
+        Draft::with_chunks(model, LABELS.to_vec(), &inner, CHUNK_BYTES)
+    }
+
+    /// A format 2 draft whose manifest declares `model` and `labels` and binds `inner` cut
+    /// into chunks of `chunk_bytes`, compressed by the library's writer.
+    pub fn with_chunks(model: Vec<u8>, labels: Vec<u8>, inner: &[u8], chunk_bytes: u32) -> Draft {
+        let (payload, chunks) = ampoule_verify::bundle::chunked_payload(inner, chunk_bytes, 3)
+            .expect("zstd compresses in memory");
+        let mut draft = Draft::with_payload(model, labels, payload);
+        draft.manifest.format = ampoule_verify::format::FORMAT_VERSION;
+        draft.manifest.payload.sha256 = None;
+        draft.manifest.payload.chunk_bytes = Some(chunk_bytes);
+        draft.manifest.payload.chunks_sha256 = Some(Digest::of(&chunks));
+        draft.chunks = Some(chunks);
+        draft
+    }
+
+    /// A format 1 draft whose manifest declares `model` and `labels` and binds `payload` as it
+    /// is.
     pub fn with_payload(model: Vec<u8>, labels: Vec<u8>, payload: Vec<u8>) -> Draft {
         let manifest = Manifest {
             format: 1,
@@ -355,7 +383,9 @@ impl Draft {
             payload: Payload {
                 compression: Compression::Zstd,
                 size: payload.len() as u64,
-                sha256: Digest::of(&payload),
+                sha256: Some(Digest::of(&payload)),
+                chunk_bytes: None,
+                chunks_sha256: None,
             },
             files: vec![
                 FileEntry {
@@ -380,15 +410,24 @@ impl Draft {
             labels,
             manifest,
             payload,
+            chunks: None,
         }
     }
 
     /// The bundle, with the manifest written by the library and signed by `key`.
     pub fn signed(&self, key: &SigningKey) -> Vec<u8> {
         let manifest = self.manifest.to_json();
-        assemble(&manifest, &signatures(&[key], &manifest), &self.payload)
+        assemble_with(
+            &manifest,
+            &signatures(&[key], &manifest),
+            self.chunks.as_deref(),
+            &self.payload,
+        )
     }
 }
+
+/// The chunk size of [`Draft::chunked`]: 64 KiB, the smallest the format allows.
+pub const CHUNK_BYTES: u32 = 64 * 1024;
 
 /// A signatures document with one signature per key over `manifest`, made the documented
 /// way: Ed25519 over the manifest context followed by the manifest's exact bytes.
@@ -405,14 +444,23 @@ pub fn signatures(keys: &[&SigningKey], manifest: &[u8]) -> Vec<u8> {
     doc.to_json()
 }
 
-/// Lays out a bundle with the library's writer.
+/// Lays out a format 1 bundle with the library's writer.
 pub fn assemble(manifest: &[u8], signatures: &[u8], payload: &[u8]) -> Vec<u8> {
+    assemble_with(manifest, signatures, None, payload)
+}
+
+/// Lays out a bundle with the library's writer, with a chunk list when given (format 2).
+pub fn assemble_with(
+    manifest: &[u8],
+    signatures: &[u8],
+    chunks: Option<&[u8]>,
+    payload: &[u8],
+) -> Vec<u8> {
     let mut out = Vec::new();
     write_bundle(
         &mut out,
         CREATED_UNIX,
-        manifest,
-        signatures,
+        (manifest, signatures, chunks),
         &mut &payload[..],
         payload.len() as u64,
     )

@@ -127,7 +127,7 @@ pub fn write_model(d: &Path, name: &str, variant: u8) {
 
 /// Packs `version` with a 300,000-byte model that does not compress (a linear congruential
 /// sequence, the constants of Numerical Recipes' `ranqd1`, from memory), so the bundle is
-/// larger than its head (129.5 KiB) and the session asks for the head first.
+/// larger than its head (274 KiB) and the session asks for the head first.
 pub fn pack_large(d: &Path, version: &str) -> String {
     let mut x: u32 = 0x2545_f491;
     let bytes: Vec<u8> = (0..300_000)

@@ -35,6 +35,7 @@ use crate::check::trust::{
     DocumentKind, KeyEntry, Thresholds, TrustSet, TrustSetBody, TrustSetFile,
 };
 use crate::format::bundle::{read_layout, write_bundle};
+use crate::format::chunks::ListWriter;
 use crate::format::digest::Digest;
 use crate::format::keys::{PublicKey, TrustedKeys};
 use crate::format::ledger_entry::{
@@ -49,7 +50,9 @@ use crate::format::metadata::{Metadata, MetadataBuilder};
 use crate::format::signature::{SignatureEntry, Signatures};
 use crate::format::signed::{SignedDocument, kind};
 use crate::format::time::Timestamp;
-use crate::format::{FEED_FORMAT_VERSION, FORMAT_VERSION, context, entry, signed_bytes, tar};
+use crate::format::{
+    FEED_FORMAT_VERSION, FORMAT_VERSION, OLDEST_FORMAT_VERSION, context, entry, signed_bytes, tar,
+};
 use crate::store::Store;
 use crate::update::{App, Device, Trust};
 
@@ -171,6 +174,7 @@ pub fn bundle(data: &[u8]) {
                 file: &file,
                 payload_offset: layout.payload_offset,
                 manifest: &manifest,
+                chunks: layout.chunks.as_deref(),
                 progress: None,
             },
             None,
@@ -249,10 +253,11 @@ pub fn signatures(data: &[u8]) {
     assert_eq!(again.signatures.len(), signatures.signatures.len());
 }
 
-/// The manifest the payload entry points describe their payloads with.
+/// The manifest the payload entry points describe their payloads with: format 1, which binds
+/// the payload by one digest and decodes it as one stream ([`chunked`] makes it format 2).
 fn template_manifest(payload: &[u8], files: [(u64, Digest); 2], label_count: u32) -> Manifest {
     Manifest {
-        format: FORMAT_VERSION,
+        format: OLDEST_FORMAT_VERSION,
         name: NAME.into(),
         version: Version::new(1, 0, 0),
         created: Timestamp::from_unix(MADE).expect("a fixed time in range"),
@@ -260,7 +265,9 @@ fn template_manifest(payload: &[u8], files: [(u64, Digest); 2], label_count: u32
         payload: Payload {
             compression: Compression::Zstd,
             size: payload.len() as u64,
-            sha256: Digest::of(payload),
+            sha256: Some(Digest::of(payload)),
+            chunk_bytes: None,
+            chunks_sha256: None,
         },
         files: vec![
             FileEntry {
@@ -282,18 +289,31 @@ fn template_manifest(payload: &[u8], files: [(u64, Digest); 2], label_count: u32
     }
 }
 
-/// A bundle file of `manifest` (signed with the fuzz key) and `payload`.
-fn bundle_bytes(manifest: &Manifest, payload: &[u8]) -> Vec<u8> {
+/// `manifest` (format 1) as the format 2 manifest of a payload of `payload_len` bytes whose
+/// chunk list is `list`, in chunks of 1 MiB.
+fn chunked(manifest: &Manifest, payload_len: usize, list: &[u8]) -> Manifest {
+    let mut manifest = manifest.clone();
+    manifest.format = FORMAT_VERSION;
+    manifest.payload.size = payload_len as u64;
+    manifest.payload.sha256 = None;
+    manifest.payload.chunk_bytes = Some(1 << 20);
+    manifest.payload.chunks_sha256 = Some(Digest::of(list));
+    manifest
+}
+
+/// A bundle file of `manifest` (signed with the fuzz key), the chunk list `chunks` (format
+/// 2) and `payload`.
+fn bundle_bytes(manifest: &Manifest, chunks: Option<&[u8]>, payload: &[u8]) -> Vec<u8> {
     let manifest = manifest.to_json();
     let signatures = Signatures {
         signatures: vec![sign(context::MANIFEST, &manifest)],
-    };
+    }
+    .to_json();
     let mut out = Vec::new();
     write_bundle(
         &mut out,
         MADE,
-        &manifest,
-        &signatures.to_json(),
+        (&manifest, &signatures, chunks),
         &mut &payload[..],
         payload.len() as u64,
     )
@@ -326,10 +346,21 @@ fn seed_entries() -> [(u64, Digest); 2] {
 
 /// `payload`: the bytes as the compressed payload of a bundle whose signed manifest declares
 /// their size and SHA-256 (and the seed payload's files): the bounded zstd decoder (window
-/// cap, output cap), the inner tar and the per-file digests.
+/// cap, output cap), the inner tar and the per-file digests. Then the same bytes as the one
+/// chunk of a format 2 payload, its record in a signed chunk list: the chunk's frame checks
+/// (one frame, its declared and actual decoded size) and the same inner tar.
 pub fn payload(data: &[u8]) {
     let manifest = template_manifest(data, seed_entries(), 6);
-    verify_and_decode(&bundle_bytes(&manifest, data));
+    verify_and_decode(&bundle_bytes(&manifest, None, data));
+    let mut list = ListWriter::default();
+    list.push(data);
+    let list = list.finish();
+    let manifest = chunked(&manifest, data.len(), &list);
+    let bundle = bundle_bytes(&manifest, Some(&list), data);
+    // A chunk over its cap is refused by the list's check, before any decoding.
+    if let Ok(mut verified) = verifier().verify_file(as_file(&bundle)) {
+        let _ = verified.check_contents();
+    }
 }
 
 /// `payload_tar`: the bytes as the decompressed inner tar. The target compresses them and
@@ -367,7 +398,7 @@ pub fn payload_tar(data: &[u8]) {
     if manifest.validate().is_err() {
         return;
     }
-    verify_and_decode(&bundle_bytes(&manifest, &payload));
+    verify_and_decode(&bundle_bytes(&manifest, None, &payload));
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -803,6 +834,7 @@ pub fn store(data: &[u8]) {
                 &Digest::of(b"offered"),
                 &Digest::of(b"app"),
                 now(),
+                "bundle",
             );
         }
         let _ = device.gc();
@@ -1061,7 +1093,11 @@ fn offline_file(feed: &[u8], bundle: &[u8]) -> Vec<u8> {
 fn seed_bundle() -> Vec<u8> {
     let (model, labels) = seed_files();
     let payload = seed_payload(&model, &labels);
-    bundle_bytes(&template_manifest(&payload, seed_entries(), 6), &payload)
+    bundle_bytes(
+        &template_manifest(&payload, seed_entries(), 6),
+        None,
+        &payload,
+    )
 }
 
 /// The seed payload: the inner tar of `model` and `labels`, compressed.
@@ -1178,7 +1214,15 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
     let (model, labels) = seed_files();
     let payload = seed_payload(&model, &labels);
     let manifest = template_manifest(&payload, seed_entries(), 6);
-    let bundle = bundle_bytes(&manifest, &payload);
+    let bundle = bundle_bytes(&manifest, None, &payload);
+    let (chunked_payload, list) =
+        crate::format::bundle::chunked_payload(&seed_tar(&model, &labels), 1 << 20, 3)
+            .expect("zstd compresses in memory");
+    let bundle_format_2 = bundle_bytes(
+        &chunked(&manifest, chunked_payload.len(), &list),
+        Some(&list),
+        &chunked_payload,
+    );
     let manifest_bytes = manifest.to_json();
     let ledger = SeedLedger::new(&bundle, &manifest_bytes);
     let release = Release {
@@ -1258,6 +1302,7 @@ pub fn seeds() -> Vec<(&'static str, String, Vec<u8>)> {
     .expect("JSON serializes");
     let mut seeds: Vec<(&'static str, String, Vec<u8>)> = vec![
         ("bundle", "valid.ampoule".into(), bundle.clone()),
+        ("bundle", "valid-format-2.ampoule".into(), bundle_format_2),
         ("manifest", "valid.json".into(), manifest_bytes.clone()),
         (
             "manifest",

@@ -7,7 +7,8 @@ use std::sync::Arc;
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 #[non_exhaustive]
 pub enum Stage {
-    /// Hashing the compressed payload.
+    /// Hashing the compressed payload whole before unpacking: format 1 bundles only. A
+    /// format 2 bundle's chunks are hashed as they are unpacked, within [`Stage::Unpack`].
     HashPayload,
     /// Decompressing and checking (and possibly writing) the payload's files.
     Unpack,

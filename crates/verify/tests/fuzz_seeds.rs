@@ -90,6 +90,17 @@ fn fuzz_seeds_that_stand_for_valid_documents_pass_every_check() {
         bundle.check_contents().expect("its payload checks").len(),
         6
     );
+    // The format 2 seed (issue 13): its chunk list and every chunk check too.
+    std::fs::write(&path, seed("bundle", "valid-format-2.ampoule")).expect("write the seed");
+    let mut chunked = Verifier::new(trusted.clone(), "1.4.0".parse().expect("version"))
+        .expect("a key")
+        .verify_path(&path)
+        .expect("the format 2 bundle seed verifies");
+    assert_eq!(chunked.manifest().format, 2);
+    assert_eq!(
+        chunked.check_contents().expect("its payload checks").len(),
+        6
+    );
     let manifest = ampoule_verify::Manifest::from_json(&seed("manifest", "with-metadata.json"))
         .expect("the metadata seed is a valid manifest");
     assert_eq!(

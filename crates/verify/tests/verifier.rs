@@ -25,7 +25,8 @@ fn entry(name: &str, data: &[u8]) -> Vec<u8> {
     out
 }
 
-/// A signed bundle of `model` and the fixture labels; `edit` may change the manifest first.
+/// A signed format 1 bundle of `model` and the fixture labels; `edit` may change the manifest
+/// first.
 fn bundle(key: &SigningKey, model: &[u8], edit: impl FnOnce(&mut Manifest)) -> Vec<u8> {
     let mut inner = [entry("model.bin", model), entry("labels.txt", LABELS)].concat();
     inner.extend_from_slice(&tar::END_OF_ARCHIVE);
@@ -45,7 +46,9 @@ fn bundle(key: &SigningKey, model: &[u8], edit: impl FnOnce(&mut Manifest)) -> V
         payload: Payload {
             compression: Compression::Zstd,
             size: payload.len() as u64,
-            sha256: Digest::of(&payload),
+            sha256: Some(Digest::of(&payload)),
+            chunk_bytes: None,
+            chunks_sha256: None,
         },
         files: vec![
             file("model.bin", Role::Model, model),
@@ -68,8 +71,7 @@ fn bundle(key: &SigningKey, model: &[u8], edit: impl FnOnce(&mut Manifest)) -> V
     write_bundle(
         &mut out,
         MTIME,
-        &manifest,
-        &sigs.to_json(),
+        (&manifest, &sigs.to_json(), None),
         &mut &payload[..],
         payload.len() as u64,
     )
@@ -161,7 +163,7 @@ fn refusals_have_kinds_apps_can_match_on() {
         ),
         (bundle(&key, &model, |m| m.format = 9), ErrorKind::Manifest),
         (
-            bundle(&key, &model, |m| m.payload.sha256 = Digest::of(b"x")),
+            bundle(&key, &model, |m| m.payload.sha256 = Some(Digest::of(b"x"))),
             ErrorKind::Digest,
         ),
         (

@@ -1,10 +1,13 @@
 //! The verifier: the checks a bundle must pass, in the order that keeps untrusted bytes away
 //! from anything large or complex, and the [`VerifiedBundle`] that proves they passed.
 //!
-//! Order: outer size cap; layout with capped manifest and signatures; signature by a trusted
-//! key over the exact manifest bytes; strict manifest parse; the app's policy; the compressed
-//! payload's SHA-256. Only then may the payload be decompressed (see [`crate::payload::unpack`]), and
-//! its files are checked against their own digests as they stream out.
+//! Order: outer size cap; layout with capped manifest, signatures and chunk list; signature by
+//! a trusted key over the exact manifest bytes; strict manifest parse; the app's policy; what
+//! binds the compressed payload: in format 2 the chunk list's SHA-256 (each chunk's own is
+//! checked just before the decoder sees it, see [`crate::format::chunks`]), in format 1 the
+//! whole payload's SHA-256. Only then may the payload be decompressed (see
+//! [`crate::payload::unpack`]), and its files are checked against their own digests as they
+//! stream out.
 
 use std::fmt;
 use std::fs::File;
@@ -182,6 +185,11 @@ impl Verifier {
         self.signers.keys()
     }
 
+    /// The app's compatibility policy, for the checks of files a delta rebuilt.
+    pub(crate) fn compatibility_policy(&self) -> Option<&CompatibilityPolicy> {
+        self.compatibility.as_ref()
+    }
+
     /// Opens and verifies the bundle at `path`.
     pub fn verify_path(&self, path: &Path) -> Result<VerifiedBundle> {
         let file = File::open(path)
@@ -191,6 +199,10 @@ impl Verifier {
 
     /// Verifies an open bundle file. The file stays open inside the result, so what is
     /// unpacked later is the file that was verified, even if the path is replaced meanwhile.
+    ///
+    /// A format 2 bundle's payload is read once, when it is unpacked or its contents
+    /// checked: each chunk is hashed and compared with the signed chunk list just before it
+    /// is decoded. A format 1 bundle's payload is hashed whole here, before anything else.
     pub fn verify_file(&self, mut file: File) -> Result<VerifiedBundle> {
         let file_len = file
             .metadata()
@@ -212,7 +224,7 @@ impl Verifier {
                 .check(&self.signers, "bundle")?;
         let manifest = Manifest::from_json(&layout.manifest)?;
         self.check_policy(&manifest, true)?;
-        bundle::check_payload(&mut file, &layout, &manifest, self.progress.as_ref())?;
+        bundle::check_before_decoding(&mut file, &layout, &manifest, self.progress.as_ref())?;
         Ok(VerifiedBundle {
             file,
             layout,
@@ -249,6 +261,9 @@ impl Verifier {
                 ),
             ));
         }
+        // Format 2: the chunk list is in the head, so a download is refused before its
+        // payload if the list does not match the signed manifest.
+        bundle::check_binding(head.payload_len, head.chunks.as_deref(), &manifest)?;
         let len = head.bundle_len().ok_or_else(|| {
             Error::new(ErrorKind::Malformed, "bundle's length overflows a 64-bit count")
         })?;
@@ -368,7 +383,10 @@ impl Verifier {
 }
 
 /// A bundle that passed every check before decompression: signed by trusted keys, manifest
-/// valid, allowed by the app's policy, payload digest correct. Only this crate can make one.
+/// valid, allowed by the app's policy, and the payload bound: in format 1 its whole digest
+/// checked, in format 2 its chunk list checked, each chunk then checked as it is read for
+/// decoding ([`VerifiedBundle::check_contents`], [`VerifiedBundle::unpack`]), so no
+/// unchecked byte ever reaches the decoder. Only this crate can make one.
 pub struct VerifiedBundle {
     pub(crate) file: File,
     pub(crate) layout: Layout,

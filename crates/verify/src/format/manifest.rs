@@ -11,7 +11,7 @@ use serde::{Deserialize, Serialize};
 use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::metadata::Metadata;
-use crate::format::{FORMAT_VERSION, entry, limit};
+use crate::format::{FORMAT_VERSION, OLDEST_FORMAT_VERSION, entry, limit};
 use crate::format::model::ModelSignature;
 use crate::format::tar;
 use crate::format::time::Timestamp;
@@ -50,7 +50,9 @@ pub enum Compression {
     Zstd,
 }
 
-/// The compressed payload entry.
+/// The compressed payload entry, and the digests that bind it: one SHA-256 of the whole
+/// payload in format 1; in format 2, the SHA-256 of the chunk list, which holds the SHA-256 of
+/// each `chunk_bytes` of the payload.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Payload {
@@ -58,19 +60,69 @@ pub struct Payload {
     pub compression: Compression,
     /// The compressed size in bytes.
     pub size: u64,
-    /// SHA-256 of the compressed bytes.
-    pub sha256: Digest,
+    /// Format 1 only: the SHA-256 of the compressed bytes.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sha256: Option<Digest>,
+    /// Format 2 only: the size of each chunk of the compressed bytes (the last one holds the
+    /// rest), a power of two from 64 KiB to 2 MiB.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub chunk_bytes: Option<u32>,
+    /// Format 2 only: the SHA-256 of the chunk list entry (`chunks.sha256`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub chunks_sha256: Option<Digest>,
 }
 
-/// A bundle manifest (format 1). Field order here is the order in the JSON.
+impl Payload {
+    /// Checks the digest fields against the manifest's `format`; `tar_len` is the inner tar's
+    /// length, which format 2 cuts into chunks.
+    fn validate(&self, format: u32, tar_len: u64) -> Result<()> {
+        let chunked = (self.chunk_bytes, self.chunks_sha256);
+        match (format, self.sha256, chunked) {
+            (1, Some(_), (None, None)) => Ok(()),
+            (1, _, _) => Err(invalid(
+                "manifest format 1 binds its payload by 'sha256' alone, without 'chunk_bytes' \
+                 or 'chunks_sha256'"
+                    .into(),
+            )),
+            (_, None, (Some(chunk), Some(_))) => {
+                let allowed = limit::CHUNK_LOG_MIN..=limit::CHUNK_LOG_MAX;
+                if !chunk.is_power_of_two() || !allowed.contains(&chunk.trailing_zeros()) {
+                    return Err(invalid(format!(
+                        "manifest's payload chunk_bytes {chunk} is not allowed: use a power of two \
+                         from {} to {} bytes",
+                        1u64 << limit::CHUNK_LOG_MIN,
+                        1u64 << limit::CHUNK_LOG_MAX
+                    )));
+                }
+                let count = tar_len.div_ceil(u64::from(chunk));
+                if count > limit::CHUNKS {
+                    return Err(invalid(format!(
+                        "manifest's files make an inner tar of {tar_len} bytes, {count} chunks of \
+                         {chunk} bytes; a payload has at most {} chunks",
+                        limit::CHUNKS
+                    )));
+                }
+                Ok(())
+            }
+            _ => Err(invalid(format!(
+                "manifest format {format} binds its payload by 'chunk_bytes' and \
+                 'chunks_sha256', without 'sha256'"
+            ))),
+        }
+    }
+}
+
+/// A bundle manifest (format 2, or 1 for bundles packed before issue 13). Field order here
+/// is the order in the JSON.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Manifest {
-    /// The format version; always 1 (`format::FORMAT_VERSION`).
+    /// The format version: 2 (`format::FORMAT_VERSION`), or 1 (`OLDEST_FORMAT_VERSION`).
     #[cfg(feature = "release")]
     pub format: u32,
-    /// The format version: the reader refuses any other than 1, so an app has nothing to
-    /// learn from it, and it stays out of the app's API (issue 14 made room there).
+    /// The format version (2, or 1 for bundles packed before issue 13): it says only how the
+    /// payload is bound, which the reader has checked, so an app has nothing to learn from it
+    /// and it stays out of the app's API (issue 14 made room there).
     #[cfg(not(feature = "release"))]
     pub(crate) format: u32,
     /// The bundle's name: which model line this is (`trailcam-species`).
@@ -166,10 +218,11 @@ impl Manifest {
     pub_for_release! {
         /// Checks every field against the format's rules.
         fn validate(&self) -> Result<()> {
-            if self.format != FORMAT_VERSION {
+            if !(OLDEST_FORMAT_VERSION..=FORMAT_VERSION).contains(&self.format) {
                 return Err(invalid(format!(
-                    "manifest format {} is not supported (this reader knows format {FORMAT_VERSION}); \
-                     update ampoule-verify to read newer bundles",
+                    "manifest format {} is not supported (this reader knows formats \
+                     {OLDEST_FORMAT_VERSION} to {FORMAT_VERSION}); update ampoule-verify to read \
+                     newer bundles",
                     self.format
                 )));
             }
@@ -179,8 +232,9 @@ impl Manifest {
             }
             let [model, labels] = self.files.as_slice() else {
                 return Err(invalid(format!(
-                    "manifest lists {} files; format {FORMAT_VERSION} requires exactly two, the model then the labels",
-                    self.files.len()
+                    "manifest lists {} files; format {} requires exactly two, the model then the labels",
+                    self.files.len(),
+                    self.format
                 )));
             };
             let model_ok = model.role == Role::Model
@@ -215,6 +269,7 @@ impl Manifest {
                     )));
                 }
             }
+            self.payload.validate(self.format, self.unpacked_tar_len())?;
             if labels.size > limit::LABELS_FILE_BYTES {
                 return Err(invalid(format!(
                     "manifest declares labels.txt as {} bytes, over the format's limit of {} bytes",
@@ -277,6 +332,15 @@ impl Manifest {
                 .map(|f| tar::entry_len(f.size))
                 .sum::<u64>()
                 + tar::END_OF_ARCHIVE.len() as u64
+        }
+    }
+
+    pub_for_release! {
+        /// How many chunks a format 2 payload has (its chunk list holds a record for each):
+        /// the inner tar's length divided by `chunk_bytes`, rounded up. `None` in format 1.
+        fn chunk_count(&self) -> Option<u64> {
+            let chunk = u64::from(self.payload.chunk_bytes?);
+            (chunk > 0).then(|| self.unpacked_tar_len().div_ceil(chunk))
         }
     }
 

@@ -8,6 +8,7 @@
 // The documents of the format, each read strictly and within its caps. Nothing here checks a
 // signature against trust or decides anything: that is `check/`, the layer above.
 pub mod bundle;
+pub mod chunks;
 pub mod delta_file;
 pub mod digest;
 pub mod keys;
@@ -26,8 +27,16 @@ pub mod trust_proofs;
 #[rustfmt::skip]
 pub mod unicode;
 
-/// The format version written into every manifest; a reader refuses any other value.
-pub const FORMAT_VERSION: u32 = 1;
+/// The format version written into every manifest. Format 2 (issue 13) binds the payload by
+/// the SHA-256 of each of its chunks ([`entry::CHUNKS`]), so a reader checks every chunk just
+/// before the decoder sees it and hashing overlaps decoding; format 1 bound it by one SHA-256
+/// of the whole payload, checked before decoding started. A reader reads both, and refuses
+/// any other value.
+pub const FORMAT_VERSION: u32 = 2;
+
+/// The oldest manifest format a reader still reads: bundles packed before format 2 verify
+/// and install as they always did.
+pub const OLDEST_FORMAT_VERSION: u32 = 1;
 
 /// The format version written into every feed. A reader also reads format 1, which is format
 /// 2 without the release's `deltas`, and refuses any other value.
@@ -50,10 +59,15 @@ pub mod entry {
     pub const MANIFEST: &str = "manifest.json";
     /// The signatures over the manifest's exact bytes: UTF-8 JSON.
     pub const SIGNATURES: &str = "signatures.json";
+    /// Format 2: the SHA-256 of each chunk of the payload entry, 32 raw bytes per chunk, in
+    /// order; the manifest binds this entry by its own SHA-256 (`payload.chunks_sha256`).
+    pub const CHUNKS: &str = "chunks.sha256";
     /// The zstd-compressed inner tar holding the model file and the label list.
     pub const PAYLOAD: &str = "payload.tar.zst";
-    /// All outer entries in order.
-    pub const OUTER: [&str; 3] = [MANIFEST, SIGNATURES, PAYLOAD];
+    /// All outer entries of a bundle in the current format (2), in order.
+    pub const OUTER: [&str; 4] = [MANIFEST, SIGNATURES, CHUNKS, PAYLOAD];
+    /// All outer entries of a format 1 bundle, in order: no chunk list.
+    pub const OUTER_FORMAT_1: [&str; 3] = [MANIFEST, SIGNATURES, PAYLOAD];
     /// The label list inside the payload: UTF-8, one label per line.
     pub const LABELS: &str = "labels.txt";
     /// The stem of the model file inside the payload; the extension of the packed file is kept.
@@ -67,11 +81,24 @@ pub mod limit {
     pub const MANIFEST_BYTES: u64 = 64 * 1024;
     /// The signatures document's largest size in bytes.
     pub const SIGNATURES_BYTES: u64 = 64 * 1024;
-    /// The most bytes before a bundle's payload: three 512-byte tar headers and the two small
-    /// entries at their caps (129.5 KiB). A device downloads and checks this head (manifest,
-    /// signatures, policy, and the bundle's exact size, which follows from them) before it
-    /// asks for the payload (issue 10).
-    pub const HEAD_BYTES: u64 = 3 * 512 + MANIFEST_BYTES + SIGNATURES_BYTES;
+    /// The most bytes before a bundle's payload: four 512-byte tar headers and the three
+    /// small entries at their caps (274 KiB). A device downloads and checks this head
+    /// (manifest, signatures, chunk list, policy, and the bundle's exact size, which follows
+    /// from them) before it asks for the payload (issue 10).
+    pub const HEAD_BYTES: u64 = 4 * 512 + MANIFEST_BYTES + SIGNATURES_BYTES + CHUNK_LIST_BYTES;
+    /// Format 2: the smallest chunk of the inner tar (the decoded size of one chunk of the
+    /// payload), as a power of two: 2^16 bytes = 64 KiB.
+    pub const CHUNK_LOG_MIN: u32 = 16;
+    /// Format 2: the largest chunk of the inner tar, as a power of two: 2^22 bytes = 4 MiB. A
+    /// reader holds a few chunks at a time (compressed: one being checked, one queued, one
+    /// being decoded; and their decoded bytes), so this bounds its memory whatever the
+    /// payload's size. Writers use 512 KiB for inner tars up to 2 GiB.
+    pub const CHUNK_LOG_MAX: u32 = 22;
+    /// Format 2: the most chunks one payload may have. With chunks of 4 MiB, that covers the
+    /// largest inner tar the format allows (16 GiB, more than a tar size field describes).
+    pub const CHUNKS: u64 = 4096;
+    /// Format 2: the largest chunk list ([`super::entry::CHUNKS`]): 36 bytes per chunk.
+    pub const CHUNK_LIST_BYTES: u64 = CHUNKS * 36;
     /// The most signatures one bundle may carry.
     pub const SIGNATURES: usize = 32;
     /// The zstd window the decoder accepts, as a power of two: 2^23 bytes = 8 MiB.

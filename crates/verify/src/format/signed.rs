@@ -241,14 +241,18 @@ impl<K: Kind> Signers<K> {
         self
     }
 
-    /// The keys whose signatures count.
-    pub fn keys(&self) -> &TrustedKeys {
-        &self.keys
+    pub_for_release! {
+        /// The keys whose signatures count.
+        fn keys(&self) -> &TrustedKeys {
+            &self.keys
+        }
     }
 
-    /// How many distinct keys must have signed.
-    pub fn threshold(&self) -> usize {
-        self.threshold
+    pub_for_release! {
+        /// How many distinct keys must have signed.
+        fn threshold(&self) -> usize {
+            self.threshold
+        }
     }
 }
 

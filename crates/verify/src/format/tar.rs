@@ -363,6 +363,18 @@ pub(crate) fn expect_entry<R: Read>(
     order: &[&str],
     index: usize,
 ) -> Result<u64> {
+    let (name, size) = next_entry(reader, archive, order, index)?;
+    check_entry(name, size, archive, order, index)
+}
+
+/// Reads the next header block, which must be a regular file (entry `index` of `order` is
+/// named in messages), and returns its name and size without checking the name.
+pub(crate) fn next_entry<R: Read>(
+    reader: &mut R,
+    archive: &str,
+    order: &[&str],
+    index: usize,
+) -> Result<(String, u64)> {
     let expected = order[index];
     let mut h = [0u8; 512];
     read_exact_or_truncated(reader, &mut h, || {
@@ -373,26 +385,39 @@ pub(crate) fn expect_entry<R: Read>(
             ErrorKind::Malformed,
             format!("{archive} ends before entry '{expected}': the entry is missing"),
         )),
-        Block::File { name, size } if name == expected => Ok(size),
-        Block::File { name, .. } => {
-            let message = if order[..index].contains(&name.as_str()) {
-                format!("{archive} entry '{}' appears twice", shown(name.as_bytes()))
-            } else if order[index..].contains(&name.as_str()) {
-                format!(
-                    "{archive} entry '{}' is out of order: entry {} must be '{expected}'",
-                    shown(name.as_bytes()),
-                    index + 1
-                )
-            } else {
-                format!(
-                    "{archive} entry '{}' is not allowed: entry {} must be '{expected}'",
-                    shown(name.as_bytes()),
-                    index + 1
-                )
-            };
-            Err(Error::new(ErrorKind::Malformed, message))
-        }
+        Block::File { name, size } => Ok((name, size)),
     }
+}
+
+/// Requires the entry [`next_entry`] read to be entry `index` of `order`, refusing
+/// duplicates and reordering with messages that say which; returns its size.
+pub(crate) fn check_entry(
+    name: String,
+    size: u64,
+    archive: &str,
+    order: &[&str],
+    index: usize,
+) -> Result<u64> {
+    let expected = order[index];
+    if name == expected {
+        return Ok(size);
+    }
+    let message = if order[..index].contains(&name.as_str()) {
+        format!("{archive} entry '{}' appears twice", shown(name.as_bytes()))
+    } else if order[index..].contains(&name.as_str()) {
+        format!(
+            "{archive} entry '{}' is out of order: entry {} must be '{expected}'",
+            shown(name.as_bytes()),
+            index + 1
+        )
+    } else {
+        format!(
+            "{archive} entry '{}' is not allowed: entry {} must be '{expected}'",
+            shown(name.as_bytes()),
+            index + 1
+        )
+    };
+    Err(Error::new(ErrorKind::Malformed, message))
 }
 
 #[cfg(test)]

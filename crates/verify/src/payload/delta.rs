@@ -15,24 +15,27 @@
 //! the model's size; the frame is decoded whole into the chunk's buffer, so the decoder keeps
 //! no window of its own.
 //!
-//! This is the store-independent core: it takes the base files as open readers and writes into
-//! a directory the caller owns. The device's update (`update/`) decides which delta to fetch,
-//! where the base files come from, and hands the result to the same install path as a full
-//! bundle.
+//! This is the store-independent core: it takes the base files as open readers and writes
+//! through an open directory handle (files created new, never through a link). The device's
+//! update (`update/`) decides which delta to fetch and checks it into a [`VerifiedDelta`]; the
+//! store (`store/`) opens the base files in the current release and rebuilds into its staging
+//! directory, within the same install as a full bundle's payload.
 
-use std::fs::{File, OpenOptions};
+use std::fs::File;
 use std::io::{self, BufReader, Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 
 use zstd::zstd_safe::{DCtx, DParameter};
 
 use crate::check::bundle::Verifier;
+use crate::check::policy::CompatibilityPolicy;
+use crate::dir::Dir;
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::delta::{CHUNK_BYTES, RECORD_BYTES, WINDOW_LOG};
 use crate::format::delta::PATCHES;
-use crate::format::delta_file::Header;
+use crate::format::delta::{CHUNK_BYTES, RECORD_BYTES, WINDOW_LOG};
+use crate::format::delta_file::{Head, Header};
 use crate::format::digest::{Digest, Hasher, hash_reader};
-use crate::format::manifest::{FileEntry, Manifest};
+use crate::format::manifest::{FileEntry, Manifest, Role};
 use crate::format::signature::SignatureReport;
 
 pub use crate::format::delta_file::{Op, Record, base_id, read_head, read_tail};
@@ -59,17 +62,190 @@ fn refuse(kind: ErrorKind, message: String) -> Error {
     Error::new(kind, message)
 }
 
+/// A delta whose head was read and whose carried manifest passed the app's verifier (its
+/// signatures, then the app's whole policy) and matches the header; nothing of its patches
+/// was read yet. The delta's counterpart of a `VerifiedBundle`: only this crate makes one, and
+/// the store rebuilds a release only from one.
+pub(crate) struct VerifiedDelta<R> {
+    reader: BufReader<R>,
+    head: Head,
+    manifest: Manifest,
+    report: SignatureReport,
+    compatibility: Option<CompatibilityPolicy>,
+}
+
+impl<R: Read> VerifiedDelta<R> {
+    /// Reads the delta's head from `delta` and checks the carried manifest with `verifier` as
+    /// a full bundle's is checked, then the header against it (same release, a base that is
+    /// not the release itself).
+    pub(crate) fn read(verifier: &Verifier, delta: R) -> Result<VerifiedDelta<R>> {
+        Self::read_with(
+            delta,
+            |manifest, signatures| verifier.check_carried(manifest, signatures),
+            verifier.compatibility_policy().cloned(),
+        )
+    }
+
+    /// [`VerifiedDelta::read`] with `carried` checking the carried manifest and signatures,
+    /// and the app's policy (if any) for the checks after rebuilding.
+    fn read_with(
+        delta: R,
+        carried: impl FnOnce(&[u8], &[u8]) -> Result<(Manifest, SignatureReport)>,
+        compatibility: Option<CompatibilityPolicy>,
+    ) -> Result<VerifiedDelta<R>> {
+        let mut reader = BufReader::with_capacity(64 * 1024, delta);
+        let head = read_head(&mut reader)?;
+        let (manifest, report) = carried(&head.manifest, &head.signatures)?;
+        check_header(&head.header, &manifest)?;
+        Ok(VerifiedDelta {
+            reader,
+            head,
+            manifest,
+            report,
+            compatibility,
+        })
+    }
+
+    /// The carried manifest, verified.
+    pub(crate) fn manifest(&self) -> &Manifest {
+        &self.manifest
+    }
+
+    /// The carried manifest's exact signed bytes.
+    pub(crate) fn manifest_bytes(&self) -> &[u8] {
+        &self.head.manifest
+    }
+
+    /// The carried signatures document's exact bytes.
+    pub(crate) fn signatures(&self) -> &[u8] {
+        &self.head.signatures
+    }
+
+    /// The base's files as the header lists them, in the base manifest's order.
+    pub(crate) fn base_files(&self) -> &[FileEntry] {
+        &self.head.header.base
+    }
+
+    /// The one digest naming the base (FORMAT.md "Deltas").
+    pub(crate) fn base(&self) -> Digest {
+        self.head.header.base_id()
+    }
+
+    /// Rebuilds the release's files into `dir` (an open directory where none of them exists
+    /// yet) from the base files `base` (in header order), checks each against the manifest as
+    /// soon as it is complete, reads the delta to its exact end, and makes the checks a full
+    /// bundle's files get after unpacking (required labels, the model read again). Returns the
+    /// labels. On failure, files already created stay in `dir` for the caller to remove with
+    /// it (the store's staging directory) or by name ([`apply`]).
+    pub(crate) fn rebuild_into<B: Read + Seek>(
+        &mut self,
+        base: &mut [B],
+        dir: &Dir,
+        created: &mut Vec<String>,
+    ) -> Result<Vec<String>> {
+        let header = &self.head.header;
+        let manifest = &self.manifest;
+        check_base(header, base)?;
+        let mut patches = Read::take(&mut self.reader, self.head.patches_len);
+        let mut buffers = Buffers::new(header);
+        let mut labels = Vec::new();
+        let mut current: Option<(usize, Target<'_>)> = None;
+        for index in 0..header.records {
+            let mut bytes = [0u8; RECORD_BYTES];
+            read_patches(&mut patches, &mut bytes, index)?;
+            let record = Record::parse(&bytes, index, header)?;
+            let file = usize::from(record.file);
+            // Move on to the record's file, finishing every file before it (an empty file
+            // has no records).
+            let next = current.as_ref().map_or(0, |(i, _)| *i);
+            if file < next || file >= manifest.files.len() {
+                return Err(refuse(
+                    ErrorKind::Malformed,
+                    format!("delta record {index} names file {file} out of order"),
+                ));
+            }
+            while current.as_ref().is_none_or(|(i, _)| *i < file) {
+                let start = match current.take() {
+                    Some((i, target)) => {
+                        target.finish()?;
+                        i + 1
+                    }
+                    None => 0,
+                };
+                let target = create(dir, &manifest.files[start], created)?;
+                current = Some((start, target));
+            }
+            let (_, target) = current
+                .as_mut()
+                .expect("the record's file was just opened");
+            if target.hasher.len() + u64::from(record.len) > target.entry.size {
+                return Err(refuse(
+                    ErrorKind::Digest,
+                    format!(
+                        "delta rebuilds more than the {} bytes the manifest declares for {}",
+                        target.entry.size, target.entry.path
+                    ),
+                ));
+            }
+            let chunk = buffers.rebuild(
+                &record,
+                index,
+                &mut base[usize::from(record.base)],
+                header,
+                &mut patches,
+            )?;
+            target.hasher.update(chunk);
+            if target.entry.role == Role::Labels {
+                // Bounded by the manifest's cap on labels.txt, checked above per record.
+                labels.extend_from_slice(chunk);
+            }
+            target
+                .file
+                .write_all(chunk)
+                .map_err(|e| Error::io(format!("cannot write {}", target.entry.path), e))?;
+        }
+        let mut next = 0;
+        if let Some((i, target)) = current.take() {
+            target.finish()?;
+            next = i + 1;
+        }
+        for entry in &manifest.files[next..] {
+            create(dir, entry, created)?.finish()?;
+        }
+        if patches.limit() != 0 {
+            return Err(refuse(
+                ErrorKind::Malformed,
+                format!(
+                    "delta's {PATCHES} holds {} bytes after its {} records",
+                    patches.limit(),
+                    header.records
+                ),
+            ));
+        }
+        read_tail(&mut self.reader, self.head.patches_len)?;
+        let labels = manifest.parse_labels(&labels)?;
+        crate::payload::unpack::check_unpacked(
+            manifest,
+            self.compatibility.as_ref(),
+            &labels,
+            dir,
+        )?;
+        Ok(labels)
+    }
+}
+
 /// Removes the files an apply created unless it finished.
-struct Written {
-    paths: Vec<PathBuf>,
+struct Written<'d> {
+    dir: &'d Dir,
+    names: Vec<String>,
     keep: bool,
 }
 
-impl Drop for Written {
+impl Drop for Written<'_> {
     fn drop(&mut self) {
         if !self.keep {
-            for path in &self.paths {
-                let _ = std::fs::remove_file(path);
+            for name in &self.names {
+                let _ = self.dir.remove(name);
             }
         }
     }
@@ -116,7 +292,9 @@ impl Target<'_> {
 /// Applies the delta read from `delta` to the base release's files `base` (open readers, in
 /// the order of the base manifest, so the order the delta's header lists them), writing the
 /// rebuilt files into the existing directory `dir` under their manifest names (which must not
-/// exist there). `verifier` checks the carried manifest as it checks a full bundle's.
+/// exist there). `verifier` checks the carried manifest as it checks a full bundle's, and the
+/// rebuilt files get the checks a full bundle's unpacked files get (required labels, the model
+/// read again).
 ///
 /// On any failure, nothing this call wrote is left in `dir`.
 pub fn apply<R: Read, B: Read + Seek>(
@@ -125,89 +303,51 @@ pub fn apply<R: Read, B: Read + Seek>(
     base: &mut [B],
     dir: &Path,
 ) -> Result<Rebuilt> {
-    let mut delta = BufReader::with_capacity(64 * 1024, delta);
-    let head = read_head(&mut delta)?;
-    let (manifest, report) = verifier.check_carried(&head.manifest, &head.signatures)?;
-    let header = &head.header;
-    check_header(header, &manifest)?;
-    check_base(header, base)?;
+    rebuild(VerifiedDelta::read(verifier, delta)?, base, dir)
+}
 
+/// [`apply`] without the carried manifest's signature and policy checks (the report lists no
+/// signer), for the release side's audit (`ampoule ledger check`): it has compared the carried
+/// manifest and signatures with the published bundle's byte for byte, and asks only whether
+/// the patches rebuild the files that manifest declares. Every other check of [`apply`] is
+/// made. A device never calls this: what it installs must pass [`apply`].
+#[cfg(feature = "release")]
+pub fn dangerous_rebuild_for_audit<R: Read, B: Read + Seek>(
+    delta: R,
+    base: &mut [B],
+    dir: &Path,
+) -> Result<Rebuilt> {
+    let delta = VerifiedDelta::read_with(
+        delta,
+        |manifest, _| Ok((Manifest::from_json(manifest)?, SignatureReport::default())),
+        None,
+    )?;
+    rebuild(delta, base, dir)
+}
+
+/// Rebuilds a checked delta's files into the directory `dir`, removing them on failure.
+fn rebuild<R: Read, B: Read + Seek>(
+    mut delta: VerifiedDelta<R>,
+    base: &mut [B],
+    dir: &Path,
+) -> Result<Rebuilt> {
+    let out = Dir::open_root(dir, false)
+        .map_err(|e| Error::io(format!("cannot open {}", dir.display()), e))?;
     let mut written = Written {
-        paths: Vec::new(),
+        dir: &out,
+        names: Vec::new(),
         keep: false,
     };
-    let mut patches = Read::take(&mut delta, head.patches_len);
-    let mut buffers = Buffers::new(header);
-    let mut current: Option<(usize, Target<'_>)> = None;
-    for index in 0..header.records {
-        let mut bytes = [0u8; RECORD_BYTES];
-        read_patches(&mut patches, &mut bytes, index)?;
-        let record = Record::parse(&bytes, index, header)?;
-        let file = usize::from(record.file);
-        // Move on to the record's file, finishing every file before it (an empty file has
-        // no records).
-        let next = current.as_ref().map_or(0, |(i, _)| *i);
-        if file < next || file >= manifest.files.len() {
-            return Err(refuse(
-                ErrorKind::Malformed,
-                format!("delta record {index} names file {file} out of order"),
-            ));
-        }
-        while current.as_ref().is_none_or(|(i, _)| *i < file) {
-            let start = match current.take() {
-                Some((i, target)) => {
-                    target.finish()?;
-                    i + 1
-                }
-                None => 0,
-            };
-            let target = create(dir, &manifest.files[start], &mut written)?;
-            current = Some((start, target));
-        }
-        let (_, target) = current.as_mut().expect("the record's file was just opened");
-        if target.hasher.len() + u64::from(record.len) > target.entry.size {
-            return Err(refuse(
-                ErrorKind::Digest,
-                format!(
-                    "delta rebuilds more than the {} bytes the manifest declares for {}",
-                    target.entry.size, target.entry.path
-                ),
-            ));
-        }
-        let chunk = buffers.rebuild(&record, index, &mut base[usize::from(record.base)], header, &mut patches)?;
-        target.hasher.update(chunk);
-        target
-            .file
-            .write_all(chunk)
-            .map_err(|e| Error::io(format!("cannot write {}", target.entry.path), e))?;
-    }
-    let mut next = 0;
-    if let Some((i, target)) = current.take() {
-        target.finish()?;
-        next = i + 1;
-    }
-    for entry in &manifest.files[next..] {
-        create(dir, entry, &mut written)?.finish()?;
-    }
-    if patches.limit() != 0 {
-        return Err(refuse(
-            ErrorKind::Malformed,
-            format!(
-                "delta's {PATCHES} holds {} bytes after its {} records",
-                patches.limit(),
-                header.records
-            ),
-        ));
-    }
-    read_tail(&mut delta, head.patches_len)?;
+    delta.rebuild_into(base, &out, &mut written.names)?;
     written.keep = true;
+    let files = written.names.iter().map(|n| dir.join(n)).collect();
     Ok(Rebuilt {
-        base: header.base_id(),
-        files: written.paths.clone(),
-        manifest,
-        manifest_bytes: head.manifest,
-        signatures: head.signatures,
-        report,
+        base: delta.base(),
+        files,
+        manifest: delta.manifest,
+        manifest_bytes: delta.head.manifest,
+        signatures: delta.head.signatures,
+        report: delta.report,
     })
 }
 
@@ -276,15 +416,13 @@ fn check_base<B: Read + Seek>(header: &Header, base: &mut [B]) -> Result<()> {
     Ok(())
 }
 
-/// Opens a rebuilt file, which must not exist yet, and records it for clean-up.
-fn create<'m>(dir: &Path, entry: &'m FileEntry, written: &mut Written) -> Result<Target<'m>> {
-    let path = dir.join(&entry.path);
-    let file = OpenOptions::new()
-        .write(true)
-        .create_new(true)
-        .open(&path)
-        .map_err(|e| Error::io(format!("cannot create {}", path.display()), e))?;
-    written.paths.push(path);
+/// Creates a rebuilt file in `dir` (it must not exist: nothing is written through a link
+/// planted at its name) and records its name for clean-up.
+fn create<'m>(dir: &Dir, entry: &'m FileEntry, created: &mut Vec<String>) -> Result<Target<'m>> {
+    let file = dir
+        .create_new(&entry.path)
+        .map_err(|e| Error::io(format!("cannot create {}", dir.join(&entry.path).display()), e))?;
+    created.push(entry.path.clone());
     Ok(Target {
         entry,
         file,

@@ -41,7 +41,8 @@ impl Unverified {
         })
     }
 
-    /// Checks the payload's size and SHA-256 against the manifest.
+    /// Checks every byte of the payload against the manifest without decoding it: its size,
+    /// and its SHA-256 (format 1) or its chunk list and every chunk's SHA-256 (format 2).
     pub fn check_payload(&mut self) -> Result<()> {
         check_payload(&mut self.file, &self.layout, &self.manifest, None)
     }
@@ -56,6 +57,7 @@ impl Unverified {
                 file: &self.file,
                 payload_offset: self.layout.payload_offset,
                 manifest: &self.manifest,
+                chunks: self.layout.chunks.as_deref(),
                 progress: None,
             },
             None,
@@ -73,6 +75,7 @@ impl Unverified {
                 file: &self.file,
                 payload_offset: self.layout.payload_offset,
                 manifest: &self.manifest,
+                chunks: self.layout.chunks.as_deref(),
                 progress: None,
             },
             dest,

@@ -1,33 +1,48 @@
 //! Decompressing a verified payload: a bounded zstd decoder on one thread, the inner tar's
 //! checks and the per-file SHA-256 on another, the writes on a third, and the staging
-//! directory that turns into the destination only when everything matched.
+//! directory that turns into the destination only when everything matched. In format 2 a
+//! fourth thread reads each chunk and checks its SHA-256 against the signed chunk list just
+//! before the decoder gets it ([`crate::format::chunks`]), so checking and decoding overlap
+//! and the payload is read once; each chunk's frame is decoded whole into a buffer of its
+//! size. In format 1 the decoder reads one zstd stream whose digest was checked whole before.
 //!
-//! Memory is bounded by the zstd window cap and a few fixed buffers, never by the model size.
+//! Memory is bounded by the chunk size (format 2) or the zstd window cap (format 1) and a few
+//! fixed buffers, never by the model size.
 //! Decoded chunks are shared with the writing thread, not copied: the hash and the write of
 //! the same bytes run side by side.
 
 use std::ffi::OsString;
 use std::fs::File;
-use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::io::{self, BufRead, Read, Seek, SeekFrom, Write};
 use std::ops::Deref;
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
+use std::sync::{Arc, Mutex};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 
 use crate::format::digest::Hasher;
 use crate::dir::{Dir, Refused};
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::chunks::{Plan, spawn_checker};
 use crate::format::limit;
 use crate::format::manifest::Manifest;
 use crate::readahead::ReadAhead;
 use crate::format::tar;
 use crate::check::bundle::VerifiedBundle;
+use crate::check::policy::CompatibilityPolicy;
 use crate::progress::{Progress, ProgressFn, Stage};
+use zstd::zstd_safe::DCtx;
 
 const ARCHIVE: &str = "payload";
 const CHUNK: usize = 256 * 1024;
 const CHUNKS_IN_FLIGHT: usize = 4;
+/// Format 2's decoded chunks are whole chunks of the inner tar (512 KiB as pack writes them,
+/// up to 4 MiB), not [`CHUNK`]s: fewer of them wait in each queue, so memory stays at a few
+/// chunks.
+const WHOLE_CHUNKS_IN_FLIGHT: usize = 2;
+/// Where a decoding thread sends its decoded chunks, or the error that stopped it.
+type Decoded = SyncSender<Result<Vec<u8>>>;
+
 /// How much of a file is written between flushes to disk while it streams.
 const EARLY_SYNC_BYTES: usize = 16 * 1024 * 1024;
 
@@ -54,9 +69,11 @@ fn recycle(chunk: Arc<Vec<u8>>, spent: &Sender<Vec<u8>>) {
     }
 }
 
-/// Reads the decoder thread's chunks as one stream, handing spent buffers back for reuse.
+/// Reads the decoder threads' chunks as one stream, chunk `i` from decoder `i` mod their
+/// number, handing spent buffers back for reuse.
 struct ChunkReader {
-    chunks: Receiver<Result<Vec<u8>>>,
+    chunks: Vec<Receiver<Result<Vec<u8>>>>,
+    next: usize,
     spent: Sender<Vec<u8>>,
     current: Arc<Vec<u8>>,
     pos: usize,
@@ -67,7 +84,9 @@ impl ChunkReader {
     /// Makes sure unread bytes are at hand; false at the end of the stream.
     fn fill(&mut self) -> io::Result<bool> {
         while self.pos == self.current.len() {
-            match self.chunks.recv() {
+            let decoder = &self.chunks[self.next % self.chunks.len()];
+            self.next += 1;
+            match decoder.recv() {
                 Ok(Ok(chunk)) => {
                     let spent = std::mem::replace(&mut self.current, Arc::new(chunk));
                     recycle(spent, &self.spent);
@@ -171,75 +190,176 @@ fn decode_error(e: &io::Error) -> Error {
     }
 }
 
+/// Format 2 decodes chunks on this many threads at once, each taking every second chunk:
+/// frames are independent, so on two cores decoding no longer waits for one.
+const DECODERS: usize = 2;
+
 /// Runs on its own thread: decodes exactly the payload bytes, sends the output in chunks, and
-/// stops with an error once the output passes `tar_len`.
+/// stops with an error once the output passes `tar_len`. With a chunk plan (format 2) each
+/// chunk of the payload is checked against its signed digest, on a thread of its own, before
+/// a decoder sees it, and [`DECODERS`] threads decode the chunks, chunk `i` sent out on
+/// `outs[i % DECODERS]`; without one (format 1) the payload's whole digest was checked before,
+/// and one stream goes out on `outs[0]`.
 fn decode(
     mut file: File,
-    offset: u64,
-    size: u64,
-    tar_len: u64,
-    out: SyncSender<Result<Vec<u8>>>,
+    (offset, size, tar_len): (u64, u64, u64),
+    plan: Option<Plan>,
+    outs: Vec<Decoded>,
     spent: Receiver<Vec<u8>>,
 ) {
+    let spent = Mutex::new(spent);
     let result = std::thread::scope(|scope| -> Result<()> {
         file.seek(SeekFrom::Start(offset))
             .map_err(|e| Error::io("cannot read the payload", e))?;
-        // The compressed bytes are read on yet another thread, so this one only decodes.
-        let input = ReadAhead::spawn(scope, file.take(size));
-        let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
-            .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
-        decoder
-            .window_log_max(limit::WINDOW_LOG)
-            .map_err(|e| Error::io("cannot set the zstd window limit", e))?;
-        let mut limited = decoder.take(tar_len + 1);
-        let mut total = 0u64;
-        loop {
-            let mut buf = spent.try_recv().unwrap_or_default();
-            buf.resize(CHUNK, 0);
-            let mut filled = 0;
-            while filled < buf.len() {
-                match limited.read(&mut buf[filled..]) {
-                    Ok(0) => break,
-                    Ok(n) => filled += n,
-                    Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
-                    Err(e) => return Err(decode_error(&e)),
+        // The compressed bytes are read (and checked) on yet another thread, so these only
+        // decode.
+        let Some(plan) = &plan else {
+            let spent = spent.lock().unwrap_or_else(|e| e.into_inner());
+            let input = ReadAhead::spawn(scope, file.take(size));
+            return decode_stream(input, tar_len, (&outs[0], &spent));
+        };
+        let (inputs, checked): (Vec<_>, Vec<_>) = (0..outs.len()).map(|_| sync_channel(1)).unzip();
+        let returned = spawn_checker(scope, file, plan, inputs);
+        let spent = &spent;
+        for (first, (input, out)) in checked.into_iter().zip(&outs).enumerate() {
+            let returned = returned.clone();
+            scope.spawn(move || {
+                let decoded = decode_chunks(first, (input, &returned), plan, (out, spent));
+                if let Err(e) = decoded {
+                    let _ = out.send(Err(e));
                 }
-            }
-            total += filled as u64;
-            if total > tar_len {
-                // The declared bytes go to the reader first: what they hold (a pax header, a
-                // GNU long name, a directory entry, an extra file) is the real cause, and the
-                // reader names it before it reaches this error.
-                let excess = usize::try_from(total - tar_len).unwrap_or(usize::MAX);
-                buf.truncate(filled.saturating_sub(excess));
-                if !buf.is_empty() && out.send(Ok(buf)).is_err() {
-                    return Ok(());
-                }
-                return Err(Error::new(
-                    ErrorKind::TooLarge,
-                    format!(
-                        "payload decompresses to more than the {tar_len} bytes its manifest declares"
-                    ),
-                ));
-            }
-            if filled == 0 {
-                return Ok(());
-            }
-            buf.truncate(filled);
-            if out.send(Ok(buf)).is_err() {
-                // The reader stopped early because it found an error of its own.
-                return Ok(());
-            }
+            });
         }
+        Ok(())
     });
     if let Err(e) = result {
-        let _ = out.send(Err(e));
+        let _ = outs[0].send(Err(e));
     }
 }
 
-/// Where the files go: nowhere (check only) or a staging directory.
+/// Format 2, on one of the [`DECODERS`] threads: decodes chunks `first`, `first + DECODERS`,
+/// ... as they arrive checked, each one zstd frame decoded whole into a buffer of the size the
+/// chunk must decode to, and sends them on. A chunk that is not exactly one frame, or decodes
+/// to another size, stops the payload.
+fn decode_chunks(
+    first: usize,
+    (input, returned): (Receiver<Result<Vec<u8>>>, &Sender<Vec<u8>>),
+    plan: &Plan,
+    (out, spent): (&Decoded, &Mutex<Receiver<Vec<u8>>>),
+) -> Result<()> {
+    let mut dctx = DCtx::create();
+    for (n, chunk) in input.into_iter().enumerate() {
+        let index = first + n * DECODERS;
+        let chunk = chunk?;
+        let want = plan.len_of(index);
+        let bad = |why: String| {
+            Error::new(
+                ErrorKind::Malformed,
+                format!("payload chunk {index} is not valid zstd data: {why}"),
+            )
+        };
+        let name = |code| zstd::zstd_safe::get_error_name(code).to_string();
+        let frame = zstd::zstd_safe::find_frame_compressed_size(&chunk).map_err(|c| bad(name(c)))?;
+        if frame != chunk.len() {
+            return Err(bad(format!(
+                "its first frame ends after {frame} of its {} bytes; a chunk is one frame",
+                chunk.len()
+            )));
+        }
+        // The writer always states each frame's decoded size; a frame must state its place's.
+        match zstd::zstd_safe::get_frame_content_size(&chunk) {
+            Ok(Some(n)) if n == want as u64 => {}
+            Ok(Some(n)) => {
+                return Err(bad(format!(
+                    "its frame declares {n} decoded bytes, but its place in the inner tar holds {want}"
+                )));
+            }
+            Ok(None) | Err(_) => {
+                return Err(bad("its frame does not declare its decoded size".into()));
+            }
+        }
+        let reused = spent.try_lock().ok().and_then(|spent| spent.try_recv().ok());
+        let mut buf = reused.unwrap_or_default();
+        buf.clear();
+        buf.reserve_exact(want);
+        // The buffer holds at least `want` bytes; a frame that does not decode to exactly its
+        // declared size is an error of zstd's, or a count that differs below.
+        let n = dctx.decompress(&mut buf, &chunk).map_err(|c| bad(name(c)))?;
+        if n != want {
+            return Err(bad(format!(
+                "it decodes to {n} bytes, not the {want} bytes of its place in the inner tar"
+            )));
+        }
+        let _ = returned.send(chunk);
+        if out.send(Ok(buf)).is_err() {
+            // The reader stopped early because it found an error of its own.
+            return Ok(());
+        }
+    }
+    Ok(())
+}
+
+fn decompresses_past(tar_len: u64) -> Error {
+    Error::new(
+        ErrorKind::TooLarge,
+        format!("payload decompresses to more than the {tar_len} bytes its manifest declares"),
+    )
+}
+
+/// Format 1: decodes the payload as one zstd stream (its digest was checked whole before),
+/// sending the output in chunks, until it passes `tar_len`.
+fn decode_stream<R: BufRead>(
+    input: R,
+    tar_len: u64,
+    (out, spent): (&Decoded, &Receiver<Vec<u8>>),
+) -> Result<()> {
+    let mut decoder = zstd::stream::read::Decoder::with_buffer(input)
+        .map_err(|e| Error::io("cannot start the zstd decoder", e))?;
+    decoder
+        .window_log_max(limit::WINDOW_LOG)
+        .map_err(|e| Error::io("cannot set the zstd window limit", e))?;
+    let mut limited = decoder.take(tar_len + 1);
+    let mut total = 0u64;
+    loop {
+        let mut buf = spent.try_recv().unwrap_or_default();
+        buf.resize(CHUNK, 0);
+        let mut filled = 0;
+        while filled < buf.len() {
+            match limited.read(&mut buf[filled..]) {
+                Ok(0) => break,
+                Ok(n) => filled += n,
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
+                Err(e) => return Err(decode_error(&e)),
+            }
+        }
+        total += filled as u64;
+        if total > tar_len {
+            // The declared bytes go to the reader first: what they hold (a pax header, a
+            // GNU long name, a directory entry, an extra file) is the real cause, and the
+            // reader names it before it reaches this error.
+            let excess = usize::try_from(total - tar_len).unwrap_or(usize::MAX);
+            buf.truncate(filled.saturating_sub(excess));
+            if !buf.is_empty() && out.send(Ok(buf)).is_err() {
+                return Ok(());
+            }
+            return Err(decompresses_past(tar_len));
+        }
+        if filled == 0 {
+            return Ok(());
+        }
+        buf.truncate(filled);
+        if out.send(Ok(buf)).is_err() {
+            // The reader stopped early because it found an error of its own.
+            return Ok(());
+        }
+    }
+}
+
+/// Where the files go: nowhere (check only) or a staging directory, and how many decoded
+/// pieces may wait for the writing thread.
 struct Sink<'a> {
     dir: Option<&'a Dir>,
+    depth: usize,
 }
 
 impl Sink<'_> {
@@ -252,12 +372,14 @@ impl Sink<'_> {
     }
 }
 
-/// A payload to decompress: the open bundle file, where the payload starts, and the manifest
-/// that declares its size and digests (already checked against the payload's digest).
+/// A payload to decompress: the open bundle file, where the payload starts, the manifest
+/// that declares its size and digests, and, in format 2, the chunk plan each chunk is checked
+/// against as it is read (in format 1 the whole payload's digest was checked already).
 pub(crate) struct Source<'a> {
     pub file: &'a File,
     pub payload_offset: u64,
     pub manifest: &'a Manifest,
+    pub chunks: Option<&'a [u8]>,
     pub progress: Option<&'a ProgressFn>,
 }
 
@@ -273,15 +395,25 @@ pub(crate) fn stream(source: &Source<'_>, dir: Option<&Dir>) -> Result<Vec<Strin
         .try_clone()
         .map_err(|e| Error::io("cannot read the payload", e))?;
     let (offset, size) = (source.payload_offset, manifest.payload.size);
-    let (chunk_tx, chunk_rx) = sync_channel(CHUNKS_IN_FLIGHT);
+    let plan = match source.chunks {
+        Some(list) => Some(Plan::new(list, manifest)?),
+        None => None,
+    };
+    let depth = match plan {
+        Some(_) => WHOLE_CHUNKS_IN_FLIGHT,
+        None => CHUNKS_IN_FLIGHT,
+    };
+    let decoders = if plan.is_some() { DECODERS } else { 1 };
+    let (chunk_txs, chunk_rxs): (Vec<_>, Vec<_>) = (0..decoders).map(|_| sync_channel(depth)).unzip();
     let (spent_tx, spent_rx) = channel();
-    let sink = Sink { dir };
+    let sink = Sink { dir, depth };
     let progress = source.progress.cloned();
     let done = AtomicU64::new(0);
     std::thread::scope(|scope| {
-        scope.spawn(move || decode(file, offset, size, tar_len, chunk_tx, spent_rx));
+        scope.spawn(move || decode(file, (offset, size, tar_len), plan, chunk_txs, spent_rx));
         let mut reader = ChunkReader {
-            chunks: chunk_rx,
+            chunks: chunk_rxs,
+            next: 0,
             spent: spent_tx,
             current: Arc::new(Vec::new()),
             pos: 0,
@@ -330,7 +462,7 @@ fn read_payload(
         let cannot_write = |e| Error::io(format!("cannot write {}", declared.path), e);
         let (found, out) = std::thread::scope(|scope| -> Result<_> {
             let mut writer = out.map(|file| {
-                let (pieces, queued) = sync_channel(CHUNKS_IN_FLIGHT);
+                let (pieces, queued) = sync_channel(sink.depth);
                 let spent = reader.spent.clone();
                 (
                     pieces,
@@ -532,6 +664,62 @@ pub(crate) fn unpack_to(
     Ok(labels)
 }
 
+
+/// The checks a release's files get once they are all written and each matched the manifest,
+/// whether they were unpacked from a bundle or rebuilt from a delta: the labels the app
+/// requires, and the model's signature read again.
+pub(crate) fn check_unpacked(
+    manifest: &Manifest,
+    compatibility: Option<&CompatibilityPolicy>,
+    labels: &[String],
+    dir: &Dir,
+) -> Result<()> {
+    if let Some(policy) = compatibility {
+        policy.check_required_labels(labels)?;
+    }
+    check_model_signature(manifest, dir)
+}
+
+/// Reads the unpacked model's signature again, under the reading rules and with the
+/// classifier the signed manifest names, and requires it to be the record the manifest
+/// holds, so a manifest cannot describe a different model than it ships, and a bundle packed
+/// under older rules still installs.
+fn check_model_signature(manifest: &Manifest, dir: &Dir) -> Result<()> {
+    let Some(recorded) = &manifest.model else {
+        // Packed as opaque: the manifest makes no claim about the model's structure.
+        return Ok(());
+    };
+    let model = manifest.model();
+    let shown = dir.join(&model.path);
+    let file = dir.open_file(&model.path).map_err(|e| {
+        Error::io(
+            format!("cannot open {}", shown.display()),
+            e.into_io(),
+        )
+    })?;
+    let len = file
+        .metadata()
+        .map_err(|e| Error::io(format!("cannot read {}", shown.display()), e))?
+        .len();
+    let found = crate::format::model::read_as(
+        &model.path,
+        file,
+        len,
+        recorded.rules,
+        recorded.classifier.as_ref(),
+    )?;
+    if found.as_ref() != Some(recorded) {
+        return Err(Error::new(
+            ErrorKind::Manifest,
+            format!(
+                "{} does not have the model signature its manifest records; the bundle was packed wrongly",
+                model.path
+            ),
+        ));
+    }
+    Ok(())
+}
+
 /// Decompression of a verified bundle: the payload layer's part of [`VerifiedBundle`], which
 /// the checks below it only ever hand on.
 impl VerifiedBundle {
@@ -554,8 +742,7 @@ impl VerifiedBundle {
 
     /// The checks that need the unpacked files: required labels, and the model's signature.
     fn last_checks(&self, labels: &[String], staged: &Dir) -> Result<()> {
-        self.check_labels(labels)?;
-        self.check_model_signature(staged)
+        check_unpacked(&self.manifest, self.compatibility.as_ref(), labels, staged)
     }
 
     fn check_labels(&self, labels: &[String]) -> Result<()> {
@@ -565,51 +752,12 @@ impl VerifiedBundle {
         }
     }
 
-    /// Reads the unpacked model's signature again, under the reading rules and with the
-    /// classifier the signed manifest names, and requires it to be the record the manifest
-    /// holds, so a manifest cannot describe a different model than it ships, and a bundle packed
-    /// under older rules still installs.
-    fn check_model_signature(&self, dir: &Dir) -> Result<()> {
-        let Some(recorded) = &self.manifest.model else {
-            // Packed as opaque: the manifest makes no claim about the model's structure.
-            return Ok(());
-        };
-        let model = self.manifest.model();
-        let shown = dir.join(&model.path);
-        let file = dir.open_file(&model.path).map_err(|e| {
-            Error::io(
-                format!("cannot open {}", shown.display()),
-                e.into_io(),
-            )
-        })?;
-        let len = file
-            .metadata()
-            .map_err(|e| Error::io(format!("cannot read {}", shown.display()), e))?
-            .len();
-        let found = crate::format::model::read_as(
-            &model.path,
-            file,
-            len,
-            recorded.rules,
-            recorded.classifier.as_ref(),
-        )?;
-        if found.as_ref() != Some(recorded) {
-            return Err(Error::new(
-                ErrorKind::Manifest,
-                format!(
-                    "{} does not have the model signature its manifest records; the bundle was packed wrongly",
-                    model.path
-                ),
-            ));
-        }
-        Ok(())
-    }
-
     fn source(&self) -> crate::payload::unpack::Source<'_> {
         crate::payload::unpack::Source {
             file: &self.file,
             payload_offset: self.layout.payload_offset,
             manifest: &self.manifest,
+            chunks: self.layout.chunks.as_deref(),
             progress: self.progress.as_ref(),
         }
     }

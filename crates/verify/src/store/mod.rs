@@ -32,7 +32,8 @@
 //! Under the lock: remove leftovers of crashed runs; check the bundle against the store (its
 //! signatures again under the store's keys, the model line, a version newer than any accepted,
 //! a feed sequence not lower than the channel's); unpack into a staging directory with every
-//! file fsynced; write the manifest and signatures beside them; fsync the staging directory;
+//! file fsynced (or, for a delta, rebuild the files there from the current release's, which the
+//! delta hashes again first: [`Incoming`]); write the manifest and signatures beside them; fsync the staging directory;
 //! rename it into `releases/`; fsync `releases/`; then commit `state.json` as above. Until the
 //! rename of `state.json` the old model stays current; after it, the new one is. The numbered
 //! points of this sequence are [`Step`]s; tests crash a child process at each one.
@@ -103,6 +104,7 @@ use crate::format::merkle::TreeHead;
 use crate::format::time::Timestamp;
 use crate::check::trust::{TrustSet, TrustSetFile};
 use crate::dir::{Dir, Found, Refused};
+use crate::payload::delta::VerifiedDelta;
 use crate::payload::unpack::{Staging, sync_dir};
 use crate::check::bundle::{VerifiedBundle, Verifier};
 
@@ -477,6 +479,37 @@ pub(crate) struct Documents {
     heads: Signers<kind::TreeHead>,
 }
 
+/// What an install writes into its staging directory: a verified bundle's payload, or the
+/// files a verified delta rebuilds from the current release's (issue 13). Everything else an
+/// install does (the store's own checks, staging, the swap, the state) is the same for both.
+pub(crate) enum Incoming {
+    Bundle(VerifiedBundle),
+    Delta(VerifiedDelta<File>),
+}
+
+impl Incoming {
+    fn manifest(&self) -> &Manifest {
+        match self {
+            Incoming::Bundle(b) => b.manifest(),
+            Incoming::Delta(d) => d.manifest(),
+        }
+    }
+
+    fn manifest_bytes(&self) -> &[u8] {
+        match self {
+            Incoming::Bundle(b) => &b.layout().manifest,
+            Incoming::Delta(d) => d.manifest_bytes(),
+        }
+    }
+
+    fn signatures(&self) -> &[u8] {
+        match self {
+            Incoming::Bundle(b) => &b.layout().signatures,
+            Incoming::Delta(d) => d.signatures(),
+        }
+    }
+}
+
 /// Holds the updaters' lock until dropped (closing the file releases it, also when the
 /// process dies).
 struct UpdateLock {
@@ -703,7 +736,7 @@ impl Store {
     /// Installs a verified bundle that came without a verified feed: only the version floor
     /// and the model line protect the device (see [`crate::dangerous::install_without_feed`]).
     pub(crate) fn install_without_feed(&self, bundle: VerifiedBundle) -> Result<Installed> {
-        self.install_inner(bundle, None, None, None, &mut |_| Ok(()))
+        self.install_inner(Incoming::Bundle(bundle), None, None, None, &mut |_| Ok(()))
     }
 
     /// Installs a bundle that an update check found through `feed`, as [`Store::install`]
@@ -715,7 +748,23 @@ impl Store {
         bundle: VerifiedBundle,
         feed: &VerifiedFeed,
     ) -> Result<Installed> {
-        let m = bundle.manifest();
+        self.install_incoming(Incoming::Bundle(bundle), feed)
+    }
+
+    /// Installs the release a verified delta rebuilds from the current release's files, as
+    /// [`Store::install_from_feed`] installs a bundle: the same checks, staging, swap and
+    /// state; only the files come from the delta and the current release instead of a
+    /// payload (see [`Incoming`]).
+    pub(crate) fn install_delta_from_feed(
+        &self,
+        delta: VerifiedDelta<File>,
+        feed: &VerifiedFeed,
+    ) -> Result<Installed> {
+        self.install_incoming(Incoming::Delta(delta), feed)
+    }
+
+    fn install_incoming(&self, incoming: Incoming, feed: &VerifiedFeed) -> Result<Installed> {
+        let m = incoming.manifest();
         match feed.release() {
             Some(r) if r.name == m.name && r.version == m.version => {}
             offered => {
@@ -738,7 +787,7 @@ impl Store {
         let (sequence, digest) = (feed.sequence(), feed.digest());
         self.keep_feed(&self.root()?, feed)?;
         self.install_inner(
-            bundle,
+            incoming,
             Some(channel),
             Some(sequence),
             Some(digest),
@@ -805,12 +854,12 @@ impl Store {
         feed_sequence: Option<u64>,
         hook: StepHook<'_>,
     ) -> Result<Installed> {
-        self.install_inner(bundle, channel, feed_sequence, None, hook)
+        self.install_inner(Incoming::Bundle(bundle), channel, feed_sequence, None, hook)
     }
 
     fn install_inner(
         &self,
-        bundle: VerifiedBundle,
+        mut incoming: Incoming,
         channel: Option<&str>,
         feed_sequence: Option<u64>,
         feed_sha256: Option<Digest>,
@@ -822,13 +871,9 @@ impl Store {
         self.sweep(&root, &state)?;
         let (manifest, report) = self
             .verifier
-            .check_stored(
-                "bundle",
-                &bundle.layout().manifest,
-                &bundle.layout().signatures,
-            )
+            .check_stored("bundle", incoming.manifest_bytes(), incoming.signatures())
             .map_err(|e| e.context("the store's verifier refuses the bundle"))?;
-        let manifest_sha256 = Digest::of(&bundle.layout().manifest);
+        let manifest_sha256 = Digest::of(incoming.manifest_bytes());
         let next = self.next_state(
             &state,
             &manifest,
@@ -857,10 +902,18 @@ impl Store {
         // The staging directory later becomes the renamed release.
         let mut staging = Staging::create_in(&releases, STAGING_PREFIX)?;
         step(hook, Step::StagingCreated)?;
-        let labels = bundle.unpack_into_staging(&staging.dir)?;
+        let labels = match &mut incoming {
+            Incoming::Bundle(bundle) => bundle.unpack_into_staging(&staging.dir)?,
+            Incoming::Delta(delta) => {
+                let mut base = self.base_files(&releases, &state, delta.base_files())?;
+                // The staging directory is removed with whatever the delta wrote on failure.
+                let mut created = Vec::new();
+                delta.rebuild_into(&mut base, &staging.dir, &mut created)?
+            }
+        };
         step(hook, Step::FilesWritten)?;
-        write_synced(&staging.dir, entry::MANIFEST, &bundle.layout().manifest)?;
-        write_synced(&staging.dir, entry::SIGNATURES, &bundle.layout().signatures)?;
+        write_synced(&staging.dir, entry::MANIFEST, incoming.manifest_bytes())?;
+        write_synced(&staging.dir, entry::SIGNATURES, incoming.signatures())?;
         step(hook, Step::MetadataWritten)?;
         sync_dir(&staging.dir)?;
         step(hook, Step::StagingSynced)?;
@@ -880,8 +933,8 @@ impl Store {
 
         // What proves the new highest version, before the state that names it.
         let kept = serde_json::to_vec(&KeptManifest {
-            manifest: String::from_utf8_lossy(&bundle.layout().manifest).into_owned(),
-            signatures: String::from_utf8_lossy(&bundle.layout().signatures).into_owned(),
+            manifest: String::from_utf8_lossy(incoming.manifest_bytes()).into_owned(),
+            signatures: String::from_utf8_lossy(incoming.signatures()).into_owned(),
         })
         .map_err(|e| Error::new(ErrorKind::Store, format!("cannot keep the manifest: {e}")))?;
         replace_file(&root, HIGHEST_FILE, HIGHEST_TEMP_PREFIX, &kept, &mut |_| Ok(()))?;
@@ -903,6 +956,41 @@ impl Store {
             },
             replaced: state.current.map(|c| c.version),
         })
+    }
+
+    /// The current release's files a delta applies to, opened in the delta header's order
+    /// without following links (each a regular file with one link). Their sizes and digests
+    /// are checked by the delta before any patch byte is read.
+    fn base_files(
+        &self,
+        releases: &Dir,
+        state: &StoreState,
+        files: &[crate::format::manifest::FileEntry],
+    ) -> Result<Vec<File>> {
+        let Some(current) = &state.current else {
+            return Err(Error::new(
+                ErrorKind::Store,
+                "the store holds no current release for the delta to apply to; the full \
+                 bundle installs instead",
+            ));
+        };
+        let dir = releases.open_dir(&current.release).map_err(|e| {
+            Error::new(
+                ErrorKind::Store,
+                format!(
+                    "cannot open the current release {} for the delta ({})",
+                    releases.join(&current.release).display(),
+                    e.into_io()
+                ),
+            )
+        })?;
+        files
+            .iter()
+            .map(|file| {
+                open_member(&dir, &file.path)
+                    .map_err(|e| e.context(format_args!("stored release {}", current.release)))
+            })
+            .collect()
     }
 
     /// Remembers the tree head `feed`'s ledger check verified as the largest this device

@@ -7,7 +7,8 @@
 //!   downloads/
 //!     lock             held for a whole update; holds the name of the partial download
 //!                      this store started, the only one it resumes
-//!     <sha256>.ampoule.partial   a bundle being downloaded, named by its feed's SHA-256
+//!     <sha256>.ampoule.partial   a bundle being downloaded, or the delta the update chose
+//!                      instead, named by the SHA-256 the feed lists for it
 //!
 //! Every file and directory here is opened without following links and checked as
 //! `crate::dir` describes; anything planted at one of these names is removed (a link is
@@ -232,6 +233,12 @@ impl Device {
                     ) {
                         // The download checked size and SHA-256 as it streamed.
                         Ok(()) => session.downloaded_and_checked(),
+                        // A delta that cannot be had: the bundle next, in this update.
+                        Err(e) if want.delta.is_some() => {
+                            if let Err(e) = session.delta_failed(e) {
+                                return session.fail_with(e);
+                            }
+                        }
                         Err(e) => return session.fail_with(e),
                     }
                 }

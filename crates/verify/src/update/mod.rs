@@ -19,7 +19,12 @@
 //!    limit, before a byte of the bundle is fetched;
 //! 6. download into the store, check the file against the feed's size and SHA-256, verify
 //!    the bundle (signatures, policy, payload digest) and that the ledger logged its manifest;
-//! 7. install atomically, remember the feed and the tree head, and clean up.
+//!    when the feed lists a delta whose base is the digest of the installed files (which the
+//!    store checks in full first), download that delta instead and check the manifest it
+//!    carries the same way; a delta that fails anything gives way to the bundle in the same
+//!    update, and is remembered (`refusals.rs`);
+//! 7. install atomically (a delta's files rebuilt from the current release's, through the same
+//!    install), remember the feed and the tree head, and clean up.
 //!
 //! The steps run through a [`Session`], which asks the app for each document it needs
 //! ([`Next::Fetch`]) and for the bundle ([`Next::Download`]), so an app with its own HTTP

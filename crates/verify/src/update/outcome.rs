@@ -3,6 +3,7 @@
 
 use crate::check::feed::VerifiedFeed;
 use crate::error::Error;
+use crate::format::digest::Digest;
 use crate::store::Installed;
 
 /// What one update did.
@@ -86,6 +87,20 @@ pub struct Report {
     /// it: each entry names the path and what was there. Someone else writes the store
     /// directory; the update went on regardless.
     pub removed: Vec<String>,
+    /// The delta the release was installed from (its SHA-256, as the feed lists it), when the
+    /// update used one instead of the full bundle: the feed offered a delta whose base is the
+    /// installed release's files, which the store checked in full first. The installed release
+    /// is the same either way, and went through the same checks.
+    pub delta: Option<Digest>,
+    /// Why the update did not use a delta the feed offered for the installed files: the store's
+    /// check of those files failed, or the delta failed to download, to apply or to check
+    /// (it is then remembered, like a refused bundle, and not downloaded again for a day), or
+    /// it was remembered from before. The update went on with the full bundle.
+    pub delta_refused: Option<Error>,
+    /// How many bytes this update downloaded into the store (a delta, a bundle, or both after
+    /// a delta failed), not counting bytes kept from an earlier update; counted from the
+    /// downloads it completed.
+    pub downloaded: u64,
 }
 
 impl Report {
@@ -97,6 +112,9 @@ impl Report {
             rotated_to: None,
             trust_set_version: None,
             removed: Vec::new(),
+            delta: None,
+            delta_refused: None,
+            downloaded: 0,
         }
     }
 

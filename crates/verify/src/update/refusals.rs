@@ -59,7 +59,7 @@ pub(crate) fn fingerprint(app: &App, held: &Held, bundles: &Verifier) -> Digest 
     )
 }
 
-/// The kinds a remembered refusal may carry: refusals only, never a failure worth retrying.
+/// The kinds a remembered refusal may carry: refusals, and for a delta a failed transfer.
 fn kind_named(name: &str) -> Option<ErrorKind> {
     let kinds = [
         ErrorKind::Malformed,
@@ -75,13 +75,22 @@ fn kind_named(name: &str) -> Option<ErrorKind> {
         ErrorKind::Feed,
         ErrorKind::Stale,
         ErrorKind::TrustSet,
+        // Only ever remembered for a delta; a bundle is skipped only for a refusal.
+        ErrorKind::Network,
     ];
     kinds.into_iter().find(|k| format!("{k:?}") == name)
 }
 
 /// The refusal remembered for the bundle `sha256` under `app`, if one is and it is less than
 /// a day old by `now`.
-pub(crate) fn recall(dir: &Dir, sha256: &Digest, app: &Digest, now: Timestamp) -> Option<Error> {
+/// `what` names the file in the message: `bundle`, or `delta`.
+pub(crate) fn recall(
+    dir: &Dir,
+    sha256: &Digest,
+    app: &Digest,
+    now: Timestamp,
+    what: &str,
+) -> Option<Error> {
     let file: File = dir.open_file(REFUSED_FILE).ok()?;
     let mut bytes = Vec::new();
     file.take(MAX_BYTES + 1).read_to_end(&mut bytes).ok()?;
@@ -95,7 +104,7 @@ pub(crate) fn recall(dir: &Dir, sha256: &Digest, app: &Digest, now: Timestamp) -
     Some(Error::new(
         kind,
         format!(
-            "{reason} (refused {} min ago and remembered: this bundle is not downloaded again \
+            "{reason} (refused {} min ago and remembered: this {what} is not downloaded again \
              until the feed offers another one, the app or its trust changes, or {} hours pass)",
             age / 60,
             REMEMBER_SECS / 3600
@@ -106,9 +115,22 @@ pub(crate) fn recall(dir: &Dir, sha256: &Digest, app: &Digest, now: Timestamp) -
 /// Remembers that the bundle `sha256` was refused with `error` under `app`. Best effort: a
 /// failure to write only means the next update may download the bundle again.
 pub(crate) fn remember(dir: &Dir, sha256: &Digest, error: &Error, app: &Digest, now: Timestamp) {
-    if !error.kind().is_refusal() {
-        return;
+    if error.kind().is_refusal() {
+        remember_any(dir, sha256, error, app, now);
     }
+}
+
+/// Remembers the file `sha256` with `error` of any kind: for a delta (issue 13), which the
+/// update also remembers when it could not be downloaded, so that the next update goes
+/// straight to the full bundle and resumes it. Remembering a delta never costs more than the
+/// full bundle, which a device without deltas always downloads.
+pub(crate) fn remember_any(
+    dir: &Dir,
+    sha256: &Digest,
+    error: &Error,
+    app: &Digest,
+    now: Timestamp,
+) {
     let kept = Remembered {
         sha256: *sha256,
         kind: format!("{:?}", error.kind()),

@@ -15,12 +15,14 @@ use crate::check::feed::{
 use crate::check::ledger_proof::{LedgerVerifier, Walk};
 use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::delta_file::base_id;
 use crate::format::digest::{Digest, hash_reader};
-use crate::format::ledger_entry as ledger;
+use crate::format::ledger_entry::{self as ledger, DeltaRef};
 use crate::format::signed::{Signers, kind};
 use crate::format::time::Timestamp;
 use crate::format::trust_proofs::{self, TrustSetProofs};
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
+use crate::payload::delta::VerifiedDelta;
 use crate::store::{Store, StoreState};
 
 use super::device::store_verifier;
@@ -58,9 +60,11 @@ impl Fetch {
         &self.url
     }
 
-    /// What it is, for messages: `trust set`, `trust-set proofs` or `consistency step`.
-    pub fn what(&self) -> &'static str {
-        self.what
+    pub_for_release! {
+        /// What it is, for messages: `trust set`, `trust-set proofs` or `consistency step`.
+        fn what(&self) -> &'static str {
+            self.what
+        }
     }
 
     /// The most bytes the document may have.
@@ -72,7 +76,12 @@ impl Fetch {
 /// The bundle to download, from the first of [`Download::urls`] that works, into
 /// [`Download::file`] until it holds [`Download::size`] bytes.
 ///
-/// A bundle larger than its head (at most 129.5 KiB) is asked for in two parts, both into the
+/// When the feed offers a delta for the release the device runs, the session asks for that
+/// delta instead (a smaller file, in one part, which rebuilds the same release from the
+/// installed files); if it cannot be had or fails any check, the session asks for the bundle
+/// next, in the same update. An app downloads either the same way.
+///
+/// A bundle larger than its head (at most 274 KiB: `limit::HEAD_BYTES`) is asked for in two parts, both into the
 /// same file: first its head, whose signed manifest the session checks (signatures, the app's
 /// policy, and the bundle's exact size, which must be the size the feed states), then the
 /// whole bundle. Resume from the file's length with an HTTP Range request each time; never
@@ -94,6 +103,10 @@ pub struct Download {
     /// `fetch` driver's messages).
     #[cfg_attr(not(feature = "fetch"), allow(dead_code))]
     pub(crate) earlier: u64,
+    /// The delta asked for instead of the bundle, when it is one.
+    pub(crate) delta: Option<DeltaRef>,
+    /// The file's length when this request was made, to count the bytes it downloaded.
+    from: u64,
 }
 
 impl Download {
@@ -103,13 +116,13 @@ impl Download {
     }
 
     /// How many bytes the file must hold when [`Session::downloaded`] is called: the head's
-    /// length first, then the whole bundle's. Never write more.
+    /// length first, then the whole bundle's (or the delta's). Never write more.
     pub fn size(&self) -> u64 {
         self.size
     }
 
-    /// The whole bundle's SHA-256, as the feed declares it; the session checks it once the
-    /// whole bundle is there.
+    /// The whole file's SHA-256 (the bundle's or the delta's), as the feed declares it; the
+    /// session checks it once the whole file is there.
     pub fn sha256(&self) -> &Digest {
         &self.sha256
     }
@@ -188,6 +201,14 @@ pub struct Session<'d> {
     answer: Option<Vec<u8>>,
     state: State,
     expiry: Expiry,
+    /// Whether this update asked for a delta already: never two in one update.
+    delta_tried: bool,
+    /// The delta the release was installed from, for the report.
+    delta_used: Option<Digest>,
+    /// Why an offered delta was not used, for the report.
+    delta_refused: Option<Error>,
+    /// The bytes the update's completed downloads added to the store.
+    downloaded: u64,
 }
 
 /// A walk through the tree's trust sets, from the device's own version up to the one the
@@ -236,7 +257,12 @@ enum State {
         head: Option<Download>,
         /// The bytes the store's file held from an earlier update when this one began.
         earlier: u64,
+        /// The delta downloaded instead of the bundle, when it is one.
+        delta: Option<DeltaRef>,
     },
+    /// The delta asked for could not be downloaded: the bundle comes next.
+    #[cfg_attr(not(feature = "fetch"), allow(dead_code))]
+    DeltaFailed(Release, DeltaRef, Error),
     Failed(Error),
     Ended,
 }
@@ -285,6 +311,10 @@ impl<'d> Session<'d> {
             answer: None,
             state,
             expiry: Expiry::Checked,
+            delta_tried: false,
+            delta_used: None,
+            delta_refused: None,
+            downloaded: 0,
         }
     }
 
@@ -329,12 +359,16 @@ impl<'d> Session<'d> {
     /// Called when nothing was asked for (twice for one download, say), it changes nothing.
     pub fn downloaded(&mut self, path: &Path) {
         if let State::Download(want, release) = &self.state {
+            // Only counted: the size and digest checks open the file again.
+            let len = std::fs::symlink_metadata(path).map_or(0, |m| m.len());
+            self.downloaded += len.min(want.size).saturating_sub(want.from);
             self.state = State::Downloaded {
                 path: path.to_path_buf(),
                 release: release.clone(),
                 checked: false,
                 head: want.head.then(|| want.clone()),
                 earlier: want.earlier,
+                delta: want.delta.clone(),
             };
         }
     }
@@ -343,25 +377,51 @@ impl<'d> Session<'d> {
     /// were checked while it streamed (or was copied).
     pub(crate) fn downloaded_and_checked(&mut self) {
         if let State::Download(want, release) = &self.state {
+            self.downloaded += want.size.saturating_sub(want.from);
             self.state = State::Downloaded {
                 path: want.path.clone(),
                 release: release.clone(),
                 checked: !want.head,
                 head: want.head.then(|| want.clone()),
                 earlier: want.earlier,
+                delta: want.delta.clone(),
             };
+        }
+    }
+
+    /// The delta of the last [`Next::Download`] could not be downloaded (`fetch` driver):
+    /// the session asks for the bundle next, in the same update. For a bundle, or when the
+    /// app cancelled, `error` comes back for [`Session::fail_with`].
+    #[cfg(feature = "fetch")]
+    pub(crate) fn delta_failed(&mut self, error: Error) -> Result<()> {
+        match &self.state {
+            State::Download(want, release) if error.kind() != ErrorKind::Cancelled => {
+                let Some(delta) = want.delta.clone() else {
+                    return Err(error);
+                };
+                self.state = State::DeltaFailed(release.clone(), delta, error);
+                Ok(())
+            }
+            _ => Err(error),
         }
     }
 
     /// Ends the update because the app could not fetch what was asked; `why` says what
     /// went wrong (a status, a timeout). The outcome is [`Outcome::Failed`] with
     /// [`ErrorKind::Network`]: the store keeps its model, and a partial download stays for
-    /// the next try.
+    /// the next try. When the download asked for was a delta, it is remembered instead, and
+    /// the next update asks for the full bundle.
     pub fn fail(self, why: impl std::fmt::Display) -> Report {
         self.fail_with(Error::new(ErrorKind::Network, why.to_string()))
     }
 
     pub(crate) fn fail_with(mut self, error: Error) -> Report {
+        if let State::Download(want, _) = &self.state
+            && let Some(delta) = &want.delta
+            && error.kind() == ErrorKind::Network
+        {
+            self.remember_delta(delta, &error);
+        }
         self.report(Outcome::from_error(error))
     }
 
@@ -381,6 +441,9 @@ impl<'d> Session<'d> {
                 None => self.held.as_ref().and_then(Held::set).map(|s| s.version()),
             },
             removed: self.device.store().take_removed(),
+            delta: self.delta_used,
+            delta_refused: self.delta_refused.take(),
+            downloaded: self.downloaded,
         }
     }
 
@@ -443,7 +506,24 @@ impl<'d> Session<'d> {
                 checked,
                 head: None,
                 earlier,
+                delta: None,
             } => self.install(&path, &release, checked, earlier),
+            State::Downloaded {
+                path,
+                release,
+                checked,
+                head: None,
+                earlier,
+                delta: Some(delta),
+            } => match self.install_delta(&path, &release, &delta, checked, earlier) {
+                // Another update holding the store, or the app stopping this one: the bundle
+                // would meet the same.
+                Err(e) if !matches!(e.kind(), ErrorKind::Cancelled | ErrorKind::Locked) => {
+                    self.fall_back(release, &delta, e)
+                }
+                done => done,
+            },
+            State::DeltaFailed(release, delta, error) => self.fall_back(release, &delta, error),
             State::Failed(e) => Ok(Step::End(Outcome::from_error(e))),
             State::Ended => Err(Error::new(
                 ErrorKind::Settings,
@@ -794,15 +874,70 @@ impl<'d> Session<'d> {
         }
         // A bundle refused before, under the same app and trust, is not downloaded again.
         let app_print = refusals::fingerprint(app, self.held()?, &bundles);
-        if let Some(refusal) = refusals::recall(
-            &self.device.downloads()?,
-            &release.sha256,
-            &app_print,
-            self.now,
-        ) {
+        let downloads = self.device.downloads()?;
+        if let Some(refusal) =
+            refusals::recall(&downloads, &release.sha256, &app_print, self.now, "bundle")
+                .filter(|e| e.kind().is_refusal())
+        {
             return Err(refusal);
         }
-        let name = format!("{}.ampoule.partial", release.sha256);
+        let delta = self.pick_delta(&store, &release, &app_print)?;
+        self.download(release, delta)
+    }
+
+    /// The delta to download instead of the bundle, if the feed offers one for the installed
+    /// release's files. The store checks the current release in full first (its manifest
+    /// against the state, its signatures and the app's policy, every file's size and
+    /// SHA-256); the delta's base must be the digest of that manifest's files (FORMAT.md
+    /// "Deltas"): matched by digest, never by version. None offline, after a delta was tried
+    /// in this update, when no delta matches, when the check failed, or when the delta was
+    /// remembered as failed (both noted for the report).
+    fn pick_delta(
+        &mut self,
+        store: &Store,
+        release: &Release,
+        app_print: &Digest,
+    ) -> Result<Option<DeltaRef>> {
+        if self.delta_tried || release.deltas.is_empty() || self.expiry == Expiry::NotCheckedOffline
+        {
+            return Ok(None);
+        }
+        let installed = match store.open_current() {
+            Ok(Some(installed)) => installed,
+            Ok(None) => return Ok(None),
+            Err(e) => {
+                self.delta_refused = Some(e.context(
+                    "no delta used, the installed release failed the store's check; the full \
+                     bundle is downloaded instead",
+                ));
+                return Ok(None);
+            }
+        };
+        let base = base_id(&installed.manifest.files);
+        let Some(delta) = release.deltas.iter().find(|d| d.base == base) else {
+            return Ok(None);
+        };
+        if let Some(refusal) = refusals::recall(
+            &self.device.downloads()?,
+            &delta.sha256,
+            app_print,
+            self.now,
+            "delta",
+        ) {
+            self.delta_refused = Some(refusal.context(format_args!("delta {}", delta.sha256)));
+            return Ok(None);
+        }
+        Ok(Some(delta.clone()))
+    }
+
+    /// Asks for the bundle of `release`, or for `delta` instead, into the store's download
+    /// directory (resuming what this store started there).
+    fn download(&mut self, release: Release, delta: Option<DeltaRef>) -> Result<Step> {
+        let (sha256, size) = match &delta {
+            Some(d) => (d.sha256, d.size),
+            None => (release.sha256, release.size),
+        };
+        let name = format!("{sha256}.ampoule.partial");
         let lock = self
             .lock
             .as_ref()
@@ -811,29 +946,63 @@ impl<'d> Session<'d> {
         // store prepared.
         let earlier = self
             .device
-            .partial_download(lock, &name, release.size)?
+            .partial_download(lock, &name, size)?
             .metadata()
             .map_or(0, |m| m.len());
-        // The head first when the bundle is larger than one: its signed manifest fixes the
-        // bundle's size before the payload is asked for.
-        let head = release.size > limit::HEAD_BYTES;
+        // The head of a bundle first when it is larger than one: its signed manifest fixes
+        // the bundle's size before the payload is asked for. A delta, smaller than its
+        // bundle, comes whole, and its carried manifest is checked before its patches are read.
+        let head = delta.is_none() && size > limit::HEAD_BYTES;
+        let urls = match &delta {
+            Some(d) => vec![release.delta_url(&self.feed_url, d)?],
+            None => release.urls(&self.feed_url)?,
+        };
+        self.delta_tried |= delta.is_some();
         let want = Download {
-            urls: release.urls(&self.feed_url)?,
-            size: if head {
-                limit::HEAD_BYTES
-            } else {
-                release.size
-            },
-            sha256: release.sha256,
+            urls,
+            size: if head { limit::HEAD_BYTES } else { size },
+            sha256,
             path: self.device.downloads_path().join(&name),
             store: self.device.store().dir().to_path_buf(),
             name,
             head,
-            whole: release.size,
+            whole: size,
             earlier,
+            delta,
+            from: earlier,
         };
         self.device.sweep_downloads(Some(&want.name));
         Ok(Step::Go(State::Download(want, release)))
+    }
+
+    /// Gives up the delta of this update for the full bundle: remembers it when `error`
+    /// shows it failed (so the next update does not download it again), says why in the
+    /// report, and asks for the bundle. The delta's partial file goes with the next sweep.
+    fn fall_back(&mut self, release: Release, delta: &DeltaRef, error: Error) -> Result<Step> {
+        self.remember_delta(delta, &error);
+        self.delta_refused = Some(error.context(format_args!(
+            "delta {} not used; the full bundle is downloaded instead",
+            delta.sha256
+        )));
+        self.download(release, None)
+    }
+
+    /// Remembers a delta that failed with `error` (a refusal, or a transfer that failed after
+    /// its retries), like a refused bundle, so that the next update takes the full bundle
+    /// and can resume it. Best effort.
+    fn remember_delta(&self, delta: &DeltaRef, error: &Error) {
+        let remember = error.kind().is_refusal() || error.kind() == ErrorKind::Network;
+        let (Ok(held), Ok(state)) = (self.held(), self.store().and_then(Store::state)) else {
+            return;
+        };
+        if let (true, Ok(bundles), Ok(dir)) = (
+            remember,
+            self.bundle_verifier(&state),
+            self.device.downloads(),
+        ) {
+            let app_print = refusals::fingerprint(self.device.app(), held, &bundles);
+            refusals::remember_any(&dir, &delta.sha256, error, &app_print, self.now);
+        }
     }
 
     /// Records the feed, so that an older one is refused from now on, and the tree head it
@@ -922,6 +1091,7 @@ impl<'d> Session<'d> {
         let want = Download {
             size: head.whole,
             head: false,
+            from: have,
             ..head
         };
         Ok(Step::Go(State::Download(want, release)))
@@ -942,9 +1112,7 @@ impl<'d> Session<'d> {
         let store = self.store()?.clone();
         // The store's own partial download is opened without following links; a file the
         // app downloaded elsewhere is the app's to name.
-        let ours = (path.parent() == Some(self.device.downloads_path().as_path()))
-            .then(|| path.file_name().map(|n| n.to_string_lossy().into_owned()))
-            .flatten();
+        let ours = self.ours(path);
         let app_print = refusals::fingerprint(
             self.device.app(),
             self.held()?,
@@ -983,13 +1151,81 @@ impl<'d> Session<'d> {
         };
         if !checked {
             let kept = if ours.is_some() { earlier } else { 0 };
-            check_file(&mut file, path, release, kept).map_err(wrong_bytes)?;
+            check_file(&mut file, path, release.size, &release.sha256, kept)
+                .map_err(wrong_bytes)?;
         }
         let bundles = self.bundle_verifier(&store.state()?)?;
         let bundle = bundles.verify_file(file).map_err(discard)?;
         feed.check_bundle(release, &bundle).map_err(discard)?;
         let installed = store.install_from_feed(bundle, &feed).map_err(discard)?;
-        if let Some(name) = &ours {
+        self.installed(ours.as_deref(), installed, &store, &feed)
+    }
+
+    /// Checks the downloaded delta against the feed, reads its head and checks the manifest
+    /// it carries as a bundle's (signatures, the app's policy, the release the feed offers
+    /// and its ledger entry logs), then has the store rebuild and install the release from
+    /// the current release's files, through the same install as a bundle. Any error here
+    /// makes the caller fall back to the bundle.
+    fn install_delta(
+        &mut self,
+        path: &Path,
+        release: &Release,
+        delta: &DeltaRef,
+        checked: bool,
+        earlier: u64,
+    ) -> Result<Step> {
+        let feed = self
+            .feed
+            .clone()
+            .ok_or_else(|| Error::new(ErrorKind::Feed, "no verified feed to install from"))?;
+        let store = self.store()?.clone();
+        let ours = self.ours(path);
+        let mut file = match &ours {
+            Some(name) => self.device.open_partial(name)?,
+            None => File::open(path)
+                .map_err(|e| Error::io(format!("cannot open {}", path.display()), e))?,
+        };
+        if !checked {
+            let kept = if ours.is_some() { earlier } else { 0 };
+            check_file(&mut file, path, delta.size, &delta.sha256, kept)?;
+        }
+        let bundles = self.bundle_verifier(&store.state()?)?;
+        let verified = VerifiedDelta::read(&bundles, file)?;
+        feed.check_manifest(release, verified.manifest(), verified.manifest_bytes())?;
+        if verified.base() != delta.base {
+            return Err(Error::new(
+                ErrorKind::Digest,
+                format!(
+                    "delta {} applies to base {}, but the feed lists it for base {}",
+                    delta.sha256,
+                    verified.base(),
+                    delta.base
+                ),
+            ));
+        }
+        let installed = store.install_delta_from_feed(verified, &feed)?;
+        self.delta_used = Some(delta.sha256);
+        self.installed(ours.as_deref(), installed, &store, &feed)
+    }
+
+    /// The name of `path` in the store's download directory, when the app used the file the
+    /// session prepared there; a file the app downloaded elsewhere is the app's to name.
+    fn ours(&self, path: &Path) -> Option<String> {
+        (path.parent() == Some(self.device.downloads_path().as_path()))
+            .then(|| path.file_name().map(|n| n.to_string_lossy().into_owned()))
+            .flatten()
+    }
+
+    /// The end of an install, from a bundle or a delta: the download removed, the remembered
+    /// refusal forgotten, the tree head remembered, old releases collected.
+    fn installed(
+        &mut self,
+        ours: Option<&str>,
+        installed: crate::store::Installed,
+        store: &Store,
+        feed: &VerifiedFeed,
+    ) -> Result<Step> {
+        if let Some(name) = ours {
             self.device.remove_partial(name);
         }
         if let Ok(dir) = self.device.downloads() {
@@ -998,7 +1234,7 @@ impl<'d> Session<'d> {
         // The model is installed whatever happens next: a failure to remember the head now
         // only means the next update proves it again, so it must not turn the outcome into a
         // failure that says the old model was kept.
-        let _ = store.remember_feed_tree_head(&feed);
+        let _ = store.remember_feed_tree_head(feed);
         // The release before the previous one is no rollback target any more: free its space
         // now. A failure here changes nothing that matters (the next update sweeps again).
         let _ = store.gc();
@@ -1036,32 +1272,39 @@ impl<'d> Session<'d> {
     }
 }
 
-/// Checks an open downloaded file against the size and SHA-256 the verified feed declares,
+/// Checks an open downloaded file against the size and SHA-256 the verified feed declares
+/// (the bundle's or a delta's),
 /// and leaves it at its start for the bundle's own checks. `kept` is how many of its bytes the
 /// store kept from an earlier update: a wrong digest then names both sources, since either may
 /// be the wrong one.
-fn check_file(file: &mut File, path: &Path, release: &Release, kept: u64) -> Result<()> {
-    let (sha256, size) = hash_reader(&*file, release.size.saturating_add(1))
+fn check_file(
+    file: &mut File,
+    path: &Path,
+    declared_size: u64,
+    declared: &Digest,
+    kept: u64,
+) -> Result<()> {
+    let (sha256, size) = hash_reader(&*file, declared_size.saturating_add(1))
         .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
     std::io::Seek::rewind(file)
         .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
-    if size != release.size {
+    if size != declared_size {
         return Err(Error::new(
             ErrorKind::Digest,
             format!(
                 "downloaded file {} is {size} bytes{}, but the feed declares {} bytes",
                 path.display(),
-                if size > release.size { " or more" } else { "" },
-                release.size
+                if size > declared_size { " or more" } else { "" },
+                declared_size
             ),
         ));
     }
-    if sha256 != release.sha256 {
+    if sha256 != *declared {
         let message = if kept == 0 {
             format!(
                 "downloaded file {} has SHA-256 {sha256}, but the feed declares {}",
                 path.display(),
-                release.sha256
+                declared
             )
         } else {
             format!(
@@ -1070,7 +1313,7 @@ fn check_file(file: &mut File, path: &Path, release: &Release, kept: u64) -> Res
                  both were discarded, and the next update downloads the whole file again",
                 path.display(),
                 size - kept.min(size),
-                release.sha256
+                declared
             )
         };
         return Err(Error::new(ErrorKind::Digest, message));

@@ -117,7 +117,11 @@ pub fn write_bundle_signed_by(
         inner.resize(inner.len() + tar::padding(data.len() as u64) as usize, 0);
     }
     inner.extend_from_slice(&tar::END_OF_ARCHIVE);
-    let payload = zstd::stream::encode_all(&inner[..], 3).expect("zstd compresses in memory");
+    // Format 2: the inner tar in chunks of 64 KiB (the smallest the format allows, so that
+    // even these small models make several), each a zstd frame bound by the chunk list.
+    let chunk_bytes = 64 * 1024;
+    let (payload, chunks) =
+        bundle::chunked_payload(&inner, chunk_bytes, 3).expect("zstd compresses in memory");
     let manifest = Manifest {
         format: FORMAT_VERSION,
         name: name.into(),
@@ -127,7 +131,9 @@ pub fn write_bundle_signed_by(
         payload: Payload {
             compression: Compression::Zstd,
             size: payload.len() as u64,
-            sha256: Digest::of(&payload),
+            sha256: None,
+            chunk_bytes: Some(chunk_bytes),
+            chunks_sha256: Some(Digest::of(&chunks)),
         },
         files: vec![
             FileEntry {
@@ -154,8 +160,7 @@ pub fn write_bundle_signed_by(
     bundle::write_bundle(
         &mut out,
         mtime,
-        &manifest_bytes,
-        &signatures.to_json(),
+        (&manifest_bytes, &signatures.to_json(), Some(&chunks)),
         &mut &payload[..],
         payload.len() as u64,
     )
