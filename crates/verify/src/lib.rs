@@ -31,20 +31,23 @@ macro_rules! pub_for_release {
     };
 }
 
-/// Declares modules that are public only with the `release` feature.
-macro_rules! internal {
-    ($($name:ident),* $(,)?) => { $(
-        #[cfg(feature = "release")]
-        pub mod $name;
-        #[cfg(not(feature = "release"))]
+/// Declares the crate-private twin of a module that is public with the `release` feature. The
+/// public declaration is written out, so that tools walking `mod` items (cargo-mutants,
+/// rustfmt) find each file, and exactly once.
+#[cfg(not(feature = "release"))]
+macro_rules! private_twin {
+    ($name:ident) => {
         mod $name;
-    )* };
+    };
 }
 
 // The layers, bottom first; each folder uses only itself and the folders above it in this
 // list (crates/verify/tests/layers.rs checks that). Shared by all of them: the error type,
 // progress reports and the reading thread.
-internal!(error);
+#[cfg(feature = "release")]
+pub mod error;
+#[cfg(not(feature = "release"))]
+private_twin!(error);
 mod progress;
 mod readahead;
 // Opening and removing inside the store without following links.
@@ -56,13 +59,25 @@ compile_error!(
      O_NOFOLLOW so that a planted link is never followed"
 );
 // The format and its documents.
-internal!(format);
+#[cfg(feature = "release")]
+pub mod format;
+#[cfg(not(feature = "release"))]
+private_twin!(format);
 // The checks: signatures, trust sets, feeds, the ledger's proofs, the app's policy.
-internal!(check);
+#[cfg(feature = "release")]
+pub mod check;
+#[cfg(not(feature = "release"))]
+private_twin!(check);
 // Payload decoding: zstd and the inner tar, only of bytes a check vouched for.
-internal!(payload);
+#[cfg(feature = "release")]
+pub mod payload;
+#[cfg(not(feature = "release"))]
+private_twin!(payload);
 // The on-device store: atomic swap, rollback, lock.
-internal!(store);
+#[cfg(feature = "release")]
+pub mod store;
+#[cfg(not(feature = "release"))]
+private_twin!(store);
 // The network (feature `fetch`).
 #[cfg(all(feature = "fetch", feature = "release"))]
 pub mod net;

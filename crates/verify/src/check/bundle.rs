@@ -16,21 +16,20 @@ use std::path::Path;
 
 use semver::Version;
 
-use crate::format::bundle::{self, Layout};
+use crate::check::policy::CompatibilityPolicy;
+use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::bundle::{self, Layout};
 use crate::format::keys::{KeyId, TrustedKeys};
 use crate::format::manifest::Manifest;
-use crate::check::policy::CompatibilityPolicy;
 use crate::format::signature::{SignatureReport, Signatures};
 use crate::format::signed::{SignedDocument, Signers, kind};
-use crate::check::trust::TrustSet;
 use crate::progress::ProgressFn;
 
 /// The largest bundle file accepted unless the app sets its own limit.
 pub const DEFAULT_MAX_BUNDLE_BYTES: u64 = 1024 * 1024 * 1024;
 /// The most bytes a bundle may unpack to unless the app sets its own limit.
 pub const DEFAULT_MAX_UNPACKED_BYTES: u64 = 4 * 1024 * 1024 * 1024;
-
 
 /// What the app accepts. Trusted keys and the app's own version are required; everything
 /// else has a safe default.
@@ -245,9 +244,10 @@ impl Verifier {
     pub(crate) fn check_head(&self, file: &mut File) -> Result<(Manifest, Vec<u8>, u64)> {
         file.seek(SeekFrom::Start(0))
             .map_err(|e| Error::io("cannot read the bundle's head", e))?;
-        let head = bundle::read_head(&mut io::BufReader::new(
-            Read::take(&mut *file, crate::format::limit::HEAD_BYTES),
-        ))?;
+        let head = bundle::read_head(&mut io::BufReader::new(Read::take(
+            &mut *file,
+            crate::format::limit::HEAD_BYTES,
+        )))?;
         let signatures = Signatures::from_json(&head.signatures)?;
         SignedDocument::<kind::Manifest>::new(&head.manifest, &signatures.signatures)?
             .check(&self.signers, "bundle")?;
@@ -265,7 +265,10 @@ impl Verifier {
         // payload if the list does not match the signed manifest.
         bundle::check_binding(head.payload_len, head.chunks.as_deref(), &manifest)?;
         let len = head.bundle_len().ok_or_else(|| {
-            Error::new(ErrorKind::Malformed, "bundle's length overflows a 64-bit count")
+            Error::new(
+                ErrorKind::Malformed,
+                "bundle's length overflows a 64-bit count",
+            )
         })?;
         Ok((manifest, head.manifest, len))
     }

@@ -37,12 +37,12 @@ use std::fmt;
 use semver::{Version, VersionReq};
 use serde::{Deserialize, Deserializer, Serialize};
 
-use crate::format::digest::Digest;
-use crate::error::{Error, ErrorKind, Result};
-use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, delta, limit};
-use crate::format::keys::{KeyId, TrustedKeys};
 use crate::check::bundle::{VerifiedBundle, Verifier};
 use crate::check::ledger_proof::{LedgerCheck, LedgerVerifier, Walk};
+use crate::check::trust::TrustSet;
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::Digest;
+use crate::format::keys::{KeyId, TrustedKeys};
 use crate::format::ledger_entry::{
     DeltaRef, ENTRY_FORMAT, Entry, FeedLedger, LEGACY_ENTRY_FORMAT, MAX_DELTAS, Record,
     invalid as not_published,
@@ -51,7 +51,7 @@ use crate::format::manifest::check_name;
 use crate::format::signature::{SignatureEntry, SignatureReport};
 use crate::format::signed::{SignedDocument, Signers, kind};
 use crate::format::time::Timestamp;
-use crate::check::trust::TrustSet;
+use crate::format::{FEED_FORMAT_VERSION, ROLLOUT_DOMAIN, delta, limit};
 
 /// The clock skew a device allows unless the app sets its own: 5 minutes.
 pub const DEFAULT_CLOCK_SKEW_SECS: u64 = 300;
@@ -594,11 +594,14 @@ impl FeedVerifier {
         if feed.issued.unix() > now.unix().saturating_add(self.skew_secs) {
             // Signed by trusted keys, so the clock is the likelier fault: a failure to retry
             // once the clock is set, not a refusal of the feed.
-            return Err(Error::new(ErrorKind::Clock, format!(
-                "feed was issued at {}, after this device's clock ({now}) by more than the \
+            return Err(Error::new(
+                ErrorKind::Clock,
+                format!(
+                    "feed was issued at {}, after this device's clock ({now}) by more than the \
                  allowed {} s; check the device clock",
-                feed.issued, self.skew_secs
-            )));
+                    feed.issued, self.skew_secs
+                ),
+            ));
         }
         if self.expiry == Expiry::Checked
             && feed.expires.unix().saturating_add(self.skew_secs) < now.unix()
@@ -836,8 +839,6 @@ fn remove_dot_segments(path: &str) -> String {
     output
 }
 
-
-
 /// What a verified feed means for one device, decided before a byte of the bundle is fetched.
 #[derive(Debug)]
 pub(crate) enum Decision {
@@ -1055,9 +1056,14 @@ fn feed_entry(
         }
         None => "nothing".to_string(),
     };
-    let logged = entry
-        .offered()
-        .map(|o| (o.bundle.as_str(), &o.version, &o.bundle_digest, o.rollout_percent));
+    let logged = entry.offered().map(|o| {
+        (
+            o.bundle.as_str(),
+            &o.version,
+            &o.bundle_digest,
+            o.rollout_percent,
+        )
+    });
     let offered = feed
         .release
         .as_ref()

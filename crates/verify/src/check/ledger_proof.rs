@@ -92,7 +92,6 @@ impl LedgerVerifier {
     pub fn verify_head(&self, signed: &SignedTreeHead) -> Result<SignatureReport> {
         signed.check(&self.signers)
     }
-
 }
 
 /// The walk from the tree head a device remembers up to a feed's tree head, one consistency

@@ -44,7 +44,10 @@ fn refuse(path: &str, why: impl fmt::Display) -> Error {
     if path.is_empty() {
         Error::new(ErrorKind::Settings, format!("policy document: {why}"))
     } else {
-        Error::new(ErrorKind::Settings, format!("policy document: {path}: {why}"))
+        Error::new(
+            ErrorKind::Settings,
+            format!("policy document: {path}: {why}"),
+        )
     }
 }
 
@@ -170,7 +173,10 @@ fn read_model(
             other => {
                 return Err(refuse(
                     &model.path("format"),
-                    format!("'{}' is not a model format: use onnx or safetensors", shown(other)),
+                    format!(
+                        "'{}' is not a model format: use onnx or safetensors",
+                        shown(other)
+                    ),
                 ));
             }
         };
@@ -189,7 +195,10 @@ fn read_model(
         if items.len() > TENSORS {
             return Err(refuse(
                 &model.path(field),
-                format!("it states {} tensors, over the limit of {TENSORS}", items.len()),
+                format!(
+                    "it states {} tensors, over the limit of {TENSORS}",
+                    items.len()
+                ),
             ));
         }
         for (i, item) in items.iter().enumerate() {
@@ -342,7 +351,9 @@ impl<'a> Object<'a> {
     }
 
     fn positive(&self, key: &str) -> Result<Option<u64>> {
-        self.typed(key, "a whole number from 1", |v| v.as_u64().filter(|&n| n > 0))
+        self.typed(key, "a whole number from 1", |v| {
+            v.as_u64().filter(|&n| n > 0)
+        })
     }
 
     fn bool(&self, key: &str) -> Result<Option<bool>> {

@@ -35,12 +35,12 @@ use std::collections::BTreeSet;
 use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::{context, limit, signed_bytes, trust_set as spec};
 use crate::format::keys::{KeyId, PublicKey, TrustedKeys};
 use crate::format::signature::{SignatureEntry, SignatureReport};
 pub use crate::format::signed::DocumentKind;
 use crate::format::signed::{Kind, SignedDocument, Signers, kind};
 use crate::format::time::Timestamp;
+use crate::format::{context, limit, signed_bytes, trust_set as spec};
 
 /// One key in a trust set.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]

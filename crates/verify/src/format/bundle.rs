@@ -7,14 +7,14 @@
 use std::fs::File;
 use std::io::{self, BufRead, Read, Seek, SeekFrom, Write};
 
+use crate::error::{Error, ErrorKind, Result};
 use crate::format::chunks;
 use crate::format::digest::Hasher;
-use crate::error::{Error, ErrorKind, Result};
-use crate::format::{entry, limit};
 use crate::format::manifest::Manifest;
-use crate::readahead::ReadAhead;
 use crate::format::tar;
+use crate::format::{entry, limit};
 use crate::progress::{Progress, ProgressFn, Stage};
+use crate::readahead::ReadAhead;
 
 const ARCHIVE: &str = "bundle";
 
@@ -93,17 +93,38 @@ impl Head {
 pub fn read_head<R: Read>(reader: &mut R) -> Result<Head> {
     let order = &entry::OUTER;
     let size = tar::expect_entry(reader, ARCHIVE, order, 0)?;
-    let manifest = read_small(reader, ARCHIVE, entry::MANIFEST, size, limit::MANIFEST_BYTES)?;
+    let manifest = read_small(
+        reader,
+        ARCHIVE,
+        entry::MANIFEST,
+        size,
+        limit::MANIFEST_BYTES,
+    )?;
     let size = tar::expect_entry(reader, ARCHIVE, order, 1)?;
-    let signatures = read_small(reader, ARCHIVE, entry::SIGNATURES, size, limit::SIGNATURES_BYTES)?;
+    let signatures = read_small(
+        reader,
+        ARCHIVE,
+        entry::SIGNATURES,
+        size,
+        limit::SIGNATURES_BYTES,
+    )?;
     // The third entry is the chunk list in format 2, the payload in format 1; a bundle that
     // ends there misses its payload in both.
     let (name, size) = tar::next_entry(reader, ARCHIVE, &entry::OUTER_FORMAT_1, 2)?;
     let (chunks, payload_len) = if name == entry::CHUNKS {
-        let chunks = read_small(reader, ARCHIVE, entry::CHUNKS, size, limit::CHUNK_LIST_BYTES)?;
+        let chunks = read_small(
+            reader,
+            ARCHIVE,
+            entry::CHUNKS,
+            size,
+            limit::CHUNK_LIST_BYTES,
+        )?;
         (Some(chunks), tar::expect_entry(reader, ARCHIVE, order, 3)?)
     } else {
-        (None, tar::check_entry(name, size, ARCHIVE, &entry::OUTER_FORMAT_1, 2)?)
+        (
+            None,
+            tar::check_entry(name, size, ARCHIVE, &entry::OUTER_FORMAT_1, 2)?,
+        )
     };
     let payload_offset = payload_offset(
         manifest.len() as u64,
@@ -232,7 +253,11 @@ pub fn write_bundle<W: Write, R: Read>(
 /// tar cut into `chunk_bytes` chunks, each compressed at zstd `level` as a frame of its own
 /// that states its content size (no checksum, as pack writes them). Returns the payload and
 /// its chunk list.
-pub fn chunked_payload(inner_tar: &[u8], chunk_bytes: u32, level: i32) -> io::Result<(Vec<u8>, Vec<u8>)> {
+pub fn chunked_payload(
+    inner_tar: &[u8],
+    chunk_bytes: u32,
+    level: i32,
+) -> io::Result<(Vec<u8>, Vec<u8>)> {
     let mut payload = Vec::new();
     let mut list = chunks::ListWriter::default();
     let mut compressor = zstd::bulk::Compressor::new(level)?;

@@ -344,7 +344,13 @@ mod tests {
         assert_eq!(writer_chunk_bytes(2048 << 20), Some(512 << 10));
         assert_eq!(writer_chunk_bytes((2048 << 20) + 1), Some(1 << 20));
         assert_eq!(writer_chunk_bytes((4096 << 20) + 1), Some(2 << 20));
-        assert_eq!(writer_chunk_bytes(limit::CHUNKS << limit::CHUNK_LOG_MAX), Some(4 << 20));
-        assert_eq!(writer_chunk_bytes((limit::CHUNKS << limit::CHUNK_LOG_MAX) + 1), None);
+        assert_eq!(
+            writer_chunk_bytes(limit::CHUNKS << limit::CHUNK_LOG_MAX),
+            Some(4 << 20)
+        );
+        assert_eq!(
+            writer_chunk_bytes((limit::CHUNKS << limit::CHUNK_LOG_MAX) + 1),
+            None
+        );
     }
 }

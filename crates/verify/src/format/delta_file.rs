@@ -43,7 +43,7 @@ use serde::{Deserialize, Serialize};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::bundle::read_small;
 use crate::format::delta::{
-    BASE_DOMAIN, CHUNK_BYTES, FORMAT_VERSION, HEADER, HEADER_BYTES, OUTER, PATCHES, PATCH_BYTES,
+    BASE_DOMAIN, CHUNK_BYTES, FORMAT_VERSION, HEADER, HEADER_BYTES, OUTER, PATCH_BYTES, PATCHES,
     RECORD_BYTES, WINDOW_BYTES,
 };
 use crate::format::digest::{Digest, Hasher};
@@ -259,7 +259,13 @@ pub fn read_head<R: Read>(reader: &mut R) -> Result<Head> {
     let size = tar::expect_entry(reader, ARCHIVE, &OUTER, 0)?;
     let header = read_small(reader, ARCHIVE, HEADER, size, HEADER_BYTES)?;
     let size = tar::expect_entry(reader, ARCHIVE, &OUTER, 1)?;
-    let manifest = read_small(reader, ARCHIVE, entry::MANIFEST, size, limit::MANIFEST_BYTES)?;
+    let manifest = read_small(
+        reader,
+        ARCHIVE,
+        entry::MANIFEST,
+        size,
+        limit::MANIFEST_BYTES,
+    )?;
     let size = tar::expect_entry(reader, ARCHIVE, &OUTER, 2)?;
     let signatures = read_small(
         reader,
@@ -364,7 +370,10 @@ mod tests {
             Record::parse(&b, 3, &h).expect_err("refused").to_string()
         };
         assert_eq!(refused(&|b| b[0] = 7), "delta record 3 has an unknown op 7");
-        assert_eq!(refused(&|b| b[3] = 1), "delta record 3 has a nonzero reserved byte");
+        assert_eq!(
+            refused(&|b| b[3] = 1),
+            "delta record 3 has a nonzero reserved byte"
+        );
         assert_eq!(
             refused(&|b| b[2] = 1),
             "delta record 3 names base file 1, but the header lists 1"
@@ -395,13 +404,17 @@ mod tests {
         let mut h = header();
         h.format = 2;
         assert_eq!(
-            Header::from_json(&h.to_json()).expect_err("format 2").to_string(),
+            Header::from_json(&h.to_json())
+                .expect_err("format 2")
+                .to_string(),
             "delta format 2 is not supported (this reader knows format 1); use the full bundle"
         );
         let mut h = header();
         h.base.clear();
         assert_eq!(
-            Header::from_json(&h.to_json()).expect_err("no base").to_string(),
+            Header::from_json(&h.to_json())
+                .expect_err("no base")
+                .to_string(),
             "delta header lists 0 base files; 1 to 8 are allowed"
         );
         let unknown = br#"{"format":1,"extra":0}"#;

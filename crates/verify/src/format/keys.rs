@@ -13,8 +13,8 @@ use ed25519_dalek::pkcs8::DecodePublicKey;
 use ed25519_dalek::{Signature, VerifyingKey};
 use serde::{Deserialize, Deserializer, Serialize, Serializer};
 
-use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::Digest;
 use crate::format::signed_bytes;
 
 /// The DER prefix of an Ed25519 SubjectPublicKeyInfo (RFC 8410 section 4): SEQUENCE,

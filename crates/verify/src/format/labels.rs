@@ -41,20 +41,20 @@ use crate::format::unicode::{
 /// 14.0) of the scripts that use them (The Unicode Standard 14.0, section 23.2, "Layout
 /// Controls"; from memory) and of the emoji that ZWJ sequences join (emoji-zwj-sequences.txt).
 pub(crate) const JOINING: &[(u32, u32)] = &[
-    (0x0600, 0x077F), // Arabic, Syriac, Arabic Supplement
-    (0x07C0, 0x07FF), // NKo
-    (0x0860, 0x08FF), // Syriac Supplement, Arabic Extended-B, Arabic Extended-A
-    (0x0900, 0x0DFF), // Devanagari .. Sinhala
-    (0x0F00, 0x0FFF), // Tibetan
-    (0x1000, 0x109F), // Myanmar
-    (0x1780, 0x18AF), // Khmer, Mongolian
-    (0x2190, 0x21FF), // Arrows (emoji such as U+2194, U+27A1 follow ZWJ)
-    (0x2300, 0x23FF), // Miscellaneous Technical
-    (0x2600, 0x27BF), // Miscellaneous Symbols, Dingbats
-    (0x2B00, 0x2BFF), // Miscellaneous Symbols and Arrows (U+2B1B in "black cat")
-    (0xA8E0, 0xA8FF), // Devanagari Extended
-    (0xFB50, 0xFDFF), // Arabic Presentation Forms-A
-    (0xFE70, 0xFEFE), // Arabic Presentation Forms-B (not U+FEFF)
+    (0x0600, 0x077F),   // Arabic, Syriac, Arabic Supplement
+    (0x07C0, 0x07FF),   // NKo
+    (0x0860, 0x08FF),   // Syriac Supplement, Arabic Extended-B, Arabic Extended-A
+    (0x0900, 0x0DFF),   // Devanagari .. Sinhala
+    (0x0F00, 0x0FFF),   // Tibetan
+    (0x1000, 0x109F),   // Myanmar
+    (0x1780, 0x18AF),   // Khmer, Mongolian
+    (0x2190, 0x21FF),   // Arrows (emoji such as U+2194, U+27A1 follow ZWJ)
+    (0x2300, 0x23FF),   // Miscellaneous Technical
+    (0x2600, 0x27BF),   // Miscellaneous Symbols, Dingbats
+    (0x2B00, 0x2BFF),   // Miscellaneous Symbols and Arrows (U+2B1B in "black cat")
+    (0xA8E0, 0xA8FF),   // Devanagari Extended
+    (0xFB50, 0xFDFF),   // Arabic Presentation Forms-A
+    (0xFE70, 0xFEFE),   // Arabic Presentation Forms-B (not U+FEFF)
     (0x1F000, 0x1FAFF), // the emoji blocks, skin-tone modifiers included
 ];
 
@@ -107,8 +107,7 @@ fn invisible_at(chars: &[char], i: usize) -> Option<&'static str> {
                 && next.is_some_and(|n| in_ranges(JOINING, n))
         }
         0xFE0E | 0xFE0F => prev.is_some_and(|p| {
-            in_ranges(EMOJI, p)
-                || (matches!(p, '0'..='9' | '#' | '*') && next == Some('\u{20E3}'))
+            in_ranges(EMOJI, p) || (matches!(p, '0'..='9' | '#' | '*') && next == Some('\u{20E3}'))
         }),
         0x180B..=0x180F => prev.is_some_and(|p| ('\u{1800}'..='\u{18AF}').contains(&p)),
         0xE0020..=0xE007F => tag_sequence_ok(chars, i),
@@ -130,13 +129,12 @@ fn invisible_at(chars: &[char], i: usize) -> Option<&'static str> {
 /// U+E0020..U+E007E, then U+E007F (Unicode Technical Standard #51, "Emoji Tag Sequences").
 fn tag_sequence_ok(chars: &[char], i: usize) -> bool {
     let is_tag = |c: &char| ('\u{E0020}'..='\u{E007E}').contains(c);
-    let start = chars[..i].iter().rposition(|c| !is_tag(c)).map_or(0, |p| p + 1);
+    let start = chars[..i]
+        .iter()
+        .rposition(|c| !is_tag(c))
+        .map_or(0, |p| p + 1);
     let end = i + chars[i..].iter().take_while(|c| is_tag(c)).count();
-    let closes = if chars[i] == '\u{E007F}' {
-        i
-    } else {
-        end
-    };
+    let closes = if chars[i] == '\u{E007F}' { i } else { end };
     start > 0
         && chars[start - 1] == '\u{1F3F4}'
         && closes > start
@@ -452,17 +450,22 @@ mod tests {
             ("NFC_NO", NFC_NO),
         ] {
             assert!(
-                table.iter().all(|(lo, hi)| lo <= hi)
-                    && table.windows(2).all(|w| w[0].1 < w[1].0),
+                table.iter().all(|(lo, hi)| lo <= hi) && table.windows(2).all(|w| w[0].1 < w[1].0),
                 "{name} must be sorted and disjoint for its binary search"
             );
         }
         assert_eq!(CCC_RANGE.len(), CCC_CLASS.len());
-        assert!(CCC_RANGE.windows(2).all(|w| (w[0] >> 8) + (w[0] & 0xFF) < w[1] >> 8));
+        assert!(
+            CCC_RANGE
+                .windows(2)
+                .all(|w| (w[0] >> 8) + (w[0] & 0xFF) < w[1] >> 8)
+        );
         assert!(PAIRS.windows(2).all(|w| w[0].0 < w[1].0));
-        assert!(BY_COMPOSITE.windows(2).all(|w| {
-            PAIRS[usize::from(w[0])].1 < PAIRS[usize::from(w[1])].1
-        }));
+        assert!(
+            BY_COMPOSITE
+                .windows(2)
+                .all(|w| { PAIRS[usize::from(w[0])].1 < PAIRS[usize::from(w[1])].1 })
+        );
     }
 
     #[test]
@@ -472,8 +475,14 @@ mod tests {
         for (label, source) in [
             // emoji-zwj-sequences.txt (Unicode Emoji 14.0), RGI_Emoji_ZWJ_Sequence lines.
             ("\u{1F469}\u{200D}\u{1F4BB}", "woman technologist"),
-            ("\u{1F469}\u{1F3FD}\u{200D}\u{1F52C}", "woman scientist: medium skin tone"),
-            ("\u{1F441}\u{FE0F}\u{200D}\u{1F5E8}\u{FE0F}", "eye in speech bubble"),
+            (
+                "\u{1F469}\u{1F3FD}\u{200D}\u{1F52C}",
+                "woman scientist: medium skin tone",
+            ),
+            (
+                "\u{1F441}\u{FE0F}\u{200D}\u{1F5E8}\u{FE0F}",
+                "eye in speech bubble",
+            ),
             ("\u{1F3F3}\u{FE0F}\u{200D}\u{1F308}", "rainbow flag"),
             ("\u{1F43B}\u{200D}\u{2744}\u{FE0F}", "polar bear"),
             ("\u{1F408}\u{200D}\u{2B1B}", "black cat"),
@@ -499,9 +508,18 @@ mod tests {
             // Malayalam "avan" with the atomic chillu n (U+0D7B, since Unicode 5.1).
             ("\u{0D05}\u{0D35}\u{0D7B}", "Malayalam atomic chillu"),
             // NFC text whose marks the quick check can only call "maybe".
-            ("\u{0B95}\u{0BBE}\u{0B95}\u{0BAE}\u{0BCD}", "Tamil kaakam (crow)"),
-            ("\u{091C}\u{093C}", "Devanagari ja + nukta: U+095B is excluded from composition"),
-            ("\u{B2E4}\u{B78C}\u{C950}", "Korean daramjwi (squirrel), precomposed"),
+            (
+                "\u{0B95}\u{0BBE}\u{0B95}\u{0BAE}\u{0BCD}",
+                "Tamil kaakam (crow)",
+            ),
+            (
+                "\u{091C}\u{093C}",
+                "Devanagari ja + nukta: U+095B is excluded from composition",
+            ),
+            (
+                "\u{B2E4}\u{B78C}\u{C950}",
+                "Korean daramjwi (squirrel), precomposed",
+            ),
             ("Ti\u{1EBF}ng Vi\u{1EC7}t", "Vietnamese, composed"),
             (" ", "a single space (OCR dictionaries)"),
             ("\u{3000}", "a single ideographic space (OCR dictionaries)"),
@@ -540,8 +558,14 @@ mod tests {
             ("fox\u{2060}", format!("holds U+2060, {INVISIBLE_WHY}")),
             ("\u{3164}", format!("holds U+3164, {INVISIBLE_WHY}")),
             ("fox\u{FE0F}", format!("holds U+FE0F, {INVISIBLE_WHY}")),
-            ("fox\u{E0041}\u{E0042}", format!("holds U+E0041, {INVISIBLE_WHY}")),
-            ("\u{1F3F4}\u{E0067}\u{E0062}", format!("holds U+E0067, {INVISIBLE_WHY}")),
+            (
+                "fox\u{E0041}\u{E0042}",
+                format!("holds U+E0041, {INVISIBLE_WHY}"),
+            ),
+            (
+                "\u{1F3F4}\u{E0067}\u{E0062}",
+                format!("holds U+E0067, {INVISIBLE_WHY}"),
+            ),
             ("roe\u{2028}deer", format!("holds U+2028, {INVISIBLE_WHY}")),
             (
                 "a\u{200D}b",
@@ -572,13 +596,13 @@ mod tests {
     #[test]
     fn issue10_labels_not_in_nfc_are_refused() {
         for label in [
-            "cafe\u{0301}",                     // e + combining acute: U+00E9 is NFC
-            "\u{0B95}\u{0BC6}\u{0BBE}",         // Tamil ko decomposed: U+0BCA is NFC
-            "\u{1100}\u{1161}\u{11AB}",         // Hangul jamo: U+AC04 is NFC
-            "\u{095B}",                          // excluded from composition
-            "\u{212B}",                          // ANGSTROM SIGN, a singleton: U+00C5
-            "\u{1E61}\u{0323}",                 // s dot above + dot below: U+1E69 is NFC
-            "a\u{0301}\u{0323}",                // marks out of canonical order
+            "cafe\u{0301}",             // e + combining acute: U+00E9 is NFC
+            "\u{0B95}\u{0BC6}\u{0BBE}", // Tamil ko decomposed: U+0BCA is NFC
+            "\u{1100}\u{1161}\u{11AB}", // Hangul jamo: U+AC04 is NFC
+            "\u{095B}",                 // excluded from composition
+            "\u{212B}",                 // ANGSTROM SIGN, a singleton: U+00C5
+            "\u{1E61}\u{0323}",         // s dot above + dot below: U+1E69 is NFC
+            "a\u{0301}\u{0323}",        // marks out of canonical order
         ] {
             assert_eq!(
                 why(label),

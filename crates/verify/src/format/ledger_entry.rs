@@ -466,7 +466,10 @@ mod tests {
 
         let nine = vec![delta(); MAX_DELTAS + 1].join(",");
         let err = Entry::from_bytes(publish(&nine).as_bytes()).expect_err("nine deltas");
-        assert_eq!(err.to_string(), "ledger entry lists 9 deltas, over the limit of 8");
+        assert_eq!(
+            err.to_string(),
+            "ledger entry lists 9 deltas, over the limit of 8"
+        );
         assert_eq!(err.kind(), ErrorKind::TooLarge);
     }
 

@@ -8,13 +8,13 @@
 use semver::{Version, VersionReq};
 use serde::{Deserialize, Serialize};
 
-use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::Digest;
 use crate::format::metadata::Metadata;
-use crate::format::{FORMAT_VERSION, OLDEST_FORMAT_VERSION, entry, limit};
 use crate::format::model::ModelSignature;
 use crate::format::tar;
 use crate::format::time::Timestamp;
+use crate::format::{FORMAT_VERSION, OLDEST_FORMAT_VERSION, entry, limit};
 
 /// What a file in the payload is for.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]

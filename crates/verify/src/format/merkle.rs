@@ -28,10 +28,10 @@ use serde::de::{SeqAccess, Visitor};
 use serde::{Deserialize, Deserializer, Serialize};
 use sha2::{Digest as _, Sha256};
 
-use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::limit;
+use crate::format::digest::Digest;
 use crate::format::keys::{KeyId, TrustedKeys};
+use crate::format::limit;
 use crate::format::signature::SignatureEntry;
 use crate::format::signature::SignatureReport;
 use crate::format::signed::{SignedDocument, Signers, kind};

@@ -350,7 +350,10 @@ struct Reader {
 impl<'de> DeserializeSeed<'de> for Reader {
     type Value = Value;
 
-    fn deserialize<D: Deserializer<'de>>(self, deserializer: D) -> std::result::Result<Value, D::Error> {
+    fn deserialize<D: Deserializer<'de>>(
+        self,
+        deserializer: D,
+    ) -> std::result::Result<Value, D::Error> {
         deserializer.deserialize_any(self)
     }
 }
@@ -375,9 +378,12 @@ impl<'de> Visitor<'de> for Reader {
     }
 
     fn visit_f64<E: de::Error>(self, v: f64) -> std::result::Result<Value, E> {
-        Number::from_f64(v)
-            .map(Value::Number)
-            .ok_or_else(|| E::custom(format!("metadata key '{}' is not a finite number", shown(&self.path))))
+        Number::from_f64(v).map(Value::Number).ok_or_else(|| {
+            E::custom(format!(
+                "metadata key '{}' is not a finite number",
+                shown(&self.path)
+            ))
+        })
     }
 
     fn visit_str<E: de::Error>(self, v: &str) -> std::result::Result<Value, E> {
@@ -587,7 +593,10 @@ mod tests {
     #[test]
     fn issue11_options_and_files_build_one_sorted_object() {
         let metadata = built(
-            &[("notes", "first reserve model"), ("data.snapshot", "2026-11-30")],
+            &[
+                ("notes", "first reserve model"),
+                ("data.snapshot", "2026-11-30"),
+            ],
             Some(
                 r#"{"preprocess": {"std": [0.229, 0.224, 0.225], "mean": [0.485, 0.456, 0.406],
                     "colour_order": "rgb", "input_size": 96}, "eval.top1": 0.91, "zoo": true}"#,
@@ -600,7 +609,10 @@ mod tests {
             r#"{"data":{"snapshot":"2026-11-30"},"eval":{"top1":0.91},"notes":"first reserve model","preprocess":{"colour_order":"rgb","input_size":96,"mean":[0.485,0.456,0.406],"std":[0.229,0.224,0.225]},"zoo":true}"#
         );
         assert_eq!(metadata.get("eval.top1"), Some(&Value::from(0.91)));
-        assert_eq!(metadata.get("preprocess.input_size"), Some(&Value::from(96)));
+        assert_eq!(
+            metadata.get("preprocess.input_size"),
+            Some(&Value::from(96))
+        );
         assert!(metadata.get("preprocess").is_some_and(Value::is_object));
         assert_eq!(metadata.get("preprocess.nothing"), None);
         assert_eq!(metadata.get("notes.deeper"), None);
@@ -643,8 +655,14 @@ mod tests {
     #[test]
     fn issue11_a_key_set_twice_or_as_value_and_parent_is_refused_by_name() {
         let twice = "metadata key 'eval.top1' is set twice; set each key once";
-        assert_eq!(refused(&[("eval.top1", "1"), ("eval.top1", "2")], None), twice);
-        assert_eq!(refused(&[("eval.top1", "1")], Some(r#"{"eval": {"top1": 1}}"#)), twice);
+        assert_eq!(
+            refused(&[("eval.top1", "1"), ("eval.top1", "2")], None),
+            twice
+        );
+        assert_eq!(
+            refused(&[("eval.top1", "1")], Some(r#"{"eval": {"top1": 1}}"#)),
+            twice
+        );
         assert_eq!(
             refused(&[], Some(r#"{"eval.top1": 1, "eval": {"top1": 1}}"#)),
             "metadata key 'eval.top1' is set twice; set each key once"
@@ -678,14 +696,24 @@ mod tests {
             "metadata key 'a.b.c.d.e.f.g.h.i' is 9 levels deep; the format allows at most 8 (the \
              metadata object and each object or array in it count one)"
         );
-        built(&[], Some(r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":[1]}}}}}}}"#)).expect("8 levels");
+        built(
+            &[],
+            Some(r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":[1]}}}}}}}"#),
+        )
+        .expect("8 levels");
         assert_eq!(
-            refused(&[], Some(r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":{"h":[1]}}}}}}}}"#)),
+            refused(
+                &[],
+                Some(r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":{"h":[1]}}}}}}}}"#)
+            ),
             "metadata key 'a.b.c.d.e.f.g.h' is 9 levels deep; the format allows at most 8 (the \
              metadata object and each object or array in it count one)"
         );
         assert_eq!(
-            refused(&[], Some(r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":{"h":[]}}}}}}}}"#)),
+            refused(
+                &[],
+                Some(r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":{"h":[]}}}}}}}}"#)
+            ),
             "metadata key 'a.b.c.d.e.f.g.h' is 9 levels deep; the format allows at most 8 (the \
              metadata object and each object or array in it count one)"
         );
@@ -705,7 +733,10 @@ mod tests {
             ("preprocess.mean", r#"{"preprocess": {"mean": "0.5"}}"#),
             ("preprocess.std", r#"{"preprocess": {"std": []}}"#),
             ("preprocess.scale", r#"{"preprocess": {"scale": [1, "2"]}}"#),
-            ("preprocess.input_size", r#"{"preprocess": {"input_size": true}}"#),
+            (
+                "preprocess.input_size",
+                r#"{"preprocess": {"input_size": true}}"#,
+            ),
         ] {
             let message = refused(&[], Some(file));
             assert!(
@@ -725,8 +756,11 @@ mod tests {
             "metadata key 'eval.top1' must be a number (every key under eval is a result), not \
              the string \"0.91\""
         );
-        built(&[], Some(r#"{"eval": {"reserve_2026": {"top1": 0.91, "top5": 0.99}}}"#))
-            .expect("nested results");
+        built(
+            &[],
+            Some(r#"{"eval": {"reserve_2026": {"top1": 0.91, "top5": 0.99}}}"#),
+        )
+        .expect("nested results");
         assert_eq!(
             refused(&[], Some(r#"{"data": {"snapshot": 20261130}}"#)),
             "metadata key 'data.snapshot' must be a string, not the number 20261130"
@@ -740,8 +774,11 @@ mod tests {
             "metadata key 'preprocess' must be an object (documented keys go under it), not the \
              string \"imagenet\""
         );
-        built(&[("preprocess.resize", "bilinear"), ("team.owner", "survey")], None)
-            .expect("free keys");
+        built(
+            &[("preprocess.resize", "bilinear"), ("team.owner", "survey")],
+            None,
+        )
+        .expect("free keys");
         assert!(takes_string("notes") && takes_string("data.snapshot"));
         assert!(takes_string("preprocess.resize") && takes_string("anything"));
         assert!(takes_string("preprocess.colour_order"));
@@ -781,19 +818,28 @@ mod tests {
         ] {
             assert_eq!(refused(&[], Some(file)), message, "{file}");
         }
-        assert_eq!(built(&[], Some("{}")).expect("an empty file sets nothing"), None);
+        assert_eq!(
+            built(&[], Some("{}")).expect("an empty file sets nothing"),
+            None
+        );
     }
 
     #[test]
     fn issue11_the_device_refuses_what_pack_would_refuse() {
         // Hand-written objects, as a holder of a bundle key could sign them.
         for (text, message) in [
-            (r#"{}"#, "the metadata object is empty; leave the field out instead"),
+            (
+                r#"{}"#,
+                "the metadata object is empty; leave the field out instead",
+            ),
             (
                 r#"{"b": 1, "a": 2}"#,
                 "metadata key 'a' comes after 'b'; a manifest stores keys in sorted order at line 1 column 12",
             ),
-            (r#"{"a": 1, "a": 1}"#, "metadata key 'a' appears twice at line 1 column 12"),
+            (
+                r#"{"a": 1, "a": 1}"#,
+                "metadata key 'a' appears twice at line 1 column 12",
+            ),
             (
                 r#"{"A": 1}"#,
                 "metadata key 'A' is not allowed: each dot-separated segment must be 1 to 64 bytes \
@@ -804,7 +850,10 @@ mod tests {
                 "metadata key 'a.b' is not allowed: each dot-separated segment must be 1 to 64 \
                  bytes of a-z, 0-9 and _",
             ),
-            (r#"{"a": null}"#, "metadata key 'a' is null; leave out a key that has no value"),
+            (
+                r#"{"a": null}"#,
+                "metadata key 'a' is null; leave out a key that has no value",
+            ),
             (
                 r#"{"preprocess": {"colour_order": "grb"}}"#,
                 "metadata key 'preprocess.colour_order' must be \"rgb\" or \"bgr\", not the \
@@ -817,9 +866,11 @@ mod tests {
         let nine = r#"{"a":{"b":{"c":{"d":{"e":{"f":{"g":{"h":{"i":1}}}}}}}}}"#;
         assert_eq!(
             read(nine).map(|_| ()),
-            Err("metadata key 'a.b.c.d.e.f.g.h' is 9 levels deep; the format allows at most 8 \
+            Err(
+                "metadata key 'a.b.c.d.e.f.g.h' is 9 levels deep; the format allows at most 8 \
                  (the metadata object and each object or array in it count one)"
-                .to_string())
+                    .to_string()
+            )
         );
     }
 
@@ -833,11 +884,23 @@ mod tests {
             &serde_json::json!([0.5, 1, [2]]),
             &serde_json::json!([0.5, 1.0, [2.0]])
         ));
-        assert!(!same_value(&serde_json::json!([1]), &serde_json::json!([1, 1])));
-        assert!(same_value(&serde_json::json!({"a": 1}), &serde_json::json!({"a": 1.0})));
-        assert!(!same_value(&serde_json::json!({"a": 1}), &serde_json::json!({"b": 1})));
+        assert!(!same_value(
+            &serde_json::json!([1]),
+            &serde_json::json!([1, 1])
+        ));
+        assert!(same_value(
+            &serde_json::json!({"a": 1}),
+            &serde_json::json!({"a": 1.0})
+        ));
+        assert!(!same_value(
+            &serde_json::json!({"a": 1}),
+            &serde_json::json!({"b": 1})
+        ));
         // What a refusal shows of a value: no character that hides or reorders text.
-        assert_eq!(shown_value(&Value::from("rgb\u{202e}\n")), r#""rgb\u{202e}\n""#);
+        assert_eq!(
+            shown_value(&Value::from("rgb\u{202e}\n")),
+            r#""rgb\u{202e}\n""#
+        );
         assert_eq!(shown_value(&Value::from("x".repeat(200))).len(), 103);
     }
 }

@@ -4,7 +4,6 @@
 //! so the two halves cannot drift apart. FORMAT.md at the repository root describes the same
 //! format in prose for anyone writing a second reader.
 
-
 // The documents of the format, each read strictly and within its caps. Nothing here checks a
 // signature against trust or decides anything: that is `check/`, the layer above.
 pub mod bundle;

@@ -11,8 +11,8 @@ use std::fmt;
 use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::limit;
 use crate::format::keys::{KeyId, PublicKey};
+use crate::format::limit;
 
 /// One signature in the signatures document.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -172,5 +172,47 @@ impl fmt::Display for SignatureReport {
             parts.push("no signatures".into());
         }
         f.write_str(&parts.join("; "))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn entry(key: u8, signature: u8) -> SignatureEntry {
+        SignatureEntry {
+            key_id: KeyId::of_raw_key(&[key; 32]),
+            signature: [signature; 64],
+        }
+    }
+
+    #[test]
+    fn insert_replaces_a_keys_signature_and_says_whether_anything_changed() {
+        // Found by cargo-mutants (issue 15): `sign` on a bundle a key signed already must
+        // replace that key's signature, not add a second one, and report no change when the
+        // signature is the same bytes.
+        let mut sigs = Signatures::default();
+        assert!(sigs.insert(entry(2, 1)));
+        assert!(sigs.insert(entry(1, 1)));
+        assert!(
+            !sigs.insert(entry(2, 1)),
+            "the same signature again changes nothing"
+        );
+        assert!(
+            sigs.insert(entry(2, 9)),
+            "a new signature by the same key replaces it"
+        );
+        let mut ids = vec![entry(1, 0).key_id, entry(2, 0).key_id];
+        ids.sort();
+        assert_eq!(
+            sigs.signatures.iter().map(|s| s.key_id).collect::<Vec<_>>(),
+            ids
+        );
+        let two = sigs
+            .signatures
+            .iter()
+            .find(|s| s.key_id == entry(2, 0).key_id)
+            .expect("key 2");
+        assert_eq!(two.signature, [9; 64]);
     }
 }

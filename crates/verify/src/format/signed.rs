@@ -33,9 +33,9 @@ use std::str::FromStr;
 use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::{context, limit};
 use crate::format::keys::TrustedKeys;
 use crate::format::signature::{SignatureEntry, SignatureReport};
+use crate::format::{context, limit};
 
 /// A kind of signed document, each with its own signing context and threshold.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
@@ -397,5 +397,42 @@ mod tests {
             err.to_string(),
             "no trusted keys given for feed documents; at least one public key is needed"
         );
+        // Debug output (an app's logs) names the kind, the keys and the threshold.
+        let shown = format!(
+            "{:?}",
+            Signers::<kind::TreeHead>::new(keys, 1).expect("signers")
+        );
+        assert!(
+            shown.starts_with("Signers { kind: TreeHead, keys: "),
+            "{shown}"
+        );
+        assert!(shown.ends_with(", threshold: 1 }"), "{shown}");
+    }
+
+    /// Why `SignedDocument::new` refused a document of kind `K`.
+    fn refusal<K: Kind>(document: &[u8], signatures: &[SignatureEntry]) -> String {
+        match SignedDocument::<K>::new(document, signatures) {
+            Ok(_) => panic!("accepted"),
+            Err(e) => e.to_string(),
+        }
+    }
+
+    #[test]
+    fn refusals_name_the_kind_of_document() {
+        // Found by cargo-mutants (issue 15): no test read the kind's name in a refusal.
+        let big = vec![b' '; limit::TREE_HEAD_BYTES as usize + 1];
+        let err = refusal::<kind::TreeHead>(&big, &[]);
+        assert!(err.starts_with("signed tree head is "), "{err}");
+        let entry = SignatureEntry {
+            key_id: crate::format::keys::KeyId::of_raw_key(&[7; 32]),
+            signature: [0; 64],
+        };
+        let many = vec![entry; limit::SIGNATURES + 1];
+        assert_eq!(
+            refusal::<kind::TrustSet>(b"{}", &many),
+            "trust set carries 33 signatures, over the limit of 32"
+        );
+        assert!(refusal::<kind::Manifest>(b"{}", &many).starts_with("bundle carries 33 "));
+        assert!(refusal::<kind::Feed>(b"{}", &many).starts_with("feed carries 33 "));
     }
 }

@@ -37,7 +37,9 @@ use serde::{Deserialize, Serialize};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::digest::Digest;
 use crate::format::ledger_entry::{LEDGER_DIR, Record};
-use crate::format::merkle::{ConsistencyProof, InclusionProof, SignedTreeHead, TreeHead, leaf_hash};
+use crate::format::merkle::{
+    ConsistencyProof, InclusionProof, SignedTreeHead, TreeHead, leaf_hash,
+};
 use crate::format::signed::{Signers, kind};
 use crate::format::trust_set::MAX_WALK;
 

@@ -175,9 +175,7 @@ impl<R: Read> VerifiedDelta<R> {
                 let target = create(dir, &manifest.files[start], created)?;
                 current = Some((start, target));
             }
-            let (_, target) = current
-                .as_mut()
-                .expect("the record's file was just opened");
+            let (_, target) = current.as_mut().expect("the record's file was just opened");
             if target.hasher.len() + u64::from(record.len) > target.entry.size {
                 return Err(refuse(
                     ErrorKind::Digest,
@@ -419,9 +417,12 @@ fn check_base<B: Read + Seek>(header: &Header, base: &mut [B]) -> Result<()> {
 /// Creates a rebuilt file in `dir` (it must not exist: nothing is written through a link
 /// planted at its name) and records its name for clean-up.
 fn create<'m>(dir: &Dir, entry: &'m FileEntry, created: &mut Vec<String>) -> Result<Target<'m>> {
-    let file = dir
-        .create_new(&entry.path)
-        .map_err(|e| Error::io(format!("cannot create {}", dir.join(&entry.path).display()), e))?;
+    let file = dir.create_new(&entry.path).map_err(|e| {
+        Error::io(
+            format!("cannot create {}", dir.join(&entry.path).display()),
+            e,
+        )
+    })?;
     created.push(entry.path.clone());
     Ok(Target {
         entry,
@@ -474,7 +475,11 @@ impl Buffers {
             Op::Copy => record.len,
             Op::Zstd => record.window,
         };
-        if record.offset.checked_add(u64::from(span)).is_none_or(|end| end > base_entry.size) {
+        if record
+            .offset
+            .checked_add(u64::from(span))
+            .is_none_or(|end| end > base_entry.size)
+        {
             return Err(refuse(
                 ErrorKind::Malformed,
                 format!(
@@ -501,7 +506,9 @@ impl Buffers {
                 let bad = |why: String| {
                     refuse(
                         ErrorKind::Digest,
-                        format!("delta record {index} does not decode: {why}; the delta is damaged: use the full bundle"),
+                        format!(
+                            "delta record {index} does not decode: {why}; the delta is damaged: use the full bundle"
+                        ),
                     )
                 };
                 let mut dctx = DCtx::create();
@@ -514,7 +521,10 @@ impl Buffers {
                     .decompress(&mut self.chunk, &self.patch)
                     .map_err(|code| bad(zstd::zstd_safe::get_error_name(code).to_string()))?;
                 if n != record.len as usize {
-                    return Err(bad(format!("it gives {n} bytes, the record declares {}", record.len)));
+                    return Err(bad(format!(
+                        "it gives {n} bytes, the record declares {}",
+                        record.len
+                    )));
                 }
             }
         }

@@ -16,21 +16,21 @@ use std::fs::File;
 use std::io::{self, BufRead, Read, Seek, SeekFrom, Write};
 use std::ops::Deref;
 use std::path::{Path, PathBuf};
-use std::sync::{Arc, Mutex};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
+use std::sync::{Arc, Mutex};
 
-use crate::format::digest::Hasher;
+use crate::check::bundle::VerifiedBundle;
+use crate::check::policy::CompatibilityPolicy;
 use crate::dir::{Dir, Refused};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::chunks::{Plan, spawn_checker};
+use crate::format::digest::Hasher;
 use crate::format::limit;
 use crate::format::manifest::Manifest;
-use crate::readahead::ReadAhead;
 use crate::format::tar;
-use crate::check::bundle::VerifiedBundle;
-use crate::check::policy::CompatibilityPolicy;
 use crate::progress::{Progress, ProgressFn, Stage};
+use crate::readahead::ReadAhead;
 use zstd::zstd_safe::DCtx;
 
 const ARCHIVE: &str = "payload";
@@ -259,7 +259,8 @@ fn decode_chunks(
             )
         };
         let name = |code| zstd::zstd_safe::get_error_name(code).to_string();
-        let frame = zstd::zstd_safe::find_frame_compressed_size(&chunk).map_err(|c| bad(name(c)))?;
+        let frame =
+            zstd::zstd_safe::find_frame_compressed_size(&chunk).map_err(|c| bad(name(c)))?;
         if frame != chunk.len() {
             return Err(bad(format!(
                 "its first frame ends after {frame} of its {} bytes; a chunk is one frame",
@@ -278,13 +279,18 @@ fn decode_chunks(
                 return Err(bad("its frame does not declare its decoded size".into()));
             }
         }
-        let reused = spent.try_lock().ok().and_then(|spent| spent.try_recv().ok());
+        let reused = spent
+            .try_lock()
+            .ok()
+            .and_then(|spent| spent.try_recv().ok());
         let mut buf = reused.unwrap_or_default();
         buf.clear();
         buf.reserve_exact(want);
         // The buffer holds at least `want` bytes; a frame that does not decode to exactly its
         // declared size is an error of zstd's, or a count that differs below.
-        let n = dctx.decompress(&mut buf, &chunk).map_err(|c| bad(name(c)))?;
+        let n = dctx
+            .decompress(&mut buf, &chunk)
+            .map_err(|c| bad(name(c)))?;
         if n != want {
             return Err(bad(format!(
                 "it decodes to {n} bytes, not the {want} bytes of its place in the inner tar"
@@ -404,7 +410,8 @@ pub(crate) fn stream(source: &Source<'_>, dir: Option<&Dir>) -> Result<Vec<Strin
         None => CHUNKS_IN_FLIGHT,
     };
     let decoders = if plan.is_some() { DECODERS } else { 1 };
-    let (chunk_txs, chunk_rxs): (Vec<_>, Vec<_>) = (0..decoders).map(|_| sync_channel(depth)).unzip();
+    let (chunk_txs, chunk_rxs): (Vec<_>, Vec<_>) =
+        (0..decoders).map(|_| sync_channel(depth)).unzip();
     let (spent_tx, spent_rx) = channel();
     let sink = Sink { dir, depth };
     let progress = source.progress.cloned();
@@ -651,19 +658,16 @@ pub(crate) fn unpack_to(
     let labels = stream(source, Some(&staging.dir))?;
     last_checks(&labels, &staging.dir)?;
     sync_dir(&staging.dir)?;
-    parent
-        .rename(&staging.name, &parent, name)
-        .map_err(|e| {
-            Error::io(
-                format!("cannot move the unpacked files to {}", dest.display()),
-                e,
-            )
-        })?;
+    parent.rename(&staging.name, &parent, name).map_err(|e| {
+        Error::io(
+            format!("cannot move the unpacked files to {}", dest.display()),
+            e,
+        )
+    })?;
     staging.keep = true;
     sync_dir(&parent)?;
     Ok(labels)
 }
-
 
 /// The checks a release's files get once they are all written and each matched the manifest,
 /// whether they were unpacked from a bundle or rebuilt from a delta: the labels the app
@@ -691,12 +695,9 @@ fn check_model_signature(manifest: &Manifest, dir: &Dir) -> Result<()> {
     };
     let model = manifest.model();
     let shown = dir.join(&model.path);
-    let file = dir.open_file(&model.path).map_err(|e| {
-        Error::io(
-            format!("cannot open {}", shown.display()),
-            e.into_io(),
-        )
-    })?;
+    let file = dir
+        .open_file(&model.path)
+        .map_err(|e| Error::io(format!("cannot open {}", shown.display()), e.into_io()))?;
     let len = file
         .metadata()
         .map_err(|e| Error::io(format!("cannot read {}", shown.display()), e))?

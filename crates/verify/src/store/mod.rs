@@ -93,20 +93,20 @@ use std::time::{Duration, Instant};
 use semver::Version;
 use serde::{Deserialize, Serialize};
 
-use crate::format::digest::{Digest, hash_reader};
-use crate::error::{Error, ErrorKind, Result};
+use crate::check::bundle::{VerifiedBundle, Verifier};
 use crate::check::feed::{Feed, SignedFeed, VerifiedFeed};
-use crate::format::{entry, limit, trust_set};
-use crate::format::keys::KeyId;
-use crate::format::manifest::{Manifest, Role};
-use crate::format::signed::{SignedDocument, Signers, kind};
-use crate::format::merkle::TreeHead;
-use crate::format::time::Timestamp;
 use crate::check::trust::{TrustSet, TrustSetFile};
 use crate::dir::{Dir, Found, Refused};
+use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::{Digest, hash_reader};
+use crate::format::keys::KeyId;
+use crate::format::manifest::{Manifest, Role};
+use crate::format::merkle::TreeHead;
+use crate::format::signed::{SignedDocument, Signers, kind};
+use crate::format::time::Timestamp;
+use crate::format::{entry, limit, trust_set};
 use crate::payload::delta::VerifiedDelta;
 use crate::payload::unpack::{Staging, sync_dir};
-use crate::check::bundle::{VerifiedBundle, Verifier};
 
 /// The format version of `state.json` this crate writes. Format 2 added `channel`; a
 /// format 1 file (no `channel`) is read as following no channel yet.
@@ -296,9 +296,7 @@ impl StoreState {
                 c.release
             ));
         }
-        if self.removed.len() > MAX_REMOVED_NOTES
-            || self.removed.iter().any(|r| r.len() > 4096)
-        {
+        if self.removed.len() > MAX_REMOVED_NOTES || self.removed.iter().any(|r| r.len() > 4096) {
             return Err(format!(
                 "it lists more than {MAX_REMOVED_NOTES} removed entries, or one over 4096 bytes"
             ));
@@ -937,7 +935,9 @@ impl Store {
             signatures: String::from_utf8_lossy(incoming.signatures()).into_owned(),
         })
         .map_err(|e| Error::new(ErrorKind::Store, format!("cannot keep the manifest: {e}")))?;
-        replace_file(&root, HIGHEST_FILE, HIGHEST_TEMP_PREFIX, &kept, &mut |_| Ok(()))?;
+        replace_file(&root, HIGHEST_FILE, HIGHEST_TEMP_PREFIX, &kept, &mut |_| {
+            Ok(())
+        })?;
         self.commit(&root, &next, hook)?;
         staging.keep = true;
         step(hook, Step::StateRenamed)?;
@@ -1017,7 +1017,13 @@ impl Store {
         if read_capped(&dir, &name, limit::FEED_BYTES).is_ok_and(|b| b == feed.signed_bytes()) {
             return Ok(());
         }
-        replace_file(&dir, &name, KEPT_TEMP_PREFIX, feed.signed_bytes(), &mut |_| Ok(()))?;
+        replace_file(
+            &dir,
+            &name,
+            KEPT_TEMP_PREFIX,
+            feed.signed_bytes(),
+            &mut |_| Ok(()),
+        )?;
         sync_dir(&dir)
     }
 
@@ -1260,7 +1266,13 @@ impl Store {
         })
         .map_err(|e| Error::new(ErrorKind::TrustSet, format!("cannot write the chain: {e}")))?;
         let root = self.root()?;
-        replace_file(&root, TRUST_CHAIN_FILE, TRUST_SET_TEMP_PREFIX, &bytes, &mut |_| Ok(()))?;
+        replace_file(
+            &root,
+            TRUST_CHAIN_FILE,
+            TRUST_SET_TEMP_PREFIX,
+            &bytes,
+            &mut |_| Ok(()),
+        )?;
         // The one-set file of earlier versions is in the chain now.
         let _ = root.remove(TRUST_SET_FILE);
         sync_dir(&root)
@@ -1544,14 +1556,15 @@ impl Store {
         }
         for entry in list_dir(root)? {
             let name = entry.to_string_lossy();
-            let planted = matches!(
-                root.found(&entry),
-                Ok(Some(Found::Link | Found::Other))
-            );
+            let planted = matches!(root.found(&entry), Ok(Some(Found::Link | Found::Other)));
             if planted {
                 let kind = root.found(&entry).ok().flatten().unwrap_or(Found::Other);
                 remove_any(root, &entry)?;
-                self.note_removed(format!("{} ({})", root.join(&entry).display(), kind.describe()));
+                self.note_removed(format!(
+                    "{} ({})",
+                    root.join(&entry).display(),
+                    kind.describe()
+                ));
                 removed.push(root.join(&entry));
             } else if name.starts_with(STATE_TEMP_PREFIX)
                 || name.starts_with(TRUST_SET_TEMP_PREFIX)
@@ -1588,7 +1601,10 @@ impl Store {
             }
             Err(Refused::Planted(why)) => return Err(damaged(why)),
             Err(Refused::Io(e)) => {
-                return Err(Error::io(format!("cannot read {}", releases_path.display()), e));
+                return Err(Error::io(
+                    format!("cannot read {}", releases_path.display()),
+                    e,
+                ));
             }
         };
         let path = releases.join(&pointer.release);
@@ -1764,29 +1780,40 @@ impl TrustChain {
                 }
             },
             // Stores written before the chain kept the newest set alone.
-            Err(ReadCapped::Missing) => match read_capped(&root, TRUST_SET_FILE, trust_set::MAX_BYTES) {
-                Ok(bytes) => match String::from_utf8(bytes) {
-                    Ok(text) => (TRUST_SET_FILE, vec![text]),
-                    Err(_) => {
-                        chain.ignored = Some(format!("{TRUST_SET_FILE} is not UTF-8"));
+            Err(ReadCapped::Missing) => {
+                match read_capped(&root, TRUST_SET_FILE, trust_set::MAX_BYTES) {
+                    Ok(bytes) => match String::from_utf8(bytes) {
+                        Ok(text) => (TRUST_SET_FILE, vec![text]),
+                        Err(_) => {
+                            chain.ignored = Some(format!("{TRUST_SET_FILE} is not UTF-8"));
+                            return Ok(chain);
+                        }
+                    },
+                    Err(ReadCapped::Missing) => return Ok(chain),
+                    Err(ReadCapped::Io(e)) => {
+                        return Err(Error::io(
+                            format!("cannot read {}", root.join(TRUST_SET_FILE).display()),
+                            e,
+                        ));
+                    }
+                    Err(ReadCapped::Planted(why)) => {
+                        chain.ignored = Some(why);
                         return Ok(chain);
                     }
-                },
-                Err(ReadCapped::Missing) => return Ok(chain),
-                Err(ReadCapped::Io(e)) => {
-                    return Err(Error::io(format!("cannot read {}", root.join(TRUST_SET_FILE).display()), e));
+                    Err(ReadCapped::TooLarge) => {
+                        chain.ignored = Some(format!(
+                            "{TRUST_SET_FILE} is over {} bytes",
+                            trust_set::MAX_BYTES
+                        ));
+                        return Ok(chain);
+                    }
                 }
-                Err(ReadCapped::Planted(why)) => {
-                    chain.ignored = Some(why);
-                    return Ok(chain);
-                }
-                Err(ReadCapped::TooLarge) => {
-                    chain.ignored = Some(format!("{TRUST_SET_FILE} is over {} bytes", trust_set::MAX_BYTES));
-                    return Ok(chain);
-                }
-            },
+            }
             Err(ReadCapped::Io(e)) => {
-                return Err(Error::io(format!("cannot read {}", root.join(TRUST_CHAIN_FILE).display()), e));
+                return Err(Error::io(
+                    format!("cannot read {}", root.join(TRUST_CHAIN_FILE).display()),
+                    e,
+                ));
             }
             Err(ReadCapped::Planted(why)) => {
                 chain.ignored = Some(why);
@@ -2055,11 +2082,7 @@ pub(crate) fn replace_own_file(dir: &Dir, name: &str, bytes: &[u8]) -> Result<()
 /// Opens the store's own directory `name` in `dir`, making it if missing. Anything else at the
 /// name (a link, a file) is removed (a link is unlinked, never followed), told to `removed`,
 /// and the directory made anew.
-pub(crate) fn open_own_dir(
-    dir: &Dir,
-    name: &str,
-    removed: &mut dyn FnMut(String),
-) -> Result<Dir> {
+pub(crate) fn open_own_dir(dir: &Dir, name: &str, removed: &mut dyn FnMut(String)) -> Result<Dir> {
     let path = dir.join(name);
     match dir.open_dir(name) {
         Ok(opened) => return Ok(opened),

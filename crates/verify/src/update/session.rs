@@ -81,7 +81,7 @@ impl Fetch {
 /// installed files); if it cannot be had or fails any check, the session asks for the bundle
 /// next, in the same update. An app downloads either the same way.
 ///
-/// A bundle larger than its head (at most 274 KiB: `limit::HEAD_BYTES`) is asked for in two parts, both into the
+/// A bundle larger than its head (at most 274 KiB) is asked for in two parts, both into the
 /// same file: first its head, whose signed manifest the session checks (signatures, the app's
 /// policy, and the bundle's exact size, which must be the size the feed states), then the
 /// whole bundle. Resume from the file's length with an HTTP Range request each time; never

@@ -194,9 +194,19 @@ const DTYPES: [(DType, &str, i64, Option<&str>); 28] = [
     (DType::Bfloat16, "bfloat16", 16, Some("BF16")),
     (DType::Float8E4M3Fn, "float8e4m3fn", 17, Some("F8_E4M3")),
     // The two FNUZ names as the safetensors 0.8.0 wheel's library spells them (issue 11).
-    (DType::Float8E4M3Fnuz, "float8e4m3fnuz", 18, Some("F8_E4M3FNUZ")),
+    (
+        DType::Float8E4M3Fnuz,
+        "float8e4m3fnuz",
+        18,
+        Some("F8_E4M3FNUZ"),
+    ),
     (DType::Float8E5M2, "float8e5m2", 19, Some("F8_E5M2")),
-    (DType::Float8E5M2Fnuz, "float8e5m2fnuz", 20, Some("F8_E5M2FNUZ")),
+    (
+        DType::Float8E5M2Fnuz,
+        "float8e5m2fnuz",
+        20,
+        Some("F8_E5M2FNUZ"),
+    ),
     (DType::Uint4, "uint4", 21, None),
     (DType::Int4, "int4", 22, None),
     (DType::Float4E2M1, "float4e2m1", 23, Some("F4")),
@@ -1075,10 +1085,7 @@ pub(crate) fn read_as<R: Read + Seek>(
                     .ok_or_else(|| {
                         Error::new(
                             ErrorKind::Incompatible,
-                            format!(
-                                "the safetensors model has no tensor '{}'",
-                                request.tensor
-                            ),
+                            format!("the safetensors model has no tensor '{}'", request.tensor),
                         )
                     })?;
                 let mut signature = signature;

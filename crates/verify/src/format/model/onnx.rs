@@ -26,8 +26,8 @@
 
 use std::collections::HashSet;
 
-use crate::format::digest::Digest;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::digest::Digest;
 
 use super::{
     DType, Dim, ModelFormat, ModelSignature, Source, ValueKind, ValueSignature, WeightTotals,
@@ -447,7 +447,13 @@ fn read_node<S: Source>(
                 }
             }
             7 => {
-                domain = w.string(&field, end, MESSAGE, "operator domain", limit::PRODUCER_BYTES)?
+                domain = w.string(
+                    &field,
+                    end,
+                    MESSAGE,
+                    "operator domain",
+                    limit::PRODUCER_BYTES,
+                )?
             }
             _ => w.skip_field(&field, end, MESSAGE)?,
         }
@@ -479,7 +485,15 @@ fn read_attribute<S: Source>(
     while w.pos < end {
         let field = w.field(end, MESSAGE)?;
         match field.number {
-            1 => name = w.string(&field, end, MESSAGE, "attribute name", limit::PRODUCER_BYTES)?,
+            1 => {
+                name = w.string(
+                    &field,
+                    end,
+                    MESSAGE,
+                    "attribute name",
+                    limit::PRODUCER_BYTES,
+                )?
+            }
             5 => {
                 let tensor_end = w.payload_end(&field, end, MESSAGE)?;
                 let read = read_tensor(w, tensor_end, field.at, "attribute tensor")?;
@@ -621,7 +635,9 @@ fn read_tensor<S: Source>(w: &mut Wire<S>, end: u64, at: u64, what: &str) -> Res
         )));
     }
     let dtype = DType::from_onnx_code(data_type).ok_or_else(|| {
-        malformed(format!("{what} {shown} has unknown element type {data_type}"))
+        malformed(format!(
+            "{what} {shown} has unknown element type {data_type}"
+        ))
     })?;
     let mut shape = Vec::with_capacity(dims.len());
     for dim in &dims {
@@ -667,7 +683,11 @@ fn read_tensor<S: Source>(w: &mut Wire<S>, end: u64, at: u64, what: &str) -> Res
             Some(_) => (typed_bytes, "bytes"),
         };
         if elements > held {
-            let holds = if unit == "strings" { strings } else { typed_bytes };
+            let holds = if unit == "strings" {
+                strings
+            } else {
+                typed_bytes
+            };
             return Err(malformed(format!(
                 "{what} {shown} has shape {} ({elements} elements of {dtype}), but it holds only {holds} {unit} of data",
                 list(&dims)
