@@ -305,8 +305,23 @@ pub fn library_dir() -> PathBuf {
 
 #[test]
 fn issue14_the_shared_library_exports_exactly_the_header_s_functions() {
-    let library = library_dir().join("libampoule_verify_ffi.so");
-    assert!(library.exists(), "{} was not built", library.display());
+    // `cargo build` puts the library in target/<profile>; `cargo test` of the workspace leaves
+    // it in target/<profile>/deps only: take the newer of the two.
+    let dir = library_dir();
+    let library = [
+        dir.join("libampoule_verify_ffi.so"),
+        dir.join("deps/libampoule_verify_ffi.so"),
+    ]
+    .into_iter()
+    .filter_map(|p| Some((std::fs::metadata(&p).ok()?.modified().ok()?, p)))
+    .max()
+    .map(|(_, p)| p)
+    .unwrap_or_else(|| {
+        panic!(
+            "libampoule_verify_ffi.so was not built in {}",
+            dir.display()
+        )
+    });
     // nm is part of binutils, which the system C compiler the C test needs brings along.
     let out = std::process::Command::new("nm")
         .args(["-D", "--defined-only"])
