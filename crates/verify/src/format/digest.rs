@@ -185,5 +185,66 @@ mod tests {
         ] {
             assert!(bad.parse::<Digest>().is_err(), "{bad} parsed");
         }
+        // Found by cargo-mutants (issue 15): the refusal's text and the Debug form.
+        assert_eq!(
+            "ABC".parse::<Digest>().expect_err("short").to_string(),
+            "'ABC' is not a SHA-256 digest (64 lowercase hex characters)"
+        );
+        let digest: Digest = good.parse().expect("good");
+        assert_eq!(format!("{digest:?}"), format!("Digest({good})"));
+    }
+
+    /// FIPS 180-4 (and FIPS 180-2 Appendix B.1): SHA-256 of "abc".
+    const ABC: &str = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad";
+
+    #[test]
+    fn the_hasher_counts_and_hashes_what_is_written_to_it() {
+        // Found by cargo-mutants (issue 15): `Write` and `is_empty` were never exercised.
+        let mut hasher = Hasher::new();
+        assert!(hasher.is_empty());
+        assert_eq!(hasher.write(b"ab").expect("write"), 2);
+        assert!(!hasher.is_empty());
+        std::io::copy(&mut &b"c"[..], &mut hasher).expect("copy");
+        assert_eq!(hasher.len(), 3);
+        assert_eq!(hasher.finish().to_hex(), ABC);
+    }
+
+    /// Yields "abc" after one interrupted read, then fails for good if `then_fail`.
+    struct Interrupting {
+        calls: u32,
+        then_fail: bool,
+    }
+
+    impl Read for Interrupting {
+        fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+            self.calls += 1;
+            match self.calls {
+                1 => Err(io::ErrorKind::Interrupted.into()),
+                2 => {
+                    buf[..3].copy_from_slice(b"abc");
+                    Ok(3)
+                }
+                _ if self.then_fail => Err(io::Error::other("the disk went away")),
+                _ => Ok(0),
+            }
+        }
+    }
+
+    #[test]
+    fn hash_reader_retries_an_interrupted_read_and_stops_at_a_real_error() {
+        // Found by cargo-mutants (issue 15): an interrupted read (a signal) is retried, any
+        // other error ends the hashing.
+        let reader = Interrupting {
+            calls: 0,
+            then_fail: false,
+        };
+        let (digest, len) = hash_reader(reader, 1024).expect("interrupted once, then read");
+        assert_eq!((digest.to_hex().as_str(), len), (ABC, 3));
+        let failing = Interrupting {
+            calls: 0,
+            then_fail: true,
+        };
+        let err = hash_reader(failing, 1024).expect_err("a real error");
+        assert_eq!(err.to_string(), "the disk went away");
     }
 }

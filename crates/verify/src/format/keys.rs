@@ -270,3 +270,33 @@ impl FromIterator<PublicKey> for TrustedKeys {
         keys
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// RFC 8032 section 7.1, TEST 1: the public key.
+    const TEST_1: [u8; 32] = [
+        0xd7, 0x5a, 0x98, 0x01, 0x82, 0xb1, 0x0a, 0xb7, 0xd5, 0x4b, 0xfe, 0xd3, 0xc9, 0x64, 0x07,
+        0x3a, 0x0e, 0xe1, 0x72, 0xf3, 0xda, 0xa6, 0x23, 0x25, 0xaf, 0x02, 0x1a, 0x68, 0xf7, 0x07,
+        0x51, 0x1a,
+    ];
+
+    #[test]
+    fn key_ids_are_lowercase_hex_and_debug_names_them() {
+        // Found by cargo-mutants (issue 15): an uppercase id of the right length was never
+        // tried, and the Debug forms (an app's logs) were never read.
+        let key = PublicKey::from_raw(&TEST_1).expect("RFC 8032 TEST 1 key");
+        let id = key.id();
+        let text = id.to_string();
+        assert_eq!(text.parse::<KeyId>().expect("own id"), id);
+        let upper = text.to_uppercase();
+        assert_ne!(upper, text, "the id has letters");
+        assert_eq!(
+            upper.parse::<KeyId>().expect_err("uppercase").to_string(),
+            format!("'{upper}' is not a key id (32 lowercase hex characters)")
+        );
+        assert_eq!(format!("{id:?}"), format!("KeyId({text})"));
+        assert_eq!(format!("{key:?}"), format!("PublicKey({text})"));
+    }
+}
