@@ -214,3 +214,74 @@ impl Walk {
         ))
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::format::digest::Digest;
+    use crate::format::merkle::{leaf_hash, root};
+
+    /// The head of a ledger holding the first `size` of three entries (RFC 9162 hashing).
+    fn head(size: u64) -> TreeHead {
+        let leaves: Vec<Digest> = [&b"entry 0"[..], b"entry 1", b"entry 2"]
+            .iter()
+            .take(size as usize)
+            .map(|e| leaf_hash(e))
+            .collect();
+        TreeHead {
+            tree_size: size,
+            root_hash: root(&leaves),
+            time: 1_764_576_000,
+        }
+    }
+
+    fn proof(old_size: u64, new_size: u64, hashes: Vec<Digest>) -> ConsistencyProof {
+        ConsistencyProof {
+            old_size,
+            new_size,
+            hashes,
+        }
+    }
+
+    #[test]
+    fn a_walk_starts_only_where_a_step_is_needed() {
+        // Found by cargo-mutants (issue 15): the crate's own tests never started a walk.
+        let none = proof(0, 0, vec![]);
+        // The same head again: nothing to walk.
+        assert!(
+            Walk::start(&head(2), &head(2), &none)
+                .expect("same")
+                .is_none()
+        );
+        // The same size with another root: a fork, never accepted.
+        let mut forked = head(2);
+        forked.root_hash = leaf_hash(b"rewritten");
+        let err = Walk::start(&head(2), &forked, &none).expect_err("forked");
+        assert!(
+            err.to_string()
+                .contains("the ledger was forked or rewritten"),
+            "{err}"
+        );
+        // A smaller head: rolled back.
+        let err = Walk::start(&head(2), &head(1), &none).expect_err("rolled back");
+        assert_eq!(err.kind(), ErrorKind::Stale);
+        // The feed's own proof starts at the head the device saw: checked, no step file.
+        // RFC 9162 section 2.1.4.1: from size 2 to 3, SUBPROOF(2, D[0:3], true) is
+        // SUBPROOF(2, D[0:2], true) (empty: the old tree is a whole subtree) followed by
+        // MTH(D[2:3]), the third leaf's hash.
+        let feed = proof(2, 3, vec![leaf_hash(b"entry 2")]);
+        assert!(
+            Walk::start(&head(2), &head(3), &feed)
+                .expect("one proof")
+                .is_none()
+        );
+        let bad = proof(2, 3, vec![leaf_hash(b"other")]);
+        assert!(Walk::start(&head(2), &head(3), &bad).is_err());
+        // The feed's proof starts elsewhere: the walk asks for the step from the seen size.
+        let elsewhere = proof(1, 3, vec![]);
+        let walk = Walk::start(&head(2), &head(3), &elsewhere)
+            .expect("a walk")
+            .expect("a step is needed");
+        assert_eq!(walk.needs(), Some(2));
+    }
+}
