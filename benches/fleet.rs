@@ -149,12 +149,17 @@ fn withdraw(d: &Path, version: &str) {
     );
 }
 
-/// One line of the report.
-fn row(name: &str, polls: &[Poll], wall: Duration) -> String {
-    let times: Vec<Duration> = polls
+/// Each device's update time: its calls to `Device::update` in the round, retries included.
+fn update_times(polls: &[Poll]) -> Vec<Duration> {
+    polls
         .iter()
         .map(|p| p.attempts.iter().map(|a| a.time).sum())
-        .collect();
+        .collect()
+}
+
+/// One line of the report.
+fn row(name: &str, polls: &[Poll], wall: Duration) -> String {
+    let times = update_times(polls);
     let bytes: Vec<u64> = polls.iter().map(|p| p.bytes).collect();
     let updates: usize = polls.iter().map(|p| p.attempts.len()).sum();
     let faults = polls
@@ -166,9 +171,11 @@ fn row(name: &str, polls: &[Poll], wall: Duration) -> String {
     let deltas = polls.iter().filter(|p| p.delta).count();
     let mean = bytes.iter().sum::<u64>() as f64 / bytes.len().max(1) as f64;
     format!(
-        "| {name} | {updates} | {faults} | {deltas} | {:.2} | {:.2} | {:.0} | {} | {} | {:.1} |",
+        "| {name} | {updates} | {faults} | {deltas} | {:.2} | {:.2} | {:.2} | {:.0} | {} | {} | \
+         {:.1} |",
         quantile(&times, 0.5).as_secs_f64(),
         quantile(&times, 0.95).as_secs_f64(),
+        quantile(&times, 1.0).as_secs_f64(),
         mean,
         quantile(&bytes, 0.5),
         quantile(&bytes, 0.95),
@@ -176,8 +183,38 @@ fn row(name: &str, polls: &[Poll], wall: Duration) -> String {
     )
 }
 
+/// The slowest device of a round and the faults it met, to explain the max column.
+fn slowest(name: &str, polls: &[Poll]) -> String {
+    let times = update_times(polls);
+    let Some((i, time)) = times.iter().enumerate().max_by_key(|(_, t)| **t) else {
+        return String::new();
+    };
+    let met: Vec<String> = polls[i]
+        .attempts
+        .iter()
+        .flat_map(|a| &a.connections)
+        .filter_map(|c| {
+            let fault = c.fault?;
+            let path = c.request.split(' ').nth(1).unwrap_or_default();
+            let short = path.get(..path.len().min(24)).unwrap_or(path);
+            Some(format!("{} on {short}… ({})", fault.name(), c.detail))
+        })
+        .collect();
+    format!(
+        "- {name}: device {}, {:.1} s in {} update(s); faults met: {}",
+        polls[i].device,
+        time.as_secs_f64(),
+        polls[i].attempts.len(),
+        if met.is_empty() {
+            "none".to_string()
+        } else {
+            met.join("; ")
+        }
+    )
+}
+
 /// The whole run from one server: the report's rows.
-fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> Vec<String> {
+fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> (Vec<String>, Vec<String>) {
     let members: Vec<Member> = (0..settings.devices)
         .map(|index| {
             let plan = Plan::every_fault(
@@ -200,7 +237,7 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> Vec<String> {
             .unwrap_or_else(|why| panic!("seed {:#x}: {why}", settings.seed));
         (polls, start.elapsed())
     };
-    let mut rows = Vec::new();
+    let (mut rows, mut notes) = (Vec::new(), Vec::new());
 
     let first = Goal {
         version: "1.0.0".parse().expect("a version"),
@@ -220,6 +257,7 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> Vec<String> {
         &polls,
         wall,
     ));
+    notes.push(slowest("1.0.0", &polls));
     for r in 1..=settings.rounds {
         let version = format!("1.{r}.0");
         let (goal, bundle) = release(d, settings, &version, 100 + r);
@@ -231,6 +269,7 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> Vec<String> {
             &polls,
             wall,
         ));
+        notes.push(slowest(&format!("round {r}, update"), &polls));
         withdraw(d, &version);
         let kept = Goal {
             installs: false,
@@ -242,8 +281,9 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> Vec<String> {
             &polls,
             wall,
         ));
+        notes.push(slowest(&format!("round {r}, withdraw"), &polls));
     }
-    rows
+    (rows, notes)
 }
 
 fn main() {
@@ -290,7 +330,7 @@ fn main() {
             "species-1.0.0.ampoule",
         );
         publish(d, "species-1.0.0.ampoule", "stable", "100");
-        let rows = if server == "nginx" {
+        let (rows, notes) = if server == "nginx" {
             let nginx = start_nginx(d, &d.join("tree"));
             let addr = nginx
                 .base
@@ -306,11 +346,15 @@ fn main() {
         println!("\nfrom {server}:\n");
         println!(
             "| round | updates | faulty connections | installed from a delta | update p50 (s) | \
-             update p95 (s) | bytes per device, mean | p50 | p95 | round wall time (s) |"
+             p95 | max | bytes per device, mean | p50 | p95 | round wall time (s) |"
         );
-        println!("|---|---|---|---|---|---|---|---|---|---|");
+        println!("|---|---|---|---|---|---|---|---|---|---|---|");
         for r in rows {
             println!("{r}");
+        }
+        println!("\nthe slowest device of each round:\n");
+        for n in notes {
+            println!("{n}");
         }
     }
     println!("\nload average at end: {}", load_average());
