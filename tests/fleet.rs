@@ -167,8 +167,9 @@ fn summary(name: &str, polls: &[Poll]) {
     );
 }
 
-/// The three rounds on ten devices, through their proxies in front of `upstream`.
-fn fleet(d: &Path, upstream: SocketAddr, server: &str) {
+/// The three rounds on ten devices, through their proxies in front of `upstream`, which
+/// serves the tree where `first` (1.0.0) is published.
+fn fleet(d: &Path, upstream: SocketAddr, server: &str, first: &Goal) {
     let seed = seed();
     println!(
         "fleet from {server}: {DEVICES} devices, seed {seed:#x} (AMPOULE_FLEET_SEED={seed:#x} \
@@ -195,17 +196,7 @@ fn fleet(d: &Path, upstream: SocketAddr, server: &str) {
             .unwrap_or_else(|why| panic!("fleet from {server}, seed {seed:#x}: {why}"))
     };
 
-    // 1.0.0 was published before the server started.
-    let first = Goal {
-        version: "1.0.0".parse().expect("version"),
-        installs: true,
-        files: vec![
-            ("model.bin".into(), sha256_file(&d.join("model-1.0.0.bin"))),
-            ("labels.txt".into(), sha256_file(&d.join("labels.txt"))),
-        ],
-        max_attempts: MAX_ATTEMPTS,
-    };
-    let polls = run(&first);
+    let polls = run(first);
     summary("1.0.0, fresh stores", &polls);
 
     let Published {
@@ -264,18 +255,10 @@ fn fleet(d: &Path, upstream: SocketAddr, server: &str) {
 fn issue15_ten_devices_at_once_through_faults_from_the_built_in_server() {
     let dir = setup();
     let d = dir.path();
-    write_model(d, "model-1.0.0.bin", 0);
-    pack_model(
-        d,
-        "model-1.0.0.bin",
-        "1.0.0",
-        "k.pem",
-        "species-1.0.0.ampoule",
-    );
-    publish(d, "species-1.0.0.ampoule", "stable", "100");
+    let first = release(d, "1.0.0", 0).goal;
     let server = Server::start(d.join("tree"), "127.0.0.1:0".parse().expect("addr"))
         .expect("the server starts");
-    fleet(d, server.addr(), "the built-in server");
+    fleet(d, server.addr(), "the built-in server", &first);
 }
 
 #[test]
@@ -286,22 +269,14 @@ fn issue15_ten_devices_at_once_through_faults_from_nginx() {
     }
     let dir = setup();
     let d = dir.path();
-    write_model(d, "model-1.0.0.bin", 0);
-    pack_model(
-        d,
-        "model-1.0.0.bin",
-        "1.0.0",
-        "k.pem",
-        "species-1.0.0.ampoule",
-    );
-    publish(d, "species-1.0.0.ampoule", "stable", "100");
+    let first = release(d, "1.0.0", 0).goal;
     let nginx = start_nginx(d, &d.join("tree"));
     let addr = nginx
         .base
         .strip_prefix("http://")
         .and_then(|a| a.parse().ok())
         .expect("nginx's address");
-    fleet(d, addr, "nginx");
+    fleet(d, addr, "nginx", &first);
 }
 
 // Each fault alone.
@@ -341,10 +316,10 @@ impl Place {
     }
 }
 
-/// The single-fault tests' timeouts: a head is awaited 2 s, a piece of a body 1 s.
+/// The single-fault tests' timeouts: a head is awaited 3 s, a piece of a body 2 s.
 const ONE_CONNECT: Duration = Duration::from_secs(1);
-const ONE_READ: Duration = Duration::from_secs(1);
-const ONE_STALL: Duration = Duration::from_millis(3500);
+const ONE_READ: Duration = Duration::from_secs(2);
+const ONE_STALL: Duration = Duration::from_secs(4);
 
 /// What one place's faulty update did, and the update after it.
 struct Struck {
@@ -615,8 +590,8 @@ fn issue15_a_stalled_connection_times_out_retryably_and_the_next_update_installs
         // Silent before the status line or inside the body: the proxy's draw decides which.
         let timed_out = |url: &str| {
             vec![
-                format!("no data from {url} for 1 s (read timeout)"),
-                format!("no response from {url} within 2 s (connect and read timeouts)"),
+                format!("no data from {url} for 2 s (read timeout)"),
+                format!("no response from {url} within 3 s (connect and read timeouts)"),
             ]
         };
         let then = match s.place {
