@@ -227,8 +227,39 @@ pub fn check_store(store: &Path, goal: &Goal) -> Result<(), String> {
     if !left.is_empty() {
         return Err(format!("half-written files left in the store: {left:?}"));
     }
+    let mut paths = Vec::new();
+    walk(store, store, &mut paths);
+    let unknown: Vec<&String> = paths
+        .iter()
+        .filter(|p| {
+            !(STORE_LAYOUT.contains(&p.as_str())
+                || p.starts_with("releases/")
+                || (p.starts_with("feeds/") && p.ends_with(".json") && p.matches('/').count() == 1))
+        })
+        .collect();
+    if !unknown.is_empty() {
+        return Err(format!(
+            "the store holds what its layout (FORMAT.md) does not: {unknown:?}"
+        ));
+    }
     Ok(())
 }
+
+/// Every path a store at rest may hold besides its releases and kept feeds: FORMAT.md's table
+/// "The device's store, file by file", without the temporary files and partial downloads.
+const STORE_LAYOUT: &[&str] = &[
+    "state.json",
+    "lock",
+    "device-id",
+    "highest.json",
+    "trust-chain.json",
+    "trust-set.json",
+    "feeds",
+    "releases",
+    "downloads",
+    "downloads/lock",
+    "downloads/refused.json",
+];
 
 /// Whether an update that did not install is explained by what the proxy did during it: a
 /// refusal only by a corrupted byte (the bytes then differ from what was signed), a failure

@@ -8,7 +8,8 @@
 //! Each connection's fault is drawn from the plan's seed and the connection's number alone, so
 //! a proxy that serves one device (each device gets its own, and a device makes its requests
 //! one after another) repeats its faults on a rerun with the same seed. A plan can also force a
-//! fault on a given connection, so that a short run meets every fault.
+//! fault on the nth request whose request line holds a pattern (the feed, a delta), so that a
+//! short run meets every fault where it matters.
 //!
 //! Plain std threads and sockets: one thread accepts, one thread per connection relays the
 //! answer (and applies the fault), one more copies whatever else the client sends upstream.
@@ -40,7 +41,7 @@ pub enum Fault {
     /// and the connection closed.
     Truncate,
     /// The proxy sends nothing more, either before the status line or after part of the body,
-    /// for longer than the client's read timeout, then closes.
+    /// for longer than the client's timeouts (the plan's `stall`), then closes.
     Stall,
     /// The whole connection trickles: small pieces with pauses, slower than a loopback link
     /// by orders of magnitude but faster than the client's minimum rate.
