@@ -347,7 +347,7 @@ fn copy_dir(from: &Path, to: &Path) {
     }
 }
 
-/// One device per place, all at once: on a tree with 1.0.0 then 1.1.0 (and its delta)
+/// One device per place, all at once (within [`DEADLINE`]): on a tree with 1.0.0 then 1.1.0 (and its delta)
 /// published, a fresh store or a copy of a store on 1.0.0 updates once with `fault` at its
 /// place, then, if that did not install, once more with no fault. `fleet_common::poll` checks
 /// the store after each update (the old or the new verified model, nothing half-written, an
@@ -379,32 +379,67 @@ fn strike(fault: Fault) -> (Vec<Struck>, u64) {
         fault.name(),
         Plan::clean().stall(ONE_STALL).describe()
     );
-    let struck = std::thread::scope(|scope| {
-        let threads: Vec<_> = Place::ALL
-            .iter()
-            .enumerate()
-            .map(|(n, &place)| {
-                let store = d.join(format!("cam-{n}"));
-                if !place.fresh() {
-                    copy_dir(&d.join("base"), &store);
-                }
-                let (pattern, nth) = place.rule();
-                let plan = Plan::clean().stall(ONE_STALL).force(pattern, nth, fault);
-                let member = Member {
-                    index: n + 1,
-                    store,
-                    proxy: Arc::new(Proxy::start(server.addr(), plan).expect("the proxy starts")),
-                };
-                let (app, transfer, once, sha256) = (&app, &transfer, &once, &second.sha256);
-                scope.spawn(move || struck_at(fault, place, &member, app, transfer, once, sha256))
-            })
-            .collect();
-        threads
-            .into_iter()
-            .map(|t| t.join().expect("a place's thread"))
-            .collect()
-    });
+    // A thread per place; a place that has not finished within the deadline fails the test
+    // (a hang), and a place's panic is passed on with its message.
+    let (tx, rx) = std::sync::mpsc::channel();
+    for (n, &place) in Place::ALL.iter().enumerate() {
+        let store = d.join(format!("cam-{n}"));
+        if !place.fresh() {
+            copy_dir(&d.join("base"), &store);
+        }
+        let (pattern, nth) = place.rule();
+        let plan = Plan::clean().stall(ONE_STALL).force(pattern, nth, fault);
+        let member = Member {
+            index: n + 1,
+            store,
+            proxy: Arc::new(Proxy::start(server.addr(), plan).expect("the proxy starts")),
+        };
+        let (app, transfer, once, sha256) = (
+            app.clone(),
+            transfer.clone(),
+            once.clone(),
+            second.sha256.clone(),
+        );
+        let tx = tx.clone();
+        std::thread::spawn(move || {
+            let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                struck_at(fault, place, &member, &app, &transfer, &once, &sha256)
+            }));
+            let _ = tx.send((place, result.map_err(|panic| panic_text(&*panic))));
+        });
+    }
+    drop(tx);
+    let end = std::time::Instant::now() + DEADLINE;
+    let mut struck = Vec::new();
+    while struck.len() < Place::ALL.len() {
+        let left = end.saturating_duration_since(std::time::Instant::now());
+        match rx.recv_timeout(left) {
+            Ok((_, Ok(one))) => struck.push(one),
+            Ok((place, Err(why))) => panic!("{} at {place:?}: {why}", fault.name()),
+            Err(_) => {
+                let done: Vec<Place> = struck.iter().map(|s: &Struck| s.place).collect();
+                panic!(
+                    "{}: not finished within {} s: {:?}",
+                    fault.name(),
+                    DEADLINE.as_secs(),
+                    Place::ALL
+                        .iter()
+                        .filter(|p| !done.contains(p))
+                        .collect::<Vec<_>>()
+                );
+            }
+        }
+    }
     (struck, second.size)
+}
+
+/// The message of a panic, as `panic!` made it.
+fn panic_text(panic: &(dyn std::any::Any + Send)) -> String {
+    panic
+        .downcast_ref::<String>()
+        .cloned()
+        .or_else(|| panic.downcast_ref::<&str>().map(|s| s.to_string()))
+        .unwrap_or_else(|| "a panic without a message".into())
 }
 
 /// One place of [`strike`].
