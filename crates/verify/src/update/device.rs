@@ -213,7 +213,7 @@ impl Device {
                         )
                     });
                     match done {
-                        Ok(()) => session.downloaded_and_checked(),
+                        Ok(()) => session.downloaded_and_checked(None),
                         Err(e) => return session.fail_with(e),
                     }
                 }
@@ -222,17 +222,17 @@ impl Device {
                         Ok(file) => file,
                         Err(e) => return session.fail_with(e),
                     };
-                    match crate::net::download_into(
-                        want.urls(),
-                        &mut file,
-                        want.path(),
-                        want.size(),
-                        want.sha256(),
-                        want.earlier,
-                        transfer,
-                    ) {
+                    let partial = crate::net::Partial {
+                        file: &mut file,
+                        path: want.path(),
+                        size: want.size(),
+                        sha256: want.sha256(),
+                        earlier: want.earlier,
+                        watch: want.watch.as_deref(),
+                    };
+                    match crate::net::download_into(want.urls(), partial, transfer) {
                         // The download checked size and SHA-256 as it streamed.
-                        Ok(()) => session.downloaded_and_checked(),
+                        Ok(received) => session.downloaded_and_checked(Some(received)),
                         // A delta that cannot be had: the bundle next, in this update.
                         Err(e) if want.delta.is_some() => {
                             if let Err(e) = session.delta_failed(e) {
