@@ -733,7 +733,7 @@ impl Session {
                     ErrorKind::Digest,
                     format!(
                         "{chunk}, in the bytes from {url}; the first {good} bytes (the head and \
-                         {checked} chunks that checked) are kept, and the rest is downloaded again"
+                         {checked} chunks that checked) are kept, and the next try downloads from there"
                     ),
                 ));
             }
