@@ -24,7 +24,7 @@ use crate::format::time::Timestamp;
 use crate::format::trust_proofs::{self, TrustSetProofs};
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
 use crate::payload::delta::VerifiedDelta;
-use crate::store::{Store, StoreState};
+use crate::store::{HeldLock, Store, StoreState};
 
 use super::device::store_verifier;
 use super::refusals;
@@ -191,7 +191,7 @@ impl Download {
 /// it is dropped.
 pub struct Session<'d> {
     device: &'d Device,
-    lock: Option<File>,
+    lock: Option<HeldLock>,
     feed_url: String,
     feed_bytes: Vec<u8>,
     now: Timestamp,
@@ -294,7 +294,7 @@ impl std::fmt::Debug for Session<'_> {
 impl<'d> Session<'d> {
     pub(crate) fn new(
         device: &'d Device,
-        lock: Result<File>,
+        lock: Result<HeldLock>,
         feed_url: &str,
         feed_bytes: Vec<u8>,
         now: Timestamp,
@@ -958,7 +958,7 @@ impl<'d> Session<'d> {
         // store prepared.
         let earlier = self
             .device
-            .partial_download(lock, &name, size)?
+            .partial_download(lock.file(), &name, size)?
             .metadata()
             .map_or(0, |m| m.len());
         // The head of a bundle first when it is larger than one: its signed manifest fixes
