@@ -728,7 +728,6 @@ impl Session {
             if let Some((chunk, good, checked)) = bad_chunk {
                 // Every chunk before this one checked: keep them, and ask for the rest again.
                 file.set_len(good).map_err(|e| io("truncate", e))?;
-                file.sync_data().map_err(|e| io("flush", e))?;
                 return Err(Error::new(
                     ErrorKind::Digest,
                     format!(
@@ -737,7 +736,14 @@ impl Session {
                     ),
                 ));
             }
-            file.sync_data().map_err(|e| io("flush", e))?;
+            // Flushed so that a resume after a power cut finds what was written. With a
+            // watch it is not needed: a resume checks the kept chunks again and cuts the file
+            // where its bytes went missing, and the install reads the file from the page
+            // cache and checks it all again; the file is removed once installed, so most of
+            // its bytes never reach the disk (a phone's flash is spared 80 MB of writes).
+            if watch.is_none() {
+                file.sync_data().map_err(|e| io("flush", e))?;
+            }
             match result {
                 Err(BodyError::Refused(e)) if overrun => {
                     // Nothing this server sent can be trusted as a prefix.
