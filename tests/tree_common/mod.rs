@@ -131,18 +131,34 @@ pub fn write_model(d: &Path, name: &str, variant: u8) {
 /// sequence, the constants of Numerical Recipes' `ranqd1`, from memory), so the bundle is
 /// larger than its head (274 KiB) and the session asks for the head first.
 pub fn pack_large(d: &Path, version: &str) -> String {
-    let mut x: u32 = 0x2545_f491;
-    let bytes: Vec<u8> = (0..300_000)
+    let model = format!("large-{version}.bin");
+    std::fs::write(d.join(&model), incompressible(300_000, 0x2545_f491)).expect("model");
+    let out = format!("large-{version}.ampoule");
+    pack_model(d, &model, version, "k.pem", &out);
+    out
+}
+
+/// `len` bytes that do not compress: the high bytes of a linear congruential sequence
+/// started at `seed` (the constants of Numerical Recipes' `ranqd1`, from memory).
+pub fn incompressible(len: usize, seed: u32) -> Vec<u8> {
+    let mut x = seed;
+    (0..len)
         .map(|_| {
             x = x.wrapping_mul(1_664_525).wrapping_add(1_013_904_223);
             (x >> 24) as u8
         })
-        .collect();
-    let model = format!("large-{version}.bin");
-    std::fs::write(d.join(&model), bytes).expect("model");
-    let out = format!("large-{version}.ampoule");
+        .collect()
+}
+
+/// Packs `version` with an incompressible model of `len` bytes: a format 2 bundle of about
+/// `len / 512 KiB` chunks. Returns the bundle's file name and the model's bytes.
+pub fn pack_chunky(d: &Path, version: &str, len: usize) -> (String, Vec<u8>) {
+    let bytes = incompressible(len, 0x2545_f491 ^ len as u32);
+    let model = format!("chunky-{version}.bin");
+    std::fs::write(d.join(&model), &bytes).expect("model");
+    let out = format!("chunky-{version}.ampoule");
     pack_model(d, &model, version, "k.pem", &out);
-    out
+    (out, bytes)
 }
 
 /// Re-signs the channel's feed after `change` edits its text, as someone holding the feed key
