@@ -975,3 +975,43 @@ fn issue13_an_app_download_with_a_damaged_chunk_keeps_the_chunks_before_it() {
     assert_eq!(installed_version(&report), Version::new(1, 0, 0));
     assert_eq!(written, size - kept, "only what was not kept");
 }
+
+/// Another part of the app switches the store to another channel while an update of the old
+/// one waits for its download: the update does not make the old channel's release current.
+/// The session checked the channel when it began; the store checks it again under its own
+/// lock when it installs.
+#[test]
+fn issue14_a_store_switched_during_an_update_installs_nothing_from_the_old_channel() {
+    let dir = setup();
+    let d = dir.path();
+    let (device, _) = camera_on_1_0_0(d);
+    offer_1_1_0(d);
+    let (report, _) = run(&device, d, "stable", &|served, want| {
+        let beta = Device::open(&d.join("cam"), "beta", app(d), Timestamp::now()).expect("open");
+        beta.switch_channel()
+            .expect("switch between the app's steps");
+        std::fs::copy(served, want.path()).expect("download");
+        Some(want.path().to_path_buf())
+    });
+    let Outcome::Failed(e) = &report.outcome else {
+        panic!("expected a failure, not a refusal of the release: {report:?}");
+    };
+    assert_eq!(e.kind(), ErrorKind::Settings);
+    assert_eq!(
+        e.to_string(),
+        format!(
+            "store {} follows channel 'beta' (switched while this update ran), not 'stable', \
+             the channel this release came from; nothing was installed",
+            d.join("cam").display()
+        )
+    );
+    assert_eq!(
+        device
+            .current()
+            .expect("store")
+            .expect("a release")
+            .manifest
+            .version,
+        Version::new(1, 0, 0)
+    );
+}

@@ -1483,6 +1483,24 @@ impl Store {
             (None, None) => {}
             (Some(channel), feed) => {
                 check_channel(channel)?;
+                // A device's update (a feed with its digest) checked the channel when it
+                // began; the store may have been switched since (between an app's steps),
+                // and a release of the channel it no longer follows must not become current.
+                // Not a refusal of the release (nothing is remembered against it): the app's
+                // own setting changed. `Store::install` itself may name any channel.
+                if let (Some(followed), Some((_, Some(_)))) = (&next.channel, feed)
+                    && followed != channel
+                {
+                    return Err(Error::new(
+                        ErrorKind::Settings,
+                        format!(
+                            "store {} follows channel '{followed}' (switched while this update \
+                             ran), not '{channel}', the channel this release came from; \
+                             nothing was installed",
+                            self.dir.display()
+                        ),
+                    ));
+                }
                 next.channel.get_or_insert_with(|| channel.to_string());
                 let known = next.channels.get(channel);
                 if let Some((sequence, digest)) = feed {

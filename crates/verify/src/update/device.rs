@@ -116,7 +116,9 @@ impl Device {
     /// # Errors
     ///
     /// [`ErrorKind::Policy`] when there is no previous release; the check's refusal when the
-    /// previous release fails it; [`ErrorKind::Locked`] while an update runs; I/O errors.
+    /// previous release fails it; [`ErrorKind::Locked`] while an update installs (an update
+    /// holds the store's lock only then; between its steps this runs, and the update's
+    /// install then takes the store as it finds it); I/O errors.
     pub fn rollback(&self) -> Result<Release> {
         self.store.rollback()
     }
@@ -127,18 +129,20 @@ impl Device {
     ///
     /// # Errors
     ///
-    /// [`ErrorKind::Locked`] while an update runs; I/O errors.
+    /// [`ErrorKind::Locked`] while an update installs; I/O errors.
     pub fn gc(&self) -> Result<Vec<PathBuf>> {
         // The store's gc removes downloads too, while no update holds them.
         self.store.gc()
     }
 
     /// Makes the store follow this device's channel from now on (see [`Device::open`]); the
-    /// highest version it accepted stays, so nothing older installs from the new channel.
+    /// highest version it accepted stays, so nothing older installs from the new channel. An
+    /// update of the old channel still running (between an app's steps) then installs
+    /// nothing: it ends with [`ErrorKind::Settings`].
     ///
     /// # Errors
     ///
-    /// [`ErrorKind::Locked`] while an update runs; I/O errors.
+    /// [`ErrorKind::Locked`] while an update installs; I/O errors.
     pub fn switch_channel(&self) -> Result<()> {
         self.store.switch_channel(&self.channel)
     }
