@@ -14,7 +14,7 @@ use std::process::Command;
 use std::sync::OnceLock;
 
 use ampoule_verify::PublicKey;
-use tree_common::{ok, pack_model_with, publish, write_model};
+use tree_common::{ok, pack_model_with, publish, serve_tree, write_model};
 
 /// The two builds of the C program, and the files every case reads.
 struct Built {
@@ -139,6 +139,12 @@ fn make_fixtures(d: &Path) {
             &["--meta-file", "meta.json"],
         );
         assert!(packed.status.success(), "{packed:?}");
+        if name == "v2" {
+            // Two appends on another channel before 1.1.0: a device that accepted 1.0.0
+            // walks the ledger's consistency steps (FETCH steps, over HTTP).
+            publish(d, "v1.ampoule", "beta", "100");
+            publish(d, "v1.ampoule", "beta", "100");
+        }
         publish(d, &bundle, "stable", "100");
         let offline = format!("{name}.offline");
         ok(
@@ -200,12 +206,28 @@ fn make_fixtures(d: &Path) {
 /// Runs one case of the C program, plainly and under AddressSanitizer, each in a fresh
 /// scratch directory, and requires both to pass.
 fn case(name: &str) {
+    run_case(name, None);
+}
+
+/// Runs one case that updates over HTTP, with `ampoule serve` serving the fixtures' release
+/// tree on a free port of 127.0.0.1 for as long as the case runs.
+fn http_case(name: &str) {
+    let built = built();
+    let served = serve_tree(&built.fixtures, "tree");
+    run_case(name, Some(&served.addr));
+}
+
+fn run_case(name: &str, server: Option<&str>) {
     let built = built();
     for (build, program) in [("plain", &built.plain), ("asan", &built.asan)] {
         let scratch = built.scratch.join(format!("{name}-{build}"));
         let _ = std::fs::remove_dir_all(&scratch);
         std::fs::create_dir_all(&scratch).expect("a scratch directory");
-        let out = Command::new(program)
+        let mut command = Command::new(program);
+        if let Some(addr) = server {
+            command.env("AMPOULE_TEST_SERVER", addr);
+        }
+        let out = command
             .arg(name)
             .arg(&built.fixtures)
             .arg(&scratch)
@@ -287,4 +309,34 @@ fn issue14_c_a_malformed_policy_document_is_refused() {
 #[test]
 fn issue14_c_a_policy_document_over_its_caps_is_refused() {
     case("policy_document_over_caps");
+}
+
+#[test]
+fn issue14_c_an_update_over_http_step_by_step_catches_up_installs_and_rolls_back() {
+    http_case("http_update");
+}
+
+#[test]
+fn issue14_c_a_cut_off_download_fails_with_network_and_the_next_update_resumes_it() {
+    http_case("http_resume");
+}
+
+#[test]
+fn issue14_c_a_bundle_changed_in_transit_is_refused_with_digest() {
+    http_case("http_tampered");
+}
+
+#[test]
+fn issue14_c_a_bundle_the_policy_refuses_over_http_is_refused_with_incompatible() {
+    http_case("http_policy_refused");
+}
+
+#[test]
+fn issue14_c_a_session_holds_the_store_s_lock_until_freed() {
+    http_case("session_locks_the_store");
+}
+
+#[test]
+fn issue14_c_sessions_misused_are_refused_by_name() {
+    http_case("session_misuse");
 }

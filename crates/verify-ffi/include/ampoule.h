@@ -11,8 +11,10 @@
  *                                              version and its policy document (FORMAT.md,
  *                                              "The policy document")
  *   3. ampoule_current()                       the release to load at start-up (checked in full)
- *   4. ampoule_install_offline()               an update from a file made by `ampoule offline`;
- *                                              its outcome says what happened
+ *   4. ampoule_update_begin(), _next(), ...    an update over the app's own HTTP, step by
+ *      ampoule_session_free()                  step (see below), or ampoule_install_offline():
+ *                                              an update from a file made by `ampoule offline`;
+ *                                              the outcome says what happened
  *   5. ampoule_release_field(), _label_count(), _label(), _metadata()
  *                                              the model's path, labels and manifest
  *   6. ampoule_rollback()                      when the app's own health check fails
@@ -247,27 +249,125 @@ int32_t ampoule_release_metadata(ampoule_release release, const char *key, size_
                                  uint8_t *buf, size_t cap, size_t *len, ampoule_error *err);
 
 /*
- * Planned for ABI version 1 additions, once the update session's delta support (issue 13)
- * settles; declared here as a design, not implemented:
+ * The step-by-step update, for apps with their own HTTP stack. The app fetches the channel's
+ * feed itself and starts a session on its bytes; the session then says what it needs next,
+ * the app fetches it and hands it in, and so on until the step is DONE:
  *
- * The step-by-step update, for apps with their own HTTP stack (the library's Session):
- *   int32_t ampoule_update_begin(ampoule_store store, const char *feed_url, size_t feed_url_len,
- *                                const uint8_t *feed, size_t feed_len, int64_t now_unix,
- *                                ampoule_session *out, ampoule_error *err);
- *   int32_t ampoule_update_next(ampoule_session session, ampoule_step *step, ampoule_error *err);
- *       step->kind: AMPOULE_STEP_FETCH (fetch step->url, at most step->max_bytes, then call
- *       ampoule_update_provide), AMPOULE_STEP_DOWNLOAD (write the bundle into the file at
- *       step->path, step->size bytes with SHA-256 step->sha256, from one of the URLs read
- *       with ampoule_step_url, then call ampoule_update_downloaded), AMPOULE_STEP_DONE
- *       (step->outcome holds the outcome, as ampoule_install_offline's).
- *   int32_t ampoule_update_provide(ampoule_session session, const uint8_t *bytes, size_t len,
- *                                  ampoule_error *err);
- *   int32_t ampoule_update_downloaded(ampoule_session session, ampoule_error *err);
- *   int32_t ampoule_update_fail(ampoule_session session, int32_t status, const char *message,
- *                               size_t message_len, ampoule_error *err);
- *   int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
- *   A session holds the store's update lock until it is done or freed; it may be driven from
- *   any thread, one call at a time.
+ *   ampoule_update_begin(store, feed_url, feed bytes)  -> session
+ *   loop: ampoule_update_next(session, &step)
+ *     FETCH:    GET ampoule_update_url(session, 0), at most step.max_bytes;
+ *               ampoule_update_provide(session, bytes)   (or ampoule_update_fail)
+ *     DOWNLOAD: GET ampoule_update_url(session, i) for i < step.url_count, bytes step.offset
+ *               to step.size - 1 (an HTTP Range request when offset > 0);
+ *               ampoule_update_write(session, piece) for each piece as it arrives, then
+ *               ampoule_update_downloaded(session)     (or ampoule_update_fail)
+ *     DONE:     step.outcome, with the same status as ampoule_install_offline's
+ *   ampoule_session_free(session)
+ *
+ * Every check of the library's update runs, in the same order, whoever does the HTTP: the
+ * bytes handed in are checked when the session takes its next step. A large bundle is asked
+ * for twice (its head first, whose signed manifest is checked before the rest is fetched):
+ * each time, append from step.offset. A download asked for again after a failed update
+ * resumes: step.offset is what the store kept.
+ *
+ * Ownership. The session is a handle the caller frees with ampoule_session_free, also after
+ * DONE. Bytes handed in are copied during the call. The download file belongs to the store:
+ * the app never opens it; ampoule_update_write appends to it (opened without following a
+ * link planted in the store's directory) and refuses to write past step.size.
+ *
+ * Threads. A session holds the store's update lock from ampoule_update_begin until it is
+ * freed: meanwhile another session, ampoule_install_offline or ampoule_rollback on the same
+ * store (from any handle or process) ends at once with AMPOULE_LOCKED, while ampoule_current
+ * and release reads go on. A session may be driven from any thread (a coroutine that resumes
+ * elsewhere is fine); calls on one session from two threads at once take turns. The library
+ * runs each session on a thread of its own, which ampoule_session_free ends and waits for
+ * (when another thread's call still uses the session, that call's return ends it).
+ */
+
+/* An update in progress, driven step by step. 0 is no session. */
+typedef struct ampoule_session {
+    uint64_t id;
+} ampoule_session;
+
+/* Step kinds (ampoule_step.kind). */
+#define AMPOULE_STEP_FETCH 1    /* fetch a small document; hand it in with ampoule_update_provide */
+#define AMPOULE_STEP_DOWNLOAD 2 /* download the bundle with ampoule_update_write */
+#define AMPOULE_STEP_DONE 3     /* the update ended: step.outcome */
+
+/* The bytes of a SHA-256 digest (FIPS 180-4). */
+#define AMPOULE_SHA256_BYTES 32
+
+/* What the update needs next, or how it ended. */
+typedef struct ampoule_step {
+    int32_t kind;       /* AMPOULE_STEP_* */
+    uint32_t url_count; /* FETCH: 1; DOWNLOAD: the mirrors, in the order to try */
+    uint64_t max_bytes; /* FETCH: the most bytes the document may have; stop reading there */
+    uint64_t offset;    /* DOWNLOAD: bytes the file holds already; ask for the rest from here */
+    uint64_t size;      /* DOWNLOAD: bytes the file holds when complete; never send more */
+    uint8_t sha256[AMPOULE_SHA256_BYTES]; /* DOWNLOAD: the whole file's SHA-256, as the signed
+                                           * feed declares it (the session checks it) */
+    ampoule_outcome outcome; /* DONE: as ampoule_install_offline's; INSTALLED's release is a
+                              * handle the caller frees */
+} ampoule_step;
+
+/* Starts an update of store on the feed the app fetched from feed_url (the channel's feed,
+ * feeds/<channel>.json in the release tree; other URLs are resolved against it), at clock time
+ * now_unix. *out is a session handle to free with ampoule_session_free. The session takes the
+ * store's update lock now: when another update holds it, the first step is DONE with FAILED
+ * and AMPOULE_LOCKED. Errors: AMPOULE_INVALID_ARGUMENT, AMPOULE_INVALID_HANDLE, AMPOULE_IO.
+ * Concurrency: any thread; see the threads paragraph above. */
+int32_t ampoule_update_begin(ampoule_store store, const char *feed_url, size_t feed_url_len,
+                             const uint8_t *feed, size_t feed_len, int64_t now_unix,
+                             ampoule_session *out, ampoule_error *err);
+
+/* Runs the update as far as it can go without the app and fills *step with what it needs
+ * (status AMPOULE_OK) or how it ended (kind DONE; the status is the outcome's, as
+ * ampoule_install_offline's: AMPOULE_OK, AMPOULE_NEEDS_OTHER_APP, or the kind of the refusal
+ * or failure). A step not answered is asked again. After DONE it returns DONE with FAILED and
+ * AMPOULE_SETTINGS. Concurrency: one call at a time per session (others wait their turn). */
+int32_t ampoule_update_next(ampoule_session session, ampoule_step *step, ampoule_error *err);
+
+/* The URL at index (0 to step.url_count - 1) of the last step, copied into buf as
+ * ampoule_release_field copies; AMPOULE_NOT_FOUND past the last one, AMPOULE_INVALID_ARGUMENT
+ * when the last step asks for no URL. Concurrency: as ampoule_update_next. */
+int32_t ampoule_update_url(ampoule_session session, size_t index, uint8_t *buf, size_t cap,
+                           size_t *len, ampoule_error *err);
+
+/* Hands in the document a FETCH step asked for (copied); it is checked at the next
+ * ampoule_update_next. AMPOULE_TOO_LARGE over step.max_bytes (nothing is kept: end the update
+ * with ampoule_update_fail); AMPOULE_INVALID_ARGUMENT when the last step is not FETCH.
+ * Concurrency: as ampoule_update_next. */
+int32_t ampoule_update_provide(ampoule_session session, const uint8_t *bytes, size_t len,
+                               ampoule_error *err);
+
+/* Appends len bytes of the download a DOWNLOAD step asked for to the store's download file.
+ * AMPOULE_TOO_LARGE when they would take the file past step.size (nothing is written);
+ * AMPOULE_STORE when the file was replaced behind the session's back; AMPOULE_IO;
+ * AMPOULE_INVALID_ARGUMENT when the last step is not DOWNLOAD. Concurrency: as
+ * ampoule_update_next. */
+int32_t ampoule_update_write(ampoule_session session, const uint8_t *bytes, size_t len,
+                             ampoule_error *err);
+
+/* Says the download of the last DOWNLOAD step is complete (the file holds step.size bytes); its
+ * size and SHA-256 are checked at the next ampoule_update_next, before anything reads it.
+ * AMPOULE_INVALID_ARGUMENT when the last step is not DOWNLOAD. Concurrency: as
+ * ampoule_update_next. */
+int32_t ampoule_update_downloaded(ampoule_session session, ampoule_error *err);
+
+/* Ends the update because the app could not fetch what was asked; why (UTF-8, for the
+ * message: an HTTP status, a timeout) is kept in the error. *out receives the outcome: FAILED
+ * with AMPOULE_NETWORK; the running model stays, and a partial download stays for the next
+ * update to resume. Concurrency: as ampoule_update_next. */
+int32_t ampoule_update_fail(ampoule_session session, const char *why, size_t why_len,
+                            ampoule_outcome *out, ampoule_error *err);
+
+/* Frees a session handle, ending its update if it has not ended, and releases the store's
+ * update lock (once no other thread's call still uses the session). A second free is
+ * AMPOULE_INVALID_HANDLE. Concurrency: any thread. */
+int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
+
+/*
+ * Planned for ABI version 1 additions, declared here as a design, not implemented:
  *
  * The URL update, in builds with the `fetch` feature:
  *   int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_url_len,

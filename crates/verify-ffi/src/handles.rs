@@ -14,12 +14,15 @@ use std::sync::{Arc, Mutex, MutexGuard, PoisonError};
 
 use ampoule_verify::{Device, Release};
 
+use crate::session::UpdateSession;
 use crate::status::Failure;
 
 /// The tag of a store handle ("ST").
 pub const STORE_TAG: u64 = 0x5354;
 /// The tag of a release handle ("RL").
 pub const RELEASE_TAG: u64 = 0x524c;
+/// The tag of an update session's handle ("SE").
+pub const SESSION_TAG: u64 = 0x5345;
 const SERIAL_BITS: u32 = 48;
 
 /// One live object.
@@ -27,6 +30,7 @@ const SERIAL_BITS: u32 = 48;
 enum Entry {
     Store(Arc<Device>),
     Release(Arc<Release>),
+    Session(Arc<UpdateSession>),
 }
 
 struct Registry {
@@ -67,7 +71,13 @@ fn get(id: u64, tag: u64) -> Option<Entry> {
 }
 
 fn remove(id: u64, tag: u64) -> bool {
-    id >> SERIAL_BITS == tag && registry().live.remove(&id).is_some()
+    if id >> SERIAL_BITS != tag {
+        return false;
+    }
+    let removed = registry().live.remove(&id);
+    // Dropped after the registry's lock is released: the last reference to a session waits
+    // for its thread to end.
+    removed.is_some()
 }
 
 /// Registers a store and returns its handle.
@@ -78,6 +88,11 @@ pub fn add_store(device: Device) -> Result<u64, Failure> {
 /// Registers a release and returns its handle.
 pub fn add_release(release: Release) -> Result<u64, Failure> {
     add(RELEASE_TAG, Entry::Release(Arc::new(release)))
+}
+
+/// Registers an update session and returns its handle.
+pub fn add_session(session: UpdateSession) -> Result<u64, Failure> {
+    add(SESSION_TAG, Entry::Session(Arc::new(session)))
 }
 
 /// The store a handle names.
@@ -93,6 +108,23 @@ pub fn release(id: u64) -> Result<Arc<Release>, Failure> {
     match get(id, RELEASE_TAG) {
         Some(Entry::Release(release)) => Ok(release),
         _ => Err(Failure::handle("the release handle")),
+    }
+}
+
+/// The update session a handle names.
+pub fn session(id: u64) -> Result<Arc<UpdateSession>, Failure> {
+    match get(id, SESSION_TAG) {
+        Some(Entry::Session(session)) => Ok(session),
+        _ => Err(Failure::handle("the session handle")),
+    }
+}
+
+/// Frees an update session's handle; the session ends once no call uses it any more.
+pub fn free_session(id: u64) -> Result<(), Failure> {
+    if remove(id, SESSION_TAG) {
+        Ok(())
+    } else {
+        Err(Failure::handle("the session handle"))
     }
 }
 
