@@ -171,6 +171,34 @@ fn make_fixtures(d: &Path) {
     offline[at + bundle.len() / 2] ^= 0x01;
     std::fs::write(d.join("tampered.offline"), offline).expect("tampered.offline");
 
+    // An ONNX classifier (ampoule's invented one: `image` float32 [N, 3, 8, 8] in, `species`
+    // float32 [N, 6] out, opset 13, float weights) with metadata, as version 1.2.0 on a
+    // channel of its own, for the policy document's settings one by one.
+    ampoule::release::synth::write_onnx_classifier(&d.join("species.onnx"), 8, 16, 6, 1)
+        .expect("the ONNX classifier");
+    let packed = pack_model_with(
+        d,
+        "species.onnx",
+        "1.2.0",
+        "k.pem",
+        "onnx.ampoule",
+        &["--meta-file", "meta.json"],
+    );
+    assert!(packed.status.success(), "{packed:?}");
+    publish(d, "onnx.ampoule", "onnx", "100");
+    ok(
+        d,
+        &[
+            "offline",
+            "--tree",
+            "tree",
+            "--channel",
+            "onnx",
+            "-o",
+            "onnx.offline",
+        ],
+    );
+
     // A trust set holding the same key for every role, for the shipped-trust-set path.
     ok(
         d,
@@ -339,4 +367,9 @@ fn issue14_c_a_session_holds_the_store_s_lock_until_freed() {
 #[test]
 fn issue14_c_sessions_misused_are_refused_by_name() {
     http_case("session_misuse");
+}
+
+#[test]
+fn issue14_c_each_policy_setting_refuses_a_bundle_with_its_status() {
+    case("policy_settings");
 }

@@ -589,6 +589,121 @@ static void case_policy_document_over_caps(void) {
     free(many);
 }
 
+/* Installs onnx.offline (channel "onnx": the invented ONNX classifier, `image` float32
+ * [N, 3, 8, 8] in, `species` float32 [N, 6] out, opset 13, float weights, six labels, metadata
+ * preprocess.colour_order "rgb") into a fresh store with policy document `members` (inside
+ * {"policy_format": 1, ...}) and app version `app_version`; expects `want` and a message
+ * holding `part`, and nothing installed unless `want` is AMPOULE_OK. */
+static void install_onnx(const char *name, const char *app_version, const char *members,
+                         int32_t want, const char *part) {
+    char policy[4096];
+    snprintf(policy, sizeof policy, "{\"policy_format\": 1, %s}", members);
+    ampoule_error err;
+    ampoule_store store = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir(name);
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "onnx", 4, &keys, &keys, &keys,
+                                               app_version, strlen(app_version),
+                                               (const uint8_t *)policy, strlen(policy),
+                                               (int64_t)time(NULL), &store, &err),
+           AMPOULE_OK, &err, NULL);
+    ampoule_outcome outcome;
+    int32_t status = install(store, "onnx.offline", &outcome, &err);
+    if (status != want) fail(__LINE__, "policy %s: status %s, not %s: %.*s", members,
+                             ampoule_status_name(status), ampoule_status_name(want),
+                             (int)err.message_len, (const char *)err.message);
+    EXPECT(status, want, &err, part);
+    ampoule_release current = {0};
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    if (want == AMPOULE_OK) {
+        CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED && current.id != 0);
+        release_free(outcome.installed);
+        release_free(current);
+    } else {
+        CHECK(outcome.kind == (want == AMPOULE_NEEDS_OTHER_APP ? AMPOULE_OUTCOME_NEEDS_OTHER_APP
+                                                               : AMPOULE_OUTCOME_REFUSED));
+        CHECK(outcome.installed.id == 0 && current.id == 0);
+    }
+    store_free(store);
+}
+
+/* One bundle refused per setting of the policy document (FORMAT.md, "The policy document":
+ * every key of its table), each with its status, from C; the document stating every setting
+ * the bundle fits installs it. The app's own version, which the document leaves to the caller,
+ * is checked too. */
+static void case_policy_settings(void) {
+    install_onnx("fits", "2.3.0",
+                 "\"about\": \"every setting, all of them fitting\", \"bundle_name\": "
+                 "\"trailcam-species\", \"max_bundle_bytes\": 10000000, \"max_unpacked_bytes\": "
+                 "10000000, \"model\": {\"format\": \"onnx\", \"max_opset\": 13, \"weights_8bit\": "
+                 "false, \"inputs\": [{\"name\": \"image\", \"dtype\": \"float32\", \"shape\": "
+                 "\"[*, 3, 8, 8]\"}], \"outputs\": [{\"name\": \"species\", \"dtype\": "
+                 "\"float32\", \"shape\": \"[*, 6]\"}], \"classifier_output\": \"species\", "
+                 "\"class_dim\": 1}, \"labels\": {\"min_count\": 6, \"max_count\": 6, "
+                 "\"required\": [\"empty frame\", \"fox\"]}, \"metadata\": "
+                 "{\"preprocess.colour_order\": \"rgb\", \"eval.top1\": 0.91}",
+                 AMPOULE_OK, NULL);
+    static const struct {
+        const char *members;
+        int32_t status;
+        const char *part;
+    } cases[] = {
+        {"\"bundle_name\": \"trailcam-birds\"", AMPOULE_POLICY,
+         "feed offers bundle 'trailcam-species' but this app accepts only 'trailcam-birds'"},
+        {"\"max_bundle_bytes\": 1000", AMPOULE_TOO_LARGE,
+         ".ampoule' is 17920 bytes, over the limit of 1000 bytes"},
+        /* The library's kind for the unpacked size is policy, not too_large: as it is. */
+        {"\"max_unpacked_bytes\": 1000", AMPOULE_POLICY,
+         "bundle unpacks to 13043 bytes, over this app's limit of 1000 bytes"},
+        {"\"model\": {\"format\": \"safetensors\"}", AMPOULE_INCOMPATIBLE,
+         "the model is onnx, the app expects safetensors"},
+        {"\"model\": {\"max_opset\": 12}", AMPOULE_INCOMPATIBLE,
+         "the model needs onnx opset 13, the app supports at most 12"},
+        {"\"model\": {\"weights_8bit\": true}", AMPOULE_INCOMPATIBLE,
+         "the model's weights are not 8-bit, the app expects 8-bit weights"},
+        {"\"model\": {\"inputs\": [{\"name\": \"frame\"}]}", AMPOULE_INCOMPATIBLE,
+         "the model has no input 'frame' (its inputs: 'image')"},
+        {"\"model\": {\"inputs\": [{\"name\": \"image\", \"dtype\": \"uint8\"}]}",
+         AMPOULE_INCOMPATIBLE, "input 'image' has dtype float32, the app expects uint8"},
+        {"\"model\": {\"inputs\": [{\"name\": \"image\", \"shape\": \"[*, 3, 96, 96]\"}]}",
+         AMPOULE_INCOMPATIBLE,
+         "input 'image' has shape [N, 3, 8, 8], the app expects [*, 3, 96, 96]: dimension 2 is "
+         "8, not 96"},
+        {"\"model\": {\"outputs\": [{\"name\": \"scores\"}]}", AMPOULE_INCOMPATIBLE,
+         "the model has no output 'scores' (its outputs: 'species')"},
+        {"\"model\": {\"outputs\": [{\"name\": \"species\", \"dtype\": \"float16\"}]}",
+         AMPOULE_INCOMPATIBLE, "output 'species' has dtype float32, the app expects float16"},
+        {"\"model\": {\"outputs\": [{\"name\": \"species\", \"shape\": \"[*, 7]\"}]}",
+         AMPOULE_INCOMPATIBLE,
+         "output 'species' has shape [N, 6], the app expects [*, 7]: dimension 1 is 6, not 7"},
+        {"\"model\": {\"classifier_output\": \"image\"}", AMPOULE_INCOMPATIBLE,
+         "the model has no output 'image' (its outputs: 'species')"},
+        {"\"model\": {\"classifier_output\": \"species\", \"class_dim\": 0}",
+         AMPOULE_INCOMPATIBLE,
+         "output 'species' has shape [N, 6]: its class dimension 0 is N, not a fixed size"},
+        {"\"labels\": {\"min_count\": 7}", AMPOULE_INCOMPATIBLE,
+         "the label list has 6 labels, the app accepts 7 to 100000"},
+        {"\"labels\": {\"max_count\": 5}", AMPOULE_INCOMPATIBLE,
+         "the label list has 6 labels, the app accepts 0 to 5"},
+        {"\"labels\": {\"required\": [\"wolf\"]}", AMPOULE_INCOMPATIBLE,
+         "the label list lacks 'wolf', which the app requires"},
+        {"\"metadata\": {\"preprocess.colour_order\": \"bgr\"}", AMPOULE_INCOMPATIBLE,
+         "the bundle's metadata has preprocess.colour_order = \"rgb\", the app requires \"bgr\""},
+        {"\"metadata\": {\"eval.top1\": 0.95}", AMPOULE_INCOMPATIBLE,
+         "the bundle's metadata has eval.top1 = 0.91, the app requires 0.95"},
+        {"\"metadata\": {\"preprocess.mean\": [0.5]}", AMPOULE_INCOMPATIBLE,
+         "the bundle's metadata has no preprocess.mean"},
+    };
+    for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+        char name[32];
+        snprintf(name, sizeof name, "setting-%zu", i);
+        install_onnx(name, "2.3.0", cases[i].members, cases[i].status, cases[i].part);
+    }
+    /* The app's version outside the bundle's requires_app (>=2.0.0, <3.0.0). */
+    install_onnx("app-version", "3.0.0", "\"about\": \"no setting\"", AMPOULE_NEEDS_OTHER_APP,
+                 "trailcam-species 1.2.0 requires app >=2.0.0, <3.0.0, and this app is 3.0.0");
+}
+
 /* ---- An update over HTTP, step by step, with the app's own (tiny) HTTP client ---- */
 
 /* Where each piece of a response body goes; nonzero stops the transfer. */
@@ -1042,6 +1157,7 @@ int main(int argc, char **argv) {
         {"two_updates_at_once", case_two_updates_at_once},
         {"policy_document_malformed", case_policy_document_malformed},
         {"policy_document_over_caps", case_policy_document_over_caps},
+        {"policy_settings", case_policy_settings},
         {"http_update", case_http_update},
         {"http_resume", case_http_resume},
         {"http_tampered", case_http_tampered},
