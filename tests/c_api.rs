@@ -373,3 +373,8 @@ fn issue14_c_sessions_misused_are_refused_by_name() {
 fn issue14_c_each_policy_setting_refuses_a_bundle_with_its_status() {
     case("policy_settings");
 }
+
+#[test]
+fn issue14_c_the_url_update_installs_over_http_with_the_library_s_own_client() {
+    http_case("url_update");
+}

@@ -12,9 +12,11 @@
  *                                              "The policy document")
  *   3. ampoule_current()                       the release to load at start-up (checked in full)
  *   4. ampoule_update_begin(), _next(), ...    an update over the app's own HTTP, step by
- *      ampoule_session_free()                  step (see below), or ampoule_install_offline():
- *                                              an update from a file made by `ampoule offline`;
- *                                              the outcome says what happened
+ *      ampoule_session_free()                  step (see below); or ampoule_update(): the
+ *                                              library's own HTTP(S) (builds with `fetch`); or
+ *                                              ampoule_install_offline(): an update from a file
+ *                                              made by `ampoule offline`; the outcome says what
+ *                                              happened
  *   5. ampoule_release_field(), _label_count(), _label(), _metadata()
  *                                              the model's path, labels and manifest
  *   6. ampoule_rollback()                      when the app's own health check fails
@@ -65,7 +67,7 @@ extern "C" {
 
 #define AMPOULE_ABI_VERSION 1
 
-/* Status codes. 1-7 are the interface's own; 10 and up are the library's error kinds (the
+/* Status codes. 1-8 are the interface's own; 10 and up are the library's error kinds (the
  * same names as the `kind` of the CLI's --json errors). */
 #define AMPOULE_OK 0
 #define AMPOULE_INVALID_ARGUMENT 1 /* a null pointer, non-UTF-8 text, a length that does not fit */
@@ -75,6 +77,7 @@ extern "C" {
 #define AMPOULE_NEEDS_OTHER_APP 5  /* the offered release needs another app version */
 #define AMPOULE_PANIC 6            /* an internal error (a bug), stopped at the boundary */
 #define AMPOULE_NOT_FOUND 7        /* no such label index or metadata key */
+#define AMPOULE_UNSUPPORTED 8      /* this build lacks the call's feature (ampoule_update: fetch) */
 #define AMPOULE_IO 10
 #define AMPOULE_MALFORMED 11
 #define AMPOULE_TOO_LARGE 12
@@ -366,13 +369,18 @@ int32_t ampoule_update_fail(ampoule_session session, const char *why, size_t why
  * AMPOULE_INVALID_HANDLE. Concurrency: any thread. */
 int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
 
-/*
- * Planned for ABI version 1 additions, declared here as a design, not implemented:
- *
- * The URL update, in builds with the `fetch` feature:
- *   int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_url_len,
- *                          int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
- */
+/* Runs a whole update with the library's own HTTP(S) client: fetches the channel's feed at
+ * feed_url (https:// or http://), whatever the session asks for, and the bundle (resuming a
+ * partial download), with the library's default limits (connect 20 s, each read 30 s, each
+ * request 1 h in all, at least 256 bytes/s over 60 s, 3 tries per source; HTTPS trusts the
+ * public web PKI roots built in). *out receives the outcome and the status is
+ * ampoule_install_offline's (AMPOULE_NETWORK for a transfer that failed). Only in libraries
+ * built with the cargo feature `fetch`; others return AMPOULE_UNSUPPORTED (outcome FAILED), and
+ * the app drives ampoule_update_begin with its own HTTP stack instead. Concurrency: any
+ * thread; it takes the store's update lock as a session does (AMPOULE_LOCKED while another
+ * update runs), and blocks the calling thread until the update ends. */
+int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_url_len,
+                       int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
 
 #ifdef __cplusplus
 }

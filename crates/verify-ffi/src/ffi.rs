@@ -206,6 +206,7 @@ pub extern "C" fn ampoule_status_name(status: i32) -> *const c_char {
         c"needs_other_app",
         c"panic",
         c"not_found",
+        c"unsupported",
         c"io",
         c"malformed",
         c"too_large",
@@ -903,5 +904,66 @@ pub unsafe extern "C" fn ampoule_session_free(
 ) -> i32 {
     call("ampoule_session_free", err, || {
         handles::free_session(session.id)
+    })
+}
+
+/// The URL update, over HTTP(S) with the library's own client and its default limits.
+#[cfg(feature = "fetch")]
+fn url_update(
+    device: &Device,
+    feed_url: &str,
+    now: Timestamp,
+) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
+    let transfer = ampoule_verify::Transfer::new();
+    outcome_of(device.update(feed_url, &transfer, now).outcome)
+}
+
+/// Without `fetch` there is no HTTP(S) client in the library: the call says so.
+#[cfg(not(feature = "fetch"))]
+fn url_update(
+    _device: &Device,
+    _feed_url: &str,
+    _now: Timestamp,
+) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
+    Ok((
+        AmpouleOutcome {
+            kind: 7,
+            rollout_bucket: 0,
+            installed: AmpouleRelease { id: 0 },
+        },
+        Err(Failure::new(
+            Status::Unsupported,
+            "this build of the library has no HTTP(S) client: build ampoule-verify-ffi with \
+             --features fetch, or drive the update with the app's own HTTP \
+             (ampoule_update_begin)",
+        )),
+    ))
+}
+
+/// Runs a whole update over HTTP(S) from the feed's URL; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update(
+    store: AmpouleStore,
+    feed_url: *const c_char,
+    feed_url_len: usize,
+    now_unix: i64,
+    out: *mut AmpouleOutcome,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update", err, || {
+        // SAFETY: the header's contract: `feed_url` points at `feed_url_len` bytes of UTF-8.
+        let feed_url = unsafe { raw::string(feed_url, feed_url_len, PATH_BYTES, "feed_url") }?;
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        let device = handles::store(store.id)?;
+        let (outcome, result) = url_update(&device, feed_url, time(now_unix)?)?;
+        // SAFETY: `out` is not null and is the caller's writable `ampoule_outcome`.
+        unsafe { raw::put(out, outcome, "out") }?;
+        result
     })
 }

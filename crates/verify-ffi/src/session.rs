@@ -34,8 +34,10 @@ enum Command {
     Fail(String),
 }
 
-/// What the session's thread answers to `Advance` and `Fail`.
+/// What the session's thread answers to `Advance` and `Fail`, and once at its start.
 enum Reply {
+    /// The session exists, and holds the store's update lock unless another update has it.
+    Started,
     Next(Box<Next>),
     /// The session was ended by `Fail` before: nothing more to do.
     Ended,
@@ -151,7 +153,8 @@ fn hex_digest(hex: &str) -> Result<[u8; 32], Failure> {
 impl UpdateSession {
     /// Starts an update of `device` on the feed bytes the app fetched from `feed_url`. The
     /// session takes the store's update lock now; when another update holds it, the first
-    /// step is the outcome `Failed` with [`Status::Locked`].
+    /// step is the outcome `Failed` with [`Status::Locked`]. It returns once the lock is
+    /// taken or found held.
     pub fn begin(
         device: Arc<Device>,
         feed_url: String,
@@ -164,6 +167,9 @@ impl UpdateSession {
             .name("ampoule-update".into())
             .spawn(move || {
                 let session = device.begin(&feed_url, feed, now);
+                if replies.send(Reply::Started).is_err() {
+                    return;
+                }
                 // A panic ends the thread: the caller sees the channel close (`gone`), and
                 // the session, lock included, is dropped while unwinding.
                 serve(Some(session), &received, &replies);
@@ -171,6 +177,12 @@ impl UpdateSession {
             .map_err(|e| {
                 Failure::new(Status::Io, format!("cannot start the update's thread: {e}"))
             })?;
+        // The lock is taken (or found held) before this call returns, so two sessions begun
+        // one after the other take it in that order.
+        match answers.recv() {
+            Ok(Reply::Started) => {}
+            _ => return Err(gone()),
+        }
         Ok(UpdateSession {
             driver: Mutex::new(Driver {
                 commands: Some(commands),
@@ -194,7 +206,7 @@ impl UpdateSession {
         // Whatever was asked and not answered is asked again.
         driver.asked = Asked::Nothing;
         let step = match driver.ask(Command::Advance)? {
-            Reply::Ended => {
+            Reply::Started | Reply::Ended => {
                 driver.asked = Asked::Ended;
                 return Ok(Step::Ended);
             }
@@ -373,7 +385,7 @@ impl Driver {
                 Next::Done(report) => Ok(Step::Done(report.outcome)),
                 _ => Ok(Step::Ended),
             },
-            Reply::Ended => Ok(Step::Ended),
+            Reply::Started | Reply::Ended => Ok(Step::Ended),
         }
     }
 }

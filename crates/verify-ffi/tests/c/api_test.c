@@ -171,6 +171,7 @@ static void case_abi(void) {
     CHECK(strcmp(ampoule_status_name(AMPOULE_OK), "ok") == 0);
     CHECK(strcmp(ampoule_status_name(AMPOULE_INCOMPATIBLE), "incompatible") == 0);
     CHECK(strcmp(ampoule_status_name(AMPOULE_INVALID_HANDLE), "invalid_handle") == 0);
+    CHECK(strcmp(ampoule_status_name(AMPOULE_UNSUPPORTED), "unsupported") == 0);
     CHECK(strcmp(ampoule_status_name(-5), "unknown") == 0);
 }
 
@@ -1052,6 +1053,36 @@ static void case_session_locks_the_store(void) {
     store_free(second);
 }
 
+/* The URL update with the library's own HTTP client (the test links a library built with
+ * `fetch`): it installs 1.1.0 from the server, finds nothing newer next time, fails with
+ * AMPOULE_NETWORK on a feed the server does not have, and refuses a null URL. */
+static void case_url_update(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", "policy-fits.json");
+    ampoule_outcome outcome;
+    const char *url = feed_url();
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
+    CHECK(strcmp(metadata(outcome.installed, "eval.top1"), "0.91") == 0);
+    release_free(outcome.installed);
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_UP_TO_DATE);
+
+    char missing[256];
+    snprintf(missing, sizeof missing, "http://%s/feeds/no-such-channel.json", server());
+    EXPECT(ampoule_update(store, missing, strlen(missing), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_NETWORK, &err, "404");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_FAILED);
+    EXPECT(ampoule_update(store, NULL, 0, (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "feed_url is empty");
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), NULL, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "out is a null pointer");
+    store_free(store);
+}
+
 /* Sessions misused: null pointers, answers to steps not asked, bytes past the size asked for,
  * freed, double-freed and other types' handles, a session driven after its end. */
 static void case_session_misuse(void) {
@@ -1164,6 +1195,7 @@ int main(int argc, char **argv) {
         {"http_policy_refused", case_http_policy_refused},
         {"session_locks_the_store", case_session_locks_the_store},
         {"session_misuse", case_session_misuse},
+        {"url_update", case_url_update},
     };
     for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
         if (strcmp(cases[i].name, argv[1]) == 0) {
