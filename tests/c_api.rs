@@ -378,3 +378,13 @@ fn issue14_c_each_policy_setting_refuses_a_bundle_with_its_status() {
 fn issue14_c_the_url_update_installs_over_http_with_the_library_s_own_client() {
     http_case("url_update");
 }
+
+#[test]
+fn issue14_c_progress_reaches_the_app_s_callback_and_the_device_id_is_kept() {
+    case("progress_and_device_id");
+}
+
+#[test]
+fn issue14_c_a_store_switches_channels_and_gc_leaves_a_session_s_download_alone() {
+    http_case("switch_channel_and_gc");
+}

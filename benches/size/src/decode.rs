@@ -13,21 +13,23 @@ pub fn main_with(decoder: fn(std::fs::File) -> std::io::Result<Box<dyn Read>>) -
         eprintln!("usage: FILE.zst");
         return ExitCode::from(2);
     };
-    let result = std::fs::File::open(&path).and_then(decoder).and_then(|reader| {
-        let mut reader = reader.take(LIMIT + 1);
-        let mut buf = vec![0u8; 1 << 16];
-        let (mut len, mut hash) = (0u64, 0xcbf2_9ce4_8422_2325_u64);
-        loop {
-            let n = reader.read(&mut buf)?;
-            if n == 0 {
-                return Ok((len, hash));
+    let result = std::fs::File::open(&path)
+        .and_then(decoder)
+        .and_then(|reader| {
+            let mut reader = reader.take(LIMIT + 1);
+            let mut buf = vec![0u8; 1 << 16];
+            let (mut len, mut hash) = (0u64, 0xcbf2_9ce4_8422_2325_u64);
+            loop {
+                let n = reader.read(&mut buf)?;
+                if n == 0 {
+                    return Ok((len, hash));
+                }
+                len += n as u64;
+                for b in &buf[..n] {
+                    hash = (hash ^ u64::from(*b)).wrapping_mul(0x0100_0000_01b3);
+                }
             }
-            len += n as u64;
-            for b in &buf[..n] {
-                hash = (hash ^ u64::from(*b)).wrapping_mul(0x0100_0000_01b3);
-            }
-        }
-    });
+        });
     match result {
         Ok((len, hash)) => {
             println!("{len} bytes, fnv1a {hash:016x}");

@@ -21,6 +21,8 @@
  *                                              the model's path, labels and manifest
  *   6. ampoule_rollback()                      when the app's own health check fails
  *   7. ampoule_release_free(), ampoule_store_free()
+ * Beside them: ampoule_store_set_progress(), ampoule_device_id(), ampoule_switch_channel(),
+ * ampoule_gc().
  *
  * Status and errors. Every call that can fail returns an int32_t status (AMPOULE_OK is 0) and
  * fills the ampoule_error the caller passes (which may be NULL when only the status is wanted):
@@ -222,8 +224,8 @@ int32_t ampoule_current(ampoule_store store, ampoule_release *out, ampoule_error
 /* Makes the previous release current again (after the app's own health check failed on a new
  * model); it is checked in full first. *out is the release now current, a handle to free. The
  * release rolled back from stays refused. AMPOULE_POLICY when there is no previous release.
- * Concurrency: any thread; it excludes updates and other rollbacks of the store as an update
- * does (AMPOULE_LOCKED while one runs). */
+ * Concurrency: any thread; it takes the store's own lock, as an update does while it installs
+ * and other rollbacks do (AMPOULE_LOCKED while one of them holds it). */
 int32_t ampoule_rollback(ampoule_store store, ampoule_release *out, ampoule_error *err);
 
 /* Frees a release handle. A second free is AMPOULE_INVALID_HANDLE. Concurrency: any thread;
@@ -250,6 +252,46 @@ int32_t ampoule_release_label(ampoule_release release, size_t index, uint8_t *bu
  * AMPOULE_NOT_FOUND for a key the metadata does not hold. */
 int32_t ampoule_release_metadata(ampoule_release release, const char *key, size_t key_len,
                                  uint8_t *buf, size_t cap, size_t *len, ampoule_error *err);
+
+/* Progress stages (the stage argument of an ampoule_progress_fn). */
+#define AMPOULE_STAGE_HASH_PAYLOAD 1 /* hashing a format 1 bundle's payload before unpacking */
+#define AMPOULE_STAGE_UNPACK 2       /* decompressing and checking the payload's files */
+#define AMPOULE_STAGE_DOWNLOAD 3     /* the bundle arriving: ampoule_update's download, or the
+                                      * copy out of an offline file */
+
+/* A progress callback: done of total bytes of stage (AMPOULE_STAGE_*, or 0 for a stage newer
+ * than this ABI version), with the context the app registered, untouched. */
+typedef void (*ampoule_progress_fn)(void *context, int32_t stage, uint64_t done, uint64_t total);
+
+/* Sets the store's progress callback, or clears it with progress NULL; it replaces any callback
+ * set before. Updates of this store through this handle (offline, step by step, by URL) call it
+ * from the thread doing the work: the caller's thread, a session's own thread, or a decoding
+ * thread. The function must be callable from any thread with context, return quickly, and
+ * stay valid until it is replaced, cleared or the store is freed; it may call this library,
+ * but not wait for the update that calls it. Concurrency: any thread, any time; an update
+ * running meanwhile switches to the new callback at its next report. */
+int32_t ampoule_store_set_progress(ampoule_store store, ampoule_progress_fn progress,
+                                   void *context, ampoule_error *err);
+
+/* The id that places this device in rollouts (made at random on the store's first use and kept
+ * in it), copied into buf as ampoule_release_field copies. Concurrency: any thread, any time. */
+int32_t ampoule_device_id(ampoule_store store, uint8_t *buf, size_t cap, size_t *len,
+                          ampoule_error *err);
+
+/* Makes the store follow the channel this handle was opened with, from now on. A store follows
+ * the first channel it accepts a feed on; updates on another channel are refused
+ * (AMPOULE_POLICY) until this call. The highest version the store accepted stays, so nothing
+ * older installs from the new channel. Concurrency: any thread; it takes the store's own lock,
+ * which an update holds only while it installs (AMPOULE_LOCKED then), so it may run between a
+ * session's steps: switch channels when no update runs. */
+int32_t ampoule_switch_channel(ampoule_store store, ampoule_error *err);
+
+/* Removes releases other than the current and the previous one, what crashed updates left
+ * behind, and downloads no update is using; *removed receives how many it removed. Every
+ * update does this too. Concurrency: any thread; it takes the store's own lock, which an update
+ * holds only while it installs (AMPOULE_LOCKED then); a session's download in progress is left
+ * alone. */
+int32_t ampoule_gc(ampoule_store store, size_t *removed, ampoule_error *err);
 
 /*
  * The step-by-step update, for apps with their own HTTP stack. The app fetches the channel's
@@ -279,9 +321,10 @@ int32_t ampoule_release_metadata(ampoule_release release, const char *key, size_
  * link planted in the store's directory) and refuses to write past step.size.
  *
  * Threads. A session holds the store's update lock from ampoule_update_begin until it is
- * freed: meanwhile another session, ampoule_install_offline or ampoule_rollback on the same
+ * freed: meanwhile another session, ampoule_install_offline or ampoule_update on the same
  * store (from any handle or process) ends at once with AMPOULE_LOCKED, while ampoule_current
- * and release reads go on. A session may be driven from any thread (a coroutine that resumes
+ * and release reads go on. ampoule_rollback, ampoule_switch_channel and ampoule_gc take the
+ * store's own lock instead, which an update holds only while it installs. A session may be driven from any thread (a coroutine that resumes
  * elsewhere is fine); calls on one session from two threads at once take turns. The library
  * runs each session on a thread of its own, which ampoule_session_free ends and waits for
  * (when another thread's call still uses the session, that call's return ends it).

@@ -8,16 +8,18 @@
 
 #![allow(unsafe_code)]
 
-use std::ffi::{CStr, c_char};
+use std::ffi::{CStr, c_char, c_void};
 use std::panic::{AssertUnwindSafe, catch_unwind};
 use std::path::Path;
+use std::sync::{Arc, PoisonError};
 
 use ampoule_verify::{
-    App, Device, Outcome, PublicKey, Release, Signers, Timestamp, Trust, TrustedKeys, Version,
+    App, Device, Outcome, Progress, ProgressFn, PublicKey, Release, Signers, Stage, Timestamp,
+    Trust, TrustedKeys, Version,
 };
 
 use crate::handles;
-use crate::raw;
+use crate::raw::{self, Callback};
 use crate::session::{Step, UpdateSession};
 use crate::status::{AmpouleError, Failure, STATUSES, Status};
 
@@ -178,14 +180,36 @@ fn open(
             app_version.escape_debug()
         ))
     })?;
-    let mut app = App::new(trust, version);
+    let slot = Arc::new(handles::ProgressSlot::new(None));
+    let mut app = App::new(trust, version).on_progress(reporter(slot.clone()));
     if let Some(policy) = policy {
         app = app
             .policy_document(policy)
             .map_err(|e| Failure::new(Status::PolicyDocument, e.to_string()))?;
     }
     let device = Device::open(Path::new(dir), channel, app, time(now_unix)?)?;
-    handles::add_store(device)
+    handles::add_store(device, slot)
+}
+
+/// The stages, as `AMPOULE_STAGE_*` numbers them.
+pub const STAGES: &[(&str, i32)] = &[("HASH_PAYLOAD", 1), ("UNPACK", 2), ("DOWNLOAD", 3)];
+
+/// The library's progress reports, passed to whatever callback the store's slot holds when
+/// each one comes (none: dropped).
+fn reporter(slot: Arc<handles::ProgressSlot>) -> ProgressFn {
+    Arc::new(move |progress: Progress| {
+        // Copied out first, so a callback that sets another callback does not deadlock.
+        let callback = *slot.lock().unwrap_or_else(PoisonError::into_inner);
+        if let Some(callback) = callback {
+            let stage = match progress.stage {
+                Stage::HashPayload => 1,
+                Stage::Unpack => 2,
+                Stage::Download => 3,
+                _ => 0,
+            };
+            callback.call(stage, progress.done, progress.total);
+        }
+    })
 }
 
 /// The ABI version; see `ampoule_abi_version` in ampoule.h.
@@ -911,10 +935,11 @@ pub unsafe extern "C" fn ampoule_session_free(
 #[cfg(feature = "fetch")]
 fn url_update(
     device: &Device,
+    progress: Arc<handles::ProgressSlot>,
     feed_url: &str,
     now: Timestamp,
 ) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
-    let transfer = ampoule_verify::Transfer::new();
+    let transfer = ampoule_verify::Transfer::new().on_progress(reporter(progress));
     outcome_of(device.update(feed_url, &transfer, now).outcome)
 }
 
@@ -922,6 +947,7 @@ fn url_update(
 #[cfg(not(feature = "fetch"))]
 fn url_update(
     _device: &Device,
+    _progress: Arc<handles::ProgressSlot>,
     _feed_url: &str,
     _now: Timestamp,
 ) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
@@ -961,9 +987,95 @@ pub unsafe extern "C" fn ampoule_update(
             return Err(Failure::argument("out is a null pointer"));
         }
         let device = handles::store(store.id)?;
-        let (outcome, result) = url_update(&device, feed_url, time(now_unix)?)?;
+        let progress = handles::progress(store.id)?;
+        let (outcome, result) = url_update(&device, progress, feed_url, time(now_unix)?)?;
         // SAFETY: `out` is not null and is the caller's writable `ampoule_outcome`.
         unsafe { raw::put(out, outcome, "out") }?;
         result
+    })
+}
+
+/// Sets or clears the store's progress callback; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function: `progress` is null or a function callable from
+/// any thread with `context`, until it is replaced or the store is freed.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_store_set_progress(
+    store: AmpouleStore,
+    progress: Option<raw::ProgressFn>,
+    context: *mut c_void,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_store_set_progress", err, || {
+        let slot = handles::progress(store.id)?;
+        *slot.lock().unwrap_or_else(PoisonError::into_inner) =
+            progress.map(|function| Callback::new(function, context));
+        Ok(())
+    })
+}
+
+/// The device id that places this store in rollouts; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_device_id(
+    store: AmpouleStore,
+    buf: *mut u8,
+    cap: usize,
+    len: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_device_id", err, || {
+        let device = handles::store(store.id)?;
+        // SAFETY: `buf` is null or `cap` writable bytes, `len` the caller's `size_t`.
+        unsafe {
+            raw::copy_out(
+                device.device_id().as_bytes(),
+                buf,
+                cap,
+                len,
+                "the device id",
+            )
+        }
+    })
+}
+
+/// Makes the store follow the handle's channel; see ampoule.h.
+///
+/// # Safety
+///
+/// `err` is null or the caller's writable `ampoule_error`.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_switch_channel(
+    store: AmpouleStore,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_switch_channel", err, || {
+        Ok(handles::store(store.id)?.switch_channel()?)
+    })
+}
+
+/// Removes what the store no longer needs; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_gc(
+    store: AmpouleStore,
+    removed: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_gc", err, || {
+        if removed.is_null() {
+            return Err(Failure::argument("removed is a null pointer"));
+        }
+        let paths = handles::store(store.id)?.gc()?;
+        // SAFETY: `removed` is not null and is the caller's writable `size_t`.
+        unsafe { raw::put(removed, paths.len(), "removed") }
     })
 }

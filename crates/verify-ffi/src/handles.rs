@@ -14,6 +14,7 @@ use std::sync::{Arc, Mutex, MutexGuard, PoisonError};
 
 use ampoule_verify::{Device, Release};
 
+use crate::raw::Callback;
 use crate::session::UpdateSession;
 use crate::status::Failure;
 
@@ -25,10 +26,13 @@ pub const RELEASE_TAG: u64 = 0x524c;
 pub const SESSION_TAG: u64 = 0x5345;
 const SERIAL_BITS: u32 = 48;
 
+/// A store's progress callback, which `ampoule_store_set_progress` sets and its updates call.
+pub(crate) type ProgressSlot = Mutex<Option<Callback>>;
+
 /// One live object.
 #[derive(Clone)]
 enum Entry {
-    Store(Arc<Device>),
+    Store(Arc<Device>, Arc<ProgressSlot>),
     Release(Arc<Release>),
     Session(Arc<UpdateSession>),
 }
@@ -80,9 +84,9 @@ fn remove(id: u64, tag: u64) -> bool {
     removed.is_some()
 }
 
-/// Registers a store and returns its handle.
-pub fn add_store(device: Device) -> Result<u64, Failure> {
-    add(STORE_TAG, Entry::Store(Arc::new(device)))
+/// Registers a store, with the progress slot its app reports to, and returns its handle.
+pub(crate) fn add_store(device: Device, progress: Arc<ProgressSlot>) -> Result<u64, Failure> {
+    add(STORE_TAG, Entry::Store(Arc::new(device), progress))
 }
 
 /// Registers a release and returns its handle.
@@ -98,7 +102,15 @@ pub fn add_session(session: UpdateSession) -> Result<u64, Failure> {
 /// The store a handle names.
 pub fn store(id: u64) -> Result<Arc<Device>, Failure> {
     match get(id, STORE_TAG) {
-        Some(Entry::Store(device)) => Ok(device),
+        Some(Entry::Store(device, _)) => Ok(device),
+        _ => Err(Failure::handle("the store handle")),
+    }
+}
+
+/// The progress slot of the store a handle names.
+pub(crate) fn progress(id: u64) -> Result<Arc<ProgressSlot>, Failure> {
+    match get(id, STORE_TAG) {
+        Some(Entry::Store(_, slot)) => Ok(slot),
         _ => Err(Failure::handle("the store handle")),
     }
 }

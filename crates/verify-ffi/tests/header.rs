@@ -8,7 +8,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use ampoule_verify_ffi::ffi::{ABI_VERSION, FIELDS, OUTCOMES, SHA256_BYTES, STEPS};
+use ampoule_verify_ffi::ffi::{ABI_VERSION, FIELDS, OUTCOMES, SHA256_BYTES, STAGES, STEPS};
 use ampoule_verify_ffi::status::{MESSAGE_BYTES, STATUSES};
 
 fn crate_file(name: &str) -> String {
@@ -76,6 +76,9 @@ fn rust_to_c(rust: &str) -> String {
         "i64" => "int64_t".into(),
         "usize" => "size_t".into(),
         "c_char" => "char".into(),
+        "c_void" => "void".into(),
+        // A nullable C function pointer: the header's typedef.
+        "Option<raw::ProgressFn>" => "ampoule_progress_fn".into(),
         other if other.starts_with("Ampoule") => snake(other),
         other => panic!("no C type for the Rust type {other}"),
     }
@@ -273,6 +276,7 @@ fn issue14_every_code_has_the_same_number_in_the_header_and_in_rust() {
         !name.starts_with("OUTCOME_")
             && !name.starts_with("FIELD_")
             && !name.starts_with("STEP_")
+            && !name.starts_with("STAGE_")
             && name != "ABI_VERSION"
             && name != "MESSAGE_BYTES"
             && name != "SHA256_BYTES"
@@ -286,6 +290,7 @@ fn issue14_every_code_has_the_same_number_in_the_header_and_in_rust() {
     assert_eq!(defines("OUTCOME_"), table(OUTCOMES));
     assert_eq!(defines("FIELD_"), table(FIELDS));
     assert_eq!(defines("STEP_"), table(STEPS));
+    assert_eq!(defines("STAGE_"), table(STAGES));
     assert_eq!(
         defines("SHA256_BYTES").get(""),
         Some(&(SHA256_BYTES as i64))

@@ -1053,17 +1053,162 @@ static void case_session_locks_the_store(void) {
     store_free(second);
 }
 
+/* What a progress callback saw. */
+struct seen {
+    int calls, unpack_calls, download_calls, other_stages;
+    uint64_t last_done, last_total;
+};
+
+static void count_progress(void *context, int32_t stage, uint64_t done, uint64_t total) {
+    struct seen *seen = context;
+    seen->calls++;
+    if (stage == AMPOULE_STAGE_UNPACK) seen->unpack_calls++;
+    else if (stage == AMPOULE_STAGE_DOWNLOAD) seen->download_calls++;
+    else if (stage != AMPOULE_STAGE_HASH_PAYLOAD) seen->other_stages++;
+    if (done > total) fail(__LINE__, "progress %llu of %llu", (unsigned long long)done,
+                           (unsigned long long)total);
+    seen->last_done = done;
+    seen->last_total = total;
+}
+
+/* Progress: the callback hears an offline install (the bundle copied out of the file, then
+ * unpacked), ending at its total, with the context it was given; cleared, it hears nothing more. Device id: made on first use, kept
+ * in the store, the same through another handle. */
+static void case_progress_and_device_id(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    struct seen seen = {0};
+    EXPECT(ampoule_store_set_progress(store, count_progress, &seen, &err), AMPOULE_OK, &err, NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    release_free(outcome.installed);
+    /* The bundle copied out of the offline file counts as its download. */
+    CHECK(seen.download_calls > 0 && seen.unpack_calls > 0 && seen.other_stages == 0);
+    CHECK(seen.last_total > 0 && seen.last_done == seen.last_total);
+    EXPECT(ampoule_store_set_progress(store, NULL, NULL, &err), AMPOULE_OK, &err, NULL);
+    int before = seen.calls;
+    EXPECT(install(store, "v2.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    release_free(outcome.installed);
+    CHECK(seen.calls == before);
+    ampoule_store foreign = {0x5254000000000001ull};
+    EXPECT(ampoule_store_set_progress(foreign, count_progress, &seen, &err),
+           AMPOULE_INVALID_HANDLE, &err, "the store handle is not a live handle");
+
+    char id[256], again[256];
+    size_t len = 0, again_len = 0;
+    EXPECT(ampoule_device_id(store, (uint8_t *)id, sizeof id, &len, &err), AMPOULE_OK, &err, NULL);
+    CHECK(len > 0 && len <= 128);
+    ampoule_store other = open_ok("camera", NULL);
+    EXPECT(ampoule_device_id(other, (uint8_t *)again, sizeof again, &again_len, &err), AMPOULE_OK,
+           &err, NULL);
+    CHECK(again_len == len && memcmp(id, again, len) == 0);
+    ampoule_store elsewhere = open_ok("another-camera", NULL);
+    EXPECT(ampoule_device_id(elsewhere, (uint8_t *)again, sizeof again, &again_len, &err),
+           AMPOULE_OK, &err, NULL);
+    CHECK(!(again_len == len && memcmp(id, again, len) == 0));
+    store_free(elsewhere);
+    store_free(other);
+    store_free(store);
+}
+
+/* Switching channels: a store that follows "stable" refuses the other channel's file until the
+ * handle opened on that channel switches it. Garbage collection while a session downloads
+ * leaves the session's file alone (the download completes and installs), and runs after. */
+static void case_switch_channel_and_gc(void) {
+    ampoule_error err;
+    ampoule_store stable = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(stable, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    release_free(outcome.installed);
+
+    /* A session midway through its download; gc runs beside it. */
+    struct buffer feed = fetch_feed();
+    const char *url = feed_url();
+    ampoule_session session = {0};
+    EXPECT(ampoule_update_begin(stable, url, strlen(url), feed.data, feed.len, (int64_t)time(NULL),
+                                &session, &err),
+           AMPOULE_OK, &err, NULL);
+    free(feed.data);
+    ampoule_step step = {0};
+    do {
+        EXPECT(ampoule_update_next(session, &step, &err), AMPOULE_OK, &err, NULL);
+        if (step.kind == AMPOULE_STEP_FETCH) {
+            struct buffer doc = {NULL, 0};
+            CHECK(http_get(session_url(session, 0), 0, 0, 0, step.max_bytes, to_buffer, &doc) ==
+                  200);
+            EXPECT(ampoule_update_provide(session, doc.data, doc.len, &err), AMPOULE_OK, &err,
+                   NULL);
+            free(doc.data);
+        }
+    } while (step.kind == AMPOULE_STEP_FETCH);
+    CHECK(step.kind == AMPOULE_STEP_DOWNLOAD && step.offset == 0);
+    struct buffer bundle = {NULL, 0};
+    CHECK(http_get(session_url(session, 0), 0, 0, 0, step.size, to_buffer, &bundle) == 200);
+    CHECK(bundle.len == step.size);
+    size_t half = bundle.len / 2;
+    EXPECT(ampoule_update_write(session, bundle.data, half, &err), AMPOULE_OK, &err, NULL);
+    size_t removed = 99;
+    EXPECT(ampoule_gc(stable, &removed, &err), AMPOULE_OK, &err, NULL);
+    CHECK(removed != 99);
+    EXPECT(ampoule_update_write(session, bundle.data + half, bundle.len - half, &err), AMPOULE_OK,
+           &err, NULL);
+    free(bundle.data);
+    EXPECT(ampoule_update_downloaded(session, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(ampoule_update_next(session, &step, &err), AMPOULE_OK, &err, NULL);
+    CHECK(step.kind == AMPOULE_STEP_DONE && step.outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(strcmp(field(step.outcome.installed, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
+    release_free(step.outcome.installed);
+    EXPECT(ampoule_session_free(session, &err), AMPOULE_OK, &err, NULL);
+
+    ampoule_store onnx = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir("camera");
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "onnx", 4, &keys, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, (int64_t)time(NULL), &onnx,
+                                               &err),
+           AMPOULE_OK, &err, NULL);
+    EXPECT(install(onnx, "onnx.offline", &outcome, &err), AMPOULE_POLICY, &err,
+           "follows channel 'stable', not 'onnx'");
+    EXPECT(ampoule_switch_channel(onnx, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(install(onnx, "onnx.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.2.0") == 0);
+    release_free(outcome.installed);
+    EXPECT(install(stable, "v2.offline", &outcome, &err), AMPOULE_POLICY, &err,
+           "follows channel 'onnx', not 'stable'");
+
+    EXPECT(ampoule_gc(stable, NULL, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "removed is a null pointer");
+    removed = 99;
+    EXPECT(ampoule_gc(stable, &removed, &err), AMPOULE_OK, &err, NULL);
+    CHECK(removed != 99);
+    /* The current release still checks in full after the clean-up. */
+    ampoule_release current = {0};
+    EXPECT(ampoule_current(stable, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(strcmp(field(current, AMPOULE_FIELD_VERSION), "1.2.0") == 0);
+    release_free(current);
+    store_free(onnx);
+    store_free(stable);
+}
+
 /* The URL update with the library's own HTTP client (the test links a library built with
- * `fetch`): it installs 1.1.0 from the server, finds nothing newer next time, fails with
+ * `fetch`): it installs 1.1.0 from the server, reporting its progress, finds nothing newer next time, fails with
  * AMPOULE_NETWORK on a feed the server does not have, and refuses a null URL. */
 static void case_url_update(void) {
     ampoule_error err;
     ampoule_store store = open_ok("camera", "policy-fits.json");
+    struct seen seen = {0};
+    EXPECT(ampoule_store_set_progress(store, count_progress, &seen, &err), AMPOULE_OK, &err, NULL);
     ampoule_outcome outcome;
     const char *url = feed_url();
     EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), &outcome, &err),
            AMPOULE_OK, &err, NULL);
     CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    /* The library's own client reports the download, then the unpacking. */
+    CHECK(seen.download_calls > 0 && seen.unpack_calls > 0 && seen.other_stages == 0);
+    CHECK(seen.last_done == seen.last_total);
     CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
     CHECK(strcmp(metadata(outcome.installed, "eval.top1"), "0.91") == 0);
     release_free(outcome.installed);
@@ -1196,6 +1341,8 @@ int main(int argc, char **argv) {
         {"session_locks_the_store", case_session_locks_the_store},
         {"session_misuse", case_session_misuse},
         {"url_update", case_url_update},
+        {"progress_and_device_id", case_progress_and_device_id},
+        {"switch_channel_and_gc", case_switch_channel_and_gc},
     };
     for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
         if (strcmp(cases[i].name, argv[1]) == 0) {
