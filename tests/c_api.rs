@@ -14,7 +14,7 @@ use std::process::Command;
 use std::sync::OnceLock;
 
 use ampoule_verify::PublicKey;
-use tree_common::{ok, pack_model_with, publish, serve_tree, write_model};
+use tree_common::{ok, pack_large, pack_model_with, publish, serve_tree, write_model};
 
 /// The two builds of the C program, and the files every case reads.
 struct Built {
@@ -198,6 +198,11 @@ fn make_fixtures(d: &Path) {
             "onnx.offline",
         ],
     );
+
+    // A bundle larger than its head (300,000 bytes of model that do not compress), on a channel
+    // of its own: the session asks for the head first, then the rest.
+    let large = pack_large(d, "2.9.0");
+    publish(d, &large, "large", "100");
 
     // A trust set holding the same key for every role, for the shipped-trust-set path.
     ok(
@@ -387,4 +392,9 @@ fn issue14_c_progress_reaches_the_app_s_callback_and_the_device_id_is_kept() {
 #[test]
 fn issue14_c_a_store_switches_channels_and_gc_leaves_a_session_s_download_alone() {
     http_case("switch_channel_and_gc");
+}
+
+#[test]
+fn issue14_c_a_bundle_larger_than_its_head_is_asked_for_in_two_parts() {
+    http_case("http_head_first");
 }

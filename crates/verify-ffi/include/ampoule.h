@@ -268,8 +268,9 @@ typedef void (*ampoule_progress_fn)(void *context, int32_t stage, uint64_t done,
  * from the thread doing the work: the caller's thread, a session's own thread, or a decoding
  * thread. The function must be callable from any thread with context, return quickly, and
  * stay valid until it is replaced, cleared or the store is freed; it may call this library,
- * but not wait for the update that calls it. Concurrency: any thread, any time; an update
- * running meanwhile switches to the new callback at its next report. */
+ * but not wait for the update that calls it (nor drive the session that reports).
+ * Concurrency: any thread, any time; an update running meanwhile switches to the new callback
+ * at its next report. */
 int32_t ampoule_store_set_progress(ampoule_store store, ampoule_progress_fn progress,
                                    void *context, ampoule_error *err);
 
@@ -303,7 +304,8 @@ int32_t ampoule_gc(ampoule_store store, size_t *removed, ampoule_error *err);
  *     FETCH:    GET ampoule_update_url(session, 0), at most step.max_bytes;
  *               ampoule_update_provide(session, bytes)   (or ampoule_update_fail)
  *     DOWNLOAD: GET ampoule_update_url(session, i) for i < step.url_count, bytes step.offset
- *               to step.size - 1 (an HTTP Range request when offset > 0);
+ *               to step.size - 1 (an HTTP Range request, also from offset 0: the step may
+ *               ask for the bundle's head only);
  *               ampoule_update_write(session, piece) for each piece as it arrives, then
  *               ampoule_update_downloaded(session)     (or ampoule_update_fail)
  *     DONE:     step.outcome, with the same status as ampoule_install_offline's
@@ -349,7 +351,9 @@ typedef struct ampoule_step {
     uint32_t url_count; /* FETCH: 1; DOWNLOAD: the mirrors, in the order to try */
     uint64_t max_bytes; /* FETCH: the most bytes the document may have; stop reading there */
     uint64_t offset;    /* DOWNLOAD: bytes the file holds already; ask for the rest from here */
-    uint64_t size;      /* DOWNLOAD: bytes the file holds when complete; never send more */
+    uint64_t size;      /* DOWNLOAD: bytes the file holds when complete; never send more.
+                         * A bundle larger than its head is asked for twice: up to the head's
+                         * length first, then (offset = that length) up to the whole size */
     uint8_t sha256[AMPOULE_SHA256_BYTES]; /* DOWNLOAD: the whole file's SHA-256, as the signed
                                            * feed declares it (the session checks it) */
     ampoule_outcome outcome; /* DONE: as ampoule_install_offline's; INSTALLED's release is a
