@@ -326,10 +326,11 @@ int32_t ampoule_gc(ampoule_store store, size_t *removed, ampoule_error *err);
  * freed: meanwhile another session, ampoule_install_offline or ampoule_update on the same
  * store (from any handle or process) ends at once with AMPOULE_LOCKED, while ampoule_current
  * and release reads go on. ampoule_rollback, ampoule_switch_channel and ampoule_gc take the
- * store's own lock instead, which an update holds only while it installs. A session may be driven from any thread (a coroutine that resumes
- * elsewhere is fine); calls on one session from two threads at once take turns. The library
- * runs each session on a thread of its own, which ampoule_session_free ends and waits for
- * (when another thread's call still uses the session, that call's return ends it).
+ * store's own lock instead, which an update holds only while it installs. A session may be
+ * driven from any thread (a coroutine that resumes elsewhere is fine); calls on one session
+ * from two threads at once take turns. The library runs each session on a thread of its own,
+ * which ampoule_session_free ends and waits for (when another thread's call still uses the
+ * session, that call's return ends it).
  */
 
 /* An update in progress, driven step by step. 0 is no session. */
