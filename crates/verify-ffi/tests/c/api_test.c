@@ -1106,8 +1106,8 @@ static void count_progress(void *context, int32_t stage, uint64_t done, uint64_t
 }
 
 /* Progress: the callback hears an offline install (the bundle copied out of the file, then
- * unpacked), ending at its total, with the context it was given; cleared, it hears nothing more. Device id: made on first use, kept
- * in the store, the same through another handle. */
+ * unpacked), ending at its total, with the context it was given; cleared, it hears nothing
+ * more. Device id: made on first use, kept in the store, the same through another handle. */
 static void case_progress_and_device_id(void) {
     ampoule_error err;
     ampoule_store store = open_ok("camera", NULL);
@@ -1228,8 +1228,9 @@ static void case_switch_channel_and_gc(void) {
 }
 
 /* The URL update with the library's own HTTP client (the test links a library built with
- * `fetch`): it installs 1.1.0 from the server, reporting its progress, finds nothing newer next time, fails with
- * AMPOULE_NETWORK on a feed the server does not have, and refuses a null URL. */
+ * `fetch`): it installs 1.1.0 from the server, reporting its progress, finds nothing newer
+ * next time, fails with AMPOULE_NETWORK on a feed the server does not have, and refuses a null
+ * URL. */
 static void case_url_update(void) {
     ampoule_error err;
     ampoule_store store = open_ok("camera", "policy-fits.json");
