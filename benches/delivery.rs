@@ -43,7 +43,40 @@ const LABELS: [&str; 7] = [
     "empty frame",
     "pine marten",
 ];
-const RUNS: usize = 3;
+/// Runs of each side, alternating (`AMPOULE_BENCH_RUNS`, default 3).
+fn runs() -> usize {
+    std::env::var("AMPOULE_BENCH_RUNS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .filter(|&n| n > 0)
+        .unwrap_or(3)
+}
+
+/// CPU time (user + system) of this process's waited-for children so far, from
+/// `/proc/self/stat` (fields 16 and 17, in clock ticks of 1/100 s: proc(5)).
+fn children_cpu() -> Duration {
+    let stat = std::fs::read_to_string("/proc/self/stat").unwrap_or_default();
+    let after_name = stat.rsplit(')').next().unwrap_or("");
+    let fields: Vec<u64> = after_name
+        .split_whitespace()
+        .map(|f| f.parse().unwrap_or(0))
+        .collect();
+    // After the name: field 3 (state) is fields[0], so field 16 is fields[13].
+    let ticks = fields.get(13).copied().unwrap_or(0) + fields.get(14).copied().unwrap_or(0);
+    Duration::from_millis(ticks * 10)
+}
+
+/// Median, min and max of `times`, in seconds.
+fn spread(times: &[Duration]) -> String {
+    let min = times.iter().min().copied().unwrap_or_default();
+    let max = times.iter().max().copied().unwrap_or_default();
+    format!(
+        "{:.3} ({:.3}-{:.3})",
+        median(times.to_vec()).as_secs_f64(),
+        min.as_secs_f64(),
+        max.as_secs_f64()
+    )
+}
 
 fn mib(bytes: u64) -> f64 {
     bytes as f64 / (1024.0 * 1024.0)
@@ -189,6 +222,22 @@ fn publish_with_deltas(
 }
 
 /// The reference: curl, then the FORMAT.md checks with openssl, tar and zstd, then sync.
+/// The plain pipeline (issue 13's reference): the download, then what the pipeline bench runs
+/// to verify and unpack (the signature, the payload's digest, `zstd -d | tar x`), nothing more.
+const PLAIN: &str = r#"set -euo pipefail
+cd "$1"
+curl -s -o bundle.ampoule "$2"
+tar xf bundle.ampoule manifest.json signatures.json payload.tar.zst
+{ printf 'ampoule-sig-v1:manifest\n'; cat manifest.json; } > signed.bin
+python3 -c 'import json,sys; print(json.load(open("signatures.json"))["signatures"][0]["signature"])' | xxd -r -p > sig.bin
+openssl pkeyutl -verify -pubin -inkey "$4" -rawin -in signed.bin -sigfile sig.bin > /dev/null
+openssl dgst -sha256 payload.tar.zst > /dev/null
+mkdir out
+zstd -d -q -c payload.tar.zst | tar xf - -C out
+"#;
+
+/// The full reference: the plain pipeline plus what ampoule also does (the bundle's digest
+/// against the feed's, the unpacked files' digests, and flushing them to disk).
 const REFERENCE: &str = r#"set -euo pipefail
 cd "$1"
 curl -s -o bundle.ampoule "$2"
@@ -240,60 +289,87 @@ fn main() -> Result<()> {
         mib(bundle_len)
     );
 
-    let mut ours = Vec::new();
+    // The three sides alternate, run by run, so that a change of load touches each alike.
+    let runs = runs();
+    let (mut ours, mut plain, mut theirs) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut ours_cpu, mut plain_cpu, mut theirs_cpu) = (Vec::new(), Vec::new(), Vec::new());
     let mut rss = Vec::new();
-    for run in 0..RUNS {
+    let load = || std::fs::read_to_string("/proc/loadavg").unwrap_or_default();
+    let load_start = load();
+    for run in 0..runs {
         let store = dir.join(format!("store-{run}"));
+        let cpu = children_cpu();
         let (t, r) = run_measured(update_command(dir, &store, &feed), dir)?;
         ours.push(t);
+        ours_cpu.push(children_cpu().saturating_sub(cpu));
         rss.extend(r);
-    }
-    let mut theirs = Vec::new();
-    for run in 0..RUNS {
-        let scratch = dir.join(format!("reference-{run}"));
-        std::fs::create_dir(&scratch)?;
-        let mut c = Command::new("bash");
-        c.arg("-c")
-            .arg(REFERENCE)
-            .arg("reference")
-            .arg(&scratch)
-            .arg(&bundle_url)
-            .arg(release.sha256.to_hex())
-            .arg(dir.join("release.public.pem"));
-        let start = Instant::now();
-        let out = c.output()?;
-        if !out.status.success() {
-            bail!(
-                "the reference pipeline failed: {}",
-                String::from_utf8_lossy(&out.stderr)
-            );
+        for (script, times, cpus) in [
+            (PLAIN, &mut plain, &mut plain_cpu),
+            (REFERENCE, &mut theirs, &mut theirs_cpu),
+        ] {
+            let scratch = dir.join(format!("reference-{run}"));
+            std::fs::create_dir(&scratch)?;
+            let mut c = Command::new("bash");
+            c.arg("-c")
+                .arg(script)
+                .arg("reference")
+                .arg(&scratch)
+                .arg(&bundle_url)
+                .arg(release.sha256.to_hex())
+                .arg(dir.join("release.public.pem"));
+            let cpu = children_cpu();
+            let start = Instant::now();
+            let out = c.output()?;
+            if !out.status.success() {
+                bail!(
+                    "the reference pipeline failed: {}",
+                    String::from_utf8_lossy(&out.stderr)
+                );
+            }
+            times.push(start.elapsed());
+            cpus.push(children_cpu().saturating_sub(cpu));
+            std::fs::remove_dir_all(&scratch)?;
         }
-        theirs.push(start.elapsed());
-        std::fs::remove_dir_all(&scratch)?;
     }
-    let (a, b) = (median(ours.clone()), median(theirs.clone()));
+    let secs = |t: &[Duration]| median(t.to_vec()).as_secs_f64();
     println!(
-        "  ampoule update (fresh store): median {:.3} s of {RUNS} ({:?})",
-        a.as_secs_f64(),
-        ours.iter()
-            .map(|t| format!("{:.3}", t.as_secs_f64()))
-            .collect::<Vec<_>>()
+        "  {runs} runs each, alternating; load average at the start {}",
+        load_start.trim()
     );
     println!(
-        "  curl + sha256sum + tar + openssl + zstd | tar + sha256sum + sync: median {:.3} s of {RUNS} ({:?})",
-        b.as_secs_f64(),
-        theirs
-            .iter()
-            .map(|t| format!("{:.3}", t.as_secs_f64()))
-            .collect::<Vec<_>>()
+        "  ampoule update (fresh store): median {} s; CPU {:.3} s",
+        spread(&ours),
+        secs(&ours_cpu)
     );
     println!(
-        "  ratio ampoule / reference: {:.2}",
-        a.as_secs_f64() / b.as_secs_f64()
+        "  curl + openssl + zstd | tar (the plain pipeline): median {} s; CPU {:.3} s",
+        spread(&plain),
+        secs(&plain_cpu)
     );
+    println!(
+        "  curl + sha256sum + tar + openssl + zstd | tar + sha256sum + sync: median {} s; CPU {:.3} s",
+        spread(&theirs),
+        secs(&theirs_cpu)
+    );
+    println!(
+        "  ratio ampoule / plain pipeline: {:.2} (target <= 0.80: {}); CPU {:.2}",
+        secs(&ours) / secs(&plain),
+        if secs(&ours) <= 0.8 * secs(&plain) {
+            "PASS"
+        } else {
+            "MISS"
+        },
+        secs(&ours_cpu) / secs(&plain_cpu)
+    );
+    println!(
+        "  ratio ampoule / full reference: {:.2}; CPU {:.2}",
+        secs(&ours) / secs(&theirs),
+        secs(&ours_cpu) / secs(&theirs_cpu)
+    );
+    println!("  load average at the end {}", load().trim());
     match rss.iter().max() {
         Some(kib) => println!(
-            "  peak RSS of ampoule update: {:.1} MiB (max of {RUNS} runs; the model is {:.1} MiB)",
+            "  peak RSS of ampoule update: {:.1} MiB (max of {runs} runs; the model is {:.1} MiB)",
             *kib as f64 / 1024.0,
             mib(model_len)
         ),
@@ -407,7 +483,7 @@ fn delta_update(dir: &Path, key: &ed25519_dalek::SigningKey, trusted: &TrustedKe
         servers.push(server);
     }
     // Devices on 1.0.0, one per run and side.
-    for run in 0..RUNS {
+    for run in 0..runs() {
         for (side, feed) in ["delta", "full"].iter().zip(&feeds) {
             let store = dir.join(format!("head-{side}-{run}"));
             update_json(dir, &store, feed)?;
@@ -431,7 +507,7 @@ fn delta_update(dir: &Path, key: &ed25519_dalek::SigningKey, trusted: &TrustedKe
         delta.size as f64 * 100.0 / bundle_len as f64
     );
     let (mut times, mut rss, mut bytes) = ([Vec::new(), Vec::new()], [0u64; 2], [0u64; 2]);
-    for run in 0..RUNS {
+    for run in 0..runs() {
         for (i, (side, feed)) in ["delta", "full"].iter().zip(&feeds).enumerate() {
             let store = dir.join(format!("head-{side}-{run}"));
             let (t, r, downloaded, used) = update_json(dir, &store, feed)?;
@@ -447,8 +523,9 @@ fn delta_update(dir: &Path, key: &ed25519_dalek::SigningKey, trusted: &TrustedKe
         let mut t: Vec<f64> = t.iter().map(Duration::as_secs_f64).collect();
         t.sort_by(f64::total_cmp);
         format!(
-            "median {:.3} s of {RUNS} (min {:.3}, max {:.3})",
+            "median {:.3} s of {} (min {:.3}, max {:.3})",
             t[t.len() / 2],
+            t.len(),
             t[0],
             t[t.len() - 1]
         )

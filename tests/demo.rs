@@ -105,13 +105,15 @@ fn demo_runs_and_refuses_every_attack() {
         "bundle version 1.0.0 is not newer than 1.1.0, the highest version this store accepted; \
          refusing a downgrade or reinstall"
     );
-    // The tampered file's digest differs from the one the feed signed; the message names both
-    // and the URL on the demo's own server.
+    // The flipped byte's chunk does not match the bundle's signed chunk list (issue 13): the
+    // message names the chunk, both digests and the URL on the demo's own server, and keeps
+    // the chunks before it for the next try.
     let tamper = error_of("tamper");
     assert!(
-        tamper.starts_with("file downloaded from http://127.0.0.1:")
-            && tamper.contains(", but the feed declares ")
-            && tamper.ends_with("; the partial file was discarded"),
+        tamper.starts_with("payload chunk ")
+            && tamper.contains(", but the bundle's signed chunk list declares ")
+            && tamper.contains(", in the bytes from http://127.0.0.1:")
+            && tamper.ends_with("are kept, and the next try downloads from there"),
         "{tamper}"
     );
     assert_eq!(

@@ -9,7 +9,7 @@ use std::io::{Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 
 use ampoule_verify::update::{Download, Next};
-use ampoule_verify::{App, Device, ErrorKind, Outcome, Report, Timestamp, Version};
+use ampoule_verify::{App, Device, Digest, ErrorKind, Outcome, Report, Timestamp, Version};
 use tree_common::*;
 
 /// Any base works: the test maps each URL back to a file of the tree.
@@ -689,6 +689,16 @@ fn issue10_a_linked_state_file_is_refused_with_how_to_clear_it() {
 /// One update whose downloads write exactly what the session asks for from the served file,
 /// through the store's file; returns the report and the bytes written.
 fn drive_counting(device: &Device, d: &Path, now: Timestamp) -> (Report, u64) {
+    drive_damaging(device, d, now, None)
+}
+
+/// [`drive_counting`], with the bit at `damage` of the served bundle flipped on the way.
+fn drive_damaging(
+    device: &Device,
+    d: &Path,
+    now: Timestamp,
+    damage: Option<usize>,
+) -> (Report, u64) {
     let url = feed_url("stable");
     let feed = std::fs::read(tree_file(d, &url)).expect("feed file");
     let mut session = device.begin(&url, feed, now);
@@ -699,10 +709,15 @@ fn drive_counting(device: &Device, d: &Path, now: Timestamp) -> (Report, u64) {
                 session.provide(std::fs::read(tree_file(d, want.url())).expect("file"));
             }
             Next::Download(want) => {
-                let served = as_served(&tree_file(d, &want.urls()[0]));
+                let mut served = as_served(&tree_file(d, &want.urls()[0]));
+                if let Some(at) = damage {
+                    served[at] ^= 0x04;
+                }
                 let mut file = want.file().expect("the store's download file");
                 let have = file.metadata().expect("size").len();
-                let upto = want.size().min(served.len() as u64);
+                // A file that holds the head already (a resumed download) needs nothing more
+                // for the head.
+                let upto = want.size().min(served.len() as u64).max(have);
                 file.seek(SeekFrom::End(0)).expect("seek");
                 file.write_all(&served[have as usize..upto as usize])
                     .expect("write");
@@ -918,4 +933,45 @@ fn issue10_a_head_the_server_swapped_is_refused_but_not_remembered() {
     std::fs::write(&served, &kept).expect("the right file again");
     let (report, _) = drive_counting(&device, d, Timestamp::now());
     assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+}
+
+/// Issue 13: an app's transfer that damaged one byte of a format 2 bundle loses only the
+/// chunk that byte is in and what follows: the session keeps the chunks before it, which
+/// checked against the signed chunk list, and the next update resumes after them.
+#[test]
+fn issue13_an_app_download_with_a_damaged_chunk_keeps_the_chunks_before_it() {
+    let dir = setup();
+    let d = dir.path();
+    let (bundle, _) = pack_chunky(d, "1.0.0", 3 << 20);
+    publish(d, &bundle, "stable", "100");
+    let device = Device::open(&d.join("cam"), "stable", app(d), Timestamp::now()).expect("open");
+    let head = ampoule_verify::format::limit::HEAD_BYTES;
+    let damaged_at = 2_000_000u64;
+    let (report, written) = drive_damaging(&device, d, Timestamp::now(), Some(2_000_000));
+    let size = std::fs::metadata(d.join(&bundle)).expect("bundle").len();
+    assert_eq!(written, size, "the head, then the rest");
+    let e = refusal(&report);
+    assert_eq!(e.kind(), ErrorKind::Digest);
+    let partial = d.join(format!(
+        "cam/downloads/{}.ampoule.partial",
+        Digest::of(&as_served(&d.join(&bundle)))
+    ));
+    let kept = std::fs::metadata(&partial).expect("partial kept").len();
+    // The damaged byte's chunk starts less than one chunk (512 KiB and a few bytes,
+    // compressed) before it, and after the head.
+    assert!(
+        kept > head && kept <= damaged_at && damaged_at - kept <= 525_000,
+        "kept {kept} bytes; the damaged byte is at {damaged_at}"
+    );
+    let message = e.to_string();
+    assert!(
+        message.contains(&format!("(bytes {kept} to "))
+            && message.contains(&format!("The first {kept} bytes, the head and "))
+            && message.ends_with("are kept, and the next update downloads the rest again"),
+        "{message}"
+    );
+    // The next update asks only for the rest, and installs.
+    let (report, written) = drive_counting(&device, d, Timestamp::now());
+    assert_eq!(installed_version(&report), Version::new(1, 0, 0));
+    assert_eq!(written, size - kept, "only what was not kept");
 }

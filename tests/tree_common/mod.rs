@@ -6,8 +6,10 @@
 #[path = "../bundle_check/mod.rs"]
 pub mod bundle_check;
 
+use std::net::{TcpListener, TcpStream};
 use std::path::Path;
-use std::process::{Command, Output};
+use std::process::{Command, Output, Stdio};
+use std::time::{Duration, Instant};
 
 use ampoule_verify::feed::{Feed, SignedFeed};
 use ampoule_verify::signed::Signers;
@@ -129,18 +131,34 @@ pub fn write_model(d: &Path, name: &str, variant: u8) {
 /// sequence, the constants of Numerical Recipes' `ranqd1`, from memory), so the bundle is
 /// larger than its head (274 KiB) and the session asks for the head first.
 pub fn pack_large(d: &Path, version: &str) -> String {
-    let mut x: u32 = 0x2545_f491;
-    let bytes: Vec<u8> = (0..300_000)
+    let model = format!("large-{version}.bin");
+    std::fs::write(d.join(&model), incompressible(300_000, 0x2545_f491)).expect("model");
+    let out = format!("large-{version}.ampoule");
+    pack_model(d, &model, version, "k.pem", &out);
+    out
+}
+
+/// `len` bytes that do not compress: the high bytes of a linear congruential sequence
+/// started at `seed` (the constants of Numerical Recipes' `ranqd1`, from memory).
+pub fn incompressible(len: usize, seed: u32) -> Vec<u8> {
+    let mut x = seed;
+    (0..len)
         .map(|_| {
             x = x.wrapping_mul(1_664_525).wrapping_add(1_013_904_223);
             (x >> 24) as u8
         })
-        .collect();
-    let model = format!("large-{version}.bin");
-    std::fs::write(d.join(&model), bytes).expect("model");
-    let out = format!("large-{version}.ampoule");
+        .collect()
+}
+
+/// Packs `version` with an incompressible model of `len` bytes: a format 2 bundle of about
+/// `len / 512 KiB` chunks. Returns the bundle's file name and the model's bytes.
+pub fn pack_chunky(d: &Path, version: &str, len: usize) -> (String, Vec<u8>) {
+    let bytes = incompressible(len, 0x2545_f491 ^ len as u32);
+    let model = format!("chunky-{version}.bin");
+    std::fs::write(d.join(&model), &bytes).expect("model");
+    let out = format!("chunky-{version}.ampoule");
     pack_model(d, &model, version, "k.pem", &out);
-    out
+    (out, bytes)
 }
 
 /// Re-signs the channel's feed after `change` edits its text, as someone holding the feed key
@@ -276,7 +294,6 @@ impl Drop for Served {
 
 pub fn serve_tree(d: &Path, tree: &str) -> Served {
     use std::io::{BufRead, BufReader};
-    use std::process::Stdio;
     let mut child = Command::new(BIN)
         .args(["serve", "--tree", tree, "--addr", "127.0.0.1:0"])
         .current_dir(d)
@@ -306,4 +323,70 @@ pub fn newest_stored_trust_set(store: &Path) -> Option<Vec<u8>> {
         .and_then(|sets| sets.last())
         .and_then(|set| set.as_str())
         .map(|text| text.as_bytes().to_vec())
+}
+
+/// Where Debian's nginx package puts the server (`.ci/run` installs it).
+pub const NGINX: &str = "/usr/sbin/nginx";
+
+/// nginx serving a release tree, stopped when dropped.
+pub struct Nginx {
+    pub child: std::process::Child,
+    /// `http://127.0.0.1:PORT`
+    pub base: String,
+}
+
+impl Drop for Nginx {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// Starts nginx in the foreground, single process (`master_process off`, so it never switches
+/// to another user that could not read the temp dir), serving `root` on a free port.
+pub fn start_nginx(work: &Path, root: &Path) -> Nginx {
+    let port = TcpListener::bind("127.0.0.1:0")
+        .and_then(|l| l.local_addr())
+        .expect("a free port")
+        .port();
+    let prefix = work.join("nginx");
+    std::fs::create_dir_all(prefix.join("tmp")).expect("nginx dirs");
+    let p = prefix.display();
+    let conf = format!(
+        "daemon off;\nmaster_process off;\nworker_processes 1;\npid {p}/nginx.pid;\n\
+         error_log {p}/error.log;\nevents {{ worker_connections 512; }}\n\
+         http {{\n  access_log {p}/access.log;\n  client_body_temp_path {p}/tmp/body;\n\
+         proxy_temp_path {p}/tmp/proxy;\n  fastcgi_temp_path {p}/tmp/fastcgi;\n\
+         uwsgi_temp_path {p}/tmp/uwsgi;\n  scgi_temp_path {p}/tmp/scgi;\n\
+         types {{ application/json json; application/octet-stream ampoule; }}\n\
+         server {{\n    listen 127.0.0.1:{port};\n    root {};\n    location / {{ }}\n  }}\n}}\n",
+        root.display()
+    );
+    let conf_path = prefix.join("nginx.conf");
+    std::fs::write(&conf_path, conf).expect("nginx.conf");
+    let child = Command::new(NGINX)
+        .arg("-p")
+        .arg(&prefix)
+        .arg("-e")
+        .arg(prefix.join("error.log"))
+        .arg("-c")
+        .arg(&conf_path)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("nginx starts");
+    let mut nginx = Nginx {
+        child,
+        base: format!("http://127.0.0.1:{port}"),
+    };
+    let started = Instant::now();
+    while TcpStream::connect(("127.0.0.1", port)).is_err() {
+        let exited = nginx.child.try_wait().ok().flatten();
+        if exited.is_some() || started.elapsed() > Duration::from_secs(10) {
+            let log = std::fs::read_to_string(prefix.join("error.log")).unwrap_or_default();
+            panic!("nginx did not start ({exited:?}): {log}");
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    nginx
 }

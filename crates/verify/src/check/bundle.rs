@@ -20,6 +20,7 @@ use crate::check::policy::CompatibilityPolicy;
 use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::bundle::{self, Layout};
+use crate::format::chunks;
 use crate::format::keys::{KeyId, TrustedKeys};
 use crate::format::manifest::Manifest;
 use crate::format::signature::{SignatureReport, Signatures};
@@ -30,6 +31,19 @@ use crate::progress::ProgressFn;
 pub const DEFAULT_MAX_BUNDLE_BYTES: u64 = 1024 * 1024 * 1024;
 /// The most bytes a bundle may unpack to unless the app sets its own limit.
 pub const DEFAULT_MAX_UNPACKED_BYTES: u64 = 4 * 1024 * 1024 * 1024;
+
+/// What [`Verifier::check_head`] proved about a bundle still being downloaded.
+pub(crate) struct CheckedHead {
+    /// The signed manifest, and its exact bytes.
+    pub manifest: Manifest,
+    pub manifest_bytes: Vec<u8>,
+    /// The bundle's exact length, which the bundle signers thereby fixed: a feed that states
+    /// another size is not telling the truth about this bundle.
+    pub len: u64,
+    /// Format 2: the payload's chunks where they lie in the file, to check the rest of the
+    /// download chunk by chunk as it arrives.
+    pub watch: Option<chunks::Watch>,
+}
 
 /// What the app accepts. Trusted keys and the app's own version are required; everything
 /// else has a safe default.
@@ -237,11 +251,9 @@ impl Verifier {
     /// Checks the head of a bundle still being downloaded (the first bytes of `file`, at most
     /// [`crate::format::limit::HEAD_BYTES`]): the manifest's signatures, as
     /// [`Verifier::verify_file`] checks them, and that the payload's tar header states the
-    /// payload size the signed manifest declares. Returns the manifest, its exact bytes and
-    /// the bundle's exact length, which the bundle signers thereby fixed: a feed that states
-    /// another size is not telling the truth about this bundle. The app's policy is
+    /// payload size the signed manifest declares. The app's policy is
     /// [`Verifier::check_head_policy`].
-    pub(crate) fn check_head(&self, file: &mut File) -> Result<(Manifest, Vec<u8>, u64)> {
+    pub(crate) fn check_head(&self, file: &mut File) -> Result<CheckedHead> {
         file.seek(SeekFrom::Start(0))
             .map_err(|e| Error::io("cannot read the bundle's head", e))?;
         let head = bundle::read_head(&mut io::BufReader::new(Read::take(
@@ -270,7 +282,19 @@ impl Verifier {
                 "bundle's length overflows a 64-bit count",
             )
         })?;
-        Ok((manifest, head.manifest, len))
+        let watch = match &head.chunks {
+            Some(list) => Some(chunks::Watch::new(
+                head.payload_offset,
+                &chunks::Plan::new(list, &manifest)?,
+            )),
+            None => None,
+        };
+        Ok(CheckedHead {
+            manifest,
+            manifest_bytes: head.manifest,
+            len,
+            watch,
+        })
     }
 
     /// The app's policy on a head [`Verifier::check_head`] read, and the bundle length it

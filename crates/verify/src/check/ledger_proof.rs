@@ -284,4 +284,126 @@ mod tests {
             .expect("a step is needed");
         assert_eq!(walk.needs(), Some(2));
     }
+
+    /// A step file from the head of `from` entries to the head of `to`, its proof `hashes`.
+    fn step(from: u64, to: u64, hashes: Vec<Digest>) -> Vec<u8> {
+        ConsistencyStep {
+            tree_head: SignedTreeHead::new(head(to), vec![]),
+            proof: proof(from, to, hashes),
+        }
+        .to_json()
+    }
+
+    #[test]
+    fn a_walk_takes_steps_that_extend_the_head_reached_and_no_others() {
+        // Found by cargo-mutants (issue 15): `Walk::advance`'s bounds. Proofs from RFC 9162
+        // section 2.1.4.1, worked by hand for the three-entry ledger of `head`: from size 1
+        // to 2, SUBPROOF(1, D[0:2], true) = SUBPROOF(1, D[0:1], true) (empty) : MTH(D[1:2]);
+        // from 1 to 3, SUBPROOF(1, D[0:2], true) : MTH(D[2:3]).
+        let (e1, e2) = (leaf_hash(b"entry 1"), leaf_hash(b"entry 2"));
+        let feed = proof(2, 3, vec![e2]);
+        let start = || {
+            Walk::start(&head(1), &head(3), &feed)
+                .expect("a walk")
+                .expect("a step is needed")
+        };
+        // One step to size 2, where the feed's own proof starts: done.
+        let mut walk = start();
+        assert_eq!(walk.needs(), Some(1));
+        walk.advance(&step(1, 2, vec![e1]))
+            .expect("the step checks");
+        assert_eq!(walk.needs(), None);
+        // Done is done: anything handed in later changes nothing.
+        walk.advance(b"not even JSON").expect("ignored");
+        assert_eq!(walk.needs(), None);
+        // One step straight to the feed's head (its size is the upper bound, included).
+        let mut walk = start();
+        walk.advance(&step(1, 3, vec![e1, e2]))
+            .expect("the step checks");
+        assert_eq!(walk.needs(), None);
+        // A step that does not start where the walk stands, that stays at its size, that
+        // leads past the feed's head, or whose proof does not check: refused.
+        let refused = |bytes: Vec<u8>, says: &str| {
+            let err = start().advance(&bytes).expect_err("refused");
+            assert!(err.to_string().contains(says), "{err}");
+            assert!(
+                err.to_string().starts_with(
+                    "ledger tree head of size 3 is not consistent with the tree head of size 1"
+                ),
+                "{err}"
+            );
+        };
+        refused(step(2, 3, vec![e2]), "leads from size 2 to size 3");
+        refused(step(1, 1, vec![]), "leads from size 1 to size 1");
+        let past = ConsistencyStep {
+            tree_head: SignedTreeHead::new(
+                TreeHead {
+                    tree_size: 4,
+                    ..head(3)
+                },
+                vec![],
+            ),
+            proof: proof(1, 4, vec![e1, e2]),
+        };
+        refused(past.to_json(), "leads from size 1 to size 4");
+        refused(step(1, 2, vec![e2]), "consistency");
+    }
+
+    #[test]
+    fn a_walk_stops_after_its_step_cap() {
+        let mut walk = Walk::start(&head(1), &head(3), &proof(2, 3, vec![]))
+            .expect("a walk")
+            .expect("a step is needed");
+        walk.steps = MAX_STEPS - 1;
+        // The last step allowed is taken (and fails on its own merits here)...
+        let err = walk.advance(b"{}").expect_err("not a step");
+        assert!(!err.to_string().contains("consistency steps"), "{err}");
+        // ...and none after it.
+        let err = walk.advance(b"{}").expect_err("capped");
+        assert!(
+            err.to_string()
+                .ends_with(&format!("more than {MAX_STEPS} consistency steps")),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn a_tree_head_needs_its_threshold_of_trusted_signatures() {
+        // Found by cargo-mutants (issue 15): `check_tree_head` replaced by a default report.
+        // RFC 8032 section 7.1 TEST 1's secret key, and TEST 2's, signing the head's context
+        // and document as every signed document is signed.
+        use ed25519_dalek::{Signer, SigningKey};
+        let secret = |hex_key: &str| {
+            SigningKey::from_bytes(&hex::decode(hex_key).expect("hex").try_into().expect("32"))
+        };
+        let one = secret("9d61b19deffd5a60ba844af492ec2cc44449c5697b326919703bac031cae7f60");
+        let two = secret("4ccd089b28ff96da9db6c346ec114e0f5b8a319f35aba624da8cf6ed4fb8a6fb");
+        let key = |k: &SigningKey| {
+            crate::format::keys::PublicKey::from_raw(k.verifying_key().as_bytes()).expect("key")
+        };
+        let signed_by = |signers: &[&SigningKey]| {
+            let document = head(2).signed_document();
+            let message = [crate::format::context::TREE_HEAD, &document[..]].concat();
+            let signatures = signers
+                .iter()
+                .map(|k| crate::format::signature::SignatureEntry {
+                    key_id: key(k).id(),
+                    signature: k.sign(&message).to_bytes(),
+                })
+                .collect();
+            SignedTreeHead::new(head(2), signatures)
+        };
+        let keys: TrustedKeys = [key(&one), key(&two)].into_iter().collect();
+        let report = check_tree_head(&signed_by(&[&one]), &keys, 1).expect("one of one");
+        assert_eq!(report.valid, vec![key(&one).id()]);
+        let report = check_tree_head(&signed_by(&[&two, &one]), &keys, 2).expect("two of two");
+        assert_eq!(report.valid.len(), 2);
+        let err = check_tree_head(&signed_by(&[&one]), &keys, 2).expect_err("one of two");
+        assert_eq!(err.kind(), ErrorKind::Signature);
+        let only_one: TrustedKeys = [key(&one)].into_iter().collect();
+        let err = check_tree_head(&signed_by(&[&two]), &only_one, 1).expect_err("untrusted");
+        assert_eq!(err.kind(), ErrorKind::Signature);
+        let err = check_tree_head(&signed_by(&[]), &only_one, 1).expect_err("unsigned");
+        assert_eq!(err.kind(), ErrorKind::Signature);
+    }
 }

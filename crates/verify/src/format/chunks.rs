@@ -22,7 +22,7 @@ use std::sync::mpsc::{Receiver, Sender, SyncSender, channel, sync_channel};
 use std::thread::Scope;
 
 use crate::error::{Error, ErrorKind, Result};
-use crate::format::digest::Digest;
+use crate::format::digest::{Digest, Hasher};
 use crate::format::manifest::Manifest;
 use crate::format::{entry, limit};
 
@@ -295,6 +295,146 @@ fn read_chunk(file: &mut File, buf: &mut [u8], start: u64) -> Result<()> {
     Ok(())
 }
 
+/// A bundle file's chunks where they lie in the file, fed with the file's bytes in order as a
+/// download writes them (or as a kept partial download is read again): each chunk is checked
+/// against its record once its last byte has arrived. A download then keeps every chunk that
+/// checked and fetches again from the first one that did not, instead of starting over, and
+/// a wrong byte is caught one chunk after it arrives instead of at the end.
+///
+/// The watch proves chunks only. The head before the payload was checked before the payload
+/// was asked for, and the whole file's SHA-256 against the feed's is still checked at the
+/// end; the install reads the file again and checks every chunk just before decoding it,
+/// since the file sits in a directory others may write between the two.
+#[derive(Clone)]
+pub(crate) struct Watch {
+    /// The payload's offset in the file: the first chunk's first byte.
+    payload_offset: u64,
+    records: std::sync::Arc<[Record]>,
+    /// The chunk being filled, its first byte's offset in the file, and its bytes so far.
+    next: usize,
+    start: u64,
+    hasher: Hasher,
+    /// The file's bytes seen so far.
+    seen: u64,
+}
+
+/// A chunk whose bytes do not hash to its record.
+#[derive(Debug, Clone)]
+pub(crate) struct BadChunk {
+    /// The chunk's index and where it lies in the file.
+    pub index: usize,
+    pub start: u64,
+    pub end: u64,
+    /// What its bytes hash to, and what the list declares.
+    pub found: Digest,
+    pub declared: Digest,
+}
+
+impl std::fmt::Display for BadChunk {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "payload chunk {} (bytes {} to {} of the file) has SHA-256 {}, but the bundle's \
+             signed chunk list declares {}",
+            self.index, self.start, self.end, self.found, self.declared
+        )
+    }
+}
+
+impl std::fmt::Debug for Watch {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Watch")
+            .field("chunks", &self.records.len())
+            .field("checked", &self.next)
+            .field("seen", &self.seen)
+            .finish_non_exhaustive()
+    }
+}
+
+impl Watch {
+    /// A watch over the chunks of `plan`, whose payload starts at `payload_offset` in the
+    /// file, with nothing seen yet.
+    pub(crate) fn new(payload_offset: u64, plan: &Plan) -> Watch {
+        Watch {
+            payload_offset,
+            records: plan.records.clone().into(),
+            next: 0,
+            start: payload_offset,
+            hasher: Hasher::new(),
+            seen: 0,
+        }
+    }
+
+    /// The same watch with nothing seen: for reading the file again from its start.
+    pub(crate) fn restart(&self) -> Watch {
+        Watch {
+            records: self.records.clone(),
+            next: 0,
+            start: self.payload_offset,
+            hasher: Hasher::new(),
+            seen: 0,
+            ..*self
+        }
+    }
+
+    /// Takes the file's next bytes. Stops at the first chunk whose bytes do not hash to its
+    /// record: the watch then stands at that chunk's first byte, as the file does once cut
+    /// back to [`Watch::good_len`], ready for the chunk's bytes fetched again.
+    pub(crate) fn feed(&mut self, mut data: &[u8]) -> std::result::Result<(), BadChunk> {
+        if self.seen < self.payload_offset {
+            let skip = (self.payload_offset - self.seen).min(data.len() as u64) as usize;
+            self.seen += skip as u64;
+            data = &data[skip..];
+        }
+        while !data.is_empty() {
+            let Some(record) = self.records.get(self.next) else {
+                // Past the last chunk: the tar's padding and end blocks, which the whole
+                // file's digest covers.
+                self.seen += data.len() as u64;
+                return Ok(());
+            };
+            let end = self.start + u64::from(record.size);
+            let take = (end - self.seen).min(data.len() as u64) as usize;
+            self.hasher.update(&data[..take]);
+            self.seen += take as u64;
+            data = &data[take..];
+            if self.seen == end {
+                let hasher = std::mem::take(&mut self.hasher);
+                let found = hasher.finish();
+                if found != record.sha256 {
+                    self.seen = self.start;
+                    return Err(self.bad(found));
+                }
+                self.next += 1;
+                self.start = end;
+            }
+        }
+        Ok(())
+    }
+
+    fn bad(&self, found: Digest) -> BadChunk {
+        let record = self.records[self.next];
+        BadChunk {
+            index: self.next,
+            start: self.start,
+            end: self.start + u64::from(record.size),
+            found,
+            declared: record.sha256,
+        }
+    }
+
+    /// The end of the last chunk that checked (the payload's offset when none did yet): the
+    /// longest prefix of the file this watch vouches for, beside the head checked before.
+    pub(crate) fn good_len(&self) -> u64 {
+        self.start
+    }
+
+    /// How many chunks checked.
+    pub(crate) fn checked(&self) -> usize {
+        self.next
+    }
+}
+
 /// Hashes every chunk of a payload against its record without decoding anything: the release
 /// tools' check of a format 2 bundle they only look at (`inspect`, `sign`).
 pub(crate) fn check_all(file: File, plan: &Plan) -> Result<()> {
@@ -351,6 +491,72 @@ mod tests {
         assert_eq!(
             writer_chunk_bytes((limit::CHUNKS << limit::CHUNK_LOG_MAX) + 1),
             None
+        );
+    }
+
+    /// A file of a 5-byte head, three chunks of 4, 3 and 5 bytes, and a 2-byte tail, with a
+    /// watch over it. The digests are the `sha2` crate's, checked against FIPS 180-4 above.
+    fn file_and_watch() -> (Vec<u8>, Watch) {
+        let chunks: [&[u8]; 3] = [b"abcd", b"efg", b"hijkl"];
+        let records = chunks
+            .iter()
+            .map(|c| Record {
+                size: c.len() as u32,
+                sha256: Digest::of(c),
+            })
+            .collect();
+        let plan = Plan {
+            tar_len: 12,
+            chunk_bytes: 4,
+            records,
+        };
+        let mut file = b"HEAD:".to_vec();
+        file.extend(chunks.concat());
+        file.extend(b"..");
+        (file, Watch::new(5, &plan))
+    }
+
+    #[test]
+    fn a_watch_checks_each_chunk_however_the_bytes_arrive() {
+        let (file, watch) = file_and_watch();
+        for split in 1..file.len() {
+            let mut w = watch.restart();
+            for part in file.chunks(split) {
+                assert!(w.feed(part).is_ok(), "split {split}");
+            }
+            assert_eq!((w.checked(), w.good_len()), (3, 17), "split {split}");
+        }
+        // Before its last byte a chunk is not vouched for.
+        let mut w = watch.restart();
+        w.feed(&file[..11]).expect("the first chunk checks");
+        assert_eq!((w.checked(), w.good_len()), (1, 9));
+    }
+
+    #[test]
+    fn a_watch_stops_at_the_first_wrong_chunk_and_goes_on_from_its_start() {
+        let (mut file, watch) = file_and_watch();
+        // The head and the tail are not the watch's: the feed's digest covers them.
+        file[0] ^= 1;
+        file[18] ^= 1;
+        let mut w = watch.restart();
+        assert!(w.feed(&file).is_ok());
+        file[0] ^= 1;
+        file[18] ^= 1;
+        // A wrong byte in the second chunk.
+        let mut damaged = file.clone();
+        damaged[10] ^= 0x20;
+        let mut w = watch.restart();
+        let bad = w.feed(&damaged).expect_err("the second chunk differs");
+        assert_eq!((bad.index, bad.start, bad.end), (1, 9, 12));
+        assert_eq!(bad.declared, Digest::of(b"efg"));
+        assert_eq!(bad.found, Digest::of(b"eFg"));
+        assert_eq!((w.checked(), w.good_len()), (1, 9));
+        // Cut back to its good length, the file goes on with the right bytes.
+        assert!(w.feed(&file[9..]).is_ok());
+        assert_eq!((w.checked(), w.good_len()), (3, 17));
+        assert!(
+            bad.to_string()
+                .starts_with("payload chunk 1 (bytes 9 to 12 of the file)")
         );
     }
 }

@@ -63,8 +63,8 @@ pub struct Payload {
     /// Format 1 only: the SHA-256 of the compressed bytes.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub sha256: Option<Digest>,
-    /// Format 2 only: the size of each chunk of the compressed bytes (the last one holds the
-    /// rest), a power of two from 64 KiB to 2 MiB.
+    /// Format 2 only: how many bytes of the inner tar each chunk holds before compression (the
+    /// last one holds the rest), a power of two from 64 KiB to 4 MiB.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub chunk_bytes: Option<u32>,
     /// Format 2 only: the SHA-256 of the chunk list entry (`chunks.sha256`).
@@ -363,6 +363,115 @@ impl Manifest {
         /// The total size of the files in the payload.
         fn files_len(&self) -> u64 {
             self.files.iter().map(|f| f.size).sum()
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn payload(sha256: bool, chunk_bytes: Option<u32>, chunks_sha256: bool) -> Payload {
+        Payload {
+            compression: Compression::Zstd,
+            size: 1,
+            sha256: sha256.then(|| Digest::of(b"payload")),
+            chunk_bytes,
+            chunks_sha256: chunks_sha256.then(|| Digest::of(b"list")),
+        }
+    }
+
+    fn refused(result: Result<()>) -> String {
+        let e = result.expect_err("refused");
+        assert_eq!(e.kind(), ErrorKind::Manifest, "{e}");
+        e.to_string()
+    }
+
+    #[test]
+    fn each_format_binds_its_payload_its_own_way() {
+        assert!(payload(true, None, false).validate(1, 1 << 20).is_ok());
+        for mixed in [
+            payload(true, Some(1 << 19), true),
+            payload(true, Some(1 << 19), false),
+            payload(true, None, true),
+            payload(false, None, false),
+        ] {
+            assert!(
+                refused(mixed.validate(1, 1 << 20))
+                    .contains("format 1 binds its payload by 'sha256' alone")
+            );
+        }
+        assert!(
+            payload(false, Some(1 << 19), true)
+                .validate(2, 1 << 20)
+                .is_ok()
+        );
+        for mixed in [
+            payload(true, Some(1 << 19), true),
+            payload(false, Some(1 << 19), false),
+            payload(false, None, true),
+            payload(false, None, false),
+        ] {
+            assert!(
+                refused(mixed.validate(2, 1 << 20))
+                    .contains("format 2 binds its payload by 'chunk_bytes' and 'chunks_sha256'")
+            );
+        }
+    }
+
+    #[test]
+    fn chunk_bytes_is_a_power_of_two_within_the_limits() {
+        let with = |chunk: u32| payload(false, Some(chunk), true).validate(2, 1 << 20);
+        let min = 1u32 << limit::CHUNK_LOG_MIN;
+        let max = 1u32 << limit::CHUNK_LOG_MAX;
+        assert!(with(min).is_ok());
+        assert!(with(max).is_ok());
+        for bad in [min / 2, max * 2, min + 1, 3 * min, 0] {
+            assert!(
+                refused(with(bad)).contains(&format!("chunk_bytes {bad} is not allowed")),
+                "{bad}"
+            );
+        }
+    }
+
+    #[test]
+    fn a_payload_has_at_most_the_chunk_cap() {
+        let chunk = 1u32 << limit::CHUNK_LOG_MIN;
+        let at_cap = limit::CHUNKS * u64::from(chunk);
+        let p = payload(false, Some(chunk), true);
+        assert!(p.validate(2, at_cap).is_ok());
+        assert!(p.validate(2, at_cap - 1).is_ok());
+        assert_eq!(
+            refused(p.validate(2, at_cap + 1)),
+            format!(
+                "manifest's files make an inner tar of {} bytes, {} chunks of {chunk} bytes; a \
+                 payload has at most {} chunks",
+                at_cap + 1,
+                limit::CHUNKS + 1,
+                limit::CHUNKS
+            )
+        );
+    }
+
+    #[test]
+    fn a_model_path_takes_1_to_16_lowercase_letters_or_digits() {
+        assert_eq!(model_path("onnx").as_deref(), Some("model.onnx"));
+        assert_eq!(
+            model_path("safetensors").as_deref(),
+            Some("model.safetensors")
+        );
+        assert_eq!(model_path("b1").as_deref(), Some("model.b1"));
+        let longest = "a".repeat(limit::MODEL_EXTENSION_CHARS);
+        assert_eq!(model_path(&longest), Some(format!("model.{longest}")));
+        for bad in [
+            "",
+            "ONNX",
+            "on-x",
+            "on.x",
+            "ön",
+            &"a".repeat(limit::MODEL_EXTENSION_CHARS + 1),
+        ] {
+            assert_eq!(model_path(bad), None, "{bad:?}");
         }
     }
 }

@@ -36,6 +36,7 @@ use crate::check::feed::{
 };
 use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::chunks::Watch;
 use crate::format::digest::{Digest, Hasher};
 use crate::format::ledger_entry as ledger;
 use crate::format::time::Timestamp;
@@ -558,44 +559,91 @@ pub fn fetch_to_file(url: &str, dest: &Path, max: u64, transfer: &Transfer) -> R
     })
 }
 
-/// What the partial file holds before a request: its length and the hash of those bytes.
-fn resume_state(file: &mut File, path: &Path, size: u64) -> Result<(u64, Hasher)> {
+/// What the partial file holds before a request: its length, the hash of those bytes and,
+/// with a `watch`, the watch fed with them. A chunk in it that does not check is cut off with
+/// everything after it, and the rest is read again: the download resumes after the last
+/// chunk that checked.
+fn resume_state(
+    file: &mut File,
+    path: &Path,
+    size: u64,
+    watch: Option<&Watch>,
+) -> Result<(u64, Hasher, Option<Watch>)> {
     let io = |doing: &str, e| Error::io(format!("cannot {doing} {}", path.display()), e);
-    let len = file
+    let mut len = file
         .metadata()
         .map_err(|e| io("read the size of", e))?
         .len();
     if len > size {
         file.set_len(0).map_err(|e| io("truncate", e))?;
-        return Ok((0, Hasher::new()));
+        len = 0;
     }
-    file.seek(SeekFrom::Start(0)).map_err(|e| io("read", e))?;
-    let mut hasher = Hasher::new();
     let mut buf = vec![0u8; 256 * 1024];
-    let mut reader = std::io::Read::take(&mut *file, len);
+    // Twice at most: after a cut, every chunk left checked.
     loop {
-        let n = std::io::Read::read(&mut reader, &mut buf).map_err(|e| io("read", e))?;
-        if n == 0 {
-            break;
+        file.seek(SeekFrom::Start(0)).map_err(|e| io("read", e))?;
+        let mut hasher = Hasher::new();
+        let mut watching = watch.map(Watch::restart);
+        let mut reader = std::io::Read::take(&mut *file, len);
+        let mut cut = None;
+        loop {
+            let n = std::io::Read::read(&mut reader, &mut buf).map_err(|e| io("read", e))?;
+            if n == 0 {
+                break;
+            }
+            hasher.update(&buf[..n]);
+            if let Some(w) = &mut watching
+                && w.feed(&buf[..n]).is_err()
+            {
+                cut = Some(w.good_len());
+                break;
+            }
         }
-        hasher.update(&buf[..n]);
+        match cut {
+            Some(good) => {
+                file.set_len(good).map_err(|e| io("truncate", e))?;
+                len = good;
+            }
+            None => return Ok((hasher.len(), hasher, watching)),
+        }
     }
-    Ok((hasher.len(), hasher))
+}
+
+/// The file a download completes, and what it must hold when complete.
+pub(crate) struct Partial<'a> {
+    /// Opened for reading and writing.
+    pub file: &'a mut File,
+    /// Its path, for messages.
+    pub path: &'a Path,
+    pub size: u64,
+    pub sha256: &'a Digest,
+    /// How many of the bytes already in the file came from an earlier update (see
+    /// [`download_into`]).
+    pub earlier: u64,
+    /// Format 2, once the head checked: the chunks to check as they arrive.
+    pub watch: Option<&'a Watch>,
 }
 
 impl Session {
-    /// One try at completing the partial file from one URL.
+    /// One try at completing the partial file from one URL. `received` counts the bytes
+    /// it received.
     async fn download_once(
         &self,
         url: &str,
-        file: &mut File,
-        path: &Path,
-        size: u64,
-        sha256: &Digest,
-        earlier: u64,
+        partial: &mut Partial<'_>,
+        received: &mut u64,
     ) -> Result<()> {
+        let Partial {
+            file,
+            path,
+            size,
+            sha256,
+            earlier,
+            watch,
+        } = partial;
+        let (path, size, sha256, earlier, watch) = (*path, *size, *sha256, *earlier, *watch);
         let io = |doing: &str, e| Error::io(format!("cannot {doing} {}", path.display()), e);
-        let (mut have, mut hasher) = resume_state(file, path, size)?;
+        let (mut have, mut hasher, mut watching) = resume_state(file, path, size, watch)?;
         // How many of the bytes hashed below were kept from an earlier try rather than sent
         // by `url` now: a digest mismatch names both sources.
         let mut kept = have.min(earlier);
@@ -614,6 +662,7 @@ impl Session {
                         file.set_len(0).map_err(|e| io("truncate", e))?;
                         have = 0;
                         hasher = Hasher::new();
+                        watching = watch.map(Watch::restart);
                     }
                 }
                 other => {
@@ -639,6 +688,7 @@ impl Session {
             let start = have;
             kept = have.min(earlier);
             let mut overrun = false;
+            let mut bad_chunk = None;
             // Plain blocking writes: this runtime runs nothing else, and a local disk keeps up
             // with any network a device has.
             let result = read_body(
@@ -657,6 +707,13 @@ impl Session {
                     file.write_all(data).map_err(|e| io("write", e))?;
                     hasher.update(data);
                     have += data.len() as u64;
+                    *received += data.len() as u64;
+                    if let Some(w) = &mut watching
+                        && let Err(chunk) = w.feed(data)
+                    {
+                        bad_chunk = Some((chunk, w.good_len(), w.checked()));
+                        return Err(Error::new(ErrorKind::Digest, "a chunk did not check"));
+                    }
                     if let Some(progress) = &self.transfer.progress {
                         progress(Progress {
                             stage: Stage::Download,
@@ -668,7 +725,25 @@ impl Session {
                 },
             )
             .await;
-            file.sync_data().map_err(|e| io("flush", e))?;
+            if let Some((chunk, good, checked)) = bad_chunk {
+                // Every chunk before this one checked: keep them, and ask for the rest again.
+                file.set_len(good).map_err(|e| io("truncate", e))?;
+                return Err(Error::new(
+                    ErrorKind::Digest,
+                    format!(
+                        "{chunk}, in the bytes from {url}; the first {good} bytes (the head and \
+                         {checked} chunks that checked) are kept, and the next try downloads from there"
+                    ),
+                ));
+            }
+            // Flushed so that a resume after a power cut finds what was written. With a
+            // watch it is not needed: a resume checks the kept chunks again and cuts the file
+            // where its bytes went missing, and the install reads the file from the page
+            // cache and checks it all again; the file is removed once installed, so most of
+            // its bytes never reach the disk (a phone's flash is spared 80 MB of writes).
+            if watch.is_none() {
+                file.sync_data().map_err(|e| io("flush", e))?;
+            }
             match result {
                 Err(BodyError::Refused(e)) if overrun => {
                     // Nothing this server sent can be trusted as a prefix.
@@ -722,42 +797,54 @@ impl Session {
     }
 }
 
-/// Downloads a file of exactly `size` bytes with SHA-256 `sha256` into `file` (opened for
-/// reading and writing; `partial` names it in messages), trying `urls` in order. Bytes
-/// already in the file are kept and the rest is asked for with a Range request; one source is
-/// tried again while its tries make progress. On success the file holds exactly the expected
+/// Completes `partial`: a file of exactly `size` bytes with SHA-256 `sha256`, trying `urls`
+/// in order. Bytes already in the file are kept and the rest is asked for with a Range
+/// request; one source is tried again while its tries make progress. On success the file holds exactly the expected
 /// bytes. A failure keeps a correct-looking prefix for the next call, and empties the file
 /// when the bytes were proven wrong (digest) or too many.
 ///
 /// `earlier` says how many of the bytes already in the file came from an earlier update (the
 /// rest, if any, is the bundle's head fetched from these URLs just now): a digest mismatch
 /// names the kept bytes as a source of their own only then.
-pub fn download_into(
+///
+/// With `watch` (a format 2 bundle whose head checked), each chunk is checked as its last
+/// byte arrives, and kept bytes as they are read again: a chunk that does not check is cut
+/// off with what follows it, and the download goes on after the last chunk that checked,
+/// from the same source up to `attempts` times in all, else from the next.
+///
+/// Returns how many bytes the tries received, those fetched twice included.
+pub(crate) fn download_into(
     urls: &[String],
-    file: &mut File,
-    partial: &Path,
-    size: u64,
-    sha256: &Digest,
-    earlier: u64,
+    mut partial: Partial<'_>,
     transfer: &Transfer,
-) -> Result<()> {
+) -> Result<u64> {
     if urls.is_empty() {
         return Err(network("no URL to download from".into()));
     }
     let session = Session::new(transfer)?;
     let mut failures: Vec<Error> = Vec::new();
+    let mut received = 0;
     for url in urls {
         for attempt in 1..=transfer.attempts {
-            let before = file.metadata().map(|m| m.len()).unwrap_or(0);
-            let result = session
-                .runtime
-                .block_on(session.download_once(url, file, partial, size, sha256, earlier));
+            let before = partial.file.metadata().map(|m| m.len()).unwrap_or(0);
+            let result =
+                session
+                    .runtime
+                    .block_on(session.download_once(url, &mut partial, &mut received));
             let err = match result {
-                Ok(()) => return Ok(()),
+                Ok(()) => return Ok(received),
                 Err(e) => e,
             };
-            let after = file.metadata().map(|m| m.len()).unwrap_or(0);
-            let retry = err.kind() == ErrorKind::Network && after > before;
+            let after = partial.file.metadata().map(|m| m.len()).unwrap_or(0);
+            // A transfer that broke off after bytes that came whole: the same source again.
+            // A chunk that did not check (the file was cut back to the chunks before it, after
+            // the head): the same source again too, at most `attempts` times, since a bit
+            // flipped on the way costs one chunk. A whole file proven wrong was emptied: never.
+            let retry = match err.kind() {
+                ErrorKind::Network => after > before,
+                ErrorKind::Digest => after > 0,
+                _ => false,
+            };
             if !retry || attempt == transfer.attempts {
                 failures.push(err);
                 break;
@@ -876,7 +963,15 @@ pub fn download(
         .truncate(false)
         .open(partial)
         .map_err(|e| Error::io(format!("cannot open {}", partial.display()), e))?;
-    download_into(urls, &mut file, partial, size, sha256, u64::MAX, transfer)
+    let partial = Partial {
+        file: &mut file,
+        path: partial,
+        size,
+        sha256,
+        earlier: u64::MAX,
+        watch: None,
+    };
+    download_into(urls, partial, transfer).map(|_| ())
 }
 
 /// What one update check found. The device stores the feed's sequence and digest

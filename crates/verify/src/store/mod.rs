@@ -508,10 +508,31 @@ impl Incoming {
     }
 }
 
-/// Holds the updaters' lock until dropped (closing the file releases it, also when the
-/// process dies).
-struct UpdateLock {
-    _file: File,
+/// A lock on a file, held until dropped (or until the process dies, which closes the file).
+/// Dropping it unlocks before closing: a child process the app starts meanwhile shares the
+/// open file between its fork and its exec, and closing alone would leave the lock held that
+/// long, so that the next update on this store found it taken.
+pub(crate) struct HeldLock(File);
+
+impl HeldLock {
+    /// Takes the lock on `file` if no one holds it.
+    pub(crate) fn try_take(file: File) -> std::result::Result<HeldLock, (File, TryLockError)> {
+        match file.try_lock() {
+            Ok(()) => Ok(HeldLock(file)),
+            Err(e) => Err((file, e)),
+        }
+    }
+
+    /// The locked file.
+    pub(crate) fn file(&self) -> &File {
+        &self.0
+    }
+}
+
+impl Drop for HeldLock {
+    fn drop(&mut self) {
+        let _ = self.0.unlock();
+    }
 }
 
 impl Store {
@@ -1137,7 +1158,7 @@ impl Store {
             let lock = open_own_file(&downloads, DOWNLOAD_LOCK, &mut |what| {
                 self.note_removed(what)
             })?;
-            if lock.try_lock().is_ok() {
+            if let Ok(_held) = HeldLock::try_take(lock) {
                 removed.extend(self.sweep_downloads(&downloads, None, false));
             }
         }
@@ -1391,37 +1412,36 @@ impl Store {
     }
 
     /// Takes the updaters' exclusive lock, waiting up to `lock_wait`.
-    fn lock(&self) -> Result<UpdateLock> {
-        let file = self.lock_file(&self.root()?)?;
+    fn lock(&self) -> Result<HeldLock> {
+        let mut file = self.lock_file(&self.root()?)?;
         let deadline = Instant::now() + self.lock_wait;
         loop {
-            match file.try_lock() {
-                Ok(()) => return Ok(UpdateLock { _file: file }),
-                Err(TryLockError::WouldBlock) => {
-                    let now = Instant::now();
-                    if now >= deadline {
-                        let waited = if self.lock_wait.is_zero() {
-                            String::new()
-                        } else {
-                            format!(" (waited {} ms)", self.lock_wait.as_millis())
-                        };
-                        return Err(Error::new(
-                            ErrorKind::Locked,
-                            format!(
-                                "store {} is being updated by another process{waited}; try again later",
-                                self.dir.display()
-                            ),
-                        ));
-                    }
-                    std::thread::sleep(LOCK_POLL.min(deadline - now));
-                }
-                Err(TryLockError::Error(e)) => {
+            file = match HeldLock::try_take(file) {
+                Ok(held) => return Ok(held),
+                Err((file, TryLockError::WouldBlock)) => file,
+                Err((_, TryLockError::Error(e))) => {
                     return Err(Error::io(
                         format!("cannot lock store {}", self.dir.display()),
                         e,
                     ));
                 }
+            };
+            let now = Instant::now();
+            if now >= deadline {
+                let waited = if self.lock_wait.is_zero() {
+                    String::new()
+                } else {
+                    format!(" (waited {} ms)", self.lock_wait.as_millis())
+                };
+                return Err(Error::new(
+                    ErrorKind::Locked,
+                    format!(
+                        "store {} is being updated by another process{waited}; try again later",
+                        self.dir.display()
+                    ),
+                ));
             }
+            std::thread::sleep(LOCK_POLL.min(deadline - now));
         }
     }
 

@@ -26,7 +26,9 @@ use crate::check::bundle::Verifier;
 use crate::dir::{Dir, Found, Refused};
 use crate::error::{Error, ErrorKind, Result};
 use crate::format::time::Timestamp;
-use crate::store::{DOWNLOAD_LOCK, DOWNLOADS_DIR, Release, Store, StoreState, open_own_file};
+use crate::store::{
+    DOWNLOAD_LOCK, DOWNLOADS_DIR, HeldLock, Release, Store, StoreState, open_own_file,
+};
 
 #[cfg(feature = "fetch")]
 use super::Report;
@@ -213,7 +215,7 @@ impl Device {
                         )
                     });
                     match done {
-                        Ok(()) => session.downloaded_and_checked(),
+                        Ok(()) => session.downloaded_and_checked(None),
                         Err(e) => return session.fail_with(e),
                     }
                 }
@@ -222,17 +224,17 @@ impl Device {
                         Ok(file) => file,
                         Err(e) => return session.fail_with(e),
                     };
-                    match crate::net::download_into(
-                        want.urls(),
-                        &mut file,
-                        want.path(),
-                        want.size(),
-                        want.sha256(),
-                        want.earlier,
-                        transfer,
-                    ) {
+                    let partial = crate::net::Partial {
+                        file: &mut file,
+                        path: want.path(),
+                        size: want.size(),
+                        sha256: want.sha256(),
+                        earlier: want.earlier,
+                        watch: want.watch.as_deref(),
+                    };
+                    match crate::net::download_into(want.urls(), partial, transfer) {
                         // The download checked size and SHA-256 as it streamed.
-                        Ok(()) => session.downloaded_and_checked(),
+                        Ok(received) => session.downloaded_and_checked(Some(received)),
                         // A delta that cannot be had: the bundle next, in this update.
                         Err(e) if want.delta.is_some() => {
                             if let Err(e) = session.delta_failed(e) {
@@ -367,20 +369,21 @@ impl Device {
 
     /// Holds `downloads/lock` for a whole update: a second updater on the same store fails
     /// at once instead of writing the same partial download.
-    fn lock_downloads(&self) -> Result<File> {
+    fn lock_downloads(&self) -> Result<HeldLock> {
         let dir = self.downloads()?;
         let path = dir.join(DOWNLOAD_LOCK);
-        let file = open_own_file(&dir, DOWNLOAD_LOCK, &mut |what| {
+        let mut file = open_own_file(&dir, DOWNLOAD_LOCK, &mut |what| {
             self.store.note_removed(what)
         })?;
         let deadline = Instant::now() + self.app.lock_wait;
         loop {
-            match file.try_lock() {
-                Ok(()) => return Ok(file),
-                Err(TryLockError::WouldBlock) if Instant::now() < deadline => {
+            file = match HeldLock::try_take(file) {
+                Ok(held) => return Ok(held),
+                Err((file, TryLockError::WouldBlock)) if Instant::now() < deadline => {
                     std::thread::sleep(LOCK_POLL);
+                    file
                 }
-                Err(TryLockError::WouldBlock) => {
+                Err((_, TryLockError::WouldBlock)) => {
                     return Err(Error::new(
                         ErrorKind::Locked,
                         format!(
@@ -390,10 +393,10 @@ impl Device {
                         ),
                     ));
                 }
-                Err(TryLockError::Error(e)) => {
+                Err((_, TryLockError::Error(e))) => {
                     return Err(Error::io(format!("cannot lock {}", path.display()), e));
                 }
-            }
+            };
         }
     }
 }

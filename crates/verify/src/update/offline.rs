@@ -508,7 +508,7 @@ impl Device {
                 },
                 Next::Download(want) => {
                     match offline.copy_bundle(&want, self.app().progress.as_ref()) {
-                        Ok(()) => session.downloaded_and_checked(),
+                        Ok(()) => session.downloaded_and_checked(None),
                         Err(e) => return session.fail_with(e),
                     }
                 }

@@ -15,15 +15,16 @@ use crate::check::feed::{
 use crate::check::ledger_proof::{LedgerVerifier, Walk};
 use crate::check::trust::TrustSet;
 use crate::error::{Error, ErrorKind, Result};
+use crate::format::chunks::Watch;
 use crate::format::delta_file::base_id;
-use crate::format::digest::{Digest, hash_reader};
+use crate::format::digest::{Digest, Hasher};
 use crate::format::ledger_entry::{self as ledger, DeltaRef};
 use crate::format::signed::{Signers, kind};
 use crate::format::time::Timestamp;
 use crate::format::trust_proofs::{self, TrustSetProofs};
 use crate::format::{FEED_FORMAT_VERSION, limit, trust_set};
 use crate::payload::delta::VerifiedDelta;
-use crate::store::{Store, StoreState};
+use crate::store::{HeldLock, Store, StoreState};
 
 use super::device::store_verifier;
 use super::refusals;
@@ -107,6 +108,9 @@ pub struct Download {
     pub(crate) delta: Option<DeltaRef>,
     /// The file's length when this request was made, to count the bytes it downloaded.
     from: u64,
+    /// Format 2, once the head checked: the chunks where they lie in the file, so that the
+    /// download keeps every chunk that checked when the whole file's digest is wrong.
+    pub(crate) watch: Option<Box<Watch>>,
 }
 
 impl Download {
@@ -187,7 +191,7 @@ impl Download {
 /// it is dropped.
 pub struct Session<'d> {
     device: &'d Device,
-    lock: Option<File>,
+    lock: Option<HeldLock>,
     feed_url: String,
     feed_bytes: Vec<u8>,
     now: Timestamp,
@@ -259,6 +263,8 @@ enum State {
         earlier: u64,
         /// The delta downloaded instead of the bundle, when it is one.
         delta: Option<DeltaRef>,
+        /// The chunks of the bundle downloaded, once its head checked.
+        watch: Option<Box<Watch>>,
     },
     /// The delta asked for could not be downloaded: the bundle comes next.
     #[cfg_attr(not(feature = "fetch"), allow(dead_code))]
@@ -288,7 +294,7 @@ impl std::fmt::Debug for Session<'_> {
 impl<'d> Session<'d> {
     pub(crate) fn new(
         device: &'d Device,
-        lock: Result<File>,
+        lock: Result<HeldLock>,
         feed_url: &str,
         feed_bytes: Vec<u8>,
         now: Timestamp,
@@ -369,15 +375,18 @@ impl<'d> Session<'d> {
                 head: want.head.then(|| want.clone()),
                 earlier: want.earlier,
                 delta: want.delta.clone(),
+                watch: want.watch.clone(),
             };
         }
     }
 
     /// The download of the last [`Next::Download`] is at its path, and its size and digest
-    /// were checked while it streamed (or was copied).
-    pub(crate) fn downloaded_and_checked(&mut self) {
+    /// were checked while it streamed (or was copied). `received` counts the bytes it took,
+    /// when some came twice (a chunk that did not check is fetched again); otherwise they
+    /// are the ones the file lacked.
+    pub(crate) fn downloaded_and_checked(&mut self, received: Option<u64>) {
         if let State::Download(want, release) = &self.state {
-            self.downloaded += want.size.saturating_sub(want.from);
+            self.downloaded += received.unwrap_or(want.size.saturating_sub(want.from));
             self.state = State::Downloaded {
                 path: want.path.clone(),
                 release: release.clone(),
@@ -385,6 +394,7 @@ impl<'d> Session<'d> {
                 head: want.head.then(|| want.clone()),
                 earlier: want.earlier,
                 delta: want.delta.clone(),
+                watch: want.watch.clone(),
             };
         }
     }
@@ -507,7 +517,8 @@ impl<'d> Session<'d> {
                 head: None,
                 earlier,
                 delta: None,
-            } => self.install(&path, &release, checked, earlier),
+                watch,
+            } => self.install(&path, &release, checked, earlier, watch),
             State::Downloaded {
                 path,
                 release,
@@ -515,6 +526,7 @@ impl<'d> Session<'d> {
                 head: None,
                 earlier,
                 delta: Some(delta),
+                ..
             } => match self.install_delta(&path, &release, &delta, checked, earlier) {
                 // Another update holding the store, or the app stopping this one: the bundle
                 // would meet the same.
@@ -946,7 +958,7 @@ impl<'d> Session<'d> {
         // store prepared.
         let earlier = self
             .device
-            .partial_download(lock, &name, size)?
+            .partial_download(lock.file(), &name, size)?
             .metadata()
             .map_or(0, |m| m.len());
         // The head of a bundle first when it is larger than one: its signed manifest fixes
@@ -970,6 +982,7 @@ impl<'d> Session<'d> {
             earlier,
             delta,
             from: earlier,
+            watch: None,
         };
         self.device.sweep_downloads(Some(&want.name));
         Ok(Step::Go(State::Download(want, release)))
@@ -1056,9 +1069,11 @@ impl<'d> Session<'d> {
                 ),
             ));
         }
-        let (manifest, manifest_bytes, len) = bundles
+        let checked = bundles
             .check_head(&mut file)
             .map_err(|e| refuse(e, false))?;
+        let (manifest, manifest_bytes, len) =
+            (checked.manifest, checked.manifest_bytes, checked.len);
         // The release the feed offers, and the manifest its ledger entry logs.
         let feed = self
             .feed
@@ -1092,6 +1107,7 @@ impl<'d> Session<'d> {
             size: head.whole,
             head: false,
             from: have,
+            watch: checked.watch.map(Box::new),
             ..head
         };
         Ok(Step::Go(State::Download(want, release)))
@@ -1104,6 +1120,7 @@ impl<'d> Session<'d> {
         release: &Release,
         checked: bool,
         earlier: u64,
+        watch: Option<Box<Watch>>,
     ) -> Result<Step> {
         let feed = self
             .feed
@@ -1118,16 +1135,6 @@ impl<'d> Session<'d> {
             self.held()?,
             &self.bundle_verifier(&store.state()?)?,
         );
-        // Bytes that are not the file the feed signed: the server or the transfer is at
-        // fault, not the bundle, so they are discarded but nothing is remembered.
-        let wrong_bytes = |e: Error| {
-            if let Some(name) = &ours
-                && e.kind().is_refusal()
-            {
-                self.device.remove_partial(name);
-            }
-            e
-        };
         let discard = |e: Error| {
             // The bytes are the ones the feed signed, yet the bundle is refused: keeping
             // them would only refuse them again on every update, and so would downloading
@@ -1151,8 +1158,29 @@ impl<'d> Session<'d> {
         };
         if !checked {
             let kept = if ours.is_some() { earlier } else { 0 };
-            check_file(&mut file, path, release.size, &release.sha256, kept)
-                .map_err(wrong_bytes)?;
+            if let Err(wrong) = check_file(
+                &mut file,
+                path,
+                release.size,
+                &release.sha256,
+                kept,
+                watch.map(|w| *w),
+            ) {
+                // Bytes that are not the file the feed signed: the server or the transfer is
+                // at fault, not the bundle, so nothing is remembered. The store's own file
+                // keeps the chunks that checked and loses the rest.
+                if let Some(name) = &ours
+                    && wrong.error.kind().is_refusal()
+                    && (wrong.keep == 0
+                        || file
+                            .set_len(wrong.keep)
+                            .and_then(|()| file.sync_data())
+                            .is_err())
+                {
+                    self.device.remove_partial(name);
+                }
+                return Err(wrong.error);
+            }
         }
         let bundles = self.bundle_verifier(&store.state()?)?;
         let bundle = bundles.verify_file(file).map_err(discard)?;
@@ -1187,7 +1215,8 @@ impl<'d> Session<'d> {
         };
         if !checked {
             let kept = if ours.is_some() { earlier } else { 0 };
-            check_file(&mut file, path, delta.size, &delta.sha256, kept)?;
+            check_file(&mut file, path, delta.size, &delta.sha256, kept, None)
+                .map_err(|wrong| wrong.error)?;
         }
         let bundles = self.bundle_verifier(&store.state()?)?;
         let verified = VerifiedDelta::read(&bundles, file)?;
@@ -1272,53 +1301,104 @@ impl<'d> Session<'d> {
     }
 }
 
+/// A downloaded file that is not the one the feed declares, and how many of its first bytes
+/// are still proven: the chunks before the first one that did not check (format 2, once the
+/// head checked), or none.
+struct WrongFile {
+    error: Error,
+    keep: u64,
+}
+
 /// Checks an open downloaded file against the size and SHA-256 the verified feed declares
-/// (the bundle's or a delta's),
-/// and leaves it at its start for the bundle's own checks. `kept` is how many of its bytes the
-/// store kept from an earlier update: a wrong digest then names both sources, since either may
-/// be the wrong one.
+/// (the bundle's or a delta's), and leaves it at its start for the bundle's own checks.
+/// `kept` is how many of its bytes the store kept from an earlier update: a wrong digest then
+/// names both sources, since either may be the wrong one. With `watch`, the chunks are checked
+/// in the same read, so that a wrong file keeps the chunks that checked.
 fn check_file(
     file: &mut File,
     path: &Path,
     declared_size: u64,
     declared: &Digest,
     kept: u64,
-) -> Result<()> {
-    let (sha256, size) = hash_reader(&*file, declared_size.saturating_add(1))
-        .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
-    std::io::Seek::rewind(file)
-        .map_err(|e| Error::io(format!("cannot read {}", path.display()), e))?;
-    if size != declared_size {
-        return Err(Error::new(
-            ErrorKind::Digest,
-            format!(
-                "downloaded file {} is {size} bytes{}, but the feed declares {} bytes",
-                path.display(),
-                if size > declared_size { " or more" } else { "" },
-                declared_size
-            ),
-        ));
-    }
-    if sha256 != *declared {
-        let message = if kept == 0 {
-            format!(
-                "downloaded file {} has SHA-256 {sha256}, but the feed declares {}",
-                path.display(),
-                declared
-            )
-        } else {
-            format!(
-                "the {kept} bytes kept in {} from an earlier update and the {} bytes the app \
-                 downloaded after them have SHA-256 {sha256} together, but the feed declares {}; \
-                 both were discarded, and the next update downloads the whole file again",
-                path.display(),
-                size - kept.min(size),
-                declared
-            )
+    mut watch: Option<Watch>,
+) -> std::result::Result<(), WrongFile> {
+    let io = |e| WrongFile {
+        error: Error::io(format!("cannot read {}", path.display()), e),
+        keep: 0,
+    };
+    let mut hasher = Hasher::new();
+    let mut bad = None;
+    let mut limited = std::io::Read::take(&*file, declared_size.saturating_add(1));
+    let mut buf = vec![0u8; 256 * 1024];
+    loop {
+        let n = match std::io::Read::read(&mut limited, &mut buf) {
+            Ok(0) => break,
+            Ok(n) => n,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+            Err(e) => return Err(io(e)),
         };
-        return Err(Error::new(ErrorKind::Digest, message));
+        hasher.update(&buf[..n]);
+        if let (Some(w), None) = (&mut watch, &bad)
+            && let Err(chunk) = w.feed(&buf[..n])
+        {
+            bad = Some(chunk);
+        }
     }
-    Ok(())
+    std::io::Seek::rewind(file).map_err(io)?;
+    let size = hasher.len();
+    let sha256 = hasher.finish();
+    let wrong_size = size != declared_size;
+    if !wrong_size && sha256 == *declared {
+        return Ok(());
+    }
+    // The chunks before the first wrong one are the bundle's own: keep them for the next
+    // try. Past the declared size nothing is anyone's.
+    let keep = watch.as_ref().map_or(0, Watch::good_len).min(declared_size);
+    let kept_note = match (&bad, keep) {
+        (_, 0) => String::new(),
+        (Some(chunk), keep) => format!(
+            "; {chunk}. The first {keep} bytes, the head and {} chunks that checked, are kept, \
+             and the next update downloads the rest again",
+            watch.as_ref().map_or(0, Watch::checked)
+        ),
+        (None, keep) => format!(
+            "; the first {keep} bytes, the head and {} chunks that checked, are kept, and the \
+             next update downloads the rest again",
+            watch.as_ref().map_or(0, Watch::checked)
+        ),
+    };
+    let message = if wrong_size {
+        format!(
+            "downloaded file {} is {size} bytes{}, but the feed declares {} bytes{kept_note}",
+            path.display(),
+            if size > declared_size { " or more" } else { "" },
+            declared_size
+        )
+    } else if keep > 0 {
+        format!(
+            "downloaded file {} has SHA-256 {sha256}, but the feed declares {declared}{kept_note}",
+            path.display(),
+        )
+    } else if kept == 0 {
+        format!(
+            "downloaded file {} has SHA-256 {sha256}, but the feed declares {}",
+            path.display(),
+            declared
+        )
+    } else {
+        format!(
+            "the {kept} bytes kept in {} from an earlier update and the {} bytes the app \
+             downloaded after them have SHA-256 {sha256} together, but the feed declares {}; \
+             both were discarded, and the next update downloads the whole file again",
+            path.display(),
+            size - kept.min(size),
+            declared
+        )
+    };
+    Err(WrongFile {
+        error: Error::new(ErrorKind::Digest, message),
+        keep,
+    })
 }
 
 /// The format of a feed whose format is newer than this crate reads, but which this device
