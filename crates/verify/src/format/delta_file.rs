@@ -436,4 +436,102 @@ mod tests {
         );
         assert_eq!(h.base_id(), Digest::of(text.as_bytes()));
     }
+
+    #[test]
+    fn header_caps_hold_at_their_limits() {
+        // Found by cargo-mutants (issue 15): the caps' boundaries, each at its limit and one
+        // past it.
+        let with = |edit: &dyn Fn(&mut Header)| {
+            let mut h = header();
+            edit(&mut h);
+            Header::from_json(&h.to_json())
+        };
+        let file = header().base[0].clone();
+        assert!(with(&|h| h.base = vec![file.clone(); MAX_BASE_FILES]).is_ok());
+        let e = with(&|h| h.base = vec![file.clone(); MAX_BASE_FILES + 1]).expect_err("9 files");
+        assert_eq!(
+            e.to_string(),
+            "delta header lists 9 base files; 1 to 8 are allowed"
+        );
+        assert!(with(&|h| h.chunk_bytes = CHUNK_BYTES).is_ok());
+        for bad in [0, CHUNK_BYTES + 1] {
+            let e = with(&|h| h.chunk_bytes = bad).expect_err("chunk size");
+            assert_eq!(e.kind(), ErrorKind::TooLarge);
+            assert_eq!(
+                e.to_string(),
+                format!(
+                    "delta needs chunks of {bad} bytes, over the limit of {CHUNK_BYTES} bytes a \
+                     device gives to applying a delta; use the full bundle"
+                )
+            );
+        }
+        assert!(with(&|h| h.window_bytes = WINDOW_BYTES).is_ok());
+        let e = with(&|h| h.window_bytes = WINDOW_BYTES + 1).expect_err("window");
+        assert_eq!(e.kind(), ErrorKind::TooLarge);
+        assert!(
+            e.to_string().starts_with(&format!(
+                "delta needs base windows of {} bytes",
+                WINDOW_BYTES + 1
+            )),
+            "{e}"
+        );
+    }
+
+    #[test]
+    fn record_caps_hold_at_their_limits() {
+        // Found by cargo-mutants (issue 15): a window and a patch at their caps are allowed,
+        // one past the patch cap is not, and a copy may carry neither a window nor a patch.
+        let h = header();
+        let parse = |r: Record| Record::parse(&r.to_bytes(), 0, &h);
+        let at_caps = Record {
+            window: h.window_bytes,
+            patch: PATCH_BYTES,
+            ..record()
+        };
+        assert_eq!(parse(at_caps).expect("at the caps"), at_caps);
+        let e = parse(Record {
+            patch: PATCH_BYTES + 1,
+            ..record()
+        })
+        .expect_err("over the patch cap");
+        assert!(e.to_string().contains("over 128 and"), "{e}");
+        for (window, patch) in [(1, 0), (0, 1)] {
+            let e = parse(Record {
+                op: Op::Copy,
+                window,
+                patch,
+                ..record()
+            })
+            .expect_err("a copy with a window or a patch");
+            assert_eq!(
+                e.to_string(),
+                "delta record 0 is a copy with a window or patch"
+            );
+        }
+    }
+
+    #[test]
+    fn the_tail_is_padding_then_the_end_of_archive_and_nothing_more() {
+        // Found by cargo-mutants (issue 15): `read_tail` replaced by `Ok(())` went unnoticed
+        // by the crate's own tests. POSIX.1-1988 ustar: the data is padded with zeros to a
+        // 512-byte block, and the archive ends with two zero blocks.
+        let mut tail = Vec::new();
+        write_tail(&mut tail, 24).expect("write");
+        assert_eq!(tail.len(), 488 + 1024);
+        assert!(tail.iter().all(|&b| b == 0));
+        assert!(read_tail(&mut &tail[..], 24).is_ok());
+        let mut padded = tail.clone();
+        padded[10] = 1;
+        assert!(read_tail(&mut &padded[..], 24).is_err(), "nonzero padding");
+        assert!(
+            read_tail(&mut &tail[..tail.len() - 512], 24).is_err(),
+            "one end block"
+        );
+        let mut longer = tail.clone();
+        longer.extend_from_slice(b"more");
+        assert!(
+            read_tail(&mut &longer[..], 24).is_err(),
+            "bytes after the end"
+        );
+    }
 }
