@@ -8,7 +8,8 @@
 //! too, and flushes the unpacked files to disk), which is why its time is worth watching.
 //!
 //! Settings come from the environment: `AMPOULE_BENCH_SCALE` (the model is 84 MiB times this,
-//! default 1) and `AMPOULE_BENCH_RUNS` (runs of each side, default 7). The report gives each
+//! default 1), `AMPOULE_BENCH_RUNS` (runs of each side, default 7) and `AMPOULE_BENCH_LEVELS`
+//! (0 skips the table of zstd levels that follows a run at 1x). The report gives each
 //! side's median with its minimum and maximum, and judges the targets on the medians (a
 //! shared machine makes single runs spread). The page cache cannot be dropped without root, so
 //! both sides run warm: before every timed run, dirty pages are flushed (`sync`) and the run's
@@ -17,7 +18,8 @@
 //! Peak memory is the child's VmHWM from /proc, sampled every millisecond during one extra,
 //! untimed run (the workspace forbids `unsafe`, which `wait4` would need). It is a lower
 //! bound that misses only growth within the last millisecond before exit. The bench never
-//! fails; it reports.
+//! fails; it reports. Its figures are also printed on one `REPORT pipeline key=value ...` line
+//! (times as `median/min/max` in seconds), which `benches/report` reads.
 
 use std::fs;
 use std::io::Read;
@@ -198,6 +200,11 @@ impl Series {
     /// `median (min to max)`.
     fn spread(&self) -> String {
         format!("{:.3} ({:.3}-{:.3})", self.median(), self.min(), self.max())
+    }
+
+    /// `median/min/max`, for the `REPORT` line.
+    fn triple(&self) -> String {
+        format!("{:.4}/{:.4}/{:.4}", self.median(), self.min(), self.max())
     }
 
     /// The median CPU time.
@@ -432,8 +439,23 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
             .collect::<Vec<_>>()
             .join(" ")
     );
+    println!(
+        "REPORT pipeline scale={scale} runs={runs} pack={} pack_ref={} verify={} verify_ref={} \
+         verify_ref_fsync={} pack_cpu={:.3} pack_ref_cpu={:.3} verify_cpu={:.3} \
+         verify_ref_cpu={:.3} verify_rss_mib={verify_rss:.1} pack_rss_mib={pack_rss:.1} \
+         target_ratio={TARGET_RATIO} target_rss_mib={TARGET_RSS_MIB}",
+        pack.triple(),
+        pack_pipe.triple(),
+        verify.triple(),
+        verify_pipe.triple(),
+        verify_pipe_fsync.triple(),
+        pack.cpu(),
+        pack_pipe.cpu(),
+        verify.cpu(),
+        verify_pipe.cpu()
+    );
     // The level table is about the data, not the scale: it runs at 1x only.
-    if scale == 1 {
+    if scale == 1 && env_number("AMPOULE_BENCH_LEVELS", 1) != 0 {
         levels(&dir.join("model.bin"), runs);
     }
 }
