@@ -236,7 +236,7 @@ fn main() -> anyhow::Result<()> {
 
     let (check_secs, check_kib) = check(&ledger, &trusted)?;
     println!(
-        "REPORT ledger entries={size} append_s={:.2} single_append_us={single} \
+        "REPORT ledger entries={total} tree_size={size} append_s={:.2} single_append_us={single} \
          inclusion_generate_us={} inclusion_verify_us={} inclusion_both_us={} \
          consistency_generate_us={} consistency_verify_us={} check_s={check_secs:.2} \
          check_rss_mib={:.1} target_proof_us=1000",
