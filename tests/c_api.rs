@@ -14,7 +14,7 @@ use std::process::Command;
 use std::sync::OnceLock;
 
 use ampoule_verify::PublicKey;
-use tree_common::{ok, pack_model_with, publish, write_model};
+use tree_common::{ok, pack_large, pack_model_with, publish, serve_tree, write_model};
 
 /// The two builds of the C program, and the files every case reads.
 struct Built {
@@ -139,6 +139,12 @@ fn make_fixtures(d: &Path) {
             &["--meta-file", "meta.json"],
         );
         assert!(packed.status.success(), "{packed:?}");
+        if name == "v2" {
+            // Two appends on another channel before 1.1.0: a device that accepted 1.0.0
+            // walks the ledger's consistency steps (FETCH steps, over HTTP).
+            publish(d, "v1.ampoule", "beta", "100");
+            publish(d, "v1.ampoule", "beta", "100");
+        }
         publish(d, &bundle, "stable", "100");
         let offline = format!("{name}.offline");
         ok(
@@ -164,6 +170,39 @@ fn make_fixtures(d: &Path) {
         .expect("the bundle is inside the offline file");
     offline[at + bundle.len() / 2] ^= 0x01;
     std::fs::write(d.join("tampered.offline"), offline).expect("tampered.offline");
+
+    // An ONNX classifier (ampoule's invented one: `image` float32 [N, 3, 8, 8] in, `species`
+    // float32 [N, 6] out, opset 13, float weights) with metadata, as version 1.2.0 on a
+    // channel of its own, for the policy document's settings one by one.
+    ampoule::release::synth::write_onnx_classifier(&d.join("species.onnx"), 8, 16, 6, 1)
+        .expect("the ONNX classifier");
+    let packed = pack_model_with(
+        d,
+        "species.onnx",
+        "1.2.0",
+        "k.pem",
+        "onnx.ampoule",
+        &["--meta-file", "meta.json"],
+    );
+    assert!(packed.status.success(), "{packed:?}");
+    publish(d, "onnx.ampoule", "onnx", "100");
+    ok(
+        d,
+        &[
+            "offline",
+            "--tree",
+            "tree",
+            "--channel",
+            "onnx",
+            "-o",
+            "onnx.offline",
+        ],
+    );
+
+    // A bundle larger than its head (300,000 bytes of model that do not compress), on a channel
+    // of its own: the session asks for the head first, then the rest.
+    let large = pack_large(d, "2.9.0");
+    publish(d, &large, "large", "100");
 
     // A trust set holding the same key for every role, for the shipped-trust-set path.
     ok(
@@ -200,12 +239,28 @@ fn make_fixtures(d: &Path) {
 /// Runs one case of the C program, plainly and under AddressSanitizer, each in a fresh
 /// scratch directory, and requires both to pass.
 fn case(name: &str) {
+    run_case(name, None);
+}
+
+/// Runs one case that updates over HTTP, with `ampoule serve` serving the fixtures' release
+/// tree on a free port of 127.0.0.1 for as long as the case runs.
+fn http_case(name: &str) {
+    let built = built();
+    let served = serve_tree(&built.fixtures, "tree");
+    run_case(name, Some(&served.addr));
+}
+
+fn run_case(name: &str, server: Option<&str>) {
     let built = built();
     for (build, program) in [("plain", &built.plain), ("asan", &built.asan)] {
         let scratch = built.scratch.join(format!("{name}-{build}"));
         let _ = std::fs::remove_dir_all(&scratch);
         std::fs::create_dir_all(&scratch).expect("a scratch directory");
-        let out = Command::new(program)
+        let mut command = Command::new(program);
+        if let Some(addr) = server {
+            command.env("AMPOULE_TEST_SERVER", addr);
+        }
+        let out = command
             .arg(name)
             .arg(&built.fixtures)
             .arg(&scratch)
@@ -287,4 +342,59 @@ fn issue14_c_a_malformed_policy_document_is_refused() {
 #[test]
 fn issue14_c_a_policy_document_over_its_caps_is_refused() {
     case("policy_document_over_caps");
+}
+
+#[test]
+fn issue14_c_an_update_over_http_step_by_step_catches_up_installs_and_rolls_back() {
+    http_case("http_update");
+}
+
+#[test]
+fn issue14_c_a_cut_off_download_fails_with_network_and_the_next_update_resumes_it() {
+    http_case("http_resume");
+}
+
+#[test]
+fn issue14_c_a_bundle_changed_in_transit_is_refused_with_digest() {
+    http_case("http_tampered");
+}
+
+#[test]
+fn issue14_c_a_bundle_the_policy_refuses_over_http_is_refused_with_incompatible() {
+    http_case("http_policy_refused");
+}
+
+#[test]
+fn issue14_c_a_session_holds_the_store_s_lock_until_freed() {
+    http_case("session_locks_the_store");
+}
+
+#[test]
+fn issue14_c_sessions_misused_are_refused_by_name() {
+    http_case("session_misuse");
+}
+
+#[test]
+fn issue14_c_each_policy_setting_refuses_a_bundle_with_its_status() {
+    case("policy_settings");
+}
+
+#[test]
+fn issue14_c_the_url_update_installs_over_http_with_the_library_s_own_client() {
+    http_case("url_update");
+}
+
+#[test]
+fn issue14_c_progress_reaches_the_app_s_callback_and_the_device_id_is_kept() {
+    case("progress_and_device_id");
+}
+
+#[test]
+fn issue14_c_a_store_switches_channels_and_gc_leaves_a_session_s_download_alone() {
+    http_case("switch_channel_and_gc");
+}
+
+#[test]
+fn issue14_c_a_bundle_larger_than_its_head_is_asked_for_in_two_parts() {
+    http_case("http_head_first");
 }

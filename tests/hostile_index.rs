@@ -1,6 +1,7 @@
 //! The hostile-case index (`tests/HOSTILE.md`, issue 10 item 11) stays true: every test it names
 //! exists, and every test in the hostile files (issue 14 added the policy document's and the
-//! C interface's) and every `issue10_` and `issue13_` test is named in it. A test added to those files without a row, or a row naming a test that was
+//! C interface's, issue 15 the fault-injecting proxy's) and every `issue10_` and `issue13_` test
+//! is named in it. A test added to those files without a row, or a row naming a test that was
 //! renamed or removed, fails here.
 
 use std::collections::BTreeSet;
@@ -13,6 +14,8 @@ const HOSTILE_FILES: &[&str] = &[
     // Issue 14: the policy document and the C interface, each case a named test.
     "tests/policy_document.rs",
     "tests/c_api.rs",
+    // Issue 15: the fault-injecting proxy's faults, and the fleet that meets them at random.
+    "tests/fleet.rs",
 ];
 
 /// Where `issue10_` and `issue13_` tests live.

@@ -3,10 +3,7 @@
 //! a Range resume and the whole update check work against it, not only against our own server.
 //! Skipped, and says so, where /usr/sbin/nginx is not installed (CI installs it).
 
-use std::net::{TcpListener, TcpStream};
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
-use std::time::{Duration, Instant};
 
 use ampoule_verify::fetch::{Transfer, Update, Updater, download, fetch_feed};
 use ampoule_verify::{Digest, FeedVerifier, Timestamp, Verifier};
@@ -14,69 +11,6 @@ use semver::Version;
 
 mod tree_common;
 use tree_common::*;
-
-const NGINX: &str = "/usr/sbin/nginx";
-
-struct Nginx {
-    child: Child,
-    base: String,
-}
-
-impl Drop for Nginx {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
-/// Starts nginx in the foreground, single process (`master_process off`, so it never switches
-/// to another user that could not read the temp dir), serving `root` on a free port.
-fn start_nginx(work: &Path, root: &Path) -> Nginx {
-    let port = TcpListener::bind("127.0.0.1:0")
-        .and_then(|l| l.local_addr())
-        .expect("a free port")
-        .port();
-    let prefix = work.join("nginx");
-    std::fs::create_dir_all(prefix.join("tmp")).expect("nginx dirs");
-    let p = prefix.display();
-    let conf = format!(
-        "daemon off;\nmaster_process off;\nworker_processes 1;\npid {p}/nginx.pid;\n\
-         error_log {p}/error.log;\nevents {{ worker_connections 64; }}\n\
-         http {{\n  access_log {p}/access.log;\n  client_body_temp_path {p}/tmp/body;\n\
-         proxy_temp_path {p}/tmp/proxy;\n  fastcgi_temp_path {p}/tmp/fastcgi;\n\
-         uwsgi_temp_path {p}/tmp/uwsgi;\n  scgi_temp_path {p}/tmp/scgi;\n\
-         types {{ application/json json; application/octet-stream ampoule; }}\n\
-         server {{\n    listen 127.0.0.1:{port};\n    root {};\n    location / {{ }}\n  }}\n}}\n",
-        root.display()
-    );
-    let conf_path = prefix.join("nginx.conf");
-    std::fs::write(&conf_path, conf).expect("nginx.conf");
-    let child = Command::new(NGINX)
-        .arg("-p")
-        .arg(&prefix)
-        .arg("-e")
-        .arg(prefix.join("error.log"))
-        .arg("-c")
-        .arg(&conf_path)
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
-        .expect("nginx starts");
-    let mut nginx = Nginx {
-        child,
-        base: format!("http://127.0.0.1:{port}"),
-    };
-    let started = Instant::now();
-    while TcpStream::connect(("127.0.0.1", port)).is_err() {
-        let exited = nginx.child.try_wait().ok().flatten();
-        if exited.is_some() || started.elapsed() > Duration::from_secs(10) {
-            let log = std::fs::read_to_string(prefix.join("error.log")).unwrap_or_default();
-            panic!("nginx did not start ({exited:?}): {log}");
-        }
-        std::thread::sleep(Duration::from_millis(20));
-    }
-    nginx
-}
 
 #[test]
 fn fetch_resume_and_update_against_nginx() {

@@ -6,8 +6,10 @@
 #[path = "../bundle_check/mod.rs"]
 pub mod bundle_check;
 
+use std::net::{TcpListener, TcpStream};
 use std::path::Path;
-use std::process::{Command, Output};
+use std::process::{Command, Output, Stdio};
+use std::time::{Duration, Instant};
 
 use ampoule_verify::feed::{Feed, SignedFeed};
 use ampoule_verify::signed::Signers;
@@ -292,7 +294,6 @@ impl Drop for Served {
 
 pub fn serve_tree(d: &Path, tree: &str) -> Served {
     use std::io::{BufRead, BufReader};
-    use std::process::Stdio;
     let mut child = Command::new(BIN)
         .args(["serve", "--tree", tree, "--addr", "127.0.0.1:0"])
         .current_dir(d)
@@ -322,4 +323,70 @@ pub fn newest_stored_trust_set(store: &Path) -> Option<Vec<u8>> {
         .and_then(|sets| sets.last())
         .and_then(|set| set.as_str())
         .map(|text| text.as_bytes().to_vec())
+}
+
+/// Where Debian's nginx package puts the server (`.ci/run` installs it).
+pub const NGINX: &str = "/usr/sbin/nginx";
+
+/// nginx serving a release tree, stopped when dropped.
+pub struct Nginx {
+    pub child: std::process::Child,
+    /// `http://127.0.0.1:PORT`
+    pub base: String,
+}
+
+impl Drop for Nginx {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// Starts nginx in the foreground, single process (`master_process off`, so it never switches
+/// to another user that could not read the temp dir), serving `root` on a free port.
+pub fn start_nginx(work: &Path, root: &Path) -> Nginx {
+    let port = TcpListener::bind("127.0.0.1:0")
+        .and_then(|l| l.local_addr())
+        .expect("a free port")
+        .port();
+    let prefix = work.join("nginx");
+    std::fs::create_dir_all(prefix.join("tmp")).expect("nginx dirs");
+    let p = prefix.display();
+    let conf = format!(
+        "daemon off;\nmaster_process off;\nworker_processes 1;\npid {p}/nginx.pid;\n\
+         error_log {p}/error.log;\nevents {{ worker_connections 512; }}\n\
+         http {{\n  access_log {p}/access.log;\n  client_body_temp_path {p}/tmp/body;\n\
+         proxy_temp_path {p}/tmp/proxy;\n  fastcgi_temp_path {p}/tmp/fastcgi;\n\
+         uwsgi_temp_path {p}/tmp/uwsgi;\n  scgi_temp_path {p}/tmp/scgi;\n\
+         types {{ application/json json; application/octet-stream ampoule; }}\n\
+         server {{\n    listen 127.0.0.1:{port};\n    root {};\n    location / {{ }}\n  }}\n}}\n",
+        root.display()
+    );
+    let conf_path = prefix.join("nginx.conf");
+    std::fs::write(&conf_path, conf).expect("nginx.conf");
+    let child = Command::new(NGINX)
+        .arg("-p")
+        .arg(&prefix)
+        .arg("-e")
+        .arg(prefix.join("error.log"))
+        .arg("-c")
+        .arg(&conf_path)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("nginx starts");
+    let mut nginx = Nginx {
+        child,
+        base: format!("http://127.0.0.1:{port}"),
+    };
+    let started = Instant::now();
+    while TcpStream::connect(("127.0.0.1", port)).is_err() {
+        let exited = nginx.child.try_wait().ok().flatten();
+        if exited.is_some() || started.elapsed() > Duration::from_secs(10) {
+            let log = std::fs::read_to_string(prefix.join("error.log")).unwrap_or_default();
+            panic!("nginx did not start ({exited:?}): {log}");
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    nginx
 }

@@ -12,8 +12,9 @@ use std::process::ExitCode;
 pub struct Request {
     /// The app's models directory.
     pub store: PathBuf,
-    /// A release tree on disk (the files any web server would serve), so the size app needs
-    /// no HTTP stack: it answers the update's requests from these files.
+    /// Where the release comes from: a release tree on disk (the files any web server would
+    /// serve, so the app needs no HTTP stack: it answers the update's requests from these
+    /// files), an offline file, a bundle file, or the feed's URL (`url_update`).
     pub tree: PathBuf,
     /// The trusted public key, as PEM text.
     pub key_pem: String,
@@ -24,7 +25,7 @@ pub struct Request {
 /// A step that does the work and says what it did in one line.
 pub type Step = fn(&Request) -> Result<String, Box<dyn Error>>;
 
-const USAGE: &str = "usage: STORE-DIR TREE-DIR PUBLIC-KEY.pem APP-VERSION";
+const USAGE: &str = "usage: STORE-DIR SOURCE PUBLIC-KEY.pem APP-VERSION";
 
 /// Runs `step` on the command line's request. Exit codes follow the CLI's: 0 done, 1 the step
 /// failed, 2 usage error or unreadable key file.

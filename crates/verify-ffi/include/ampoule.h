@@ -11,12 +11,18 @@
  *                                              version and its policy document (FORMAT.md,
  *                                              "The policy document")
  *   3. ampoule_current()                       the release to load at start-up (checked in full)
- *   4. ampoule_install_offline()               an update from a file made by `ampoule offline`;
- *                                              its outcome says what happened
+ *   4. ampoule_update_begin(), _next(), ...    an update over the app's own HTTP, step by
+ *      ampoule_session_free()                  step (see below); or ampoule_update(): the
+ *                                              library's own HTTP(S) (builds with `fetch`); or
+ *                                              ampoule_install_offline(): an update from a file
+ *                                              made by `ampoule offline`; the outcome says what
+ *                                              happened
  *   5. ampoule_release_field(), _label_count(), _label(), _metadata()
  *                                              the model's path, labels and manifest
  *   6. ampoule_rollback()                      when the app's own health check fails
  *   7. ampoule_release_free(), ampoule_store_free()
+ * Beside them: ampoule_store_set_progress(), ampoule_device_id(), ampoule_switch_channel(),
+ * ampoule_gc().
  *
  * Status and errors. Every call that can fail returns an int32_t status (AMPOULE_OK is 0) and
  * fills the ampoule_error the caller passes (which may be NULL when only the status is wanted):
@@ -63,7 +69,7 @@ extern "C" {
 
 #define AMPOULE_ABI_VERSION 1
 
-/* Status codes. 1-7 are the interface's own; 10 and up are the library's error kinds (the
+/* Status codes. 1-8 are the interface's own; 10 and up are the library's error kinds (the
  * same names as the `kind` of the CLI's --json errors). */
 #define AMPOULE_OK 0
 #define AMPOULE_INVALID_ARGUMENT 1 /* a null pointer, non-UTF-8 text, a length that does not fit */
@@ -73,6 +79,7 @@ extern "C" {
 #define AMPOULE_NEEDS_OTHER_APP 5  /* the offered release needs another app version */
 #define AMPOULE_PANIC 6            /* an internal error (a bug), stopped at the boundary */
 #define AMPOULE_NOT_FOUND 7        /* no such label index or metadata key */
+#define AMPOULE_UNSUPPORTED 8      /* this build lacks the call's feature (ampoule_update: fetch) */
 #define AMPOULE_IO 10
 #define AMPOULE_MALFORMED 11
 #define AMPOULE_TOO_LARGE 12
@@ -217,8 +224,8 @@ int32_t ampoule_current(ampoule_store store, ampoule_release *out, ampoule_error
 /* Makes the previous release current again (after the app's own health check failed on a new
  * model); it is checked in full first. *out is the release now current, a handle to free. The
  * release rolled back from stays refused. AMPOULE_POLICY when there is no previous release.
- * Concurrency: any thread; it excludes updates and other rollbacks of the store as an update
- * does (AMPOULE_LOCKED while one runs). */
+ * Concurrency: any thread; it takes the store's own lock, as an update does while it installs
+ * and other rollbacks do (AMPOULE_LOCKED while one of them holds it). */
 int32_t ampoule_rollback(ampoule_store store, ampoule_release *out, ampoule_error *err);
 
 /* Frees a release handle. A second free is AMPOULE_INVALID_HANDLE. Concurrency: any thread;
@@ -246,33 +253,182 @@ int32_t ampoule_release_label(ampoule_release release, size_t index, uint8_t *bu
 int32_t ampoule_release_metadata(ampoule_release release, const char *key, size_t key_len,
                                  uint8_t *buf, size_t cap, size_t *len, ampoule_error *err);
 
+/* Progress stages (the stage argument of an ampoule_progress_fn). */
+#define AMPOULE_STAGE_HASH_PAYLOAD 1 /* hashing a format 1 bundle's payload before unpacking */
+#define AMPOULE_STAGE_UNPACK 2       /* decompressing and checking the payload's files */
+#define AMPOULE_STAGE_DOWNLOAD 3     /* the bundle arriving: ampoule_update's download, or the
+                                      * copy out of an offline file */
+
+/* A progress callback: done of total bytes of stage (AMPOULE_STAGE_*, or 0 for a stage newer
+ * than this ABI version), with the context the app registered, untouched. */
+typedef void (*ampoule_progress_fn)(void *context, int32_t stage, uint64_t done, uint64_t total);
+
+/* Sets the store's progress callback, or clears it with progress NULL; it replaces any callback
+ * set before. Updates of this store through this handle (offline, step by step, by URL) call it
+ * from the thread doing the work: the caller's thread, a session's own thread, or a decoding
+ * thread. The function must be callable from any thread with context, return quickly, and
+ * stay valid until it is replaced, cleared or the store is freed; it may call this library,
+ * but not wait for the update that calls it (nor drive the session that reports).
+ * Concurrency: any thread, any time; an update running meanwhile switches to the new callback
+ * at its next report. */
+int32_t ampoule_store_set_progress(ampoule_store store, ampoule_progress_fn progress,
+                                   void *context, ampoule_error *err);
+
+/* The id that places this device in rollouts (made at random on the store's first use and kept
+ * in it), copied into buf as ampoule_release_field copies. Concurrency: any thread, any time. */
+int32_t ampoule_device_id(ampoule_store store, uint8_t *buf, size_t cap, size_t *len,
+                          ampoule_error *err);
+
+/* Makes the store follow the channel this handle was opened with, from now on. A store follows
+ * the first channel it accepts a feed on; updates on another channel are refused
+ * (AMPOULE_POLICY) until this call. The highest version the store accepted stays, so nothing
+ * older installs from the new channel. Concurrency: any thread; it takes the store's own lock,
+ * which an update holds only while it installs (AMPOULE_LOCKED then), so it may run between a
+ * session's steps: switch channels when no update runs. */
+int32_t ampoule_switch_channel(ampoule_store store, ampoule_error *err);
+
+/* Removes releases other than the current and the previous one, what crashed updates left
+ * behind, and downloads no update is using; *removed receives how many it removed. Every
+ * update does this too. Concurrency: any thread; it takes the store's own lock, which an update
+ * holds only while it installs (AMPOULE_LOCKED then); a session's download in progress is left
+ * alone. */
+int32_t ampoule_gc(ampoule_store store, size_t *removed, ampoule_error *err);
+
 /*
- * Planned for ABI version 1 additions, once the update session's delta support (issue 13)
- * settles; declared here as a design, not implemented:
+ * The step-by-step update, for apps with their own HTTP stack. The app fetches the channel's
+ * feed itself and starts a session on its bytes; the session then says what it needs next,
+ * the app fetches it and hands it in, and so on until the step is DONE:
  *
- * The step-by-step update, for apps with their own HTTP stack (the library's Session):
- *   int32_t ampoule_update_begin(ampoule_store store, const char *feed_url, size_t feed_url_len,
- *                                const uint8_t *feed, size_t feed_len, int64_t now_unix,
- *                                ampoule_session *out, ampoule_error *err);
- *   int32_t ampoule_update_next(ampoule_session session, ampoule_step *step, ampoule_error *err);
- *       step->kind: AMPOULE_STEP_FETCH (fetch step->url, at most step->max_bytes, then call
- *       ampoule_update_provide), AMPOULE_STEP_DOWNLOAD (write the bundle into the file at
- *       step->path, step->size bytes with SHA-256 step->sha256, from one of the URLs read
- *       with ampoule_step_url, then call ampoule_update_downloaded), AMPOULE_STEP_DONE
- *       (step->outcome holds the outcome, as ampoule_install_offline's).
- *   int32_t ampoule_update_provide(ampoule_session session, const uint8_t *bytes, size_t len,
- *                                  ampoule_error *err);
- *   int32_t ampoule_update_downloaded(ampoule_session session, ampoule_error *err);
- *   int32_t ampoule_update_fail(ampoule_session session, int32_t status, const char *message,
- *                               size_t message_len, ampoule_error *err);
- *   int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
- *   A session holds the store's update lock until it is done or freed; it may be driven from
- *   any thread, one call at a time.
+ *   ampoule_update_begin(store, feed_url, feed bytes)  -> session
+ *   loop: ampoule_update_next(session, &step)
+ *     FETCH:    GET ampoule_update_url(session, 0), at most step.max_bytes;
+ *               ampoule_update_provide(session, bytes)   (or ampoule_update_fail)
+ *     DOWNLOAD: GET ampoule_update_url(session, i) for i < step.url_count, bytes step.offset
+ *               to step.size - 1 (an HTTP Range request, also from offset 0: the step may
+ *               ask for the bundle's head only);
+ *               ampoule_update_write(session, piece) for each piece as it arrives, then
+ *               ampoule_update_downloaded(session)     (or ampoule_update_fail)
+ *     DONE:     step.outcome, with the same status as ampoule_install_offline's
+ *   ampoule_session_free(session)
  *
- * The URL update, in builds with the `fetch` feature:
- *   int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_url_len,
- *                          int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
+ * Every check of the library's update runs, in the same order, whoever does the HTTP: the
+ * bytes handed in are checked when the session takes its next step. A large bundle is asked
+ * for twice (its head first, whose signed manifest is checked before the rest is fetched):
+ * each time, append from step.offset. A download asked for again after a failed update
+ * resumes: step.offset is what the store kept.
+ *
+ * Ownership. The session is a handle the caller frees with ampoule_session_free, also after
+ * DONE. Bytes handed in are copied during the call. The download file belongs to the store:
+ * the app never opens it; ampoule_update_write appends to it (opened without following a
+ * link planted in the store's directory) and refuses to write past step.size.
+ *
+ * Threads. A session holds the store's update lock from ampoule_update_begin until it is
+ * freed: meanwhile another session, ampoule_install_offline or ampoule_update on the same
+ * store (from any handle or process) ends at once with AMPOULE_LOCKED, while ampoule_current
+ * and release reads go on. ampoule_rollback, ampoule_switch_channel and ampoule_gc take the
+ * store's own lock instead, which an update holds only while it installs. A session may be
+ * driven from any thread (a coroutine that resumes elsewhere is fine); calls on one session
+ * from two threads at once take turns. The library runs each session on a thread of its own,
+ * which ampoule_session_free ends and waits for (when another thread's call still uses the
+ * session, that call's return ends it).
  */
+
+/* An update in progress, driven step by step. 0 is no session. */
+typedef struct ampoule_session {
+    uint64_t id;
+} ampoule_session;
+
+/* Step kinds (ampoule_step.kind). */
+#define AMPOULE_STEP_FETCH 1    /* fetch a small document; hand it in with ampoule_update_provide */
+#define AMPOULE_STEP_DOWNLOAD 2 /* download the bundle with ampoule_update_write */
+#define AMPOULE_STEP_DONE 3     /* the update ended: step.outcome */
+
+/* The bytes of a SHA-256 digest (FIPS 180-4). */
+#define AMPOULE_SHA256_BYTES 32
+
+/* What the update needs next, or how it ended. */
+typedef struct ampoule_step {
+    int32_t kind;       /* AMPOULE_STEP_* */
+    uint32_t url_count; /* FETCH: 1; DOWNLOAD: the mirrors, in the order to try */
+    uint64_t max_bytes; /* FETCH: the most bytes the document may have; stop reading there */
+    uint64_t offset;    /* DOWNLOAD: bytes the file holds already; ask for the rest from here */
+    uint64_t size;      /* DOWNLOAD: bytes the file holds when complete; never send more.
+                         * A bundle larger than its head is asked for twice: up to the head's
+                         * length first, then (offset = that length) up to the whole size */
+    uint8_t sha256[AMPOULE_SHA256_BYTES]; /* DOWNLOAD: the whole file's SHA-256, as the signed
+                                           * feed declares it (the session checks it) */
+    ampoule_outcome outcome; /* DONE: as ampoule_install_offline's; INSTALLED's release is a
+                              * handle the caller frees */
+} ampoule_step;
+
+/* Starts an update of store on the feed the app fetched from feed_url (the channel's feed,
+ * feeds/<channel>.json in the release tree; other URLs are resolved against it), at clock time
+ * now_unix. *out is a session handle to free with ampoule_session_free. The session takes the
+ * store's update lock now: when another update holds it, the first step is DONE with FAILED
+ * and AMPOULE_LOCKED. Errors: AMPOULE_INVALID_ARGUMENT, AMPOULE_INVALID_HANDLE, AMPOULE_IO.
+ * Concurrency: any thread; see the threads paragraph above. */
+int32_t ampoule_update_begin(ampoule_store store, const char *feed_url, size_t feed_url_len,
+                             const uint8_t *feed, size_t feed_len, int64_t now_unix,
+                             ampoule_session *out, ampoule_error *err);
+
+/* Runs the update as far as it can go without the app and fills *step with what it needs
+ * (status AMPOULE_OK) or how it ended (kind DONE; the status is the outcome's, as
+ * ampoule_install_offline's: AMPOULE_OK, AMPOULE_NEEDS_OTHER_APP, or the kind of the refusal
+ * or failure). A step not answered is asked again. After DONE it returns DONE with FAILED and
+ * AMPOULE_SETTINGS. Concurrency: one call at a time per session (others wait their turn). */
+int32_t ampoule_update_next(ampoule_session session, ampoule_step *step, ampoule_error *err);
+
+/* The URL at index (0 to step.url_count - 1) of the last step, copied into buf as
+ * ampoule_release_field copies; AMPOULE_NOT_FOUND past the last one, AMPOULE_INVALID_ARGUMENT
+ * when the last step asks for no URL. Concurrency: as ampoule_update_next. */
+int32_t ampoule_update_url(ampoule_session session, size_t index, uint8_t *buf, size_t cap,
+                           size_t *len, ampoule_error *err);
+
+/* Hands in the document a FETCH step asked for (copied); it is checked at the next
+ * ampoule_update_next. AMPOULE_TOO_LARGE over step.max_bytes (nothing is kept: end the update
+ * with ampoule_update_fail); AMPOULE_INVALID_ARGUMENT when the last step is not FETCH.
+ * Concurrency: as ampoule_update_next. */
+int32_t ampoule_update_provide(ampoule_session session, const uint8_t *bytes, size_t len,
+                               ampoule_error *err);
+
+/* Appends len bytes of the download a DOWNLOAD step asked for to the store's download file.
+ * AMPOULE_TOO_LARGE when they would take the file past step.size (nothing is written);
+ * AMPOULE_STORE when the file was replaced behind the session's back; AMPOULE_IO;
+ * AMPOULE_INVALID_ARGUMENT when the last step is not DOWNLOAD. Concurrency: as
+ * ampoule_update_next. */
+int32_t ampoule_update_write(ampoule_session session, const uint8_t *bytes, size_t len,
+                             ampoule_error *err);
+
+/* Says the download of the last DOWNLOAD step is complete (the file holds step.size bytes); its
+ * size and SHA-256 are checked at the next ampoule_update_next, before anything reads it.
+ * AMPOULE_INVALID_ARGUMENT when the last step is not DOWNLOAD. Concurrency: as
+ * ampoule_update_next. */
+int32_t ampoule_update_downloaded(ampoule_session session, ampoule_error *err);
+
+/* Ends the update because the app could not fetch what was asked; why (UTF-8, for the
+ * message: an HTTP status, a timeout) is kept in the error. *out receives the outcome: FAILED
+ * with AMPOULE_NETWORK; the running model stays, and a partial download stays for the next
+ * update to resume. Concurrency: as ampoule_update_next. */
+int32_t ampoule_update_fail(ampoule_session session, const char *why, size_t why_len,
+                            ampoule_outcome *out, ampoule_error *err);
+
+/* Frees a session handle, ending its update if it has not ended, and releases the store's
+ * update lock (once no other thread's call still uses the session). A second free is
+ * AMPOULE_INVALID_HANDLE. Concurrency: any thread. */
+int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
+
+/* Runs a whole update with the library's own HTTP(S) client: fetches the channel's feed at
+ * feed_url (https:// or http://), whatever the session asks for, and the bundle (resuming a
+ * partial download), with the library's default limits (connect 20 s, each read 30 s, each
+ * request 1 h in all, at least 256 bytes/s over 60 s, 3 tries per source; HTTPS trusts the
+ * public web PKI roots built in). *out receives the outcome and the status is
+ * ampoule_install_offline's (AMPOULE_NETWORK for a transfer that failed). Only in libraries
+ * built with the cargo feature `fetch`; others return AMPOULE_UNSUPPORTED (outcome FAILED), and
+ * the app drives ampoule_update_begin with its own HTTP stack instead. Concurrency: any
+ * thread; it takes the store's update lock as a session does (AMPOULE_LOCKED while another
+ * update runs), and blocks the calling thread until the update ends. */
+int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_url_len,
+                       int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
 
 #ifdef __cplusplus
 }

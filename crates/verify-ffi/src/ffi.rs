@@ -8,16 +8,19 @@
 
 #![allow(unsafe_code)]
 
-use std::ffi::{CStr, c_char};
+use std::ffi::{CStr, c_char, c_void};
 use std::panic::{AssertUnwindSafe, catch_unwind};
 use std::path::Path;
+use std::sync::{Arc, PoisonError};
 
 use ampoule_verify::{
-    App, Device, Outcome, PublicKey, Release, Signers, Timestamp, Trust, TrustedKeys, Version,
+    App, Device, Outcome, Progress, ProgressFn, PublicKey, Release, Signers, Stage, Timestamp,
+    Trust, TrustedKeys, Version,
 };
 
 use crate::handles;
-use crate::raw;
+use crate::raw::{self, Callback};
+use crate::session::{Step, UpdateSession};
 use crate::status::{AmpouleError, Failure, STATUSES, Status};
 
 /// The ABI version this library implements (`AMPOULE_ABI_VERSION` in ampoule.h).
@@ -28,6 +31,9 @@ const PATH_BYTES: usize = 4096;
 /// The longest channel name, version or metadata key it takes (each is checked further by
 /// the library's own rules).
 const SHORT_BYTES: usize = 256;
+/// The largest document or piece of a download handed in by one call (the session's own
+/// limits, lower, are checked there).
+const CHUNK_BYTES: usize = 1 << 30;
 /// The largest trust set or policy document it passes on; the library's own caps are lower
 /// and are checked there, with their own messages.
 const DOCUMENT_BYTES: usize = 1 << 20;
@@ -70,6 +76,38 @@ pub struct AmpouleOutcome {
     /// With `AMPOULE_OUTCOME_INSTALLED`: the release now current, a handle the caller frees.
     pub installed: AmpouleRelease,
 }
+
+/// An update in progress, driven step by step (`ampoule_session`): 0 is no session.
+#[repr(C)]
+#[derive(Debug, Clone, Copy)]
+pub struct AmpouleSession {
+    pub id: u64,
+}
+
+/// The bytes of a SHA-256 digest (`AMPOULE_SHA256_BYTES`).
+pub const SHA256_BYTES: usize = 32;
+
+/// What the update needs next, or how it ended (`ampoule_step`).
+#[repr(C)]
+pub struct AmpouleStep {
+    /// One of `AMPOULE_STEP_*`.
+    pub kind: i32,
+    /// FETCH: 1; DOWNLOAD: the mirrors, in the order to try (`ampoule_update_url`).
+    pub url_count: u32,
+    /// FETCH: the most bytes the document may have.
+    pub max_bytes: u64,
+    /// DOWNLOAD: the bytes the file holds already; ask for the rest from here.
+    pub offset: u64,
+    /// DOWNLOAD: the bytes the file must hold when the download is complete.
+    pub size: u64,
+    /// DOWNLOAD: the whole file's SHA-256, as the signed feed declares it.
+    pub sha256: [u8; SHA256_BYTES],
+    /// DONE: the outcome, as `ampoule_install_offline` gives it.
+    pub outcome: AmpouleOutcome,
+}
+
+/// The step kinds, as `AMPOULE_STEP_*` numbers them.
+pub const STEPS: &[(&str, i32)] = &[("FETCH", 1), ("DOWNLOAD", 2), ("DONE", 3)];
 
 /// The outcome kinds, as `AMPOULE_OUTCOME_*` numbers them.
 pub const OUTCOMES: &[(&str, i32)] = &[
@@ -142,14 +180,36 @@ fn open(
             app_version.escape_debug()
         ))
     })?;
-    let mut app = App::new(trust, version);
+    let slot = Arc::new(handles::ProgressSlot::new(None));
+    let mut app = App::new(trust, version).on_progress(reporter(slot.clone()));
     if let Some(policy) = policy {
         app = app
             .policy_document(policy)
             .map_err(|e| Failure::new(Status::PolicyDocument, e.to_string()))?;
     }
     let device = Device::open(Path::new(dir), channel, app, time(now_unix)?)?;
-    handles::add_store(device)
+    handles::add_store(device, slot)
+}
+
+/// The stages, as `AMPOULE_STAGE_*` numbers them.
+pub const STAGES: &[(&str, i32)] = &[("HASH_PAYLOAD", 1), ("UNPACK", 2), ("DOWNLOAD", 3)];
+
+/// The library's progress reports, passed to whatever callback the store's slot holds when
+/// each one comes (none: dropped).
+fn reporter(slot: Arc<handles::ProgressSlot>) -> ProgressFn {
+    Arc::new(move |progress: Progress| {
+        // Copied out first, so a callback that sets another callback does not deadlock.
+        let callback = *slot.lock().unwrap_or_else(PoisonError::into_inner);
+        if let Some(callback) = callback {
+            let stage = match progress.stage {
+                Stage::HashPayload => 1,
+                Stage::Unpack => 2,
+                Stage::Download => 3,
+                _ => 0,
+            };
+            callback.call(stage, progress.done, progress.total);
+        }
+    })
 }
 
 /// The ABI version; see `ampoule_abi_version` in ampoule.h.
@@ -170,6 +230,7 @@ pub extern "C" fn ampoule_status_name(status: i32) -> *const c_char {
         c"needs_other_app",
         c"panic",
         c"not_found",
+        c"unsupported",
         c"io",
         c"malformed",
         c"too_large",
@@ -363,51 +424,59 @@ pub unsafe extern "C" fn ampoule_install_offline(
         }
         let device = handles::store(store.id)?;
         let report = device.install_offline(Path::new(file), time(now_unix)?);
-        let mut outcome = AmpouleOutcome {
-            kind: 0,
-            rollout_bucket: 0,
-            installed: AmpouleRelease { id: 0 },
-        };
-        let mut result = Ok(());
-        match report.outcome {
-            Outcome::Installed(installed) => {
-                outcome.kind = 1;
-                outcome.installed.id = handles::add_release(installed.release)?;
-            }
-            Outcome::UpToDate => outcome.kind = 2,
-            Outcome::NotInRollout { bucket } => {
-                outcome.kind = 3;
-                outcome.rollout_bucket = u32::from(bucket);
-            }
-            Outcome::NothingOffered => outcome.kind = 4,
-            Outcome::NeedsOtherApp { reason } => {
-                outcome.kind = 5;
-                result = Err(Failure::new(Status::NeedsOtherApp, reason));
-            }
-            Outcome::Refused(e) => {
-                outcome.kind = 6;
-                result = Err(e.into());
-            }
-            Outcome::Failed(e) => {
-                outcome.kind = 7;
-                result = Err(e.into());
-            }
-            other => {
-                outcome.kind = 7;
-                result = Err(Failure::new(
-                    Status::Other,
-                    format!(
-                        "the update ended in an outcome this ABI version does not know: {}",
-                        other.name()
-                    ),
-                ));
-            }
-        }
+        let (outcome, result) = outcome_of(report.outcome)?;
         // SAFETY: `out` is not null (checked above) and is the caller's writable
         // `ampoule_outcome` (the header).
         unsafe { raw::put(out, outcome, "out") }?;
         result
     })
+}
+
+/// The C form of an update's outcome, and the status that goes with it: `Ok` for installed,
+/// up to date, not in rollout and nothing offered; the refusal's or failure's kind otherwise.
+/// An installed release becomes a handle the caller frees.
+fn outcome_of(outcome: Outcome) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
+    let mut out = AmpouleOutcome {
+        kind: 0,
+        rollout_bucket: 0,
+        installed: AmpouleRelease { id: 0 },
+    };
+    let mut result = Ok(());
+    match outcome {
+        Outcome::Installed(installed) => {
+            out.kind = 1;
+            out.installed.id = handles::add_release(installed.release)?;
+        }
+        Outcome::UpToDate => out.kind = 2,
+        Outcome::NotInRollout { bucket } => {
+            out.kind = 3;
+            out.rollout_bucket = u32::from(bucket);
+        }
+        Outcome::NothingOffered => out.kind = 4,
+        Outcome::NeedsOtherApp { reason } => {
+            out.kind = 5;
+            result = Err(Failure::new(Status::NeedsOtherApp, reason));
+        }
+        Outcome::Refused(e) => {
+            out.kind = 6;
+            result = Err(e.into());
+        }
+        Outcome::Failed(e) => {
+            out.kind = 7;
+            result = Err(e.into());
+        }
+        other => {
+            out.kind = 7;
+            result = Err(Failure::new(
+                Status::Other,
+                format!(
+                    "the update ended in an outcome this ABI version does not know: {}",
+                    other.name()
+                ),
+            ));
+        }
+    }
+    Ok((out, result))
 }
 
 /// Puts a release handle for `release` (or 0 for none) into `out`.
@@ -629,5 +698,384 @@ pub unsafe extern "C" fn ampoule_release_metadata(
         };
         // SAFETY: `buf` is null or `cap` writable bytes, `len` the caller's `size_t`.
         unsafe { raw::copy_out(json.as_bytes(), buf, cap, len, "the metadata value") }
+    })
+}
+
+/// Starts a step-by-step update; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_begin(
+    store: AmpouleStore,
+    feed_url: *const c_char,
+    feed_url_len: usize,
+    feed: *const u8,
+    feed_len: usize,
+    now_unix: i64,
+    out: *mut AmpouleSession,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_begin", err, || {
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        // SAFETY: the header's contract: each pointer points at its length's bytes (UTF-8
+        // for the URL), unchanged during the call.
+        let (feed_url, feed) = unsafe {
+            (
+                raw::string(feed_url, feed_url_len, PATH_BYTES, "feed_url")?,
+                raw::required(feed, feed_len, DOCUMENT_BYTES, "feed")?,
+            )
+        };
+        let device = handles::store(store.id)?;
+        let session =
+            UpdateSession::begin(device, feed_url.to_string(), feed.to_vec(), time(now_unix)?)?;
+        let id = handles::add_session(session)?;
+        // SAFETY: `out` is not null and is the caller's writable `ampoule_session`.
+        unsafe { raw::put(out, AmpouleSession { id }, "out") }
+    })
+}
+
+/// The next step of an update; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_next(
+    session: AmpouleSession,
+    step: *mut AmpouleStep,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_next", err, || {
+        if step.is_null() {
+            return Err(Failure::argument("step is a null pointer"));
+        }
+        let session = handles::session(session.id)?;
+        let mut out = AmpouleStep {
+            kind: 0,
+            url_count: 0,
+            max_bytes: 0,
+            offset: 0,
+            size: 0,
+            sha256: [0; SHA256_BYTES],
+            outcome: AmpouleOutcome {
+                kind: 0,
+                rollout_bucket: 0,
+                installed: AmpouleRelease { id: 0 },
+            },
+        };
+        let mut result = Ok(());
+        match session.next()? {
+            Step::Fetch { max_bytes } => {
+                out.kind = 1;
+                out.max_bytes = max_bytes;
+            }
+            Step::Download {
+                size,
+                offset,
+                sha256,
+            } => {
+                out.kind = 2;
+                out.size = size;
+                out.offset = offset;
+                out.sha256 = sha256;
+            }
+            Step::Done(outcome) => {
+                out.kind = 3;
+                (out.outcome, result) = outcome_of(outcome)?;
+            }
+            Step::Ended => {
+                out.kind = 3;
+                out.outcome.kind = 7;
+                result = Err(Failure::new(
+                    Status::Settings,
+                    "this update already ended; start another",
+                ));
+            }
+        }
+        out.url_count = u32::try_from(session.url_count()).unwrap_or(u32::MAX);
+        // SAFETY: `step` is not null and is the caller's writable `ampoule_step`.
+        unsafe { raw::put(step, out, "step") }?;
+        result
+    })
+}
+
+/// One URL of the update's current step; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_url(
+    session: AmpouleSession,
+    index: usize,
+    buf: *mut u8,
+    cap: usize,
+    len: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_url", err, || {
+        let url = handles::session(session.id)?.url(index)?;
+        // SAFETY: `buf` is null or `cap` writable bytes, `len` the caller's `size_t`.
+        unsafe { raw::copy_out(url.as_bytes(), buf, cap, len, "the URL") }
+    })
+}
+
+/// Hands in the document a FETCH step asked for; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_provide(
+    session: AmpouleSession,
+    bytes: *const u8,
+    len: usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_provide", err, || {
+        // SAFETY: `bytes` is null with length 0, or points at `len` readable bytes.
+        let bytes = unsafe { raw::bytes(bytes, len, CHUNK_BYTES, "bytes") }?.unwrap_or(&[]);
+        handles::session(session.id)?.provide(bytes)
+    })
+}
+
+/// Appends bytes of the download a DOWNLOAD step asked for; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_write(
+    session: AmpouleSession,
+    bytes: *const u8,
+    len: usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_write", err, || {
+        // SAFETY: `bytes` is null with length 0, or points at `len` readable bytes.
+        let bytes = unsafe { raw::bytes(bytes, len, CHUNK_BYTES, "bytes") }?.unwrap_or(&[]);
+        handles::session(session.id)?.write(bytes)
+    })
+}
+
+/// Says the download is complete; see ampoule.h.
+///
+/// # Safety
+///
+/// `err` is null or the caller's writable `ampoule_error`.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_downloaded(
+    session: AmpouleSession,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_downloaded", err, || {
+        handles::session(session.id)?.downloaded()
+    })
+}
+
+/// Ends the update because the app could not fetch what was asked; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_fail(
+    session: AmpouleSession,
+    why: *const c_char,
+    why_len: usize,
+    out: *mut AmpouleOutcome,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_fail", err, || {
+        // SAFETY: the header's contract: `why` points at `why_len` bytes of UTF-8.
+        let why = unsafe { raw::string(why, why_len, SHORT_BYTES * 4, "why") }?;
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        let (outcome, result) = match handles::session(session.id)?.fail(why)? {
+            Step::Done(outcome) => outcome_of(outcome)?,
+            _ => (
+                AmpouleOutcome {
+                    kind: 7,
+                    rollout_bucket: 0,
+                    installed: AmpouleRelease { id: 0 },
+                },
+                Err(Failure::new(
+                    Status::Settings,
+                    "this update already ended; start another",
+                )),
+            ),
+        };
+        // SAFETY: `out` is not null and is the caller's writable `ampoule_outcome`.
+        unsafe { raw::put(out, outcome, "out") }?;
+        result
+    })
+}
+
+/// Frees an update session's handle, ending the update; see ampoule.h.
+///
+/// # Safety
+///
+/// `err` is null or the caller's writable `ampoule_error`.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_session_free(
+    session: AmpouleSession,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_session_free", err, || {
+        handles::free_session(session.id)
+    })
+}
+
+/// The URL update, over HTTP(S) with the library's own client and its default limits.
+#[cfg(feature = "fetch")]
+fn url_update(
+    device: &Device,
+    progress: Arc<handles::ProgressSlot>,
+    feed_url: &str,
+    now: Timestamp,
+) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
+    let transfer = ampoule_verify::Transfer::new().on_progress(reporter(progress));
+    outcome_of(device.update(feed_url, &transfer, now).outcome)
+}
+
+/// Without `fetch` there is no HTTP(S) client in the library: the call says so.
+#[cfg(not(feature = "fetch"))]
+fn url_update(
+    _device: &Device,
+    _progress: Arc<handles::ProgressSlot>,
+    _feed_url: &str,
+    _now: Timestamp,
+) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
+    Ok((
+        AmpouleOutcome {
+            kind: 7,
+            rollout_bucket: 0,
+            installed: AmpouleRelease { id: 0 },
+        },
+        Err(Failure::new(
+            Status::Unsupported,
+            "this build of the library has no HTTP(S) client: build ampoule-verify-ffi with \
+             --features fetch, or drive the update with the app's own HTTP \
+             (ampoule_update_begin)",
+        )),
+    ))
+}
+
+/// Runs a whole update over HTTP(S) from the feed's URL; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update(
+    store: AmpouleStore,
+    feed_url: *const c_char,
+    feed_url_len: usize,
+    now_unix: i64,
+    out: *mut AmpouleOutcome,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update", err, || {
+        // SAFETY: the header's contract: `feed_url` points at `feed_url_len` bytes of UTF-8.
+        let feed_url = unsafe { raw::string(feed_url, feed_url_len, PATH_BYTES, "feed_url") }?;
+        if out.is_null() {
+            return Err(Failure::argument("out is a null pointer"));
+        }
+        let device = handles::store(store.id)?;
+        let progress = handles::progress(store.id)?;
+        let (outcome, result) = url_update(&device, progress, feed_url, time(now_unix)?)?;
+        // SAFETY: `out` is not null and is the caller's writable `ampoule_outcome`.
+        unsafe { raw::put(out, outcome, "out") }?;
+        result
+    })
+}
+
+/// Sets or clears the store's progress callback; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function: `progress` is null or a function callable from
+/// any thread with `context`, until it is replaced or the store is freed.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_store_set_progress(
+    store: AmpouleStore,
+    progress: Option<raw::ProgressFn>,
+    context: *mut c_void,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_store_set_progress", err, || {
+        let slot = handles::progress(store.id)?;
+        *slot.lock().unwrap_or_else(PoisonError::into_inner) =
+            progress.map(|function| Callback::new(function, context));
+        Ok(())
+    })
+}
+
+/// The device id that places this store in rollouts; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_device_id(
+    store: AmpouleStore,
+    buf: *mut u8,
+    cap: usize,
+    len: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_device_id", err, || {
+        let device = handles::store(store.id)?;
+        // SAFETY: `buf` is null or `cap` writable bytes, `len` the caller's `size_t`.
+        unsafe {
+            raw::copy_out(
+                device.device_id().as_bytes(),
+                buf,
+                cap,
+                len,
+                "the device id",
+            )
+        }
+    })
+}
+
+/// Makes the store follow the handle's channel; see ampoule.h.
+///
+/// # Safety
+///
+/// `err` is null or the caller's writable `ampoule_error`.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_switch_channel(
+    store: AmpouleStore,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_switch_channel", err, || {
+        Ok(handles::store(store.id)?.switch_channel()?)
+    })
+}
+
+/// Removes what the store no longer needs; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_gc(
+    store: AmpouleStore,
+    removed: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_gc", err, || {
+        if removed.is_null() {
+            return Err(Failure::argument("removed is a null pointer"));
+        }
+        let paths = handles::store(store.id)?.gc()?;
+        // SAFETY: `removed` is not null and is the caller's writable `size_t`.
+        unsafe { raw::put(removed, paths.len(), "removed") }
     })
 }

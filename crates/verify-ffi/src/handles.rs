@@ -14,19 +14,27 @@ use std::sync::{Arc, Mutex, MutexGuard, PoisonError};
 
 use ampoule_verify::{Device, Release};
 
+use crate::raw::Callback;
+use crate::session::UpdateSession;
 use crate::status::Failure;
 
 /// The tag of a store handle ("ST").
 pub const STORE_TAG: u64 = 0x5354;
 /// The tag of a release handle ("RL").
 pub const RELEASE_TAG: u64 = 0x524c;
+/// The tag of an update session's handle ("SE").
+pub const SESSION_TAG: u64 = 0x5345;
 const SERIAL_BITS: u32 = 48;
+
+/// A store's progress callback, which `ampoule_store_set_progress` sets and its updates call.
+pub(crate) type ProgressSlot = Mutex<Option<Callback>>;
 
 /// One live object.
 #[derive(Clone)]
 enum Entry {
-    Store(Arc<Device>),
+    Store(Arc<Device>, Arc<ProgressSlot>),
     Release(Arc<Release>),
+    Session(Arc<UpdateSession>),
 }
 
 struct Registry {
@@ -67,12 +75,18 @@ fn get(id: u64, tag: u64) -> Option<Entry> {
 }
 
 fn remove(id: u64, tag: u64) -> bool {
-    id >> SERIAL_BITS == tag && registry().live.remove(&id).is_some()
+    if id >> SERIAL_BITS != tag {
+        return false;
+    }
+    let removed = registry().live.remove(&id);
+    // Dropped after the registry's lock is released: the last reference to a session waits
+    // for its thread to end.
+    removed.is_some()
 }
 
-/// Registers a store and returns its handle.
-pub fn add_store(device: Device) -> Result<u64, Failure> {
-    add(STORE_TAG, Entry::Store(Arc::new(device)))
+/// Registers a store, with the progress slot its app reports to, and returns its handle.
+pub(crate) fn add_store(device: Device, progress: Arc<ProgressSlot>) -> Result<u64, Failure> {
+    add(STORE_TAG, Entry::Store(Arc::new(device), progress))
 }
 
 /// Registers a release and returns its handle.
@@ -80,10 +94,23 @@ pub fn add_release(release: Release) -> Result<u64, Failure> {
     add(RELEASE_TAG, Entry::Release(Arc::new(release)))
 }
 
+/// Registers an update session and returns its handle.
+pub fn add_session(session: UpdateSession) -> Result<u64, Failure> {
+    add(SESSION_TAG, Entry::Session(Arc::new(session)))
+}
+
 /// The store a handle names.
 pub fn store(id: u64) -> Result<Arc<Device>, Failure> {
     match get(id, STORE_TAG) {
-        Some(Entry::Store(device)) => Ok(device),
+        Some(Entry::Store(device, _)) => Ok(device),
+        _ => Err(Failure::handle("the store handle")),
+    }
+}
+
+/// The progress slot of the store a handle names.
+pub(crate) fn progress(id: u64) -> Result<Arc<ProgressSlot>, Failure> {
+    match get(id, STORE_TAG) {
+        Some(Entry::Store(_, slot)) => Ok(slot),
         _ => Err(Failure::handle("the store handle")),
     }
 }
@@ -93,6 +120,23 @@ pub fn release(id: u64) -> Result<Arc<Release>, Failure> {
     match get(id, RELEASE_TAG) {
         Some(Entry::Release(release)) => Ok(release),
         _ => Err(Failure::handle("the release handle")),
+    }
+}
+
+/// The update session a handle names.
+pub fn session(id: u64) -> Result<Arc<UpdateSession>, Failure> {
+    match get(id, SESSION_TAG) {
+        Some(Entry::Session(session)) => Ok(session),
+        _ => Err(Failure::handle("the session handle")),
+    }
+}
+
+/// Frees an update session's handle; the session ends once no call uses it any more.
+pub fn free_session(id: u64) -> Result<(), Failure> {
+    if remove(id, SESSION_TAG) {
+        Ok(())
+    } else {
+        Err(Failure::handle("the session handle"))
     }
 }
 

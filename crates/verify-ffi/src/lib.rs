@@ -1,6 +1,6 @@
 //! ampoule-verify for apps not written in Rust: a C interface over the library's safe update
 //! path (open a store with the app's trust, version and policy document; install an offline
-//! file; read the typed outcome; roll back; read the current model's path, labels and
+//! file, or update step by step over the app's own HTTP ([`session`]); read the typed outcome; roll back; read the current model's path, labels and
 //! manifest, signed metadata included), and nothing below it. `include/ampoule.h` declares it
 //! and says, per function, who owns which memory and what may run at once; tests/header.rs
 //! checks that the header and the functions here agree, and tests/c_api.rs compiles a C
@@ -18,4 +18,5 @@
 pub mod ffi;
 pub mod handles;
 mod raw;
+pub mod session;
 pub mod status;

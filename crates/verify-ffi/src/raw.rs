@@ -10,7 +10,7 @@
 
 #![allow(unsafe_code)]
 
-use std::ffi::c_char;
+use std::ffi::{c_char, c_void};
 
 use crate::status::{AmpouleError, Failure, Status};
 
@@ -173,4 +173,36 @@ pub(crate) unsafe fn fill_error(err: *mut AmpouleError, status: Status, message:
     // value of its integer and byte-array fields, so forming a reference to it is sound.
     let err = unsafe { &mut *err };
     err.set(status, message);
+}
+
+/// The C type of a progress callback (`ampoule_progress_fn`).
+pub type ProgressFn = unsafe extern "C" fn(*mut c_void, i32, u64, u64);
+
+/// A progress callback the caller registered: its function, and the context pointer it gets
+/// back on every call, untouched.
+#[derive(Clone, Copy)]
+pub(crate) struct Callback {
+    function: ProgressFn,
+    context: *mut c_void,
+}
+
+// SAFETY: the context pointer is never read here, only passed back to the caller's function;
+// the header's contract for ampoule_store_set_progress is that the function may be called from
+// any thread with that context, so moving and sharing the pair between threads is the
+// caller's promise.
+unsafe impl Send for Callback {}
+// SAFETY: as for `Send`: nothing here reads through the pointer.
+unsafe impl Sync for Callback {}
+
+impl Callback {
+    pub(crate) fn new(function: ProgressFn, context: *mut c_void) -> Callback {
+        Callback { function, context }
+    }
+
+    /// Calls the caller's function with its context and one report.
+    pub(crate) fn call(self, stage: i32, done: u64, total: u64) {
+        // SAFETY: the header's contract: the function is a valid `ampoule_progress_fn` for as
+        // long as it is registered, callable from any thread with this context, and returns.
+        unsafe { (self.function)(self.context, stage, done, total) }
+    }
 }

@@ -20,6 +20,8 @@ pub enum Status {
     NeedsOtherApp = 5,
     Panic = 6,
     NotFound = 7,
+    /// This build lacks the cargo feature the call needs (`ampoule_update`: `fetch`).
+    Unsupported = 8,
     Io = 10,
     Malformed = 11,
     TooLarge = 12,
@@ -55,6 +57,7 @@ pub const STATUSES: &[(Status, &str)] = &[
     (Status::NeedsOtherApp, "needs_other_app"),
     (Status::Panic, "panic"),
     (Status::NotFound, "not_found"),
+    (Status::Unsupported, "unsupported"),
     (Status::Io, "io"),
     (Status::Malformed, "malformed"),
     (Status::TooLarge, "too_large"),

@@ -8,7 +8,7 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use ampoule_verify_ffi::ffi::{ABI_VERSION, FIELDS, OUTCOMES};
+use ampoule_verify_ffi::ffi::{ABI_VERSION, FIELDS, OUTCOMES, SHA256_BYTES, STAGES, STEPS};
 use ampoule_verify_ffi::status::{MESSAGE_BYTES, STATUSES};
 
 fn crate_file(name: &str) -> String {
@@ -76,6 +76,9 @@ fn rust_to_c(rust: &str) -> String {
         "i64" => "int64_t".into(),
         "usize" => "size_t".into(),
         "c_char" => "char".into(),
+        "c_void" => "void".into(),
+        // A nullable C function pointer: the header's typedef.
+        "Option<raw::ProgressFn>" => "ampoule_progress_fn".into(),
         other if other.starts_with("Ampoule") => snake(other),
         other => panic!("no C type for the Rust type {other}"),
     }
@@ -169,7 +172,7 @@ fn issue14_every_function_has_the_same_signature_in_the_header_and_in_rust() {
     let rust = rust_functions();
     let header = header_functions();
     assert!(
-        rust.len() >= 13,
+        rust.len() >= 21,
         "only {} functions found in src/ffi.rs",
         rust.len()
     );
@@ -245,7 +248,7 @@ fn header_structs() -> BTreeMap<String, Vec<(String, String)>> {
 fn issue14_every_struct_has_the_same_fields_in_the_header_and_in_rust() {
     let rust = rust_structs(&["src/ffi.rs", "src/status.rs"]);
     let header = header_structs();
-    assert_eq!(rust.len(), 5, "{rust:?}");
+    assert_eq!(rust.len(), 7, "{rust:?}");
     assert_eq!(rust, header);
 }
 
@@ -272,8 +275,11 @@ fn issue14_every_code_has_the_same_number_in_the_header_and_in_rust() {
     header_statuses.retain(|name, _| {
         !name.starts_with("OUTCOME_")
             && !name.starts_with("FIELD_")
+            && !name.starts_with("STEP_")
+            && !name.starts_with("STAGE_")
             && name != "ABI_VERSION"
             && name != "MESSAGE_BYTES"
+            && name != "SHA256_BYTES"
     });
     assert_eq!(header_statuses, statuses);
     let table = |t: &[(&str, i32)]| -> BTreeMap<String, i64> {
@@ -283,6 +289,12 @@ fn issue14_every_code_has_the_same_number_in_the_header_and_in_rust() {
     };
     assert_eq!(defines("OUTCOME_"), table(OUTCOMES));
     assert_eq!(defines("FIELD_"), table(FIELDS));
+    assert_eq!(defines("STEP_"), table(STEPS));
+    assert_eq!(defines("STAGE_"), table(STAGES));
+    assert_eq!(
+        defines("SHA256_BYTES").get(""),
+        Some(&(SHA256_BYTES as i64))
+    );
     assert_eq!(
         defines("ABI_VERSION").get(""),
         Some(&i64::from(ABI_VERSION))
@@ -341,43 +353,51 @@ fn issue14_the_shared_library_exports_exactly_the_header_s_functions() {
 }
 
 #[test]
-fn readme_c_example_compiles_against_the_header() {
+fn readme_c_examples_compile_against_the_header() {
     let readme = crate_file("../../README.md");
     let section = readme
         .split("## Using ampoule from Kotlin, Swift or C++")
         .nth(1)
+        .and_then(|rest| rest.split("\n## ").next())
         .expect("the README's section for other languages");
-    let example = section
+    let examples: Vec<&str> = section
         .split("```c\n")
-        .nth(1)
-        .and_then(|rest| rest.split("```").next())
-        .expect("the section's C example");
-    let mut cc = std::process::Command::new("cc")
-        .args([
-            "-std=c11",
-            "-Wall",
-            "-Wextra",
-            "-Werror",
-            "-fsyntax-only",
-            "-x",
-            "c",
-            "-I",
-        ])
-        .arg(Path::new(env!("CARGO_MANIFEST_DIR")).join("include"))
-        .arg("-")
-        .stdin(std::process::Stdio::piped())
-        .stderr(std::process::Stdio::piped())
-        .spawn()
-        .expect("the system C compiler `cc` runs");
-    std::io::Write::write_all(
-        &mut cc.stdin.take().expect("cc's stdin"),
-        example.as_bytes(),
-    )
-    .expect("the example goes to cc");
-    let out = cc.wait_with_output().expect("cc finishes");
-    assert!(
-        out.status.success(),
-        "the README's C example does not compile:\n{}",
-        String::from_utf8_lossy(&out.stderr)
+        .skip(1)
+        .filter_map(|rest| rest.split("```").next())
+        .collect();
+    assert_eq!(
+        examples.len(),
+        2,
+        "the offline install and the step-by-step update"
     );
+    for example in examples {
+        let mut cc = std::process::Command::new("cc")
+            .args([
+                "-std=c11",
+                "-Wall",
+                "-Wextra",
+                "-Werror",
+                "-fsyntax-only",
+                "-x",
+                "c",
+                "-I",
+            ])
+            .arg(Path::new(env!("CARGO_MANIFEST_DIR")).join("include"))
+            .arg("-")
+            .stdin(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::piped())
+            .spawn()
+            .expect("the system C compiler `cc` runs");
+        std::io::Write::write_all(
+            &mut cc.stdin.take().expect("cc's stdin"),
+            example.as_bytes(),
+        )
+        .expect("the example goes to cc");
+        let out = cc.wait_with_output().expect("cc finishes");
+        assert!(
+            out.status.success(),
+            "a README C example does not compile:\n{}\n{example}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
 }

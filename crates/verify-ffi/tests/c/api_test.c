@@ -8,12 +8,21 @@
  * FIXTURES holds what the `ampoule` binary made (key.raw: the raw Ed25519 public key that
  * signed everything; v1.offline and v2.offline: offline files of versions 1.0.0 and 1.1.0 of
  * an invented trail-camera model; tampered.offline: v2.offline with one byte of its bundle
- * flipped; policy-*.json). SCRATCH is an empty directory for the case's stores. A case prints
- * nothing and exits 0, or names the failed check and exits 1.
+ * flipped; policy-*.json; tree/: the release tree both offline files came from). SCRATCH is an
+ * empty directory for the case's stores. The cases named http_* and session_* update over HTTP
+ * from the test's server on 127.0.0.1, which serves tree/ at the address in the environment
+ * variable AMPOULE_TEST_SERVER (127.0.0.1:PORT). A case prints nothing and exits 0, or names
+ * the failed check and exits 1.
+ *
+ * The HTTP client is written here on plain sockets (HTTP/1.0, one request per connection), as
+ * an app with its own network stack would bring one: the test needs nothing beyond the C
+ * library, and it sees every byte it hands to the session.
  */
 #define _DEFAULT_SOURCE /* flock */
 #define _POSIX_C_SOURCE 200809L
+#include <arpa/inet.h>
 #include <fcntl.h>
+#include <netinet/in.h>
 #include <pthread.h>
 #include <stdarg.h>
 #include <stdint.h>
@@ -21,6 +30,7 @@
 #include <stdlib.h>
 #include <string.h>
 #include <sys/file.h>
+#include <sys/socket.h>
 #include <sys/stat.h>
 #include <time.h>
 #include <unistd.h>
@@ -161,6 +171,7 @@ static void case_abi(void) {
     CHECK(strcmp(ampoule_status_name(AMPOULE_OK), "ok") == 0);
     CHECK(strcmp(ampoule_status_name(AMPOULE_INCOMPATIBLE), "incompatible") == 0);
     CHECK(strcmp(ampoule_status_name(AMPOULE_INVALID_HANDLE), "invalid_handle") == 0);
+    CHECK(strcmp(ampoule_status_name(AMPOULE_UNSUPPORTED), "unsupported") == 0);
     CHECK(strcmp(ampoule_status_name(-5), "unknown") == 0);
 }
 
@@ -579,6 +590,755 @@ static void case_policy_document_over_caps(void) {
     free(many);
 }
 
+/* Installs onnx.offline (channel "onnx": the invented ONNX classifier, `image` float32
+ * [N, 3, 8, 8] in, `species` float32 [N, 6] out, opset 13, float weights, six labels, metadata
+ * preprocess.colour_order "rgb") into a fresh store with policy document `members` (inside
+ * {"policy_format": 1, ...}) and app version `app_version`; expects `want` and a message
+ * holding `part`, and nothing installed unless `want` is AMPOULE_OK. */
+static void install_onnx(const char *name, const char *app_version, const char *members,
+                         int32_t want, const char *part) {
+    char policy[4096];
+    snprintf(policy, sizeof policy, "{\"policy_format\": 1, %s}", members);
+    ampoule_error err;
+    ampoule_store store = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir(name);
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "onnx", 4, &keys, &keys, &keys,
+                                               app_version, strlen(app_version),
+                                               (const uint8_t *)policy, strlen(policy),
+                                               (int64_t)time(NULL), &store, &err),
+           AMPOULE_OK, &err, NULL);
+    ampoule_outcome outcome;
+    int32_t status = install(store, "onnx.offline", &outcome, &err);
+    if (status != want) fail(__LINE__, "policy %s: status %s, not %s: %.*s", members,
+                             ampoule_status_name(status), ampoule_status_name(want),
+                             (int)err.message_len, (const char *)err.message);
+    EXPECT(status, want, &err, part);
+    ampoule_release current = {0};
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    if (want == AMPOULE_OK) {
+        CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED && current.id != 0);
+        release_free(outcome.installed);
+        release_free(current);
+    } else {
+        CHECK(outcome.kind == (want == AMPOULE_NEEDS_OTHER_APP ? AMPOULE_OUTCOME_NEEDS_OTHER_APP
+                                                               : AMPOULE_OUTCOME_REFUSED));
+        CHECK(outcome.installed.id == 0 && current.id == 0);
+    }
+    store_free(store);
+}
+
+/* One bundle refused per setting of the policy document (FORMAT.md, "The policy document":
+ * every key of its table), each with its status, from C; the document stating every setting
+ * the bundle fits installs it. The app's own version, which the document leaves to the caller,
+ * is checked too. */
+static void case_policy_settings(void) {
+    install_onnx("fits", "2.3.0",
+                 "\"about\": \"every setting, all of them fitting\", \"bundle_name\": "
+                 "\"trailcam-species\", \"max_bundle_bytes\": 10000000, \"max_unpacked_bytes\": "
+                 "10000000, \"model\": {\"format\": \"onnx\", \"max_opset\": 13, \"weights_8bit\": "
+                 "false, \"inputs\": [{\"name\": \"image\", \"dtype\": \"float32\", \"shape\": "
+                 "\"[*, 3, 8, 8]\"}], \"outputs\": [{\"name\": \"species\", \"dtype\": "
+                 "\"float32\", \"shape\": \"[*, 6]\"}], \"classifier_output\": \"species\", "
+                 "\"class_dim\": 1}, \"labels\": {\"min_count\": 6, \"max_count\": 6, "
+                 "\"required\": [\"empty frame\", \"fox\"]}, \"metadata\": "
+                 "{\"preprocess.colour_order\": \"rgb\", \"eval.top1\": 0.91}",
+                 AMPOULE_OK, NULL);
+    static const struct {
+        const char *members;
+        int32_t status;
+        const char *part;
+    } cases[] = {
+        {"\"bundle_name\": \"trailcam-birds\"", AMPOULE_POLICY,
+         "feed offers bundle 'trailcam-species' but this app accepts only 'trailcam-birds'"},
+        {"\"max_bundle_bytes\": 1000", AMPOULE_TOO_LARGE,
+         ".ampoule' is 17920 bytes, over the limit of 1000 bytes"},
+        /* The library's kind for the unpacked size is policy, not too_large: as it is. */
+        {"\"max_unpacked_bytes\": 1000", AMPOULE_POLICY,
+         "bundle unpacks to 13043 bytes, over this app's limit of 1000 bytes"},
+        {"\"model\": {\"format\": \"safetensors\"}", AMPOULE_INCOMPATIBLE,
+         "the model is onnx, the app expects safetensors"},
+        {"\"model\": {\"max_opset\": 12}", AMPOULE_INCOMPATIBLE,
+         "the model needs onnx opset 13, the app supports at most 12"},
+        {"\"model\": {\"weights_8bit\": true}", AMPOULE_INCOMPATIBLE,
+         "the model's weights are not 8-bit, the app expects 8-bit weights"},
+        {"\"model\": {\"inputs\": [{\"name\": \"frame\"}]}", AMPOULE_INCOMPATIBLE,
+         "the model has no input 'frame' (its inputs: 'image')"},
+        {"\"model\": {\"inputs\": [{\"name\": \"image\", \"dtype\": \"uint8\"}]}",
+         AMPOULE_INCOMPATIBLE, "input 'image' has dtype float32, the app expects uint8"},
+        {"\"model\": {\"inputs\": [{\"name\": \"image\", \"shape\": \"[*, 3, 96, 96]\"}]}",
+         AMPOULE_INCOMPATIBLE,
+         "input 'image' has shape [N, 3, 8, 8], the app expects [*, 3, 96, 96]: dimension 2 is "
+         "8, not 96"},
+        {"\"model\": {\"outputs\": [{\"name\": \"scores\"}]}", AMPOULE_INCOMPATIBLE,
+         "the model has no output 'scores' (its outputs: 'species')"},
+        {"\"model\": {\"outputs\": [{\"name\": \"species\", \"dtype\": \"float16\"}]}",
+         AMPOULE_INCOMPATIBLE, "output 'species' has dtype float32, the app expects float16"},
+        {"\"model\": {\"outputs\": [{\"name\": \"species\", \"shape\": \"[*, 7]\"}]}",
+         AMPOULE_INCOMPATIBLE,
+         "output 'species' has shape [N, 6], the app expects [*, 7]: dimension 1 is 6, not 7"},
+        {"\"model\": {\"classifier_output\": \"image\"}", AMPOULE_INCOMPATIBLE,
+         "the model has no output 'image' (its outputs: 'species')"},
+        {"\"model\": {\"classifier_output\": \"species\", \"class_dim\": 0}",
+         AMPOULE_INCOMPATIBLE,
+         "output 'species' has shape [N, 6]: its class dimension 0 is N, not a fixed size"},
+        {"\"labels\": {\"min_count\": 7}", AMPOULE_INCOMPATIBLE,
+         "the label list has 6 labels, the app accepts 7 to 100000"},
+        {"\"labels\": {\"max_count\": 5}", AMPOULE_INCOMPATIBLE,
+         "the label list has 6 labels, the app accepts 0 to 5"},
+        {"\"labels\": {\"required\": [\"wolf\"]}", AMPOULE_INCOMPATIBLE,
+         "the label list lacks 'wolf', which the app requires"},
+        {"\"metadata\": {\"preprocess.colour_order\": \"bgr\"}", AMPOULE_INCOMPATIBLE,
+         "the bundle's metadata has preprocess.colour_order = \"rgb\", the app requires \"bgr\""},
+        {"\"metadata\": {\"eval.top1\": 0.95}", AMPOULE_INCOMPATIBLE,
+         "the bundle's metadata has eval.top1 = 0.91, the app requires 0.95"},
+        {"\"metadata\": {\"preprocess.mean\": [0.5]}", AMPOULE_INCOMPATIBLE,
+         "the bundle's metadata has no preprocess.mean"},
+    };
+    for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+        char name[32];
+        snprintf(name, sizeof name, "setting-%zu", i);
+        install_onnx(name, "2.3.0", cases[i].members, cases[i].status, cases[i].part);
+    }
+    /* The app's version outside the bundle's requires_app (>=2.0.0, <3.0.0). */
+    install_onnx("app-version", "3.0.0", "\"about\": \"no setting\"", AMPOULE_NEEDS_OTHER_APP,
+                 "trailcam-species 1.2.0 requires app >=2.0.0, <3.0.0, and this app is 3.0.0");
+}
+
+/* ---- An update over HTTP, step by step, with the app's own (tiny) HTTP client ---- */
+
+/* Where each piece of a response body goes; nonzero stops the transfer. */
+typedef int (*sink_fn)(void *ctx, const uint8_t *bytes, size_t len);
+
+/* GET url from the test server (http://127.0.0.1:PORT/path), asking for bytes from..to
+ * (inclusive) when ranged; each piece of the body goes to sink, at most max bytes in all.
+ * Returns the HTTP status, or -1 when the transfer failed, was over max, or sink stopped it. */
+static int http_get(const char *url, int ranged, uint64_t from, uint64_t to, uint64_t max,
+                    sink_fn sink, void *ctx) {
+    const char *prefix = "http://127.0.0.1:";
+    if (strncmp(url, prefix, strlen(prefix)) != 0) fail(__LINE__, "not the test server: %s", url);
+    char *path = NULL;
+    long port = strtol(url + strlen(prefix), &path, 10);
+    CHECK(port > 0 && port < 65536 && *path == '/');
+    int fd = socket(AF_INET, SOCK_STREAM, 0);
+    CHECK(fd >= 0);
+    struct sockaddr_in addr;
+    memset(&addr, 0, sizeof addr);
+    addr.sin_family = AF_INET;
+    addr.sin_port = htons((uint16_t)port);
+    CHECK(inet_pton(AF_INET, "127.0.0.1", &addr.sin_addr) == 1);
+    if (connect(fd, (struct sockaddr *)&addr, sizeof addr) != 0) {
+        close(fd);
+        return -1;
+    }
+    char request[8192];
+    int n = ranged ? snprintf(request, sizeof request,
+                              "GET %s HTTP/1.0\r\nHost: 127.0.0.1\r\nRange: bytes=%llu-%llu\r\n\r\n",
+                              path, (unsigned long long)from, (unsigned long long)to)
+                   : snprintf(request, sizeof request, "GET %s HTTP/1.0\r\nHost: 127.0.0.1\r\n\r\n",
+                              path);
+    CHECK(n > 0 && (size_t)n < sizeof request);
+    CHECK(send(fd, request, (size_t)n, 0) == n);
+    /* The status line and headers, then the body as it arrives. */
+    static char head[16384];
+    size_t have = 0;
+    char *body = NULL;
+    int status = -1;
+    uint64_t total = 0;
+    uint8_t piece[16384];
+    for (;;) {
+        ssize_t got = recv(fd, body ? (char *)piece : head + have,
+                           body ? sizeof piece : sizeof head - 1 - have, 0);
+        if (got < 0) {
+            status = -1;
+            break;
+        }
+        if (got == 0) break;
+        if (!body) {
+            have += (size_t)got;
+            head[have] = 0;
+            char *end = strstr(head, "\r\n\r\n");
+            if (!end) {
+                CHECK(have < sizeof head - 1);
+                continue;
+            }
+            CHECK(sscanf(head, "HTTP/1.%*d %d", &status) == 1);
+            body = end + 4;
+            size_t first = have - (size_t)(body - head);
+            total = first;
+            if (total > max || (first && sink(ctx, (const uint8_t *)body, first) != 0)) {
+                status = -1;
+                break;
+            }
+            continue;
+        }
+        total += (uint64_t)got;
+        if (total > max || sink(ctx, piece, (size_t)got) != 0) {
+            status = -1;
+            break;
+        }
+    }
+    close(fd);
+    return status;
+}
+
+/* A document in memory. */
+struct buffer {
+    uint8_t *data;
+    size_t len;
+};
+
+static int to_buffer(void *ctx, const uint8_t *bytes, size_t len) {
+    struct buffer *b = ctx;
+    uint8_t *grown = realloc(b->data, b->len + len);
+    CHECK(grown != NULL);
+    memcpy(grown + b->len, bytes, len);
+    b->data = grown;
+    b->len += len;
+    return 0;
+}
+
+static const char *server(void) {
+    const char *addr = getenv("AMPOULE_TEST_SERVER");
+    if (!addr) fail(__LINE__, "AMPOULE_TEST_SERVER is not set (tests/c_api.rs sets it)");
+    return addr;
+}
+
+/* The channel the HTTP cases follow. */
+static const char *channel = "stable";
+
+static const char *feed_url(void) {
+    static char url[256];
+    snprintf(url, sizeof url, "http://%s/feeds/%s.json", server(), channel);
+    return url;
+}
+
+/* What one update over HTTP did, and what the "app" should do wrong on purpose. */
+struct plan {
+    /* what to do */
+    int tamper;              /* flip one bit of the first piece of the download */
+    uint64_t stop_after;     /* end the download with ampoule_update_fail after this many bytes */
+    /* what happened */
+    int fetches, downloads;
+    uint64_t first_offset;   /* step.offset of the first DOWNLOAD step */
+    uint64_t offsets[4], sizes[4]; /* of the first four DOWNLOAD steps */
+    ampoule_session session; /* kept open (not freed) when keep_session is set */
+    int keep_session;
+};
+
+struct download {
+    ampoule_session session;
+    struct plan *plan;
+    uint64_t written;
+    int32_t status; /* the first write's failure */
+};
+
+static int to_session(void *ctx, const uint8_t *bytes, size_t len) {
+    struct download *d = ctx;
+    struct plan *plan = d->plan;
+    uint8_t copy[16384];
+    CHECK(len <= sizeof copy);
+    memcpy(copy, bytes, len);
+    if (plan->tamper && d->written == 0 && len > 0) copy[len / 2] ^= 0x01;
+    if (plan->stop_after && d->written + len > plan->stop_after) {
+        len = (size_t)(plan->stop_after - d->written);
+    }
+    ampoule_error err;
+    int32_t status = ampoule_update_write(d->session, copy, len, &err);
+    if (status != AMPOULE_OK) {
+        d->status = status;
+        return 1;
+    }
+    d->written += len;
+    return plan->stop_after && d->written >= plan->stop_after;
+}
+
+static char *session_url(ampoule_session session, size_t index) {
+    static char url[4096];
+    size_t len = 0;
+    ampoule_error err;
+    EXPECT(ampoule_update_url(session, index, (uint8_t *)url, sizeof url - 1, &len, &err),
+           AMPOULE_OK, &err, NULL);
+    url[len] = 0;
+    return url;
+}
+
+/* Fetches the channel's feed, as the app does before it starts a session. */
+static struct buffer fetch_feed(void) {
+    struct buffer feed = {NULL, 0};
+    CHECK(http_get(feed_url(), 0, 0, 0, 64 * 1024, to_buffer, &feed) == 200);
+    return feed;
+}
+
+/* Runs one update over HTTP to its end: the status of the last call, *outcome its outcome,
+ * err its error. */
+static int32_t update_over_http(ampoule_store store, struct plan *plan, ampoule_outcome *outcome,
+                                ampoule_error *err) {
+    struct buffer feed = fetch_feed();
+    ampoule_session session = {0};
+    const char *url = feed_url();
+    EXPECT(ampoule_update_begin(store, url, strlen(url), feed.data, feed.len, (int64_t)time(NULL),
+                                &session, err),
+           AMPOULE_OK, err, NULL);
+    free(feed.data);
+    CHECK(session.id != 0);
+    plan->session = session;
+    int32_t status;
+    for (;;) {
+        ampoule_step step = {0};
+        status = ampoule_update_next(session, &step, err);
+        if (step.kind == AMPOULE_STEP_DONE) {
+            *outcome = step.outcome;
+            break;
+        }
+        EXPECT(status, AMPOULE_OK, err, NULL);
+        if (step.kind == AMPOULE_STEP_FETCH) {
+            plan->fetches++;
+            CHECK(step.url_count == 1);
+            struct buffer doc = {NULL, 0};
+            int http = http_get(session_url(session, 0), 0, 0, 0, step.max_bytes, to_buffer, &doc);
+            if (http != 200) {
+                free(doc.data);
+                status = ampoule_update_fail(session, "the server failed", 17, outcome, err);
+                break;
+            }
+            EXPECT(ampoule_update_provide(session, doc.data, doc.len, err), AMPOULE_OK, err, NULL);
+            free(doc.data);
+        } else if (step.kind == AMPOULE_STEP_DOWNLOAD) {
+            if (plan->downloads < 4) {
+                plan->offsets[plan->downloads] = step.offset;
+                plan->sizes[plan->downloads] = step.size;
+            }
+            if (plan->downloads++ == 0) plan->first_offset = step.offset;
+            CHECK(step.url_count >= 1 && step.size > step.offset);
+            struct download d = {session, plan, step.offset, AMPOULE_OK};
+            /* Always a Range request: the step may ask for the bundle's head only. */
+            int http = http_get(session_url(session, 0), 1, step.offset, step.size - 1,
+                                step.size - step.offset, to_session, &d);
+            CHECK(d.status == AMPOULE_OK);
+            if (!(http == 206 || (http == 200 && step.offset == 0)) || d.written != step.size) {
+                status = ampoule_update_fail(session, "connection lost", 15, outcome, err);
+                break;
+            }
+            EXPECT(ampoule_update_downloaded(session, err), AMPOULE_OK, err, NULL);
+        } else {
+            fail(__LINE__, "unknown step kind %d", step.kind);
+        }
+    }
+    if (!plan->keep_session) {
+        ampoule_error free_err;
+        EXPECT(ampoule_session_free(session, &free_err), AMPOULE_OK, &free_err, NULL);
+    }
+    return status;
+}
+
+/* A store that installed 1.0.0 from an offline file catches up over HTTP: the session asks for
+ * the ledger's consistency steps and the bundle of 1.1.0, which installs; the next update finds
+ * nothing newer; rolling back returns to 1.0.0. */
+static void case_http_update(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", "policy-fits.json");
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    release_free(outcome.installed);
+
+    struct plan plan = {0};
+    EXPECT(update_over_http(store, &plan, &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(plan.fetches >= 1 && plan.downloads == 1 && plan.first_offset == 0);
+    ampoule_release release = outcome.installed;
+    CHECK(strcmp(field(release, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
+    size_t count = 0;
+    EXPECT(ampoule_release_label_count(release, &count, &err), AMPOULE_OK, &err, NULL);
+    CHECK(count == 6);
+    CHECK(strcmp(metadata(release, "preprocess.colour_order"), "\"rgb\"") == 0);
+    const char *model = field(release, AMPOULE_FIELD_MODEL_PATH);
+    struct stat st;
+    CHECK(stat(model, &st) == 0 && st.st_size == 40000);
+    release_free(release);
+
+    struct plan again = {0};
+    EXPECT(update_over_http(store, &again, &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_UP_TO_DATE && again.downloads == 0);
+
+    ampoule_release back = {0};
+    EXPECT(ampoule_rollback(store, &back, &err), AMPOULE_OK, &err, NULL);
+    CHECK(strcmp(field(back, AMPOULE_FIELD_VERSION), "1.0.0") == 0);
+    release_free(back);
+    store_free(store);
+}
+
+/* A bundle larger than its head (274 KiB): the session asks for the head first, checks its
+ * signed manifest, then asks for the rest into the same file from where the head ended (an HTTP
+ * Range request), and installs. */
+static void case_http_head_first(void) {
+    ampoule_error err;
+    ampoule_store store = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir("camera");
+    channel = "large";
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), channel, strlen(channel), &keys,
+                                               &keys, &keys, "2.3.0", 5, NULL, 0,
+                                               (int64_t)time(NULL), &store, &err),
+           AMPOULE_OK, &err, NULL);
+    ampoule_outcome outcome;
+    struct plan plan = {0};
+    EXPECT(update_over_http(store, &plan, &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(plan.downloads == 2 && plan.offsets[0] == 0);
+    CHECK(plan.offsets[1] == plan.sizes[0] && plan.sizes[1] > plan.sizes[0]);
+    CHECK(plan.sizes[0] <= 274 * 1024 && plan.sizes[1] > 300000);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "2.9.0") == 0);
+    release_free(outcome.installed);
+    store_free(store);
+}
+
+/* A download cut off: the update fails with AMPOULE_NETWORK and keeps what arrived; the next
+ * update asks for the rest only (an HTTP Range request) and installs. */
+static void case_http_resume(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    struct plan cut = {0};
+    cut.stop_after = 2000;
+    EXPECT(update_over_http(store, &cut, &outcome, &err), AMPOULE_NETWORK, &err,
+           "connection lost");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_FAILED && cut.downloads == 1);
+    ampoule_release current = {5};
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(current.id == 0);
+
+    struct plan rest = {0};
+    EXPECT(update_over_http(store, &rest, &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(rest.downloads == 1 && rest.first_offset == 2000);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
+    release_free(outcome.installed);
+    store_free(store);
+}
+
+/* A bundle changed in transit: refused by its SHA-256 before it is opened; nothing installed. */
+static void case_http_tampered(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    struct plan plan = {0};
+    plan.tamper = 1;
+    EXPECT(update_over_http(store, &plan, &outcome, &err), AMPOULE_DIGEST, &err,
+           "but the feed declares");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_REFUSED && outcome.installed.id == 0);
+    ampoule_release current = {5};
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(current.id == 0);
+    store_free(store);
+}
+
+/* A bundle the app's policy document refuses, over HTTP: refused, nothing installed. */
+static void case_http_policy_refused(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", "policy-refuses.json");
+    ampoule_outcome outcome;
+    struct plan plan = {0};
+    EXPECT(update_over_http(store, &plan, &outcome, &err), AMPOULE_INCOMPATIBLE, &err,
+           "the label list lacks 'wolf', which the app requires");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_REFUSED);
+    store_free(store);
+}
+
+/* A session holds the store's update lock until it is freed: a second session (through another
+ * handle on the same directory) ends LOCKED, and so does an offline install; reading the current
+ * release does not wait. Once the first is freed, an update runs. */
+static void case_session_locks_the_store(void) {
+    ampoule_error err;
+    ampoule_store first = open_ok("camera", NULL);
+    ampoule_store second = open_ok("camera", NULL);
+    struct buffer feed = fetch_feed();
+    const char *url = feed_url();
+    ampoule_session holding = {0}, waiting = {0};
+    EXPECT(ampoule_update_begin(first, url, strlen(url), feed.data, feed.len, (int64_t)time(NULL),
+                                &holding, &err),
+           AMPOULE_OK, &err, NULL);
+    EXPECT(ampoule_update_begin(second, url, strlen(url), feed.data, feed.len,
+                                (int64_t)time(NULL), &waiting, &err),
+           AMPOULE_OK, &err, NULL);
+    free(feed.data);
+    ampoule_step step;
+    EXPECT(ampoule_update_next(waiting, &step, &err), AMPOULE_LOCKED, &err,
+           "another update is running on store");
+    CHECK(step.kind == AMPOULE_STEP_DONE && step.outcome.kind == AMPOULE_OUTCOME_FAILED);
+    ampoule_outcome outcome;
+    EXPECT(install(first, "v1.offline", &outcome, &err), AMPOULE_LOCKED, &err, NULL);
+    EXPECT(install(second, "v1.offline", &outcome, &err), AMPOULE_LOCKED, &err, NULL);
+    ampoule_release current = {5};
+    EXPECT(ampoule_current(second, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(current.id == 0);
+    /* The holding session goes as far as its download, then is freed unanswered. */
+    EXPECT(ampoule_update_next(holding, &step, &err), AMPOULE_OK, &err, NULL);
+    CHECK(step.kind == AMPOULE_STEP_DOWNLOAD);
+    EXPECT(ampoule_session_free(holding, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(ampoule_session_free(waiting, &err), AMPOULE_OK, &err, NULL);
+
+    struct plan plan = {0};
+    EXPECT(update_over_http(second, &plan, &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    release_free(outcome.installed);
+    store_free(first);
+    store_free(second);
+}
+
+/* What a progress callback saw. */
+struct seen {
+    int calls, unpack_calls, download_calls, other_stages;
+    uint64_t last_done, last_total;
+};
+
+static void count_progress(void *context, int32_t stage, uint64_t done, uint64_t total) {
+    struct seen *seen = context;
+    seen->calls++;
+    if (stage == AMPOULE_STAGE_UNPACK) seen->unpack_calls++;
+    else if (stage == AMPOULE_STAGE_DOWNLOAD) seen->download_calls++;
+    else if (stage != AMPOULE_STAGE_HASH_PAYLOAD) seen->other_stages++;
+    if (done > total) fail(__LINE__, "progress %llu of %llu", (unsigned long long)done,
+                           (unsigned long long)total);
+    seen->last_done = done;
+    seen->last_total = total;
+}
+
+/* Progress: the callback hears an offline install (the bundle copied out of the file, then
+ * unpacked), ending at its total, with the context it was given; cleared, it hears nothing
+ * more. Device id: made on first use, kept in the store, the same through another handle. */
+static void case_progress_and_device_id(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    struct seen seen = {0};
+    EXPECT(ampoule_store_set_progress(store, count_progress, &seen, &err), AMPOULE_OK, &err, NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(store, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    release_free(outcome.installed);
+    /* The bundle copied out of the offline file counts as its download. */
+    CHECK(seen.download_calls > 0 && seen.unpack_calls > 0 && seen.other_stages == 0);
+    CHECK(seen.last_total > 0 && seen.last_done == seen.last_total);
+    EXPECT(ampoule_store_set_progress(store, NULL, NULL, &err), AMPOULE_OK, &err, NULL);
+    int before = seen.calls;
+    EXPECT(install(store, "v2.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    release_free(outcome.installed);
+    CHECK(seen.calls == before);
+    ampoule_store foreign = {0x5254000000000001ull};
+    EXPECT(ampoule_store_set_progress(foreign, count_progress, &seen, &err),
+           AMPOULE_INVALID_HANDLE, &err, "the store handle is not a live handle");
+
+    char id[256], again[256];
+    size_t len = 0, again_len = 0;
+    EXPECT(ampoule_device_id(store, (uint8_t *)id, sizeof id, &len, &err), AMPOULE_OK, &err, NULL);
+    CHECK(len > 0 && len <= 128);
+    ampoule_store other = open_ok("camera", NULL);
+    EXPECT(ampoule_device_id(other, (uint8_t *)again, sizeof again, &again_len, &err), AMPOULE_OK,
+           &err, NULL);
+    CHECK(again_len == len && memcmp(id, again, len) == 0);
+    ampoule_store elsewhere = open_ok("another-camera", NULL);
+    EXPECT(ampoule_device_id(elsewhere, (uint8_t *)again, sizeof again, &again_len, &err),
+           AMPOULE_OK, &err, NULL);
+    CHECK(!(again_len == len && memcmp(id, again, len) == 0));
+    store_free(elsewhere);
+    store_free(other);
+    store_free(store);
+}
+
+/* Switching channels: a store that follows "stable" refuses the other channel's file until the
+ * handle opened on that channel switches it. Garbage collection while a session downloads
+ * leaves the session's file alone (the download completes and installs), and runs after. */
+static void case_switch_channel_and_gc(void) {
+    ampoule_error err;
+    ampoule_store stable = open_ok("camera", NULL);
+    ampoule_outcome outcome;
+    EXPECT(install(stable, "v1.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    release_free(outcome.installed);
+
+    /* A session midway through its download; gc runs beside it. */
+    struct buffer feed = fetch_feed();
+    const char *url = feed_url();
+    ampoule_session session = {0};
+    EXPECT(ampoule_update_begin(stable, url, strlen(url), feed.data, feed.len, (int64_t)time(NULL),
+                                &session, &err),
+           AMPOULE_OK, &err, NULL);
+    free(feed.data);
+    ampoule_step step = {0};
+    do {
+        EXPECT(ampoule_update_next(session, &step, &err), AMPOULE_OK, &err, NULL);
+        if (step.kind == AMPOULE_STEP_FETCH) {
+            struct buffer doc = {NULL, 0};
+            CHECK(http_get(session_url(session, 0), 0, 0, 0, step.max_bytes, to_buffer, &doc) ==
+                  200);
+            EXPECT(ampoule_update_provide(session, doc.data, doc.len, &err), AMPOULE_OK, &err,
+                   NULL);
+            free(doc.data);
+        }
+    } while (step.kind == AMPOULE_STEP_FETCH);
+    CHECK(step.kind == AMPOULE_STEP_DOWNLOAD && step.offset == 0);
+    struct buffer bundle = {NULL, 0};
+    CHECK(http_get(session_url(session, 0), 0, 0, 0, step.size, to_buffer, &bundle) == 200);
+    CHECK(bundle.len == step.size);
+    size_t half = bundle.len / 2;
+    EXPECT(ampoule_update_write(session, bundle.data, half, &err), AMPOULE_OK, &err, NULL);
+    size_t removed = 99;
+    EXPECT(ampoule_gc(stable, &removed, &err), AMPOULE_OK, &err, NULL);
+    CHECK(removed != 99);
+    EXPECT(ampoule_update_write(session, bundle.data + half, bundle.len - half, &err), AMPOULE_OK,
+           &err, NULL);
+    free(bundle.data);
+    EXPECT(ampoule_update_downloaded(session, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(ampoule_update_next(session, &step, &err), AMPOULE_OK, &err, NULL);
+    CHECK(step.kind == AMPOULE_STEP_DONE && step.outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(strcmp(field(step.outcome.installed, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
+    release_free(step.outcome.installed);
+    EXPECT(ampoule_session_free(session, &err), AMPOULE_OK, &err, NULL);
+
+    ampoule_store onnx = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir("camera");
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), "onnx", 4, &keys, &keys, &keys,
+                                               "2.3.0", 5, NULL, 0, (int64_t)time(NULL), &onnx,
+                                               &err),
+           AMPOULE_OK, &err, NULL);
+    EXPECT(install(onnx, "onnx.offline", &outcome, &err), AMPOULE_POLICY, &err,
+           "follows channel 'stable', not 'onnx'");
+    EXPECT(ampoule_switch_channel(onnx, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(install(onnx, "onnx.offline", &outcome, &err), AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.2.0") == 0);
+    release_free(outcome.installed);
+    EXPECT(install(stable, "v2.offline", &outcome, &err), AMPOULE_POLICY, &err,
+           "follows channel 'onnx', not 'stable'");
+
+    EXPECT(ampoule_gc(stable, NULL, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "removed is a null pointer");
+    removed = 99;
+    EXPECT(ampoule_gc(stable, &removed, &err), AMPOULE_OK, &err, NULL);
+    CHECK(removed != 99);
+    /* The current release still checks in full after the clean-up. */
+    ampoule_release current = {0};
+    EXPECT(ampoule_current(stable, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(strcmp(field(current, AMPOULE_FIELD_VERSION), "1.2.0") == 0);
+    release_free(current);
+    store_free(onnx);
+    store_free(stable);
+}
+
+/* The URL update with the library's own HTTP client (the test links a library built with
+ * `fetch`): it installs 1.1.0 from the server, reporting its progress, finds nothing newer
+ * next time, fails with AMPOULE_NETWORK on a feed the server does not have, and refuses a null
+ * URL. */
+static void case_url_update(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", "policy-fits.json");
+    struct seen seen = {0};
+    EXPECT(ampoule_store_set_progress(store, count_progress, &seen, &err), AMPOULE_OK, &err, NULL);
+    ampoule_outcome outcome;
+    const char *url = feed_url();
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    /* The library's own client reports the download, then the unpacking. */
+    CHECK(seen.download_calls > 0 && seen.unpack_calls > 0 && seen.other_stages == 0);
+    CHECK(seen.last_done == seen.last_total);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "1.1.0") == 0);
+    CHECK(strcmp(metadata(outcome.installed, "eval.top1"), "0.91") == 0);
+    release_free(outcome.installed);
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_UP_TO_DATE);
+
+    char missing[256];
+    snprintf(missing, sizeof missing, "http://%s/feeds/no-such-channel.json", server());
+    EXPECT(ampoule_update(store, missing, strlen(missing), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_NETWORK, &err, "404");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_FAILED);
+    EXPECT(ampoule_update(store, NULL, 0, (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "feed_url is empty");
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), NULL, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "out is a null pointer");
+    store_free(store);
+}
+
+/* Sessions misused: null pointers, answers to steps not asked, bytes past the size asked for,
+ * freed, double-freed and other types' handles, a session driven after its end. */
+static void case_session_misuse(void) {
+    ampoule_error err;
+    ampoule_store store = open_ok("camera", NULL);
+    struct buffer feed = fetch_feed();
+    const char *url = feed_url();
+    ampoule_session session = {0};
+    EXPECT(ampoule_update_begin(store, url, strlen(url), NULL, 0, 0, &session, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "feed is empty");
+    EXPECT(ampoule_update_begin(store, url, strlen(url), feed.data, feed.len, (int64_t)time(NULL),
+                                NULL, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "out is a null pointer");
+    ampoule_store not_a_store = {0x5345000000000001ull};
+    EXPECT(ampoule_update_begin(not_a_store, url, strlen(url), feed.data, feed.len,
+                                (int64_t)time(NULL), &session, &err),
+           AMPOULE_INVALID_HANDLE, &err, "the store handle is not a live handle");
+    EXPECT(ampoule_update_begin(store, url, strlen(url), feed.data, feed.len, (int64_t)time(NULL),
+                                &session, &err),
+           AMPOULE_OK, &err, NULL);
+    free(feed.data);
+    EXPECT(ampoule_update_next(session, NULL, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "step is a null pointer");
+    EXPECT(ampoule_update_provide(session, (const uint8_t *)"{}", 2, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "the update asked for no document");
+    EXPECT(ampoule_update_downloaded(session, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "the update asked for no download");
+    uint8_t buf[8];
+    size_t len = 0;
+    EXPECT(ampoule_update_url(session, 0, buf, sizeof buf, &len, &err), AMPOULE_INVALID_ARGUMENT,
+           &err, "no step asks for a URL now");
+
+    ampoule_step step;
+    EXPECT(ampoule_update_next(session, &step, &err), AMPOULE_OK, &err, NULL);
+    CHECK(step.kind == AMPOULE_STEP_DOWNLOAD && step.offset == 0 && step.url_count >= 1);
+    /* The digest the step names is the bundle's own SHA-256, as the signed feed lists it. */
+    CHECK(memcmp(step.sha256, (uint8_t[AMPOULE_SHA256_BYTES]){0}, AMPOULE_SHA256_BYTES) != 0);
+    EXPECT(ampoule_update_url(session, step.url_count, buf, sizeof buf, &len, &err),
+           AMPOULE_NOT_FOUND, &err, "is out of range");
+    EXPECT(ampoule_update_provide(session, (const uint8_t *)"{}", 2, &err),
+           AMPOULE_INVALID_ARGUMENT, &err, "answers a AMPOULE_STEP_FETCH step only");
+    uint8_t *junk = calloc(1, (size_t)step.size + 1);
+    CHECK(junk != NULL);
+    EXPECT(ampoule_update_write(session, junk, (size_t)step.size + 1, &err), AMPOULE_TOO_LARGE,
+           &err, "nothing was written");
+    EXPECT(ampoule_update_write(session, NULL, 4, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "bytes is a null pointer with length 4");
+    free(junk);
+    /* Not answered: the same step is asked again. */
+    ampoule_step again;
+    EXPECT(ampoule_update_next(session, &again, &err), AMPOULE_OK, &err, NULL);
+    CHECK(again.kind == AMPOULE_STEP_DOWNLOAD && again.size == step.size && again.offset == 0);
+    CHECK(memcmp(again.sha256, step.sha256, AMPOULE_SHA256_BYTES) == 0);
+    ampoule_outcome outcome;
+    EXPECT(ampoule_update_fail(session, "gave up", 7, &outcome, &err), AMPOULE_NETWORK, &err,
+           "gave up");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_FAILED);
+    EXPECT(ampoule_update_next(session, &step, &err), AMPOULE_SETTINGS, &err,
+           "this update already ended; start another");
+    CHECK(step.kind == AMPOULE_STEP_DONE && step.outcome.kind == AMPOULE_OUTCOME_FAILED);
+
+    /* Handles: the session as a store, the store as a session, freed, double-freed. */
+    ampoule_store session_as_store = {session.id};
+    ampoule_session store_as_session = {store.id};
+    ampoule_release current;
+    EXPECT(ampoule_current(session_as_store, &current, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    EXPECT(ampoule_update_next(store_as_session, &step, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the session handle is not a live handle");
+    EXPECT(ampoule_session_free(store_as_session, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    EXPECT(ampoule_session_free(session, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(ampoule_update_next(session, &step, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the session handle is not a live handle");
+    EXPECT(ampoule_session_free(session, &err), AMPOULE_INVALID_HANDLE, &err, NULL);
+    store_free(store);
+}
+
 int main(int argc, char **argv) {
     if (argc != 4) {
         fprintf(stderr, "usage: api_test CASE FIXTURES SCRATCH\n");
@@ -608,6 +1368,17 @@ int main(int argc, char **argv) {
         {"two_updates_at_once", case_two_updates_at_once},
         {"policy_document_malformed", case_policy_document_malformed},
         {"policy_document_over_caps", case_policy_document_over_caps},
+        {"policy_settings", case_policy_settings},
+        {"http_update", case_http_update},
+        {"http_resume", case_http_resume},
+        {"http_head_first", case_http_head_first},
+        {"http_tampered", case_http_tampered},
+        {"http_policy_refused", case_http_policy_refused},
+        {"session_locks_the_store", case_session_locks_the_store},
+        {"session_misuse", case_session_misuse},
+        {"url_update", case_url_update},
+        {"progress_and_device_id", case_progress_and_device_id},
+        {"switch_channel_and_gc", case_switch_channel_and_gc},
     };
     for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
         if (strcmp(cases[i].name, argv[1]) == 0) {

@@ -365,7 +365,9 @@ impl Watch {
         }
     }
 
-    /// The same watch with nothing seen: for reading the file again from its start.
+    /// The same watch with nothing seen: for reading the file again from its start (the
+    /// `fetch` driver's resume).
+    #[cfg_attr(not(feature = "fetch"), allow(dead_code))]
     pub(crate) fn restart(&self) -> Watch {
         Watch {
             records: self.records.clone(),

@@ -728,7 +728,6 @@ impl Session {
             if let Some((chunk, good, checked)) = bad_chunk {
                 // Every chunk before this one checked: keep them, and ask for the rest again.
                 file.set_len(good).map_err(|e| io("truncate", e))?;
-                file.sync_data().map_err(|e| io("flush", e))?;
                 return Err(Error::new(
                     ErrorKind::Digest,
                     format!(
@@ -737,7 +736,14 @@ impl Session {
                     ),
                 ));
             }
-            file.sync_data().map_err(|e| io("flush", e))?;
+            // Flushed so that a resume after a power cut finds what was written. With a
+            // watch it is not needed: a resume checks the kept chunks again and cuts the file
+            // where its bytes went missing, and the install reads the file from the page
+            // cache and checks it all again; the file is removed once installed, so most of
+            // its bytes never reach the disk (a phone's flash is spared 80 MB of writes).
+            if watch.is_none() {
+                file.sync_data().map_err(|e| io("flush", e))?;
+            }
             match result {
                 Err(BodyError::Refused(e)) if overrun => {
                     // Nothing this server sent can be trusted as a prefix.
@@ -792,9 +798,8 @@ impl Session {
 }
 
 /// Completes `partial`: a file of exactly `size` bytes with SHA-256 `sha256`, trying `urls`
-/// in order. Bytes
-/// already in the file are kept and the rest is asked for with a Range request; one source is
-/// tried again while its tries make progress. On success the file holds exactly the expected
+/// in order. Bytes already in the file are kept and the rest is asked for with a Range
+/// request; one source is tried again while its tries make progress. On success the file holds exactly the expected
 /// bytes. A failure keeps a correct-looking prefix for the next call, and empties the file
 /// when the bytes were proven wrong (digest) or too many.
 ///
@@ -805,7 +810,7 @@ impl Session {
 /// With `watch` (a format 2 bundle whose head checked), each chunk is checked as its last
 /// byte arrives, and kept bytes as they are read again: a chunk that does not check is cut
 /// off with what follows it, and the download goes on after the last chunk that checked,
-/// from the same source while its tries make progress, else from the next.
+/// from the same source up to `attempts` times in all, else from the next.
 ///
 /// Returns how many bytes the tries received, those fetched twice included.
 pub(crate) fn download_into(
@@ -831,10 +836,15 @@ pub(crate) fn download_into(
                 Err(e) => e,
             };
             let after = partial.file.metadata().map(|m| m.len()).unwrap_or(0);
-            // A transfer that broke off, or a chunk that did not check, after bytes that did:
-            // the same source again. A whole file proven wrong was emptied, so never.
-            let retry =
-                matches!(err.kind(), ErrorKind::Network | ErrorKind::Digest) && after > before;
+            // A transfer that broke off after bytes that came whole: the same source again.
+            // A chunk that did not check (the file was cut back to the chunks before it, after
+            // the head): the same source again too, at most `attempts` times, since a bit
+            // flipped on the way costs one chunk. A whole file proven wrong was emptied: never.
+            let retry = match err.kind() {
+                ErrorKind::Network => after > before,
+                ErrorKind::Digest => after > 0,
+                _ => false,
+            };
             if !retry || attempt == transfer.attempts {
                 failures.push(err);
                 break;
