@@ -14,6 +14,8 @@
 //!
 //! Run with `cargo bench --bench delivery`; it prints its numbers and is not part of the test
 //! suite. It needs curl, openssl, tar and zstd; /usr/bin/time (or python3) for peak memory.
+//! Each part also prints one `REPORT delivery ...` or `REPORT delivery-delta ...` line of
+//! `key=value` figures (times as `median/min/max` in seconds), which `benches/report` reads.
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -72,6 +74,18 @@ fn spread(times: &[Duration]) -> String {
     let max = times.iter().max().copied().unwrap_or_default();
     format!(
         "{:.3} ({:.3}-{:.3})",
+        median(times.to_vec()).as_secs_f64(),
+        min.as_secs_f64(),
+        max.as_secs_f64()
+    )
+}
+
+/// `median/min/max` of `times` in seconds, for the `REPORT` lines.
+fn triple(times: &[Duration]) -> String {
+    let min = times.iter().min().copied().unwrap_or_default();
+    let max = times.iter().max().copied().unwrap_or_default();
+    format!(
+        "{:.4}/{:.4}/{:.4}",
         median(times.to_vec()).as_secs_f64(),
         min.as_secs_f64(),
         max.as_secs_f64()
@@ -367,6 +381,17 @@ fn main() -> Result<()> {
         secs(&ours_cpu) / secs(&theirs_cpu)
     );
     println!("  load average at the end {}", load().trim());
+    println!(
+        "REPORT delivery runs={runs} update={} plain={} full_ref={} update_cpu={:.3} \
+         plain_cpu={:.3} full_ref_cpu={:.3} update_rss_mib={:.1} target_ratio=0.8",
+        triple(&ours),
+        triple(&plain),
+        triple(&theirs),
+        secs(&ours_cpu),
+        secs(&plain_cpu),
+        secs(&theirs_cpu),
+        rss.iter().max().map_or(0.0, |&kib| kib as f64 / 1024.0)
+    );
     match rss.iter().max() {
         Some(kib) => println!(
             "  peak RSS of ampoule update: {:.1} MiB (max of {runs} runs; the model is {:.1} MiB)",
@@ -541,6 +566,17 @@ fn delta_update(dir: &Path, key: &ed25519_dalek::SigningKey, trusted: &TrustedKe
     println!(
         "  ratio delta / full bundle: {:.2}",
         median(times[0].clone()).as_secs_f64() / median(times[1].clone()).as_secs_f64()
+    );
+    println!(
+        "REPORT delivery-delta runs={} delta={} full={} delta_bytes={} full_bytes={} \
+         delta_rss_mib={:.1} full_rss_mib={:.1}",
+        runs(),
+        triple(&times[0]),
+        triple(&times[1]),
+        bytes[0],
+        bytes[1],
+        rss[0] as f64 / 1024.0,
+        rss[1] as f64 / 1024.0
     );
     for server in servers {
         server.shutdown()?;

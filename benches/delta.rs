@@ -11,8 +11,9 @@
 //!
 //! Applying runs in a child process (this bench program started again with `apply-child`),
 //! which reads its own peak resident memory (VmHWM in /proc/self/status) after applying: the
-//! whole process, the library's buffers and the program around them. The bench never fails;
-//! it reports.
+//! whole process, the library's buffers and the program around them (the largest of the runs
+//! is judged). The bench never fails; it reports. Each case also prints one `REPORT delta
+//! key=value ...` line (times and memory as `median/min/max`), which `benches/report` reads.
 
 use std::fs::{self, File};
 use std::path::Path;
@@ -57,6 +58,13 @@ fn timed(dir: &Path, program: &str, args: &[&str]) -> (f64, String) {
 fn median(mut xs: Vec<f64>) -> f64 {
     xs.sort_by(f64::total_cmp);
     xs[xs.len() / 2]
+}
+
+/// `median/min/max` of `xs`, for the `REPORT` lines.
+fn triple(xs: &[f64]) -> String {
+    let min = xs.iter().copied().fold(f64::INFINITY, f64::min);
+    let max = xs.iter().copied().fold(0.0, f64::max);
+    format!("{:.4}/{min:.4}/{max:.4}", median(xs.to_vec()))
 }
 
 fn remove(path: &Path) {
@@ -191,76 +199,72 @@ fn main() {
     ] {
         println!("\n== {case}");
         synth::write_head_model(&dir.join("new.bin"), model_bytes, classes, 4).expect("new model");
-        let pack_secs = median(
-            (0..runs)
-                .map(|_| pack("new.bin", "1.1.0", "new.ampoule"))
-                .collect(),
-        );
-        let verify_secs = median(
-            (0..runs)
-                .map(|_| {
-                    remove(&dir.join("full"));
-                    timed(
-                        dir,
-                        AMPOULE,
-                        &[
-                            "verify",
-                            "new.ampoule",
-                            "--trust",
-                            "k.public.pem",
-                            "--app-version",
-                            "2.1.0",
-                            "--installed",
-                            "1.0.0",
-                            "--extract",
-                            "full",
-                        ],
-                    )
-                    .0
-                })
-                .collect(),
-        );
-        let make_secs = median(
-            (0..runs)
-                .map(|_| {
-                    remove(&dir.join("d.ampoule-delta"));
-                    timed(
-                        dir,
-                        AMPOULE,
-                        &[
-                            "delta",
-                            "--from",
-                            "old.ampoule",
-                            "new.ampoule",
-                            "-o",
-                            "d.ampoule-delta",
-                        ],
-                    )
-                    .0
-                })
-                .collect(),
-        );
-        let mut peak_kib = 0u64;
-        let apply_secs = median(
-            (0..runs)
-                .map(|_| {
-                    remove(&dir.join("rebuilt"));
-                    let (secs, out) = timed(
-                        dir,
-                        me,
-                        &[
-                            "apply-child",
-                            "d.ampoule-delta",
-                            "base",
-                            "rebuilt",
-                            "k.public.pem",
-                        ],
-                    );
-                    peak_kib = peak_kib.max(out.trim().parse().expect("VmHWM in KiB"));
-                    secs
-                })
-                .collect(),
-        );
+        let pack_all: Vec<f64> = (0..runs)
+            .map(|_| pack("new.bin", "1.1.0", "new.ampoule"))
+            .collect();
+        let pack_secs = median(pack_all.clone());
+        let verify_all: Vec<f64> = (0..runs)
+            .map(|_| {
+                remove(&dir.join("full"));
+                timed(
+                    dir,
+                    AMPOULE,
+                    &[
+                        "verify",
+                        "new.ampoule",
+                        "--trust",
+                        "k.public.pem",
+                        "--app-version",
+                        "2.1.0",
+                        "--installed",
+                        "1.0.0",
+                        "--extract",
+                        "full",
+                    ],
+                )
+                .0
+            })
+            .collect();
+        let verify_secs = median(verify_all.clone());
+        let make_all: Vec<f64> = (0..runs)
+            .map(|_| {
+                remove(&dir.join("d.ampoule-delta"));
+                timed(
+                    dir,
+                    AMPOULE,
+                    &[
+                        "delta",
+                        "--from",
+                        "old.ampoule",
+                        "new.ampoule",
+                        "-o",
+                        "d.ampoule-delta",
+                    ],
+                )
+                .0
+            })
+            .collect();
+        let make_secs = median(make_all.clone());
+        let mut peaks = Vec::new();
+        let apply_all: Vec<f64> = (0..runs)
+            .map(|_| {
+                remove(&dir.join("rebuilt"));
+                let (secs, out) = timed(
+                    dir,
+                    me,
+                    &[
+                        "apply-child",
+                        "d.ampoule-delta",
+                        "base",
+                        "rebuilt",
+                        "k.public.pem",
+                    ],
+                );
+                peaks.push(out.trim().parse::<f64>().expect("VmHWM in KiB") / 1024.0);
+                secs
+            })
+            .collect();
+        let apply_secs = median(apply_all.clone());
         for name in ["model.bin", "labels.txt"] {
             assert!(
                 fs::read(dir.join("rebuilt").join(name)).ok()
@@ -308,7 +312,7 @@ fn main() {
             "       apply {apply_secs:.3} s vs verify --extract {verify_secs:.3} s ({:.2}x)",
             apply_secs / verify_secs
         );
-        let peak = peak_kib as f64 / 1024.0;
+        let peak = peaks.iter().copied().fold(0.0, f64::max);
         println!(
             "memory apply peak RSS {peak:.1} MiB (whole process; target <= {TARGET_RSS_MIB} MiB: {})",
             if peak <= TARGET_RSS_MIB {
@@ -316,6 +320,17 @@ fn main() {
             } else {
                 "MISS"
             }
+        );
+        println!(
+            "REPORT delta scale={scale} runs={runs} classes={classes} delta_bytes={delta} \
+             patch_bytes={patch} floor_bytes={floor} bundle_bytes={bundle} make={} pack={} \
+             apply={} verify={} zstd_make={zstd_make:.4} apply_rss_mib={} \
+             target_rss_mib={TARGET_RSS_MIB}",
+            triple(&make_all),
+            triple(&pack_all),
+            triple(&apply_all),
+            triple(&verify_all),
+            triple(&peaks)
         );
     }
 }

@@ -8,16 +8,18 @@
 //! too, and flushes the unpacked files to disk), which is why its time is worth watching.
 //!
 //! Settings come from the environment: `AMPOULE_BENCH_SCALE` (the model is 84 MiB times this,
-//! default 1) and `AMPOULE_BENCH_RUNS` (runs of each side, default 7). The report gives each
+//! default 1), `AMPOULE_BENCH_RUNS` (runs of each side, default 7) and `AMPOULE_BENCH_LEVELS`
+//! (0 skips the table of zstd levels that follows a run at 1x). The report gives each
 //! side's median with its minimum and maximum, and judges the targets on the medians (a
 //! shared machine makes single runs spread). The page cache cannot be dropped without root, so
 //! both sides run warm: before every timed run, dirty pages are flushed (`sync`) and the run's
 //! inputs are read once. Runs of the two sides alternate.
 //!
-//! Peak memory is the child's VmHWM from /proc, sampled every millisecond during one extra,
-//! untimed run (the workspace forbids `unsafe`, which `wait4` would need). It is a lower
+//! Peak memory is the child's VmHWM from /proc, sampled every millisecond during three extra,
+//! untimed runs (the largest is judged) (the workspace forbids `unsafe`, which `wait4` would need). It is a lower
 //! bound that misses only growth within the last millisecond before exit. The bench never
-//! fails; it reports.
+//! fails; it reports. Its figures are also printed on one `REPORT pipeline key=value ...` line
+//! (times as `median/min/max` in seconds), which `benches/report` reads.
 
 use std::fs;
 use std::io::Read;
@@ -36,6 +38,8 @@ const MIB: f64 = 1024.0 * 1024.0;
 /// times relative to the pipeline's, and the verifier's peak memory, at 1x and at 10x.
 const TARGET_RATIO: f64 = 0.7;
 const TARGET_RSS_MIB: f64 = 16.0;
+/// Untimed runs of each side whose peak memory is sampled.
+const RSS_RUNS: usize = 3;
 
 fn env_number(name: &str, default: u64) -> u64 {
     match std::env::var(name) {
@@ -200,6 +204,11 @@ impl Series {
         format!("{:.3} ({:.3}-{:.3})", self.median(), self.min(), self.max())
     }
 
+    /// `median/min/max`, for the `REPORT` line.
+    fn triple(&self) -> String {
+        format!("{:.4}/{:.4}/{:.4}", self.median(), self.min(), self.max())
+    }
+
     /// The median CPU time.
     fn cpu(&self) -> f64 {
         let mut cpu: Vec<f64> = self.runs.iter().map(|r| r.cpu).collect();
@@ -320,13 +329,17 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
             .runs
             .push(bash(dir, &pipeline_verify_fsync));
     }
-    // Memory is sampled in one more run of each, so that the sampling never slows a timed run.
-    remove(&dir.join("species.ampoule"));
-    settle(dir, &inputs);
-    let pack_rss = run(dir, AMPOULE, &pack_args, true).peak_rss;
-    remove(&dir.join("out-ampoule"));
-    settle(dir, &["species.ampoule"]);
-    let verify_rss = run(dir, AMPOULE, &verify_args, true).peak_rss;
+    // Memory is sampled in three more runs of each, so that the sampling never slows a timed
+    // run; the largest peak is the one judged.
+    let (mut pack_rss, mut verify_rss) = (Vec::new(), Vec::new());
+    for _ in 0..RSS_RUNS {
+        remove(&dir.join("species.ampoule"));
+        settle(dir, &inputs);
+        pack_rss.push(run(dir, AMPOULE, &pack_args, true).peak_rss.unwrap_or(0) as f64 / MIB);
+        remove(&dir.join("out-ampoule"));
+        settle(dir, &["species.ampoule"]);
+        verify_rss.push(run(dir, AMPOULE, &verify_args, true).peak_rss.unwrap_or(0) as f64 / MIB);
+    }
 
     let model = dir.join("model.bin");
     assert!(
@@ -343,8 +356,13 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
     let pipe_payload = len("payload.tar.zst");
     let pack_ratio = pack.median() / pack_pipe.median();
     let verify_ratio = verify.median() / verify_pipe.median();
-    let verify_rss = verify_rss.unwrap_or(0) as f64 / MIB;
-    let pack_rss = pack_rss.unwrap_or(0) as f64 / MIB;
+    let mib_spread = |peaks: &[f64]| {
+        let mut p = peaks.to_vec();
+        p.sort_by(f64::total_cmp);
+        (p[p.len() / 2], p[0], p[p.len() - 1])
+    };
+    let (verify_rss_median, verify_rss_min, verify_rss) = mib_spread(&verify_rss);
+    let (pack_rss_median, pack_rss_min, pack_rss) = mib_spread(&pack_rss);
 
     println!();
     println!("medians, with min-max, in seconds; ratios of medians");
@@ -391,7 +409,7 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
     );
     println!(
         "{:<28} {:>21} {:>21} {:>6}  <= {TARGET_RSS_MIB:.0} MiB  {}",
-        "verify peak RSS (MiB)",
+        "verify peak RSS (MiB), max",
         format!("{verify_rss:.1}"),
         "-",
         "",
@@ -399,7 +417,7 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
     );
     println!(
         "{:<28} {:>21} {:>21}",
-        "pack peak RSS (MiB)",
+        "pack peak RSS (MiB), max",
         format!("{pack_rss:.1}"),
         "-"
     );
@@ -432,8 +450,24 @@ zstd -d -q -c payload.tar.zst | tar xf - -C out-pipeline";
             .collect::<Vec<_>>()
             .join(" ")
     );
+    println!(
+        "REPORT pipeline scale={scale} runs={runs} pack={} pack_ref={} verify={} verify_ref={} \
+         verify_ref_fsync={} pack_cpu={:.3} pack_ref_cpu={:.3} verify_cpu={:.3} \
+         verify_ref_cpu={:.3} verify_rss_mib={verify_rss_median:.1}/{verify_rss_min:.1}/{verify_rss:.1} \
+         pack_rss_mib={pack_rss_median:.1}/{pack_rss_min:.1}/{pack_rss:.1} \
+         target_ratio={TARGET_RATIO} target_rss_mib={TARGET_RSS_MIB}",
+        pack.triple(),
+        pack_pipe.triple(),
+        verify.triple(),
+        verify_pipe.triple(),
+        verify_pipe_fsync.triple(),
+        pack.cpu(),
+        pack_pipe.cpu(),
+        verify.cpu(),
+        verify_pipe.cpu()
+    );
     // The level table is about the data, not the scale: it runs at 1x only.
-    if scale == 1 {
+    if scale == 1 && env_number("AMPOULE_BENCH_LEVELS", 1) != 0 {
         levels(&dir.join("model.bin"), runs);
     }
 }
