@@ -579,7 +579,8 @@ fn resume_state(
         len = 0;
     }
     let mut buf = vec![0u8; 256 * 1024];
-    // Twice at most: after a cut, every chunk left checked.
+    // Each cut shortens the file, so this ends; without a change meanwhile, after one cut
+    // every chunk left checks.
     loop {
         file.seek(SeekFrom::Start(0)).map_err(|e| io("read", e))?;
         let mut hasher = Hasher::new();

@@ -360,7 +360,10 @@ impl<'d> Session<'d> {
 
     /// Says the bundle of the last [`Next::Download`] is complete at `path` (normally
     /// [`Download::path`]). Its size and SHA-256 are checked before anything else reads it,
-    /// and a bundle in the download directory is removed once installed or refused.
+    /// and a bundle in the download directory is removed once installed or refused. A file in
+    /// the download directory whose size or SHA-256 is wrong keeps the chunks before the
+    /// first one that does not check against the bundle's signed chunk list (format 2), and
+    /// the next update asks only for the rest.
     ///
     /// Called when nothing was asked for (twice for one download, say), it changes nothing.
     pub fn downloaded(&mut self, path: &Path) {
