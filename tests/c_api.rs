@@ -385,6 +385,11 @@ fn issue14_c_the_url_update_installs_over_http_with_the_library_s_own_client() {
 }
 
 #[test]
+fn issue14_c_the_url_update_keeps_its_limits_and_stops_when_cancelled() {
+    http_case("url_limits_and_cancel");
+}
+
+#[test]
 fn issue14_c_progress_reaches_the_app_s_callback_and_the_device_id_is_kept() {
     case("progress_and_device_id");
 }

@@ -22,7 +22,7 @@
  *   6. ampoule_rollback()                      when the app's own health check fails
  *   7. ampoule_release_free(), ampoule_store_free()
  * Beside them: ampoule_store_set_progress(), ampoule_device_id(), ampoule_switch_channel(),
- * ampoule_gc().
+ * ampoule_gc(), and for ampoule_update(): ampoule_store_set_transfer(), ampoule_update_cancel().
  *
  * Status and errors. Every call that can fail returns an int32_t status (AMPOULE_OK is 0) and
  * fills the ampoule_error the caller passes (which may be NULL when only the status is wanted):
@@ -419,9 +419,10 @@ int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
 
 /* Runs a whole update with the library's own HTTP(S) client: fetches the channel's feed at
  * feed_url (https:// or http://), whatever the session asks for, and the bundle (resuming a
- * partial download), with the library's default limits (connect 20 s, each read 30 s, each
- * request 1 h in all, at least 256 bytes/s over 60 s, 3 tries per source; HTTPS trusts the
- * public web PKI roots built in). *out receives the outcome and the status is
+ * partial download), with the limits ampoule_store_set_transfer set on this handle, or the
+ * library's defaults (connect 20 s, each read 30 s, each request 1 h in all, at least 256
+ * bytes/s over 60 s, 3 tries per source; HTTPS trusts the public web PKI roots built in).
+ * ampoule_update_cancel, from another thread, stops it (AMPOULE_CANCELLED). *out receives the outcome and the status is
  * ampoule_install_offline's (AMPOULE_NETWORK for a transfer that failed). Only in libraries
  * built with the cargo feature `fetch`; others return AMPOULE_UNSUPPORTED (outcome FAILED), and
  * the app drives ampoule_update_begin with its own HTTP stack instead. Concurrency: any
@@ -429,6 +430,35 @@ int32_t ampoule_session_free(ampoule_session session, ampoule_error *err);
  * update runs), and blocks the calling thread until the update ends. */
 int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_url_len,
                        int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
+
+/* Limits of ampoule_update's transfers. A field left 0 keeps the library's default, given
+ * beside it; a zeroed struct restores every default. */
+typedef struct ampoule_transfer {
+    uint32_t connect_timeout_ms;     /* opening the TCP connection: 20000 */
+    uint32_t read_timeout_ms;        /* the response head, then each piece of the body: 30000 */
+    uint64_t total_timeout_ms;       /* one request in all, body included: 3600000 */
+    uint64_t min_rate_bytes_per_sec; /* fewer bytes/s than this on average over */
+    uint32_t rate_window_ms;         /* any window this long ends the transfer: 256 over 60000 */
+    uint32_t attempts_per_source;    /* tries of one source while each makes progress: 3 */
+} ampoule_transfer;
+
+/* Sets the limits of the ampoule_update calls made through this store handle from now on (a
+ * weak cellular link wants a long read timeout and few tries; a user waiting at a screen, a
+ * short total). limits is copied; NULL is AMPOULE_INVALID_ARGUMENT. The step-by-step session
+ * uses the app's own HTTP stack and its limits, not these. Concurrency: any thread, any time;
+ * an ampoule_update already running keeps the limits it started with. */
+int32_t ampoule_store_set_transfer(ampoule_store store, const ampoule_transfer *limits,
+                                   ampoule_error *err);
+
+/* Asks every ampoule_update running now through this store handle to stop. Each one stops
+ * before its next request or between two pieces of a body, and returns AMPOULE_CANCELLED
+ * (outcome FAILED): the running model stays, and what arrived of the bundle stays in the store
+ * for the next update to resume. An update already installing finishes its install. It does
+ * not reach updates through other handles, nor ones that start after this call. *running, when
+ * running is not NULL, receives how many updates were asked (0: none was running).
+ * Concurrency: any thread, any time, meant for a thread other than the update's (or its
+ * progress callback). */
+int32_t ampoule_update_cancel(ampoule_store store, size_t *running, ampoule_error *err);
 
 #ifdef __cplusplus
 }

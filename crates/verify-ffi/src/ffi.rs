@@ -56,6 +56,62 @@ pub struct AmpouleRelease {
     pub id: u64,
 }
 
+/// Limits of `ampoule_update`'s transfers (`ampoule_transfer`): a field left 0 keeps the
+/// library's default ([`ampoule_verify::Transfer`]'s).
+#[repr(C)]
+#[derive(Debug, Clone, Copy, Default)]
+pub struct AmpouleTransfer {
+    pub connect_timeout_ms: u32,
+    pub read_timeout_ms: u32,
+    pub total_timeout_ms: u64,
+    pub min_rate_bytes_per_sec: u64,
+    pub rate_window_ms: u32,
+    pub attempts_per_source: u32,
+}
+
+impl AmpouleTransfer {
+    /// The library's transfer settings with these limits applied over its defaults.
+    #[cfg(feature = "fetch")]
+    fn apply(&self, mut transfer: ampoule_verify::Transfer) -> ampoule_verify::Transfer {
+        use std::time::Duration;
+        let ms = |v: u64| Duration::from_millis(v);
+        if self.connect_timeout_ms > 0 {
+            transfer = transfer.connect_timeout(ms(self.connect_timeout_ms.into()));
+        }
+        if self.read_timeout_ms > 0 {
+            transfer = transfer.read_timeout(ms(self.read_timeout_ms.into()));
+        }
+        if self.total_timeout_ms > 0 {
+            transfer = transfer.total_timeout(ms(self.total_timeout_ms));
+        }
+        if self.min_rate_bytes_per_sec > 0 || self.rate_window_ms > 0 {
+            let defaults = AmpouleTransfer::DEFAULTS;
+            let pick = |v: u64, default: u64| if v > 0 { v } else { default };
+            transfer = transfer.min_rate(
+                pick(self.min_rate_bytes_per_sec, defaults.min_rate_bytes_per_sec),
+                ms(pick(
+                    self.rate_window_ms.into(),
+                    defaults.rate_window_ms.into(),
+                )),
+            );
+        }
+        if self.attempts_per_source > 0 {
+            transfer = transfer.attempts_per_source(self.attempts_per_source);
+        }
+        transfer
+    }
+
+    /// The library's defaults, as ampoule.h states them.
+    pub const DEFAULTS: AmpouleTransfer = AmpouleTransfer {
+        connect_timeout_ms: 20_000,
+        read_timeout_ms: 30_000,
+        total_timeout_ms: 3_600_000,
+        min_rate_bytes_per_sec: 256,
+        rate_window_ms: 60_000,
+        attempts_per_source: 3,
+    };
+}
+
 /// The keys pinned for one role (`ampoule_role_keys`).
 #[repr(C)]
 pub struct AmpouleRoleKeys {
@@ -931,15 +987,21 @@ pub unsafe extern "C" fn ampoule_session_free(
     })
 }
 
-/// The URL update, over HTTP(S) with the library's own client and its default limits.
+/// The URL update, over HTTP(S) with the library's own client, the handle's transfer limits
+/// and a cancel flag `ampoule_update_cancel` can set.
 #[cfg(feature = "fetch")]
 fn url_update(
     device: &Device,
-    progress: Arc<handles::ProgressSlot>,
+    slots: &handles::StoreSlots,
     feed_url: &str,
     now: Timestamp,
 ) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
-    let transfer = ampoule_verify::Transfer::new().on_progress(reporter(progress));
+    let limits = *handles::lock(&slots.transfer);
+    let running = slots.start();
+    let transfer = limits
+        .apply(ampoule_verify::Transfer::new())
+        .on_progress(reporter(slots.progress.clone()))
+        .cancel_when(running.flag.clone());
     outcome_of(device.update(feed_url, &transfer, now).outcome)
 }
 
@@ -947,7 +1009,7 @@ fn url_update(
 #[cfg(not(feature = "fetch"))]
 fn url_update(
     _device: &Device,
-    _progress: Arc<handles::ProgressSlot>,
+    _slots: &handles::StoreSlots,
     _feed_url: &str,
     _now: Timestamp,
 ) -> Result<(AmpouleOutcome, Result<(), Failure>), Failure> {
@@ -987,8 +1049,8 @@ pub unsafe extern "C" fn ampoule_update(
             return Err(Failure::argument("out is a null pointer"));
         }
         let device = handles::store(store.id)?;
-        let progress = handles::progress(store.id)?;
-        let (outcome, result) = url_update(&device, progress, feed_url, time(now_unix)?)?;
+        let slots = handles::slots(store.id)?;
+        let (outcome, result) = url_update(&device, &slots, feed_url, time(now_unix)?)?;
         // SAFETY: `out` is not null and is the caller's writable `ampoule_outcome`.
         unsafe { raw::put(out, outcome, "out") }?;
         result
@@ -1009,10 +1071,56 @@ pub unsafe extern "C" fn ampoule_store_set_progress(
     err: *mut AmpouleError,
 ) -> i32 {
     call("ampoule_store_set_progress", err, || {
-        let slot = handles::progress(store.id)?;
-        *slot.lock().unwrap_or_else(PoisonError::into_inner) =
-            progress.map(|function| Callback::new(function, context));
+        let slots = handles::slots(store.id)?;
+        *handles::lock(&slots.progress) = progress.map(|function| Callback::new(function, context));
         Ok(())
+    })
+}
+
+/// Sets the limits of this handle's `ampoule_update` transfers; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function: `limits` is null or the caller's readable
+/// `ampoule_transfer`.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_store_set_transfer(
+    store: AmpouleStore,
+    limits: *const AmpouleTransfer,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_store_set_transfer", err, || {
+        if limits.is_null() {
+            return Err(Failure::argument(
+                "limits is a null pointer: pass an ampoule_transfer, zeroed for the defaults",
+            ));
+        }
+        // SAFETY: `limits` is not null and, by the header's contract, points at the caller's
+        // readable `ampoule_transfer`; the struct is plain integers, so any bytes are a value.
+        let limits = unsafe { *limits };
+        *handles::lock(&handles::slots(store.id)?.transfer) = limits;
+        Ok(())
+    })
+}
+
+/// Asks the `ampoule_update` calls running on this handle to stop; see ampoule.h.
+///
+/// # Safety
+///
+/// The header's contract for this function.
+#[unsafe(no_mangle)]
+pub unsafe extern "C" fn ampoule_update_cancel(
+    store: AmpouleStore,
+    running: *mut usize,
+    err: *mut AmpouleError,
+) -> i32 {
+    call("ampoule_update_cancel", err, || {
+        let cancelled = handles::slots(store.id)?.cancel();
+        if running.is_null() {
+            return Ok(());
+        }
+        // SAFETY: `running` is not null and is the caller's writable `size_t`.
+        unsafe { raw::put(running, cancelled, "running") }
     })
 }
 

@@ -10,10 +10,12 @@
 //! and later calls are refused.
 
 use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex, MutexGuard, PoisonError};
 
 use ampoule_verify::{Device, Release};
 
+use crate::ffi::AmpouleTransfer;
 use crate::raw::Callback;
 use crate::session::UpdateSession;
 use crate::status::Failure;
@@ -29,10 +31,67 @@ const SERIAL_BITS: u32 = 48;
 /// A store's progress callback, which `ampoule_store_set_progress` sets and its updates call.
 pub(crate) type ProgressSlot = Mutex<Option<Callback>>;
 
+/// What a store handle keeps beside its store: the progress callback, the limits
+/// `ampoule_store_set_transfer` set for `ampoule_update`, and the cancel flag of each
+/// `ampoule_update` running on this handle, which `ampoule_update_cancel` sets.
+pub(crate) struct StoreSlots {
+    pub(crate) progress: Arc<ProgressSlot>,
+    pub(crate) transfer: Mutex<AmpouleTransfer>,
+    running: Mutex<Vec<Arc<AtomicBool>>>,
+}
+
+/// The cancel flag of one running `ampoule_update`, registered with its store handle until
+/// dropped.
+#[cfg_attr(not(feature = "fetch"), allow(dead_code))]
+pub(crate) struct Running<'a> {
+    slots: &'a StoreSlots,
+    pub(crate) flag: Arc<AtomicBool>,
+}
+
+impl Drop for Running<'_> {
+    fn drop(&mut self) {
+        lock(&self.slots.running).retain(|flag| !Arc::ptr_eq(flag, &self.flag));
+    }
+}
+
+/// Locks one of a handle's slots. A panic while one was held (caught at the boundary) leaves
+/// its value whole: every change to a slot is one assignment or one push or removal.
+pub(crate) fn lock<T>(slot: &Mutex<T>) -> MutexGuard<'_, T> {
+    slot.lock().unwrap_or_else(PoisonError::into_inner)
+}
+
+impl StoreSlots {
+    pub(crate) fn new(progress: Arc<ProgressSlot>) -> StoreSlots {
+        StoreSlots {
+            progress,
+            transfer: Mutex::new(AmpouleTransfer::default()),
+            running: Mutex::new(Vec::new()),
+        }
+    }
+
+    /// Registers the cancel flag of an `ampoule_update` that starts now.
+    #[cfg_attr(not(feature = "fetch"), allow(dead_code))]
+    pub(crate) fn start(&self) -> Running<'_> {
+        let flag = Arc::new(AtomicBool::new(false));
+        lock(&self.running).push(flag.clone());
+        Running { slots: self, flag }
+    }
+
+    /// Sets the cancel flag of every `ampoule_update` running on this handle, and says how
+    /// many there were.
+    pub(crate) fn cancel(&self) -> usize {
+        let running = lock(&self.running);
+        for flag in running.iter() {
+            flag.store(true, Ordering::Relaxed);
+        }
+        running.len()
+    }
+}
+
 /// One live object.
 #[derive(Clone)]
 enum Entry {
-    Store(Arc<Device>, Arc<ProgressSlot>),
+    Store(Arc<Device>, Arc<StoreSlots>),
     Release(Arc<Release>),
     Session(Arc<UpdateSession>),
 }
@@ -86,7 +145,10 @@ fn remove(id: u64, tag: u64) -> bool {
 
 /// Registers a store, with the progress slot its app reports to, and returns its handle.
 pub(crate) fn add_store(device: Device, progress: Arc<ProgressSlot>) -> Result<u64, Failure> {
-    add(STORE_TAG, Entry::Store(Arc::new(device), progress))
+    add(
+        STORE_TAG,
+        Entry::Store(Arc::new(device), Arc::new(StoreSlots::new(progress))),
+    )
 }
 
 /// Registers a release and returns its handle.
@@ -107,10 +169,11 @@ pub fn store(id: u64) -> Result<Arc<Device>, Failure> {
     }
 }
 
-/// The progress slot of the store a handle names.
-pub(crate) fn progress(id: u64) -> Result<Arc<ProgressSlot>, Failure> {
+/// The slots (progress callback, transfer limits, running updates) of the store a handle
+/// names.
+pub(crate) fn slots(id: u64) -> Result<Arc<StoreSlots>, Failure> {
     match get(id, STORE_TAG) {
-        Some(Entry::Store(_, slot)) => Ok(slot),
+        Some(Entry::Store(_, slots)) => Ok(slots),
         _ => Err(Failure::handle("the store handle")),
     }
 }

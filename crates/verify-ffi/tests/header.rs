@@ -367,8 +367,8 @@ fn readme_c_examples_compile_against_the_header() {
         .collect();
     assert_eq!(
         examples.len(),
-        2,
-        "the offline install and the step-by-step update"
+        3,
+        "the offline install, the step-by-step update, and the URL update's limits and cancel"
     );
     for example in examples {
         let mut cc = std::process::Command::new("cc")

@@ -1263,6 +1263,119 @@ static void case_url_update(void) {
     store_free(store);
 }
 
+/* A listening socket on a free port of 127.0.0.1 that never answers: connections open (the
+ * kernel's backlog accepts them) and then hear nothing. */
+static int silent_listener(int *port) {
+    int fd = socket(AF_INET, SOCK_STREAM, 0);
+    CHECK(fd >= 0);
+    struct sockaddr_in addr = {0};
+    addr.sin_family = AF_INET;
+    addr.sin_addr.s_addr = htonl(INADDR_LOOPBACK);
+    CHECK(bind(fd, (struct sockaddr *)&addr, sizeof addr) == 0);
+    CHECK(listen(fd, 16) == 0);
+    socklen_t len = sizeof addr;
+    CHECK(getsockname(fd, (struct sockaddr *)&addr, &len) == 0);
+    *port = ntohs(addr.sin_port);
+    return fd;
+}
+
+/* What the cancelling progress callback saw. */
+struct canceller {
+    ampoule_store store;
+    int download_calls;
+    uint64_t first_done;
+    int32_t cancel_status;
+    size_t running;
+};
+
+/* On the first download report, asks the update that reports to stop (from its own thread,
+ * as an app's cancel button would from another). */
+static void cancel_on_download(void *context, int32_t stage, uint64_t done, uint64_t total) {
+    (void)total;
+    struct canceller *c = context;
+    if (stage != AMPOULE_STAGE_DOWNLOAD) return;
+    if (c->download_calls++ == 0) {
+        c->first_done = done;
+        if (c->cancel_status < 0) {
+            ampoule_error err;
+            c->cancel_status = ampoule_update_cancel(c->store, &c->running, &err);
+        }
+    }
+}
+
+/* The URL update's limits and its cancel (`fetch`). Limits: against a server that accepts the
+ * connection and never answers, a 200 ms read timeout and one try give up at once with
+ * AMPOULE_NETWORK, where the defaults (connect 20 s and read 30 s, three tries) would wait
+ * minutes. Cancel: asked during the download of the large bundle, the update stops with
+ * AMPOULE_CANCELLED and nothing installed; the next update resumes from the bytes kept (its first
+ * report starts above zero) and installs. Misuse: a null limits, a foreign handle. */
+static void case_url_limits_and_cancel(void) {
+    ampoule_error err;
+    ampoule_outcome outcome;
+    ampoule_store store = {0};
+    ampoule_role_keys keys = {key, sizeof key, 1};
+    const char *dir = store_dir("camera");
+    channel = "large";
+    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), channel, strlen(channel), &keys,
+                                               &keys, &keys, "2.3.0", 5, NULL, 0,
+                                               (int64_t)time(NULL), &store, &err),
+           AMPOULE_OK, &err, NULL);
+
+    int port = 0;
+    int silent = silent_listener(&port);
+    char stalled[128];
+    snprintf(stalled, sizeof stalled, "http://127.0.0.1:%d/feeds/large.json", port);
+    ampoule_transfer quick = {0};
+    quick.connect_timeout_ms = 200;
+    quick.read_timeout_ms = 200;
+    quick.attempts_per_source = 1;
+    EXPECT(ampoule_store_set_transfer(store, &quick, &err), AMPOULE_OK, &err, NULL);
+    time_t started = time(NULL);
+    EXPECT(ampoule_update(store, stalled, strlen(stalled), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_NETWORK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_FAILED);
+    /* Not a timing of the library: the defaults would take 50 s or more here. */
+    CHECK(time(NULL) - started < 10);
+    close(silent);
+    EXPECT(ampoule_store_set_transfer(store, NULL, &err), AMPOULE_INVALID_ARGUMENT, &err,
+           "limits is a null pointer");
+    ampoule_store foreign = {0x5254000000000001ull};
+    EXPECT(ampoule_store_set_transfer(foreign, &quick, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the store handle is not a live handle");
+    ampoule_transfer defaults = {0};
+    EXPECT(ampoule_store_set_transfer(store, &defaults, &err), AMPOULE_OK, &err, NULL);
+
+    /* Nothing runs: a cancel asks no one, and the next update is not cancelled by it. */
+    size_t running = 99;
+    EXPECT(ampoule_update_cancel(store, &running, &err), AMPOULE_OK, &err, NULL);
+    CHECK(running == 0);
+    EXPECT(ampoule_update_cancel(store, NULL, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(ampoule_update_cancel(foreign, NULL, &err), AMPOULE_INVALID_HANDLE, &err,
+           "the store handle is not a live handle");
+
+    const char *url = feed_url();
+    struct canceller c = {store, 0, 0, -1, 0};
+    EXPECT(ampoule_store_set_progress(store, cancel_on_download, &c, &err), AMPOULE_OK, &err, NULL);
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_CANCELLED, &err, "cancelled");
+    CHECK(outcome.kind == AMPOULE_OUTCOME_FAILED);
+    CHECK(c.cancel_status == AMPOULE_OK && c.running == 1);
+    ampoule_release current = {1};
+    EXPECT(ampoule_current(store, &current, &err), AMPOULE_OK, &err, NULL);
+    CHECK(current.id == 0);
+
+    struct canceller again = {store, 0, 0, AMPOULE_OK, 0};
+    EXPECT(ampoule_store_set_progress(store, cancel_on_download, &again, &err), AMPOULE_OK, &err,
+           NULL);
+    EXPECT(ampoule_update(store, url, strlen(url), (int64_t)time(NULL), &outcome, &err),
+           AMPOULE_OK, &err, NULL);
+    CHECK(outcome.kind == AMPOULE_OUTCOME_INSTALLED);
+    CHECK(again.download_calls > 0 && again.first_done > 0);
+    CHECK(strcmp(field(outcome.installed, AMPOULE_FIELD_VERSION), "2.9.0") == 0);
+    release_free(outcome.installed);
+    store_free(store);
+}
+
 /* Sessions misused: null pointers, answers to steps not asked, bytes past the size asked for,
  * freed, double-freed and other types' handles, a session driven after its end. */
 static void case_session_misuse(void) {
@@ -1377,6 +1490,7 @@ int main(int argc, char **argv) {
         {"session_locks_the_store", case_session_locks_the_store},
         {"session_misuse", case_session_misuse},
         {"url_update", case_url_update},
+        {"url_limits_and_cancel", case_url_limits_and_cancel},
         {"progress_and_device_id", case_progress_and_device_id},
         {"switch_channel_and_gc", case_switch_channel_and_gc},
     };
