@@ -157,8 +157,9 @@ fn update_times(polls: &[Poll]) -> Vec<Duration> {
         .collect()
 }
 
-/// One line of the report.
-fn row(name: &str, polls: &[Poll], wall: Duration) -> String {
+/// One line of the report: the Markdown row, and the same figures as the rest of a `REPORT
+/// fleet` line for benches/report (`tags` says what the round was, as `key=value` words).
+fn row(name: &str, tags: &str, polls: &[Poll], wall: Duration) -> (String, String) {
     let times = update_times(polls);
     let bytes: Vec<u64> = polls.iter().map(|p| p.bytes).collect();
     let updates: usize = polls.iter().map(|p| p.attempts.len()).sum();
@@ -170,16 +171,22 @@ fn row(name: &str, polls: &[Poll], wall: Duration) -> String {
         .count();
     let deltas = polls.iter().filter(|p| p.delta).count();
     let mean = bytes.iter().sum::<u64>() as f64 / bytes.len().max(1) as f64;
-    format!(
-        "| {name} | {updates} | {faults} | {deltas} | {:.2} | {:.2} | {:.2} | {:.0} | {} | {} | \
-         {:.1} |",
+    let (p50, p95, max) = (
         quantile(&times, 0.5).as_secs_f64(),
         quantile(&times, 0.95).as_secs_f64(),
         quantile(&times, 1.0).as_secs_f64(),
-        mean,
-        quantile(&bytes, 0.5),
-        quantile(&bytes, 0.95),
-        wall.as_secs_f64()
+    );
+    let (b50, b95) = (quantile(&bytes, 0.5), quantile(&bytes, 0.95));
+    let wall = wall.as_secs_f64();
+    (
+        format!(
+            "| {name} | {updates} | {faults} | {deltas} | {p50:.2} | {p95:.2} | {max:.2} | \
+             {mean:.0} | {b50} | {b95} | {wall:.1} |"
+        ),
+        format!(
+            "{tags} updates={updates} faulty={faults} from_delta={deltas} \
+             update_s={p50:.3}/{p95:.3}/{max:.3} bytes={mean:.0}/{b50}/{b95} wall_s={wall:.1}"
+        ),
     )
 }
 
@@ -213,8 +220,13 @@ fn slowest(name: &str, polls: &[Poll]) -> String {
     )
 }
 
-/// The whole run from one server: the report's rows.
-fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> (Vec<String>, Vec<String>) {
+/// The whole run from one server: the report's rows, the slowest devices, and the rows'
+/// `REPORT` figures.
+fn fleet(
+    d: &Path,
+    upstream: SocketAddr,
+    settings: &Settings,
+) -> (Vec<String>, Vec<String>, Vec<String>) {
     let members: Vec<Member> = (0..settings.devices)
         .map(|index| {
             let plan = Plan::every_fault(
@@ -237,7 +249,11 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> (Vec<String>, V
             .unwrap_or_else(|why| panic!("seed {:#x}: {why}", settings.seed));
         (polls, start.elapsed())
     };
-    let (mut rows, mut notes) = (Vec::new(), Vec::new());
+    let (mut rows, mut notes, mut reports) = (Vec::new(), Vec::new(), Vec::new());
+    let mut add = |(row, report): (String, String)| {
+        rows.push(row);
+        reports.push(report);
+    };
 
     let first = Goal {
         version: "1.0.0".parse().expect("a version"),
@@ -252,8 +268,9 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> (Vec<String>, V
         .expect("bundle")
         .len();
     let (polls, wall) = run(&first);
-    rows.push(row(
+    add(row(
         &format!("1.0.0 on fresh stores (bundle {bundle} bytes)"),
+        &format!("round=0 step=fresh version=1.0.0 bundle_bytes={bundle}"),
         &polls,
         wall,
     ));
@@ -261,11 +278,16 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> (Vec<String>, V
     for r in 1..=settings.rounds {
         let version = format!("1.{r}.0");
         let (goal, bundle) = release(d, settings, &version, 100 + r);
-        let delta = newest_delta_size(d, &version)
-            .map_or_else(|| "no delta".to_string(), |n| format!("delta {n} bytes"));
+        let delta_bytes = newest_delta_size(d, &version);
+        let delta =
+            delta_bytes.map_or_else(|| "no delta".to_string(), |n| format!("delta {n} bytes"));
         let (polls, wall) = run(&goal);
-        rows.push(row(
+        add(row(
             &format!("round {r}: publish {version} (bundle {bundle} bytes, {delta}), update"),
+            &format!(
+                "round={r} step=update version={version} bundle_bytes={bundle} delta_bytes={}",
+                delta_bytes.unwrap_or(0)
+            ),
             &polls,
             wall,
         ));
@@ -276,14 +298,15 @@ fn fleet(d: &Path, upstream: SocketAddr, settings: &Settings) -> (Vec<String>, V
             ..goal
         };
         let (polls, wall) = run(&kept);
-        rows.push(row(
+        add(row(
             &format!("round {r}: withdraw {version}, devices keep it"),
+            &format!("round={r} step=withdraw version={version}"),
             &polls,
             wall,
         ));
         notes.push(slowest(&format!("round {r}, withdraw"), &polls));
     }
-    (rows, notes)
+    (rows, notes, reports)
 }
 
 fn main() {
@@ -330,7 +353,7 @@ fn main() {
             "species-1.0.0.ampoule",
         );
         publish(d, "species-1.0.0.ampoule", "stable", "100");
-        let (rows, notes) = if server == "nginx" {
+        let (rows, notes, reports) = if server == "nginx" {
             let nginx = start_nginx(d, &d.join("tree"));
             let addr = nginx
                 .base
@@ -355,6 +378,18 @@ fn main() {
         println!("\nthe slowest device of each round:\n");
         for n in notes {
             println!("{n}");
+        }
+        let token = if server == "nginx" {
+            "nginx"
+        } else {
+            "built-in"
+        };
+        println!();
+        for report in reports {
+            println!(
+                "REPORT fleet devices={} server={token} {report}",
+                settings.devices
+            );
         }
     }
     println!("\nload average at end: {}", load_average());

@@ -482,6 +482,41 @@ fn the_policy_accepts_what_fits_and_names_what_differs() {
         refusal(&policy, None, &labels(7)),
         "the model is opaque (it has no recorded signature), but the app's policy states what the model must be"
     );
+    // Each setting that says what the model must be refuses an opaque model on its own.
+    // Mutation testing (MUTANTS.md) found `inputs || outputs` taken for `&&` unnoticed: a
+    // policy that named only an output, or only an input, let a model with no recorded
+    // signature through.
+    let alone = [
+        (
+            "format",
+            CompatibilityPolicy::builder().format(ModelFormat::Onnx),
+        ),
+        ("max_opset", CompatibilityPolicy::builder().max_opset(13)),
+        (
+            "input",
+            CompatibilityPolicy::builder().input(TensorSpec::new("image")),
+        ),
+        (
+            "output",
+            CompatibilityPolicy::builder().output(TensorSpec::new("species")),
+        ),
+        (
+            "weights_8bit",
+            CompatibilityPolicy::builder().weights_8bit(false),
+        ),
+        (
+            "classifier_output",
+            CompatibilityPolicy::builder().classifier_output("species"),
+        ),
+    ];
+    for (setting, builder) in alone {
+        let alone = builder.build().expect(setting);
+        assert_eq!(
+            refusal(&alone, None, &labels(7)),
+            "the model is opaque (it has no recorded signature), but the app's policy states what the model must be",
+            "a policy stating only {setting}"
+        );
+    }
     let labels_only = CompatibilityPolicy::builder()
         .label_count(7..=7)
         .require_label("badger")
