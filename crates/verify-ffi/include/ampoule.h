@@ -432,7 +432,8 @@ int32_t ampoule_update(ampoule_store store, const char *feed_url, size_t feed_ur
                        int64_t now_unix, ampoule_outcome *out, ampoule_error *err);
 
 /* Limits of ampoule_update's transfers. A field left 0 keeps the library's default, given
- * beside it; a zeroed struct restores every default. */
+ * beside it; a zeroed struct restores every default. A wait longer than 366 days (UINT64_MAX
+ * for "no limit") is taken as 366 days. */
 typedef struct ampoule_transfer {
     uint32_t connect_timeout_ms;     /* opening the TCP connection: 20000 */
     uint32_t read_timeout_ms;        /* the response head, then each piece of the body: 30000 */

@@ -1304,7 +1304,8 @@ static void cancel_on_download(void *context, int32_t stage, uint64_t done, uint
 }
 
 /* The URL update's limits and its cancel (`fetch`). Limits: against a server that accepts the
- * connection and never answers, a 200 ms read timeout and one try give up at once with
+ * connection and never answers, a 200 ms read timeout and one try (with a total timeout of
+ * UINT64_MAX ms, "no limit") give up at once with
  * AMPOULE_NETWORK, where the defaults (connect 20 s and read 30 s, three tries) would wait
  * minutes. Cancel: asked during the download of the large bundle, the update stops with
  * AMPOULE_CANCELLED and nothing installed; the next update resumes from the bytes kept (its first
@@ -1329,6 +1330,7 @@ static void case_url_limits_and_cancel(void) {
     quick.connect_timeout_ms = 200;
     quick.read_timeout_ms = 200;
     quick.attempts_per_source = 1;
+    quick.total_timeout_ms = UINT64_MAX; /* "no limit": taken as 366 days */
     EXPECT(ampoule_store_set_transfer(store, &quick, &err), AMPOULE_OK, &err, NULL);
     time_t started = time(NULL);
     EXPECT(ampoule_update(store, stalled, strlen(stalled), (int64_t)time(NULL), &outcome, &err),

@@ -98,29 +98,30 @@ impl Transfer {
         Self::default()
     }
 
-    /// How long opening the TCP connection may take.
+    /// How long opening the TCP connection may take (at most 366 days).
     pub fn connect_timeout(mut self, t: Duration) -> Self {
-        self.connect_timeout = t;
+        self.connect_timeout = t.min(LONGEST);
         self
     }
 
-    /// How long the response headers, and then each piece of the body, may take to arrive.
+    /// How long the response headers, and then each piece of the body, may take to arrive
+    /// (at most 366 days).
     pub fn read_timeout(mut self, t: Duration) -> Self {
-        self.read_timeout = t;
+        self.read_timeout = t.min(LONGEST);
         self
     }
 
-    /// How long one request may take in all, body included.
+    /// How long one request may take in all, body included (at most 366 days).
     pub fn total_timeout(mut self, t: Duration) -> Self {
-        self.total_timeout = t;
+        self.total_timeout = t.min(LONGEST);
         self
     }
 
     /// The slowest acceptable transfer: fewer than `bytes_per_sec` on average over any
-    /// `window` ends it.
+    /// `window` (1 ms to 366 days) ends it.
     pub fn min_rate(mut self, bytes_per_sec: u64, window: Duration) -> Self {
         self.min_rate = bytes_per_sec;
-        self.rate_window = window.max(Duration::from_millis(1));
+        self.rate_window = window.clamp(Duration::from_millis(1), LONGEST);
         self
     }
 
@@ -166,6 +167,11 @@ impl Transfer {
         self
     }
 }
+
+/// The longest any of a transfer's waits may be set to: 366 days. A longer one is taken as
+/// this, so that a deadline (now plus the wait) can always be computed: "no limit" from an
+/// app, such as `Duration::MAX` or a C caller's `UINT64_MAX` milliseconds, means this.
+const LONGEST: Duration = Duration::from_secs(366 * 24 * 60 * 60);
 
 type HttpsClient = Client<HttpsConnector<HttpConnector>, Empty<Bytes>>;
 
@@ -1285,6 +1291,33 @@ impl Updater {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A wait set to "for ever" is capped, so that `Instant::now() + wait`, which every
+    /// deadline computes, cannot overflow: before the cap, `Duration::MAX` from an app made
+    /// the first request panic (found while the C interface grew its limits).
+    #[test]
+    fn waits_set_beyond_366_days_are_capped_and_deadlines_compute() {
+        let t = Transfer::new()
+            .connect_timeout(Duration::MAX)
+            .read_timeout(Duration::MAX)
+            .total_timeout(Duration::from_millis(u64::MAX))
+            .min_rate(1, Duration::MAX);
+        for wait in [
+            t.connect_timeout,
+            t.read_timeout,
+            t.total_timeout,
+            t.rate_window,
+        ] {
+            assert_eq!(wait, LONGEST);
+        }
+        let now = Instant::now();
+        assert!(now + t.connect_timeout + t.read_timeout > now + t.total_timeout / 2);
+        let short = Transfer::new()
+            .read_timeout(Duration::from_millis(200))
+            .min_rate(1, Duration::ZERO);
+        assert_eq!(short.read_timeout, Duration::from_millis(200));
+        assert_eq!(short.rate_window, Duration::from_millis(1));
+    }
 
     #[test]
     fn public_types_cross_threads() {
