@@ -1068,6 +1068,86 @@ mod tests {
         );
     }
 
+    /// The caps hold at their limits and refuse one past them, a key is exactly 64 lowercase
+    /// hex characters, a threshold set per kind reads back, and a parsed file keeps its
+    /// signatures: each assertion kills a mutant the crate's tests missed (MUTANTS.md).
+    #[test]
+    fn caps_hold_at_their_limits_and_keys_are_exact_hex() {
+        let keys: Vec<SigningKey> = (1..=spec::MAX_KEYS as u8 + 1).map(signer).collect();
+        let refs: Vec<&SigningKey> = keys.iter().collect();
+        TrustSetFile::unsigned(body(1, &refs[..spec::MAX_KEYS], 1, 1)).expect("32 keys");
+        let e =
+            TrustSetFile::from_json(&raw_file(&body(1, &refs, 1, 1), vec![])).expect_err("33 keys");
+        assert_eq!(e.kind(), ErrorKind::TooLarge);
+        assert_eq!(
+            e.to_string(),
+            "trust set lists 33 keys, over the limit of 32"
+        );
+
+        let mut long = body(1, &[&keys[0]], 1, 1);
+        long.keys[0].comment = "a".repeat(spec::COMMENT_BYTES);
+        TrustSetFile::unsigned(long.clone()).expect("a comment of 128 bytes");
+        long.keys[0].comment.push('a');
+        assert_eq!(
+            TrustSetFile::from_json(&raw_file(&long, vec![]))
+                .expect_err("129 bytes")
+                .to_string(),
+            format!(
+                "trust set key {} has a comment over 128 bytes or with control characters",
+                id(&keys[0])
+            )
+        );
+
+        // A file of exactly the cap is read (and refused for what it holds, not its size).
+        let at_cap = vec![b' '; spec::MAX_BYTES as usize];
+        let e = TrustSetFile::from_json(&at_cap).expect_err("only spaces");
+        assert_ne!(e.kind(), ErrorKind::TooLarge, "{e}");
+
+        let text = body(1, &[&keys[0]], 1, 1).to_json();
+        let hex = hex::encode(keys[0].verifying_key().to_bytes());
+        assert!(text.contains(&hex));
+        for (bad, what) in [
+            (hex.to_uppercase(), "uppercase"),
+            (hex[..62].to_string(), "short"),
+            (format!("{hex}00"), "long"),
+        ] {
+            let file = serde_json::to_vec(&Envelope {
+                trust_set: text.replace(&hex, &bad),
+                signatures: vec![],
+            })
+            .expect("serializes");
+            let e = TrustSetFile::from_json(&file).expect_err(what);
+            assert!(
+                e.to_string()
+                    .contains("a public key must be 64 lowercase hex characters (32 bytes)"),
+                "{what}: {e}"
+            );
+        }
+
+        let mut thresholds = Thresholds {
+            bundle: 1,
+            feed: 1,
+            tree_head: 1,
+            trust_set: 1,
+        };
+        for (n, kind) in (10..).zip(DocumentKind::ALL) {
+            thresholds.set(kind, n);
+        }
+        for (n, kind) in (10..).zip(DocumentKind::ALL) {
+            assert_eq!(thresholds.get(kind), n, "{kind}");
+        }
+
+        let (a, b) = (signer(1), signer(2));
+        let file =
+            TrustSetFile::from_json(&signed(body(1, &[&a, &b], 1, 1), &[&a, &b])).expect("parses");
+        let mut signed_by: Vec<KeyId> =
+            file.signatures().iter().map(|s| s.key_id.clone()).collect();
+        signed_by.sort();
+        let mut expected = vec![id(&a), id(&b)];
+        expected.sort();
+        assert_eq!(signed_by, expected);
+    }
+
     #[test]
     fn attached_signatures_must_verify() {
         let (a, b) = (signer(1), signer(2));
