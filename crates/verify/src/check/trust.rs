@@ -1140,12 +1140,75 @@ mod tests {
         let (a, b) = (signer(1), signer(2));
         let file =
             TrustSetFile::from_json(&signed(body(1, &[&a, &b], 1, 1), &[&a, &b])).expect("parses");
-        let mut signed_by: Vec<KeyId> =
-            file.signatures().iter().map(|s| s.key_id.clone()).collect();
+        let mut signed_by: Vec<KeyId> = file.signatures().iter().map(|s| s.key_id).collect();
         signed_by.sort();
         let mut expected = vec![id(&a), id(&b)];
         expected.sort();
         assert_eq!(signed_by, expected);
+    }
+
+    /// A file lists every key whatever its roles, sorts its signatures by what they are, and
+    /// replacing a key's signature says whether it changed: each kills a mutant the crate's
+    /// tests missed (MUTANTS.md).
+    #[test]
+    fn a_file_lists_its_keys_tallies_its_signatures_and_replaces_one_per_key() {
+        let (a, b, c) = (signer(1), signer(2), signer(3));
+        let mut set = body(1, &[&a, &b], 1, 1);
+        set.keys[1].roles = vec![DocumentKind::Feed];
+        let mut file = TrustSetFile::unsigned(set).expect("valid");
+        let mut listed: Vec<KeyId> = file.all_keys().iter().map(PublicKey::id).collect();
+        listed.sort();
+        let mut both = vec![id(&a), id(&b)];
+        both.sort();
+        assert_eq!(listed, both);
+
+        let by_a = sign_entry(&file, &a);
+        assert!(file.insert_signature(by_a.clone()).expect("room"));
+        assert!(
+            !file.insert_signature(by_a.clone()).expect("room"),
+            "the same signature again"
+        );
+        let other = SignatureEntry {
+            key_id: id(&a),
+            signature: [7; 64],
+        };
+        assert!(
+            file.insert_signature(other).expect("room"),
+            "a's signature replaced"
+        );
+        assert_eq!(file.signatures().len(), 1);
+        assert_eq!(file.signatures()[0].signature, [7; 64]);
+        assert!(file.insert_signature(by_a).expect("room"));
+        file.insert_signature(sign_entry(&file, &c)).expect("room");
+
+        let report = file.tally(&file.all_keys());
+        assert_eq!(report.valid, vec![id(&a)]);
+        assert!(report.invalid.is_empty());
+        assert_eq!(report.untrusted, vec![id(&c)]);
+    }
+
+    /// At equal versions the set shipped with the app wins over the stored one: the stored
+    /// copy only ever replaces it with a newer version (a mutant taking the stored set at an
+    /// equal version went unnoticed).
+    #[test]
+    fn at_equal_versions_the_shipped_set_wins() {
+        let (a, b) = (signer(1), signer(2));
+        let shipped = signed(body(4, &[&a], 1, 1), &[&a]);
+        let stored = signed(body(4, &[&b], 1, 1), &[&b]);
+        let set = TrustSet::resume(&shipped, Some(&stored), at(NOW)).expect("resumes");
+        assert_eq!(set.version(), 4);
+        assert_eq!(
+            set.file().text().as_bytes(),
+            TrustSetFile::from_json(&shipped)
+                .expect("parses")
+                .text()
+                .as_bytes()
+        );
+        let (keys, _) = set.keys_for(DocumentKind::Bundle);
+        assert_eq!(
+            keys.iter().map(PublicKey::id).collect::<Vec<_>>(),
+            vec![id(&a)]
+        );
     }
 
     #[test]
