@@ -969,10 +969,8 @@ static void case_http_update(void) {
     store_free(store);
 }
 
-/* A bundle larger than its head (274 KiB): the session asks for the head first, checks its
- * signed manifest, then asks for the rest into the same file from where the head ended (an HTTP
- * Range request), and installs. */
-static void case_http_head_first(void) {
+/* A store following the channel "large", whose bundle (2.9.0) is larger than its head. */
+static ampoule_store open_large(void) {
     ampoule_error err;
     ampoule_store store = {0};
     ampoule_role_keys keys = {key, sizeof key, 1};
@@ -982,6 +980,15 @@ static void case_http_head_first(void) {
                                                &keys, &keys, "2.3.0", 5, NULL, 0,
                                                (int64_t)time(NULL), &store, &err),
            AMPOULE_OK, &err, NULL);
+    return store;
+}
+
+/* A bundle larger than its head (274 KiB): the session asks for the head first, checks its
+ * signed manifest, then asks for the rest into the same file from where the head ended (an HTTP
+ * Range request), and installs. */
+static void case_http_head_first(void) {
+    ampoule_error err;
+    ampoule_store store = open_large();
     ampoule_outcome outcome;
     struct plan plan = {0};
     EXPECT(update_over_http(store, &plan, &outcome, &err), AMPOULE_OK, &err, NULL);
@@ -1313,14 +1320,7 @@ static void cancel_on_download(void *context, int32_t stage, uint64_t done, uint
 static void case_url_limits_and_cancel(void) {
     ampoule_error err;
     ampoule_outcome outcome;
-    ampoule_store store = {0};
-    ampoule_role_keys keys = {key, sizeof key, 1};
-    const char *dir = store_dir("camera");
-    channel = "large";
-    EXPECT(ampoule_store_open_with_pinned_keys(dir, strlen(dir), channel, strlen(channel), &keys,
-                                               &keys, &keys, "2.3.0", 5, NULL, 0,
-                                               (int64_t)time(NULL), &store, &err),
-           AMPOULE_OK, &err, NULL);
+    ampoule_store store = open_large();
 
     int port = 0;
     int silent = silent_listener(&port);
