@@ -1191,7 +1191,7 @@ mod tests {
     /// copy only ever replaces it with a newer version (a mutant taking the stored set at an
     /// equal version went unnoticed).
     #[test]
-    fn at_equal_versions_the_shipped_set_wins() {
+    fn at_equal_versions_the_shipped_set_wins_and_thresholds_read_back() {
         let (a, b) = (signer(1), signer(2));
         let shipped = signed(body(4, &[&a], 1, 1), &[&a]);
         let stored = signed(body(4, &[&b], 1, 1), &[&b]);
@@ -1209,6 +1209,13 @@ mod tests {
             keys.iter().map(PublicKey::id).collect::<Vec<_>>(),
             vec![id(&a)]
         );
+
+        // A threshold other than 1 reads back per kind (`threshold` returning 1 was missed).
+        let two = signed(body(5, &[&a, &b], 2, 2), &[&a, &b]);
+        let set = TrustSet::resume(&two, None, at(NOW)).expect("resumes");
+        assert_eq!(set.threshold(DocumentKind::Bundle), 2);
+        assert_eq!(set.threshold(DocumentKind::TrustSet), 2);
+        assert_eq!(set.threshold(DocumentKind::Feed), 1);
     }
 
     #[test]
