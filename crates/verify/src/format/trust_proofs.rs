@@ -228,6 +228,54 @@ mod tests {
         );
     }
 
+    /// The caps hold at their limits and refuse one past them, the file round-trips through
+    /// what the release side writes, and a feed's reference names the file: each kills a
+    /// mutant the crate's tests missed (MUTANTS.md).
+    #[test]
+    fn caps_hold_at_their_limits_and_the_file_round_trips() {
+        let at_cap = vec![b' '; MAX_BYTES as usize];
+        let e = TrustSetProofs::from_json(&at_cap).expect_err("only spaces");
+        assert_ne!(e.kind(), ErrorKind::TooLarge, "{e}");
+
+        let head = TreeHead {
+            tree_size: 5,
+            root_hash: Digest::of(b"root"),
+            time: 1_796_083_200,
+        };
+        let proof = TrustSetProof {
+            entry: "an entry".into(),
+            tree_head: SignedTreeHead::new(head, Vec::new()),
+            inclusion: InclusionProof {
+                leaf_index: 4,
+                tree_size: 5,
+                hashes: vec![Digest::of(b"left")],
+            },
+            consistency: ConsistencyProof {
+                old_size: 5,
+                new_size: 9,
+                hashes: vec![Digest::of(b"old"), Digest::of(b"new")],
+            },
+        };
+        let full = TrustSetProofs {
+            tree_size: 9,
+            trust_sets: vec![proof.clone(); MAX_SETS],
+        };
+        let bytes = full.to_json();
+        assert_eq!(bytes.last(), Some(&b'\n'));
+        assert_eq!(TrustSetProofs::from_json(&bytes).expect("32 proofs"), full);
+        let mut over = full;
+        over.trust_sets.push(proof);
+        let e = TrustSetProofs::from_json(&over.to_json()).expect_err("33 proofs");
+        assert_eq!(e.kind(), ErrorKind::TooLarge);
+        assert_eq!(
+            e.to_string(),
+            "trust-set proofs file holds 33 proofs, more than the limit of 32"
+        );
+
+        assert_eq!(path(9), "ledger/trust-sets/9.json");
+        assert_eq!(reference(9), "../ledger/trust-sets/9.json");
+    }
+
     #[test]
     fn proofs_for_another_head_prove_nothing() {
         let proofs = TrustSetProofs {
